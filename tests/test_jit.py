@@ -1,0 +1,46 @@
+"""The numba wrapper: caching fallback, no fastmath, thread control."""
+
+import warnings
+
+import numba
+import pytest
+
+import kernels._jit as kjit
+
+
+def test_falls_back_when_no_cache_location_exists(monkeypatch):
+    real = numba.njit
+
+    def njit(*args, cache=False, **kw):
+        if cache:
+            raise RuntimeError("cannot cache function 'f': no locator available for file 'x.py'")
+        return real(*args, cache=cache, **kw)
+
+    monkeypatch.setattr(numba, "njit", njit)
+    monkeypatch.setattr(kjit, "_cache_ok", True)
+    with pytest.warns(RuntimeWarning, match="cannot cache compiled kernels"):
+
+        @kjit.jit()
+        def f(x):
+            return x + 1
+
+    assert f(1) == 2
+    assert not kjit.caching_enabled()
+
+
+def test_fastmath_is_refused():
+    with pytest.raises(ValueError, match="fastmath"):
+        kjit.jit(fastmath=True)
+
+
+def test_threads_context_restores():
+    before = numba.get_num_threads()
+    with kjit.threads(1):
+        assert numba.get_num_threads() == 1
+    assert numba.get_num_threads() == before
+    with pytest.raises(ValueError, match="thread count"):
+        kjit.threads(0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        with kjit.threads(numba.config.NUMBA_NUM_THREADS):
+            pass
