@@ -1,0 +1,207 @@
+"""Mesh topology kernels: point-to-triangle incidence, the CSR pattern, edges.
+
+Everything here is derived from the *incidence*: for each point ``i`` the list
+of ``3 * t + a`` codes of the triangles ``t`` that have ``i`` as their local
+vertex ``a``, in increasing ``t``.  In a counterclockwise triangle the
+*successor* of local vertex ``a`` is ``(a + 1) % 3`` and its *predecessor*
+``(a + 2) % 3``; the directed edge ``i -> successor`` has the triangle on its
+left.
+
+Parallel loops run over points and each iteration writes only the entries of
+its own point, so there are no races and the result does not depend on the
+thread count.
+"""
+
+import numpy as np
+from numba import prange
+
+from kernels._jit import jit
+
+# Rows are processed in blocks so that each block allocates its scratch
+# buffer once instead of once per row.
+_BLOCK = 4096
+
+
+@jit()
+def incidence(triangles, ptr, codes):
+    """Counting sort of ``3 * t + a`` codes by point, into ``ptr`` and ``codes``.
+
+    ``ptr`` has length ``n_points + 1`` and ``codes`` length ``3 * n_triangles``
+    (both in the index dtype, wide enough for ``3 * n_triangles``); the codes
+    of point ``i`` end up in ``codes[ptr[i]:ptr[i + 1]]``, in increasing
+    triangle order.
+    """
+    m = triangles.shape[0]
+    n_points = ptr.size - 1
+    ptr[:] = 0
+    for t in range(m):
+        for a in range(3):
+            ptr[triangles[t, a] + 1] += 1
+    for i in range(n_points):
+        ptr[i + 1] += ptr[i]
+    fill = ptr[:-1].copy()
+    for t in range(m):
+        for a in range(3):
+            i = triangles[t, a]
+            codes[fill[i]] = 3 * t + a
+            fill[i] += 1
+
+
+@jit()
+def _insert_sorted(buf, start, count, value):
+    """Insert ``value`` into the sorted ``buf[start:start+count]``; return the new count."""
+    pos = start + count
+    while pos > start and buf[pos - 1] > value:
+        pos -= 1
+    if pos > start and buf[pos - 1] == value:
+        return count
+    for r in range(start + count, pos, -1):
+        buf[r] = buf[r - 1]
+    buf[pos] = value
+    return count + 1
+
+
+@jit(parallel=True)
+def pattern_counts(triangles, ptr, codes, counts):
+    """Number of distinct columns (itself and its neighbours) of each point's row, into ``counts``."""
+    n = ptr.size - 1
+    counts[:] = 0
+    n_blocks = (n + _BLOCK - 1) // _BLOCK
+    max_degree = 0
+    for i in range(n):
+        max_degree = max(max_degree, ptr[i + 1] - ptr[i])
+    for blk in prange(n_blocks):
+        buf = np.empty(2 * max_degree + 1, dtype=ptr.dtype)
+        for i in range(blk * _BLOCK, min(n, (blk + 1) * _BLOCK)):
+            if ptr[i] == ptr[i + 1]:
+                continue  # a point in no triangle has an empty row
+            buf[0] = i
+            c = 1
+            for e in range(ptr[i], ptr[i + 1]):
+                t = codes[e] // 3
+                a = codes[e] - 3 * t
+                c = _insert_sorted(buf, 0, c, triangles[t, (a + 1) % 3])
+                c = _insert_sorted(buf, 0, c, triangles[t, (a + 2) % 3])
+            counts[i] = c
+
+
+@jit()
+def _find(indices, lo, hi, value):
+    """Position of ``value`` in the sorted ``indices[lo:hi]`` (it must be there)."""
+    while hi - lo > 8:
+        mid = (lo + hi) // 2
+        if indices[mid] < value:
+            lo = mid + 1
+        else:
+            hi = mid
+    while indices[lo] != value:
+        lo += 1
+    return lo
+
+
+@jit(parallel=True)
+def pattern_fill(triangles, ptr, codes, indptr, indices, diag, slot_next, slot_prev, with_slots):
+    """Fill the sorted column indices of each row and, optionally, the slot plan.
+
+    ``diag[i]`` is the position of ``(i, i)`` in ``indices`` (-1 for a point
+    in no triangle, whose row is empty).  With
+    ``with_slots``, for each incidence ``e`` of point ``i`` in triangle ``t``
+    at local vertex ``a``: ``slot_next[e]`` is the position of
+    ``(i, triangle[t, a+1])`` and ``slot_prev[e]`` that of
+    ``(i, triangle[t, a+2])``.  Each row is written only by its own iteration.
+    """
+    n = ptr.size - 1
+    for i in prange(n):
+        if ptr[i] == ptr[i + 1]:
+            diag[i] = -1
+            continue
+        start = indptr[i]
+        indices[start] = i
+        c = 1
+        for e in range(ptr[i], ptr[i + 1]):
+            t = codes[e] // 3
+            a = codes[e] - 3 * t
+            c = _insert_sorted(indices, start, c, triangles[t, (a + 1) % 3])
+            c = _insert_sorted(indices, start, c, triangles[t, (a + 2) % 3])
+        end = start + c
+        diag[i] = _find(indices, start, end, i)
+        if with_slots:
+            for e in range(ptr[i], ptr[i + 1]):
+                t = codes[e] // 3
+                a = codes[e] - 3 * t
+                slot_next[e] = _find(indices, start, end, triangles[t, (a + 1) % 3])
+                slot_prev[e] = _find(indices, start, end, triangles[t, (a + 2) % 3])
+
+
+@jit(parallel=True)
+def directed_edge_check(triangles, ptr, codes):
+    """Check that every directed edge ``i -> successor`` occurs in one triangle only.
+
+    In a valid mesh of counterclockwise triangles an interior edge is walked
+    once in each direction by its two triangles, and a boundary edge once.
+    A directed edge walked twice means duplicate or overlapping triangles, or
+    an edge shared by more than two triangles.  Returns ``(first, second)``
+    arrays over points: the two triangles of the first repeated directed edge
+    leaving that point, or ``-1``.
+    """
+    n = ptr.size - 1
+    first = np.full(n, -1, dtype=ptr.dtype)
+    second = np.full(n, -1, dtype=ptr.dtype)
+    for i in prange(n):
+        found = False
+        for e in range(ptr[i], ptr[i + 1]):
+            if found:
+                break
+            t = codes[e] // 3
+            j = triangles[t, (codes[e] - 3 * t + 1) % 3]
+            for f in range(e + 1, ptr[i + 1]):
+                s = codes[f] // 3
+                if triangles[s, (codes[f] - 3 * s + 1) % 3] == j:
+                    first[i] = t
+                    second[i] = s
+                    found = True
+                    break
+    return first, second
+
+
+@jit(parallel=True)
+def boundary_flags(triangles, ptr, codes):
+    """For each incidence ``e`` of point ``i``: is ``i -> successor`` a boundary edge?
+
+    It is when no triangle at ``i`` walks the reverse edge, that is when the
+    successor is nobody's predecessor around ``i``.
+    """
+    n = ptr.size - 1
+    flags = np.zeros(codes.size, dtype=np.bool_)
+    for i in prange(n):
+        for e in range(ptr[i], ptr[i + 1]):
+            t = codes[e] // 3
+            j = triangles[t, (codes[e] - 3 * t + 1) % 3]
+            reverse = False
+            for f in range(ptr[i], ptr[i + 1]):
+                s = codes[f] // 3
+                if triangles[s, (codes[f] - 3 * s + 2) % 3] == j:
+                    reverse = True
+                    break
+            flags[e] = not reverse
+    return flags
+
+
+@jit(parallel=True)
+def triangle_edges(triangles, indptr, indices, diag, first_edge):
+    """Global edge number of the edge opposite each local vertex.
+
+    Edge ``(i, j)`` with ``i < j`` is stored in row ``i`` of the pattern after
+    the diagonal; its number is ``first_edge[i]`` plus its position there.
+    """
+    m = triangles.shape[0]
+    out = np.empty((m, 3), dtype=indptr.dtype)
+    for t in prange(m):
+        for c in range(3):
+            p = triangles[t, (c + 1) % 3]
+            q = triangles[t, (c + 2) % 3]
+            i = min(p, q)
+            j = max(p, q)
+            pos = _find(indices, diag[i] + 1, indptr[i + 1], j)
+            out[t, c] = first_edge[i] + pos - diag[i] - 1
+    return out

@@ -1,0 +1,423 @@
+"""The triangle mesh: validation once, then immutable arrays and cached topology."""
+
+from __future__ import annotations
+
+import dataclasses
+import warnings
+
+import numpy as np
+
+from kernels._jit import topology as _topo
+from kernels.errors import MeshError, MeshWarning
+
+__all__ = ["Mesh", "Refinement", "index_dtype", "DEGENERATE_TOL"]
+
+#: A triangle is degenerate when twice its area is at most this fraction of
+#: its longest edge squared (that ratio is about the smallest altitude over
+#: the longest edge).  Round-off in the area of a flat triangle with
+#: coordinates of order one is near 1e-16, so 1e-12 flags collinear points
+#: while accepting anisotropic triangles up to aspect ratios near 1e12.
+DEGENERATE_TOL = 1e-12
+
+_INT32_MAX = np.iinfo(np.int32).max
+
+
+def index_dtype(*counts):
+    """int32 when every count fits in it, int64 otherwise."""
+    return np.dtype(np.int32) if max(counts, default=0) <= _INT32_MAX else np.dtype(np.int64)
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
+class Refinement:
+    """How a mesh was made from a coarser one by :meth:`Mesh.refine`.
+
+    Attributes
+    ----------
+    coarse : Mesh
+        The mesh that was refined.
+    edge_points : ndarray, shape (n_new_points, 2)
+        For each new point ``coarse.n_points + k``, the two coarse points of the
+        edge whose midpoint it is.  Coarse points keep their numbers.
+    """
+
+    coarse: "Mesh"
+    edge_points: np.ndarray
+
+    def __repr__(self):
+        return f"Refinement(coarse={self.coarse!r}, new points={len(self.edge_points)})"
+
+
+def _readonly(a):
+    a.setflags(write=False)
+    return a
+
+
+def _check_points(points):
+    try:
+        p = np.asarray(points)
+    except Exception as exc:  # ragged lists and the like
+        raise MeshError(f"points cannot be read as an array: {exc}") from None
+    if p.ndim != 2 or p.shape[1] != 2:
+        raise MeshError(f"points must have shape (n_points, 2), got shape {p.shape}")
+    if p.shape[0] == 0:
+        raise MeshError("points is empty")
+    if p.dtype.kind not in "fiu" or p.dtype == np.float16:
+        raise MeshError(
+            f"points must be a real floating-point array (float64), got dtype {p.dtype}"
+        )
+    p = np.array(p, dtype=np.float64, order="C", copy=True)
+    finite = np.isfinite(p).all(axis=1)
+    if not finite.all():
+        bad = np.flatnonzero(~finite)
+        raise MeshError(
+            f"point {bad[0]} has a non-finite coordinate ({float(p[bad[0], 0])!r}, {float(p[bad[0], 1])!r})"
+            + (f"; {bad.size} points in all" if bad.size > 1 else "")
+        )
+    return p
+
+
+def _check_triangles(triangles, n_points):
+    try:
+        t = np.asarray(triangles)
+    except Exception as exc:
+        raise MeshError(f"triangles cannot be read as an array: {exc}") from None
+    if t.ndim != 2 or t.shape[1] != 3:
+        raise MeshError(f"triangles must have shape (n_triangles, 3), got shape {t.shape}")
+    if t.shape[0] == 0:
+        raise MeshError("triangles is empty")
+    if t.dtype.kind not in "iu":
+        raise MeshError(
+            f"triangles must be an integer array of point indices, got dtype {t.dtype}"
+        )
+    lo = t.min(axis=1)
+    if lo.min() < 0:
+        k = int(np.flatnonzero(lo < 0)[0])
+        raise MeshError(f"triangle {k} has a negative point index {t[k].tolist()}")
+    hi = t.max(axis=1)
+    if hi.max() >= n_points:
+        k = int(np.flatnonzero(hi >= n_points)[0])
+        raise MeshError(
+            f"triangle {k} refers to point {int(hi[k])}, but there are only {n_points} "
+            f"points (valid indices 0..{n_points - 1})"
+        )
+    t = np.array(t, dtype=index_dtype(n_points), order="C", copy=True)
+    same = (t[:, 0] == t[:, 1]) | (t[:, 1] == t[:, 2]) | (t[:, 0] == t[:, 2])
+    if same.any():
+        bad = np.flatnonzero(same)
+        raise MeshError(
+            f"triangle {bad[0]} repeats a vertex {t[bad[0]].tolist()}"
+            + (f"; {bad.size} triangles in all" if bad.size > 1 else "")
+        )
+    return t
+
+
+def signed_double_areas(points, triangles):
+    """Twice the signed area of each triangle (positive when counterclockwise)."""
+    p0 = points[triangles[:, 0]]
+    d1 = points[triangles[:, 1]] - p0
+    d2 = points[triangles[:, 2]] - p0
+    return d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0]
+
+
+def _longest_edge_sq(points, triangles):
+    p0, p1, p2 = (points[triangles[:, k]] for k in range(3))
+    return np.maximum(
+        np.maximum(((p1 - p0) ** 2).sum(axis=1), ((p2 - p1) ** 2).sum(axis=1)),
+        ((p0 - p2) ** 2).sum(axis=1),
+    )
+
+
+class Mesh:
+    """A conforming triangle mesh in the plane.
+
+    Parameters
+    ----------
+    points : array_like, shape (n_points, 2)
+        Coordinates; any real dtype, stored as float64.
+    triangles : array_like, shape (n_triangles, 3)
+        Point indices of each triangle; any integer dtype, stored as int32
+        (int64 when there are more than 2**31 - 1 points).
+    degenerate_tol : float
+        Relative area below which a triangle counts as degenerate, see
+        :data:`DEGENERATE_TOL`.
+
+    Raises
+    ------
+    MeshError
+        With the index of the first offending triangle or point: wrong shape
+        or dtype, non-finite coordinates, indices out of range, a repeated
+        vertex, a (near) zero area, duplicate or overlapping triangles, an
+        edge shared by more than two triangles.
+
+    Warns
+    -----
+    MeshWarning
+        When clockwise triangles were reoriented (in the mesh's own copy,
+        never in the caller's array) or some points belong to no triangle.
+        Such points give empty matrix rows; :func:`kernels.apply_dirichlet`
+        leaves them out of the system.
+
+    Notes
+    -----
+    The inputs are copied; the mesh's arrays are read-only, so topology
+    (edges, boundary) is computed once and cached.
+
+    Examples
+    --------
+    >>> import kernels
+    >>> m = kernels.Mesh([[0, 0], [1, 0], [0, 1], [1, 1]], [[0, 1, 3], [0, 3, 2]])
+    >>> m
+    Mesh(4 points, 2 triangles)
+    >>> m.boundary_nodes()
+    array([0, 1, 2, 3], dtype=int32)
+    >>> m.edges().tolist()
+    [[0, 1], [0, 2], [0, 3], [1, 3], [2, 3]]
+    """
+
+    def __init__(self, points, triangles, *, degenerate_tol=DEGENERATE_TOL):
+        p = _check_points(points)
+        t = _check_triangles(triangles, p.shape[0])
+        d2a = signed_double_areas(p, t)
+        rel = np.abs(d2a) / _longest_edge_sq(p, t)
+        flat = ~(rel > degenerate_tol)
+        if flat.any():
+            bad = np.flatnonzero(flat)
+            k = int(bad[0])
+            i, j, l = t[k].tolist()
+            kind = "zero area" if d2a[k] == 0 else f"near-zero area (relative {rel[k]:.1e})"
+            coincide = [(u, v) for u, v in ((i, j), (j, l), (i, l)) if (p[u] == p[v]).all()]
+            why = (
+                f"points {coincide[0][0]} and {coincide[0][1]} coincide at {tuple(p[coincide[0][0]].tolist())}"
+                if coincide
+                else f"points {i}, {j}, {l} are collinear"
+            )
+            raise MeshError(
+                f"triangle {k} has {kind} ({why})"
+                + (f"; {bad.size} triangles in all" if bad.size > 1 else "")
+            )
+        clockwise = d2a < 0
+        n_cw = int(clockwise.sum())
+        if n_cw:
+            t[clockwise, 1], t[clockwise, 2] = t[clockwise, 2], t[clockwise, 1].copy()
+            warnings.warn(
+                f"{n_cw} of {t.shape[0]} triangles were clockwise and have been reoriented "
+                f"(first: triangle {int(np.flatnonzero(clockwise)[0])})",
+                MeshWarning,
+                stacklevel=2,
+            )
+        self._init(p, t)
+        self._check_edges()
+        used = np.bincount(t.ravel(), minlength=p.shape[0]) > 0
+        if not used.all():
+            unused = np.flatnonzero(~used)
+            self._cache["unused"] = _readonly(unused.astype(t.dtype))
+            warnings.warn(
+                f"{unused.size} of {p.shape[0]} points belong to no triangle "
+                f"(first: point {unused[0]}); they get empty matrix rows",
+                MeshWarning,
+                stacklevel=2,
+            )
+        else:
+            self._cache["unused"] = _readonly(np.empty(0, dtype=t.dtype))
+
+    # -- construction -------------------------------------------------------
+
+    def _init(self, points, triangles, refinement=None):
+        self._points = _readonly(points)
+        self._triangles = _readonly(triangles)
+        self._refinement = refinement
+        self._cache = {}
+
+    @classmethod
+    def _trusted(cls, points, triangles, *, refinement=None, **cache):
+        """Build from arrays known to be valid (generators, refinement): no checks, no copies."""
+        self = cls.__new__(cls)
+        self._init(
+            np.ascontiguousarray(points, dtype=np.float64),
+            np.ascontiguousarray(triangles, dtype=index_dtype(len(points))),
+            refinement,
+        )
+        for key, value in cache.items():
+            self._cache[key] = _readonly(value)
+        return self
+
+    def _check_edges(self):
+        ptr, codes = self._incidence()
+        first, second = _topo.directed_edge_check(self._triangles_for_topology(), ptr, codes)
+        hit = np.flatnonzero(first >= 0)
+        if hit.size == 0:
+            return
+        i = int(hit[0])
+        t1, t2 = int(first[i]), int(second[i])
+        tri = self._triangles
+        if set(tri[t1].tolist()) == set(tri[t2].tolist()):
+            raise MeshError(
+                f"triangles {t1} and {t2} are duplicates (points {sorted(tri[t1].tolist())})"
+            )
+        row = tri[t1].tolist()
+        j = row[(row.index(i) + 1) % 3]
+        raise MeshError(
+            f"triangles {t1} and {t2} both lie on the left of edge ({i} -> {j}): they overlap, "
+            f"or the edge is shared by more than two triangles"
+        )
+
+    # -- arrays ---------------------------------------------------------------
+
+    @property
+    def points(self):
+        """Coordinates, shape (n_points, 2), float64, read-only."""
+        return self._points
+
+    @property
+    def triangles(self):
+        """Counterclockwise point indices, shape (n_triangles, 3), read-only."""
+        return self._triangles
+
+    @property
+    def n_points(self):
+        return self._points.shape[0]
+
+    @property
+    def n_triangles(self):
+        return self._triangles.shape[0]
+
+    @property
+    def refinement(self):
+        """The :class:`Refinement` this mesh came from, or None for an unrefined mesh."""
+        return self._refinement
+
+    def levels(self):
+        """The refinement history, coarsest first and this mesh last."""
+        chain = [self]
+        while chain[-1].refinement is not None:
+            chain.append(chain[-1].refinement.coarse)
+        return chain[::-1]
+
+    def __repr__(self):
+        extra = ""
+        if self._refinement is not None:
+            extra = f", {len(self.levels()) - 1} refinements"
+        return f"Mesh({self.n_points} points, {self.n_triangles} triangles{extra})"
+
+    def unused_points(self):
+        """Points that belong to no triangle, sorted."""
+        if "unused" not in self._cache:
+            used = np.bincount(self._triangles.ravel(), minlength=self.n_points) > 0
+            self._cache["unused"] = _readonly(np.flatnonzero(~used).astype(self._triangles.dtype))
+        return self._cache["unused"]
+
+    def areas(self):
+        """Area of each triangle, shape (n_triangles,)."""
+        if "areas" not in self._cache:
+            self._cache["areas"] = _readonly(
+                0.5 * signed_double_areas(self._points, self._triangles)
+            )
+        return self._cache["areas"]
+
+    # -- topology ---------------------------------------------------------------
+
+    def _triangles_for_topology(self):
+        """Triangles in a dtype wide enough for ``3 * n_triangles`` incidence codes."""
+        dt = index_dtype(self.n_points, 3 * self.n_triangles + 3)
+        return self._triangles if self._triangles.dtype == dt else self._triangles.astype(dt)
+
+    def _incidence(self):
+        if "incidence" not in self._cache:
+            tri = self._triangles_for_topology()
+            ptr = np.empty(self.n_points + 1, dtype=tri.dtype)
+            codes = np.empty(3 * self.n_triangles, dtype=tri.dtype)
+            _topo.incidence(tri, ptr, codes)
+            self._cache["incidence"] = (_readonly(ptr), _readonly(codes))
+        return self._cache["incidence"]
+
+    def _edge_topology(self):
+        if "edges" not in self._cache:
+            tri = self._triangles_for_topology()
+            ptr, codes = self._incidence()
+            counts = np.empty(self.n_points, dtype=ptr.dtype)
+            _topo.pattern_counts(tri, ptr, codes, counts)
+            indptr = np.zeros(self.n_points + 1, dtype=ptr.dtype)
+            np.cumsum(counts, out=indptr[1:])
+            indices = np.empty(int(indptr[-1]), dtype=ptr.dtype)
+            diag = np.empty(self.n_points, dtype=ptr.dtype)
+            none = np.empty(0, dtype=ptr.dtype)
+            _topo.pattern_fill(tri, ptr, codes, indptr, indices, diag, none, none, False)
+            rows = np.repeat(np.arange(self.n_points, dtype=ptr.dtype), counts)
+            keep = indices > rows
+            upper = np.bincount(rows[keep], minlength=self.n_points)
+            first_edge = np.zeros(self.n_points, dtype=ptr.dtype)
+            np.cumsum(upper[:-1], out=first_edge[1:])
+            edges = np.column_stack([rows[keep], indices[keep]]).astype(self._triangles.dtype)
+            tri_edges = _topo.triangle_edges(tri, indptr, indices, diag, first_edge)
+            self._cache["edges"] = _readonly(edges)
+            self._cache["triangle_edges"] = _readonly(tri_edges)
+        return self._cache["edges"], self._cache["triangle_edges"]
+
+    def edges(self):
+        """Unique edges ``(i, j)`` with ``i < j``, sorted, shape (n_edges, 2)."""
+        return self._edge_topology()[0]
+
+    def triangle_edges(self):
+        """Number (row of :meth:`edges`) of the edge opposite each local vertex, shape (n_triangles, 3)."""
+        return self._edge_topology()[1]
+
+    def boundary_edges(self):
+        """Edges that belong to one triangle only, shape (n_boundary_edges, 2).
+
+        Each is oriented as in its triangle, so the domain lies on its left
+        (outer boundaries run counterclockwise, holes clockwise); sorted by
+        first point, then second.
+        """
+        if "boundary_edges" not in self._cache:
+            tri = self._triangles_for_topology()
+            ptr, codes = self._incidence()
+            flags = _topo.boundary_flags(tri, ptr, codes)
+            e = np.flatnonzero(flags)
+            t, a = np.divmod(codes[e], 3)
+            start = self._triangles[t, a]
+            end = self._triangles[t, (a + 1) % 3]
+            order = np.lexsort((end, start))
+            self._cache["boundary_edges"] = _readonly(np.column_stack([start[order], end[order]]))
+        return self._cache["boundary_edges"]
+
+    def boundary_nodes(self):
+        """Points on the boundary, sorted, shape (n_boundary_points,)."""
+        if "boundary_nodes" not in self._cache:
+            self._cache["boundary_nodes"] = _readonly(np.unique(self.boundary_edges()))
+        return self._cache["boundary_nodes"]
+
+    def boundary_length(self):
+        """Total length of the boundary edges."""
+        b = self.boundary_edges()
+        return float(np.linalg.norm(self._points[b[:, 1]] - self._points[b[:, 0]], axis=1).sum())
+
+    def h(self):
+        """Longest edge length in the mesh (the mesh size)."""
+        return float(np.sqrt(_longest_edge_sq(self._points, self._triangles).max()))
+
+    # -- derived meshes ----------------------------------------------------------
+
+    def refine(self):
+        """Uniform refinement: each triangle split into four by its edge midpoints.
+
+        The result is nested: it keeps this mesh's points (same numbers) and
+        appends one point per edge; :attr:`refinement` holds this mesh and, for
+        each new point, the two points of its edge.  The four children of
+        triangle ``t`` are triangles ``4t .. 4t+3``; boundary topology is
+        carried over without recomputation.
+        """
+        from kernels.mesh.refine import refine
+
+        return refine(self)
+
+    def reorder(self, method="rcm"):
+        """Renumber points and triangles for locality; see :func:`kernels.mesh.reorder`."""
+        from kernels.mesh.reorder import reorder
+
+        return reorder(self, method)
+
+    def quality(self):
+        """Angles, areas and aspect ratios; see :class:`kernels.mesh.MeshQuality`."""
+        from kernels.mesh.quality import quality
+
+        return quality(self)
