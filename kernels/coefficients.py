@@ -1,0 +1,312 @@
+"""Coefficients and source terms: what a user may pass, checked once, in one place.
+
+A coefficient (or load) is one of
+
+- ``None`` (the constant 1) or a number;
+- an array of one value per triangle (piecewise constant) or one per point
+  (continuous, piecewise linear between the points);
+- for diffusion, a symmetric positive definite 2x2 tensor, one for all
+  ``(2, 2)`` or one per triangle ``(n_triangles, 2, 2)``;
+- a callable ``c(x, y)`` taking and returning arrays, evaluated at
+  quadrature points.
+
+When a mesh has as many points as triangles a plain array is ambiguous;
+wrap it with :func:`per_node` or :func:`per_triangle`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import numbers
+
+import numpy as np
+
+from kernels.errors import InputError
+from kernels.quadrature import triangle_rule
+
+__all__ = [
+    "Coefficient",
+    "Field",
+    "parse_coefficient",
+    "parse_edge_coefficient",
+    "per_edge",
+    "per_node",
+    "per_triangle",
+]
+
+# Callables are evaluated on this many triangles at a time, to bound the
+# temporaries at (chunk * points per triangle) values.
+_CHUNK = 1 << 18
+
+
+@dataclasses.dataclass(frozen=True)
+class Field:
+    """An array tagged with where its values live: ``on`` is "node", "triangle" or "edge"."""
+
+    values: object
+    on: str
+
+    def __post_init__(self):
+        if self.on not in ("node", "triangle", "edge"):
+            raise InputError(f"a field lives on 'node', 'triangle' or 'edge', not {self.on!r}")
+
+
+def per_node(values):
+    """Mark ``values`` as one per point (piecewise linear)."""
+    return Field(values, "node")
+
+
+def per_triangle(values):
+    """Mark ``values`` as one per triangle (piecewise constant)."""
+    return Field(values, "triangle")
+
+
+def per_edge(values):
+    """Mark ``values`` as one per boundary edge (for boundary terms)."""
+    return Field(values, "edge")
+
+
+@dataclasses.dataclass(frozen=True)
+class Coefficient:
+    """A checked coefficient.
+
+    ``kind`` is ``"constant"`` (value a float), ``"triangle"`` (M,),
+    ``"node"`` (N,), ``"tensor"`` ((2, 2) or (M, 2, 2)) or ``"callable"``.
+    """
+
+    kind: str
+    value: object
+    name: str
+    sign: str
+
+    def evaluate(self, x, y, owners, owner="triangle"):
+        """Values of a callable at points ``(x, y)``, checked; ``owners[k]`` is the
+        triangle (or edge, per ``owner``) that point ``k`` belongs to, for messages."""
+        try:
+            v = self.value(x, y)
+        except Exception as exc:
+            raise InputError(f"{self.name}(x, y) raised {type(exc).__name__}: {exc}") from exc
+        v = np.asarray(v)
+        if v.dtype.kind not in "fiub" or v.dtype.kind == "b":
+            raise InputError(f"{self.name}(x, y) must return real numbers, got dtype {v.dtype}")
+        if v.ndim == 0:
+            v = np.full(x.shape, float(v))
+        if v.shape != x.shape:
+            raise InputError(
+                f"{self.name}(x, y) returned shape {v.shape} for {x.size} points; it must "
+                "return one value per point (use numpy operations on x and y)"
+            )
+        v = v.astype(np.float64, copy=False)
+        bad = _bad_mask(v, self.sign)
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise InputError(
+                f"{self.name}(x, y) is {float(v[k])!r} at ({float(x[k])!r}, {float(y[k])!r}), a quadrature point of "
+                f"{owner} {int(owners[k])}; {_REQUIREMENT[self.sign]}"
+            )
+        return v
+
+
+_REQUIREMENT = {
+    "positive": "it must be positive and finite",
+    "nonnegative": "it must be non-negative and finite",
+    "any": "it must be finite",
+}
+
+
+def _bad_mask(v, sign):
+    bad = ~np.isfinite(v)
+    if sign == "positive":
+        bad |= ~(v > 0)
+    elif sign == "nonnegative":
+        bad |= ~(v >= 0)
+    return bad
+
+
+def _as_real_array(value, name):
+    try:
+        a = np.asarray(value)
+    except Exception as exc:
+        raise InputError(f"{name} cannot be read as an array: {exc}") from None
+    if a.dtype.kind not in "fiu":
+        raise InputError(f"{name} must be real numbers, got dtype {a.dtype}")
+    return np.array(a, dtype=np.float64, copy=True)
+
+
+def _check_values(a, name, sign, where):
+    bad = _bad_mask(a, sign)
+    if bad.any():
+        k = int(np.flatnonzero(bad)[0])
+        raise InputError(
+            f"{name} is {float(a[k])!r} at {where} {k}; {_REQUIREMENT[sign]}"
+            + (f" ({int(bad.sum())} bad values in all)" if bad.sum() > 1 else "")
+        )
+
+
+def _check_tensors(K, name, where):
+    K = K.reshape(-1, 2, 2)
+    if not np.isfinite(K).all():
+        k = int(np.flatnonzero(~np.isfinite(K).all(axis=(1, 2)))[0])
+        raise InputError(f"{name} tensor of {where} {k} is not finite: {K[k].tolist()}")
+    scale = np.abs(K).max(axis=(1, 2))
+    asym = np.abs(K[:, 0, 1] - K[:, 1, 0]) > 1e-12 * scale
+    if asym.any():
+        k = int(np.flatnonzero(asym)[0])
+        raise InputError(f"{name} tensor of {where} {k} is not symmetric: {K[k].tolist()}")
+    det = K[:, 0, 0] * K[:, 1, 1] - K[:, 0, 1] * K[:, 1, 0]
+    notpd = ~((K[:, 0, 0] > 0) & (det > 0))
+    if notpd.any():
+        k = int(np.flatnonzero(notpd)[0])
+        raise InputError(f"{name} tensor of {where} {k} is not positive definite: {K[k].tolist()}")
+
+
+def parse_coefficient(value, mesh, *, name="coefficient", sign="positive", tensor=False):
+    """Check a coefficient against a mesh and return a :class:`Coefficient`.
+
+    ``sign`` is ``"positive"`` (diffusion), ``"nonnegative"`` or ``"any"``
+    (loads).  ``tensor`` allows 2x2 tensors.  Raises :class:`InputError`
+    naming the triangle or point of the first bad value.
+    """
+    if isinstance(value, Coefficient):
+        return value
+    if value is None:
+        return Coefficient("constant", 1.0, name, sign)
+    if isinstance(value, bool):
+        raise InputError(f"{name} must be a number, array or callable, got {value!r}")
+    if callable(value) and not isinstance(value, Field):
+        return Coefficient("callable", value, name, sign)
+    on = None
+    if isinstance(value, Field):
+        on, value = value.on, value.values
+        if on == "edge":
+            raise InputError(f"{name} lives on points or triangles here, not on edges")
+    if isinstance(value, numbers.Real) and on is None:
+        v = float(value)
+        if _bad_mask(np.array([v]), sign)[0]:
+            raise InputError(f"{name} is {v!r}; {_REQUIREMENT[sign]}")
+        return Coefficient("constant", v, name, sign)
+    a = _as_real_array(value, name)
+    n, m = mesh.n_points, mesh.n_triangles
+    if a.ndim == 0 and on is None:
+        return parse_coefficient(float(a), mesh, name=name, sign=sign, tensor=tensor)
+    if a.ndim in (2, 3) and a.shape[-2:] == (2, 2) and on in (None, "triangle"):
+        if not tensor:
+            raise InputError(f"{name} must be scalar here, got a tensor of shape {a.shape}")
+        if a.ndim == 3 and a.shape[0] != m:
+            raise InputError(f"{name} has {a.shape[0]} tensors, but the mesh has {m} triangles")
+        _check_tensors(a, name, "triangle" if a.ndim == 3 else "constant")
+        return Coefficient("tensor", a, name, sign)
+    if a.ndim != 1:
+        raise InputError(
+            f"{name} has shape {a.shape}; expected a number, one value per point ({n},), "
+            f"one per triangle ({m},)" + (", or 2x2 tensors" if tensor else "")
+        )
+    if on is None:
+        if len(a) == n == m:
+            raise InputError(
+                f"{name} has {len(a)} values and the mesh has {n} points and {m} triangles: "
+                "wrap it with kernels.per_node(...) or kernels.per_triangle(...)"
+            )
+        on = "node" if len(a) == n else "triangle" if len(a) == m else None
+    expected = n if on == "node" else m
+    if on is None or len(a) != expected:
+        raise InputError(
+            f"{name} has {len(a)} values, but the mesh has {n} points and {m} triangles"
+        )
+    _check_values(a, name, sign, "point" if on == "node" else "triangle")
+    return Coefficient(on, a, name, sign)
+
+
+def quadrature_points(mesh, degree, start=0, stop=None):
+    """Physical quadrature points of triangles ``start:stop``: x, y of shape (m, Q)."""
+    lam, _ = triangle_rule(degree)
+    tri = mesh.triangles[start:stop]
+    p = mesh.points
+    x = p[tri, 0] @ lam.T
+    y = p[tri, 1] @ lam.T
+    return x, y
+
+
+def at_quadrature(coef, mesh, degree):
+    """Values (M, Q) of a coefficient at the quadrature points of ``triangle_rule(degree)``.
+
+    Callables are evaluated in chunks of triangles; other kinds are
+    interpolated exactly (constant, per triangle, linear per point).
+    """
+    lam, _ = triangle_rule(degree)
+    m = mesh.n_triangles
+    if coef.kind == "constant":
+        return np.full((m, len(lam)), coef.value)
+    if coef.kind == "triangle":
+        return np.repeat(coef.value[:, None], len(lam), axis=1)
+    if coef.kind == "node":
+        return coef.value[mesh.triangles] @ lam.T
+    if coef.kind != "callable":
+        raise InputError(f"{coef.name} of kind {coef.kind} has no pointwise values here")
+    out = np.empty((m, len(lam)))
+    for start in range(0, m, _CHUNK):
+        stop = min(m, start + _CHUNK)
+        x, y = quadrature_points(mesh, degree, start, stop)
+        owner = np.repeat(np.arange(start, stop), len(lam))
+        out[start:stop] = coef.evaluate(x.ravel(), y.ravel(), owner).reshape(x.shape)
+    return out
+
+
+def triangle_means(coef, mesh, degree):
+    """Mean of a scalar coefficient over each triangle: a float or an (M,) array.
+
+    Exact for constants, per-triangle values and per-point (linear) values;
+    by the quadrature rule of ``degree`` for callables.
+    """
+    if coef.kind == "constant":
+        return coef.value
+    if coef.kind == "triangle":
+        return coef.value
+    if coef.kind == "node":
+        return coef.value[mesh.triangles].mean(axis=1)
+    if coef.kind == "callable":
+        _, w = triangle_rule(degree)
+        return at_quadrature(coef, mesh, degree) @ w
+    raise InputError(f"{coef.name} is a tensor; a scalar was expected")
+
+
+def parse_edge_coefficient(value, mesh, n_edges, *, name, sign):
+    """Check a boundary coefficient: a number, per point (N,), per edge (n_edges,) or callable.
+
+    Returns a :class:`Coefficient` whose kind is "constant", "node", "edge" or "callable".
+    """
+    if (
+        value is None
+        or isinstance(value, numbers.Real)
+        or callable(value)
+        and not isinstance(value, Field)
+    ):
+        return parse_coefficient(value, mesh, name=name, sign=sign)
+    on = None
+    if isinstance(value, Field):
+        on, value = value.on, value.values
+        if on == "triangle":
+            raise InputError(f"{name} lives on points or edges, not on triangles")
+    a = _as_real_array(value, name)
+    n = mesh.n_points
+    if a.ndim == 0 and on is None:
+        return parse_coefficient(float(a), mesh, name=name, sign=sign)
+    if a.ndim != 1:
+        raise InputError(
+            f"{name} has shape {a.shape}; expected a number, one value per point ({n},) "
+            f"or one per edge ({n_edges},)"
+        )
+    if on is None:
+        if len(a) == n == n_edges:
+            raise InputError(
+                f"{name} has {len(a)} values and there are {n} points and {n_edges} edges: "
+                "wrap it with kernels.per_node(...) or kernels.per_edge(...)"
+            )
+        on = "node" if len(a) == n else "edge" if len(a) == n_edges else None
+    expected = n if on == "node" else n_edges
+    if on is None or len(a) != expected:
+        raise InputError(
+            f"{name} has {len(a)} values, but there are {n} points and {n_edges} edges"
+        )
+    _check_values(a, name, sign, "point" if on == "node" else "edge")
+    return Coefficient(on, a, name, sign)

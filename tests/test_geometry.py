@@ -1,0 +1,46 @@
+"""Element gradients: the numba kernel against the NumPy version and against the definition."""
+
+import numpy as np
+import pytest
+from conftest import meshes
+from hypothesis import given
+
+import kernels
+from kernels import element_gradients
+
+
+@given(meshes())
+def test_kernel_equals_numpy_version(m):
+    a1, g1 = element_gradients(m.points, m.triangles)
+    a2, g2 = element_gradients(m.points, m.triangles, plain=True)
+    assert np.allclose(a1, a2, rtol=1e-14, atol=0)
+    assert np.allclose(g1, g2, rtol=1e-12, atol=1e-12 * np.abs(g2).max())
+    assert np.allclose(a1, m.areas())
+
+
+@given(meshes())
+def test_gradients_are_those_of_the_barycentric_coordinates(m):
+    # lambda_a(x_b) = delta_ab and lambda_a is linear, so
+    # grad lambda_a . (x_b - x_c) = delta_ab - delta_ac (definition; common practice, no source)
+    _, g = element_gradients(m.points, m.triangles)
+    x = m.points[m.triangles]
+    for a in range(3):
+        for b in range(3):
+            for c in range(3):
+                lhs = np.einsum("mi,mi->m", g[:, a], x[:, b] - x[:, c])
+                assert np.allclose(lhs, float(a == b) - float(a == c), atol=1e-10)
+    assert np.allclose(g.sum(axis=1), 0, atol=1e-9 * np.abs(g).max())
+
+
+def test_unit_right_triangle():
+    # gradients of 1 - x - y, x, y (definition)
+    area, g = element_gradients(np.array([[0.0, 0], [1, 0], [0, 1]]), np.array([[0, 1, 2]]))
+    assert area.tolist() == [0.5]
+    assert g[0].tolist() == [[-1, -1], [1, 0], [0, 1]]
+
+
+def test_bad_arrays_are_refused():
+    with pytest.raises(kernels.InputError, match="shape"):
+        element_gradients(np.zeros((3, 3)), np.array([[0, 1, 2]]))
+    with pytest.raises(kernels.InputError, match="triangle 0 refers to a point outside"):
+        element_gradients(np.zeros((3, 2)), np.array([[0, 1, 3]]))
