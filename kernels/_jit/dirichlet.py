@@ -1,0 +1,44 @@
+"""Reduction of a CSR system to its free rows and columns, with lifting."""
+
+import numpy as np
+from numba import prange
+
+from kernels._jit import jit
+
+
+@jit(parallel=True)
+def reduced_counts(indptr, indices, newindex, free):
+    """Entries of each free row that fall in free columns."""
+    counts = np.zeros(free.size, dtype=indptr.dtype)
+    for r in prange(free.size):
+        i = free[r]
+        c = 0
+        for s in range(indptr[i], indptr[i + 1]):
+            if newindex[indices[s]] >= 0:
+                c += 1
+        counts[r] = c
+    return counts
+
+
+@jit(parallel=True)
+def reduced_fill(indptr, indices, data, newindex, free, g, b, rindptr, rindices, rdata, rb):
+    """Copy the free-free block and form ``rb = b_free - A_free,fixed g_fixed`` row by row.
+
+    ``g`` is a full-length vector holding the prescribed values at fixed
+    points (its other entries are not read).  Column order is kept, so sorted
+    rows stay sorted.
+    """
+    for r in prange(free.size):
+        i = free[r]
+        acc = b[i]
+        pos = rindptr[r]
+        for s in range(indptr[i], indptr[i + 1]):
+            j = indices[s]
+            k = newindex[j]
+            if k >= 0:
+                rindices[pos] = k
+                rdata[pos] = data[s]
+                pos += 1
+            else:
+                acc -= data[s] * g[j]
+        rb[r] = acc
