@@ -1,0 +1,219 @@
+"""Raw-array sparse kernels: CSR products, chunked dot products, fused CG updates.
+
+Every kernel gives the same bits on any number of threads:
+
+* a CSR product owns each output row and sums the row in storage order;
+* a dot product splits the vectors into chunks of ``CHUNK`` entries (a
+  constant, not a function of the thread count), sums each chunk in a fixed
+  order inside ``prange`` and adds the chunk sums serially in chunk order.
+
+Index arrays may be int32 or int64 (``indptr`` and ``indices`` of one matrix
+share a dtype); numba compiles one version per dtype on first use.  Nothing
+here validates its arguments: the wrappers in ``kernels.krylov`` and
+``kernels.precond`` do.  Arrays named ``out`` or listed as updated in place
+are written; every other argument is only read.
+"""
+
+import numpy as np
+from numba import prange, uint64
+
+from kernels._jit import jit
+
+# Indexing with a signed integer makes numba test for negative indices on every
+# access (Python's wraparound), which costs about a third of an SpMV's time.
+# The wrappers check every index is in range before a kernel runs, so the
+# kernels index with unsigned integers (``uint64(k)``) and skip that test.
+
+__all__ = [
+    "CHUNK",
+    "spmv",
+    "spmv_add",
+    "spmv_dot",
+    "residual",
+    "dot",
+    "cg_step",
+    "cg_step_jacobi",
+    "xpby",
+    "jacobi_apply",
+    "chebyshev_step",
+]
+
+#: Entries per chunk of a dot product.  Fixed so that the summation order,
+#: and hence the bits of the result, never depend on the thread count.
+CHUNK = 4096
+
+
+@jit()
+def _nchunks(n):
+    return (n + CHUNK - 1) // CHUNK
+
+
+@jit()
+def _sum_in_order(partial):
+    s = 0.0
+    for c in range(partial.shape[0]):
+        s += partial[c]
+    return s
+
+
+@jit()
+def _chunk_dot(x, y, lo, hi):
+    # Four independent accumulators in a fixed pattern: the compiler may keep
+    # them in one vector register (no reassociation needed), the order of the
+    # additions is still fixed by the source.
+    s0 = 0.0
+    s1 = 0.0
+    s2 = 0.0
+    s3 = 0.0
+    m = (hi - lo) // 4
+    for b in range(m):
+        j = uint64(lo + 4 * b)
+        s0 += x[j] * y[j]
+        s1 += x[j + uint64(1)] * y[j + uint64(1)]
+        s2 += x[j + uint64(2)] * y[j + uint64(2)]
+        s3 += x[j + uint64(3)] * y[j + uint64(3)]
+    for i in range(lo + 4 * m, hi):
+        j = uint64(i)
+        s0 += x[j] * y[j]
+    return (s0 + s1) + (s2 + s3)
+
+
+@jit()
+def _row_dot(indptr, indices, data, x, i):
+    # Row i of A times x, summed in storage order.
+    s = 0.0
+    for k in range(uint64(indptr[i]), uint64(indptr[i + 1])):
+        s += data[k] * x[uint64(indices[k])]
+    return s
+
+
+@jit(parallel=True)
+def dot(x, y):
+    """``x . y`` over fixed chunks; the same bits on any thread count."""
+    n = x.shape[0]
+    nchunks = _nchunks(n)
+    partial = np.empty(nchunks)
+    for c in prange(nchunks):
+        lo = c * CHUNK
+        hi = min(lo + CHUNK, n)
+        partial[c] = _chunk_dot(x, y, lo, hi)
+    return _sum_in_order(partial)
+
+
+@jit(parallel=True)
+def spmv(indptr, indices, data, x, out):
+    """``out = A @ x`` for A in CSR; each row summed in storage order."""
+    for i in prange(out.shape[0]):
+        out[i] = _row_dot(indptr, indices, data, x, i)
+
+
+@jit(parallel=True)
+def spmv_add(indptr, indices, data, x, out):
+    """``out += A @ x`` for A in CSR (``out`` updated in place)."""
+    for i in prange(out.shape[0]):
+        out[i] += _row_dot(indptr, indices, data, x, i)
+
+
+@jit(parallel=True)
+def residual(indptr, indices, data, x, b, out):
+    """``out = b - A @ x`` for A in CSR."""
+    for i in prange(out.shape[0]):
+        out[i] = b[i] - _row_dot(indptr, indices, data, x, i)
+
+
+@jit(parallel=True)
+def spmv_dot(indptr, indices, data, x, out):
+    """``out = A @ x`` and return ``x . out`` in the same pass (A square, CSR).
+
+    Rows are grouped in the same fixed chunks as :func:`dot`, so the returned
+    value has the same bits on any thread count.
+    """
+    n = out.shape[0]
+    nchunks = _nchunks(n)
+    partial = np.empty(nchunks)
+    for c in prange(nchunks):
+        lo = c * CHUNK
+        hi = min(lo + CHUNK, n)
+        acc = 0.0
+        for i in range(lo, hi):
+            s = _row_dot(indptr, indices, data, x, i)
+            out[i] = s
+            acc += x[i] * s
+        partial[c] = acc
+    return _sum_in_order(partial)
+
+
+@jit(parallel=True)
+def cg_step(alpha, p, q, x, r):
+    """``x += alpha p``, ``r -= alpha q`` in place; return the new ``r . r``."""
+    n = x.shape[0]
+    nchunks = _nchunks(n)
+    partial = np.empty(nchunks)
+    for c in prange(nchunks):
+        lo = c * CHUNK
+        hi = min(lo + CHUNK, n)
+        acc = 0.0
+        for i in range(lo, hi):
+            x[i] += alpha * p[i]
+            ri = r[i] - alpha * q[i]
+            r[i] = ri
+            acc += ri * ri
+        partial[c] = acc
+    return _sum_in_order(partial)
+
+
+@jit(parallel=True)
+def cg_step_jacobi(alpha, p, q, dinv, x, r, z):
+    """As :func:`cg_step`, then ``z = dinv * r``; return ``(r . r, r . z)``.
+
+    ``x``, ``r`` and ``z`` are updated in place.
+    """
+    n = x.shape[0]
+    nchunks = _nchunks(n)
+    prr = np.empty(nchunks)
+    prz = np.empty(nchunks)
+    for c in prange(nchunks):
+        lo = c * CHUNK
+        hi = min(lo + CHUNK, n)
+        arr = 0.0
+        arz = 0.0
+        for i in range(lo, hi):
+            x[i] += alpha * p[i]
+            ri = r[i] - alpha * q[i]
+            r[i] = ri
+            zi = dinv[i] * ri
+            z[i] = zi
+            arr += ri * ri
+            arz += ri * zi
+        prr[c] = arr
+        prz[c] = arz
+    return _sum_in_order(prr), _sum_in_order(prz)
+
+
+@jit(parallel=True)
+def xpby(z, beta, p):
+    """``p = z + beta p`` in place (the CG search-direction update)."""
+    for i in prange(p.shape[0]):
+        p[i] = z[i] + beta * p[i]
+
+
+@jit(parallel=True)
+def jacobi_apply(dinv, r, out):
+    """``out = dinv * r``."""
+    for i in prange(out.shape[0]):
+        out[i] = dinv[i] * r[i]
+
+
+@jit(parallel=True)
+def chebyshev_step(q, dinv, c1, c2, r, d, x):
+    """One step of Jacobi-preconditioned Chebyshev smoothing, in place.
+
+    With ``q = A d`` from the previous direction: ``r -= q``,
+    ``d = c1 d + c2 dinv r``, ``x += d``.
+    """
+    for i in prange(x.shape[0]):
+        ri = r[i] - q[i]
+        r[i] = ri
+        di = c1 * d[i] + c2 * dinv[i] * ri
+        d[i] = di
+        x[i] += di

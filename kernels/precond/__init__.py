@@ -1,0 +1,51 @@
+"""Preconditioners for conjugate gradients, built once and applied many times.
+
+:data:`PRECONDITIONERS` lists the registered names:
+
+``none``    identity
+``jacobi``  diagonal scaling
+``ic0``     incomplete Cholesky, zero fill (``modified=True`` for the modified variant)
+``amg-sa``  smoothed-aggregation AMG (PyAMG hierarchy)
+``amg-rs``  classical Ruge-Stuben AMG (PyAMG hierarchy)
+``direct``  sparse LU (SuperLU), refused above a size limit
+``amg``     the AMG variant measured fastest on 2-D Poisson (docs/solvers.md)
+
+:func:`make_preconditioner` builds one; :func:`register_preconditioner` adds
+a user factory.
+"""
+
+from kernels.precond.amg import RugeStubenAMG, SmoothedAggregationAMG
+from kernels.precond.direct import DIRECT_LIMIT, SparseDirect
+from kernels.precond.ichol import IncompleteCholesky
+from kernels.precond.jacobi import Identity, Jacobi
+from kernels.precond.registry import (
+    PRECONDITIONERS,
+    Preconditioner,
+    make_preconditioner,
+    register_preconditioner,
+)
+
+__all__ = [
+    "PRECONDITIONERS",
+    "Preconditioner",
+    "make_preconditioner",
+    "register_preconditioner",
+    "Identity",
+    "Jacobi",
+    "IncompleteCholesky",
+    "SmoothedAggregationAMG",
+    "RugeStubenAMG",
+    "SparseDirect",
+    "DIRECT_LIMIT",
+    "AMG_DEFAULT",
+]
+
+#: The variant ``"amg"`` names: the faster one on 2-D Poisson in bench/test_bench_linear.py.
+AMG_DEFAULT = "amg-rs"
+
+for _factory in (Identity, Jacobi, IncompleteCholesky, SmoothedAggregationAMG, RugeStubenAMG,
+                 SparseDirect):
+    register_preconditioner(_factory.name, _factory)
+register_preconditioner("amg", {"amg-sa": SmoothedAggregationAMG,
+                                "amg-rs": RugeStubenAMG}[AMG_DEFAULT])
+del _factory

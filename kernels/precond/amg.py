@@ -1,0 +1,305 @@
+"""Algebraic multigrid preconditioners on PyAMG hierarchies.
+
+``amg-sa`` builds a smoothed-aggregation hierarchy
+(``pyamg.smoothed_aggregation_solver``), ``amg-rs`` a classical Ruge-Stuben
+one (``pyamg.ruge_stuben_solver``).  One application is one multigrid cycle
+from a zero initial guess, which is a fixed linear operator.  It is
+symmetric because the restriction is the transpose of the prolongation, the
+post-smoother is the adjoint of the pre-smoother and the coarsest solve is
+symmetric; it is positive definite because the cycle converges.  Two
+smoothers keep that symmetry:
+
+``smoother="gauss-seidel"`` (default)
+    PyAMG's symmetric Gauss-Seidel (a forward then a backward sweep) before
+    and after the coarse correction; serial compiled code.
+``smoother="chebyshev"``
+    Jacobi-scaled Chebyshev polynomial of ``degree`` steps, the same
+    polynomial before and after; every product (A, P, R) and vector update
+    runs on this project's parallel kernels.  See docs/solvers.md for when
+    it pays.
+
+The cycle itself is driven here, not by ``MultilevelSolver.aspreconditioner``,
+which also computes the residual norm before and after each cycle (two
+extra fine-level products per application that a preconditioner does not need).
+"""
+
+import numpy as np
+import pyamg
+import scipy.sparse as sp
+
+from kernels._jit import sparse as _k
+from kernels.errors import InputError
+from kernels.precond.registry import Preconditioner, require_csr
+from kernels.sparse import as_csr
+
+__all__ = ["SmoothedAggregationAMG", "RugeStubenAMG"]
+
+_CYCLES = ("V", "W")
+_SMOOTHERS = ("gauss-seidel", "chebyshev")
+# Chebyshev interval as fractions of the estimated largest eigenvalue of
+# D^-1 A: PyAMG's defaults for its own Chebyshev smoother (reference
+# library: pyamg.relaxation.smoothing.setup_chebyshev, lower 1/30, upper 1.1).
+_CHEB_LOWER = 1.0 / 30.0
+_CHEB_UPPER = 1.1
+
+
+def _nbytes(M):
+    if M is None:
+        return 0
+    if sp.issparse(M):
+        M = M.tocsr() if M.format not in ("csr", "csc", "bsr") else M
+        return M.data.nbytes + M.indices.nbytes + M.indptr.nbytes
+    return int(getattr(M, "nbytes", 0))
+
+
+def _lanczos_max(A, dinv, steps=10):
+    """Largest Ritz value of ``D^-1/2 A D^-1/2`` after ``steps`` Lanczos steps (parallel SpMV).
+
+    The start vector comes from a fixed seed, so the setup is reproducible.
+    """
+    n = dinv.shape[0]
+    s = np.sqrt(dinv)
+    v = np.random.default_rng(12345).standard_normal(n)
+    v /= np.sqrt(_k.dot(v, v))
+    v_prev = np.zeros(n)
+    w = np.empty(n)
+    alphas, betas = [], []
+    beta = 0.0
+    for _ in range(min(steps, n)):
+        _k.spmv(*A, s * v, w)
+        w *= s
+        alpha = _k.dot(w, v)
+        alphas.append(alpha)
+        w -= alpha * v
+        w -= beta * v_prev
+        beta = np.sqrt(_k.dot(w, w))
+        if beta <= 1e-12 * abs(alpha):
+            break
+        betas.append(beta)
+        v_prev, v = v, w / beta
+    k = len(alphas)
+    T = np.diag(alphas) + np.diag(betas[: k - 1], 1) + np.diag(betas[: k - 1], -1)
+    return float(np.linalg.eigvalsh(T)[-1])
+
+
+class _ChebyshevLevel:
+    """One level's arrays for the parallel cycle: A, P, R in CSR, 1/diag(A), coefficients."""
+
+    def __init__(self, level, degree):
+        A = as_csr(level.A, "level A")
+        self.A = (A.indptr, A.indices, A.data)
+        self.P = self._csr(level.P) if hasattr(level, "P") else None
+        self.R = self._csr(level.R) if hasattr(level, "R") else None
+        self.n = A.shape[0]
+        d = A.diagonal()
+        if not (d > 0).all():
+            row = int(np.argmax(~(d > 0)))
+            raise InputError(f"amg chebyshev smoother: diagonal entry of row {row} of a "
+                             f"coarse level is {d[row]}; it must be > 0")
+        self.dinv = 1.0 / d
+        # Gershgorin's bound on the spectrum of D^-1 A is guaranteed; Lanczos is tighter.
+        gershgorin = float(np.max(abs(A).sum(axis=1) * self.dinv))
+        upper = min(_CHEB_UPPER * _lanczos_max(self.A, self.dinv), gershgorin)
+        rho = upper / _CHEB_UPPER
+        lower = _CHEB_LOWER * rho
+        self.theta = 0.5 * (upper + lower)
+        self.delta = 0.5 * (upper - lower)
+        self.dinv_over_theta = self.dinv / self.theta
+        self.degree = degree
+
+    @staticmethod
+    def _csr(M):
+        C = sp.csr_array(M)
+        used = C.indices[: C.indptr[-1]]
+        if used.size and (used.min() < 0 or used.max() >= C.shape[1]):
+            raise InputError("amg: a transfer operator has a column index out of range")
+        itype = np.result_type(C.indptr.dtype, C.indices.dtype)
+        return (np.ascontiguousarray(C.indptr, dtype=itype),
+                np.ascontiguousarray(C.indices, dtype=itype),
+                np.ascontiguousarray(C.data, dtype=np.float64))
+
+    def smooth(self, x, b, zero_guess, r, d, q):
+        """Chebyshev smoothing of ``A x = b`` in place; ``r``, ``d``, ``q`` are work vectors."""
+        if zero_guess:
+            r[:] = b
+        else:
+            _k.residual(*self.A, x, b, r)
+        sigma = self.theta / self.delta
+        rho = 1.0 / sigma
+        _k.jacobi_apply(self.dinv_over_theta, r, d)
+        x += d
+        for _ in range(1, self.degree):
+            _k.spmv(*self.A, d, q)
+            rho_new = 1.0 / (2.0 * sigma - rho)
+            _k.chebyshev_step(q, self.dinv, rho_new * rho, 2.0 * rho_new / self.delta, r, d, x)
+            rho = rho_new
+
+
+class _AMG(Preconditioner):
+    """Shared driver: setup through a PyAMG solver function, cycle with either smoother."""
+
+    solver = None  # the pyamg function
+    kind = "?"
+
+    def __init__(self, A, cycle, smoother, degree, options):
+        C = require_csr(A, self.name)
+        if cycle not in _CYCLES:
+            raise InputError(f"{self.name}: cycle must be one of {_CYCLES} (symmetric cycles), "
+                             f"got {cycle!r}")
+        if smoother not in _SMOOTHERS:
+            raise InputError(f"{self.name}: smoother must be one of {_SMOOTHERS}, "
+                             f"got {smoother!r}")
+        if isinstance(degree, bool) or not isinstance(degree, (int, np.integer)) or degree < 1:
+            raise InputError(f"{self.name}: degree must be an integer >= 1, got {degree!r}")
+        super().__init__(C.shape[0])
+        try:
+            self.ml = type(self).solver(C, **options)
+        except (ValueError, TypeError) as exc:
+            raise InputError(f"{self.name}: pyamg rejected the options ({exc})") from None
+        self.cycle = cycle
+        self.smoother = smoother
+        self.degree = int(degree)
+        levels = self.ml.levels
+        self._coarse_A = levels[-1].A
+        self._work = None
+        if smoother == "chebyshev":
+            self._cheb = [_ChebyshevLevel(lv, self.degree) for lv in levels[:-1]]
+            self._work = [(np.empty(c.n), np.empty(c.n), np.empty(c.n)) for c in self._cheb]
+        # The coarsest solve is set up on first use in PyAMG; do it now, in setup.
+        self.ml.coarse_solver(self._coarse_A, np.zeros(self._coarse_A.shape[0]))
+
+    # -- applying ---------------------------------------------------------------
+    def _apply(self, r):
+        if len(self.ml.levels) == 1:
+            return np.asarray(self.ml.coarse_solver(self._coarse_A, r), dtype=np.float64)
+        x = np.zeros_like(r)
+        self._cycle(0, x, r, True)
+        return x
+
+    def _cycle(self, lvl, x, b, zero_guess):
+        if self.smoother == "chebyshev":
+            self._cycle_parallel(lvl, x, b, zero_guess)
+        else:
+            self._cycle_pyamg(lvl, x, b)
+
+    def _coarse(self, lvl, b):
+        """Approximate solution of level ``lvl``'s system from a zero guess."""
+        if lvl == len(self.ml.levels) - 1:
+            return np.asarray(self.ml.coarse_solver(self._coarse_A, b), dtype=np.float64)
+        x = np.zeros_like(b)
+        self._cycle(lvl, x, b, True)
+        if self.cycle == "W":
+            self._cycle(lvl, x, b, False)
+        return x
+
+    def _cycle_pyamg(self, lvl, x, b):
+        level = self.ml.levels[lvl]
+        A = level.A
+        level.presmoother(A, x, b)
+        coarse_b = level.R @ (b - A @ x)
+        x += level.P @ self._coarse(lvl + 1, coarse_b)
+        level.postsmoother(A, x, b)
+
+    def _cycle_parallel(self, lvl, x, b, zero_guess):
+        c = self._cheb[lvl]
+        r, d, q = self._work[lvl]
+        c.smooth(x, b, zero_guess, r, d, q)
+        _k.residual(*c.A, x, b, r)
+        coarse_b = np.empty(c.R[0].shape[0] - 1)
+        _k.spmv(*c.R, r, coarse_b)
+        _k.spmv_add(*c.P, self._coarse(lvl + 1, coarse_b), x)
+        c.smooth(x, b, False, r, d, q)
+
+    # -- describing -------------------------------------------------------------
+    @property
+    def memory_bytes(self):
+        total = 0
+        for lv in self.ml.levels:
+            for attr in ("A", "P", "R"):
+                total += _nbytes(getattr(lv, attr, None))
+        coarse = self.ml.coarse_solver
+        for attr in ("P", "LU", "L"):
+            held = getattr(coarse, attr, None)
+            if isinstance(held, np.ndarray):
+                total += held.nbytes
+            elif isinstance(held, tuple):
+                total += sum(a.nbytes for a in held if isinstance(a, np.ndarray))
+        if self.smoother == "chebyshev":
+            # 1/diag, 1/(theta diag) and three work vectors per level
+            total += sum(5 * c.dinv.nbytes for c in self._cheb)
+        return total
+
+    def _details(self):
+        ml = self.ml
+        sizes = "/".join(str(lv.A.shape[0]) for lv in ml.levels)
+        if self.smoother == "chebyshev":
+            smoothing = f"Chebyshev degree {self.degree} smoothing (parallel kernels)"
+        else:
+            smoothing = "symmetric Gauss-Seidel smoothing (pyamg)"
+        return (f"{len(ml.levels)} levels ({sizes}), operator complexity "
+                f"{ml.operator_complexity():.2f}, grid complexity {ml.grid_complexity():.2f}, "
+                f"{self.cycle}-cycle, {smoothing}")
+
+
+class SmoothedAggregationAMG(_AMG):
+    """Smoothed-aggregation AMG (``pyamg.smoothed_aggregation_solver``) as an SPD preconditioner.
+
+    Parameters
+    ----------
+    A : sparse matrix, shape (n, n)
+        Symmetric positive definite.
+    cycle : {"V", "W"}
+    smoother : {"gauss-seidel", "chebyshev"}
+        See the module docstring.
+    degree : int
+        Chebyshev steps per smoothing (``smoother="chebyshev"`` only).
+    max_levels, max_coarse, strength, aggregate, smooth, coarse_solver
+        Passed to ``pyamg.smoothed_aggregation_solver`` (its defaults apart
+        from these).
+
+    Costs: setup a few fine-level matrix products (operator complexity
+    ~1.1-1.5 for 2-D meshes); one V-cycle ~ (5 to 6) x operator complexity
+    fine-level SpMV equivalents (about 12 bytes and 2 flops per matrix entry each).
+    """
+
+    name = "amg-sa"
+    kind = "smoothed-aggregation AMG (pyamg)"
+    solver = staticmethod(pyamg.smoothed_aggregation_solver)
+
+    def __init__(self, A, *, cycle="V", smoother="gauss-seidel", degree=3, max_levels=10,
+                 max_coarse=10, strength="symmetric", aggregate="standard",
+                 smooth=("jacobi", {"omega": 4.0 / 3.0}), coarse_solver="pinv"):
+        options = {"max_levels": max_levels, "max_coarse": max_coarse, "strength": strength,
+                   "aggregate": aggregate, "smooth": smooth, "coarse_solver": coarse_solver}
+        super().__init__(A, cycle, smoother, degree, options)
+
+
+class RugeStubenAMG(_AMG):
+    """Classical (Ruge-Stuben) AMG (``pyamg.ruge_stuben_solver``) as an SPD preconditioner.
+
+    Parameters
+    ----------
+    A : sparse matrix, shape (n, n)
+        Symmetric positive definite.
+    cycle : {"V", "W"}
+    smoother : {"gauss-seidel", "chebyshev"}
+    degree : int
+        Chebyshev steps per smoothing (``smoother="chebyshev"`` only).
+    max_levels, max_coarse, strength, CF, interpolation, coarse_solver
+        Passed to ``pyamg.ruge_stuben_solver``.
+
+    Costs as for ``amg-sa``; classical coarsening usually gives a larger
+    operator complexity (~1.5-2.5 in 2-D) and fewer iterations.
+    """
+
+    name = "amg-rs"
+    kind = "classical Ruge-Stuben AMG (pyamg)"
+    solver = staticmethod(pyamg.ruge_stuben_solver)
+
+    def __init__(self, A, *, cycle="V", smoother="gauss-seidel", degree=3, max_levels=30,
+                 max_coarse=10, strength=("classical", {"theta": 0.25}),
+                 CF=("RS", {"second_pass": False}), interpolation="classical",
+                 coarse_solver="pinv"):
+        options = {"max_levels": max_levels, "max_coarse": max_coarse, "strength": strength,
+                   "CF": CF, "interpolation": interpolation, "coarse_solver": coarse_solver}
+        super().__init__(A, cycle, smoother, degree, options)

@@ -1,0 +1,262 @@
+"""Conjugate gradients: scipy's calling convention, stopping rule, breakdown, determinism."""
+
+import inspect
+
+import numba
+import numpy as np
+import pytest
+import scipy.sparse as sp
+import scipy.sparse.linalg as sla
+from linear_cases import random_spd
+from pyamg.gallery import poisson
+
+from kernels import krylov
+from kernels._jit import threads
+from kernels.errors import InputError
+from kernels.krylov import BREAKDOWN_MATRIX, BREAKDOWN_PRECONDITIONER, cg, cg_with_history
+from kernels.precond import make_preconditioner
+
+
+def spd_case():
+    return random_spd(80, seed=3, density=0.08)
+
+
+def rhs(n, seed=0):
+    return np.random.default_rng(seed).standard_normal(n)
+
+
+CASES = {
+    "poisson1d": lambda: poisson((40,), format="csr"),
+    "poisson2d": lambda: poisson((12, 12), format="csr"),
+    "random-spd": spd_case,
+    "float32": lambda: poisson((10, 10), format="csr").astype(np.float32),
+}
+
+
+def _operator(A):
+    return sla.aslinearoperator(A.astype(np.float64))
+
+
+SOLVERS = {
+    # name: (how A is passed, how M is built)
+    "cg": (lambda A: A, lambda A: None),
+    "cg-operator": (_operator, lambda A: None),
+    "cg-jacobi": (lambda A: A, lambda A: make_preconditioner(A, "jacobi")),
+    "cg-ic0": (lambda A: A, lambda A: make_preconditioner(A, "ic0")),
+    "cg-dense-M": (lambda A: A, lambda A: np.diag(1.0 / A.diagonal().astype(np.float64))),
+}
+
+
+@pytest.mark.parametrize("solver", SOLVERS)
+@pytest.mark.parametrize("case", CASES)
+def test_solution_matches_spsolve(case, solver):
+    A = CASES[case]()
+    wrap_A, build_M = SOLVERS[solver]
+    b = rhs(A.shape[0])
+    x, info = cg(wrap_A(A), b, rtol=1e-12, M=build_M(A))
+    assert info == 0
+    A64 = A.astype(np.float64)
+    # reference library: scipy (sparse direct solve)
+    ref = sla.spsolve(A64.tocsc(), b)
+    assert np.linalg.norm(x - ref) <= 1e-8 * np.linalg.norm(ref)
+    assert np.linalg.norm(b - A64 @ x) <= 1e-12 * np.linalg.norm(b)
+
+
+@pytest.mark.parametrize("case", ["poisson1d", "poisson2d", "random-spd"])
+def test_iterates_follow_scipy_cg(case):
+    A = CASES[case]()
+    b = rhs(A.shape[0], 1)
+    for k in (1, 3, 7):
+        ours, _ = cg(A, b, rtol=0.0, maxiter=k)
+        # reference library: scipy.sparse.linalg.cg (same recurrence, same iterate x_k)
+        theirs, _ = sla.cg(A, b, rtol=0.0, atol=0.0, maxiter=k)
+        assert np.allclose(ours, theirs, rtol=0, atol=1e-10 * np.linalg.norm(theirs))
+
+
+def test_signature_matches_scipy():
+    # reference library: scipy (the calling convention is copied, keyword-only after x0)
+    ours = inspect.signature(cg)
+    theirs = inspect.signature(sla.cg)
+    assert list(ours.parameters) == list(theirs.parameters)
+    for name, p in ours.parameters.items():
+        assert p.kind == theirs.parameters[name].kind, name
+        assert p.default == theirs.parameters[name].default, name
+
+
+def test_keyword_only_and_no_tol():
+    A = CASES["poisson1d"]()
+    b = rhs(A.shape[0])
+    with pytest.raises(TypeError):
+        cg(A, b, None, 1e-5)  # rtol positionally
+    with pytest.raises(TypeError):
+        cg(A, b, tol=1e-5)
+
+
+def test_maxiter_one_gives_one_callback_and_info_one():
+    A = CASES["poisson2d"]()
+    calls = []
+    x, info = cg(A, rhs(A.shape[0]), maxiter=1, callback=lambda xk: calls.append(xk.copy()))
+    assert info == 1
+    assert len(calls) == 1
+    assert np.array_equal(calls[0], x)
+
+
+def test_callback_once_per_iteration_and_history_length():
+    A = CASES["poisson2d"]()
+    calls = []
+    res = cg_with_history(A, rhs(A.shape[0]), rtol=1e-10, callback=lambda xk: calls.append(1))
+    assert res.info == 0
+    assert len(calls) == res.iterations
+    assert res.residuals.shape == (res.iterations + 1,)
+    assert res.residuals[0] == pytest.approx(np.linalg.norm(rhs(A.shape[0])))
+    assert res.residuals[-1] <= res.tolerance
+
+
+def test_x0_not_modified_and_used():
+    A = CASES["poisson2d"]()
+    b = rhs(A.shape[0])
+    x0 = np.full(A.shape[0], 0.5)
+    keep = x0.copy()
+    x, info = cg(A, b, x0, rtol=1e-10)
+    assert info == 0 and np.array_equal(x0, keep) and x is not x0
+    near = sla.spsolve(A.tocsc(), b) + 1e-9
+    res = cg_with_history(A, b, near, rtol=1e-6)
+    assert res.iterations <= 1
+
+
+def test_zero_rhs_returns_zeros():
+    A = CASES["poisson2d"]()
+    x, info = cg(A, np.zeros(A.shape[0]), x0=np.ones(A.shape[0]))
+    # reference library: scipy (cg returns the zero vector, info 0, for b = 0)
+    assert info == 0 and not x.any()
+
+
+def test_tolerance_is_max_of_rtol_and_atol_on_true_residual():
+    A = CASES["poisson2d"]()
+    b = rhs(A.shape[0])
+    bnorm = np.linalg.norm(b)
+    for rtol, atol in ((1e-6, 0.0), (1e-12, 1e-3 * bnorm), (0.0, 1e-4)):
+        res = cg_with_history(A, b, rtol=rtol, atol=atol)
+        assert res.info == 0
+        assert res.tolerance == max(rtol * bnorm, atol)
+        assert np.linalg.norm(b - A @ res.x) <= max(rtol * bnorm, atol)
+
+
+def test_exact_inverse_converges_in_at_most_three_iterations():
+    A = spd_case()
+    Minv = sla.aslinearoperator(np.linalg.inv(A.toarray()))
+    res = cg_with_history(A, rhs(A.shape[0]), rtol=1e-10, M=Minv)
+    assert res.info == 0 and res.iterations <= 3
+
+
+def test_indefinite_matrix_reports_breakdown():
+    n = 30
+    d = np.linspace(-1.0, 2.0, n)  # indefinite diagonal matrix
+    A = sp.diags_array(d).tocsr()
+    b = np.ones(n)
+    with pytest.warns(RuntimeWarning, match=r"iteration \d+.*A is not positive definite"):
+        x, info = cg(A, b)
+    assert info == BREAKDOWN_MATRIX < 0
+    assert np.isfinite(x).all()
+
+
+def test_non_spd_preconditioner_reports_breakdown():
+    A = CASES["poisson2d"]()
+    M = -sp.eye_array(A.shape[0]).tocsr()
+    with pytest.warns(RuntimeWarning, match="preconditioner M is not positive definite"):
+        x, info = cg(A, rhs(A.shape[0]), M=M)
+    assert info == BREAKDOWN_PRECONDITIONER < 0
+    # indefinite diagonal preconditioner: breaks down once r.z turns non-positive
+    d = np.where(np.arange(A.shape[0]) % 2 == 0, 1.0, -0.3)
+    with pytest.warns(RuntimeWarning, match=r"after iteration \d+: r\.z"):
+        res = cg_with_history(A, rhs(A.shape[0]), M=sp.diags_array(d).tocsr())
+    assert res.info == BREAKDOWN_PRECONDITIONER
+
+
+def test_true_residual_check_prevents_false_convergence():
+    # cond(A) = 1e6 and rtol = 1e-12: the recursive residual falls below the tolerance
+    # while the attainable true residual (~ eps cond) does not (common practice, no source).
+    rng = np.random.default_rng(0)
+    n = 60
+    Q, _ = np.linalg.qr(rng.standard_normal((n, n)))
+    A = (Q * np.logspace(-3, 3, n)) @ Q.T
+    A = sp.csr_array((A + A.T) / 2)
+    b = rng.standard_normal(n)
+    res = cg_with_history(A, b, rtol=1e-12, maxiter=2000)
+    true = np.linalg.norm(b - A @ res.x)
+    assert res.restarts >= 1
+    assert (res.info == 0) == (true <= res.tolerance)
+    assert res.info != 0 and "true residual did not" in res.message
+    # the same matrix with a reachable tolerance converges, verified on the true residual
+    ok = cg_with_history(A, b, rtol=1e-8, maxiter=2000)
+    assert ok.info == 0 and np.linalg.norm(b - A @ ok.x) <= ok.tolerance
+
+
+def test_other_sparse_formats_converted_without_modifying_input():
+    A = CASES["poisson2d"]().tocoo()
+    data = A.data.copy()
+    b = rhs(A.shape[0])
+    x, info = cg(A, b, rtol=1e-10)
+    assert info == 0 and A.format == "coo" and np.array_equal(A.data, data)
+
+
+@pytest.mark.skipif(numba.config.NUMBA_NUM_THREADS < 2, reason="needs 2 numba threads")
+@pytest.mark.parametrize("precond", ["none", "jacobi", "ic0"])
+def test_whole_solve_identical_bits_on_one_and_two_threads(precond):
+    A = poisson((90, 90), format="csr")  # 8100 unknowns: several chunks per thread
+    b = rhs(A.shape[0], 4)
+    M = make_preconditioner(A, precond)
+    runs = []
+    for nt in (1, 2):
+        with threads(nt):
+            runs.append(cg_with_history(A, b, rtol=1e-8, M=M))
+    assert runs[0].iterations == runs[1].iterations
+    assert np.array_equal(runs[0].x, runs[1].x)
+    assert np.array_equal(runs[0].residuals, runs[1].residuals)
+
+
+def test_bad_inputs_raise_clear_errors():
+    A = CASES["poisson1d"]()
+    n = A.shape[0]
+    b = rhs(n)
+    bad = b.copy()
+    bad[7] = np.nan
+    with pytest.raises(InputError, match=r"b\[7\] is nan"):
+        cg(A, bad)
+    x0 = np.zeros(n)
+    x0[3] = np.inf
+    with pytest.raises(InputError, match=r"x0\[3\] is inf"):
+        cg(A, b, x0)
+    with pytest.raises(InputError, match="shape"):
+        cg(A, b[:-1])
+    with pytest.raises(InputError, match="square"):
+        cg(sp.csr_array(np.ones((3, 4))), np.ones(3))
+    with pytest.raises(InputError, match="M has shape"):
+        cg(A, b, M=sp.eye_array(n + 1))
+    with pytest.raises(InputError, match="rtol"):
+        cg(A, b, rtol=-1.0)
+    with pytest.raises(InputError, match="atol"):
+        cg(A, b, atol=float("nan"))
+    with pytest.raises(InputError, match="maxiter"):
+        cg(A, b, maxiter=0)
+    with pytest.raises(InputError, match="callback"):
+        cg(A, b, callback=3)
+    with pytest.raises(InputError, match="complex"):
+        cg(A.astype(complex), b)
+    nan_A = A.copy()
+    nan_A.data[4] = np.inf
+    with pytest.raises(InputError, match="non-finite entry inf at row"):
+        cg(nan_A, b)
+
+
+def test_module_exports():
+    assert set(krylov.__all__) == {"cg", "cg_with_history", "CGResult", "BREAKDOWN_MATRIX",
+                                   "BREAKDOWN_PRECONDITIONER"}
+
+
+def test_identity_preconditioner_is_plain_cg():
+    A = CASES["poisson2d"]()
+    b = rhs(A.shape[0])
+    plain = cg_with_history(A, b, rtol=1e-10)
+    ident = cg_with_history(A, b, rtol=1e-10, M=make_preconditioner(A, "none"))
+    assert np.array_equal(plain.x, ident.x) and plain.iterations == ident.iterations

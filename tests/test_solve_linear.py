@@ -1,0 +1,127 @@
+"""solve(): every preconditioner against scipy's direct solve; never a silent wrong answer."""
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+import scipy.sparse.linalg as sla
+from linear_cases import random_spd
+from pyamg.gallery import poisson
+
+from kernels.errors import ConvergenceError, InputError
+from kernels.precond import PRECONDITIONERS, make_preconditioner
+from kernels.solve import SolveResult, solve
+
+
+def spd_case():
+    return random_spd(70, seed=8, density=0.08)
+
+
+CASES = {
+    "poisson1d": lambda: poisson((50,), format="csr"),
+    "poisson2d": lambda: poisson((14, 13), format="csr"),
+    "random-spd": spd_case,
+    "float32": lambda: poisson((9, 9), format="csr").astype(np.float32),
+}
+NAMES = ("none", "jacobi", "ic0", "amg-sa", "amg-rs", "direct", "amg")
+
+
+@pytest.mark.parametrize("preconditioner", NAMES)
+@pytest.mark.parametrize("case", CASES)
+def test_solution_equals_spsolve(case, preconditioner):
+    A = CASES[case]()
+    b = np.random.default_rng(1).standard_normal(A.shape[0])
+    result = solve(A, b, preconditioner=preconditioner, rtol=1e-12)
+    assert isinstance(result, SolveResult)
+    assert result.converged and result.info == 0
+    # reference library: scipy (sparse direct solve)
+    ref = sla.spsolve(A.astype(np.float64).tocsc(), b)
+    assert np.linalg.norm(result.x - ref) <= 1e-8 * np.linalg.norm(ref)
+    assert result.residuals.shape == (result.iterations + 1,)
+    assert result.residuals[0] == pytest.approx(np.linalg.norm(b))
+    assert set(result.timings) == {"setup", "solve"}
+    assert all(t >= 0 for t in result.timings.values())
+    assert result.preconditioner.startswith(preconditioner)
+
+
+def test_all_builtin_names_are_covered():
+    assert set(NAMES) <= set(PRECONDITIONERS)
+
+
+def test_default_is_amg_and_tolerance_1e8():
+    A = CASES["poisson2d"]()
+    b = np.ones(A.shape[0])
+    result = solve(A, b)
+    assert result.preconditioner.startswith("amg (= amg-")
+    assert np.linalg.norm(b - A @ result.x) <= 1e-8 * np.linalg.norm(b)
+
+
+def test_preconditioner_instance_and_options():
+    A = CASES["poisson2d"]()
+    b = np.ones(A.shape[0])
+    M = make_preconditioner(A, "ic0", modified=True)
+    result = solve(A, b, preconditioner=M)
+    assert result.converged and result.timings["setup"] == 0.0
+    assert "modified incomplete Cholesky" in result.preconditioner
+    optioned = solve(A, b, preconditioner="amg-rs", cycle="W", max_levels=3)
+    assert optioned.converged and "W-cycle" in optioned.preconditioner
+    with pytest.raises(InputError, match="options .*cycle.* given with a preconditioner instance"):
+        solve(A, b, preconditioner=M, cycle="V")
+    with pytest.raises(InputError, match="unknown option 'smoothing'"):
+        solve(A, b, preconditioner="amg-sa", smoothing=2)
+    with pytest.raises(InputError, match="unknown preconditioner 'no-such-thing'"):
+        solve(A, b, preconditioner="no-such-thing")
+    with pytest.raises(InputError, match="name or a LinearOperator"):
+        solve(A, b, preconditioner=3)
+
+
+def test_matrix_free_operator_with_none():
+    A = CASES["poisson2d"]()
+    b = np.ones(A.shape[0])
+    result = solve(sla.aslinearoperator(A), b, preconditioner="none")
+    assert result.converged
+    assert np.allclose(result.x, sla.spsolve(A.tocsc(), b))  # reference library: scipy
+
+
+def test_non_convergence_warns_or_raises():
+    A = CASES["poisson2d"]()
+    b = np.ones(A.shape[0])
+    with pytest.warns(RuntimeWarning, match="not converged after 3 iterations"):
+        result = solve(A, b, preconditioner="none", maxiter=3)
+    assert not result.converged and result.info == 3 and result.iterations == 3
+    assert np.linalg.norm(b - A @ result.x) > 1e-8 * np.linalg.norm(b)
+    with pytest.raises(ConvergenceError, match="not converged after 3 iterations"):
+        solve(A, b, preconditioner="none", maxiter=3, check=True)
+
+
+def test_breakdown_is_reported_not_hidden():
+    A = sp.diags_array(np.linspace(-1.0, 2.0, 20)).tocsr()
+    with pytest.warns(RuntimeWarning, match="A is not positive definite"):
+        result = solve(A, np.ones(20), preconditioner="none")
+    assert not result.converged and result.info < 0
+    with pytest.raises(ConvergenceError, match="A is not positive definite"):
+        solve(A, np.ones(20), preconditioner="none", check=True)
+    B = CASES["poisson2d"]()
+    M = sla.aslinearoperator(-sp.eye_array(B.shape[0]))
+    with pytest.raises(ConvergenceError, match="preconditioner M is not positive definite"):
+        solve(B, np.ones(B.shape[0]), preconditioner=M, check=True)
+
+
+def test_x0_and_zero_rhs():
+    A = CASES["poisson2d"]()
+    n = A.shape[0]
+    x0 = np.ones(n)
+    result = solve(A, np.zeros(n), x0=x0, preconditioner="jacobi")
+    assert result.converged and not result.x.any() and result.iterations == 0
+    assert np.array_equal(x0, np.ones(n))
+
+
+def test_bad_inputs():
+    A = CASES["poisson1d"]()
+    b = np.ones(A.shape[0])
+    b[5] = np.nan
+    with pytest.raises(InputError, match=r"b\[5\] is nan"):
+        solve(A, b, preconditioner="jacobi")
+    with pytest.raises(InputError, match="square"):
+        solve(sp.csr_array(np.ones((2, 3))), np.ones(2))
+    with pytest.raises(TypeError):
+        solve(A, np.ones(A.shape[0]), "jacobi")  # keyword-only

@@ -1,0 +1,222 @@
+"""Parallel sparse kernels against scipy/numpy, and bit-identity across thread counts."""
+
+import numba
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from hypothesis import given
+from hypothesis import strategies as st
+from pyamg.gallery import poisson
+
+from kernels._jit import sparse as K
+from kernels._jit import threads
+from kernels.errors import InputError
+from kernels.sparse import as_csr, as_vector, csr_bytes, dot, spmv
+
+EPS = np.finfo(np.float64).eps
+two_threads = pytest.mark.skipif(numba.config.NUMBA_NUM_THREADS < 2,
+                                 reason="needs 2 numba threads")
+
+
+def with_index_dtype(A, dtype):
+    """A copy of CSR ``A`` with both index arrays of ``dtype`` (set directly: scipy's
+    constructor would choose its own)."""
+    B = sp.csr_array(A, copy=True)
+    B.indices = B.indices.astype(dtype)
+    B.indptr = B.indptr.astype(dtype)
+    return B
+
+
+def dot_bound(x, y):
+    # |fl(x.y) - x.y| <= gamma_n sum |x_i y_i|, gamma_n = n u / (1 - n u): Higham,
+    # "Accuracy and Stability of Numerical Algorithms", 2nd ed. 2002, section 3.1.
+    n = len(x)
+    gamma = n * EPS / (1 - n * EPS)
+    return 2 * gamma * float(np.abs(x) @ np.abs(y)) + 1e-300
+
+
+@st.composite
+def csr_matrices(draw, square=False):
+    """Random CSR matrices with empty rows, duplicates and unsorted columns."""
+    n_rows = draw(st.integers(1, 40))
+    n_cols = n_rows if square else draw(st.integers(1, 40))
+    nnz = draw(st.integers(0, 4 * n_rows))
+    seed = draw(st.integers(0, 2**32 - 1))
+    rng = np.random.default_rng(seed)
+    counts = rng.multinomial(nnz, np.full(n_rows, 1.0 / n_rows))
+    indptr = np.concatenate([[0], np.cumsum(counts)])
+    indices = rng.integers(0, n_cols, nnz)  # unsorted within rows, duplicates allowed
+    data = rng.standard_normal(nnz)
+    A = sp.csr_array((data, indices, indptr), shape=(n_rows, n_cols))
+    return A, rng
+
+
+@pytest.mark.parametrize("index_dtype", [np.int32, np.int64], ids=["int32", "int64"])
+def test_spmv_equals_scipy_on_poisson(index_dtype):
+    A = with_index_dtype(poisson((30, 40), format="csr"), index_dtype)
+    x = np.random.default_rng(1).standard_normal(A.shape[0])
+    y = np.empty(A.shape[0])
+    K.spmv(A.indptr, A.indices, A.data, x, y)
+    # reference library: scipy (CSR product A @ x, same row order, so equal bits expected
+    # up to scipy's own summation order: compare to round-off)
+    ref = A @ x
+    assert np.allclose(y, ref, rtol=0, atol=8 * EPS * np.abs(A) @ np.abs(x))
+    assert A.indices.dtype == index_dtype and A.indptr.dtype == index_dtype
+
+
+def test_spmv_int32_and_int64_give_same_bits():
+    A = poisson((25, 25), format="csr")
+    x = np.random.default_rng(2).standard_normal(A.shape[0])
+    y32, y64 = np.empty_like(x), np.empty_like(x)
+    B = with_index_dtype(A, np.int64)
+    K.spmv(A.indptr, A.indices, A.data, x, y32)
+    K.spmv(B.indptr, B.indices, B.data, x, y64)
+    assert np.array_equal(y32, y64)
+
+
+@given(csr_matrices())
+def test_spmv_kernels_match_scipy_on_random_csr(case):
+    A, rng = case
+    x = rng.standard_normal(A.shape[1])
+    b = rng.standard_normal(A.shape[0])
+    ref = A @ x  # reference library: scipy
+    tol = 8 * EPS * (np.abs(A) @ np.abs(x)) + 1e-300
+    for dtype in (np.int32, np.int64):
+        B = with_index_dtype(A, dtype)
+        y = np.empty(A.shape[0])
+        K.spmv(B.indptr, B.indices, B.data, x, y)
+        assert np.all(np.abs(y - ref) <= tol)
+        out = b.copy()
+        K.spmv_add(B.indptr, B.indices, B.data, x, out)
+        assert np.all(np.abs(out - (b + ref)) <= tol + 4 * EPS * np.abs(b))
+        K.residual(B.indptr, B.indices, B.data, x, b, out)
+        assert np.all(np.abs(out - (b - ref)) <= tol + 4 * EPS * np.abs(b))
+
+
+@given(csr_matrices(square=True))
+def test_spmv_dot_matches_product_and_dot(case):
+    A, rng = case
+    x = rng.standard_normal(A.shape[0])
+    q = np.empty_like(x)
+    value = K.spmv_dot(A.indptr, A.indices, A.data, x, q)
+    ref = A @ x  # reference library: scipy
+    assert np.all(np.abs(q - ref) <= 8 * EPS * (np.abs(A) @ np.abs(x)) + 1e-300)
+    assert abs(value - float(x @ q)) <= dot_bound(x, q)
+
+
+@pytest.mark.parametrize("n", [0, 1, 3, 4095, 4096, 4097, 3 * 4096 + 5])
+def test_chunked_dot_equals_numpy_to_roundoff(n):
+    rng = np.random.default_rng(n)
+    x, y = rng.standard_normal(n), rng.standard_normal(n)
+    # reference library: numpy (np.dot), agreement within the dot-product error bound
+    assert abs(K.dot(x, y) - float(np.dot(x, y))) <= dot_bound(x, y)
+
+
+@given(st.integers(0, 20000), st.integers(0, 2**32 - 1))
+def test_dot_is_symmetric_and_matches_numpy(n, seed):
+    rng = np.random.default_rng(seed)
+    x, y = rng.standard_normal(n), rng.standard_normal(n)
+    assert K.dot(x, y) == K.dot(y, x)  # products commute exactly, order is fixed
+    assert abs(K.dot(x, y) - float(np.dot(x, y))) <= dot_bound(x, y)
+
+
+def test_fused_vector_kernels_match_numpy():
+    rng = np.random.default_rng(5)
+    n = 3 * 4096 + 17
+    p, q, x, r = (rng.standard_normal(n) for _ in range(4))
+    dinv = rng.uniform(0.5, 2.0, n)
+    alpha, beta = 0.37, -1.25
+    # plain version: the numpy expressions a user would write
+    x_ref, r_ref = x + alpha * p, r - alpha * q
+    x1, r1 = x.copy(), r.copy()
+    rr = K.cg_step(alpha, p, q, x1, r1)
+    assert np.array_equal(x1, x_ref) and np.array_equal(r1, r_ref)
+    assert abs(rr - r_ref @ r_ref) <= dot_bound(r_ref, r_ref)
+    x2, r2, z2 = x.copy(), r.copy(), np.empty(n)
+    rr2, rz2 = K.cg_step_jacobi(alpha, p, q, dinv, x2, r2, z2)
+    assert np.array_equal(x2, x_ref) and np.array_equal(r2, r_ref)
+    assert np.array_equal(z2, dinv * r_ref)
+    assert rr2 == rr
+    assert abs(rz2 - r_ref @ z2) <= dot_bound(r_ref, z2)
+    p3 = p.copy()
+    K.xpby(q, beta, p3)
+    assert np.array_equal(p3, q + beta * p)
+    out = np.empty(n)
+    K.jacobi_apply(dinv, r, out)
+    assert np.array_equal(out, dinv * r)
+    d, x4, r4 = p.copy(), x.copy(), r.copy()
+    K.chebyshev_step(q, dinv, 0.5, 0.25, r4, d, x4)
+    r_new = r - q
+    d_new = 0.5 * p + 0.25 * dinv * r_new
+    assert np.array_equal(r4, r_new)
+    assert np.allclose(d, d_new, rtol=4 * EPS, atol=0)
+    assert np.allclose(x4, x + d, rtol=4 * EPS, atol=4 * EPS)
+
+
+@two_threads
+def test_one_and_two_threads_give_identical_bits():
+    A = poisson((120, 120), format="csr")  # 14400 rows: several chunks per thread
+    rng = np.random.default_rng(7)
+    x, y = rng.standard_normal(A.shape[0]), rng.standard_normal(A.shape[0])
+    out = {}
+    for nt in (1, 2):
+        with threads(nt):
+            q = np.empty_like(x)
+            K.spmv(A.indptr, A.indices, A.data, x, q)
+            q2 = np.empty_like(x)
+            pq = K.spmv_dot(A.indptr, A.indices, A.data, x, q2)
+            xx, rr_ = x.copy(), y.copy()
+            rr = K.cg_step(0.3, y, q, xx, rr_)
+            out[nt] = (q, pq, K.dot(x, y), rr, xx, rr_)
+    for a, b in zip(out[1], out[2], strict=True):
+        assert np.array_equal(a, b)
+
+
+def test_public_spmv_and_dot_wrappers():
+    A = poisson((7, 5), format="coo")  # another format: converted once
+    x = np.arange(35.0)
+    assert np.allclose(spmv(A, x), A.tocsr() @ x)  # reference library: scipy
+    out = np.empty(35)
+    assert spmv(A, x, out=out) is out
+    assert dot(x, x) == pytest.approx(float(x @ x), rel=1e-15)
+    assert csr_bytes(A.tocsr()) == A.nnz * 12 + 36 * 4 + 2 * 35 * 8
+
+
+def test_as_csr_converts_without_modifying_input():
+    A = poisson((4, 4), format="csr").astype(np.float32)
+    before = (A.data.copy(), A.indices.copy(), A.indptr.copy())
+    C = as_csr(A)
+    assert C.dtype == np.float64 and C is not A
+    assert A.dtype == np.float32
+    for old, new in zip(before, (A.data, A.indices, A.indptr), strict=True):
+        assert np.array_equal(old, new)
+    mixed = poisson((4, 4), format="csr")
+    mixed.indptr = mixed.indptr.astype(np.int64)
+    C = as_csr(mixed)
+    assert C.indices.dtype == C.indptr.dtype == np.int64
+    assert mixed.indices.dtype == np.int32
+
+
+def test_bad_matrices_are_refused_with_the_place_named():
+    with pytest.raises(InputError, match="square"):
+        as_csr(sp.csr_array(np.ones((2, 3))))
+    with pytest.raises(InputError, match="sparse"):
+        as_csr([[1.0]])
+    A = poisson((3, 3), format="csr")
+    A.data[A.indptr[4] + 1] = np.nan
+    with pytest.raises(InputError, match=r"row 4, column \d"):
+        as_csr(A)
+    B = poisson((3, 3), format="csr")
+    B.indices[5] = 99
+    with pytest.raises(InputError, match="outside 0..8"):
+        as_csr(B)
+    with pytest.raises(InputError, match="complex"):
+        as_csr(poisson((3,), format="csr").astype(complex))
+
+
+def test_bad_vectors_are_refused_with_the_index_named():
+    with pytest.raises(InputError, match=r"b\[2\] is inf"):
+        as_vector(np.array([1.0, 2.0, np.inf]), 3, "b")
+    with pytest.raises(InputError, match="shape"):
+        as_vector(np.ones(4), 3, "b")
+    assert as_vector(np.ones((3, 1), dtype=np.float32), 3, "b").dtype == np.float64
