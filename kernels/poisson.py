@@ -1,0 +1,253 @@
+"""The one-call solve: a mesh and data in, nodal values of the P1 solution out.
+
+Solves ``-div(kappa grad u) + c u = f`` with ``u = g`` on the Dirichlet part
+of the boundary, ``kappa du/dn = h`` (Neumann) and ``kappa du/dn + r u = s``
+(Robin) on the rest.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import resource
+import sys
+import time
+
+import numba
+import numpy as np
+
+from kernels.assembly import (
+    StiffnessAssembler,
+    assemble_boundary_load,
+    assemble_boundary_mass,
+    assemble_load,
+)
+from kernels.assembly.boundary_terms import check_edges
+from kernels.boundary import apply_dirichlet
+from kernels.coefficients import parse_coefficient
+from kernels.errors import InputError
+from kernels.mesh.core import Mesh
+from kernels.solve import solve
+
+__all__ = ["PoissonSolution", "solve_poisson"]
+
+
+@dataclasses.dataclass
+class PoissonSolution:
+    """What :func:`solve_poisson` found.
+
+    Attributes
+    ----------
+    u : ndarray, shape (n_points,)
+        Nodal values (points in no triangle get 0).
+    converged : bool
+    stats : dict
+        ``timings`` per phase (``assemble``, ``boundary``, ``setup``,
+        ``solve``, ``total``, seconds), ``iterations``, ``residuals`` (initial
+        first), ``unknowns``, ``nnz``, ``preconditioner`` (its description),
+        ``threads`` and ``peak_rss_bytes`` (the process's high-water mark).
+    mesh : Mesh
+    """
+
+    u: np.ndarray
+    converged: bool
+    stats: dict
+    mesh: Mesh
+
+    def __repr__(self):
+        s = self.stats
+        return (
+            f"PoissonSolution({s['unknowns']} unknowns, {s['iterations']} iterations, "
+            f"converged={self.converged}, {s['timings']['total']:.3g} s)"
+        )
+
+
+def _peak_rss():
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    return int(peak if sys.platform == "darwin" else peak * 1024)
+
+
+def _dirichlet_nodes(mesh, where):
+    """Points named by ``where``: "boundary", point indices (k,) or edges (k, 2)."""
+    if isinstance(where, str):
+        if where != "boundary":
+            raise InputError(f"dirichlet_on must be 'boundary', nodes or edges, got {where!r}")
+        return mesh.boundary_nodes().astype(np.int64)
+    w = np.asarray(where)
+    if w.ndim == 2:
+        return np.unique(check_edges(mesh, w))
+    if w.ndim != 1 or (w.size and w.dtype.kind not in "iu"):
+        raise InputError(f"dirichlet_on must be point indices or (k, 2) edges, got {w.dtype} {w.shape}")
+    w = w.astype(np.int64)
+    if w.size and (w.min() < 0 or w.max() >= mesh.n_points):
+        k = int(np.flatnonzero((w < 0) | (w >= mesh.n_points))[0])
+        raise InputError(f"dirichlet_on[{k}] = {w[k]} is outside 0..{mesh.n_points - 1}")
+    return np.unique(w)
+
+
+def _dirichlet_values(mesh, nodes, g):
+    if callable(g):
+        x, y = mesh.points[nodes].T
+        v = np.asarray(g(x, y), dtype=np.float64)
+        v = np.broadcast_to(v, nodes.shape) if v.ndim == 0 else v
+        if v.shape != nodes.shape:
+            raise InputError(f"dirichlet(x, y) returned shape {v.shape} for {nodes.size} points")
+        bad = ~np.isfinite(v)
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise InputError(
+                f"dirichlet(x, y) is {float(v[k])!r} at point {nodes[k]} ({x[k]!r}, {y[k]!r})"
+            )
+        return v
+    v = np.asarray(g)
+    if v.ndim == 0:
+        return np.full(nodes.shape, float(v))
+    if v.shape != (mesh.n_points,):
+        raise InputError(
+            f"dirichlet must be a number, a callable or one value per point ({mesh.n_points},), "
+            f"got shape {v.shape}"
+        )
+    return v[nodes].astype(np.float64)
+
+
+def _free_edges(mesh, fixed):
+    """Boundary edges not on the Dirichlet part (both ends fixed means Dirichlet)."""
+    b = mesh.boundary_edges()
+    is_fixed = np.zeros(mesh.n_points, dtype=bool)
+    is_fixed[fixed] = True
+    return b[~(is_fixed[b[:, 0]] & is_fixed[b[:, 1]])]
+
+
+def solve_poisson(
+    mesh,
+    f=1.0,
+    *,
+    dirichlet=0.0,
+    dirichlet_on=None,
+    coefficient=None,
+    reaction=None,
+    neumann=None,
+    robin=None,
+    preconditioner="amg",
+    rtol=1e-10,
+    atol=0.0,
+    maxiter=None,
+    check=False,
+    quadrature=2,
+    progress=None,
+    **preconditioner_options,
+):
+    """Solve ``-div(kappa grad u) + c u = f`` on a mesh in one call.
+
+    Parameters
+    ----------
+    mesh : Mesh
+    f : number, array or callable
+        The source (see :mod:`kernels.coefficients`).
+    dirichlet : number, (n_points,) array or callable ``g(x, y)``
+        The prescribed value on the Dirichlet points.
+    dirichlet_on : "boundary", point indices or (k, 2) edges, optional
+        Where ``u = g``.  By default the whole boundary, unless ``neumann`` or
+        ``robin`` is given, in which case there are no Dirichlet points
+        unless named here.
+    coefficient : kappa, any kind (tensors allowed); positive.
+    reaction : c, scalar kind, non-negative.
+    neumann : h, or ``(edges, h)``
+        ``kappa du/dn = h``.  Plain ``h`` applies on every boundary edge
+        that is not Dirichlet (an edge is Dirichlet when both its ends are).
+    robin : ``(r, s)`` or ``(edges, r, s)``
+        ``kappa du/dn + r u = s`` with ``r >= 0``.
+    preconditioner, rtol, atol, maxiter, check, **preconditioner_options
+        As in :func:`kernels.solve.solve`.
+    quadrature : int
+        Degree of the rule for callable data.
+    progress : callable, optional
+        ``progress(phase)`` is called as each phase starts ("assemble",
+        "boundary", "solve"), for reporting.
+
+    Returns
+    -------
+    PoissonSolution
+
+    Raises
+    ------
+    InputError
+        Bad data (naming the point, triangle or edge), or a problem with no
+        Dirichlet point, reaction or Robin term (the solution would not be
+        unique).
+
+    Examples
+    --------
+    >>> import kernels
+    >>> sol = kernels.solve_poisson(kernels.mesh.rectangle(32, 32), 1.0)
+    >>> sol.converged, round(float(sol.u.max()), 4)   # the centre value, about 0.0737 in the limit
+    (True, 0.0736)
+    """
+    if not isinstance(mesh, Mesh):
+        raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
+    note = progress or (lambda phase: None)
+    t0 = time.perf_counter()
+    timings = {}
+
+    note("assemble")
+    kappa = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
+    asm = StiffnessAssembler(mesh)
+    A = asm.assemble(kappa, quadrature=quadrature)
+    if reaction is not None:
+        c = parse_coefficient(reaction, mesh, name="reaction", sign="nonnegative")
+        A = A + asm.assemble_mass(c, quadrature=quadrature)
+    b = assemble_load(mesh, f, quadrature=quadrature)
+    timings["assemble"] = time.perf_counter() - t0
+
+    note("boundary")
+    t1 = time.perf_counter()
+    if dirichlet_on is None:
+        dirichlet_on = "boundary" if neumann is None and robin is None else np.empty(0, np.int64)
+    fixed = _dirichlet_nodes(mesh, dirichlet_on)
+    values = _dirichlet_values(mesh, fixed, dirichlet)
+    if neumann is not None:
+        edges, h = neumann if isinstance(neumann, tuple) else (_free_edges(mesh, fixed), neumann)
+        b = b + assemble_boundary_load(mesh, h, edges, quadrature=quadrature)
+    has_robin = False
+    if robin is not None:
+        if not isinstance(robin, tuple) or len(robin) not in (2, 3):
+            raise InputError("robin must be (r, s) or (edges, r, s)")
+        edges, r, s = robin if len(robin) == 3 else (_free_edges(mesh, fixed),) + robin
+        R = assemble_boundary_mass(mesh, r, edges, quadrature=quadrature)
+        has_robin = R.nnz > 0 and R.max() > 0
+        A = A + R
+        b = b + assemble_boundary_load(mesh, s, edges, quadrature=quadrature)
+    if fixed.size == 0 and reaction is None and not has_robin:
+        raise InputError(
+            "no Dirichlet points, reaction or Robin term: the solution is defined only up to "
+            "a constant; fix u somewhere with dirichlet_on=..."
+        )
+    system = apply_dirichlet(A, b, fixed, values)
+    timings["boundary"] = time.perf_counter() - t1
+
+    note("solve")
+    result = solve(
+        system.A,
+        system.b,
+        preconditioner=preconditioner,
+        rtol=rtol,
+        atol=atol,
+        maxiter=maxiter,
+        check=check,
+        **preconditioner_options,
+    )
+    timings["setup"] = result.timings["setup"]
+    timings["solve"] = result.timings["solve"]
+    u = system.expand(result.x)
+    timings["total"] = time.perf_counter() - t0
+    stats = {
+        "timings": timings,
+        "iterations": result.iterations,
+        "residuals": result.residuals,
+        "unknowns": int(system.A.shape[0]),
+        "nnz": int(system.A.nnz),
+        "dirichlet_points": int(fixed.size),
+        "preconditioner": result.preconditioner,
+        "threads": numba.get_num_threads(),
+        "peak_rss_bytes": _peak_rss(),
+    }
+    return PoissonSolution(u=u, converged=result.converged, stats=stats, mesh=mesh)

@@ -1,0 +1,196 @@
+"""The one-call Poisson solve against analytic and published results."""
+
+import numpy as np
+import pytest
+import scipy.sparse.linalg as spla
+from conftest import jittered_mesh
+
+import kernels
+from kernels import norms
+from kernels.mesh import Mesh, disk, rectangle
+from kernels.poisson import solve_poisson
+
+PI = np.pi
+
+
+def sin_sin(x, y):
+    return np.sin(PI * x) * np.sin(PI * y)
+
+
+def grad_sin_sin(x, y):
+    return PI * np.cos(PI * x) * np.sin(PI * y), PI * np.sin(PI * x) * np.cos(PI * y)
+
+
+def test_manufactured_solution_rates():
+    # u = sin(pi x) sin(pi y), -lap u = 2 pi^2 u: P1 errors are O(h^2) in L2 and
+    # O(h) in H1 (P. G. Ciarlet, The Finite Element Method for Elliptic
+    # Problems, 1978, theorems 3.2.2 and 3.2.5)
+    study = norms.convergence_study(
+        rectangle(4, 4),
+        lambda m: solve_poisson(m, lambda x, y: 2 * PI**2 * sin_sin(x, y), quadrature=5),
+        sin_sin,
+        grad_sin_sin,
+        levels=5,
+    )
+    assert 1.95 < study.rates["L2"][-1] < 2.05
+    assert 0.97 < study.rates["H1"][-1] < 1.03
+    assert "rate" in study.table()
+
+
+def test_manufactured_solution_with_variable_coefficient_and_reaction():
+    # kappa = exp(x - y), c = 1 + x: f = -div(kappa grad u) + c u for u = sin sin
+    # (derived by hand; same rates as above, Ciarlet 1978)
+    kappa = lambda x, y: np.exp(x - y)  # noqa: E731
+
+    def f(x, y):
+        ux, uy = grad_sin_sin(x, y)
+        u = sin_sin(x, y)
+        return -kappa(x, y) * (ux - uy - 2 * PI**2 * u) + (1 + x) * u
+
+    study = norms.convergence_study(
+        jittered_mesh(4, 3, jitter=0.2),
+        lambda m: solve_poisson(m, f, coefficient=kappa, reaction=lambda x, y: 1 + x, quadrature=5),
+        sin_sin,
+        grad_sin_sin,
+        levels=4,
+    )
+    assert 1.9 < study.rates["L2"][-1] < 2.1
+    assert 0.95 < study.rates["H1"][-1] < 1.05
+
+
+def test_neumann_and_robin_reproduce_a_linear_solution():
+    # u = 1 + 2x - 3y lies in the P1 space, so Galerkin gives it exactly
+    # (patch test: B. M. Irons and A. Razzaque, 1972) when the boundary data
+    # are integrated exactly.
+    m = jittered_mesh(8, 21)
+    u = lambda x, y: 1 + 2 * x - 3 * y  # noqa: E731
+    b = m.boundary_edges()
+    mid = m.points[b].mean(axis=1)
+    left = b[np.isclose(mid[:, 0], 0)]
+    right = b[np.isclose(mid[:, 0], 1)]
+    top = b[np.isclose(mid[:, 1], 1)]
+    bottom = b[np.isclose(mid[:, 1], 0)]
+    # kappa du/dn with kappa = 2: right +4, top -6, bottom +6
+    others = np.vstack([right, top, bottom])
+    h = np.r_[np.full(len(right), 4.0), np.full(len(top), -6.0), np.full(len(bottom), 6.0)]
+    sol = solve_poisson(
+        m, 0.0, coefficient=2.0, dirichlet=u, dirichlet_on=left,
+        neumann=(others, kernels.per_edge(h)),
+    )
+    assert sol.u == pytest.approx(u(*m.points.T), abs=1e-8)
+    # Robin on the right: kappa du/dn + r u = s with r = 3, s = 4 + 3 u
+    sol = solve_poisson(
+        m, 0.0, coefficient=2.0, dirichlet=u, dirichlet_on=np.vstack([left, top, bottom]),
+        robin=(right, 3.0, lambda x, y: 4 + 3 * u(x, y)),
+    )
+    assert sol.u == pytest.approx(u(*m.points.T), abs=1e-8)
+
+
+@pytest.mark.parametrize("preconditioner", ["none", "jacobi", "ic0", "amg-sa", "amg-rs", "amg", "direct"])
+def test_every_preconditioner_gives_the_direct_solution(preconditioner):
+    m = jittered_mesh(20, 8)
+    kappa = lambda x, y: 1 + 10 * (x > 0.5)  # noqa: E731
+    sol = solve_poisson(m, lambda x, y: np.cos(3 * x) * y, coefficient=kappa,
+                        preconditioner=preconditioner, rtol=1e-12)
+    # reference library: scipy's sparse direct solve of the same system
+    A = kernels.assemble_stiffness(m, kappa)
+    s = kernels.apply_dirichlet(A, kernels.assemble_load(m, lambda x, y: np.cos(3 * x) * y),
+                                m.boundary_nodes())
+    ref = s.expand(spla.spsolve(s.A.tocsc(), s.b))
+    assert sol.converged
+    assert np.linalg.norm(sol.u - ref) <= 1e-8 * np.linalg.norm(ref)
+
+
+def test_smallest_eigenvalue_approaches_two_pi_squared_from_above():
+    # Dirichlet Laplacian on the unit square: lambda_1 = 2 pi^2 (analytic).
+    # Conforming elements give upper bounds, with error O(h^2) (min-max
+    # principle; G. Strang and G. Fix, An Analysis of the Finite Element Method,
+    # 1973, ch. 6).
+    exact = 2 * PI**2
+    values = []
+    for n in (8, 16, 32):
+        m = rectangle(n, n)
+        free = np.setdiff1d(np.arange(m.n_points), m.boundary_nodes())
+        K = kernels.assemble_stiffness(m)[free][:, free]
+        M = kernels.assemble_mass(m)[free][:, free]
+        lam = spla.eigsh(K.tocsc(), k=1, M=M.tocsc(), sigma=0, which="LM")[0][0]
+        values.append(lam)
+    assert all(v > exact for v in values)
+    errors = np.array(values) - exact
+    assert (np.diff(errors) < 0).all()
+    assert 3.5 < errors[1] / errors[2] < 4.5
+
+
+def test_torsion_of_a_square_bar():
+    # Saint-Venant torsion: -lap phi = 2, phi = 0 on the boundary, J = 2 int phi.
+    # Square of side a: J = 0.1406 a^4 (S. Timoshenko and J. N. Goodier, Theory
+    # of Elasticity, 1951, table for rectangular bars).
+    a = 2.0
+    m = rectangle(64, 64, bounds=(-1, 1, -1, 1))
+    sol = solve_poisson(m, 2.0)
+    J = 2 * kernels.assemble_load(m, 1.0) @ sol.u
+    assert J == pytest.approx(0.1406 * a**4, rel=1e-3)
+
+
+def test_torsion_of_a_circular_bar():
+    # Circle of radius r: phi = (r^2 - x^2 - y^2) / 2, J = pi r^4 / 2 exactly
+    # (Timoshenko and Goodier, Theory of Elasticity, 1951).
+    r = 1.5
+    errors = []
+    for n in (8, 16, 32):
+        m = disk(n, radius=r)
+        sol = solve_poisson(m, 2.0)
+        J = 2 * kernels.assemble_load(m, 1.0) @ sol.u
+        errors.append(abs(J - PI * r**4 / 2) / (PI * r**4 / 2))
+    assert errors[-1] < 5e-3
+    assert errors[0] / errors[-1] > 10  # O(h^2): about 16 over two halvings
+
+
+@pytest.mark.parametrize("preconditioner", ["amg", "ic0"])
+def test_jump_and_anisotropy_still_converge(preconditioner):
+    m = rectangle(48, 48)
+    c = m.points[m.triangles].mean(axis=1)
+    jump = np.where(c[:, 0] > 0.5, 1e6, 1.0)
+    aniso = np.array([[100.0, 0.0], [0.0, 1.0]])
+    for coef in (jump, aniso):
+        sol = solve_poisson(m, 1.0, coefficient=coef, preconditioner=preconditioner, rtol=1e-10)
+        s = kernels.apply_dirichlet(kernels.assemble_stiffness(m, coef),
+                                    kernels.assemble_load(m, 1.0), m.boundary_nodes())
+        ref = s.expand(spla.spsolve(s.A.tocsc(), s.b))  # reference library: scipy
+        assert sol.converged
+        assert np.linalg.norm(sol.u - ref) <= 1e-6 * np.linalg.norm(ref)
+
+
+def test_stats_and_non_convergence():
+    m = rectangle(24, 24)
+    sol = solve_poisson(m, 1.0, preconditioner="jacobi")
+    st = sol.stats
+    assert set(st["timings"]) == {"assemble", "boundary", "setup", "solve", "total"}
+    assert st["residuals"][0] == pytest.approx(np.linalg.norm(
+        kernels.apply_dirichlet(kernels.assemble_stiffness(m), kernels.assemble_load(m, 1.0),
+                                m.boundary_nodes()).b))
+    assert len(st["residuals"]) == st["iterations"] + 1
+    assert st["unknowns"] == 23 * 23 and st["threads"] >= 1 and st["peak_rss_bytes"] > 0
+    with pytest.warns(RuntimeWarning, match="not converged"):
+        bad = solve_poisson(m, 1.0, preconditioner="none", maxiter=2)
+    assert not bad.converged
+    with pytest.raises(kernels.ConvergenceError):
+        solve_poisson(m, 1.0, preconditioner="none", maxiter=2, check=True)
+
+
+def test_unused_points_and_bad_input():
+    base = rectangle(6, 6)
+    with pytest.warns(kernels.MeshWarning):
+        m = Mesh(np.r_[base.points, [[4.0, 4.0]]], base.triangles)
+    sol = solve_poisson(m, 1.0)
+    assert sol.u[-1] == 0 and np.isfinite(sol.u).all()
+    with pytest.raises(kernels.InputError, match="no Dirichlet points, reaction or Robin term"):
+        solve_poisson(base, 1.0, neumann=0.0)
+    with pytest.raises(kernels.InputError, match=r"dirichlet\(x, y\) is nan at point"):
+        solve_poisson(base, 1.0, dirichlet=lambda x, y: np.where(x > 0.9, np.nan, 0.0))
+    with pytest.raises(kernels.InputError, match="robin must be"):
+        solve_poisson(base, 1.0, robin=1.0)
+    with pytest.raises(kernels.InputError, match=r"dirichlet_on\[0\] = 99 is outside"):
+        solve_poisson(base, 1.0, dirichlet_on=[99])
+    with pytest.raises(kernels.InputError, match="reaction is -1.0"):
+        solve_poisson(base, 1.0, reaction=-1.0)
