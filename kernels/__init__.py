@@ -9,7 +9,7 @@
 (225, 225)
 """
 
-from kernels import mesh
+from kernels import krylov, mesh, norms
 from kernels._jit import threads
 from kernels.assembly import (
     STRATEGIES,
@@ -25,10 +25,15 @@ from kernels.coefficients import per_edge, per_node, per_triangle
 from kernels.errors import ConvergenceError, InputError, MeshError, MeshWarning
 from kernels.geometry import element_gradients
 from kernels.mesh import Mesh
+from kernels.operators import StiffnessOperator
+from kernels.poisson import PoissonSolution, solve_poisson
+from kernels.precond import PRECONDITIONERS, make_preconditioner, register_preconditioner
+from kernels.solve import SolveResult, solve
 
 __version__ = "0.1.0"
 
 __all__ = [
+    "PRECONDITIONERS",
     "STRATEGIES",
     "ConvergenceError",
     "DirichletSystem",
@@ -36,7 +41,10 @@ __all__ = [
     "Mesh",
     "MeshError",
     "MeshWarning",
+    "PoissonSolution",
+    "SolveResult",
     "StiffnessAssembler",
+    "StiffnessOperator",
     "apply_dirichlet",
     "assemble_boundary_load",
     "assemble_boundary_mass",
@@ -44,9 +52,15 @@ __all__ = [
     "assemble_mass",
     "assemble_stiffness",
     "element_gradients",
+    "krylov",
+    "make_preconditioner",
     "mesh",
+    "norms",
     "per_edge",
     "per_node",
     "per_triangle",
+    "register_preconditioner",
+    "solve",
+    "solve_poisson",
     "threads",
 ]

@@ -1,0 +1,258 @@
+"""Matrix-free stiffness operator: ``A @ x`` without a stored matrix.
+
+Three variants, all race-free and giving the same bits on any thread count
+(see :mod:`kernels._jit.operators`):
+
+``geometry``
+    recomputes each triangle's geometry from the coordinates at every
+    product; stores nothing beyond the mesh but a colouring of blocks
+    (and the coefficient, 8 bytes per triangle when it varies).
+``factors``
+    stores the three off-diagonal element entries per triangle (24 bytes per
+    triangle): no geometry at product time.
+``edges``
+    stores one weight per edge (the cotangent formula summed over the edge's
+    triangles) and the edge list: 16 bytes per edge, about 24 per triangle;
+    the product no longer needs the triangles.
+
+docs/matrix-free.md has the measured speeds; :data:`DEFAULT_VARIANT` is
+the one the benchmark picked.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+
+import numpy as np
+from scipy.sparse.linalg import LinearOperator
+
+from kernels._jit import assembly as _jit_assembly
+from kernels._jit import operators as _jit_ops
+from kernels.assembly.csr import kernel_coefficient
+from kernels.coefficients import parse_coefficient
+from kernels.errors import InputError
+from kernels.mesh.core import Mesh
+
+__all__ = ["StiffnessOperator", "VARIANTS", "DEFAULT_VARIANT"]
+
+VARIANTS = ("geometry", "factors", "edges")
+DEFAULT_VARIANT = "geometry"
+DEFAULT_BLOCK = 256
+
+
+def _colouring(elements, n_points, block_size):
+    """Blocks of one colour, colour by colour: ``(colour_ptr, blocks)``, or None if > 64 colours."""
+    colour = _jit_ops.colour_blocks(elements, n_points, block_size)
+    if colour.size and colour[0] < 0:
+        return None
+    order = np.argsort(colour, kind="stable")
+    counts = np.bincount(colour, minlength=int(colour.max(initial=-1)) + 1)
+    ptr = np.zeros(counts.size + 1, dtype=np.int64)
+    np.cumsum(counts, out=ptr[1:])
+    return ptr, order.astype(np.int64)
+
+
+def _dirichlet_mask(mesh, dirichlet):
+    """Fixed indices: identity rows at ``dirichlet`` and at points in no triangle."""
+    if dirichlet is None:
+        return np.empty(0, dtype=np.int64)
+    d = np.asarray(dirichlet)
+    if d.ndim != 1 or (d.size and d.dtype.kind not in "iu"):
+        raise InputError(f"dirichlet must be a 1-D array of point indices, got {d.dtype} {d.shape}")
+    d = d.astype(np.int64)
+    if d.size and (d.min() < 0 or d.max() >= mesh.n_points):
+        k = int(np.flatnonzero((d < 0) | (d >= mesh.n_points))[0])
+        raise InputError(f"dirichlet[{k}] = {d[k]} is outside 0..{mesh.n_points - 1}")
+    return np.union1d(d, mesh.unused_points().astype(np.int64))
+
+
+class StiffnessOperator(LinearOperator):
+    """The P1 stiffness matrix of a mesh as a scipy ``LinearOperator``, never assembled.
+
+    Parameters
+    ----------
+    mesh : Mesh
+    coefficient : any kind accepted by :func:`kernels.assemble_stiffness`
+    variant : {"geometry", "factors", "edges"}
+    dirichlet : array of point indices, optional
+        With it, the operator is the symmetrically eliminated matrix: identity
+        rows and columns at these points (and at points in no triangle), the
+        stiffness matrix between the others.  The mesh is not copied.
+    quadrature : int
+        Rule for averaging a callable coefficient over each triangle.
+    block_size : int
+        Elements per block of the colouring.
+
+    Examples
+    --------
+    >>> import numpy as np, kernels
+    >>> m = kernels.mesh.rectangle(16, 16)
+    >>> A = kernels.StiffnessOperator(m)
+    >>> x = np.random.default_rng(0).random(m.n_points)
+    >>> bool(np.allclose(A @ x, kernels.assemble_stiffness(m) @ x))
+    True
+    """
+
+    def __init__(
+        self,
+        mesh,
+        coefficient=None,
+        *,
+        variant=DEFAULT_VARIANT,
+        dirichlet=None,
+        quadrature=2,
+        block_size=DEFAULT_BLOCK,
+    ):
+        if not isinstance(mesh, Mesh):
+            raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
+        if variant not in VARIANTS:
+            raise InputError(f"unknown matrix-free variant {variant!r}; choose one of {VARIANTS}")
+        if not isinstance(block_size, int) or block_size < 1:
+            raise InputError(f"block_size must be a positive integer, got {block_size!r}")
+        t0 = time.perf_counter()
+        n = mesh.n_points
+        super().__init__(dtype=np.dtype(np.float64), shape=(n, n))
+        self.mesh = mesh
+        self.variant = variant
+        self.block_size = block_size
+        self.coefficient = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
+        self._quadrature = quadrature
+        self._kc = kernel_coefficient(self.coefficient, mesh, quadrature)
+        self._fixed = _dirichlet_mask(mesh, dirichlet)
+        self._diag = None
+        self._work = None
+        self._serial = False
+        if variant == "edges":
+            edges, tri_edges = mesh.edges(), mesh.triangle_edges()
+            o = self._element_values()[1]
+            self._edges = edges
+            self._weights = np.bincount(
+                tri_edges.ravel(), weights=o.ravel(), minlength=len(edges)
+            )
+            elements = edges
+        else:
+            if variant == "factors":
+                self._ovals = self._element_values()[1]
+            elements = mesh.triangles
+        col = _colouring(elements, n, block_size)
+        if col is None and variant == "geometry":
+            warnings.warn(
+                "matrix-free product: the mesh needs more than 64 colours (a point in very many "
+                "triangles, or a numbering with no locality); products run on one thread. "
+                "Reorder the mesh (Mesh.reorder('hilbert')) to fix this.",
+                RuntimeWarning,
+                stacklevel=2,
+            )
+            self._serial = True
+            col = (np.zeros(1, dtype=np.int64), np.zeros(0, dtype=np.int64))
+        elif col is None:
+            raise InputError(
+                f"the {variant} variant needs a colouring with at most 64 colours; reorder the "
+                "mesh (Mesh.reorder('hilbert')) or use variant='geometry'"
+            )
+        self._colour_ptr, self._blocks = col
+        self.setup_time = time.perf_counter() - t0
+
+    # -- what the operator stores ------------------------------------------------
+
+    def _element_values(self):
+        m = self.mesh
+        d = np.empty((m.n_triangles, 3))
+        o = np.empty((m.n_triangles, 3))
+        _jit_assembly.stiffness_values(m.points, m.triangles, *self._kc, d, o)
+        return d, o
+
+    @property
+    def n_colours(self):
+        return self._colour_ptr.size - 1
+
+    @property
+    def nbytes(self):
+        """Bytes the operator stores beyond the mesh it refers to."""
+        parts = [self._colour_ptr, self._blocks, self._fixed]
+        kappa, _, tensor, _ = self._kc
+        parts += [kappa, tensor]
+        if self.variant == "factors":
+            parts.append(self._ovals)
+        if self.variant == "edges":
+            parts += [self._edges, self._weights]
+        return int(sum(a.nbytes for a in parts))
+
+    def __repr__(self):
+        return (
+            f"StiffnessOperator({self.shape[0]} points, variant={self.variant}, "
+            f"{self.n_colours} colours of {self.block_size}-element blocks, "
+            f"{self.nbytes / 2**20:.1f} MiB stored, {len(self._fixed)} identity rows)"
+        )
+
+    # -- products ------------------------------------------------------------------
+
+    def matvec_into(self, x, out):
+        """``out = A x`` with no allocation; ``x`` must be float64, contiguous, length n."""
+        if self._fixed.size:
+            # identity rows and columns: the product sees x with zeros at fixed
+            # points, then the fixed rows copy x
+            if self._work is None:
+                self._work = np.empty(self.shape[0])
+            _jit_ops.masked_copy(x, self._fixed, self._work)
+            self._product(self._work, out)
+            _jit_ops.identity_rows(self._fixed, x, out)
+        else:
+            self._product(x, out)
+        return out
+
+    def _product(self, x, out):
+        m = self.mesh
+        kappa, ks, tensor, ts = self._kc
+        if self._serial:
+            _jit_ops.serial_geometry(m.points, m.triangles, kappa, ks, tensor, ts, x, out)
+        elif self.variant == "geometry":
+            _jit_ops.apply_geometry(
+                m.points, m.triangles, kappa, ks, tensor, ts, self.block_size,
+                self._colour_ptr, self._blocks, x, out,
+            )
+        elif self.variant == "factors":
+            _jit_ops.apply_factors(
+                m.triangles, self._ovals, self.block_size, self._colour_ptr, self._blocks, x, out
+            )
+        else:
+            _jit_ops.apply_edges(
+                self._edges, self._weights, self.block_size, self._colour_ptr, self._blocks,
+                x, out,
+            )
+
+    def _matvec(self, x):
+        x = np.ascontiguousarray(np.ravel(x), dtype=np.float64)
+        return self.matvec_into(x, np.empty(self.shape[0]))
+
+    def _rmatvec(self, x):
+        return self._matvec(x)  # symmetric
+
+    def serial_matvec(self, x):
+        """The plain version of the product (one thread, no colouring), for testing."""
+        m = self.mesh
+        kappa, ks, tensor, ts = self._kc
+        x = np.ascontiguousarray(np.ravel(x), dtype=np.float64)
+        xm = x.copy()
+        xm[self._fixed] = 0.0
+        y = np.empty(self.shape[0])
+        _jit_ops.serial_geometry(m.points, m.triangles, kappa, ks, tensor, ts, xm, y)
+        y[self._fixed] = x[self._fixed]
+        return y
+
+    def diagonal(self):
+        """The diagonal of the (masked) matrix, without assembling it."""
+        if self._diag is None:
+            d, _ = self._element_values()
+            diag = np.bincount(
+                self.mesh.triangles.ravel(), weights=d.ravel(), minlength=self.shape[0]
+            )
+            diag[self._fixed] = 1.0
+            self._diag = diag
+        return self._diag
+
+    @property
+    def fixed(self):
+        """Points with identity rows (Dirichlet points and points in no triangle)."""
+        return self._fixed
