@@ -107,6 +107,25 @@ class _CSRProduct:
         _k.residual(*self.arrays, x, b, out)
 
 
+class _InPlaceProduct:
+    """Products with an operator that writes into a given array (``matvec_into(x, out)``).
+
+    The matrix-free :class:`kernels.StiffnessOperator` does; CG then
+    allocates nothing per iteration.
+    """
+
+    def __init__(self, op):
+        self.op = op
+
+    def matvec_dot(self, p, q):
+        self.op.matvec_into(p, q)
+        return _k.dot(p, q)
+
+    def residual(self, x, b, out):
+        self.op.matvec_into(x, out)
+        _k.xpby(b, -1.0, out)
+
+
 class _OperatorProduct:
     """Products with any LinearOperator; the result is checked for shape."""
 
@@ -144,6 +163,8 @@ def _operator(A):
         raise InputError(f"A must be square and non-empty, got shape {A.shape}")
     if A.dtype is not None and np.issubdtype(A.dtype, np.complexfloating):
         raise InputError(f"A is complex ({A.dtype}); only real operators are supported")
+    if callable(getattr(A, "matvec_into", None)):
+        return _InPlaceProduct(A), A.shape[0]
     return _OperatorProduct(A, A.shape[0]), A.shape[0]
 
 

@@ -160,7 +160,9 @@ class ConvergenceStudy:
     def table(self):
         """A plain-text table: h, unknowns, each error and its rate."""
         names = list(self.errors)
-        head = f"{'h':>10} {'points':>9}" + "".join(f" {n + ' error':>13} {'rate':>6}" for n in names)
+        head = f"{'h':>10} {'points':>9}" + "".join(
+            f" {n + ' error':>13} {'rate':>6}" for n in names
+        )
         rows = [head]
         for k in range(len(self.h)):
             line = f"{self.h[k]:10.4g} {self.n_points[k]:9d}"

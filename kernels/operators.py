@@ -59,7 +59,9 @@ def _dirichlet_mask(mesh, dirichlet):
         return np.empty(0, dtype=np.int64)
     d = np.asarray(dirichlet)
     if d.ndim != 1 or (d.size and d.dtype.kind not in "iu"):
-        raise InputError(f"dirichlet must be a 1-D array of point indices, got {d.dtype} {d.shape}")
+        raise InputError(
+            f"dirichlet must be a 1-D array of point indices, got {d.dtype} {d.shape}"
+        )
     d = d.astype(np.int64)
     if d.size and (d.min() < 0 or d.max() >= mesh.n_points):
         k = int(np.flatnonzero((d < 0) | (d >= mesh.n_points))[0])
@@ -127,9 +129,7 @@ class StiffnessOperator(LinearOperator):
             edges, tri_edges = mesh.edges(), mesh.triangle_edges()
             o = self._element_values()[1]
             self._edges = edges
-            self._weights = np.bincount(
-                tri_edges.ravel(), weights=o.ravel(), minlength=len(edges)
-            )
+            self._weights = np.bincount(tri_edges.ravel(), weights=o.ravel(), minlength=len(edges))
             elements = edges
         else:
             if variant == "factors":
@@ -202,6 +202,13 @@ class StiffnessOperator(LinearOperator):
             self._product(x, out)
         return out
 
+    def unmasked_matvec(self, x):
+        """``K x`` with the plain stiffness matrix (no identity rows): for lifting boundary values."""
+        x = np.ascontiguousarray(np.ravel(x), dtype=np.float64)
+        out = np.empty(self.shape[0])
+        self._product(x, out)
+        return out
+
     def _product(self, x, out):
         m = self.mesh
         kappa, ks, tensor, ts = self._kc
@@ -209,8 +216,17 @@ class StiffnessOperator(LinearOperator):
             _jit_ops.serial_geometry(m.points, m.triangles, kappa, ks, tensor, ts, x, out)
         elif self.variant == "geometry":
             _jit_ops.apply_geometry(
-                m.points, m.triangles, kappa, ks, tensor, ts, self.block_size,
-                self._colour_ptr, self._blocks, x, out,
+                m.points,
+                m.triangles,
+                kappa,
+                ks,
+                tensor,
+                ts,
+                self.block_size,
+                self._colour_ptr,
+                self._blocks,
+                x,
+                out,
             )
         elif self.variant == "factors":
             _jit_ops.apply_factors(
@@ -218,8 +234,13 @@ class StiffnessOperator(LinearOperator):
             )
         else:
             _jit_ops.apply_edges(
-                self._edges, self._weights, self.block_size, self._colour_ptr, self._blocks,
-                x, out,
+                self._edges,
+                self._weights,
+                self.block_size,
+                self._colour_ptr,
+                self._blocks,
+                x,
+                out,
             )
 
     def _matvec(self, x):
@@ -242,12 +263,24 @@ class StiffnessOperator(LinearOperator):
         return y
 
     def diagonal(self):
-        """The diagonal of the (masked) matrix, without assembling it."""
+        """The diagonal of the (masked) matrix, without assembling it (cached)."""
         if self._diag is None:
-            d, _ = self._element_values()
-            diag = np.bincount(
-                self.mesh.triangles.ravel(), weights=d.ravel(), minlength=self.shape[0]
-            )
+            m = self.mesh
+            diag = np.empty(self.shape[0])
+            if self._serial or self.variant == "edges":
+                # the colouring is of edges or unusable: triangle values, summed in order
+                d, _ = self._element_values()
+                diag = np.bincount(m.triangles.ravel(), weights=d.ravel(), minlength=self.shape[0])
+            else:
+                _jit_ops.diagonal_geometry(
+                    m.points,
+                    m.triangles,
+                    *self._kc,
+                    self.block_size,
+                    self._colour_ptr,
+                    self._blocks,
+                    diag,
+                )
             diag[self._fixed] = 1.0
             self._diag = diag
         return self._diag

@@ -26,6 +26,7 @@ from kernels.boundary import apply_dirichlet
 from kernels.coefficients import parse_coefficient
 from kernels.errors import InputError
 from kernels.mesh.core import Mesh
+from kernels.operators import StiffnessOperator
 from kernels.solve import solve
 
 __all__ = ["PoissonSolution", "solve_poisson"]
@@ -43,7 +44,8 @@ class PoissonSolution:
     stats : dict
         ``timings`` per phase (``assemble``, ``boundary``, ``setup``,
         ``solve``, ``total``, seconds), ``iterations``, ``residuals`` (initial
-        first), ``unknowns``, ``nnz``, ``preconditioner`` (its description),
+        first), ``unknowns``, ``matrix_free``, ``operator_bytes`` (what the
+        system operator stores), ``preconditioner`` (its description),
         ``threads`` and ``peak_rss_bytes`` (the process's high-water mark).
     mesh : Mesh
     """
@@ -76,7 +78,9 @@ def _dirichlet_nodes(mesh, where):
     if w.ndim == 2:
         return np.unique(check_edges(mesh, w))
     if w.ndim != 1 or (w.size and w.dtype.kind not in "iu"):
-        raise InputError(f"dirichlet_on must be point indices or (k, 2) edges, got {w.dtype} {w.shape}")
+        raise InputError(
+            f"dirichlet_on must be point indices or (k, 2) edges, got {w.dtype} {w.shape}"
+        )
     w = w.astype(np.int64)
     if w.size and (w.min() < 0 or w.max() >= mesh.n_points):
         k = int(np.flatnonzero((w < 0) | (w >= mesh.n_points))[0])
@@ -133,6 +137,7 @@ def solve_poisson(
     maxiter=None,
     check=False,
     quadrature=2,
+    matrix_free=None,
     progress=None,
     **preconditioner_options,
 ):
@@ -160,9 +165,16 @@ def solve_poisson(
         As in :func:`kernels.solve.solve`.
     quadrature : int
         Degree of the rule for callable data.
+    matrix_free : bool, optional
+        Solve with the matrix-free :class:`~kernels.StiffnessOperator`
+        instead of an assembled matrix.  Default: True with
+        ``preconditioner="gmg"`` (which needs ``mesh`` made by
+        :meth:`Mesh.refine`) when there is no reaction or Robin term, else
+        False.  Matrix-free solves accept ``"gmg"``, ``"none"`` or an
+        operator as preconditioner.
     progress : callable, optional
-        ``progress(phase)`` is called as each phase starts ("assemble",
-        "boundary", "solve"), for reporting.
+        ``progress(phase)`` is called as each phase starts ("boundary",
+        "assemble", "solve"), for reporting.
 
     Returns
     -------
@@ -188,15 +200,18 @@ def solve_poisson(
     t0 = time.perf_counter()
     timings = {}
 
-    note("assemble")
     kappa = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
-    asm = StiffnessAssembler(mesh)
-    A = asm.assemble(kappa, quadrature=quadrature)
-    if reaction is not None:
-        c = parse_coefficient(reaction, mesh, name="reaction", sign="nonnegative")
-        A = A + asm.assemble_mass(c, quadrature=quadrature)
-    b = assemble_load(mesh, f, quadrature=quadrature)
-    timings["assemble"] = time.perf_counter() - t0
+    if matrix_free is None:
+        matrix_free = preconditioner == "gmg" and reaction is None and robin is None
+    if matrix_free and (reaction is not None or robin is not None):
+        raise InputError(
+            "matrix_free=True supports the stiffness term only (no reaction or robin)"
+        )
+    if matrix_free and isinstance(preconditioner, str) and preconditioner not in ("gmg", "none"):
+        raise InputError(
+            f"preconditioner {preconditioner!r} needs an assembled matrix; with matrix_free=True "
+            "use 'gmg' or 'none'"
+        )
 
     note("boundary")
     t1 = time.perf_counter()
@@ -204,30 +219,58 @@ def solve_poisson(
         dirichlet_on = "boundary" if neumann is None and robin is None else np.empty(0, np.int64)
     fixed = _dirichlet_nodes(mesh, dirichlet_on)
     values = _dirichlet_values(mesh, fixed, dirichlet)
+    b = np.zeros(mesh.n_points)
     if neumann is not None:
         edges, h = neumann if isinstance(neumann, tuple) else (_free_edges(mesh, fixed), neumann)
-        b = b + assemble_boundary_load(mesh, h, edges, quadrature=quadrature)
+        b += assemble_boundary_load(mesh, h, edges, quadrature=quadrature)
     has_robin = False
+    R = None
     if robin is not None:
         if not isinstance(robin, tuple) or len(robin) not in (2, 3):
             raise InputError("robin must be (r, s) or (edges, r, s)")
         edges, r, s = robin if len(robin) == 3 else (_free_edges(mesh, fixed),) + robin
         R = assemble_boundary_mass(mesh, r, edges, quadrature=quadrature)
         has_robin = R.nnz > 0 and R.max() > 0
-        A = A + R
-        b = b + assemble_boundary_load(mesh, s, edges, quadrature=quadrature)
+        b += assemble_boundary_load(mesh, s, edges, quadrature=quadrature)
     if fixed.size == 0 and reaction is None and not has_robin:
         raise InputError(
             "no Dirichlet points, reaction or Robin term: the solution is defined only up to "
             "a constant; fix u somewhere with dirichlet_on=..."
         )
-    system = apply_dirichlet(A, b, fixed, values)
     timings["boundary"] = time.perf_counter() - t1
+
+    note("assemble")
+    t2 = time.perf_counter()
+    b += assemble_load(mesh, f, quadrature=quadrature)
+    if matrix_free:
+        op = StiffnessOperator(mesh, kappa, dirichlet=fixed, quadrature=quadrature)
+        g = np.zeros(mesh.n_points)
+        g[fixed] = values
+        rhs = b - op.unmasked_matvec(g)  # lifting: move the known values to the right
+        rhs[op.fixed] = g[op.fixed]
+        system_A, system_b, expand = op, rhs, (lambda x: x)
+        stored = op.nbytes
+    else:
+        asm = StiffnessAssembler(mesh)
+        A = asm.assemble(kappa, quadrature=quadrature)
+        if reaction is not None:
+            c = parse_coefficient(reaction, mesh, name="reaction", sign="nonnegative")
+            A = A + asm.assemble_mass(c, quadrature=quadrature)
+        if R is not None:
+            A = A + R
+        system = apply_dirichlet(A, b, fixed, values)
+        system_A, system_b, expand = system.A, system.b, system.expand
+        stored = system.A.data.nbytes + system.A.indices.nbytes + system.A.indptr.nbytes
+        if preconditioner == "gmg":
+            preconditioner_options.setdefault("mesh", mesh)
+            preconditioner_options.setdefault("coefficient", kappa)
+            preconditioner_options.setdefault("dirichlet", fixed)
+    timings["assemble"] = time.perf_counter() - t2
 
     note("solve")
     result = solve(
-        system.A,
-        system.b,
+        system_A,
+        system_b,
         preconditioner=preconditioner,
         rtol=rtol,
         atol=atol,
@@ -237,14 +280,16 @@ def solve_poisson(
     )
     timings["setup"] = result.timings["setup"]
     timings["solve"] = result.timings["solve"]
-    u = system.expand(result.x)
+    u = expand(result.x)
     timings["total"] = time.perf_counter() - t0
     stats = {
         "timings": timings,
         "iterations": result.iterations,
         "residuals": result.residuals,
-        "unknowns": int(system.A.shape[0]),
-        "nnz": int(system.A.nnz),
+        "unknowns": int(system_A.shape[0] - (len(op.fixed) if matrix_free else 0)),
+        "nnz": 0 if matrix_free else int(system_A.nnz),
+        "matrix_free": bool(matrix_free),
+        "operator_bytes": int(stored),
         "dirichlet_points": int(fixed.size),
         "preconditioner": result.preconditioner,
         "threads": numba.get_num_threads(),

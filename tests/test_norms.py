@@ -21,7 +21,9 @@ def test_norms_of_simple_functions():
     assert norms.l2_error(m, x, zero) == pytest.approx(np.sqrt(1 / 3))
     grad0 = lambda x, y: (0 * x, 0 * x)  # noqa: E731
     assert norms.h1_seminorm_error(m, x, grad0) == pytest.approx(1.0)
-    assert norms.h1_seminorm_error(m, lin(*m.points.T), lambda x, y: (2 + 0 * x, -1 + 0 * x)) < 1e-12
+    assert (
+        norms.h1_seminorm_error(m, lin(*m.points.T), lambda x, y: (2 + 0 * x, -1 + 0 * x)) < 1e-12
+    )
     assert norms.energy_error(m, x, grad0, 4.0) == pytest.approx(2.0)
     assert norms.energy_error(m, x, grad0, np.diag([9.0, 1.0])) == pytest.approx(3.0)
     assert norms.energy_error(m, x, grad0, lambda x, y: 1 + 0 * x) == pytest.approx(1.0)

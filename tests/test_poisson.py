@@ -49,7 +49,9 @@ def test_manufactured_solution_with_variable_coefficient_and_reaction():
 
     study = norms.convergence_study(
         jittered_mesh(4, 3, jitter=0.2),
-        lambda m: solve_poisson(m, f, coefficient=kappa, reaction=lambda x, y: 1 + x, quadrature=5),
+        lambda m: solve_poisson(
+            m, f, coefficient=kappa, reaction=lambda x, y: 1 + x, quadrature=5
+        ),
         sin_sin,
         grad_sin_sin,
         levels=4,
@@ -74,28 +76,44 @@ def test_neumann_and_robin_reproduce_a_linear_solution():
     others = np.vstack([right, top, bottom])
     h = np.r_[np.full(len(right), 4.0), np.full(len(top), -6.0), np.full(len(bottom), 6.0)]
     sol = solve_poisson(
-        m, 0.0, coefficient=2.0, dirichlet=u, dirichlet_on=left,
+        m,
+        0.0,
+        coefficient=2.0,
+        dirichlet=u,
+        dirichlet_on=left,
         neumann=(others, kernels.per_edge(h)),
     )
     assert sol.u == pytest.approx(u(*m.points.T), abs=1e-8)
     # Robin on the right: kappa du/dn + r u = s with r = 3, s = 4 + 3 u
     sol = solve_poisson(
-        m, 0.0, coefficient=2.0, dirichlet=u, dirichlet_on=np.vstack([left, top, bottom]),
+        m,
+        0.0,
+        coefficient=2.0,
+        dirichlet=u,
+        dirichlet_on=np.vstack([left, top, bottom]),
         robin=(right, 3.0, lambda x, y: 4 + 3 * u(x, y)),
     )
     assert sol.u == pytest.approx(u(*m.points.T), abs=1e-8)
 
 
-@pytest.mark.parametrize("preconditioner", ["none", "jacobi", "ic0", "amg-sa", "amg-rs", "amg", "direct"])
+@pytest.mark.parametrize(
+    "preconditioner", ["none", "jacobi", "ic0", "amg-sa", "amg-rs", "amg", "direct"]
+)
 def test_every_preconditioner_gives_the_direct_solution(preconditioner):
     m = jittered_mesh(20, 8)
     kappa = lambda x, y: 1 + 10 * (x > 0.5)  # noqa: E731
-    sol = solve_poisson(m, lambda x, y: np.cos(3 * x) * y, coefficient=kappa,
-                        preconditioner=preconditioner, rtol=1e-12)
+    sol = solve_poisson(
+        m,
+        lambda x, y: np.cos(3 * x) * y,
+        coefficient=kappa,
+        preconditioner=preconditioner,
+        rtol=1e-12,
+    )
     # reference library: scipy's sparse direct solve of the same system
     A = kernels.assemble_stiffness(m, kappa)
-    s = kernels.apply_dirichlet(A, kernels.assemble_load(m, lambda x, y: np.cos(3 * x) * y),
-                                m.boundary_nodes())
+    s = kernels.apply_dirichlet(
+        A, kernels.assemble_load(m, lambda x, y: np.cos(3 * x) * y), m.boundary_nodes()
+    )
     ref = s.expand(spla.spsolve(s.A.tocsc(), s.b))
     assert sol.converged
     assert np.linalg.norm(sol.u - ref) <= 1e-8 * np.linalg.norm(ref)
@@ -154,8 +172,9 @@ def test_jump_and_anisotropy_still_converge(preconditioner):
     aniso = np.array([[100.0, 0.0], [0.0, 1.0]])
     for coef in (jump, aniso):
         sol = solve_poisson(m, 1.0, coefficient=coef, preconditioner=preconditioner, rtol=1e-10)
-        s = kernels.apply_dirichlet(kernels.assemble_stiffness(m, coef),
-                                    kernels.assemble_load(m, 1.0), m.boundary_nodes())
+        s = kernels.apply_dirichlet(
+            kernels.assemble_stiffness(m, coef), kernels.assemble_load(m, 1.0), m.boundary_nodes()
+        )
         ref = s.expand(spla.spsolve(s.A.tocsc(), s.b))  # reference library: scipy
         assert sol.converged
         assert np.linalg.norm(sol.u - ref) <= 1e-6 * np.linalg.norm(ref)
@@ -166,9 +185,13 @@ def test_stats_and_non_convergence():
     sol = solve_poisson(m, 1.0, preconditioner="jacobi")
     st = sol.stats
     assert set(st["timings"]) == {"assemble", "boundary", "setup", "solve", "total"}
-    assert st["residuals"][0] == pytest.approx(np.linalg.norm(
-        kernels.apply_dirichlet(kernels.assemble_stiffness(m), kernels.assemble_load(m, 1.0),
-                                m.boundary_nodes()).b))
+    assert st["residuals"][0] == pytest.approx(
+        np.linalg.norm(
+            kernels.apply_dirichlet(
+                kernels.assemble_stiffness(m), kernels.assemble_load(m, 1.0), m.boundary_nodes()
+            ).b
+        )
+    )
     assert len(st["residuals"]) == st["iterations"] + 1
     assert st["unknowns"] == 23 * 23 and st["threads"] >= 1 and st["peak_rss_bytes"] > 0
     with pytest.warns(RuntimeWarning, match="not converged"):

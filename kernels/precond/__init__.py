@@ -9,6 +9,7 @@
 ``amg-rs``  classical Ruge-Stuben AMG (PyAMG hierarchy)
 ``direct``  sparse LU (SuperLU), refused above a size limit
 ``amg``     the AMG variant measured fastest on 2-D Poisson (docs/solvers.md)
+``gmg``     geometric multigrid on a mesh's refinement history, matrix-free
 
 :func:`make_preconditioner` builds one; :func:`register_preconditioner` adds
 a user factory.
@@ -16,6 +17,7 @@ a user factory.
 
 from kernels.precond.amg import RugeStubenAMG, SmoothedAggregationAMG
 from kernels.precond.direct import DIRECT_LIMIT, SparseDirect
+from kernels.precond.gmg import GeometricMultigrid
 from kernels.precond.ichol import IncompleteCholesky
 from kernels.precond.jacobi import Identity, Jacobi
 from kernels.precond.registry import (
@@ -36,6 +38,7 @@ __all__ = [
     "SmoothedAggregationAMG",
     "RugeStubenAMG",
     "SparseDirect",
+    "GeometricMultigrid",
     "DIRECT_LIMIT",
     "AMG_DEFAULT",
 ]
@@ -48,4 +51,5 @@ for _factory in (Identity, Jacobi, IncompleteCholesky, SmoothedAggregationAMG, R
     register_preconditioner(_factory.name, _factory)
 register_preconditioner("amg", {"amg-sa": SmoothedAggregationAMG,
                                 "amg-rs": RugeStubenAMG}[AMG_DEFAULT])
+register_preconditioner("gmg", GeometricMultigrid)
 del _factory

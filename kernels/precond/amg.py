@@ -29,6 +29,7 @@ import scipy.sparse as sp
 
 from kernels._jit import sparse as _k
 from kernels.errors import InputError
+from kernels.precond.chebyshev import ChebyshevSmoother
 from kernels.precond.registry import Preconditioner, require_csr
 from kernels.sparse import as_csr
 
@@ -36,13 +37,6 @@ __all__ = ["SmoothedAggregationAMG", "RugeStubenAMG"]
 
 _CYCLES = ("V", "W")
 _SMOOTHERS = ("gauss-seidel", "chebyshev")
-# Chebyshev interval as fractions of the estimated largest eigenvalue of
-# D^-1 A: PyAMG's defaults for its own Chebyshev smoother (reference
-# library: pyamg.relaxation.smoothing.setup_chebyshev, lower 1/30, upper 1.1).
-_CHEB_LOWER = 1.0 / 30.0
-_CHEB_UPPER = 1.1
-
-
 def _nbytes(M):
     if M is None:
         return 0
@@ -50,36 +44,6 @@ def _nbytes(M):
         M = M.tocsr() if M.format not in ("csr", "csc", "bsr") else M
         return M.data.nbytes + M.indices.nbytes + M.indptr.nbytes
     return int(getattr(M, "nbytes", 0))
-
-
-def _lanczos_max(A, dinv, steps=10):
-    """Largest Ritz value of ``D^-1/2 A D^-1/2`` after ``steps`` Lanczos steps (parallel SpMV).
-
-    The start vector comes from a fixed seed, so the setup is reproducible.
-    """
-    n = dinv.shape[0]
-    s = np.sqrt(dinv)
-    v = np.random.default_rng(12345).standard_normal(n)
-    v /= np.sqrt(_k.dot(v, v))
-    v_prev = np.zeros(n)
-    w = np.empty(n)
-    alphas, betas = [], []
-    beta = 0.0
-    for _ in range(min(steps, n)):
-        _k.spmv(*A, s * v, w)
-        w *= s
-        alpha = _k.dot(w, v)
-        alphas.append(alpha)
-        w -= alpha * v
-        w -= beta * v_prev
-        beta = np.sqrt(_k.dot(w, w))
-        if beta <= 1e-12 * abs(alpha):
-            break
-        betas.append(beta)
-        v_prev, v = v, w / beta
-    k = len(alphas)
-    T = np.diag(alphas) + np.diag(betas[: k - 1], 1) + np.diag(betas[: k - 1], -1)
-    return float(np.linalg.eigvalsh(T)[-1])
 
 
 class _ChebyshevLevel:
@@ -96,16 +60,18 @@ class _ChebyshevLevel:
             row = int(np.argmax(~(d > 0)))
             raise InputError(f"amg chebyshev smoother: diagonal entry of row {row} of a "
                              f"coarse level is {d[row]}; it must be > 0")
-        self.dinv = 1.0 / d
+        dinv = 1.0 / d
         # Gershgorin's bound on the spectrum of D^-1 A is guaranteed; Lanczos is tighter.
-        gershgorin = float(np.max(abs(A).sum(axis=1) * self.dinv))
-        upper = min(_CHEB_UPPER * _lanczos_max(self.A, self.dinv), gershgorin)
-        rho = upper / _CHEB_UPPER
-        lower = _CHEB_LOWER * rho
-        self.theta = 0.5 * (upper + lower)
-        self.delta = 0.5 * (upper - lower)
-        self.dinv_over_theta = self.dinv / self.theta
-        self.degree = degree
+        gershgorin = float(np.max(abs(A).sum(axis=1) * dinv))
+        arrays = self.A
+        self.smoother = ChebyshevSmoother(
+            lambda x, out: _k.spmv(*arrays, x, out),
+            lambda x, b, out: _k.residual(*arrays, x, b, out),
+            dinv,
+            degree,
+            bound=gershgorin,
+        )
+        self.dinv = dinv
 
     @staticmethod
     def _csr(M):
@@ -120,19 +86,7 @@ class _ChebyshevLevel:
 
     def smooth(self, x, b, zero_guess, r, d, q):
         """Chebyshev smoothing of ``A x = b`` in place; ``r``, ``d``, ``q`` are work vectors."""
-        if zero_guess:
-            r[:] = b
-        else:
-            _k.residual(*self.A, x, b, r)
-        sigma = self.theta / self.delta
-        rho = 1.0 / sigma
-        _k.jacobi_apply(self.dinv_over_theta, r, d)
-        x += d
-        for _ in range(1, self.degree):
-            _k.spmv(*self.A, d, q)
-            rho_new = 1.0 / (2.0 * sigma - rho)
-            _k.chebyshev_step(q, self.dinv, rho_new * rho, 2.0 * rho_new / self.delta, r, d, x)
-            rho = rho_new
+        self.smoother.smooth(x, b, zero_guess, r, d, q)
 
 
 class _AMG(Preconditioner):

@@ -1,0 +1,102 @@
+"""Jacobi-scaled Chebyshev smoothing on any operator: shared by AMG and geometric multigrid.
+
+The smoother applies the same Chebyshev polynomial in ``D^-1 A`` each
+time, so it is a symmetric operator and keeps a V-cycle symmetric.  It needs
+only products with ``A`` (a CSR matrix through the parallel kernels, or a
+matrix-free operator), ``1 / diag(A)`` and a bound on the largest eigenvalue
+of ``D^-1 A``, estimated here by a few Lanczos steps.
+"""
+
+import numpy as np
+
+from kernels._jit import sparse as _k
+
+__all__ = ["ChebyshevSmoother", "largest_eigenvalue", "LOWER", "UPPER"]
+
+# The interval as fractions of the estimated largest eigenvalue of D^-1 A:
+# PyAMG's defaults for its own Chebyshev smoother (reference library:
+# pyamg.relaxation.smoothing.setup_chebyshev, lower 1/30, upper 1.1).
+LOWER = 1.0 / 30.0
+UPPER = 1.1
+
+
+def largest_eigenvalue(product, dinv, steps=10):
+    """Largest Ritz value of ``D^-1/2 A D^-1/2`` after ``steps`` Lanczos steps.
+
+    ``product(x, out)`` computes ``out = A x``.  The start vector comes from a
+    fixed seed, so the setup is reproducible.
+    """
+    n = dinv.shape[0]
+    s = np.sqrt(dinv)
+    v = np.random.default_rng(12345).standard_normal(n)
+    v /= np.sqrt(_k.dot(v, v))
+    v_prev = np.zeros(n)
+    w = np.empty(n)
+    alphas, betas = [], []
+    beta = 0.0
+    for _ in range(min(steps, n)):
+        product(s * v, w)
+        w *= s
+        alpha = _k.dot(w, v)
+        alphas.append(alpha)
+        w -= alpha * v
+        w -= beta * v_prev
+        beta = np.sqrt(_k.dot(w, w))
+        if beta <= 1e-12 * abs(alpha):
+            break
+        betas.append(beta)
+        v_prev, v = v, w / beta
+    k = len(alphas)
+    T = np.diag(alphas) + np.diag(betas[: k - 1], 1) + np.diag(betas[: k - 1], -1)
+    return float(np.linalg.eigvalsh(T)[-1])
+
+
+class ChebyshevSmoother:
+    """Chebyshev smoothing of ``A x = b`` with ``degree`` products per call.
+
+    Parameters
+    ----------
+    product : callable
+        ``product(x, out)``: ``out = A x``.
+    residual : callable
+        ``residual(x, b, out)``: ``out = b - A x``.
+    dinv : ndarray
+        ``1 / diag(A)``.
+    degree : int
+    bound : float, optional
+        A guaranteed upper bound on the spectrum of ``D^-1 A`` (Gershgorin's,
+        say); the Lanczos estimate times :data:`UPPER` is capped by it.
+    """
+
+    def __init__(self, product, residual, dinv, degree, bound=None):
+        self.product = product
+        self.residual = residual
+        self.dinv = dinv
+        self.degree = int(degree)
+        upper = UPPER * largest_eigenvalue(product, dinv)
+        if bound is not None:
+            upper = min(upper, bound)
+        lower = LOWER * upper / UPPER
+        self.theta = 0.5 * (upper + lower)
+        self.delta = 0.5 * (upper - lower)
+        self.dinv_over_theta = dinv / self.theta
+
+    @property
+    def nbytes(self):
+        return self.dinv.nbytes + self.dinv_over_theta.nbytes
+
+    def smooth(self, x, b, zero_guess, r, d, q):
+        """Smooth ``x`` in place; ``r``, ``d``, ``q`` are work vectors of the same length."""
+        if zero_guess:
+            r[:] = b
+        else:
+            self.residual(x, b, r)
+        sigma = self.theta / self.delta
+        rho = 1.0 / sigma
+        _k.jacobi_apply(self.dinv_over_theta, r, d)
+        x += d
+        for _ in range(1, self.degree):
+            self.product(d, q)
+            rho_new = 1.0 / (2.0 * sigma - rho)
+            _k.chebyshev_step(q, self.dinv, rho_new * rho, 2.0 * rho_new / self.delta, r, d, x)
+            rho = rho_new

@@ -1,0 +1,362 @@
+"""Geometric multigrid on nested refinements, matrix-free: the ``gmg`` preconditioner.
+
+A mesh made by :meth:`kernels.Mesh.refine` remembers its coarser meshes;
+each level gets a matrix-free :class:`~kernels.StiffnessOperator` (with
+identity rows at the Dirichlet points), a Jacobi-scaled Chebyshev (or damped
+Jacobi) smoother built on that operator and its diagonal, and transfers by
+linear interpolation at edge midpoints (prolongation) and its transpose
+(restriction), both matrix-free.  The coarsest level is solved by a sparse
+factorisation of its assembled matrix.
+
+One application is one cycle from a zero guess: a fixed linear operator.
+It is symmetric because the smoother is a polynomial in ``D^-1 A`` (the
+same one before and after the coarse correction), restriction is the
+transpose of prolongation and every coarse correction is a palindrome of
+symmetric cycles (V: one; W: two; F: V, F, V); it is positive definite
+because the cycle converges.  So CG may use it.
+
+Coefficients go down the levels: constants and callables are applied on
+each level as given; per-triangle values are averaged over the four
+children of each coarse triangle; per-point values keep their coarse
+points; per-triangle tensors are averaged.  Jumps in the coefficient that
+the coarse meshes do not resolve make the coarse operators poor
+approximations, and iteration counts grow: then ``amg`` is the better choice
+(see docs/matrix-free.md).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from kernels._jit import multigrid as _mg
+from kernels._jit import sparse as _k
+from kernels.assembly import assemble_stiffness
+from kernels.boundary import apply_dirichlet
+from kernels.coefficients import Coefficient, parse_coefficient
+from kernels.errors import InputError
+from kernels.mesh.core import Mesh
+from kernels.operators import DEFAULT_VARIANT, StiffnessOperator
+from kernels.precond.chebyshev import ChebyshevSmoother
+from kernels.precond.direct import SparseDirect
+from kernels.precond.registry import Preconditioner, make_preconditioner
+
+__all__ = ["GeometricMultigrid", "coarsen_coefficient"]
+
+_CYCLES = ("V", "W", "F")
+_SMOOTHERS = ("chebyshev", "jacobi")
+_COARSE = ("direct", "amg")
+
+NO_HISTORY = (
+    "gmg needs a mesh that remembers how it was refined: build it with Mesh.refine() from a "
+    "coarse mesh (for example kernels.mesh.rectangle(16, 16).refine().refine().refine()), "
+    "or use preconditioner='amg'"
+)
+
+
+def coarsen_coefficient(coef, fine, coarse):
+    """The coefficient of the coarse mesh that ``fine`` was refined from."""
+    if coef.kind in ("constant", "callable"):
+        return coef
+    if coef.kind == "triangle":
+        return Coefficient(
+            "triangle", coef.value.reshape(-1, 4).mean(axis=1), coef.name, coef.sign
+        )
+    if coef.kind == "node":
+        return Coefficient("node", coef.value[: coarse.n_points].copy(), coef.name, coef.sign)
+    if coef.value.ndim == 2:
+        return coef
+    return Coefficient(
+        "tensor", coef.value.reshape(-1, 4, 2, 2).mean(axis=1), coef.name, coef.sign
+    )
+
+
+class _JacobiSmoother:
+    """``steps`` damped Jacobi sweeps ``x += omega D^-1 (b - A x)``; symmetric."""
+
+    def __init__(self, product, residual, dinv, steps, omega):
+        self.residual = residual
+        self.scaled = omega * dinv
+        self.steps = steps
+
+    @property
+    def nbytes(self):
+        return self.scaled.nbytes
+
+    def smooth(self, x, b, zero_guess, r, d, q):
+        for step in range(self.steps):
+            if zero_guess and step == 0:
+                r[:] = b
+            else:
+                self.residual(x, b, r)
+            _k.jacobi_apply(self.scaled, r, d)
+            x += d
+
+
+class _Level:
+    """One level: operator, smoother, work vectors, and the transfer to the next coarser one."""
+
+    def __init__(self, mesh, coef, fixed, variant, smoother, degree, omega, quadrature):
+        self.mesh = mesh
+        self.fixed = fixed
+        self.op = StiffnessOperator(
+            mesh, coef, variant=variant, dirichlet=fixed, quadrature=quadrature
+        )
+        n = mesh.n_points
+        self.r, self.d, self.q = np.empty(n), np.empty(n), np.empty(n)
+        self.x, self.b = np.empty(n), np.empty(n)
+        dinv = 1.0 / self.op.diagonal()
+        if smoother == "chebyshev":
+            self.smoother = ChebyshevSmoother(self.op.matvec_into, self.residual, dinv, degree)
+        else:
+            self.smoother = _JacobiSmoother(
+                self.op.matvec_into, self.residual, dinv, degree, omega
+            )
+        self.transfer = None
+
+    def residual(self, x, b, out):
+        self.op.matvec_into(x, out)
+        _k.xpby(b, -1.0, out)
+
+    def smooth(self, x, b, zero_guess):
+        self.smoother.smooth(x, b, zero_guess, self.r, self.d, self.q)
+
+    def set_transfer(self, refinement):
+        """Index arrays for prolongation from and restriction to the coarser mesh."""
+        e = refinement.edge_points
+        nc = refinement.coarse.n_points
+        dt = e.dtype
+        first_low = np.zeros(nc + 1, dtype=dt)
+        np.cumsum(np.bincount(e[:, 0], minlength=nc), out=first_low[1:])
+        by_high = np.argsort(e[:, 1], kind="stable").astype(dt)
+        by_high_ptr = np.zeros(nc + 1, dtype=dt)
+        np.cumsum(np.bincount(e[:, 1], minlength=nc), out=by_high_ptr[1:])
+        self.transfer = (e, first_low, by_high_ptr, by_high)
+
+    @property
+    def nbytes(self):
+        vectors = 5 * self.r.nbytes
+        transfer = sum(a.nbytes for a in self.transfer) if self.transfer else 0
+        return vectors + transfer + self.op.nbytes + self.smoother.nbytes + self.fixed.nbytes
+
+
+class GeometricMultigrid(Preconditioner):
+    """Geometric multigrid cycle as an SPD preconditioner (``gmg``).
+
+    Parameters
+    ----------
+    A : StiffnessOperator, sparse matrix or LinearOperator
+        The operator CG solves with.  A :class:`~kernels.StiffnessOperator`
+        brings its mesh, coefficient and Dirichlet points along.  Otherwise
+        ``mesh`` is required, and ``A`` is either the full system with
+        identity rows at the Dirichlet points (size ``n_points``) or the
+        reduced system of :func:`kernels.apply_dirichlet` (size ``n_free``).
+    mesh : Mesh
+        The finest mesh, made by :meth:`Mesh.refine` (it carries the levels).
+    coefficient : any kind, optional
+        The diffusion coefficient of ``A``.
+    dirichlet : array of point indices, optional
+        The Dirichlet points of ``A`` (default: the whole boundary).
+    cycle : {"V", "W", "F"}
+    smoother : {"chebyshev", "jacobi"}
+    degree : int
+        Chebyshev degree (products per smoothing), or Jacobi sweeps.
+    omega : float
+        Jacobi damping.
+    coarse : {"direct", "amg"}
+        Solver of the coarsest level (``amg`` when it is too big to factorise).
+    variant : str
+        Matrix-free variant of the level operators.
+
+    Costs, per point of the finest mesh: 5 work vectors and the smoother's
+    diagonals (56 bytes), the transfer indices (about 12 bytes per coarse
+    edge, so 4 per fine point), a third more for the coarser levels together;
+    one V-cycle does ``2 degree + 1`` fine-level products plus a third more.
+    """
+
+    name = "gmg"
+    kind = "geometric multigrid on nested refinements (matrix-free)"
+
+    def __init__(
+        self,
+        A,
+        *,
+        mesh=None,
+        coefficient=None,
+        dirichlet=None,
+        cycle="V",
+        smoother="chebyshev",
+        degree=3,
+        omega=2.0 / 3.0,
+        coarse="direct",
+        variant=DEFAULT_VARIANT,
+        quadrature=2,
+    ):
+        if isinstance(A, StiffnessOperator):
+            if mesh is not None and mesh is not A.mesh:
+                raise InputError("gmg: mesh differs from the mesh of the StiffnessOperator A")
+            mesh = A.mesh
+            coefficient = A.coefficient if coefficient is None else coefficient
+            dirichlet = A.fixed if dirichlet is None else dirichlet
+        if mesh is None:
+            raise InputError("gmg: pass mesh=... (the refined mesh A comes from); " + NO_HISTORY)
+        if not isinstance(mesh, Mesh):
+            raise InputError(f"gmg: mesh must be a kernels.Mesh, got {type(mesh).__name__}")
+        if mesh.refinement is None:
+            raise InputError("gmg: this mesh has no refinement history. " + NO_HISTORY)
+        for name, value, choices in (
+            ("cycle", cycle, _CYCLES),
+            ("smoother", smoother, _SMOOTHERS),
+            ("coarse", coarse, _COARSE),
+        ):
+            if value not in choices:
+                raise InputError(f"gmg: {name} must be one of {choices}, got {value!r}")
+        if isinstance(degree, bool) or not isinstance(degree, (int, np.integer)) or degree < 1:
+            raise InputError(f"gmg: degree must be an integer >= 1, got {degree!r}")
+        n = mesh.n_points
+        fixed = self._fixed(mesh, dirichlet)
+        free = np.setdiff1d(np.arange(n), fixed)
+        if A.shape[0] == n:
+            self._free = None
+        elif A.shape[0] == free.size:
+            self._free = free
+        else:
+            raise InputError(
+                f"gmg: A has {A.shape[0]} rows, but the mesh has {n} points of which {free.size} "
+                "are free: pass the Dirichlet points A was reduced with (dirichlet=...)"
+            )
+        super().__init__(A.shape[0])
+        self.cycle = cycle
+        self.smoother = smoother
+        self.degree = int(degree)
+        coef = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
+
+        meshes = mesh.levels()  # coarsest first
+        coefs = [coef]
+        fixeds = [fixed]
+        for fine, coarse_mesh in zip(meshes[:0:-1], meshes[-2::-1], strict=True):
+            coefs.append(coarsen_coefficient(coefs[-1], fine, coarse_mesh))
+            f = fixeds[-1]
+            fixeds.append(
+                np.union1d(
+                    f[f < coarse_mesh.n_points], coarse_mesh.unused_points().astype(np.int64)
+                )
+            )
+        coefs, fixeds = coefs[::-1], fixeds[::-1]
+        self.levels = [
+            _Level(m, c, f, variant, smoother, self.degree, omega, quadrature)
+            for m, c, f in zip(meshes[1:], coefs[1:], fixeds[1:], strict=True)
+        ]
+        for lv in self.levels:
+            lv.set_transfer(lv.mesh.refinement)
+        self._setup_coarse(meshes[0], coefs[0], fixeds[0], coarse, quadrature)
+
+    @staticmethod
+    def _fixed(mesh, dirichlet):
+        if dirichlet is None:
+            d = mesh.boundary_nodes().astype(np.int64)
+        else:
+            d = np.asarray(dirichlet)
+            if d.ndim != 1 or (d.size and d.dtype.kind not in "iu"):
+                raise InputError(f"gmg: dirichlet must be point indices, got {d.dtype} {d.shape}")
+            d = d.astype(np.int64)
+            if d.size and (d.min() < 0 or d.max() >= mesh.n_points):
+                raise InputError(f"gmg: dirichlet has a point outside 0..{mesh.n_points - 1}")
+        return np.union1d(d, mesh.unused_points().astype(np.int64))
+
+    def _setup_coarse(self, mesh, coef, fixed, coarse, quadrature):
+        self.coarse_mesh = mesh
+        self.coarse_fixed = fixed
+        A = assemble_stiffness(mesh, coef, quadrature=quadrature)
+        system = apply_dirichlet(A, np.zeros(mesh.n_points), fixed)
+        if system.A.shape[0] == 0:
+            raise InputError("gmg: every point of the coarsest mesh is a Dirichlet point")
+        self._coarse_free = system.free
+        if coarse == "direct":
+            self._coarse_solver = SparseDirect(system.A)
+        else:
+            self._coarse_solver = make_preconditioner(system.A, "amg")
+        self._coarse_A = system.A
+        self._coarse_x = np.empty(mesh.n_points)
+        self._coarse_b = np.empty(mesh.n_points)
+
+    # -- applying -------------------------------------------------------------------
+
+    def _apply(self, r):
+        fine = self.levels[-1]
+        n = fine.mesh.n_points
+        b = np.zeros(n)
+        if self._free is None:
+            b[:] = r
+        else:
+            b[self._free] = r
+        _mg.zero_at(fine.fixed, b)
+        x = np.zeros(n)
+        self._cycle(len(self.levels), x, b, True, self.cycle)
+        if self._free is None:
+            x[fine.fixed] = r[fine.fixed]  # identity rows are solved exactly
+            return x
+        return x[self._free]
+
+    def _coarse_solve(self, x, b, zero_guess):
+        free = self._coarse_free
+        if zero_guess:
+            x[:] = 0.0
+            x[free] = self._coarse_solver.matvec(b[free])
+        else:
+            rf = b[free] - self._coarse_A @ x[free]
+            x[free] += self._coarse_solver.matvec(rf)
+
+    def _cycle(self, level, x, b, zero_guess, kind):
+        """One cycle on ``level`` (1 = the first refined mesh, 0 = the coarsest)."""
+        if level == 0:
+            self._coarse_solve(x, b, zero_guess)
+            return
+        lv = self.levels[level - 1]
+        if zero_guess:
+            x[:] = 0.0  # the smoothers take a zero guess to mean x is zero
+        lv.smooth(x, b, zero_guess)
+        lv.residual(x, b, lv.r)
+        e, first_low, by_high_ptr, by_high = lv.transfer
+        if level == 1:
+            xc, bc, cfixed = self._coarse_x, self._coarse_b, self.coarse_fixed
+        else:
+            c = self.levels[level - 2]
+            xc, bc, cfixed = c.x, c.b, c.fixed
+        _mg.restrict(first_low, by_high_ptr, by_high, lv.r, bc)
+        _mg.zero_at(cfixed, bc)
+        if kind == "V":
+            self._cycle(level - 1, xc, bc, True, "V")
+        elif kind == "W":
+            self._cycle(level - 1, xc, bc, True, "W")
+            self._cycle(level - 1, xc, bc, False, "W")
+        else:  # F: the palindrome V, F, V keeps the cycle symmetric
+            self._cycle(level - 1, xc, bc, True, "V")
+            self._cycle(level - 1, xc, bc, False, "F")
+            self._cycle(level - 1, xc, bc, False, "V")
+        corr = lv.r
+        corr[:] = 0.0
+        _mg.prolong_add(e, xc, corr)
+        _mg.zero_at(lv.fixed, corr)
+        x += corr
+        lv.smooth(x, b, False)
+
+    # -- describing -------------------------------------------------------------------
+
+    @property
+    def memory_bytes(self):
+        coarse = self._coarse_solver.memory_bytes + self._coarse_A.data.nbytes * 2
+        return int(sum(lv.nbytes for lv in self.levels) + coarse)
+
+    def _details(self):
+        sizes = "/".join(
+            str(m.n_points) for m in [self.coarse_mesh] + [lv.mesh for lv in self.levels]
+        )
+        if self.smoother == "chebyshev":
+            sm = f"Chebyshev degree {self.degree}"
+        else:
+            sm = f"{self.degree} damped Jacobi sweeps"
+        return (
+            f"{len(self.levels) + 1} levels ({sizes} points), {self.cycle}-cycle, {sm}, "
+            f"{self.levels[-1].op.variant} matrix-free operators, coarsest by "
+            f"{self._coarse_solver.name}"
+        )
