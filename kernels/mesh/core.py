@@ -331,7 +331,7 @@ class Mesh:
         return self._cache["incidence"]
 
     def _edge_topology(self):
-        if "edges" not in self._cache:
+        if "edges" not in self._cache or "triangle_edges" not in self._cache:
             tri = self._triangles_for_topology()
             ptr, codes = self._incidence()
             counts = np.empty(self.n_points, dtype=ptr.dtype)

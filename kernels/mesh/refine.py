@@ -22,6 +22,7 @@ def refine(mesh):
     >>> fine.refinement.edge_points[:2].tolist()
     [[0, 1], [0, 3]]
     """
+    had = set(mesh._cache)
     edges, tri_edges = mesh._edge_topology()
     n, m, n_edges = mesh.n_points, mesh.n_triangles, len(edges)
     dt = index_dtype(n + n_edges, 3 * 4 * m + 3)
@@ -52,6 +53,12 @@ def refine(mesh):
     order = np.lexsort((end, start))
     fine_tdt = index_dtype(n + n_edges)
     boundary = np.column_stack([start[order], end[order]]).astype(fine_tdt)
+    # Leave the coarse mesh's cache as it was, but for the edges (which the
+    # refinement keeps anyway): at 10^8 triangles the incidence and the
+    # triangle-to-edge map of the coarse level are gigabytes.
+    for key in ("incidence", "triangle_edges"):
+        if key not in had:
+            mesh._cache.pop(key, None)
     return Mesh._trusted(
         points,
         tri.astype(fine_tdt, copy=False),

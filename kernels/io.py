@@ -1,0 +1,430 @@
+"""Reading meshes and writing results: whole files or nothing.
+
+Meshes are read from ``.npz`` archives (arrays ``points`` (n_points, 2) and
+``triangles`` (n_triangles, 3)), always, and from any format meshio reads
+when the ``io`` extra is installed.  Results are written to ``.npz`` (always)
+and ``.vtu`` (with meshio).
+
+Every writer goes through :func:`atomic_file` (a temporary file in the same
+directory, then :func:`os.replace`), and a command's set of output files
+through :func:`output_directory` (a temporary directory next to the target,
+renamed into place), so that a failure or an interrupt never leaves a
+half-written file behind.
+
+>>> import os, tempfile, numpy as np, kernels
+>>> d = tempfile.mkdtemp()
+>>> m = kernels.mesh.rectangle(2, 2)
+>>> path = write_solution(os.path.join(d, "s.npz"), m, {"u": np.arange(9.0)}, {"note": "demo"})
+>>> sol = read_solution(path)
+>>> sol.mesh.n_triangles, float(sol.point_data["u"][-1]), sol.metadata["note"]
+(8, 8.0, 'demo')
+>>> import shutil; shutil.rmtree(d)
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import io as io_module
+import json
+import os
+import shutil
+import tempfile
+import warnings
+import zipfile
+
+import numpy as np
+
+from kernels.errors import InputError, MeshError
+from kernels.mesh.core import Mesh
+
+__all__ = [
+    "MARKER_FILES",
+    "OutputError",
+    "Solution",
+    "atomic_file",
+    "check_output_directory",
+    "meshio_available",
+    "mesh_from_arrays",
+    "output_directory",
+    "read_mesh",
+    "read_mesh_arrays",
+    "read_solution",
+    "write_json",
+    "write_solution",
+    "write_vtu",
+]
+
+#: Files that mark a directory as a hatkernels output (``--force`` replaces only those).
+MARKER_FILES = ("summary.json", "verify.json")
+GENERATOR = "hatkernels"
+
+
+class OutputError(InputError):
+    """An output path cannot be used: it exists, its parent is missing, or it is not writable."""
+
+
+def meshio_available():
+    """True when meshio (the ``io`` extra) can be imported."""
+    try:
+        import meshio  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def _umask():
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+@contextlib.contextmanager
+def atomic_file(path, suffix=""):
+    """Yield a temporary path next to ``path``; on success move it onto ``path``.
+
+    The temporary file is removed when the body raises (anything, including
+    KeyboardInterrupt), so ``path`` is either the complete new file or
+    untouched.  ``suffix`` is appended to the temporary name, for writers
+    that choose a format by extension.
+    """
+    path = os.fspath(path)
+    directory = os.path.dirname(os.path.abspath(path))
+    fd, tmp = tempfile.mkstemp(prefix=f".{os.path.basename(path)}.tmp-", suffix=suffix,
+                               dir=directory)
+    os.close(fd)
+    try:
+        yield tmp
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the usual mode
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+
+
+def write_json(path, data):
+    """Write ``data`` as indented JSON, atomically; return ``path``."""
+    text = json.dumps(data, indent=2, sort_keys=False, allow_nan=False) + "\n"
+    with atomic_file(path) as tmp, open(tmp, "w", encoding="utf-8") as f:
+        f.write(text)
+    return path
+
+
+def _is_hatkernels_output(directory):
+    try:
+        names = os.listdir(directory)
+    except OSError:
+        return False
+    if not names:
+        return True
+    for marker in MARKER_FILES:
+        if marker in names:
+            try:
+                with open(os.path.join(directory, marker), encoding="utf-8") as f:
+                    data = json.load(f)
+            except (OSError, ValueError):
+                continue
+            if isinstance(data, dict) and str(data.get("generator", "")).startswith(GENERATOR):
+                return True
+    return False
+
+
+def check_output_directory(path, *, force=False):
+    """Check that ``path`` can receive a command's output; return it as an absolute path.
+
+    Raises
+    ------
+    OutputError
+        ``path`` exists and ``force`` is false; it exists and is not a
+        directory; it exists but does not look like hatkernels output (not
+        empty and without a ``summary.json`` or ``verify.json`` written by
+        hatkernels), which ``force`` never replaces; or its parent directory
+        is missing or not writable.
+    """
+    path = os.path.abspath(os.fspath(path))
+    parent = os.path.dirname(path)
+    if os.path.lexists(path):
+        if not os.path.isdir(path) or os.path.islink(path):
+            raise OutputError(f"output {path} exists and is not a directory; choose another --out")
+        if not force:
+            raise OutputError(f"output directory {path} exists; use --force to replace it "
+                              f"or choose another --out")
+        if not _is_hatkernels_output(path):
+            raise OutputError(f"refusing to replace {path}: it is not empty and does not "
+                              f"look like hatkernels output (no summary.json or verify.json "
+                              f"written by hatkernels)")
+    if not os.path.isdir(parent):
+        raise OutputError(f"cannot write {path}: directory {parent} does not exist")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise OutputError(f"cannot write {path}: directory {parent} is not writable")
+    return path
+
+
+@contextlib.contextmanager
+def output_directory(path, *, force=False):
+    """Yield a temporary directory; on success it becomes ``path``, complete.
+
+    The temporary directory is created next to ``path`` (same file system,
+    so the final rename is atomic).  On any exception it is removed and
+    ``path`` is left as it was.  With ``force`` an existing hatkernels output
+    at ``path`` is replaced: it is renamed aside, the new directory renamed
+    into place, then the old one deleted; between the two renames ``path``
+    briefly does not exist (POSIX has no portable atomic swap of
+    directories), and if the second rename fails the old directory is put
+    back.
+    """
+    path = check_output_directory(path, force=force)
+    parent, name = os.path.split(path)
+    tmp = tempfile.mkdtemp(prefix=f".{name}.tmp-", dir=parent)
+    try:
+        os.chmod(tmp, 0o777 & ~_umask())
+        yield tmp
+        check_output_directory(path, force=force)  # it may have appeared meanwhile
+        if os.path.lexists(path):
+            old = tempfile.mkdtemp(prefix=f".{name}.old-", dir=parent)
+            os.rmdir(old)
+            os.rename(path, old)
+            try:
+                os.rename(tmp, path)
+            except BaseException:
+                os.rename(old, path)
+                raise
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.rename(tmp, path)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+# -- meshes -----------------------------------------------------------------------
+
+
+def _mesh_from_arrays(points, triangles, source):
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            mesh = Mesh(points, triangles)
+    except MeshError as exc:
+        raise MeshError(f"{source}: {exc}") from None
+    for w in caught:  # say which file the warning is about
+        warnings.warn(f"{source}: {w.message}", w.category, stacklevel=3)
+    return mesh
+
+
+def _read_npz_mesh(path):
+    with open(path, "rb") as f:
+        head = f.read(4)
+    if head[:2] != b"PK":  # an .npz is a zip archive of .npy arrays
+        raise InputError(f"mesh file {path}: not an .npz archive (not a zip file; it starts "
+                         f"with {head!r})")
+    try:
+        archive = np.load(path, allow_pickle=False)
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
+        raise InputError(f"mesh file {path}: not a readable .npz archive ({exc})") from None
+    if not isinstance(archive, np.lib.npyio.NpzFile):
+        raise InputError(f"mesh file {path}: holds a single array, not an .npz archive with "
+                         f"'points' and 'triangles'")
+    with archive:
+        missing = [k for k in ("points", "triangles") if k not in archive.files]
+        if missing:
+            have = ", ".join(archive.files) or "nothing"
+            raise InputError(f"mesh file {path}: no array {missing[0]!r} (it has: {have})")
+        try:
+            points, triangles = archive["points"], archive["triangles"]
+        except (OSError, ValueError, zipfile.BadZipFile) as exc:
+            raise InputError(f"mesh file {path}: cannot read its arrays ({exc})") from None
+    return points, triangles
+
+
+def _read_meshio_mesh(path):
+    if not meshio_available():
+        raise InputError(f"mesh file {path}: only .npz meshes can be read without meshio; "
+                         f"install the io extra (pip install 'hatkernels[io]')")
+    import meshio
+
+    # meshio prints its complaints and may call sys.exit for a file it cannot
+    # parse: keep its output and turn both into one InputError.
+    said = io_module.StringIO()
+    try:
+        with contextlib.redirect_stdout(said), contextlib.redirect_stderr(said):
+            m = meshio.read(path)
+    except (Exception, SystemExit) as exc:
+        text = [line.strip() for line in (str(exc) + "\n" + said.getvalue()).splitlines()]
+        text = [line for line in text if line and not line.isdigit()]
+        why = " ".join(text) if text else type(exc).__name__
+        raise InputError(f"mesh file {path}: meshio cannot read it ({why})") from None
+    points = np.asarray(m.points)
+    if points.ndim != 2 or points.shape[1] not in (2, 3):
+        raise InputError(f"mesh file {path}: points have shape {points.shape}, expected 2-D or 3-D")
+    if points.shape[1] == 3:
+        z = points[:, 2]
+        finite = np.isfinite(z)
+        if finite.any() and np.ptp(z[finite]) > 1e-12 * max(1.0, np.abs(points[:, :2]).max()):
+            k = int(np.argmax(np.abs(z - z[finite][0]) > 0))
+            raise InputError(f"mesh file {path}: not a plane mesh (point {k} has z = {z[k]!r}, "
+                             f"point 0 has z = {z[0]!r})")
+        points = points[:, :2]
+    blocks = [c for c in m.cells if c.type == "triangle"]
+    others = sorted({c.type for c in m.cells} - {"triangle", "line", "vertex"})
+    if others:
+        raise InputError(f"mesh file {path}: has {', '.join(others)} cells; only linear "
+                         f"triangles (with optional line and vertex cells) are supported")
+    if not blocks:
+        raise InputError(f"mesh file {path}: has no triangle cells")
+    triangles = np.concatenate([np.asarray(c.data) for c in blocks])
+    return points, triangles
+
+
+def read_mesh_arrays(path):
+    """The ``points`` and ``triangles`` arrays of a mesh file, read but not yet checked.
+
+    ``.npz``: arrays ``points`` and ``triangles``.  Any other extension is
+    handed to meshio (if installed): its triangle cells are used, line and
+    vertex cells ignored, a z coordinate dropped when it is constant.
+    Raises :class:`InputError` when the file is missing, unreadable or lacks
+    the arrays.  :func:`read_mesh` also builds and checks the :class:`Mesh`.
+    """
+    path = os.fspath(path)
+    if not os.path.exists(path):
+        raise InputError(f"mesh file {path} not found")
+    if os.path.isdir(path):
+        raise InputError(f"mesh file {path} is a directory")
+    if path.lower().endswith(".npz"):
+        return _read_npz_mesh(path)
+    return _read_meshio_mesh(path)
+
+
+def mesh_from_arrays(points, triangles, path):
+    """The checked :class:`Mesh` of arrays read from ``path`` (named in errors and warnings)."""
+    return _mesh_from_arrays(points, triangles, f"mesh file {os.fspath(path)}")
+
+
+def read_mesh(path):
+    """Read a :class:`Mesh` from ``path`` (formats as in :func:`read_mesh_arrays`).
+
+    Raises
+    ------
+    InputError
+        The file is missing, unreadable, or lacks the arrays.
+    MeshError
+        The arrays do not make a valid mesh; the message starts with the file
+        name and names the point or triangle.
+    """
+    points, triangles = read_mesh_arrays(path)
+    return mesh_from_arrays(points, triangles, path)
+
+
+# -- solutions --------------------------------------------------------------------
+
+
+@dataclasses.dataclass
+class Solution:
+    """What :func:`read_solution` found: the mesh, named point and cell arrays, metadata."""
+
+    mesh: Mesh
+    point_data: dict
+    cell_data: dict
+    metadata: dict
+
+
+_RESERVED = ("points", "triangles", "metadata", "fields")
+
+
+def _checked_fields(mesh, point_data, cell_data):
+    """Check field shapes against the mesh; return (point arrays, cell arrays)."""
+    out = ({}, {})
+    for slot, kind, data, n in ((0, "point", point_data, mesh.n_points),
+                                (1, "cell", cell_data, mesh.n_triangles)):
+        for name, values in (data or {}).items():
+            if not isinstance(name, str) or not name.isidentifier() or name in _RESERVED:
+                raise InputError(f"{kind} array name {name!r} is reserved or not an identifier "
+                                 f"(reserved: {', '.join(_RESERVED)})")
+            if name in out[0] or name in out[1]:
+                raise InputError(f"array name {name!r} is used for both points and cells")
+            a = np.asarray(values)
+            if a.shape[:1] != (n,):
+                raise InputError(f"{kind} array {name!r} has shape {a.shape}; expected ({n}, ...) "
+                                 f"for the mesh's {n} {kind}s")
+            out[slot][name] = a
+    return out
+
+
+def write_solution(path, mesh, point_data=None, metadata=None, cell_data=None):
+    """Write a mesh and fields to an ``.npz`` archive, atomically; return ``path``.
+
+    The archive holds ``points`` (n_points, 2), ``triangles`` (n_triangles, 3),
+    one array per field under its own name (for example ``u``, one value per
+    point), ``fields`` (a JSON string mapping each field name to "point" or
+    "cell") and ``metadata`` (a JSON string).  It loads with
+    ``numpy.load(path)`` (no pickles), and as a mesh with :func:`read_mesh`.
+    """
+    points, cells = _checked_fields(mesh, point_data, cell_data)
+    meta = json.dumps(metadata or {}, allow_nan=False)
+    fields = json.dumps({**{k: "point" for k in points}, **{k: "cell" for k in cells}})
+    with atomic_file(path) as tmp, open(tmp, "wb") as f:
+        np.savez_compressed(f, points=mesh.points, triangles=mesh.triangles,
+                            metadata=np.array(meta), fields=np.array(fields), **points, **cells)
+    return path
+
+
+def _json_array(archive, name, path):
+    if name not in archive.files:
+        return {}
+    try:
+        value = json.loads(str(archive[name]))
+    except ValueError as exc:
+        raise InputError(f"{path}: array {name!r} is not valid JSON ({exc})") from None
+    if not isinstance(value, dict):
+        raise InputError(f"{path}: array {name!r} must hold a JSON object")
+    return value
+
+
+def read_solution(path):
+    """Read an archive written by :func:`write_solution`; returns :class:`Solution`.
+
+    Without a ``fields`` entry, arrays of length n_points are taken as point
+    data and of length n_triangles as cell data.
+    """
+    path = os.fspath(path)
+    mesh = read_mesh(path)
+    with np.load(path, allow_pickle=False) as archive:
+        metadata = _json_array(archive, "metadata", path)
+        fields = _json_array(archive, "fields", path)
+        names = [k for k in archive.files if k not in _RESERVED]
+        point_data, cell_data = {}, {}
+        for name in names:
+            a = archive[name]
+            kind = fields.get(name)
+            if kind is None:
+                if mesh.n_points == mesh.n_triangles:
+                    raise InputError(f"{path}: cannot tell whether {name!r} is per point or per "
+                                     f"cell (no 'fields' entry, and the counts are equal)")
+                kind = "point" if len(a) == mesh.n_points else "cell"
+            (point_data if kind == "point" else cell_data)[name] = a
+    _checked_fields(mesh, point_data, cell_data)
+    return Solution(mesh, point_data, cell_data, metadata)
+
+
+def write_vtu(path, mesh, point_data=None, cell_data=None):
+    """Write a VTK unstructured grid (``.vtu``) through meshio, atomically; return ``path``.
+
+    Points get a zero z coordinate (VTK is 3-D).  Raises :class:`InputError`
+    when meshio is not installed.
+    """
+    if not meshio_available():
+        raise InputError("writing .vtu needs meshio; install the io extra "
+                         "(pip install 'hatkernels[io]')")
+    import meshio
+
+    point_arrays, cell_arrays = _checked_fields(mesh, point_data, cell_data)
+    out = meshio.Mesh(
+        np.column_stack([mesh.points, np.zeros(mesh.n_points)]),
+        [("triangle", np.asarray(mesh.triangles))],
+        point_data=point_arrays,
+        cell_data={k: [v] for k, v in cell_arrays.items()},
+    )
+    with atomic_file(path, suffix=".vtu") as tmp:
+        meshio.write(tmp, out, file_format="vtu")
+    return path

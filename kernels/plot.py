@@ -1,0 +1,181 @@
+"""Figures of solutions, residual histories and convergence studies (matplotlib, Agg).
+
+Figures are drawn on matplotlib's Agg canvas directly (``Figure`` plus
+``FigureCanvasAgg``), without pyplot: no display is needed and the
+caller's pyplot backend is left alone.  Every figure is written atomically
+and has a fixed size in pixels (``size`` times ``dpi``), so the same call
+gives the same image dimensions on every machine.  matplotlib is the
+optional ``plot`` extra; :func:`available` says whether it is installed.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from kernels.errors import InputError
+from kernels.io import atomic_file
+
+__all__ = [
+    "DPI",
+    "SIZE",
+    "available",
+    "convergence_figure",
+    "residuals_figure",
+    "solution_figure",
+]
+
+#: Default figure size in inches and resolution: 800 x 560 pixels.
+SIZE = (8.0, 5.6)
+DPI = 100
+
+
+def available():
+    """True when matplotlib can be imported."""
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def _figure(size, dpi):
+    try:
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.figure import Figure
+    except ImportError:
+        raise InputError("figures need matplotlib; install the plot extra "
+                         "(pip install 'hatkernels[plot]')") from None
+    fig = Figure(figsize=size, dpi=dpi)
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _save(fig, path, dpi):
+    with atomic_file(path, suffix=".png") as tmp:
+        fig.savefig(tmp, format="png", dpi=dpi)
+    return path
+
+
+def _finite(values, name):
+    v = np.asarray(values, dtype=np.float64)
+    bad = ~np.isfinite(v)
+    if bad.any():
+        k = int(np.flatnonzero(bad)[0])
+        raise InputError(f"{name}[{k}] = {float(v[k])!r} is not finite; nothing to plot")
+    return v
+
+
+def solution_figure(mesh, u, path, *, title="", label="u", length_scale=1.0, length_unit="",
+                    outlines=(), levels=24, size=SIZE, dpi=DPI):
+    """Filled contours of nodal values ``u`` on ``mesh``, with a colour bar; write a PNG.
+
+    Parameters
+    ----------
+    mesh : Mesh
+    u : ndarray, shape (n_points,)
+    path : str
+        The PNG to write (atomically).
+    label : str
+        Colour-bar label, e.g. ``"temperature (degC)"``.
+    length_scale, length_unit
+        Coordinates are multiplied by ``length_scale`` and the axes labelled
+        in ``length_unit`` (1e3 and "mm" for a mesh in metres).
+    outlines : sequence of (name, (x0, x1, y0, y1))
+        Rectangles to outline and name (in mesh coordinates).
+    """
+    from matplotlib.patches import Rectangle
+    from matplotlib.ticker import MaxNLocator
+    from matplotlib.tri import Triangulation
+
+    u = _finite(u, "u")
+    if u.shape != (mesh.n_points,):
+        raise InputError(f"u has shape {u.shape}; expected ({mesh.n_points},)")
+    fig = _figure(size, dpi)
+    ax = fig.add_subplot()
+    s = float(length_scale)
+    used = np.unique(mesh.triangles)  # points in no triangle carry no value
+    tri = Triangulation(mesh.points[:, 0] * s, mesh.points[:, 1] * s, mesh.triangles)
+    lo, hi = float(u[used].min()), float(u[used].max())
+    if hi - lo <= 1e-12 * max(1.0, abs(hi)):
+        lo, hi = lo - 0.5, hi + 0.5  # a constant field still gets a colour bar
+    filled = ax.tricontourf(tri, u, levels=np.linspace(lo, hi, levels + 1), cmap="inferno")
+    ax.tricontour(tri, u, levels=np.linspace(lo, hi, levels // 3 + 1), colors="white",
+                  linewidths=0.3, alpha=0.5)
+    if mesh.n_triangles <= 2500:  # small meshes: show the triangles
+        ax.triplot(tri, color="0.6", linewidth=0.2)
+    for name, (x0, x1, y0, y1) in outlines:
+        ax.add_patch(Rectangle((x0 * s, y0 * s), (x1 - x0) * s, (y1 - y0) * s, fill=False,
+                               edgecolor="cyan", linewidth=1.0, linestyle="--"))
+        ax.annotate(name, ((x0 + x1) / 2 * s, y1 * s), xytext=(0, 3),
+                    textcoords="offset points", ha="center", va="bottom", color="cyan",
+                    fontsize=8)
+    imax = used[np.argmax(u[used])]
+    ax.plot(mesh.points[imax, 0] * s, mesh.points[imax, 1] * s, marker="+", color="cyan",
+            markersize=8)
+    ax.set_aspect("equal")
+    unit = f" ({length_unit})" if length_unit else ""
+    ax.set_xlabel(f"x{unit}")
+    ax.set_ylabel(f"y{unit}")
+    if title:
+        ax.set_title(title, fontsize=10)
+    bar = fig.colorbar(filled, ax=ax, label=label, shrink=0.9)
+    ticks = MaxNLocator(8).tick_values(lo, hi)
+    bar.set_ticks(ticks[(ticks >= lo) & (ticks <= hi)])
+    fig.tight_layout()
+    return _save(fig, path, dpi)
+
+
+def residuals_figure(residuals, path, *, rtol=None, title="", size=SIZE, dpi=DPI):
+    """Semilog plot of a residual history (initial first), relative to the initial residual."""
+    r = _finite(residuals, "residuals")
+    if r.ndim != 1 or r.size == 0:
+        raise InputError(f"residuals must be a non-empty 1-D history, got shape {r.shape}")
+    fig = _figure(size, dpi)
+    ax = fig.add_subplot()
+    rel = r / r[0] if r[0] > 0 else r
+    ax.semilogy(np.arange(r.size), np.maximum(rel, np.finfo(float).tiny), marker="o",
+                markersize=3, linewidth=1.0, label="||b - A x_k|| / ||b||")
+    if rtol:
+        ax.axhline(rtol, color="0.4", linestyle="--", linewidth=0.8, label=f"rtol = {rtol:g}")
+    ax.set_xlabel("iteration k")
+    ax.set_ylabel("relative residual")
+    ax.grid(True, which="both", linewidth=0.3)
+    ax.legend()
+    if title:
+        ax.set_title(title, fontsize=10)
+    fig.tight_layout()
+    return _save(fig, path, dpi)
+
+
+def convergence_figure(h, errors, path, *, title="", size=SIZE, dpi=DPI):
+    """Log-log plot of errors against the mesh size ``h``, with reference slopes 1 and 2.
+
+    ``errors`` maps a name (``"L2"``, ``"H1"``) to one error per ``h``; the
+    reference lines pass through the coarsest error of the first and last
+    series.
+    """
+    h = _finite(h, "h")
+    if h.ndim != 1 or h.size < 2:
+        raise InputError(f"h needs at least two mesh sizes, got shape {h.shape}")
+    fig = _figure(size, dpi)
+    ax = fig.add_subplot()
+    markers = "os^v"
+    for k, (name, e) in enumerate(errors.items()):
+        e = _finite(e, f"errors[{name!r}]")
+        if e.shape != h.shape:
+            raise InputError(f"errors[{name!r}] has shape {e.shape}; expected {h.shape}")
+        ax.loglog(h, e, marker=markers[k % len(markers)], linewidth=1.2, label=f"{name} error")
+    series = list(errors.values())
+    for slope, anchor, style in ((2, series[0], ":"), (1, series[-1], "--")):
+        anchor = np.asarray(anchor, dtype=float)
+        ref = anchor[0] * (h / h[0]) ** slope * 1.6
+        ax.loglog(h, ref, color="0.4", linestyle=style, linewidth=0.9,
+                  label=f"slope {slope} (reference)")
+    ax.set_xlabel("mesh size h (longest edge)")
+    ax.set_ylabel("error")
+    ax.grid(True, which="both", linewidth=0.3)
+    ax.legend()
+    if title:
+        ax.set_title(title, fontsize=10)
+    fig.tight_layout()
+    return _save(fig, path, dpi)

@@ -1,0 +1,414 @@
+"""The ``hatkernels`` command, run as a user runs it: in a subprocess, on small meshes."""
+
+import json
+import os
+import shutil
+import struct
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+
+import kernels
+from kernels import cli
+from kernels.assembly import assemble_load, assemble_stiffness
+from kernels.mesh import l_shape, rectangle
+from kernels.poisson import solve_poisson
+
+SOLVE_FILES = {"solution.npz", "summary.json", "solution.png", "residuals.png", "solution.vtu"}
+FIGURE = (800, 560)  # kernels.plot.SIZE x DPI
+
+
+def run(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "kernels.cli", *map(str, args)],
+                          capture_output=True, text=True, cwd=cwd, timeout=900)
+
+
+def png_size(path):
+    """Width and height from the IHDR chunk (the PNG specification, W3C/ISO 15948, 2003)."""
+    head = open(path, "rb").read(24)
+    assert head[:8] == b"\x89PNG\r\n\x1a\n", f"{path} is not a PNG"
+    assert head[12:16] == b"IHDR"
+    return struct.unpack(">II", head[16:24])
+
+
+def error_line(result):
+    """The one stderr line of a failed --quiet run."""
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1, result.stderr
+    assert lines[0].startswith("hatkernels: error: "), lines[0]
+    assert "Traceback" not in result.stderr
+    return lines[0]
+
+
+def scenario_source(mesh):
+    """The scenario's per-triangle source, built here from the brief's numbers (W/m^3).
+
+    Footprints in metres; a triangle belongs to a footprint when its centroid does;
+    each component's value makes its integrated power exact.
+    """
+    c = mesh.points[mesh.triangles].mean(axis=1)
+    area = mesh.areas()
+    q = np.zeros(mesh.n_triangles)
+    for (x0, x1, y0, y1), power in (((0.030, 0.050, 0.035, 0.055), 15.0),
+                                    ((0.0825, 0.0975, 0.020, 0.030), 5.0)):
+        inside = (c[:, 0] > x0) & (c[:, 0] < x1) & (c[:, 1] > y0) & (c[:, 1] < y1)
+        q[inside] = power / (0.002 * area[inside].sum())
+    return q
+
+
+@pytest.fixture(scope="module")
+def small(tmp_path_factory):
+    """One default-scenario solve at 48 x 32 cells (3,072 triangles)."""
+    base = tmp_path_factory.mktemp("solve")
+    result = run("solve", "--cells", 48, "--out", base / "out")
+    return result, base / "out"
+
+
+# -- solve: the main job -----------------------------------------------------------
+
+
+def test_solve_writes_all_files(small):
+    result, out = small
+    assert result.returncode == 0, result.stderr
+    assert set(os.listdir(out)) == SOLVE_FILES
+    assert os.listdir(out.parent) == ["out"]  # no temporary directory left behind
+    for name in ("solution.png", "residuals.png"):
+        assert png_size(out / name) == FIGURE
+    text = result.stdout
+    for phrase in ("invented", "heat-spreader plate", "237 W/(m K)", "Incropera", "15 W", "5 W",
+                   "25 degC", "exact on any mesh", "unknowns", "iterations", "max", "min",
+                   "power in", "leaves through", "CAUTION", "qualified person",
+                   "local codes and licensed practice"):
+        assert phrase in text, phrase
+    summary = json.loads((out / "summary.json").read_text())
+    assert "qualified person" in summary["caution"]
+    assert summary["generator"].startswith("hatkernels")
+    assert set(summary["files"]) == SOLVE_FILES
+    # progress went to stderr as plain lines (not a terminal here)
+    assert "assemble" in result.stderr and "solve" in result.stderr
+    assert "\r" not in result.stderr
+
+
+def test_summary_agrees_with_the_library(small):
+    _, out = small
+    summary = json.loads((out / "summary.json").read_text())
+    mesh = rectangle(48, 32, bounds=(0.0, 0.12, 0.0, 0.08))
+    q = scenario_source(mesh)
+    direct = solve_poisson(mesh, kernels.per_triangle(q), dirichlet=25.0, coefficient=237.0,
+                           preconditioner="amg", rtol=1e-10)
+    with np.load(out / "solution.npz") as saved:
+        assert np.array_equal(saved["points"], mesh.points)
+        assert np.array_equal(saved["triangles"], mesh.triangles)
+        u = saved["u"]
+        assert np.allclose(saved["source"], q, rtol=1e-12, atol=0)
+    assert np.allclose(u, direct.u, rtol=1e-12, atol=1e-12)
+    s = summary["solution"]
+    k = int(np.argmax(direct.u))
+    assert s["max"] == pytest.approx(float(direct.u[k]), rel=1e-12)
+    assert s["max_at"] == pytest.approx(mesh.points[k].tolist())
+    assert s["min"] == pytest.approx(25.0)
+    assert summary["unknowns"] == direct.stats["unknowns"]
+    assert summary["nnz"] == direct.stats["nnz"]
+    assert summary["solver"]["iterations"] == direct.stats["iterations"]
+    assert summary["solver"]["final_residual"] == pytest.approx(direct.stats["residuals"][-1],
+                                                               rel=1e-6)
+    assert summary["mesh"]["triangles"] == 48 * 32 * 2
+    # the printed summary shows the same maximum
+    assert f"max {s['max']:.6g} degC" in small[0].stdout
+
+
+def test_power_balance_of_the_scenario(small):
+    # Conservation: the heat leaving through the Dirichlet edges (the reaction
+    # A u - b on the boundary rows) equals the 20 W put in (common practice, no source).
+    _, out = small
+    with np.load(out / "solution.npz") as saved:
+        mesh = kernels.Mesh(saved["points"], saved["triangles"])
+        u, q = saved["u"], saved["source"]
+    t = 0.002
+    c = mesh.points[mesh.triangles].mean(axis=1)
+    cpu = (c[:, 0] > 0.030) & (c[:, 0] < 0.050) & (c[:, 1] > 0.035) & (c[:, 1] < 0.055)
+    assert float(q[cpu] @ mesh.areas()[cpu]) * t == pytest.approx(15.0, rel=1e-12)
+    assert float(q @ mesh.areas()) * t == pytest.approx(20.0, rel=1e-12)
+    A = assemble_stiffness(mesh, 237.0)
+    b = assemble_load(mesh, kernels.per_triangle(q))
+    reaction = A @ u - b
+    boundary = mesh.boundary_nodes()
+    heat_out = -reaction[boundary].sum() * t
+    assert heat_out == pytest.approx(20.0, rel=1e-8)
+    interior = np.setdiff1d(np.arange(mesh.n_points), boundary)
+    assert np.abs(reaction[interior]).max() < 1e-6 * np.abs(b).max()
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["power"]["heat_out"] == pytest.approx(heat_out, rel=1e-9)
+    assert summary["power"]["components"]["processor"] == pytest.approx(15.0, rel=1e-12)
+
+
+def test_uniform_source_against_the_fourier_series(tmp_path):
+    # Uniform q on the a x b plate with T = 25 on the edges: the double Fourier sine
+    # series T - 25 = 16 q / (pi^2 k) sum_{m,n odd} sin(m pi x/a) sin(n pi y/b) /
+    # (m n ((m pi/a)^2 + (n pi/b)^2)) (separation of variables; common practice, no source).
+    result = run("solve", "--cells", 48, "--source", "1e6", "--quiet", "--out", tmp_path / "o")
+    assert result.returncode == 0, result.stderr
+    summary = json.loads((tmp_path / "o" / "summary.json").read_text())
+    a, b, k, q = 0.12, 0.08, 237.0, 1e6
+    m = np.arange(1, 400, 2)[:, None]
+    n = np.arange(1, 400, 2)[None, :]
+    terms = (np.sin(m * np.pi / 2) * np.sin(n * np.pi / 2)
+             / (m * n * ((m * np.pi / a) ** 2 + (n * np.pi / b) ** 2)))
+    rise = 16 * q / (np.pi**2 * k) * terms.sum()
+    assert summary["solution"]["max_at"] == pytest.approx([a / 2, b / 2])
+    assert summary["solution"]["max"] - 25.0 == pytest.approx(rise, rel=2e-3)
+    assert summary["power"]["power_in"] == pytest.approx(q * a * b * 0.002, rel=1e-12)
+
+
+def test_refined_mesh_off_the_footprints_keeps_the_power_exact(tmp_path):
+    # 15 x 10 cells of 8 mm refined twice: 2 mm cells, which do not line up with the
+    # voltage regulator (82.5 mm to 97.5 mm); the rescaled source still puts in 5 W.
+    result = run("solve", "--refine", 2, "--quiet", "--out", tmp_path / "o")
+    assert result.returncode == 0, result.stderr
+    summary = json.loads((tmp_path / "o" / "summary.json").read_text())
+    assert summary["mesh"]["triangles"] == 15 * 10 * 2 * 4**2
+    assert summary["power"]["components"]["voltage regulator"] == pytest.approx(5.0, rel=1e-12)
+    assert summary["power"]["components"]["processor"] == pytest.approx(15.0, rel=1e-12)
+    assert summary["power"]["heat_out"] == pytest.approx(20.0, rel=1e-8)
+
+
+def test_geometric_multigrid_needs_a_refined_mesh(tmp_path):
+    if "gmg" not in cli._preconditioner_names():
+        pytest.skip("no gmg preconditioner registered")
+    result = run("solve", "--cells", 48, "--preconditioner", "gmg", "--quiet",
+                 "--out", tmp_path / "o")
+    assert result.returncode == 2
+    assert "--refine" in error_line(result)
+    assert not (tmp_path / "o").exists()
+
+
+def test_mesh_file_npz_and_meshio_agree_with_the_library(tmp_path):
+    mesh = l_shape(6)
+    np.savez(tmp_path / "L.npz", points=mesh.points, triangles=mesh.triangles)
+    direct = solve_poisson(mesh, 2.0, dirichlet=1.0, coefficient=3.0, rtol=1e-10)
+    inputs = ["L.npz"]
+    meshio = pytest.importorskip("meshio")
+    meshio.write(tmp_path / "L.vtu", meshio.Mesh(
+        np.column_stack([mesh.points, np.zeros(mesh.n_points)]), [("triangle", mesh.triangles)]))
+    inputs.append("L.vtu")
+    for name in inputs:
+        out = tmp_path / f"out-{name}"
+        result = run("solve", "--mesh", tmp_path / name, "--source", 2, "--conductivity", 3,
+                     "--dirichlet", 1, "--quiet", "--out", out)
+        assert result.returncode == 0, result.stderr
+        with np.load(out / "solution.npz") as saved:
+            assert np.allclose(saved["u"], direct.u, rtol=1e-12, atol=1e-12)
+        summary = json.loads((out / "summary.json").read_text())
+        assert summary["power"]["power_in"] == pytest.approx(2.0 * 3.0)  # Q times the area
+        assert summary["power"]["heat_out"] == pytest.approx(6.0, rel=1e-8)
+        assert "problem on the mesh" in result.stdout
+
+
+def test_without_the_optional_extras(tmp_path):
+    # matplotlib and meshio missing: the solve still runs and says what it did not write
+    code = ("import sys; sys.modules['matplotlib'] = None; sys.modules['meshio'] = None;"
+            "from kernels.cli import main;"
+            f"sys.exit(main(['solve', '--cells', '24', '--quiet', '--out', {str(tmp_path / 'o')!r}]))")
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert result.returncode == 0, result.stderr
+    assert set(os.listdir(tmp_path / "o")) == {"solution.npz", "summary.json"}
+    assert "not written: solution.png" in result.stdout
+    assert "not written: solution.vtu" in result.stdout
+
+
+# -- bad input: one line, the right code, no output ----------------------------------
+
+
+def _nan_mesh(path):
+    points = np.array([[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [np.nan, 1.0]])
+    np.savez(path, points=points, triangles=np.array([[0, 1, 2], [1, 3, 2]]))
+
+
+BAD = {
+    "missing-file": (["solve", "--mesh", "{dir}/missing.npz"], 2, "not found"),
+    "bad-mesh-file": (["solve", "--mesh", "{dir}/garbage.npz"], 2, "not an .npz archive"),
+    "nan-in-mesh": (["solve", "--mesh", "{dir}/nan.npz"], 2,
+                    "point 3 has a non-finite coordinate"),
+    "bad-triangle": (["solve", "--mesh", "{dir}/outside.npz"], 2, "refers to point 7"),
+    "unknown-option": (["solve", "--frobnicate"], 2, "unrecognized arguments: --frobnicate"),
+    "nan-source": (["solve", "--source", "nan"], 2, "must be a finite number"),
+    "negative-conductivity": (["solve", "--conductivity", "-1"], 2, "must be positive"),
+    "unknown-preconditioner": (["solve", "--preconditioner", "magic"], 2, "invalid choice"),
+    "mesh-too-coarse": (["solve", "--cells", "3"], 2, "too coarse"),
+    "cells-and-refine": (["solve", "--cells", "48", "--refine", "1"], 2, "give one"),
+    "too-many-threads": (["solve", "--cells", "24", "--threads", "999"], 2, "--threads 999"),
+    "not-converging": (["solve", "--cells", "48", "--preconditioner", "jacobi", "--maxiter", "3"],
+                       1, "did not converge"),
+    "verify-one-level": (["verify", "--levels", "1"], 2, "at least 2"),
+}
+
+
+@pytest.mark.parametrize("case", list(BAD))
+def test_bad_input(tmp_path, case):
+    args, code, message = BAD[case]
+    (tmp_path / "garbage.npz").write_bytes(b"\x00\x01 this is not a mesh")
+    _nan_mesh(tmp_path / "nan.npz")
+    np.savez(tmp_path / "outside.npz", points=np.zeros((3, 2)), triangles=np.array([[0, 1, 7]]))
+    before = sorted(os.listdir(tmp_path))
+    out = tmp_path / "out"
+    result = run(*[a.format(dir=tmp_path) for a in args], "--quiet", "--out", out)
+    assert result.returncode == code, result.stderr
+    assert message in error_line(result)
+    assert not out.exists()
+    assert sorted(os.listdir(tmp_path)) == before  # nothing half-written, no temporary left
+    assert result.stdout == ""
+
+
+def test_no_command(tmp_path):
+    result = run()
+    assert result.returncode == 2
+    assert "choose a command" in error_line(result)
+
+
+def test_debug_shows_the_traceback(tmp_path):
+    result = run("solve", "--mesh", tmp_path / "missing.npz", "--debug", "--quiet",
+                 "--out", tmp_path / "out")
+    assert result.returncode == 2
+    assert "Traceback" in result.stderr
+    assert result.stderr.strip().splitlines()[-1].startswith("hatkernels: error: mesh file")
+
+
+def test_existing_output_needs_force(tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "summary.json").write_text(json.dumps({"generator": "hatkernels 0.0"}))
+    (out / "stale.txt").write_text("from an older run")
+    result = run("solve", "--cells", 24, "--quiet", "--out", out)
+    assert result.returncode == 2
+    assert "exists; use --force" in error_line(result)
+    assert sorted(os.listdir(out)) == ["stale.txt", "summary.json"]  # untouched
+
+    result = run("solve", "--cells", 24, "--quiet", "--force", "--out", out)
+    assert result.returncode == 0, result.stderr
+    assert result.stderr == ""  # --quiet: no progress
+    assert set(os.listdir(out)) == SOLVE_FILES  # replaced whole
+    assert os.listdir(tmp_path) == ["out"]
+
+
+def test_force_never_replaces_a_foreign_directory(tmp_path):
+    out = tmp_path / "work"
+    out.mkdir()
+    (out / "notes.txt").write_text("keep me")
+    result = run("solve", "--cells", 24, "--quiet", "--force", "--out", out)
+    assert result.returncode == 2
+    assert "does not look like hatkernels output" in error_line(result)
+    assert (out / "notes.txt").read_text() == "keep me"
+
+
+# -- the other commands ---------------------------------------------------------------
+
+
+def test_verify_rates(tmp_path):
+    # Linear elements, smooth solution: L2 error O(h^2), H1 error O(h)
+    # (P. G. Ciarlet, The Finite Element Method for Elliptic Problems, 1978).
+    result = run("verify", "--levels", 4, "--start", 4, "--out", tmp_path / "v")
+    assert result.returncode == 0, result.stderr
+    record = json.loads((tmp_path / "v" / "verify.json").read_text())
+    assert record["rates"]["L2"][-1] == pytest.approx(2.0, abs=0.1)
+    assert record["rates"]["H1"][-1] == pytest.approx(1.0, abs=0.1)
+    assert record["passed"] is True
+    assert len(record["h"]) == 4 and record["h"][0] == pytest.approx(np.sqrt(2) / 4)
+    assert "L2 error" in result.stdout and "H1 error" in result.stdout
+    assert "Ciarlet" in result.stdout
+    assert png_size(tmp_path / "v" / "convergence.png") == FIGURE
+
+
+def test_verify_from_too_coarse_a_start_fails_honestly(tmp_path):
+    # 2 x 2 cells (one interior point) then 4 x 4: far from the asymptotic range,
+    # the observed rates (about 1.6 and 0.8) are not those of the estimate
+    result = run("verify", "--levels", 2, "--start", 2, "--quiet", "--out", tmp_path / "v")
+    assert result.returncode == 1
+    assert "verification failed" in error_line(result)
+    assert (tmp_path / "v" / "verify.json").exists()  # the measured result is still written
+
+
+def test_bench_small(tmp_path):
+    result = run("bench", "--cells", 16, "--repeat", 1, "--bandwidth-mb", 8,
+                 "--preconditioners", "jacobi,amg-sa,direct", "--json", tmp_path / "b.json",
+                 "--quiet")
+    assert result.returncode == 0, result.stderr
+    for phrase in ("triplets", "csr first call", "csr numeric", "GB/s", "jacobi", "amg-sa",
+                   "direct", "vs fastest", "vs triplets"):
+        assert phrase in result.stdout, phrase
+    record = json.loads((tmp_path / "b.json").read_text())
+    assert [r["strategy"] for r in record["assembly"]] == ["triplets", "csr first call",
+                                                          "csr numeric"]
+    assert [r["preconditioner"] for r in record["solve"]] == ["jacobi", "amg-sa", "direct"]
+    assert all(r["converged"] and r["iterations"] >= 1 for r in record["solve"])
+    assert record["triangles"] == 2 * 16 * 16
+    assert record["bandwidth_GBs"]["copy"] > 0
+
+
+def test_info():
+    result = run("info")
+    assert result.returncode == 0, result.stderr
+    for phrase in ("python", "numpy", "scipy", "numba", "pyamg", "matplotlib", "meshio",
+                   "numba threads", "threading layer", "numba cache", kernels.__version__):
+        assert phrase in result.stdout, phrase
+    record = json.loads(run("info", "--json").stdout)
+    assert record["versions"]["numpy"] == np.__version__
+    assert record["numba_threads"] >= 1
+
+
+@pytest.mark.parametrize("command", [None, "solve", "verify", "bench", "info"])
+def test_help(command):
+    script = shutil.which("hatkernels", path=os.path.dirname(sys.executable))
+    if command is None and script is not None:
+        result = subprocess.run([script, "--help"], capture_output=True, text=True)
+    else:
+        result = run(*([command] if command else []), "--help")
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.startswith("usage: hatkernels")
+    if command == "solve":
+        for phrase in ("--cells", "--refine", "--mesh", "--preconditioner", "--threads",
+                       "--force", "invented", "237 W/(m K)", "CAUTION"):
+            assert phrase in result.stdout, phrase
+    if command is None:
+        for sub in ("solve", "verify", "bench", "info"):
+            assert sub in result.stdout
+
+
+# -- pieces, in process ---------------------------------------------------------------
+
+
+class _Recorder:
+    def __init__(self):
+        self.notes = []
+
+    def note(self, text, **kw):
+        self.notes.append(text)
+
+
+def test_compile_notice_when_nothing_is_cached(monkeypatch):
+    monkeypatch.setattr(cli, "kernel_cache_state", lambda: {"cached": 0, "total": 5, "path": "x"})
+    rec = _Recorder()
+    with cli.CompileNotice(rec):
+        pass
+    assert rec.notes[0].startswith("compiling kernels, about")
+    assert len(rec.notes) == 2  # and once more when ready
+
+
+def test_compile_notice_only_when_slow(monkeypatch):
+    monkeypatch.setattr(cli, "kernel_cache_state", lambda: None)  # cache cannot be inspected
+    monkeypatch.setattr(cli, "SLOW_FIRST_CALL", 0.05)
+    rec = _Recorder()
+    with cli.CompileNotice(rec):
+        pass  # fast: cached kernels
+    assert rec.notes == []
+    with cli.CompileNotice(rec):
+        time.sleep(0.5)  # slow: compiling
+    assert rec.notes[0].startswith("compiling kernels")
+
+
+def test_kernel_cache_state_counts_the_library_kernels():
+    state = cli.kernel_cache_state()
+    assert state is not None, "numba's cache index could not be read"
+    assert state["total"] >= 10 and 0 <= state["cached"] <= state["total"]
