@@ -123,8 +123,10 @@ class StiffnessOperator(LinearOperator):
         self._kc = kernel_coefficient(self.coefficient, mesh, quadrature)
         self._fixed = _dirichlet_mask(mesh, dirichlet)
         self._diag = None
-        self._work = None
         self._serial = False
+        self._is_fixed = np.zeros(n, dtype=np.bool_)
+        self._is_fixed[self._fixed] = True
+        self._near = np.flatnonzero(self._is_fixed[mesh.triangles].any(axis=1))
         if variant == "edges":
             edges, tri_edges = mesh.edges(), mesh.triangle_edges()
             o = self._element_values()[1]
@@ -170,7 +172,7 @@ class StiffnessOperator(LinearOperator):
     @property
     def nbytes(self):
         """Bytes the operator stores beyond the mesh it refers to."""
-        parts = [self._colour_ptr, self._blocks, self._fixed]
+        parts = [self._colour_ptr, self._blocks, self._fixed, self._is_fixed, self._near]
         kappa, _, tensor, _ = self._kc
         parts += [kappa, tensor]
         if self.variant == "factors":
@@ -190,16 +192,15 @@ class StiffnessOperator(LinearOperator):
 
     def matvec_into(self, x, out):
         """``out = A x`` with no allocation; ``x`` must be float64, contiguous, length n."""
+        self._product(x, out)
         if self._fixed.size:
-            # identity rows and columns: the product sees x with zeros at fixed
-            # points, then the fixed rows copy x
-            if self._work is None:
-                self._work = np.empty(self.shape[0])
-            _jit_ops.masked_copy(x, self._fixed, self._work)
-            self._product(self._work, out)
+            # identity rows and columns: take the fixed columns back out (only
+            # the triangles next to fixed points), then the fixed rows copy x
+            m = self.mesh
+            _jit_ops.remove_fixed_columns(
+                m.points, m.triangles, *self._kc, self._near, self._is_fixed, x, out
+            )
             _jit_ops.identity_rows(self._fixed, x, out)
-        else:
-            self._product(x, out)
         return out
 
     def unmasked_matvec(self, x):

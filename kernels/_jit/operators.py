@@ -64,15 +64,6 @@ def _zero(y):
 
 
 @jit(parallel=True)
-def masked_copy(x, fixed, out):
-    """``out = x`` with zeros at the ``fixed`` points."""
-    for i in prange(x.size):
-        out[i] = x[i]
-    for k in prange(fixed.size):
-        out[fixed[k]] = 0.0
-
-
-@jit(parallel=True)
 def identity_rows(fixed, x, y):
     """``y[fixed] = x[fixed]``."""
     for k in prange(fixed.size):
@@ -157,11 +148,27 @@ def _geometry_kernels(offdiagonals):
                     y[i1] -= o0 + o2
                     y[i2] -= o0 + o1
 
-    return coloured, serial, diagonal
+    @jit()
+    def fixed_columns(points, triangles, kappa, ks, tensor, ts, near, is_fixed, x, y):
+        # y -= K_free,fixed x_fixed over the triangles ``near`` that touch a fixed
+        # point, serially in their order; fixed rows are overwritten afterwards
+        for k in range(near.size):
+            t = near[k]
+            o0, o1, o2, i0, i1, i2 = offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
+            a0 = x[i0] if is_fixed[i0] else 0.0
+            a1 = x[i1] if is_fixed[i1] else 0.0
+            a2 = x[i2] if is_fixed[i2] else 0.0
+            _add_triangle(y, i0, i1, i2, -o0, -o1, -o2, a0, a1, a2)
+
+    return coloured, serial, diagonal, fixed_columns
 
 
-_scalar_coloured, _scalar_serial, _scalar_diagonal = _geometry_kernels(_offdiagonals_scalar)
-_tensor_coloured, _tensor_serial, _tensor_diagonal = _geometry_kernels(_offdiagonals_tensor)
+(_scalar_coloured, _scalar_serial, _scalar_diagonal, _scalar_fixed) = _geometry_kernels(
+    _offdiagonals_scalar
+)
+(_tensor_coloured, _tensor_serial, _tensor_diagonal, _tensor_fixed) = _geometry_kernels(
+    _offdiagonals_tensor
+)
 
 
 def apply_geometry(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, x, y):
@@ -174,6 +181,17 @@ def diagonal_geometry(points, triangles, kappa, ks, tensor, ts, block_size, colo
     """The diagonal of the stiffness matrix into ``y``, by the same coloured blocks."""
     kernel = _scalar_diagonal if tensor.shape[0] == 0 else _tensor_diagonal
     kernel(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, y)
+
+
+def remove_fixed_columns(points, triangles, kappa, ks, tensor, ts, near, is_fixed, x, y):
+    """``y -= A[:, fixed] x[fixed]``, touching only the triangles ``near`` the fixed points.
+
+    With it a product with identity rows and columns at the fixed points is
+    the plain product, this boundary correction, and a copy of the fixed
+    entries: no masked copy of ``x`` (a full vector pass) is needed.
+    """
+    kernel = _scalar_fixed if tensor.shape[0] == 0 else _tensor_fixed
+    kernel(points, triangles, kappa, ks, tensor, ts, near, is_fixed, x, y)
 
 
 def serial_geometry(points, triangles, kappa, ks, tensor, ts, x, y):

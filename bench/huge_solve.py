@@ -1,0 +1,79 @@
+"""Solve -lap u = 1 on about 1.3e8 triangles with CG + geometric multigrid, matrix-free.
+
+    python bench/huge_solve.py                  # rectangle(125, 125) refined 6 times
+    python bench/huge_solve.py --coarse 64 --refinements 5    # a smaller check
+
+Prints the time of each phase, the iterations and the peak memory (the
+process's resident high-water mark).  Not part of the test run: it needs
+about 15 GiB and a few minutes on a 2-core machine.  The exact solution of
+the unit square problem has its maximum 0.0736713... at the centre
+(series solution of the Poisson problem on a square; value from memory),
+which the printed maximum should approach.
+"""
+
+import argparse
+import json
+import resource
+import sys
+import time
+
+import numba
+
+import kernels
+
+
+def rss_gib():
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024 / 2**30
+
+
+def main(argv=None):
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--coarse", type=int, default=125, help="cells per side of the coarse mesh")
+    p.add_argument("--refinements", type=int, default=6)
+    p.add_argument("--rtol", type=float, default=1e-8)
+    p.add_argument("--json", help="also write the figures to this file")
+    args = p.parse_args(argv)
+
+    report = {"threads": numba.get_num_threads(), "phases": {}}
+    t = time.perf_counter()
+    mesh = kernels.mesh.rectangle(args.coarse, args.coarse)
+    for k in range(args.refinements):
+        t1 = time.perf_counter()
+        mesh = mesh.refine()
+        print(f"refinement {k + 1}: {mesh.n_triangles:,} triangles in "
+              f"{time.perf_counter() - t1:.1f} s (peak {rss_gib():.1f} GiB)", flush=True)
+    report["phases"]["mesh"] = time.perf_counter() - t
+    report["triangles"] = mesh.n_triangles
+    report["points"] = mesh.n_points
+
+    def progress(phase):
+        print(f"  {phase} ... (peak so far {rss_gib():.1f} GiB)", flush=True)
+
+    sol = kernels.solve_poisson(mesh, 1.0, preconditioner="gmg", rtol=args.rtol, progress=progress)
+    st = sol.stats
+    report["phases"].update(st["timings"])
+    report.update(
+        iterations=st["iterations"],
+        converged=sol.converged,
+        final_relative_residual=float(st["residuals"][-1] / st["residuals"][0]),
+        u_max=float(sol.u.max()),
+        peak_rss_GiB=st["peak_rss_bytes"] / 2**30,
+        peak_rss_bytes_per_triangle=st["peak_rss_bytes"] / mesh.n_triangles,
+        preconditioner=st["preconditioner"],
+    )
+    print(f"{mesh.n_triangles:,} triangles, {mesh.n_points:,} points, {report['threads']} threads")
+    for name, secs in report["phases"].items():
+        print(f"  {name:>9}: {secs:8.1f} s")
+    print(f"  CG + gmg: {st['iterations']} iterations, converged={sol.converged}, "
+          f"relative residual {report['final_relative_residual']:.2e}")
+    print(f"  max u = {report['u_max']:.7f} (exact 0.0736713 for the unit square)")
+    print(f"  peak memory {report['peak_rss_GiB']:.1f} GiB "
+          f"({report['peak_rss_bytes_per_triangle']:.0f} bytes per triangle)")
+    if args.json:
+        with open(args.json, "w") as f:
+            json.dump(report, f, indent=2)
+    return 0 if sol.converged else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())
