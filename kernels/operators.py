@@ -29,6 +29,7 @@ from scipy.sparse.linalg import LinearOperator
 
 from kernels._jit import assembly as _jit_assembly
 from kernels._jit import operators as _jit_ops
+from kernels._sets import index_union
 from kernels.assembly.csr import kernel_coefficient
 from kernels.coefficients import parse_coefficient
 from kernels.errors import InputError
@@ -38,7 +39,7 @@ __all__ = ["StiffnessOperator", "VARIANTS", "DEFAULT_VARIANT"]
 
 VARIANTS = ("geometry", "factors", "edges")
 DEFAULT_VARIANT = "geometry"
-DEFAULT_BLOCK = 256
+DEFAULT_BLOCK = 1024
 
 
 def _colouring(elements, n_points, block_size):
@@ -66,7 +67,7 @@ def _dirichlet_mask(mesh, dirichlet):
     if d.size and (d.min() < 0 or d.max() >= mesh.n_points):
         k = int(np.flatnonzero((d < 0) | (d >= mesh.n_points))[0])
         raise InputError(f"dirichlet[{k}] = {d[k]} is outside 0..{mesh.n_points - 1}")
-    return np.union1d(d, mesh.unused_points().astype(np.int64))
+    return index_union(mesh.n_points, d, mesh.unused_points())
 
 
 class StiffnessOperator(LinearOperator):
@@ -124,20 +125,14 @@ class StiffnessOperator(LinearOperator):
         self._fixed = _dirichlet_mask(mesh, dirichlet)
         self._diag = None
         self._serial = False
-        self._is_fixed = np.zeros(n, dtype=np.bool_)
+        self._is_fixed = np.zeros(n if self._fixed.size else 0, dtype=np.bool_)
         self._is_fixed[self._fixed] = True
-        self._near = np.flatnonzero(self._is_fixed[mesh.triangles].any(axis=1))
-        if variant == "edges":
-            edges, tri_edges = mesh.edges(), mesh.triangle_edges()
-            o = self._element_values()[1]
-            self._edges = edges
-            self._weights = np.bincount(tri_edges.ravel(), weights=o.ravel(), minlength=len(edges))
-            elements = edges
-        else:
-            if variant == "factors":
-                self._ovals = self._element_values()[1]
-            elements = mesh.triangles
-        col = _colouring(elements, n, block_size)
+        self._near = (
+            np.flatnonzero(self._is_fixed[mesh.triangles].any(axis=1))
+            if self._fixed.size
+            else np.empty(0, dtype=np.int64)
+        )
+        col = _colouring(mesh.triangles, n, block_size)
         if col is None and variant == "geometry":
             warnings.warn(
                 "matrix-free product: the mesh needs more than 64 colours (a point in very many "
@@ -154,9 +149,32 @@ class StiffnessOperator(LinearOperator):
                 "mesh (Mesh.reorder('hilbert')) or use variant='geometry'"
             )
         self._colour_ptr, self._blocks = col
+        if variant == "factors":
+            self._ovals = np.empty((mesh.n_triangles, 3))
+            self._kernel("values")(mesh.points, mesh.triangles, *self._kc, self._ovals)
+        if variant == "edges":
+            had = "triangle_edges" in mesh._cache
+            self._edges = mesh.edges()  # shared with the mesh's cache, not copied
+            self._weights = np.empty(len(self._edges))
+            self._kernel("edge_weights")(
+                mesh.points, mesh.triangles, *self._kc, block_size, self._colour_ptr,
+                self._blocks, mesh.triangle_edges(), self._weights,
+            )
+            if not had:  # 12 bytes per triangle that the products do not need
+                mesh._cache.pop("triangle_edges", None)
+            ecol = _colouring(self._edges, n, block_size)
+            if ecol is None:
+                raise InputError(
+                    "the edges variant needs a colouring of edges with at most 64 colours; "
+                    "reorder the mesh (Mesh.reorder('hilbert')) or use variant='geometry'"
+                )
+            self._edge_colour_ptr, self._edge_blocks = ecol
         self.setup_time = time.perf_counter() - t0
 
     # -- what the operator stores ------------------------------------------------
+
+    def _kernel(self, name):
+        return _jit_ops.geometry_kernel(name, self._kc[2])
 
     def _element_values(self):
         m = self.mesh
@@ -167,6 +185,9 @@ class StiffnessOperator(LinearOperator):
 
     @property
     def n_colours(self):
+        """Colours of the element blocks the products run through."""
+        if self.variant == "edges":
+            return self._edge_colour_ptr.size - 1
         return self._colour_ptr.size - 1
 
     @property
@@ -178,7 +199,8 @@ class StiffnessOperator(LinearOperator):
         if self.variant == "factors":
             parts.append(self._ovals)
         if self.variant == "edges":
-            parts += [self._edges, self._weights]
+            # the edge list is the mesh's own cached array, shared; counted here
+            parts += [self._edges, self._weights, self._edge_colour_ptr, self._edge_blocks]
         return int(sum(a.nbytes for a in parts))
 
     def __repr__(self):
@@ -197,7 +219,7 @@ class StiffnessOperator(LinearOperator):
             # identity rows and columns: take the fixed columns back out (only
             # the triangles next to fixed points), then the fixed rows copy x
             m = self.mesh
-            _jit_ops.remove_fixed_columns(
+            self._kernel("fixed_columns")(
                 m.points, m.triangles, *self._kc, self._near, self._is_fixed, x, out
             )
             _jit_ops.identity_rows(self._fixed, x, out)
@@ -212,22 +234,12 @@ class StiffnessOperator(LinearOperator):
 
     def _product(self, x, out):
         m = self.mesh
-        kappa, ks, tensor, ts = self._kc
         if self._serial:
-            _jit_ops.serial_geometry(m.points, m.triangles, kappa, ks, tensor, ts, x, out)
+            self._kernel("serial")(m.points, m.triangles, *self._kc, x, out)
         elif self.variant == "geometry":
-            _jit_ops.apply_geometry(
-                m.points,
-                m.triangles,
-                kappa,
-                ks,
-                tensor,
-                ts,
-                self.block_size,
-                self._colour_ptr,
-                self._blocks,
-                x,
-                out,
+            self._kernel("product")(
+                m.points, m.triangles, *self._kc, self.block_size, self._colour_ptr,
+                self._blocks, x, out,
             )
         elif self.variant == "factors":
             _jit_ops.apply_factors(
@@ -235,13 +247,8 @@ class StiffnessOperator(LinearOperator):
             )
         else:
             _jit_ops.apply_edges(
-                self._edges,
-                self._weights,
-                self.block_size,
-                self._colour_ptr,
-                self._blocks,
-                x,
-                out,
+                self._edges, self._weights, self.block_size, self._edge_colour_ptr,
+                self._edge_blocks, x, out,
             )
 
     def _matvec(self, x):
@@ -259,7 +266,7 @@ class StiffnessOperator(LinearOperator):
         xm = x.copy()
         xm[self._fixed] = 0.0
         y = np.empty(self.shape[0])
-        _jit_ops.serial_geometry(m.points, m.triangles, kappa, ks, tensor, ts, xm, y)
+        self._kernel("serial")(m.points, m.triangles, kappa, ks, tensor, ts, xm, y)
         y[self._fixed] = x[self._fixed]
         return y
 
@@ -268,23 +275,48 @@ class StiffnessOperator(LinearOperator):
         if self._diag is None:
             m = self.mesh
             diag = np.empty(self.shape[0])
-            if self._serial or self.variant == "edges":
-                # the colouring is of edges or unusable: triangle values, summed in order
+            if self._serial:
+                # no usable colouring: triangle values, summed in order
                 d, _ = self._element_values()
                 diag = np.bincount(m.triangles.ravel(), weights=d.ravel(), minlength=self.shape[0])
             else:
-                _jit_ops.diagonal_geometry(
-                    m.points,
-                    m.triangles,
-                    *self._kc,
-                    self.block_size,
-                    self._colour_ptr,
-                    self._blocks,
-                    diag,
+                self._kernel("diagonal")(
+                    m.points, m.triangles, *self._kc, self.block_size, self._colour_ptr,
+                    self._blocks, diag,
                 )
             diag[self._fixed] = 1.0
             self._diag = diag
         return self._diag
+
+    def gershgorin_bound(self):
+        """``max_i (A_ii + sum_j!=i |A_ij|) / A_ii``: an upper bound on the spectrum of ``D^-1 A``.
+
+        Guaranteed (Gershgorin's circle theorem); exactly 2 when no
+        off-diagonal entry is positive (meshes without obtuse angle pairs).
+        """
+        m = self.mesh
+        if self._serial:
+            d, o = self._element_values()
+            rows = np.abs(o)
+            off = np.bincount(
+                m.triangles.ravel(),
+                weights=(np.roll(rows, -1, axis=1) + np.roll(rows, 1, axis=1)).ravel(),
+                minlength=self.shape[0],
+            )
+        else:
+            off = np.empty(self.shape[0])
+            self._kernel("abs_offdiagonal")(
+                m.points, m.triangles, *self._kc, self.block_size, self._colour_ptr, self._blocks,
+                off,
+            )
+        diag = self.diagonal()
+        free = np.ones(self.shape[0], dtype=bool)
+        free[self._fixed] = False
+        if self._fixed.size:
+            # fixed rows are identity; removing the fixed columns only lowers free rows' sums
+            off[self._fixed] = 0.0
+        ratio = (diag[free] + off[free]) / diag[free]
+        return float(ratio.max(initial=1.0))
 
     @property
     def fixed(self):

@@ -15,6 +15,7 @@ import time
 import numba
 import numpy as np
 
+from kernels._sets import index_union
 from kernels.assembly import (
     StiffnessAssembler,
     assemble_boundary_load,
@@ -26,7 +27,7 @@ from kernels.boundary import apply_dirichlet
 from kernels.coefficients import parse_coefficient
 from kernels.errors import InputError
 from kernels.mesh.core import Mesh
-from kernels.operators import StiffnessOperator
+from kernels.operators import DEFAULT_VARIANT, StiffnessOperator
 from kernels.solve import solve
 
 __all__ = ["PoissonSolution", "solve_poisson"]
@@ -76,7 +77,7 @@ def _dirichlet_nodes(mesh, where):
         return mesh.boundary_nodes().astype(np.int64)
     w = np.asarray(where)
     if w.ndim == 2:
-        return np.unique(check_edges(mesh, w))
+        return index_union(mesh.n_points, check_edges(mesh, w).ravel())
     if w.ndim != 1 or (w.size and w.dtype.kind not in "iu"):
         raise InputError(
             f"dirichlet_on must be point indices or (k, 2) edges, got {w.dtype} {w.shape}"
@@ -85,7 +86,7 @@ def _dirichlet_nodes(mesh, where):
     if w.size and (w.min() < 0 or w.max() >= mesh.n_points):
         k = int(np.flatnonzero((w < 0) | (w >= mesh.n_points))[0])
         raise InputError(f"dirichlet_on[{k}] = {w[k]} is outside 0..{mesh.n_points - 1}")
-    return np.unique(w)
+    return index_union(mesh.n_points, w)
 
 
 def _dirichlet_values(mesh, nodes, g):
@@ -138,6 +139,7 @@ def solve_poisson(
     check=False,
     quadrature=2,
     matrix_free=None,
+    variant=None,
     progress=None,
     **preconditioner_options,
 ):
@@ -172,6 +174,9 @@ def solve_poisson(
         :meth:`Mesh.refine`) when there is no reaction or Robin term, else
         False.  Matrix-free solves accept ``"gmg"``, ``"none"`` or an
         operator as preconditioner.
+    variant : str, optional
+        The matrix-free variant (``kernels.operators.VARIANTS``), for the
+        solve's operator and gmg's levels.
     progress : callable, optional
         ``progress(phase)`` is called as each phase starts ("boundary",
         "assemble", "solve"), for reporting.
@@ -243,7 +248,10 @@ def solve_poisson(
     t2 = time.perf_counter()
     b += assemble_load(mesh, f, quadrature=quadrature)
     if matrix_free:
-        op = StiffnessOperator(mesh, kappa, dirichlet=fixed, quadrature=quadrature)
+        op = StiffnessOperator(
+            mesh, kappa, dirichlet=fixed, quadrature=quadrature,
+            variant=DEFAULT_VARIANT if variant is None else variant,
+        )
         g = np.zeros(mesh.n_points)
         g[fixed] = values
         rhs = b - op.unmasked_matvec(g)  # lifting: move the known values to the right
@@ -262,6 +270,8 @@ def solve_poisson(
         system_A, system_b, expand = system.A, system.b, system.expand
         stored = system.A.data.nbytes + system.A.indices.nbytes + system.A.indptr.nbytes
         if preconditioner == "gmg":
+            if variant is not None:
+                preconditioner_options.setdefault("variant", variant)
             preconditioner_options.setdefault("mesh", mesh)
             preconditioner_options.setdefault("coefficient", kappa)
             preconditioner_options.setdefault("dirichlet", fixed)

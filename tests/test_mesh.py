@@ -212,10 +212,12 @@ def test_refine_is_nested_and_consistent(m):
     f = m.refine()
     e = m.edges()
     assert f.n_points == m.n_points + len(e) and f.n_triangles == 4 * m.n_triangles
-    assert (f.points[: m.n_points] == m.points).all()
-    assert f.refinement.coarse is m
-    ep = f.refinement.edge_points
-    assert np.allclose(f.points[m.n_points :], 0.5 * (m.points[ep[:, 0]] + m.points[ep[:, 1]]))
+    r = f.refinement
+    assert (f.points[r.coarse_points] == m.points).all()
+    assert r.coarse is m and (r.edge_points == e).all()
+    assert np.allclose(f.points[r.midpoints], 0.5 * (m.points[e[:, 0]] + m.points[e[:, 1]]))
+    # every fine point is a coarse point or a midpoint, once
+    assert (np.sort(np.r_[r.coarse_points, r.midpoints]) == np.arange(f.n_points)).all()
     # each child has a quarter of its parent's area, and is counterclockwise
     assert np.allclose(f.areas().reshape(-1, 4), m.areas()[:, None] / 4)
     # the carried-over boundary equals the one computed from scratch, and the

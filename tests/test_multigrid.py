@@ -25,17 +25,17 @@ def test_prolongation_is_exact_for_linear_functions_and_restriction_is_its_trans
     coarse = jittered_mesh(5, 4)
     fine = coarse.refine()
     gm = GeometricMultigrid(StiffnessOperator(fine, dirichlet=fine.boundary_nodes()))
-    e, first_low, by_high_ptr, by_high = gm.levels[0].transfer
+    cp, e, mid, first_low, by_high_ptr, by_high = gm.levels[0].transfer
     lin = lambda p: 1 + 2 * p[:, 0] - 3 * p[:, 1]  # noqa: E731
     xf = np.zeros(fine.n_points)
-    _mg.prolong_add(e, lin(coarse.points), xf)
+    _mg.prolong_add(cp, e, mid, lin(coarse.points), xf)
     assert xf == pytest.approx(lin(fine.points))
     rng = np.random.default_rng(0)
     xc, yf = rng.standard_normal(coarse.n_points), rng.standard_normal(fine.n_points)
     Px = np.zeros(fine.n_points)
-    _mg.prolong_add(e, xc, Px)
+    _mg.prolong_add(cp, e, mid, xc, Px)
     Ry = np.empty(coarse.n_points)
-    _mg.restrict(first_low, by_high_ptr, by_high, yf, Ry)
+    _mg.restrict(cp, mid, first_low, by_high_ptr, by_high, yf, Ry)
     assert Px @ yf == pytest.approx(xc @ Ry, rel=1e-13)
 
 
@@ -146,6 +146,10 @@ def test_coefficients_go_down_the_levels():
     assert down.value == pytest.approx(per_tri.reshape(-1, 4).mean(axis=1))
     nodal = kernels.coefficients.parse_coefficient(fine.points[:, 0] + 1, fine)
     assert coarsen_coefficient(nodal, fine, coarse).value == pytest.approx(coarse.points[:, 0] + 1)
+    # per-triangle tensors are averaged over the children too
+    K = np.einsum("t,ij->tij", per_tri, np.eye(2))
+    tens = kernels.coefficients.parse_coefficient(K, fine, tensor=True)
+    assert coarsen_coefficient(tens, fine, coarse).value[:, 0, 0] == pytest.approx(down.value)
 
 
 def test_errors_say_how_to_fix_them():

@@ -33,3 +33,15 @@ def element_gradients(points, triangles):
         grads[t, 2, 0] = (y0 - y1) / d
         grads[t, 2, 1] = (x1 - x0) / d
     return areas, grads
+
+
+@jit(parallel=True)
+def double_areas(points, triangles, out):
+    """Twice the signed area of each triangle into ``out``."""
+    for t in prange(triangles.shape[0]):
+        i0 = triangles[t, 0]
+        i1 = triangles[t, 1]
+        i2 = triangles[t, 2]
+        out[t] = (points[i1, 0] - points[i0, 0]) * (points[i2, 1] - points[i0, 1]) - (
+            points[i2, 0] - points[i0, 0]
+        ) * (points[i1, 1] - points[i0, 1])

@@ -148,6 +148,45 @@ def _geometry_kernels(offdiagonals):
                     y[i1] -= o0 + o2
                     y[i2] -= o0 + o1
 
+    @jit(parallel=True)
+    def values(points, triangles, kappa, ks, tensor, ts, out):
+        # the three off-diagonal entries of each triangle, into out (M, 3)
+        for t in prange(triangles.shape[0]):
+            o0, o1, o2, _, _, _ = offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
+            out[t, 0] = o0
+            out[t, 1] = o1
+            out[t, 2] = o2
+
+    @jit(parallel=True)
+    def edge_weights(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks,
+                     triangle_edges, w):
+        # w[e] = sum over the edge's triangles of the entry of its pair
+        m = triangles.shape[0]
+        _zero(w)
+        for c in range(colour_ptr.size - 1):
+            for k in prange(colour_ptr[c], colour_ptr[c + 1]):
+                b = blocks[k]
+                for t in range(b * block_size, min(m, (b + 1) * block_size)):
+                    o0, o1, o2, _, _, _ = offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
+                    w[triangle_edges[t, 0]] += o0
+                    w[triangle_edges[t, 1]] += o1
+                    w[triangle_edges[t, 2]] += o2
+
+    @jit(parallel=True)
+    def abs_offdiagonal(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks,
+                        y):
+        # sum of |A_ij| over j != i, for Gershgorin's bound
+        m = triangles.shape[0]
+        _zero(y)
+        for c in range(colour_ptr.size - 1):
+            for k in prange(colour_ptr[c], colour_ptr[c + 1]):
+                b = blocks[k]
+                for t in range(b * block_size, min(m, (b + 1) * block_size)):
+                    o0, o1, o2, i0, i1, i2 = offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
+                    y[i0] += abs(o1) + abs(o2)
+                    y[i1] += abs(o0) + abs(o2)
+                    y[i2] += abs(o0) + abs(o1)
+
     @jit()
     def fixed_columns(points, triangles, kappa, ks, tensor, ts, near, is_fixed, x, y):
         # y -= K_free,fixed x_fixed over the triangles ``near`` that touch a fixed
@@ -160,44 +199,26 @@ def _geometry_kernels(offdiagonals):
             a2 = x[i2] if is_fixed[i2] else 0.0
             _add_triangle(y, i0, i1, i2, -o0, -o1, -o2, a0, a1, a2)
 
-    return coloured, serial, diagonal, fixed_columns
+    return {
+        "product": coloured,
+        "serial": serial,
+        "diagonal": diagonal,
+        "values": values,
+        "edge_weights": edge_weights,
+        "abs_offdiagonal": abs_offdiagonal,
+        "fixed_columns": fixed_columns,
+    }
 
 
-(_scalar_coloured, _scalar_serial, _scalar_diagonal, _scalar_fixed) = _geometry_kernels(
-    _offdiagonals_scalar
-)
-(_tensor_coloured, _tensor_serial, _tensor_diagonal, _tensor_fixed) = _geometry_kernels(
-    _offdiagonals_tensor
-)
+_KERNELS = {
+    "scalar": _geometry_kernels(_offdiagonals_scalar),
+    "tensor": _geometry_kernels(_offdiagonals_tensor),
+}
 
 
-def apply_geometry(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, x, y):
-    """``y = A x`` recomputing each triangle's geometry from its coordinates."""
-    kernel = _scalar_coloured if tensor.shape[0] == 0 else _tensor_coloured
-    kernel(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, x, y)
-
-
-def diagonal_geometry(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, y):
-    """The diagonal of the stiffness matrix into ``y``, by the same coloured blocks."""
-    kernel = _scalar_diagonal if tensor.shape[0] == 0 else _tensor_diagonal
-    kernel(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, y)
-
-
-def remove_fixed_columns(points, triangles, kappa, ks, tensor, ts, near, is_fixed, x, y):
-    """``y -= A[:, fixed] x[fixed]``, touching only the triangles ``near`` the fixed points.
-
-    With it a product with identity rows and columns at the fixed points is
-    the plain product, this boundary correction, and a copy of the fixed
-    entries: no masked copy of ``x`` (a full vector pass) is needed.
-    """
-    kernel = _scalar_fixed if tensor.shape[0] == 0 else _tensor_fixed
-    kernel(points, triangles, kappa, ks, tensor, ts, near, is_fixed, x, y)
-
-
-def serial_geometry(points, triangles, kappa, ks, tensor, ts, x, y):
-    """The plain version: one loop over triangles, no colouring (also the fallback)."""
-    kernel = _scalar_serial if tensor.shape[0] == 0 else _tensor_serial
-    kernel(points, triangles, kappa, ks, tensor, ts, x, y)
+def geometry_kernel(name, tensor):
+    """The kernel ``name`` of the geometry family for this coefficient (empty tensor: scalar)."""
+    return _KERNELS["scalar" if tensor.shape[0] == 0 else "tensor"][name]
 
 
 @jit(parallel=True)

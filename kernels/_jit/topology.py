@@ -205,3 +205,24 @@ def triangle_edges(triangles, indptr, indices, diag, first_edge):
             pos = _find(indices, diag[i] + 1, indptr[i + 1], j)
             out[t, c] = first_edge[i] + pos - diag[i] - 1
     return out
+
+
+@jit()
+def first_appearance(triangles, n_points, new_id):
+    """Number points in the order they first appear in ``triangles`` (row by row).
+
+    Points in no triangle are numbered last, in their old order.  Writes the
+    old-to-new map into ``new_id``; one serial pass.
+    """
+    new_id[:] = -1
+    k = 0
+    for t in range(triangles.shape[0]):
+        for a in range(3):
+            v = triangles[t, a]
+            if new_id[v] < 0:
+                new_id[v] = k
+                k += 1
+    for v in range(n_points):
+        if new_id[v] < 0:
+            new_id[v] = k
+            k += 1

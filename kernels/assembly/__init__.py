@@ -208,8 +208,15 @@ def assemble_load(mesh, f, *, quadrature=2):
     """
     _mesh(mesh)
     coef = parse_coefficient(f, mesh, name="load", sign="any")
+    tri = mesh.triangles
+    if coef.kind in ("constant", "triangle"):
+        # the same value at the three vertices: one (M,) array, no (M, 3) temporary
+        v = mesh.areas() * (coef.value / 3.0)
+        return sum(np.bincount(tri[:, a], weights=v, minlength=mesh.n_points) for a in range(3))
     v = load_values(mesh, coef, quadrature)
-    return np.bincount(mesh.triangles.ravel(), weights=v.ravel(), minlength=mesh.n_points)
+    return sum(
+        np.bincount(tri[:, a], weights=v[:, a], minlength=mesh.n_points) for a in range(3)
+    )
 
 
 def assemble_boundary_load(mesh, g, edges=None, *, quadrature=2):

@@ -7,7 +7,9 @@ import warnings
 
 import numpy as np
 
+from kernels._jit import geometry as _jit_geometry
 from kernels._jit import topology as _topo
+from kernels._sets import index_union
 from kernels.errors import MeshError, MeshWarning
 
 __all__ = ["Mesh", "Refinement", "index_dtype", "DEGENERATE_TOL"]
@@ -35,13 +37,23 @@ class Refinement:
     ----------
     coarse : Mesh
         The mesh that was refined.
-    edge_points : ndarray, shape (n_new_points, 2)
-        For each new point ``coarse.n_points + k``, the two coarse points of the
-        edge whose midpoint it is.  Coarse points keep their numbers.
+    coarse_points : ndarray, shape (coarse.n_points,)
+        The fine number of each coarse point (same position).
+    edge_points : ndarray, shape (n_coarse_edges, 2)
+        The two coarse points of each coarse edge (``coarse.edges()``).
+    midpoints : ndarray, shape (n_coarse_edges,)
+        The fine number of the point at the middle of each coarse edge.
+
+    The fine points are numbered in the order the fine triangles first use
+    them, which keeps neighbours close in memory at every level; these maps
+    are all that interpolation between the levels needs.  The four children
+    of coarse triangle ``t`` are fine triangles ``4t .. 4t+3``.
     """
 
     coarse: "Mesh"
+    coarse_points: np.ndarray
     edge_points: np.ndarray
+    midpoints: np.ndarray
 
     def __repr__(self):
         return f"Refinement(coarse={self.coarse!r}, new points={len(self.edge_points)})"
@@ -309,9 +321,10 @@ class Mesh:
     def areas(self):
         """Area of each triangle, shape (n_triangles,)."""
         if "areas" not in self._cache:
-            self._cache["areas"] = _readonly(
-                0.5 * signed_double_areas(self._points, self._triangles)
-            )
+            a = np.empty(self.n_triangles)
+            _jit_geometry.double_areas(self._points, self._triangles, a)
+            a *= 0.5
+            self._cache["areas"] = _readonly(a)
         return self._cache["areas"]
 
     # -- topology ---------------------------------------------------------------
@@ -383,7 +396,8 @@ class Mesh:
     def boundary_nodes(self):
         """Points on the boundary, sorted, shape (n_boundary_points,)."""
         if "boundary_nodes" not in self._cache:
-            self._cache["boundary_nodes"] = _readonly(np.unique(self.boundary_edges()))
+            nodes = index_union(self.n_points, self.boundary_edges().ravel())
+            self._cache["boundary_nodes"] = _readonly(nodes.astype(self._triangles.dtype))
         return self._cache["boundary_nodes"]
 
     def boundary_length(self):
@@ -400,11 +414,11 @@ class Mesh:
     def refine(self):
         """Uniform refinement: each triangle split into four by its edge midpoints.
 
-        The result is nested: it keeps this mesh's points (same numbers) and
-        appends one point per edge; :attr:`refinement` holds this mesh and, for
-        each new point, the two points of its edge.  The four children of
-        triangle ``t`` are triangles ``4t .. 4t+3``; boundary topology is
-        carried over without recomputation.
+        The result is nested: it has this mesh's points and one more at the
+        middle of each edge; :attr:`refinement` holds this mesh and the maps
+        from coarse points and edges to fine points (see :class:`Refinement`).
+        The four children of triangle ``t`` are triangles ``4t .. 4t+3``;
+        boundary topology is carried over without recomputation.
         """
         from kernels.mesh.refine import refine
 

@@ -66,16 +66,24 @@ class ChebyshevSmoother:
     bound : float, optional
         A guaranteed upper bound on the spectrum of ``D^-1 A`` (Gershgorin's,
         say); the Lanczos estimate times :data:`UPPER` is capped by it.
+    estimate : bool
+        Run the Lanczos estimate; with ``False`` the interval's top is
+        ``bound`` itself (which must then be given).
     """
 
-    def __init__(self, product, residual, dinv, degree, bound=None):
+    def __init__(self, product, residual, dinv, degree, bound=None, estimate=True):
         self.product = product
         self.residual = residual
         self.dinv = dinv
         self.degree = int(degree)
-        upper = UPPER * largest_eigenvalue(product, dinv)
-        if bound is not None:
-            upper = min(upper, bound)
+        if estimate:
+            upper = UPPER * largest_eigenvalue(product, dinv)
+            if bound is not None:
+                upper = min(upper, bound)
+        elif bound is None:
+            raise ValueError("ChebyshevSmoother needs a bound when estimate=False")
+        else:
+            upper = bound
         lower = LOWER * upper / UPPER
         self.theta = 0.5 * (upper + lower)
         self.delta = 0.5 * (upper - lower)

@@ -30,6 +30,7 @@ import numpy as np
 
 from kernels._jit import multigrid as _mg
 from kernels._jit import sparse as _k
+from kernels._sets import index_complement, index_union
 from kernels.assembly import assemble_stiffness
 from kernels.boundary import apply_dirichlet
 from kernels.coefficients import Coefficient, parse_coefficient
@@ -62,7 +63,9 @@ def coarsen_coefficient(coef, fine, coarse):
             "triangle", coef.value.reshape(-1, 4).mean(axis=1), coef.name, coef.sign
         )
     if coef.kind == "node":
-        return Coefficient("node", coef.value[: coarse.n_points].copy(), coef.name, coef.sign)
+        return Coefficient(
+            "node", coef.value[fine.refinement.coarse_points], coef.name, coef.sign
+        )
     if coef.value.ndim == 2:
         return coef
     return Coefficient(
@@ -95,18 +98,27 @@ class _JacobiSmoother:
 class _Level:
     """One level: operator, smoother, work vectors, and the transfer to the next coarser one."""
 
-    def __init__(self, mesh, coef, fixed, variant, smoother, degree, omega, quadrature):
+    def __init__(self, mesh, coef, fixed, variant, smoother, degree, omega, quadrature, op=None):
         self.mesh = mesh
         self.fixed = fixed
-        self.op = StiffnessOperator(
-            mesh, coef, variant=variant, dirichlet=fixed, quadrature=quadrature
-        )
+        if op is None:
+            op = StiffnessOperator(
+                mesh, coef, variant=variant, dirichlet=fixed, quadrature=quadrature
+            )
+        self.op = op
         n = mesh.n_points
         self.r, self.d, self.q = np.empty(n), np.empty(n), np.empty(n)
+        # the cycle's own solution and right-hand side on this level (a finer
+        # level restricts into them; the finest level's come from the caller)
         self.x, self.b = np.empty(n), np.empty(n)
         dinv = 1.0 / self.op.diagonal()
         if smoother == "chebyshev":
-            self.smoother = ChebyshevSmoother(self.op.matvec_into, self.residual, dinv, degree)
+            # Gershgorin's bound: guaranteed, one pass, and tight (2) on meshes
+            # without obtuse angle pairs; a Lanczos estimate would cost ten products
+            self.smoother = ChebyshevSmoother(
+                self.op.matvec_into, self.residual, dinv, degree,
+                bound=self.op.gershgorin_bound(), estimate=False,
+            )
         else:
             self.smoother = _JacobiSmoother(
                 self.op.matvec_into, self.residual, dinv, degree, omega
@@ -130,7 +142,8 @@ class _Level:
         by_high = np.argsort(e[:, 1], kind="stable").astype(dt)
         by_high_ptr = np.zeros(nc + 1, dtype=dt)
         np.cumsum(np.bincount(e[:, 1], minlength=nc), out=by_high_ptr[1:])
-        self.transfer = (e, first_low, by_high_ptr, by_high)
+        self.transfer = (refinement.coarse_points, e, refinement.midpoints, first_low,
+                         by_high_ptr, by_high)
 
     @property
     def nbytes(self):
@@ -164,8 +177,10 @@ class GeometricMultigrid(Preconditioner):
         Jacobi damping.
     coarse : {"direct", "amg"}
         Solver of the coarsest level (``amg`` when it is too big to factorise).
-    variant : str
-        Matrix-free variant of the level operators.
+    variant : str, optional
+        Matrix-free variant of the level operators (default: that of ``A``
+        when it is a StiffnessOperator, whose data the finest level then
+        shares; else :data:`kernels.operators.DEFAULT_VARIANT`).
 
     Costs, per point of the finest mesh: 5 work vectors and the smoother's
     diagonals (56 bytes), the transfer indices (about 12 bytes per coarse
@@ -188,10 +203,15 @@ class GeometricMultigrid(Preconditioner):
         degree=3,
         omega=2.0 / 3.0,
         coarse="direct",
-        variant=DEFAULT_VARIANT,
+        variant=None,
         quadrature=2,
     ):
+        fine_op = None
         if isinstance(A, StiffnessOperator):
+            if (variant is None or variant == A.variant) and coefficient is None and dirichlet is None:
+                # the finest level works with A itself: no second copy of its data
+                fine_op = A
+            variant = A.variant if variant is None else variant
             if mesh is not None and mesh is not A.mesh:
                 raise InputError("gmg: mesh differs from the mesh of the StiffnessOperator A")
             mesh = A.mesh
@@ -214,7 +234,7 @@ class GeometricMultigrid(Preconditioner):
             raise InputError(f"gmg: degree must be an integer >= 1, got {degree!r}")
         n = mesh.n_points
         fixed = self._fixed(mesh, dirichlet)
-        free = np.setdiff1d(np.arange(n), fixed)
+        free = index_complement(n, fixed)
         if A.shape[0] == n:
             self._free = None
         elif A.shape[0] == free.size:
@@ -235,16 +255,17 @@ class GeometricMultigrid(Preconditioner):
         fixeds = [fixed]
         for fine, coarse_mesh in zip(meshes[:0:-1], meshes[-2::-1], strict=True):
             coefs.append(coarsen_coefficient(coefs[-1], fine, coarse_mesh))
-            f = fixeds[-1]
-            fixeds.append(
-                np.union1d(
-                    f[f < coarse_mesh.n_points], coarse_mesh.unused_points().astype(np.int64)
-                )
-            )
+            is_fixed = np.zeros(fine.n_points, dtype=bool)
+            is_fixed[fixeds[-1]] = True
+            is_fixed_c = is_fixed[fine.refinement.coarse_points]
+            is_fixed_c[coarse_mesh.unused_points()] = True
+            fixeds.append(np.flatnonzero(is_fixed_c))
         coefs, fixeds = coefs[::-1], fixeds[::-1]
+        variant = DEFAULT_VARIANT if variant is None else variant
+        ops = [None] * (len(meshes) - 2) + [fine_op]
         self.levels = [
-            _Level(m, c, f, variant, smoother, self.degree, omega, quadrature)
-            for m, c, f in zip(meshes[1:], coefs[1:], fixeds[1:], strict=True)
+            _Level(m, c, f, variant, smoother, self.degree, omega, quadrature, op)
+            for m, c, f, op in zip(meshes[1:], coefs[1:], fixeds[1:], ops, strict=True)
         ]
         for lv in self.levels:
             lv.set_transfer(lv.mesh.refinement)
@@ -261,7 +282,7 @@ class GeometricMultigrid(Preconditioner):
             d = d.astype(np.int64)
             if d.size and (d.min() < 0 or d.max() >= mesh.n_points):
                 raise InputError(f"gmg: dirichlet has a point outside 0..{mesh.n_points - 1}")
-        return np.union1d(d, mesh.unused_points().astype(np.int64))
+        return index_union(mesh.n_points, d, mesh.unused_points())
 
     def _setup_coarse(self, mesh, coef, fixed, coarse, quadrature):
         self.coarse_mesh = mesh
@@ -316,13 +337,13 @@ class GeometricMultigrid(Preconditioner):
             x[:] = 0.0  # the smoothers take a zero guess to mean x is zero
         lv.smooth(x, b, zero_guess)
         lv.residual(x, b, lv.r)
-        e, first_low, by_high_ptr, by_high = lv.transfer
+        cp, e, mid, first_low, by_high_ptr, by_high = lv.transfer
         if level == 1:
             xc, bc, cfixed = self._coarse_x, self._coarse_b, self.coarse_fixed
         else:
             c = self.levels[level - 2]
             xc, bc, cfixed = c.x, c.b, c.fixed
-        _mg.restrict(first_low, by_high_ptr, by_high, lv.r, bc)
+        _mg.restrict(cp, mid, first_low, by_high_ptr, by_high, lv.r, bc)
         _mg.zero_at(cfixed, bc)
         if kind == "V":
             self._cycle(level - 1, xc, bc, True, "V")
@@ -335,7 +356,7 @@ class GeometricMultigrid(Preconditioner):
             self._cycle(level - 1, xc, bc, False, "V")
         corr = lv.r
         corr[:] = 0.0
-        _mg.prolong_add(e, xc, corr)
+        _mg.prolong_add(cp, e, mid, xc, corr)
         _mg.zero_at(lv.fixed, corr)
         x += corr
         lv.smooth(x, b, False)
