@@ -90,21 +90,50 @@ def gather_values(indptr, diag, ptr, codes, slot_next, slot_prev, dvals, ovals, 
 
     Around point ``i`` at local vertex ``a``: the diagonal gets ``dvals[t, a]``,
     entry ``(i, next)`` the pair opposite ``a+2`` and ``(i, prev)`` the pair
-    opposite ``a+1``.
+    opposite ``a+1``.  The diagonal is summed in a register, in the same order.
     """
     n = indptr.size - 1
+    three = uint64(3)
     for i in prange(n):
         for s in range(indptr[i], indptr[i + 1]):
-            data[s] = 0.0
-        di = diag[i]
+            data[uint64(s)] = 0.0
+        dsum = 0.0
         for e in range(ptr[i], ptr[i + 1]):
-            t = codes[e] // 3
-            a = codes[e] - 3 * t
-            b = a + 1 if a < 2 else 0
-            c = b + 1 if b < 2 else 0
-            data[di] += dvals[t, a]
-            data[slot_next[e]] += ovals[t, c]
-            data[slot_prev[e]] += ovals[t, b]
+            u = uint64(e)
+            q = uint64(codes[u])
+            t = q // three
+            a = q - three * t
+            b = a + uint64(1) if a < uint64(2) else uint64(0)
+            c = b + uint64(1) if b < uint64(2) else uint64(0)
+            dsum += dvals[t, a]
+            data[uint64(slot_next[u])] += ovals[t, c]
+            data[uint64(slot_prev[u])] += ovals[t, b]
+        if ptr[i + 1] > ptr[i]:
+            data[uint64(diag[i])] = dsum
+
+
+@jit(inline="always")
+def _row_entries(points, triangles, t, a, kappa, ks, tensor, ts, scalar):
+    """Entries (a, a), (a, a+1), (a, a+2) of triangle ``t``'s stiffness matrix."""
+    e00, e01, e10, e11, e20, e21, d, _, _, _ = _geometry(points, triangles, t)
+    if scalar:
+        w = kappa[uint64(t * ks)] / (2.0 * d)
+        k00, k01, k11 = 1.0, 0.0, 1.0
+    else:
+        w = 1.0 / (2.0 * d)
+        k00, k01, k11 = _rotated(tensor, t * ts)
+    # the edges opposite a, its successor b and its predecessor c
+    if a == 0:
+        ua0, ua1, ub0, ub1, uc0, uc1 = e00, e01, e10, e11, e20, e21
+    elif a == 1:
+        ua0, ua1, ub0, ub1, uc0, uc1 = e10, e11, e20, e21, e00, e01
+    else:
+        ua0, ua1, ub0, ub1, uc0, uc1 = e20, e21, e00, e01, e10, e11
+    return (
+        w * _ip(ua0, ua1, ua0, ua1, k00, k01, k11),
+        w * _ip(ua0, ua1, ub0, ub1, k00, k01, k11),
+        w * _ip(ua0, ua1, uc0, uc1, k00, k01, k11),
+    )
 
 
 @jit(parallel=True)
@@ -119,27 +148,19 @@ def gather_stiffness(
     """
     n = indptr.size - 1
     scalar = tensor.shape[0] == 0
+    three = uint64(3)
     for i in prange(n):
         for s in range(indptr[i], indptr[i + 1]):
-            data[s] = 0.0
-        di = diag[i]
+            data[uint64(s)] = 0.0
+        dsum = 0.0
         for e in range(ptr[i], ptr[i + 1]):
-            t = codes[e] // 3
-            a = codes[e] - 3 * t
-            e00, e01, e10, e11, e20, e21, d, _, _, _ = _geometry(points, triangles, t)
-            if scalar:
-                w = kappa[t * ks] / (2.0 * d)
-                k00, k01, k11 = 1.0, 0.0, 1.0
-            else:
-                w = 1.0 / (2.0 * d)
-                k00, k01, k11 = _rotated(tensor, t * ts)
-            # the edges opposite a, its successor b and its predecessor c
-            if a == 0:
-                ua0, ua1, ub0, ub1, uc0, uc1 = e00, e01, e10, e11, e20, e21
-            elif a == 1:
-                ua0, ua1, ub0, ub1, uc0, uc1 = e10, e11, e20, e21, e00, e01
-            else:
-                ua0, ua1, ub0, ub1, uc0, uc1 = e20, e21, e00, e01, e10, e11
-            data[di] += w * _ip(ua0, ua1, ua0, ua1, k00, k01, k11)
-            data[slot_next[e]] += w * _ip(ua0, ua1, ub0, ub1, k00, k01, k11)
-            data[slot_prev[e]] += w * _ip(ua0, ua1, uc0, uc1, k00, k01, k11)
+            u = uint64(e)
+            q = uint64(codes[u])
+            t = q // three
+            a = q - three * t
+            kaa, kab, kac = _row_entries(points, triangles, t, a, kappa, ks, tensor, ts, scalar)
+            dsum += kaa
+            data[uint64(slot_next[u])] += kab
+            data[uint64(slot_prev[u])] += kac
+        if ptr[i + 1] > ptr[i]:
+            data[uint64(diag[i])] = dsum

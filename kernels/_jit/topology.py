@@ -13,7 +13,7 @@ thread count.
 """
 
 import numpy as np
-from numba import prange
+from numba import prange, uint64
 
 from kernels._jit import jit
 
@@ -47,6 +47,22 @@ def incidence(triangles, ptr, codes):
             fill[i] += 1
 
 
+@jit(inline="always")
+def _others(codes, e):
+    """Triangle of incidence ``e`` and the local numbers of its successor and predecessor.
+
+    Unsigned arithmetic: numba then skips the negative-index checks (see
+    kernels/_jit/sparse.py).
+    """
+    three = uint64(3)
+    q = uint64(codes[uint64(e)])
+    t = q // three
+    a = q - three * t
+    b = a + uint64(1) if a < uint64(2) else uint64(0)
+    c = b + uint64(1) if b < uint64(2) else uint64(0)
+    return t, b, c
+
+
 @jit()
 def _insert_sorted(buf, start, count, value):
     """Insert ``value`` into the sorted ``buf[start:start+count]``; return the new count."""
@@ -62,27 +78,27 @@ def _insert_sorted(buf, start, count, value):
 
 
 @jit(parallel=True)
-def pattern_counts(triangles, ptr, codes, counts):
-    """Number of distinct columns (itself and its neighbours) of each point's row, into ``counts``."""
+def pattern_scratch(triangles, ptr, codes, scratch, counts):
+    """Sorted distinct columns of each row, into a scratch array with room to spare.
+
+    Row ``i`` (itself and the other two vertices of each of its ``k``
+    triangles: at most ``2k + 1`` columns) goes to
+    ``scratch[i + 2 ptr[i]:]``, a place known without counting first;
+    ``counts[i]`` gets its length (0 for a point in no triangle).
+    """
     n = ptr.size - 1
-    counts[:] = 0
-    n_blocks = (n + _BLOCK - 1) // _BLOCK
-    max_degree = 0
-    for i in range(n):
-        max_degree = max(max_degree, ptr[i + 1] - ptr[i])
-    for blk in prange(n_blocks):
-        buf = np.empty(2 * max_degree + 1, dtype=ptr.dtype)
-        for i in range(blk * _BLOCK, min(n, (blk + 1) * _BLOCK)):
-            if ptr[i] == ptr[i + 1]:
-                continue  # a point in no triangle has an empty row
-            buf[0] = i
-            c = 1
-            for e in range(ptr[i], ptr[i + 1]):
-                t = codes[e] // 3
-                a = codes[e] - 3 * t
-                c = _insert_sorted(buf, 0, c, triangles[t, (a + 1) % 3])
-                c = _insert_sorted(buf, 0, c, triangles[t, (a + 2) % 3])
-            counts[i] = c
+    for i in prange(n):
+        if ptr[i] == ptr[i + 1]:
+            counts[i] = 0
+            continue
+        start = i + 2 * ptr[i]
+        scratch[start] = i
+        c = 1
+        for e in range(ptr[i], ptr[i + 1]):
+            t, b, c2 = _others(codes, e)
+            c = _insert_sorted(scratch, start, c, triangles[t, b])
+            c = _insert_sorted(scratch, start, c, triangles[t, c2])
+        counts[i] = c
 
 
 @jit()
@@ -100,15 +116,16 @@ def _find(indices, lo, hi, value):
 
 
 @jit(parallel=True)
-def pattern_fill(triangles, ptr, codes, indptr, indices, diag, slot_next, slot_prev, with_slots):
-    """Fill the sorted column indices of each row and, optionally, the slot plan.
+def pattern_fill(triangles, ptr, codes, scratch, indptr, indices, diag, slot_next, slot_prev,
+                 with_slots):
+    """Copy the rows from the scratch array into CSR ``indices``; diagonal and slot plan.
 
     ``diag[i]`` is the position of ``(i, i)`` in ``indices`` (-1 for a point
-    in no triangle, whose row is empty).  With
-    ``with_slots``, for each incidence ``e`` of point ``i`` in triangle ``t``
-    at local vertex ``a``: ``slot_next[e]`` is the position of
-    ``(i, triangle[t, a+1])`` and ``slot_prev[e]`` that of
-    ``(i, triangle[t, a+2])``.  Each row is written only by its own iteration.
+    in no triangle, whose row is empty).  With ``with_slots``, for each
+    incidence ``e`` of point ``i`` in triangle ``t`` at local vertex ``a``:
+    ``slot_next[e]`` is the position of ``(i, triangle[t, a+1])`` and
+    ``slot_prev[e]`` that of ``(i, triangle[t, a+2])``.  Each row is written
+    only by its own iteration.
     """
     n = ptr.size - 1
     for i in prange(n):
@@ -116,21 +133,16 @@ def pattern_fill(triangles, ptr, codes, indptr, indices, diag, slot_next, slot_p
             diag[i] = -1
             continue
         start = indptr[i]
-        indices[start] = i
-        c = 1
-        for e in range(ptr[i], ptr[i + 1]):
-            t = codes[e] // 3
-            a = codes[e] - 3 * t
-            c = _insert_sorted(indices, start, c, triangles[t, (a + 1) % 3])
-            c = _insert_sorted(indices, start, c, triangles[t, (a + 2) % 3])
-        end = start + c
+        end = indptr[i + 1]
+        src = i + 2 * ptr[i]
+        for k in range(end - start):
+            indices[start + k] = scratch[src + k]
         diag[i] = _find(indices, start, end, i)
         if with_slots:
             for e in range(ptr[i], ptr[i + 1]):
-                t = codes[e] // 3
-                a = codes[e] - 3 * t
-                slot_next[e] = _find(indices, start, end, triangles[t, (a + 1) % 3])
-                slot_prev[e] = _find(indices, start, end, triangles[t, (a + 2) % 3])
+                t, b, c2 = _others(codes, e)
+                slot_next[uint64(e)] = _find(indices, start, end, triangles[t, b])
+                slot_prev[uint64(e)] = _find(indices, start, end, triangles[t, c2])
 
 
 @jit(parallel=True)

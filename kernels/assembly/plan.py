@@ -10,6 +10,7 @@ import scipy.sparse as sp
 from kernels._jit import topology as _topo
 from kernels.errors import InputError
 from kernels.mesh.core import index_dtype
+from kernels.mesh.pattern import csr_pattern
 
 __all__ = ["CSRPlan", "build_plan"]
 
@@ -102,17 +103,10 @@ def build_plan(mesh, *, index_dtype_override=None):
     ptr = np.empty(mesh.n_points + 1, dtype=dt)
     codes = np.empty(3 * mesh.n_triangles, dtype=dt)
     _topo.incidence(tri, ptr, codes)
-    counts = np.empty(mesh.n_points, dtype=dt)
-    _topo.pattern_counts(tri, ptr, codes, counts)
-    nnz = int(counts.sum(dtype=np.int64))
-    if index_dtype(nnz) != np.int32 and dt == np.int32:
-        # more stored entries than int32 can count: redo in int64
+    indptr, indices, diag, slot_next, slot_prev = csr_pattern(
+        tri, ptr, codes, with_slots=True, index_dtype_override=index_dtype_override
+    )
+    if indptr.dtype != dt:
+        # more stored entries than int32 can count: everything in int64
         return build_plan(mesh, index_dtype_override=np.int64)
-    indptr = np.zeros(mesh.n_points + 1, dtype=dt)
-    np.cumsum(counts, out=indptr[1:])
-    indices = np.empty(nnz, dtype=dt)
-    diag = np.empty(mesh.n_points, dtype=dt)
-    slot_next = np.empty(codes.size, dtype=dt)
-    slot_prev = np.empty(codes.size, dtype=dt)
-    _topo.pattern_fill(tri, ptr, codes, indptr, indices, diag, slot_next, slot_prev, True)
     return CSRPlan(mesh.n_points, indptr, indices, diag, ptr, codes, slot_next, slot_prev, tri)

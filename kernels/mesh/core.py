@@ -21,12 +21,7 @@ __all__ = ["Mesh", "Refinement", "index_dtype", "DEGENERATE_TOL"]
 #: while accepting anisotropic triangles up to aspect ratios near 1e12.
 DEGENERATE_TOL = 1e-12
 
-_INT32_MAX = np.iinfo(np.int32).max
-
-
-def index_dtype(*counts):
-    """int32 when every count fits in it, int64 otherwise."""
-    return np.dtype(np.int32) if max(counts, default=0) <= _INT32_MAX else np.dtype(np.int64)
+from kernels.mesh.core_index import index_dtype  # noqa: E402  (re-exported)
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
@@ -345,22 +340,19 @@ class Mesh:
 
     def _edge_topology(self):
         if "edges" not in self._cache or "triangle_edges" not in self._cache:
+            from kernels.mesh.pattern import csr_pattern
+
             tri = self._triangles_for_topology()
             ptr, codes = self._incidence()
-            counts = np.empty(self.n_points, dtype=ptr.dtype)
-            _topo.pattern_counts(tri, ptr, codes, counts)
-            indptr = np.zeros(self.n_points + 1, dtype=ptr.dtype)
-            np.cumsum(counts, out=indptr[1:])
-            indices = np.empty(int(indptr[-1]), dtype=ptr.dtype)
-            diag = np.empty(self.n_points, dtype=ptr.dtype)
-            none = np.empty(0, dtype=ptr.dtype)
-            _topo.pattern_fill(tri, ptr, codes, indptr, indices, diag, none, none, False)
-            rows = np.repeat(np.arange(self.n_points, dtype=ptr.dtype), counts)
+            indptr, indices, diag, _, _ = csr_pattern(tri, ptr, codes, with_slots=False)
+            counts = np.diff(indptr)
+            rows = np.repeat(np.arange(self.n_points, dtype=indptr.dtype), counts)
             keep = indices > rows
             upper = np.bincount(rows[keep], minlength=self.n_points)
-            first_edge = np.zeros(self.n_points, dtype=ptr.dtype)
+            first_edge = np.zeros(self.n_points, dtype=indptr.dtype)
             np.cumsum(upper[:-1], out=first_edge[1:])
             edges = np.column_stack([rows[keep], indices[keep]]).astype(self._triangles.dtype)
+            del rows, keep
             tri_edges = _topo.triangle_edges(tri, indptr, indices, diag, first_edge)
             self._cache["edges"] = _readonly(edges)
             self._cache["triangle_edges"] = _readonly(tri_edges)
