@@ -356,6 +356,21 @@ def _extreme(u, used, which):
 # -- solve ------------------------------------------------------------------------
 
 
+class IterationReport:
+    """CG iterations with the current residual, at most one line a second."""
+
+    def __init__(self, progress, every=1.0):
+        self.progress = progress
+        self.every = every
+        self.last = time.perf_counter()
+
+    def __call__(self, iteration, residual):
+        now = time.perf_counter()
+        if now - self.last >= self.every:
+            self.last = now
+            self.progress.phase(f"solve: iteration {iteration}, residual {residual:.3e}")
+
+
 PHASE_TEXT = {
     "assemble": "assemble: stiffness matrix and load vector",
     "boundary": "boundary: Dirichlet conditions",
@@ -622,6 +637,7 @@ def cmd_solve(args, progress):
         sol = scenarios.solve_problem(
             problem, preconditioner=args.preconditioner, rtol=args.rtol, maxiter=args.maxiter,
             progress=lambda phase: progress.phase(PHASE_TEXT.get(phase, phase)),
+            monitor=IterationReport(progress),
         )
         progress.phase("check: power balance from the boundary reactions")
         t0 = time.perf_counter()

@@ -223,11 +223,13 @@ def _check_scalars(rtol, atol, maxiter, n, callback):
 
 
 def cg_with_history(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None,
-                    callback=None, warn=True):
+                    callback=None, warn=True, monitor=None):
     """Preconditioned CG; like :func:`cg` but returns a :class:`CGResult`.
 
     ``warn=False`` suppresses the breakdown warning (the caller reports it,
-    ``result.message`` holds the text).  Other arguments as in :func:`cg`.
+    ``result.message`` holds the text).  ``monitor(iteration, residual_norm)``,
+    if given, is called after every iteration (for progress reports).  Other
+    arguments as in :func:`cg`.
     """
     product, n = _operator(A)
     b = as_vector(b, n, "b")
@@ -289,11 +291,15 @@ def cg_with_history(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None,
                 rnorm = math.sqrt(rr)
                 if rnorm <= tol:
                     history.append(rnorm)
+                    if monitor is not None:
+                        monitor(iteration, rnorm)
                     info, message = 0, f"converged in {iteration} iterations"
                     break
                 restart = True
                 restarts += 1
             history.append(rnorm)
+            if monitor is not None:
+                monitor(iteration, rnorm)
             if iteration == maxiter:
                 break
             if precond.identity:

@@ -141,6 +141,7 @@ def solve_poisson(
     matrix_free=None,
     variant=None,
     progress=None,
+    monitor=None,
     **preconditioner_options,
 ):
     """Solve ``-div(kappa grad u) + c u = f`` on a mesh in one call.
@@ -180,6 +181,8 @@ def solve_poisson(
     progress : callable, optional
         ``progress(phase)`` is called as each phase starts ("boundary",
         "assemble", "solve"), for reporting.
+    monitor : callable, optional
+        ``monitor(iteration, residual_norm)`` after every CG iteration.
 
     Returns
     -------
@@ -286,6 +289,7 @@ def solve_poisson(
         atol=atol,
         maxiter=maxiter,
         check=check,
+        monitor=monitor,
         **preconditioner_options,
     )
     timings["setup"] = result.timings["setup"]

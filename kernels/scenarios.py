@@ -268,7 +268,8 @@ def _coefficient(value):
     return value if np.ndim(value) == 0 else per_triangle(value)
 
 
-def solve_problem(problem, *, preconditioner="amg", rtol=1e-10, maxiter=None, progress=None):
+def solve_problem(problem, *, preconditioner="amg", rtol=1e-10, maxiter=None, progress=None,
+                  monitor=None):
     """Solve ``problem`` with :func:`kernels.poisson.solve_poisson` (``check=True``).
 
     Raises :class:`~kernels.errors.ConvergenceError` when the solve does not
@@ -285,6 +286,7 @@ def solve_problem(problem, *, preconditioner="amg", rtol=1e-10, maxiter=None, pr
         maxiter=maxiter,
         check=True,
         progress=progress,
+        monitor=monitor,
     )
 
 

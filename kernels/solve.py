@@ -55,7 +55,7 @@ class SolveResult:
 
 
 def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=None,
-          check=False, **preconditioner_options):
+          check=False, monitor=None, **preconditioner_options):
     """Solve the symmetric positive definite system ``A x = b``.
 
     Parameters
@@ -71,6 +71,8 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
         As in :func:`kernels.krylov.cg` (``maxiter`` defaults to ``10 n``).
     check : bool
         Raise :class:`ConvergenceError` instead of warning when not converged.
+    monitor : callable, optional
+        ``monitor(iteration, residual_norm)`` after every CG iteration.
     **preconditioner_options
         Passed to :func:`kernels.precond.make_preconditioner`.
 
@@ -106,7 +108,8 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
                          f"got {type(preconditioner).__name__}")
 
     start = time.perf_counter()
-    outcome = cg_with_history(A, b, x0, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False)
+    outcome = cg_with_history(A, b, x0, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
+                              monitor=monitor)
     elapsed = time.perf_counter() - start
 
     result = SolveResult(

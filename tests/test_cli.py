@@ -412,3 +412,22 @@ def test_kernel_cache_state_counts_the_library_kernels():
     state = cli.kernel_cache_state()
     assert state is not None, "numba's cache index could not be read"
     assert state["total"] >= 10 and 0 <= state["cached"] <= state["total"]
+
+
+def test_iteration_report_throttles_and_names_the_residual():
+    from kernels.cli import IterationReport
+
+    class Recorder:
+        def __init__(self):
+            self.lines = []
+
+        def phase(self, text):
+            self.lines.append(text)
+
+    rec = Recorder()
+    report = IterationReport(rec, every=0.0)
+    report(3, 1.5e-4)
+    assert rec.lines == ["solve: iteration 3, residual 1.500e-04"]
+    slow = IterationReport(rec, every=3600.0)
+    slow(4, 1.0)
+    assert len(rec.lines) == 1  # nothing more within the hour

@@ -125,3 +125,12 @@ def test_bad_inputs():
         solve(sp.csr_array(np.ones((2, 3))), np.ones(2))
     with pytest.raises(TypeError):
         solve(A, np.ones(A.shape[0]), "jacobi")  # keyword-only
+
+
+def test_monitor_sees_every_iteration_and_its_residual():
+    A = poisson((30, 30), format="csr")
+    seen = []
+    result = solve(A, np.ones(900), preconditioner="jacobi", rtol=1e-8,
+                   monitor=lambda k, r: seen.append((k, r)))
+    assert [k for k, _ in seen] == list(range(1, result.iterations + 1))
+    assert np.array([r for _, r in seen]) == pytest.approx(result.residuals[1:])
