@@ -201,19 +201,33 @@ def parse_coefficient(value, mesh, *, name="coefficient", sign="positive", tenso
             f"{name} has shape {a.shape}; expected a number, one value per point ({n},), "
             f"one per triangle ({m},)" + (", or 2x2 tensors" if tensor else "")
         )
+    return _per_item(a, on, name, sign, n, "triangle", m)
+
+
+# how each kind of item is named in messages, and the helper that tags it
+_ITEM = {
+    "node": ("point", "points", "per_node"),
+    "triangle": ("triangle", "triangles", "per_triangle"),
+    "edge": ("edge", "edges", "per_edge"),
+}
+
+
+def _per_item(a, on, name, sign, n_points, other, n_other):
+    """A 1-D array of values per point or per ``other`` item (triangle or edge), checked."""
+    plural = _ITEM[other][1]
     if on is None:
-        if len(a) == n == m:
+        if len(a) == n_points == n_other:
             raise InputError(
-                f"{name} has {len(a)} values and the mesh has {n} points and {m} triangles: "
-                "wrap it with kernels.per_node(...) or kernels.per_triangle(...)"
+                f"{name} has {len(a)} values and there are {n_points} points and {n_other} "
+                f"{plural}: wrap it with kernels.per_node(...) or kernels.{_ITEM[other][2]}(...)"
             )
-        on = "node" if len(a) == n else "triangle" if len(a) == m else None
-    expected = n if on == "node" else m
+        on = "node" if len(a) == n_points else other if len(a) == n_other else None
+    expected = n_points if on == "node" else n_other
     if on is None or len(a) != expected:
         raise InputError(
-            f"{name} has {len(a)} values, but the mesh has {n} points and {m} triangles"
+            f"{name} has {len(a)} values, but there are {n_points} points and {n_other} {plural}"
         )
-    _check_values(a, name, sign, "point" if on == "node" else "triangle")
+    _check_values(a, name, sign, _ITEM[on][0])
     return Coefficient(on, a, name, sign)
 
 
@@ -296,17 +310,4 @@ def parse_edge_coefficient(value, mesh, n_edges, *, name, sign):
             f"{name} has shape {a.shape}; expected a number, one value per point ({n},) "
             f"or one per edge ({n_edges},)"
         )
-    if on is None:
-        if len(a) == n == n_edges:
-            raise InputError(
-                f"{name} has {len(a)} values and there are {n} points and {n_edges} edges: "
-                "wrap it with kernels.per_node(...) or kernels.per_edge(...)"
-            )
-        on = "node" if len(a) == n else "edge" if len(a) == n_edges else None
-    expected = n if on == "node" else n_edges
-    if on is None or len(a) != expected:
-        raise InputError(
-            f"{name} has {len(a)} values, but there are {n} points and {n_edges} edges"
-        )
-    _check_values(a, name, sign, "point" if on == "node" else "edge")
-    return Coefficient(on, a, name, sign)
+    return _per_item(a, on, name, sign, n, "edge", n_edges)
