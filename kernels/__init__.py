@@ -9,7 +9,7 @@
 (225, 225)
 """
 
-from kernels import krylov, mesh, norms
+from kernels import distributed, krylov, mesh, norms
 from kernels._jit import threads
 from kernels.assembly import (
     STRATEGIES,
@@ -46,6 +46,7 @@ __all__ = [
     "StiffnessAssembler",
     "StiffnessOperator",
     "apply_dirichlet",
+    "distributed",
     "assemble_boundary_load",
     "assemble_boundary_mass",
     "assemble_load",

@@ -611,6 +611,15 @@ def _solve_report(problem, summary, out):
 
 
 def cmd_solve(args, progress):
+    # -- MPI hook (kernels.distributed): under mpiexec with several ranks, solve distributed;
+    # -- the launcher's environment is read without importing mpi4py. ------------------------
+    from kernels.distributed.launch import ranks_from_environment
+
+    if ranks_from_environment() > 1:
+        from kernels.distributed.command import solve_command
+
+        return solve_command(args, progress)
+    # -- end of MPI hook -----------------------------------------------------------------------
     from kernels import scenarios
 
     if args.cells is not None and args.refine is not None:

@@ -1,0 +1,54 @@
+"""Partitioned assembly and solve over MPI ranks (mpi4py, imported only when needed).
+
+``import kernels.distributed`` works without mpi4py: partitioning,
+subdomains, local assembly and the halo patterns are plain NumPy; only the
+exchange, the distributed CG and :func:`solve_poisson` need MPI.
+
+>>> from kernels.mesh import rectangle
+>>> from kernels.distributed import partition
+>>> partition(rectangle(8, 8), 2).counts().tolist()
+[40, 41]
+
+Run a distributed solve with ``mpiexec -n P python script.py`` where the
+script calls :func:`solve_poisson` (the serial arguments plus ``comm``,
+``coarse``, ``partition``, ``gather``, ``threads``), or with
+``mpiexec -n P hatkernels solve``.  See docs/distributed.md.
+"""
+
+from kernels.distributed.assembly import LocalSystem, assemble_local, reduce_local
+from kernels.distributed.halo import CommStats, HaloPattern
+from kernels.distributed.launch import MPIUnavailable, ranks_from_environment
+from kernels.distributed.partition import (
+    METHODS,
+    WEIGHTS,
+    Partition,
+    PartitionQuality,
+    partition,
+    partition_from_owner,
+)
+from kernels.distributed.precond import COARSE_SPACES
+from kernels.distributed.solve import GATHER, DistributedPoissonSolution, solve_poisson
+from kernels.distributed.subdomain import Subdomain, local_coefficient, subdomain
+
+__all__ = [
+    "COARSE_SPACES",
+    "GATHER",
+    "METHODS",
+    "WEIGHTS",
+    "CommStats",
+    "DistributedPoissonSolution",
+    "HaloPattern",
+    "LocalSystem",
+    "MPIUnavailable",
+    "Partition",
+    "PartitionQuality",
+    "Subdomain",
+    "assemble_local",
+    "local_coefficient",
+    "partition",
+    "partition_from_owner",
+    "ranks_from_environment",
+    "reduce_local",
+    "solve_poisson",
+    "subdomain",
+]

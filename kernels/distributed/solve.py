@@ -1,0 +1,479 @@
+"""The one-call distributed solve: :func:`kernels.poisson.solve_poisson` over MPI ranks.
+
+Every rank is given the whole mesh and the same data (the replicated input
+path: simple, and it keeps the call identical to the serial one, but each
+rank holds the whole mesh, so memory per rank does not shrink as ranks are
+added; see docs/distributed.md for the scalable alternative).  Each rank
+
+1. partitions the mesh (deterministically: all ranks compute the same split),
+2. extracts its subdomain (owned points, the triangles touching them, one
+   layer of ghosts) and assembles its owned rows there,
+3. reduces the Dirichlet points and lifts their values, locally,
+4. runs the distributed CG with a block-Jacobi (optionally two-level)
+   preconditioner, and
+5. gathers the nodal solution where asked.
+
+Errors in the local phases are agreed on before any rank goes on, so a bad
+value met by one rank raises on all of them instead of leaving the others
+waiting in a collective call.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+import warnings
+
+import numpy as np
+
+from kernels._jit import threads as _threads
+from kernels.assembly.boundary_terms import check_edges
+from kernels.coefficients import parse_coefficient, parse_edge_coefficient
+from kernels.distributed.assembly import assemble_local, local_boundary_data, reduce_local
+from kernels.distributed.cg import cg
+from kernels.distributed.halo import CommStats
+from kernels.distributed.launch import as_comm, default_threads, mpi
+from kernels.distributed.matrix import DistributedMatrix
+from kernels.distributed.partition import METHODS, Partition, partition
+from kernels.distributed.precond import COARSE_SPACES, make_distributed_preconditioner
+from kernels.distributed.subdomain import local_coefficient, subdomain
+from kernels.errors import ConvergenceError, InputError
+from kernels.mesh.core import Mesh
+from kernels.poisson import (
+    PoissonSolution,
+    _dirichlet_nodes,
+    _dirichlet_values,
+    _free_edges,
+    _peak_rss,
+)
+
+__all__ = ["DistributedPoissonSolution", "solve_poisson", "GATHER"]
+
+#: Values of ``gather``: the full solution on every rank, on rank 0 only, or nowhere.
+GATHER = (True, "root", False)
+
+
+@dataclasses.dataclass(repr=False)
+class DistributedPoissonSolution(PoissonSolution):
+    """What the distributed :func:`solve_poisson` found, on one rank.
+
+    Attributes
+    ----------
+    u : ndarray, shape (n_points,), or None
+        Nodal values, where gathered (see ``gather``); None elsewhere.
+    converged : bool
+        The same on every rank.
+    stats : dict
+        The serial keys (``timings`` are the maximum over ranks, ``unknowns``
+        and ``nnz`` global, ``peak_rss_bytes`` the largest rank's) plus
+        ``ranks``, ``partition`` (method and quality), ``balance`` (one dict
+        per rank: owned points and unknowns, triangles, ghosts, neighbours,
+        stored entries, halo bytes per product, communication seconds),
+        ``communication`` (volumes per iteration, seconds) and
+        ``threads_per_rank``.
+    mesh : Mesh
+    u_owned : ndarray
+        Nodal values at this rank's owned points.
+    owned : ndarray
+        Global numbers of those points (ascending).
+    rank, size : int
+    """
+
+    u_owned: np.ndarray = None
+    owned: np.ndarray = None
+    rank: int = 0
+    size: int = 1
+
+    def __repr__(self):
+        s = self.stats
+        return (f"DistributedPoissonSolution(rank {self.rank} of {self.size}, "
+                f"{s['unknowns']} unknowns, {s['iterations']} iterations, "
+                f"converged={self.converged}, {s['timings']['total']:.3g} s)")
+
+
+def _together(comm, what, fn, *args, **kwargs):
+    """Run a local step on every rank; if it fails anywhere, raise on every rank.
+
+    The failing rank re-raises its own exception; the others raise the same
+    type (InputError for bad input, RuntimeError otherwise) naming the rank.
+    Costs one small ``allgather`` (setup only).
+    """
+    try:
+        value, failure = fn(*args, **kwargs), None
+    except Exception as exc:  # re-raised below, on every rank
+        value, failure = None, exc
+    note = None if failure is None else (isinstance(failure, InputError),
+                                         f"{type(failure).__name__}: {failure}")
+    notes = comm.allgather(note)
+    bad = [(r, n) for r, n in enumerate(notes) if n is not None]
+    if bad:
+        if failure is not None:
+            raise failure
+        r, (is_input, text) = bad[0]
+        cls = InputError if is_input else RuntimeError
+        raise cls(f"{what} failed on rank {r}: {text}")
+    return value
+
+
+def _same_input_everywhere(comm, mesh, parts):
+    mine = (mesh.n_points, mesh.n_triangles, float(mesh.points.sum()),
+            int(mesh.triangles.sum(dtype=np.int64)))
+    seen = comm.allgather(mine)
+    for r, other in enumerate(seen):
+        if other != mine:
+            raise InputError(f"rank {r} was given another mesh ({other[0]} points, {other[1]} "
+                             f"triangles) than rank {comm.Get_rank()} ({mine[0]}, {mine[1]}): "
+                             f"the distributed solve needs the same mesh on every rank")
+    if parts.owner.shape != (mesh.n_points,) or parts.mesh is not mesh:
+        raise InputError("the partition was made for another mesh")
+
+
+def _boundary_spec(mesh, fixed, neumann, robin):
+    """Edges and parsed data of the Neumann and Robin terms on the whole mesh."""
+    out = {}
+    if neumann is not None:
+        edges, h = neumann if isinstance(neumann, tuple) else (_free_edges(mesh, fixed), neumann)
+        e = check_edges(mesh, edges)
+        out["neumann"] = (e, parse_edge_coefficient(h, mesh, len(e), name="boundary load",
+                                                     sign="any"))
+    if robin is not None:
+        if not isinstance(robin, tuple) or len(robin) not in (2, 3):
+            raise InputError("robin must be (r, s) or (edges, r, s)")
+        edges, r, s = robin if len(robin) == 3 else (_free_edges(mesh, fixed),) + robin
+        e = check_edges(mesh, edges)
+        out["robin"] = (e,
+                        parse_edge_coefficient(r, mesh, len(e), name="boundary coefficient",
+                                               sign="nonnegative"),
+                        parse_edge_coefficient(s, mesh, len(e), name="boundary load",
+                                               sign="any"))
+    return out
+
+
+def _local_boundary(sub, n, spec):
+    neumann = robin = None
+    if "neumann" in spec:
+        e, h = spec["neumann"]
+        le, lh = local_boundary_data(sub, n, e, h, name="boundary load", sign="any")
+        neumann = (le, lh)
+    if "robin" in spec:
+        e, r, s = spec["robin"]
+        le, lr = local_boundary_data(sub, n, e, r, name="boundary coefficient",
+                                     sign="nonnegative")
+        _, ls = local_boundary_data(sub, n, e, s, name="boundary load", sign="any")
+        robin = (le, lr, ls)
+    return neumann, robin
+
+
+def _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, parts):
+    if not isinstance(mesh, Mesh):
+        raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
+    if matrix_free:
+        raise InputError("matrix_free=True is not available in the distributed solve; each "
+                         "rank assembles its rows (leave matrix_free unset)")
+    if variant is not None:
+        raise InputError("variant applies to matrix-free solves, which the distributed solve "
+                         "does not do")
+    if not isinstance(preconditioner, str):
+        raise InputError(f"the distributed solve takes a preconditioner name, applied on each "
+                         f"rank's block; got {type(preconditioner).__name__}")
+    if coarse not in COARSE_SPACES:
+        raise InputError(f"coarse must be one of {COARSE_SPACES}, got {coarse!r}")
+    if gather not in GATHER or isinstance(gather, int) and not isinstance(gather, bool):
+        raise InputError(f"gather must be True (every rank), 'root' (rank 0) or False, "
+                         f"got {gather!r}")
+    if not (parts is None or isinstance(parts, Partition) or parts in METHODS):
+        raise InputError(f"partition must be None, one of {METHODS} or a Partition, "
+                         f"got {parts!r}")
+
+
+def solve_poisson(
+    mesh,
+    f=1.0,
+    *,
+    comm=None,
+    dirichlet=0.0,
+    dirichlet_on=None,
+    coefficient=None,
+    reaction=None,
+    neumann=None,
+    robin=None,
+    preconditioner="amg",
+    rtol=1e-10,
+    atol=0.0,
+    maxiter=None,
+    check=False,
+    quadrature=2,
+    matrix_free=None,
+    variant=None,
+    progress=None,
+    coarse=None,
+    partition=None,
+    gather=True,
+    threads=None,
+    **preconditioner_options,
+):
+    """Solve ``-div(kappa grad u) + c u = f`` over the ranks of ``comm`` (collective).
+
+    Takes the arguments of :func:`kernels.poisson.solve_poisson` (the same
+    meaning; every rank passes the same mesh and data) and returns the same
+    kind of result.  With one rank the result equals the serial one.
+
+    Parameters
+    ----------
+    mesh, f, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin
+        As in :func:`kernels.poisson.solve_poisson`.
+    comm : mpi4py intracommunicator, optional
+        Default ``MPI.COMM_WORLD``.
+    preconditioner : str
+        A name from :data:`kernels.PRECONDITIONERS`, applied by each rank to
+        its owned block (block Jacobi); not ``"gmg"``.
+        ``**preconditioner_options`` go to it.
+    rtol, atol, maxiter, check
+        As in the serial solve; the stopping rule is on the global residual.
+    quadrature : int
+    matrix_free, variant
+        Not available distributed (an error if set).
+    progress : callable, optional
+        ``progress(phase)`` on every rank.
+    coarse : None or "constants"
+        None: block Jacobi.  ``"constants"``: the additive two-level
+        preconditioner with one constant per subdomain (iterations bounded
+        as ranks are added; see :mod:`kernels.distributed.precond`).
+    partition : None, "rcb", "hilbert" or Partition
+        How to split the points; default ``"rcb"`` (see
+        :func:`kernels.distributed.partition`).
+    gather : True, "root" or False
+        The full nodal solution ``u`` on every rank (``True``, the
+        default), on rank 0 only (``"root"``; ``u`` is None elsewhere), or
+        nowhere (``False``).  ``u_owned`` and ``owned`` are always set.
+    threads : int, optional
+        numba threads per rank; default from the cores and the ranks on this
+        node (see :func:`kernels.distributed.launch.default_threads`).
+
+    Returns
+    -------
+    DistributedPoissonSolution
+
+    Raises
+    ------
+    InputError
+        As the serial solve, on every rank; also when ranks were given
+        different meshes.
+    ConvergenceError
+        With ``check=True``, on every rank.
+    """
+    _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, partition)
+    comm = as_comm(comm)
+    n_threads, ranks_on_node, how = default_threads(comm, threads)
+    dcomm = comm.Dup()  # the solver's messages never meet the caller's
+    try:
+        with _threads(n_threads):
+            sol = _solve(mesh, f, dcomm, dirichlet, dirichlet_on, coefficient, reaction,
+                         neumann, robin, preconditioner, rtol, atol, maxiter, quadrature,
+                         progress, coarse, partition, gather, preconditioner_options)
+    finally:
+        dcomm.Free()
+    sol.stats["threads_per_rank"] = {"threads": n_threads, "ranks_on_node": ranks_on_node,
+                                     "chosen_by": how}
+    if not sol.converged:
+        final = sol.stats["residuals"][-1]
+        text = (f"solve: not converged: {sol.stats['message']}; residual {final:.3e} against "
+                f"the tolerance {sol.stats['tolerance']:.3e} (preconditioner "
+                f"{sol.stats['preconditioner']})")
+        if check:
+            raise ConvergenceError(text)
+        warnings.warn(text, RuntimeWarning, stacklevel=2)
+    return sol
+
+
+def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin,
+           preconditioner, rtol, atol, maxiter, quadrature, progress, coarse, parts, gather,
+           options):
+    MPI = mpi()
+    rank, size = comm.Get_rank(), comm.Get_size()
+    note = progress or (lambda phase: None)
+    stats = CommStats()
+    t0 = time.perf_counter()
+    timings = {}
+
+    note("boundary")
+    t1 = time.perf_counter()
+    kappa = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
+    c = None if reaction is None else parse_coefficient(reaction, mesh, name="reaction",
+                                                        sign="nonnegative")
+    load = parse_coefficient(f, mesh, name="load", sign="any")
+    if dirichlet_on is None:
+        dirichlet_on = "boundary" if neumann is None and robin is None else np.empty(0, np.int64)
+    fixed = _dirichlet_nodes(mesh, dirichlet_on)
+    values = _dirichlet_values(mesh, fixed, dirichlet)
+    spec = _boundary_spec(mesh, fixed, neumann, robin)
+    timings["boundary"] = time.perf_counter() - t1
+
+    t1 = time.perf_counter()
+    if isinstance(parts, Partition):
+        if parts.parts != size:
+            raise InputError(f"the partition has {parts.parts} parts but the communicator "
+                             f"has {size} ranks")
+        split = parts
+    else:
+        split = partition(mesh, size, method=parts or "rcb")
+    _same_input_everywhere(comm, mesh, split)
+    quality = split.quality()
+    sub = subdomain(split, rank)
+    timings["partition"] = time.perf_counter() - t1
+
+    note("assemble")
+    t2 = time.perf_counter()
+
+    def local_system():
+        nb, rb = _local_boundary(sub, mesh.n_points, spec)
+        A, b, has_robin = assemble_local(
+            sub, kappa=local_coefficient(kappa, sub), f=local_coefficient(load, sub),
+            reaction=None if c is None else local_coefficient(c, sub), neumann=nb, robin=rb,
+            quadrature=quadrature)
+        loc = sub.local_numbers(fixed, mesh.n_points)
+        here = loc >= 0
+        return A, b, has_robin, loc[here], values[here]
+
+    A_L, b_L, has_robin, fixed_local, values_local = _together(comm, "assembly", local_system)
+    has_robin = comm.allreduce(bool(has_robin), op=MPI.LOR)
+    if fixed.size == 0 and reaction is None and not has_robin:
+        raise InputError(
+            "no Dirichlet points, reaction or Robin term: the solution is defined only up to "
+            "a constant; fix u somewhere with dirichlet_on=..."
+        )
+    local = _together(comm, "Dirichlet reduction", reduce_local, sub, A_L, b_L, fixed_local,
+                      values_local)
+    del A_L, b_L
+    matrix = DistributedMatrix(local.A, local.pattern, comm, stats)
+    n_of = local.n_unknowns
+    arrived = matrix.halo.exchange_indices(local.free_points[:n_of])
+    _together(comm, "the halo check", _check_halo, arrived, local.free_points[n_of:])
+    timings["assemble"] = time.perf_counter() - t2
+
+    note("solve")
+    t3 = time.perf_counter()
+    M = _together(comm, "preconditioner setup", make_distributed_preconditioner, matrix,
+                  preconditioner, coarse, comm, stats, **options)
+    timings["setup"] = time.perf_counter() - t3
+    setup_stats = dataclasses.replace(stats)
+    t4 = time.perf_counter()
+    result = cg(matrix, local.b, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False)
+    timings["solve"] = time.perf_counter() - t4
+    u_owned = local.expand(result.x)
+
+    t5 = time.perf_counter()
+    u = _gather(comm, split, u_owned, gather)
+    timings["gather"] = time.perf_counter() - t5
+    timings["total"] = time.perf_counter() - t0
+
+    mine = {
+        "rank": rank,
+        "owned_points": int(sub.n_owned),
+        "owned_unknowns": int(n_of),
+        "triangles": int(len(sub.triangles)),
+        "ghost_points": int(sub.n_ghosts),
+        "ghost_unknowns": int(local.pattern.n_ghosts),
+        "neighbours": sub.neighbours.tolist(),
+        "nnz": int(matrix.nnz),
+        "operator_bytes": int(matrix.nbytes),
+        "halo_bytes_per_product": int(8 * local.pattern.send_counts.sum()),
+        "halo_messages_per_product": int((local.pattern.send_counts > 0).sum()),
+        "communication": _solve_part(stats, setup_stats).as_dict(),
+        "setup_communication_seconds": setup_stats.seconds,
+        "timings": timings,
+        "peak_rss_bytes": _peak_rss(),
+    }
+    balance = comm.allgather(mine)
+    worst = {k: max(b["timings"][k] for b in balance) for k in timings}
+    unknowns = sum(b["owned_unknowns"] for b in balance)
+    nnz = sum(b["nnz"] for b in balance)
+    op_bytes = sum(b["operator_bytes"] for b in balance)
+    description = M.description
+    if size > 1 and coarse is None:
+        description = f"block Jacobi over {size} ranks, rank 0's block: {description}"
+    description = comm.bcast(description, root=0)
+    iters = max(result.iterations, 1)
+    halo_total = sum(b["halo_bytes_per_product"] for b in balance)
+    stats_out = {
+        "timings": worst,
+        "iterations": result.iterations,
+        "residuals": result.residuals,
+        "unknowns": unknowns,
+        "nnz": nnz,
+        "matrix_free": False,
+        "operator_bytes": op_bytes,
+        "dirichlet_points": int(fixed.size),
+        "preconditioner": description,
+        "threads": _numba_threads(),
+        "peak_rss_bytes": max(b["peak_rss_bytes"] for b in balance),
+        "condition_estimate": result.condition_estimate,
+        "message": result.message,
+        "tolerance": result.tolerance,
+        "info": result.info,
+        "ranks": size,
+        "partition": {"method": split.method, "weight": split.weight, **quality.as_dict()},
+        "balance": balance,
+        "communication": {
+            "halo_bytes_per_product": halo_total,
+            "halo_messages_per_product": sum(b["halo_messages_per_product"] for b in balance),
+            "halo_exchanges_per_iteration": _per(balance, "halo_exchanges", iters),
+            "reductions_per_iteration": _per(balance, "reductions", iters),
+            "reduction_bytes_per_iteration": _per(balance, "reduction_bytes", iters),
+            "coarse_bytes_per_application": 16 * size if coarse else 0,
+            "seconds_max": max(b["communication"]["seconds"] for b in balance),
+            "seconds_per_iteration_max": max(b["communication"]["seconds"] for b in balance)
+            / iters,
+        },
+    }
+    return DistributedPoissonSolution(u=u, converged=result.converged, stats=stats_out,
+                                      mesh=mesh, u_owned=u_owned, owned=sub.owned.copy(),
+                                      rank=rank, size=size)
+
+
+def _check_halo(arrived, expected):
+    if not np.array_equal(arrived, expected):
+        k = int(np.flatnonzero(arrived != expected)[0])
+        raise RuntimeError(f"halo plan mismatch: ghost unknown {k} should be point "
+                           f"{int(expected[k])} but its owner sends point {int(arrived[k])}")
+
+
+def _solve_part(total, setup):
+    """Counters of the solve phase only (total minus what setup had)."""
+    out = CommStats()
+    for field in dataclasses.fields(CommStats):
+        setattr(out, field.name, getattr(total, field.name) - getattr(setup, field.name))
+    return out
+
+
+def _per(balance, counter, iterations):
+    """A solve-phase counter of the busiest rank, per iteration (setup excluded)."""
+    return max(b["communication"][counter] for b in balance) / iterations
+
+
+def _numba_threads():
+    import numba
+
+    return numba.get_num_threads()
+
+
+def _gather(comm, split, u_owned, gather):
+    if gather is False:
+        return None
+    MPI = mpi()
+    counts = split.counts().astype(np.int64)
+    displs = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    order = split.order()
+    n = split.mesh.n_points
+    if gather is True:
+        buf = np.empty(n)
+        comm.Allgatherv([u_owned, MPI.DOUBLE], [buf, (counts, displs), MPI.DOUBLE])
+    else:
+        buf = np.empty(n) if comm.Get_rank() == 0 else None
+        comm.Gatherv([u_owned, MPI.DOUBLE],
+                     [buf, (counts, displs), MPI.DOUBLE] if buf is not None else None, root=0)
+        if buf is None:
+            return None
+    u = np.empty(n)
+    u[order] = buf
+    return u

@@ -1,0 +1,200 @@
+"""One part's piece of the mesh: owned points, the triangles touching them, one layer of ghosts.
+
+A :class:`Subdomain` numbers its points locally: the owned points first
+(ascending global number), then the ghost points grouped by the part that
+owns them (ascending global number within a group).  Grouping makes the
+values received from each neighbour one contiguous slice of a local vector,
+so halo receives land in place with no unpacking.
+
+The triangles of a subdomain are every triangle with at least one owned
+vertex, in ascending global order.  That makes the owned rows of anything
+assembled on the local mesh complete and, because each point sees its
+triangles in the same order as in the whole mesh, equal to the rows of the
+whole mesh's matrix bit for bit.  Ghost rows are partial and are dropped.
+
+Coefficients are restricted to the subdomain by :func:`local_coefficient`;
+for callables, messages about bad values keep naming the global triangle.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from kernels.coefficients import Coefficient, parse_coefficient
+from kernels.errors import InputError
+from kernels.mesh.core import Mesh, index_dtype
+
+__all__ = ["Subdomain", "subdomain", "local_coefficient"]
+
+
+@dataclasses.dataclass(frozen=True, repr=False)
+class Subdomain:
+    """The local mesh of one part and how its points relate to the other parts.
+
+    Attributes
+    ----------
+    part, parts : int
+    points : ndarray, shape (n_local,)
+        Global number of each local point: owned ones first, then ghosts.
+    n_owned : int
+    triangles : ndarray, shape (n_local_triangles,)
+        Global number of each local triangle, ascending.
+    mesh : Mesh
+        The local mesh, in local numbering.
+    ghost_owner : ndarray, shape (n_ghosts,)
+        Part owning each ghost point (non-decreasing).
+    neighbours : ndarray
+        Parts this one exchanges values with, ascending (the relation is
+        symmetric: a part owns one of my ghosts iff I own one of its).
+    recv_offsets : ndarray, shape (len(neighbours) + 1,)
+        Ghosts ``recv_offsets[k]:recv_offsets[k+1]`` (counted from the first
+        ghost) are owned by ``neighbours[k]``.
+    send : tuple of ndarray
+        Local numbers of the owned points that are ghosts of ``neighbours[k]``,
+        in the order that neighbour stores them (ascending global number).
+    """
+
+    part: int
+    parts: int
+    points: np.ndarray
+    n_owned: int
+    triangles: np.ndarray
+    mesh: Mesh
+    ghost_owner: np.ndarray
+    neighbours: np.ndarray
+    recv_offsets: np.ndarray
+    send: tuple
+
+    @property
+    def n_ghosts(self):
+        return len(self.points) - self.n_owned
+
+    @property
+    def owned(self):
+        """Global numbers of the owned points, ascending."""
+        return self.points[: self.n_owned]
+
+    def local_numbers(self, global_points, n_points):
+        """Local number of each global point (-1 where the subdomain does not have it)."""
+        local = np.full(n_points, -1, dtype=np.int64)
+        local[self.points] = np.arange(len(self.points))
+        return local[np.asarray(global_points, dtype=np.int64)]
+
+    def __repr__(self):
+        return (f"Subdomain(part {self.part} of {self.parts}: {self.n_owned} owned + "
+                f"{self.n_ghosts} ghost points, {len(self.triangles)} triangles, "
+                f"neighbours {self.neighbours.tolist()})")
+
+
+def subdomain(partition, part):
+    """The :class:`Subdomain` of ``part`` in a :class:`~kernels.distributed.Partition`.
+
+    Costs O(n_points + n_triangles) on the whole mesh (the replicated-input
+    path; see docs/distributed.md for the scalable one).
+
+    Examples
+    --------
+    >>> from kernels.mesh import rectangle
+    >>> from kernels.distributed import partition, subdomain
+    >>> s = subdomain(partition(rectangle(4, 4), 2), 0)
+    >>> s.n_owned, s.n_ghosts, s.neighbours.tolist()
+    (12, 6, [1])
+    """
+    if isinstance(part, bool) or not isinstance(part, (int, np.integer)) \
+            or not 0 <= part < partition.parts:
+        raise InputError(f"part must be in 0..{partition.parts - 1}, got {part!r}")
+    part = int(part)
+    mesh, owner = partition.mesh, partition.owner
+    n = mesh.n_points
+    tri = mesh.triangles
+    mine = owner[tri] == part
+    tids = np.flatnonzero(mine.any(axis=1))
+    lt = tri[tids]
+    present = np.zeros(n, dtype=bool)
+    present[lt.ravel()] = True
+    is_owned = owner == part
+    owned = np.flatnonzero(is_owned)
+    ghosts = np.flatnonzero(present & ~is_owned)
+    ghosts = ghosts[np.argsort(owner[ghosts], kind="stable")]
+    points = np.concatenate([owned, ghosts])
+    dt = index_dtype(len(points))
+    local = np.full(n, -1, dtype=np.int64)
+    local[points] = np.arange(len(points))
+    lmesh = Mesh._trusted(mesh.points[points], local[lt].astype(dt))
+
+    ghost_owner = owner[ghosts].astype(np.int32)
+    neighbours = np.unique(ghost_owner)
+    recv_offsets = np.searchsorted(ghost_owner, np.append(neighbours, partition.parts))
+    n_owned = len(owned)
+    send = _send_lists(lmesh.triangles, n_owned, ghost_owner, neighbours, len(points))
+    for a in (points, tids, ghost_owner, neighbours, recv_offsets, *send):
+        a.setflags(write=False)
+    return Subdomain(part=part, parts=partition.parts, points=points, n_owned=n_owned,
+                     triangles=tids, mesh=lmesh, ghost_owner=ghost_owner,
+                     neighbours=neighbours, recv_offsets=recv_offsets, send=send)
+
+
+def _send_lists(ltri, n_owned, ghost_owner, neighbours, n_local):
+    """For each neighbour, the owned local points sharing a triangle with one of its points."""
+    a = np.concatenate([ltri[:, 0], ltri[:, 1], ltri[:, 2], ltri[:, 1], ltri[:, 2], ltri[:, 0]])
+    b = np.concatenate([ltri[:, 1], ltri[:, 2], ltri[:, 0], ltri[:, 0], ltri[:, 1], ltri[:, 2]])
+    keep = (a < n_owned) & (b >= n_owned)
+    q = ghost_owner[b[keep] - n_owned].astype(np.int64)
+    key = np.unique(q * n_local + a[keep])
+    qs, pts = np.divmod(key, n_local)
+    if not np.array_equal(np.unique(qs), neighbours):  # cannot happen on a valid mesh
+        raise RuntimeError("subdomain: the parts owning my ghosts and the parts I send to differ")
+    cuts = np.searchsorted(qs, neighbours[1:])
+    dt = index_dtype(n_local)
+    return tuple(p.astype(dt) for p in np.split(pts, cuts)) if len(neighbours) else ()
+
+
+@dataclasses.dataclass(frozen=True)
+class _LocalCallable(Coefficient):
+    """A callable coefficient on a subdomain whose messages name global triangles or edges.
+
+    ``evaluate`` is called with local owner numbers; they are mapped to the
+    global ones before the check.  ``__call__`` makes the object pass for a
+    plain callable where a function is expected (boundary data).
+    """
+
+    triangle_map: np.ndarray = None
+    edge_map: np.ndarray = None
+
+    def evaluate(self, x, y, owners, owner="triangle"):
+        table = self.triangle_map if owner == "triangle" else self.edge_map
+        if table is not None:
+            owners = table[np.asarray(owners, dtype=np.int64)]
+        return super().evaluate(x, y, owners, owner)
+
+    def __call__(self, x, y):
+        return self.value(x, y)
+
+
+def local_coefficient(coef, sub, *, edge_map=None):
+    """Restrict a :class:`~kernels.coefficients.Coefficient` of the whole mesh to ``sub``.
+
+    Values per triangle follow ``sub.triangles``, per point ``sub.points``;
+    constants and (2, 2) tensors are shared; callables are evaluated where
+    the local mesh needs them (same points, same values), and ``edge_map``
+    (local edge -> global edge number) names edges in their messages.
+    """
+    if not isinstance(coef, Coefficient):
+        raise InputError(f"expected a parsed Coefficient, got {type(coef).__name__}")
+    kind, value = coef.kind, coef.value
+    if kind == "callable":
+        return _LocalCallable(kind, value, coef.name, coef.sign,
+                              triangle_map=sub.triangles, edge_map=edge_map)
+    if kind == "triangle" or (kind == "tensor" and np.ndim(value) == 3):
+        value = value[sub.triangles]
+    elif kind == "node":
+        value = value[sub.points]
+    return Coefficient(kind, value, coef.name, coef.sign)
+
+
+def parse_local(value, mesh, sub, *, name, sign="positive", tensor=False):
+    """Parse ``value`` on the whole mesh (checks every value once) and restrict it to ``sub``."""
+    return local_coefficient(parse_coefficient(value, mesh, name=name, sign=sign, tensor=tensor),
+                             sub)

@@ -1,0 +1,425 @@
+"""Checks of kernels.distributed under MPI: run as ``mpiexec -n P python tests/mpi_checks.py``.
+
+tests/test_distributed.py runs this script with 2 and 3 ranks (with a
+timeout).  A failure on any rank aborts every rank (``MPI_Abort`` from the
+exception hook) so that no rank is left waiting in a collective call; rank
+0 prints ``mpi_checks: all N checks passed on P ranks`` at the end.
+
+Nothing runs on import (pytest's doctest collection imports this file).
+"""
+
+import sys
+import time
+import traceback
+import warnings
+
+
+def _install_abort_hook(MPI):
+    def hook(kind, value, tb):
+        sys.stderr.write(f"mpi_checks: rank {MPI.COMM_WORLD.Get_rank()} failed:\n")
+        traceback.print_exception(kind, value, tb)
+        sys.stderr.flush()
+        MPI.COMM_WORLD.Abort(1)
+
+    sys.excepthook = hook
+
+
+CHECKS = []
+
+
+def _wait_politely(comm):
+    """A barrier that sleeps while it waits: with more ranks than cores, a spinning
+    barrier would take the core from the rank that still works."""
+    request = comm.Ibarrier()
+    while not request.Test():
+        time.sleep(0.002)
+
+
+def check(fn):
+    CHECKS.append(fn)
+    return fn
+
+
+def dense_preconditioners(Af, owner, P):
+    """Dense block Jacobi and additive two-level preconditioners, from their formulas:
+    ``blockdiag(A_qq^-1)`` and that plus ``R^T (R A R^T)^-1 R`` (numpy; the reference)."""
+    import numpy as np
+
+    Minv = np.zeros_like(Af)
+    for q in range(P):
+        I = np.flatnonzero(owner == q)
+        Minv[np.ix_(I, I)] = np.linalg.inv(Af[np.ix_(I, I)])
+    R = np.zeros((P, len(owner)))
+    R[owner, np.arange(len(owner))] = 1.0
+    return Minv, Minv + R.T @ np.linalg.solve(R @ Af @ R.T, R)
+
+
+def _meshes():
+    from kernels.mesh import disk, l_shape, rectangle
+
+    return {"rectangle": rectangle(20, 14), "l_shape": l_shape(10), "disk": disk(9)}
+
+
+def _serial(mesh, f, **kw):
+    """The project's serial solve, on one thread (the ranks share the cores)."""
+    import kernels
+
+    with kernels.threads(1):
+        return kernels.solve_poisson(mesh, f, **kw)
+
+
+@check
+def solution_equals_serial_and_scipy(comm):
+    import numpy as np
+    import scipy.sparse.linalg as spla
+
+    import kernels
+    from kernels.distributed import solve_poisson
+
+    for name, mesh in _meshes().items():
+        x, y = mesh.points.T
+        cases = [
+            ("amg", None, {}),
+            ("ic0", "constants", {"coefficient": lambda x, y: 1 + x * x, "dirichlet": x + 2 * y}),
+            ("jacobi", None, {"reaction": 2.0, "neumann": 0.5,
+                              "dirichlet_on": np.flatnonzero(mesh.points[:, 0] <= x.min() + 1e-9)}),
+        ]
+        for pc, coarse, kw in cases:
+            f = lambda x, y: 1 + np.sin(3 * x) * y  # noqa: E731
+            sol = solve_poisson(mesh, f, comm=comm, rtol=1e-12, preconditioner=pc,
+                                coarse=coarse, check=True, **kw)
+            ser = _serial(mesh, f, rtol=1e-12, preconditioner=pc, **kw)
+            scale = np.abs(ser.u).max()
+            # the project's serial solve (itself checked against scipy in tests/test_poisson.py)
+            assert np.abs(sol.u - ser.u).max() <= 1e-8 * scale, (name, pc)
+            assert sol.stats["unknowns"] == ser.stats["unknowns"]
+            assert sol.stats["nnz"] == ser.stats["nnz"]
+            # reference library: scipy (spsolve on the serial reduced system, direct)
+            if not kw:
+                A = kernels.assemble_stiffness(mesh)
+                b = kernels.assemble_load(mesh, f)
+                system = kernels.apply_dirichlet(A, b, mesh.boundary_nodes())
+                u = system.expand(spla.spsolve(system.A.tocsc(), system.b))
+                assert np.abs(sol.u - u).max() <= 1e-8 * np.abs(u).max(), name
+
+
+@check
+def matrix_rows_equal_serial(comm):
+    import numpy as np
+    import scipy.sparse as sp
+
+    import kernels
+    from kernels.coefficients import parse_coefficient
+    from kernels.distributed import partition, subdomain
+    from kernels.distributed.assembly import (
+        assemble_local,
+        reduce_local,
+        rows_in_global,
+    )
+    from kernels.distributed.halo import CommStats
+    from kernels.distributed.matrix import DistributedMatrix
+    from kernels.distributed.subdomain import local_coefficient
+
+    rank, size = comm.Get_rank(), comm.Get_size()
+    for name, mesh in _meshes().items():
+        kappa = parse_coefficient(lambda x, y: 2 + np.cos(x + y), mesh, tensor=True)
+        load = parse_coefficient(1.0, mesh, sign="any")
+        sub = subdomain(partition(mesh, size), rank)
+        A_L, b_L, _ = assemble_local(sub, kappa=local_coefficient(kappa, sub),
+                                     f=local_coefficient(load, sub))
+        # the project's serial csr assembly (checked against the reference strategy and
+        # the 5-point stencil in tests/test_assembly.py), owned rows: the same bits
+        A = kernels.assemble_stiffness(mesh, kappa).tocsr()
+        mine = rows_in_global(A_L[: sub.n_owned], sub.points, mesh.n_points)
+        ref = sp.csr_matrix(A[sub.owned])
+        ref.sort_indices()
+        assert np.array_equal(mine.indptr, ref.indptr), name
+        assert np.array_equal(mine.indices, ref.indices), name
+        assert np.array_equal(mine.data, ref.data), name
+        # the reduced distributed matrix (what the products use) against apply_dirichlet
+        fixed = mesh.boundary_nodes()
+        loc = sub.local_numbers(fixed, mesh.n_points)
+        local = reduce_local(sub, A_L, b_L, loc[loc >= 0], 0.0)
+        D = DistributedMatrix(local.A, local.pattern, comm, CommStats())
+        rows = sp.hstack([D.A_oo, D.A_og], format="csr")
+        system = kernels.apply_dirichlet(A, kernels.assemble_load(mesh, 1.0), fixed)
+        position = np.full(mesh.n_points, -1)
+        position[system.free] = np.arange(len(system.free))
+        got = rows_in_global(rows, position[local.free_points], len(system.free))
+        want = sp.csr_matrix(system.A[position[local.free_points[: local.n_unknowns]]])
+        want.sort_indices()
+        assert (abs(got - want)).max() == 0, name
+        assert np.array_equal(local.b, system.b[position[local.free_points[: local.n_unknowns]]])
+
+
+@check
+def halo_round_trip_and_product(comm):
+    import numpy as np
+
+    import kernels
+    from kernels.distributed import partition, subdomain
+    from kernels.distributed.halo import Halo, HaloPattern
+    from kernels.distributed.matrix import DistributedMatrix
+
+    rank, size = comm.Get_rank(), comm.Get_size()
+    mesh = kernels.mesh.disk(10)
+    sub = subdomain(partition(mesh, size, method="hilbert"), rank)
+    halo = Halo(HaloPattern.from_subdomain(sub), comm)
+    rng = np.random.default_rng(7)
+    field = rng.standard_normal(mesh.n_points)  # the same on every rank
+    x = np.full(len(sub.points), np.nan)
+    x[: sub.n_owned] = field[sub.owned]
+    for _ in range(3):  # repeated exchanges reuse the buffers
+        halo.exchange(x)
+        assert np.array_equal(x, field[sub.points])  # exact: values are copied, not computed
+        x[sub.n_owned:] = np.nan
+    assert np.array_equal(halo.exchange_indices(sub.owned.astype(np.int64)),
+                          sub.points[sub.n_owned:])
+    # the distributed product against the serial one (same rows, different column order)
+    A = kernels.assemble_stiffness(mesh)
+    local = A[sub.points[: sub.n_owned]][:, sub.points]
+    D = DistributedMatrix(local.tocsr(), HaloPattern.from_subdomain(sub), comm)
+    p = np.zeros(len(sub.points))
+    p[: sub.n_owned] = field[sub.owned]
+    q = np.empty(sub.n_owned)
+    D.matvec_into(p, q)
+    ref = (A @ field)[sub.owned]
+    assert np.abs(q - ref).max() <= 1e-13 * np.abs(ref).max()
+
+
+@check
+def one_rank_equals_serial_bit_for_bit(comm):
+    import numpy as np
+
+    from kernels.distributed import solve_poisson
+
+    me = comm.Split(color=0 if comm.Get_rank() == 0 else 1, key=comm.Get_rank())
+    try:
+        if comm.Get_rank() == 0:
+            for mesh in _meshes().values():
+                for pc in ("amg", "jacobi", "none"):
+                    sol = solve_poisson(mesh, 1.0, comm=me, rtol=1e-10, preconditioner=pc)
+                    ser = _serial(mesh, 1.0, rtol=1e-10, preconditioner=pc)
+                    assert sol.stats["iterations"] == ser.stats["iterations"]
+                    assert np.array_equal(sol.u, ser.u), pc
+    finally:
+        me.Free()
+        _wait_politely(comm)
+
+
+@check
+def two_level_stays_bounded(comm):
+    import numpy as np
+
+    from kernels.distributed import solve_poisson
+    from kernels.mesh import rectangle
+
+    # Dirichlet on the left edge only: with 3 parts two subdomains do not touch it.
+    mesh = rectangle(32, 32)
+    left = np.flatnonzero(mesh.points[:, 0] == 0)
+    found = {}
+    for P in range(1, comm.Get_size() + 1):
+        sub = comm.Split(color=0 if comm.Get_rank() < P else 1, key=comm.Get_rank())
+        try:
+            if comm.Get_rank() < P:
+                for coarse in (None, "constants"):
+                    sol = solve_poisson(mesh, 1.0, comm=sub, dirichlet_on=left, rtol=1e-8,
+                                        preconditioner="amg", coarse=coarse, check=True)
+                    found[P, coarse] = (sol.stats["iterations"], sol.stats["condition_estimate"])
+        finally:
+            sub.Free()
+    if comm.Get_rank() == 0:
+        print("mpi_checks: iterations and condition estimates", found)
+        # Additive two-level Schwarz: condition number bounded independently of the number
+        # of subdomains (A. Toselli, O. Widlund, Domain Decomposition Methods, 2005, ch. 3)
+        # while block Jacobi's grows (value from memory for the form of the bounds).
+        its = [found[P, "constants"][0] for P in range(1, comm.Get_size() + 1)]
+        kap = [found[P, "constants"][1] for P in range(1, comm.Get_size() + 1)]
+        top = comm.Get_size()
+        assert its[0] <= its[-1]
+        if top >= 3:
+            assert its[2] <= 1.25 * its[1], its  # linear growth would be 1.5
+            assert kap[2] <= 1.25 * kap[1], kap
+            one = [found[P, None][1] for P in (2, 3)]
+            assert one[1] >= 1.2 * one[0], one  # the problem does exercise the coarse space
+            assert kap[2] < one[1], (kap, one)
+
+
+@check
+def two_level_apply_equals_dense(comm):
+    import numpy as np
+
+    import kernels
+    from kernels.distributed import partition
+    from kernels.distributed.halo import CommStats
+    from kernels.distributed.precond import make_distributed_preconditioner
+
+    size = comm.Get_size()
+    mesh = kernels.mesh.l_shape(6)
+    split = partition(mesh, size)
+    fixed = mesh.boundary_nodes()
+    D, local = _distributed_system(comm, mesh)
+    M = make_distributed_preconditioner(D, "direct", "constants", comm, CommStats())
+    system = kernels.apply_dirichlet(kernels.assemble_stiffness(mesh),
+                                     kernels.assemble_load(mesh, 1.0), fixed)
+    rng = np.random.default_rng(3)
+    r_all = rng.standard_normal(len(system.free))
+    position = np.full(mesh.n_points, -1)
+    position[system.free] = np.arange(len(system.free))
+    mine = position[local.free_points[: local.n_unknowns]]
+    z = np.empty(local.n_unknowns)
+    M.apply(np.ascontiguousarray(r_all[mine]), z)
+    # reference: the dense formula M = blockdiag(A_qq^-1) + R^T (R A R^T)^-1 R (numpy)
+    _, M2 = dense_preconditioners(system.A.toarray(), split.owner[system.free], size)
+    zref = M2 @ r_all
+    assert np.abs(z - zref[mine]).max() <= 1e-10 * np.abs(zref).max()
+
+
+@check
+def errors_reach_every_rank(comm):
+    import numpy as np
+
+    from kernels.distributed import solve_poisson
+    from kernels.errors import InputError
+    from kernels.mesh import rectangle
+
+    mesh = rectangle(12, 12)
+
+    # negative only near x = 1: met by one rank's assembly, must raise on all ranks
+    def kappa(x, y):
+        return np.where(x > 0.95, -1.0, 1.0)
+
+    try:
+        solve_poisson(mesh, 1.0, comm=comm, coefficient=kappa)
+    except InputError as exc:
+        text = str(exc)
+        assert "coefficient" in text, text
+    else:
+        raise AssertionError("a negative coefficient was accepted")
+    # a triangle named in the message is a triangle of the whole mesh touching x > 0.95
+    if "triangle" in text and "rank" not in text:
+        k = int(text.split("triangle ")[1].split(";")[0].split()[0])
+        assert mesh.points[mesh.triangles[k]][:, 0].max() > 0.95, text
+    other = rectangle(12 + comm.Get_rank(), 12)
+    try:
+        solve_poisson(other, 1.0, comm=comm)
+    except InputError as exc:
+        assert "mesh" in str(exc)
+    else:
+        raise AssertionError("different meshes on different ranks were accepted")
+
+
+@check
+def gather_modes(comm):
+    import numpy as np
+
+    from kernels.distributed import solve_poisson
+    from kernels.mesh import disk
+
+    mesh = disk(6)
+    full = solve_poisson(mesh, 1.0, comm=comm, gather=True)
+    root = solve_poisson(mesh, 1.0, comm=comm, gather="root")
+    none = solve_poisson(mesh, 1.0, comm=comm, gather=False)
+    assert (root.u is not None) == (comm.Get_rank() == 0)
+    assert none.u is None
+    assert np.array_equal(full.u[full.owned], full.u_owned)
+    assert np.array_equal(none.u_owned, full.u_owned)
+    counts = comm.allgather(len(full.owned))
+    assert sum(counts) == mesh.n_points
+    balance = full.stats["balance"]
+    assert [b["owned_points"] for b in balance] == counts
+    assert full.stats["partition"]["imbalance"] < 0.05
+    assert full.stats["threads_per_rank"]["threads"] >= 1
+
+
+def _distributed_system(comm, mesh):
+    """The reduced Poisson system (whole boundary fixed) as a DistributedMatrix and its b."""
+    from kernels.distributed import partition, subdomain
+    from kernels.distributed.assembly import assemble_local, reduce_local
+    from kernels.distributed.halo import CommStats
+    from kernels.distributed.matrix import DistributedMatrix
+    from kernels.distributed.subdomain import parse_local
+
+    sub = subdomain(partition(mesh, comm.Get_size()), comm.Get_rank())
+    A_L, b_L, _ = assemble_local(sub, kappa=parse_local(None, mesh, sub, name="k", tensor=True),
+                                 f=parse_local(1.0, mesh, sub, name="f", sign="any"))
+    loc = sub.local_numbers(mesh.boundary_nodes(), mesh.n_points)
+    local = reduce_local(sub, A_L, b_L, loc[loc >= 0], 0.0)
+    return DistributedMatrix(local.A, local.pattern, comm, CommStats()), local
+
+
+@check
+def cg_conventions(comm):
+    import numpy as np
+
+    from kernels.distributed.cg import cg
+    from kernels.errors import InputError
+    from kernels.mesh import rectangle
+
+    # scipy's conventions (reference library: scipy, scipy.sparse.linalg.cg documentation)
+    D, local = _distributed_system(comm, rectangle(10, 10))
+    b = local.b
+    x0 = np.full(len(b), 0.5)
+    keep = x0.copy()
+    one = cg(D, b, x0, rtol=1e-12, maxiter=1)
+    assert one.info == 1 and one.iterations == 1
+    assert np.array_equal(x0, keep)  # x0 not overwritten
+    zero = cg(D, np.zeros(len(b)), rtol=1e-12)
+    assert zero.info == 0 and not zero.x.any()
+    full = cg(D, b, rtol=1e-10)
+    assert full.info == 0 and full.residuals[-1] <= 1e-10 * full.residuals[0]
+    calls = []
+    cg(D, b, rtol=1e-10, callback=lambda x: calls.append(1))
+    assert len(calls) == full.iterations
+    bad = b.copy()
+    if comm.Get_rank() == comm.Get_size() - 1 and len(bad):
+        bad[0] = np.nan  # bad on one rank only: every rank must raise, none may hang
+    try:
+        cg(D, bad)
+    except InputError:
+        pass
+    else:
+        raise AssertionError("a NaN in b was accepted")
+
+
+@check
+def rank_without_unknowns(comm):
+    import numpy as np
+
+    from kernels.distributed import partition_from_owner, solve_poisson
+    from kernels.mesh import rectangle
+
+    # the last rank owns only Dirichlet points: an empty block, a zero coarse function
+    size = comm.Get_size()
+    mesh = rectangle(8, 8)
+    x = mesh.points[:, 0]
+    owner = np.minimum((x * (size - 1)).astype(int), size - 2)
+    owner[x == 0] = size - 1
+    split = partition_from_owner(mesh, owner)
+    ser = _serial(mesh, 1.0, rtol=1e-12)
+    for coarse in (None, "constants"):
+        sol = solve_poisson(mesh, 1.0, comm=comm, partition=split, rtol=1e-12, coarse=coarse,
+                            check=True)
+        assert sol.stats["balance"][-1]["owned_unknowns"] == 0
+        assert np.abs(sol.u - ser.u).max() <= 1e-8 * np.abs(ser.u).max()
+
+
+def main():
+    from mpi4py import MPI
+
+    _install_abort_hook(MPI)
+    warnings.simplefilter("error", RuntimeWarning)  # a solve that does not converge fails
+    comm = MPI.COMM_WORLD
+    for fn in CHECKS:
+        t0 = time.perf_counter()
+        fn(comm)
+        _wait_politely(comm)
+        if comm.Get_rank() == 0:
+            print(f"mpi_checks: {fn.__name__} ok ({time.perf_counter() - t0:.1f} s)", flush=True)
+    if comm.Get_rank() == 0:
+        print(f"mpi_checks: all {len(CHECKS)} checks passed on {comm.Get_size()} ranks",
+              flush=True)
+
+
+if __name__ == "__main__":
+    main()
