@@ -1,18 +1,41 @@
 """Assembly benchmarks: every strategy side by side, with the bandwidth floor.
 
     python -m pytest bench/test_bench_assembly.py --benchmark-only [--size full]
+
+Strategies (stiffness):
+
+``triplets``        the plain alternative: vectorised NumPy element matrices, scipy COO -> CSR
+``csr-first-call``  ``assemble_stiffness(mesh)`` on a mesh that has computed nothing yet:
+                    topology, symbolic phase (pattern and slot plan) and numeric phase
+``csr``             ``StiffnessAssembler.assemble()``: re-assembly, numeric phase and a new matrix
+``csr-data``        ``assemble_data(out=...)``: the numeric phase alone, into the matrix data
+``csr-fused``       the same with element values computed inside the gather
+``reference``       plain loops, the executable specification (a small mesh only)
+
+Every round gets inputs a user would have: a fresh mesh where the strategy
+would otherwise reuse its cached topology, the same assembler where reuse is
+the point of the strategy.  Peak memory is the process's resident high-water
+mark during the timed rounds (``conftest.ProcessPeak``).
 """
+
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pytest
-from conftest import record
+from conftest import (
+    MAX_THREADS,
+    THREADS,
+    mesh_figures,
+    record,
+    size_mode,
+    timed_with_peak,
+    warm,
+)
 
 import kernels
 from kernels import StiffnessAssembler, assemble_mass, assemble_stiffness, threads
 from kernels.mesh import Mesh, rectangle
-from kernels.perf import PeakMemory, timed_first_call
-
-ROUNDS = dict(rounds=5, iterations=1, warmup_rounds=1)
+from kernels.perf import PeakMemory
 
 
 def fresh(mesh):
@@ -20,126 +43,156 @@ def fresh(mesh):
     return Mesh._trusted(mesh.points, mesh.triangles)
 
 
-def sizes(mesh, nnz):
-    n, m = mesh.n_points, mesh.n_triangles
-    index = 4  # int32
+def rounds(config, mesh):
+    if size_mode(config) == "quick":
+        return 3
+    return 5 if mesh.n_triangles <= 2_000_000 else 3
+
+
+def floors(mesh, plan):
+    """Least bytes moved (read the mesh, write the result) and the csr numeric phase's traffic."""
+    n, m, nnz = mesh.n_points, mesh.n_triangles, plan.nnz
+    index = plan.indices.dtype.itemsize
+    mesh_bytes = mesh.triangles.nbytes + mesh.points.nbytes
     return {
-        "n_points": n,
-        "n_triangles": m,
-        "nnz": nnz,
-        # floors: read the mesh, write what must be written
-        "floor_first": m * 3 * index + 16 * n + (8 + index) * nnz + index * n,
-        "floor_numeric": m * 3 * index + 16 * n + 8 * nnz,
-        # the csr numeric phase as written: element values (48 B) out and back,
-        # incidences and slots (36 B), output data, index copies for the matrix
-        "csr_traffic": m * (3 * index + 48 + 36 + 48) + 8 * nnz + 28 * n + 2 * (index * nnz + index * n),
+        # a first call writes the whole matrix: data, indices, indptr
+        "first": mesh_bytes + (8 + index) * nnz + index * (n + 1),
+        # re-assembly writes the values only
+        "numeric": mesh_bytes + 8 * nnz,
+        # the csr numeric phase as written: element values (48 B per triangle) out
+        # and back, incidences and slots (3 + 3 indices per corner), output data
+        "csr_data": mesh_bytes + m * (48 + 48 + 6 * 3 * index) + 8 * nnz,
     }
 
 
-@pytest.fixture(scope="module")
-def problem(request):
-    return {}
+def _stiffness_case(strategy, mesh, asm):
+    """(function, per-round setup, traffic, floor) for one strategy."""
+    f = floors(mesh, asm.plan)
+    nnz, n = asm.plan.nnz, mesh.n_points
+    index = asm.plan.indices.dtype.itemsize
+    if strategy == "triplets":
+        return (lambda m: assemble_stiffness(m, strategy="triplets"),
+                lambda: (fresh(mesh),), f["first"], f["first"])
+    if strategy == "csr-first-call":
+        return lambda m: assemble_stiffness(m), lambda: (fresh(mesh),), f["first"], f["first"]
+    if strategy == "csr":
+        # numeric phase, then copies of the pattern for the new matrix
+        traffic = f["csr_data"] + 2 * index * (nnz + n + 1)
+        return lambda: asm.assemble(), lambda: (), traffic, f["numeric"]
+    out = np.empty(nnz)
+    if strategy == "csr-data":
+        return lambda: asm.assemble_data(out=out), lambda: (), f["csr_data"], f["numeric"]
+    fused = StiffnessAssembler(mesh, fused=True)
+    traffic = f["csr_data"] - 2 * 48 * mesh.n_triangles  # no element values stored
+    return lambda: fused.assemble_data(out=out), lambda: (), traffic, f["numeric"]
 
 
-def _peak(fn):
-    with PeakMemory() as pm:
-        fn()
-    return pm.peak
+STIFFNESS_CASES = [
+    pytest.param(s, t, id=f"strategy={s}-threads={t}")
+    for s in ["triplets", "csr-first-call", "csr", "csr-data", "csr-fused"]
+    for t in (THREADS if s in ("csr-first-call", "csr-data") else [MAX_THREADS])
+]
 
 
-@pytest.mark.parametrize(
-    "strategy", ["triplets", "csr-first-call", "csr-numeric", "csr-numeric-data", "csr-fused"]
-)
-def test_stiffness(benchmark, machine, cells, strategy):
+@pytest.mark.parametrize("strategy, n_threads", STIFFNESS_CASES)
+def test_stiffness(benchmark, machine, request, cells, strategy, n_threads):
     mesh = rectangle(cells, cells)
     asm = StiffnessAssembler(mesh)
-    nnz = asm.plan.nnz
-    s = sizes(mesh, nnz)
-    compile_s = None
-    if strategy == "triplets":
-        fn = lambda: assemble_stiffness(mesh, strategy="triplets")  # noqa: E731
-        benchmark.pedantic(fn, **ROUNDS)
-        peak = _peak(fn)
-        floor, traffic = s["floor_first"], s["floor_first"]
-    elif strategy == "csr-first-call":
-        _, first, second = timed_first_call(lambda: assemble_stiffness(fresh(mesh)))
-        compile_s = first - second
-        benchmark.pedantic(
-            lambda m: assemble_stiffness(m), setup=lambda: ((fresh(mesh),), {}), rounds=5
-        )
-        peak = _peak(lambda: assemble_stiffness(fresh(mesh)))
-        floor, traffic = s["floor_first"], s["floor_first"]
-    elif strategy == "csr-numeric":
-        benchmark.pedantic(asm.assemble, **ROUNDS)
-        peak = _peak(asm.assemble)
-        floor, traffic = s["floor_numeric"], s["csr_traffic"]
-    elif strategy == "csr-numeric-data":
-        out = np.empty(nnz)
-        benchmark.pedantic(lambda: asm.assemble_data(out=out), **ROUNDS)
-        peak = _peak(lambda: asm.assemble_data(out=out))
-        floor = s["floor_numeric"]
-        traffic = s["csr_traffic"] - 2 * 4 * (nnz + mesh.n_points)
-    else:
-        fused = StiffnessAssembler(mesh, fused=True)
-        out = np.empty(nnz)
-        benchmark.pedantic(lambda: fused.assemble_data(out=out), **ROUNDS)
-        peak = _peak(lambda: fused.assemble_data(out=out))
-        floor = s["floor_numeric"]
-        traffic = s["csr_traffic"] - 2 * 4 * (nnz + mesh.n_points) - 48 * 2 * mesh.n_triangles
+    fn, setup, traffic, floor = _stiffness_case(strategy, mesh, asm)
+    with threads(n_threads):
+        first = warm(benchmark, fn, setup)
+        _, peak, source = timed_with_peak(benchmark, fn, setup, rounds(request.config, mesh),
+                                          False)
+        traced = None if benchmark.disabled else _traced_peak(fn, setup)
     record(
-        benchmark, machine, traffic, floor, strategy=strategy, peak_bytes=peak,
-        peak_bytes_per_triangle=peak / mesh.n_triangles, compile_s=compile_s,
-        plan_bytes=asm.plan.nbytes, **{k: v for k, v in s.items() if not k.startswith("floor")},
+        benchmark, machine, traffic, floor, kind="assembly", operation="stiffness",
+        method=strategy, plain=strategy == "triplets",
+        baseline=None if strategy == "triplets" else "triplets", threads=n_threads,
+        nnz=int(asm.plan.nnz), plan_bytes=int(asm.plan.nbytes), peak_bytes=peak,
+        peak_source=source, peak_traced_bytes=traced, **mesh_figures(mesh), **first,
     )
 
 
-@pytest.mark.parametrize("n_threads", [1, 2])
-def test_stiffness_threads(benchmark, machine, cells, n_threads):
+def _traced_peak(fn, setup):
+    """The same call once more under tracemalloc (NumPy arrays only; numba scratch unseen)."""
+    args = setup()
+    with PeakMemory() as pm:
+        fn(*args)
+    return pm.peak
+
+
+@pytest.mark.parametrize("strategy", ["triplets", "csr-first-call", "csr"], ids=lambda s: f"strategy={s}")
+def test_mass(benchmark, machine, request, cells, strategy):
     mesh = rectangle(cells, cells)
     asm = StiffnessAssembler(mesh)
-    out = np.empty(asm.plan.nnz)
-    s = sizes(mesh, asm.plan.nnz)
-    with threads(n_threads):
-        benchmark.pedantic(lambda: asm.assemble_data(out=out), **ROUNDS)
-    record(benchmark, machine, s["csr_traffic"], s["floor_numeric"], n_threads=n_threads,
-           n_triangles=mesh.n_triangles)
-
-
-@pytest.mark.parametrize("strategy", ["triplets", "csr"])
-def test_mass(benchmark, machine, cells, strategy):
-    mesh = rectangle(cells, cells)
-    if strategy == "csr":
-        asm = StiffnessAssembler(mesh)
-        fn = asm.assemble_mass
+    f = floors(mesh, asm.plan)
+    if strategy == "triplets":
+        fn, setup = (lambda m: assemble_mass(m, strategy="triplets")), (lambda: (fresh(mesh),))
+        traffic = floor = f["first"]
+    elif strategy == "csr-first-call":
+        fn, setup = (lambda m: assemble_mass(m)), (lambda: (fresh(mesh),))
+        traffic = floor = f["first"]
     else:
-        fn = lambda: assemble_mass(mesh, strategy="triplets")  # noqa: E731
-    benchmark.pedantic(fn, **ROUNDS)
-    s = sizes(mesh, fn().nnz)
-    record(benchmark, machine, s["floor_numeric"], s["floor_numeric"], strategy=strategy,
-           n_triangles=mesh.n_triangles)
+        fn, setup = asm.assemble_mass, (lambda: ())
+        traffic, floor = f["csr_data"], f["numeric"]
+    first = warm(benchmark, fn, setup)
+    _, peak, source = timed_with_peak(benchmark, fn, setup, rounds(request.config, mesh), False)
+    record(
+        benchmark, machine, traffic, floor, kind="assembly", operation="mass", method=strategy,
+        plain=strategy == "triplets", baseline=None if strategy == "triplets" else "triplets",
+        nnz=int(asm.plan.nnz), peak_bytes=peak, peak_source=source, **mesh_figures(mesh),
+        **first,
+    )
 
 
-def test_reference_small(benchmark, machine):
-    """The readable specification, at a size where it is still usable."""
+@pytest.mark.parametrize("strategy", ["reference", "triplets", "csr-first-call"], ids=lambda s: f"strategy={s}")
+def test_stiffness_reference(benchmark, machine, strategy):
+    """The readable specification, at a size where it is still usable, beside the others."""
     mesh = rectangle(40, 40)
-    benchmark.pedantic(lambda: assemble_stiffness(mesh, strategy="reference"), rounds=2,
-                       iterations=1)
-    s = sizes(mesh, assemble_stiffness(mesh).nnz)
-    record(benchmark, machine, s["floor_first"], s["floor_first"], strategy="reference",
-           n_triangles=mesh.n_triangles)
+    name = "csr" if strategy == "csr-first-call" else strategy
+    fn = lambda m: assemble_stiffness(m, strategy=name)  # noqa: E731
+    setup = lambda: (fresh(mesh),)  # noqa: E731
+    first = warm(benchmark, fn, setup)
+    _, peak, source = timed_with_peak(benchmark, fn, setup, 3, False)
+    f = floors(mesh, StiffnessAssembler(mesh).plan)
+    record(
+        benchmark, machine, f["first"], f["first"], kind="assembly", operation="stiffness",
+        method=strategy, plain=strategy == "triplets",
+        baseline=None if strategy == "triplets" else "triplets",
+        nnz=int(assemble_stiffness(mesh).nnz), peak_bytes=peak, peak_source=source,
+        **mesh_figures(mesh), **first,
+    )
 
 
-def test_memory_bandwidth(benchmark, machine):
-    """The machine's floor in this run: a large NumPy copy (read + write)."""
+@pytest.mark.parametrize("n_threads", THREADS, ids=lambda t: f"threads={t}")
+def test_memory_bandwidth(benchmark, machine, n_threads):
+    """The machine's floor in this run: a large NumPy copy (read + write), split over threads."""
     a = np.ones(2**26)  # 512 MiB
     b = np.empty_like(a)
-    benchmark.pedantic(np.copyto, args=(b, a), rounds=5, iterations=1, warmup_rounds=1)
-    record(benchmark, machine, 2 * a.nbytes, 2 * a.nbytes, kernel="numpy copy")
+    parts = [slice(k * a.size // n_threads, (k + 1) * a.size // n_threads)
+             for k in range(n_threads)]
+    with ThreadPoolExecutor(n_threads) as pool:
+        def copy():
+            list(pool.map(lambda s: np.copyto(b[s], a[s]), parts))
+
+        benchmark.pedantic(copy, rounds=5, iterations=1, warmup_rounds=1)
+    record(benchmark, machine, 2 * a.nbytes, 2 * a.nbytes, kind="bandwidth",
+           operation="copy", method="numpy copy", plain=True, baseline=None, threads=n_threads)
 
 
-def test_refine(benchmark, machine, cells):
+def test_refine(benchmark, machine, request, cells):
+    """Uniform refinement of a mesh that has computed nothing yet (edges included)."""
     mesh = rectangle(cells, cells)
-    benchmark.pedantic(lambda m: m.refine(), setup=lambda: ((fresh(mesh),), {}), rounds=3)
+    fn = lambda m: m.refine()  # noqa: E731
+    setup = lambda: (fresh(mesh),)  # noqa: E731
+    first = warm(benchmark, fn, setup)
+    _, peak, source = timed_with_peak(benchmark, fn, setup, rounds(request.config, mesh), False)
     fine_tri = 4 * mesh.n_triangles
-    record(benchmark, machine, 12 * fine_tri, 12 * fine_tri, n_triangles_fine=fine_tri,
-           kernels_version=kernels.__version__)
+    index = mesh.triangles.dtype.itemsize
+    # least traffic: read the coarse mesh, write the fine one
+    floor = mesh.triangles.nbytes + mesh.points.nbytes + 3 * index * fine_tri + 16 * (
+        mesh.n_points + len(mesh.edges()))
+    record(benchmark, machine, floor, floor, kind="refine", operation="refine", method="refine",
+           plain=False, baseline=None, n_triangles_fine=fine_tri, peak_bytes=peak,
+           peak_source=source, kernels_version=kernels.__version__, **mesh_figures(mesh), **first)
+

@@ -37,6 +37,12 @@ from kernels.mesh.core import Mesh
 
 __all__ = ["StiffnessOperator", "VARIANTS", "DEFAULT_VARIANT"]
 
+_KERNEL_NAMES = {
+    "serial": "product_serial",
+    "values": "offdiagonal_values",
+    "fixed_columns": "remove_fixed_columns",
+}
+
 VARIANTS = ("geometry", "factors", "edges")
 DEFAULT_VARIANT = "geometry"
 DEFAULT_BLOCK = 1024
@@ -174,7 +180,10 @@ class StiffnessOperator(LinearOperator):
     # -- what the operator stores ------------------------------------------------
 
     def _kernel(self, name):
-        return _jit_ops.geometry_kernel(name, self._kc[2])
+        if name == "product":
+            scalar = self._kc[2].shape[0] == 0
+            return _jit_ops.product_scalar if scalar else _jit_ops.product_tensor
+        return getattr(_jit_ops, _KERNEL_NAMES.get(name, name))
 
     def _element_values(self):
         m = self.mesh

@@ -301,3 +301,13 @@ def test_float32_matrix_is_converted():
         M = make_preconditioner(A, name)
         assert (M @ np.ones(64)).dtype == np.float64
     assert A.dtype == np.float32
+
+
+def test_chebyshev_bound_from_a_csr_matrix():
+    # scipy.sparse.csr_matrix row sums are (n, 1) matrices; on the finest level
+    # the Gershgorin bound of D^-1 A for the 5-point Laplacian is (4 + 4) / 4 = 2
+    # (Gershgorin's circle theorem), which caps the Chebyshev interval
+    A = sp.csr_matrix(poisson((40, 40), format="csr"))
+    M = make_preconditioner(A, "amg-sa", smoother="chebyshev")
+    finest = M._cheb[0].smoother
+    assert finest.theta + finest.delta <= 2.0 + 1e-12

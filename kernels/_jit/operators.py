@@ -105,120 +105,131 @@ def _offdiagonals_tensor(points, triangles, t, kappa, ks, tensor, ts):
     return o0, o1, o2, i0, i1, i2
 
 
-def _geometry_kernels(offdiagonals):
-    """The coloured product and its plain serial version for one kind of coefficient.
+@jit(inline="always")
+def _offdiagonals(points, triangles, t, kappa, ks, tensor, ts):
+    """Either kind of coefficient, chosen per triangle (for the setup kernels)."""
+    if tensor.shape[0] == 0:
+        return _offdiagonals_scalar(points, triangles, t, kappa, ks, tensor, ts)
+    return _offdiagonals_tensor(points, triangles, t, kappa, ks, tensor, ts)
 
-    Made by a factory so that the scalar and tensor cases compile to separate
-    loops: one loop with a per-triangle branch was measured 20 % slower.
+
+# The products have one kernel per kind of coefficient: a per-triangle branch
+# was measured 20 % slower.  They are written out at module level, not made by
+# a factory: numba's disk cache keys functions by name, and factory-made
+# functions of one name overwrote each other's entries, so they were
+# compiled again in every process.
+
+
+@jit(parallel=True)
+def product_scalar(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, x, y):
+    """``y = A x`` for a scalar coefficient, recomputing the geometry of every triangle."""
+    m = triangles.shape[0]
+    _zero(y)
+    for c in range(colour_ptr.size - 1):
+        for k in prange(colour_ptr[c], colour_ptr[c + 1]):
+            b = blocks[k]
+            for t in range(b * block_size, min(m, (b + 1) * block_size)):
+                o0, o1, o2, i0, i1, i2 = _offdiagonals_scalar(
+                    points, triangles, t, kappa, ks, tensor, ts
+                )
+                _add_triangle(y, i0, i1, i2, o0, o1, o2, x[i0], x[i1], x[i2])
+
+
+@jit(parallel=True)
+def product_tensor(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, x, y):
+    """As :func:`product_scalar` for a tensor coefficient."""
+    m = triangles.shape[0]
+    _zero(y)
+    for c in range(colour_ptr.size - 1):
+        for k in prange(colour_ptr[c], colour_ptr[c + 1]):
+            b = blocks[k]
+            for t in range(b * block_size, min(m, (b + 1) * block_size)):
+                o0, o1, o2, i0, i1, i2 = _offdiagonals_tensor(
+                    points, triangles, t, kappa, ks, tensor, ts
+                )
+                _add_triangle(y, i0, i1, i2, o0, o1, o2, x[i0], x[i1], x[i2])
+
+
+@jit()
+def product_serial(points, triangles, kappa, ks, tensor, ts, x, y):
+    """The plain version: one loop over triangles, no colouring (also the fallback)."""
+    y[:] = 0.0
+    for t in range(triangles.shape[0]):
+        o0, o1, o2, i0, i1, i2 = _offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
+        _add_triangle(y, i0, i1, i2, o0, o1, o2, x[i0], x[i1], x[i2])
+
+
+@jit(parallel=True)
+def diagonal(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, y):
+    """The diagonal into ``y``: zero row sums make ``K_aa`` minus its row's off-diagonals."""
+    m = triangles.shape[0]
+    _zero(y)
+    for c in range(colour_ptr.size - 1):
+        for k in prange(colour_ptr[c], colour_ptr[c + 1]):
+            b = blocks[k]
+            for t in range(b * block_size, min(m, (b + 1) * block_size)):
+                o0, o1, o2, i0, i1, i2 = _offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
+                y[i0] -= o1 + o2
+                y[i1] -= o0 + o2
+                y[i2] -= o0 + o1
+
+
+@jit(parallel=True)
+def abs_offdiagonal(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, y):
+    """Row sums of ``|A_ij|`` over ``j != i`` into ``y`` (for Gershgorin's bound)."""
+    m = triangles.shape[0]
+    _zero(y)
+    for c in range(colour_ptr.size - 1):
+        for k in prange(colour_ptr[c], colour_ptr[c + 1]):
+            b = blocks[k]
+            for t in range(b * block_size, min(m, (b + 1) * block_size)):
+                o0, o1, o2, i0, i1, i2 = _offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
+                y[i0] += abs(o1) + abs(o2)
+                y[i1] += abs(o0) + abs(o2)
+                y[i2] += abs(o0) + abs(o1)
+
+
+@jit(parallel=True)
+def offdiagonal_values(points, triangles, kappa, ks, tensor, ts, out):
+    """The three off-diagonal entries of each triangle into ``out`` (M, 3)."""
+    for t in prange(triangles.shape[0]):
+        o0, o1, o2, _, _, _ = _offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
+        out[t, 0] = o0
+        out[t, 1] = o1
+        out[t, 2] = o2
+
+
+@jit(parallel=True)
+def edge_weights(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks,
+                 triangle_edges, w):
+    """``w[e]``: the sum over edge ``e``'s triangles of their entry for its two points."""
+    m = triangles.shape[0]
+    _zero(w)
+    for c in range(colour_ptr.size - 1):
+        for k in prange(colour_ptr[c], colour_ptr[c + 1]):
+            b = blocks[k]
+            for t in range(b * block_size, min(m, (b + 1) * block_size)):
+                o0, o1, o2, _, _, _ = _offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
+                w[triangle_edges[t, 0]] += o0
+                w[triangle_edges[t, 1]] += o1
+                w[triangle_edges[t, 2]] += o2
+
+
+@jit()
+def remove_fixed_columns(points, triangles, kappa, ks, tensor, ts, near, is_fixed, x, y):
+    """``y -= A[:, fixed] x[fixed]``, over the triangles ``near`` the fixed points only.
+
+    With it a product with identity rows and columns at the fixed points is
+    the plain product, this boundary correction (serial, in a fixed order)
+    and a copy of the fixed entries: no masked copy of ``x`` is needed.
     """
-
-    @jit(parallel=True)
-    def coloured(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, x, y):
-        m = triangles.shape[0]
-        _zero(y)
-        for c in range(colour_ptr.size - 1):
-            for k in prange(colour_ptr[c], colour_ptr[c + 1]):
-                b = blocks[k]
-                for t in range(b * block_size, min(m, (b + 1) * block_size)):
-                    o0, o1, o2, i0, i1, i2 = offdiagonals(
-                        points, triangles, t, kappa, ks, tensor, ts
-                    )
-                    _add_triangle(y, i0, i1, i2, o0, o1, o2, x[i0], x[i1], x[i2])
-
-    @jit()
-    def serial(points, triangles, kappa, ks, tensor, ts, x, y):
-        y[:] = 0.0
-        for t in range(triangles.shape[0]):
-            o0, o1, o2, i0, i1, i2 = offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
-            _add_triangle(y, i0, i1, i2, o0, o1, o2, x[i0], x[i1], x[i2])
-
-    @jit(parallel=True)
-    def diagonal(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, y):
-        # zero row sums: K_aa = -(sum of the row's off-diagonal entries)
-        m = triangles.shape[0]
-        _zero(y)
-        for c in range(colour_ptr.size - 1):
-            for k in prange(colour_ptr[c], colour_ptr[c + 1]):
-                b = blocks[k]
-                for t in range(b * block_size, min(m, (b + 1) * block_size)):
-                    o0, o1, o2, i0, i1, i2 = offdiagonals(
-                        points, triangles, t, kappa, ks, tensor, ts
-                    )
-                    y[i0] -= o1 + o2
-                    y[i1] -= o0 + o2
-                    y[i2] -= o0 + o1
-
-    @jit(parallel=True)
-    def values(points, triangles, kappa, ks, tensor, ts, out):
-        # the three off-diagonal entries of each triangle, into out (M, 3)
-        for t in prange(triangles.shape[0]):
-            o0, o1, o2, _, _, _ = offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
-            out[t, 0] = o0
-            out[t, 1] = o1
-            out[t, 2] = o2
-
-    @jit(parallel=True)
-    def edge_weights(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks,
-                     triangle_edges, w):
-        # w[e] = sum over the edge's triangles of the entry of its pair
-        m = triangles.shape[0]
-        _zero(w)
-        for c in range(colour_ptr.size - 1):
-            for k in prange(colour_ptr[c], colour_ptr[c + 1]):
-                b = blocks[k]
-                for t in range(b * block_size, min(m, (b + 1) * block_size)):
-                    o0, o1, o2, _, _, _ = offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
-                    w[triangle_edges[t, 0]] += o0
-                    w[triangle_edges[t, 1]] += o1
-                    w[triangle_edges[t, 2]] += o2
-
-    @jit(parallel=True)
-    def abs_offdiagonal(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks,
-                        y):
-        # sum of |A_ij| over j != i, for Gershgorin's bound
-        m = triangles.shape[0]
-        _zero(y)
-        for c in range(colour_ptr.size - 1):
-            for k in prange(colour_ptr[c], colour_ptr[c + 1]):
-                b = blocks[k]
-                for t in range(b * block_size, min(m, (b + 1) * block_size)):
-                    o0, o1, o2, i0, i1, i2 = offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
-                    y[i0] += abs(o1) + abs(o2)
-                    y[i1] += abs(o0) + abs(o2)
-                    y[i2] += abs(o0) + abs(o1)
-
-    @jit()
-    def fixed_columns(points, triangles, kappa, ks, tensor, ts, near, is_fixed, x, y):
-        # y -= K_free,fixed x_fixed over the triangles ``near`` that touch a fixed
-        # point, serially in their order; fixed rows are overwritten afterwards
-        for k in range(near.size):
-            t = near[k]
-            o0, o1, o2, i0, i1, i2 = offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
-            a0 = x[i0] if is_fixed[i0] else 0.0
-            a1 = x[i1] if is_fixed[i1] else 0.0
-            a2 = x[i2] if is_fixed[i2] else 0.0
-            _add_triangle(y, i0, i1, i2, -o0, -o1, -o2, a0, a1, a2)
-
-    return {
-        "product": coloured,
-        "serial": serial,
-        "diagonal": diagonal,
-        "values": values,
-        "edge_weights": edge_weights,
-        "abs_offdiagonal": abs_offdiagonal,
-        "fixed_columns": fixed_columns,
-    }
-
-
-_KERNELS = {
-    "scalar": _geometry_kernels(_offdiagonals_scalar),
-    "tensor": _geometry_kernels(_offdiagonals_tensor),
-}
-
-
-def geometry_kernel(name, tensor):
-    """The kernel ``name`` of the geometry family for this coefficient (empty tensor: scalar)."""
-    return _KERNELS["scalar" if tensor.shape[0] == 0 else "tensor"][name]
+    for k in range(near.size):
+        t = near[k]
+        o0, o1, o2, i0, i1, i2 = _offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
+        a0 = x[i0] if is_fixed[i0] else 0.0
+        a1 = x[i1] if is_fixed[i1] else 0.0
+        a2 = x[i2] if is_fixed[i2] else 0.0
+        _add_triangle(y, i0, i1, i2, -o0, -o1, -o2, a0, a1, a2)
 
 
 @jit(parallel=True)

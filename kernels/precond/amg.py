@@ -62,7 +62,7 @@ class _ChebyshevLevel:
                              f"coarse level is {d[row]}; it must be > 0")
         dinv = 1.0 / d
         # Gershgorin's bound on the spectrum of D^-1 A is guaranteed; Lanczos is tighter.
-        gershgorin = float(np.max(abs(A).sum(axis=1) * dinv))
+        gershgorin = float(np.max(np.asarray(abs(A).sum(axis=1)).ravel() * dinv))
         arrays = self.A
         self.smoother = ChebyshevSmoother(
             lambda x, out: _k.spmv(*arrays, x, out),

@@ -1,0 +1,102 @@
+"""Helpers shared by the benchmark suite and its solve worker: peak memory, nested meshes.
+
+Importable without pytest (bench/solve_worker.py runs in a fresh process).
+"""
+
+from __future__ import annotations
+
+import ctypes
+import gc
+import re
+
+from kernels.mesh import rectangle
+from kernels.perf import PeakMemory, rss_bytes
+
+__all__ = ["HWM", "ProcessPeak", "nested", "refined_rectangle"]
+
+try:
+    _libc = ctypes.CDLL("libc.so.6")
+except OSError:  # not glibc
+    _libc = None
+
+
+def _vm_hwm():
+    with open("/proc/self/status") as f:
+        m = re.search(r"VmHWM:\s+(\d+) kB", f.read())
+    return int(m.group(1)) * 1024
+
+
+def _reset_hwm():
+    with open("/proc/self/clear_refs", "w") as f:
+        f.write("5")
+
+
+def _hwm_available():
+    try:
+        _reset_hwm()
+        _vm_hwm()
+        return True
+    except OSError:
+        return False
+
+
+HWM = _hwm_available()
+
+
+class ProcessPeak:
+    """Peak resident memory of this process over a region, above what was resident before.
+
+    Linux: the kernel's high-water mark (``VmHWM``) is reset on entry
+    (``/proc/self/clear_refs``) after a garbage collection and
+    ``malloc_trim``, so that memory freed earlier and still held by the
+    allocator is not counted as free room.  It sees every allocation: NumPy,
+    scipy's and PyAMG's C code, SuperLU, numba.  Where the high-water mark
+    cannot be reset, :class:`kernels.perf.PeakMemory` (tracemalloc: NumPy and
+    Python allocations only) is used instead and ``source`` says so.
+    """
+
+    def __init__(self):
+        self.source = "rss-hwm" if HWM else "tracemalloc"
+        self.peak = None
+
+    def __enter__(self):
+        gc.collect()
+        if HWM:
+            if _libc is not None:
+                _libc.malloc_trim(0)
+            self._start = rss_bytes()
+            _reset_hwm()
+        else:
+            self._traced = PeakMemory().__enter__()
+        return self
+
+    def __exit__(self, *exc):
+        if HWM:
+            self.peak = max(0, _vm_hwm() - self._start)
+        else:
+            self._traced.__exit__(*exc)
+            self.peak = self._traced.peak
+        return False
+
+
+
+# -- meshes -------------------------------------------------------------------------------
+def nested(n, smallest=8):
+    """``(coarse, levels)``: rectangle(coarse, coarse) refined ``levels`` times is ``n x n``.
+
+    As many levels as keep the coarse mesh at ``smallest`` cells per side or more.
+    """
+    coarse, levels = n, 0
+    while coarse % 2 == 0 and coarse // 2 >= smallest:
+        coarse //= 2
+        levels += 1
+    return coarse, levels
+
+
+def refined_rectangle(n):
+    """The ``n x n`` unit-square mesh made by refinement (it carries its levels for gmg)."""
+    coarse, levels = nested(n)
+    mesh = rectangle(coarse, coarse)
+    for _ in range(levels):
+        mesh = mesh.refine()
+    return mesh
