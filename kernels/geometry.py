@@ -3,7 +3,7 @@
 import numpy as np
 
 from kernels._jit import geometry as _jit_geometry
-from kernels.errors import InputError
+from kernels.errors import InputError, MeshError
 
 __all__ = ["element_gradients"]
 
@@ -23,6 +23,33 @@ def _arrays(points, triangles):
             f"triangle {k} refers to a point outside 0..{len(p) - 1}: {t[k].tolist()}"
         )
     return np.ascontiguousarray(p, dtype=np.float64), np.ascontiguousarray(t)
+
+
+def _check_areas(areas, p, t):
+    """Refuse what would give infinite or NaN gradients, naming the triangle.
+
+    Checked on the result (one pass over ``areas``) rather than before the
+    kernel: a zero or non-finite area is exactly what spoils the gradients,
+    and the kernel itself is harmless on any float input.
+    """
+    if np.isfinite(areas).all() and areas.all():
+        return
+    bad = ~np.isfinite(areas) | (areas == 0)
+    k = int(np.flatnonzero(bad)[0])
+    tri = t[k].tolist()
+    more = f"; {int(bad.sum())} triangles in all" if bad.sum() > 1 else ""
+    nonfinite = [i for i in tri if not np.isfinite(p[i]).all()]
+    if nonfinite:
+        i = nonfinite[0]
+        raise MeshError(
+            f"triangle {k} has point {i} with a non-finite coordinate "
+            f"({float(p[i, 0])!r}, {float(p[i, 1])!r}){more}"
+        )
+    if not np.isfinite(areas[k]):
+        raise MeshError(f"triangle {k} (points {tri}) has an area that overflows{more}")
+    raise MeshError(
+        f"triangle {k} has zero area (points {tri[0]}, {tri[1]}, {tri[2]} are collinear){more}"
+    )
 
 
 def element_gradients(points, triangles, *, plain=False):
@@ -45,6 +72,15 @@ def element_gradients(points, triangles, *, plain=False):
         ``gradients[t, a]`` is the (constant) gradient of the hat function of
         vertex ``a`` on triangle ``t``; the three sum to zero.
 
+    Raises
+    ------
+    InputError
+        Wrong shapes or dtypes, a point index out of range (naming the triangle).
+    MeshError
+        A triangle with zero area or a non-finite coordinate (naming it): its
+        gradients would be infinite or NaN.  (:class:`kernels.Mesh` refuses
+        near-zero areas too; this check on raw arrays refuses exact zeros.)
+
     Examples
     --------
     >>> from kernels import element_gradients
@@ -58,14 +94,18 @@ def element_gradients(points, triangles, *, plain=False):
     """
     p, t = _arrays(points, triangles)
     if not plain:
-        return _jit_geometry.element_gradients(p, t)
+        areas, grads = _jit_geometry.element_gradients(p, t)
+        _check_areas(areas, p, t)
+        return areas, grads
     x = p[t]  # (M, 3, 2)
     e = np.roll(x, 1, axis=1) - np.roll(x, -1, axis=1)  # e[:, a] = x[a-1] - x[a+1]
     d = (x[:, 1, 0] - x[:, 0, 0]) * (x[:, 2, 1] - x[:, 0, 1]) - (x[:, 2, 0] - x[:, 0, 0]) * (
         x[:, 1, 1] - x[:, 0, 1]
     )
+    areas = 0.5 * d
+    _check_areas(areas, p, t)  # before dividing by d
     grads = np.empty_like(e)
     # the opposite edge x[a+2] - x[a+1] turned a quarter counterclockwise: (ex, ey) -> (-ey, ex)
     grads[..., 0] = -e[..., 1] / d[:, None]
     grads[..., 1] = e[..., 0] / d[:, None]
-    return 0.5 * d, grads
+    return areas, grads

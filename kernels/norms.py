@@ -38,23 +38,52 @@ def _nodal(mesh, u):
             f"u must be real nodal values of shape ({mesh.n_points},), got {u.dtype} {u.shape}"
         )
     u = u.astype(np.float64, copy=False)
-    if not np.isfinite(u[np.unique(mesh.triangles)]).all():
-        k = int(np.flatnonzero(~np.isfinite(u))[0])
-        raise InputError(f"u[{k}] = {float(u[k])!r} is not finite")
+    bad = ~np.isfinite(u)
+    if bad.any():
+        bad[mesh.unused_points()] = False  # values at points in no triangle are never read
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise InputError(f"u[{k}] = {float(u[k])!r} is not finite")
     return u
 
 
-def _call(fn, x, y, name, components=1):
+def _call(fn, x, y, name, first, components=1):
+    """``fn(x, y)`` at the quadrature points (m, Q) of triangles ``first .. first + m - 1``,
+    checked: real, the right shape, finite (else the point and triangle are named)."""
     try:
         v = fn(x, y)
     except Exception as exc:
         raise InputError(f"{name}(x, y) raised {type(exc).__name__}: {exc}") from exc
-    v = np.asarray(v, dtype=np.float64)
+    if isinstance(v, tuple | list):
+        v = [np.asarray(c) for c in v]
+        kinds = {c.dtype.kind for c in v}
+    else:
+        v = np.asarray(v)
+        kinds = {v.dtype.kind}
+    if not kinds <= set("fiu"):
+        raise InputError(f"{name}(x, y) must return real numbers, got dtype(s) {sorted(kinds)}")
+    try:
+        v = np.asarray(v, dtype=np.float64)
+    except ValueError:  # components of different shapes
+        raise InputError(
+            f"{name}(x, y) returned {components} components of different shapes: "
+            f"{[np.shape(c) for c in v]}"
+        ) from None
     want = x.shape if components == 1 else (components,) + x.shape
     if v.shape != want:
         v = np.broadcast_to(v, want) if v.ndim == 0 else v
     if v.shape != want:
         raise InputError(f"{name}(x, y) returned shape {v.shape}, expected {want}")
+    if not np.isfinite(v).all():
+        c, t, q = np.unravel_index(
+            int(np.flatnonzero(~np.isfinite(v))[0]), (components,) + x.shape
+        )
+        what = name if components == 1 else f"component {c} of {name}"
+        raise InputError(
+            f"{what}(x, y) is {float(v.reshape(components, *x.shape)[c, t, q])!r} at "
+            f"({float(x[t, q])!r}, {float(y[t, q])!r}), a quadrature point of triangle "
+            f"{first + t}; it must be finite"
+        )
     return v
 
 
@@ -86,7 +115,7 @@ def l2_error(mesh, u, exact, *, quadrature=5):
     total = 0.0
     for sl, area, x, y, w, lam in _chunks(mesh, quadrature):
         uh = u[mesh.triangles[sl]] @ lam.T
-        e = uh - _call(exact, x, y, "exact")
+        e = uh - _call(exact, x, y, "exact", sl.start)
         total += float(area @ ((e * e) @ w))
     return float(np.sqrt(total))
 
@@ -98,7 +127,7 @@ def _gradient_error_sq(mesh, u, grad_exact, quadrature, coef=None):
         tri = mesh.triangles[sl]
         _, G = element_gradients(mesh.points, tri)
         gh = np.einsum("ma,mai->mi", u[tri], G)  # constant gradient per triangle
-        g = _call(grad_exact, x, y, "grad_exact", components=2)  # (2, m, Q)
+        g = _call(grad_exact, x, y, "grad_exact", sl.start, components=2)  # (2, m, Q)
         ex = gh[:, 0, None] - g[0]
         ey = gh[:, 1, None] - g[1]
         if coef is None:

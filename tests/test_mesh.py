@@ -60,10 +60,11 @@ def test_bad_mesh_is_named(points, triangles, message):
             Mesh(points, triangles)
 
 
-def test_non_finite_point_is_named():
+@pytest.mark.parametrize("value", [np.nan, np.inf, -np.inf])
+def test_non_finite_point_is_named(value):
     p = SQUARE.copy()
-    p[2, 1] = np.nan
-    with pytest.raises(MeshError, match=r"point 2 has a non-finite coordinate \(1.0, nan\)"):
+    p[2, 1] = value
+    with pytest.raises(MeshError, match=rf"point 2 has a non-finite coordinate \(1.0, {value!r}\)"):
         Mesh(p, TWO)
 
 

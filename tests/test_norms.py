@@ -42,3 +42,26 @@ def test_bad_input():
         norms.l2_error(m, np.ones(9), lambda x, y: np.ones(2))
     with pytest.raises(kernels.InputError, match="levels"):
         norms.convergence_study(m, lambda mm: np.zeros(mm.n_points), lambda x, y: x, levels=1)
+
+
+def test_non_finite_values_are_named_never_returned():
+    m = kernels.mesh.rectangle(3, 3)
+    u = np.ones(m.n_points)
+    with pytest.raises(
+        kernels.InputError, match=r"exact\(x, y\) is nan at \(.*\), a quadrature point of triangle"
+    ):
+        norms.l2_error(m, u, lambda x, y: np.where(x > 0.5, np.nan, x))
+    with pytest.raises(kernels.InputError, match=r"component 1 of grad_exact\(x, y\) is inf"):
+        norms.h1_seminorm_error(m, u, lambda x, y: (0 * x, np.where(y > 0.5, np.inf, x)))
+    with pytest.raises(kernels.InputError, match="must return real numbers"):
+        norms.l2_error(m, u, lambda x, y: x + 1j)
+    with pytest.raises(kernels.InputError, match="components of different shapes"):
+        norms.h1_seminorm_error(m, u, lambda x, y: (0 * x, 1.0))
+    bad = u.copy()
+    bad[7] = np.nan
+    with pytest.raises(kernels.InputError, match=r"u\[7\] = nan is not finite"):
+        norms.l2_error(m, bad, lambda x, y: x)
+    # a point in no triangle: its value is never read, so NaN there is harmless
+    with pytest.warns(kernels.MeshWarning):
+        loose = kernels.Mesh(np.r_[m.points, [[5.0, 5.0]]], m.triangles)
+    assert norms.l2_error(loose, np.r_[u, np.nan], lambda x, y: 0 * x) == pytest.approx(1.0)

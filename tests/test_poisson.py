@@ -1,5 +1,7 @@
 """The one-call Poisson solve against analytic and published results."""
 
+import functools
+
 import numpy as np
 import pytest
 import scipy.sparse.linalg as spla
@@ -84,6 +86,16 @@ def test_neumann_and_robin_reproduce_a_linear_solution():
         neumann=(others, kernels.per_edge(h)),
     )
     assert sol.u == pytest.approx(u(*m.points.T), abs=1e-8)
+    # the Dirichlet part named by its points instead of its edges: the same system
+    by_nodes = solve_poisson(
+        m,
+        0.0,
+        coefficient=2.0,
+        dirichlet=u,
+        dirichlet_on=np.unique(left),
+        neumann=(others, kernels.per_edge(h)),
+    )
+    assert np.array_equal(by_nodes.u, sol.u)
     # Robin on the right: kappa du/dn + r u = s with r = 3, s = 4 + 3 u
     sol = solve_poisson(
         m,
@@ -144,10 +156,18 @@ def test_torsion_of_a_square_bar():
     # Square of side a: J = 0.1406 a^4 (S. Timoshenko and J. N. Goodier, Theory
     # of Elasticity, 1951, table for rectangular bars).
     a = 2.0
-    m = rectangle(64, 64, bounds=(-1, 1, -1, 1))
-    sol = solve_poisson(m, 2.0)
-    J = 2 * kernels.assemble_load(m, 1.0) @ sol.u
-    assert J == pytest.approx(0.1406 * a**4, rel=1e-3)
+    J = []
+    for n in (32, 64):
+        m = rectangle(n, n, bounds=(-1, 1, -1, 1))
+        sol = solve_poisson(m, 2.0)
+        J.append(2 * kernels.assemble_load(m, 1.0) @ sol.u)
+    # Galerkin: J_h = a(phi_h, phi_h) <= a(phi, phi) = J, growing on nested meshes
+    assert J[0] < J[1] < 0.1406 * a**4
+    assert J[1] == pytest.approx(0.1406 * a**4, rel=1.5e-3)
+    # with the O(h^2) error removed (Richardson extrapolation; common practice,
+    # no source) the value agrees to the four digits the table gives
+    extrapolated = J[1] + (J[1] - J[0]) / 3
+    assert extrapolated == pytest.approx(0.1406 * a**4, abs=0.00005 * a**4)
 
 
 def test_torsion_of_a_circular_bar():
@@ -164,20 +184,32 @@ def test_torsion_of_a_circular_bar():
     assert errors[0] / errors[-1] > 10  # O(h^2): about 16 over two halvings
 
 
-@pytest.mark.parametrize("preconditioner", ["amg", "ic0"])
-def test_jump_and_anisotropy_still_converge(preconditioner):
-    m = rectangle(48, 48)
+@functools.lru_cache(maxsize=None)
+def jump_case(name):
+    """A mesh, a coefficient and scipy's direct solution of its Dirichlet problem."""
+    m = rectangle(12, 12).refine().refine()  # 48 x 48 cells; gmg gets three levels
     c = m.points[m.triangles].mean(axis=1)
-    jump = np.where(c[:, 0] > 0.5, 1e6, 1.0)
-    aniso = np.array([[100.0, 0.0], [0.0, 1.0]])
-    for coef in (jump, aniso):
-        sol = solve_poisson(m, 1.0, coefficient=coef, preconditioner=preconditioner, rtol=1e-10)
-        s = kernels.apply_dirichlet(
-            kernels.assemble_stiffness(m, coef), kernels.assemble_load(m, 1.0), m.boundary_nodes()
-        )
-        ref = s.expand(spla.spsolve(s.A.tocsc(), s.b))  # reference library: scipy
-        assert sol.converged
-        assert np.linalg.norm(sol.u - ref) <= 1e-6 * np.linalg.norm(ref)
+    coef = {
+        "jump-1e6": np.where(c[:, 0] > 0.5, 1e6, 1.0),
+        "anisotropy-100": np.array([[100.0, 0.0], [0.0, 1.0]]),
+    }[name]
+    s = kernels.apply_dirichlet(
+        kernels.assemble_stiffness(m, coef), kernels.assemble_load(m, 1.0), m.boundary_nodes()
+    )
+    return m, coef, s.expand(spla.spsolve(s.A.tocsc(), s.b))  # reference library: scipy
+
+
+@pytest.mark.parametrize("case", ["jump-1e6", "anisotropy-100"])
+@pytest.mark.parametrize("preconditioner", ["jacobi", "ic0", "amg-sa", "amg-rs", "amg", "gmg"])
+def test_jump_and_anisotropy_still_converge(preconditioner, case):
+    # A coefficient jump of 1e6 across x = 0.5 and a 100:1 anisotropic tensor:
+    # every preconditioner still converges to the direct solution (the table
+    # in docs/solvers.md gives the iteration counts that guide the choice).
+    m, coef, ref = jump_case(case)
+    sol = solve_poisson(m, 1.0, coefficient=coef, preconditioner=preconditioner,
+                        rtol=1e-10)
+    assert sol.converged
+    assert np.linalg.norm(sol.u - ref) <= 1e-6 * np.linalg.norm(ref)
 
 
 def test_stats_and_non_convergence():
