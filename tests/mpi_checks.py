@@ -350,6 +350,13 @@ def _distributed_system(comm, mesh):
 
 @check
 def cg_conventions(comm):
+    import kernels
+
+    with kernels.threads(1):  # the ranks share the cores (solve_poisson does this itself)
+        _cg_conventions(comm)
+
+
+def _cg_conventions(comm):
     import numpy as np
 
     from kernels.distributed.cg import cg
@@ -402,6 +409,112 @@ def rank_without_unknowns(comm):
                             check=True)
         assert sol.stats["balance"][-1]["owned_unknowns"] == 0
         assert np.abs(sol.u - ser.u).max() <= 1e-8 * np.abs(ser.u).max()
+
+
+class _BufferCallsOnly:
+    """A communicator that lets through only mpi4py's buffer calls (capitalised names:
+    ``Isend``, ``Allreduce``, ...) and refuses the pickling ones (``isend``,
+    ``allreduce``, ...); it counts the calls and keeps the send buffers (by address:
+    held, so that a fresh allocation cannot reuse a freed buffer's address)."""
+
+    def __init__(self, comm):
+        import collections
+
+        self._comm = comm
+        self.calls = collections.Counter()
+        self.send_buffers = {}
+
+    def __getattr__(self, name):
+        if not name[:1].isupper():
+            raise AssertionError(f"comm.{name}: a pickling call on the solve's path")
+        fn = getattr(self._comm, name)
+
+        def call(*args, **kwargs):
+            self.calls[name] += 1
+            if name in ("Isend", "Irecv"):
+                buf = args[0][0]
+                assert buf.flags.c_contiguous and buf.dtype.kind == "f", (name, buf.flags)
+                if name == "Isend":
+                    self.send_buffers[buf.ctypes.data] = buf
+            return fn(*args, **kwargs)
+
+        return call
+
+
+@check
+def hot_path_uses_preallocated_buffers_and_no_pickling(comm):
+    import kernels
+    from kernels.distributed.cg import cg
+    from kernels.distributed.precond import make_distributed_preconditioner
+    from kernels.mesh import rectangle
+
+    for coarse in (None, "constants"):
+        proxy = _BufferCallsOnly(comm)
+        D, local = _distributed_system(proxy, rectangle(24, 16))
+        M = make_distributed_preconditioner(D, "amg", coarse, proxy, D.stats)
+        proxy.calls.clear()
+        exchanges = D.stats.halo_exchanges
+        with kernels.threads(1):  # the ranks share the cores (solve_poisson does this itself)
+            result = cg(D, local.b, rtol=1e-10, M=M)
+        assert result.info == 0, result.message
+        exchanges = D.stats.halo_exchanges - exchanges
+        senders = sum(1 for s in D.halo.pattern.send if len(s))
+        assert exchanges >= result.iterations
+        # one message per neighbour and product, always from the same buffers
+        assert proxy.calls["Isend"] == senders * exchanges, (proxy.calls, senders, exchanges)
+        assert len(proxy.send_buffers) == senders, (len(proxy.send_buffers), senders)
+        # two reductions per iteration (docs/distributed.md), plus a few at start and end
+        assert proxy.calls["Allreduce"] <= 2 * result.iterations + 4 + 2 * result.restarts
+        if coarse:
+            assert proxy.calls["Gather"] == proxy.calls["Scatter"] >= result.iterations
+        assert set(proxy.calls) <= {"Isend", "Irecv", "Allreduce", "Gather", "Scatter"}, \
+            proxy.calls
+
+
+@check
+def threads_per_rank_and_monitor(comm):
+    import os
+
+    import numba
+    import numpy as np
+    from mpi4py import MPI
+
+    from kernels.distributed import solve_poisson
+    from kernels.distributed.launch import cores_per_node
+    from kernels.errors import InputError
+    from kernels.mesh import disk
+
+    mesh = disk(8)
+    before = numba.get_num_threads()
+    seen = []
+    sol = solve_poisson(mesh, 1.0, comm=comm, monitor=lambda i, r: seen.append((i, r)))
+    assert numba.get_num_threads() == before  # restored after the solve
+    chosen = sol.stats["threads_per_rank"]
+    assert sol.stats["threads"] == chosen["threads"] >= 1  # numba ran with the choice
+    node = comm.Split_type(MPI.COMM_TYPE_SHARED)
+    try:
+        on_node = node.allreduce(chosen["threads"])
+        ranks_on_node = node.Get_size()
+    finally:
+        node.Free()
+    assert chosen["ranks_on_node"] == ranks_on_node
+    if "NUMBA_NUM_THREADS" not in os.environ:
+        # no oversubscription by threads: at most one thread per core on the node, or
+        # one per rank when there are more ranks than cores (common practice, no source)
+        assert on_node <= max(cores_per_node()[0], ranks_on_node), (on_node, chosen)
+    one = solve_poisson(mesh, 1.0, comm=comm, threads=1)
+    assert one.stats["threads"] == 1 and one.stats["threads_per_rank"]["chosen_by"] == "given"
+    try:
+        solve_poisson(mesh, 1.0, comm=comm, threads=0)
+    except InputError as exc:
+        assert "threads must be an integer" in str(exc), exc
+    else:
+        raise AssertionError("threads=0 was accepted")
+    # monitor: every iteration once, the global residual norms, the same on every rank
+    its = sol.stats["iterations"]
+    assert [i for i, _ in seen] == list(range(1, its + 1)), seen
+    assert np.array_equal([r for _, r in seen], sol.stats["residuals"][1:])
+    assert all(other == seen for other in comm.allgather(seen))
 
 
 def main():

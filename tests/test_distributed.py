@@ -52,19 +52,30 @@ def built_in_meshes():
     return {"rectangle": rectangle(24, 16), "l_shape": l_shape(10), "disk": disk(10)}
 
 
+def larger_built_in_meshes():
+    return {"rectangle": rectangle(96, 64), "l_shape": l_shape(40), "disk": disk(40)}
+
+
 # -- partitioning -------------------------------------------------------------------
 
 
 @pytest.mark.parametrize("method", ["rcb", "hilbert"])
+@pytest.mark.parametrize("size", ["small", "larger"])
 @pytest.mark.parametrize("name", ["rectangle", "l_shape", "disk"])
-def test_partition_balance_and_interface(name, method):
-    mesh = built_in_meshes()[name]
+def test_partition_balance_and_interface(name, size, method):
+    mesh = (built_in_meshes() if size == "small" else larger_built_in_meshes())[name]
     e = mesh.edges()
     for parts in (2, 3, 4):
         p = partition(mesh, parts, method=method)
         q = p.quality()
         assert p.counts().sum() == mesh.n_points
+        # the bound on imbalance (max / mean - 1), for the owned points and for
+        # the stored entries of the owned rows (the product's work), counted here
         assert q.imbalance < 0.05, (parts, q)
+        degree = np.bincount(e.ravel(), minlength=mesh.n_points) + 1
+        entries = np.bincount(p.owner, weights=degree, minlength=parts)
+        assert q.owned_entries.tolist() == entries.astype(int).tolist()
+        assert entries.max() / entries.mean() - 1 < 0.05, (parts, q)
         # interface points by the definition, counted independently of the library
         # (common practice, no source): ends of edges whose ends have different owners
         cut = p.owner[e[:, 0]] != p.owner[e[:, 1]]
@@ -352,6 +363,23 @@ def test_ranks_from_environment():
     assert ranks_from_environment({"PMI_SIZE": "junk"}) == 1
 
 
+def test_distributed_solve_takes_every_serial_argument():
+    # "the same arguments as the serial one": names, kinds and defaults (common practice,
+    # no source); the extra ones are keyword-only
+    import inspect
+
+    from kernels.distributed import solve_poisson as distributed
+
+    serial = inspect.signature(kernels.solve_poisson).parameters
+    ours = inspect.signature(distributed).parameters
+    for name, param in serial.items():
+        assert name in ours, f"distributed solve_poisson lacks {name!r}"
+        assert ours[name].kind == param.kind, name
+        assert ours[name].default == param.default, name
+    for name in ours.keys() - serial.keys():
+        assert ours[name].kind == inspect.Parameter.KEYWORD_ONLY, name
+
+
 def test_import_does_not_need_mpi4py():
     code = ("import sys, kernels, kernels.distributed, kernels.cli; "
             "print('mpi4py' in sys.modules)")
@@ -399,7 +427,7 @@ def test_mpi_checks(ranks):
     code, out, err = run_mpi(ranks, [sys.executable, str(HERE / "mpi_checks.py")])
     print(out)
     assert code == 0, f"exit {code}\n{out}\n{err}"
-    assert f"all 10 checks passed on {ranks} ranks" in out
+    assert f"all 12 checks passed on {ranks} ranks" in out
 
 
 @needs_mpi

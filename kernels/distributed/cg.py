@@ -78,15 +78,21 @@ class Reducer:
 
 
 def cg(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None, callback=None,
-       warn=True):
+       warn=True, monitor=None):
     """Preconditioned CG on a :class:`~kernels.distributed.matrix.DistributedMatrix`.
 
     Collective over ``A.comm``.  ``b``, ``x0`` and the returned ``x`` are
     this rank's owned entries.  ``M`` is a distributed preconditioner
     (``apply(r, z)`` returning the local ``r . z``) or None.  ``maxiter``
     defaults to 10 times the global number of unknowns.  ``callback(x)`` is
-    called on every rank with its owned entries.  Returns a
+    called on every rank with its owned entries; ``monitor(iteration,
+    residual_norm)`` after every iteration with the global residual norm, on
+    every rank (as :func:`kernels.krylov.cg_with_history`).  Returns a
     :class:`~kernels.krylov.CGResult` (the same on every rank but ``x``).
+
+    It runs on numba's current thread count; :func:`~kernels.distributed.solve_poisson`
+    sets one that does not oversubscribe the node, a direct caller should too
+    (``with kernels.threads(n):``).
     """
     n = A.n_owned
     red = Reducer(A.comm, A.stats)
@@ -178,11 +184,15 @@ def cg(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None, callback=Non
                 rnorm = math.sqrt(rr)
                 if rnorm <= tol:
                     history.append(rnorm)
+                    if monitor is not None:
+                        monitor(iteration, rnorm)
                     info, message = 0, f"converged in {iteration} iterations"
                     break
                 restart = True
                 restarts += 1
             history.append(rnorm)
+            if monitor is not None:
+                monitor(iteration, rnorm)
             if iteration == maxiter:
                 break
             if restart:

@@ -108,7 +108,7 @@ def _warm_up(args, comm):
         pass  # the real problem reports its own errors
 
 
-def _solve(problem, args, comm, progress, gather="root"):
+def _solve(problem, args, comm, progress, gather="root", monitor=None):
     from kernels.distributed.solve import solve_poisson
     from kernels.scenarios import _coefficient
 
@@ -124,6 +124,7 @@ def _solve(problem, args, comm, progress, gather="root"):
         maxiter=args.maxiter,
         check=True,
         progress=progress,
+        monitor=monitor,
         coarse=COMMAND_COARSE,
         gather=gather,
         threads=args.threads,
@@ -161,7 +162,8 @@ def _collective(args, progress, comm):
     phases = {"boundary": "boundary: Dirichlet conditions and partition",
               "assemble": "assemble: owned rows on each rank's subdomain",
               "solve": "solve: preconditioner setup and distributed conjugate gradients"}
-    sol = _solve(problem, args, comm, lambda phase: progress.phase(phases.get(phase, phase)))
+    sol = _solve(problem, args, comm, lambda phase: progress.phase(phases.get(phase, phase)),
+                 monitor=cli.IterationReport(progress))
     return out, problem, sol, timings, notice.seconds, command
 
 

@@ -164,7 +164,7 @@ def _local_boundary(sub, n, spec):
     return neumann, robin
 
 
-def _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, parts):
+def _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, parts, monitor):
     if not isinstance(mesh, Mesh):
         raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
     if matrix_free:
@@ -181,6 +181,8 @@ def _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, p
     if gather not in GATHER or isinstance(gather, int) and not isinstance(gather, bool):
         raise InputError(f"gather must be True (every rank), 'root' (rank 0) or False, "
                          f"got {gather!r}")
+    if monitor is not None and not callable(monitor):
+        raise InputError(f"monitor must be callable or None, got {type(monitor).__name__}")
     if not (parts is None or isinstance(parts, Partition) or parts in METHODS):
         raise InputError(f"partition must be None, one of {METHODS} or a Partition, "
                          f"got {parts!r}")
@@ -206,6 +208,7 @@ def solve_poisson(
     matrix_free=None,
     variant=None,
     progress=None,
+    monitor=None,
     coarse=None,
     partition=None,
     gather=True,
@@ -235,6 +238,9 @@ def solve_poisson(
         Not available distributed (an error if set).
     progress : callable, optional
         ``progress(phase)`` on every rank.
+    monitor : callable, optional
+        ``monitor(iteration, residual_norm)`` after every CG iteration, on
+        every rank, with the global residual norm (the same on every rank).
     coarse : None or "constants"
         None: block Jacobi.  ``"constants"``: the additive two-level
         preconditioner with one constant per subdomain (iterations bounded
@@ -262,7 +268,8 @@ def solve_poisson(
     ConvergenceError
         With ``check=True``, on every rank.
     """
-    _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, partition)
+    _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, partition,
+                   monitor)
     comm = as_comm(comm)
     n_threads, ranks_on_node, how = default_threads(comm, threads)
     dcomm = comm.Dup()  # the solver's messages never meet the caller's
@@ -270,7 +277,7 @@ def solve_poisson(
         with _threads(n_threads):
             sol = _solve(mesh, f, dcomm, dirichlet, dirichlet_on, coefficient, reaction,
                          neumann, robin, preconditioner, rtol, atol, maxiter, quadrature,
-                         progress, coarse, partition, gather, preconditioner_options)
+                         progress, monitor, coarse, partition, gather, preconditioner_options)
     finally:
         dcomm.Free()
     sol.stats["threads_per_rank"] = {"threads": n_threads, "ranks_on_node": ranks_on_node,
@@ -287,8 +294,8 @@ def solve_poisson(
 
 
 def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin,
-           preconditioner, rtol, atol, maxiter, quadrature, progress, coarse, parts, gather,
-           options):
+           preconditioner, rtol, atol, maxiter, quadrature, progress, monitor, coarse, parts,
+           gather, options):
     MPI = mpi()
     rank, size = comm.Get_rank(), comm.Get_size()
     note = progress or (lambda phase: None)
@@ -358,7 +365,8 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
     timings["setup"] = time.perf_counter() - t3
     setup_stats = dataclasses.replace(stats)
     t4 = time.perf_counter()
-    result = cg(matrix, local.b, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False)
+    result = cg(matrix, local.b, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
+                monitor=monitor)
     timings["solve"] = time.perf_counter() - t4
     u_owned = local.expand(result.x)
 
