@@ -594,7 +594,7 @@ def targets(ix, huge=None):
     else:
         peak = huge["peak_rss_GiB"]
         rows.append([label, f"{huge['triangles']:,} triangles, peak {peak:.1f} GiB, "
-                     f"{huge['iterations']} iterations, total "
+                     f"{huge['iterations']} iterations, mesh to solution "
                      f"{sum(v for k, v in huge['phases'].items() if k != 'total'):.1f} s",
                      _verdict(peak <= 24 and huge.get("converged", True))])
     return rows
@@ -881,9 +881,9 @@ def main(argv=None):
         pngs = {}
         rel = None
         if args.images:
-            pngs = plots(Index(entries))
-            if not os.path.isdir(args.images):
+            if not os.path.isdir(args.images):  # before the plots, which take a while
                 raise ReportError(f"--images {args.images} is not a directory")
+            pngs = plots(Index(entries))
             rel = os.path.relpath(args.images, os.path.dirname(os.path.abspath(args.out)))
             rel = rel.replace(os.sep, "/")
         out_dir = os.path.dirname(os.path.abspath(args.out))

@@ -41,6 +41,8 @@ SLOW_FIRST_CALL = 2.0
 NEEDS_REFINEMENT = ("gmg",)
 #: Cold compile of the kernels a solve uses, measured on the development machine (2 cores).
 COMPILE_ESTIMATE = 15
+#: At most one progress line per this many seconds during the CG iterations.
+ITERATION_REPORT_SECONDS = 1.0
 
 SCENARIO_HELP = """\
 The built-in scenario (invented demonstration data): a heat-spreader plate
@@ -357,11 +359,14 @@ def _extreme(u, used, which):
 
 
 class IterationReport:
-    """CG iterations with the current residual, at most one line a second."""
+    """CG iterations with the current residual, at most one line every ``every`` seconds.
 
-    def __init__(self, progress, every=1.0):
+    ``every`` defaults to :data:`ITERATION_REPORT_SECONDS`, read when the report is made.
+    """
+
+    def __init__(self, progress, every=None):
         self.progress = progress
-        self.every = every
+        self.every = ITERATION_REPORT_SECONDS if every is None else every
         self.last = time.perf_counter()
 
     def __call__(self, iteration, residual):

@@ -135,6 +135,26 @@ def test_targets(written, raw):
     assert mf.endswith("| **met** |" if all(oks) else "| **not met** |")
 
 
+@pytest.mark.parametrize("peak, converged, verdict", [(14.3, True, "**met**"),
+                                                       (24.5, True, "**not met**"),
+                                                       (14.3, False, "**not met**")])
+def test_huge_solve_target(tmp_path, peak, converged, verdict):
+    # the 24 GiB target is judged from bench/huge_solve.py --json output: the peak and
+    # whether the solve converged (common practice, no source)
+    huge = tmp_path / "huge.json"
+    huge.write_text(json.dumps({
+        "triangles": 128_000_000, "points": 64_016_001, "iterations": 10,
+        "converged": converged, "peak_rss_GiB": peak,
+        "phases": {"mesh": 19.0, "assemble": 12.0, "setup": 8.0, "solve": 84.0, "total": 1e9},
+    }), encoding="utf-8")
+    out = tmp_path / "perf.md"
+    assert report.main([str(DATA), "--out", str(out), "--huge", str(huge)]) == 0
+    row = _row(out.read_text(encoding="utf-8"), "| the 1.3e8-triangle solve within 24 GiB |")
+    assert row[1] == (f"128,000,000 triangles, peak {peak:.1f} GiB, 10 iterations, "
+                      f"mesh to solution 123.0 s")  # every phase but the library's 'total'
+    assert row[2] == verdict
+
+
 def test_pngs_are_valid(written):
     md, images = written
     names = sorted(p.name for p in images.iterdir())
@@ -214,6 +234,23 @@ def test_nothing_written_when_one_input_is_bad(tmp_path, capsys):
     out = tmp_path / "perf.md"
     _fails(capsys, [str(DATA), str(bad), "--out", str(out), "--images", str(images)], "bad.json")
     assert not out.exists() and list(images.iterdir()) == []
+
+
+@pytest.mark.parametrize("case", ["images-missing", "out-directory-missing", "huge-not-ours"])
+def test_bad_paths(tmp_path, capsys, case):
+    out = tmp_path / "perf.md"
+    huge = tmp_path / "huge.json"
+    huge.write_text(json.dumps({"triangles": 10}), encoding="utf-8")
+    argv, words = {
+        "images-missing": ([str(DATA), "--out", str(out), "--images", str(tmp_path / "img")],
+                           ["--images", "is not a directory"]),
+        "out-directory-missing": ([str(DATA), "--out", str(tmp_path / "no" / "perf.md")],
+                                  ["does not exist"]),
+        "huge-not-ours": ([str(DATA), "--out", str(out), "--huge", str(huge)],
+                          ["huge.json", "is not bench/huge_solve.py --json output"]),
+    }[case]
+    _fails(capsys, argv, *words)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["huge.json"]  # nothing written
 
 
 def test_out_without_markers_is_left_alone(tmp_path, capsys):

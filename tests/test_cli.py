@@ -262,6 +262,30 @@ def test_bad_input(tmp_path, case):
     assert result.stdout == ""
 
 
+OTHER_BAD = {
+    "bench-unknown-preconditioner": (["bench", "--preconditioners", "jacobi,magic"],
+                                     "unknown preconditioner 'magic'"),
+    "bench-json-in-missing-directory": (["bench", "--json", "{dir}/no/such/b.json"],
+                                        "does not exist"),
+    "verify-existing-out": (["verify", "--out", "{dir}/taken"], "exists; use --force"),
+    "info-unknown-option": (["info", "--frobnicate"], "unrecognized arguments: --frobnicate"),
+}
+
+
+@pytest.mark.parametrize("case", list(OTHER_BAD))
+def test_bad_input_other_commands(tmp_path, case):
+    # every subcommand: exit 2, one line naming the problem, nothing written
+    args, message = OTHER_BAD[case]
+    (tmp_path / "taken").mkdir()
+    before = sorted(os.listdir(tmp_path))
+    result = run(*[a.format(dir=tmp_path) for a in args], "--quiet")
+    assert result.returncode == 2, result.stderr
+    assert message in error_line(result)
+    assert result.stdout == ""
+    assert sorted(os.listdir(tmp_path)) == before
+    assert os.listdir(tmp_path / "taken") == []
+
+
 def test_no_command(tmp_path):
     result = run()
     assert result.returncode == 2
@@ -377,6 +401,22 @@ def test_help(command):
 
 
 # -- pieces, in process ---------------------------------------------------------------
+
+
+def test_iteration_progress_reaches_stderr(tmp_path, monkeypatch, capsys):
+    # In process, with no throttling: every CG iteration shows on stderr with the
+    # residual the solver recorded for it (the history in summary.json).
+    monkeypatch.setattr(cli, "ITERATION_REPORT_SECONDS", 0.0)
+    out = tmp_path / "o"
+    assert cli.main(["solve", "--cells", "24", "--preconditioner", "jacobi", "--out",
+                     str(out)]) == 0
+    err = capsys.readouterr().err
+    lines = [line.split("] ", 1)[1] for line in err.splitlines() if "solve: iteration" in line]
+    solver = json.loads((out / "summary.json").read_text())["solver"]
+    history = solver["residuals"]
+    assert solver["iterations"] > 5  # enough iterations to see the lines follow the history
+    assert lines == [f"solve: iteration {k}, residual {history[k]:.3e}"
+                     for k in range(1, solver["iterations"] + 1)]
 
 
 class _Recorder:
