@@ -34,7 +34,9 @@ refused).  Two preconditioner shortcuts avoid a call of ``M.matvec`` per
 iteration: an ``M`` with ``is_identity = True`` (the ``none`` preconditioner)
 is treated as ``M=None``, and one that exposes ``inverse_diagonal`` (a float64
 array of shape ``(n,)``, as ``jacobi`` does) is applied as that diagonal inside
-the fused vector update.
+the fused vector update.  An ``M`` with a method ``apply_into(r, out)`` (as
+``gmg`` has) is called with CG's own vector as ``out``, saving a vector per
+application.
 """
 
 import math
@@ -175,6 +177,7 @@ class _Preconditioner:
         self.identity = M is None or getattr(M, "is_identity", False) is True
         self.dinv = None
         self.op = None
+        self.into = None
         if self.identity:
             return
         dinv = getattr(M, "inverse_diagonal", None)
@@ -191,11 +194,16 @@ class _Preconditioner:
             raise InputError(f"M has shape {M.shape}, expected ({n}, {n}) to match A")
         self.op = M
         self.n = n
+        # a preconditioner that writes into a given array (gmg) saves a vector per apply
+        into = getattr(M, "apply_into", None)
+        self.into = into if callable(into) else None
 
     def apply(self, r, z):
         """Fill ``z`` with ``M r``; return ``r . z``."""
         if self.dinv is not None:
             _k.jacobi_apply(self.dinv, r, z)
+        elif self.into is not None:
+            self.into(r, z)
         else:
             y = np.asarray(self.op.matvec(r))
             if y.shape not in ((self.n,), (self.n, 1)):

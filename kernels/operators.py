@@ -12,8 +12,10 @@ Three variants, all race-free and giving the same bits on any thread count
     triangle): no geometry at product time.
 ``edges``
     stores one weight per edge (the cotangent formula summed over the edge's
-    triangles) and the edge list: 16 bytes per edge, about 24 per triangle;
-    the product no longer needs the triangles.
+    triangles) and the edge list by first point (an end point per edge, a
+    start per point): 12 bytes per edge and 4 per point, about 20 per
+    triangle, 0.45 of the CSR matrix; the product no longer needs the
+    triangles.
 
 docs/matrix-free.md has the measured speeds; :data:`DEFAULT_VARIANT` is
 the one the benchmark picked.
@@ -50,7 +52,11 @@ DEFAULT_BLOCK = 1024
 
 def _colouring(elements, n_points, block_size):
     """Blocks of one colour, colour by colour: ``(colour_ptr, blocks)``, or None if > 64 colours."""
-    colour = _jit_ops.colour_blocks(elements, n_points, block_size)
+    return _colouring_of(_jit_ops.colour_blocks(elements, n_points, block_size))
+
+
+def _colouring_of(colour):
+    """``(colour_ptr, blocks)`` from a colour per block, or None if the colouring failed."""
     if colour.size and colour[0] < 0:
         return None
     order = np.argsort(colour, kind="stable")
@@ -159,16 +165,27 @@ class StiffnessOperator(LinearOperator):
             self._ovals = np.empty((mesh.n_triangles, 3))
             self._kernel("values")(mesh.points, mesh.triangles, *self._kc, self._ovals)
         if variant == "edges":
-            had = "triangle_edges" in mesh._cache
-            self._edges = mesh.edges()  # shared with the mesh's cache, not copied
-            self._weights = np.empty(len(self._edges))
+            cached = set(mesh._cache)
+            edges = mesh.edges()
+            weights = np.empty(len(edges))
             self._kernel("edge_weights")(
                 mesh.points, mesh.triangles, *self._kc, block_size, self._colour_ptr,
-                self._blocks, mesh.triangle_edges(), self._weights,
+                self._blocks, mesh.triangle_edges(), weights,
             )
-            if not had:  # 12 bytes per triangle that the products do not need
-                mesh._cache.pop("triangle_edges", None)
-            ecol = _colouring(self._edges, n, block_size)
+            # the sorted edge list by first point: a start per point, an end per edge
+            self._starts = np.zeros(n + 1, dtype=edges.dtype)
+            np.cumsum(np.bincount(edges[:, 0], minlength=n), out=self._starts[1:])
+            self._ends = np.ascontiguousarray(edges[:, 1])
+            self._weights = weights
+            for key in set(mesh._cache) - cached:
+                # edge topology the products do not need (12 to 20 bytes per triangle)
+                mesh._cache.pop(key, None)
+            del edges
+            # blocks of rows holding about block_size edges (three per row in 2-D)
+            self._rows_per_block = max(1, block_size // 3)
+            ecol = _colouring_of(
+                _jit_ops.colour_row_blocks(self._starts, self._ends, n, self._rows_per_block)
+            )
             if ecol is None:
                 raise InputError(
                     "the edges variant needs a colouring of edges with at most 64 colours; "
@@ -208,8 +225,8 @@ class StiffnessOperator(LinearOperator):
         if self.variant == "factors":
             parts.append(self._ovals)
         if self.variant == "edges":
-            # the edge list is the mesh's own cached array, shared; counted here
-            parts += [self._edges, self._weights, self._edge_colour_ptr, self._edge_blocks]
+            parts += [self._starts, self._ends, self._weights, self._edge_colour_ptr,
+                      self._edge_blocks]
         return int(sum(a.nbytes for a in parts))
 
     def __repr__(self):
@@ -256,7 +273,7 @@ class StiffnessOperator(LinearOperator):
             )
         else:
             _jit_ops.apply_edges(
-                self._edges, self._weights, self.block_size, self._edge_colour_ptr,
+                self._starts, self._ends, self._weights, self._rows_per_block, self._edge_colour_ptr,
                 self._edge_blocks, x, out,
             )
 
@@ -303,29 +320,38 @@ class StiffnessOperator(LinearOperator):
         Guaranteed (Gershgorin's circle theorem); exactly 2 when no
         off-diagonal entry is positive (meshes without obtuse angle pairs).
         """
+        return self.diagonal_and_bound()[1]
+
+    def diagonal_and_bound(self):
+        """``(diagonal, gershgorin_bound)`` in one pass over the triangles.
+
+        The diagonal is a new array (not the cached one of :meth:`diagonal`),
+        the caller's to keep or overwrite: what a smoother needs, without a
+        second copy.
+        """
         m = self.mesh
+        n = self.shape[0]
         if self._serial:
             d, o = self._element_values()
             rows = np.abs(o)
+            diag = np.bincount(m.triangles.ravel(), weights=d.ravel(), minlength=n)
             off = np.bincount(
                 m.triangles.ravel(),
                 weights=(np.roll(rows, -1, axis=1) + np.roll(rows, 1, axis=1)).ravel(),
-                minlength=self.shape[0],
+                minlength=n,
             )
         else:
-            off = np.empty(self.shape[0])
-            self._kernel("abs_offdiagonal")(
-                m.points, m.triangles, *self._kc, self.block_size, self._colour_ptr, self._blocks,
-                off,
+            diag, off = np.empty(n), np.empty(n)
+            _jit_ops.diagonal_and_offsum(
+                m.points, m.triangles, *self._kc, self.block_size, self._colour_ptr,
+                self._blocks, diag, off,
             )
-        diag = self.diagonal()
-        free = np.ones(self.shape[0], dtype=bool)
-        free[self._fixed] = False
-        if self._fixed.size:
-            # fixed rows are identity; removing the fixed columns only lowers free rows' sums
-            off[self._fixed] = 0.0
-        ratio = (diag[free] + off[free]) / diag[free]
-        return float(ratio.max(initial=1.0))
+        diag[self._fixed] = 1.0
+        # fixed rows are identity; removing the fixed columns only lowers free rows' sums
+        off[self._fixed] = 0.0
+        off += diag
+        off /= diag
+        return diag, float(off.max(initial=1.0))
 
     @property
     def fixed(self):

@@ -257,9 +257,10 @@ def solve_poisson(
         )
         g = np.zeros(mesh.n_points)
         g[fixed] = values
-        rhs = b - op.unmasked_matvec(g)  # lifting: move the known values to the right
-        rhs[op.fixed] = g[op.fixed]
-        system_A, system_b, expand = op, rhs, (lambda x: x)
+        b -= op.unmasked_matvec(g)  # lifting: move the known values to the right
+        b[op.fixed] = g[op.fixed]
+        del g  # a vector less during the solve (b is this function's own array)
+        system_A, system_b, expand = op, b, (lambda x: x)
         stored = op.nbytes
     else:
         asm = StiffnessAssembler(mesh)

@@ -379,6 +379,16 @@ def test_load_of_other_kinds(random_mesh):
         assemble_load(m, np.r_[np.inf, np.ones(m.n_points - 1)])
 
 
+def test_load_kernel_equals_the_plain_sum(random_mesh):
+    """The one-pass kernel for per-triangle values against NumPy's bincount of element values."""
+    m = random_mesh
+    t = m.triangles
+    for f in (2.5, np.linspace(-1.0, 3.0, m.n_triangles)):
+        v = m.areas() * (np.asarray(f) / 3.0) * np.ones(m.n_triangles)
+        plain = sum(np.bincount(t[:, a], weights=v, minlength=m.n_points) for a in range(3))
+        assert assemble_load(m, f) == pytest.approx(plain, rel=1e-14, abs=1e-17)
+
+
 # -- boundary terms --
 
 

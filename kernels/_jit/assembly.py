@@ -164,3 +164,29 @@ def gather_stiffness(
             data[uint64(slot_prev[u])] += kac
         if ptr[i + 1] > ptr[i]:
             data[uint64(diag[i])] = dsum
+
+
+@jit()
+def load_per_triangle(points, triangles, value, vs, out):
+    """``out_i = sum over triangles T of i of area(T) value_T / 3`` (serial, in triangle order).
+
+    ``value[t * vs]`` is triangle ``t``'s value (``vs = 0``: one value for
+    all).  The plain version is ``np.bincount`` of the element values; this
+    one needs no (M,) temporaries.
+    """
+    out[:] = 0.0
+    z = uint64(0)
+    o = uint64(1)
+    w = uint64(2)
+    for tt in range(triangles.shape[0]):
+        t = uint64(tt)
+        i0 = uint64(triangles[t, z])
+        i1 = uint64(triangles[t, o])
+        i2 = uint64(triangles[t, w])
+        d = (points[i1, z] - points[i0, z]) * (points[i2, o] - points[i0, o]) - (
+            points[i2, z] - points[i0, z]
+        ) * (points[i1, o] - points[i0, o])
+        v = (0.5 * d) * (value[t * uint64(vs)] / 3.0)
+        out[i0] += v
+        out[i1] += v
+        out[i2] += v

@@ -175,18 +175,26 @@ def diagonal(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, b
 
 
 @jit(parallel=True)
-def abs_offdiagonal(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks, y):
-    """Row sums of ``|A_ij|`` over ``j != i`` into ``y`` (for Gershgorin's bound)."""
+def diagonal_and_offsum(points, triangles, kappa, ks, tensor, ts, block_size, colour_ptr, blocks,
+                        diag, off):
+    """The diagonal into ``diag`` and the row sums of ``|A_ij|``, ``j != i``, into ``off``.
+
+    One pass for Gershgorin's bound and the smoother's diagonal.
+    """
     m = triangles.shape[0]
-    _zero(y)
+    _zero(diag)
+    _zero(off)
     for c in range(colour_ptr.size - 1):
         for k in prange(colour_ptr[c], colour_ptr[c + 1]):
             b = blocks[k]
             for t in range(b * block_size, min(m, (b + 1) * block_size)):
                 o0, o1, o2, i0, i1, i2 = _offdiagonals(points, triangles, t, kappa, ks, tensor, ts)
-                y[i0] += abs(o1) + abs(o2)
-                y[i1] += abs(o0) + abs(o2)
-                y[i2] += abs(o0) + abs(o1)
+                diag[i0] -= o1 + o2
+                diag[i1] -= o0 + o2
+                diag[i2] -= o0 + o1
+                off[i0] += abs(o1) + abs(o2)
+                off[i1] += abs(o0) + abs(o2)
+                off[i2] += abs(o0) + abs(o1)
 
 
 @jit(parallel=True)
@@ -260,17 +268,68 @@ def apply_factors(triangles, ovals, block_size, colour_ptr, blocks, x, y):
 
 
 @jit(parallel=True)
-def apply_edges(edges, weights, block_size, colour_ptr, blocks, x, y):
-    """``y = A x`` from one weight per edge: ``(A x)_i = sum_j a_ij (x_j - x_i)``."""
-    m = edges.shape[0]
+def apply_edges(starts, ends, weights, rows_per_block, colour_ptr, blocks, x, y):
+    """``y = A x`` from one weight per edge: ``(A x)_i = sum_j a_ij (x_j - x_i)``.
+
+    The edges ``(i, ends[e])`` with ``i < ends[e]`` are stored by their first
+    point: row ``i``'s are ``starts[i]:starts[i+1]`` (the upper triangle of the
+    matrix's pattern, without the diagonal).  A block is a run of
+    ``rows_per_block`` rows (see :func:`colour_row_blocks`); each row's own
+    terms are summed in a register.
+    """
+    n = starts.size - 1
     _zero(y)
     for c in range(colour_ptr.size - 1):
         for k in prange(colour_ptr[c], colour_ptr[c + 1]):
             b = blocks[k]
-            for ee in range(b * block_size, min(m, (b + 1) * block_size)):
-                e = uint64(ee)
-                i = uint64(edges[e, uint64(0)])
-                j = uint64(edges[e, uint64(1)])
-                d = weights[e] * (x[j] - x[i])
-                y[i] += d
-                y[j] -= d
+            for ii in range(b * rows_per_block, min(n, (b + 1) * rows_per_block)):
+                i = uint64(ii)
+                e0 = uint64(starts[i])
+                e1 = uint64(starts[i + uint64(1)])
+                if e0 == e1:
+                    continue  # a row with no edge: not one of this block's points
+                xi = x[i]
+                acc = 0.0
+                for e in range(e0, e1):
+                    j = uint64(ends[e])
+                    d = weights[e] * (x[j] - xi)
+                    acc += d
+                    y[j] -= d
+                y[i] += acc
+
+
+@jit()
+def colour_row_blocks(starts, ends, n_points, rows_per_block):
+    """Greedy colouring of blocks of ``rows_per_block`` consecutive rows of an edge list.
+
+    A block's points are its rows that have edges and those edges' ends; as
+    :func:`colour_blocks` otherwise.
+    """
+    n = starts.size - 1
+    n_blocks = (n + rows_per_block - 1) // rows_per_block
+    seen = np.zeros(n_points, dtype=np.uint64)
+    colour = np.empty(n_blocks, dtype=np.int64)
+    one = np.uint64(1)
+    for b in range(n_blocks):
+        r0 = b * rows_per_block
+        r1 = min(n, (b + 1) * rows_per_block)
+        used = np.uint64(0)
+        for i in range(r0, r1):
+            if starts[i] < starts[i + 1]:
+                used |= seen[i]
+        for e in range(starts[r0], starts[r1]):
+            used |= seen[ends[e]]
+        c = 0
+        while c < MAX_COLOURS and (used >> np.uint64(c)) & one:
+            c += 1
+        if c == MAX_COLOURS:
+            colour[:] = -1
+            return colour
+        colour[b] = c
+        bit = one << np.uint64(c)
+        for i in range(r0, r1):
+            if starts[i] < starts[i + 1]:
+                seen[i] |= bit
+        for e in range(starts[r0], starts[r1]):
+            seen[ends[e]] |= bit
+    return colour

@@ -205,6 +205,28 @@ def jacobi_apply(dinv, r, out):
 
 
 @jit(parallel=True)
+def chebyshev_start(c, dinv, b, r, d, x, zero_guess):
+    """First step of Jacobi-preconditioned Chebyshev smoothing, in place.
+
+    ``d = c dinv r`` and ``x += d``; with ``zero_guess`` ``x`` is taken as
+    zero whatever it holds: ``r = b``, ``d = c dinv b``, ``x = d`` (one pass
+    instead of zeroing ``x``, copying ``b`` and adding).
+    """
+    if zero_guess:
+        for i in prange(x.shape[0]):
+            bi = b[i]
+            r[i] = bi
+            di = c * dinv[i] * bi
+            d[i] = di
+            x[i] = di
+    else:
+        for i in prange(x.shape[0]):
+            di = c * dinv[i] * r[i]
+            d[i] = di
+            x[i] += di
+
+
+@jit(parallel=True)
 def chebyshev_step(q, dinv, c1, c2, r, d, x):
     """One step of Jacobi-preconditioned Chebyshev smoothing, in place.
 

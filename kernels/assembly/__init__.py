@@ -19,6 +19,8 @@ See docs/assembly.md for what each costs.
 import numpy as np
 import scipy.sparse as sp
 
+from kernels._jit import assembly as _jit_assembly
+
 from kernels.assembly import reference as _reference
 from kernels.assembly import triplets as _triplets
 from kernels.assembly.boundary_terms import boundary_load, boundary_mass
@@ -210,9 +212,13 @@ def assemble_load(mesh, f, *, quadrature=2):
     coef = parse_coefficient(f, mesh, name="load", sign="any")
     tri = mesh.triangles
     if coef.kind in ("constant", "triangle"):
-        # the same value at the three vertices: one (M,) array, no (M, 3) temporary
-        v = mesh.areas() * (coef.value / 3.0)
-        return sum(np.bincount(tri[:, a], weights=v, minlength=mesh.n_points) for a in range(3))
+        # the same value at the three vertices: one pass, no (M,) temporaries
+        value = np.ascontiguousarray(np.atleast_1d(coef.value), dtype=np.float64)
+        out = np.empty(mesh.n_points)
+        _jit_assembly.load_per_triangle(
+            mesh.points, tri, value, 0 if coef.kind == "constant" else 1, out
+        )
+        return out
     v = load_values(mesh, coef, quadrature)
     return sum(
         np.bincount(tri[:, a], weights=v[:, a], minlength=mesh.n_points) for a in range(3)

@@ -69,9 +69,14 @@ class ChebyshevSmoother:
     estimate : bool
         Run the Lanczos estimate; with ``False`` the interval's top is
         ``bound`` itself (which must then be given).
+    lower : float, optional
+        The interval's bottom as a fraction of its top (default
+        ``LOWER / UPPER``, PyAMG's choice).  Geometric multigrid, whose coarse
+        level resolves the lower part of the spectrum, smooths a narrower
+        interval.
     """
 
-    def __init__(self, product, residual, dinv, degree, bound=None, estimate=True):
+    def __init__(self, product, residual, dinv, degree, bound=None, estimate=True, lower=None):
         self.product = product
         self.residual = residual
         self.dinv = dinv
@@ -84,25 +89,25 @@ class ChebyshevSmoother:
             raise ValueError("ChebyshevSmoother needs a bound when estimate=False")
         else:
             upper = bound
-        lower = LOWER * upper / UPPER
+        lower = (LOWER / UPPER if lower is None else float(lower)) * upper
         self.theta = 0.5 * (upper + lower)
         self.delta = 0.5 * (upper - lower)
-        self.dinv_over_theta = dinv / self.theta
 
     @property
     def nbytes(self):
-        return self.dinv.nbytes + self.dinv_over_theta.nbytes
+        return self.dinv.nbytes
 
     def smooth(self, x, b, zero_guess, r, d, q):
-        """Smooth ``x`` in place; ``r``, ``d``, ``q`` are work vectors of the same length."""
-        if zero_guess:
-            r[:] = b
-        else:
+        """Smooth ``x`` in place; ``r``, ``d``, ``q`` are work vectors of the same length.
+
+        With ``zero_guess`` the initial ``x`` is zero whatever ``x`` holds (it
+        is overwritten, not read).
+        """
+        if not zero_guess:
             self.residual(x, b, r)
         sigma = self.theta / self.delta
         rho = 1.0 / sigma
-        _k.jacobi_apply(self.dinv_over_theta, r, d)
-        x += d
+        _k.chebyshev_start(1.0 / self.theta, self.dinv, b, r, d, x, zero_guess)
         for _ in range(1, self.degree):
             self.product(d, q)
             rho_new = 1.0 / (2.0 * sigma - rho)

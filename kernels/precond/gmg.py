@@ -88,17 +88,18 @@ class _JacobiSmoother:
     def smooth(self, x, b, zero_guess, r, d, q):
         for step in range(self.steps):
             if zero_guess and step == 0:
-                r[:] = b
-            else:
-                self.residual(x, b, r)
+                _k.jacobi_apply(self.scaled, b, x)  # from x = 0: x is the first update
+                continue
+            self.residual(x, b, r)
             _k.jacobi_apply(self.scaled, r, d)
-            x += d
+            _k.xpby(d, 1.0, x)
 
 
 class _Level:
     """One level: operator, smoother, work vectors, and the transfer to the next coarser one."""
 
-    def __init__(self, mesh, coef, fixed, variant, smoother, degree, omega, quadrature, op=None):
+    def __init__(self, mesh, coef, fixed, variant, smoother, degree, omega, quadrature, op=None,
+                 own_x=True, lower=None):
         self.mesh = mesh
         self.fixed = fixed
         if op is None:
@@ -108,16 +109,21 @@ class _Level:
         self.op = op
         n = mesh.n_points
         self.r, self.d, self.q = np.empty(n), np.empty(n), np.empty(n)
-        # the cycle's own solution and right-hand side on this level (a finer
-        # level restricts into them; the finest level's come from the caller)
-        self.x, self.b = np.empty(n), np.empty(n)
-        dinv = 1.0 / self.op.diagonal()
+        # the cycle's solution and right-hand side on this level: a finer level
+        # restricts into them; on the finest level the preconditioner's input
+        # goes into b and x is the caller's output (or a full-size buffer
+        # when the caller's vectors hold the free points only)
+        self.x = np.empty(n) if own_x else None
+        self.b = np.empty(n)
+        # Gershgorin's bound: guaranteed, one pass with the diagonal, and tight (2)
+        # on meshes without obtuse angle pairs; a Lanczos estimate would cost ten
+        # products.  The diagonal is inverted in place: one vector per level.
+        diag, bound = self.op.diagonal_and_bound()
+        dinv = np.reciprocal(diag, out=diag)
         if smoother == "chebyshev":
-            # Gershgorin's bound: guaranteed, one pass, and tight (2) on meshes
-            # without obtuse angle pairs; a Lanczos estimate would cost ten products
             self.smoother = ChebyshevSmoother(
-                self.op.matvec_into, self.residual, dinv, degree,
-                bound=self.op.gershgorin_bound(), estimate=False,
+                self.op.matvec_into, self.residual, dinv, degree, bound=bound, estimate=False,
+                lower=lower,
             )
         else:
             self.smoother = _JacobiSmoother(
@@ -147,7 +153,7 @@ class _Level:
 
     @property
     def nbytes(self):
-        vectors = 5 * self.r.nbytes
+        vectors = (4 + (self.x is not None)) * self.r.nbytes
         transfer = sum(a.nbytes for a in self.transfer) if self.transfer else 0
         return vectors + transfer + self.op.nbytes + self.smoother.nbytes + self.fixed.nbytes
 
@@ -173,6 +179,9 @@ class GeometricMultigrid(Preconditioner):
     smoother : {"chebyshev", "jacobi"}
     degree : int
         Chebyshev degree (products per smoothing), or Jacobi sweeps.
+    lower : float
+        Bottom of the Chebyshev smoother's interval as a fraction of its top
+        (Gershgorin's bound on the spectrum of ``D^-1 A``).
     omega : float
         Jacobi damping.
     coarse : {"direct", "amg"}
@@ -182,10 +191,17 @@ class GeometricMultigrid(Preconditioner):
         when it is a StiffnessOperator, whose data the finest level then
         shares; else :data:`kernels.operators.DEFAULT_VARIANT`).
 
-    Costs, per point of the finest mesh: 5 work vectors and the smoother's
-    diagonals (56 bytes), the transfer indices (about 12 bytes per coarse
-    edge, so 4 per fine point), a third more for the coarser levels together;
-    one V-cycle does ``2 degree + 1`` fine-level products plus a third more.
+    The defaults (degree 2 on the interval [bound / 6, bound]) were the
+    fastest of degrees 2 and 3 with bottoms bound / 30 to bound / 3 on
+    ``rectangle(88, 88)`` refined 4 times: 8 CG iterations to rtol 1e-8,
+    against 10 for degree 3 on [bound / 33, bound] (docs/matrix-free.md).
+
+    Costs, per point of the finest mesh: 4 work vectors and the smoother's
+    inverse diagonal (40 bytes; the caller's output serves as the finest
+    solution), the transfer indices (about 20 bytes per coarse point, so 5
+    per fine point), a third more for the coarser levels together; one
+    V-cycle does ``2 degree`` fine-level products (a zero first guess saves
+    one) plus a third more on the coarser levels.
     """
 
     name = "gmg"
@@ -200,7 +216,8 @@ class GeometricMultigrid(Preconditioner):
         dirichlet=None,
         cycle="V",
         smoother="chebyshev",
-        degree=3,
+        degree=2,
+        lower=1.0 / 6.0,
         omega=2.0 / 3.0,
         coarse="direct",
         variant=None,
@@ -232,6 +249,9 @@ class GeometricMultigrid(Preconditioner):
                 raise InputError(f"gmg: {name} must be one of {choices}, got {value!r}")
         if isinstance(degree, bool) or not isinstance(degree, (int, np.integer)) or degree < 1:
             raise InputError(f"gmg: degree must be an integer >= 1, got {degree!r}")
+        if (isinstance(lower, bool) or not isinstance(lower, (int, float, np.floating))
+                or not 0.0 < lower < 1.0):
+            raise InputError(f"gmg: lower must be a number between 0 and 1, got {lower!r}")
         n = mesh.n_points
         fixed = self._fixed(mesh, dirichlet)
         free = index_complement(n, fixed)
@@ -263,9 +283,12 @@ class GeometricMultigrid(Preconditioner):
         coefs, fixeds = coefs[::-1], fixeds[::-1]
         variant = DEFAULT_VARIANT if variant is None else variant
         ops = [None] * (len(meshes) - 2) + [fine_op]
+        # the finest level's x is the caller's output, unless A acts on the free points only
+        own_x = [True] * (len(meshes) - 2) + [self._free is not None]
         self.levels = [
-            _Level(m, c, f, variant, smoother, self.degree, omega, quadrature, op)
-            for m, c, f, op in zip(meshes[1:], coefs[1:], fixeds[1:], ops, strict=True)
+            _Level(m, c, f, variant, smoother, self.degree, omega, quadrature, op, own, lower)
+            for m, c, f, op, own in zip(meshes[1:], coefs[1:], fixeds[1:], ops, own_x,
+                                        strict=True)
         ]
         for lv in self.levels:
             lv.set_transfer(lv.mesh.refinement)
@@ -303,20 +326,31 @@ class GeometricMultigrid(Preconditioner):
     # -- applying -------------------------------------------------------------------
 
     def _apply(self, r):
+        out = np.empty(self.shape[0])
+        self.apply_into(r, out)
+        return out
+
+    def apply_into(self, r, out):
+        """``out = M r`` (one cycle from a zero guess) with no allocation on the finest level.
+
+        ``r`` and ``out`` are distinct contiguous float64 vectors of length ``n``.
+        """
         fine = self.levels[-1]
-        n = fine.mesh.n_points
-        b = np.zeros(n)
+        b = fine.b
         if self._free is None:
             b[:] = r
+            x = out
         else:
+            b[:] = 0.0
             b[self._free] = r
+            x = fine.x
         _mg.zero_at(fine.fixed, b)
-        x = np.zeros(n)
         self._cycle(len(self.levels), x, b, True, self.cycle)
         if self._free is None:
             x[fine.fixed] = r[fine.fixed]  # identity rows are solved exactly
-            return x
-        return x[self._free]
+        else:
+            out[:] = x[self._free]
+        return out
 
     def _coarse_solve(self, x, b, zero_guess):
         free = self._coarse_free
@@ -333,9 +367,7 @@ class GeometricMultigrid(Preconditioner):
             self._coarse_solve(x, b, zero_guess)
             return
         lv = self.levels[level - 1]
-        if zero_guess:
-            x[:] = 0.0  # the smoothers take a zero guess to mean x is zero
-        lv.smooth(x, b, zero_guess)
+        lv.smooth(x, b, zero_guess)  # with a zero guess x is overwritten, not read
         lv.residual(x, b, lv.r)
         cp, e, mid, first_low, by_high_ptr, by_high = lv.transfer
         if level == 1:
@@ -354,11 +386,10 @@ class GeometricMultigrid(Preconditioner):
             self._cycle(level - 1, xc, bc, True, "V")
             self._cycle(level - 1, xc, bc, False, "F")
             self._cycle(level - 1, xc, bc, False, "V")
-        corr = lv.r
-        corr[:] = 0.0
-        _mg.prolong_add(cp, e, mid, xc, corr)
-        _mg.zero_at(lv.fixed, corr)
-        x += corr
+        # x is zero at the fixed points (identity rows, zero right-hand side
+        # there): add the correction everywhere, then zero them again
+        _mg.prolong_add(cp, e, mid, xc, x)
+        _mg.zero_at(lv.fixed, x)
         lv.smooth(x, b, False)
 
     # -- describing -------------------------------------------------------------------
