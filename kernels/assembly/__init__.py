@@ -20,7 +20,6 @@ import numpy as np
 import scipy.sparse as sp
 
 from kernels._jit import assembly as _jit_assembly
-
 from kernels.assembly import reference as _reference
 from kernels.assembly import triplets as _triplets
 from kernels.assembly.boundary_terms import boundary_load, boundary_mass

@@ -9,14 +9,18 @@ post-smoother is the adjoint of the pre-smoother and the coarsest solve is
 symmetric; it is positive definite because the cycle converges.  Two
 smoothers keep that symmetry:
 
-``smoother="gauss-seidel"`` (default)
+``smoother="gauss-seidel"`` (the default of ``amg-sa``)
     PyAMG's symmetric Gauss-Seidel (a forward then a backward sweep) before
     and after the coarse correction; serial compiled code.
-``smoother="chebyshev"``
+``smoother="chebyshev"`` (the default of ``amg-rs``)
     Jacobi-scaled Chebyshev polynomial of ``degree`` steps, the same
     polynomial before and after; every product (A, P, R) and vector update
-    runs on this project's parallel kernels.  See docs/solvers.md for when
-    it pays.
+    runs on this project's parallel kernels.  Its interval's top is
+    Gershgorin's bound (``estimate=False``) or 1.1 times a 10-step Lanczos
+    estimate, its bottom ``lower`` times the top (PyAMG's 1/33 by default;
+    ``amg-rs`` smooths [top/4, top], which its coarse levels complement:
+    5 iterations on 2-D Poisson where PyAMG's interval needs 9 to 14).
+    See docs/solvers.md for the measurements.
 
 The cycle itself is driven here, not by ``MultilevelSolver.aspreconditioner``,
 which also computes the residual norm before and after each cycle (two
@@ -49,7 +53,7 @@ def _nbytes(M):
 class _ChebyshevLevel:
     """One level's arrays for the parallel cycle: A, P, R in CSR, 1/diag(A), coefficients."""
 
-    def __init__(self, level, degree):
+    def __init__(self, level, degree, lower=None, estimate=True):
         A = as_csr(level.A, "level A")
         self.A = (A.indptr, A.indices, A.data)
         self.P = self._csr(level.P) if hasattr(level, "P") else None
@@ -70,6 +74,8 @@ class _ChebyshevLevel:
             dinv,
             degree,
             bound=gershgorin,
+            estimate=estimate,
+            lower=lower,
         )
         self.dinv = dinv
 
@@ -95,7 +101,7 @@ class _AMG(Preconditioner):
     solver = None  # the pyamg function
     kind = "?"
 
-    def __init__(self, A, cycle, smoother, degree, options):
+    def __init__(self, A, cycle, smoother, degree, options, lower=None, estimate=True):
         C = require_csr(A, self.name)
         if cycle not in _CYCLES:
             raise InputError(f"{self.name}: cycle must be one of {_CYCLES} (symmetric cycles), "
@@ -105,6 +111,10 @@ class _AMG(Preconditioner):
                              f"got {smoother!r}")
         if isinstance(degree, bool) or not isinstance(degree, (int, np.integer)) or degree < 1:
             raise InputError(f"{self.name}: degree must be an integer >= 1, got {degree!r}")
+        if lower is not None and (isinstance(lower, bool) or not isinstance(lower, (int, float))
+                                  or not 0.0 < lower < 1.0):
+            raise InputError(f"{self.name}: lower must be None or a number between 0 and 1, "
+                             f"got {lower!r}")
         super().__init__(C.shape[0])
         try:
             self.ml = type(self).solver(C, **options)
@@ -116,8 +126,10 @@ class _AMG(Preconditioner):
         levels = self.ml.levels
         self._coarse_A = levels[-1].A
         self._work = None
+        self.lower, self.estimate = lower, bool(estimate)
         if smoother == "chebyshev":
-            self._cheb = [_ChebyshevLevel(lv, self.degree) for lv in levels[:-1]]
+            self._cheb = [_ChebyshevLevel(lv, self.degree, lower, self.estimate)
+                          for lv in levels[:-1]]
             self._work = [(np.empty(c.n), np.empty(c.n), np.empty(c.n)) for c in self._cheb]
         # The coarsest solve is set up on first use in PyAMG; do it now, in setup.
         self.ml.coarse_solver(self._coarse_A, np.zeros(self._coarse_A.shape[0]))
@@ -179,15 +191,18 @@ class _AMG(Preconditioner):
             elif isinstance(held, tuple):
                 total += sum(a.nbytes for a in held if isinstance(a, np.ndarray))
         if self.smoother == "chebyshev":
-            # 1/diag, 1/(theta diag) and three work vectors per level
-            total += sum(5 * c.dinv.nbytes for c in self._cheb)
+            # 1/diag and three work vectors per level
+            total += sum(4 * c.dinv.nbytes for c in self._cheb)
         return total
 
     def _details(self):
         ml = self.ml
         sizes = "/".join(str(lv.A.shape[0]) for lv in ml.levels)
         if self.smoother == "chebyshev":
-            smoothing = f"Chebyshev degree {self.degree} smoothing (parallel kernels)"
+            bottom = "1/30 of" if self.lower is None else f"{self.lower:.3g} x"
+            top = "1.1 x a Lanczos estimate" if self.estimate else "Gershgorin's bound"
+            smoothing = (f"Chebyshev degree {self.degree} smoothing on [{bottom} top, top = "
+                         f"{top}] (parallel kernels)")
         else:
             smoothing = "symmetric Gauss-Seidel smoothing (pyamg)"
         return (f"{len(ml.levels)} levels ({sizes}), operator complexity "
@@ -207,6 +222,12 @@ class SmoothedAggregationAMG(_AMG):
         See the module docstring.
     degree : int
         Chebyshev steps per smoothing (``smoother="chebyshev"`` only).
+    lower : float, optional
+        Bottom of the Chebyshev interval as a fraction of its top (default:
+        PyAMG's 1/33).
+    estimate : bool
+        Top of the Chebyshev interval from a Lanczos estimate (capped by
+        Gershgorin's bound) rather than Gershgorin's bound alone.
     max_levels, max_coarse, strength, aggregate, smooth, coarse_solver
         Passed to ``pyamg.smoothed_aggregation_solver`` (its defaults apart
         from these).
@@ -220,12 +241,13 @@ class SmoothedAggregationAMG(_AMG):
     kind = "smoothed-aggregation AMG (pyamg)"
     solver = staticmethod(pyamg.smoothed_aggregation_solver)
 
-    def __init__(self, A, *, cycle="V", smoother="gauss-seidel", degree=3, max_levels=10,
-                 max_coarse=10, strength="symmetric", aggregate="standard",
-                 smooth=("jacobi", {"omega": 4.0 / 3.0}), coarse_solver="pinv"):
+    def __init__(self, A, *, cycle="V", smoother="gauss-seidel", degree=3, lower=None,
+                 estimate=True, max_levels=10, max_coarse=10, strength="symmetric",
+                 aggregate="standard", smooth=("jacobi", {"omega": 4.0 / 3.0}),
+                 coarse_solver="pinv"):
         options = {"max_levels": max_levels, "max_coarse": max_coarse, "strength": strength,
                    "aggregate": aggregate, "smooth": smooth, "coarse_solver": coarse_solver}
-        super().__init__(A, cycle, smoother, degree, options)
+        super().__init__(A, cycle, smoother, degree, options, lower, estimate)
 
 
 class RugeStubenAMG(_AMG):
@@ -236,9 +258,15 @@ class RugeStubenAMG(_AMG):
     A : sparse matrix, shape (n, n)
         Symmetric positive definite.
     cycle : {"V", "W"}
-    smoother : {"gauss-seidel", "chebyshev"}
+    smoother : {"chebyshev", "gauss-seidel"}
+        Default Chebyshev on [top/4, top], top = Gershgorin's bound: on 2-D
+        Poisson it needed 5 iterations where symmetric Gauss-Seidel needed 6,
+        at half the solve time (parallel kernels) and less setup
+        (docs/solvers.md).
     degree : int
         Chebyshev steps per smoothing (``smoother="chebyshev"`` only).
+    lower, estimate
+        The Chebyshev interval, as for ``amg-sa``.
     max_levels, max_coarse, strength, CF, interpolation, coarse_solver
         Passed to ``pyamg.ruge_stuben_solver``.
 
@@ -250,10 +278,10 @@ class RugeStubenAMG(_AMG):
     kind = "classical Ruge-Stuben AMG (pyamg)"
     solver = staticmethod(pyamg.ruge_stuben_solver)
 
-    def __init__(self, A, *, cycle="V", smoother="gauss-seidel", degree=3, max_levels=30,
-                 max_coarse=10, strength=("classical", {"theta": 0.25}),
-                 CF=("RS", {"second_pass": False}), interpolation="classical",
-                 coarse_solver="pinv"):
+    def __init__(self, A, *, cycle="V", smoother="chebyshev", degree=3, lower=0.25,
+                 estimate=False, max_levels=30, max_coarse=10,
+                 strength=("classical", {"theta": 0.25}), CF=("RS", {"second_pass": False}),
+                 interpolation="classical", coarse_solver="pinv"):
         options = {"max_levels": max_levels, "max_coarse": max_coarse, "strength": strength,
                    "CF": CF, "interpolation": interpolation, "coarse_solver": coarse_solver}
-        super().__init__(A, cycle, smoother, degree, options)
+        super().__init__(A, cycle, smoother, degree, options, lower, estimate)
