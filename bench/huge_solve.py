@@ -13,8 +13,10 @@ which the printed maximum should approach.
 
 import argparse
 import json
+import os
 import resource
 import sys
+import tempfile
 import time
 
 import numba
@@ -70,8 +72,16 @@ def main(argv=None):
     print(f"  peak memory {report['peak_rss_GiB']:.1f} GiB "
           f"({report['peak_rss_bytes_per_triangle']:.0f} bytes per triangle)")
     if args.json:
-        with open(args.json, "w") as f:
-            json.dump(report, f, indent=2)
+        # whole or not at all: a temporary file beside the target, then a rename
+        target = os.path.abspath(args.json)
+        fd, tmp = tempfile.mkstemp(dir=os.path.dirname(target), suffix=".tmp")
+        try:
+            with os.fdopen(fd, "w") as f:
+                json.dump(report, f, indent=2)
+            os.replace(tmp, target)
+        except BaseException:
+            os.unlink(tmp)
+            raise
     return 0 if sol.converged else 1
 
 

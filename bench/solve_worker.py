@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import sys
 import time
 
@@ -31,6 +32,7 @@ from benchlib import ProcessPeak, refined_rectangle
 
 from kernels import apply_dirichlet, assemble_load, assemble_stiffness, solve_poisson, threads
 from kernels.mesh import rectangle
+from kernels.operators import DEFAULT_VARIANT
 from kernels.precond import AMG_DEFAULT
 
 RTOL = 1e-8
@@ -78,6 +80,20 @@ def plain_system(mesh):
     return A[free][:, free], b[free], free
 
 
+def csr_nbytes(A):
+    return int(A.data.nbytes + A.indices.nbytes + A.indptr.nbytes)
+
+
+def mesh_read_bytes(mesh, variant):
+    """Mesh bytes a matrix-free product of ``variant`` reads besides the operator's own arrays.
+
+    As in test_bench_matrix_free.py: ``geometry`` reads points and triangles,
+    ``factors`` the triangles, ``edges`` nothing of the mesh.
+    """
+    return {"geometry": mesh.triangles.nbytes + mesh.points.nbytes,
+            "factors": mesh.triangles.nbytes, "edges": 0}[variant]
+
+
 def _plain(mesh, name):
     """A plain pipeline end to end: plain assembly, then the solver as its documentation shows."""
     t0 = time.perf_counter()
@@ -104,18 +120,42 @@ def _plain(mesh, name):
     u = np.zeros(mesh.n_points)
     u[free] = x
     t3 = time.perf_counter()
+    # for the traffic model (test_bench_solve.py): sums of array sizes, microseconds
+    if name == "scipy-cg":
+        pc_bytes = 0
+    elif name == "superlu":
+        pc_bytes = 12 * int(lu.nnz)  # float64 value and int32 row index per entry of L + U
+    else:
+        pc_bytes = sum(csr_nbytes(getattr(lv, k)) for lv in ml.levels for k in ("A", "P", "R")
+                       if getattr(lv, k, None) is not None)
     return u, {"assemble_s": t1 - t0, "setup_s": t2 - t1, "solve_s": t3 - t2,
-               "iterations": iterations}
+               "iterations": iterations, "operator_bytes": csr_nbytes(A),
+               "operator_read_bytes": csr_nbytes(A), "preconditioner_bytes": pc_bytes,
+               "preconditioner_read_bytes": pc_bytes, "vector_length": int(A.shape[0])}
 
 
 def _ours(mesh, name):
     sol = solve_poisson(mesh, 1.0, rtol=RTOL, **METHODS[name][1])
     st = sol.stats
     t = st["timings"]
+    # for the traffic model (test_bench_solve.py).  The preconditioner's stored bytes are
+    # read from its description ("..., memory N bytes, ..."): solve_poisson keeps no
+    # handle on it; None when the description does not say
+    found = re.search(r"memory (\d+) bytes", st["preconditioner"])
+    pc_bytes = None if found is None else int(found.group(1))
+    pc_read = pc_bytes
+    op_read = st["operator_bytes"]
+    if st["matrix_free"]:  # the products read the mesh besides the operator's arrays
+        op_read += mesh_read_bytes(mesh, DEFAULT_VARIANT)
+        if pc_read is not None and name == "gmg":  # so do gmg's level operators
+            pc_read += sum(mesh_read_bytes(m, DEFAULT_VARIANT) for m in mesh.levels()[1:])
     return sol.u, {"assemble_s": t["boundary"] + t["assemble"], "setup_s": t["setup"],
                    "solve_s": t["solve"], "iterations": st["iterations"],
                    "converged": bool(sol.converged), "description": st["preconditioner"],
-                   "matrix_free": st["matrix_free"]}
+                   "matrix_free": st["matrix_free"], "operator_bytes": st["operator_bytes"],
+                   "operator_read_bytes": int(op_read), "preconditioner_bytes": pc_bytes,
+                   "preconditioner_read_bytes": pc_read,
+                   "vector_length": int(mesh.n_points if st["matrix_free"] else st["unknowns"])}
 
 
 def run(name, mesh):
@@ -184,6 +224,7 @@ class Runner:
             u_max=float(u.max()), n_triangles=int(mesh.n_triangles),
             n_points=int(mesh.n_points),
             mesh_bytes=int(sum(m.points.nbytes + m.triangles.nbytes for m in levels)),
+            fine_mesh_bytes=int(mesh.points.nbytes + mesh.triangles.nbytes),
         ))
 
 

@@ -14,13 +14,23 @@ the generator numbers it) and ``refined`` (``rectangle(c, c)`` refined until
 
 Bytes moved: the stored operator (CSR: data, indices, indptr; matrix-free:
 the mesh or the stored values it reads), ``x`` read, ``y`` written (and read
-back, for the matrix-free accumulation).  Whole solves (CG + gmg against
-CG + AMG) are in test_bench_solve.py.
+back, for the matrix-free accumulation).  Peak memory: one more, untimed
+call under ``conftest.ProcessPeak`` (``conftest.peak_of_call``); scipy's
+``A @ x`` allocates ``y``, the others nothing.  Whole solves (CG + gmg
+against CG + AMG) are in test_bench_solve.py.
 """
 
 import numpy as np
 import pytest
-from conftest import MAX_THREADS, THREADS, record, shared_mesh, size_mode, warm
+from conftest import (
+    MAX_THREADS,
+    THREADS,
+    peak_of_call,
+    record,
+    shared_mesh,
+    size_mode,
+    warm,
+)
 from scipy.sparse._sparsetools import csr_matvec
 
 from kernels import StiffnessOperator, assemble_stiffness, threads
@@ -76,10 +86,11 @@ def test_product(benchmark, machine, request, cells, numbering, method, n_thread
     with threads(n_threads):
         first = warm(benchmark, fn)
         benchmark.pedantic(fn, **_rounds(request.config))
+        peak, source = peak_of_call(benchmark, fn)
     record(
         benchmark, machine, moved, moved, kind="product", operation="stiffness product",
         method=method, plain=method == "scipy", baseline=None if method == "scipy" else "scipy",
         mesh=numbering, threads=n_threads, n_triangles=int(mesh.n_triangles), n_points=int(n),
         nnz=int(A.nnz), stored_bytes=int(stored), csr_stored_bytes=int(csr_bytes(A) - 16 * n),
-        default_variant=method == DEFAULT_VARIANT, **first,
+        default_variant=method == DEFAULT_VARIANT, peak_bytes=peak, peak_source=source, **first,
     )

@@ -24,7 +24,8 @@ sliced away with scipy), then:
 Phases (``assemble_s``: load, matrix and Dirichlet reduction, or the
 matrix-free operator; ``setup_s``; ``solve_s``) are timed inside the call;
 the benchmark time is the whole call.  ``setup_s + solve_s`` compares the
-solvers alone.  Peak memory is the high-water mark of
+solvers alone.  Bytes moved are a one-pass model (:func:`solve_traffic`) that
+undercounts.  Peak memory is the high-water mark of
 the round above what was resident before it (mesh built): with ``--size
 full`` each benchmark runs in a fresh process (bench/solve_worker.py, timed
 from here over a pipe) so that no earlier benchmark's freed memory is
@@ -102,6 +103,53 @@ class InProcess(Runner):
         return self.rounds
 
 
+# vector passes of length n per CG iteration, counted on this project's loop
+# (kernels/krylov.py): q = A p (p read, q written) 2, fused update x += a p,
+# r -= a q, r.r (p, q, x, r read, x, r written) 6, z = M r (r read, z written) 2,
+# r.z 2, p = z + b p (z, p read, p written) 3; Jacobi's fused update computes z
+# and r.z in the same pass (12); without a preconditioner z is r (11).
+# scipy's and PyAMG's CG loops make more passes: for them this is a lower count.
+CG_VECTORS = {"none": 11, "scipy-cg": 11, "jacobi": 12}
+
+
+def solve_traffic(name, rd):
+    """A model, not a measurement: bytes a whole solve moves, from one round's figures.
+
+    One pass over everything, nothing counted twice::
+
+        assemble  = mesh read + load vector written (8 points) + operator written
+        setup     = operator read + preconditioner written
+        iteration = operator read + preconditioner read + CG_VECTORS[name] * 8 n
+        total     = assemble + setup + iterations * iteration + u written (8 points)
+
+    ``operator`` is the reduced CSR matrix (data, indices, indptr) or the
+    matrix-free operator's arrays, plus what a product reads of the mesh
+    (``solve_worker.mesh_read_bytes``); ``preconditioner`` its stored bytes
+    (the ``memory`` of its description; PyAMG's level matrices A, P, R;
+    SuperLU's 12 bytes per entry of L + U), plus for gmg what its level
+    operators read of their meshes; ``n`` the length of CG's vectors.  A solve
+    without iterations (plain SuperLU) counts one pass over the factor and
+    16 n.  Assumptions as in ``test_bench_linear.precond_traffic``: each byte
+    touched once per phase or apply, nothing held in cache.  It undercounts
+    the bytes the code touches (triplet assembly, the setups, multigrid
+    smoothing sweeps and IC(0)'s two sweeps all touch more), so the GB/s
+    from it is a low figure, and its floor is this method's own, not the
+    least any method needs.  None when a preconditioner's stored bytes are not known.
+    """
+    op, pc = rd.get("operator_read_bytes"), rd.get("preconditioner_read_bytes")
+    if op is None or pc is None or rd.get("preconditioner_bytes") is None:
+        return None
+    n = rd["vector_length"]
+    points = 8 * rd["n_points"]
+    assemble = rd["fine_mesh_bytes"] + points + rd["operator_bytes"]
+    setup = op + rd["preconditioner_bytes"]
+    if rd["iterations"] is None:
+        solve = pc + 16 * n
+    else:
+        solve = rd["iterations"] * (op + pc + 8 * CG_VECTORS.get(name, 13) * n)
+    return assemble + setup + solve + points
+
+
 @pytest.mark.parametrize("name, n_threads", CASES)
 def test_solve(benchmark, machine, request, solve_cells, name, n_threads):
     n = solve_cells
@@ -129,7 +177,7 @@ def test_solve(benchmark, machine, request, solve_cells, name, n_threads):
     peak = max(peaks) if peaks else None
     best = dict(best, peak_bytes=peak)
     record(
-        benchmark, machine, kind="solve", operation="poisson", method=name,
+        benchmark, machine, solve_traffic(name, best), kind="solve", traffic_model="one pass", operation="poisson", method=name,
         plain=METHODS[name][0], baseline=BASELINE.get(name), threads=n_threads,
         default=name == "amg", unknowns=int(unknowns),
         mesh="refined" if name == "gmg" else "rectangle", rtol=RTOL,
