@@ -450,6 +450,35 @@ def other_tables(ix):
 
 
 # -- targets --------------------------------------------------------------------------------
+#: The size the matrix-free target names: rectangle(1000, 1000).
+TARGET_PRODUCT_TRIANGLES = 2_000_000
+
+
+def _products_at(prods, n_triangles):
+    """Per numbering at one size: (met?, text) of the fastest matrix-free variant storing ≤ half."""
+    texts, oks = [], []
+    for mesh in sorted({_i(e, "mesh") for e in prods}):
+        here = [e for e in prods if _i(e, "n_triangles") == n_triangles and _i(e, "mesh") == mesh]
+        scipy = [e for e in here if _i(e, "method") in ("scipy", "scipy-into")]
+        free = [e for e in here if _i(e, "method") in ("geometry", "factors", "edges")]
+        if not scipy or not free:
+            continue
+        fastest = min(scipy, key=lambda e: e["time"])
+        good = [e for e in free if e["time"] <= fastest["time"]
+                and _i(e, "stored_bytes") <= 0.5 * _i(e, "csr_stored_bytes")]
+        oks.append(bool(good))
+        if good:
+            g = min(good, key=lambda e: e["time"])
+            texts.append(f"{mesh}: `{_i(g, 'method')}` {fmt_time(g['time'])}, stores "
+                         f"{_i(g, 'stored_bytes') / _i(g, 'csr_stored_bytes'):.2f} of CSR, "
+                         f"against scipy's best {fmt_time(fastest['time'])}")
+        else:
+            g = min(free, key=lambda e: e["time"])
+            texts.append(f"{mesh}: none; fastest `{_i(g, 'method')}` {fmt_time(g['time'])} "
+                         f"against scipy's best {fmt_time(fastest['time'])}")
+    return oks, texts
+
+
 def _verdict(ok):
     return "**met**" if ok else "**not met**"
 
@@ -536,38 +565,27 @@ def targets(ix, huge=None):
             text = f"{1e6 * x0:.3f} → {1e6 * x1:.3f} µs per unknown: {x1 / x0:.2f}×"
         rows.append([label, text, _verdict(x1 / x0 < need)])
 
-    # a matrix-free product against scipy's CSR product
+    # a matrix-free product against scipy's CSR product, at the size the target names
+    # (rectangle(1000, 1000)) and, for information, at the largest size measured
     label = "a matrix-free variant at least as fast as scipy's CSR SpMV, storing ≤ half its bytes"
     prods = ix.select("product")
     if not prods:
         missing(label, "no product benchmarks")
     else:
-        largest = max(_i(e, "n_triangles") for e in prods)
-        texts, oks = [], []
-        for mesh in sorted({_i(e, "mesh") for e in prods}):
-            here = [e for e in prods if _i(e, "n_triangles") == largest and _i(e, "mesh") == mesh]
-            scipy = [e for e in here if _i(e, "method") in ("scipy", "scipy-into")]
-            free = [e for e in here if _i(e, "method") in ("geometry", "factors", "edges")]
-            if not scipy or not free:
-                continue
-            fastest = min(scipy, key=lambda e: e["time"])
-            good = [e for e in free if e["time"] <= fastest["time"]
-                    and _i(e, "stored_bytes") <= 0.5 * _i(e, "csr_stored_bytes")]
-            oks.append(bool(good))
-            if good:
-                g = min(good, key=lambda e: e["time"])
-                texts.append(f"{mesh}: `{_i(g, 'method')}` {fmt_time(g['time'])}, stores "
-                             f"{_i(g, 'stored_bytes') / _i(g, 'csr_stored_bytes'):.2f} of CSR, "
-                             f"against scipy's best {fmt_time(fastest['time'])}")
-            else:
-                g = min(free, key=lambda e: e["time"])
-                texts.append(f"{mesh}: none; fastest `{_i(g, 'method')}` {fmt_time(g['time'])} "
-                             f"against scipy's best {fmt_time(fastest['time'])}")
+        sizes = {_i(e, "n_triangles") for e in prods}
+        largest = max(sizes)
+        named = TARGET_PRODUCT_TRIANGLES if TARGET_PRODUCT_TRIANGLES in sizes else largest
+        oks, texts = _products_at(prods, named)
         if not oks:
             missing(label, "no matrix-free and scipy products at one size")
         else:
-            rows.append([label + f" ({fmt_int(largest)} triangles, both numberings)",
-                         "; ".join(texts), _verdict(all(oks))])
+            text = "; ".join(texts)
+            if largest != named:
+                more_oks, more = _products_at(prods, largest)
+                text += (f". At {fmt_int(largest)} triangles (information, not the target's "
+                         f"size; {'met' if all(more_oks) else 'not met'}): " + "; ".join(more))
+            rows.append([label + f" ({fmt_int(named)} triangles, both numberings)", text,
+                         _verdict(all(oks))])
 
     # gmg against the best AMG at 4 million triangles
     label = ("CG + gmg end to end ≥ 2× faster than CG + best AMG at 4 million triangles, "
