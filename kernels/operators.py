@@ -36,6 +36,7 @@ from kernels.assembly.csr import kernel_coefficient
 from kernels.coefficients import parse_coefficient
 from kernels.errors import InputError
 from kernels.mesh.core import Mesh
+from kernels.mesh.core_index import index_dtype
 
 __all__ = ["StiffnessOperator", "VARIANTS", "DEFAULT_VARIANT"]
 
@@ -173,7 +174,8 @@ class StiffnessOperator(LinearOperator):
                 self._blocks, mesh.triangle_edges(), weights,
             )
             # the sorted edge list by first point: a start per point, an end per edge
-            self._starts = np.zeros(n + 1, dtype=edges.dtype)
+            # (int64 once the edge count passes int32, even if the point count does not)
+            self._starts = np.zeros(n + 1, dtype=index_dtype(len(edges), n + 1))
             np.cumsum(np.bincount(edges[:, 0], minlength=n), out=self._starts[1:])
             self._ends = np.ascontiguousarray(edges[:, 1])
             self._weights = weights

@@ -95,6 +95,24 @@ def test_colouring_is_valid():
     assert op.n_colours <= 8
 
 
+def test_edge_row_blocks_colouring_is_valid():
+    """Blocks of rows of the edge list: two blocks of one colour share no point."""
+    m = kernels.mesh.rectangle(20, 20).refine()
+    op = StiffnessOperator(m, variant="edges", block_size=16)
+    rows, starts, ends = op._rows_per_block, op._starts, op._ends
+    for c in range(op.n_colours):
+        owner = {}
+        for b in op._edge_blocks[op._edge_colour_ptr[c] : op._edge_colour_ptr[c + 1]]:
+            r0, r1 = b * rows, min(m.n_points, (b + 1) * rows)
+            points = {i for i in range(r0, r1) if starts[i] < starts[i + 1]}
+            points |= set(ends[starts[r0] : starts[r1]].tolist())
+            for p in points:
+                assert owner.setdefault(p, b) == b  # no point shared by two blocks
+    # the edge list by first point is the upper triangle of the pattern
+    first = np.repeat(np.arange(m.n_points), np.diff(starts))
+    assert np.array_equal(np.column_stack([first, ends]), m.edges())
+
+
 def test_more_than_64_colours_falls_back_or_refuses():
     # a fan of 70 triangles around one point: every triangle touches the centre
     k = 70
@@ -117,6 +135,8 @@ def test_storage():
     op = StiffnessOperator(m)
     assert op.nbytes < csr / 10  # the geometry variant stores a colouring only
     assert StiffnessOperator(m, variant="factors").nbytes >= 24 * m.n_triangles
+    # edges by first point: 12 bytes per edge and 4 per point, under half the CSR matrix
+    assert StiffnessOperator(m, variant="edges").nbytes < 0.5 * csr
     assert "colours" in repr(op)
 
 

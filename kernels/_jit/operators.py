@@ -23,6 +23,23 @@ from kernels._jit.assembly import _geometry, _ip, _rotated
 MAX_COLOURS = 64
 
 
+@jit(inline="always")
+def _take_colour(used, colour, b):
+    """Give block ``b`` the lowest colour not in the mask ``used``; return its bit.
+
+    With all :data:`MAX_COLOURS` taken, every block's colour becomes ``-1``
+    and the bit returned is 0.
+    """
+    c = 0
+    while c < MAX_COLOURS and (used >> np.uint64(c)) & np.uint64(1):
+        c += 1
+    if c == MAX_COLOURS:
+        colour[:] = -1
+        return np.uint64(0)
+    colour[b] = c
+    return np.uint64(1) << np.uint64(c)
+
+
 @jit()
 def colour_blocks(elements, n_points, block_size):
     """Greedy colouring of blocks of ``block_size`` consecutive elements.
@@ -37,20 +54,14 @@ def colour_blocks(elements, n_points, block_size):
     n_blocks = (m + block_size - 1) // block_size
     seen = np.zeros(n_points, dtype=np.uint64)
     colour = np.empty(n_blocks, dtype=np.int64)
-    one = np.uint64(1)
     for b in range(n_blocks):
         used = np.uint64(0)
         for t in range(b * block_size, min(m, (b + 1) * block_size)):
             for a in range(k):
                 used |= seen[elements[t, a]]
-        c = 0
-        while c < MAX_COLOURS and (used >> np.uint64(c)) & one:
-            c += 1
-        if c == MAX_COLOURS:
-            colour[:] = -1
+        bit = _take_colour(used, colour, b)
+        if bit == 0:
             return colour
-        colour[b] = c
-        bit = one << np.uint64(c)
         for t in range(b * block_size, min(m, (b + 1) * block_size)):
             for a in range(k):
                 seen[elements[t, a]] |= bit
@@ -309,7 +320,6 @@ def colour_row_blocks(starts, ends, n_points, rows_per_block):
     n_blocks = (n + rows_per_block - 1) // rows_per_block
     seen = np.zeros(n_points, dtype=np.uint64)
     colour = np.empty(n_blocks, dtype=np.int64)
-    one = np.uint64(1)
     for b in range(n_blocks):
         r0 = b * rows_per_block
         r1 = min(n, (b + 1) * rows_per_block)
@@ -319,14 +329,9 @@ def colour_row_blocks(starts, ends, n_points, rows_per_block):
                 used |= seen[i]
         for e in range(starts[r0], starts[r1]):
             used |= seen[ends[e]]
-        c = 0
-        while c < MAX_COLOURS and (used >> np.uint64(c)) & one:
-            c += 1
-        if c == MAX_COLOURS:
-            colour[:] = -1
+        bit = _take_colour(used, colour, b)
+        if bit == 0:
             return colour
-        colour[b] = c
-        bit = one << np.uint64(c)
         for i in range(r0, r1):
             if starts[i] < starts[i + 1]:
                 seen[i] |= bit
