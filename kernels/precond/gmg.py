@@ -268,6 +268,7 @@ class GeometricMultigrid(Preconditioner):
         self.cycle = cycle
         self.smoother = smoother
         self.degree = int(degree)
+        self.lower = float(lower)
         coef = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
 
         meshes = mesh.levels()  # coarsest first
@@ -404,7 +405,7 @@ class GeometricMultigrid(Preconditioner):
             str(m.n_points) for m in [self.coarse_mesh] + [lv.mesh for lv in self.levels]
         )
         if self.smoother == "chebyshev":
-            sm = f"Chebyshev degree {self.degree}"
+            sm = f"Chebyshev degree {self.degree} on [{self.lower:.3g} x bound, bound]"
         else:
             sm = f"{self.degree} damped Jacobi sweeps"
         return (
