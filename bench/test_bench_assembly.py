@@ -65,11 +65,11 @@ def floors(mesh, plan):
     }
 
 
-def _stiffness_case(strategy, mesh, asm):
+def _stiffness_case(strategy, mesh, assembler):
     """(function, per-round setup, traffic, floor) for one strategy."""
-    f = floors(mesh, asm.plan)
-    nnz, n = asm.plan.nnz, mesh.n_points
-    index = asm.plan.indices.dtype.itemsize
+    f = floors(mesh, assembler.plan)
+    nnz, n = assembler.plan.nnz, mesh.n_points
+    index = assembler.plan.indices.dtype.itemsize
     if strategy == "triplets":
         return (lambda m: assemble_stiffness(m, strategy="triplets"),
                 lambda: (fresh(mesh),), f["first"], f["first"])
@@ -78,10 +78,10 @@ def _stiffness_case(strategy, mesh, asm):
     if strategy == "csr":
         # numeric phase, then copies of the pattern for the new matrix
         traffic = f["csr_data"] + 2 * index * (nnz + n + 1)
-        return lambda: asm.assemble(), lambda: (), traffic, f["numeric"]
+        return lambda: assembler.assemble(), lambda: (), traffic, f["numeric"]
     out = np.empty(nnz)
     if strategy == "csr-data":
-        return lambda: asm.assemble_data(out=out), lambda: (), f["csr_data"], f["numeric"]
+        return lambda: assembler.assemble_data(out=out), lambda: (), f["csr_data"], f["numeric"]
     fused = StiffnessAssembler(mesh, fused=True)
     traffic = f["csr_data"] - 2 * 48 * mesh.n_triangles  # no element values stored
     return lambda: fused.assemble_data(out=out), lambda: (), traffic, f["numeric"]
@@ -97,8 +97,8 @@ STIFFNESS_CASES = [
 @pytest.mark.parametrize("strategy, n_threads", STIFFNESS_CASES)
 def test_stiffness(benchmark, machine, request, cells, strategy, n_threads):
     mesh = rectangle(cells, cells)
-    asm = StiffnessAssembler(mesh)
-    fn, setup, traffic, floor = _stiffness_case(strategy, mesh, asm)
+    assembler = StiffnessAssembler(mesh)
+    fn, setup, traffic, floor = _stiffness_case(strategy, mesh, assembler)
     with threads(n_threads):
         first = warm(benchmark, fn, setup)
         _, peak, source = timed_with_peak(benchmark, fn, setup, rounds(request.config, mesh),
@@ -108,7 +108,7 @@ def test_stiffness(benchmark, machine, request, cells, strategy, n_threads):
         benchmark, machine, traffic, floor, kind="assembly", operation="stiffness",
         method=strategy, plain=strategy == "triplets",
         baseline=None if strategy == "triplets" else "triplets", threads=n_threads,
-        nnz=int(asm.plan.nnz), plan_bytes=int(asm.plan.nbytes), peak_bytes=peak,
+        nnz=int(assembler.plan.nnz), plan_bytes=int(assembler.plan.nbytes), peak_bytes=peak,
         peak_source=source, peak_traced_bytes=traced, **mesh_figures(mesh), **first,
     )
 
@@ -124,8 +124,8 @@ def _traced_peak(fn, setup):
 @pytest.mark.parametrize("strategy", ["triplets", "csr-first-call", "csr"], ids=lambda s: f"strategy={s}")
 def test_mass(benchmark, machine, request, cells, strategy):
     mesh = rectangle(cells, cells)
-    asm = StiffnessAssembler(mesh)
-    f = floors(mesh, asm.plan)
+    assembler = StiffnessAssembler(mesh)
+    f = floors(mesh, assembler.plan)
     if strategy == "triplets":
         fn, setup = (lambda m: assemble_mass(m, strategy="triplets")), (lambda: (fresh(mesh),))
         traffic = floor = f["first"]
@@ -133,14 +133,14 @@ def test_mass(benchmark, machine, request, cells, strategy):
         fn, setup = (lambda m: assemble_mass(m)), (lambda: (fresh(mesh),))
         traffic = floor = f["first"]
     else:
-        fn, setup = asm.assemble_mass, (lambda: ())
+        fn, setup = assembler.assemble_mass, (lambda: ())
         traffic, floor = f["csr_data"], f["numeric"]
     first = warm(benchmark, fn, setup)
     _, peak, source = timed_with_peak(benchmark, fn, setup, rounds(request.config, mesh), False)
     record(
         benchmark, machine, traffic, floor, kind="assembly", operation="mass", method=strategy,
         plain=strategy == "triplets", baseline=None if strategy == "triplets" else "triplets",
-        nnz=int(asm.plan.nnz), peak_bytes=peak, peak_source=source, **mesh_figures(mesh),
+        nnz=int(assembler.plan.nnz), peak_bytes=peak, peak_source=source, **mesh_figures(mesh),
         **first,
     )
 

@@ -842,8 +842,8 @@ def cmd_bench(args, progress):
         t_first, _ = _best(assemble_stiffness, args.repeat,
                            setup=lambda: rectangle(args.cells, args.cells))
         progress.phase("assembly: csr numeric")
-        asm = StiffnessAssembler(mesh)
-        t_num, _ = _best(asm.assemble, args.repeat)
+        assembler = StiffnessAssembler(mesh)
+        t_num, _ = _best(assembler.assemble, args.repeat)
         progress.phase(f"bandwidth: NumPy copy of {args.bandwidth_mb} MiB")
         bw = memory_bandwidth(mbytes=args.bandwidth_mb, repeats=max(3, args.repeat))
         index = A.indices.dtype.itemsize

@@ -263,11 +263,11 @@ def solve_poisson(
         system_A, system_b, expand = op, b, (lambda x: x)
         stored = op.nbytes
     else:
-        asm = StiffnessAssembler(mesh)
-        A = asm.assemble(kappa, quadrature=quadrature)
+        assembler = StiffnessAssembler(mesh)
+        A = assembler.assemble(kappa, quadrature=quadrature)
         if reaction is not None:
             c = parse_coefficient(reaction, mesh, name="reaction", sign="nonnegative")
-            A = A + asm.assemble_mass(c, quadrature=quadrature)
+            A = A + assembler.assemble_mass(c, quadrature=quadrature)
         if R is not None:
             A = A + R
         system = apply_dirichlet(A, b, fixed, values)

@@ -272,12 +272,12 @@ def test_one_and_two_threads_give_identical_bits():
     results = []
     for n in (1, 2):
         with threads(n):
-            asm = StiffnessAssembler(m)
-            out = [asm.plan.indices.copy(), asm.plan.slot_next.copy()]
+            assembler = StiffnessAssembler(m)
+            out = [assembler.plan.indices.copy(), assembler.plan.slot_next.copy()]
             for coef in kinds.values():
-                out.append(asm.assemble(coef).data)
+                out.append(assembler.assemble(coef).data)
             out.append(StiffnessAssembler(m, fused=True).assemble(kinds["tensor"]).data)
-            out.append(asm.assemble_mass(kinds["per-node"]).data)
+            out.append(assembler.assemble_mass(kinds["per-node"]).data)
             out.append(m.refine().triangles)
         results.append(out)
     for a, b in zip(*results, strict=True):
@@ -296,18 +296,18 @@ def test_int64_indices_give_the_same_matrix():
 
 
 def test_assembler_reuses_the_pattern_and_hands_out_independent_matrices(random_mesh):
-    asm = StiffnessAssembler(random_mesh)
-    A = asm.assemble(1.0)
-    B = asm.assemble(np.linspace(1, 3, random_mesh.n_triangles))
+    assembler = StiffnessAssembler(random_mesh)
+    A = assembler.assemble(1.0)
+    B = assembler.assemble(np.linspace(1, 3, random_mesh.n_triangles))
     assert not np.shares_memory(A.indices, B.indices)
-    assert not np.shares_memory(A.indices, asm.plan.indices)
-    data = asm.assemble_data(1.0)
+    assert not np.shares_memory(A.indices, assembler.plan.indices)
+    data = assembler.assemble_data(1.0)
     assert (data == A.data).all()
     out = np.empty_like(data)
-    assert asm.assemble_data(1.0, out=out) is out
+    assert assembler.assemble_data(1.0, out=out) is out
     with pytest.raises(kernels.InputError, match="out must be"):
-        asm.assemble_data(1.0, out=np.empty(3))
-    assert "entries" in repr(asm.plan)
+        assembler.assemble_data(1.0, out=np.empty(3))
+    assert "entries" in repr(assembler.plan)
 
 
 def test_unused_points_give_empty_rows():

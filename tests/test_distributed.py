@@ -137,8 +137,8 @@ def test_owned_rows_equal_the_whole_mesh_rows_bit_for_bit(name):
     load = parse_coefficient(lambda x, y: np.cos(x) * y, mesh, sign="any")
     react = parse_coefficient(kernels.per_node(rng.random(mesh.n_points)), mesh,
                               sign="nonnegative")
-    asm = kernels.StiffnessAssembler(mesh)
-    A = asm.assemble(kappa) + asm.assemble_mass(react)
+    assembler = kernels.StiffnessAssembler(mesh)
+    A = assembler.assemble(kappa) + assembler.assemble_mass(react)
     b = kernels.assemble_load(mesh, load)
     p = partition(mesh, 3)
     for k in range(3):

@@ -73,9 +73,9 @@ class StiffnessAssembler:
     Examples
     --------
     >>> import kernels
-    >>> asm = kernels.StiffnessAssembler(kernels.mesh.rectangle(8, 8))
-    >>> A1 = asm.assemble()          # symbolic phase already done
-    >>> A2 = asm.assemble(2.5)       # numeric phase only
+    >>> assembler = kernels.StiffnessAssembler(kernels.mesh.rectangle(8, 8))
+    >>> A1 = assembler.assemble()          # symbolic phase already done
+    >>> A2 = assembler.assemble(2.5)       # numeric phase only
     >>> bool(abs(A2 - 2.5 * A1).max() < 1e-12)
     True
     """
@@ -164,8 +164,8 @@ def assemble_stiffness(mesh, coefficient=None, *, strategy="csr", quadrature=2):
     # One matrix only: the fused numeric phase (no element-value temporaries)
     # and the plan's pattern handed to the matrix, which keeps the peak memory
     # near the plan plus the matrix itself.
-    asm = StiffnessAssembler(mesh, fused=True)
-    return asm.plan.matrix(asm.assemble_data(coefficient, quadrature=quadrature))
+    assembler = StiffnessAssembler(mesh, fused=True)
+    return assembler.plan.matrix(assembler.assemble_data(coefficient, quadrature=quadrature))
 
 
 def assemble_mass(mesh, coefficient=None, *, lumped=False, strategy="csr", quadrature=2):
@@ -189,9 +189,9 @@ def assemble_mass(mesh, coefficient=None, *, lumped=False, strategy="csr", quadr
         return StiffnessAssembler(mesh, strategy=strategy).assemble_mass(
             coefficient, quadrature=quadrature
         )
-    asm = StiffnessAssembler(mesh)
+    assembler = StiffnessAssembler(mesh)
     coef = parse_coefficient(coefficient, mesh, name="mass coefficient", sign="any")
-    return asm.plan.matrix(asm._numeric.mass_data(coef, quadrature))
+    return assembler.plan.matrix(assembler._numeric.mass_data(coef, quadrature))
 
 
 def assemble_load(mesh, f, *, quadrature=2):

@@ -125,10 +125,10 @@ def assemble_local(sub, *, kappa, f, reaction=None, neumann=None, robin=None, qu
         has_robin = bool(R.nnz > 0 and R.max() > 0)
         b += assemble_boundary_load(m, s, edges, quadrature=quadrature)
     b += assemble_load(m, f, quadrature=quadrature)
-    asm = StiffnessAssembler(m)
-    A = asm.assemble(kappa, quadrature=quadrature)
+    assembler = StiffnessAssembler(m)
+    A = assembler.assemble(kappa, quadrature=quadrature)
     if reaction is not None:
-        A = A + asm.assemble_mass(reaction, quadrature=quadrature)
+        A = A + assembler.assemble_mass(reaction, quadrature=quadrature)
     if R is not None:
         A = A + R
     return A, b, has_robin
