@@ -41,6 +41,8 @@ _LIMITED = 1_100_000  # the Chebyshev setup's Lanczos estimate per level grows w
 # method: (plain?, solve_poisson options, most unknowns it runs to (None: every size))
 METHODS = {
     "amg": (False, {}, UNLIMITED),
+    "amg-rs": (False, {"preconditioner": "amg-rs"}, UNLIMITED),
+    "amg-native": (False, {"preconditioner": "amg-native"}, UNLIMITED),
     "amg-sa": (False, {"preconditioner": "amg-sa"}, UNLIMITED),
     "amg-sa-chebyshev": (False, {"preconditioner": "amg-sa", "smoother": "chebyshev"}, _LIMITED),
     "gmg": (False, {"preconditioner": "gmg"}, UNLIMITED),

@@ -109,7 +109,7 @@ def test_neumann_and_robin_reproduce_a_linear_solution():
 
 
 @pytest.mark.parametrize(
-    "preconditioner", ["none", "jacobi", "ic0", "amg-sa", "amg-rs", "amg", "direct"]
+    "preconditioner", ["none", "jacobi", "ic0", "amg-sa", "amg-rs", "amg-native", "amg", "direct"]
 )
 def test_every_preconditioner_gives_the_direct_solution(preconditioner):
     m = jittered_mesh(20, 8)
@@ -200,7 +200,8 @@ def jump_case(name):
 
 
 @pytest.mark.parametrize("case", ["jump-1e6", "anisotropy-100"])
-@pytest.mark.parametrize("preconditioner", ["jacobi", "ic0", "amg-sa", "amg-rs", "amg", "gmg"])
+@pytest.mark.parametrize("preconditioner",
+                         ["jacobi", "ic0", "amg-sa", "amg-rs", "amg-native", "amg", "gmg"])
 def test_jump_and_anisotropy_still_converge(preconditioner, case):
     # A coefficient jump of 1e6 across x = 0.5 and a 100:1 anisotropic tensor:
     # every preconditioner still converges to the direct solution (the table

@@ -25,7 +25,7 @@ from kernels.precond import (
 from kernels.precond.ichol import ic0_reference
 from kernels.precond.registry import _Registry
 
-BUILTIN = ("none", "jacobi", "ic0", "amg-sa", "amg-rs", "direct", "amg")
+BUILTIN = ("none", "jacobi", "ic0", "amg-sa", "amg-rs", "amg-native", "direct", "amg")
 
 # Kershaw's SPD matrix on which IC(0) meets a negative pivot: D. S. Kershaw, "The
 # incomplete Cholesky-conjugate gradient method for the iterative solution of systems
@@ -57,6 +57,9 @@ VARIANTS = {
     "amg-rs": ("amg-rs", {}),
     "amg-rs-W": ("amg-rs", {"cycle": "W"}),
     "amg-rs-chebyshev": ("amg-rs", {"smoother": "chebyshev", "degree": 3}),
+    "amg-native": ("amg-native", {}),
+    "amg-native-deep": ("amg-native", {"max_coarse": 4}),
+    "amg-native-W": ("amg-native", {"max_coarse": 4, "cycle": "W", "degree": 3}),
     "direct": ("direct", {}),
     "amg": ("amg", {}),
 }
@@ -275,7 +278,7 @@ def test_repr_says_what_and_what_it_costs():
     for name, text in reprs.items():
         assert text.startswith(f"<Preconditioner {name}")
         assert "memory" in text and "bytes" in text and "setup" in text
-    for name in ("amg-sa", "amg-rs", "amg"):
+    for name in ("amg-sa", "amg-rs", "amg-native", "amg"):
         assert "levels" in reprs[name] and "operator complexity" in reprs[name]
     assert "nnz(L)=" in reprs["ic0"] and "fill" in reprs["ic0"]
     assert f"(= {AMG_DEFAULT})" in reprs["amg"]

@@ -22,7 +22,7 @@ CASES = {
     "random-spd": spd_case,
     "float32": lambda: poisson((9, 9), format="csr").astype(np.float32),
 }
-NAMES = ("none", "jacobi", "ic0", "amg-sa", "amg-rs", "direct", "amg")
+NAMES = ("none", "jacobi", "ic0", "amg-sa", "amg-rs", "amg-native", "direct", "amg")
 
 
 @pytest.mark.parametrize("preconditioner", NAMES)

@@ -7,6 +7,7 @@
 ``ic0``     incomplete Cholesky, zero fill (``modified=True`` for the modified variant)
 ``amg-sa``  smoothed-aggregation AMG (PyAMG hierarchy)
 ``amg-rs``  classical Ruge-Stuben AMG (PyAMG hierarchy)
+``amg-native`` classical Ruge-Stuben AMG, hierarchy built by this project's parallel kernels
 ``direct``  sparse LU (SuperLU), refused above a size limit
 ``amg``     the AMG variant measured fastest on 2-D Poisson (docs/solvers.md)
 ``gmg``     geometric multigrid on a mesh's refinement history, matrix-free
@@ -15,7 +16,7 @@
 a user factory.
 """
 
-from kernels.precond.amg import RugeStubenAMG, SmoothedAggregationAMG
+from kernels.precond.amg import ClassicalAMG, RugeStubenAMG, SmoothedAggregationAMG
 from kernels.precond.direct import DIRECT_LIMIT, SparseDirect
 from kernels.precond.gmg import GeometricMultigrid
 from kernels.precond.ichol import IncompleteCholesky
@@ -37,6 +38,7 @@ __all__ = [
     "IncompleteCholesky",
     "SmoothedAggregationAMG",
     "RugeStubenAMG",
+    "ClassicalAMG",
     "SparseDirect",
     "GeometricMultigrid",
     "DIRECT_LIMIT",
@@ -47,9 +49,9 @@ __all__ = [
 AMG_DEFAULT = "amg-rs"
 
 for _factory in (Identity, Jacobi, IncompleteCholesky, SmoothedAggregationAMG, RugeStubenAMG,
-                 SparseDirect):
+                 ClassicalAMG, SparseDirect):
     register_preconditioner(_factory.name, _factory)
-register_preconditioner("amg", {"amg-sa": SmoothedAggregationAMG,
-                                "amg-rs": RugeStubenAMG}[AMG_DEFAULT])
+register_preconditioner("amg", {"amg-sa": SmoothedAggregationAMG, "amg-rs": RugeStubenAMG,
+                                "amg-native": ClassicalAMG}[AMG_DEFAULT])
 register_preconditioner("gmg", GeometricMultigrid)
 del _factory

@@ -27,17 +27,19 @@ which also computes the residual norm before and after each cycle (two
 extra fine-level products per application that a preconditioner does not need).
 """
 
+import numba
 import numpy as np
 import pyamg
 import scipy.sparse as sp
 
+from kernels._jit import amg as _a
 from kernels._jit import sparse as _k
 from kernels.errors import InputError
 from kernels.precond.chebyshev import ChebyshevSmoother
 from kernels.precond.registry import Preconditioner, require_csr
 from kernels.sparse import as_csr
 
-__all__ = ["SmoothedAggregationAMG", "RugeStubenAMG"]
+__all__ = ["SmoothedAggregationAMG", "RugeStubenAMG", "ClassicalAMG", "ClassicalHierarchy"]
 
 _CYCLES = ("V", "W")
 _SMOOTHERS = ("gauss-seidel", "chebyshev")
@@ -56,24 +58,23 @@ class _ChebyshevLevel:
     def __init__(self, level, degree, lower=None, estimate=True):
         A = as_csr(level.A, "level A")
         self.A = (A.indptr, A.indices, A.data)
-        self.P = self._csr(level.P) if hasattr(level, "P") else None
-        self.R = self._csr(level.R) if hasattr(level, "R") else None
+        self.P = self._csr(level.P) if getattr(level, "P", None) is not None else None
+        self.R = self._csr(level.R) if getattr(level, "R", None) is not None else None
         self.n = A.shape[0]
-        d = A.diagonal()
-        if not (d > 0).all():
-            row = int(np.argmax(~(d > 0)))
-            raise InputError(f"amg chebyshev smoother: diagonal entry of row {row} of a "
-                             f"coarse level is {d[row]}; it must be > 0")
-        dinv = 1.0 / d
+        dinv = np.empty(self.n)
         # Gershgorin's bound on the spectrum of D^-1 A is guaranteed; Lanczos is tighter.
-        gershgorin = float(np.max(np.asarray(abs(A).sum(axis=1)).ravel() * dinv))
+        gershgorin, row = _a.diagonal_and_bound(*self.A, dinv)
+        if row >= 0:
+            raise InputError(f"amg chebyshev smoother: diagonal entry of row {row} of a "
+                             f"level with {self.n} unknowns is {A.diagonal()[row]}; "
+                             f"it must be > 0")
         arrays = self.A
         self.smoother = ChebyshevSmoother(
             lambda x, out: _k.spmv(*arrays, x, out),
             lambda x, b, out: _k.residual(*arrays, x, b, out),
             dinv,
             degree,
-            bound=gershgorin,
+            bound=float(gershgorin),
             estimate=estimate,
             lower=lower,
         )
@@ -116,10 +117,7 @@ class _AMG(Preconditioner):
             raise InputError(f"{self.name}: lower must be None or a number between 0 and 1, "
                              f"got {lower!r}")
         super().__init__(C.shape[0])
-        try:
-            self.ml = type(self).solver(C, **options)
-        except (ValueError, TypeError) as exc:
-            raise InputError(f"{self.name}: pyamg rejected the options ({exc})") from None
+        self.ml = self._build(C, options)
         self.cycle = cycle
         self.smoother = smoother
         self.degree = int(degree)
@@ -130,32 +128,49 @@ class _AMG(Preconditioner):
         if smoother == "chebyshev":
             self._cheb = [_ChebyshevLevel(lv, self.degree, lower, self.estimate)
                           for lv in levels[:-1]]
-            self._work = [(np.empty(c.n), np.empty(c.n), np.empty(c.n)) for c in self._cheb]
+            # every vector a cycle needs, allocated and touched once here: an
+            # application allocates nothing (r, d, q per level; b, x below the finest)
+            self._work = [tuple(np.full(c.n, 0.0) for _ in range(3)) for c in self._cheb]
+            sizes = [lv.A.shape[0] for lv in levels]
+            self._b = [None] + [np.full(m, 0.0) for m in sizes[1:]]
+            self._x = [None] + [np.full(m, 0.0) for m in sizes[1:]]
         # The coarsest solve is set up on first use in PyAMG; do it now, in setup.
         self.ml.coarse_solver(self._coarse_A, np.zeros(self._coarse_A.shape[0]))
 
+    def _build(self, C, options):
+        """The hierarchy (PyAMG's MultilevelSolver, or one with its few attributes used here)."""
+        try:
+            return type(self).solver(C, **options)
+        except (ValueError, TypeError) as exc:
+            raise InputError(f"{self.name}: pyamg rejected the options ({exc})") from None
+
     # -- applying ---------------------------------------------------------------
     def _apply(self, r):
-        if len(self.ml.levels) == 1:
-            return np.asarray(self.ml.coarse_solver(self._coarse_A, r), dtype=np.float64)
-        x = np.zeros_like(r)
-        self._cycle(0, x, r, True)
-        return x
+        out = np.empty_like(r)
+        self.apply_into(r, out)
+        return out
 
-    def _cycle(self, lvl, x, b, zero_guess):
-        if self.smoother == "chebyshev":
-            self._cycle_parallel(lvl, x, b, zero_guess)
+    def apply_into(self, r, out):
+        """``out = M r`` (one cycle from a zero guess); ``r`` and ``out`` distinct, length n.
+
+        With the Chebyshev smoother nothing is allocated on any level but the coarsest.
+        """
+        if len(self.ml.levels) == 1:
+            out[:] = self.ml.coarse_solver(self._coarse_A, r)
+        elif self.smoother == "chebyshev":
+            self._cycle_parallel(0, out, r, True)
         else:
-            self._cycle_pyamg(lvl, x, b)
+            out[:] = 0.0
+            self._cycle_pyamg(0, out, r)
 
     def _coarse(self, lvl, b):
-        """Approximate solution of level ``lvl``'s system from a zero guess."""
+        """Approximate solution of level ``lvl``'s system from a zero guess (PyAMG smoothers)."""
         if lvl == len(self.ml.levels) - 1:
             return np.asarray(self.ml.coarse_solver(self._coarse_A, b), dtype=np.float64)
         x = np.zeros_like(b)
-        self._cycle(lvl, x, b, True)
+        self._cycle_pyamg(lvl, x, b)
         if self.cycle == "W":
-            self._cycle(lvl, x, b, False)
+            self._cycle_pyamg(lvl, x, b)
         return x
 
     def _cycle_pyamg(self, lvl, x, b):
@@ -167,13 +182,20 @@ class _AMG(Preconditioner):
         level.postsmoother(A, x, b)
 
     def _cycle_parallel(self, lvl, x, b, zero_guess):
+        """One cycle on level ``lvl`` for ``A x = b``, in place; ``x`` is not read with ``zero_guess``."""
         c = self._cheb[lvl]
         r, d, q = self._work[lvl]
         c.smooth(x, b, zero_guess, r, d, q)
         _k.residual(*c.A, x, b, r)
-        coarse_b = np.empty(c.R[0].shape[0] - 1)
+        coarse_b, coarse_x = self._b[lvl + 1], self._x[lvl + 1]
         _k.spmv(*c.R, r, coarse_b)
-        _k.spmv_add(*c.P, self._coarse(lvl + 1, coarse_b), x)
+        if lvl + 1 == len(self._cheb):
+            coarse_x[:] = self.ml.coarse_solver(self._coarse_A, coarse_b)
+        else:
+            self._cycle_parallel(lvl + 1, coarse_x, coarse_b, True)
+            if self.cycle == "W":
+                self._cycle_parallel(lvl + 1, coarse_x, coarse_b, False)
+        _k.spmv_add(*c.P, coarse_x, x)
         c.smooth(x, b, False, r, d, q)
 
     # -- describing -------------------------------------------------------------
@@ -191,8 +213,9 @@ class _AMG(Preconditioner):
             elif isinstance(held, tuple):
                 total += sum(a.nbytes for a in held if isinstance(a, np.ndarray))
         if self.smoother == "chebyshev":
-            # 1/diag and three work vectors per level
+            # 1/diag and three work vectors per level, right-hand side and solution below the finest
             total += sum(4 * c.dinv.nbytes for c in self._cheb)
+            total += sum(v.nbytes for v in self._b[1:] + self._x[1:])
         return total
 
     def _details(self):
@@ -205,9 +228,11 @@ class _AMG(Preconditioner):
                          f"{top}] (parallel kernels)")
         else:
             smoothing = "symmetric Gauss-Seidel smoothing (pyamg)"
+        coarsest = getattr(ml.coarse_solver, "description", None)
+        coarsest = "" if coarsest is None else f", coarsest level by {coarsest}"
         return (f"{len(ml.levels)} levels ({sizes}), operator complexity "
                 f"{ml.operator_complexity():.2f}, grid complexity {ml.grid_complexity():.2f}, "
-                f"{self.cycle}-cycle, {smoothing}")
+                f"{self.cycle}-cycle, {smoothing}{coarsest}")
 
 
 class SmoothedAggregationAMG(_AMG):
@@ -285,3 +310,195 @@ class RugeStubenAMG(_AMG):
         options = {"max_levels": max_levels, "max_coarse": max_coarse, "strength": strength,
                    "CF": CF, "interpolation": interpolation, "coarse_solver": coarse_solver}
         super().__init__(A, cycle, smoother, degree, options, lower, estimate)
+
+
+# -- classical AMG with this project's own parallel setup ------------------------------
+class _Level:
+    """A level of :class:`ClassicalHierarchy`: its matrix and, above the coarsest, P and R = P^T."""
+
+    def __init__(self, A, P=None, R=None):
+        self.A, self.P, self.R = A, P, R
+
+
+class _DenseCholesky:
+    """The coarsest solve: a dense Cholesky factor (the level is small), in plain loops."""
+
+    description = "a dense Cholesky factor"
+
+    def __init__(self, A):
+        dense = A.toarray()
+        dense = 0.5 * (dense + dense.T)
+        self.L, row = _a.dense_cholesky(dense)
+        if row >= 0:
+            raise InputError(f"amg: the coarsest level ({A.shape[0]} unknowns) is not positive "
+                             f"definite (pivot {row}); A must be symmetric positive definite")
+
+    def __call__(self, A, b):
+        out = np.empty(b.shape[0])
+        _a.cholesky_solve(self.L, np.ascontiguousarray(b, dtype=np.float64), out)
+        return out
+
+
+class _SmoothingSolve:
+    """The coarsest solve when coarsening stalled on a large level: Chebyshev smoothing only."""
+
+    def __init__(self, A, degree):
+        self.description = f"Chebyshev smoothing of degree {degree} on [top/30, top]"
+        self.level = _ChebyshevLevel(_Level(A), degree, lower=1.0 / 30.0, estimate=False)
+        n = A.shape[0]
+        self.work = (np.empty(n), np.empty(n), np.empty(n))
+
+    def __call__(self, A, b):
+        x = np.empty_like(b)
+        self.level.smooth(x, b, True, *self.work)
+        return x
+
+
+def _index_dtype(n, nnz):
+    return np.int32 if max(n, nnz) < np.iinfo(np.int32).max else np.int64
+
+
+def _csr_arrays(M):
+    """``(indptr, indices, data)`` of CSR ``M`` with one index dtype (copies only if needed)."""
+    itype = _index_dtype(M.shape[0], M.indptr[-1])
+    return (np.ascontiguousarray(M.indptr, dtype=itype),
+            np.ascontiguousarray(M.indices, dtype=itype),
+            np.ascontiguousarray(M.data, dtype=np.float64))
+
+
+def _split(indptr, indices, strong, n):
+    """The C/F splitting (1 = C): PyAMG's compiled first pass where its 32-bit indices suffice.
+
+    ``kernels._jit.amg.split`` is the same algorithm (tested to give the same
+    splitting); it serves matrices whose indices need 64 bits.
+    """
+    tptr, tind = _a.transpose_pattern(indptr, indices, strong, n)
+    if indptr.dtype != np.int32:
+        return _a.split(indptr, indices, strong, tptr, tind)
+    sptr, sind = _a.strong_pattern(indptr, indices, strong)
+    state = np.empty(n, dtype=np.int32)
+    pyamg.amg_core.rs_cf_splitting(n, sptr, sind, tptr, tind, np.zeros(n, dtype=np.int32), state)
+    return state
+
+
+def _chunks():
+    # one block of rows per thread: each block keeps a marker array as long as the level
+    return numba.get_num_threads()
+
+
+class ClassicalHierarchy:
+    """Ruge-Stueben hierarchy built with this project's parallel kernels (``kernels._jit.amg``).
+
+    Per level: strong couplings (one byte per entry), the first-pass C/F
+    splitting, classical interpolation P, R = P^T and the Galerkin product
+    R A P, until a level has at most ``max_coarse`` unknowns, ``max_levels``
+    levels exist or coarsening stalls (fewer than 10% fewer points).  The
+    coarsest level is solved by a dense Cholesky factor when it has at most
+    ``DENSE_LIMIT`` unknowns, else by Chebyshev smoothing.
+    """
+
+    DENSE_LIMIT = 1000
+
+    def __init__(self, A, theta=0.25, max_levels=30, max_coarse=300, degree=3):
+        self.levels = []
+        indptr, indices, data = _csr_arrays(A)
+        current = A
+        while len(self.levels) + 1 < max_levels and current.shape[0] > max_coarse:
+            n = current.shape[0]
+            strong = np.empty(indptr[-1], dtype=np.uint8)
+            _a.strength(indptr, indices, data, float(theta), strong)
+            state = _split(indptr, indices, strong, n)
+            n_coarse = int(np.count_nonzero(state))
+            if n_coarse == 0 or n_coarse > 0.9 * n:
+                break
+            itype = indptr.dtype
+            cidx = np.cumsum(state, dtype=itype)
+            cidx -= 1
+            pptr = np.zeros(n + 1, dtype=itype)
+            _a.interpolation_counts(indptr, indices, strong, state, pptr)
+            np.cumsum(pptr, out=pptr)
+            ptype = _index_dtype(n, pptr[-1])
+            pptr = pptr.astype(ptype, copy=False)
+            pind = np.empty(pptr[-1], dtype=ptype)
+            pdata = np.empty(pptr[-1])
+            _a.interpolation(indptr, indices, data, strong, state, cidx.astype(ptype, copy=False),
+                             pptr, pind, pdata, _chunks())
+            del strong, state, cidx
+            rptr, rind, rdata = _a.transpose(pptr, pind, pdata, n_coarse)
+            cptr = np.zeros(n_coarse + 1, dtype=np.int64)
+            _a.galerkin_counts(rptr, rind, indptr, indices, data, pptr, pind, n_coarse, cptr,
+                               _chunks())
+            np.cumsum(cptr, out=cptr)
+            ctype = _index_dtype(n_coarse, cptr[-1])
+            cptr = cptr.astype(ctype, copy=False)
+            cind = np.empty(cptr[-1], dtype=ctype)
+            cdata = np.empty(cptr[-1])
+            _a.galerkin(rptr, rind, rdata, indptr, indices, data, pptr, pind, pdata, n_coarse,
+                        cptr, cind, cdata, _chunks())
+            kept = _a.drop_zeros(cptr, cind, cdata)
+            if kept < cind.shape[0]:
+                cind, cdata = cind[:kept].copy(), cdata[:kept].copy()
+            P = sp.csr_array((pdata, pind, pptr), shape=(n, n_coarse))
+            R = sp.csr_array((rdata, rind, rptr), shape=(n_coarse, n))
+            self.levels.append(_Level(current, P, R))
+            current = sp.csr_array((cdata, cind, cptr), shape=(n_coarse, n_coarse))
+            indptr, indices, data = cptr, cind, cdata
+        self.levels.append(_Level(current))
+        if current.shape[0] <= self.DENSE_LIMIT:
+            self.coarse_solver = _DenseCholesky(current)
+        else:
+            self.coarse_solver = _SmoothingSolve(current, 4 * degree)
+
+    def operator_complexity(self):
+        return sum(lv.A.nnz for lv in self.levels) / self.levels[0].A.nnz
+
+    def grid_complexity(self):
+        return sum(lv.A.shape[0] for lv in self.levels) / self.levels[0].A.shape[0]
+
+
+class ClassicalAMG(_AMG):
+    """Classical (Ruge-Stueben) AMG, set up and cycled on this project's parallel kernels.
+
+    The same method as ``amg-rs`` (strength threshold ``theta``, first-pass
+    C/F splitting, classical interpolation, Galerkin coarse matrices), built
+    without PyAMG: the strength test, interpolation and triple product run in
+    parallel, the splitting is one serial pass, and nothing but P, R and the
+    coarse matrices is kept (the strong couplings are one byte per entry, freed
+    per level).  Smoothing is the parallel Chebyshev cycle of ``amg-rs``.
+
+    Parameters
+    ----------
+    A : sparse matrix, shape (n, n)
+        Symmetric positive definite.
+    cycle : {"V", "W"}
+    degree, lower, estimate
+        The Chebyshev smoother, as for ``amg-rs``.
+    theta : float
+        Strength threshold, 0 < theta < 1.
+    max_levels, max_coarse : int
+        Stop coarsening at this many levels or at a level this small; the
+        coarsest level is solved by a dense Cholesky factor (or, when
+        coarsening stalled above 1000 unknowns, by Chebyshev smoothing).
+
+    Costs: as ``amg-rs``; setup memory beyond the hierarchy is about one
+    byte per matrix entry and a few index arrays of the level's length.
+    """
+
+    name = "amg-native"
+    kind = "classical Ruge-Stuben AMG (own parallel setup)"
+
+    def __init__(self, A, *, cycle="V", degree=2, lower=0.3, estimate=False, theta=0.25,
+                 max_levels=30, max_coarse=300):
+        for key, value, low in (("max_levels", max_levels, 1), ("max_coarse", max_coarse, 1)):
+            if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
+                raise InputError(f"{self.name}: {key} must be an integer >= {low}, "
+                                 f"got {value!r}")
+        if isinstance(theta, bool) or not isinstance(theta, (int, float)) or not 0.0 < theta < 1.0:
+            raise InputError(f"{self.name}: theta must be a number between 0 and 1, "
+                             f"got {theta!r}")
+        options = {"theta": float(theta), "max_levels": int(max_levels),
+                   "max_coarse": int(max_coarse), "degree": degree}
+        super().__init__(A, cycle, "chebyshev", degree, options, lower, estimate)
+
+    def _build(self, C, options):
+        return ClassicalHierarchy(C, **options)

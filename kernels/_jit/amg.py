@@ -1,0 +1,460 @@
+"""Raw-array kernels of the classical AMG setup: strength, C/F splitting, interpolation, Galerkin product.
+
+The algorithm is Ruge and Stueben's (J. W. Ruge, K. Stueben, "Algebraic
+multigrid", in Multigrid Methods, SIAM Frontiers in Applied Mathematics 3,
+1987; K. Stueben, "A review of algebraic multigrid", J. Comput. Appl. Math.
+128, 2001):
+
+* ``strength``: entry ``a_ij`` (``j != i``) is a strong coupling when
+  ``-a_ij >= theta * max_{k != i} (-a_ik) > 0``; stored as one byte per
+  matrix entry, no second matrix;
+* ``split``: the first pass of the C/F splitting, serial, with bucket lists
+  keyed by each point's measure (the number of points that strongly depend on
+  it, raised as its dependants become F);
+* ``interpolation``: the classical (standard) interpolation: an F point
+  interpolates from its strongly coupled C points; a strong F neighbour's
+  coupling is distributed over those C points in proportion to its own
+  negative couplings to them (lumped onto the diagonal when it has none);
+  weak couplings are lumped onto the diagonal;
+* ``galerkin``: the coarse matrix ``R A P`` (``R = P^T``) row by row, without
+  forming ``A P``.
+
+Every parallel kernel owns its output rows and sums each row in a fixed
+order, so the hierarchy has the same bits on any number of threads.  Index
+arrays of one matrix share a dtype (int32 or int64).  Nothing here validates
+its arguments; ``kernels.precond.amg`` does.
+"""
+
+import numpy as np
+from numba import prange
+
+from kernels._jit import jit
+
+__all__ = [
+    "strength",
+    "transpose_pattern",
+    "strong_pattern",
+    "split",
+    "interpolation_counts",
+    "interpolation",
+    "transpose",
+    "galerkin_counts",
+    "galerkin",
+    "drop_zeros",
+    "diagonal_and_bound",
+    "dense_cholesky",
+    "cholesky_solve",
+]
+
+#: Splitting codes.
+F_POINT = 0
+C_POINT = 1
+
+
+@jit()
+def _bounds(n, nchunks, c):
+    return (n * c) // nchunks, (n * (c + 1)) // nchunks
+
+
+@jit(parallel=True)
+def strength(indptr, indices, data, theta, strong):
+    """``strong[k] = 1`` when entry ``k`` is a strong negative off-diagonal coupling, else 0."""
+    n = indptr.shape[0] - 1
+    for i in prange(n):
+        top = 0.0
+        for k in range(indptr[i], indptr[i + 1]):
+            if indices[k] != i and -data[k] > top:
+                top = -data[k]
+        cut = theta * top
+        for k in range(indptr[i], indptr[i + 1]):
+            v = -data[k]
+            strong[k] = 1 if (indices[k] != i and v > 0.0 and v >= cut) else 0
+
+
+@jit()
+def transpose_pattern(indptr, indices, strong, n):
+    """The transpose of the strong couplings: ``(tptr, tind)``, row ``j`` lists the ``i`` with j in S_i."""
+    tptr = np.zeros(n + 1, dtype=indptr.dtype)
+    for k in range(indptr[n]):
+        if strong[k]:
+            tptr[indices[k] + 1] += 1
+    for j in range(n):
+        tptr[j + 1] += tptr[j]
+    tind = np.empty(tptr[n], dtype=indices.dtype)
+    fill = tptr[:n].copy()
+    for i in range(n):
+        for k in range(indptr[i], indptr[i + 1]):
+            if strong[k]:
+                j = indices[k]
+                tind[fill[j]] = i
+                fill[j] += 1
+    return tptr, tind
+
+
+@jit()
+def strong_pattern(indptr, indices, strong):
+    """The strong couplings as a CSR pattern ``(sptr, sind)``: row ``i`` lists S_i."""
+    n = indptr.shape[0] - 1
+    sptr = np.zeros(n + 1, dtype=indptr.dtype)
+    for i in range(n):
+        c = 0
+        for k in range(indptr[i], indptr[i + 1]):
+            c += strong[k]
+        sptr[i + 1] = sptr[i] + c
+    sind = np.empty(sptr[n], dtype=indices.dtype)
+    q = 0
+    for k in range(indptr[n]):
+        if strong[k]:
+            sind[q] = indices[k]
+            q += 1
+    return sptr, sind
+
+
+@jit()
+def _unlink(i, lam, head, tail, nxt, prv):
+    b = lam[i]
+    if prv[i] >= 0:
+        nxt[prv[i]] = nxt[i]
+    else:
+        head[b] = nxt[i]
+    if nxt[i] >= 0:
+        prv[nxt[i]] = prv[i]
+    else:
+        tail[b] = prv[i]
+
+
+@jit()
+def _link_first(i, lam, head, tail, nxt, prv):
+    b = lam[i]
+    nxt[i] = head[b]
+    prv[i] = -1
+    if head[b] >= 0:
+        prv[head[b]] = i
+    else:
+        tail[b] = i
+    head[b] = i
+
+
+@jit()
+def _link_last(i, lam, head, tail, nxt, prv):
+    b = lam[i]
+    prv[i] = tail[b]
+    nxt[i] = -1
+    if tail[b] >= 0:
+        nxt[tail[b]] = i
+    else:
+        head[b] = i
+    tail[b] = i
+
+
+@jit()
+def split(indptr, indices, strong, tptr, tind):
+    """First pass of the Ruge-Stueben C/F splitting; returns one int8 per point (1 = C, 0 = F).
+
+    A point with no strong coupling of its own is F with nothing to
+    interpolate from (the smoother alone treats it).  The unassigned point of
+    largest measure becomes C; the points that strongly depend on it become
+    F, and the points those new F points depend on gain measure; the points
+    the new C point depends on lose measure.
+    """
+    n = indptr.shape[0] - 1
+    UNSET = -1
+    state = np.full(n, UNSET, dtype=np.int8)
+    lam = np.zeros(n, dtype=np.int64)
+    top = 0
+    for i in range(n):
+        lam[i] = tptr[i + 1] - tptr[i]
+        if lam[i] > top:
+            top = lam[i]
+    head = np.full(2 * top + 2, -1, dtype=np.int64)
+    tail = np.full(2 * top + 2, -1, dtype=np.int64)
+    nxt = np.empty(n, dtype=np.int64)
+    prv = np.empty(n, dtype=np.int64)
+    for i in range(n):
+        own = 0
+        for k in range(indptr[i], indptr[i + 1]):
+            own += strong[k]
+        if own == 0:
+            state[i] = F_POINT
+        else:
+            _link_first(i, lam, head, tail, nxt, prv)
+    while top >= 0:
+        if head[top] < 0:
+            top -= 1
+            continue
+        i = head[top]
+        _unlink(i, lam, head, tail, nxt, prv)
+        if top == 0:
+            # no unassigned or F point depends on i: C only if it has no C point to interpolate from
+            state[i] = C_POINT
+            for k in range(indptr[i], indptr[i + 1]):
+                if strong[k] and state[indices[k]] == C_POINT:
+                    state[i] = F_POINT
+                    break
+            continue
+        state[i] = C_POINT
+        for t in range(tptr[i], tptr[i + 1]):
+            j = tind[t]
+            if state[j] != UNSET:
+                continue
+            _unlink(j, lam, head, tail, nxt, prv)
+            state[j] = F_POINT
+            for k in range(indptr[j], indptr[j + 1]):
+                if strong[k]:
+                    m = indices[k]
+                    if state[m] == UNSET:
+                        _unlink(m, lam, head, tail, nxt, prv)
+                        lam[m] += 1
+                        _link_last(m, lam, head, tail, nxt, prv)
+                        if lam[m] > top:
+                            top = lam[m]
+        for k in range(indptr[i], indptr[i + 1]):
+            if strong[k]:
+                j = indices[k]
+                if state[j] == UNSET and lam[j] > 0:
+                    _unlink(j, lam, head, tail, nxt, prv)
+                    lam[j] -= 1
+                    _link_first(j, lam, head, tail, nxt, prv)
+    return state
+
+
+@jit(parallel=True)
+def interpolation_counts(indptr, indices, strong, state, counts):
+    """``counts[i + 1]``: the entries of row ``i`` of P (1 for a C point, its strong C couplings for an F point)."""
+    n = indptr.shape[0] - 1
+    for i in prange(n):
+        if state[i] == C_POINT:
+            counts[i + 1] = 1
+        else:
+            c = 0
+            for k in range(indptr[i], indptr[i + 1]):
+                if strong[k] and state[indices[k]] == C_POINT:
+                    c += 1
+            counts[i + 1] = c
+
+
+@jit(parallel=True)
+def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata, nchunks):
+    """Fill P (``pptr`` given): the classical interpolation weights of every F point."""
+    n = indptr.shape[0] - 1
+    for c in prange(nchunks):
+        lo, hi = _bounds(n, nchunks, c)
+        pos = np.full(n, -1, dtype=pind.dtype)
+        for i in range(lo, hi):
+            start = pptr[i]
+            if state[i] == C_POINT:
+                pind[start] = cidx[i]
+                pdata[start] = 1.0
+                continue
+            p = start
+            for k in range(indptr[i], indptr[i + 1]):
+                j = indices[k]
+                if strong[k] and state[j] == C_POINT:
+                    pos[j] = p
+                    pind[p] = cidx[j]
+                    pdata[p] = 0.0
+                    p += 1
+            if p == start:
+                continue
+            aii = 0.0
+            diag = 0.0
+            for k in range(indptr[i], indptr[i + 1]):
+                j = indices[k]
+                a = data[k]
+                if j == i:
+                    aii += a
+                    diag += a
+                elif strong[k] and state[j] == C_POINT:
+                    pdata[pos[j]] += a
+                elif strong[k]:
+                    # a strong F neighbour: spread a_ij over i's strong C points
+                    # in proportion to j's negative couplings to them
+                    denom = 0.0
+                    for e in range(indptr[j], indptr[j + 1]):
+                        if pos[indices[e]] >= 0 and data[e] < 0.0:
+                            denom += data[e]
+                    if denom < 0.0:
+                        for e in range(indptr[j], indptr[j + 1]):
+                            q = pos[indices[e]]
+                            if q >= 0 and data[e] < 0.0:
+                                pdata[q] += a * (data[e] / denom)
+                    else:
+                        diag += a
+                else:
+                    diag += a
+            if not diag > 0.0:  # lumping made the diagonal non-positive: use a_ii alone
+                diag = aii
+            for q in range(start, p):
+                pdata[q] = -pdata[q] / diag
+            for k in range(indptr[i], indptr[i + 1]):
+                j = indices[k]
+                if strong[k] and state[j] == C_POINT:
+                    pos[j] = -1
+
+
+@jit()
+def transpose(indptr, indices, data, n_cols):
+    """CSR transpose (serial counting sort); rows of the result list columns in increasing order."""
+    n = indptr.shape[0] - 1
+    tptr = np.zeros(n_cols + 1, dtype=indptr.dtype)
+    for k in range(indptr[n]):
+        tptr[indices[k] + 1] += 1
+    for j in range(n_cols):
+        tptr[j + 1] += tptr[j]
+    tind = np.empty(tptr[n_cols], dtype=indices.dtype)
+    tdata = np.empty(tptr[n_cols], dtype=data.dtype)
+    fill = tptr[:n_cols].copy()
+    for i in range(n):
+        for k in range(indptr[i], indptr[i + 1]):
+            j = indices[k]
+            tind[fill[j]] = i
+            tdata[fill[j]] = data[k]
+            fill[j] += 1
+    return tptr, tind, tdata
+
+
+@jit(parallel=True)
+def galerkin_counts(rptr, rind, aptr, aind, adata, pptr, pind, n_coarse, counts, nchunks):
+    """``counts[I + 1]``: the entries of row ``I`` of ``R A P``."""
+    for c in prange(nchunks):
+        lo, hi = _bounds(n_coarse, nchunks, c)
+        mark = np.full(n_coarse, -1, dtype=pind.dtype)
+        for row in range(lo, hi):
+            m = 0
+            for t in range(rptr[row], rptr[row + 1]):
+                i = rind[t]
+                for k in range(aptr[i], aptr[i + 1]):
+                    if adata[k] == 0.0:  # stored zeros of A add no entries
+                        continue
+                    j = aind[k]
+                    for s in range(pptr[j], pptr[j + 1]):
+                        col = pind[s]
+                        if mark[col] != row:
+                            mark[col] = row
+                            m += 1
+            counts[row + 1] = m
+
+
+@jit(parallel=True)
+def galerkin(rptr, rind, rdata, aptr, aind, adata, pptr, pind, pdata, n_coarse,
+             cptr, cind, cdata, nchunks):
+    """Fill ``C = R A P`` (``cptr`` given); each row's sums in a fixed order."""
+    for c in prange(nchunks):
+        lo, hi = _bounds(n_coarse, nchunks, c)
+        pos = np.full(n_coarse, -1, dtype=cind.dtype)
+        for row in range(lo, hi):
+            start = cptr[row]
+            q = start
+            for t in range(rptr[row], rptr[row + 1]):
+                i = rind[t]
+                r = rdata[t]
+                for k in range(aptr[i], aptr[i + 1]):
+                    if adata[k] == 0.0:
+                        continue
+                    j = aind[k]
+                    ra = r * adata[k]
+                    for s in range(pptr[j], pptr[j + 1]):
+                        col = pind[s]
+                        v = ra * pdata[s]
+                        if pos[col] < start:
+                            pos[col] = q
+                            cind[q] = col
+                            cdata[q] = v
+                            q += 1
+                        else:
+                            cdata[pos[col]] += v
+
+
+@jit()
+def drop_zeros(indptr, indices, data):
+    """Remove the off-diagonal entries that summed to exactly zero, in place; returns the new nnz.
+
+    ``indptr`` is rewritten; the first ``nnz`` entries of ``indices`` and
+    ``data`` hold the kept ones, each row's in its former order.
+    """
+    n = indptr.shape[0] - 1
+    q = 0
+    start = indptr[0]
+    for i in range(n):
+        end = indptr[i + 1]
+        for k in range(start, end):
+            if data[k] != 0.0 or indices[k] == i:
+                indices[q] = indices[k]
+                data[q] = data[k]
+                q += 1
+        start = end
+        indptr[i + 1] = q
+    return q
+
+
+@jit(parallel=True)
+def diagonal_and_bound(indptr, indices, data, dinv):
+    """``dinv = 1 / diag(A)`` and the Gershgorin bound ``max_i sum_j |a_ij| / a_ii``.
+
+    Returns ``(bound, row)`` where ``row`` is -1, or a row whose diagonal is
+    not positive (then ``dinv`` is incomplete and the bound meaningless).
+    """
+    n = indptr.shape[0] - 1
+    ratio = np.empty(n)
+    for i in prange(n):
+        d = 0.0
+        s = 0.0
+        for k in range(indptr[i], indptr[i + 1]):
+            s += abs(data[k])
+            if indices[k] == i:
+                d += data[k]
+        if d > 0.0:
+            dinv[i] = 1.0 / d
+            ratio[i] = s / d
+        else:
+            ratio[i] = -1.0
+    bound = 0.0
+    for i in range(n):
+        if ratio[i] < 0.0:
+            return 0.0, i
+        if ratio[i] > bound:
+            bound = ratio[i]
+    return bound, -1
+
+
+@jit()
+def dense_cholesky(a):
+    """Lower Cholesky factor of the symmetric matrix ``a`` (its lower triangle is read).
+
+    Returns ``(L, row)``: ``row`` is -1, or the first row whose pivot is not
+    positive (the matrix is not positive definite; ``L`` is then incomplete).
+    Plain loops on purpose: BLAS would start its own threads, which then
+    compete with the parallel kernels for the cores.
+    """
+    n = a.shape[0]
+    L = np.zeros((n, n))
+    for j in range(n):
+        s = a[j, j]
+        for k in range(j):
+            s -= L[j, k] * L[j, k]
+        if not s > 0.0:
+            return L, j
+        d = np.sqrt(s)
+        L[j, j] = d
+        for i in range(j + 1, n):
+            t = a[i, j]
+            for k in range(j):
+                t -= L[i, k] * L[j, k]
+            L[i, j] = t / d
+    return L, -1
+
+
+@jit()
+def cholesky_solve(L, b, out):
+    """``out = (L L^T)^-1 b`` by forward and back substitution."""
+    n = L.shape[0]
+    for i in range(n):
+        t = b[i]
+        for k in range(i):
+            t -= L[i, k] * out[k]
+        out[i] = t / L[i, i]
+    for i in range(n - 1, -1, -1):
+        t = out[i]
+        for k in range(i + 1, n):
+            t -= L[k, i] * out[k]
+        out[i] = t / L[i, i]
