@@ -20,13 +20,17 @@ multigrid", in Multigrid Methods, SIAM Frontiers in Applied Mathematics 3,
   forming ``A P``.
 
 Every parallel kernel owns its output rows and sums each row in a fixed
-order, so the hierarchy has the same bits on any number of threads.  Index
+order, so the hierarchy has the same bits on any number of threads.  As in
+``kernels._jit.sparse``, the hot loops index with unsigned integers
+(``U(k)``), which spares numba's test for negative indices (half the time of
+the Galerkin product); every index they use is non-negative by construction.  Index
 arrays of one matrix share a dtype (int32 or int64).  Nothing here validates
 its arguments; ``kernels.precond.amg`` does.
 """
 
 import numpy as np
 from numba import prange
+from numba import uint64 as U
 
 from kernels._jit import jit
 
@@ -111,43 +115,6 @@ def strong_pattern(indptr, indices, strong):
 
 
 @jit()
-def _unlink(i, lam, head, tail, nxt, prv):
-    b = lam[i]
-    if prv[i] >= 0:
-        nxt[prv[i]] = nxt[i]
-    else:
-        head[b] = nxt[i]
-    if nxt[i] >= 0:
-        prv[nxt[i]] = prv[i]
-    else:
-        tail[b] = prv[i]
-
-
-@jit()
-def _link_first(i, lam, head, tail, nxt, prv):
-    b = lam[i]
-    nxt[i] = head[b]
-    prv[i] = -1
-    if head[b] >= 0:
-        prv[head[b]] = i
-    else:
-        tail[b] = i
-    head[b] = i
-
-
-@jit()
-def _link_last(i, lam, head, tail, nxt, prv):
-    b = lam[i]
-    prv[i] = tail[b]
-    nxt[i] = -1
-    if tail[b] >= 0:
-        nxt[tail[b]] = i
-    else:
-        head[b] = i
-    tail[b] = i
-
-
-@jit()
 def split(indptr, indices, strong, tptr, tind):
     """First pass of the Ruge-Stueben C/F splitting; returns one int8 per point (1 = C, 0 = F).
 
@@ -155,7 +122,12 @@ def split(indptr, indices, strong, tptr, tind):
     interpolate from (the smoother alone treats it).  The unassigned point of
     largest measure becomes C; the points that strongly depend on it become
     F, and the points those new F points depend on gain measure; the points
-    the new C point depends on lose measure.
+    the new C point depends on lose measure.  Points wait in one doubly linked
+    list per measure: a point whose measure rose joins its new list last, one
+    whose measure fell joins first, and the first of the top list is taken
+    next (the tie-breaking of PyAMG's splitting, which this reproduces on
+    naturally numbered meshes).  The list operations are written out inline:
+    as calls they cost twice the time.
     """
     n = indptr.shape[0] - 1
     UNSET = -1
@@ -166,24 +138,36 @@ def split(indptr, indices, strong, tptr, tind):
         lam[i] = tptr[i + 1] - tptr[i]
         if lam[i] > top:
             top = lam[i]
-    head = np.full(2 * top + 2, -1, dtype=np.int64)
+    head = np.full(2 * top + 2, -1, dtype=np.int64)  # a measure at most doubles
     tail = np.full(2 * top + 2, -1, dtype=np.int64)
-    nxt = np.empty(n, dtype=np.int64)
-    prv = np.empty(n, dtype=np.int64)
+    nxt = np.full(n, -1, dtype=np.int64)
+    prv = np.full(n, -1, dtype=np.int64)
     for i in range(n):
         own = 0
         for k in range(indptr[i], indptr[i + 1]):
             own += strong[k]
         if own == 0:
             state[i] = F_POINT
+            continue
+        b = lam[i]  # join list b first
+        h = head[b]
+        nxt[i] = h
+        if h >= 0:
+            prv[h] = i
         else:
-            _link_first(i, lam, head, tail, nxt, prv)
+            tail[b] = i
+        head[b] = i
     while top >= 0:
-        if head[top] < 0:
+        i = head[top]
+        if i < 0:
             top -= 1
             continue
-        i = head[top]
-        _unlink(i, lam, head, tail, nxt, prv)
+        h = nxt[i]  # i leaves the top list, of which it is first
+        head[top] = h
+        if h >= 0:
+            prv[h] = -1
+        else:
+            tail[top] = -1
         if top == 0:
             # no unassigned or F point depends on i: C only if it has no C point to interpolate from
             state[i] = C_POINT
@@ -197,24 +181,68 @@ def split(indptr, indices, strong, tptr, tind):
             j = tind[t]
             if state[j] != UNSET:
                 continue
-            _unlink(j, lam, head, tail, nxt, prv)
+            b, p, q = lam[j], prv[j], nxt[j]  # j leaves its list
+            if p >= 0:
+                nxt[p] = q
+            else:
+                head[b] = q
+            if q >= 0:
+                prv[q] = p
+            else:
+                tail[b] = p
             state[j] = F_POINT
             for k in range(indptr[j], indptr[j + 1]):
-                if strong[k]:
-                    m = indices[k]
-                    if state[m] == UNSET:
-                        _unlink(m, lam, head, tail, nxt, prv)
-                        lam[m] += 1
-                        _link_last(m, lam, head, tail, nxt, prv)
-                        if lam[m] > top:
-                            top = lam[m]
+                if not strong[k]:
+                    continue
+                m = indices[k]
+                if state[m] != UNSET:
+                    continue
+                b, p, q = lam[m], prv[m], nxt[m]  # m leaves list b ...
+                if p >= 0:
+                    nxt[p] = q
+                else:
+                    head[b] = q
+                if q >= 0:
+                    prv[q] = p
+                else:
+                    tail[b] = p
+                b += 1  # ... and joins list b + 1 last
+                lam[m] = b
+                t2 = tail[b]
+                prv[m] = t2
+                nxt[m] = -1
+                if t2 >= 0:
+                    nxt[t2] = m
+                else:
+                    head[b] = m
+                tail[b] = m
+                if b > top:
+                    top = b
         for k in range(indptr[i], indptr[i + 1]):
-            if strong[k]:
-                j = indices[k]
-                if state[j] == UNSET and lam[j] > 0:
-                    _unlink(j, lam, head, tail, nxt, prv)
-                    lam[j] -= 1
-                    _link_first(j, lam, head, tail, nxt, prv)
+            if not strong[k]:
+                continue
+            j = indices[k]
+            if state[j] != UNSET or lam[j] == 0:
+                continue
+            b, p, q = lam[j], prv[j], nxt[j]  # j leaves list b ...
+            if p >= 0:
+                nxt[p] = q
+            else:
+                head[b] = q
+            if q >= 0:
+                prv[q] = p
+            else:
+                tail[b] = p
+            b -= 1  # ... and joins list b - 1 first
+            lam[j] = b
+            h = head[b]
+            nxt[j] = h
+            prv[j] = -1
+            if h >= 0:
+                prv[h] = j
+            else:
+                tail[b] = j
+            head[b] = j
     return state
 
 
@@ -241,43 +269,45 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
         lo, hi = _bounds(n, nchunks, c)
         pos = np.full(n, -1, dtype=pind.dtype)
         for i in range(lo, hi):
-            start = pptr[i]
-            if state[i] == C_POINT:
-                pind[start] = cidx[i]
-                pdata[start] = 1.0
+            ui = U(i)
+            start = pptr[ui]
+            if state[ui] == C_POINT:
+                pind[U(start)] = cidx[ui]
+                pdata[U(start)] = 1.0
                 continue
+            first, last = indptr[ui], indptr[ui + U(1)]
             p = start
-            for k in range(indptr[i], indptr[i + 1]):
-                j = indices[k]
-                if strong[k] and state[j] == C_POINT:
+            for k in range(first, last):
+                j = U(indices[U(k)])
+                if strong[U(k)] and state[j] == C_POINT:
                     pos[j] = p
-                    pind[p] = cidx[j]
-                    pdata[p] = 0.0
+                    pind[U(p)] = cidx[j]
+                    pdata[U(p)] = 0.0
                     p += 1
             if p == start:
                 continue
             aii = 0.0
             diag = 0.0
-            for k in range(indptr[i], indptr[i + 1]):
-                j = indices[k]
-                a = data[k]
-                if j == i:
+            for k in range(first, last):
+                j = U(indices[U(k)])
+                a = data[U(k)]
+                if j == ui:
                     aii += a
                     diag += a
-                elif strong[k] and state[j] == C_POINT:
-                    pdata[pos[j]] += a
-                elif strong[k]:
+                elif strong[U(k)] and state[j] == C_POINT:
+                    pdata[U(pos[j])] += a
+                elif strong[U(k)]:
                     # a strong F neighbour: spread a_ij over i's strong C points
                     # in proportion to j's negative couplings to them
                     denom = 0.0
-                    for e in range(indptr[j], indptr[j + 1]):
-                        if pos[indices[e]] >= 0 and data[e] < 0.0:
-                            denom += data[e]
+                    for e in range(indptr[j], indptr[j + U(1)]):
+                        if pos[U(indices[U(e)])] >= 0 and data[U(e)] < 0.0:
+                            denom += data[U(e)]
                     if denom < 0.0:
-                        for e in range(indptr[j], indptr[j + 1]):
-                            q = pos[indices[e]]
-                            if q >= 0 and data[e] < 0.0:
-                                pdata[q] += a * (data[e] / denom)
+                        for e in range(indptr[j], indptr[j + U(1)]):
+                            q = pos[U(indices[U(e)])]
+                            if q >= 0 and data[U(e)] < 0.0:
+                                pdata[U(q)] += a * (data[U(e)] / denom)
                     else:
                         diag += a
                 else:
@@ -285,10 +315,10 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
             if not diag > 0.0:  # lumping made the diagonal non-positive: use a_ii alone
                 diag = aii
             for q in range(start, p):
-                pdata[q] = -pdata[q] / diag
-            for k in range(indptr[i], indptr[i + 1]):
-                j = indices[k]
-                if strong[k] and state[j] == C_POINT:
+                pdata[U(q)] = -pdata[U(q)] / diag
+            for k in range(first, last):
+                j = U(indices[U(k)])
+                if strong[U(k)] and state[j] == C_POINT:
                     pos[j] = -1
 
 
@@ -321,18 +351,18 @@ def galerkin_counts(rptr, rind, aptr, aind, adata, pptr, pind, n_coarse, counts,
         mark = np.full(n_coarse, -1, dtype=pind.dtype)
         for row in range(lo, hi):
             m = 0
-            for t in range(rptr[row], rptr[row + 1]):
-                i = rind[t]
-                for k in range(aptr[i], aptr[i + 1]):
-                    if adata[k] == 0.0:  # stored zeros of A add no entries
+            for t in range(rptr[U(row)], rptr[U(row) + U(1)]):
+                i = U(rind[U(t)])
+                for k in range(aptr[i], aptr[i + U(1)]):
+                    if adata[U(k)] == 0.0:  # stored zeros of A add no entries
                         continue
-                    j = aind[k]
-                    for s in range(pptr[j], pptr[j + 1]):
-                        col = pind[s]
+                    j = U(aind[U(k)])
+                    for s in range(pptr[j], pptr[j + U(1)]):
+                        col = U(pind[U(s)])
                         if mark[col] != row:
                             mark[col] = row
                             m += 1
-            counts[row + 1] = m
+            counts[U(row) + U(1)] = m
 
 
 @jit(parallel=True)
@@ -343,26 +373,28 @@ def galerkin(rptr, rind, rdata, aptr, aind, adata, pptr, pind, pdata, n_coarse,
         lo, hi = _bounds(n_coarse, nchunks, c)
         pos = np.full(n_coarse, -1, dtype=cind.dtype)
         for row in range(lo, hi):
-            start = cptr[row]
+            start = cptr[U(row)]
             q = start
-            for t in range(rptr[row], rptr[row + 1]):
-                i = rind[t]
-                r = rdata[t]
-                for k in range(aptr[i], aptr[i + 1]):
-                    if adata[k] == 0.0:
+            for t in range(rptr[U(row)], rptr[U(row) + U(1)]):
+                i = U(rind[U(t)])
+                r = rdata[U(t)]
+                for k in range(aptr[i], aptr[i + U(1)]):
+                    a = adata[U(k)]
+                    if a == 0.0:
                         continue
-                    j = aind[k]
-                    ra = r * adata[k]
-                    for s in range(pptr[j], pptr[j + 1]):
-                        col = pind[s]
-                        v = ra * pdata[s]
-                        if pos[col] < start:
+                    j = U(aind[U(k)])
+                    ra = r * a
+                    for s in range(pptr[j], pptr[j + U(1)]):
+                        col = U(pind[U(s)])
+                        v = ra * pdata[U(s)]
+                        p = pos[col]
+                        if p < start:
                             pos[col] = q
-                            cind[q] = col
-                            cdata[q] = v
+                            cind[U(q)] = col
+                            cdata[U(q)] = v
                             q += 1
                         else:
-                            cdata[pos[col]] += v
+                            cdata[U(p)] += v
 
 
 @jit()

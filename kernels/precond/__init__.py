@@ -46,7 +46,7 @@ __all__ = [
 ]
 
 #: The variant ``"amg"`` names: the faster one on 2-D Poisson in bench/test_bench_linear.py.
-AMG_DEFAULT = "amg-rs"
+AMG_DEFAULT = "amg-native"
 
 for _factory in (Identity, Jacobi, IncompleteCholesky, SmoothedAggregationAMG, RugeStubenAMG,
                  ClassicalAMG, SparseDirect):
