@@ -53,16 +53,24 @@ class ProcessPeak:
     scipy's and PyAMG's C code, SuperLU, numba.  Where the high-water mark
     cannot be reset, :class:`kernels.perf.PeakMemory` (tracemalloc: NumPy and
     Python allocations only) is used instead and ``source`` says so.
+
+    ``trim=False`` skips the ``malloc_trim``: memory the allocator still holds
+    is then reused without being counted, so the peak can come out low, but
+    the region does not pay for touching that memory again (a whole solve's
+    heap on the development machine: 30 to 80 ms at 2.5e5 unknowns).  The
+    solve benchmarks time their warm rounds so and take the peak from the
+    cold first round, which trims.
     """
 
-    def __init__(self):
+    def __init__(self, trim=True):
         self.source = "rss-hwm" if HWM else "tracemalloc"
         self.peak = None
+        self.trim = trim
 
     def __enter__(self):
         gc.collect()
         if HWM:
-            if _libc is not None:
+            if _libc is not None and self.trim:
                 _libc.malloc_trim(0)
             self._start = rss_bytes()
             _reset_hwm()
