@@ -25,7 +25,7 @@ def main():
     }
     for name, coef in cases.items():
         row = []
-        for pc in ["jacobi", "ic0", "amg-sa", "amg-rs", "gmg"]:
+        for pc in ["jacobi", "ic0", "amg-sa", "amg-rs", "amg-native", "gmg"]:
             s = kernels.solve_poisson(
                 m, 1.0, coefficient=coef, preconditioner=pc, rtol=1e-8, maxiter=5000
             )
