@@ -172,14 +172,27 @@ def test_same_bits_on_one_and_two_threads():
     assert np.array_equal(z1, z2)
 
 
-def test_64_bit_indices_give_the_same_hierarchy():
+def test_64_bit_indices_give_the_same_hierarchy(monkeypatch):
+    # forced on a small matrix: 64-bit indices everywhere, and the numba splitting
+    # instead of PyAMG's (which takes 32-bit indices only)
+    import kernels.precond.amg as amg_module
+
     A = reduced_stiffness(rectangle(30, 30))
-    wide = sp.csr_array((A.data, A.indices.astype(np.int64), A.indptr.astype(np.int64)),
-                        shape=A.shape)
     narrow = ClassicalHierarchy(A, max_coarse=10)
-    broad = ClassicalHierarchy(wide, max_coarse=10)
-    assert [lv.A.shape for lv in narrow.levels] == [lv.A.shape for lv in broad.levels]
-    assert abs(sp.csr_array(narrow.levels[0].P) - sp.csr_array(broad.levels[0].P)).max() == 0.0
+    monkeypatch.setattr(amg_module, "_INT32_MAX", 10)
+    broad = ClassicalHierarchy(A, max_coarse=10)
+    assert broad.levels[1].A.indices.dtype == np.int64
+    assert broad.levels[0].P.indptr.dtype == np.int64
+    # the same splitting on the naturally numbered fine levels; on the last, tiny one the
+    # two first passes may break a tie differently (test_own_splitting_matches_...)
+    assert len(narrow.levels) == len(broad.levels)
+    for mine, theirs in zip(narrow.levels[:3], broad.levels[:3], strict=True):
+        assert abs(sp.csr_array(mine.P) - sp.csr_array(theirs.P)).max() == 0.0
+    b = np.ones(A.shape[0])
+    iterations = [cg_with_history(A, b, rtol=1e-8, M=ClassicalAMG(A, max_coarse=10)).iterations]
+    monkeypatch.undo()
+    iterations.append(cg_with_history(A, b, rtol=1e-8, M=ClassicalAMG(A, max_coarse=10)).iterations)
+    assert max(iterations) - min(iterations) <= 1, iterations
 
 
 def test_iterations_do_not_grow_with_the_mesh():

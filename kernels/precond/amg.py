@@ -354,8 +354,13 @@ class _SmoothingSolve:
         return x
 
 
+#: Largest count held in 32-bit indices (a module constant so that the tests can
+#: force 64-bit indices, and the numba splitting, on small matrices).
+_INT32_MAX = int(np.iinfo(np.int32).max)
+
+
 def _index_dtype(n, nnz):
-    return np.int32 if max(n, nnz) < np.iinfo(np.int32).max else np.int64
+    return np.int32 if max(n, nnz) < _INT32_MAX else np.int64
 
 
 def _csr_arrays(M):
