@@ -454,7 +454,8 @@ def dense_cholesky(a):
     """Lower Cholesky factor of the symmetric matrix ``a`` (its lower triangle is read).
 
     Returns ``(L, row)``: ``row`` is -1, or the first row whose pivot is not
-    positive (the matrix is not positive definite; ``L`` is then incomplete).
+    above ``1e-10`` times its diagonal entry (the matrix is not positive
+    definite, or singular up to rounding; ``L`` is then incomplete).
     Plain loops on purpose: BLAS would start its own threads, which then
     compete with the parallel kernels for the cores.
     """
@@ -464,7 +465,7 @@ def dense_cholesky(a):
         s = a[j, j]
         for k in range(j):
             s -= L[j, k] * L[j, k]
-        if not s > 0.0:
+        if not s > 1e-10 * abs(a[j, j]):
             return L, j
         d = np.sqrt(s)
         L[j, j] = d

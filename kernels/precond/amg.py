@@ -206,7 +206,7 @@ class _AMG(Preconditioner):
             for attr in ("A", "P", "R"):
                 total += _nbytes(getattr(lv, attr, None))
         coarse = self.ml.coarse_solver
-        for attr in ("P", "LU", "L"):
+        for attr in ("P", "LU", "L", "pinv"):
             held = getattr(coarse, attr, None)
             if isinstance(held, np.ndarray):
                 total += held.nbytes
@@ -321,7 +321,12 @@ class _Level:
 
 
 class _DenseCholesky:
-    """The coarsest solve: a dense Cholesky factor (the level is small), in plain loops."""
+    """The coarsest solve: a dense Cholesky factor (the level is small), in plain loops.
+
+    A singular but positive semi-definite level (a pure Neumann problem: the
+    constants are in the null space) gets a pseudo-inverse instead, as
+    PyAMG's ``pinv`` coarse solver does; an indefinite one is refused.
+    """
 
     description = "a dense Cholesky factor"
 
@@ -329,13 +334,26 @@ class _DenseCholesky:
         dense = A.toarray()
         dense = 0.5 * (dense + dense.T)
         self.L, row = _a.dense_cholesky(dense)
+        self.pinv = None
         if row >= 0:
-            raise InputError(f"amg: the coarsest level ({A.shape[0]} unknowns) is not positive "
-                             f"definite (pivot {row}); A must be symmetric positive definite")
+            w, V = np.linalg.eigh(dense)
+            scale = max(abs(w).max(), np.finfo(float).tiny)
+            if w[0] < -1e-10 * scale:
+                raise InputError(f"amg: the coarsest level ({A.shape[0]} unknowns) is not "
+                                 f"positive definite (pivot {row}, smallest eigenvalue "
+                                 f"{w[0]:.3g}); A must be symmetric positive (semi-)definite")
+            keep = w > 1e-10 * scale
+            self.pinv = (V[:, keep] / w[keep]) @ V[:, keep].T
+            self.L = None
+            self.description = (f"a pseudo-inverse (the level is singular: {int((~keep).sum())} "
+                                "zero eigenvalues)")
 
     def __call__(self, A, b):
+        b = np.ascontiguousarray(b, dtype=np.float64)
+        if self.pinv is not None:
+            return self.pinv @ b
         out = np.empty(b.shape[0])
-        _a.cholesky_solve(self.L, np.ascontiguousarray(b, dtype=np.float64), out)
+        _a.cholesky_solve(self.L, b, out)
         return out
 
 
