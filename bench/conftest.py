@@ -48,7 +48,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numba
 import numpy as np
 import pytest
-from benchlib import ProcessPeak, nested, refined_rectangle  # noqa: F401 (re-exported)
+from benchlib import ProcessPeak, nested, refined_rectangle, round_peak  # noqa: F401 (re-exported)
 
 from kernels.mesh import rectangle
 from kernels.perf import memory_bandwidth
@@ -254,15 +254,7 @@ def timed_with_peak(benchmark, target, setup, rounds, keep_result=True):
 
     def _setup():
         args = setup()
-        # as the whole solves (solve_worker.Runner.prepare): the first round trims and
-        # gives the peak; later rounds first touch 1.1 times the largest peak, untimed,
-        # and keep the allocator's memory, so that they do not pay the development
-        # machine's slow first touch of memory its host has taken back
-        touch = int(1.1 * max(p or 0 for p in peaks)) if peaks else 0
-        if touch:
-            block = np.ones(touch // 8)
-            del block
-        state["peak"] = ProcessPeak(trim=touch == 0).__enter__()
+        state["peak"] = round_peak(peaks)[0]  # as the whole solves: later rounds warm
         return args, {}
 
     def _teardown(*args):

@@ -29,7 +29,7 @@ import time
 import numpy as np
 import pyamg
 import scipy.sparse.linalg as sla
-from benchlib import ProcessPeak, refined_rectangle
+from benchlib import refined_rectangle, round_peak
 
 from kernels import apply_dirichlet, assemble_load, assemble_stiffness, solve_poisson, threads
 from kernels.mesh import rectangle
@@ -203,28 +203,16 @@ class Runner:
         return {"compile_s": max(0.0, times[0] - times[1]), "compile_probe": "small problem"}
 
     def prepare(self, touch=False):
-        """Build the round's mesh; with ``touch``, first touch 1.1 times the largest peak so far.
+        """Build the round's mesh; with ``touch``, warm the round (benchlib.round_peak).
 
-        The development machine's host takes back memory the guest has freed
-        within about two seconds, and the next first touch of it then costs
-        about 3 s per GiB (docs/performance.md).  The first round pays that in
-        full ("cold"); later rounds of a fresh-process benchmark get it touched
-        here, untimed, just before they start, and keep what the allocator
-        holds from the round before (no ``malloc_trim``): every method then
-        stands as in a process that has solved before, on an ordinary machine,
-        where a first touch costs a few hundredths of that.
+        The first round pays the development machine's slow first touch of
+        memory in full ("cold"); later rounds of a fresh-process benchmark get
+        the largest peak so far touched just before them, untimed.
         """
         self.finish()
         self._mesh = make_mesh(self.name, self.n)
-        self._touched = 0
-        peaks = [rd["peak_bytes"] or 0 for rd in self.rounds]
-        if touch and peaks and max(peaks) > 0:
-            self._touched = int(1.1 * max(peaks))
-            block = np.ones(self._touched // 8)
-            del block
-        # a warm round keeps the allocator's free memory (no malloc_trim): its peak may
-        # read low, test_bench_solve.py reports the largest, the cold round's
-        self._peak = ProcessPeak(trim=self._touched == 0).__enter__()
+        peaks = [rd["peak_bytes"] for rd in self.rounds] if touch else []
+        self._peak, self._touched = round_peak(peaks)
 
     def go(self):
         with threads(self.n_threads):
