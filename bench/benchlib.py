@@ -11,8 +11,8 @@ import re
 
 import numpy as np
 
-from kernels.mesh import rectangle
-from kernels.perf import PeakMemory, rss_bytes
+from hatkernels.mesh import rectangle
+from hatkernels.perf import PeakMemory, rss_bytes
 
 __all__ = ["HWM", "ProcessPeak", "round_peak", "nested", "refined_rectangle"]
 
@@ -53,7 +53,7 @@ class ProcessPeak:
     ``malloc_trim``, so that memory freed earlier and still held by the
     allocator is not counted as free room.  It sees every allocation: NumPy,
     scipy's and PyAMG's C code, SuperLU, numba.  Where the high-water mark
-    cannot be reset, :class:`kernels.perf.PeakMemory` (tracemalloc: NumPy and
+    cannot be reset, :class:`hatkernels.perf.PeakMemory` (tracemalloc: NumPy and
     Python allocations only) is used instead and ``source`` says so.
 
     ``trim=False`` skips the ``malloc_trim``: memory the allocator still holds

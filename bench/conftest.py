@@ -50,8 +50,8 @@ import numpy as np
 import pytest
 from benchlib import ProcessPeak, nested, refined_rectangle, round_peak  # noqa: F401 (re-exported)
 
-from kernels.mesh import rectangle
-from kernels.perf import memory_bandwidth
+from hatkernels.mesh import rectangle
+from hatkernels.perf import memory_bandwidth
 
 SIZES = {
     # cells per side of the unit-square rectangle mesh (2 n^2 triangles)
@@ -123,11 +123,11 @@ def versions():
     import pyamg
     import scipy
 
-    import kernels
+    import hatkernels
 
     return {"python": platform.python_version(), "numpy": np.__version__,
             "scipy": scipy.__version__, "numba": numba.__version__,
-            "pyamg": pyamg.__version__, "hatkernels": kernels.__version__}
+            "pyamg": pyamg.__version__, "hatkernels": hatkernels.__version__}
 
 
 def parallel_copy_bandwidth(mbytes=512, repeats=5, n_threads=MAX_THREADS):
@@ -314,14 +314,14 @@ _systems = {}
 
 def poisson_system(n, numbering="rectangle"):
     """``-lap u = 1``, u = 0 on the boundary: the reduced system ``(mesh, DirichletSystem)``."""
-    from kernels import apply_dirichlet, assemble_load, assemble_stiffness
+    from hatkernels import apply_dirichlet, assemble_load, assemble_stiffness
 
     key = (n, numbering)
     if key not in _systems:
         mesh = shared_mesh(n, numbering)
         A = assemble_stiffness(mesh)
         b = assemble_load(mesh, 1.0)
-        _systems[key] = (mesh, apply_dirichlet(A, b, mesh.boundary_nodes()))
+        _systems[key] = (mesh, apply_dirichlet(A, b, mesh.boundary_points()))
     return _systems[key]
 
 

@@ -21,7 +21,7 @@ import time
 
 import numba
 
-import kernels
+import hatkernels
 
 
 def rss_gib():
@@ -38,7 +38,7 @@ def main(argv=None):
 
     report = {"threads": numba.get_num_threads(), "phases": {}}
     t = time.perf_counter()
-    mesh = kernels.mesh.rectangle(args.coarse, args.coarse)
+    mesh = hatkernels.mesh.rectangle(args.coarse, args.coarse)
     for k in range(args.refinements):
         t1 = time.perf_counter()
         mesh = mesh.refine()
@@ -51,7 +51,7 @@ def main(argv=None):
     def progress(phase):
         print(f"  {phase} ... (peak so far {rss_gib():.1f} GiB)", flush=True)
 
-    sol = kernels.solve_poisson(mesh, 1.0, preconditioner="gmg", rtol=args.rtol, progress=progress)
+    sol = hatkernels.solve_poisson(mesh, 1.0, preconditioner="gmg", rtol=args.rtol, progress=progress)
     st = sol.stats
     report["phases"].update(st["timings"])
     report.update(

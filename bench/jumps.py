@@ -7,12 +7,12 @@ import warnings
 
 import numpy as np
 
-import kernels
+import hatkernels
 
 
 def main():
     warnings.simplefilter("ignore")
-    m = kernels.mesh.rectangle(32, 32).refine().refine()  # 128 x 128 cells, with history
+    m = hatkernels.mesh.rectangle(32, 32).refine().refine()  # 128 x 128 cells, with history
     c = m.points[m.triangles].mean(axis=1)
     cases = {
         "kappa = 1": None,
@@ -26,7 +26,7 @@ def main():
     for name, coef in cases.items():
         row = []
         for pc in ["jacobi", "ic0", "amg-sa", "amg-rs", "amg-native", "gmg"]:
-            s = kernels.solve_poisson(
+            s = hatkernels.solve_poisson(
                 m, 1.0, coefficient=coef, preconditioner=pc, rtol=1e-8, maxiter=5000
             )
             row.append(f"{pc} {s.stats['iterations'] if s.converged else 'no'}")

@@ -31,10 +31,10 @@ import pyamg
 import scipy.sparse.linalg as sla
 from benchlib import refined_rectangle, round_peak
 
-from kernels import apply_dirichlet, assemble_load, assemble_stiffness, solve_poisson, threads
-from kernels.mesh import rectangle
-from kernels.operators import DEFAULT_VARIANT
-from kernels.precond import AMG_DEFAULT
+from hatkernels import apply_dirichlet, assemble_load, assemble_stiffness, solve_poisson, threads
+from hatkernels.mesh import rectangle
+from hatkernels.operators import DEFAULT_VARIANT
+from hatkernels.precond import AMG_DEFAULT
 
 RTOL = 1e-8
 UNLIMITED = None
@@ -80,7 +80,7 @@ def plain_system(mesh):
     e1, e2 = p[t[:, 1]] - p[t[:, 0]], p[t[:, 2]] - p[t[:, 0]]
     area = 0.5 * np.abs(e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0])
     b = np.bincount(t.ravel(), weights=np.repeat(area / 3.0, 3), minlength=mesh.n_points)
-    free = np.setdiff1d(np.arange(mesh.n_points), mesh.boundary_nodes())
+    free = np.setdiff1d(np.arange(mesh.n_points), mesh.boundary_points())
     return A[free][:, free], b[free], free
 
 
@@ -176,7 +176,7 @@ def check(mesh, u):
     """``(|b - A u| / |b|, nnz)`` on the free points, assembled independently of the solve."""
     A = assemble_stiffness(mesh)
     b = assemble_load(mesh, 1.0)
-    system = apply_dirichlet(A, b, mesh.boundary_nodes())
+    system = apply_dirichlet(A, b, mesh.boundary_points())
     x = system.restrict(u)
     residual = float(np.linalg.norm(system.b - system.A @ x) / np.linalg.norm(system.b))
     return residual, int(system.A.nnz)

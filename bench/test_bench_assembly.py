@@ -32,10 +32,10 @@ from conftest import (
     warm,
 )
 
-import kernels
-from kernels import StiffnessAssembler, assemble_mass, assemble_stiffness, threads
-from kernels.mesh import Mesh, rectangle
-from kernels.perf import PeakMemory
+import hatkernels
+from hatkernels import StiffnessAssembler, assemble_mass, assemble_stiffness, threads
+from hatkernels.mesh import Mesh, rectangle
+from hatkernels.perf import PeakMemory
 
 
 def fresh(mesh):
@@ -194,5 +194,5 @@ def test_refine(benchmark, machine, request, cells):
         mesh.n_points + len(mesh.edges()))
     record(benchmark, machine, floor, floor, kind="refine", operation="refine", method="refine",
            plain=False, baseline=None, n_triangles_fine=fine_tri, peak_bytes=peak,
-           peak_source=source, kernels_version=kernels.__version__, **mesh_figures(mesh), **first)
+           peak_source=source, kernels_version=hatkernels.__version__, **mesh_figures(mesh), **first)
 

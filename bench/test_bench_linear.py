@@ -33,10 +33,10 @@ from conftest import (
 )
 from solve_worker import csr_nbytes, mesh_read_bytes
 
-from kernels import StiffnessOperator
-from kernels._jit import sparse as K
-from kernels._jit import threads
-from kernels.precond import make_preconditioner
+from hatkernels import StiffnessOperator
+from hatkernels._jit import sparse as K
+from hatkernels._jit import threads
+from hatkernels.precond import make_preconditioner
 
 
 def _vector_rounds(config):
@@ -101,7 +101,7 @@ PRECONDITIONERS = {
     "amg-native": ("ours", ("amg-native", {}), None),
     "amg-sa": ("ours", ("amg-sa", {}), None),
     # limited to keep the suite's time (its Lanczos estimates); the n x n Gershgorin
-    # temporary it once formed is gone (kernels._jit.amg.diagonal_and_bound)
+    # temporary it once formed is gone (hatkernels._jit.amg.diagonal_and_bound)
     "amg-sa-chebyshev": ("ours", ("amg-sa", {"smoother": "chebyshev"}), 1_100_000),
     "direct": ("ours", ("direct", {"max_unknowns": 1_100_000}), 1_100_000),
     "gmg": ("ours", ("gmg", {}), None),
@@ -118,7 +118,7 @@ def _system(cells, name):
     """(operator to precondition, right-hand side, figures) for one preconditioner."""
     if name == "gmg":
         mesh = shared_mesh(cells, "refined")
-        op = StiffnessOperator(mesh, dirichlet=mesh.boundary_nodes())
+        op = StiffnessOperator(mesh, dirichlet=mesh.boundary_points())
         b = np.random.default_rng(4).standard_normal(mesh.n_points)
         b[op.fixed] = 0.0
         return op, b, dict(mesh_figures(mesh), unknowns=int(mesh.n_points - len(op.fixed)),
@@ -263,7 +263,7 @@ def test_precond_apply(benchmark, machine, request, cells, name):
 @pytest.mark.parametrize("method", ["kernel", "reference"], ids=ids("method"))
 def test_ic0_factor_vs_reference(benchmark, machine, method):
     """Factorisation: the numba kernel against the readable dense specification (small grid)."""
-    from kernels.precond.ichol import IncompleteCholesky, ic0_reference
+    from hatkernels.precond.ichol import IncompleteCholesky, ic0_reference
 
     mesh, system = poisson_system(20)
     A = system.A

@@ -10,7 +10,7 @@ the generator numbers it) and ``refined`` (``rectangle(c, c)`` refined until
 ``scipy``          ``A @ x`` with scipy's CSR matrix, as a user writes it (allocates y)
 ``scipy-into``     scipy's own CSR kernel into a preallocated y (its best case)
 ``csr``            this project's parallel CSR kernel (what CG uses)
-``geometry``, ``factors``, ``edges``   :class:`kernels.StiffnessOperator` variants
+``geometry``, ``factors``, ``edges``   :class:`hatkernels.StiffnessOperator` variants
 
 Bytes moved: the stored operator (CSR: data, indices, indptr; matrix-free:
 the mesh or the stored values it reads), ``x`` read, ``y`` written (and read
@@ -33,10 +33,10 @@ from conftest import (
 )
 from scipy.sparse._sparsetools import csr_matvec
 
-from kernels import StiffnessOperator, assemble_stiffness, threads
-from kernels._jit import sparse as _k
-from kernels.operators import DEFAULT_VARIANT, VARIANTS
-from kernels.sparse import csr_bytes
+from hatkernels import StiffnessOperator, assemble_stiffness, threads
+from hatkernels._jit import sparse as _k
+from hatkernels.operators import DEFAULT_VARIANT, VARIANTS
+from hatkernels.sparse import csr_bytes
 
 CASES = [pytest.param("scipy", MAX_THREADS, id="method=scipy"),
          pytest.param("scipy-into", MAX_THREADS, id="method=scipy-into")]

@@ -8,8 +8,8 @@ every method must reach the relative residual ``RTOL`` (recomputed
 afterwards from an independent assembly, ``relative_residual``).  Methods
 (bench/solve_worker.py has the pipelines):
 
-this project, ``kernels.solve_poisson(mesh, 1.0, preconditioner=..., rtol=RTOL)``:
-    ``amg`` (the default, = ``kernels.precond.AMG_DEFAULT``), ``amg-sa``,
+this project, ``hatkernels.solve_poisson(mesh, 1.0, preconditioner=..., rtol=RTOL)``:
+    ``amg`` (the default, = ``hatkernels.precond.AMG_DEFAULT``), ``amg-sa``,
     ``amg-sa-chebyshev``, ``ic0``, ``ic0-modified``, ``jacobi``, ``none``
     (plain CG on our kernels), ``direct``, and ``gmg``: matrix-free, on the
     same ``n x n`` mesh made by refinement (``benchlib.nested``)
@@ -44,7 +44,7 @@ import pytest
 from conftest import MAX_THREADS, best_time, record, size_mode
 from solve_worker import BASELINE, METHODS, RTOL, SLOW, Runner
 
-from kernels import threads
+from hatkernels import threads
 
 ONE_THREAD = {"amg", "gmg"}  # thread scaling, up to 1.1e6 unknowns
 CASES = [pytest.param(m, MAX_THREADS, id=f"method={m}-threads={MAX_THREADS}") for m in METHODS]
@@ -195,13 +195,13 @@ def test_solve(benchmark, machine, request, solve_cells, name, n_threads):
 _FIRST = """
 import json, time
 t0 = time.perf_counter()
-import kernels
+import hatkernels
 t1 = time.perf_counter()
-m = kernels.mesh.rectangle(64, 64)
-kernels.solve_poisson(m, 1.0, rtol=1e-8)
+m = hatkernels.mesh.rectangle(64, 64)
+hatkernels.solve_poisson(m, 1.0, rtol=1e-8)
 t2 = time.perf_counter()
-f = kernels.mesh.rectangle(16, 16).refine().refine()
-kernels.solve_poisson(f, 1.0, preconditioner="gmg", rtol=1e-8)
+f = hatkernels.mesh.rectangle(16, 16).refine().refine()
+hatkernels.solve_poisson(f, 1.0, preconditioner="gmg", rtol=1e-8)
 t3 = time.perf_counter()
 print(json.dumps({"import_s": t1 - t0, "amg_s": t2 - t1, "gmg_s": t3 - t2}))
 """

@@ -1,17 +1,17 @@
 """hatkernels: fast, verified kernels for linear (P1) finite elements on triangle meshes.
 
->>> import kernels
->>> mesh = kernels.mesh.rectangle(16, 16)
->>> A = kernels.assemble_stiffness(mesh)
->>> b = kernels.assemble_load(mesh, 1.0)
->>> system = kernels.apply_dirichlet(A, b, mesh.boundary_nodes())
+>>> import hatkernels
+>>> mesh = hatkernels.mesh.rectangle(16, 16)
+>>> A = hatkernels.assemble_stiffness(mesh)
+>>> b = hatkernels.assemble_load(mesh, 1.0)
+>>> system = hatkernels.apply_dirichlet(A, b, mesh.boundary_points())
 >>> system.A.shape
 (225, 225)
 """
 
-from kernels import distributed, krylov, mesh, norms
-from kernels._jit import threads
-from kernels.assembly import (
+from hatkernels import distributed, krylov, mesh, norms
+from hatkernels._jit import threads
+from hatkernels.assembly import (
     STRATEGIES,
     StiffnessAssembler,
     assemble_boundary_load,
@@ -20,15 +20,15 @@ from kernels.assembly import (
     assemble_mass,
     assemble_stiffness,
 )
-from kernels.boundary import DirichletSystem, apply_dirichlet
-from kernels.coefficients import per_edge, per_node, per_triangle
-from kernels.errors import ConvergenceError, InputError, MeshError, MeshWarning
-from kernels.geometry import element_gradients
-from kernels.mesh import Mesh
-from kernels.operators import StiffnessOperator
-from kernels.poisson import PoissonSolution, solve_poisson
-from kernels.precond import PRECONDITIONERS, make_preconditioner, register_preconditioner
-from kernels.solve import SolveResult, solve
+from hatkernels.boundary import DirichletSystem, apply_dirichlet
+from hatkernels.coefficients import per_edge, per_point, per_triangle
+from hatkernels.errors import ConvergenceError, InputError, MeshError, MeshWarning
+from hatkernels.geometry import element_gradients
+from hatkernels.mesh import Mesh
+from hatkernels.operators import StiffnessOperator
+from hatkernels.poisson import PoissonSolution, solve_poisson
+from hatkernels.precond import PRECONDITIONERS, make_preconditioner, register_preconditioner
+from hatkernels.solve import SolveResult, solve
 
 __version__ = "0.1.0"
 
@@ -58,7 +58,7 @@ __all__ = [
     "mesh",
     "norms",
     "per_edge",
-    "per_node",
+    "per_point",
     "per_triangle",
     "register_preconditioner",
     "solve",

@@ -13,8 +13,8 @@ import dataclasses
 import numpy as np
 import scipy.sparse as sp
 
-from kernels._jit import dirichlet as _jit_dirichlet
-from kernels.errors import InputError
+from hatkernels._jit import dirichlet as _jit_dirichlet
+from hatkernels.errors import InputError
 
 __all__ = ["DirichletSystem", "apply_dirichlet"]
 
@@ -89,24 +89,24 @@ def _canonical_csr(A):
     return A
 
 
-def _nodes_and_values(nodes, values, n):
-    idx = np.asarray(nodes)
+def _points_and_values(points, values, n):
+    idx = np.asarray(points)
     if idx.ndim == 0:
         idx = idx.reshape(1)
     if idx.ndim != 1 or (idx.size and idx.dtype.kind not in "iu"):
         raise InputError(
-            f"nodes must be a 1-D array of point indices, got {idx.dtype} {idx.shape}"
+            f"points must be a 1-D array of point indices, got {idx.dtype} {idx.shape}"
         )
     idx = idx.astype(np.int64)
     if idx.size and (idx.min() < 0 or idx.max() >= n):
         k = int(np.flatnonzero((idx < 0) | (idx >= n))[0])
-        raise InputError(f"nodes[{k}] = {idx[k]} is outside 0..{n - 1}")
+        raise InputError(f"points[{k}] = {idx[k]} is outside 0..{n - 1}")
     v = np.asarray(values)
     if v.dtype.kind not in "fiu":
         raise InputError(f"Dirichlet values must be real numbers, got dtype {v.dtype}")
     v = np.broadcast_to(v.astype(np.float64), idx.shape) if v.ndim == 0 else v.astype(np.float64)
     if v.shape != idx.shape:
-        raise InputError(f"got {v.size} Dirichlet values for {idx.size} nodes")
+        raise InputError(f"got {v.size} Dirichlet values for {idx.size} points")
     bad = ~np.isfinite(v)
     if bad.any():
         k = int(np.flatnonzero(bad)[0])
@@ -127,8 +127,8 @@ def _nodes_and_values(nodes, values, n):
     return idx, v
 
 
-def apply_dirichlet(A, b, nodes, values=0.0):
-    """Reduce ``A u = b`` with ``u[nodes] = values`` to the free unknowns.
+def apply_dirichlet(A, b, points, values=0.0):
+    """Reduce ``A u = b`` with ``u[points] = values`` to the free unknowns.
 
     Parameters
     ----------
@@ -136,9 +136,9 @@ def apply_dirichlet(A, b, nodes, values=0.0):
         Symmetric positive (semi)definite, e.g. a stiffness matrix; not modified.
     b : array_like, shape (n,)
         Not modified.
-    nodes : array_like of int
+    points : array_like of int
         Points with a prescribed value (repeats allowed if their values agree).
-    values : float or array_like, shape (len(nodes),)
+    values : float or array_like, shape (len(points),)
 
     Returns
     -------
@@ -155,10 +155,10 @@ def apply_dirichlet(A, b, nodes, values=0.0):
 
     Examples
     --------
-    >>> import numpy as np, kernels
-    >>> m = kernels.mesh.rectangle(4, 4)
-    >>> A = kernels.assemble_stiffness(m)
-    >>> sysd = kernels.apply_dirichlet(A, kernels.assemble_load(m, 1.0), m.boundary_nodes())
+    >>> import numpy as np, hatkernels
+    >>> m = hatkernels.mesh.rectangle(4, 4)
+    >>> A = hatkernels.assemble_stiffness(m)
+    >>> sysd = hatkernels.apply_dirichlet(A, hatkernels.assemble_load(m, 1.0), m.boundary_points())
     >>> sysd
     DirichletSystem(9 free of 25, 16 fixed, 0 isolated, nnz 41)
     >>> u = sysd.expand(np.zeros(9))
@@ -178,7 +178,7 @@ def apply_dirichlet(A, b, nodes, values=0.0):
         k = int(np.flatnonzero(~np.isfinite(A.data))[0])
         row = int(np.searchsorted(A.indptr, k, side="right") - 1)
         raise InputError(f"A has a non-finite entry {float(A.data[k])!r} in row {row}")
-    fixed, vals = _nodes_and_values(nodes, values, n)
+    fixed, vals = _points_and_values(points, values, n)
 
     is_fixed = np.zeros(n, dtype=bool)
     is_fixed[fixed] = True

@@ -29,8 +29,8 @@ import warnings
 
 import numpy as np
 
-from kernels import io as kio
-from kernels.errors import ConvergenceError, InputError
+from hatkernels import io as kio
+from hatkernels.errors import ConvergenceError, InputError
 
 __all__ = ["main", "build_parser"]
 
@@ -172,11 +172,11 @@ def _dispatchers():
     """The numba dispatchers of the library's kernel modules (imported, not compiled)."""
     import numba.core.registry
 
-    import kernels._jit as jit
+    import hatkernels._jit as jit
 
     found = []
     for info in pkgutil.iter_modules(jit.__path__):
-        module = importlib.import_module(f"kernels._jit.{info.name}")
+        module = importlib.import_module(f"hatkernels._jit.{info.name}")
         for obj in vars(module).values():
             if isinstance(obj, numba.core.registry.CPUDispatcher) and obj not in found:
                 found.append(obj)
@@ -215,7 +215,7 @@ class CompileNotice:
         self._timer = None
 
     def _say(self):
-        from kernels._jit import caching_enabled
+        from hatkernels._jit import caching_enabled
 
         where = ("cached for next time" if caching_enabled()
                  else "not cached: no writable cache directory, set NUMBA_CACHE_DIR")
@@ -255,7 +255,7 @@ def _threads(n):
         return _NoThreads()
     import numba
 
-    from kernels._jit import threads
+    from hatkernels._jit import threads
 
     top = numba.config.NUMBA_NUM_THREADS
     if not 1 <= n <= top:
@@ -299,7 +299,7 @@ def _int_at_least(minimum):
 
 
 def _preconditioner_names():
-    from kernels.precond import PRECONDITIONERS
+    from hatkernels.precond import PRECONDITIONERS
 
     return tuple(PRECONDITIONERS)
 
@@ -318,17 +318,17 @@ def _versions():
             out[dist] = importlib.metadata.version(dist)
         except importlib.metadata.PackageNotFoundError:
             out[dist] = None
-    import kernels
+    import hatkernels
 
-    out["hatkernels"] = kernels.__version__
+    out["hatkernels"] = hatkernels.__version__
     return out
 
 
 def _base_record(command):
-    import kernels
+    import hatkernels
 
     return {
-        "generator": f"{PROG} {kernels.__version__}",
+        "generator": f"{PROG} {hatkernels.__version__}",
         "created": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds"),
         "command": command,
     }
@@ -384,8 +384,8 @@ PHASE_TEXT = {
 
 
 def _build_mesh(args, progress, arrays=None):
-    from kernels.mesh import rectangle
-    from kernels.scenarios import COARSE_CELLS, DEFAULT_CELLS, PLATE
+    from hatkernels.mesh import rectangle
+    from hatkernels.scenarios import COARSE_CELLS, DEFAULT_CELLS, PLATE
 
     if args.mesh is not None:
         progress.phase(f"mesh: checking {args.mesh}")
@@ -413,7 +413,7 @@ def _build_mesh(args, progress, arrays=None):
 
 
 def _problem(args, mesh, description):
-    from kernels import scenarios
+    from hatkernels import scenarios
 
     if args.mesh is not None:
         return scenarios.mesh_problem(mesh, source=args.source, conductivity=args.conductivity,
@@ -430,9 +430,9 @@ def _warm_up(args):
     refinement, assembly, solve, power balance), so that the phase times of
     the real problem do not include compilation.
     """
-    from kernels import scenarios
-    from kernels.mesh import Mesh, rectangle
-    from kernels.scenarios import COARSE_CELLS, PLATE
+    from hatkernels import scenarios
+    from hatkernels.mesh import Mesh, rectangle
+    from hatkernels.scenarios import COARSE_CELLS, PLATE
 
     if args.mesh is not None:
         grid = rectangle(4, 4)
@@ -525,13 +525,13 @@ def _solve_summary(args, problem, sol, balance, timings, kernels_seconds, comman
 
 
 def _caution():
-    from kernels.scenarios import CAUTION
+    from hatkernels.scenarios import CAUTION
 
     return CAUTION
 
 
 def _write_solve_outputs(directory, problem, sol, summary, progress, args):
-    from kernels import plot
+    from hatkernels import plot
 
     files = ["solution.npz", "summary.json"]
     skipped = []
@@ -616,16 +616,16 @@ def _solve_report(problem, summary, out):
 
 
 def cmd_solve(args, progress):
-    # -- MPI hook (kernels.distributed): under mpiexec with several ranks, solve distributed;
+    # -- MPI hook (hatkernels.distributed): under mpiexec with several ranks, solve distributed;
     # -- the launcher's environment is read without importing mpi4py. ------------------------
-    from kernels.distributed.launch import ranks_from_environment
+    from hatkernels.distributed.launch import ranks_from_environment
 
     if ranks_from_environment() > 1:
-        from kernels.distributed.command import solve_command
+        from hatkernels.distributed.command import solve_command
 
         return solve_command(args, progress)
     # -- end of MPI hook -----------------------------------------------------------------------
-    from kernels import scenarios
+    from hatkernels import scenarios
 
     if args.cells is not None and args.refine is not None:
         raise UsageError("--cells and --refine both set the mesh size; give one "
@@ -690,10 +690,10 @@ RATE_TOLERANCE = 0.2
 
 
 def cmd_verify(args, progress):
-    from kernels import plot
-    from kernels.mesh import rectangle
-    from kernels.norms import convergence_study
-    from kernels.poisson import solve_poisson
+    from hatkernels import plot
+    from hatkernels.mesh import rectangle
+    from hatkernels.norms import convergence_study
+    from hatkernels.poisson import solve_poisson
 
     out = kio.check_output_directory(args.out, force=args.force)
     command = shlex.join([PROG, "verify"] + args.argv)
@@ -788,24 +788,24 @@ def _best(fn, repeat, setup=None):
 
 def _bench_system(mesh):
     """``-lap u = 1``, ``u = 0`` on the boundary, reduced to the free points."""
-    from kernels.assembly import assemble_load, assemble_stiffness
-    from kernels.boundary import apply_dirichlet
+    from hatkernels.assembly import assemble_load, assemble_stiffness
+    from hatkernels.boundary import apply_dirichlet
 
     return apply_dirichlet(assemble_stiffness(mesh), assemble_load(mesh, 1.0),
-                           mesh.boundary_nodes())
+                           mesh.boundary_points())
 
 
 def _bench_options(name, mesh):
     if name in NEEDS_REFINEMENT and mesh.refinement is not None:
-        return {"mesh": mesh, "dirichlet": mesh.boundary_nodes()}
+        return {"mesh": mesh, "dirichlet": mesh.boundary_points()}
     return {}
 
 
 def cmd_bench(args, progress):
-    from kernels.assembly import StiffnessAssembler, assemble_stiffness
-    from kernels.mesh import rectangle
-    from kernels.perf import memory_bandwidth
-    from kernels.solve import solve
+    from hatkernels.assembly import StiffnessAssembler, assemble_stiffness
+    from hatkernels.mesh import rectangle
+    from hatkernels.perf import memory_bandwidth
+    from hatkernels.solve import solve
 
     names = args.preconditioners or [n for n in _preconditioner_names() if n != "amg"]
     known = _preconditioner_names()
@@ -972,7 +972,7 @@ def _threading_layer():
 def _cache_info():
     import numba
 
-    from kernels._jit import caching_enabled
+    from hatkernels._jit import caching_enabled
 
     state = kernel_cache_state()
     path = state["path"] if state else (numba.config.CACHE_DIR or None)

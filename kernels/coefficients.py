@@ -11,7 +11,7 @@ A coefficient (or load) is one of
   quadrature points.
 
 When a mesh has as many points as triangles a plain array is ambiguous;
-wrap it with :func:`per_node` or :func:`per_triangle`.
+wrap it with :func:`per_point` or :func:`per_triangle`.
 """
 
 from __future__ import annotations
@@ -21,8 +21,8 @@ import numbers
 
 import numpy as np
 
-from kernels.errors import InputError
-from kernels.quadrature import triangle_rule
+from hatkernels.errors import InputError
+from hatkernels.quadrature import triangle_rule
 
 __all__ = [
     "Coefficient",
@@ -30,7 +30,7 @@ __all__ = [
     "parse_coefficient",
     "parse_edge_coefficient",
     "per_edge",
-    "per_node",
+    "per_point",
     "per_triangle",
 ]
 
@@ -41,24 +41,24 @@ _CHUNK = 1 << 18
 
 @dataclasses.dataclass(frozen=True)
 class Field:
-    """An array tagged with where its values live: ``on`` is "node", "triangle" or "edge"."""
+    """An array tagged with where its values live: ``on`` is "point", "cell" or "edge"."""
 
     values: object
     on: str
 
     def __post_init__(self):
-        if self.on not in ("node", "triangle", "edge"):
-            raise InputError(f"a field lives on 'node', 'triangle' or 'edge', not {self.on!r}")
+        if self.on not in ("point", "cell", "edge"):
+            raise InputError(f"a field lives on 'point', 'cell' or 'edge', not {self.on!r}")
 
 
-def per_node(values):
+def per_point(values):
     """Mark ``values`` as one per point (piecewise linear)."""
-    return Field(values, "node")
+    return Field(values, "point")
 
 
 def per_triangle(values):
     """Mark ``values`` as one per triangle (piecewise constant)."""
-    return Field(values, "triangle")
+    return Field(values, "cell")
 
 
 def per_edge(values):
@@ -70,8 +70,8 @@ def per_edge(values):
 class Coefficient:
     """A checked coefficient.
 
-    ``kind`` is ``"constant"`` (value a float), ``"triangle"`` (M,),
-    ``"node"`` (N,), ``"tensor"`` ((2, 2) or (M, 2, 2)) or ``"callable"``.
+    ``kind`` is ``"constant"`` (value a float), ``"cell"`` (M,),
+    ``"point"`` (N,), ``"tensor"`` ((2, 2) or (M, 2, 2)) or ``"callable"``.
     """
 
     kind: str
@@ -189,7 +189,7 @@ def parse_coefficient(value, mesh, *, name="coefficient", sign="positive", tenso
     n, m = mesh.n_points, mesh.n_triangles
     if a.ndim == 0 and on is None:
         return parse_coefficient(float(a), mesh, name=name, sign=sign, tensor=tensor)
-    if a.ndim in (2, 3) and a.shape[-2:] == (2, 2) and on in (None, "triangle"):
+    if a.ndim in (2, 3) and a.shape[-2:] == (2, 2) and on in (None, "cell"):
         if not tensor:
             raise InputError(f"{name} must be scalar here, got a tensor of shape {a.shape}")
         if a.ndim == 3 and a.shape[0] != m:
@@ -201,13 +201,13 @@ def parse_coefficient(value, mesh, *, name="coefficient", sign="positive", tenso
             f"{name} has shape {a.shape}; expected a number, one value per point ({n},), "
             f"one per triangle ({m},)" + (", or 2x2 tensors" if tensor else "")
         )
-    return _per_item(a, on, name, sign, n, "triangle", m)
+    return _per_item(a, on, name, sign, n, "cell", m)
 
 
 # how each kind of item is named in messages, and the helper that tags it
 _ITEM = {
-    "node": ("point", "points", "per_node"),
-    "triangle": ("triangle", "triangles", "per_triangle"),
+    "point": ("point", "points", "per_point"),
+    "cell": ("triangle", "triangles", "per_triangle"),
     "edge": ("edge", "edges", "per_edge"),
 }
 
@@ -219,10 +219,10 @@ def _per_item(a, on, name, sign, n_points, other, n_other):
         if len(a) == n_points == n_other:
             raise InputError(
                 f"{name} has {len(a)} values and there are {n_points} points and {n_other} "
-                f"{plural}: wrap it with kernels.per_node(...) or kernels.{_ITEM[other][2]}(...)"
+                f"{plural}: wrap it with hatkernels.per_point(...) or hatkernels.{_ITEM[other][2]}(...)"
             )
-        on = "node" if len(a) == n_points else other if len(a) == n_other else None
-    expected = n_points if on == "node" else n_other
+        on = "point" if len(a) == n_points else other if len(a) == n_other else None
+    expected = n_points if on == "point" else n_other
     if on is None or len(a) != expected:
         raise InputError(
             f"{name} has {len(a)} values, but there are {n_points} points and {n_other} {plural}"
@@ -251,9 +251,9 @@ def at_quadrature(coef, mesh, degree):
     m = mesh.n_triangles
     if coef.kind == "constant":
         return np.full((m, len(lam)), coef.value)
-    if coef.kind == "triangle":
+    if coef.kind == "cell":
         return np.repeat(coef.value[:, None], len(lam), axis=1)
-    if coef.kind == "node":
+    if coef.kind == "point":
         return coef.value[mesh.triangles] @ lam.T
     if coef.kind != "callable":
         raise InputError(f"{coef.name} of kind {coef.kind} has no pointwise values here")
@@ -274,9 +274,9 @@ def triangle_means(coef, mesh, degree):
     """
     if coef.kind == "constant":
         return coef.value
-    if coef.kind == "triangle":
+    if coef.kind == "cell":
         return coef.value
-    if coef.kind == "node":
+    if coef.kind == "point":
         return coef.value[mesh.triangles].mean(axis=1)
     if coef.kind == "callable":
         _, w = triangle_rule(degree)
@@ -287,7 +287,7 @@ def triangle_means(coef, mesh, degree):
 def parse_edge_coefficient(value, mesh, n_edges, *, name, sign):
     """Check a boundary coefficient: a number, per point (N,), per edge (n_edges,) or callable.
 
-    Returns a :class:`Coefficient` whose kind is "constant", "node", "edge" or "callable".
+    Returns a :class:`Coefficient` whose kind is "constant", "point", "edge" or "callable".
     """
     if (
         value is None
@@ -299,7 +299,7 @@ def parse_edge_coefficient(value, mesh, n_edges, *, name, sign):
     on = None
     if isinstance(value, Field):
         on, value = value.on, value.values
-        if on == "triangle":
+        if on == "cell":
             raise InputError(f"{name} lives on points or edges, not on triangles")
     a = _as_real_array(value, name)
     n = mesh.n_points

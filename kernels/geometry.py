@@ -2,8 +2,8 @@
 
 import numpy as np
 
-from kernels._jit import geometry as _jit_geometry
-from kernels.errors import InputError, MeshError
+from hatkernels._jit import geometry as _jit_geometry
+from hatkernels.errors import InputError, MeshError
 
 __all__ = ["element_gradients"]
 
@@ -59,7 +59,7 @@ def element_gradients(points, triangles, *, plain=False):
     ----------
     points : array_like, shape (n_points, 2)
     triangles : array_like, shape (n_triangles, 3)
-        Counterclockwise triangles (as stored by :class:`kernels.Mesh`);
+        Counterclockwise triangles (as stored by :class:`hatkernels.Mesh`);
         for clockwise ones the area comes out negative.
     plain : bool
         Use the vectorised NumPy version instead of the numba kernel (they
@@ -78,12 +78,12 @@ def element_gradients(points, triangles, *, plain=False):
         Wrong shapes or dtypes, a point index out of range (naming the triangle).
     MeshError
         A triangle with zero area or a non-finite coordinate (naming it): its
-        gradients would be infinite or NaN.  (:class:`kernels.Mesh` refuses
+        gradients would be infinite or NaN.  (:class:`hatkernels.Mesh` refuses
         near-zero areas too; this check on raw arrays refuses exact zeros.)
 
     Examples
     --------
-    >>> from kernels import element_gradients
+    >>> from hatkernels import element_gradients
     >>> area, g = element_gradients([[0., 0.], [1., 0.], [0., 1.]], [[0, 1, 2]])
     >>> area
     array([0.5])

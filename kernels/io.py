@@ -11,9 +11,9 @@ through :func:`output_directory` (a temporary directory next to the target,
 renamed into place), so that a failure or an interrupt never leaves a
 half-written file behind.
 
->>> import os, tempfile, numpy as np, kernels
+>>> import os, tempfile, numpy as np, hatkernels
 >>> d = tempfile.mkdtemp()
->>> m = kernels.mesh.rectangle(2, 2)
+>>> m = hatkernels.mesh.rectangle(2, 2)
 >>> path = write_solution(os.path.join(d, "s.npz"), m, {"u": np.arange(9.0)}, {"note": "demo"})
 >>> sol = read_solution(path)
 >>> sol.mesh.n_triangles, float(sol.point_data["u"][-1]), sol.metadata["note"]
@@ -35,8 +35,8 @@ import zipfile
 
 import numpy as np
 
-from kernels.errors import InputError, MeshError
-from kernels.mesh.core import Mesh
+from hatkernels.errors import InputError, MeshError
+from hatkernels.mesh.core import Mesh
 
 __all__ = [
     "MARKER_FILES",

@@ -47,9 +47,9 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator, aslinearoperator
 
-from kernels._jit import sparse as _k
-from kernels.errors import InputError
-from kernels.sparse import as_csr, as_vector
+from hatkernels._jit import sparse as _k
+from hatkernels.errors import InputError
+from hatkernels.sparse import as_csr, as_vector
 
 __all__ = ["cg", "cg_with_history", "CGResult", "BREAKDOWN_MATRIX", "BREAKDOWN_PRECONDITIONER"]
 
@@ -112,7 +112,7 @@ class _CSRProduct:
 class _InPlaceProduct:
     """Products with an operator that writes into a given array (``matvec_into(x, out)``).
 
-    The matrix-free :class:`kernels.StiffnessOperator` does; CG then
+    The matrix-free :class:`hatkernels.StiffnessOperator` does; CG then
     allocates nothing per iteration.
     """
 
@@ -369,7 +369,7 @@ def cg(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None, callback=Non
     --------
     >>> import numpy as np
     >>> from pyamg.gallery import poisson
-    >>> from kernels.krylov import cg
+    >>> from hatkernels.krylov import cg
     >>> A = poisson((10,), format="csr")
     >>> x, info = cg(A, np.ones(10), rtol=1e-10)
     >>> info, bool(np.linalg.norm(A @ x - 1.0) <= 1e-10 * np.sqrt(10))

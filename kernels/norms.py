@@ -1,7 +1,7 @@
 """Error norms against exact solutions, and convergence studies over refinements.
 
 All integrals use a triangle rule (degree 5 by default, see
-:mod:`kernels.quadrature`), evaluated in chunks of triangles so that memory
+:mod:`hatkernels.quadrature`), evaluated in chunks of triangles so that memory
 stays bounded on large meshes.
 """
 
@@ -11,11 +11,11 @@ import dataclasses
 
 import numpy as np
 
-from kernels.coefficients import parse_coefficient
-from kernels.errors import InputError
-from kernels.geometry import element_gradients
-from kernels.mesh.core import Mesh
-from kernels.quadrature import triangle_rule
+from hatkernels.coefficients import parse_coefficient
+from hatkernels.errors import InputError
+from hatkernels.geometry import element_gradients
+from hatkernels.mesh.core import Mesh
+from hatkernels.quadrature import triangle_rule
 
 __all__ = [
     "ConvergenceStudy",
@@ -31,7 +31,7 @@ _CHUNK = 1 << 17
 
 def _nodal(mesh, u):
     if not isinstance(mesh, Mesh):
-        raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
+        raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
     u = np.asarray(u)
     if u.shape != (mesh.n_points,) or u.dtype.kind not in "fiu":
         raise InputError(
@@ -105,10 +105,10 @@ def l2_error(mesh, u, exact, *, quadrature=5):
 
     ``exact(x, y)`` takes and returns arrays.
 
-    >>> import numpy as np, kernels
-    >>> m = kernels.mesh.rectangle(4, 4)
+    >>> import numpy as np, hatkernels
+    >>> m = hatkernels.mesh.rectangle(4, 4)
     >>> f = lambda x, y: 1 + 2 * x - y
-    >>> bool(kernels.norms.l2_error(m, f(*m.points.T), f) < 1e-15)     # linear: exact
+    >>> bool(hatkernels.norms.l2_error(m, f(*m.points.T), f) < 1e-15)     # linear: exact
     True
     """
     u = _nodal(mesh, u)
@@ -150,9 +150,9 @@ def _gradient_error_sq(mesh, u, grad_exact, quadrature, coef=None):
 def _coefficient_at(coef, mesh, sl, x, y, lam):
     if coef.kind == "constant":
         return coef.value
-    if coef.kind == "triangle":
+    if coef.kind == "cell":
         return coef.value[sl][:, None]
-    if coef.kind == "node":
+    if coef.kind == "point":
         return coef.value[mesh.triangles[sl]] @ lam.T
     owners = np.repeat(np.arange(sl.start, sl.stop), x.shape[1])
     return coef.evaluate(x.ravel(), y.ravel(), owners).reshape(x.shape)

@@ -1,7 +1,7 @@
 """Matrix-free stiffness operator: ``A @ x`` without a stored matrix.
 
 Three variants, all race-free and giving the same bits on any thread count
-(see :mod:`kernels._jit.operators`):
+(see :mod:`hatkernels._jit.operators`):
 
 ``geometry``
     recomputes each triangle's geometry from the coordinates at every
@@ -29,14 +29,14 @@ import warnings
 import numpy as np
 from scipy.sparse.linalg import LinearOperator
 
-from kernels._jit import assembly as _jit_assembly
-from kernels._jit import operators as _jit_ops
-from kernels._sets import index_union
-from kernels.assembly.csr import kernel_coefficient
-from kernels.coefficients import parse_coefficient
-from kernels.errors import InputError
-from kernels.mesh.core import Mesh
-from kernels.mesh.core_index import index_dtype
+from hatkernels._jit import assembly as _jit_assembly
+from hatkernels._jit import operators as _jit_ops
+from hatkernels._sets import index_union
+from hatkernels.assembly.csr import kernel_coefficient
+from hatkernels.coefficients import parse_coefficient
+from hatkernels.errors import InputError
+from hatkernels.mesh.core import Mesh
+from hatkernels.mesh.core_index import index_dtype
 
 __all__ = ["StiffnessOperator", "VARIANTS", "DEFAULT_VARIANT"]
 
@@ -89,7 +89,7 @@ class StiffnessOperator(LinearOperator):
     Parameters
     ----------
     mesh : Mesh
-    coefficient : any kind accepted by :func:`kernels.assemble_stiffness`
+    coefficient : any kind accepted by :func:`hatkernels.assemble_stiffness`
     variant : {"geometry", "factors", "edges"}
     dirichlet : array of point indices, optional
         With it, the operator is the symmetrically eliminated matrix: identity
@@ -102,11 +102,11 @@ class StiffnessOperator(LinearOperator):
 
     Examples
     --------
-    >>> import numpy as np, kernels
-    >>> m = kernels.mesh.rectangle(16, 16)
-    >>> A = kernels.StiffnessOperator(m)
+    >>> import numpy as np, hatkernels
+    >>> m = hatkernels.mesh.rectangle(16, 16)
+    >>> A = hatkernels.StiffnessOperator(m)
     >>> x = np.random.default_rng(0).random(m.n_points)
-    >>> bool(np.allclose(A @ x, kernels.assemble_stiffness(m) @ x))
+    >>> bool(np.allclose(A @ x, hatkernels.assemble_stiffness(m) @ x))
     True
     """
 
@@ -121,7 +121,7 @@ class StiffnessOperator(LinearOperator):
         block_size=DEFAULT_BLOCK,
     ):
         if not isinstance(mesh, Mesh):
-            raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
+            raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
         if variant not in VARIANTS:
             raise InputError(f"unknown matrix-free variant {variant!r}; choose one of {VARIANTS}")
         if not isinstance(block_size, int) or block_size < 1:

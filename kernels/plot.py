@@ -12,8 +12,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from kernels.errors import InputError
-from kernels.io import atomic_file
+from hatkernels.errors import InputError
+from hatkernels.io import atomic_file
 
 __all__ = [
     "DPI",

@@ -15,20 +15,20 @@ import time
 import numba
 import numpy as np
 
-from kernels._sets import index_union
-from kernels.assembly import (
+from hatkernels._sets import index_union
+from hatkernels.assembly import (
     StiffnessAssembler,
     assemble_boundary_load,
     assemble_boundary_mass,
     assemble_load,
 )
-from kernels.assembly.boundary_terms import check_edges
-from kernels.boundary import apply_dirichlet
-from kernels.coefficients import parse_coefficient
-from kernels.errors import InputError
-from kernels.mesh.core import Mesh
-from kernels.operators import DEFAULT_VARIANT, StiffnessOperator
-from kernels.solve import solve
+from hatkernels.assembly.boundary_terms import check_edges
+from hatkernels.boundary import apply_dirichlet
+from hatkernels.coefficients import parse_coefficient
+from hatkernels.errors import InputError
+from hatkernels.mesh.core import Mesh
+from hatkernels.operators import DEFAULT_VARIANT, StiffnessOperator
+from hatkernels.solve import solve
 
 __all__ = ["PoissonSolution", "solve_poisson"]
 
@@ -73,8 +73,8 @@ def _dirichlet_nodes(mesh, where):
     """Points named by ``where``: "boundary", point indices (k,) or edges (k, 2)."""
     if isinstance(where, str):
         if where != "boundary":
-            raise InputError(f"dirichlet_on must be 'boundary', nodes or edges, got {where!r}")
-        return mesh.boundary_nodes().astype(np.int64)
+            raise InputError(f"dirichlet_on must be 'boundary', point indices or edges, got {where!r}")
+        return mesh.boundary_points().astype(np.int64)
     w = np.asarray(where)
     if w.ndim == 2:
         return index_union(mesh.n_points, check_edges(mesh, w).ravel())
@@ -150,7 +150,7 @@ def solve_poisson(
     ----------
     mesh : Mesh
     f : number, array or callable
-        The source (see :mod:`kernels.coefficients`).
+        The source (see :mod:`hatkernels.coefficients`).
     dirichlet : number, (n_points,) array or callable ``g(x, y)``
         The prescribed value on the Dirichlet points.
     dirichlet_on : "boundary", point indices or (k, 2) edges, optional
@@ -165,18 +165,18 @@ def solve_poisson(
     robin : ``(r, s)`` or ``(edges, r, s)``
         ``kappa du/dn + r u = s`` with ``r >= 0``.
     preconditioner, rtol, atol, maxiter, check, **preconditioner_options
-        As in :func:`kernels.solve.solve`.
+        As in :func:`hatkernels.solve.solve`.
     quadrature : int
         Degree of the rule for callable data.
     matrix_free : bool, optional
-        Solve with the matrix-free :class:`~kernels.StiffnessOperator`
+        Solve with the matrix-free :class:`~hatkernels.StiffnessOperator`
         instead of an assembled matrix.  Default: True with
         ``preconditioner="gmg"`` (which needs ``mesh`` made by
         :meth:`Mesh.refine`) when there is no reaction or Robin term, else
         False.  Matrix-free solves accept ``"gmg"``, ``"none"`` or an
         operator as preconditioner.
     variant : str, optional
-        The matrix-free variant (``kernels.operators.VARIANTS``), for the
+        The matrix-free variant (``hatkernels.operators.VARIANTS``), for the
         solve's operator and gmg's levels.
     progress : callable, optional
         ``progress(phase)`` is called as each phase starts ("boundary",
@@ -197,13 +197,13 @@ def solve_poisson(
 
     Examples
     --------
-    >>> import kernels
-    >>> sol = kernels.solve_poisson(kernels.mesh.rectangle(32, 32), 1.0)
+    >>> import hatkernels
+    >>> sol = hatkernels.solve_poisson(hatkernels.mesh.rectangle(32, 32), 1.0)
     >>> sol.converged, round(float(sol.u.max()), 4)   # the centre value, about 0.0737 in the limit
     (True, 0.0736)
     """
     if not isinstance(mesh, Mesh):
-        raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
+        raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
     note = progress or (lambda phase: None)
     t0 = time.perf_counter()
     timings = {}

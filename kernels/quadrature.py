@@ -22,7 +22,7 @@ import numbers
 
 import numpy as np
 
-from kernels.errors import InputError
+from hatkernels.errors import InputError
 
 __all__ = ["triangle_rule", "edge_rule", "TRIANGLE_DEGREES"]
 

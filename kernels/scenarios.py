@@ -32,11 +32,11 @@ import dataclasses
 
 import numpy as np
 
-from kernels.assembly import assemble_load, assemble_stiffness
-from kernels.coefficients import per_triangle
-from kernels.errors import InputError
-from kernels.mesh.generators import rectangle
-from kernels.poisson import solve_poisson
+from hatkernels.assembly import assemble_load, assemble_stiffness
+from hatkernels.coefficients import per_triangle
+from hatkernels.errors import InputError
+from hatkernels.mesh.generators import rectangle
+from hatkernels.poisson import solve_poisson
 
 __all__ = [
     "CAUTION",
@@ -270,9 +270,9 @@ def _coefficient(value):
 
 def solve_problem(problem, *, preconditioner="amg", rtol=1e-10, maxiter=None, progress=None,
                   monitor=None):
-    """Solve ``problem`` with :func:`kernels.poisson.solve_poisson` (``check=True``).
+    """Solve ``problem`` with :func:`hatkernels.poisson.solve_poisson` (``check=True``).
 
-    Raises :class:`~kernels.errors.ConvergenceError` when the solve does not
+    Raises :class:`~hatkernels.errors.ConvergenceError` when the solve does not
     reach ``rtol``.
     """
     return solve_poisson(
@@ -305,7 +305,7 @@ def power_balance(problem, u):
     b = assemble_load(mesh, _coefficient(problem.source))
     reaction = A @ u - b
     t = problem.thickness or 1.0
-    heat_out = -float(reaction[mesh.boundary_nodes()].sum()) * t
+    heat_out = -float(reaction[mesh.boundary_points()].sum()) * t
     power_in = float(b.sum()) * t
     imbalance = power_in - heat_out
     return {

@@ -1,11 +1,11 @@
 """One call from a sparse SPD system to a checked solution.
 
 :func:`solve` builds a preconditioner (by name, or takes one), runs
-preconditioned conjugate gradients (:func:`kernels.krylov.cg_with_history`)
+preconditioned conjugate gradients (:func:`hatkernels.krylov.cg_with_history`)
 and returns a :class:`SolveResult` with the solution, the residual history
 and the setup and solve times.  It never returns a wrong answer silently:
 ``converged`` is True only when the true residual met the tolerance; otherwise
-it warns, or raises :class:`~kernels.errors.ConvergenceError` with ``check=True``.
+it warns, or raises :class:`~hatkernels.errors.ConvergenceError` with ``check=True``.
 """
 
 import time
@@ -15,9 +15,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.sparse.linalg import LinearOperator
 
-from kernels.errors import ConvergenceError, InputError
-from kernels.krylov import cg_with_history
-from kernels.precond import make_preconditioner
+from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.krylov import cg_with_history
+from hatkernels.precond import make_preconditioner
 
 __all__ = ["solve", "SolveResult"]
 
@@ -42,7 +42,7 @@ class SolveResult:
         Description of the preconditioner (what it is and what it cost).
     info : int
         The CG code: 0 converged, >0 iterations without converging, <0 breakdown
-        (see :mod:`kernels.krylov`).
+        (see :mod:`hatkernels.krylov`).
     """
 
     x: np.ndarray
@@ -65,16 +65,16 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
         preconditioner instance; the named ones need the matrix.
     b : ndarray, shape (n,)
     preconditioner : str or LinearOperator
-        A name from :data:`kernels.precond.PRECONDITIONERS`, or an operator
+        A name from :data:`hatkernels.precond.PRECONDITIONERS`, or an operator
         approximating ``A^{-1}`` (symmetric positive definite).
     rtol, atol, maxiter, x0
-        As in :func:`kernels.krylov.cg` (``maxiter`` defaults to ``10 n``).
+        As in :func:`hatkernels.krylov.cg` (``maxiter`` defaults to ``10 n``).
     check : bool
         Raise :class:`ConvergenceError` instead of warning when not converged.
     monitor : callable, optional
         ``monitor(iteration, residual_norm)`` after every CG iteration.
     **preconditioner_options
-        Passed to :func:`kernels.precond.make_preconditioner`.
+        Passed to :func:`hatkernels.precond.make_preconditioner`.
 
     Returns
     -------
@@ -84,7 +84,7 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
     --------
     >>> import numpy as np
     >>> from pyamg.gallery import poisson
-    >>> from kernels.solve import solve
+    >>> from hatkernels.solve import solve
     >>> A = poisson((20, 20), format="csr")
     >>> result = solve(A, np.ones(400), preconditioner="ic0")
     >>> result.converged, bool(result.residuals[-1] <= 1e-8 * result.residuals[0])

@@ -1,6 +1,6 @@
 """Checked wrappers around the parallel sparse kernels, and input validation.
 
-The kernels in :mod:`kernels._jit.sparse` trust their arguments; the functions
+The kernels in :mod:`hatkernels._jit.sparse` trust their arguments; the functions
 here check them once (shape, dtype, index range, finite values) and name the
 offending entry when something is wrong.  The solvers and preconditioners use
 :func:`as_csr` and :func:`as_vector` so that every entry point validates the
@@ -14,8 +14,8 @@ All arithmetic is float64: float32, integer and boolean inputs are converted
 import numpy as np
 import scipy.sparse as sp
 
-from kernels._jit import sparse as _k
-from kernels.errors import InputError
+from hatkernels._jit import sparse as _k
+from hatkernels.errors import InputError
 
 __all__ = ["as_csr", "as_vector", "spmv", "dot", "csr_bytes"]
 
@@ -121,7 +121,7 @@ def spmv(A, x, out=None):
     --------
     >>> import numpy as np
     >>> from pyamg.gallery import poisson
-    >>> from kernels.sparse import spmv
+    >>> from hatkernels.sparse import spmv
     >>> A = poisson((3,), format="csr")
     >>> spmv(A, np.ones(3))
     array([1., 0., 1.])
@@ -142,7 +142,7 @@ def dot(x, y):
     """``x . y`` summed over fixed chunks: the same bits on any thread count.
 
     >>> import numpy as np
-    >>> from kernels.sparse import dot
+    >>> from hatkernels.sparse import dot
     >>> dot(np.arange(4.0), np.ones(4))
     6.0
     """

@@ -8,7 +8,7 @@ import pytest
 from hypothesis import HealthCheck, settings
 from hypothesis import strategies as st
 
-import kernels
+import hatkernels
 
 settings.register_profile(
     "ci",
@@ -35,7 +35,7 @@ def jittered_mesh(n, seed, jitter=0.3, shuffle=True):
         p = p[rng.permutation(len(p))]
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # a valid Delaunay mesh needs no repairs
-        return kernels.mesh.triangulate(p)
+        return hatkernels.mesh.triangulate(p)
 
 
 @st.composite
@@ -49,3 +49,13 @@ def meshes(draw, min_n=2, max_n=7):
 @pytest.fixture
 def random_mesh():
     return jittered_mesh(6, 1234)
+
+
+def pytest_sessionfinish(session, exitstatus):
+    """Fail the run if anything imported the source folder as ``kernels``: a second copy."""
+    import sys
+
+    if "kernels" in sys.modules and session.exitstatus == 0:
+        sys.stderr.write("\nthe library was imported a second time as 'kernels' "
+                         f"(from {sys.modules['kernels'].__file__}); import hatkernels\n")
+        session.exitstatus = 1

@@ -1,4 +1,4 @@
-"""Checks of kernels.distributed under MPI: run as ``mpiexec -n P python tests/mpi_checks.py``.
+"""Checks of hatkernels.distributed under MPI: run as ``mpiexec -n P python tests/mpi_checks.py``.
 
 tests/test_distributed.py runs this script with 2 and 3 ranks (with a
 timeout).  A failure on any rank aborts every rank (``MPI_Abort`` from the
@@ -55,17 +55,17 @@ def dense_preconditioners(Af, owner, P):
 
 
 def _meshes():
-    from kernels.mesh import disk, l_shape, rectangle
+    from hatkernels.mesh import disk, l_shape, rectangle
 
     return {"rectangle": rectangle(20, 14), "l_shape": l_shape(10), "disk": disk(9)}
 
 
 def _serial(mesh, f, **kw):
     """The project's serial solve, on one thread (the ranks share the cores)."""
-    import kernels
+    import hatkernels
 
-    with kernels.threads(1):
-        return kernels.solve_poisson(mesh, f, **kw)
+    with hatkernels.threads(1):
+        return hatkernels.solve_poisson(mesh, f, **kw)
 
 
 @check
@@ -73,8 +73,8 @@ def solution_equals_serial_and_scipy(comm):
     import numpy as np
     import scipy.sparse.linalg as spla
 
-    import kernels
-    from kernels.distributed import solve_poisson
+    import hatkernels
+    from hatkernels.distributed import solve_poisson
 
     for name, mesh in _meshes().items():
         x, y = mesh.points.T
@@ -96,9 +96,9 @@ def solution_equals_serial_and_scipy(comm):
             assert sol.stats["nnz"] == ser.stats["nnz"]
             # reference library: scipy (spsolve on the serial reduced system, direct)
             if not kw:
-                A = kernels.assemble_stiffness(mesh)
-                b = kernels.assemble_load(mesh, f)
-                system = kernels.apply_dirichlet(A, b, mesh.boundary_nodes())
+                A = hatkernels.assemble_stiffness(mesh)
+                b = hatkernels.assemble_load(mesh, f)
+                system = hatkernels.apply_dirichlet(A, b, mesh.boundary_points())
                 u = system.expand(spla.spsolve(system.A.tocsc(), system.b))
                 assert np.abs(sol.u - u).max() <= 1e-8 * np.abs(u).max(), name
 
@@ -108,17 +108,17 @@ def matrix_rows_equal_serial(comm):
     import numpy as np
     import scipy.sparse as sp
 
-    import kernels
-    from kernels.coefficients import parse_coefficient
-    from kernels.distributed import partition, subdomain
-    from kernels.distributed.assembly import (
+    import hatkernels
+    from hatkernels.coefficients import parse_coefficient
+    from hatkernels.distributed import partition, subdomain
+    from hatkernels.distributed.assembly import (
         assemble_local,
         reduce_local,
         rows_in_global,
     )
-    from kernels.distributed.halo import CommStats
-    from kernels.distributed.matrix import DistributedMatrix
-    from kernels.distributed.subdomain import local_coefficient
+    from hatkernels.distributed.halo import CommStats
+    from hatkernels.distributed.matrix import DistributedMatrix
+    from hatkernels.distributed.subdomain import local_coefficient
 
     rank, size = comm.Get_rank(), comm.Get_size()
     for name, mesh in _meshes().items():
@@ -129,7 +129,7 @@ def matrix_rows_equal_serial(comm):
                                      f=local_coefficient(load, sub))
         # the project's serial csr assembly (checked against the reference strategy and
         # the 5-point stencil in tests/test_assembly.py), owned rows: the same bits
-        A = kernels.assemble_stiffness(mesh, kappa).tocsr()
+        A = hatkernels.assemble_stiffness(mesh, kappa).tocsr()
         mine = rows_in_global(A_L[: sub.n_owned], sub.points, mesh.n_points)
         ref = sp.csr_matrix(A[sub.owned])
         ref.sort_indices()
@@ -137,12 +137,12 @@ def matrix_rows_equal_serial(comm):
         assert np.array_equal(mine.indices, ref.indices), name
         assert np.array_equal(mine.data, ref.data), name
         # the reduced distributed matrix (what the products use) against apply_dirichlet
-        fixed = mesh.boundary_nodes()
+        fixed = mesh.boundary_points()
         loc = sub.local_numbers(fixed, mesh.n_points)
         local = reduce_local(sub, A_L, b_L, loc[loc >= 0], 0.0)
         D = DistributedMatrix(local.A, local.pattern, comm, CommStats())
         rows = sp.hstack([D.A_oo, D.A_og], format="csr")
-        system = kernels.apply_dirichlet(A, kernels.assemble_load(mesh, 1.0), fixed)
+        system = hatkernels.apply_dirichlet(A, hatkernels.assemble_load(mesh, 1.0), fixed)
         position = np.full(mesh.n_points, -1)
         position[system.free] = np.arange(len(system.free))
         got = rows_in_global(rows, position[local.free_points], len(system.free))
@@ -156,13 +156,13 @@ def matrix_rows_equal_serial(comm):
 def halo_round_trip_and_product(comm):
     import numpy as np
 
-    import kernels
-    from kernels.distributed import partition, subdomain
-    from kernels.distributed.halo import Halo, HaloPattern
-    from kernels.distributed.matrix import DistributedMatrix
+    import hatkernels
+    from hatkernels.distributed import partition, subdomain
+    from hatkernels.distributed.halo import Halo, HaloPattern
+    from hatkernels.distributed.matrix import DistributedMatrix
 
     rank, size = comm.Get_rank(), comm.Get_size()
-    mesh = kernels.mesh.disk(10)
+    mesh = hatkernels.mesh.disk(10)
     sub = subdomain(partition(mesh, size, method="hilbert"), rank)
     halo = Halo(HaloPattern.from_subdomain(sub), comm)
     rng = np.random.default_rng(7)
@@ -176,7 +176,7 @@ def halo_round_trip_and_product(comm):
     assert np.array_equal(halo.exchange_indices(sub.owned.astype(np.int64)),
                           sub.points[sub.n_owned:])
     # the distributed product against the serial one (same rows, different column order)
-    A = kernels.assemble_stiffness(mesh)
+    A = hatkernels.assemble_stiffness(mesh)
     local = A[sub.points[: sub.n_owned]][:, sub.points]
     D = DistributedMatrix(local.tocsr(), HaloPattern.from_subdomain(sub), comm)
     p = np.zeros(len(sub.points))
@@ -191,7 +191,7 @@ def halo_round_trip_and_product(comm):
 def one_rank_equals_serial_bit_for_bit(comm):
     import numpy as np
 
-    from kernels.distributed import solve_poisson
+    from hatkernels.distributed import solve_poisson
 
     me = comm.Split(color=0 if comm.Get_rank() == 0 else 1, key=comm.Get_rank())
     try:
@@ -211,8 +211,8 @@ def one_rank_equals_serial_bit_for_bit(comm):
 def two_level_stays_bounded(comm):
     import numpy as np
 
-    from kernels.distributed import solve_poisson
-    from kernels.mesh import rectangle
+    from hatkernels.distributed import solve_poisson
+    from hatkernels.mesh import rectangle
 
     # Dirichlet on the left edge only: with 3 parts two subdomains do not touch it.
     mesh = rectangle(32, 32)
@@ -249,19 +249,19 @@ def two_level_stays_bounded(comm):
 def two_level_apply_equals_dense(comm):
     import numpy as np
 
-    import kernels
-    from kernels.distributed import partition
-    from kernels.distributed.halo import CommStats
-    from kernels.distributed.precond import make_distributed_preconditioner
+    import hatkernels
+    from hatkernels.distributed import partition
+    from hatkernels.distributed.halo import CommStats
+    from hatkernels.distributed.precond import make_distributed_preconditioner
 
     size = comm.Get_size()
-    mesh = kernels.mesh.l_shape(6)
+    mesh = hatkernels.mesh.l_shape(6)
     split = partition(mesh, size)
-    fixed = mesh.boundary_nodes()
+    fixed = mesh.boundary_points()
     D, local = _distributed_system(comm, mesh)
     M = make_distributed_preconditioner(D, "direct", "constants", comm, CommStats())
-    system = kernels.apply_dirichlet(kernels.assemble_stiffness(mesh),
-                                     kernels.assemble_load(mesh, 1.0), fixed)
+    system = hatkernels.apply_dirichlet(hatkernels.assemble_stiffness(mesh),
+                                     hatkernels.assemble_load(mesh, 1.0), fixed)
     rng = np.random.default_rng(3)
     r_all = rng.standard_normal(len(system.free))
     position = np.full(mesh.n_points, -1)
@@ -279,9 +279,9 @@ def two_level_apply_equals_dense(comm):
 def errors_reach_every_rank(comm):
     import numpy as np
 
-    from kernels.distributed import solve_poisson
-    from kernels.errors import InputError
-    from kernels.mesh import rectangle
+    from hatkernels.distributed import solve_poisson
+    from hatkernels.errors import InputError
+    from hatkernels.mesh import rectangle
 
     mesh = rectangle(12, 12)
 
@@ -313,8 +313,8 @@ def errors_reach_every_rank(comm):
 def gather_modes(comm):
     import numpy as np
 
-    from kernels.distributed import solve_poisson
-    from kernels.mesh import disk
+    from hatkernels.distributed import solve_poisson
+    from hatkernels.mesh import disk
 
     mesh = disk(6)
     full = solve_poisson(mesh, 1.0, comm=comm, gather=True)
@@ -334,34 +334,34 @@ def gather_modes(comm):
 
 def _distributed_system(comm, mesh):
     """The reduced Poisson system (whole boundary fixed) as a DistributedMatrix and its b."""
-    from kernels.distributed import partition, subdomain
-    from kernels.distributed.assembly import assemble_local, reduce_local
-    from kernels.distributed.halo import CommStats
-    from kernels.distributed.matrix import DistributedMatrix
-    from kernels.distributed.subdomain import parse_local
+    from hatkernels.distributed import partition, subdomain
+    from hatkernels.distributed.assembly import assemble_local, reduce_local
+    from hatkernels.distributed.halo import CommStats
+    from hatkernels.distributed.matrix import DistributedMatrix
+    from hatkernels.distributed.subdomain import parse_local
 
     sub = subdomain(partition(mesh, comm.Get_size()), comm.Get_rank())
     A_L, b_L, _ = assemble_local(sub, kappa=parse_local(None, mesh, sub, name="k", tensor=True),
                                  f=parse_local(1.0, mesh, sub, name="f", sign="any"))
-    loc = sub.local_numbers(mesh.boundary_nodes(), mesh.n_points)
+    loc = sub.local_numbers(mesh.boundary_points(), mesh.n_points)
     local = reduce_local(sub, A_L, b_L, loc[loc >= 0], 0.0)
     return DistributedMatrix(local.A, local.pattern, comm, CommStats()), local
 
 
 @check
 def cg_conventions(comm):
-    import kernels
+    import hatkernels
 
-    with kernels.threads(1):  # the ranks share the cores (solve_poisson does this itself)
+    with hatkernels.threads(1):  # the ranks share the cores (solve_poisson does this itself)
         _cg_conventions(comm)
 
 
 def _cg_conventions(comm):
     import numpy as np
 
-    from kernels.distributed.cg import cg
-    from kernels.errors import InputError
-    from kernels.mesh import rectangle
+    from hatkernels.distributed.cg import cg
+    from hatkernels.errors import InputError
+    from hatkernels.mesh import rectangle
 
     # scipy's conventions (reference library: scipy, scipy.sparse.linalg.cg documentation)
     D, local = _distributed_system(comm, rectangle(10, 10))
@@ -393,8 +393,8 @@ def _cg_conventions(comm):
 def rank_without_unknowns(comm):
     import numpy as np
 
-    from kernels.distributed import partition_from_owner, solve_poisson
-    from kernels.mesh import rectangle
+    from hatkernels.distributed import partition_from_owner, solve_poisson
+    from hatkernels.mesh import rectangle
 
     # the last rank owns only Dirichlet points: an empty block, a zero coarse function
     size = comm.Get_size()
@@ -443,10 +443,10 @@ class _BufferCallsOnly:
 
 @check
 def hot_path_uses_preallocated_buffers_and_no_pickling(comm):
-    import kernels
-    from kernels.distributed.cg import cg
-    from kernels.distributed.precond import make_distributed_preconditioner
-    from kernels.mesh import rectangle
+    import hatkernels
+    from hatkernels.distributed.cg import cg
+    from hatkernels.distributed.precond import make_distributed_preconditioner
+    from hatkernels.mesh import rectangle
 
     for coarse in (None, "constants"):
         proxy = _BufferCallsOnly(comm)
@@ -454,7 +454,7 @@ def hot_path_uses_preallocated_buffers_and_no_pickling(comm):
         M = make_distributed_preconditioner(D, "amg", coarse, proxy, D.stats)
         proxy.calls.clear()
         exchanges = D.stats.halo_exchanges
-        with kernels.threads(1):  # the ranks share the cores (solve_poisson does this itself)
+        with hatkernels.threads(1):  # the ranks share the cores (solve_poisson does this itself)
             result = cg(D, local.b, rtol=1e-10, M=M)
         assert result.info == 0, result.message
         exchanges = D.stats.halo_exchanges - exchanges
@@ -479,10 +479,10 @@ def threads_per_rank_and_monitor(comm):
     import numpy as np
     from mpi4py import MPI
 
-    from kernels.distributed import solve_poisson
-    from kernels.distributed.launch import cores_per_node
-    from kernels.errors import InputError
-    from kernels.mesh import disk
+    from hatkernels.distributed import solve_poisson
+    from hatkernels.distributed.launch import cores_per_node
+    from hatkernels.errors import InputError
+    from hatkernels.mesh import disk
 
     mesh = disk(8)
     before = numba.get_num_threads()

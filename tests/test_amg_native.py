@@ -15,21 +15,21 @@ from hypothesis import strategies as st
 from pyamg.classical.split import RS
 from pyamg.strength import classical_strength_of_connection
 
-import kernels
-from kernels import threads
-from kernels._jit import amg as _a
-from kernels.errors import InputError
-from kernels.krylov import cg_with_history
-from kernels.mesh import rectangle
-from kernels.precond import make_preconditioner
-from kernels.precond.amg import ClassicalAMG, ClassicalHierarchy
+import hatkernels
+from hatkernels import threads
+from hatkernels._jit import amg as _a
+from hatkernels.errors import InputError
+from hatkernels.krylov import cg_with_history
+from hatkernels.mesh import rectangle
+from hatkernels.precond import make_preconditioner
+from hatkernels.precond.amg import ClassicalAMG, ClassicalHierarchy
 
 THETA = 0.25
 
 
 def reduced_stiffness(mesh):
-    A = kernels.assemble_stiffness(mesh)
-    return kernels.apply_dirichlet(A, np.ones(mesh.n_points), mesh.boundary_nodes()).A
+    A = hatkernels.assemble_stiffness(mesh)
+    return hatkernels.apply_dirichlet(A, np.ones(mesh.n_points), mesh.boundary_points()).A
 
 
 def strong_mask(A, theta=THETA):
@@ -175,7 +175,7 @@ def test_same_bits_on_one_and_two_threads():
 def test_64_bit_indices_give_the_same_hierarchy(monkeypatch):
     # forced on a small matrix: 64-bit indices everywhere, and the numba splitting
     # instead of PyAMG's (which takes 32-bit indices only)
-    import kernels.precond.amg as amg_module
+    import hatkernels.precond.amg as amg_module
 
     A = reduced_stiffness(rectangle(30, 30))
     narrow = ClassicalHierarchy(A, max_coarse=10)
@@ -202,8 +202,8 @@ def test_iterations_do_not_grow_with_the_mesh():
     counts = []
     for n in (32, 64, 128):
         m = rectangle(n, n)
-        s = kernels.apply_dirichlet(kernels.assemble_stiffness(m), kernels.assemble_load(m, 1.0),
-                                    m.boundary_nodes())
+        s = hatkernels.apply_dirichlet(hatkernels.assemble_stiffness(m), hatkernels.assemble_load(m, 1.0),
+                                    m.boundary_points())
         M = make_preconditioner(s.A, "amg-native", max_coarse=50)
         res = cg_with_history(s.A, s.b, rtol=1e-8, M=M)
         assert res.info == 0
@@ -216,7 +216,7 @@ def test_stalled_coarsening_still_preconditions():
     # A mass matrix has no negative couplings: nothing is strong, nothing coarsens, and
     # the single level is solved by Chebyshev smoothing (above the dense limit)
     m = rectangle(40, 40)
-    Mass = kernels.assemble_mass(m)
+    Mass = hatkernels.assemble_mass(m)
     M = make_preconditioner(Mass, "amg-native")
     assert len(M.ml.levels) == 1 and "1 levels" in repr(M)
     b = np.ones(m.n_points)
@@ -252,7 +252,7 @@ def test_singular_semidefinite_system_is_preconditioned():
     # compatible right-hand side (zero mean) has solutions, and CG on the range converges.
     # The coarsest level is singular too and gets a pseudo-inverse, as in PyAMG's pinv.
     m = rectangle(24, 24)
-    A = sp.csr_array(kernels.assemble_stiffness(m))
+    A = sp.csr_array(hatkernels.assemble_stiffness(m))
     b = np.cos(3 * m.points[:, 0]) * m.points[:, 1]
     b -= b.mean()
     M = make_preconditioner(A, "amg-native", max_coarse=30)

@@ -11,18 +11,18 @@ import time
 import numpy as np
 import pytest
 
-import kernels
-from kernels import cli
-from kernels.assembly import assemble_load, assemble_stiffness
-from kernels.mesh import l_shape, rectangle
-from kernels.poisson import solve_poisson
+import hatkernels
+from hatkernels import cli
+from hatkernels.assembly import assemble_load, assemble_stiffness
+from hatkernels.mesh import l_shape, rectangle
+from hatkernels.poisson import solve_poisson
 
 SOLVE_FILES = {"solution.npz", "summary.json", "solution.png", "residuals.png", "solution.vtu"}
-FIGURE = (800, 560)  # kernels.plot.SIZE x DPI
+FIGURE = (800, 560)  # hatkernels.plot.SIZE x DPI
 
 
 def run(*args, cwd=None):
-    return subprocess.run([sys.executable, "-m", "kernels.cli", *map(str, args)],
+    return subprocess.run([sys.executable, "-m", "hatkernels.cli", *map(str, args)],
                           capture_output=True, text=True, cwd=cwd, timeout=900)
 
 
@@ -97,7 +97,7 @@ def test_summary_agrees_with_the_library(small):
     summary = json.loads((out / "summary.json").read_text())
     mesh = rectangle(48, 32, bounds=(0.0, 0.12, 0.0, 0.08))
     q = scenario_source(mesh)
-    direct = solve_poisson(mesh, kernels.per_triangle(q), dirichlet=25.0, coefficient=237.0,
+    direct = solve_poisson(mesh, hatkernels.per_triangle(q), dirichlet=25.0, coefficient=237.0,
                            preconditioner="amg", rtol=1e-10)
     with np.load(out / "solution.npz") as saved:
         assert np.array_equal(saved["points"], mesh.points)
@@ -125,7 +125,7 @@ def test_power_balance_of_the_scenario(small):
     # A u - b on the boundary rows) equals the 20 W put in (common practice, no source).
     _, out = small
     with np.load(out / "solution.npz") as saved:
-        mesh = kernels.Mesh(saved["points"], saved["triangles"])
+        mesh = hatkernels.Mesh(saved["points"], saved["triangles"])
         u, q = saved["u"], saved["source"]
     t = 0.002
     c = mesh.points[mesh.triangles].mean(axis=1)
@@ -133,9 +133,9 @@ def test_power_balance_of_the_scenario(small):
     assert float(q[cpu] @ mesh.areas()[cpu]) * t == pytest.approx(15.0, rel=1e-12)
     assert float(q @ mesh.areas()) * t == pytest.approx(20.0, rel=1e-12)
     A = assemble_stiffness(mesh, 237.0)
-    b = assemble_load(mesh, kernels.per_triangle(q))
+    b = assemble_load(mesh, hatkernels.per_triangle(q))
     reaction = A @ u - b
-    boundary = mesh.boundary_nodes()
+    boundary = mesh.boundary_points()
     heat_out = -reaction[boundary].sum() * t
     assert heat_out == pytest.approx(20.0, rel=1e-8)
     interior = np.setdiff1d(np.arange(mesh.n_points), boundary)
@@ -210,7 +210,7 @@ def test_mesh_file_npz_and_meshio_agree_with_the_library(tmp_path):
 def test_without_the_optional_extras(tmp_path):
     # matplotlib and meshio missing: the solve still runs and says what it did not write
     code = ("import sys; sys.modules['matplotlib'] = None; sys.modules['meshio'] = None;"
-            "from kernels.cli import main;"
+            "from hatkernels.cli import main;"
             f"sys.exit(main(['solve', '--cells', '24', '--quiet', '--out', {str(tmp_path / 'o')!r}]))")
     result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     assert result.returncode == 0, result.stderr
@@ -375,7 +375,7 @@ def test_info():
     result = run("info")
     assert result.returncode == 0, result.stderr
     for phrase in ("python", "numpy", "scipy", "numba", "pyamg", "matplotlib", "meshio",
-                   "numba threads", "threading layer", "numba cache", kernels.__version__):
+                   "numba threads", "threading layer", "numba cache", hatkernels.__version__):
         assert phrase in result.stdout, phrase
     record = json.loads(run("info", "--json").stdout)
     assert record["versions"]["numpy"] == np.__version__
@@ -455,7 +455,7 @@ def test_kernel_cache_state_counts_the_library_kernels():
 
 
 def test_iteration_report_throttles_and_names_the_residual():
-    from kernels.cli import IterationReport
+    from hatkernels.cli import IterationReport
 
     class Recorder:
         def __init__(self):

@@ -7,16 +7,16 @@ import scipy.sparse.linalg as spla
 from conftest import jittered_mesh, meshes
 from hypothesis import given
 
-import kernels
-from kernels import Mesh, apply_dirichlet, assemble_load, assemble_stiffness
-from kernels.mesh import rectangle
+import hatkernels
+from hatkernels import Mesh, apply_dirichlet, assemble_load, assemble_stiffness
+from hatkernels.mesh import rectangle
 
 
 @given(meshes())
 def test_reduction_equals_scipy_slicing(m):
     A = assemble_stiffness(m, np.linspace(1, 2, m.n_triangles))
     b = assemble_load(m, lambda x, y: np.sin(3 * x) + y)
-    nodes = m.boundary_nodes()
+    nodes = m.boundary_points()
     g = 1.0 + m.points[nodes, 0] ** 2
     s = apply_dirichlet(A, b, nodes, g)
     free = np.setdiff1d(np.arange(m.n_points), nodes)
@@ -37,7 +37,7 @@ def test_reduced_matrix_is_spd_and_linear_solutions_are_exact():
     m = jittered_mesh(9, 4)
     u = lambda x, y: 1 + 2 * x - 3 * y  # noqa: E731
     A = assemble_stiffness(m)
-    nodes = m.boundary_nodes()
+    nodes = m.boundary_points()
     s = apply_dirichlet(A, np.zeros(m.n_points), nodes, u(*m.points[nodes].T))
     assert np.linalg.eigvalsh(s.A.toarray()).min() > 0
     x = spla.spsolve(s.A.tocsc(), s.b)  # reference library: scipy
@@ -57,56 +57,56 @@ def test_inputs_are_not_modified_and_odd_inputs_work():
         shape=A.shape,
     ).tocsr()  # duplicates, not canonical
     b = np.ones(m.n_points)
-    nodes = np.r_[m.boundary_nodes(), m.boundary_nodes()[:3]]  # repeats with equal values
+    nodes = np.r_[m.boundary_points(), m.boundary_points()[:3]]  # repeats with equal values
     before = (A.data.copy(), b.copy(), nodes.copy(), A_dup.data.copy())
     s1 = apply_dirichlet(A, b, nodes, 2.0)
     s2 = apply_dirichlet(A_dup, b, nodes, 2.0)
     assert abs(s1.A - s2.A).max() < 1e-15 and s1.b == pytest.approx(s2.b)
     assert (A.data == before[0]).all() and (b == before[1]).all()
     assert (nodes == before[2]).all() and (A_dup.data == before[3]).all()
-    s3 = apply_dirichlet(A.astype(np.float32), b, m.boundary_nodes(), 2.0)
+    s3 = apply_dirichlet(A.astype(np.float32), b, m.boundary_points(), 2.0)
     assert s3.A.dtype == np.float64
 
 
 def test_isolated_points_are_left_out():
     base = rectangle(3, 3)
-    with pytest.warns(kernels.MeshWarning):
+    with pytest.warns(hatkernels.MeshWarning):
         m = Mesh(np.r_[base.points, [[9.0, 9.0]]], base.triangles)
     A = assemble_stiffness(m)
     b = assemble_load(m, 1.0)
-    s = apply_dirichlet(A, b, base.boundary_nodes())
+    s = apply_dirichlet(A, b, base.boundary_points())
     assert s.isolated.tolist() == [16]
     assert 16 not in s.free
     u = s.expand(spla.spsolve(s.A.tocsc(), s.b))
     assert u[16] == 0 and np.isfinite(u).all()
     b[16] = 1.0
     with pytest.raises(
-        kernels.InputError, match=r"row 16 of the matrix is empty but b\[16\] = 1.0"
+        hatkernels.InputError, match=r"row 16 of the matrix is empty but b\[16\] = 1.0"
     ):
-        apply_dirichlet(A, b, base.boundary_nodes())
+        apply_dirichlet(A, b, base.boundary_points())
 
 
 def test_bad_inputs_are_named():
     m = rectangle(3, 3)
     A = assemble_stiffness(m)
     b = np.zeros(m.n_points)
-    with pytest.raises(kernels.InputError, match=r"nodes\[1\] = 16 is outside 0..15"):
+    with pytest.raises(hatkernels.InputError, match=r"points\[1\] = 16 is outside 0..15"):
         apply_dirichlet(A, b, [0, 16])
-    with pytest.raises(kernels.InputError, match="node 3 is given two different Dirichlet values"):
+    with pytest.raises(hatkernels.InputError, match="node 3 is given two different Dirichlet values"):
         apply_dirichlet(A, b, [3, 3], [1.0, 2.0])
-    with pytest.raises(kernels.InputError, match="Dirichlet value nan at node 5"):
+    with pytest.raises(hatkernels.InputError, match="Dirichlet value nan at node 5"):
         apply_dirichlet(A, b, [5], [np.nan])
-    with pytest.raises(kernels.InputError, match="got 2 Dirichlet values for 3 nodes"):
+    with pytest.raises(hatkernels.InputError, match="got 2 Dirichlet values for 3 points"):
         apply_dirichlet(A, b, [0, 1, 2], [1.0, 2.0])
-    with pytest.raises(kernels.InputError, match=r"b must have shape \(16,\)"):
+    with pytest.raises(hatkernels.InputError, match=r"b must have shape \(16,\)"):
         apply_dirichlet(A, b[:3], [0])
-    with pytest.raises(kernels.InputError, match=r"b\[2\] = inf"):
+    with pytest.raises(hatkernels.InputError, match=r"b\[2\] = inf"):
         apply_dirichlet(A, np.r_[0, 0, np.inf, np.zeros(13)], [0])
-    with pytest.raises(kernels.InputError, match="must be square"):
+    with pytest.raises(hatkernels.InputError, match="must be square"):
         apply_dirichlet(A[:3], b, [0])
-    with pytest.raises(kernels.InputError, match="scipy sparse matrix"):
+    with pytest.raises(hatkernels.InputError, match="scipy sparse matrix"):
         apply_dirichlet(A.toarray(), b, [0])
     N = A.copy()
     N[5, 5] = -1.0
-    with pytest.raises(kernels.InputError, match="row 5 has diagonal -1.0 <= 0"):
+    with pytest.raises(hatkernels.InputError, match="row 5 has diagonal -1.0 <= 0"):
         apply_dirichlet(N, b, [0])

@@ -1,4 +1,4 @@
-"""kernels.distributed: the pure parts in this process, the MPI parts through mpiexec.
+"""hatkernels.distributed: the pure parts in this process, the MPI parts through mpiexec.
 
 Partitioning, subdomain extraction, local assembly, halo patterns and the
 coarse space are plain NumPy and are checked here against the whole-mesh
@@ -24,24 +24,24 @@ import scipy.linalg as sl
 import scipy.sparse as sp
 from mpi_checks import dense_preconditioners
 
-import kernels
-from kernels import io as kio
-from kernels.coefficients import parse_coefficient
-from kernels.distributed import (
+import hatkernels
+from hatkernels import io as kio
+from hatkernels.coefficients import parse_coefficient
+from hatkernels.distributed import (
     HaloPattern,
     partition,
     partition_from_owner,
     ranks_from_environment,
     subdomain,
 )
-from kernels.distributed.assembly import assemble_local, reduce_local, rows_in_global
-from kernels.distributed.cg import condition_estimate
-from kernels.distributed.launch import rank_from_environment
-from kernels.distributed.matrix import split_columns
-from kernels.distributed.precond import coarse_row, galerkin_coarse
-from kernels.distributed.subdomain import local_coefficient, parse_local
-from kernels.errors import InputError
-from kernels.mesh import disk, l_shape, rectangle
+from hatkernels.distributed.assembly import assemble_local, reduce_local, rows_in_global
+from hatkernels.distributed.cg import condition_estimate
+from hatkernels.distributed.launch import rank_from_environment
+from hatkernels.distributed.matrix import split_columns
+from hatkernels.distributed.precond import coarse_row, galerkin_coarse
+from hatkernels.distributed.subdomain import local_coefficient, parse_local
+from hatkernels.errors import InputError
+from hatkernels.mesh import disk, l_shape, rectangle
 
 HERE = Path(__file__).resolve().parent
 #: Seconds an mpiexec run may take before it is killed (cold numba caches included).
@@ -135,11 +135,11 @@ def test_owned_rows_equal_the_whole_mesh_rows_bit_for_bit(name):
     rng = np.random.default_rng(5)
     kappa = parse_coefficient(1 + rng.random(mesh.n_triangles), mesh, tensor=True)
     load = parse_coefficient(lambda x, y: np.cos(x) * y, mesh, sign="any")
-    react = parse_coefficient(kernels.per_node(rng.random(mesh.n_points)), mesh,
+    react = parse_coefficient(hatkernels.per_point(rng.random(mesh.n_points)), mesh,
                               sign="nonnegative")
-    assembler = kernels.StiffnessAssembler(mesh)
+    assembler = hatkernels.StiffnessAssembler(mesh)
     A = assembler.assemble(kappa) + assembler.assemble_mass(react)
-    b = kernels.assemble_load(mesh, load)
+    b = hatkernels.assemble_load(mesh, load)
     p = partition(mesh, 3)
     for k in range(3):
         s = subdomain(p, k)
@@ -198,7 +198,7 @@ def test_halo_patterns_match_across_parts(method):
     for key in sent:
         assert np.array_equal(sent[key], expected[key]), key
     fixed = np.zeros(mesh.n_points, dtype=bool)
-    fixed[mesh.boundary_nodes()] = True
+    fixed[mesh.boundary_points()] = True
     restricted = [pat.restrict(~fixed[s.points]) for pat, s in zip(pats, subs, strict=True)]
     ids = [s.points[~fixed[s.points]] for s in subs]
     sent, expected = _global_messages(p, restricted, subs, ids)
@@ -212,10 +212,10 @@ def test_reduced_rows_rebuild_the_serial_reduced_system():
     mesh = rectangle(12, 9)
     kappa = parse_coefficient(None, mesh, tensor=True)
     load = parse_coefficient(1.0, mesh, sign="any")
-    A = kernels.assemble_stiffness(mesh)
+    A = hatkernels.assemble_stiffness(mesh)
     g = mesh.points[:, 0] + 1.0
-    fixed = mesh.boundary_nodes()
-    system = kernels.apply_dirichlet(A, kernels.assemble_load(mesh, 1.0), fixed, g[fixed])
+    fixed = mesh.boundary_points()
+    system = hatkernels.apply_dirichlet(A, hatkernels.assemble_load(mesh, 1.0), fixed, g[fixed])
     pos = np.full(mesh.n_points, -1)
     pos[system.free] = np.arange(len(system.free))
     p = partition(mesh, 3)
@@ -236,7 +236,7 @@ def test_reduced_rows_rebuild_the_serial_reduced_system():
         u = local.expand(np.zeros(local.n_unknowns))
         assert np.array_equal(u[local.owned_fixed], g[s.owned][local.owned_fixed])
     # every reduced row is somebody's owned row, and the lifting moved g to the right side
-    # (reference: kernels.apply_dirichlet on the whole system, tested in test_dirichlet.py)
+    # (reference: hatkernels.apply_dirichlet on the whole system, tested in test_dirichlet.py)
     order = np.concatenate([np.sort(pos[subdomain(p, k).owned][pos[subdomain(p, k).owned] >= 0])
                             for k in range(3)])
     whole = sp.vstack(rows, format="csr")
@@ -250,7 +250,7 @@ def test_local_coefficient_kinds_and_global_names_in_errors():
     per_tri = np.arange(mesh.n_triangles, dtype=float) + 1
     c = local_coefficient(parse_coefficient(per_tri, mesh), s)
     assert np.array_equal(c.value, per_tri[s.triangles])
-    c = local_coefficient(parse_coefficient(kernels.per_node(np.arange(49.0) + 1), mesh), s)
+    c = local_coefficient(parse_coefficient(hatkernels.per_point(np.arange(49.0) + 1), mesh), s)
     assert np.array_equal(c.value, np.arange(49.0)[s.points] + 1)
     K = np.tile(np.eye(2), (mesh.n_triangles, 1, 1)) * per_tri[:, None, None]
     c = local_coefficient(parse_coefficient(K, mesh, tensor=True), s)
@@ -267,13 +267,13 @@ def test_local_coefficient_kinds_and_global_names_in_errors():
 
 
 def _reduced(mesh, fixed):
-    A = kernels.assemble_stiffness(mesh)
-    return kernels.apply_dirichlet(A, kernels.assemble_load(mesh, 1.0), fixed)
+    A = hatkernels.assemble_stiffness(mesh)
+    return hatkernels.apply_dirichlet(A, hatkernels.assemble_load(mesh, 1.0), fixed)
 
 
 def test_galerkin_coarse_matrix_equals_dense_product():
     mesh = disk(8)
-    fixed = mesh.boundary_nodes()
+    fixed = mesh.boundary_points()
     system = _reduced(mesh, fixed)
     P = 4
     p = partition(mesh, P)
@@ -319,7 +319,7 @@ def test_two_level_condition_number_stays_bounded_block_jacobi_grows():
     system = _reduced(mesh, left)
     Af, free = system.A.toarray(), system.free
     one, two = [], []
-    with kernels.threads(1):  # numba's idle OpenMP threads slow OpenBLAS down six times
+    with hatkernels.threads(1):  # numba's idle OpenMP threads slow OpenBLAS down six times
         for P in (2, 4, 8, 16):
             one_level, two_level = dense_preconditioners(Af, partition(mesh, P).owner[free], P)
             for M, out in ((one_level, one), (two_level, two)):
@@ -368,9 +368,9 @@ def test_distributed_solve_takes_every_serial_argument():
     # no source); the extra ones are keyword-only
     import inspect
 
-    from kernels.distributed import solve_poisson as distributed
+    from hatkernels.distributed import solve_poisson as distributed
 
-    serial = inspect.signature(kernels.solve_poisson).parameters
+    serial = inspect.signature(hatkernels.solve_poisson).parameters
     ours = inspect.signature(distributed).parameters
     for name, param in serial.items():
         assert name in ours, f"distributed solve_poisson lacks {name!r}"
@@ -381,7 +381,7 @@ def test_distributed_solve_takes_every_serial_argument():
 
 
 def test_import_does_not_need_mpi4py():
-    code = ("import sys, kernels, kernels.distributed, kernels.cli; "
+    code = ("import sys, hatkernels, hatkernels.distributed, hatkernels.cli; "
             "print('mpi4py' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)
@@ -451,7 +451,7 @@ def test_mpi_checks_failure_aborts_every_rank(tmp_path):
 @needs_mpi
 def test_command_under_mpiexec_matches_the_serial_command(tmp_path):
     args = ["solve", "--cells", "48", "--quiet"]
-    code, out, err = run_mpi(2, [sys.executable, "-m", "kernels.cli", *args, "--out",
+    code, out, err = run_mpi(2, [sys.executable, "-m", "hatkernels.cli", *args, "--out",
                                  str(tmp_path / "mpi")], cwd=tmp_path)
     assert code == 0, f"{out}\n{err}"
     assert out.count("hatkernels solve:") == 1  # only rank 0 prints
@@ -459,7 +459,7 @@ def test_command_under_mpiexec_matches_the_serial_command(tmp_path):
         assert text in out, text
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        serial = subprocess.run([sys.executable, "-m", "kernels.cli", *args, "--out",
+        serial = subprocess.run([sys.executable, "-m", "hatkernels.cli", *args, "--out",
                                  str(tmp_path / "serial")], capture_output=True, text=True,
                                 cwd=tmp_path, timeout=MPI_TIMEOUT)
     assert serial.returncode == 0, serial.stderr
@@ -475,7 +475,7 @@ def test_command_under_mpiexec_matches_the_serial_command(tmp_path):
 
 @needs_mpi
 def test_command_under_mpiexec_bad_usage_exits_2_once(tmp_path):
-    code, out, err = run_mpi(2, [sys.executable, "-m", "kernels.cli", "solve", "--cells", "24",
+    code, out, err = run_mpi(2, [sys.executable, "-m", "hatkernels.cli", "solve", "--cells", "24",
                                  "--refine", "1", "--out", str(tmp_path / "x")], cwd=tmp_path)
     assert code == 2
     assert err.count("hatkernels: error:") == 1

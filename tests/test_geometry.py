@@ -5,8 +5,8 @@ import pytest
 from conftest import meshes
 from hypothesis import given
 
-import kernels
-from kernels import element_gradients
+import hatkernels
+from hatkernels import element_gradients
 
 
 @given(meshes())
@@ -40,9 +40,9 @@ def test_unit_right_triangle():
 
 
 def test_bad_arrays_are_refused():
-    with pytest.raises(kernels.InputError, match="shape"):
+    with pytest.raises(hatkernels.InputError, match="shape"):
         element_gradients(np.zeros((3, 3)), np.array([[0, 1, 2]]))
-    with pytest.raises(kernels.InputError, match="triangle 0 refers to a point outside"):
+    with pytest.raises(hatkernels.InputError, match="triangle 0 refers to a point outside"):
         element_gradients(np.zeros((3, 2)), np.array([[0, 1, 3]]))
 
 
@@ -50,11 +50,11 @@ def test_degenerate_or_non_finite_triangles_are_named():
     p = np.array([[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [2.0, 0.0], [1.0, 1.0]])
     t = np.array([[0, 1, 2], [0, 1, 3], [1, 4, 2]])  # triangle 1 is flat
     for plain in (False, True):
-        with pytest.raises(kernels.MeshError, match=r"triangle 1 has zero area \(points 0, 1, 3"):
+        with pytest.raises(hatkernels.MeshError, match=r"triangle 1 has zero area \(points 0, 1, 3"):
             element_gradients(p, t, plain=plain)
         bad = p.copy()
         bad[4, 1] = np.nan
-        with pytest.raises(kernels.MeshError, match=r"triangle 1 has point 4 with a non-finite"):
+        with pytest.raises(hatkernels.MeshError, match=r"triangle 1 has point 4 with a non-finite"):
             element_gradients(bad, t[[0, 2]], plain=plain)
         # a non-finite point in no triangle is never read
         assert np.isfinite(element_gradients(bad, t[:1], plain=plain)[1]).all()

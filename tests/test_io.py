@@ -6,9 +6,9 @@ import os
 import numpy as np
 import pytest
 
-import kernels
-from kernels import io as kio
-from kernels.errors import InputError, MeshError, MeshWarning
+import hatkernels
+from hatkernels import io as kio
+from hatkernels.errors import InputError, MeshError, MeshWarning
 
 
 def _listing(directory):
@@ -17,7 +17,7 @@ def _listing(directory):
 
 @pytest.fixture
 def mesh():
-    return kernels.mesh.l_shape(3)
+    return hatkernels.mesh.l_shape(3)
 
 
 # -- npz ------------------------------------------------------------------------

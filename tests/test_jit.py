@@ -5,7 +5,7 @@ import warnings
 import numba
 import pytest
 
-import kernels._jit as kjit
+import hatkernels._jit as kjit
 
 
 def test_falls_back_when_no_cache_location_exists(monkeypatch):

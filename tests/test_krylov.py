@@ -10,11 +10,11 @@ import scipy.sparse.linalg as sla
 from linear_cases import random_spd
 from pyamg.gallery import poisson
 
-from kernels import krylov
-from kernels._jit import threads
-from kernels.errors import InputError
-from kernels.krylov import BREAKDOWN_MATRIX, BREAKDOWN_PRECONDITIONER, cg, cg_with_history
-from kernels.precond import make_preconditioner
+from hatkernels import krylov
+from hatkernels._jit import threads
+from hatkernels.errors import InputError
+from hatkernels.krylov import BREAKDOWN_MATRIX, BREAKDOWN_PRECONDITIONER, cg, cg_with_history
+from hatkernels.precond import make_preconditioner
 
 
 def spd_case():

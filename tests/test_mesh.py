@@ -9,9 +9,9 @@ from conftest import jittered_mesh, meshes
 from hypothesis import given
 from hypothesis import strategies as st
 
-import kernels
-from kernels import Mesh, MeshError, MeshWarning
-from kernels.mesh import disk, hilbert_keys, l_shape, rectangle, triangulate
+import hatkernels
+from hatkernels import Mesh, MeshError, MeshWarning
+from hatkernels.mesh import disk, hilbert_keys, l_shape, rectangle, triangulate
 
 SQUARE = np.array([[0.0, 0.0], [1.0, 0.0], [1.0, 1.0], [0.0, 1.0]])
 TWO = np.array([[0, 1, 2], [0, 2, 3]])
@@ -123,7 +123,7 @@ def test_topology_of_random_meshes(m):
     # oriented with the domain on the left: Green's theorem gives the area
     assert shoelace_area(m.points, b) == pytest.approx(1.0, rel=1e-12)
     on_box = np.isclose(m.points, 0).any(axis=1) | np.isclose(m.points, 1).any(axis=1)
-    assert set(m.boundary_nodes().tolist()) == set(np.flatnonzero(on_box).tolist())
+    assert set(m.boundary_points().tolist()) == set(np.flatnonzero(on_box).tolist())
     # triangle_edges: the edge opposite vertex c joins the other two
     te = m.triangle_edges()
     for c in range(3):
@@ -147,13 +147,13 @@ def test_topology_with_a_hole():
 # -- generators --
 
 
-@pytest.mark.parametrize("diagonal", kernels.mesh.DIAGONALS)
-def test_rectangle(diagonal):
-    m = rectangle(5, 3, bounds=(1.0, 3.0, -1.0, 0.5), diagonal=diagonal)
+@pytest.mark.parametrize("split", hatkernels.mesh.SPLITS)
+def test_rectangle(split):
+    m = rectangle(5, 3, bounds=(1.0, 3.0, -1.0, 0.5), split=split)
     checked = Mesh(m.points, m.triangles)  # passes every check, no warnings
     assert (checked.triangles == m.triangles).all()
     assert m.areas().sum() == pytest.approx(3.0)
-    per_cell = 4 if diagonal == "crossed" else 2
+    per_cell = 4 if split == "quartered" else 2
     assert m.n_triangles == per_cell * 15
     assert len(m.boundary_edges()) == 16
     assert m.boundary_length() == pytest.approx(7.0)
@@ -162,12 +162,12 @@ def test_rectangle(diagonal):
 def test_rectangle_numbering_and_bad_arguments():
     m = rectangle(3, 2)
     assert m.points[2 * 4 + 1].tolist() == pytest.approx([1 / 3, 1.0])
-    with pytest.raises(kernels.InputError, match="nx must be at least 1"):
+    with pytest.raises(hatkernels.InputError, match="nx must be at least 1"):
         rectangle(0, 2)
-    with pytest.raises(kernels.InputError, match="x0 < x1"):
+    with pytest.raises(hatkernels.InputError, match="x0 < x1"):
         rectangle(2, 2, bounds=(1, 0, 0, 1))
-    with pytest.raises(kernels.InputError, match="unknown diagonal"):
-        rectangle(2, 2, diagonal="up")
+    with pytest.raises(hatkernels.InputError, match="unknown split"):
+        rectangle(2, 2, split="up")
 
 
 def test_l_shape():
@@ -186,7 +186,7 @@ def test_disk(n):
     m = disk(n, radius=r, center=(1.0, -1.0))
     Mesh(m.points, m.triangles)
     assert m.n_triangles == 6 * n * n and m.n_points == 3 * n * (n + 1) + 1
-    b = m.boundary_nodes()
+    b = m.boundary_points()
     assert np.allclose(np.linalg.norm(m.points[b] - [1.0, -1.0], axis=1), r, rtol=1e-14)
     # area of the inscribed regular 6n-gon: (1/2) k r^2 sin(2 pi / k) (elementary geometry)
     k = 6 * n
@@ -199,7 +199,7 @@ def test_triangulate_with_inside_and_errors():
     with pytest.warns(MeshWarning, match="9 of 49 points belong to no triangle"):
         m = triangulate(g, inside=lambda x, y: ~((x > 0) & (y < 0)))
     assert m.areas().sum() == pytest.approx(3.0)
-    with pytest.raises(kernels.InputError, match="cannot be triangulated"):
+    with pytest.raises(hatkernels.InputError, match="cannot be triangulated"):
         triangulate([[0, 0], [1, 1], [2, 2], [3, 3]])
     with pytest.raises(MeshError, match="non-finite"):
         triangulate([[0, 0], [1, 0], [np.inf, 1]])
@@ -244,7 +244,7 @@ def edge_spans(mesh):
     return np.abs(e[:, 0] - e[:, 1])
 
 
-@pytest.mark.parametrize("method", kernels.mesh.REORDERINGS)
+@pytest.mark.parametrize("method", hatkernels.mesh.REORDERINGS)
 def test_reorder_preserves_the_mesh(method):
     m = jittered_mesh(12, 7, shuffle=True)
     new, perm = m.reorder(method)

@@ -5,12 +5,12 @@ import pytest
 import scipy.sparse.linalg as spla
 from conftest import jittered_mesh
 
-import kernels
-from kernels import StiffnessOperator, make_preconditioner, norms, solve_poisson, threads
-from kernels._jit import multigrid as _mg
-from kernels.krylov import cg_with_history
-from kernels.mesh import rectangle
-from kernels.precond.gmg import GeometricMultigrid, coarsen_coefficient
+import hatkernels
+from hatkernels import StiffnessOperator, make_preconditioner, norms, solve_poisson, threads
+from hatkernels._jit import multigrid as _mg
+from hatkernels.krylov import cg_with_history
+from hatkernels.mesh import rectangle
+from hatkernels.precond.gmg import GeometricMultigrid, coarsen_coefficient
 
 
 def refined(mesh, k):
@@ -24,7 +24,7 @@ def test_prolongation_is_exact_for_linear_functions_and_restriction_is_its_trans
     # (common practice, no source); restriction is defined as P^T
     coarse = jittered_mesh(5, 4)
     fine = coarse.refine()
-    gm = GeometricMultigrid(StiffnessOperator(fine, dirichlet=fine.boundary_nodes()))
+    gm = GeometricMultigrid(StiffnessOperator(fine, dirichlet=fine.boundary_points()))
     cp, e, mid, first_low, by_high_ptr, by_high = gm.levels[0].transfer
     lin = lambda p: 1 + 2 * p[:, 0] - 3 * p[:, 1]  # noqa: E731
     xf = np.zeros(fine.n_points)
@@ -43,7 +43,7 @@ def test_prolongation_is_exact_for_linear_functions_and_restriction_is_its_trans
 @pytest.mark.parametrize("smoother", ["chebyshev", "jacobi"])
 def test_cycles_are_symmetric_positive_definite(cycle, smoother):
     m = refined(rectangle(3, 3), 3)
-    A = StiffnessOperator(m, np.linspace(1, 2, m.n_triangles), dirichlet=m.boundary_nodes())
+    A = StiffnessOperator(m, np.linspace(1, 2, m.n_triangles), dirichlet=m.boundary_points())
     M = make_preconditioner(A, "gmg", cycle=cycle, smoother=smoother, degree=2)
     rng = np.random.default_rng(5)
     for _ in range(3):
@@ -59,9 +59,9 @@ def test_iterations_are_mesh_independent():
     counts = []
     for levels in range(3, 7):
         m = refined(rectangle(4, 4), levels)
-        A = StiffnessOperator(m, dirichlet=m.boundary_nodes())
-        b = kernels.assemble_load(m, 1.0)
-        b[m.boundary_nodes()] = 0
+        A = StiffnessOperator(m, dirichlet=m.boundary_points())
+        b = hatkernels.assemble_load(m, 1.0)
+        b[m.boundary_points()] = 0
         res = cg_with_history(A, b, rtol=1e-8, M=make_preconditioner(A, "gmg"))
         assert res.converged
         counts.append(res.iterations)
@@ -81,12 +81,12 @@ def test_gmg_reaches_the_direct_solution_with_coefficients():
             preconditioner="gmg",
             dirichlet=lambda x, y: y,
         )
-        A = kernels.assemble_stiffness(m, coef)
-        s = kernels.apply_dirichlet(
+        A = hatkernels.assemble_stiffness(m, coef)
+        s = hatkernels.apply_dirichlet(
             A,
-            kernels.assemble_load(m, lambda x, y: np.sin(3 * x)),
-            m.boundary_nodes(),
-            m.points[m.boundary_nodes(), 1],
+            hatkernels.assemble_load(m, lambda x, y: np.sin(3 * x)),
+            m.boundary_points(),
+            m.points[m.boundary_points(), 1],
         )
         ref = s.expand(spla.spsolve(s.A.tocsc(), s.b))  # reference library: scipy
         assert sol.converged and sol.stats["matrix_free"]
@@ -96,8 +96,8 @@ def test_gmg_reaches_the_direct_solution_with_coefficients():
 
 def test_reduced_systems_and_assembled_path():
     m = refined(rectangle(4, 4), 3)
-    A = kernels.assemble_stiffness(m)
-    s = kernels.apply_dirichlet(A, kernels.assemble_load(m, 1.0), m.boundary_nodes())
+    A = hatkernels.assemble_stiffness(m)
+    s = hatkernels.apply_dirichlet(A, hatkernels.assemble_load(m, 1.0), m.boundary_points())
     M = make_preconditioner(s.A, "gmg", mesh=m)
     res = cg_with_history(s.A, s.b, rtol=1e-10, M=M)
     assert res.converged and res.iterations <= 14
@@ -141,30 +141,30 @@ def test_coefficients_go_down_the_levels():
     coarse = rectangle(2, 2)
     fine = coarse.refine()
     per_tri = np.arange(fine.n_triangles, dtype=float) + 1
-    coef = kernels.coefficients.parse_coefficient(per_tri, fine)
+    coef = hatkernels.coefficients.parse_coefficient(per_tri, fine)
     down = coarsen_coefficient(coef, fine, coarse)
     assert down.value == pytest.approx(per_tri.reshape(-1, 4).mean(axis=1))
-    nodal = kernels.coefficients.parse_coefficient(fine.points[:, 0] + 1, fine)
+    nodal = hatkernels.coefficients.parse_coefficient(fine.points[:, 0] + 1, fine)
     assert coarsen_coefficient(nodal, fine, coarse).value == pytest.approx(coarse.points[:, 0] + 1)
     # per-triangle tensors are averaged over the children too
     K = np.einsum("t,ij->tij", per_tri, np.eye(2))
-    tens = kernels.coefficients.parse_coefficient(K, fine, tensor=True)
+    tens = hatkernels.coefficients.parse_coefficient(K, fine, tensor=True)
     assert coarsen_coefficient(tens, fine, coarse).value[:, 0, 0] == pytest.approx(down.value)
 
 
 def test_errors_say_how_to_fix_them():
     flat = rectangle(8, 8)
-    with pytest.raises(kernels.InputError, match="no refinement history.*Mesh.refine"):
+    with pytest.raises(hatkernels.InputError, match="no refinement history.*Mesh.refine"):
         make_preconditioner(StiffnessOperator(flat), "gmg")
-    with pytest.raises(kernels.InputError, match="no refinement history"):
+    with pytest.raises(hatkernels.InputError, match="no refinement history"):
         solve_poisson(flat, 1.0, preconditioner="gmg")
     m = flat.refine()
-    A = kernels.assemble_stiffness(m)
-    with pytest.raises(kernels.InputError, match="pass mesh="):
+    A = hatkernels.assemble_stiffness(m)
+    with pytest.raises(hatkernels.InputError, match="pass mesh="):
         make_preconditioner(A, "gmg")
-    with pytest.raises(kernels.InputError, match="rows, but the mesh has"):
+    with pytest.raises(hatkernels.InputError, match="rows, but the mesh has"):
         make_preconditioner(A[:10, :10], "gmg", mesh=m)
-    with pytest.raises(kernels.InputError, match="cycle must be"):
+    with pytest.raises(hatkernels.InputError, match="cycle must be"):
         make_preconditioner(StiffnessOperator(m), "gmg", cycle="X")
-    with pytest.raises(kernels.InputError, match="needs an assembled matrix"):
+    with pytest.raises(hatkernels.InputError, match="needs an assembled matrix"):
         solve_poisson(m, 1.0, preconditioner="ic0", matrix_free=True)

@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 from conftest import jittered_mesh
 
-import kernels
-from kernels import norms
+import hatkernels
+from hatkernels import norms
 
 
 def test_norms_of_simple_functions():
@@ -35,33 +35,33 @@ def test_observed_rates():
 
 
 def test_bad_input():
-    m = kernels.mesh.rectangle(2, 2)
-    with pytest.raises(kernels.InputError, match="nodal values of shape"):
+    m = hatkernels.mesh.rectangle(2, 2)
+    with pytest.raises(hatkernels.InputError, match="nodal values of shape"):
         norms.l2_error(m, np.ones(3), lambda x, y: x)
-    with pytest.raises(kernels.InputError, match=r"exact\(x, y\) returned shape"):
+    with pytest.raises(hatkernels.InputError, match=r"exact\(x, y\) returned shape"):
         norms.l2_error(m, np.ones(9), lambda x, y: np.ones(2))
-    with pytest.raises(kernels.InputError, match="levels"):
+    with pytest.raises(hatkernels.InputError, match="levels"):
         norms.convergence_study(m, lambda mm: np.zeros(mm.n_points), lambda x, y: x, levels=1)
 
 
 def test_non_finite_values_are_named_never_returned():
-    m = kernels.mesh.rectangle(3, 3)
+    m = hatkernels.mesh.rectangle(3, 3)
     u = np.ones(m.n_points)
     with pytest.raises(
-        kernels.InputError, match=r"exact\(x, y\) is nan at \(.*\), a quadrature point of triangle"
+        hatkernels.InputError, match=r"exact\(x, y\) is nan at \(.*\), a quadrature point of triangle"
     ):
         norms.l2_error(m, u, lambda x, y: np.where(x > 0.5, np.nan, x))
-    with pytest.raises(kernels.InputError, match=r"component 1 of grad_exact\(x, y\) is inf"):
+    with pytest.raises(hatkernels.InputError, match=r"component 1 of grad_exact\(x, y\) is inf"):
         norms.h1_seminorm_error(m, u, lambda x, y: (0 * x, np.where(y > 0.5, np.inf, x)))
-    with pytest.raises(kernels.InputError, match="must return real numbers"):
+    with pytest.raises(hatkernels.InputError, match="must return real numbers"):
         norms.l2_error(m, u, lambda x, y: x + 1j)
-    with pytest.raises(kernels.InputError, match="components of different shapes"):
+    with pytest.raises(hatkernels.InputError, match="components of different shapes"):
         norms.h1_seminorm_error(m, u, lambda x, y: (0 * x, 1.0))
     bad = u.copy()
     bad[7] = np.nan
-    with pytest.raises(kernels.InputError, match=r"u\[7\] = nan is not finite"):
+    with pytest.raises(hatkernels.InputError, match=r"u\[7\] = nan is not finite"):
         norms.l2_error(m, bad, lambda x, y: x)
     # a point in no triangle: its value is never read, so NaN there is harmless
-    with pytest.warns(kernels.MeshWarning):
-        loose = kernels.Mesh(np.r_[m.points, [[5.0, 5.0]]], m.triangles)
+    with pytest.warns(hatkernels.MeshWarning):
+        loose = hatkernels.Mesh(np.r_[m.points, [[5.0, 5.0]]], m.triangles)
     assert norms.l2_error(loose, np.r_[u, np.nan], lambda x, y: 0 * x) == pytest.approx(1.0)

@@ -9,9 +9,9 @@ from conftest import jittered_mesh, meshes
 from hypothesis import given
 from test_assembly import coefficient_kinds
 
-import kernels
-from kernels import Mesh, StiffnessOperator, assemble_stiffness, threads
-from kernels.operators import VARIANTS
+import hatkernels
+from hatkernels import Mesh, StiffnessOperator, assemble_stiffness, threads
+from hatkernels.operators import VARIANTS
 
 
 def eliminated(A, fixed):
@@ -42,7 +42,7 @@ def test_matvec_and_diagonal_equal_the_assembled_matrix(m):
 @pytest.mark.parametrize("variant", VARIANTS)
 def test_dirichlet_rows_are_identity(variant, random_mesh):
     m = random_mesh
-    fixed = m.boundary_nodes()
+    fixed = m.boundary_points()
     coef = np.linspace(1, 3, m.n_triangles)
     op = StiffnessOperator(m, coef, variant=variant, dirichlet=fixed)
     E = eliminated(assemble_stiffness(m, coef), fixed)
@@ -56,10 +56,10 @@ def test_dirichlet_rows_are_identity(variant, random_mesh):
 
 
 def test_unused_points_get_identity_rows_with_dirichlet():
-    base = kernels.mesh.rectangle(4, 4)
-    with pytest.warns(kernels.MeshWarning):
+    base = hatkernels.mesh.rectangle(4, 4)
+    with pytest.warns(hatkernels.MeshWarning):
         m = Mesh(np.r_[base.points, [[3.0, 3.0]]], base.triangles)
-    op = StiffnessOperator(m, dirichlet=base.boundary_nodes())
+    op = StiffnessOperator(m, dirichlet=base.boundary_points())
     x = np.ones(m.n_points)
     assert (op @ x)[-1] == 1.0 and 25 in op.fixed
     assert (StiffnessOperator(m) @ x)[-1] == 0.0  # without Dirichlet: the empty row of A
@@ -74,14 +74,14 @@ def test_one_and_two_threads_give_identical_bits(variant):
     for n in (1, 2):
         with threads(n):
             op = StiffnessOperator(
-                m, coef, variant=variant, block_size=16, dirichlet=m.boundary_nodes()
+                m, coef, variant=variant, block_size=16, dirichlet=m.boundary_points()
             )
             out.append((op @ x).tobytes() + op.diagonal().tobytes())
     assert out[0] == out[1]
 
 
 def test_colouring_is_valid():
-    m = kernels.mesh.rectangle(20, 20).refine()
+    m = hatkernels.mesh.rectangle(20, 20).refine()
     op = StiffnessOperator(m, block_size=16)
     colour_of_block = np.empty(len(op._blocks), dtype=int)
     for c in range(op.n_colours):
@@ -97,7 +97,7 @@ def test_colouring_is_valid():
 
 def test_edge_row_blocks_colouring_is_valid():
     """Blocks of rows of the edge list: two blocks of one colour share no point."""
-    m = kernels.mesh.rectangle(20, 20).refine()
+    m = hatkernels.mesh.rectangle(20, 20).refine()
     op = StiffnessOperator(m, variant="edges", block_size=16)
     rows, starts, ends = op._rows_per_block, op._starts, op._ends
     for c in range(op.n_colours):
@@ -124,12 +124,12 @@ def test_more_than_64_colours_falls_back_or_refuses():
         op = StiffnessOperator(m, block_size=1)
     x = np.random.default_rng(3).standard_normal(m.n_points)
     assert op @ x == pytest.approx(assemble_stiffness(m) @ x)
-    with pytest.raises(kernels.InputError, match="at most 64 colours"):
+    with pytest.raises(hatkernels.InputError, match="at most 64 colours"):
         StiffnessOperator(m, variant="factors", block_size=1)
 
 
 def test_storage():
-    m = kernels.mesh.rectangle(100, 100)
+    m = hatkernels.mesh.rectangle(100, 100)
     A = assemble_stiffness(m)
     csr = A.data.nbytes + A.indices.nbytes + A.indptr.nbytes
     op = StiffnessOperator(m)
@@ -141,14 +141,14 @@ def test_storage():
 
 
 def test_bad_input():
-    m = kernels.mesh.rectangle(3, 3)
-    with pytest.raises(kernels.InputError, match="unknown matrix-free variant"):
+    m = hatkernels.mesh.rectangle(3, 3)
+    with pytest.raises(hatkernels.InputError, match="unknown matrix-free variant"):
         StiffnessOperator(m, variant="csr")
-    with pytest.raises(kernels.InputError, match=r"dirichlet\[1\] = 99 is outside"):
+    with pytest.raises(hatkernels.InputError, match=r"dirichlet\[1\] = 99 is outside"):
         StiffnessOperator(m, dirichlet=[0, 99])
-    with pytest.raises(kernels.InputError, match="block_size"):
+    with pytest.raises(hatkernels.InputError, match="block_size"):
         StiffnessOperator(m, block_size=0)
-    with pytest.raises(kernels.InputError, match="coefficient is -1.0"):
+    with pytest.raises(hatkernels.InputError, match="coefficient is -1.0"):
         StiffnessOperator(m, -1.0)
     with warnings.catch_warnings():
         warnings.simplefilter("error")

@@ -8,11 +8,11 @@ import sys
 import numpy as np
 import pytest
 
-import kernels
-from kernels.errors import InputError
+import hatkernels
+from hatkernels.errors import InputError
 
 pytest.importorskip("matplotlib")
-from kernels import plot  # noqa: E402
+from hatkernels import plot  # noqa: E402
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -31,7 +31,7 @@ EXPECTED = (int(plot.SIZE[0] * plot.DPI), int(plot.SIZE[1] * plot.DPI))
 
 
 def test_solution_figure(tmp_path):
-    mesh = kernels.mesh.rectangle(12, 8, bounds=(0, 0.12, 0, 0.08))
+    mesh = hatkernels.mesh.rectangle(12, 8, bounds=(0, 0.12, 0, 0.08))
     u = 25 + np.sin(mesh.points[:, 0] * 30)
     path = plot.solution_figure(mesh, u, tmp_path / "s.png", title="t", label="T (degC)",
                                 length_scale=1e3, length_unit="mm",
@@ -41,7 +41,7 @@ def test_solution_figure(tmp_path):
 
 
 def test_solution_figure_of_a_constant_field(tmp_path):
-    mesh = kernels.mesh.l_shape(2)
+    mesh = hatkernels.mesh.l_shape(2)
     path = plot.solution_figure(mesh, np.full(mesh.n_points, 3.0), tmp_path / "c.png")
     assert png_size(path) == EXPECTED
 
@@ -60,7 +60,7 @@ def test_custom_size(tmp_path):
 
 
 def test_non_finite_values_write_nothing(tmp_path):
-    mesh = kernels.mesh.rectangle(2, 2)
+    mesh = hatkernels.mesh.rectangle(2, 2)
     u = np.zeros(mesh.n_points)
     u[4] = np.nan
     with pytest.raises(InputError, match=r"u\[4\] = nan"):
@@ -75,7 +75,7 @@ def test_non_finite_values_write_nothing(tmp_path):
 def test_no_pyplot_and_no_display_needed(tmp_path):
     # Agg canvas directly: pyplot (and its backend choice) is never imported
     code = (
-        "import sys, numpy as np; from kernels import plot;"
+        "import sys, numpy as np; from hatkernels import plot;"
         f"plot.residuals_figure(np.array([1.0, 0.1]), {str(tmp_path / 'r.png')!r});"
         "print('matplotlib.pyplot' in sys.modules)"
     )

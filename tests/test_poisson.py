@@ -7,10 +7,10 @@ import pytest
 import scipy.sparse.linalg as spla
 from conftest import jittered_mesh
 
-import kernels
-from kernels import norms
-from kernels.mesh import Mesh, disk, rectangle
-from kernels.poisson import solve_poisson
+import hatkernels
+from hatkernels import norms
+from hatkernels.mesh import Mesh, disk, rectangle
+from hatkernels.poisson import solve_poisson
 
 PI = np.pi
 
@@ -83,7 +83,7 @@ def test_neumann_and_robin_reproduce_a_linear_solution():
         coefficient=2.0,
         dirichlet=u,
         dirichlet_on=left,
-        neumann=(others, kernels.per_edge(h)),
+        neumann=(others, hatkernels.per_edge(h)),
     )
     assert sol.u == pytest.approx(u(*m.points.T), abs=1e-8)
     # the Dirichlet part named by its points instead of its edges: the same system
@@ -93,7 +93,7 @@ def test_neumann_and_robin_reproduce_a_linear_solution():
         coefficient=2.0,
         dirichlet=u,
         dirichlet_on=np.unique(left),
-        neumann=(others, kernels.per_edge(h)),
+        neumann=(others, hatkernels.per_edge(h)),
     )
     assert np.array_equal(by_nodes.u, sol.u)
     # Robin on the right: kappa du/dn + r u = s with r = 3, s = 4 + 3 u
@@ -122,9 +122,9 @@ def test_every_preconditioner_gives_the_direct_solution(preconditioner):
         rtol=1e-12,
     )
     # reference library: scipy's sparse direct solve of the same system
-    A = kernels.assemble_stiffness(m, kappa)
-    s = kernels.apply_dirichlet(
-        A, kernels.assemble_load(m, lambda x, y: np.cos(3 * x) * y), m.boundary_nodes()
+    A = hatkernels.assemble_stiffness(m, kappa)
+    s = hatkernels.apply_dirichlet(
+        A, hatkernels.assemble_load(m, lambda x, y: np.cos(3 * x) * y), m.boundary_points()
     )
     ref = s.expand(spla.spsolve(s.A.tocsc(), s.b))
     assert sol.converged
@@ -140,9 +140,9 @@ def test_smallest_eigenvalue_approaches_two_pi_squared_from_above():
     values = []
     for n in (8, 16, 32):
         m = rectangle(n, n)
-        free = np.setdiff1d(np.arange(m.n_points), m.boundary_nodes())
-        K = kernels.assemble_stiffness(m)[free][:, free]
-        M = kernels.assemble_mass(m)[free][:, free]
+        free = np.setdiff1d(np.arange(m.n_points), m.boundary_points())
+        K = hatkernels.assemble_stiffness(m)[free][:, free]
+        M = hatkernels.assemble_mass(m)[free][:, free]
         lam = spla.eigsh(K.tocsc(), k=1, M=M.tocsc(), sigma=0, which="LM")[0][0]
         values.append(lam)
     assert all(v > exact for v in values)
@@ -160,7 +160,7 @@ def test_torsion_of_a_square_bar():
     for n in (32, 64):
         m = rectangle(n, n, bounds=(-1, 1, -1, 1))
         sol = solve_poisson(m, 2.0)
-        J.append(2 * kernels.assemble_load(m, 1.0) @ sol.u)
+        J.append(2 * hatkernels.assemble_load(m, 1.0) @ sol.u)
     # Galerkin: J_h = a(phi_h, phi_h) <= a(phi, phi) = J, growing on nested meshes
     assert J[0] < J[1] < 0.1406 * a**4
     assert J[1] == pytest.approx(0.1406 * a**4, rel=1.5e-3)
@@ -178,7 +178,7 @@ def test_torsion_of_a_circular_bar():
     for n in (8, 16, 32):
         m = disk(n, radius=r)
         sol = solve_poisson(m, 2.0)
-        J = 2 * kernels.assemble_load(m, 1.0) @ sol.u
+        J = 2 * hatkernels.assemble_load(m, 1.0) @ sol.u
         errors.append(abs(J - PI * r**4 / 2) / (PI * r**4 / 2))
     assert errors[-1] < 5e-3
     assert errors[0] / errors[-1] > 10  # O(h^2): about 16 over two halvings
@@ -193,8 +193,8 @@ def jump_case(name):
         "jump-1e6": np.where(c[:, 0] > 0.5, 1e6, 1.0),
         "anisotropy-100": np.array([[100.0, 0.0], [0.0, 1.0]]),
     }[name]
-    s = kernels.apply_dirichlet(
-        kernels.assemble_stiffness(m, coef), kernels.assemble_load(m, 1.0), m.boundary_nodes()
+    s = hatkernels.apply_dirichlet(
+        hatkernels.assemble_stiffness(m, coef), hatkernels.assemble_load(m, 1.0), m.boundary_points()
     )
     return m, coef, s.expand(spla.spsolve(s.A.tocsc(), s.b))  # reference library: scipy
 
@@ -220,8 +220,8 @@ def test_stats_and_non_convergence():
     assert set(st["timings"]) == {"assemble", "boundary", "setup", "solve", "total"}
     assert st["residuals"][0] == pytest.approx(
         np.linalg.norm(
-            kernels.apply_dirichlet(
-                kernels.assemble_stiffness(m), kernels.assemble_load(m, 1.0), m.boundary_nodes()
+            hatkernels.apply_dirichlet(
+                hatkernels.assemble_stiffness(m), hatkernels.assemble_load(m, 1.0), m.boundary_points()
             ).b
         )
     )
@@ -230,23 +230,23 @@ def test_stats_and_non_convergence():
     with pytest.warns(RuntimeWarning, match="not converged"):
         bad = solve_poisson(m, 1.0, preconditioner="none", maxiter=2)
     assert not bad.converged
-    with pytest.raises(kernels.ConvergenceError):
+    with pytest.raises(hatkernels.ConvergenceError):
         solve_poisson(m, 1.0, preconditioner="none", maxiter=2, check=True)
 
 
 def test_unused_points_and_bad_input():
     base = rectangle(6, 6)
-    with pytest.warns(kernels.MeshWarning):
+    with pytest.warns(hatkernels.MeshWarning):
         m = Mesh(np.r_[base.points, [[4.0, 4.0]]], base.triangles)
     sol = solve_poisson(m, 1.0)
     assert sol.u[-1] == 0 and np.isfinite(sol.u).all()
-    with pytest.raises(kernels.InputError, match="no Dirichlet points, reaction or Robin term"):
+    with pytest.raises(hatkernels.InputError, match="no Dirichlet points, reaction or Robin term"):
         solve_poisson(base, 1.0, neumann=0.0)
-    with pytest.raises(kernels.InputError, match=r"dirichlet\(x, y\) is nan at point"):
+    with pytest.raises(hatkernels.InputError, match=r"dirichlet\(x, y\) is nan at point"):
         solve_poisson(base, 1.0, dirichlet=lambda x, y: np.where(x > 0.9, np.nan, 0.0))
-    with pytest.raises(kernels.InputError, match="robin must be"):
+    with pytest.raises(hatkernels.InputError, match="robin must be"):
         solve_poisson(base, 1.0, robin=1.0)
-    with pytest.raises(kernels.InputError, match=r"dirichlet_on\[0\] = 99 is outside"):
+    with pytest.raises(hatkernels.InputError, match=r"dirichlet_on\[0\] = 99 is outside"):
         solve_poisson(base, 1.0, dirichlet_on=[99])
-    with pytest.raises(kernels.InputError, match="reaction is -1.0"):
+    with pytest.raises(hatkernels.InputError, match="reaction is -1.0"):
         solve_poisson(base, 1.0, reaction=-1.0)

@@ -11,9 +11,9 @@ from hypothesis import strategies as st
 from linear_cases import random_spd
 from pyamg.gallery import poisson
 
-from kernels.errors import InputError
-from kernels.krylov import cg_with_history
-from kernels.precond import (
+from hatkernels.errors import InputError
+from hatkernels.krylov import cg_with_history
+from hatkernels.precond import (
     AMG_DEFAULT,
     DIRECT_LIMIT,
     PRECONDITIONERS,
@@ -22,8 +22,8 @@ from kernels.precond import (
     make_preconditioner,
     register_preconditioner,
 )
-from kernels.precond.ichol import ic0_reference
-from kernels.precond.registry import _Registry
+from hatkernels.precond.ichol import ic0_reference
+from hatkernels.precond.registry import _Registry
 
 BUILTIN = ("none", "jacobi", "ic0", "amg-sa", "amg-rs", "amg-native", "direct", "amg")
 

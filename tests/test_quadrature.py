@@ -4,8 +4,8 @@ from math import factorial
 
 import pytest
 
-import kernels
-from kernels.quadrature import edge_rule, triangle_rule
+import hatkernels
+from hatkernels.quadrature import edge_rule, triangle_rule
 
 
 def barycentric_integral(p, q, r):
@@ -56,6 +56,6 @@ def test_edge_rule_is_exact_to_its_degree(degree):
 
 def test_bad_degrees():
     for bad in (0, 6, 2.0, True):
-        with pytest.raises(kernels.InputError, match="quadrature degree"):
+        with pytest.raises(hatkernels.InputError, match="quadrature degree"):
             triangle_rule(bad)
     assert not triangle_rule(2)[0].flags.writeable

@@ -7,9 +7,9 @@ import scipy.sparse.linalg as sla
 from linear_cases import random_spd
 from pyamg.gallery import poisson
 
-from kernels.errors import ConvergenceError, InputError
-from kernels.precond import PRECONDITIONERS, make_preconditioner
-from kernels.solve import SolveResult, solve
+from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.precond import PRECONDITIONERS, make_preconditioner
+from hatkernels.solve import SolveResult, solve
 
 
 def spd_case():

@@ -8,10 +8,10 @@ from hypothesis import given
 from hypothesis import strategies as st
 from pyamg.gallery import poisson
 
-from kernels._jit import sparse as K
-from kernels._jit import threads
-from kernels.errors import InputError
-from kernels.sparse import as_csr, as_vector, csr_bytes, dot, spmv
+from hatkernels._jit import sparse as K
+from hatkernels._jit import threads
+from hatkernels.errors import InputError
+from hatkernels.sparse import as_csr, as_vector, csr_bytes, dot, spmv
 
 EPS = np.finfo(np.float64).eps
 two_threads = pytest.mark.skipif(numba.config.NUMBA_NUM_THREADS < 2,

@@ -47,7 +47,7 @@ def jit(parallel=False, **options):
 class threads:
     """Context manager that runs the numba kernels inside it on ``n`` threads.
 
-    >>> from kernels._jit import threads
+    >>> from hatkernels._jit import threads
     >>> with threads(1):
     ...     pass
     """

@@ -21,18 +21,18 @@ multigrid", in Multigrid Methods, SIAM Frontiers in Applied Mathematics 3,
 
 Every parallel kernel owns its output rows and sums each row in a fixed
 order, so the hierarchy has the same bits on any number of threads.  As in
-``kernels._jit.sparse``, the hot loops index with unsigned integers
+``hatkernels._jit.sparse``, the hot loops index with unsigned integers
 (``U(k)``), which spares numba's test for negative indices (half the time of
 the Galerkin product); every index they use is non-negative by construction.  Index
 arrays of one matrix share a dtype (int32 or int64).  Nothing here validates
-its arguments; ``kernels.precond.amg`` does.
+its arguments; ``hatkernels.precond.amg`` does.
 """
 
 import numpy as np
 from numba import prange
 from numba import uint64 as U
 
-from kernels._jit import jit
+from hatkernels._jit import jit
 
 __all__ = [
     "strength",

@@ -1,6 +1,6 @@
 """Numeric assembly kernels: element values and the row-owned gather into CSR data.
 
-The CSR pattern and the slot plan come from :mod:`kernels._jit.topology`.
+The CSR pattern and the slot plan come from :mod:`hatkernels._jit.topology`.
 Each row is filled by one loop iteration that walks the incidences of its
 point in triangle order, so the result is race-free and has the same bits
 for any thread count; and entry ``(i, j)`` receives the same terms in the
@@ -19,7 +19,7 @@ times slower (the compiler cannot reuse loads across the stores between them).
 
 from numba import prange, uint64
 
-from kernels._jit import jit
+from hatkernels._jit import jit
 
 
 @jit(inline="always")

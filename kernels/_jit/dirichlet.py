@@ -3,7 +3,7 @@
 import numpy as np
 from numba import prange
 
-from kernels._jit import jit
+from hatkernels._jit import jit
 
 
 @jit(parallel=True)

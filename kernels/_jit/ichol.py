@@ -4,7 +4,7 @@ The factor ``L`` (lower triangular, ``L L^T ~ A``) is held by its transpose
 ``U = L^T`` in CSR: row ``k`` of ``U`` is column ``k`` of ``L``, sorted by
 column with the diagonal first.  That is the layout the right-looking
 factorisation needs (column ``k`` of ``L`` is read as one contiguous row), and
-it serves both triangular solves.  The wrappers in ``kernels.precond.ichol``
+it serves both triangular solves.  The wrappers in ``hatkernels.precond.ichol``
 build the arrays and check them; nothing here validates.
 
 Both kernels are serial: IC(0) factorisation and triangular solves are
@@ -13,7 +13,7 @@ recurrences along the rows.  Serial code gives the same bits on any thread count
 
 import math
 
-from kernels._jit import jit
+from hatkernels._jit import jit
 
 __all__ = ["ic0_factor", "ic0_solve"]
 

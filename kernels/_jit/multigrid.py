@@ -9,7 +9,7 @@ transpose, gathered per coarse point in a fixed order.
 
 from numba import prange, uint64
 
-from kernels._jit import jit
+from hatkernels._jit import jit
 
 
 @jit(parallel=True)

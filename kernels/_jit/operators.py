@@ -16,8 +16,8 @@ points sit close together in memory and there are few colours (3 to 6).
 import numpy as np
 from numba import prange, uint64
 
-from kernels._jit import jit
-from kernels._jit.assembly import _geometry, _ip, _rotated
+from hatkernels._jit import jit
+from hatkernels._jit.assembly import _geometry, _ip, _rotated
 
 #: At most this many colours (one bit each in a uint64 mask per point).
 MAX_COLOURS = 64

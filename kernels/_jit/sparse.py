@@ -9,15 +9,15 @@ Every kernel gives the same bits on any number of threads:
 
 Index arrays may be int32 or int64 (``indptr`` and ``indices`` of one matrix
 share a dtype); numba compiles one version per dtype on first use.  Nothing
-here validates its arguments: the wrappers in ``kernels.krylov`` and
-``kernels.precond`` do.  Arrays named ``out`` or listed as updated in place
+here validates its arguments: the wrappers in ``hatkernels.krylov`` and
+``hatkernels.precond`` do.  Arrays named ``out`` or listed as updated in place
 are written; every other argument is only read.
 """
 
 import numpy as np
 from numba import prange, uint64
 
-from kernels._jit import jit
+from hatkernels._jit import jit
 
 # Indexing with a signed integer makes numba test for negative indices on every
 # access (Python's wraparound), which costs about a third of an SpMV's time.

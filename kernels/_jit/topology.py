@@ -15,7 +15,7 @@ thread count.
 import numpy as np
 from numba import prange, uint64
 
-from kernels._jit import jit
+from hatkernels._jit import jit
 
 # Rows are processed in blocks so that each block allocates its scratch
 # buffer once instead of once per row.

@@ -19,16 +19,16 @@ See docs/assembly.md for what each costs.
 import numpy as np
 import scipy.sparse as sp
 
-from kernels._jit import assembly as _jit_assembly
-from kernels.assembly import reference as _reference
-from kernels.assembly import triplets as _triplets
-from kernels.assembly.boundary_terms import boundary_load, boundary_mass
-from kernels.assembly.csr import CSRNumeric
-from kernels.assembly.elements import load_values, lumped_values, mass_values
-from kernels.assembly.plan import CSRPlan, build_plan
-from kernels.coefficients import parse_coefficient
-from kernels.errors import InputError
-from kernels.mesh.core import Mesh
+from hatkernels._jit import assembly as _jit_assembly
+from hatkernels.assembly import reference as _reference
+from hatkernels.assembly import triplets as _triplets
+from hatkernels.assembly.boundary_terms import boundary_load, boundary_mass
+from hatkernels.assembly.csr import CSRNumeric
+from hatkernels.assembly.elements import load_values, lumped_values, mass_values
+from hatkernels.assembly.plan import CSRPlan, build_plan
+from hatkernels.coefficients import parse_coefficient
+from hatkernels.errors import InputError
+from hatkernels.mesh.core import Mesh
 
 __all__ = [
     "STRATEGIES",
@@ -47,7 +47,7 @@ STRATEGIES = ("reference", "triplets", "csr")
 
 def _mesh(mesh):
     if not isinstance(mesh, Mesh):
-        raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
+        raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
     return mesh
 
 
@@ -72,8 +72,8 @@ class StiffnessAssembler:
 
     Examples
     --------
-    >>> import kernels
-    >>> assembler = kernels.StiffnessAssembler(kernels.mesh.rectangle(8, 8))
+    >>> import hatkernels
+    >>> assembler = hatkernels.StiffnessAssembler(hatkernels.mesh.rectangle(8, 8))
     >>> A1 = assembler.assemble()          # symbolic phase already done
     >>> A2 = assembler.assemble(2.5)       # numeric phase only
     >>> bool(abs(A2 - 2.5 * A1).max() < 1e-12)
@@ -100,7 +100,7 @@ class StiffnessAssembler:
     def assemble(self, coefficient=None, *, quadrature=2):
         """Stiffness matrix ``int kappa grad phi_i . grad phi_j`` as canonical CSR.
 
-        ``coefficient``: see :mod:`kernels.coefficients`; callables are
+        ``coefficient``: see :mod:`hatkernels.coefficients`; callables are
         averaged over each triangle with the rule of degree ``quadrature``.
         """
         coef = parse_coefficient(coefficient, self.mesh, name="coefficient", tensor=True)
@@ -146,7 +146,7 @@ def assemble_stiffness(mesh, coefficient=None, *, strategy="csr", quadrature=2):
     ----------
     mesh : Mesh
     coefficient : None, number, array, tensor or callable
-        ``kappa``: see :mod:`kernels.coefficients`.  It must be positive (tensors
+        ``kappa``: see :mod:`hatkernels.coefficients`.  It must be positive (tensors
         symmetric positive definite); the error names the first bad triangle or point.
     strategy : {"csr", "triplets", "reference"}
     quadrature : int
@@ -154,8 +154,8 @@ def assemble_stiffness(mesh, coefficient=None, *, strategy="csr", quadrature=2):
 
     Examples
     --------
-    >>> import kernels
-    >>> A = kernels.assemble_stiffness(kernels.mesh.rectangle(4, 4))
+    >>> import hatkernels
+    >>> A = hatkernels.assemble_stiffness(hatkernels.mesh.rectangle(4, 4))
     >>> A.shape, float(A[12, 12])                # an interior point: 4 on the diagonal
     ((25, 25), 4.0)
     """
@@ -176,8 +176,8 @@ def assemble_mass(mesh, coefficient=None, *, lumped=False, strategy="csr", quadr
     the linear interpolant) or a callable (quadrature of ``quadrature``
     degree); its sign is not restricted.
 
-    >>> import kernels
-    >>> M = kernels.assemble_mass(kernels.mesh.rectangle(3, 3))
+    >>> import hatkernels
+    >>> M = hatkernels.assemble_mass(hatkernels.mesh.rectangle(3, 3))
     >>> round(float(M.sum()), 12)                # the area of the unit square
     1.0
     """
@@ -200,17 +200,17 @@ def assemble_load(mesh, f, *, quadrature=2):
     ``f`` is a number, an array per point (integrated exactly as its linear
     interpolant), per triangle, or a callable ``f(x, y)`` integrated with the
     triangle rule exact to degree ``quadrature`` (1, 2 or 5; see
-    :mod:`kernels.quadrature`).
+    :mod:`hatkernels.quadrature`).
 
-    >>> import kernels
-    >>> b = kernels.assemble_load(kernels.mesh.rectangle(2, 2), 3.0)
+    >>> import hatkernels
+    >>> b = hatkernels.assemble_load(hatkernels.mesh.rectangle(2, 2), 3.0)
     >>> round(float(b.sum()), 12)                # 3 times the area
     3.0
     """
     _mesh(mesh)
     coef = parse_coefficient(f, mesh, name="load", sign="any")
     tri = mesh.triangles
-    if coef.kind in ("constant", "triangle"):
+    if coef.kind in ("constant", "cell"):
         # the same value at the three vertices: one pass, no (M,) temporaries
         value = np.ascontiguousarray(np.atleast_1d(coef.value), dtype=np.float64)
         out = np.empty(mesh.n_points)
@@ -231,8 +231,8 @@ def assemble_boundary_load(mesh, g, edges=None, *, quadrature=2):
     ``edges``, or of :meth:`Mesh.boundary_edges` by default), or a callable
     integrated by Gauss-Legendre exact to degree ``quadrature``.
 
-    >>> import kernels
-    >>> b = kernels.assemble_boundary_load(kernels.mesh.rectangle(2, 2), 1.0)
+    >>> import hatkernels
+    >>> b = hatkernels.assemble_boundary_load(hatkernels.mesh.rectangle(2, 2), 1.0)
     >>> round(float(b.sum()), 12)                # the perimeter
     4.0
     """
@@ -244,8 +244,8 @@ def assemble_boundary_mass(mesh, r, edges=None, *, quadrature=2):
 
     ``r`` must be non-negative (so that stiffness plus ``R`` stays positive definite).
 
-    >>> import kernels
-    >>> R = kernels.assemble_boundary_mass(kernels.mesh.rectangle(2, 2), 2.0)
+    >>> import hatkernels
+    >>> R = hatkernels.assemble_boundary_mass(hatkernels.mesh.rectangle(2, 2), 2.0)
     >>> round(float(R.sum()), 12)                # r times the perimeter
     8.0
     """

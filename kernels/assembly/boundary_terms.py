@@ -8,9 +8,9 @@ by Gauss-Legendre rules.
 import numpy as np
 import scipy.sparse as sp
 
-from kernels.coefficients import parse_edge_coefficient
-from kernels.errors import InputError
-from kernels.quadrature import edge_rule
+from hatkernels.coefficients import parse_edge_coefficient
+from hatkernels.errors import InputError
+from hatkernels.quadrature import edge_rule
 
 __all__ = ["check_edges", "boundary_load", "boundary_mass"]
 
@@ -65,7 +65,7 @@ def _edge_quadrature(coef, mesh, e, degree):
 
 
 def boundary_load(mesh, g, edges=None, *, quadrature=2):
-    """``b_i = int_Gamma g phi_i ds`` over the given edges; see :func:`kernels.assemble_boundary_load`."""
+    """``b_i = int_Gamma g phi_i ds`` over the given edges; see :func:`hatkernels.assemble_boundary_load`."""
     e = check_edges(mesh, edges)
     coef = parse_edge_coefficient(g, mesh, len(e), name="boundary load", sign="any")
     L = _lengths(mesh, e)
@@ -73,7 +73,7 @@ def boundary_load(mesh, g, edges=None, *, quadrature=2):
         ve = np.repeat((L * coef.value / 2)[:, None], 2, axis=1)
     elif coef.kind == "edge":
         ve = np.repeat((L * coef.value / 2)[:, None], 2, axis=1)
-    elif coef.kind == "node":
+    elif coef.kind == "point":
         ga, gb = coef.value[e[:, 0]], coef.value[e[:, 1]]
         ve = L[:, None] / 6 * np.column_stack([2 * ga + gb, ga + 2 * gb])
     else:
@@ -91,7 +91,7 @@ def boundary_mass(mesh, r, edges=None, *, quadrature=2):
         rv = coef.value
         daa = dbb = L * rv / 3
         dab = L * rv / 6
-    elif coef.kind == "node":
+    elif coef.kind == "point":
         ra, rb = coef.value[e[:, 0]], coef.value[e[:, 1]]
         daa = L * (3 * ra + rb) / 12
         dbb = L * (ra + 3 * rb) / 12

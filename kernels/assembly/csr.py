@@ -2,10 +2,10 @@
 
 import numpy as np
 
-from kernels._jit import assembly as _jit_assembly
-from kernels.assembly.elements import mass_values
-from kernels.assembly.plan import build_plan
-from kernels.coefficients import triangle_means
+from hatkernels._jit import assembly as _jit_assembly
+from hatkernels.assembly.elements import mass_values
+from hatkernels.assembly.plan import build_plan
+from hatkernels.coefficients import triangle_means
 
 
 def kernel_coefficient(coef, mesh, quadrature):
@@ -21,7 +21,7 @@ def kernel_coefficient(coef, mesh, quadrature):
 
 
 class CSRNumeric:
-    """Numeric phases on a :class:`~kernels.assembly.plan.CSRPlan`.
+    """Numeric phases on a :class:`~hatkernels.assembly.plan.CSRPlan`.
 
     ``fused=True`` computes the stiffness without the (M, 3) element-value
     temporaries (48 bytes per triangle less at peak, slower by the

@@ -8,9 +8,9 @@ barycentric coordinates, ``int_T l1^p l2^q l3^r = 2|T| p! q! r! / (p+q+r+2)!``.
 
 import numpy as np
 
-from kernels.coefficients import at_quadrature
-from kernels.errors import InputError
-from kernels.quadrature import triangle_rule
+from hatkernels.coefficients import at_quadrature
+from hatkernels.errors import InputError
+from hatkernels.quadrature import triangle_rule
 
 __all__ = ["mass_values", "load_values", "lumped_values"]
 
@@ -18,11 +18,11 @@ __all__ = ["mass_values", "load_values", "lumped_values"]
 def mass_values(mesh, coef, quadrature):
     """(d, o) of ``int_T c phi_a phi_b`` for each triangle."""
     A = mesh.areas()
-    if coef.kind in ("constant", "triangle"):
+    if coef.kind in ("constant", "cell"):
         c = coef.value if coef.kind == "constant" else coef.value[:, None]
         d = np.broadcast_to(A[:, None] * (c / 6.0), (len(A), 3)).copy()
         o = d * 0.5
-    elif coef.kind == "node":
+    elif coef.kind == "point":
         cv = coef.value[mesh.triangles]  # (M, 3)
         s = cv.sum(axis=1, keepdims=True)
         d = A[:, None] / 30.0 * (2.0 * cv + s)  # (3 c_a + c_b + c_c) |T| / 30
@@ -48,9 +48,9 @@ def load_values(mesh, coef, quadrature):
     A = mesh.areas()
     if coef.kind == "constant":
         return np.repeat((A * (coef.value / 3.0))[:, None], 3, axis=1)
-    if coef.kind == "triangle":
+    if coef.kind == "cell":
         return np.repeat((A * coef.value / 3.0)[:, None], 3, axis=1)
-    if coef.kind == "node":
+    if coef.kind == "point":
         fv = coef.value[mesh.triangles]
         return A[:, None] / 12.0 * (fv + fv.sum(axis=1, keepdims=True))
     if coef.kind == "callable":

@@ -7,10 +7,10 @@ import dataclasses
 import numpy as np
 import scipy.sparse as sp
 
-from kernels._jit import topology as _topo
-from kernels.errors import InputError
-from kernels.mesh.core import index_dtype
-from kernels.mesh.pattern import csr_pattern
+from hatkernels._jit import topology as _topo
+from hatkernels.errors import InputError
+from hatkernels.mesh.core import index_dtype
+from hatkernels.mesh.pattern import csr_pattern
 
 __all__ = ["CSRPlan", "build_plan"]
 

@@ -11,7 +11,7 @@ from math import factorial
 import numpy as np
 import scipy.sparse as sp
 
-from kernels.quadrature import triangle_rule
+from hatkernels.quadrature import triangle_rule
 
 # Gradients of the reference hat functions 1 - xi - eta, xi, eta (as columns).
 _REFERENCE_GRADIENTS = np.array([[-1.0, 1.0, 0.0], [-1.0, 0.0, 1.0]])
@@ -40,9 +40,9 @@ def _mean_over(coef, mesh, t, X, quadrature):
     """Mean of a coefficient over triangle ``t`` (a 2x2 tensor is returned as is)."""
     if coef.kind == "constant":
         return coef.value
-    if coef.kind == "triangle":
+    if coef.kind == "cell":
         return coef.value[t]
-    if coef.kind == "node":
+    if coef.kind == "point":
         return coef.value[mesh.triangles[t]].mean()
     if coef.kind == "tensor":
         return coef.value if coef.value.ndim == 2 else coef.value[t]
@@ -79,14 +79,14 @@ def mass(mesh, coef, quadrature):
         Me = np.zeros((3, 3))
         for a in range(3):
             for b in range(3):
-                if coef.kind in ("constant", "triangle"):
+                if coef.kind in ("constant", "cell"):
                     powers = [0, 0, 0]
                     powers[a] += 1
                     powers[b] += 1
                     Me[a, b] = _mean_over(coef, mesh, t, X, quadrature) * (
                         _integral_of_barycentric_powers(powers, area)
                     )
-                elif coef.kind == "node":
+                elif coef.kind == "point":
                     for k in range(3):  # c = sum_k c_k phi_k
                         powers = [0, 0, 0]
                         powers[a] += 1

@@ -9,9 +9,9 @@ conversion to sum the duplicates.
 import numpy as np
 import scipy.sparse as sp
 
-from kernels.assembly.elements import mass_values
-from kernels.coefficients import triangle_means
-from kernels.geometry import element_gradients
+from hatkernels.assembly.elements import mass_values
+from hatkernels.coefficients import triangle_means
+from hatkernels.geometry import element_gradients
 
 
 def _coo_to_csr(mesh, K):

@@ -1,11 +1,11 @@
 """Partitioned assembly and solve over MPI ranks (mpi4py, imported only when needed).
 
-``import kernels.distributed`` works without mpi4py: partitioning,
+``import hatkernels.distributed`` works without mpi4py: partitioning,
 subdomains, local assembly and the halo patterns are plain NumPy; only the
 exchange, the distributed CG and :func:`solve_poisson` need MPI.
 
->>> from kernels.mesh import rectangle
->>> from kernels.distributed import partition
+>>> from hatkernels.mesh import rectangle
+>>> from hatkernels.distributed import partition
 >>> partition(rectangle(8, 8), 2).counts().tolist()
 [40, 41]
 
@@ -15,10 +15,10 @@ script calls :func:`solve_poisson` (the serial arguments plus ``comm``,
 ``mpiexec -n P hatkernels solve``.  See docs/distributed.md.
 """
 
-from kernels.distributed.assembly import LocalSystem, assemble_local, reduce_local
-from kernels.distributed.halo import CommStats, HaloPattern
-from kernels.distributed.launch import MPIUnavailable, ranks_from_environment
-from kernels.distributed.partition import (
+from hatkernels.distributed.assembly import LocalSystem, assemble_local, reduce_local
+from hatkernels.distributed.halo import CommStats, HaloPattern
+from hatkernels.distributed.launch import MPIUnavailable, ranks_from_environment
+from hatkernels.distributed.partition import (
     METHODS,
     WEIGHTS,
     Partition,
@@ -26,9 +26,9 @@ from kernels.distributed.partition import (
     partition,
     partition_from_owner,
 )
-from kernels.distributed.precond import COARSE_SPACES
-from kernels.distributed.solve import GATHER, DistributedPoissonSolution, solve_poisson
-from kernels.distributed.subdomain import Subdomain, local_coefficient, subdomain
+from hatkernels.distributed.precond import COARSE_SPACES
+from hatkernels.distributed.solve import GATHER, DistributedPoissonSolution, solve_poisson
+from hatkernels.distributed.subdomain import Subdomain, local_coefficient, subdomain
 
 __all__ = [
     "COARSE_SPACES",

@@ -1,13 +1,13 @@
 """Per-rank assembly: each rank builds its owned rows on its local mesh, then reduces Dirichlet points.
 
 :func:`assemble_local` runs the serial ``csr`` assembly
-(:class:`~kernels.StiffnessAssembler`) and the load, mass and boundary
-terms on a :class:`~kernels.distributed.Subdomain`'s local mesh.  Its owned
+(:class:`~hatkernels.StiffnessAssembler`) and the load, mass and boundary
+terms on a :class:`~hatkernels.distributed.Subdomain`'s local mesh.  Its owned
 rows are complete (every triangle touching an owned point is local) and
 equal, entry for entry and bit for bit, to the rows of the whole mesh's
 matrix; the ghost rows are partial and only ever dropped.
 
-:func:`reduce_local` applies :func:`kernels.apply_dirichlet` to the local
+:func:`reduce_local` applies :func:`hatkernels.apply_dirichlet` to the local
 system: prescribed points leave the unknowns and their values move to the
 right-hand side (lifting, ``b_f - A_fd g``); ghosts that are prescribed are
 known on every rank that has them, so no communication is needed.  What is
@@ -23,17 +23,17 @@ import dataclasses
 import numpy as np
 import scipy.sparse as sp
 
-from kernels.assembly import (
+from hatkernels.assembly import (
     StiffnessAssembler,
     assemble_boundary_load,
     assemble_boundary_mass,
     assemble_load,
 )
-from kernels.boundary import apply_dirichlet
-from kernels.coefficients import Coefficient, per_edge, per_node
-from kernels.distributed.halo import HaloPattern
-from kernels.distributed.subdomain import _LocalCallable
-from kernels.errors import InputError
+from hatkernels.boundary import apply_dirichlet
+from hatkernels.coefficients import Coefficient, per_edge, per_point
+from hatkernels.distributed.halo import HaloPattern
+from hatkernels.distributed.subdomain import _LocalCallable
+from hatkernels.errors import InputError
 
 __all__ = ["LocalSystem", "assemble_local", "reduce_local", "owned_rows", "rows_in_global",
            "local_boundary_data"]
@@ -76,8 +76,8 @@ def local_boundary_data(sub, n_points, edges, value, *, name, sign):
     kind, v = value.kind, value.value
     if kind == "constant":
         lv = v
-    elif kind == "node":
-        lv = per_node(v[sub.points])
+    elif kind == "point":
+        lv = per_point(v[sub.points])
     elif kind == "edge":
         lv = per_edge(np.asarray(v)[sel])
     elif kind == "callable":
@@ -94,7 +94,7 @@ def assemble_local(sub, *, kappa, f, reaction=None, neumann=None, robin=None, qu
     ----------
     sub : Subdomain
     kappa, f, reaction : Coefficient
-        Restricted to ``sub`` (:func:`~kernels.distributed.subdomain.local_coefficient`).
+        Restricted to ``sub`` (:func:`~hatkernels.distributed.subdomain.local_coefficient`).
     neumann : ``(local_edges, h)``, optional
     robin : ``(local_edges, r, s)``, optional
         From :func:`local_boundary_data`.
@@ -106,7 +106,7 @@ def assemble_local(sub, *, kappa, f, reaction=None, neumann=None, robin=None, qu
     has_robin : bool
         A positive Robin coefficient on some local edge.
 
-    The terms are added in the order of :func:`kernels.poisson.solve_poisson`,
+    The terms are added in the order of :func:`hatkernels.poisson.solve_poisson`,
     so the owned entries have the same bits as the serial ones.
     """
     m = sub.mesh

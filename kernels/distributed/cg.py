@@ -1,6 +1,6 @@
 """Conjugate gradients over ranks, with scipy's stopping rule on the global residual.
 
-The iteration is :func:`kernels.krylov.cg_with_history` with every dot
+The iteration is :func:`hatkernels.krylov.cg_with_history` with every dot
 product made global by an ``Allreduce``: converged when ``norm(b - A x) <=
 max(rtol * norm(b), atol)`` for the whole (unpreconditioned) residual; when
 the recurrence says so, the true residual is computed once (one more
@@ -30,23 +30,23 @@ import warnings
 import numpy as np
 from scipy.linalg import eigvalsh_tridiagonal
 
-from kernels._jit import sparse as _k
-from kernels.distributed.launch import mpi
-from kernels.errors import InputError
-from kernels.krylov import (
+from hatkernels._jit import sparse as _k
+from hatkernels.distributed.launch import mpi
+from hatkernels.errors import InputError
+from hatkernels.krylov import (
     BREAKDOWN_MATRIX,
     CGResult,
     _breakdown_preconditioner,
     _check_scalars,
 )
-from kernels.sparse import as_vector
+from hatkernels.sparse import as_vector
 
 __all__ = ["cg", "condition_estimate", "DistributedCGResult", "Reducer"]
 
 
 @dataclasses.dataclass
 class DistributedCGResult(CGResult):
-    """A :class:`~kernels.krylov.CGResult` (``x`` this rank's entries) with a condition estimate.
+    """A :class:`~hatkernels.krylov.CGResult` (``x`` this rank's entries) with a condition estimate.
 
     ``condition_estimate``: see :func:`condition_estimate` (NaN after a restart).
     """
@@ -79,7 +79,7 @@ class Reducer:
 
 def cg(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None, callback=None,
        warn=True, monitor=None):
-    """Preconditioned CG on a :class:`~kernels.distributed.matrix.DistributedMatrix`.
+    """Preconditioned CG on a :class:`~hatkernels.distributed.matrix.DistributedMatrix`.
 
     Collective over ``A.comm``.  ``b``, ``x0`` and the returned ``x`` are
     this rank's owned entries.  ``M`` is a distributed preconditioner
@@ -87,12 +87,12 @@ def cg(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None, callback=Non
     defaults to 10 times the global number of unknowns.  ``callback(x)`` is
     called on every rank with its owned entries; ``monitor(iteration,
     residual_norm)`` after every iteration with the global residual norm, on
-    every rank (as :func:`kernels.krylov.cg_with_history`).  Returns a
-    :class:`~kernels.krylov.CGResult` (the same on every rank but ``x``).
+    every rank (as :func:`hatkernels.krylov.cg_with_history`).  Returns a
+    :class:`~hatkernels.krylov.CGResult` (the same on every rank but ``x``).
 
-    It runs on numba's current thread count; :func:`~kernels.distributed.solve_poisson`
+    It runs on numba's current thread count; :func:`~hatkernels.distributed.solve_poisson`
     sets one that does not oversubscribe the node, a direct caller should too
-    (``with kernels.threads(n):``).
+    (``with hatkernels.threads(n):``).
     """
     n = A.n_owned
     red = Reducer(A.comm, A.stats)

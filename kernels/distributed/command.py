@@ -1,10 +1,10 @@
 """``mpiexec -n P hatkernels solve ...``: the command's scenario, solved over the ranks.
 
-:mod:`kernels.cli` calls :func:`solve_command` from ``cmd_solve`` when the
+:mod:`hatkernels.cli` calls :func:`solve_command` from ``cmd_solve`` when the
 launcher's environment says there is more than one rank
-(:func:`~kernels.distributed.launch.ranks_from_environment`, read before
+(:func:`~hatkernels.distributed.launch.ranks_from_environment`, read before
 mpi4py is imported).  Every rank builds the same mesh and problem (the
-replicated input path), the solve is :func:`kernels.distributed.solve_poisson`
+replicated input path), the solve is :func:`hatkernels.distributed.solve_poisson`
 with the two-level preconditioner, and only rank 0 checks the power balance,
 prints, and writes the output directory; the other ranks stay silent.
 
@@ -22,8 +22,8 @@ import time
 import traceback
 import warnings
 
-from kernels.distributed.launch import MPIUnavailable, ranks_from_environment, world
-from kernels.errors import ConvergenceError, InputError
+from hatkernels.distributed.launch import MPIUnavailable, ranks_from_environment, world
+from hatkernels.errors import ConvergenceError, InputError
 
 __all__ = ["solve_command", "COMMAND_COARSE"]
 
@@ -60,8 +60,8 @@ def _on_root(comm, fn, *args, **kwargs):
 
 
 def solve_command(args, progress):
-    """Run ``hatkernels solve`` over MPI; return the exit code (see :mod:`kernels.cli`)."""
-    from kernels import cli
+    """Run ``hatkernels solve`` over MPI; return the exit code (see :mod:`hatkernels.cli`)."""
+    from hatkernels import cli
 
     expected = ranks_from_environment()
     comm = _world(expected)
@@ -89,9 +89,9 @@ def solve_command(args, progress):
 
 def _warm_up(args, comm):
     """A tiny distributed solve of the same kind, so that kernels compile (or load) first."""
-    from kernels import scenarios
-    from kernels.mesh import Mesh, rectangle
-    from kernels.scenarios import COARSE_CELLS, PLATE
+    from hatkernels import scenarios
+    from hatkernels.mesh import Mesh, rectangle
+    from hatkernels.scenarios import COARSE_CELLS, PLATE
 
     if args.mesh is not None:
         grid = rectangle(4, 4)
@@ -109,8 +109,8 @@ def _warm_up(args, comm):
 
 
 def _solve(problem, args, comm, progress, gather="root", monitor=None):
-    from kernels.distributed.solve import solve_poisson
-    from kernels.scenarios import _coefficient
+    from hatkernels.distributed.solve import solve_poisson
+    from hatkernels.scenarios import _coefficient
 
     return solve_poisson(
         problem.mesh,
@@ -133,12 +133,12 @@ def _solve(problem, args, comm, progress, gather="root", monitor=None):
 
 def _collective(args, progress, comm):
     """The part every rank runs: checks, mesh, problem, solve (rank 0 gets the solution)."""
-    from kernels import cli
-    from kernels import io as kio
+    from hatkernels import cli
+    from hatkernels import io as kio
 
     if args.cells is not None and args.refine is not None:
-        # InputError, not cli.UsageError: under ``python -m kernels.cli`` that class
-        # exists twice (__main__ and kernels.cli); both exit 2 with this message.
+        # InputError, not cli.UsageError: under ``python -m hatkernels.cli`` that class
+        # exists twice (__main__ and hatkernels.cli); both exit 2 with this message.
         raise InputError("--cells and --refine both set the mesh size; give one "
                          "(see 'hatkernels solve --help')")
     if args.preconditioner in cli.NEEDS_REFINEMENT:
@@ -169,8 +169,8 @@ def _collective(args, progress, comm):
 
 def _report(args, progress, comm, out, problem, sol, timings, kernels_seconds, command):
     """Rank 0: power balance, summary, output files, the printed report."""
-    from kernels import cli, scenarios
-    from kernels import io as kio
+    from hatkernels import cli, scenarios
+    from hatkernels import io as kio
 
     progress.phase("check: power balance from the boundary reactions (rank 0)")
     t0 = time.perf_counter()

@@ -3,7 +3,7 @@
 A local vector holds the owned entries first, then the ghosts grouped by
 owning neighbour.  :class:`HaloPattern` says which owned entries go to each
 neighbour and where each neighbour's values land; it is plain data (built
-from a :class:`~kernels.distributed.Subdomain`, restricted to the unknowns
+from a :class:`~hatkernels.distributed.Subdomain`, restricted to the unknowns
 after Dirichlet reduction), testable without MPI.
 
 :class:`Halo` does the exchange with mpi4py's buffer interface (``Isend`` /
@@ -20,8 +20,8 @@ import time
 
 import numpy as np
 
-from kernels.distributed.launch import mpi
-from kernels.errors import InputError
+from hatkernels.distributed.launch import mpi
+from hatkernels.errors import InputError
 
 __all__ = ["HaloPattern", "Halo", "CommStats"]
 

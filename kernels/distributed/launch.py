@@ -1,7 +1,7 @@
 """Where a distributed run stands: the MPI import, the launcher's environment, threads per rank.
 
 mpi4py is imported here and only when a function needs it, so that
-``import kernels`` (and ``import kernels.distributed``) works without it.
+``import hatkernels`` (and ``import hatkernels.distributed``) works without it.
 Importing mpi4py initialises MPI; that is deferred until a communicator is
 actually asked for.
 """
@@ -12,7 +12,7 @@ import os
 
 import numpy as np
 
-from kernels.errors import InputError
+from hatkernels.errors import InputError
 
 __all__ = [
     "ENVIRONMENT_SIZES",
@@ -45,7 +45,7 @@ def mpi():
     try:
         from mpi4py import MPI
     except ImportError as exc:
-        raise MPIUnavailable(f"kernels.distributed needs mpi4py ({exc}); {_INSTALL}") from exc
+        raise MPIUnavailable(f"hatkernels.distributed needs mpi4py ({exc}); {_INSTALL}") from exc
     return MPI
 
 

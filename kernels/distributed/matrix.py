@@ -10,7 +10,7 @@ unknowns with ghosts.  A product ``q = A p`` is
 4. ``q += A_og p_ghost``.
 
 Both products are the project's parallel CSR kernels
-(:mod:`kernels._jit.sparse`); the vectors hold owned entries first and
+(:mod:`hatkernels._jit.sparse`); the vectors hold owned entries first and
 ghosts after, so no copies are made.  With no ghosts (one rank) the fused
 product-and-dot kernel is used, exactly as in the serial CG.
 """
@@ -20,8 +20,8 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from kernels._jit import sparse as _k
-from kernels.distributed.halo import Halo
+from hatkernels._jit import sparse as _k
+from hatkernels.distributed.halo import Halo
 
 __all__ = ["DistributedMatrix", "split_columns"]
 

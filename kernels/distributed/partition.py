@@ -5,7 +5,7 @@ rank computes the same split from the same mesh):
 
 ``hilbert``
     Points sorted along a Hilbert space-filling curve
-    (:func:`kernels.mesh.hilbert_keys`), cut into contiguous runs of equal
+    (:func:`hatkernels.mesh.hilbert_keys`), cut into contiguous runs of equal
     weight.  Neighbours in the plane are close on the curve, so each run is
     a compact region; one sort, O(N log N).
 ``rcb``
@@ -22,7 +22,7 @@ can be used through :func:`partition_from_owner`.
 
 A part owns its points; the triangles touching them and one layer of ghost
 points (the other vertices of those triangles) make its subdomain, see
-:mod:`kernels.distributed.subdomain`.  :meth:`Partition.quality` reports
+:mod:`hatkernels.distributed.subdomain`.  :meth:`Partition.quality` reports
 balance and interface size.
 """
 
@@ -32,9 +32,9 @@ import dataclasses
 
 import numpy as np
 
-from kernels.errors import InputError
-from kernels.mesh.core import Mesh
-from kernels.mesh.reorder import hilbert_keys
+from hatkernels.errors import InputError
+from hatkernels.mesh.core import Mesh
+from hatkernels.mesh.reorder import hilbert_keys
 
 __all__ = ["METHODS", "WEIGHTS", "Partition", "PartitionQuality", "partition",
            "partition_from_owner"]
@@ -196,7 +196,7 @@ class Partition:
 
 def _check(mesh, parts):
     if not isinstance(mesh, Mesh):
-        raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
+        raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
     if isinstance(parts, bool) or not isinstance(parts, (int, np.integer)) or parts < 1:
         raise InputError(f"parts must be a positive integer, got {parts!r}")
     if parts > mesh.n_points:
@@ -292,8 +292,8 @@ def partition(mesh, parts, *, method="rcb", weight="points"):
 
     Examples
     --------
-    >>> from kernels.mesh import rectangle
-    >>> from kernels.distributed import partition
+    >>> from hatkernels.mesh import rectangle
+    >>> from hatkernels.distributed import partition
     >>> p = partition(rectangle(16, 16), 3)
     >>> p.counts().tolist()
     [96, 96, 97]
@@ -324,7 +324,7 @@ def partition_from_owner(mesh, owner, parts=None):
     The array is copied.
     """
     if not isinstance(mesh, Mesh):
-        raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
+        raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
     o = np.asarray(owner)
     if o.shape != (mesh.n_points,) or (o.size and o.dtype.kind not in "iu"):
         raise InputError(f"owner must be one integer part per point, shape ({mesh.n_points},), "

@@ -2,7 +2,7 @@
 
 Block Jacobi (:class:`BlockJacobi`)
     Each rank applies a preconditioner from the serial registry
-    (:func:`kernels.make_preconditioner`: ``amg`` by default, ``ic0``,
+    (:func:`hatkernels.make_preconditioner`: ``amg`` by default, ``ic0``,
     ``jacobi``, ``direct``, ...) to its owned block ``A_oo`` (the principal
     submatrix of its owned unknowns; SPD because A is).  No communication.
     ``M = diag(M_1, ..., M_P)`` is SPD when each block is.  It ignores the
@@ -38,10 +38,10 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from kernels._jit import sparse as _k
-from kernels.distributed.launch import mpi
-from kernels.errors import InputError
-from kernels.precond import make_preconditioner
+from hatkernels._jit import sparse as _k
+from hatkernels.distributed.launch import mpi
+from hatkernels.errors import InputError
+from hatkernels.precond import make_preconditioner
 
 __all__ = ["COARSE_SPACES", "BlockJacobi", "TwoLevel", "coarse_row", "galerkin_coarse",
            "make_distributed_preconditioner"]

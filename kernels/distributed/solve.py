@@ -1,4 +1,4 @@
-"""The one-call distributed solve: :func:`kernels.poisson.solve_poisson` over MPI ranks.
+"""The one-call distributed solve: :func:`hatkernels.poisson.solve_poisson` over MPI ranks.
 
 Every rank is given the whole mesh and the same data (the replicated input
 path: simple, and it keeps the call identical to the serial one, but each
@@ -26,20 +26,20 @@ import warnings
 
 import numpy as np
 
-from kernels._jit import threads as _threads
-from kernels.assembly.boundary_terms import check_edges
-from kernels.coefficients import parse_coefficient, parse_edge_coefficient
-from kernels.distributed.assembly import assemble_local, local_boundary_data, reduce_local
-from kernels.distributed.cg import cg
-from kernels.distributed.halo import CommStats
-from kernels.distributed.launch import as_comm, default_threads, mpi
-from kernels.distributed.matrix import DistributedMatrix
-from kernels.distributed.partition import METHODS, Partition, partition
-from kernels.distributed.precond import COARSE_SPACES, make_distributed_preconditioner
-from kernels.distributed.subdomain import local_coefficient, subdomain
-from kernels.errors import ConvergenceError, InputError
-from kernels.mesh.core import Mesh
-from kernels.poisson import (
+from hatkernels._jit import threads as _threads
+from hatkernels.assembly.boundary_terms import check_edges
+from hatkernels.coefficients import parse_coefficient, parse_edge_coefficient
+from hatkernels.distributed.assembly import assemble_local, local_boundary_data, reduce_local
+from hatkernels.distributed.cg import cg
+from hatkernels.distributed.halo import CommStats
+from hatkernels.distributed.launch import as_comm, default_threads, mpi
+from hatkernels.distributed.matrix import DistributedMatrix
+from hatkernels.distributed.partition import METHODS, Partition, partition
+from hatkernels.distributed.precond import COARSE_SPACES, make_distributed_preconditioner
+from hatkernels.distributed.subdomain import local_coefficient, subdomain
+from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.mesh.core import Mesh
+from hatkernels.poisson import (
     PoissonSolution,
     _dirichlet_nodes,
     _dirichlet_values,
@@ -166,7 +166,7 @@ def _local_boundary(sub, n, spec):
 
 def _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, parts, monitor):
     if not isinstance(mesh, Mesh):
-        raise InputError(f"expected a kernels.Mesh, got {type(mesh).__name__}")
+        raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
     if matrix_free:
         raise InputError("matrix_free=True is not available in the distributed solve; each "
                          "rank assembles its rows (leave matrix_free unset)")
@@ -217,18 +217,18 @@ def solve_poisson(
 ):
     """Solve ``-div(kappa grad u) + c u = f`` over the ranks of ``comm`` (collective).
 
-    Takes the arguments of :func:`kernels.poisson.solve_poisson` (the same
+    Takes the arguments of :func:`hatkernels.poisson.solve_poisson` (the same
     meaning; every rank passes the same mesh and data) and returns the same
     kind of result.  With one rank the result equals the serial one.
 
     Parameters
     ----------
     mesh, f, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin
-        As in :func:`kernels.poisson.solve_poisson`.
+        As in :func:`hatkernels.poisson.solve_poisson`.
     comm : mpi4py intracommunicator, optional
         Default ``MPI.COMM_WORLD``.
     preconditioner : str
-        A name from :data:`kernels.PRECONDITIONERS`, applied by each rank to
+        A name from :data:`hatkernels.PRECONDITIONERS`, applied by each rank to
         its owned block (block Jacobi); not ``"gmg"``.
         ``**preconditioner_options`` go to it.
     rtol, atol, maxiter, check
@@ -244,17 +244,17 @@ def solve_poisson(
     coarse : None or "constants"
         None: block Jacobi.  ``"constants"``: the additive two-level
         preconditioner with one constant per subdomain (iterations bounded
-        as ranks are added; see :mod:`kernels.distributed.precond`).
+        as ranks are added; see :mod:`hatkernels.distributed.precond`).
     partition : None, "rcb", "hilbert" or Partition
         How to split the points; default ``"rcb"`` (see
-        :func:`kernels.distributed.partition`).
+        :func:`hatkernels.distributed.partition`).
     gather : True, "root" or False
         The full nodal solution ``u`` on every rank (``True``, the
         default), on rank 0 only (``"root"``; ``u`` is None elsewhere), or
         nowhere (``False``).  ``u_owned`` and ``owned`` are always set.
     threads : int, optional
         numba threads per rank; default from the cores and the ranks on this
-        node (see :func:`kernels.distributed.launch.default_threads`).
+        node (see :func:`hatkernels.distributed.launch.default_threads`).
 
     Returns
     -------

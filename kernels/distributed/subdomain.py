@@ -22,9 +22,9 @@ import dataclasses
 
 import numpy as np
 
-from kernels.coefficients import Coefficient, parse_coefficient
-from kernels.errors import InputError
-from kernels.mesh.core import Mesh, index_dtype
+from hatkernels.coefficients import Coefficient, parse_coefficient
+from hatkernels.errors import InputError
+from hatkernels.mesh.core import Mesh, index_dtype
 
 __all__ = ["Subdomain", "subdomain", "local_coefficient"]
 
@@ -89,15 +89,15 @@ class Subdomain:
 
 
 def subdomain(partition, part):
-    """The :class:`Subdomain` of ``part`` in a :class:`~kernels.distributed.Partition`.
+    """The :class:`Subdomain` of ``part`` in a :class:`~hatkernels.distributed.Partition`.
 
     Costs O(n_points + n_triangles) on the whole mesh (the replicated-input
     path; see docs/distributed.md for the scalable one).
 
     Examples
     --------
-    >>> from kernels.mesh import rectangle
-    >>> from kernels.distributed import partition, subdomain
+    >>> from hatkernels.mesh import rectangle
+    >>> from hatkernels.distributed import partition, subdomain
     >>> s = subdomain(partition(rectangle(4, 4), 2), 0)
     >>> s.n_owned, s.n_ghosts, s.neighbours.tolist()
     (12, 6, [1])
@@ -174,7 +174,7 @@ class _LocalCallable(Coefficient):
 
 
 def local_coefficient(coef, sub, *, edge_map=None):
-    """Restrict a :class:`~kernels.coefficients.Coefficient` of the whole mesh to ``sub``.
+    """Restrict a :class:`~hatkernels.coefficients.Coefficient` of the whole mesh to ``sub``.
 
     Values per triangle follow ``sub.triangles``, per point ``sub.points``;
     constants and (2, 2) tensors are shared; callables are evaluated where
@@ -187,9 +187,9 @@ def local_coefficient(coef, sub, *, edge_map=None):
     if kind == "callable":
         return _LocalCallable(kind, value, coef.name, coef.sign,
                               triangle_map=sub.triangles, edge_map=edge_map)
-    if kind == "triangle" or (kind == "tensor" and np.ndim(value) == 3):
+    if kind == "cell" or (kind == "tensor" and np.ndim(value) == 3):
         value = value[sub.triangles]
-    elif kind == "node":
+    elif kind == "point":
         value = value[sub.points]
     return Coefficient(kind, value, coef.name, coef.sign)
 

@@ -7,10 +7,10 @@ import warnings
 
 import numpy as np
 
-from kernels._jit import geometry as _jit_geometry
-from kernels._jit import topology as _topo
-from kernels._sets import index_union
-from kernels.errors import MeshError, MeshWarning
+from hatkernels._jit import geometry as _jit_geometry
+from hatkernels._jit import topology as _topo
+from hatkernels._sets import index_union
+from hatkernels.errors import MeshError, MeshWarning
 
 __all__ = ["Mesh", "Refinement", "index_dtype", "DEGENERATE_TOL"]
 
@@ -21,7 +21,7 @@ __all__ = ["Mesh", "Refinement", "index_dtype", "DEGENERATE_TOL"]
 #: while accepting anisotropic triangles up to aspect ratios near 1e12.
 DEGENERATE_TOL = 1e-12
 
-from kernels.mesh.core_index import index_dtype  # noqa: E402  (re-exported)
+from hatkernels.mesh.core_index import index_dtype  # noqa: E402  (re-exported)
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
@@ -141,7 +141,7 @@ class Mesh:
     ----------
     points : array_like, shape (n_points, 2)
         Coordinates; any real dtype, stored as float64.
-    triangles : array_like, shape (n_triangles, 3)
+    cells : array_like, shape (n_cells, 3)
         Point indices of each triangle; any integer dtype, stored as int32
         (int64 when there are more than 2**31 - 1 points).
     degenerate_tol : float
@@ -161,7 +161,7 @@ class Mesh:
     MeshWarning
         When clockwise triangles were reoriented (in the mesh's own copy,
         never in the caller's array) or some points belong to no triangle.
-        Such points give empty matrix rows; :func:`kernels.apply_dirichlet`
+        Such points give empty matrix rows; :func:`hatkernels.apply_dirichlet`
         leaves them out of the system.
 
     Notes
@@ -171,19 +171,19 @@ class Mesh:
 
     Examples
     --------
-    >>> import kernels
-    >>> m = kernels.Mesh([[0, 0], [1, 0], [0, 1], [1, 1]], [[0, 1, 3], [0, 3, 2]])
+    >>> import hatkernels
+    >>> m = hatkernels.Mesh([[0, 0], [1, 0], [0, 1], [1, 1]], [[0, 1, 3], [0, 3, 2]])
     >>> m
     Mesh(4 points, 2 triangles)
-    >>> m.boundary_nodes()
+    >>> m.boundary_points()
     array([0, 1, 2, 3], dtype=int32)
     >>> m.edges().tolist()
     [[0, 1], [0, 2], [0, 3], [1, 3], [2, 3]]
     """
 
-    def __init__(self, points, triangles, *, degenerate_tol=DEGENERATE_TOL):
+    def __init__(self, points, cells, *, degenerate_tol=DEGENERATE_TOL):
         p = _check_points(points)
-        t = _check_triangles(triangles, p.shape[0])
+        t = _check_triangles(cells, p.shape[0])
         d2a = signed_double_areas(p, t)
         rel = np.abs(d2a) / _longest_edge_sq(p, t)
         flat = ~(rel > degenerate_tol)
@@ -276,9 +276,26 @@ class Mesh:
         return self._points
 
     @property
-    def triangles(self):
-        """Counterclockwise point indices, shape (n_triangles, 3), read-only."""
+    def cells(self):
+        """Point indices of each cell, shape (n_cells, dim + 1), read-only.
+
+        Triangles in 2-D, counterclockwise.
+        """
         return self._triangles
+
+    @property
+    def triangles(self):
+        """The cells of a 2-D mesh (an alias of :attr:`cells`)."""
+        return self._triangles
+
+    @property
+    def dim(self):
+        """The space dimension (2: points in the plane, cells are triangles)."""
+        return self._points.shape[1]
+
+    @property
+    def n_cells(self):
+        return self._triangles.shape[0]
 
     @property
     def n_points(self):
@@ -313,6 +330,10 @@ class Mesh:
             self._cache["unused"] = _readonly(np.flatnonzero(~used).astype(self._triangles.dtype))
         return self._cache["unused"]
 
+    def measures(self):
+        """Measure (area in 2-D) of each cell, shape (n_cells,)."""
+        return self.areas()
+
     def areas(self):
         """Area of each triangle, shape (n_triangles,)."""
         if "areas" not in self._cache:
@@ -340,7 +361,7 @@ class Mesh:
 
     def _edge_topology(self):
         if "edges" not in self._cache or "triangle_edges" not in self._cache:
-            from kernels.mesh.pattern import csr_pattern
+            from hatkernels.mesh.pattern import csr_pattern
 
             tri = self._triangles_for_topology()
             ptr, codes = self._incidence()
@@ -385,12 +406,12 @@ class Mesh:
             self._cache["boundary_edges"] = _readonly(np.column_stack([start[order], end[order]]))
         return self._cache["boundary_edges"]
 
-    def boundary_nodes(self):
+    def boundary_points(self):
         """Points on the boundary, sorted, shape (n_boundary_points,)."""
-        if "boundary_nodes" not in self._cache:
-            nodes = index_union(self.n_points, self.boundary_edges().ravel())
-            self._cache["boundary_nodes"] = _readonly(nodes.astype(self._triangles.dtype))
-        return self._cache["boundary_nodes"]
+        if "boundary_points" not in self._cache:
+            points = index_union(self.n_points, self.boundary_edges().ravel())
+            self._cache["boundary_points"] = _readonly(points.astype(self._triangles.dtype))
+        return self._cache["boundary_points"]
 
     def boundary_length(self):
         """Total length of the boundary edges."""
@@ -412,18 +433,18 @@ class Mesh:
         The four children of triangle ``t`` are triangles ``4t .. 4t+3``;
         boundary topology is carried over without recomputation.
         """
-        from kernels.mesh.refine import refine
+        from hatkernels.mesh.refine import refine
 
         return refine(self)
 
     def reorder(self, method="rcm"):
-        """Renumber points and triangles for locality; see :func:`kernels.mesh.reorder`."""
-        from kernels.mesh.reorder import reorder
+        """Renumber points and triangles for locality; see :func:`hatkernels.mesh.reorder`."""
+        from hatkernels.mesh.reorder import reorder
 
         return reorder(self, method)
 
     def quality(self):
-        """Angles, areas and aspect ratios; see :class:`kernels.mesh.MeshQuality`."""
-        from kernels.mesh.quality import quality
+        """Angles, areas and aspect ratios; see :class:`hatkernels.mesh.MeshQuality`."""
+        from hatkernels.mesh.quality import quality
 
         return quality(self)

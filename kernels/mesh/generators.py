@@ -6,12 +6,15 @@ import warnings
 import numpy as np
 from scipy.spatial import Delaunay
 
-from kernels.errors import InputError, MeshWarning
-from kernels.mesh.core import DEGENERATE_TOL, Mesh, index_dtype, signed_double_areas
+from hatkernels.errors import InputError, MeshWarning
+from hatkernels.mesh.core import DEGENERATE_TOL, Mesh, index_dtype, signed_double_areas
 
-__all__ = ["rectangle", "l_shape", "disk", "triangulate", "DIAGONALS"]
+__all__ = ["rectangle", "l_shape", "disk", "triangulate", "SPLITS"]
 
-DIAGONALS = ("right", "left", "alternating", "crossed")
+#: How :func:`rectangle` cuts each grid cell: along the rising diagonal (lower
+#: left to upper right), the falling one (lower right to upper left), the two
+#: in a checkerboard, or into four triangles around a centre point.
+SPLITS = ("rising", "falling", "checkerboard", "quartered")
 
 
 def _count(value, name, minimum=1):
@@ -32,29 +35,29 @@ def _bounds(bounds):
     return x0, x1, y0, y1
 
 
-def _grid_triangles(nx, ny, diagonal, dt):
+def _grid_triangles(nx, ny, split, dt):
     """Triangles of an (nx, ny) cell grid whose points are numbered row by row."""
     j, i = np.divmod(np.arange(nx * ny, dtype=np.int64), nx)
     a = j * (nx + 1) + i  # lower left
     b = a + 1  # lower right
     c = a + nx + 2  # upper right
     d = a + nx + 1  # upper left
-    if diagonal == "crossed":
+    if split == "quartered":
         e = (nx + 1) * (ny + 1) + np.arange(nx * ny, dtype=np.int64)  # cell centres
         tri = np.stack([a, b, e, b, c, e, c, d, e, d, a, e], axis=1).reshape(-1, 3)
         return tri.astype(dt)
-    right = np.stack([a, b, c, a, c, d], axis=1)  # diagonal from lower left to upper right
-    left = np.stack([a, b, d, b, c, d], axis=1)  # diagonal from lower right to upper left
-    if diagonal == "right":
-        tri = right
-    elif diagonal == "left":
-        tri = left
+    rising = np.stack([a, b, c, a, c, d], axis=1)  # cut from lower left to upper right
+    falling = np.stack([a, b, d, b, c, d], axis=1)  # cut from lower right to upper left
+    if split == "rising":
+        tri = rising
+    elif split == "falling":
+        tri = falling
     else:
-        tri = np.where(((i + j) % 2 == 0)[:, None], right, left)
+        tri = np.where(((i + j) % 2 == 0)[:, None], rising, falling)
     return tri.reshape(-1, 3).astype(dt)
 
 
-def rectangle(nx, ny=None, *, bounds=(0.0, 1.0, 0.0, 1.0), diagonal="right"):
+def rectangle(nx, ny=None, *, bounds=(0.0, 1.0, 0.0, 1.0), split="rising"):
     """Structured mesh of a rectangle with ``nx`` by ``ny`` cells.
 
     Points are numbered row by row (x fastest): point ``j * (nx + 1) + i`` sits
@@ -66,52 +69,53 @@ def rectangle(nx, ny=None, *, bounds=(0.0, 1.0, 0.0, 1.0), diagonal="right"):
     nx, ny : int
         Cells along x and y (``ny`` defaults to ``nx``).
     bounds : (x0, x1, y0, y1)
-    diagonal : {"right", "left", "alternating", "crossed"}
-        ``"right"``: from lower left to upper right in every cell;
-        ``"left"``: from lower right to upper left; ``"alternating"``: right
-        and left in a checkerboard; ``"crossed"``: both diagonals, with a
-        point at each cell centre (numbered after the grid points).
+    split : {"rising", "falling", "checkerboard", "quartered"}
+        How each cell is cut: ``"rising"``, along the diagonal from lower
+        left to upper right; ``"falling"``, from lower right to upper left;
+        ``"checkerboard"``, rising and falling alternately; ``"quartered"``,
+        into four triangles around a point at the cell centre (numbered
+        after the grid points).
 
     Examples
     --------
-    >>> from kernels.mesh import rectangle
+    >>> from hatkernels.mesh import rectangle
     >>> rectangle(2, 1)
     Mesh(6 points, 4 triangles)
-    >>> rectangle(2, 1, diagonal="crossed")
+    >>> rectangle(2, 1, split="quartered")
     Mesh(8 points, 8 triangles)
     """
     nx = _count(nx, "nx")
     ny = nx if ny is None else _count(ny, "ny")
     x0, x1, y0, y1 = _bounds(bounds)
-    if diagonal not in DIAGONALS:
-        raise InputError(f"unknown diagonal {diagonal!r}; choose one of {DIAGONALS}")
+    if split not in SPLITS:
+        raise InputError(f"unknown split {split!r}; choose one of {SPLITS}")
     x = np.linspace(x0, x1, nx + 1)
     y = np.linspace(y0, y1, ny + 1)
     X, Y = np.meshgrid(x, y)
     points = np.column_stack([X.ravel(), Y.ravel()])
-    if diagonal == "crossed":
+    if split == "quartered":
         cx = 0.5 * (x[:-1] + x[1:])
         cy = 0.5 * (y[:-1] + y[1:])
         CX, CY = np.meshgrid(cx, cy)
         points = np.vstack([points, np.column_stack([CX.ravel(), CY.ravel()])])
-    tri = _grid_triangles(nx, ny, diagonal, index_dtype(len(points)))
+    tri = _grid_triangles(nx, ny, split, index_dtype(len(points)))
     return Mesh._trusted(points, tri)
 
 
-def l_shape(n, *, diagonal="right"):
+def l_shape(n, *, split="rising"):
     """The L-shaped domain (-1, 1)^2 without the quadrant [0, 1] x [-1, 0].
 
     ``n`` cells per unit length, so ``3 n^2`` squares and ``6 n^2``
-    triangles (twice that with ``diagonal="crossed"``).  Its re-entrant corner at the
+    triangles (twice that with ``split="quartered"``).  Its re-entrant corner at the
     origin makes solutions singular there (``r^(2/3)``).
 
-    >>> from kernels.mesh import l_shape
+    >>> from hatkernels.mesh import l_shape
     >>> m = l_shape(2)
     >>> m.n_triangles, float(m.areas().sum())
     (24, 3.0)
     """
     n = _count(n, "n")
-    full = rectangle(2 * n, 2 * n, bounds=(-1.0, 1.0, -1.0, 1.0), diagonal=diagonal)
+    full = rectangle(2 * n, 2 * n, bounds=(-1.0, 1.0, -1.0, 1.0), split=split)
     cent = full.points[full.triangles].mean(axis=1)
     keep = ~((cent[:, 0] > 0) & (cent[:, 1] < 0))
     tri = full.triangles[keep]
@@ -131,7 +135,7 @@ def disk(n, *, radius=1.0, center=(0.0, 0.0)):
     The mesh covers the inscribed polygon, whose area approaches
     ``pi r^2`` as ``1 - O(n^-2)``.
 
-    >>> from kernels.mesh import disk
+    >>> from hatkernels.mesh import disk
     >>> m = disk(3)
     >>> m.n_points, m.n_triangles
     (37, 54)
@@ -189,12 +193,12 @@ def triangulate(points, *, inside=None, degenerate_tol=DEGENERATE_TOL):
     in no triangle (duplicates, or outside ``inside``) are reported.
 
     >>> import numpy as np
-    >>> from kernels.mesh import triangulate
+    >>> from hatkernels.mesh import triangulate
     >>> m = triangulate([[0, 0], [1, 0], [0, 1], [1, 1], [0.5, 0.4]])
     >>> m.n_triangles
     4
     """
-    from kernels.mesh.core import _check_points
+    from hatkernels.mesh.core import _check_points
 
     p = _check_points(points)
     if len(p) < 3:

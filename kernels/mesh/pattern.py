@@ -2,8 +2,8 @@
 
 import numpy as np
 
-from kernels._jit import topology as _topo
-from kernels.mesh.core_index import index_dtype
+from hatkernels._jit import topology as _topo
+from hatkernels.mesh.core_index import index_dtype
 
 __all__ = ["csr_pattern"]
 

@@ -40,7 +40,7 @@ class MeshQuality:
 def quality(mesh):
     """Compute :class:`MeshQuality` for a mesh (vectorised, O(n_triangles)).
 
-    >>> from kernels.mesh import rectangle
+    >>> from hatkernels.mesh import rectangle
     >>> q = rectangle(4, 4).quality()
     >>> round(q.min_angle, 6), round(q.max_angle, 6)
     (45.0, 90.0)

@@ -2,8 +2,8 @@
 
 import numpy as np
 
-from kernels._jit import topology as _topo
-from kernels.mesh.core import Mesh, Refinement, index_dtype
+from hatkernels._jit import topology as _topo
+from hatkernels.mesh.core import Mesh, Refinement, index_dtype
 
 __all__ = ["refine"]
 
@@ -20,7 +20,7 @@ def refine(mesh):
 
     Examples
     --------
-    >>> from kernels.mesh import rectangle
+    >>> from hatkernels.mesh import rectangle
     >>> coarse = rectangle(2, 2)
     >>> fine = coarse.refine()
     >>> fine.n_triangles, fine.n_points

@@ -6,9 +6,9 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
-from kernels._jit import reorder as _jit_reorder
-from kernels.errors import InputError
-from kernels.mesh.core import Mesh
+from hatkernels._jit import reorder as _jit_reorder
+from hatkernels.errors import InputError
+from hatkernels.mesh.core import Mesh
 
 __all__ = ["reorder", "MeshPermutation", "hilbert_keys", "REORDERINGS"]
 
@@ -89,7 +89,7 @@ def reorder(mesh, method="rcm"):
 
     Examples
     --------
-    >>> from kernels.mesh import rectangle
+    >>> from hatkernels.mesh import rectangle
     >>> m = rectangle(3, 3)
     >>> new, perm = m.reorder("hilbert")
     >>> bool((new.points == m.points[perm.points]).all())

@@ -16,12 +16,12 @@
 a user factory.
 """
 
-from kernels.precond.amg import ClassicalAMG, RugeStubenAMG, SmoothedAggregationAMG
-from kernels.precond.direct import DIRECT_LIMIT, SparseDirect
-from kernels.precond.gmg import GeometricMultigrid
-from kernels.precond.ichol import IncompleteCholesky
-from kernels.precond.jacobi import Identity, Jacobi
-from kernels.precond.registry import (
+from hatkernels.precond.amg import ClassicalAMG, RugeStubenAMG, SmoothedAggregationAMG
+from hatkernels.precond.direct import DIRECT_LIMIT, SparseDirect
+from hatkernels.precond.gmg import GeometricMultigrid
+from hatkernels.precond.ichol import IncompleteCholesky
+from hatkernels.precond.jacobi import Identity, Jacobi
+from hatkernels.precond.registry import (
     PRECONDITIONERS,
     Preconditioner,
     make_preconditioner,

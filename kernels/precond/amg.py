@@ -32,12 +32,12 @@ import numpy as np
 import pyamg
 import scipy.sparse as sp
 
-from kernels._jit import amg as _a
-from kernels._jit import sparse as _k
-from kernels.errors import InputError
-from kernels.precond.chebyshev import ChebyshevSmoother
-from kernels.precond.registry import Preconditioner, require_csr
-from kernels.sparse import as_csr
+from hatkernels._jit import amg as _a
+from hatkernels._jit import sparse as _k
+from hatkernels.errors import InputError
+from hatkernels.precond.chebyshev import ChebyshevSmoother
+from hatkernels.precond.registry import Preconditioner, require_csr
+from hatkernels.sparse import as_csr
 
 __all__ = ["SmoothedAggregationAMG", "RugeStubenAMG", "ClassicalAMG", "ClassicalHierarchy"]
 
@@ -392,7 +392,7 @@ def _csr_arrays(M):
 def _split(indptr, indices, strong, n):
     """The C/F splitting (1 = C): PyAMG's compiled first pass where its 32-bit indices suffice.
 
-    ``kernels._jit.amg.split`` is the same algorithm (tested to give the same
+    ``hatkernels._jit.amg.split`` is the same algorithm (tested to give the same
     splitting); it serves matrices whose indices need 64 bits.
     """
     tptr, tind = _a.transpose_pattern(indptr, indices, strong, n)
@@ -410,7 +410,7 @@ def _chunks():
 
 
 class ClassicalHierarchy:
-    """Ruge-Stueben hierarchy built with this project's parallel kernels (``kernels._jit.amg``).
+    """Ruge-Stueben hierarchy built with this project's parallel kernels (``hatkernels._jit.amg``).
 
     Per level: strong couplings (one byte per entry), the first-pass C/F
     splitting, classical interpolation P, R = P^T and the Galerkin product

@@ -9,7 +9,7 @@ of ``D^-1 A``, estimated here by a few Lanczos steps.
 
 import numpy as np
 
-from kernels._jit import sparse as _k
+from hatkernels._jit import sparse as _k
 
 __all__ = ["ChebyshevSmoother", "largest_eigenvalue", "LOWER", "UPPER"]
 

@@ -11,8 +11,8 @@ the limit.
 import numpy as np
 from scipy.sparse.linalg import splu
 
-from kernels.errors import InputError
-from kernels.precond.registry import Preconditioner, require_csr
+from hatkernels.errors import InputError
+from hatkernels.precond.registry import Preconditioner, require_csr
 
 __all__ = ["SparseDirect", "DIRECT_LIMIT"]
 

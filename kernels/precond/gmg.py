@@ -1,7 +1,7 @@
 """Geometric multigrid on nested refinements, matrix-free: the ``gmg`` preconditioner.
 
-A mesh made by :meth:`kernels.Mesh.refine` remembers its coarser meshes;
-each level gets a matrix-free :class:`~kernels.StiffnessOperator` (with
+A mesh made by :meth:`hatkernels.Mesh.refine` remembers its coarser meshes;
+each level gets a matrix-free :class:`~hatkernels.StiffnessOperator` (with
 identity rows at the Dirichlet points), a Jacobi-scaled Chebyshev (or damped
 Jacobi) smoother built on that operator and its diagonal, and transfers by
 linear interpolation at edge midpoints (prolongation) and its transpose
@@ -28,18 +28,18 @@ from __future__ import annotations
 
 import numpy as np
 
-from kernels._jit import multigrid as _mg
-from kernels._jit import sparse as _k
-from kernels._sets import index_complement, index_union
-from kernels.assembly import assemble_stiffness
-from kernels.boundary import apply_dirichlet
-from kernels.coefficients import Coefficient, parse_coefficient
-from kernels.errors import InputError
-from kernels.mesh.core import Mesh
-from kernels.operators import DEFAULT_VARIANT, StiffnessOperator
-from kernels.precond.chebyshev import ChebyshevSmoother
-from kernels.precond.direct import SparseDirect
-from kernels.precond.registry import Preconditioner, make_preconditioner
+from hatkernels._jit import multigrid as _mg
+from hatkernels._jit import sparse as _k
+from hatkernels._sets import index_complement, index_union
+from hatkernels.assembly import assemble_stiffness
+from hatkernels.boundary import apply_dirichlet
+from hatkernels.coefficients import Coefficient, parse_coefficient
+from hatkernels.errors import InputError
+from hatkernels.mesh.core import Mesh
+from hatkernels.operators import DEFAULT_VARIANT, StiffnessOperator
+from hatkernels.precond.chebyshev import ChebyshevSmoother
+from hatkernels.precond.direct import SparseDirect
+from hatkernels.precond.registry import Preconditioner, make_preconditioner
 
 __all__ = ["GeometricMultigrid", "coarsen_coefficient"]
 
@@ -49,7 +49,7 @@ _COARSE = ("direct", "amg")
 
 NO_HISTORY = (
     "gmg needs a mesh that remembers how it was refined: build it with Mesh.refine() from a "
-    "coarse mesh (for example kernels.mesh.rectangle(16, 16).refine().refine().refine()), "
+    "coarse mesh (for example hatkernels.mesh.rectangle(16, 16).refine().refine().refine()), "
     "or use preconditioner='amg'"
 )
 
@@ -58,13 +58,13 @@ def coarsen_coefficient(coef, fine, coarse):
     """The coefficient of the coarse mesh that ``fine`` was refined from."""
     if coef.kind in ("constant", "callable"):
         return coef
-    if coef.kind == "triangle":
+    if coef.kind == "cell":
         return Coefficient(
-            "triangle", coef.value.reshape(-1, 4).mean(axis=1), coef.name, coef.sign
+            "cell", coef.value.reshape(-1, 4).mean(axis=1), coef.name, coef.sign
         )
-    if coef.kind == "node":
+    if coef.kind == "point":
         return Coefficient(
-            "node", coef.value[fine.refinement.coarse_points], coef.name, coef.sign
+            "point", coef.value[fine.refinement.coarse_points], coef.name, coef.sign
         )
     if coef.value.ndim == 2:
         return coef
@@ -164,11 +164,11 @@ class GeometricMultigrid(Preconditioner):
     Parameters
     ----------
     A : StiffnessOperator, sparse matrix or LinearOperator
-        The operator CG solves with.  A :class:`~kernels.StiffnessOperator`
+        The operator CG solves with.  A :class:`~hatkernels.StiffnessOperator`
         brings its mesh, coefficient and Dirichlet points along.  Otherwise
         ``mesh`` is required, and ``A`` is either the full system with
         identity rows at the Dirichlet points (size ``n_points``) or the
-        reduced system of :func:`kernels.apply_dirichlet` (size ``n_free``).
+        reduced system of :func:`hatkernels.apply_dirichlet` (size ``n_free``).
     mesh : Mesh
         The finest mesh, made by :meth:`Mesh.refine` (it carries the levels).
     coefficient : any kind, optional
@@ -189,7 +189,7 @@ class GeometricMultigrid(Preconditioner):
     variant : str, optional
         Matrix-free variant of the level operators (default: that of ``A``
         when it is a StiffnessOperator, whose data the finest level then
-        shares; else :data:`kernels.operators.DEFAULT_VARIANT`).
+        shares; else :data:`hatkernels.operators.DEFAULT_VARIANT`).
 
     The defaults (degree 2 on the interval [bound / 6, bound]) were the
     fastest of degrees 2 and 3 with bottoms bound / 30 to bound / 3 on
@@ -237,7 +237,7 @@ class GeometricMultigrid(Preconditioner):
         if mesh is None:
             raise InputError("gmg: pass mesh=... (the refined mesh A comes from); " + NO_HISTORY)
         if not isinstance(mesh, Mesh):
-            raise InputError(f"gmg: mesh must be a kernels.Mesh, got {type(mesh).__name__}")
+            raise InputError(f"gmg: mesh must be a hatkernels.Mesh, got {type(mesh).__name__}")
         if mesh.refinement is None:
             raise InputError("gmg: this mesh has no refinement history. " + NO_HISTORY)
         for name, value, choices in (
@@ -298,7 +298,7 @@ class GeometricMultigrid(Preconditioner):
     @staticmethod
     def _fixed(mesh, dirichlet):
         if dirichlet is None:
-            d = mesh.boundary_nodes().astype(np.int64)
+            d = mesh.boundary_points().astype(np.int64)
         else:
             d = np.asarray(dirichlet)
             if d.ndim != 1 or (d.size and d.dtype.kind not in "iu"):

@@ -3,7 +3,7 @@
 ``L`` is lower triangular with the pattern of the lower triangle of A and
 ``L L^T ~ A``; the preconditioner applies ``(L L^T)^{-1}`` by a forward and a
 backward triangular solve.  The factor is stored as ``U = L^T`` in CSR (the
-same arrays as ``L`` in CSC), see :mod:`kernels._jit.ichol`; the
+same arrays as ``L`` in CSC), see :mod:`hatkernels._jit.ichol`; the
 :attr:`IncompleteCholesky.L` property returns ``L`` as a scipy CSR matrix.
 
 On a non-positive pivot the factorisation is retried on ``A + s diag(A)``
@@ -17,9 +17,9 @@ import warnings
 import numpy as np
 import scipy.sparse as sp
 
-from kernels._jit import ichol as _k
-from kernels.errors import InputError
-from kernels.precond.registry import Preconditioner, checked_diagonal, require_csr
+from hatkernels._jit import ichol as _k
+from hatkernels.errors import InputError
+from hatkernels.precond.registry import Preconditioner, checked_diagonal, require_csr
 
 __all__ = ["IncompleteCholesky", "ic0_reference"]
 

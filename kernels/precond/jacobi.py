@@ -2,8 +2,8 @@
 
 import numpy as np
 
-from kernels._jit import sparse as _k
-from kernels.precond.registry import Preconditioner, checked_diagonal, require_csr
+from hatkernels._jit import sparse as _k
+from hatkernels.precond.registry import Preconditioner, checked_diagonal, require_csr
 
 __all__ = ["Identity", "Jacobi"]
 
@@ -13,7 +13,7 @@ class Identity(Preconditioner):
 
     name = "none"
     kind = "identity (no preconditioning)"
-    #: Tells :func:`kernels.krylov.cg` to skip the apply (plain CG).
+    #: Tells :func:`hatkernels.krylov.cg` to skip the apply (plain CG).
     is_identity = True
 
     def __init__(self, A):
@@ -27,7 +27,7 @@ class Jacobi(Preconditioner):
     """``M = diag(A)^{-1}``.
 
     Setup reads the matrix once; an apply reads two vectors and writes one
-    (24 bytes and 1 flop per unknown).  :func:`kernels.krylov.cg` fuses it
+    (24 bytes and 1 flop per unknown).  :func:`hatkernels.krylov.cg` fuses it
     into its vector update through ``inverse_diagonal``.
 
     Raises

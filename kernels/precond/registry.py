@@ -16,8 +16,8 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator
 
-from kernels.errors import InputError
-from kernels.sparse import as_csr
+from hatkernels.errors import InputError
+from hatkernels.sparse import as_csr
 
 __all__ = [
     "PRECONDITIONERS",
@@ -203,7 +203,7 @@ def make_preconditioner(A, name, **options):
     Examples
     --------
     >>> from pyamg.gallery import poisson
-    >>> from kernels.precond import make_preconditioner
+    >>> from hatkernels.precond import make_preconditioner
     >>> M = make_preconditioner(poisson((4, 4), format="csr"), "jacobi")
     >>> M.shape, M.dtype
     ((16, 16), dtype('float64'))
