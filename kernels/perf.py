@@ -6,13 +6,15 @@ Used by the benchmark suite in ``bench/`` and by ``hatkernels bench``.
 from __future__ import annotations
 
 import os
+import resource
+import sys
 import threading
 import time
 import tracemalloc
 
 import numpy as np
 
-__all__ = ["memory_bandwidth", "PeakMemory", "rss_bytes", "timed_first_call"]
+__all__ = ["memory_bandwidth", "PeakMemory", "peak_rss_bytes", "rss_bytes", "timed_first_call"]
 
 _PAGE = os.sysconf("SC_PAGE_SIZE") if hasattr(os, "sysconf") else 4096
 
@@ -24,6 +26,12 @@ def rss_bytes():
             return int(f.read().split()[1]) * _PAGE
     except OSError:
         return 0
+
+
+def peak_rss_bytes():
+    """The process's high-water mark of resident memory, in bytes (the one place that reads it)."""
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    return int(peak if sys.platform == "darwin" else peak * 1024)  # kB on Linux
 
 
 class PeakMemory:
