@@ -162,8 +162,10 @@ def test_rectangle(split):
 def test_rectangle_numbering_and_bad_arguments():
     m = rectangle(3, 2)
     assert m.points[2 * 4 + 1].tolist() == pytest.approx([1 / 3, 1.0])
-    with pytest.raises(hatkernels.InputError, match="nx must be at least 1"):
+    with pytest.raises(hatkernels.InputError, match="nx must be >= 1, got 0"):
         rectangle(0, 2)
+    with pytest.raises(hatkernels.InputError, match="ny must be an integer, got 2.5"):
+        rectangle(2, 2.5)
     with pytest.raises(hatkernels.InputError, match="x0 < x1"):
         rectangle(2, 2, bounds=(1, 0, 0, 1))
     with pytest.raises(hatkernels.InputError, match="unknown split"):
@@ -192,6 +194,21 @@ def test_disk(n):
     k = 6 * n
     assert m.areas().sum() == pytest.approx(0.5 * k * r * r * np.sin(2 * np.pi / k), rel=1e-12)
     assert m.quality().min_angle > 40
+
+
+def test_disk_and_hilbert_bad_arguments():
+    with pytest.raises(hatkernels.InputError, match="radius must be > 0, got -1"):
+        disk(2, radius=-1)
+    with pytest.raises(hatkernels.InputError, match="radius must be a finite number, got inf"):
+        disk(2, radius=np.inf)
+    with pytest.raises(hatkernels.InputError, match="center must be a pair"):
+        disk(2, center=(0.0, 1.0, 2.0))
+    with pytest.raises(hatkernels.InputError, match="n must be an integer, got True"):
+        disk(True)
+    with pytest.raises(hatkernels.InputError, match="bits must be between 1 and 31, got 32"):
+        hilbert_keys(SQUARE, 32)
+    with pytest.raises(hatkernels.InputError, match="bits must be an integer, got 4.0"):
+        hilbert_keys(SQUARE, 4.0)
 
 
 def test_triangulate_with_inside_and_errors():
@@ -227,6 +244,41 @@ def test_refine_is_nested_and_consistent(m):
     assert (fresh.boundary_edges() == f.boundary_edges()).all()
     assert (fresh.edges() == f.edges()).all()
     assert f.levels() == [m, f]
+
+
+def test_refine_leaves_the_coarse_cache_as_it_was_but_for_the_edges():
+    m = rectangle(3, 3)
+    assert m.cached() == frozenset()
+    m.refine()
+    # the edges are kept (the refinement holds them anyway); the boundary and the
+    # unused points were needed to carry them over
+    assert m.cached() == {"edges", "boundary_edges", "unused"}
+    m.triangle_edges()
+    m.refine()  # what was there before stays
+    assert {"incidence", "triangle_edges"} <= m.cached()
+
+
+def test_forget_drops_only_the_cache():
+    m = jittered_mesh(5, 3)
+    points, cells = m.points, m.triangles
+    edges, boundary = m.edges().copy(), m.boundary_points().copy()
+    m.forget("edges", "boundary_points", "areas")  # areas was not cached: ignored
+    assert "edges" not in m.cached() and "boundary_points" not in m.cached()
+    assert m.points is points and m.triangles is cells  # the mesh itself is untouched
+    assert (m.edges() == edges).all() and (m.boundary_points() == boundary).all()
+    assert {"edges", "boundary_points"} <= m.cached()
+    m.forget(*m.cached())
+    assert m.cached() == frozenset()
+    assert (m.unused_points() == []).all()
+    with pytest.raises(hatkernels.InputError, match="'points' is not a cached array"):
+        m.forget("points")
+
+
+def test_refine_and_reorder_refuse_what_is_not_a_mesh():
+    with pytest.raises(hatkernels.InputError, match="refine needs a hatkernels.Mesh, got list"):
+        hatkernels.mesh.refine([SQUARE, TWO])
+    with pytest.raises(hatkernels.InputError, match="reorder needs a hatkernels.Mesh, got tuple"):
+        hatkernels.mesh.reorder((SQUARE, TWO))
 
 
 def test_refine_twice_keeps_history():

@@ -6,10 +6,12 @@
 Mesh(81 points, 128 triangles, 1 refinements)
 """
 
-from hatkernels.mesh.core import DEGENERATE_TOL, Mesh, Refinement, index_dtype
+from hatkernels.mesh.core import DEGENERATE_TOL, Mesh
+from hatkernels.mesh.core_index import index_dtype
 from hatkernels.mesh.generators import SPLITS, disk, l_shape, rectangle, triangulate
 from hatkernels.mesh.quality import MeshQuality, quality
 from hatkernels.mesh.refine import refine
+from hatkernels.mesh.refinement import Refinement
 from hatkernels.mesh.reorder import REORDERINGS, MeshPermutation, hilbert_keys, reorder
 
 __all__ = [

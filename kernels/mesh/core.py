@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import dataclasses
 import warnings
 
 import numpy as np
@@ -10,8 +9,15 @@ import numpy as np
 from hatkernels._jit import geometry as _jit_geometry
 from hatkernels._jit import topology as _topo
 from hatkernels._sets import index_union
-from hatkernels.errors import MeshError, MeshWarning
+from hatkernels.errors import InputError, MeshError, MeshWarning
+from hatkernels.mesh.core_index import index_dtype
+from hatkernels.mesh.pattern import csr_pattern
+from hatkernels.mesh.quality import quality as _quality
+from hatkernels.mesh.refine import refine as _refine
+from hatkernels.mesh.refinement import Refinement
+from hatkernels.mesh.reorder import reorder as _reorder
 
+# Refinement and index_dtype are re-exported: they were first defined here.
 __all__ = ["Mesh", "Refinement", "index_dtype", "DEGENERATE_TOL"]
 
 #: A triangle is degenerate when twice its area is at most this fraction of
@@ -21,37 +27,11 @@ __all__ = ["Mesh", "Refinement", "index_dtype", "DEGENERATE_TOL"]
 #: while accepting anisotropic triangles up to aspect ratios near 1e12.
 DEGENERATE_TOL = 1e-12
 
-from hatkernels.mesh.core_index import index_dtype  # noqa: E402  (re-exported)
-
-
-@dataclasses.dataclass(frozen=True, repr=False)
-class Refinement:
-    """How a mesh was made from a coarser one by :meth:`Mesh.refine`.
-
-    Attributes
-    ----------
-    coarse : Mesh
-        The mesh that was refined.
-    coarse_points : ndarray, shape (coarse.n_points,)
-        The fine number of each coarse point (same position).
-    edge_points : ndarray, shape (n_coarse_edges, 2)
-        The two coarse points of each coarse edge (``coarse.edges()``).
-    midpoints : ndarray, shape (n_coarse_edges,)
-        The fine number of the point at the middle of each coarse edge.
-
-    The fine points are numbered in the order the fine triangles first use
-    them, which keeps neighbours close in memory at every level; these maps
-    are all that interpolation between the levels needs.  The four children
-    of coarse triangle ``t`` are fine triangles ``4t .. 4t+3``.
-    """
-
-    coarse: "Mesh"
-    coarse_points: np.ndarray
-    edge_points: np.ndarray
-    midpoints: np.ndarray
-
-    def __repr__(self):
-        return f"Refinement(coarse={self.coarse!r}, new points={len(self.edge_points)})"
+#: The derived arrays a mesh may hold in its cache, by name (see :meth:`Mesh.cached`).
+CACHEABLE = frozenset(
+    {"areas", "boundary_edges", "boundary_points", "edges", "incidence", "triangle_edges",
+     "unused"}
+)
 
 
 def _readonly(a):
@@ -361,8 +341,6 @@ class Mesh:
 
     def _edge_topology(self):
         if "edges" not in self._cache or "triangle_edges" not in self._cache:
-            from hatkernels.mesh.pattern import csr_pattern
-
             tri = self._triangles_for_topology()
             ptr, codes = self._incidence()
             indptr, indices, diag, _, _ = csr_pattern(tri, ptr, codes, with_slots=False)
@@ -422,6 +400,50 @@ class Mesh:
         """Longest edge length in the mesh (the mesh size)."""
         return float(np.sqrt(_longest_edge_sq(self._points, self._triangles).max()))
 
+    # -- the cache -----------------------------------------------------------------
+
+    def cached(self):
+        """Names of the derived arrays the mesh holds now, a frozenset (see :data:`CACHEABLE`).
+
+        >>> from hatkernels.mesh import rectangle
+        >>> m = rectangle(2, 2)
+        >>> _ = m.edges()
+        >>> sorted(m.cached())
+        ['edges', 'incidence', 'triangle_edges']
+        """
+        return frozenset(self._cache)
+
+    def forget(self, *names):
+        """Drop derived arrays from the cache; they are computed again when next asked for.
+
+        For a caller that needs a large piece of topology once and should not
+        leave it behind (refinement, the matrix-free operator's edge list): at
+        1e8 triangles the incidence and the triangle-to-edge map are
+        gigabytes.  The points and cells never change, so nothing but memory
+        and time is at stake.  Names not cached are ignored.
+
+        Raises
+        ------
+        InputError
+            For a name that is not one of :data:`CACHEABLE`.
+
+        >>> from hatkernels.mesh import rectangle
+        >>> m = rectangle(2, 2)
+        >>> before = m.cached()
+        >>> _ = m.edges()
+        >>> m.forget(*(m.cached() - before))
+        >>> m.cached() == before
+        True
+        """
+        unknown = sorted(set(names) - CACHEABLE)
+        if unknown:
+            raise InputError(
+                f"Mesh.forget: {unknown[0]!r} is not a cached array; choose from "
+                f"{sorted(CACHEABLE)}"
+            )
+        for name in names:
+            self._cache.pop(name, None)
+
     # -- derived meshes ----------------------------------------------------------
 
     def refine(self):
@@ -433,18 +455,12 @@ class Mesh:
         The four children of triangle ``t`` are triangles ``4t .. 4t+3``;
         boundary topology is carried over without recomputation.
         """
-        from hatkernels.mesh.refine import refine
-
-        return refine(self)
+        return _refine(self)
 
     def reorder(self, method="rcm"):
         """Renumber points and triangles for locality; see :func:`hatkernels.mesh.reorder`."""
-        from hatkernels.mesh.reorder import reorder
-
-        return reorder(self, method)
+        return _reorder(self, method)
 
     def quality(self):
         """Angles, areas and aspect ratios; see :class:`hatkernels.mesh.MeshQuality`."""
-        from hatkernels.mesh.quality import quality
-
-        return quality(self)
+        return _quality(self)

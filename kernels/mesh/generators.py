@@ -1,13 +1,14 @@
 """Mesh generators: rectangles, an L-shaped domain, a disk, and Delaunay of given points."""
 
-import numbers
 import warnings
 
 import numpy as np
 from scipy.spatial import Delaunay
 
+from hatkernels.checks import integer_option, real_option
 from hatkernels.errors import InputError, MeshWarning
-from hatkernels.mesh.core import DEGENERATE_TOL, Mesh, index_dtype, signed_double_areas
+from hatkernels.mesh.core import DEGENERATE_TOL, Mesh, _check_points, signed_double_areas
+from hatkernels.mesh.core_index import index_dtype
 
 __all__ = ["rectangle", "l_shape", "disk", "triangulate", "SPLITS"]
 
@@ -15,14 +16,6 @@ __all__ = ["rectangle", "l_shape", "disk", "triangulate", "SPLITS"]
 #: left to upper right), the falling one (lower right to upper left), the two
 #: in a checkerboard, or into four triangles around a centre point.
 SPLITS = ("rising", "falling", "checkerboard", "quartered")
-
-
-def _count(value, name, minimum=1):
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise InputError(f"{name} must be an integer, got {value!r}")
-    if value < minimum:
-        raise InputError(f"{name} must be at least {minimum}, got {value}")
-    return int(value)
 
 
 def _bounds(bounds):
@@ -84,8 +77,8 @@ def rectangle(nx, ny=None, *, bounds=(0.0, 1.0, 0.0, 1.0), split="rising"):
     >>> rectangle(2, 1, split="quartered")
     Mesh(8 points, 8 triangles)
     """
-    nx = _count(nx, "nx")
-    ny = nx if ny is None else _count(ny, "ny")
+    nx = integer_option(nx, "nx", minimum=1)
+    ny = nx if ny is None else integer_option(ny, "ny", minimum=1)
     x0, x1, y0, y1 = _bounds(bounds)
     if split not in SPLITS:
         raise InputError(f"unknown split {split!r}; choose one of {SPLITS}")
@@ -114,7 +107,7 @@ def l_shape(n, *, split="rising"):
     >>> m.n_triangles, float(m.areas().sum())
     (24, 3.0)
     """
-    n = _count(n, "n")
+    n = integer_option(n, "n", minimum=1)
     full = rectangle(2 * n, 2 * n, bounds=(-1.0, 1.0, -1.0, 1.0), split=split)
     cent = full.points[full.triangles].mean(axis=1)
     keep = ~((cent[:, 0] > 0) & (cent[:, 1] < 0))
@@ -140,16 +133,12 @@ def disk(n, *, radius=1.0, center=(0.0, 0.0)):
     >>> m.n_points, m.n_triangles
     (37, 54)
     """
-    n = _count(n, "n")
+    n = integer_option(n, "n", minimum=1)
+    radius = real_option(radius, "radius", positive=True)
     try:
-        radius = float(radius)
-        cx, cy = (float(c) for c in center)
+        cx, cy = (real_option(c, "center") for c in center)
     except (TypeError, ValueError):
-        raise InputError(
-            f"radius must be a number and center a pair, got {radius!r}, {center!r}"
-        ) from None
-    if not (np.isfinite(radius) and radius > 0):
-        raise InputError(f"radius must be positive and finite, got {radius!r}")
+        raise InputError(f"center must be a pair of finite numbers, got {center!r}") from None
     pts = [np.array([[cx, cy]])]
     tris = []
     for k in range(1, n + 1):
@@ -198,8 +187,6 @@ def triangulate(points, *, inside=None, degenerate_tol=DEGENERATE_TOL):
     >>> m.n_triangles
     4
     """
-    from hatkernels.mesh.core import _check_points
-
     p = _check_points(points)
     if len(p) < 3:
         raise InputError(f"need at least 3 points to triangulate, got {len(p)}")

@@ -1,9 +1,16 @@
-"""Uniform nested refinement: every triangle into four by its edge midpoints."""
+"""Uniform nested refinement: every triangle into four by its edge midpoints.
+
+The refined mesh is built by the class of the mesh it comes from
+(``type(mesh)._trusted``), so this module needs nothing from
+:mod:`hatkernels.mesh.core`, which imports it.
+"""
 
 import numpy as np
 
 from hatkernels._jit import topology as _topo
-from hatkernels.mesh.core import Mesh, Refinement, index_dtype
+from hatkernels.errors import InputError
+from hatkernels.mesh.core_index import index_dtype
+from hatkernels.mesh.refinement import Refinement
 
 __all__ = ["refine"]
 
@@ -32,7 +39,9 @@ def refine(mesh):
     >>> fine.points[r.midpoints[0]].tolist() == ((coarse.points[a] + coarse.points[b]) / 2).tolist()
     True
     """
-    had = set(mesh._cache)
+    if not callable(getattr(type(mesh), "_trusted", None)):
+        raise InputError(f"refine needs a hatkernels.Mesh, got {type(mesh).__name__}")
+    had = mesh.cached()
     edges, tri_edges = mesh._edge_topology()
     n, m, n_edges = mesh.n_points, mesh.n_triangles, len(edges)
     dt = index_dtype(n + n_edges, 3 * 4 * m + 3)
@@ -75,10 +84,8 @@ def refine(mesh):
     # Leave the coarse mesh's cache as it was, but for the edges (which the
     # refinement keeps anyway): at 10^8 triangles the incidence and the
     # triangle-to-edge map of the coarse level are gigabytes.
-    for key in ("incidence", "triangle_edges"):
-        if key not in had:
-            mesh._cache.pop(key, None)
-    return Mesh._trusted(
+    mesh.forget(*({"incidence", "triangle_edges"} - had))
+    return type(mesh)._trusted(
         points,
         tri,
         refinement=Refinement(

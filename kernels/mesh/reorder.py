@@ -1,4 +1,9 @@
-"""Renumbering points and triangles: bandwidth (RCM) or cache locality (Hilbert curve)."""
+"""Renumbering points and triangles: bandwidth (RCM) or cache locality (Hilbert curve).
+
+The renumbered mesh is built by the class of the mesh it comes from
+(``type(mesh)._trusted``), so this module needs nothing from
+:mod:`hatkernels.mesh.core`, which imports it.
+"""
 
 from typing import NamedTuple
 
@@ -7,8 +12,8 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from hatkernels._jit import reorder as _jit_reorder
+from hatkernels.checks import integer_option
 from hatkernels.errors import InputError
-from hatkernels.mesh.core import Mesh
 
 __all__ = ["reorder", "MeshPermutation", "hilbert_keys", "REORDERINGS"]
 
@@ -43,6 +48,7 @@ def hilbert_keys(xy, bits=16, *, plain=False):
     The numba kernel does one point per iteration; ``plain=True`` runs the
     vectorised NumPy version it is tested against.
     """
+    bits = integer_option(bits, "bits")
     if not 1 <= bits <= 31:
         raise InputError(f"bits must be between 1 and 31, got {bits}")
     q = _cells(xy, bits)
@@ -95,6 +101,8 @@ def reorder(mesh, method="rcm"):
     >>> bool((new.points == m.points[perm.points]).all())
     True
     """
+    if not callable(getattr(type(mesh), "_trusted", None)):
+        raise InputError(f"reorder needs a hatkernels.Mesh, got {type(mesh).__name__}")
     if method not in REORDERINGS:
         raise InputError(f"unknown reordering {method!r}; choose one of {REORDERINGS}")
     tri = mesh.triangles
@@ -120,7 +128,7 @@ def reorder(mesh, method="rcm"):
         cent = mesh.points[tri].mean(axis=1)
         tperm = np.argsort(hilbert_keys(cent), kind="stable")
     tperm = tperm.astype(tri.dtype)
-    new = Mesh._trusted(
+    new = type(mesh)._trusted(
         mesh.points[perm], new_tri[tperm], unused=np.sort(inv[mesh.unused_points()])
     )
     return new, MeshPermutation(points=perm, triangles=tperm)
