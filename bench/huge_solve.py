@@ -53,20 +53,20 @@ def main(argv=None):
 
     sol = hatkernels.solve_poisson(mesh, 1.0, preconditioner="gmg", rtol=args.rtol, progress=progress)
     st = sol.stats
-    report["phases"].update(st["timings"])
+    report["phases"].update(st.timings)
     report.update(
-        iterations=st["iterations"],
+        iterations=st.iterations,
         converged=sol.converged,
-        final_relative_residual=float(st["residuals"][-1] / st["residuals"][0]),
+        final_relative_residual=float(st.residuals[-1] / st.residuals[0]),
         u_max=float(sol.u.max()),
-        peak_rss_GiB=st["peak_rss_bytes"] / 2**30,
-        peak_rss_bytes_per_triangle=st["peak_rss_bytes"] / mesh.n_triangles,
-        preconditioner=st["preconditioner"],
+        peak_rss_GiB=st.peak_rss_bytes / 2**30,
+        peak_rss_bytes_per_triangle=st.peak_rss_bytes / mesh.n_triangles,
+        preconditioner=st.preconditioner,
     )
     print(f"{mesh.n_triangles:,} triangles, {mesh.n_points:,} points, {report['threads']} threads")
     for name, secs in report["phases"].items():
         print(f"  {name:>9}: {secs:8.1f} s")
-    print(f"  CG + gmg: {st['iterations']} iterations, converged={sol.converged}, "
+    print(f"  CG + gmg: {st.iterations} iterations, converged={sol.converged}, "
           f"relative residual {report['final_relative_residual']:.2e}")
     print(f"  max u = {report['u_max']:.7f} (exact 0.0736713 for the unit square)")
     print(f"  peak memory {report['peak_rss_GiB']:.1f} GiB "

@@ -29,7 +29,7 @@ def main():
             s = hatkernels.solve_poisson(
                 m, 1.0, coefficient=coef, preconditioner=pc, rtol=1e-8, maxiter=5000
             )
-            row.append(f"{pc} {s.stats['iterations'] if s.converged else 'no'}")
+            row.append(f"{pc} {s.stats.iterations if s.converged else 'no'}")
         print(name, "|", ", ".join(row))
 
 

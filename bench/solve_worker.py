@@ -141,25 +141,25 @@ def _plain(mesh, name):
 def _ours(mesh, name):
     sol = solve_poisson(mesh, 1.0, rtol=RTOL, **METHODS[name][1])
     st = sol.stats
-    t = st["timings"]
+    t = st.timings
     # for the traffic model (test_bench_solve.py).  The preconditioner's stored bytes are
     # read from its description ("..., memory N bytes, ..."): solve_poisson keeps no
     # handle on it; None when the description does not say
-    found = re.search(r"memory (\d+) bytes", st["preconditioner"])
+    found = re.search(r"memory (\d+) bytes", st.preconditioner)
     pc_bytes = None if found is None else int(found.group(1))
     pc_read = pc_bytes
-    op_read = st["operator_bytes"]
-    if st["matrix_free"]:  # the products read the mesh besides the operator's arrays
+    op_read = st.stored_bytes
+    if st.matrix_free:  # the products read the mesh besides the operator's arrays
         op_read += mesh_read_bytes(mesh, DEFAULT_VARIANT)
         if pc_read is not None and name == "gmg":  # so do gmg's level operators
             pc_read += sum(mesh_read_bytes(m, DEFAULT_VARIANT) for m in mesh.levels()[1:])
     return sol.u, {"assemble_s": t["boundary"] + t["assemble"], "setup_s": t["setup"],
-                   "solve_s": t["solve"], "iterations": st["iterations"],
-                   "converged": bool(sol.converged), "description": st["preconditioner"],
-                   "matrix_free": st["matrix_free"], "operator_bytes": st["operator_bytes"],
+                   "solve_s": t["solve"], "iterations": st.iterations,
+                   "converged": bool(sol.converged), "description": st.preconditioner,
+                   "matrix_free": st.matrix_free, "operator_bytes": st.stored_bytes,
                    "operator_read_bytes": int(op_read), "preconditioner_bytes": pc_bytes,
                    "preconditioner_read_bytes": pc_read,
-                   "vector_length": int(mesh.n_points if st["matrix_free"] else st["unknowns"])}
+                   "vector_length": int(mesh.n_points if st.matrix_free else st.unknowns)}
 
 
 def run(name, mesh):

@@ -26,9 +26,12 @@ from hatkernels.errors import ConvergenceError, InputError, MeshError, MeshWarni
 from hatkernels.geometry import element_gradients
 from hatkernels.mesh import Mesh
 from hatkernels.operators import StiffnessOperator
+from hatkernels.discretise import LinearSystem, discretise
 from hatkernels.poisson import PoissonSolution, solve_poisson
+from hatkernels.problem import PoissonProblem
 from hatkernels.precond import PRECONDITIONERS, make_preconditioner, register_preconditioner
-from hatkernels.solve import SolveResult, solve
+from hatkernels.solver import SolveResult, solve
+from hatkernels.stats import SolveStats
 
 __version__ = "0.1.0"
 
@@ -41,11 +44,15 @@ __all__ = [
     "Mesh",
     "MeshError",
     "MeshWarning",
+    "LinearSystem",
+    "PoissonProblem",
     "PoissonSolution",
     "SolveResult",
+    "SolveStats",
     "StiffnessAssembler",
     "StiffnessOperator",
     "apply_dirichlet",
+    "discretise",
     "distributed",
     "assemble_boundary_load",
     "assemble_boundary_mass",

@@ -11,6 +11,7 @@ from hypothesis import strategies as st
 from linear_cases import random_spd
 from pyamg.gallery import poisson
 
+import hatkernels
 from hatkernels.errors import InputError
 from hatkernels.krylov import cg_with_history
 from hatkernels.precond import (
@@ -91,7 +92,7 @@ def user_name():
 
 
 def test_register_user_preconditioner(user_name):
-    def factory(A, *, scale=1.0):
+    def factory(A, context, *, scale=1.0):
         n = A.shape[0]
         return sla.LinearOperator((n, n), matvec=lambda r: scale * r, dtype=np.float64)
 
@@ -107,18 +108,38 @@ def test_register_user_preconditioner(user_name):
         make_preconditioner(A, user_name, shift=1)
     with pytest.raises(InputError, match="already registered"):
         register_preconditioner(user_name, factory)
-    register_preconditioner(user_name, lambda A: sla.aslinearoperator(sp.eye_array(A.shape[0])),
+    register_preconditioner(user_name,
+                            lambda A, context: sla.aslinearoperator(sp.eye_array(A.shape[0])),
                             overwrite=True)
     res = cg_with_history(A, np.ones(A.shape[0]), M=make_preconditioner(A, user_name))
     assert res.info == 0
-    register_preconditioner(user_name, lambda A: np.eye(3), overwrite=True)
+    register_preconditioner(user_name, lambda A, context: np.eye(3), overwrite=True)
     with pytest.raises(InputError, match="returned ndarray"):
         make_preconditioner(A, user_name)
+    with pytest.raises(InputError, match=r"must take \(A, context, \*\*options\)"):
+        register_preconditioner(user_name, lambda A: A, overwrite=True)
+
+
+def test_user_factory_sees_the_context(user_name):
+    # the context carries the mesh and the held points, so a factory can use the
+    # geometry without the driver knowing the preconditioner by name
+    seen = {}
+
+    def factory(A, context):
+        seen["mesh"], seen["fixed"] = context.mesh, context.fixed
+        return sla.aslinearoperator(sp.eye_array(A.shape[0]))
+
+    register_preconditioner(user_name, factory)
+    mesh = hatkernels.mesh.rectangle(6, 6)
+    sol = hatkernels.solve_poisson(mesh, 1.0, preconditioner=user_name)
+    assert sol.converged and seen["mesh"] is mesh
+    assert np.array_equal(seen["fixed"], mesh.boundary_points())
+    assert not hatkernels.precond.capabilities(user_name).prefers_matrix_free
 
 
 def test_register_rejects_bad_arguments():
     with pytest.raises(InputError, match="non-empty string"):
-        register_preconditioner("", lambda A: A)
+        register_preconditioner("", lambda A, context: A)
     with pytest.raises(InputError, match="callable"):
         register_preconditioner("x-not-callable", 3)
     assert "x-not-callable" not in PRECONDITIONERS

@@ -9,7 +9,7 @@ from pyamg.gallery import poisson
 
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.precond import PRECONDITIONERS, make_preconditioner
-from hatkernels.solve import SolveResult, solve
+from hatkernels.solver import SolveResult, solve
 
 
 def spd_case():
@@ -38,9 +38,9 @@ def test_solution_equals_spsolve(case, preconditioner):
     assert np.linalg.norm(result.x - ref) <= 1e-8 * np.linalg.norm(ref)
     assert result.residuals.shape == (result.iterations + 1,)
     assert result.residuals[0] == pytest.approx(np.linalg.norm(b))
-    assert set(result.timings) == {"setup", "solve"}
-    assert all(t >= 0 for t in result.timings.values())
-    assert result.preconditioner.startswith(preconditioner)
+    assert set(result.stats.timings) == {"setup", "solve"}
+    assert all(t >= 0 for t in result.stats.timings.values())
+    assert result.stats.preconditioner.startswith(preconditioner)
 
 
 def test_all_builtin_names_are_covered():
@@ -51,7 +51,7 @@ def test_default_is_amg_and_tolerance_1e8():
     A = CASES["poisson2d"]()
     b = np.ones(A.shape[0])
     result = solve(A, b)
-    assert result.preconditioner.startswith("amg (= amg-")
+    assert result.stats.preconditioner.startswith("amg (= amg-")
     assert np.linalg.norm(b - A @ result.x) <= 1e-8 * np.linalg.norm(b)
 
 
@@ -60,10 +60,10 @@ def test_preconditioner_instance_and_options():
     b = np.ones(A.shape[0])
     M = make_preconditioner(A, "ic0", modified=True)
     result = solve(A, b, preconditioner=M)
-    assert result.converged and result.timings["setup"] == 0.0
-    assert "modified incomplete Cholesky" in result.preconditioner
+    assert result.converged and result.stats.timings["setup"] == 0.0
+    assert "modified incomplete Cholesky" in result.stats.preconditioner
     optioned = solve(A, b, preconditioner="amg-rs", cycle="W", max_levels=3)
-    assert optioned.converged and "W-cycle" in optioned.preconditioner
+    assert optioned.converged and "W-cycle" in optioned.stats.preconditioner
     with pytest.raises(InputError, match="options .*cycle.* given with a preconditioner instance"):
         solve(A, b, preconditioner=M, cycle="V")
     with pytest.raises(InputError, match="unknown option 'smoothing'"):

@@ -12,7 +12,7 @@ from hatkernels.coefficients import parse_edge_coefficient
 from hatkernels.errors import InputError
 from hatkernels.quadrature import edge_rule
 
-__all__ = ["check_edges", "boundary_load", "boundary_mass"]
+__all__ = ["check_edges", "boundary_load", "boundary_mass", "side_load", "side_mass"]
 
 
 def check_edges(mesh, edges):
@@ -68,6 +68,11 @@ def boundary_load(mesh, g, edges=None, *, quadrature=2):
     """``b_i = int_Gamma g phi_i ds`` over the given edges; see :func:`hatkernels.assemble_boundary_load`."""
     e = check_edges(mesh, edges)
     coef = parse_edge_coefficient(g, mesh, len(e), name="boundary load", sign="any")
+    return side_load(mesh, coef, e, quadrature)
+
+
+def side_load(mesh, coef, e, quadrature):
+    """:func:`boundary_load` for checked sides ``e`` (E, 2) and a parsed coefficient (trusted)."""
     L = _lengths(mesh, e)
     if coef.kind == "constant":
         ve = np.repeat((L * coef.value / 2)[:, None], 2, axis=1)
@@ -86,6 +91,11 @@ def boundary_mass(mesh, r, edges=None, *, quadrature=2):
     """``R_ij = int_Gamma r phi_i phi_j ds`` over the given edges, as canonical CSR."""
     e = check_edges(mesh, edges)
     coef = parse_edge_coefficient(r, mesh, len(e), name="boundary coefficient", sign="nonnegative")
+    return side_mass(mesh, coef, e, quadrature)
+
+
+def side_mass(mesh, coef, e, quadrature):
+    """:func:`boundary_mass` for checked sides ``e`` (E, 2) and a parsed coefficient (trusted)."""
     L = _lengths(mesh, e)
     if coef.kind in ("constant", "edge"):
         rv = coef.value

@@ -39,13 +39,11 @@ from hatkernels.distributed.precond import COARSE_SPACES, make_distributed_preco
 from hatkernels.distributed.subdomain import local_coefficient, subdomain
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.mesh.core import Mesh
-from hatkernels.poisson import (
-    PoissonSolution,
-    _dirichlet_nodes,
-    _dirichlet_values,
-    _free_edges,
-    _peak_rss,
-)
+from hatkernels.conditions import _held_points as _dirichlet_nodes
+from hatkernels.conditions import _held_values as _dirichlet_values
+from hatkernels.conditions import free_sides as _free_edges
+from hatkernels.perf import peak_rss_bytes as _peak_rss
+from hatkernels.poisson import PoissonSolution
 
 __all__ = ["DistributedPoissonSolution", "solve_poisson", "GATHER"]
 

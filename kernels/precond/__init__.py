@@ -23,14 +23,20 @@ from hatkernels.precond.ichol import IncompleteCholesky
 from hatkernels.precond.jacobi import Identity, Jacobi
 from hatkernels.precond.registry import (
     PRECONDITIONERS,
+    Capabilities,
     Preconditioner,
+    PreconditionerContext,
+    capabilities,
     make_preconditioner,
     register_preconditioner,
 )
 
 __all__ = [
     "PRECONDITIONERS",
+    "Capabilities",
     "Preconditioner",
+    "PreconditionerContext",
+    "capabilities",
     "make_preconditioner",
     "register_preconditioner",
     "Identity",

@@ -206,6 +206,24 @@ class GeometricMultigrid(Preconditioner):
 
     name = "gmg"
     kind = "geometric multigrid on nested refinements (matrix-free)"
+    needs_matrix = False
+    prefers_matrix_free = True
+
+    @classmethod
+    def from_context(cls, A, context, **options):
+        """Take the mesh, coefficient, held points and variant from ``context`` unless given.
+
+        A :class:`~hatkernels.StiffnessOperator` ``A`` brings its own (and
+        the finest level then shares its data), so the context is not read.
+        """
+        if isinstance(A, StiffnessOperator):
+            return cls(A, **options)
+        for key, value in (("mesh", context.mesh), ("coefficient", context.coefficient),
+                           ("dirichlet", context.fixed), ("variant", context.variant)):
+            if value is not None:
+                options.setdefault(key, value)
+        options.setdefault("quadrature", context.quadrature)
+        return cls(A, **options)
 
     def __init__(
         self,

@@ -15,6 +15,7 @@ class Identity(Preconditioner):
     kind = "identity (no preconditioning)"
     #: Tells :func:`hatkernels.krylov.cg` to skip the apply (plain CG).
     is_identity = True
+    needs_matrix = False
 
     def __init__(self, A):
         super().__init__(A.shape[0])

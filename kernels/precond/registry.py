@@ -1,13 +1,24 @@
-"""The preconditioner registry, the common base class and shared checks.
+"""The preconditioner registry, the common base class, the context and shared checks.
 
-A preconditioner is built once from a matrix (setup) and applied many times
-(a scipy ``LinearOperator`` approximating ``A^{-1}``, symmetric positive
-definite so that conjugate gradients can use it).  Factories are registered
-by name; :func:`make_preconditioner` looks the name up, checks the options
-against the factory's keyword parameters, times the setup and returns the
-operator.
+A preconditioner is built once from a matrix or operator (setup) and applied
+many times (a scipy ``LinearOperator`` approximating ``A^{-1}``, symmetric
+positive definite so that conjugate gradients can use it).  Factories are
+registered by name and called as ``factory(A, context, **options)``:
+:class:`PreconditionerContext` carries what the system came from (the mesh
+with its refinement history, the coefficient, the held points), so that a
+preconditioner that needs more than the matrix takes it from there and no
+other layer has to know it by name.  :func:`make_preconditioner` looks the
+name up, checks the options against the factory's keyword parameters, times
+the setup and returns the operator.
+
+What a factory can work with is said by two attributes (on the class or
+function; both default to the common case): ``needs_matrix`` (True: ``A``
+must be an assembled sparse matrix; False: any operator will do) and
+``prefers_matrix_free`` (True: a driver that can choose should hand it a
+matrix-free operator).  :func:`capabilities` reads them.
 """
 
+import dataclasses
 import inspect
 import time
 from collections.abc import Sequence
@@ -16,12 +27,16 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator
 
+from hatkernels._text import format_seconds
 from hatkernels.errors import InputError
 from hatkernels.sparse import as_csr
 
 __all__ = [
     "PRECONDITIONERS",
+    "Capabilities",
     "Preconditioner",
+    "PreconditionerContext",
+    "capabilities",
     "make_preconditioner",
     "register_preconditioner",
     "require_csr",
@@ -29,12 +44,39 @@ __all__ = [
 ]
 
 
-def _format_seconds(t):
-    if t < 1e-3:
-        return f"{t * 1e6:.0f} us"
-    if t < 1.0:
-        return f"{t * 1e3:.1f} ms"
-    return f"{t:.2f} s"
+@dataclasses.dataclass(frozen=True)
+class PreconditionerContext:
+    """Where a system came from, for preconditioners that use more than its matrix.
+
+    Attributes
+    ----------
+    mesh : Mesh or None
+        The mesh of the system (its refinement history is ``mesh.levels()``).
+    coefficient : Coefficient or None
+        The parsed diffusion coefficient of the stiffness term.
+    fixed : ndarray or None
+        The held (Dirichlet) points, sorted, in the mesh's numbering.  When
+        the system has fewer rows than the mesh has points, these are the
+        points it was reduced by.
+    variant : str or None
+        The matrix-free variant for operators built on the mesh.
+    quadrature : int
+        Degree of the rule for callable coefficients.
+    """
+
+    mesh: object = None
+    coefficient: object = None
+    fixed: object = None
+    variant: object = None
+    quadrature: int = 2
+
+
+@dataclasses.dataclass(frozen=True)
+class Capabilities:
+    """What a registered preconditioner works with (see the module notes)."""
+
+    needs_matrix: bool = True
+    prefers_matrix_free: bool = False
 
 
 class Preconditioner(LinearOperator):
@@ -47,6 +89,8 @@ class Preconditioner(LinearOperator):
 
     name = "?"
     kind = "?"
+    needs_matrix = True
+    prefers_matrix_free = False
 
     def __init__(self, n):
         super().__init__(dtype=np.dtype(np.float64), shape=(n, n))
@@ -86,11 +130,21 @@ class Preconditioner(LinearOperator):
             parts.append(details)
         parts.append(f"memory {self.memory_bytes} bytes")
         if self.setup_seconds is not None:
-            parts.append(f"setup {_format_seconds(self.setup_seconds)}")
+            parts.append(f"setup {format_seconds(self.setup_seconds)}")
         return ", ".join(parts)
 
     def __repr__(self):
         return f"<Preconditioner {self.description}>"
+
+    @property
+    def nbytes(self):
+        """Bytes held by the preconditioner's arrays (as :attr:`memory_bytes`)."""
+        return self.memory_bytes
+
+    @classmethod
+    def from_context(cls, A, context, **options):
+        """Build from ``A`` and a :class:`PreconditionerContext`; most ignore the context."""
+        return cls(A, **options)
 
 
 class _UserPreconditioner(Preconditioner):
@@ -143,9 +197,16 @@ class _Registry(Sequence):
 PRECONDITIONERS = _Registry()
 
 
+def _is_class(factory):
+    return isinstance(factory, type) and issubclass(factory, Preconditioner)
+
+
 def _option_names(factory):
     """Keyword options a factory accepts, or None when it takes ``**options``."""
-    params = list(inspect.signature(factory).parameters.values())[1:]
+    if _is_class(factory):  # options of the constructor, after A
+        params = list(inspect.signature(factory.__init__).parameters.values())[2:]
+    else:  # options after (A, context)
+        params = list(inspect.signature(factory).parameters.values())[2:]
     if any(p.kind is p.VAR_KEYWORD for p in params):
         return None
     return tuple(p.name for p in params
@@ -153,11 +214,16 @@ def _option_names(factory):
 
 
 def register_preconditioner(name, factory, *, overwrite=False):
-    """Register ``factory(A, **options) -> LinearOperator`` under ``name``.
+    """Register ``factory(A, context, **options) -> LinearOperator`` under ``name``.
 
     ``A`` reaches the factory as a checked float64 CSR matrix (or as the
-    LinearOperator the caller passed).  The operator must approximate
-    ``A^{-1}`` and be symmetric positive definite for CG.  Returns ``factory``.
+    LinearOperator the caller passed); ``context`` is a
+    :class:`PreconditionerContext` (empty when the caller gave none).  A
+    :class:`Preconditioner` subclass may be registered as it is: it is built
+    by its :meth:`~Preconditioner.from_context`.  The operator must
+    approximate ``A^{-1}`` and be symmetric positive definite for CG.  Set
+    ``needs_matrix = False`` on the factory when it works on any operator.
+    Returns ``factory``.
 
     Raises
     ------
@@ -175,23 +241,47 @@ def register_preconditioner(name, factory, *, overwrite=False):
                          f"pass overwrite=True to replace it")
     try:
         _option_names(factory)
+        if not _is_class(factory):
+            inspect.signature(factory).bind(None, None)
     except (TypeError, ValueError) as exc:
-        raise InputError(f"factory for {name!r} has no inspectable signature ({exc})") from None
+        raise InputError(f"factory for {name!r} must take (A, context, **options): "
+                         f"{exc}") from None
     PRECONDITIONERS._factories[name] = factory
     return factory
 
 
-def make_preconditioner(A, name, **options):
+def _factory(name):
+    if not isinstance(name, str) or name not in PRECONDITIONERS:
+        valid = ", ".join(repr(n) for n in PRECONDITIONERS)
+        raise InputError(f"unknown preconditioner {name!r}; valid names: {valid}")
+    return PRECONDITIONERS._factories[name]
+
+
+def capabilities(name):
+    """The :class:`Capabilities` of the registered preconditioner ``name``.
+
+    >>> capabilities("jacobi")
+    Capabilities(needs_matrix=True, prefers_matrix_free=False)
+    """
+    factory = _factory(name)
+    return Capabilities(bool(getattr(factory, "needs_matrix", True)),
+                        bool(getattr(factory, "prefers_matrix_free", False)))
+
+
+def make_preconditioner(A, name, *, context=None, **options):
     """Build the preconditioner ``name`` for ``A``; return an SPD LinearOperator.
 
     Parameters
     ----------
-    A : sparse matrix, shape (n, n)
+    A : sparse matrix or LinearOperator, shape (n, n)
         Symmetric positive definite.  Any scipy sparse format; it is checked
-        and converted to float64 CSR once, never modified.  ``"none"`` and
-        user factories also accept a LinearOperator.
+        and converted to float64 CSR once, never modified.  Preconditioners
+        whose ``needs_matrix`` is False also accept a LinearOperator.
     name : str
         One of :data:`PRECONDITIONERS`.
+    context : PreconditionerContext, optional
+        What the system came from; preconditioners that need it (``gmg``:
+        the refined mesh) say so in their error when it is missing.
     **options
         Passed to the factory; each name must be one it accepts.
 
@@ -208,10 +298,11 @@ def make_preconditioner(A, name, **options):
     >>> M.shape, M.dtype
     ((16, 16), dtype('float64'))
     """
-    if not isinstance(name, str) or name not in PRECONDITIONERS:
-        valid = ", ".join(repr(n) for n in PRECONDITIONERS)
-        raise InputError(f"unknown preconditioner {name!r}; valid names: {valid}")
-    factory = PRECONDITIONERS._factories[name]
+    factory = _factory(name)
+    if context is None:
+        context = PreconditionerContext()
+    elif not isinstance(context, PreconditionerContext):
+        raise InputError(f"context must be a PreconditionerContext, got {type(context).__name__}")
     accepted = _option_names(factory)
     if accepted is not None:
         for key in options:
@@ -226,9 +317,14 @@ def make_preconditioner(A, name, **options):
     elif not isinstance(A, LinearOperator):
         raise InputError(f"A must be a scipy sparse matrix or a LinearOperator, "
                          f"got {type(A).__name__}")
+    elif capabilities(name).needs_matrix:
+        takes = [n for n in PRECONDITIONERS if not capabilities(n).needs_matrix]
+        raise InputError(f"preconditioner {name!r} needs an assembled sparse matrix, got "
+                         f"{type(A).__name__}; on an operator use one of {takes}")
     n = A.shape[0]
     start = time.perf_counter()
-    op = factory(A, **options)
+    op = factory.from_context(A, context, **options) if _is_class(factory) else \
+        factory(A, context, **options)
     seconds = time.perf_counter() - start
     if not isinstance(op, LinearOperator) or op.shape != (n, n):
         raise InputError(f"factory for preconditioner {name!r} returned "

@@ -1,0 +1,163 @@
+"""From a :class:`~hatkernels.problem.PoissonProblem` to the linear system CG solves.
+
+Two forms, one :class:`LinearSystem`:
+
+assembled
+    stiffness (+ mass of the reaction, + Robin boundary mass) in canonical
+    CSR, reduced to the free unknowns by :func:`hatkernels.apply_dirichlet`;
+matrix-free
+    a :class:`~hatkernels.StiffnessOperator` with identity rows at the held
+    points, the held values lifted to the right-hand side (stiffness term
+    only: no reaction or Robin term).
+
+Either way the system knows how to go between its unknowns and all points
+(:meth:`LinearSystem.expand`, :meth:`LinearSystem.restrict`), what it stores
+and the :class:`~hatkernels.precond.PreconditionerContext` that tells a
+preconditioner where it came from.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+
+import numpy as np
+
+from hatkernels.assembly import StiffnessAssembler, assemble_load
+from hatkernels.assembly.boundary_terms import side_load, side_mass
+from hatkernels.boundary import apply_dirichlet
+from hatkernels.errors import InputError
+from hatkernels.operators import DEFAULT_VARIANT, StiffnessOperator
+from hatkernels.precond import PreconditionerContext
+from hatkernels.solver import stored_bytes
+
+__all__ = ["LinearSystem", "discretise", "boundary_vector"]
+
+
+@dataclasses.dataclass(repr=False)
+class LinearSystem:
+    """``A x = b`` for the unknowns of a problem.
+
+    Attributes
+    ----------
+    A : scipy CSR (n_free, n_free), or StiffnessOperator (n_points, n_points)
+    b : ndarray
+    problem : PoissonProblem
+    matrix_free : bool
+    variant : str or None
+        The matrix-free variant (None when assembled).
+    unknowns : int
+        Free unknowns (the held points are not unknowns).
+    stored_bytes : int
+        What ``A`` stores.
+    nnz : int
+        Stored entries of ``A`` (0 when matrix-free).
+    timings : dict
+        Seconds of the phases that built it ("boundary", "assemble").
+    """
+
+    A: object
+    b: np.ndarray
+    problem: object
+    matrix_free: bool
+    variant: object
+    unknowns: int
+    stored_bytes: int
+    nnz: int
+    timings: dict
+    _reduced: object = None
+
+    def expand(self, x):
+        """Values at all points from a solution ``x`` of the system (held values put back)."""
+        return x if self._reduced is None else self._reduced.expand(x)
+
+    def restrict(self, u):
+        """The system's unknowns from values at all points."""
+        if self._reduced is not None:
+            return self._reduced.restrict(u)
+        u = np.array(u, dtype=np.float64)
+        held = self.problem.dirichlet
+        u[held.points] = held.values
+        return u
+
+    def context(self):
+        """The :class:`PreconditionerContext` of this system."""
+        p = self.problem
+        return PreconditionerContext(mesh=p.mesh, coefficient=p.coefficient,
+                                     fixed=p.dirichlet.points, variant=self.variant,
+                                     quadrature=p.quadrature)
+
+    def __repr__(self):
+        form = f"matrix-free ({self.variant})" if self.matrix_free else f"CSR, nnz {self.nnz}"
+        return f"LinearSystem({self.unknowns} unknowns, {form}, {self.stored_bytes} bytes)"
+
+
+def boundary_vector(problem):
+    """The flux and Robin loads ``int h phi_i + int s phi_i`` over their sides, shape (n_points,)."""
+    mesh, q = problem.mesh, problem.quadrature
+    b = np.zeros(mesh.n_points)
+    if problem.flux is not None:
+        b += side_load(mesh, problem.flux.flux, problem.flux.sides, q)
+    if problem.robin is not None:
+        b += side_load(mesh, problem.robin.s, problem.robin.sides, q)
+    return b
+
+
+def discretise(problem, *, matrix_free=False, variant=None, progress=None):
+    """The :class:`LinearSystem` of ``problem``.
+
+    Parameters
+    ----------
+    problem : PoissonProblem
+    matrix_free : bool
+        Build the matrix-free form (stiffness term only).
+    variant : str, optional
+        Its variant (:data:`hatkernels.operators.VARIANTS`); default
+        :data:`~hatkernels.operators.DEFAULT_VARIANT`.
+    progress : callable, optional
+        ``progress(phase)`` as "boundary" and "assemble" start.
+
+    Returns
+    -------
+    LinearSystem
+    """
+    note = progress or (lambda phase: None)
+    mesh, q = problem.mesh, problem.quadrature
+    timings = {}
+    if matrix_free and problem.lower_order:
+        raise InputError("matrix_free=True supports the stiffness term only (no reaction or robin)")
+    if variant is not None and not matrix_free:
+        raise InputError("variant applies to matrix-free systems (matrix_free=True)")
+
+    note("boundary")
+    t = time.perf_counter()
+    b = boundary_vector(problem)
+    timings["boundary"] = time.perf_counter() - t
+
+    note("assemble")
+    t = time.perf_counter()
+    b += assemble_load(mesh, problem.source, quadrature=q)
+    held = problem.dirichlet
+    if matrix_free:
+        variant = DEFAULT_VARIANT if variant is None else variant
+        op = StiffnessOperator(mesh, problem.coefficient, dirichlet=held.points, quadrature=q,
+                               variant=variant)
+        g = np.zeros(mesh.n_points)
+        g[held.points] = held.values
+        b -= op.unmasked_matvec(g)  # lifting: move the known values to the right
+        b[op.fixed] = g[op.fixed]
+        del g  # a vector less during the solve
+        system = LinearSystem(op, b, problem, True, variant, mesh.n_points - len(op.fixed),
+                              int(op.nbytes), 0, timings)
+    else:
+        assembler = StiffnessAssembler(mesh)
+        A = assembler.assemble(problem.coefficient, quadrature=q)
+        if problem.reaction is not None:
+            A = A + assembler.assemble_mass(problem.reaction, quadrature=q)
+        if problem.robin is not None:
+            A = A + side_mass(mesh, problem.robin.r, problem.robin.sides, q)
+        reduced = apply_dirichlet(A, b, held.points, held.values)
+        system = LinearSystem(reduced.A, reduced.b, problem, False, None, reduced.A.shape[0],
+                              stored_bytes(reduced.A), int(reduced.A.nnz), timings, reduced)
+    timings["assemble"] = time.perf_counter() - t
+    return system

@@ -1,0 +1,158 @@
+"""One call from a sparse SPD system to a checked solution.
+
+:func:`solve` builds a preconditioner (by name, with an optional context, or
+takes one), runs preconditioned conjugate gradients
+(:func:`hatkernels.krylov.cg_with_history`) and returns a :class:`SolveResult`
+whose :class:`~hatkernels.stats.SolveStats` hold the residual history, the
+setup and solve times and what the preconditioner cost.  It never returns a
+wrong answer silently: ``converged`` is True only when the true residual met
+the tolerance; otherwise it warns, or raises
+:class:`~hatkernels.errors.ConvergenceError` with ``check=True``.
+
+(The module is ``solver`` so that the function :func:`hatkernels.solve` does
+not hide it.)
+"""
+
+import time
+import warnings
+from dataclasses import dataclass
+
+import numba
+import numpy as np
+from scipy.sparse.linalg import LinearOperator
+
+from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.krylov import cg_with_history
+from hatkernels.perf import peak_rss_bytes
+from hatkernels.precond import make_preconditioner
+from hatkernels.stats import SolveStats
+
+__all__ = ["solve", "SolveResult", "report_convergence", "stored_bytes"]
+
+
+@dataclass
+class SolveResult:
+    """What :func:`solve` found: the solution ``x`` (shape (n,); the last
+    iterate when not converged) and its :class:`~hatkernels.stats.SolveStats`.
+
+    ``converged``, ``iterations``, ``residuals`` and ``info`` read the stats.
+    """
+
+    x: np.ndarray
+    stats: SolveStats
+
+    @property
+    def converged(self):
+        return self.stats.converged
+
+    @property
+    def iterations(self):
+        return self.stats.iterations
+
+    @property
+    def residuals(self):
+        return self.stats.residuals
+
+    @property
+    def info(self):
+        return self.stats.info
+
+
+def stored_bytes(A):
+    """Bytes held by a system operator: a sparse matrix's arrays, or an operator's ``nbytes``."""
+    if hasattr(A, "indptr"):
+        return int(A.data.nbytes + A.indices.nbytes + A.indptr.nbytes)
+    return int(getattr(A, "nbytes", 0))
+
+
+def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=None,
+          check=False, monitor=None, context=None, **preconditioner_options):
+    """Solve the symmetric positive definite system ``A x = b``.
+
+    Parameters
+    ----------
+    A : sparse matrix or LinearOperator, shape (n, n)
+        A LinearOperator works with preconditioners that need no assembled
+        matrix (``"none"``, ``"gmg"``) or a preconditioner instance.
+    b : ndarray, shape (n,)
+    preconditioner : str or LinearOperator
+        A name from :data:`hatkernels.precond.PRECONDITIONERS`, or an operator
+        approximating ``A^{-1}`` (symmetric positive definite).
+    rtol, atol, maxiter, x0
+        As in :func:`hatkernels.krylov.cg` (``maxiter`` defaults to ``10 n``).
+    check : bool
+        Raise :class:`ConvergenceError` instead of warning when not converged.
+    monitor : callable, optional
+        ``monitor(iteration, residual_norm)`` after every CG iteration.
+    context : PreconditionerContext, optional
+        What the system came from (mesh, coefficient, held points), for
+        preconditioners that use more than the matrix; see
+        :class:`hatkernels.precond.PreconditionerContext`.
+    **preconditioner_options
+        Passed to :func:`hatkernels.precond.make_preconditioner`.
+
+    Returns
+    -------
+    SolveResult
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from pyamg.gallery import poisson
+    >>> from hatkernels import solve
+    >>> A = poisson((20, 20), format="csr")
+    >>> result = solve(A, np.ones(400), preconditioner="ic0")
+    >>> result.converged, bool(result.residuals[-1] <= 1e-8 * result.residuals[0])
+    (True, True)
+    """
+    if isinstance(preconditioner, LinearOperator):
+        if preconditioner_options or context is not None:
+            names = ", ".join(sorted(preconditioner_options) + ["context"] * (context is not None))
+            raise InputError(f"preconditioner options ({names}) given with a preconditioner "
+                             f"instance; options only apply to a named preconditioner")
+        M = preconditioner
+        setup = 0.0
+        description = getattr(M, "description", None) or repr(M)
+    elif isinstance(preconditioner, str):
+        start = time.perf_counter()
+        M = make_preconditioner(A, preconditioner, context=context, **preconditioner_options)
+        setup = time.perf_counter() - start
+        description = M.description
+    else:
+        raise InputError(f"preconditioner must be a name or a LinearOperator, "
+                         f"got {type(preconditioner).__name__}")
+
+    start = time.perf_counter()
+    outcome = cg_with_history(A, b, x0, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
+                              monitor=monitor)
+    elapsed = time.perf_counter() - start
+
+    stats = SolveStats(
+        iterations=outcome.iterations,
+        converged=outcome.converged,
+        residuals=outcome.residuals,
+        timings={"setup": setup, "solve": elapsed},
+        unknowns=int(A.shape[0]),
+        preconditioner=description,
+        stored_bytes=stored_bytes(A),
+        peak_rss_bytes=peak_rss_bytes(),
+        threads=numba.get_num_threads(),
+        info=outcome.info,
+        message=outcome.message,
+        tolerance=outcome.tolerance,
+        nnz=int(A.nnz) if hasattr(A, "nnz") else 0,
+        matrix_free=not hasattr(A, "indptr"),
+    )
+    report_convergence(stats, check, stacklevel=3)
+    return SolveResult(x=outcome.x, stats=stats)
+
+
+def report_convergence(stats, check, stacklevel=2):
+    """Warn (or raise ConvergenceError with ``check``) when ``stats`` says not converged."""
+    if stats.converged:
+        return
+    text = (f"solve: not converged: {stats.message}; residual {stats.residuals[-1]:.3e} "
+            f"against the tolerance {stats.tolerance:.3e} (preconditioner {stats.preconditioner})")
+    if check:
+        raise ConvergenceError(text)
+    warnings.warn(text, RuntimeWarning, stacklevel=stacklevel + 1)
