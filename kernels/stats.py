@@ -45,6 +45,9 @@ class SolveStats:
         What happened, in words.
     tolerance : float
         ``max(rtol * norm(b), atol)``.
+    condition_estimate : float
+        Estimate of the preconditioned operator's condition number from the
+        CG coefficients (NaN where not computed).
     nnz : int
         Stored matrix entries (0 when matrix-free).
     matrix_free : bool
@@ -68,6 +71,7 @@ class SolveStats:
     info: int = 0
     message: str = ""
     tolerance: float = math.nan
+    condition_estimate: float = math.nan
     nnz: int = 0
     matrix_free: bool = False
     dirichlet_points: int = 0

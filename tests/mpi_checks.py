@@ -92,8 +92,8 @@ def solution_equals_serial_and_scipy(comm):
             scale = np.abs(ser.u).max()
             # the project's serial solve (itself checked against scipy in tests/test_poisson.py)
             assert np.abs(sol.u - ser.u).max() <= 1e-8 * scale, (name, pc)
-            assert sol.stats["unknowns"] == ser.stats["unknowns"]
-            assert sol.stats["nnz"] == ser.stats["nnz"]
+            assert sol.stats.unknowns == ser.stats.unknowns
+            assert sol.stats.nnz == ser.stats.nnz
             # reference library: scipy (spsolve on the serial reduced system, direct)
             if not kw:
                 A = hatkernels.assemble_stiffness(mesh)
@@ -200,7 +200,7 @@ def one_rank_equals_serial_bit_for_bit(comm):
                 for pc in ("amg", "jacobi", "none"):
                     sol = solve_poisson(mesh, 1.0, comm=me, rtol=1e-10, preconditioner=pc)
                     ser = _serial(mesh, 1.0, rtol=1e-10, preconditioner=pc)
-                    assert sol.stats["iterations"] == ser.stats["iterations"]
+                    assert sol.stats.iterations == ser.stats.iterations
                     assert np.array_equal(sol.u, ser.u), pc
     finally:
         me.Free()
@@ -225,7 +225,7 @@ def two_level_stays_bounded(comm):
                 for coarse in (None, "constants"):
                     sol = solve_poisson(mesh, 1.0, comm=sub, dirichlet_on=left, rtol=1e-8,
                                         preconditioner="amg", coarse=coarse, check=True)
-                    found[P, coarse] = (sol.stats["iterations"], sol.stats["condition_estimate"])
+                    found[P, coarse] = (sol.stats.iterations, sol.stats.condition_estimate)
         finally:
             sub.Free()
     if comm.Get_rank() == 0:
@@ -326,10 +326,10 @@ def gather_modes(comm):
     assert np.array_equal(none.u_owned, full.u_owned)
     counts = comm.allgather(len(full.owned))
     assert sum(counts) == mesh.n_points
-    balance = full.stats["balance"]
+    balance = full.stats.distribution.balance
     assert [b["owned_points"] for b in balance] == counts
-    assert full.stats["partition"]["imbalance"] < 0.05
-    assert full.stats["threads_per_rank"]["threads"] >= 1
+    assert full.stats.distribution.partition["imbalance"] < 0.05
+    assert full.stats.distribution.threads_per_rank["threads"] >= 1
 
 
 def _distributed_system(comm, mesh):
@@ -407,7 +407,7 @@ def rank_without_unknowns(comm):
     for coarse in (None, "constants"):
         sol = solve_poisson(mesh, 1.0, comm=comm, partition=split, rtol=1e-12, coarse=coarse,
                             check=True)
-        assert sol.stats["balance"][-1]["owned_unknowns"] == 0
+        assert sol.stats.distribution.balance[-1]["owned_unknowns"] == 0
         assert np.abs(sol.u - ser.u).max() <= 1e-8 * np.abs(ser.u).max()
 
 
@@ -489,8 +489,8 @@ def threads_per_rank_and_monitor(comm):
     seen = []
     sol = solve_poisson(mesh, 1.0, comm=comm, monitor=lambda i, r: seen.append((i, r)))
     assert numba.get_num_threads() == before  # restored after the solve
-    chosen = sol.stats["threads_per_rank"]
-    assert sol.stats["threads"] == chosen["threads"] >= 1  # numba ran with the choice
+    chosen = sol.stats.distribution.threads_per_rank
+    assert sol.stats.threads == chosen["threads"] >= 1  # numba ran with the choice
     node = comm.Split_type(MPI.COMM_TYPE_SHARED)
     try:
         on_node = node.allreduce(chosen["threads"])
@@ -503,7 +503,7 @@ def threads_per_rank_and_monitor(comm):
         # one per rank when there are more ranks than cores (common practice, no source)
         assert on_node <= max(cores_per_node()[0], ranks_on_node), (on_node, chosen)
     one = solve_poisson(mesh, 1.0, comm=comm, threads=1)
-    assert one.stats["threads"] == 1 and one.stats["threads_per_rank"]["chosen_by"] == "given"
+    assert one.stats.threads == 1 and one.stats.distribution.threads_per_rank["chosen_by"] == "given"
     try:
         solve_poisson(mesh, 1.0, comm=comm, threads=0)
     except InputError as exc:
@@ -511,9 +511,9 @@ def threads_per_rank_and_monitor(comm):
     else:
         raise AssertionError("threads=0 was accepted")
     # monitor: every iteration once, the global residual norms, the same on every rank
-    its = sol.stats["iterations"]
+    its = sol.stats.iterations
     assert [i for i, _ in seen] == list(range(1, its + 1)), seen
-    assert np.array_equal([r for _, r in seen], sol.stats["residuals"][1:])
+    assert np.array_equal([r for _, r in seen], sol.stats.residuals[1:])
     assert all(other == seen for other in comm.allgather(seen))
 
 

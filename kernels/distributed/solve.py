@@ -22,13 +22,11 @@ from __future__ import annotations
 
 import dataclasses
 import time
-import warnings
 
+import numba
 import numpy as np
 
 from hatkernels._jit import threads as _threads
-from hatkernels.assembly.boundary_terms import check_edges
-from hatkernels.coefficients import parse_coefficient, parse_edge_coefficient
 from hatkernels.distributed.assembly import assemble_local, local_boundary_data, reduce_local
 from hatkernels.distributed.cg import cg
 from hatkernels.distributed.halo import CommStats
@@ -37,18 +35,42 @@ from hatkernels.distributed.matrix import DistributedMatrix
 from hatkernels.distributed.partition import METHODS, Partition, partition
 from hatkernels.distributed.precond import COARSE_SPACES, make_distributed_preconditioner
 from hatkernels.distributed.subdomain import local_coefficient, subdomain
-from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
-from hatkernels.conditions import _held_points as _dirichlet_nodes
-from hatkernels.conditions import _held_values as _dirichlet_values
-from hatkernels.conditions import free_sides as _free_edges
-from hatkernels.perf import peak_rss_bytes as _peak_rss
+from hatkernels.perf import peak_rss_bytes
 from hatkernels.poisson import PoissonSolution
+from hatkernels.problem import PoissonProblem
+from hatkernels.solver import report_convergence
+from hatkernels.stats import SolveStats
 
-__all__ = ["DistributedPoissonSolution", "solve_poisson", "GATHER"]
+__all__ = ["Distribution", "DistributedPoissonSolution", "solve_poisson", "GATHER"]
 
 #: Values of ``gather``: the full solution on every rank, on rank 0 only, or nowhere.
 GATHER = (True, "root", False)
+
+
+@dataclasses.dataclass
+class Distribution:
+    """How a distributed solve was spread over the ranks (``SolveStats.distribution``).
+
+    Attributes
+    ----------
+    partition : dict
+        Method, weight and quality of the split (imbalance, cut sides...).
+    balance : list of dict
+        One per rank: owned points and unknowns, cells, ghosts, neighbours,
+        stored entries and bytes, halo bytes and messages per product,
+        communication counters and seconds, timings, peak memory.
+    communication : dict
+        Volumes per iteration of the busiest rank, seconds.
+    threads_per_rank : dict
+        ``threads``, ``ranks_on_node`` and ``chosen_by`` (how the count was chosen).
+    """
+
+    partition: dict
+    balance: list
+    communication: dict
+    threads_per_rank: dict = None
 
 
 @dataclasses.dataclass(repr=False)
@@ -58,20 +80,15 @@ class DistributedPoissonSolution(PoissonSolution):
     Attributes
     ----------
     u : ndarray, shape (n_points,), or None
-        Nodal values, where gathered (see ``gather``); None elsewhere.
-    converged : bool
+        Values at the points, where gathered (see ``gather``); None elsewhere.
+    stats : SolveStats
+        As serial (``timings`` are the maximum over ranks, ``unknowns``,
+        ``nnz`` and ``stored_bytes`` global, ``peak_rss_bytes`` the largest
+        rank's), with ``ranks`` and ``distribution`` (a :class:`Distribution`).
         The same on every rank.
-    stats : dict
-        The serial keys (``timings`` are the maximum over ranks, ``unknowns``
-        and ``nnz`` global, ``peak_rss_bytes`` the largest rank's) plus
-        ``ranks``, ``partition`` (method and quality), ``balance`` (one dict
-        per rank: owned points and unknowns, triangles, ghosts, neighbours,
-        stored entries, halo bytes per product, communication seconds),
-        ``communication`` (volumes per iteration, seconds) and
-        ``threads_per_rank``.
     mesh : Mesh
     u_owned : ndarray
-        Nodal values at this rank's owned points.
+        Values at this rank's owned points.
     owned : ndarray
         Global numbers of those points (ascending).
     rank, size : int
@@ -85,8 +102,8 @@ class DistributedPoissonSolution(PoissonSolution):
     def __repr__(self):
         s = self.stats
         return (f"DistributedPoissonSolution(rank {self.rank} of {self.size}, "
-                f"{s['unknowns']} unknowns, {s['iterations']} iterations, "
-                f"converged={self.converged}, {s['timings']['total']:.3g} s)")
+                f"{s.unknowns} unknowns, {s.iterations} iterations, "
+                f"converged={s.converged}, {s.timings['total']:.3g} s)")
 
 
 def _together(comm, what, fn, *args, **kwargs):
@@ -126,38 +143,18 @@ def _same_input_everywhere(comm, mesh, parts):
         raise InputError("the partition was made for another mesh")
 
 
-def _boundary_spec(mesh, fixed, neumann, robin):
-    """Edges and parsed data of the Neumann and Robin terms on the whole mesh."""
-    out = {}
-    if neumann is not None:
-        edges, h = neumann if isinstance(neumann, tuple) else (_free_edges(mesh, fixed), neumann)
-        e = check_edges(mesh, edges)
-        out["neumann"] = (e, parse_edge_coefficient(h, mesh, len(e), name="boundary load",
-                                                     sign="any"))
-    if robin is not None:
-        if not isinstance(robin, tuple) or len(robin) not in (2, 3):
-            raise InputError("robin must be (r, s) or (edges, r, s)")
-        edges, r, s = robin if len(robin) == 3 else (_free_edges(mesh, fixed),) + robin
-        e = check_edges(mesh, edges)
-        out["robin"] = (e,
-                        parse_edge_coefficient(r, mesh, len(e), name="boundary coefficient",
-                                               sign="nonnegative"),
-                        parse_edge_coefficient(s, mesh, len(e), name="boundary load",
-                                               sign="any"))
-    return out
-
-
-def _local_boundary(sub, n, spec):
+def _local_boundary(sub, problem):
+    """This rank's part of the problem's flux and Robin sides, with their data."""
+    n = problem.mesh.n_points
     neumann = robin = None
-    if "neumann" in spec:
-        e, h = spec["neumann"]
-        le, lh = local_boundary_data(sub, n, e, h, name="boundary load", sign="any")
-        neumann = (le, lh)
-    if "robin" in spec:
-        e, r, s = spec["robin"]
-        le, lr = local_boundary_data(sub, n, e, r, name="boundary coefficient",
+    if problem.flux is not None:
+        neumann = local_boundary_data(sub, n, problem.flux.sides, problem.flux.flux,
+                                      name="boundary load", sign="any")
+    if problem.robin is not None:
+        rb = problem.robin
+        le, lr = local_boundary_data(sub, n, rb.sides, rb.r, name="boundary coefficient",
                                      sign="nonnegative")
-        _, ls = local_boundary_data(sub, n, e, s, name="boundary load", sign="any")
+        _, ls = local_boundary_data(sub, n, rb.sides, rb.s, name="boundary load", sign="any")
         robin = (le, lr, ls)
     return neumann, robin
 
@@ -278,23 +275,15 @@ def solve_poisson(
                          progress, monitor, coarse, partition, gather, preconditioner_options)
     finally:
         dcomm.Free()
-    sol.stats["threads_per_rank"] = {"threads": n_threads, "ranks_on_node": ranks_on_node,
-                                     "chosen_by": how}
-    if not sol.converged:
-        final = sol.stats["residuals"][-1]
-        text = (f"solve: not converged: {sol.stats['message']}; residual {final:.3e} against "
-                f"the tolerance {sol.stats['tolerance']:.3e} (preconditioner "
-                f"{sol.stats['preconditioner']})")
-        if check:
-            raise ConvergenceError(text)
-        warnings.warn(text, RuntimeWarning, stacklevel=2)
+    sol.stats.distribution.threads_per_rank = {"threads": n_threads,
+                                               "ranks_on_node": ranks_on_node, "chosen_by": how}
+    report_convergence(sol.stats, check)
     return sol
 
 
 def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin,
            preconditioner, rtol, atol, maxiter, quadrature, progress, monitor, coarse, parts,
            gather, options):
-    MPI = mpi()
     rank, size = comm.Get_rank(), comm.Get_size()
     note = progress or (lambda phase: None)
     stats = CommStats()
@@ -303,15 +292,11 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
 
     note("boundary")
     t1 = time.perf_counter()
-    kappa = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
-    c = None if reaction is None else parse_coefficient(reaction, mesh, name="reaction",
-                                                        sign="nonnegative")
-    load = parse_coefficient(f, mesh, name="load", sign="any")
-    if dirichlet_on is None:
-        dirichlet_on = "boundary" if neumann is None and robin is None else np.empty(0, np.int64)
-    fixed = _dirichlet_nodes(mesh, dirichlet_on)
-    values = _dirichlet_values(mesh, fixed, dirichlet)
-    spec = _boundary_spec(mesh, fixed, neumann, robin)
+    # the same checked problem as the serial solve; every rank parses the same data
+    problem = PoissonProblem(mesh, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
+                             coefficient=coefficient, reaction=reaction, neumann=neumann,
+                             robin=robin, quadrature=quadrature)
+    fixed, values = problem.dirichlet.points, problem.dirichlet.values
     timings["boundary"] = time.perf_counter() - t1
 
     t1 = time.perf_counter()
@@ -331,22 +316,18 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
     t2 = time.perf_counter()
 
     def local_system():
-        nb, rb = _local_boundary(sub, mesh.n_points, spec)
-        A, b, has_robin = assemble_local(
-            sub, kappa=local_coefficient(kappa, sub), f=local_coefficient(load, sub),
+        nb, rb = _local_boundary(sub, problem)
+        c = problem.reaction
+        A, b, _ = assemble_local(
+            sub, kappa=local_coefficient(problem.coefficient, sub),
+            f=local_coefficient(problem.source, sub),
             reaction=None if c is None else local_coefficient(c, sub), neumann=nb, robin=rb,
             quadrature=quadrature)
         loc = sub.local_numbers(fixed, mesh.n_points)
         here = loc >= 0
-        return A, b, has_robin, loc[here], values[here]
+        return A, b, loc[here], values[here]
 
-    A_L, b_L, has_robin, fixed_local, values_local = _together(comm, "assembly", local_system)
-    has_robin = comm.allreduce(bool(has_robin), op=MPI.LOR)
-    if fixed.size == 0 and reaction is None and not has_robin:
-        raise InputError(
-            "no Dirichlet points, reaction or Robin term: the solution is defined only up to "
-            "a constant; fix u somewhere with dirichlet_on=..."
-        )
+    A_L, b_L, fixed_local, values_local = _together(comm, "assembly", local_system)
     local = _together(comm, "Dirichlet reduction", reduce_local, sub, A_L, b_L, fixed_local,
                       values_local)
     del A_L, b_L
@@ -388,7 +369,7 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
         "communication": _solve_part(stats, setup_stats).as_dict(),
         "setup_communication_seconds": setup_stats.seconds,
         "timings": timings,
-        "peak_rss_bytes": _peak_rss(),
+        "peak_rss_bytes": peak_rss_bytes(),
     }
     balance = comm.allgather(mine)
     worst = {k: max(b["timings"][k] for b in balance) for k in timings}
@@ -401,26 +382,10 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
     description = comm.bcast(description, root=0)
     iters = max(result.iterations, 1)
     halo_total = sum(b["halo_bytes_per_product"] for b in balance)
-    stats_out = {
-        "timings": worst,
-        "iterations": result.iterations,
-        "residuals": result.residuals,
-        "unknowns": unknowns,
-        "nnz": nnz,
-        "matrix_free": False,
-        "operator_bytes": op_bytes,
-        "dirichlet_points": int(fixed.size),
-        "preconditioner": description,
-        "threads": _numba_threads(),
-        "peak_rss_bytes": max(b["peak_rss_bytes"] for b in balance),
-        "condition_estimate": result.condition_estimate,
-        "message": result.message,
-        "tolerance": result.tolerance,
-        "info": result.info,
-        "ranks": size,
-        "partition": {"method": split.method, "weight": split.weight, **quality.as_dict()},
-        "balance": balance,
-        "communication": {
+    distribution = Distribution(
+        partition={"method": split.method, "weight": split.weight, **quality.as_dict()},
+        balance=balance,
+        communication={
             "halo_bytes_per_product": halo_total,
             "halo_messages_per_product": sum(b["halo_messages_per_product"] for b in balance),
             "halo_exchanges_per_iteration": _per(balance, "halo_exchanges", iters),
@@ -431,10 +396,28 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
             "seconds_per_iteration_max": max(b["communication"]["seconds"] for b in balance)
             / iters,
         },
-    }
-    return DistributedPoissonSolution(u=u, converged=result.converged, stats=stats_out,
-                                      mesh=mesh, u_owned=u_owned, owned=sub.owned.copy(),
-                                      rank=rank, size=size)
+    )
+    stats_out = SolveStats(
+        iterations=result.iterations,
+        converged=result.converged,
+        residuals=result.residuals,
+        timings=worst,
+        unknowns=unknowns,
+        preconditioner=description,
+        stored_bytes=op_bytes,
+        peak_rss_bytes=max(b["peak_rss_bytes"] for b in balance),
+        threads=numba.get_num_threads(),
+        info=result.info,
+        message=result.message,
+        tolerance=result.tolerance,
+        condition_estimate=result.condition_estimate,
+        nnz=nnz,
+        dirichlet_points=int(fixed.size),
+        ranks=size,
+        distribution=distribution,
+    )
+    return DistributedPoissonSolution(u=u, stats=stats_out, mesh=mesh, u_owned=u_owned,
+                                      owned=sub.owned.copy(), rank=rank, size=size)
 
 
 def _check_halo(arrived, expected):
@@ -455,12 +438,6 @@ def _solve_part(total, setup):
 def _per(balance, counter, iterations):
     """A solve-phase counter of the busiest rank, per iteration (setup excluded)."""
     return max(b["communication"][counter] for b in balance) / iterations
-
-
-def _numba_threads():
-    import numba
-
-    return numba.get_num_threads()
 
 
 def _gather(comm, split, u_owned, gather):
