@@ -22,7 +22,7 @@ from hatkernels.errors import InputError
 from hatkernels.krylov import cg_with_history
 from hatkernels.mesh import rectangle
 from hatkernels.precond import make_preconditioner
-from hatkernels.precond.amg import ClassicalAMG, ClassicalHierarchy
+from hatkernels.precond.classical import ClassicalAMG, ClassicalHierarchy
 
 THETA = 0.25
 
@@ -175,11 +175,11 @@ def test_same_bits_on_one_and_two_threads():
 def test_64_bit_indices_give_the_same_hierarchy(monkeypatch):
     # forced on a small matrix: 64-bit indices everywhere, and the numba splitting
     # instead of PyAMG's (which takes 32-bit indices only)
-    import hatkernels.precond.amg as amg_module
+    import hatkernels.mesh.core_index as index_module
 
     A = reduced_stiffness(rectangle(30, 30))
     narrow = ClassicalHierarchy(A, max_coarse=10)
-    monkeypatch.setattr(amg_module, "_INT32_MAX", 10)
+    monkeypatch.setattr(index_module, "_INT32_MAX", 10)
     broad = ClassicalHierarchy(A, max_coarse=10)
     assert broad.levels[1].A.indices.dtype == np.int64
     assert broad.levels[0].P.indptr.dtype == np.int64

@@ -16,7 +16,8 @@
 a user factory.
 """
 
-from hatkernels.precond.amg import ClassicalAMG, RugeStubenAMG, SmoothedAggregationAMG
+from hatkernels.precond.amg import RugeStubenAMG, SmoothedAggregationAMG
+from hatkernels.precond.classical import ClassicalAMG
 from hatkernels.precond.direct import DIRECT_LIMIT, SparseDirect
 from hatkernels.precond.gmg import GeometricMultigrid
 from hatkernels.precond.ichol import IncompleteCholesky

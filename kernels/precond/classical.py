@@ -1,0 +1,225 @@
+"""Classical (Ruge-Stueben) AMG whose hierarchy is built by this project's parallel kernels.
+
+``amg-native``: the same method as ``amg-rs`` (strength threshold, first-pass
+C/F splitting, classical interpolation, Galerkin coarse matrices; see
+:mod:`hatkernels.precond.amg`), set up by the kernels of
+:mod:`hatkernels._jit.amg` and cycled by the parallel Chebyshev cycle.
+Index arrays are 32-bit while the counts fit (:func:`hatkernels.mesh.index_dtype`).
+"""
+
+import numba
+import numpy as np
+import pyamg
+import scipy.sparse as sp
+
+from hatkernels._jit import amg as _a
+from hatkernels.errors import InputError
+from hatkernels.mesh.core_index import index_dtype
+from hatkernels.precond.amg import _AMG, _ChebyshevLevel
+
+__all__ = ["ClassicalAMG", "ClassicalHierarchy"]
+
+
+class _Level:
+    """A level of :class:`ClassicalHierarchy`: its matrix and, above the coarsest, P and R = P^T."""
+
+    def __init__(self, A, P=None, R=None):
+        self.A, self.P, self.R = A, P, R
+
+
+class _DenseCholesky:
+    """The coarsest solve: a dense Cholesky factor (the level is small), in plain loops.
+
+    A singular but positive semi-definite level (a pure Neumann problem: the
+    constants are in the null space) gets a pseudo-inverse instead, as
+    PyAMG's ``pinv`` coarse solver does; an indefinite one is refused.
+    """
+
+    description = "a dense Cholesky factor"
+
+    def __init__(self, A):
+        dense = A.toarray()
+        dense = 0.5 * (dense + dense.T)
+        self.L, row = _a.dense_cholesky(dense)
+        self.pinv = None
+        if row >= 0:
+            w, V = np.linalg.eigh(dense)
+            scale = max(abs(w).max(), np.finfo(float).tiny)
+            if w[0] < -1e-10 * scale:
+                raise InputError(f"amg: the coarsest level ({A.shape[0]} unknowns) is not "
+                                 f"positive definite (pivot {row}, smallest eigenvalue "
+                                 f"{w[0]:.3g}); A must be symmetric positive (semi-)definite")
+            keep = w > 1e-10 * scale
+            self.pinv = (V[:, keep] / w[keep]) @ V[:, keep].T
+            self.L = None
+            self.description = (f"a pseudo-inverse (the level is singular: {int((~keep).sum())} "
+                                "zero eigenvalues)")
+
+    def __call__(self, A, b):
+        b = np.ascontiguousarray(b, dtype=np.float64)
+        if self.pinv is not None:
+            return self.pinv @ b
+        out = np.empty(b.shape[0])
+        _a.cholesky_solve(self.L, b, out)
+        return out
+
+
+class _SmoothingSolve:
+    """The coarsest solve when coarsening stalled on a large level: Chebyshev smoothing only."""
+
+    def __init__(self, A, degree):
+        self.description = f"Chebyshev smoothing of degree {degree} on [top/30, top]"
+        self.level = _ChebyshevLevel(_Level(A), degree, lower=1.0 / 30.0, estimate=False)
+        n = A.shape[0]
+        self.work = (np.empty(n), np.empty(n), np.empty(n))
+
+    def __call__(self, A, b):
+        x = np.empty_like(b)
+        self.level.smooth(x, b, True, *self.work)
+        return x
+
+
+def _csr_arrays(M):
+    """``(indptr, indices, data)`` of CSR ``M`` with one index dtype (copies only if needed)."""
+    itype = index_dtype(M.shape[0], M.indptr[-1])
+    return (np.ascontiguousarray(M.indptr, dtype=itype),
+            np.ascontiguousarray(M.indices, dtype=itype),
+            np.ascontiguousarray(M.data, dtype=np.float64))
+
+
+def _split(indptr, indices, strong, n):
+    """The C/F splitting (1 = C): PyAMG's compiled first pass where its 32-bit indices suffice.
+
+    ``hatkernels._jit.amg.split`` is the same algorithm (tested to give the same
+    splitting); it serves matrices whose indices need 64 bits.
+    """
+    tptr, tind = _a.transpose_pattern(indptr, indices, strong, n)
+    if indptr.dtype != np.int32:
+        return _a.split(indptr, indices, strong, tptr, tind)
+    sptr, sind = _a.strong_pattern(indptr, indices, strong)
+    state = np.empty(n, dtype=np.int32)
+    pyamg.amg_core.rs_cf_splitting(n, sptr, sind, tptr, tind, np.zeros(n, dtype=np.int32), state)
+    return state
+
+
+def _chunks():
+    # one block of rows per thread: each block keeps a marker array as long as the level
+    return numba.get_num_threads()
+
+
+class ClassicalHierarchy:
+    """Ruge-Stueben hierarchy built with this project's parallel kernels (``hatkernels._jit.amg``).
+
+    Per level: strong couplings (one byte per entry), the first-pass C/F
+    splitting, classical interpolation P, R = P^T and the Galerkin product
+    R A P, until a level has at most ``max_coarse`` unknowns, ``max_levels``
+    levels exist or coarsening stalls (fewer than 10% fewer points).  The
+    coarsest level is solved by a dense Cholesky factor when it has at most
+    ``DENSE_LIMIT`` unknowns, else by Chebyshev smoothing.
+    """
+
+    DENSE_LIMIT = 1000
+
+    def __init__(self, A, theta=0.25, max_levels=30, max_coarse=300, degree=3):
+        self.levels = []
+        indptr, indices, data = _csr_arrays(A)
+        current = A
+        while len(self.levels) + 1 < max_levels and current.shape[0] > max_coarse:
+            n = current.shape[0]
+            strong = np.empty(indptr[-1], dtype=np.uint8)
+            _a.strength(indptr, indices, data, float(theta), strong)
+            state = _split(indptr, indices, strong, n)
+            n_coarse = int(np.count_nonzero(state))
+            if n_coarse == 0 or n_coarse > 0.9 * n:
+                break
+            itype = indptr.dtype
+            cidx = np.cumsum(state, dtype=itype)
+            cidx -= 1
+            pptr = np.zeros(n + 1, dtype=itype)
+            _a.interpolation_counts(indptr, indices, strong, state, pptr)
+            np.cumsum(pptr, out=pptr)
+            ptype = index_dtype(n, pptr[-1])
+            pptr = pptr.astype(ptype, copy=False)
+            pind = np.empty(pptr[-1], dtype=ptype)
+            pdata = np.empty(pptr[-1])
+            _a.interpolation(indptr, indices, data, strong, state, cidx.astype(ptype, copy=False),
+                             pptr, pind, pdata, _chunks())
+            del strong, state, cidx
+            rptr, rind, rdata = _a.transpose(pptr, pind, pdata, n_coarse)
+            cptr = np.zeros(n_coarse + 1, dtype=np.int64)
+            _a.galerkin_counts(rptr, rind, indptr, indices, data, pptr, pind, n_coarse, cptr,
+                               _chunks())
+            np.cumsum(cptr, out=cptr)
+            ctype = index_dtype(n_coarse, cptr[-1])
+            cptr = cptr.astype(ctype, copy=False)
+            cind = np.empty(cptr[-1], dtype=ctype)
+            cdata = np.empty(cptr[-1])
+            _a.galerkin(rptr, rind, rdata, indptr, indices, data, pptr, pind, pdata, n_coarse,
+                        cptr, cind, cdata, _chunks())
+            kept = _a.drop_zeros(cptr, cind, cdata)
+            if kept < cind.shape[0]:
+                cind, cdata = cind[:kept].copy(), cdata[:kept].copy()
+            P = sp.csr_array((pdata, pind, pptr), shape=(n, n_coarse))
+            R = sp.csr_array((rdata, rind, rptr), shape=(n_coarse, n))
+            self.levels.append(_Level(current, P, R))
+            current = sp.csr_array((cdata, cind, cptr), shape=(n_coarse, n_coarse))
+            indptr, indices, data = cptr, cind, cdata
+        self.levels.append(_Level(current))
+        if current.shape[0] <= self.DENSE_LIMIT:
+            self.coarse_solver = _DenseCholesky(current)
+        else:
+            self.coarse_solver = _SmoothingSolve(current, 4 * degree)
+
+    def operator_complexity(self):
+        return sum(lv.A.nnz for lv in self.levels) / self.levels[0].A.nnz
+
+    def grid_complexity(self):
+        return sum(lv.A.shape[0] for lv in self.levels) / self.levels[0].A.shape[0]
+
+
+class ClassicalAMG(_AMG):
+    """Classical (Ruge-Stueben) AMG, set up and cycled on this project's parallel kernels.
+
+    The same method as ``amg-rs`` (strength threshold ``theta``, first-pass
+    C/F splitting, classical interpolation, Galerkin coarse matrices), built
+    without PyAMG: the strength test, interpolation and triple product run in
+    parallel, the splitting is one serial pass, and nothing but P, R and the
+    coarse matrices is kept (the strong couplings are one byte per entry, freed
+    per level).  Smoothing is the parallel Chebyshev cycle of ``amg-rs``.
+
+    Parameters
+    ----------
+    A : sparse matrix, shape (n, n)
+        Symmetric positive definite.
+    cycle : {"V", "W"}
+    degree, lower, estimate
+        The Chebyshev smoother, as for ``amg-rs``.
+    theta : float
+        Strength threshold, 0 < theta < 1.
+    max_levels, max_coarse : int
+        Stop coarsening at this many levels or at a level this small; the
+        coarsest level is solved by a dense Cholesky factor (or, when
+        coarsening stalled above 1000 unknowns, by Chebyshev smoothing).
+
+    Costs: as ``amg-rs``; setup memory beyond the hierarchy is about one
+    byte per matrix entry and a few index arrays of the level's length.
+    """
+
+    name = "amg-native"
+    kind = "classical Ruge-Stuben AMG (own parallel setup)"
+
+    def __init__(self, A, *, cycle="V", degree=2, lower=0.3, estimate=False, theta=0.25,
+                 max_levels=30, max_coarse=300):
+        for key, value, low in (("max_levels", max_levels, 1), ("max_coarse", max_coarse, 1)):
+            if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
+                raise InputError(f"{self.name}: {key} must be an integer >= {low}, "
+                                 f"got {value!r}")
+        if isinstance(theta, bool) or not isinstance(theta, (int, float)) or not 0.0 < theta < 1.0:
+            raise InputError(f"{self.name}: theta must be a number between 0 and 1, "
+                             f"got {theta!r}")
+        options = {"theta": float(theta), "max_levels": int(max_levels),
+                   "max_coarse": int(max_coarse), "degree": degree}
+        super().__init__(A, cycle, "chebyshev", degree, options, lower, estimate)
+
+    def _build(self, C, options):
+        return ClassicalHierarchy(C, **options)
