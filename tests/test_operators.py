@@ -1,7 +1,9 @@
-"""The matrix-free stiffness operator against the assembled matrix."""
+"""The matrix-free stiffness operator, and each of its variant classes, against the assembled matrix."""
 
+import os
 import warnings
 
+import numba
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -11,7 +13,23 @@ from test_assembly import coefficient_kinds
 
 import hatkernels
 from hatkernels import Mesh, StiffnessOperator, assemble_stiffness, threads
+from hatkernels.assembly.csr import KernelCoefficient, kernel_coefficient
+from hatkernels.coefficients import parse_coefficient
 from hatkernels.operators import VARIANTS
+from hatkernels.operators.colouring import triangle_colouring
+from hatkernels.operators.variants import (
+    VARIANT_CLASSES,
+    SerialGeometryProduct,
+    build_variant,
+)
+
+#: Every implementation: the three variants and the geometry variant's one-thread fallback.
+CLASSES = {**VARIANT_CLASSES, "serial-geometry": SerialGeometryProduct}
+
+TWO_THREADS = min(os.cpu_count() or 1, numba.config.NUMBA_NUM_THREADS) >= 2
+needs_two_threads = pytest.mark.skipif(
+    not TWO_THREADS, reason="1-vs-2-thread comparison needs at least 2 cores for numba"
+)
 
 
 def eliminated(A, fixed):
@@ -83,9 +101,7 @@ def test_one_and_two_threads_give_identical_bits(variant):
 def test_colouring_is_valid():
     m = hatkernels.mesh.rectangle(20, 20).refine()
     op = StiffnessOperator(m, block_size=16)
-    colour_of_block = np.empty(len(op._blocks), dtype=int)
-    for c in range(op.n_colours):
-        colour_of_block[op._blocks[op._colour_ptr[c] : op._colour_ptr[c + 1]]] = c
+    colour_of_block = op._impl.colouring.colour_of_blocks()
     block = np.arange(m.n_triangles) // 16
     for c in range(op.n_colours):
         owner = {}
@@ -99,10 +115,13 @@ def test_edge_row_blocks_colouring_is_valid():
     """Blocks of rows of the edge list: two blocks of one colour share no point."""
     m = hatkernels.mesh.rectangle(20, 20).refine()
     op = StiffnessOperator(m, variant="edges", block_size=16)
-    rows, starts, ends = op._rows_per_block, op._starts, op._ends
+    impl = op._impl
+    col, starts, ends = impl.row_colouring, impl.starts, impl.ends
+    rows = col.block_size
+    assert rows == 16 // 3 and op.n_colours == col.n_colours
     for c in range(op.n_colours):
         owner = {}
-        for b in op._edge_blocks[op._edge_colour_ptr[c] : op._edge_colour_ptr[c + 1]]:
+        for b in col.blocks[col.ptr[c] : col.ptr[c + 1]]:
             r0, r1 = b * rows, min(m.n_points, (b + 1) * rows)
             points = {i for i in range(r0, r1) if starts[i] < starts[i + 1]}
             points |= set(ends[starts[r0] : starts[r1]].tolist())
@@ -153,3 +172,135 @@ def test_bad_input():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         StiffnessOperator(m, dirichlet=np.array([], dtype=int))
+
+
+# -- each variant class on its own --
+
+
+def variant(name, m, coef, block_size=8):
+    kc = kernel_coefficient(parse_coefficient(coef, m, name="coefficient", tensor=True), m, 2)
+    if name == "serial-geometry":
+        return SerialGeometryProduct(m, kc)
+    return VARIANT_CLASSES[name](m, kc, triangle_colouring(m.triangles, m.n_points, block_size))
+
+
+def close(y, ref, rtol=1e-13):
+    """``|y - ref| <= rtol |ref|`` in the 2-norm: a tight relative check, not numpy's loose defaults."""
+    return np.linalg.norm(y - ref) <= rtol * np.linalg.norm(ref)
+
+
+@pytest.mark.parametrize("name", CLASSES)
+def test_each_variant_class_equals_the_assembled_matrix(name):
+    # the assembled matrix (the csr strategy, itself tested against the reference
+    # strategy) as reference: common practice, no source
+    m = jittered_mesh(8, 11)
+    x = np.random.default_rng(5).standard_normal(m.n_points)
+    for kind, coef in coefficient_kinds(m).items():
+        A = assemble_stiffness(m, coef)
+        v = variant(name, m, coef)
+        y, ys, diag = np.empty(m.n_points), np.empty(m.n_points), np.empty(m.n_points)
+        v.product(x, y)
+        v.serial_product(x, ys)
+        v.diagonal_into(diag)
+        assert close(y, A @ x), (name, kind)
+        assert close(ys, A @ x), (name, kind)
+        assert close(diag, A.diagonal()), (name, kind)
+        d2, off = np.empty(m.n_points), np.empty(m.n_points)
+        v.diagonal_and_offsum(d2, off)
+        assert (d2 == diag).all(), (name, kind)  # one kernel's sums, in one order
+        # the element-wise sums of |K_ij| bound the assembled ones (triangle inequality)
+        offdiag = abs(A - sp.diags(A.diagonal())).sum(axis=1).A1
+        assert (off >= offdiag * (1 - 1e-13)).all(), (name, kind)
+        assert v.nbytes >= kernel_coefficient(
+            parse_coefficient(coef, m, name="coefficient", tensor=True), m, 2
+        ).nbytes
+
+
+@pytest.mark.parametrize("name", CLASSES)
+def test_each_variant_class_off_diagonal_sums_on_right_triangles(name):
+    # on right triangles no two element entries of one pair differ in sign, so the
+    # element-wise sums of |K_ij| are the assembled ones (common practice, no source)
+    m = hatkernels.mesh.rectangle(6, 5)
+    A = assemble_stiffness(m, 1.5)
+    v = variant(name, m, 1.5)
+    diag, off = np.empty(m.n_points), np.empty(m.n_points)
+    v.diagonal_and_offsum(diag, off)
+    assert close(off, abs(A - sp.diags(A.diagonal())).sum(axis=1).A1)
+    assert close(diag, A.diagonal())
+
+
+@pytest.mark.parametrize("name", CLASSES)
+def test_each_variant_class_removes_fixed_columns(name):
+    m = jittered_mesh(6, 2)
+    coef = coefficient_kinds(m)["tensor-per-triangle"]
+    fixed = m.boundary_points()
+    is_fixed = np.zeros(m.n_points, dtype=bool)
+    is_fixed[fixed] = True
+    near = np.flatnonzero(is_fixed[m.triangles].any(axis=1))
+    x = np.random.default_rng(6).standard_normal(m.n_points)
+    A = assemble_stiffness(m, coef)
+    xf = np.where(is_fixed, x, 0.0)
+    v = variant(name, m, coef)
+    y = np.empty(m.n_points)
+    v.product(x, y)
+    v.remove_fixed_columns(near, is_fixed, x, y)
+    assert close(y, A @ x - A @ xf)  # common practice, no source
+
+
+@needs_two_threads
+@pytest.mark.parametrize("name", VARIANT_CLASSES)
+def test_each_variant_class_gives_the_same_bits_on_one_and_two_threads(name):
+    m = jittered_mesh(30, 9)
+    x = np.random.default_rng(2).standard_normal(m.n_points)
+    for kind in ("per-triangle", "tensor"):
+        coef = coefficient_kinds(m)[kind]
+        out = []
+        for n in (1, 2):
+            with threads(n):
+                v = variant(name, m, coef, block_size=16)
+                y, diag, off = np.empty(m.n_points), np.empty(m.n_points), np.empty(m.n_points)
+                v.product(x, y)
+                v.diagonal_and_offsum(diag, off)
+                out.append(y.tobytes() + diag.tobytes() + off.tobytes())
+        assert out[0] == out[1], (name, kind)
+
+
+@pytest.mark.parametrize("name", VARIANTS)
+@pytest.mark.parametrize("edges_first", [False, True])
+def test_building_a_variant_leaves_the_mesh_as_it_was(name, edges_first):
+    m = jittered_mesh(7, 4)
+    if edges_first:
+        m.edges()
+    points, cells = m.points, m.triangles
+    p, t = points.copy(), cells.copy()
+    cached = m.cached()
+    op = StiffnessOperator(m, np.linspace(1, 2, m.n_triangles), variant=name,
+                           dirichlet=m.boundary_points())
+    op @ np.ones(m.n_points)
+    op.diagonal_and_bound()
+    assert m.points is points and m.triangles is cells
+    assert not points.flags.writeable and not cells.flags.writeable
+    assert (points == p).all() and (cells == t).all()
+    # the edges variant takes the edge topology it needs and leaves none behind;
+    # what the mesh held before stays
+    assert m.cached() == cached | {"boundary_edges", "boundary_points"}
+
+
+def test_kernel_coefficient_is_named():
+    m = hatkernels.mesh.rectangle(2, 2)
+    per = kernel_coefficient(parse_coefficient(np.arange(1.0, 9.0), m, name="c"), m, 2)
+    assert isinstance(per, KernelCoefficient) and not per.is_tensor
+    assert per.kappa.tolist() == list(range(1, 9)) and per.kappa_step == 1
+    tensor = kernel_coefficient(parse_coefficient(np.eye(2), m, name="c", tensor=True), m, 2)
+    assert tensor.is_tensor and tensor.tensor_step == 0 and tensor.tensor.shape == (1, 2, 2)
+    assert tensor.nbytes == tensor.kappa.nbytes + tensor.tensor.nbytes
+
+
+def test_build_variant_picks_the_class_by_name():
+    m = hatkernels.mesh.rectangle(4, 4)
+    kc = kernel_coefficient(parse_coefficient(None, m, name="c", tensor=True), m, 2)
+    for name in VARIANTS:
+        v = build_variant(name, m, kc, 8)
+        assert type(v) is VARIANT_CLASSES[name] and v.name == name
+        op = StiffnessOperator(m, variant=name, block_size=8)
+        assert op.nbytes == v.nbytes  # no Dirichlet arrays

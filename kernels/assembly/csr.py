@@ -1,5 +1,7 @@
 """The ``csr`` strategy: symbolic phase once, then a parallel, race-free numeric phase."""
 
+from typing import NamedTuple
+
 import numpy as np
 
 from hatkernels._jit import assembly as _jit_assembly
@@ -8,16 +10,49 @@ from hatkernels.assembly.plan import build_plan
 from hatkernels.coefficients import triangle_means
 
 
+class KernelCoefficient(NamedTuple):
+    """A stiffness coefficient as the raw kernels take it, in their argument order.
+
+    Triangle ``t`` uses ``kappa[t * kappa_step]`` and, when ``tensor`` is not
+    empty, the 2x2 matrix ``tensor[t * tensor_step]``: a step of 0 is one value
+    for every triangle, 1 a value per triangle.  Pass it to a kernel as
+    ``*coefficient``; everywhere else use the names.
+
+    Attributes
+    ----------
+    kappa : ndarray, shape (1,) or (n_triangles,)
+        The scalar coefficient (ones for a tensor coefficient).
+    kappa_step : int
+    tensor : ndarray, shape (0, 2, 2), (1, 2, 2) or (n_triangles, 2, 2)
+        Empty for a scalar coefficient.
+    tensor_step : int
+    """
+
+    kappa: np.ndarray
+    kappa_step: int
+    tensor: np.ndarray
+    tensor_step: int
+
+    @property
+    def is_tensor(self):
+        return self.tensor.shape[0] > 0
+
+    @property
+    def nbytes(self):
+        """Bytes of the stored values."""
+        return self.kappa.nbytes + self.tensor.nbytes
+
+
 def kernel_coefficient(coef, mesh, quadrature):
-    """The kernel's view of a stiffness coefficient: ``(kappa, ks, tensor, ts)``."""
+    """The kernels' view of a parsed stiffness coefficient: a :class:`KernelCoefficient`."""
     empty = np.empty((0, 2, 2))
     if coef.kind == "tensor":
         T = np.ascontiguousarray(coef.value, dtype=np.float64).reshape(-1, 2, 2)
-        return np.ones(1), 0, T, 1 if coef.value.ndim == 3 else 0
+        return KernelCoefficient(np.ones(1), 0, T, 1 if coef.value.ndim == 3 else 0)
     mean = triangle_means(coef, mesh, quadrature)
     if np.ndim(mean) == 0:
-        return np.array([float(mean)]), 0, empty, 0
-    return np.ascontiguousarray(mean, dtype=np.float64), 1, empty, 0
+        return KernelCoefficient(np.array([float(mean)]), 0, empty, 0)
+    return KernelCoefficient(np.ascontiguousarray(mean, dtype=np.float64), 1, empty, 0)
 
 
 class CSRNumeric:
@@ -36,15 +71,12 @@ class CSRNumeric:
     def stiffness_data(self, coef, quadrature, out=None):
         pl, m = self.plan, self.mesh
         data = np.empty(pl.nnz) if out is None else out
-        kappa, ks, tensor, ts = kernel_coefficient(coef, m, quadrature)
+        kc = kernel_coefficient(coef, m, quadrature)
         if self.fused:
             _jit_assembly.gather_stiffness(
                 m.points,
                 pl.triangles,
-                kappa,
-                ks,
-                tensor,
-                ts,
+                *kc,
                 pl.indptr,
                 pl.diag,
                 pl.ptr,
@@ -56,7 +88,7 @@ class CSRNumeric:
             return data
         d = np.empty((m.n_triangles, 3))
         o = np.empty((m.n_triangles, 3))
-        _jit_assembly.stiffness_values(m.points, pl.triangles, kappa, ks, tensor, ts, d, o)
+        _jit_assembly.stiffness_values(m.points, pl.triangles, *kc, d, o)
         self._gather(d, o, data)
         return data
 

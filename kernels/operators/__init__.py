@@ -1,0 +1,28 @@
+"""Matrix-free stiffness operator: ``A @ x`` without a stored matrix.
+
+Three variants, one class each behind one interface
+(:mod:`hatkernels.operators.variants`), all race-free and giving the same
+bits on any thread count (see :mod:`hatkernels._jit.operators`):
+
+``geometry``
+    recomputes each triangle's geometry from the coordinates at every
+    product; stores nothing beyond the mesh but a colouring of blocks
+    (and the coefficient, 8 bytes per triangle when it varies).
+``factors``
+    stores the three off-diagonal element entries per triangle (24 bytes per
+    triangle): no geometry at product time.
+``edges``
+    stores one weight per edge (the cotangent formula summed over the edge's
+    triangles) and the edge list by first point (an end point per edge, a
+    start per point): 12 bytes per edge and 4 per point, about 20 per
+    triangle, 0.45 of the CSR matrix; the product no longer needs the
+    triangles.
+
+docs/matrix-free.md has the measured speeds; :data:`DEFAULT_VARIANT` is
+the one the benchmark picked.
+"""
+
+from hatkernels.operators.stiffness import DEFAULT_BLOCK, StiffnessOperator
+from hatkernels.operators.variants import DEFAULT_VARIANT, VARIANTS
+
+__all__ = ["StiffnessOperator", "VARIANTS", "DEFAULT_VARIANT", "DEFAULT_BLOCK"]

@@ -1,0 +1,300 @@
+"""The matrix-free variants: one small class each, behind one interface, chosen by name.
+
+Every variant holds what it stores and implements
+
+``product(x, out)``
+    ``out = K x`` with the plain stiffness matrix, in parallel, the same bits
+    for any thread count;
+``serial_product(x, out)``
+    the same product written plainly (one thread, no colouring), which the
+    fast one is tested against;
+``diagonal_into(out)``, ``diagonal_and_offsum(diag, off)``
+    the diagonal of ``K``, and the row sums of ``|K_ij|``, ``j != i``, for
+    Gershgorin's bound;
+``remove_fixed_columns(near, is_fixed, x, out)``
+    ``out -= K[:, fixed] x[fixed]`` over the triangles next to fixed points;
+``nbytes``, ``n_colours``
+    what it stores beyond the mesh, and the colours its product runs through.
+
+The diagonal, the row sums and the column correction come from each
+triangle's element matrix (recomputed from the coordinates) for every
+variant: they run once per setup, or on the boundary only.
+:func:`build_variant` picks the class from :data:`VARIANT_CLASSES`.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+
+from hatkernels._jit import assembly as _jit_assembly
+from hatkernels._jit import operators as _jit_ops
+from hatkernels.errors import InputError
+from hatkernels.mesh.core_index import index_dtype
+from hatkernels.operators.colouring import row_colouring, triangle_colouring
+
+__all__ = [
+    "TriangleBlocks",
+    "GeometryProduct",
+    "SerialGeometryProduct",
+    "FactorsProduct",
+    "EdgesProduct",
+    "VARIANT_CLASSES",
+    "VARIANTS",
+    "DEFAULT_VARIANT",
+    "build_variant",
+]
+
+
+class TriangleBlocks:
+    """The interface, and what the variants share: the coefficient and a colouring of triangles.
+
+    Parameters
+    ----------
+    mesh : Mesh
+    coefficient : KernelCoefficient
+        From :func:`hatkernels.assembly.csr.kernel_coefficient`.
+    colouring : Colouring
+        Of blocks of consecutive triangles (:func:`triangle_colouring`).
+    """
+
+    #: The name :data:`VARIANT_CLASSES` knows the class by.
+    name = None
+    #: The class to use when the triangles need more than 64 colours (None: refuse).
+    fallback = None
+
+    def __init__(self, mesh, coefficient, colouring):
+        self.mesh = mesh
+        self.coefficient = coefficient
+        self.colouring = colouring
+
+    @property
+    def n_colours(self):
+        """Colours of the blocks the product runs through."""
+        return self.colouring.n_colours
+
+    @property
+    def nbytes(self):
+        """Bytes stored beyond the mesh."""
+        return self.colouring.nbytes + self.coefficient.nbytes
+
+    def product(self, x, out):
+        """``out = K x`` (``x`` float64, contiguous, length n_points; ``out`` overwritten)."""
+        raise NotImplementedError
+
+    def serial_product(self, x, out):
+        """``out = K x``, plainly: the version the product is tested against."""
+        raise NotImplementedError
+
+    def diagonal_into(self, out):
+        m = self.mesh
+        _jit_ops.diagonal(m.points, m.triangles, *self.coefficient, *self.colouring, out)
+
+    def diagonal_and_offsum(self, diag, off):
+        m = self.mesh
+        _jit_ops.diagonal_and_offsum(
+            m.points, m.triangles, *self.coefficient, *self.colouring, diag, off
+        )
+
+    def remove_fixed_columns(self, near, is_fixed, x, out):
+        m = self.mesh
+        _jit_ops.remove_fixed_columns(
+            m.points, m.triangles, *self.coefficient, near, is_fixed, x, out
+        )
+
+    def __repr__(self):
+        return f"{type(self).__name__}({self.n_colours} colours, {self.nbytes} bytes)"
+
+
+class SerialGeometryProduct(TriangleBlocks):
+    """The geometry variant on one thread, for meshes whose triangles need > 64 colours."""
+
+    name = "geometry"
+
+    def __init__(self, mesh, coefficient, colouring=None):
+        super().__init__(mesh, coefficient, colouring)
+
+    @property
+    def n_colours(self):
+        return 0
+
+    @property
+    def nbytes(self):
+        return self.coefficient.nbytes
+
+    def product(self, x, out):
+        m = self.mesh
+        _jit_ops.product_serial(m.points, m.triangles, *self.coefficient, x, out)
+
+    serial_product = product
+
+    def _element_values(self):
+        m = self.mesh
+        d = np.empty((m.n_triangles, 3))
+        o = np.empty((m.n_triangles, 3))
+        _jit_assembly.stiffness_values(m.points, m.triangles, *self.coefficient, d, o)
+        return d, o
+
+    def diagonal_into(self, out):
+        # no usable colouring: triangle values, summed in order
+        d, _ = self._element_values()
+        out[:] = np.bincount(self.mesh.triangles.ravel(), weights=d.ravel(), minlength=out.size)
+
+    def diagonal_and_offsum(self, diag, off):
+        d, o = self._element_values()
+        rows = np.abs(o)
+        cells = self.mesh.triangles.ravel()
+        diag[:] = np.bincount(cells, weights=d.ravel(), minlength=diag.size)
+        off[:] = np.bincount(
+            cells,
+            weights=(np.roll(rows, -1, axis=1) + np.roll(rows, 1, axis=1)).ravel(),
+            minlength=off.size,
+        )
+
+
+class GeometryProduct(TriangleBlocks):
+    """Recomputes each triangle's geometry at every product.
+
+    Stores only the colouring (and the coefficient, 8 bytes per triangle when
+    it varies).
+    """
+
+    name = "geometry"
+    fallback = SerialGeometryProduct
+
+    def __init__(self, mesh, coefficient, colouring):
+        super().__init__(mesh, coefficient, colouring)
+        # one kernel per kind of coefficient: a per-triangle branch measured 20 % slower
+        tensor = coefficient.is_tensor
+        self._kernel = _jit_ops.product_tensor if tensor else _jit_ops.product_scalar
+
+    def product(self, x, out):
+        m = self.mesh
+        self._kernel(m.points, m.triangles, *self.coefficient, *self.colouring, x, out)
+
+    def serial_product(self, x, out):
+        m = self.mesh
+        _jit_ops.product_serial(m.points, m.triangles, *self.coefficient, x, out)
+
+
+class FactorsProduct(TriangleBlocks):
+    """Stores the three off-diagonal element entries per triangle (24 bytes per triangle)."""
+
+    name = "factors"
+
+    def __init__(self, mesh, coefficient, colouring):
+        super().__init__(mesh, coefficient, colouring)
+        self.offdiagonals = np.empty((mesh.n_triangles, 3))
+        _jit_ops.offdiagonal_values(mesh.points, mesh.triangles, *coefficient, self.offdiagonals)
+
+    @property
+    def nbytes(self):
+        return super().nbytes + self.offdiagonals.nbytes
+
+    def product(self, x, out):
+        _jit_ops.apply_factors(self.mesh.triangles, self.offdiagonals, *self.colouring, x, out)
+
+    def serial_product(self, x, out):
+        # (K_T x)_a = sum over b != a of K_ab (x_b - x_a); column c holds the pair opposite c
+        t = self.mesh.triangles
+        o = self.offdiagonals
+        x0, x1, x2 = x[t[:, 0]], x[t[:, 1]], x[t[:, 2]]
+        terms = np.column_stack([
+            o[:, 2] * (x1 - x0) + o[:, 1] * (x2 - x0),
+            o[:, 2] * (x0 - x1) + o[:, 0] * (x2 - x1),
+            o[:, 1] * (x0 - x2) + o[:, 0] * (x1 - x2),
+        ])
+        out[:] = np.bincount(t.ravel(), weights=terms.ravel(), minlength=out.size)
+
+
+class EdgesProduct(TriangleBlocks):
+    """Stores one weight per edge and the edge list by first point; the product needs no triangles.
+
+    The weight of an edge is the sum over its triangles of their entry for
+    its two points (the cotangent formula).  12 bytes per edge and 4 per
+    point, about 20 per triangle, 0.45 of the CSR matrix.
+    """
+
+    name = "edges"
+
+    def __init__(self, mesh, coefficient, colouring):
+        super().__init__(mesh, coefficient, colouring)
+        n = mesh.n_points
+        had = mesh.cached()
+        edges = mesh.edges()
+        self.weights = np.empty(len(edges))
+        _jit_ops.edge_weights(
+            mesh.points, mesh.triangles, *coefficient, *colouring, mesh.triangle_edges(),
+            self.weights,
+        )
+        # the sorted edge list by first point: a start per point, an end per edge
+        # (int64 once the edge count passes int32, even if the point count does not)
+        self.starts = np.zeros(n + 1, dtype=index_dtype(len(edges), n + 1))
+        np.cumsum(np.bincount(edges[:, 0], minlength=n), out=self.starts[1:])
+        self.ends = np.ascontiguousarray(edges[:, 1])
+        del edges
+        # edge topology the products do not need (12 to 20 bytes per triangle)
+        mesh.forget(*(mesh.cached() - had))
+        # blocks of rows holding about as many edges as a block of triangles (three per row in 2-D)
+        rows = max(1, colouring.block_size // 3)
+        self.row_colouring = row_colouring(self.starts, self.ends, n, rows)
+        if self.row_colouring is None:
+            raise InputError(
+                "the edges variant needs a colouring of edges with at most 64 colours; "
+                "reorder the mesh (Mesh.reorder('hilbert')) or use variant='geometry'"
+            )
+
+    @property
+    def n_colours(self):
+        return self.row_colouring.n_colours
+
+    @property
+    def nbytes(self):
+        own = self.starts.nbytes + self.ends.nbytes + self.weights.nbytes
+        return super().nbytes + own + self.row_colouring.nbytes
+
+    def product(self, x, out):
+        _jit_ops.apply_edges(self.starts, self.ends, self.weights, *self.row_colouring, x, out)
+
+    def serial_product(self, x, out):
+        # (K x)_i = sum over edges (i, j) of w_ij (x_j - x_i)
+        n = out.size
+        first = np.repeat(np.arange(n), np.diff(self.starts))
+        d = self.weights * (x[self.ends] - x[first])
+        out[:] = np.bincount(first, weights=d, minlength=n) - np.bincount(
+            self.ends, weights=d, minlength=n
+        )
+
+
+#: The variants by name; the first is the default.
+VARIANT_CLASSES = {cls.name: cls for cls in (GeometryProduct, FactorsProduct, EdgesProduct)}
+VARIANTS = tuple(VARIANT_CLASSES)
+#: The one the benchmark picked (docs/matrix-free.md has the measured speeds).
+DEFAULT_VARIANT = "geometry"
+
+
+def build_variant(name, mesh, coefficient, block_size):
+    """The variant ``name`` for ``mesh``, on blocks of ``block_size`` triangles.
+
+    Falls back to the variant's :attr:`~TriangleBlocks.fallback`, with a
+    RuntimeWarning, when the triangles need more than 64 colours, or raises
+    InputError if it has none.  Arguments are trusted (checked by the caller).
+    """
+    cls = VARIANT_CLASSES[name]
+    colouring = triangle_colouring(mesh.triangles, mesh.n_points, block_size)
+    if colouring is not None:
+        return cls(mesh, coefficient, colouring)
+    if cls.fallback is None:
+        raise InputError(
+            f"the {name} variant needs a colouring with at most 64 colours; reorder the "
+            "mesh (Mesh.reorder('hilbert')) or use variant='geometry'"
+        )
+    warnings.warn(
+        "matrix-free product: the mesh needs more than 64 colours (a point in very many "
+        "triangles, or a numbering with no locality); products run on one thread. "
+        "Reorder the mesh (Mesh.reorder('hilbert')) to fix this.",
+        RuntimeWarning,
+        stacklevel=3,  # the caller of StiffnessOperator
+    )
+    return cls.fallback(mesh, coefficient)
