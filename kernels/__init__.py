@@ -22,14 +22,14 @@ from hatkernels.assembly import (
 )
 from hatkernels.boundary import DirichletSystem, apply_dirichlet
 from hatkernels.coefficients import per_edge, per_point, per_triangle
+from hatkernels.discretise import LinearSystem, discretise
 from hatkernels.errors import ConvergenceError, InputError, MeshError, MeshWarning
 from hatkernels.geometry import element_gradients
 from hatkernels.mesh import Mesh
 from hatkernels.operators import StiffnessOperator
-from hatkernels.discretise import LinearSystem, discretise
 from hatkernels.poisson import PoissonSolution, solve_poisson
-from hatkernels.problem import PoissonProblem
 from hatkernels.precond import PRECONDITIONERS, make_preconditioner, register_preconditioner
+from hatkernels.problem import PoissonProblem
 from hatkernels.solver import SolveResult, solve
 from hatkernels.stats import SolveStats
 

@@ -5,10 +5,10 @@ A coefficient (or load) is one of
 - ``None`` (the constant 1) or a number;
 - an array of one value per triangle (piecewise constant) or one per point
   (continuous, piecewise linear between the points);
-- for diffusion, a symmetric positive definite 2x2 tensor, one for all
-  ``(2, 2)`` or one per triangle ``(n_triangles, 2, 2)``;
-- a callable ``c(x, y)`` taking and returning arrays, evaluated at
-  quadrature points.
+- for diffusion, a symmetric positive definite ``d x d`` tensor (``d`` the
+  mesh's dimension), one for all ``(d, d)`` or one per cell ``(n_cells, d, d)``;
+- a callable ``c(x, y)`` (``c(x, y, z)`` in 3-D) taking and returning
+  arrays, evaluated at quadrature points.
 
 When a mesh has as many points as triangles a plain array is ambiguous;
 wrap it with :func:`per_point` or :func:`per_triangle`.
@@ -71,7 +71,7 @@ class Coefficient:
     """A checked coefficient.
 
     ``kind`` is ``"constant"`` (value a float), ``"cell"`` (M,),
-    ``"point"`` (N,), ``"tensor"`` ((2, 2) or (M, 2, 2)) or ``"callable"``.
+    ``"point"`` (N,), ``"tensor"`` ((d, d) or (M, d, d)) or ``"callable"``.
     """
 
     kind: str
@@ -79,29 +79,34 @@ class Coefficient:
     name: str
     sign: str
 
-    def evaluate(self, x, y, owners, owner="triangle"):
-        """Values of a callable at points ``(x, y)``, checked; ``owners[k]`` is the
-        triangle (or edge, per ``owner``) that point ``k`` belongs to, for messages."""
+    def evaluate(self, coords, owners, owner="triangle"):
+        """Values of a callable at points ``coords = (x, y)`` (``(x, y, z)`` in 3-D), checked;
+        ``owners[k]`` is the cell (or side, per ``owner``) that point ``k`` belongs to, for
+        messages."""
+        args = ", ".join("xyz"[: len(coords)])
+        call = f"{self.name}({args})"
         try:
-            v = self.value(x, y)
+            v = self.value(*coords)
         except Exception as exc:
-            raise InputError(f"{self.name}(x, y) raised {type(exc).__name__}: {exc}") from exc
+            raise InputError(f"{call} raised {type(exc).__name__}: {exc}") from exc
         v = np.asarray(v)
         if v.dtype.kind not in "fiub" or v.dtype.kind == "b":
-            raise InputError(f"{self.name}(x, y) must return real numbers, got dtype {v.dtype}")
+            raise InputError(f"{call} must return real numbers, got dtype {v.dtype}")
+        shape = coords[0].shape
         if v.ndim == 0:
-            v = np.full(x.shape, float(v))
-        if v.shape != x.shape:
+            v = np.full(shape, float(v))
+        if v.shape != shape:
             raise InputError(
-                f"{self.name}(x, y) returned shape {v.shape} for {x.size} points; it must "
-                "return one value per point (use numpy operations on x and y)"
+                f"{call} returned shape {v.shape} for {coords[0].size} points; it must "
+                f"return one value per point (use numpy operations on {args})"
             )
         v = v.astype(np.float64, copy=False)
         bad = _bad_mask(v, self.sign)
         if bad.any():
             k = int(np.flatnonzero(bad)[0])
+            at = ", ".join(repr(float(c[k])) for c in coords)
             raise InputError(
-                f"{self.name}(x, y) is {float(v[k])!r} at ({float(x[k])!r}, {float(y[k])!r}), a quadrature point of "
+                f"{call} is {float(v[k])!r} at ({at}), a quadrature point of "
                 f"{owner} {int(owners[k])}; {_REQUIREMENT[self.sign]}"
             )
         return v
@@ -144,17 +149,21 @@ def _check_values(a, name, sign, where):
 
 
 def _check_tensors(K, name, where):
-    K = K.reshape(-1, 2, 2)
+    d = K.shape[-1]
+    K = K.reshape(-1, d, d)
     if not np.isfinite(K).all():
         k = int(np.flatnonzero(~np.isfinite(K).all(axis=(1, 2)))[0])
         raise InputError(f"{name} tensor of {where} {k} is not finite: {K[k].tolist()}")
     scale = np.abs(K).max(axis=(1, 2))
-    asym = np.abs(K[:, 0, 1] - K[:, 1, 0]) > 1e-12 * scale
+    asym = (np.abs(K - K.transpose(0, 2, 1)) > 1e-12 * scale[:, None, None]).any(axis=(1, 2))
     if asym.any():
         k = int(np.flatnonzero(asym)[0])
         raise InputError(f"{name} tensor of {where} {k} is not symmetric: {K[k].tolist()}")
-    det = K[:, 0, 0] * K[:, 1, 1] - K[:, 0, 1] * K[:, 1, 0]
-    notpd = ~((K[:, 0, 0] > 0) & (det > 0))
+    if d == 2:  # the leading minors: no eigenvalue solve for the common case
+        det = K[:, 0, 0] * K[:, 1, 1] - K[:, 0, 1] * K[:, 1, 0]
+        notpd = ~((K[:, 0, 0] > 0) & (det > 0))
+    else:
+        notpd = ~(np.linalg.eigvalsh(0.5 * (K + K.transpose(0, 2, 1)))[:, 0] > 0)
     if notpd.any():
         k = int(np.flatnonzero(notpd)[0])
         raise InputError(f"{name} tensor of {where} {k} is not positive definite: {K[k].tolist()}")
@@ -189,7 +198,8 @@ def parse_coefficient(value, mesh, *, name="coefficient", sign="positive", tenso
     n, m = mesh.n_points, mesh.n_triangles
     if a.ndim == 0 and on is None:
         return parse_coefficient(float(a), mesh, name=name, sign=sign, tensor=tensor)
-    if a.ndim in (2, 3) and a.shape[-2:] == (2, 2) and on in (None, "cell"):
+    d = mesh.dim
+    if a.ndim in (2, 3) and a.shape[-2:] == (d, d) and on in (None, "cell"):
         if not tensor:
             raise InputError(f"{name} must be scalar here, got a tensor of shape {a.shape}")
         if a.ndim == 3 and a.shape[0] != m:
@@ -199,7 +209,7 @@ def parse_coefficient(value, mesh, *, name="coefficient", sign="positive", tenso
     if a.ndim != 1:
         raise InputError(
             f"{name} has shape {a.shape}; expected a number, one value per point ({n},), "
-            f"one per triangle ({m},)" + (", or 2x2 tensors" if tensor else "")
+            f"one per triangle ({m},)" + (f", or {d}x{d} tensors" if tensor else "")
         )
     return _per_item(a, on, name, sign, n, "cell", m)
 
@@ -262,7 +272,7 @@ def at_quadrature(coef, mesh, degree):
         stop = min(m, start + _CHUNK)
         x, y = quadrature_points(mesh, degree, start, stop)
         owner = np.repeat(np.arange(start, stop), len(lam))
-        out[start:stop] = coef.evaluate(x.ravel(), y.ravel(), owner).reshape(x.shape)
+        out[start:stop] = coef.evaluate((x.ravel(), y.ravel()), owner).reshape(x.shape)
     return out
 
 

@@ -75,17 +75,17 @@ def _held_points(mesh, where):
 
 def _held_values(mesh, points, g):
     if callable(g):
-        x, y = mesh.points[points].T
-        v = np.asarray(g(x, y), dtype=np.float64)
+        coords = mesh.points[points].T
+        call = f"dirichlet({', '.join('xyz'[: mesh.dim])})"
+        v = np.asarray(g(*coords), dtype=np.float64)
         v = np.broadcast_to(v, points.shape) if v.ndim == 0 else v
         if v.shape != points.shape:
-            raise InputError(f"dirichlet(x, y) returned shape {v.shape} for {points.size} points")
+            raise InputError(f"{call} returned shape {v.shape} for {points.size} points")
         bad = ~np.isfinite(v)
         if bad.any():
             k = int(np.flatnonzero(bad)[0])
-            raise InputError(
-                f"dirichlet(x, y) is {float(v[k])!r} at point {points[k]} ({x[k]!r}, {y[k]!r})"
-            )
+            at = ", ".join(repr(c) for c in mesh.points[points[k]].tolist())
+            raise InputError(f"{call} is {float(v[k])!r} at point {points[k]} ({at})")
         return np.array(v, dtype=np.float64)
     v = np.asarray(g)
     if v.ndim == 0:

@@ -155,7 +155,7 @@ def _coefficient_at(coef, mesh, sl, x, y, lam):
     if coef.kind == "point":
         return coef.value[mesh.triangles[sl]] @ lam.T
     owners = np.repeat(np.arange(sl.start, sl.stop), x.shape[1])
-    return coef.evaluate(x.ravel(), y.ravel(), owners).reshape(x.shape)
+    return coef.evaluate((x.ravel(), y.ravel()), owners).reshape(x.shape)
 
 
 def h1_seminorm_error(mesh, u, grad_exact, *, quadrature=5):

@@ -60,7 +60,7 @@ def _edge_quadrature(coef, mesh, e, degree):
     xq = p[e[:, 0], None, :] * lam[None, :, 0, None] + p[e[:, 1], None, :] * lam[None, :, 1, None]
     owner = np.repeat(np.arange(len(e)), len(w))
     x, y = xq[..., 0].ravel(), xq[..., 1].ravel()
-    v = coef.evaluate(x, y, owner, "edge")
+    v = coef.evaluate((x, y), owner, "edge")
     return v.reshape(len(e), len(w)), lam, w
 
 

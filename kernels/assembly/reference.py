@@ -48,7 +48,7 @@ def _mean_over(coef, mesh, t, X, quadrature):
         return coef.value if coef.value.ndim == 2 else coef.value[t]
     lam, w = triangle_rule(quadrature)
     xq = lam @ X  # quadrature points of this triangle
-    return float(w @ coef.evaluate(xq[:, 0], xq[:, 1], np.full(len(w), t)))
+    return float(w @ coef.evaluate((xq[:, 0], xq[:, 1]), np.full(len(w), t)))
 
 
 def stiffness(mesh, coef, quadrature):
@@ -97,7 +97,7 @@ def mass(mesh, coef, quadrature):
                         )
                 else:
                     xq = lam @ X
-                    c = coef.evaluate(xq[:, 0], xq[:, 1], np.full(len(w), t))
+                    c = coef.evaluate((xq[:, 0], xq[:, 1]), np.full(len(w), t))
                     Me[a, b] = area * np.sum(w * c * lam[:, a] * lam[:, b])
         for a in range(3):
             for b in range(3):

@@ -163,14 +163,14 @@ class _LocalCallable(Coefficient):
     triangle_map: np.ndarray = None
     edge_map: np.ndarray = None
 
-    def evaluate(self, x, y, owners, owner="triangle"):
+    def evaluate(self, coords, owners, owner="triangle"):
         table = self.triangle_map if owner == "triangle" else self.edge_map
         if table is not None:
             owners = table[np.asarray(owners, dtype=np.int64)]
-        return super().evaluate(x, y, owners, owner)
+        return super().evaluate(coords, owners, owner)
 
-    def __call__(self, x, y):
-        return self.value(x, y)
+    def __call__(self, *coords):
+        return self.value(*coords)
 
 
 def local_coefficient(coef, sub, *, edge_map=None):

@@ -55,12 +55,17 @@ NO_HISTORY = (
 
 
 def coarsen_coefficient(coef, fine, coarse):
-    """The coefficient of the coarse mesh that ``fine`` was refined from."""
+    """The coefficient of the coarse mesh that ``fine`` was refined from.
+
+    Uniform refinement splits a cell into ``2**dim`` children, numbered
+    consecutively: per-cell values and tensors are averaged over them.
+    """
     if coef.kind in ("constant", "callable"):
         return coef
+    children = 2 ** fine.dim
     if coef.kind == "cell":
         return Coefficient(
-            "cell", coef.value.reshape(-1, 4).mean(axis=1), coef.name, coef.sign
+            "cell", coef.value.reshape(-1, children).mean(axis=1), coef.name, coef.sign
         )
     if coef.kind == "point":
         return Coefficient(
@@ -69,7 +74,8 @@ def coarsen_coefficient(coef, fine, coarse):
     if coef.value.ndim == 2:
         return coef
     return Coefficient(
-        "tensor", coef.value.reshape(-1, 4, 2, 2).mean(axis=1), coef.name, coef.sign
+        "tensor", coef.value.reshape(-1, children, fine.dim, fine.dim).mean(axis=1), coef.name,
+        coef.sign
     )
 
 
