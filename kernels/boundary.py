@@ -14,7 +14,9 @@ import numpy as np
 import scipy.sparse as sp
 
 from hatkernels._jit import dirichlet as _jit_dirichlet
+from hatkernels.checks import point_indices
 from hatkernels.errors import InputError
+from hatkernels.sparse import as_csr
 
 __all__ = ["DirichletSystem", "apply_dirichlet"]
 
@@ -71,36 +73,18 @@ class DirichletSystem:
 
 
 def _canonical_csr(A):
-    if not sp.issparse(A):
-        raise InputError(f"A must be a scipy sparse matrix, got {type(A).__name__}")
-    if A.ndim != 2 or A.shape[0] != A.shape[1]:
-        raise InputError(f"A must be square, got shape {A.shape}")
-    if A.dtype != np.float64:
-        if A.dtype.kind not in "fiu":
-            raise InputError(f"A must be real, got dtype {A.dtype}")
-        A = A.astype(np.float64)
-    A = sp.csr_matrix(A)  # shares arrays when A is already CSR: never changed below
+    """``A`` checked by :func:`~hatkernels.sparse.as_csr`, with duplicates summed (in a copy)."""
+    A = as_csr(A)  # never changed below: shared with the caller when already CSR float64
     if not A.has_canonical_format:
         A = A.copy()
         A.sum_duplicates()
-    if A.indices.dtype != A.indptr.dtype:
-        dt = np.promote_types(A.indices.dtype, A.indptr.dtype)
-        A = sp.csr_matrix((A.data, A.indices.astype(dt), A.indptr.astype(dt)), shape=A.shape)
     return A
 
 
 def _points_and_values(points, values, n):
-    idx = np.asarray(points)
-    if idx.ndim == 0:
-        idx = idx.reshape(1)
-    if idx.ndim != 1 or (idx.size and idx.dtype.kind not in "iu"):
-        raise InputError(
-            f"points must be a 1-D array of point indices, got {idx.dtype} {idx.shape}"
-        )
-    idx = idx.astype(np.int64)
-    if idx.size and (idx.min() < 0 or idx.max() >= n):
-        k = int(np.flatnonzero((idx < 0) | (idx >= n))[0])
-        raise InputError(f"points[{k}] = {idx[k]} is outside 0..{n - 1}")
+    if np.isscalar(points) or (isinstance(points, np.ndarray) and points.ndim == 0):
+        points = [points]  # one point
+    idx = point_indices(points, n, "points")
     v = np.asarray(values)
     if v.dtype.kind not in "fiu":
         raise InputError(f"Dirichlet values must be real numbers, got dtype {v.dtype}")
@@ -110,7 +94,7 @@ def _points_and_values(points, values, n):
     bad = ~np.isfinite(v)
     if bad.any():
         k = int(np.flatnonzero(bad)[0])
-        raise InputError(f"Dirichlet value {float(v[k])!r} at node {idx[k]} is not finite")
+        raise InputError(f"Dirichlet value {float(v[k])!r} at point {idx[k]} is not finite")
     order = np.argsort(idx, kind="stable")
     idx, v = idx[order], v[order]
     dup = np.flatnonzero(idx[1:] == idx[:-1])
@@ -119,7 +103,7 @@ def _points_and_values(points, values, n):
         if clash.size:
             k = int(clash[0])
             raise InputError(
-                f"node {idx[k]} is given two different Dirichlet values, {float(v[k])!r} and {float(v[k + 1])!r}"
+                f"point {idx[k]} is given two different Dirichlet values, {float(v[k])!r} and {float(v[k + 1])!r}"
             )
         keep = np.ones(idx.size, dtype=bool)
         keep[dup + 1] = False
@@ -174,10 +158,6 @@ def apply_dirichlet(A, b, points, values=0.0):
     if not np.isfinite(b).all():
         k = int(np.flatnonzero(~np.isfinite(b))[0])
         raise InputError(f"b[{k}] = {float(b[k])!r} is not finite")
-    if not np.isfinite(A.data).all():
-        k = int(np.flatnonzero(~np.isfinite(A.data))[0])
-        row = int(np.searchsorted(A.indptr, k, side="right") - 1)
-        raise InputError(f"A has a non-finite entry {float(A.data[k])!r} in row {row}")
     fixed, vals = _points_and_values(points, values, n)
 
     is_fixed = np.zeros(n, dtype=bool)

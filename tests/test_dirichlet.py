@@ -16,13 +16,13 @@ from hatkernels.mesh import rectangle
 def test_reduction_equals_scipy_slicing(m):
     A = assemble_stiffness(m, np.linspace(1, 2, m.n_triangles))
     b = assemble_load(m, lambda x, y: np.sin(3 * x) + y)
-    nodes = m.boundary_points()
-    g = 1.0 + m.points[nodes, 0] ** 2
-    s = apply_dirichlet(A, b, nodes, g)
-    free = np.setdiff1d(np.arange(m.n_points), nodes)
+    points = m.boundary_points()
+    g = 1.0 + m.points[points, 0] ** 2
+    s = apply_dirichlet(A, b, points, g)
+    free = np.setdiff1d(np.arange(m.n_points), points)
     # reference library: scipy sparse indexing
     Aff = A[free][:, free]
-    Afd = A[free][:, nodes]
+    Afd = A[free][:, points]
     assert (s.free == free).all()
     assert abs(s.A - Aff).max() == 0 and (s.A.indices == Aff.indices).all()
     assert s.b == pytest.approx(b[free] - Afd @ g, rel=1e-13, abs=1e-13)
@@ -33,12 +33,12 @@ def test_reduced_matrix_is_spd_and_linear_solutions_are_exact():
     # P1 elements reproduce linear functions exactly: the patch test (B. M. Irons
     # and A. Razzaque, Experience with the patch test for convergence of finite
     # elements, 1972).  u = 1 + 2x - 3y is harmonic; with its boundary values the
-    # discrete solution equals it at every node.
+    # discrete solution equals it at every point.
     m = jittered_mesh(9, 4)
     u = lambda x, y: 1 + 2 * x - 3 * y  # noqa: E731
     A = assemble_stiffness(m)
-    nodes = m.boundary_points()
-    s = apply_dirichlet(A, np.zeros(m.n_points), nodes, u(*m.points[nodes].T))
+    points = m.boundary_points()
+    s = apply_dirichlet(A, np.zeros(m.n_points), points, u(*m.points[points].T))
     assert np.linalg.eigvalsh(s.A.toarray()).min() > 0
     x = spla.spsolve(s.A.tocsc(), s.b)  # reference library: scipy
     assert s.expand(x) == pytest.approx(u(*m.points.T), abs=1e-12)
@@ -57,15 +57,24 @@ def test_inputs_are_not_modified_and_odd_inputs_work():
         shape=A.shape,
     ).tocsr()  # duplicates, not canonical
     b = np.ones(m.n_points)
-    nodes = np.r_[m.boundary_points(), m.boundary_points()[:3]]  # repeats with equal values
-    before = (A.data.copy(), b.copy(), nodes.copy(), A_dup.data.copy())
-    s1 = apply_dirichlet(A, b, nodes, 2.0)
-    s2 = apply_dirichlet(A_dup, b, nodes, 2.0)
+    points = np.r_[m.boundary_points(), m.boundary_points()[:3]]  # repeats with equal values
+    before = (A.data.copy(), b.copy(), points.copy(), A_dup.data.copy())
+    s1 = apply_dirichlet(A, b, points, 2.0)
+    s2 = apply_dirichlet(A_dup, b, points, 2.0)
     assert abs(s1.A - s2.A).max() < 1e-15 and s1.b == pytest.approx(s2.b)
     assert (A.data == before[0]).all() and (b == before[1]).all()
-    assert (nodes == before[2]).all() and (A_dup.data == before[3]).all()
+    assert (points == before[2]).all() and (A_dup.data == before[3]).all()
     s3 = apply_dirichlet(A.astype(np.float32), b, m.boundary_points(), 2.0)
     assert s3.A.dtype == np.float64
+
+
+def test_one_point_may_be_given_as_a_number():
+    m = rectangle(3, 3)
+    A = assemble_stiffness(m)
+    b = assemble_load(m, 1.0)
+    for point in (5, np.int32(5), np.array(5)):
+        s = apply_dirichlet(A, b, point, 2.0)
+        assert s.fixed.tolist() == [5] and s.values.tolist() == [2.0]
 
 
 def test_isolated_points_are_left_out():
@@ -92,9 +101,9 @@ def test_bad_inputs_are_named():
     b = np.zeros(m.n_points)
     with pytest.raises(hatkernels.InputError, match=r"points\[1\] = 16 is outside 0..15"):
         apply_dirichlet(A, b, [0, 16])
-    with pytest.raises(hatkernels.InputError, match="node 3 is given two different Dirichlet values"):
+    with pytest.raises(hatkernels.InputError, match="point 3 is given two different Dirichlet values"):
         apply_dirichlet(A, b, [3, 3], [1.0, 2.0])
-    with pytest.raises(hatkernels.InputError, match="Dirichlet value nan at node 5"):
+    with pytest.raises(hatkernels.InputError, match="Dirichlet value nan at point 5"):
         apply_dirichlet(A, b, [5], [np.nan])
     with pytest.raises(hatkernels.InputError, match="got 2 Dirichlet values for 3 points"):
         apply_dirichlet(A, b, [0, 1, 2], [1.0, 2.0])
@@ -104,6 +113,14 @@ def test_bad_inputs_are_named():
         apply_dirichlet(A, np.r_[0, 0, np.inf, np.zeros(13)], [0])
     with pytest.raises(hatkernels.InputError, match="must be square"):
         apply_dirichlet(A[:3], b, [0])
+    with pytest.raises(hatkernels.InputError, match=r"points must be a 1-D array .* bool"):
+        apply_dirichlet(A, b, np.ones(16, dtype=bool))
+    with pytest.raises(hatkernels.InputError, match="points cannot be read as an array"):
+        apply_dirichlet(A, b, [[0], [1, 2]])
+    F = A.copy()
+    F[2, 3] = np.inf
+    with pytest.raises(hatkernels.InputError, match="non-finite entry inf at row 2, column 3"):
+        apply_dirichlet(F, b, [0])
     with pytest.raises(hatkernels.InputError, match="scipy sparse matrix"):
         apply_dirichlet(A.toarray(), b, [0])
     N = A.copy()
