@@ -2,7 +2,10 @@
 
 :func:`cg` takes the arguments of :func:`scipy.sparse.linalg.cg` and returns
 ``(x, info)``; :func:`cg_with_history` runs the same iteration and also returns
-the residual history and the iteration count (the solve layer uses it).
+the residual history and the iteration count (the solve layer uses it).  The
+iteration itself is :func:`hatkernels._cg.run`, the one loop that the
+distributed CG (:mod:`hatkernels.distributed.cg`) runs too, with its global
+reductions injected.
 
 Stopping rule (scipy's): converged when ``norm(b - A @ x) <= max(rtol *
 norm(b), atol)``, on the unpreconditioned residual.  The iteration tracks the
@@ -30,70 +33,49 @@ CSR kernel (other sparse formats are converted to CSR once; the input is not
 modified); the vector updates are fused kernels whose dot products reduce
 over fixed chunks, so a solve gives the same bits on 1 and 2 threads.  All
 arithmetic is float64 (float32 and integer inputs are converted, complex ones
-refused).  Two preconditioner shortcuts avoid a call of ``M.matvec`` per
-iteration: an ``M`` with ``is_identity = True`` (the ``none`` preconditioner)
-is treated as ``M=None``, and one that exposes ``inverse_diagonal`` (a float64
-array of shape ``(n,)``, as ``jacobi`` does) is applied as that diagonal inside
-the fused vector update.  An ``M`` with a method ``apply_into(r, out)`` (as
-``gmg`` has) is called with CG's own vector as ``out``, saving a vector per
-application.
+refused).
+
+The preconditioner protocol
+---------------------------
+One protocol serves the serial and the distributed CG.  A preconditioner is
+an object with
+
+``apply_into(r, z)``
+    fills ``z = M r``, M symmetric positive definite; ``r`` and ``z`` are
+    distinct float64 contiguous arrays of the (local) length ``n``; ``r`` is
+    not modified.  CG passes its own vector as ``z`` and computes ``r . z``
+    itself (in the distributed CG, reduced over the ranks).
+``inverse_diagonal`` (optional)
+    a float64 array of shape ``(n,)``: M is that diagonal, and CG applies it
+    inside its fused vector update instead of calling ``apply_into`` (as
+    ``jacobi`` does).
+``is_identity = True`` (optional)
+    M is the identity: CG applies nothing (as ``none`` does).
+``description`` (or ``describe()``), ``nbytes``
+    one line saying what it is and what it costs, and the bytes it holds;
+    for the solve layer's report, CG does not read them.
+
+Built-in preconditioners (:mod:`hatkernels.precond`,
+:mod:`hatkernels.distributed.precond`) follow it.  :func:`cg` also takes a
+plain ``LinearOperator``, a matrix or an array as ``M``: it is wrapped once at
+the start of the solve, its ``matvec`` called per application and its result
+checked for shape.
 """
 
-import math
 import warnings
-from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator, aslinearoperator
 
+from hatkernels import _cg
+from hatkernels._cg import BREAKDOWN_MATRIX, BREAKDOWN_PRECONDITIONER, CGResult
 from hatkernels._jit import sparse as _k
+from hatkernels.checks import integer_option, real_option
 from hatkernels.errors import InputError
 from hatkernels.sparse import as_csr, as_vector
 
 __all__ = ["cg", "cg_with_history", "CGResult", "BREAKDOWN_MATRIX", "BREAKDOWN_PRECONDITIONER"]
-
-#: ``info`` when ``p . A p <= 0``: the matrix is not positive definite.
-BREAKDOWN_MATRIX = -1
-#: ``info`` when ``r . z <= 0`` with ``r != 0``: the preconditioner is not positive definite.
-BREAKDOWN_PRECONDITIONER = -2
-
-
-@dataclass
-class CGResult:
-    """Outcome of :func:`cg_with_history`.
-
-    Attributes
-    ----------
-    x : ndarray, shape (n,)
-        Last iterate.
-    info : int
-        0 converged, >0 iterations without converging, <0 breakdown (see module docs).
-    iterations : int
-        Iterations done (products with A inside the loop).
-    residuals : ndarray, shape (iterations + 1,)
-        ``norm(b - A x_k)``, initial one first: the recursive value, or the
-        true one where it was computed (at a convergence check).
-    tolerance : float
-        ``max(rtol * norm(b), atol)``.
-    message : str
-        What happened, in words.
-    restarts : int
-        Times the recursive residual met the tolerance but the true one did
-        not, so the iteration went on from the true residual.
-    """
-
-    x: np.ndarray
-    info: int
-    iterations: int
-    residuals: np.ndarray
-    tolerance: float
-    message: str
-    restarts: int = 0
-
-    @property
-    def converged(self):
-        return self.info == 0
 
 
 class _CSRProduct:
@@ -101,6 +83,7 @@ class _CSRProduct:
 
     def __init__(self, C):
         self.arrays = (C.indptr, C.indices, C.data)
+        self.n_local = C.shape[0]
 
     def matvec_dot(self, p, q):
         return _k.spmv_dot(*self.arrays, p, q)
@@ -118,6 +101,7 @@ class _InPlaceProduct:
 
     def __init__(self, op):
         self.op = op
+        self.n_local = op.shape[0]
 
     def matvec_dot(self, p, q):
         self.op.matvec_into(p, q)
@@ -133,7 +117,7 @@ class _OperatorProduct:
 
     def __init__(self, op, n):
         self.op = op
-        self.n = n
+        self.n = self.n_local = n
 
     def _apply(self, v):
         y = np.asarray(self.op.matvec(v))
@@ -170,64 +154,40 @@ def _operator(A):
     return _OperatorProduct(A, A.shape[0]), A.shape[0]
 
 
-class _Preconditioner:
-    """z = M r for None (identity), a diagonal, or any LinearOperator."""
-
-    def __init__(self, M, n):
-        self.identity = M is None or getattr(M, "is_identity", False) is True
-        self.dinv = None
-        self.op = None
-        self.into = None
-        if self.identity:
-            return
-        dinv = getattr(M, "inverse_diagonal", None)
-        if isinstance(dinv, np.ndarray) and dinv.shape == (n,) and dinv.dtype == np.float64:
-            self.dinv = np.ascontiguousarray(dinv)
-            return
-        if not isinstance(M, LinearOperator):
-            try:
-                M = aslinearoperator(M)
-            except TypeError as exc:
-                raise InputError(f"M must be None, a matrix or a LinearOperator ({exc})") \
-                    from None
-        if M.shape != (n, n):
-            raise InputError(f"M has shape {M.shape}, expected ({n}, {n}) to match A")
-        self.op = M
-        self.n = n
-        # a preconditioner that writes into a given array (gmg) saves a vector per apply
-        into = getattr(M, "apply_into", None)
-        self.into = into if callable(into) else None
-
-    def apply(self, r, z):
-        """Fill ``z`` with ``M r``; return ``r . z``."""
-        if self.dinv is not None:
-            _k.jacobi_apply(self.dinv, r, z)
-        elif self.into is not None:
-            self.into(r, z)
-        else:
-            y = np.asarray(self.op.matvec(r))
-            if y.shape not in ((self.n,), (self.n, 1)):
-                raise InputError(f"M.matvec returned shape {y.shape}, expected ({self.n},)")
-            z[:] = y.reshape(self.n)
-        return _k.dot(r, z)
+def _operator(A):
+    if isinstance(A, np.ndarray) and A.ndim == 2:
+        A = sp.csr_array(A)
+    if sp.issparse(A):
+        C = as_csr(A, "A")
+        return _CSRProduct(C), C.shape[0]
+    if not isinstance(A, LinearOperator):
+        try:
+            A = aslinearoperator(A)
+        except TypeError as exc:
+            raise InputError(f"A must be a sparse matrix, an array or a LinearOperator ({exc})") \
+                from None
+    if len(A.shape) != 2 or A.shape[0] != A.shape[1] or A.shape[0] == 0:
+        raise InputError(f"A must be square and non-empty, got shape {A.shape}")
+    if A.dtype is not None and np.issubdtype(A.dtype, np.complexfloating):
+        raise InputError(f"A is complex ({A.dtype}); only real operators are supported")
+    if callable(getattr(A, "matvec_into", None)):
+        return _InPlaceProduct(A), A.shape[0]
+    return _OperatorProduct(A, A.shape[0]), A.shape[0]
 
 
 def _check_scalars(rtol, atol, maxiter, n, callback):
-    for name, value in (("rtol", rtol), ("atol", atol)):
-        if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
-            raise InputError(f"{name} must be a real number, got {value!r}")
-        if not (math.isfinite(value) and value >= 0):
-            raise InputError(f"{name} must be finite and >= 0, got {value!r}")
+    """``(rtol, atol, maxiter)`` checked, ``maxiter`` defaulting to ``10 n`` as scipy's."""
+    rtol = real_option(rtol, "rtol", minimum=0.0)
+    atol = real_option(atol, "atol", minimum=0.0)
+    maxiter = integer_option(maxiter, "maxiter", allow_none=True)
     if maxiter is None:
         maxiter = 10 * n
-    elif isinstance(maxiter, bool) or not isinstance(maxiter, (int, np.integer)):
-        raise InputError(f"maxiter must be a positive integer or None, got {maxiter!r}")
     elif maxiter < 1:
         raise InputError(f"maxiter must be >= 1 (info > 0 reports the iterations done), "
                          f"got {maxiter}")
     if callback is not None and not callable(callback):
         raise InputError(f"callback must be callable or None, got {type(callback).__name__}")
-    return float(rtol), float(atol), int(maxiter)
+    return rtol, atol, maxiter
 
 
 def cg_with_history(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None,
@@ -242,100 +202,14 @@ def cg_with_history(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None,
     product, n = _operator(A)
     b = as_vector(b, n, "b")
     rtol, atol, maxiter = _check_scalars(rtol, atol, maxiter, n, callback)
-    precond = _Preconditioner(M, n)
-
-    bnorm = math.sqrt(_k.dot(b, b))
-    if bnorm == 0.0:
-        # scipy's convention: the zero right-hand side has the zero solution.
-        if x0 is not None:
-            as_vector(x0, n, "x0")
-        return CGResult(np.zeros(n), 0, 0, np.zeros(1), atol, "zero right-hand side")
-    tol = max(atol, rtol * bnorm)
-
-    if x0 is None:
-        x = np.zeros(n)
-        r = b.copy()
-    else:
-        x = as_vector(x0, n, "x0").copy()
-        r = np.empty(n)
-        product.residual(x, b, r)
-    rr = _k.dot(r, r)
-    history = [math.sqrt(rr)]
-    if history[0] <= tol:
-        return CGResult(x, 0, 0, np.array(history), tol, "initial guess meets the tolerance")
-
-    z = r if precond.identity else np.empty(n)
-    rz = rr if precond.identity else precond.apply(r, z)
-    q = np.empty(n)
-    iteration = 0
-    restarts = 0
-    info = maxiter
-    message = f"not converged after {maxiter} iterations"
-    if not (rz > 0.0 and math.isfinite(rz)):
-        info, message = _breakdown_preconditioner(rz, 0)
-    else:
-        p = z.copy()
-        while iteration < maxiter:
-            pq = product.matvec_dot(p, q)
-            if not (pq > 0.0 and math.isfinite(pq)):
-                info = BREAKDOWN_MATRIX
-                message = (f"breakdown in iteration {iteration + 1}: p.Ap = {pq:.3e} <= 0 "
-                           f"(or not finite), so A is not positive definite "
-                           f"(info = {BREAKDOWN_MATRIX})")
-                break
-            alpha = rz / pq
-            if precond.dinv is not None:
-                rr, rz_new = _k.cg_step_jacobi(alpha, p, q, precond.dinv, x, r, z)
-            else:
-                rr = _k.cg_step(alpha, p, q, x, r)
-            iteration += 1
-            if callback is not None:
-                callback(x)
-            rnorm = math.sqrt(rr)
-            restart = False
-            if rnorm <= tol:
-                product.residual(x, b, r)
-                rr = _k.dot(r, r)
-                rnorm = math.sqrt(rr)
-                if rnorm <= tol:
-                    history.append(rnorm)
-                    if monitor is not None:
-                        monitor(iteration, rnorm)
-                    info, message = 0, f"converged in {iteration} iterations"
-                    break
-                restart = True
-                restarts += 1
-            history.append(rnorm)
-            if monitor is not None:
-                monitor(iteration, rnorm)
-            if iteration == maxiter:
-                break
-            if precond.identity:
-                rz_new = rr
-            elif restart or precond.dinv is None:
-                rz_new = precond.apply(r, z)
-            if not (rz_new > 0.0 and math.isfinite(rz_new)):
-                info, message = _breakdown_preconditioner(rz_new, iteration)
-                break
-            if restart:
-                p[:] = z
-            else:
-                _k.xpby(z, rz_new / rz, p)
-            rz = rz_new
-
-    if restarts and info != 0:
-        message += (f" (the recursive residual met the tolerance {restarts} times but the "
-                    f"true residual did not)")
-    if info < 0 and warn:
-        warnings.warn(f"cg: {message}", RuntimeWarning, stacklevel=2)
-    return CGResult(x, info, iteration, np.array(history), tol, message, restarts)
-
-
-def _breakdown_preconditioner(rz, iteration):
-    return BREAKDOWN_PRECONDITIONER, (
-        f"breakdown after iteration {iteration}: r.z = {rz:.3e} <= 0 (or not finite) with "
-        f"r != 0, so the preconditioner M is not positive definite "
-        f"(info = {BREAKDOWN_PRECONDITIONER})")
+    M = _cg.as_preconditioner(M, n)
+    if x0 is not None:
+        x0 = as_vector(x0, n, "x0")
+    result = _cg.run(product, b, x0, M, _cg.LOCAL, rtol=rtol, atol=atol, maxiter=maxiter,
+                     callback=callback, monitor=monitor)
+    if result.info < 0 and warn:
+        warnings.warn(f"cg: {result.message}", RuntimeWarning, stacklevel=2)
+    return result
 
 
 def cg(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None, callback=None):

@@ -260,3 +260,112 @@ def test_identity_preconditioner_is_plain_cg():
     plain = cg_with_history(A, b, rtol=1e-10)
     ident = cg_with_history(A, b, rtol=1e-10, M=make_preconditioner(A, "none"))
     assert np.array_equal(plain.x, ident.x) and plain.iterations == ident.iterations
+
+
+class _CountingApply:
+    """An object of the preconditioner protocol only (no LinearOperator, no shape):
+    ``apply_into`` is ``M = diag(A)^-1``, and the applications are counted."""
+
+    def __init__(self, A, diagonal=False):
+        self.d = 1.0 / A.diagonal().astype(np.float64)
+        self.calls = 0
+        if diagonal:
+            self.inverse_diagonal = self.d
+        self.description = "test diagonal"
+        self.nbytes = self.d.nbytes
+
+    def apply_into(self, r, z):
+        self.calls += 1
+        np.multiply(self.d, r, out=z)
+
+
+@pytest.mark.parametrize("case", ["poisson2d", "random-spd"])
+def test_protocol_object_is_a_preconditioner_applied_once_per_iteration(case):
+    A = CASES[case]()
+    b = rhs(A.shape[0], 5)
+    M = _CountingApply(A)
+    res = cg_with_history(A, b, rtol=1e-12, M=M)
+    assert res.info == 0
+    # reference library: scipy (sparse direct solve)
+    ref = sla.spsolve(A.tocsc(), b)
+    assert np.linalg.norm(res.x - ref) <= 1e-8 * np.linalg.norm(ref)
+    # one application before the loop and one after each iteration but the last
+    assert M.calls == res.iterations
+    # with inverse_diagonal the step is fused into the vector update: no call at all
+    fused = _CountingApply(A, diagonal=True)
+    res2 = cg_with_history(A, b, rtol=1e-12, M=fused)
+    assert fused.calls == 0 and res2.info == 0
+    assert np.linalg.norm(res2.x - ref) <= 1e-8 * np.linalg.norm(ref)
+
+
+def test_distributed_block_preconditioner_serves_the_serial_cg():
+    # one protocol: a rank's block Jacobi over the whole matrix is the serial preconditioner
+    from hatkernels.distributed.precond import BlockJacobi
+
+    A = CASES["poisson2d"]()
+    b = rhs(A.shape[0], 6)
+    for name in ("ic0", "jacobi", "none"):
+        block = BlockJacobi(A, name)
+        assert block.nbytes >= 0 and name in block.describe()
+        res = cg_with_history(A, b, rtol=1e-10, M=block)
+        # reference library: scipy (sparse direct solve)
+        ref = sla.spsolve(A.tocsc(), b)
+        assert res.info == 0 and np.linalg.norm(res.x - ref) <= 1e-8 * np.linalg.norm(ref)
+
+
+@pytest.mark.parametrize("precond", [None, "jacobi", "ic0"])
+def test_condition_estimate_approaches_the_preconditioned_condition_number(precond):
+    # The Lanczos tridiagonal from CG's alpha and beta has Ritz values inside the spectrum
+    # of M A that reach its ends as CG converges (G. H. Golub and C. F. Van Loan, Matrix
+    # Computations, 3rd ed. 1996, section 10.2.6); reference: numpy's dense eigenvalues.
+    A = CASES["poisson2d"]()
+    M = None if precond is None else make_preconditioner(A, precond)
+    res = cg_with_history(A, rhs(A.shape[0]), rtol=1e-10, M=M)
+    assert res.info == 0 and res.restarts == 0
+    Mdense = np.eye(A.shape[0]) if M is None else np.column_stack(
+        [M.matvec(e) for e in np.eye(A.shape[0])])
+    ev = np.sort(np.linalg.eigvals(Mdense @ A.toarray()).real)
+    exact = ev[-1] / ev[0]
+    assert exact * 0.99 <= res.condition_estimate <= exact * (1 + 1e-8)
+
+
+def test_condition_estimate_of_known_spectrum_and_after_restart():
+    # diag(1..100): condition number 100 (common practice, no source)
+    d = np.linspace(1.0, 100.0, 50)
+    res = cg_with_history(sp.diags_array(d).tocsr(), np.ones(50), rtol=1e-12)
+    assert res.info == 0 and abs(res.condition_estimate - 100.0) < 1e-6
+    assert np.isnan(cg_with_history(CASES["poisson2d"](), np.zeros(144)).condition_estimate)
+    # after a restart the recurrence is broken: no estimate (the case of the restart test)
+    rng = np.random.default_rng(0)
+    Q, _ = np.linalg.qr(rng.standard_normal((60, 60)))
+    H = sp.csr_array(((Q * np.logspace(-3, 3, 60)) @ Q.T + ((Q * np.logspace(-3, 3, 60)) @ Q.T).T)
+                     / 2)
+    res = cg_with_history(H, rng.standard_normal(60), rtol=1e-12, maxiter=2000)
+    assert res.restarts >= 1 and np.isnan(res.condition_estimate)
+
+
+def test_scalar_options_are_checked_with_clear_messages():
+    A = CASES["poisson1d"]()
+    b = rhs(A.shape[0])
+    with pytest.raises(InputError, match="maxiter must be an integer or None, got True"):
+        cg(A, b, maxiter=True)
+    with pytest.raises(InputError, match="maxiter must be an integer or None, got 2.5"):
+        cg(A, b, maxiter=2.5)
+    with pytest.raises(InputError, match=r"maxiter must be >= 1 \(info > 0 reports"):
+        cg(A, b, maxiter=-3)
+    with pytest.raises(InputError, match="rtol must be a real number, got '1e-5'"):
+        cg(A, b, rtol="1e-5")
+    with pytest.raises(InputError, match="atol must be a finite number, got inf"):
+        cg(A, b, atol=float("inf"))
+    with pytest.raises(InputError, match="rtol must be >= 0"):
+        cg(A, b, rtol=-1e-3)
+    # numpy scalars are numbers too
+    x, info = cg(A, b, rtol=np.float32(1e-6), maxiter=np.int64(500))
+    assert info == 0
+
+
+def test_bad_preconditioner_object_is_refused_by_name():
+    A = CASES["poisson1d"]()
+    with pytest.raises(InputError, match="M must be None, a matrix, a LinearOperator or a "
+                                         "preconditioner with apply_into"):
+        cg(A, rhs(A.shape[0]), M=object())

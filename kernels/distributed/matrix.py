@@ -13,6 +13,9 @@ Both products are the project's parallel CSR kernels
 (:mod:`hatkernels._jit.sparse`); the vectors hold owned entries first and
 ghosts after, so no copies are made.  With no ghosts (one rank) the fused
 product-and-dot kernel is used, exactly as in the serial CG.
+
+:class:`DistributedMatrix` is a product of the CG loop (:mod:`hatkernels._cg`):
+``matvec_dot(p, q)``, ``residual(x, b, out)`` and ``n_local``.
 """
 
 from __future__ import annotations
@@ -88,6 +91,7 @@ class DistributedMatrix:
         self._oo = _arrays(self.A_oo)
         self._og = _arrays(self.A_og) if pattern.n_ghosts else None
         self.nnz = int(A_rows.nnz)
+        self._work = None  # a local vector for residual(), made on its first call
 
     @property
     def nbytes(self):
@@ -111,8 +115,16 @@ class DistributedMatrix:
         self.matvec_into(p, out)
         return _k.dot(p[:n], out)
 
-    def residual(self, x, b, out, work):
-        """``out = b - A x`` for owned ``x``; ``work`` is a local vector (ghosts filled here)."""
+    def residual(self, x, b, out, work=None):
+        """``out = b - A x`` for owned ``x``.
+
+        ``work`` is a local vector (``n_local`` entries, ghosts filled here);
+        by default one the matrix keeps for the purpose.
+        """
+        if work is None:
+            if self._work is None:
+                self._work = np.zeros(self.n_local)
+            work = self._work
         work[: self.n_owned] = x
         self.matvec_into(work, out)
         _k.xpby(b, -1.0, out)

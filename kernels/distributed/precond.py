@@ -38,6 +38,7 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
+from hatkernels._cg import as_preconditioner
 from hatkernels._jit import sparse as _k
 from hatkernels.distributed.launch import mpi
 from hatkernels.errors import InputError
@@ -56,7 +57,10 @@ _NOT_LOCAL = {"gmg": "it needs the mesh's refinement history, which a subdomain 
 class BlockJacobi:
     """``z = M_q r`` on each rank's owned block: a serial preconditioner, no communication.
 
-    ``apply(r, z)`` fills ``z`` and returns this rank's part of ``r . z``.
+    An object of the preconditioner protocol of :mod:`hatkernels.krylov`:
+    ``apply_into(r, z)`` on this rank's owned entries, ``is_identity`` for
+    ``none``, ``inverse_diagonal`` for ``jacobi``, ``description``,
+    ``describe()`` and ``nbytes`` (this rank's block).
     """
 
     communicates = False
@@ -68,33 +72,52 @@ class BlockJacobi:
         self.name = name
         self.n = A_oo.shape[0]
         self.local = None
+        self._op = None
         # The shortcuts CG takes follow from the name, never from one rank's block, so
         # that every rank makes the same calls (and the same reductions).
-        self.identity = name == "none"
-        self.dinv = np.empty(0) if name == "jacobi" else None
+        self.is_identity = name == "none"
+        self.inverse_diagonal = np.empty(0) if name == "jacobi" else None
         if self.n == 0:  # a rank whose owned points are all prescribed
             self.description = f"{name} on an empty block"
             return
         M = make_preconditioner(A_oo, name, **options)
         self.local = M
         self.description = M.description
-        if self.identity and getattr(M, "is_identity", False) is not True:
+        if self.is_identity and getattr(M, "is_identity", False) is not True:
             raise RuntimeError("the 'none' preconditioner is not the identity")
-        if self.dinv is not None:
+        if self.inverse_diagonal is not None:
             dinv = getattr(M, "inverse_diagonal", None)
             if not (isinstance(dinv, np.ndarray) and dinv.shape == (self.n,)):
                 raise RuntimeError("the 'jacobi' preconditioner has no inverse diagonal")
-            self.dinv = np.ascontiguousarray(dinv, dtype=np.float64)
+            self.inverse_diagonal = np.ascontiguousarray(dinv, dtype=np.float64)
+        elif not self.is_identity:
+            self._op = as_preconditioner(M, self.n)
+
+    def describe(self):
+        return self.description
+
+    @property
+    def nbytes(self):
+        """Bytes held by this rank's block preconditioner."""
+        M = self.local
+        if M is None:
+            return 0
+        return int(getattr(M, "nbytes", None) or getattr(M, "memory_bytes", 0))
+
+    def apply_into(self, r, z):
+        """``z = M_q r`` on this rank's owned entries (``r`` not modified)."""
+        if self.n == 0:
+            return
+        if self.is_identity:
+            z[:] = r
+        elif self.inverse_diagonal is not None:
+            _k.jacobi_apply(self.inverse_diagonal, r, z)
+        else:
+            self._op.apply_into(r, z)
 
     def apply(self, r, z):
-        if self.n == 0:
-            return 0.0
-        if self.identity:
-            z[:] = r
-        elif self.dinv is not None:
-            _k.jacobi_apply(self.dinv, r, z)
-        else:
-            z[:] = np.asarray(self.local.matvec(r)).reshape(self.n)
+        """``apply_into(r, z)``, then return this rank's part of ``r . z`` (earlier protocol)."""
+        self.apply_into(r, z)
         return _k.dot(r, z)
 
 
@@ -137,8 +160,11 @@ def galerkin_coarse(rows, cols, vals, parts):
 class TwoLevel:
     """Additive two-level preconditioner: block Jacobi plus a coarse solve on rank 0.
 
-    Collective: every ``apply`` calls ``Gather`` and ``Scatter`` on ``comm``.
-    ``stats`` (a CommStats) accumulates the coarse communication.
+    An object of the preconditioner protocol of :mod:`hatkernels.krylov`
+    (``apply_into(r, z)`` on this rank's owned entries, ``description``,
+    ``describe()``, ``nbytes``).  Collective: every application calls
+    ``Gather`` and ``Scatter`` on ``comm``.  ``stats`` (a CommStats)
+    accumulates the coarse communication.
     """
 
     communicates = True
@@ -170,6 +196,7 @@ class TwoLevel:
         self.stats.coarse_bytes += count.nbytes + 16 * len(cols)
         self._lu = None
         self._empty = None
+        coarse_bytes = 0
         nnz = np.zeros(1, dtype=np.int64)
         if root:
             rows = np.repeat(np.arange(self.parts), counts)
@@ -179,19 +206,33 @@ class TwoLevel:
             self._lu = spla.splu(Ac, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
                                  options={"SymmetricMode": True})
             self.coarse_matrix = Ac
+            coarse_bytes = sum(a.nbytes for F in (Ac, self._lu.L, self._lu.U)
+                               for a in (F.data, F.indices, F.indptr))
         comm.Bcast([nnz, MPI.INT64_T], root=0)
         self.coarse_nnz = int(nnz[0])
         self._send = np.empty(1)
         self._coef = np.empty(1)
         self._all = np.empty(self.parts) if root else None
+        # the factor (L and U counted as CSC arrays) and A_c live on rank 0 only
+        self._coarse_bytes = coarse_bytes + self._send.nbytes + self._coef.nbytes + (
+            self._all.nbytes if root else 0)
         self.description = (f"additive two-level: block Jacobi over {self.parts} ranks "
                             f"(rank 0's block: {block.description}) + "
                             f"coarse space of {self.parts} subdomain constants, Galerkin "
                             f"matrix {self.parts}x{self.parts} with {self.coarse_nnz} "
                             f"entries, factorised on rank 0")
 
-    def apply(self, r, z):
-        self.block.apply(r, z)
+    def describe(self):
+        return self.description
+
+    @property
+    def nbytes(self):
+        """Bytes held on this rank: its block, and on rank 0 the coarse matrix and factor."""
+        return self.block.nbytes + self._coarse_bytes
+
+    def apply_into(self, r, z):
+        """``z = M_q r + (coarse correction)`` on this rank's owned entries (collective)."""
+        self.block.apply_into(r, z)
         MPI = self._MPI
         t0 = time.perf_counter()
         self._send[0] = r.sum() if self.n else 0.0
@@ -207,6 +248,10 @@ class TwoLevel:
         s.coarse_bytes += 2 * self._send.nbytes
         if self.n:
             z += self._coef[0]
+
+    def apply(self, r, z):
+        """``apply_into(r, z)``, then return this rank's part of ``r . z`` (earlier protocol)."""
+        self.apply_into(r, z)
         return _k.dot(r, z)
 
 
