@@ -149,6 +149,13 @@ class _Diagonal:
         _k.jacobi_apply(self.inverse_diagonal, r, z)
 
 
+class _ApplyOnly:
+    """A preconditioner's ``apply_into`` without its other attributes."""
+
+    def __init__(self, apply_into):
+        self.apply_into = apply_into
+
+
 class _MatvecPreconditioner:
     """A LinearOperator's ``matvec`` as ``apply_into``; the result is checked for shape."""
 
@@ -180,7 +187,8 @@ def as_preconditioner(M, n):
         shape = getattr(M, "shape", None)
         if shape is not None and tuple(shape) != (n, n):
             raise InputError(f"M has shape {shape}, expected ({n}, {n}) to match A")
-        return M
+        # an inverse diagonal of another length or dtype must not reach the fused kernel
+        return M if dinv is None else _ApplyOnly(M.apply_into)
     if not isinstance(M, LinearOperator):
         try:
             M = aslinearoperator(M)

@@ -369,3 +369,15 @@ def test_bad_preconditioner_object_is_refused_by_name():
     with pytest.raises(InputError, match="M must be None, a matrix, a LinearOperator or a "
                                          "preconditioner with apply_into"):
         cg(A, rhs(A.shape[0]), M=object())
+
+
+def test_inverse_diagonal_of_the_wrong_length_is_not_used():
+    A = CASES["poisson2d"]()
+    b = rhs(A.shape[0], 7)
+    M = _CountingApply(A)
+    M.inverse_diagonal = np.ones(A.shape[0] - 1)  # ignored: apply_into is used instead
+    res = cg_with_history(A, b, rtol=1e-10, M=M)
+    # reference library: scipy (sparse direct solve)
+    ref = sla.spsolve(A.tocsc(), b)
+    assert res.info == 0 and M.calls == res.iterations
+    assert np.linalg.norm(res.x - ref) <= 1e-8 * np.linalg.norm(ref)
