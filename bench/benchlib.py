@@ -12,7 +12,7 @@ import re
 import numpy as np
 
 from hatkernels.mesh import rectangle
-from hatkernels.perf import PeakMemory, rss_bytes
+from hatkernels.perf import PeakMemory, nested, rss_bytes
 
 __all__ = ["HWM", "ProcessPeak", "round_peak", "nested", "refined_rectangle"]
 
@@ -110,18 +110,6 @@ def round_peak(peaks):
 
 
 # -- meshes -------------------------------------------------------------------------------
-def nested(n, smallest=8):
-    """``(coarse, levels)``: rectangle(coarse, coarse) refined ``levels`` times is ``n x n``.
-
-    As many levels as keep the coarse mesh at ``smallest`` cells per side or more.
-    """
-    coarse, levels = n, 0
-    while coarse % 2 == 0 and coarse // 2 >= smallest:
-        coarse //= 2
-        levels += 1
-    return coarse, levels
-
-
 def refined_rectangle(n):
     """The ``n x n`` unit-square mesh made by refinement (it carries its levels for gmg)."""
     coarse, levels = nested(n)

@@ -1,6 +1,7 @@
 """Measuring helpers: memory bandwidth, peak memory, compile time.
 
-Used by the benchmark suite in ``bench/`` and by ``hatkernels bench``.
+Used by the benchmark suite in ``bench/`` and by ``hatkernels bench``, which
+also share :func:`nested`, the sizes of their meshes made by refinement.
 """
 
 from __future__ import annotations
@@ -14,7 +15,14 @@ import tracemalloc
 
 import numpy as np
 
-__all__ = ["memory_bandwidth", "PeakMemory", "peak_rss_bytes", "rss_bytes", "timed_first_call"]
+__all__ = [
+    "memory_bandwidth",
+    "nested",
+    "PeakMemory",
+    "peak_rss_bytes",
+    "rss_bytes",
+    "timed_first_call",
+]
 
 _PAGE = os.sysconf("SC_PAGE_SIZE") if hasattr(os, "sysconf") else 4096
 
@@ -122,3 +130,19 @@ def timed_first_call(fn, *args, **kwargs):
     out = fn(*args, **kwargs)
     t2 = time.perf_counter()
     return out, t1 - t0, t2 - t1
+
+
+def nested(n, smallest=8):
+    """``(coarse, levels)``: ``rectangle(coarse, coarse)`` refined ``levels`` times is ``n x n``.
+
+    As many levels as keep the coarse mesh at ``smallest`` cells per side or
+    more; ``levels`` is 0 when ``n`` is odd or below ``2 * smallest``.
+
+    >>> nested(1000), nested(300, smallest=4), nested(15)
+    ((125, 3), (75, 2), (15, 0))
+    """
+    coarse, levels = n, 0
+    while coarse % 2 == 0 and coarse // 2 >= smallest:
+        coarse //= 2
+        levels += 1
+    return coarse, levels
