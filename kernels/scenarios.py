@@ -269,13 +269,19 @@ def _coefficient(value):
 
 
 def solve_problem(problem, *, preconditioner="amg", rtol=1e-10, maxiter=None, progress=None,
-                  monitor=None):
-    """Solve ``problem`` with :func:`hatkernels.poisson.solve_poisson` (``check=True``).
+                  monitor=None, solver=solve_poisson, **options):
+    """Solve ``problem`` with ``solver`` (``check=True``); return what it returns.
+
+    ``solver`` is :func:`hatkernels.poisson.solve_poisson` by default, or a
+    function with its signature (such as
+    :func:`hatkernels.distributed.solve_poisson`, which takes ``options`` like
+    ``comm``): the problem's source, conductivity and boundary values are put
+    into its arguments here only.
 
     Raises :class:`~hatkernels.errors.ConvergenceError` when the solve does not
     reach ``rtol``.
     """
-    return solve_poisson(
+    return solver(
         problem.mesh,
         _coefficient(problem.source),
         dirichlet=problem.dirichlet,
@@ -287,6 +293,7 @@ def solve_problem(problem, *, preconditioner="amg", rtol=1e-10, maxiter=None, pr
         check=True,
         progress=progress,
         monitor=monitor,
+        **options,
     )
 
 
