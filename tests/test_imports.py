@@ -19,17 +19,10 @@ import pytest
 ROOT = pathlib.Path(__file__).resolve().parents[1] / "kernels"
 PACKAGE = "hatkernels"
 
-#: Modules in the areas already free of cycles: a cycle through any of them fails.
-CLEAN_AREAS = (
-    "hatkernels.mesh",
-    "hatkernels.operators",
-    "hatkernels.boundary",
-    "hatkernels.sparse",
-    "hatkernels._sets",
-    "hatkernels.checks",
-    "hatkernels._jit",
-    "hatkernels.errors",
-)
+#: Modules whose cycles other work in progress is removing: a cycle made of these
+#: only is reported (the test is marked xfail, with every cycle in its reason)
+#: rather than failed.  Take names out as their cycles go; any other cycle fails.
+BEING_REMOVED = ("hatkernels.cli", "hatkernels.distributed.command")
 
 
 def module_name(path, root=ROOT):
@@ -166,8 +159,9 @@ def describe(graph, components):
     )
 
 
-def in_clean_area(module):
-    return any(module == a or module.startswith(a + ".") for a in CLEAN_AREAS)
+def within(module, names):
+    """Whether ``module`` is one of ``names`` or inside one of them."""
+    return any(module == a or module.startswith(a + ".") for a in names)
 
 
 # -- the checker itself, on small graphs with known answers --
@@ -215,18 +209,30 @@ def test_the_graph_sees_the_package():
     )
 
 
-def test_no_cycle_through_the_clean_areas():
+def test_no_import_cycle():
     g = import_graph()
-    bad = [c for c in strongly_connected(g) if any(in_clean_area(m) for m in c)]
-    assert not bad, "import cycles through modules that must have none:\n" + describe(g, bad)
+    cycles = strongly_connected(g)
+    if not cycles:
+        return
+    text = describe(g, cycles)
+    if all(within(m, BEING_REMOVED) for c in cycles for m in c):
+        pytest.xfail("import cycles still being removed elsewhere:\n" + text)
+    pytest.fail("import cycles:\n" + text)
 
 
-@pytest.mark.xfail(
-    strict=False,
-    reason="cycles outside the clean areas are being removed (cli, distributed.command, "
-    "poisson/solve and others); the failure message lists every one",
-)
-def test_no_import_cycle_anywhere():
-    g = import_graph()
-    comps = strongly_connected(g)
-    assert not comps, "import cycles:\n" + describe(g, comps)
+def test_a_cycle_outside_the_known_ones_fails(tmp_path):
+    pkg = tmp_path / "kernels"
+    pkg.mkdir()
+    (pkg / "__init__.py").write_text("")
+    (pkg / "cli.py").write_text("from hatkernels import mesh\n")
+    (pkg / "mesh.py").write_text("def f():\n    import hatkernels.cli\n")
+    g = import_graph(pkg)
+    cycles = strongly_connected(g)
+    assert cycles == [["hatkernels.cli", "hatkernels.mesh"]]
+    assert not all(within(m, BEING_REMOVED) for c in cycles for m in c)
+    assert "hatkernels.cli -> hatkernels.mesh -> hatkernels.cli" in describe(g, cycles)
+
+
+if __name__ == "__main__":
+    graph = import_graph()
+    print(describe(graph, strongly_connected(graph)) or "no import cycle")
