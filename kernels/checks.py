@@ -64,9 +64,11 @@ def integer_option(value, name, *, minimum=None, allow_none=False):
     return int(value)
 
 
-def real_option(value, name, *, minimum=None, positive=False, finite=True, allow_none=False):
+def real_option(value, name, *, minimum=None, positive=False, finite=True, allow_none=False,
+                between=None):
     """A float (bools refused), finite unless ``finite=False``, ``> 0`` if ``positive``,
-    ``>= minimum`` if given; None passes if ``allow_none``.
+    ``>= minimum`` if given, strictly inside ``between = (low, high)`` if given; None passes
+    if ``allow_none``.
 
     >>> real_option(1e-8, "rtol", minimum=0.0)
     1e-08
@@ -86,4 +88,7 @@ def real_option(value, name, *, minimum=None, positive=False, finite=True, allow
         raise InputError(f"{name} must be > 0, got {value!r}")
     if minimum is not None and v < minimum:
         raise InputError(f"{name} must be >= {minimum}, got {value!r}")
+    if between is not None and not between[0] < v < between[1]:
+        raise InputError(f"{name} must be a number between {between[0]} and {between[1]}, "
+                         f"got {value!r}")
     return v

@@ -33,6 +33,7 @@ import scipy.sparse as sp
 
 from hatkernels._jit import amg as _a
 from hatkernels._jit import sparse as _k
+from hatkernels.checks import integer_option, real_option
 from hatkernels.errors import InputError
 from hatkernels.precond.chebyshev import ChebyshevSmoother
 from hatkernels.precond.registry import Preconditioner, require_csr
@@ -109,12 +110,8 @@ class _AMG(Preconditioner):
         if smoother not in _SMOOTHERS:
             raise InputError(f"{self.name}: smoother must be one of {_SMOOTHERS}, "
                              f"got {smoother!r}")
-        if isinstance(degree, bool) or not isinstance(degree, (int, np.integer)) or degree < 1:
-            raise InputError(f"{self.name}: degree must be an integer >= 1, got {degree!r}")
-        if lower is not None and (isinstance(lower, bool) or not isinstance(lower, (int, float))
-                                  or not 0.0 < lower < 1.0):
-            raise InputError(f"{self.name}: lower must be None or a number between 0 and 1, "
-                             f"got {lower!r}")
+        degree = integer_option(degree, f"{self.name}: degree", minimum=1)
+        lower = real_option(lower, f"{self.name}: lower", between=(0, 1), allow_none=True)
         super().__init__(C.shape[0])
         self.ml = self._build(C, options)
         self.cycle = cycle

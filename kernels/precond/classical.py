@@ -13,6 +13,7 @@ import pyamg
 import scipy.sparse as sp
 
 from hatkernels._jit import amg as _a
+from hatkernels.checks import integer_option, real_option
 from hatkernels.errors import InputError
 from hatkernels.mesh.core_index import index_dtype
 from hatkernels.precond.amg import _AMG, _ChebyshevLevel
@@ -210,13 +211,9 @@ class ClassicalAMG(_AMG):
 
     def __init__(self, A, *, cycle="V", degree=2, lower=0.3, estimate=False, theta=0.25,
                  max_levels=30, max_coarse=300):
-        for key, value, low in (("max_levels", max_levels, 1), ("max_coarse", max_coarse, 1)):
-            if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
-                raise InputError(f"{self.name}: {key} must be an integer >= {low}, "
-                                 f"got {value!r}")
-        if isinstance(theta, bool) or not isinstance(theta, (int, float)) or not 0.0 < theta < 1.0:
-            raise InputError(f"{self.name}: theta must be a number between 0 and 1, "
-                             f"got {theta!r}")
+        max_levels = integer_option(max_levels, f"{self.name}: max_levels", minimum=1)
+        max_coarse = integer_option(max_coarse, f"{self.name}: max_coarse", minimum=1)
+        theta = real_option(theta, f"{self.name}: theta", between=(0, 1))
         options = {"theta": float(theta), "max_levels": int(max_levels),
                    "max_coarse": int(max_coarse), "degree": degree}
         super().__init__(A, cycle, "chebyshev", degree, options, lower, estimate)

@@ -8,9 +8,9 @@ so it is refused above :data:`DIRECT_LIMIT` unknowns unless the caller raises
 the limit.
 """
 
-import numpy as np
 from scipy.sparse.linalg import splu
 
+from hatkernels.checks import integer_option
 from hatkernels.errors import InputError
 from hatkernels.precond.registry import Preconditioner, require_csr
 
@@ -46,8 +46,7 @@ class SparseDirect(Preconditioner):
     def __init__(self, A, *, max_unknowns=DIRECT_LIMIT, permc_spec="MMD_AT_PLUS_A"):
         C = require_csr(A, self.name)
         n = C.shape[0]
-        if isinstance(max_unknowns, bool) or not isinstance(max_unknowns, (int, np.integer)):
-            raise InputError(f"direct: max_unknowns must be an integer, got {max_unknowns!r}")
+        max_unknowns = integer_option(max_unknowns, "direct: max_unknowns")
         if n > max_unknowns:
             raise InputError(
                 f"direct: refused for n = {n} unknowns, above the limit of {max_unknowns}: "

@@ -33,6 +33,7 @@ from hatkernels._jit import sparse as _k
 from hatkernels._sets import index_complement, index_union
 from hatkernels.assembly import assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
+from hatkernels.checks import integer_option, point_indices, real_option
 from hatkernels.coefficients import Coefficient, parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
@@ -271,11 +272,8 @@ class GeometricMultigrid(Preconditioner):
         ):
             if value not in choices:
                 raise InputError(f"gmg: {name} must be one of {choices}, got {value!r}")
-        if isinstance(degree, bool) or not isinstance(degree, (int, np.integer)) or degree < 1:
-            raise InputError(f"gmg: degree must be an integer >= 1, got {degree!r}")
-        if (isinstance(lower, bool) or not isinstance(lower, (int, float, np.floating))
-                or not 0.0 < lower < 1.0):
-            raise InputError(f"gmg: lower must be a number between 0 and 1, got {lower!r}")
+        degree = integer_option(degree, "gmg: degree", minimum=1)
+        lower = real_option(lower, "gmg: lower", between=(0, 1))
         n = mesh.n_points
         fixed = self._fixed(mesh, dirichlet)
         free = index_complement(n, fixed)
@@ -324,12 +322,7 @@ class GeometricMultigrid(Preconditioner):
         if dirichlet is None:
             d = mesh.boundary_points().astype(np.int64)
         else:
-            d = np.asarray(dirichlet)
-            if d.ndim != 1 or (d.size and d.dtype.kind not in "iu"):
-                raise InputError(f"gmg: dirichlet must be point indices, got {d.dtype} {d.shape}")
-            d = d.astype(np.int64)
-            if d.size and (d.min() < 0 or d.max() >= mesh.n_points):
-                raise InputError(f"gmg: dirichlet has a point outside 0..{mesh.n_points - 1}")
+            d = point_indices(dirichlet, mesh.n_points, "gmg: dirichlet")
         return index_union(mesh.n_points, d, mesh.unused_points())
 
     def _setup_coarse(self, mesh, coef, fixed, coarse, quadrature):

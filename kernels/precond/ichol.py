@@ -18,6 +18,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from hatkernels._jit import ichol as _k
+from hatkernels.checks import real_option
 from hatkernels.errors import InputError
 from hatkernels.precond.registry import Preconditioner, checked_diagonal, require_csr
 
@@ -70,9 +71,7 @@ class IncompleteCholesky(Preconditioner):
         C = require_csr(A, self.name)
         if not isinstance(modified, (bool, np.bool_)):
             raise InputError(f"ic0: modified must be True or False, got {modified!r}")
-        if not (isinstance(shift, (int, float, np.integer, np.floating))
-                and math.isfinite(shift) and shift >= 0):
-            raise InputError(f"ic0: shift must be a finite number >= 0, got {shift!r}")
+        shift = real_option(shift, "ic0: shift", minimum=0.0)
         n = C.shape[0]
         super().__init__(n)
         checked_diagonal(C, self.name)
