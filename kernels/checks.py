@@ -44,8 +44,9 @@ def point_indices(values, n_points, name="points"):
     return a
 
 
-def integer_option(value, name, *, minimum=None, allow_none=False):
-    """A Python int (bools refused) at least ``minimum``; None passes if ``allow_none``.
+def integer_option(value, name, *, minimum=None, maximum=None, allow_none=False):
+    """A Python int (bools refused) from ``minimum`` to ``maximum`` (each if given);
+    None passes if ``allow_none``.
 
     >>> integer_option(3, "maxiter", minimum=1)
     3
@@ -59,8 +60,14 @@ def integer_option(value, name, *, minimum=None, allow_none=False):
     if isinstance(value, bool) or not isinstance(value, numbers.Integral):
         what = "an integer or None" if allow_none else "an integer"
         raise InputError(f"{name} must be {what}, got {value!r}")
-    if minimum is not None and value < minimum:
+    low = minimum is not None and value < minimum
+    high = maximum is not None and value > maximum
+    if (low or high) and minimum is not None and maximum is not None:
+        raise InputError(f"{name} must be between {minimum} and {maximum}, got {value}")
+    if low:
         raise InputError(f"{name} must be >= {minimum}, got {value}")
+    if high:
+        raise InputError(f"{name} must be <= {maximum}, got {value}")
     return int(value)
 
 

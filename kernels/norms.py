@@ -11,6 +11,7 @@ import dataclasses
 
 import numpy as np
 
+from hatkernels.checks import integer_option
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.geometry import element_gradients
@@ -221,8 +222,7 @@ def convergence_study(mesh, solver, exact, grad_exact=None, *, levels=4, quadrat
         ``h`` (longest edge), ``n_points``, ``errors`` and ``rates`` keyed by
         ``"L2"`` and ``"H1"``.
     """
-    if not isinstance(levels, int) or levels < 2:
-        raise InputError(f"levels must be an integer >= 2, got {levels!r}")
+    levels = integer_option(levels, "levels", minimum=2)
     h, n, e2, e1 = [], [], [], []
     m = mesh
     for k in range(levels):

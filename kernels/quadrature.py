@@ -18,11 +18,10 @@ A requested degree is served by the cheapest rule that is exact for it
 """
 
 import functools
-import numbers
 
 import numpy as np
 
-from hatkernels.errors import InputError
+from hatkernels.checks import integer_option
 
 __all__ = ["triangle_rule", "edge_rule", "TRIANGLE_DEGREES"]
 
@@ -59,11 +58,7 @@ def _triangle_rule(degree):
 
 
 def _degree(degree, limit):
-    if isinstance(degree, bool) or not isinstance(degree, numbers.Integral):
-        raise InputError(f"quadrature degree must be an integer, got {degree!r}")
-    if not 1 <= degree <= limit:
-        raise InputError(f"quadrature degree must be between 1 and {limit}, got {degree}")
-    return int(degree)
+    return integer_option(degree, "quadrature degree", minimum=1, maximum=limit)
 
 
 def triangle_rule(degree):

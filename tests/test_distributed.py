@@ -116,7 +116,7 @@ def test_partition_bad_input():
         partition_from_owner(mesh, np.array([0, 0, 0, -1, 1, 1, 1, 1, 1]))
     with pytest.raises(InputError, match="part 1 owns no point"):
         partition_from_owner(mesh, np.array([0] * 8 + [2]))
-    with pytest.raises(InputError, match="positive integer"):
+    with pytest.raises(InputError, match="parts must be >= 1"):
         partition(mesh, 0)
 
 

@@ -32,6 +32,7 @@ import dataclasses
 
 import numpy as np
 
+from hatkernels.checks import integer_option
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
 from hatkernels.mesh.reorder import hilbert_keys
@@ -197,8 +198,7 @@ class Partition:
 def _check(mesh, parts):
     if not isinstance(mesh, Mesh):
         raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
-    if isinstance(parts, bool) or not isinstance(parts, (int, np.integer)) or parts < 1:
-        raise InputError(f"parts must be a positive integer, got {parts!r}")
+    parts = integer_option(parts, "parts", minimum=1)
     if parts > mesh.n_points:
         raise InputError(f"cannot split {mesh.n_points} points into {parts} parts: "
                          f"every part needs at least one point")

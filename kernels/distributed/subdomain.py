@@ -22,6 +22,7 @@ import dataclasses
 
 import numpy as np
 
+from hatkernels.checks import integer_option
 from hatkernels.coefficients import Coefficient, parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh, index_dtype
@@ -102,10 +103,7 @@ def subdomain(partition, part):
     >>> s.n_owned, s.n_ghosts, s.neighbours.tolist()
     (12, 6, [1])
     """
-    if isinstance(part, bool) or not isinstance(part, (int, np.integer)) \
-            or not 0 <= part < partition.parts:
-        raise InputError(f"part must be in 0..{partition.parts - 1}, got {part!r}")
-    part = int(part)
+    part = integer_option(part, "part", minimum=0, maximum=partition.parts - 1)
     mesh, owner = partition.mesh, partition.owner
     n = mesh.n_points
     tri = mesh.triangles
