@@ -1,7 +1,11 @@
 """The ``hatkernels`` command, run as a user runs it: in a subprocess, on small meshes."""
 
+import ast
+import importlib
 import json
 import os
+import pathlib
+import pkgutil
 import shutil
 import struct
 import subprocess
@@ -14,6 +18,7 @@ import pytest
 import hatkernels
 from hatkernels import cli
 from hatkernels.assembly import assemble_load, assemble_stiffness
+from hatkernels.cli import cache, progress
 from hatkernels.mesh import l_shape, rectangle
 from hatkernels.poisson import solve_poisson
 
@@ -110,10 +115,10 @@ def test_summary_agrees_with_the_library(small):
     assert s["max"] == pytest.approx(float(direct.u[k]), rel=1e-12)
     assert s["max_at"] == pytest.approx(mesh.points[k].tolist())
     assert s["min"] == pytest.approx(25.0)
-    assert summary["unknowns"] == direct.stats["unknowns"]
-    assert summary["nnz"] == direct.stats["nnz"]
-    assert summary["solver"]["iterations"] == direct.stats["iterations"]
-    assert summary["solver"]["final_residual"] == pytest.approx(direct.stats["residuals"][-1],
+    assert summary["unknowns"] == direct.stats.unknowns
+    assert summary["nnz"] == direct.stats.nnz
+    assert summary["solver"]["iterations"] == direct.stats.iterations
+    assert summary["solver"]["final_residual"] == pytest.approx(direct.stats.residuals[-1],
                                                                rel=1e-6)
     assert summary["mesh"]["triangles"] == 48 * 32 * 2
     # the printed summary shows the same maximum
@@ -176,13 +181,26 @@ def test_refined_mesh_off_the_footprints_keeps_the_power_exact(tmp_path):
 
 
 def test_geometric_multigrid_needs_a_refined_mesh(tmp_path):
-    if "gmg" not in cli._preconditioner_names():
+    if "gmg" not in hatkernels.PRECONDITIONERS:
         pytest.skip("no gmg preconditioner registered")
     result = run("solve", "--cells", 48, "--preconditioner", "gmg", "--quiet",
                  "--out", tmp_path / "o")
     assert result.returncode == 2
     assert "--refine" in error_line(result)
     assert not (tmp_path / "o").exists()
+
+
+def test_the_refinement_hint_follows_the_library_not_a_name():
+    # the command adds "--refine" to a refusal only when the library refuses the
+    # preconditioner on a mesh without refinement history and accepts it with one
+    from types import SimpleNamespace
+
+    from hatkernels.cli.solve import _needs_refinement
+
+    for name in ("jacobi", "ic0", "amg", "direct"):
+        assert not _needs_refinement(SimpleNamespace(preconditioner=name, rtol=1e-8)), name
+    if "gmg" in hatkernels.PRECONDITIONERS:
+        assert _needs_refinement(SimpleNamespace(preconditioner="gmg", rtol=1e-8))
 
 
 def test_mesh_file_npz_and_meshio_agree_with_the_library(tmp_path):
@@ -235,14 +253,15 @@ BAD = {
     "bad-triangle": (["solve", "--mesh", "{dir}/outside.npz"], 2, "refers to point 7"),
     "unknown-option": (["solve", "--frobnicate"], 2, "unrecognized arguments: --frobnicate"),
     "nan-source": (["solve", "--source", "nan"], 2, "must be a finite number"),
-    "negative-conductivity": (["solve", "--conductivity", "-1"], 2, "must be positive"),
+    "negative-conductivity": (["solve", "--conductivity", "-1"], 2, "--conductivity must be > 0"),
     "unknown-preconditioner": (["solve", "--preconditioner", "magic"], 2, "invalid choice"),
     "mesh-too-coarse": (["solve", "--cells", "3"], 2, "too coarse"),
     "cells-and-refine": (["solve", "--cells", "48", "--refine", "1"], 2, "give one"),
     "too-many-threads": (["solve", "--cells", "24", "--threads", "999"], 2, "--threads 999"),
     "not-converging": (["solve", "--cells", "48", "--preconditioner", "jacobi", "--maxiter", "3"],
                        1, "did not converge"),
-    "verify-one-level": (["verify", "--levels", "1"], 2, "at least 2"),
+    "verify-one-level": (["verify", "--levels", "1"], 2, "--levels must be >= 2"),
+    "not-a-number": (["solve", "--rtol", "small"], 2, "not a number: 'small'"),
 }
 
 
@@ -355,8 +374,10 @@ def test_verify_from_too_coarse_a_start_fails_honestly(tmp_path):
 
 
 def test_bench_small(tmp_path):
+    refined = ["gmg"] if "gmg" in hatkernels.PRECONDITIONERS else []
+    names = ["jacobi", "amg-sa", "direct"] + refined
     result = run("bench", "--cells", 16, "--repeat", 1, "--bandwidth-mb", 8,
-                 "--preconditioners", "jacobi,amg-sa,direct", "--json", tmp_path / "b.json",
+                 "--preconditioners", ",".join(names), "--json", tmp_path / "b.json",
                  "--quiet")
     assert result.returncode == 0, result.stderr
     for phrase in ("triplets", "csr first call", "csr numeric", "GB/s", "jacobi", "amg-sa",
@@ -365,10 +386,35 @@ def test_bench_small(tmp_path):
     record = json.loads((tmp_path / "b.json").read_text())
     assert [r["strategy"] for r in record["assembly"]] == ["triplets", "csr first call",
                                                           "csr numeric"]
-    assert [r["preconditioner"] for r in record["solve"]] == ["jacobi", "amg-sa", "direct"]
+    assert [r["preconditioner"] for r in record["solve"]] == names
     assert all(r["converged"] and r["iterations"] >= 1 for r in record["solve"])
     assert record["triangles"] == 2 * 16 * 16
     assert record["bandwidth_GBs"]["copy"] > 0
+    # The least bytes an assembly moves: read the triangles (3 int32) and points (2 float64),
+    # write the values (float64) and, on a first call, the column indices (int32) and
+    # the row starts (n + 1 int32) (common practice, no source).
+    m, n, nnz = record["triangles"], record["points"], record["nnz"]
+    numeric = 12 * m + 16 * n + 8 * nnz
+    assert [r["floor_bytes"] for r in record["assembly"]] == [
+        numeric + 4 * nnz + 4 * (n + 1), numeric + 4 * nnz + 4 * (n + 1), numeric]
+    if refined:  # refused on the plain mesh, run on the same mesh built by refinement
+        assert "gmg: on the same triangulation built as rectangle(4) refined 2 times" in (
+            result.stdout)
+
+
+def test_bench_without_a_refined_mesh_says_how_to_get_one(tmp_path):
+    if "gmg" not in hatkernels.PRECONDITIONERS:
+        pytest.skip("no gmg preconditioner registered")
+    # 15 cells per side: odd, so no mesh made by refinement has the same triangulation
+    result = run("bench", "--cells", 15, "--repeat", 1, "--bandwidth-mb", 8,
+                 "--preconditioners", "jacobi,gmg", "--json", tmp_path / "b.json", "--quiet")
+    assert result.returncode == 0, result.stderr
+    jacobi, gmg = json.loads((tmp_path / "b.json").read_text())["solve"]
+    assert jacobi["converged"]
+    assert "refinement history" in gmg["skipped"]
+    assert "an even --cells of at least 8" in gmg["skipped"]
+    assert any(line.startswith("gmg ") and "skipped: " in line
+               for line in result.stdout.splitlines())
 
 
 def test_info():
@@ -406,7 +452,7 @@ def test_help(command):
 def test_iteration_progress_reaches_stderr(tmp_path, monkeypatch, capsys):
     # In process, with no throttling: every CG iteration shows on stderr with the
     # residual the solver recorded for it (the history in summary.json).
-    monkeypatch.setattr(cli, "ITERATION_REPORT_SECONDS", 0.0)
+    monkeypatch.setattr(progress, "ITERATION_REPORT_SECONDS", 0.0)
     out = tmp_path / "o"
     assert cli.main(["solve", "--cells", "24", "--preconditioner", "jacobi", "--out",
                      str(out)]) == 0
@@ -428,34 +474,34 @@ class _Recorder:
 
 
 def test_compile_notice_when_nothing_is_cached(monkeypatch):
-    monkeypatch.setattr(cli, "kernel_cache_state", lambda: {"cached": 0, "total": 5, "path": "x"})
+    monkeypatch.setattr(cache, "kernel_cache_state", lambda: {"cached": 0, "total": 5, "path": "x"})
     rec = _Recorder()
-    with cli.CompileNotice(rec):
+    with progress.CompileNotice(rec):
         pass
     assert rec.notes[0].startswith("compiling kernels, about")
     assert len(rec.notes) == 2  # and once more when ready
 
 
 def test_compile_notice_only_when_slow(monkeypatch):
-    monkeypatch.setattr(cli, "kernel_cache_state", lambda: None)  # cache cannot be inspected
-    monkeypatch.setattr(cli, "SLOW_FIRST_CALL", 0.05)
+    monkeypatch.setattr(cache, "kernel_cache_state", lambda: None)  # cache cannot be inspected
+    monkeypatch.setattr(progress, "SLOW_FIRST_CALL", 0.05)
     rec = _Recorder()
-    with cli.CompileNotice(rec):
+    with progress.CompileNotice(rec):
         pass  # fast: cached kernels
     assert rec.notes == []
-    with cli.CompileNotice(rec):
+    with progress.CompileNotice(rec):
         time.sleep(0.5)  # slow: compiling
     assert rec.notes[0].startswith("compiling kernels")
 
 
 def test_kernel_cache_state_counts_the_library_kernels():
-    state = cli.kernel_cache_state()
+    state = cache.kernel_cache_state()
     assert state is not None, "numba's cache index could not be read"
     assert state["total"] >= 10 and 0 <= state["cached"] <= state["total"]
 
 
 def test_iteration_report_throttles_and_names_the_residual():
-    from hatkernels.cli import IterationReport
+    from hatkernels.cli.progress import IterationReport
 
     class Recorder:
         def __init__(self):
@@ -471,3 +517,48 @@ def test_iteration_report_throttles_and_names_the_residual():
     slow = IterationReport(rec, every=3600.0)
     slow(4, 1.0)
     assert len(rec.lines) == 1  # nothing more within the hour
+
+
+# -- the package itself ----------------------------------------------------------------
+
+CLI_DIR = pathlib.Path(cli.__file__).parent
+
+
+def cli_modules():
+    return ["hatkernels.cli"] + [f"hatkernels.cli.{m.name}" for m in pkgutil.iter_modules(
+        [str(CLI_DIR)]) if m.name != "__main__"]
+
+
+def test_every_module_imports_and_stays_short():
+    names = cli_modules()
+    for name in ("solve", "solve_mpi", "verify", "bench", "info", "progress", "cache"):
+        assert f"hatkernels.cli.{name}" in names
+    for name in names:
+        importlib.import_module(name)
+    for path in sorted(CLI_DIR.glob("*.py")):
+        lines = len(path.read_text().splitlines())
+        assert lines <= 500, f"{path.name} has {lines} lines (at most 500)"
+    assert not (CLI_DIR.parent / "cli.py").exists()
+    assert not (CLI_DIR.parent / "distributed" / "command.py").exists()
+
+
+def test_no_import_cycle_through_the_command():
+    # the graph of tests/test_imports.py: imports anywhere in a module, lazy ones included
+    from test_imports import describe, import_graph, strongly_connected
+
+    graph = import_graph()
+    assert "hatkernels.cli.solve_mpi" in graph["hatkernels.cli.solve"]
+    bad = [c for c in strongly_connected(graph) if any(m.startswith("hatkernels.cli") for m in c)]
+    assert not bad, "import cycles through the command:\n" + describe(graph, bad)
+
+
+def test_preconditioners_are_named_only_in_option_parsing():
+    # what a preconditioner needs is the library's to say (its registry and its errors):
+    # outside the parser no module of the command holds a registered name as a string
+    names = set(hatkernels.PRECONDITIONERS)
+    for path in sorted(CLI_DIR.glob("*.py")):
+        if path.name == "__init__.py":
+            continue
+        found = {node.value for node in ast.walk(ast.parse(path.read_text()))
+                 if isinstance(node, ast.Constant) and node.value in names}
+        assert not found, f"{path.name} names preconditioners {sorted(found)}"

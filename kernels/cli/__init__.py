@@ -1,0 +1,293 @@
+"""The ``hatkernels`` command: solve, verify, bench and info, built on the library.
+
+This module parses and checks the options and hands them to one module per
+subcommand (:mod:`~hatkernels.cli.solve`, :mod:`~hatkernels.cli.verify`,
+:mod:`~hatkernels.cli.bench`, :mod:`~hatkernels.cli.info`); it holds no
+logic of its own.
+
+Exit codes: 0 success; 2 bad usage or bad input (unknown option, missing or
+invalid mesh file, a NaN, an output directory that exists without
+``--force``); 1 when a solve does not converge (or ``verify`` does not see
+the expected rates), and for internal errors.  Errors are one line on
+stderr, ``hatkernels: error: ...``; ``--debug`` adds the traceback.
+Progress goes to stderr (``--quiet`` silences it); results to stdout.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import textwrap
+import traceback
+import warnings
+
+from hatkernels import PRECONDITIONERS
+from hatkernels.checks import integer_option, real_option
+from hatkernels.cli import bench, info, solve, verify
+from hatkernels.cli.common import PROG, error
+from hatkernels.cli.progress import Progress
+from hatkernels.errors import ConvergenceError, InputError
+
+__all__ = ["main", "build_parser", "UsageError"]
+
+SCENARIO_HELP = """\
+The built-in scenario (invented demonstration data): a heat-spreader plate
+120 mm x 80 mm, 2 mm thick, aluminium, conductivity 237 W/(m K) (pure
+aluminium at 300 K; Incropera and DeWitt, Fundamentals of Heat and Mass
+Transfer, table A.1; value from memory), under a 20 mm x 20 mm processor
+dissipating 15 W centred at (40 mm, 45 mm) and a 15 mm x 10 mm voltage
+regulator dissipating 5 W centred at (90 mm, 25 mm); all four edges held at
+the coolant temperature 25 degC. Steady in-plane conduction
+-div(k grad T) = q, q = P / (footprint area x thickness) in W/m^3, SI units.
+The source is set per triangle and rescaled per component so that the
+integrated power is exactly 15 W and 5 W on any mesh. The default mesh has
+960 x 640 cells (0.125 mm, 1,228,800 triangles), which line up with the
+footprints.
+
+With --mesh FILE the problem is -div(k grad u) = Q on that mesh with u = G on
+its whole boundary (constants --conductivity, --source, --dirichlet; default
+1, 1, 0; units those of the file).
+
+CAUTION: results are engineering estimates and must be checked by a
+qualified person against local codes and licensed practice."""
+
+#: ``amg`` names another registered preconditioner: bench leaves it out by default.
+ALIASES = ("amg",)
+
+
+class UsageError(Exception):
+    """Bad command-line usage (exit 2)."""
+
+
+class _Parser(argparse.ArgumentParser):
+    """Usage errors raise instead of exiting; ``limits`` holds the numeric options' bounds."""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.limits = {}
+
+    def error(self, message):
+        raise UsageError(f"{message} (see '{self.prog} --help')")
+
+
+def _converter(kind):
+    what = "an integer" if kind is int else "a number"
+
+    def convert(text):
+        try:
+            return kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"not {what}: {text!r}") from None
+
+    convert.__name__ = "integer" if kind is int else "number"
+    return convert
+
+
+def _number(parser, flag, kind, *, group=None, minimum=None, positive=False, **kwargs):
+    """Add a numeric option (to ``group`` of ``parser`` if given); :func:`_check` checks its bounds."""
+    action = (group or parser).add_argument(flag, type=_converter(kind), **kwargs)
+    limits = {"minimum": minimum}
+    if kind is float:
+        limits["positive"] = positive
+    parser.limits[action.dest] = (flag, kind, limits)
+    return action
+
+
+def _check(parser, args):
+    """The checks of the options that parsing alone cannot make; UsageError on the first failing."""
+    command = parser.commands[args.command]
+    limits = {"threads": ("--threads", int, {"minimum": 1}), **command.limits}
+    try:
+        for dest, (flag, kind, bounds) in limits.items():
+            value = getattr(args, dest)
+            if value is not None:
+                (integer_option if kind is int else real_option)(value, flag, **bounds)
+    except InputError as exc:
+        raise UsageError(f"{exc} (see '{command.prog} --help')") from None
+    if args.command == "solve" and args.cells is not None and args.refine is not None:
+        raise UsageError(f"--cells and --refine both set the mesh size; give one "
+                         f"(see '{command.prog} --help')")
+    if args.command == "bench":
+        for name in args.preconditioners:
+            if name not in PRECONDITIONERS:
+                raise UsageError(f"unknown preconditioner {name!r}; choose from "
+                                 f"{', '.join(PRECONDITIONERS)}")
+
+
+def _add_solve(sub, common, names):
+    p = sub.add_parser(
+        "solve", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter,
+        help="solve the built-in heat-spreader scenario (or a mesh file) and write results",
+        description=textwrap.fill(
+            "Solve steady conduction on the built-in heat-spreader plate (default: 1,228,800 "
+            "triangles) or on a mesh file; print a summary and write solution.npz, "
+            "summary.json, solution.png, residuals.png and solution.vtu (with meshio) into "
+            "--out.", 79),
+        epilog=SCENARIO_HELP,
+    )
+    size = p.add_mutually_exclusive_group()
+    _number(p, "--cells", int, group=size, minimum=1, metavar="NX",
+            help="cells along the 120 mm side (the 80 mm side is scaled); "
+                 "default 960 (0.125 mm cells)")
+    _number(p, "--refine", int, minimum=0, metavar="K",
+            help="refine a coarse mesh K times (the plate: 15 x 10 cells of 8 mm; "
+                 "with --mesh: the file's mesh); K=6 gives the default size")
+    size.add_argument("--mesh", metavar="FILE",
+                      help="solve on this mesh instead: .npz with arrays points and triangles, "
+                           "or any format meshio reads (io extra); Dirichlet on the whole "
+                           "boundary, constant source")
+    _number(p, "--source", float, metavar="Q",
+            help="constant source instead of the components (W/m^3 on the plate; "
+                 "default 1 with --mesh)")
+    _number(p, "--conductivity", float, positive=True, metavar="K",
+            help="constant conductivity (W/(m K) on the plate, default 237; default 1 "
+                 "with --mesh)")
+    _number(p, "--dirichlet", float, metavar="G",
+            help="value held on the boundary (coolant temperature in degC on the "
+                 "plate, default 25; default 0 with --mesh)")
+    p.add_argument("--preconditioner", choices=names, default="amg",
+                   help="preconditioner for conjugate gradients (default: amg)")
+    _number(p, "--rtol", float, positive=True, default=1e-10,
+            help="relative residual tolerance (default 1e-10)")
+    _number(p, "--maxiter", int, minimum=1, metavar="N",
+            help="at most N iterations (default 10 x unknowns); not converging exits 1")
+    p.add_argument("--out", default="hatkernels-out", metavar="DIR",
+                   help="output directory, written whole or not at all (default hatkernels-out)")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing output directory written by hatkernels")
+    p.set_defaults(func=solve.run)
+    return p
+
+
+def _add_verify(sub, common, names):
+    v = sub.add_parser(
+        "verify", parents=[common],
+        help="convergence study against a manufactured solution",
+        description="Solve -lap u = 2 pi^2 sin(pi x) sin(pi y) on the unit square (u = 0 on the "
+                    "boundary, exact u = sin(pi x) sin(pi y)) on successive uniform "
+                    "refinements; print h, L2 and H1 errors and observed rates (expected 2 "
+                    "and 1 for linear elements: Ciarlet, The Finite Element Method for "
+                    "Elliptic Problems, 1978); write convergence.png and verify.json.",
+        epilog="Exits 1 when the finest rates are not within 0.2 of 2 and 1.",
+    )
+    _number(v, "--levels", int, minimum=2, default=6, help="number of meshes (default 6)")
+    _number(v, "--start", int, minimum=2, default=8, metavar="N",
+            help="cells per side of the coarsest mesh (default 8)")
+    v.add_argument("--preconditioner", choices=names, default="amg")
+    _number(v, "--rtol", float, positive=True, default=1e-10)
+    v.add_argument("--out", default="hatkernels-verify", metavar="DIR",
+                   help="output directory (default hatkernels-verify)")
+    v.add_argument("--force", action="store_true",
+                   help="replace an existing output directory written by hatkernels")
+    v.set_defaults(func=verify.run)
+    return v
+
+
+def _add_bench(sub, common, names):
+    b = sub.add_parser(
+        "bench", parents=[common],
+        help="compare assembly strategies and preconditioners on this machine",
+        description="Assemble the stiffness matrix of the unit square with --cells cells per "
+                    "side by each strategy (triplets, csr first call, csr numeric) and solve "
+                    "-lap u = 1 with each preconditioner; print times, ratios and the "
+                    "measured memory bandwidth. Speeds are for this machine and run only.",
+    )
+    _number(b, "--cells", int, minimum=2, default=300, metavar="N",
+            help="cells per side of the unit square (default 300: 180,000 triangles)")
+    _number(b, "--repeat", int, minimum=1, default=3, help="best of R (default 3)")
+    b.add_argument("--preconditioners", type=lambda s: [x for x in s.split(",") if x],
+                   metavar="A,B,...", default=[n for n in names if n not in ALIASES],
+                   help=f"comma-separated names (default: all of {', '.join(names)} but amg, "
+                        f"which is an alias)")
+    _number(b, "--rtol", float, positive=True, default=1e-8)
+    _number(b, "--bandwidth-mb", int, minimum=1, default=512, metavar="MB",
+            help="array size for the bandwidth measurement (default 512 MiB)")
+    b.add_argument("--json", metavar="FILE", help="also write the results as JSON")
+    b.set_defaults(func=bench.run)
+    return b
+
+
+def _add_info(sub, common, names):
+    i = sub.add_parser(
+        "info", parents=[common], help="versions, threads and the numba cache",
+        description="Print the versions of Python and the libraries, the numba thread count "
+                    "and threading layer, and where compiled kernels are cached.",
+    )
+    i.add_argument("--json", action="store_true", help="print JSON")
+    i.set_defaults(func=info.run)
+    return i
+
+
+def build_parser():
+    """The argument parser of the ``hatkernels`` command (``.commands``: its subparsers)."""
+    common = _Parser(add_help=False)
+    common.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    common.add_argument("--debug", action="store_true",
+                        help="show tracebacks and library warnings in full")
+    common.add_argument("--threads", type=_converter(int), metavar="N",
+                        help="numba threads (default: all, NUMBA_NUM_THREADS)")
+    names = tuple(PRECONDITIONERS)
+
+    parser = _Parser(
+        prog=PROG,
+        description="Fast, verified linear (P1) finite elements on triangle meshes: solve the "
+                    "built-in heat-spreader scenario or a mesh file, verify convergence, "
+                    "benchmark this machine, show versions.",
+        epilog="Run 'hatkernels COMMAND --help' for each command. Exit codes: 0 success, "
+               "2 bad usage or input, 1 a solve that does not converge.",
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    parser.commands = {name: add(sub, common, names) for name, add in (
+        ("solve", _add_solve), ("verify", _add_verify), ("bench", _add_bench),
+        ("info", _add_info))}
+    return parser
+
+
+def main(argv=None):
+    """Run the command; return the exit code."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+        if args.command is None:
+            raise UsageError("choose a command: solve, verify, bench or info "
+                             "(see 'hatkernels --help')")
+        _check(parser, args)
+    except UsageError as exc:
+        error(exc)
+        return 2
+    args.argv = argv[argv.index(args.command) + 1:] if args.command in argv else []
+    progress = Progress(quiet=args.quiet)
+
+    def fail(code, text):
+        progress.close()
+        if args.debug:
+            traceback.print_exc()
+        error(text)
+        return code
+
+    with warnings.catch_warnings():
+        if not args.debug:
+            warnings.showwarning = progress.warning
+        try:
+            return args.func(args, progress)
+        except UsageError as exc:
+            return fail(2, exc)
+        except ConvergenceError as exc:
+            text = str(exc).removeprefix("solve: ").removeprefix("not converged: ")
+            return fail(1, f"the solve did not converge: {text}; try a larger --maxiter, a "
+                           f"looser --rtol or another --preconditioner")
+        except InputError as exc:
+            return fail(2, exc)
+        except KeyboardInterrupt:
+            return fail(130, "interrupted; no output written")
+        except MemoryError:
+            return fail(1, "out of memory; try a smaller mesh (--cells)")
+        except OSError as exc:
+            return fail(1, f"{exc.strerror or exc}"
+                           + (f": {exc.filename}" if getattr(exc, "filename", None) else ""))
+        except Exception as exc:
+            return fail(1, f"internal error: {type(exc).__name__}: {exc}"
+                           + ("" if args.debug else " (run with --debug for the traceback)"))
+        finally:
+            progress.close()

@@ -1,0 +1,76 @@
+"""From the options of ``hatkernels solve`` to a mesh and a problem (serial and MPI alike)."""
+
+from __future__ import annotations
+
+from hatkernels import io as kio
+from hatkernels import scenarios
+from hatkernels.mesh import Mesh, rectangle
+from hatkernels.scenarios import COARSE_CELLS, DEFAULT_CELLS, PLATE
+
+__all__ = ["build_mesh", "make_problem", "tiny_problem"]
+
+
+def _times(k):
+    return f"{k} time{'s' if k != 1 else ''}"
+
+
+def build_mesh(args, progress, arrays=None):
+    """The mesh the options ask for, and its description for the report.
+
+    ``arrays`` are what :func:`hatkernels.io.read_mesh_arrays` read from
+    ``--mesh`` (read before the kernels compile, so that a bad file fails
+    first); the mesh checks run here.  ``--refine K`` refines the file's mesh,
+    or the plate's coarse 8 mm mesh, K times.
+    """
+    if args.mesh is not None:
+        progress.phase(f"mesh: checking {args.mesh}")
+        mesh = kio.mesh_from_arrays(*arrays, args.mesh)
+        description = f"from {args.mesh}"
+    elif args.refine is not None:
+        nx, ny = PLATE.cells(COARSE_CELLS)
+        progress.phase(f"mesh: rectangle {nx} x {ny} cells")
+        mesh = rectangle(nx, ny, bounds=PLATE.bounds)
+        description = f"rectangle {nx} x {ny} cells of 8 mm refined {_times(args.refine)}"
+    else:
+        nx, ny = PLATE.cells(DEFAULT_CELLS if args.cells is None else args.cells)
+        progress.phase(f"mesh: rectangle {nx} x {ny} cells")
+        mesh = rectangle(nx, ny, bounds=PLATE.bounds)
+        description = (f"rectangle {nx} x {ny} cells of {PLATE.length / nx * 1e3:.4g} mm x "
+                       f"{PLATE.width / ny * 1e3:.4g} mm")
+    if args.refine and args.mesh is not None:
+        description += f", refined {_times(args.refine)}"
+    for k in range(args.refine or 0):
+        progress.phase(f"mesh: refinement {k + 1} of {args.refine} "
+                       f"({4 * mesh.n_triangles:,} triangles)")
+        mesh = mesh.refine()
+    return mesh, description
+
+
+def make_problem(args, mesh, description):
+    """The plate scenario on ``mesh``, or the generic problem of a ``--mesh`` file."""
+    if args.mesh is not None:
+        return scenarios.mesh_problem(mesh, source=args.source, conductivity=args.conductivity,
+                                      dirichlet=args.dirichlet, name=args.mesh,
+                                      mesh_description=description)
+    return scenarios.heat_spreader(mesh, source=args.source, conductivity=args.conductivity,
+                                   coolant=args.dirichlet, mesh_description=description)
+
+
+def tiny_problem(args, refinements=1):
+    """The same kind of problem on a tiny mesh: run it first so that the kernels compile.
+
+    A ``--mesh`` run gets a 4 x 4 square through the checks a mesh file goes
+    through; the plate its coarse mesh.  Either is refined ``refinements``
+    times, which compiles the refinement kernels and makes the plate's mesh
+    fine enough for the component footprints.
+    """
+    if args.mesh is not None:
+        grid = rectangle(4, 4)
+        tiny = Mesh(grid.points, grid.triangles)
+    else:
+        tiny = rectangle(*PLATE.cells(COARSE_CELLS), bounds=PLATE.bounds)
+    for _ in range(refinements):
+        tiny = tiny.refine()
+    if args.mesh is not None:
+        return scenarios.mesh_problem(tiny, source=args.source, conductivity=args.conductivity)
+    return scenarios.heat_spreader(tiny, source=args.source, conductivity=args.conductivity)

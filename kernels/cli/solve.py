@@ -1,0 +1,122 @@
+"""``hatkernels solve``: the built-in scenario (or a mesh file), solved, checked and written.
+
+Under ``mpiexec`` with more than one rank the same options run the
+distributed solve (:mod:`hatkernels.cli.solve_mpi`); the launcher's
+environment is read without importing mpi4py.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+
+from hatkernels import io as kio
+from hatkernels import scenarios
+from hatkernels.cli import solve_mpi
+from hatkernels.cli.common import command_line, threads
+from hatkernels.cli.outputs import write_solve_outputs
+from hatkernels.cli.problem import build_mesh, make_problem, tiny_problem
+from hatkernels.cli.progress import CompileNotice, IterationReport
+from hatkernels.cli.summary import solve_report, solve_summary
+from hatkernels.distributed.launch import ranks_from_environment
+from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.mesh import rectangle
+
+__all__ = ["run", "PHASE_TEXT"]
+
+#: The progress line for each phase the library announces.
+PHASE_TEXT = {
+    "assemble": "assemble: stiffness matrix and load vector",
+    "boundary": "boundary: Dirichlet conditions",
+    "solve": "solve: preconditioner setup and conjugate gradients",
+}
+
+#: Added to the library's refusal of a preconditioner that needs a mesh made by refinement.
+REFINE_HINT = "; in this command --refine K builds the mesh by refinement"
+
+
+def _warm_up(args):
+    """Run the same kind of problem on a tiny mesh, so that kernels compile (or load) here.
+
+    It goes through the same steps as the real run (mesh checks for a file,
+    refinement, assembly, solve, power balance), so that the phase times of
+    the real problem do not include compilation.
+    """
+    problem = tiny_problem(args)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            sol = scenarios.solve_problem(problem, preconditioner=args.preconditioner,
+                                          rtol=args.rtol)
+            scenarios.power_balance(problem, sol.u)
+    except (InputError, ConvergenceError):
+        pass  # the real problem reports its own errors
+
+
+def _needs_refinement(args):
+    """Whether the preconditioner refuses a mesh without a refinement history but takes one with it.
+
+    Asked of the library, on the same tiny triangulation with and without
+    the history, only after it refused a solve: the command knows no
+    preconditioner by name.
+    """
+    def accepted(mesh):
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                scenarios.solve_problem(scenarios.mesh_problem(mesh),
+                                        preconditioner=args.preconditioner, rtol=args.rtol)
+        except (InputError, ConvergenceError):
+            return False
+        return True
+
+    return accepted(rectangle(4, 4).refine()) and not accepted(rectangle(8, 8))
+
+
+def _solve(args, problem, progress):
+    """The library's solve of ``problem``; a refusal for want of refinement says what to type."""
+    try:
+        return scenarios.solve_problem(
+            problem, preconditioner=args.preconditioner, rtol=args.rtol, maxiter=args.maxiter,
+            progress=lambda phase: progress.phase(PHASE_TEXT.get(phase, phase)),
+            monitor=IterationReport(progress),
+        )
+    except InputError as exc:
+        if problem.mesh.refinement is None and _needs_refinement(args):
+            size = " (--refine 6 gives the default size)" if args.mesh is None else ""
+            raise InputError(f"{exc}{REFINE_HINT}{size}") from exc
+        raise
+
+
+def run(args, progress):
+    """Run ``hatkernels solve``; return the exit code."""
+    if ranks_from_environment() > 1:
+        return solve_mpi.run(args, progress)
+    out = kio.check_output_directory(args.out, force=args.force)
+    command = command_line(args)
+    timings = {}
+    with threads(args.threads):
+        arrays = None
+        if args.mesh is not None:  # a missing or unreadable file fails before any compiling
+            progress.phase(f"mesh: reading {args.mesh}")
+            arrays = kio.read_mesh_arrays(args.mesh)
+        progress.phase("kernels: loading compiled kernels (or compiling them)")
+        with CompileNotice(progress) as notice:
+            _warm_up(args)
+        t0 = time.perf_counter()
+        mesh, description = build_mesh(args, progress, arrays)
+        problem = make_problem(args, mesh, description)
+        timings["mesh"] = time.perf_counter() - t0
+        sol = _solve(args, problem, progress)
+        progress.phase("check: power balance from the boundary reactions")
+        t0 = time.perf_counter()
+        balance = scenarios.power_balance(problem, sol.u)
+        timings["check"] = time.perf_counter() - t0
+        summary = solve_summary(args, problem, sol, balance, timings, notice.seconds, command)
+        progress.phase(f"write: solution.npz and summary.json into {args.out}")
+        with kio.output_directory(out, force=args.force) as tmp:
+            write_solve_outputs(tmp, problem, sol.u, summary, progress, args.rtol)
+    progress.phase("done")
+    progress.close()
+    print(solve_report(problem, summary, args.out))
+    return 0

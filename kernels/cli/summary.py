@@ -1,0 +1,239 @@
+"""The results of ``hatkernels solve``: summary.json's record and the printed report.
+
+:func:`solve_figures` and :func:`distributed_figures` are the only places in
+the command that read a solve's stats; everything else reads the record
+they feed.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from hatkernels._text import format_seconds
+from hatkernels.cli.common import PROG, base_record, versions
+from hatkernels.perf import peak_rss_bytes
+from hatkernels.scenarios import CAUTION
+
+__all__ = [
+    "solve_figures",
+    "distributed_figures",
+    "solve_summary",
+    "solve_report",
+    "distributed_report",
+]
+
+#: Phases the library times, copied into the record under the same names.
+LIBRARY_PHASES = ("assemble", "boundary", "setup", "solve")
+#: Per-rank figures kept in the record of a distributed solve.
+RANK_FIGURES = ("rank", "owned_points", "owned_unknowns", "triangles", "ghost_points",
+                "ghost_unknowns", "neighbours", "nnz", "halo_bytes_per_product",
+                "halo_messages_per_product", "communication", "timings")
+
+
+def solve_figures(sol):
+    """What the command reports of a solve (serial or distributed), read from its SolveStats."""
+    st = sol.stats
+    return {
+        "unknowns": st.unknowns,
+        "dirichlet_points": st.dirichlet_points,
+        "nnz": st.nnz,
+        "matrix_free": bool(st.matrix_free),
+        "operator_bytes": st.stored_bytes,
+        "preconditioner": st.preconditioner,
+        "converged": bool(st.converged),
+        "iterations": int(st.iterations),
+        "residuals": np.asarray(st.residuals, dtype=float),
+        "threads": st.threads,
+        "timings": {key: st.timings[key] for key in LIBRARY_PHASES + ("total",)},
+    }
+
+
+def distributed_figures(sol, coarse):
+    """The distributed part of a solve's stats, for summary.json (``coarse``: the coarse space)."""
+    st = sol.stats
+    d = st.distribution
+    return {
+        "ranks": st.ranks,
+        "threads_per_rank": d.threads_per_rank,
+        "coarse": coarse,
+        "condition_estimate": st.condition_estimate,
+        "partition": d.partition,
+        "communication": d.communication,
+        "balance": [{k: b[k] for k in RANK_FIGURES} for b in d.balance],
+    }
+
+
+def _extreme(u, used, which):
+    values = u[used]
+    k = int(np.argmax(values) if which == "max" else np.argmin(values))
+    v = float(values[k])
+    ties = int(np.count_nonzero(np.abs(values - v) <= 1e-12 * max(1.0, abs(v))))
+    return v, int(used[k]), ties
+
+
+def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command,
+                  peak_bytes=None):
+    """The record of one solve, as written to summary.json.
+
+    ``timings``: the command's own phases (``mesh``, ``check``);
+    ``kernels_seconds``: the warm-up that compiled or loaded the kernels;
+    ``peak_bytes``: a peak memory measured elsewhere (a distributed run
+    passes the largest rank's); the record holds the larger of it and this
+    process's high-water mark now.
+    """
+    mesh, u = problem.mesh, sol.u
+    figures = solve_figures(sol)
+    used = np.unique(mesh.triangles)
+    vmax, imax, nmax = _extreme(u, used, "max")
+    vmin, imin, nmin = _extreme(u, used, "min")
+    res = figures["residuals"]
+    summary = base_record(command)
+    summary["caution"] = CAUTION
+    summary["problem"] = {
+        "name": problem.name,
+        "statement": problem.statement,
+        "conductivity": float(problem.conductivity),
+        "source": (float(problem.source) if np.ndim(problem.source) == 0
+                   else "per triangle, from the components"),
+        "dirichlet_value": problem.dirichlet,
+        "thickness": problem.thickness,
+        "components": [
+            {"name": c.name, "width": c.width, "height": c.height, "center": list(c.center),
+             "power": c.power} for c in problem.components
+        ],
+    }
+    summary["units"] = {
+        "length": "m" if problem.thickness else "mesh units",
+        "solution": problem.unit or "solution units",
+        "power": problem.power_unit or "source x area",
+    }
+    summary["mesh"] = {
+        "description": problem.mesh_description,
+        "points": mesh.n_points,
+        "triangles": mesh.n_triangles,
+        "h": mesh.h(),
+    }
+    for key in ("unknowns", "dirichlet_points", "nnz", "matrix_free", "operator_bytes"):
+        summary[key] = figures[key]
+    summary["solver"] = {
+        "preconditioner": figures["preconditioner"],
+        "requested": args.preconditioner,
+        "rtol": args.rtol,
+        "maxiter": args.maxiter,
+        "converged": figures["converged"],
+        "iterations": figures["iterations"],
+        "initial_residual": float(res[0]),
+        "final_residual": float(res[-1]),
+        "relative_residual": float(res[-1] / res[0]) if res[0] > 0 else 0.0,
+        "residuals": res.tolist(),
+        "threads": figures["threads"],
+    }
+    t = dict(timings)
+    t["kernels"] = kernels_seconds
+    for key in LIBRARY_PHASES:
+        t[key] = figures["timings"][key]
+    t["library_total"] = figures["timings"]["total"]
+    summary["timings_s"] = t
+    summary["solution"] = {
+        "quantity": problem.quantity,
+        "max": vmax, "max_at": mesh.points[imax].tolist(), "max_point": imax, "max_points": nmax,
+        "min": vmin, "min_at": mesh.points[imin].tolist(), "min_point": imin, "min_points": nmin,
+    }
+    power = dict(balance)
+    if problem.components:
+        power["components"] = problem.component_powers()
+    summary["power"] = power
+    summary["peak_rss_bytes"] = max(peak_bytes or 0, peak_rss_bytes())
+    summary["versions"] = versions()
+    return summary
+
+
+def _where(problem, point):
+    s, unit = problem.length_scale, problem.length_unit
+    x, y = (float(c) * s for c in point)
+    sep = f" {unit}" if unit else ""
+    return f"({x:.4g}{sep}, {y:.4g}{sep})"
+
+
+def solve_report(problem, summary, out, extra=()):
+    """The printed report of a solve; ``extra`` lines go before the closing caution."""
+    s = summary
+    sol, solver, t, pw = s["solution"], s["solver"], s["timings_s"], s["power"]
+    unit = f" {problem.unit}" if problem.unit else ""
+    pu = f" {problem.power_unit}" if problem.power_unit else ""
+    lines = [f"{PROG} solve: {problem.statement[0]}"]
+    lines += [f"  {text}" for text in problem.statement[1:]]
+    lines.append(f"{'mesh':<16}{s['mesh']['description']}: {s['mesh']['points']:,} points, "
+                 f"{s['mesh']['triangles']:,} triangles")
+    if s.get("matrix_free"):
+        stored = f"matrix-free operator ({s['operator_bytes'] / 1e6:.1f} MB)"
+    else:
+        stored = f"{s['nnz']:,} matrix entries"
+    lines.append(f"{'unknowns':<16}{s['unknowns']:,} (plus {s['dirichlet_points']:,} Dirichlet "
+                 f"points), {stored}")
+    lines.append(f"{'preconditioner':<16}{solver['preconditioner']}")
+    lines.append(f"{'threads':<16}{solver['threads']} (numba)")
+    order = ("mesh", "kernels", "assemble", "boundary", "setup", "solve", "check")
+    lines.append(f"{'times':<16}"
+                 + ", ".join(f"{k} {format_seconds(t[k])}" for k in order if k in t))
+    lines.append(f"{'iterations':<16}{solver['iterations']}, final residual "
+                 f"{solver['final_residual']:.3e} = {solver['relative_residual']:.2e} x initial "
+                 f"(rtol {solver['rtol']:g}), converged")
+    mesh = problem.mesh
+    lines.append(f"{problem.quantity:<16}max {sol['max']:.6g}{unit} at "
+                 f"{_where(problem, mesh.points[sol['max_point']])}"
+                 + (f" ({sol['max_points']} points)" if sol["max_points"] > 1 else ""))
+    min_where = (f"on {sol['min_points']:,} points, first at " if sol["min_points"] > 1 else "at ")
+    lines.append(f"{'':<16}min {sol['min']:.6g}{unit} {min_where}"
+                 f"{_where(problem, mesh.points[sol['min_point']])}")
+    parts = ""
+    if pw.get("components"):
+        parts = " (" + ", ".join(f"{n} {v:.6g}{pu}" for n, v in pw["components"].items()) + ")"
+    what_in = "power in" if problem.thickness else "source total"
+    lines.append(f"{what_in:<16}{pw['power_in']:.6g}{pu}{parts}")
+    lines.append(f"{'':<16}{pw['heat_out']:.6g}{pu} leaves through the Dirichlet boundary "
+                 f"(imbalance {pw['imbalance']:.2e}{pu}, relative {pw['relative_imbalance']:.1e})")
+    lines.append(f"{'peak memory':<16}{s['peak_rss_bytes'] / 1e9:.2f} GB (process high-water mark)")
+    lines.append(f"{'output':<16}{out}: {', '.join(s['files'])}")
+    for text in s["skipped"]:
+        lines.append(f"{'':<16}not written: {text}")
+    lines.extend(extra)
+    lines.append("")
+    lines.append(s["caution"])
+    return "\n".join(lines)
+
+
+def distributed_report(d):
+    """Lines for the printed report: ranks, partition quality, per-rank balance and communication."""
+    tp = d["threads_per_rank"]
+    part = d["partition"]
+    com = d["communication"]
+    lines = [
+        f"{'ranks':<16}{d['ranks']} MPI ranks, {tp['threads']} numba thread"
+        f"{'s' if tp['threads'] != 1 else ''} each ({tp['chosen_by']}), two-level "
+        f"preconditioner (coarse space: one constant per subdomain)",
+        f"{'partition':<16}{part['method']}: imbalance {part['imbalance']:.2%} in owned points, "
+        f"{part['entry_imbalance']:.2%} in stored entries; interface {part['interface_points']:,} "
+        f"points, {part['cut_edges']:,} cut edges",
+    ]
+    for b in d["balance"]:
+        c = b["communication"]
+        lines.append(
+            f"{'rank ' + str(b['rank']):<16}{b['owned_points']:,} points ({b['owned_unknowns']:,} "
+            f"unknowns), {b['triangles']:,} triangles, {b['ghost_points']:,} ghosts from "
+            f"{len(b['neighbours'])} neighbour{'s' if len(b['neighbours']) != 1 else ''}; "
+            f"communication {format_seconds(c['seconds'])} of a "
+            f"{format_seconds(b['timings']['solve'])} solve (halo "
+            f"{format_seconds(c['halo_seconds'])}, reductions "
+            f"{format_seconds(c['reduction_seconds'])}, coarse "
+            f"{format_seconds(c['coarse_seconds'])})")
+    lines.append(
+        f"{'per iteration':<16}halo {com['halo_bytes_per_product'] / 1e3:.1f} kB in "
+        f"{com['halo_messages_per_product']} messages (all ranks), "
+        f"{com['reductions_per_iteration']:.2g} reductions of "
+        f"{com['reduction_bytes_per_iteration']:.3g} bytes in all, coarse "
+        f"{com['coarse_bytes_per_application']} bytes through rank 0; "
+        f"condition estimate {d['condition_estimate']:.3g}")
+    lines.append(f"{'':<16}(communication seconds include waiting for slower ranks; with more "
+                 f"ranks than cores they measure the oversubscription, not the network)")
+    return lines
