@@ -26,10 +26,15 @@ __all__ = ["Dirichlet", "Flux", "Robin", "parse_conditions", "free_sides"]
 
 @dataclasses.dataclass(frozen=True)
 class Dirichlet:
-    """Held values: ``points`` (k,) int64, sorted and unique; ``values`` (k,) float64."""
+    """Held values: ``points`` (k,) int64, sorted and unique; ``values`` (k,) float64.
+
+    ``whole_boundary`` is True when every boundary point is held (then every
+    connected part of the mesh is held somewhere).
+    """
 
     points: np.ndarray
     values: np.ndarray
+    whole_boundary: bool = False
 
 
 @dataclasses.dataclass(frozen=True)
@@ -125,7 +130,8 @@ def parse_conditions(mesh, *, dirichlet=0.0, dirichlet_on=None, neumann=None, ro
     if dirichlet_on is None:
         dirichlet_on = "boundary" if neumann is None and robin is None else np.empty(0, np.int64)
     held = _held_points(mesh, dirichlet_on)
-    fixed = Dirichlet(held, _held_values(mesh, held, dirichlet))
+    whole = isinstance(dirichlet_on, str)  # "boundary", the only string accepted
+    fixed = Dirichlet(held, _held_values(mesh, held, dirichlet), whole)
     flux = None
     if neumann is not None:
         if isinstance(neumann, tuple) and len(neumann) != 2:

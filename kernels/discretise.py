@@ -31,7 +31,7 @@ from hatkernels.operators import DEFAULT_VARIANT, StiffnessOperator
 from hatkernels.precond import PreconditionerContext
 from hatkernels.solver import stored_bytes
 
-__all__ = ["LinearSystem", "discretise", "boundary_vector"]
+__all__ = ["LinearSystem", "discretise", "balanced", "boundary_vector", "zero_means"]
 
 
 @dataclasses.dataclass(repr=False)
@@ -68,8 +68,12 @@ class LinearSystem:
     _reduced: object = None
 
     def expand(self, x):
-        """Values at all points from a solution ``x`` of the system (held values put back)."""
-        return x if self._reduced is None else self._reduced.expand(x)
+        """Values at all points from a solution ``x`` of the system (held values put back;
+        a floating part of a ``zero_mean`` problem shifted to mean zero)."""
+        u = x if self._reduced is None else self._reduced.expand(x)
+        if self.problem.floating.size:
+            u = zero_means(self.problem, u)
+        return u
 
     def restrict(self, u):
         """The system's unknowns from values at all points."""
@@ -90,6 +94,36 @@ class LinearSystem:
     def __repr__(self):
         form = f"matrix-free ({self.variant})" if self.matrix_free else f"CSR, nnz {self.nnz}"
         return f"LinearSystem({self.unknowns} unknowns, {form}, {self.stored_bytes} bytes)"
+
+
+def zero_means(problem, u):
+    """``u`` shifted on each floating part of ``problem`` so that its mean over the part is 0.
+
+    The mean is the integral of the P1 function over the part divided by the
+    part's measure: weights ``int phi_i`` (the load of the source 1).
+    """
+    mesh = problem.mesh
+    _, labels = mesh.components()
+    weights = assemble_load(mesh, 1.0)
+    u = np.array(u, dtype=np.float64)
+    for part in problem.floating:
+        inside = labels == part
+        u[inside] -= np.dot(weights[inside], u[inside]) / weights[inside].sum()
+    return u
+
+
+def balanced(problem, b):
+    """``b`` with each floating part's sum removed in proportion to ``int phi_i``.
+
+    That is a constant subtracted from the part's source: it makes the
+    singular part's system consistent, so the held pin point takes no load.
+    """
+    _, labels = problem.mesh.components()
+    weights = assemble_load(problem.mesh, 1.0)
+    for part in problem.floating:
+        inside = labels == part
+        b[inside] -= b[inside].sum() * weights[inside] / weights[inside].sum()
+    return b
 
 
 def boundary_vector(problem):
@@ -137,6 +171,8 @@ def discretise(problem, *, matrix_free=False, variant=None, progress=None):
     note("assemble")
     t = time.perf_counter()
     b += assemble_load(mesh, problem.source, quadrature=q)
+    if problem.floating.size:
+        b = balanced(problem, b)
     held = problem.dirichlet
     if matrix_free:
         variant = DEFAULT_VARIANT if variant is None else variant

@@ -82,14 +82,16 @@ def solve_poisson(
     variant=None,
     progress=None,
     monitor=None,
+    zero_mean=False,
     **preconditioner_options,
 ):
     """Solve ``-div(kappa grad u) + c u = f`` on a mesh in one call.
 
     Parameters
     ----------
-    mesh, f, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin, quadrature
-        The problem: see :class:`hatkernels.problem.PoissonProblem`.
+    mesh, f, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin, quadrature, zero_mean
+        The problem: see :class:`hatkernels.problem.PoissonProblem` (``zero_mean=True``
+        solves a pure Neumann part for its solution with mean zero).
     preconditioner, rtol, atol, maxiter, check, **preconditioner_options
         As in :func:`hatkernels.solve`.
     matrix_free : bool, optional
@@ -128,10 +130,12 @@ def solve_poisson(
     t0 = time.perf_counter()
     problem = PoissonProblem(mesh, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
                              coefficient=coefficient, reaction=reaction, neumann=neumann,
-                             robin=robin, quadrature=quadrature)
+                             robin=robin, quadrature=quadrature, zero_mean=zero_mean)
+    checked = time.perf_counter() - t0
     if matrix_free is None:
         matrix_free = matrix_free_default(preconditioner, problem)
     system = discretise(problem, matrix_free=matrix_free, variant=variant, progress=progress)
+    system.timings["boundary"] += checked  # the checks of the data count as boundary work
     if progress is not None:
         progress("solve")
     result = solve(system.A, system.b, preconditioner=preconditioner, rtol=rtol, atol=atol,

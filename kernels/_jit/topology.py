@@ -238,3 +238,33 @@ def first_appearance(triangles, n_points, new_id):
         if new_id[v] < 0:
             new_id[v] = k
             k += 1
+
+
+@jit()
+def _root(parent, x):
+    while parent[x] != x:
+        parent[x] = parent[parent[x]]  # path halving
+        x = parent[x]
+    return x
+
+
+@jit()
+def component_roots(cells, parent):
+    """Union-find over the cells: ``parent`` (n_points,) ends as each point's root.
+
+    ``parent`` must hold ``0 .. n_points - 1`` on entry.  Linking the larger
+    root under the smaller makes every root the smallest point of its part.
+    Serial (a union-find has no independent rows); about 10 ns per cell.
+    """
+    m, k = cells.shape
+    for c in range(m):
+        a = _root(parent, cells[c, 0])
+        for j in range(1, k):
+            b = _root(parent, cells[c, j])
+            if a < b:
+                parent[b] = a
+            elif b < a:
+                parent[a] = b
+                a = b
+    for i in range(parent.size):
+        parent[i] = _root(parent, i)

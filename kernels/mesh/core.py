@@ -10,6 +10,7 @@ from hatkernels._jit import geometry as _jit_geometry
 from hatkernels._jit import topology as _topo
 from hatkernels._sets import index_union
 from hatkernels.errors import InputError, MeshError, MeshWarning
+from hatkernels.mesh.components import point_components
 from hatkernels.mesh.core_index import index_dtype
 from hatkernels.mesh.pattern import csr_pattern
 from hatkernels.mesh.quality import quality as _quality
@@ -464,3 +465,8 @@ class Mesh:
     def quality(self):
         """Angles, areas and aspect ratios; see :class:`hatkernels.mesh.MeshQuality`."""
         return _quality(self)
+
+    def components(self):
+        """``(count, labels)``: connected parts and each point's part (-1: in no cell);
+        see :func:`hatkernels.mesh.components.point_components`."""
+        return point_components(self)
