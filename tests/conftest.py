@@ -3,6 +3,7 @@
 import os
 import warnings
 
+import numba
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, settings
@@ -18,6 +19,55 @@ settings.register_profile(
     derandomize=True,
 )
 settings.load_profile("ci")
+
+#: Machine epsilon of float64, the unit of the round-off tolerances in the tests.
+EPS = np.finfo(np.float64).eps
+
+#: Threads numba can really run at once: a 1-vs-2-thread test needs two of them,
+#: else ``hatkernels.threads(2)`` fails (fewer numba threads) or runs both halves on
+#: one core, where a race in a kernel cannot show.
+N_THREADS = min(os.cpu_count() or 1, numba.config.NUMBA_NUM_THREADS)
+
+#: The one guard for 1-vs-2-thread tests: ``@two_threads`` (from conftest) or
+#: ``@pytest.mark.two_threads``; both skip with the reason on a single core.
+TWO_THREADS_REASON = (
+    f"a 1-vs-2-thread test needs 2 cores and 2 numba threads; this machine has "
+    f"{os.cpu_count()} cores and NUMBA_NUM_THREADS={numba.config.NUMBA_NUM_THREADS}"
+)
+two_threads = pytest.mark.skipif(N_THREADS < 2, reason=TWO_THREADS_REASON)
+
+
+def pytest_configure(config):
+    config.addinivalue_line(
+        "markers", "two_threads: a 1-vs-2-thread test; skipped unless 2 threads can run"
+    )
+
+
+def pytest_runtest_setup(item):
+    if item.get_closest_marker("two_threads") is not None and N_THREADS < 2:
+        pytest.skip(TWO_THREADS_REASON)
+
+
+def relative_error(actual, expected):
+    """``||actual - expected|| / ||expected||`` (2-norm; Frobenius for sparse matrices).
+
+    Round-off agreements in the tests are ``relative_error(a, b) <= k * EPS`` with a
+    modest ``k``: a wrong entry anywhere moves the norm far more than that.
+    """
+    import scipy.sparse as sp
+
+    if sp.issparse(actual) or sp.issparse(expected):
+        diff = sp.csr_matrix(actual) - sp.csr_matrix(expected)
+        num = np.sqrt((abs(diff).power(2)).sum())
+        den = np.sqrt((abs(sp.csr_matrix(expected)).power(2)).sum())
+    else:
+        a, b = np.asarray(actual, dtype=float), np.asarray(expected, dtype=float)
+        if a.shape != b.shape:
+            raise AssertionError(f"shapes differ: {a.shape} and {b.shape}")
+        num, den = np.linalg.norm(a - b), np.linalg.norm(b)
+    if den == 0:
+        return float(num)
+    return float(num / den)
 
 
 def jittered_mesh(n, seed, jitter=0.3, shuffle=True):
