@@ -36,6 +36,7 @@ import hatkernels
 from hatkernels import StiffnessAssembler, assemble_mass, assemble_stiffness, threads
 from hatkernels.mesh import Mesh, rectangle
 from hatkernels.perf import PeakMemory
+from hatkernels.traffic import assembly_floors as floors
 
 
 def fresh(mesh):
@@ -47,22 +48,6 @@ def rounds(config, mesh):
     if size_mode(config) == "quick":
         return 3
     return 5 if mesh.n_triangles <= 2_000_000 else 3
-
-
-def floors(mesh, plan):
-    """Least bytes moved (read the mesh, write the result) and the csr numeric phase's traffic."""
-    n, m, nnz = mesh.n_points, mesh.n_triangles, plan.nnz
-    index = plan.indices.dtype.itemsize
-    mesh_bytes = mesh.triangles.nbytes + mesh.points.nbytes
-    return {
-        # a first call writes the whole matrix: data, indices, indptr
-        "first": mesh_bytes + (8 + index) * nnz + index * (n + 1),
-        # re-assembly writes the values only
-        "numeric": mesh_bytes + 8 * nnz,
-        # the csr numeric phase as written: element values (48 B per triangle) out
-        # and back, incidences and slots (3 + 3 indices per corner), output data
-        "csr_data": mesh_bytes + m * (48 + 48 + 6 * 3 * index) + 8 * nnz,
-    }
 
 
 def _stiffness_case(strategy, mesh, assembler):
