@@ -215,6 +215,7 @@ class GeometricMultigrid(Preconditioner):
     kind = "geometric multigrid on nested refinements (matrix-free)"
     needs_matrix = False
     prefers_matrix_free = True
+    needs_mesh = True
 
     @classmethod
     def from_context(cls, A, context, **options):

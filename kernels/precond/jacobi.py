@@ -38,6 +38,7 @@ class Jacobi(Preconditioner):
     """
 
     name = "jacobi"
+    is_diagonal = True
     kind = "diagonal (Jacobi) scaling"
 
     def __init__(self, A):

@@ -11,11 +11,15 @@ other layer has to know it by name.  :func:`make_preconditioner` looks the
 name up, checks the options against the factory's keyword parameters, times
 the setup and returns the operator.
 
-What a factory can work with is said by two attributes (on the class or
-function; both default to the common case): ``needs_matrix`` (True: ``A``
-must be an assembled sparse matrix; False: any operator will do) and
-``prefers_matrix_free`` (True: a driver that can choose should hand it a
-matrix-free operator).  :func:`capabilities` reads them.
+What a factory can work with and what it builds is said by attributes on the
+class or function, each defaulting to the common case: ``needs_matrix``
+(True: ``A`` must be an assembled sparse matrix; False: any operator will
+do), ``prefers_matrix_free`` (a driver that can choose should hand it a
+matrix-free operator), ``needs_mesh`` (it needs the context's mesh, so it
+cannot act on a bare block of rows), ``is_identity`` and ``is_diagonal``
+(what it builds is the identity, or a diagonal that CG can fuse into its
+vector update).  :func:`capabilities` reads them, so that callers decide by
+what a preconditioner is, never by its name.
 """
 
 import dataclasses
@@ -73,10 +77,13 @@ class PreconditionerContext:
 
 @dataclasses.dataclass(frozen=True)
 class Capabilities:
-    """What a registered preconditioner works with (see the module notes)."""
+    """What a registered preconditioner works with and builds (see the module notes)."""
 
     needs_matrix: bool = True
     prefers_matrix_free: bool = False
+    needs_mesh: bool = False
+    is_identity: bool = False
+    is_diagonal: bool = False
 
 
 class Preconditioner(LinearOperator):
@@ -91,6 +98,8 @@ class Preconditioner(LinearOperator):
     kind = "?"
     needs_matrix = True
     prefers_matrix_free = False
+    needs_mesh = False
+    is_diagonal = False
 
     def __init__(self, n):
         super().__init__(dtype=np.dtype(np.float64), shape=(n, n))
@@ -261,11 +270,12 @@ def capabilities(name):
     """The :class:`Capabilities` of the registered preconditioner ``name``.
 
     >>> capabilities("jacobi")
-    Capabilities(needs_matrix=True, prefers_matrix_free=False)
+    Capabilities(needs_matrix=True, prefers_matrix_free=False, needs_mesh=False, \
+is_identity=False, is_diagonal=True)
     """
     factory = _factory(name)
-    return Capabilities(bool(getattr(factory, "needs_matrix", True)),
-                        bool(getattr(factory, "prefers_matrix_free", False)))
+    return Capabilities(*(getattr(factory, f.name, f.default) is True
+                          for f in dataclasses.fields(Capabilities)))
 
 
 def make_preconditioner(A, name, *, context=None, **options):
