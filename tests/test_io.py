@@ -189,27 +189,60 @@ def test_output_directory_file_in_the_way(tmp_path):
         kio.check_output_directory(tmp_path / "f", force=True)
 
 
+def test_writers_leave_their_inputs_unchanged(tmp_path, mesh):
+    # inputs are never modified (the project's rule): arrays and metadata compared
+    # with copies taken before the call
+    u = np.sin(mesh.points[:, 0])
+    q = np.arange(mesh.n_triangles, dtype=np.float32)  # converted on the way, not in place
+    meta = {"values": [1.5, 2], "units": {"length": "m"}}
+    points, cells = mesh.points.copy(), mesh.triangles.copy()
+    before = (u.copy(), q.copy(), json.loads(json.dumps(meta)))
+    kio.write_solution(tmp_path / "s.npz", mesh, {"u": u}, meta, cell_data={"q": q})
+    kio.write_json(tmp_path / "m.json", meta)
+    if kio.meshio_available():
+        kio.write_vtu(tmp_path / "s.vtu", mesh, {"u": u}, {"q": q})
+    assert np.array_equal(u, before[0]) and np.array_equal(q, before[1]) and q.dtype == np.float32
+    assert meta == before[2]
+    assert np.array_equal(mesh.points, points) and np.array_equal(mesh.triangles, cells)
+
+
+def test_without_meshio_vtu_is_refused_and_npz_still_works(tmp_path, mesh, monkeypatch):
+    monkeypatch.setattr(kio, "meshio_available", lambda: False)
+    with pytest.raises(InputError, match=r"writing .vtu needs meshio; install the io extra"):
+        kio.write_vtu(tmp_path / "s.vtu", mesh, {"u": np.zeros(mesh.n_points)})
+    (tmp_path / "m.vtu").write_text("<VTKFile/>")
+    with pytest.raises(InputError, match=r"m.vtu: only .npz meshes can be read without meshio"):
+        kio.read_mesh(tmp_path / "m.vtu")
+    assert _listing(tmp_path) == ["m.vtu"]
+    kio.write_solution(tmp_path / "s.npz", mesh, {"u": np.zeros(mesh.n_points)})
+    assert np.array_equal(kio.read_mesh(tmp_path / "s.npz").triangles, mesh.triangles)
+
+
 # -- meshio -----------------------------------------------------------------------
 
-meshio = pytest.importorskip("meshio")
+
+@pytest.fixture
+def meshio():
+    """The meshio module; only the tests that use it are skipped without it."""
+    return pytest.importorskip("meshio", reason="meshio (the io extra) is not installed")
 
 
-def test_vtu_round_trip_through_meshio(tmp_path, mesh):
+def test_vtu_round_trip_through_meshio(tmp_path, mesh, meshio):
     u = mesh.points[:, 0] * 2 - mesh.points[:, 1]
     q = np.linspace(0, 1, mesh.n_triangles)
     kio.write_vtu(tmp_path / "s.vtu", mesh, {"u": u}, {"q": q})
     back = meshio.read(tmp_path / "s.vtu")
     assert np.array_equal(back.points[:, :2], mesh.points)
     assert np.array_equal(back.cells_dict["triangle"], mesh.triangles)
-    assert np.allclose(back.point_data["u"], u, rtol=0, atol=0)
-    assert np.allclose(back.cell_data["q"][0], q, rtol=0, atol=0)
+    assert np.array_equal(back.point_data["u"], u)  # bit for bit
+    assert np.array_equal(back.cell_data["q"][0], q)
     # and our reader takes the meshio file as a mesh
     m = kio.read_mesh(tmp_path / "s.vtu")
     assert np.array_equal(m.triangles, mesh.triangles)
     assert _listing(tmp_path) == ["s.vtu"]
 
 
-def test_meshio_mesh_with_lines_and_vertices(tmp_path, mesh):
+def test_meshio_mesh_with_lines_and_vertices(tmp_path, mesh, meshio):
     edges = mesh.boundary_edges()
     points = np.column_stack([mesh.points, np.full(mesh.n_points, 0.5)])  # constant z
     m = meshio.Mesh(points, [("vertex", np.array([[0]])), ("line", edges),
@@ -219,7 +252,7 @@ def test_meshio_mesh_with_lines_and_vertices(tmp_path, mesh):
     assert np.array_equal(back.triangles, mesh.triangles)
 
 
-def test_meshio_errors(tmp_path, mesh):
+def test_meshio_errors(tmp_path, mesh, meshio):
     (tmp_path / "x.msh").write_text("this is no mesh")
     with pytest.raises(InputError, match="x.msh: meshio cannot read it"):
         kio.read_mesh(tmp_path / "x.msh")
