@@ -217,8 +217,8 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
     ``reductions`` communicate.
     """
     n = b.shape[0]
-    red = reductions
-    bnorm = math.sqrt(red.sum(_k.dot(b, b)))
+    total = reductions.sum  # the global sum of local parts (one communication per call)
+    bnorm = math.sqrt(total(_k.dot(b, b)))
     if bnorm == 0.0:
         # scipy's convention: the zero right-hand side has the zero solution.
         return CGResult(np.zeros(n), 0, 0, np.zeros(1), atol, "zero right-hand side")
@@ -236,7 +236,7 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
     # all, and a diagonal is applied inside the fused vector update.
     identity = M is None or getattr(M, "is_identity", False) is True
     dinv = None if identity else getattr(M, "inverse_diagonal", None)
-    fuse = red.fuse_rz and not identity
+    fuse = reductions.fuse_rz and not identity
     z = r if identity else np.empty(n)
 
     def precondition():
@@ -248,16 +248,16 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
         return _k.dot(r, z)
 
     if fuse:
-        rr, rz = red.sum(_k.dot(r, r), precondition())
+        rr, rz = total(_k.dot(r, r), precondition())
     else:
-        rr = red.sum(_k.dot(r, r))
+        rr = total(_k.dot(r, r))
     history = [math.sqrt(rr)]
     if history[0] <= tol:
         return CGResult(x, 0, 0, np.array(history), tol, "initial guess meets the tolerance")
     if identity:
         rz = rr
     elif not fuse:
-        rz = red.sum(precondition())
+        rz = total(precondition())
 
     iteration = 0
     restarts = 0
@@ -273,7 +273,7 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
         po[:] = z
         q = np.empty(n)
         while iteration < maxiter:
-            pq = red.sum(product.matvec_dot(p, q))
+            pq = total(product.matvec_dot(p, q))
             if not (pq > 0.0 and math.isfinite(pq)):
                 info = BREAKDOWN_MATRIX
                 message = (f"breakdown in iteration {iteration + 1}: p.Ap = {pq:.3e} <= 0 "
@@ -283,12 +283,12 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
             alpha = rz / pq
             alphas.append(alpha)
             if dinv is not None:
-                rr, rz_new = red.sum(*_k.cg_step_jacobi(alpha, po, q, dinv, x, r, z))
+                rr, rz_new = total(*_k.cg_step_jacobi(alpha, po, q, dinv, x, r, z))
             elif fuse:
                 rr_local = _k.cg_step(alpha, po, q, x, r)
-                rr, rz_new = red.sum(rr_local, precondition())
+                rr, rz_new = total(rr_local, precondition())
             else:
-                rr = red.sum(_k.cg_step(alpha, po, q, x, r))
+                rr = total(_k.cg_step(alpha, po, q, x, r))
             iteration += 1
             if callback is not None:
                 callback(x)
@@ -296,7 +296,7 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
             restart = False
             if rnorm <= tol:
                 product.residual(x, b, r)
-                rr = red.sum(_k.dot(r, r))
+                rr = total(_k.dot(r, r))
                 rnorm = math.sqrt(rr)
                 if rnorm <= tol:
                     history.append(rnorm)
@@ -314,7 +314,7 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
             if identity:
                 rz_new = rr
             elif restart or (dinv is None and not fuse):
-                rz_new = red.sum(precondition())
+                rz_new = total(precondition())
             if not (rz_new > 0.0 and math.isfinite(rz_new)):
                 info, message = _breakdown_preconditioner(rz_new, iteration)
                 break
