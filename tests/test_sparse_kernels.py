@@ -1,9 +1,9 @@
 """Parallel sparse kernels against scipy/numpy, and bit-identity across thread counts."""
 
-import numba
 import numpy as np
 import pytest
 import scipy.sparse as sp
+from conftest import EPS, two_threads
 from hypothesis import given
 from hypothesis import strategies as st
 from pyamg.gallery import poisson
@@ -12,10 +12,6 @@ from hatkernels._jit import sparse as K
 from hatkernels._jit import threads
 from hatkernels.errors import InputError
 from hatkernels.sparse import as_csr, as_vector, csr_bytes, dot, spmv
-
-EPS = np.finfo(np.float64).eps
-two_threads = pytest.mark.skipif(numba.config.NUMBA_NUM_THREADS < 2,
-                                 reason="needs 2 numba threads")
 
 
 def with_index_dtype(A, dtype):
@@ -153,11 +149,29 @@ def test_fused_vector_kernels_match_numpy():
     assert np.allclose(x4, x + d, rtol=4 * EPS, atol=4 * EPS)
 
 
+def test_chebyshev_start_matches_numpy():
+    # the numpy expressions a user would write, in the kernel's order of operations:
+    # equal bits expected (common practice, no source)
+    rng = np.random.default_rng(6)
+    n = 2 * 4096 + 3
+    b, r, d, x = (rng.standard_normal(n) for _ in range(4))
+    dinv = rng.uniform(0.5, 2.0, n)
+    c = 0.7
+    r1, d1, x1 = r.copy(), d.copy(), np.full(n, np.nan)  # x ignored with a zero guess
+    K.chebyshev_start(c, dinv, b, r1, d1, x1, True)
+    assert np.array_equal(r1, b) and np.array_equal(d1, c * dinv * b) and np.array_equal(x1, d1)
+    r2, d2, x2 = r.copy(), d.copy(), x.copy()
+    K.chebyshev_start(c, dinv, b, r2, d2, x2, False)
+    assert np.array_equal(r2, r)  # r is only read
+    assert np.array_equal(d2, c * dinv * r) and np.array_equal(x2, x + c * dinv * r)
+
+
 @two_threads
 def test_one_and_two_threads_give_identical_bits():
     A = poisson((120, 120), format="csr")  # 14400 rows: several chunks per thread
     rng = np.random.default_rng(7)
-    x, y = rng.standard_normal(A.shape[0]), rng.standard_normal(A.shape[0])
+    x, y, w = (rng.standard_normal(A.shape[0]) for _ in range(3))
+    dinv = rng.uniform(0.5, 2.0, A.shape[0])
     out = {}
     for nt in (1, 2):
         with threads(nt):
@@ -167,15 +181,34 @@ def test_one_and_two_threads_give_identical_bits():
             pq = K.spmv_dot(A.indptr, A.indices, A.data, x, q2)
             xx, rr_ = x.copy(), y.copy()
             rr = K.cg_step(0.3, y, q, xx, rr_)
-            out[nt] = (q, pq, K.dot(x, y), rr, xx, rr_)
-    for a, b in zip(out[1], out[2], strict=True):
-        assert np.array_equal(a, b)
+            added = w.copy()
+            K.spmv_add(A.indptr, A.indices, A.data, x, added)
+            res = np.empty_like(x)
+            K.residual(A.indptr, A.indices, A.data, x, w, res)
+            xj, rj, zj = x.copy(), y.copy(), np.empty_like(x)
+            rrj, rzj = K.cg_step_jacobi(0.3, y, q, dinv, xj, rj, zj)
+            p = w.copy()
+            K.xpby(x, -1.25, p)
+            jac = np.empty_like(x)
+            K.jacobi_apply(dinv, y, jac)
+            starts = []
+            for zero_guess in (True, False):
+                rs, ds, xs = y.copy(), w.copy(), x.copy()
+                K.chebyshev_start(0.7, dinv, w, rs, ds, xs, zero_guess)
+                starts += [rs, ds, xs]
+            rc, dc, xc = y.copy(), w.copy(), x.copy()
+            K.chebyshev_step(q, dinv, 0.5, 0.25, rc, dc, xc)
+            out[nt] = (q, pq, K.dot(x, y), rr, xx, rr_, added, res, xj, rj, zj, rrj, rzj, p,
+                       jac, *starts, rc, dc, xc)
+    for k, (a, b) in enumerate(zip(out[1], out[2], strict=True)):
+        assert np.array_equal(a, b), k
 
 
 def test_public_spmv_and_dot_wrappers():
     A = poisson((7, 5), format="coo")  # another format: converted once
     x = np.arange(35.0)
-    assert np.allclose(spmv(A, x), A.tocsr() @ x)  # reference library: scipy
+    # reference library: scipy, to the round-off of a product (Higham 2002, section 3.5)
+    assert np.all(np.abs(spmv(A, x) - A.tocsr() @ x) <= 8 * EPS * (abs(A.tocsr()) @ np.abs(x)))
     out = np.empty(35)
     assert spmv(A, x, out=out) is out
     assert dot(x, x) == pytest.approx(float(x @ x), rel=1e-15)
