@@ -140,6 +140,7 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
         info=outcome.info,
         message=outcome.message,
         tolerance=outcome.tolerance,
+        condition_estimate=outcome.condition_estimate,
         nnz=int(A.nnz) if hasattr(A, "nnz") else 0,
         matrix_free=not hasattr(A, "indptr"),
     )

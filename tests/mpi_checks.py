@@ -268,7 +268,7 @@ def two_level_apply_equals_dense(comm):
     position[system.free] = np.arange(len(system.free))
     mine = position[local.free_points[: local.n_unknowns]]
     z = np.empty(local.n_unknowns)
-    M.apply(np.ascontiguousarray(r_all[mine]), z)
+    M.apply_into(np.ascontiguousarray(r_all[mine]), z)
     # reference: the dense formula M = blockdiag(A_qq^-1) + R^T (R A R^T)^-1 R (numpy)
     _, M2 = dense_preconditioners(system.A.toarray(), split.owner[system.free], size)
     zref = M2 @ r_all

@@ -42,7 +42,7 @@ from hatkernels._cg import as_preconditioner
 from hatkernels._jit import sparse as _k
 from hatkernels.distributed.launch import mpi
 from hatkernels.errors import InputError
-from hatkernels.precond import make_preconditioner
+from hatkernels.precond import PRECONDITIONERS, capabilities, make_preconditioner
 
 __all__ = ["COARSE_SPACES", "BlockJacobi", "TwoLevel", "coarse_row", "galerkin_coarse",
            "make_distributed_preconditioner"]
@@ -50,33 +50,33 @@ __all__ = ["COARSE_SPACES", "BlockJacobi", "TwoLevel", "coarse_row", "galerkin_c
 #: Values of ``coarse``: no coarse space, or one constant per subdomain.
 COARSE_SPACES = (None, "constants")
 
-#: Registry preconditioners that cannot act on a subdomain block.
-_NOT_LOCAL = {"gmg": "it needs the mesh's refinement history, which a subdomain does not have"}
-
-
 class BlockJacobi:
     """``z = M_q r`` on each rank's owned block: a serial preconditioner, no communication.
 
     An object of the preconditioner protocol of :mod:`hatkernels.krylov`:
-    ``apply_into(r, z)`` on this rank's owned entries, ``is_identity`` for
-    ``none``, ``inverse_diagonal`` for ``jacobi``, ``description``,
+    ``apply_into(r, z)`` on this rank's owned entries, ``is_identity`` and
+    ``inverse_diagonal`` when the serial preconditioner is the identity or a
+    diagonal (:func:`hatkernels.precond.capabilities`), ``description``,
     ``describe()`` and ``nbytes`` (this rank's block).
     """
 
     communicates = False
 
     def __init__(self, A_oo, name="amg", **options):
-        if name in _NOT_LOCAL:
+        can = capabilities(name)  # also refuses an unknown name, with the valid ones
+        if can.needs_mesh:
+            usable = [n for n in PRECONDITIONERS if not capabilities(n).needs_mesh]
             raise InputError(f"preconditioner {name!r} is not available in the distributed "
-                             f"solve: {_NOT_LOCAL[name]}; use 'amg' or 'ic0'")
+                             f"solve: it needs the mesh (its refinement history), which a "
+                             f"subdomain's block of rows does not have; use one of {usable}")
         self.name = name
         self.n = A_oo.shape[0]
         self.local = None
         self._op = None
-        # The shortcuts CG takes follow from the name, never from one rank's block, so
-        # that every rank makes the same calls (and the same reductions).
-        self.is_identity = name == "none"
-        self.inverse_diagonal = np.empty(0) if name == "jacobi" else None
+        # The shortcuts CG takes follow from what the preconditioner is, never from one
+        # rank's block, so that every rank makes the same calls (and the same reductions).
+        self.is_identity = can.is_identity
+        self.inverse_diagonal = np.empty(0) if can.is_diagonal else None
         if self.n == 0:  # a rank whose owned points are all prescribed
             self.description = f"{name} on an empty block"
             return
@@ -84,11 +84,12 @@ class BlockJacobi:
         self.local = M
         self.description = M.description
         if self.is_identity and getattr(M, "is_identity", False) is not True:
-            raise RuntimeError("the 'none' preconditioner is not the identity")
+            raise RuntimeError(f"the {name!r} preconditioner says it is the identity but is not")
         if self.inverse_diagonal is not None:
             dinv = getattr(M, "inverse_diagonal", None)
             if not (isinstance(dinv, np.ndarray) and dinv.shape == (self.n,)):
-                raise RuntimeError("the 'jacobi' preconditioner has no inverse diagonal")
+                raise RuntimeError(f"the {name!r} preconditioner says it is a diagonal but "
+                                   f"has no inverse diagonal")
             self.inverse_diagonal = np.ascontiguousarray(dinv, dtype=np.float64)
         elif not self.is_identity:
             self._op = as_preconditioner(M, self.n)
@@ -114,12 +115,6 @@ class BlockJacobi:
             _k.jacobi_apply(self.inverse_diagonal, r, z)
         else:
             self._op.apply_into(r, z)
-
-    def apply(self, r, z):
-        """``apply_into(r, z)``, then return this rank's part of ``r . z`` (earlier protocol)."""
-        self.apply_into(r, z)
-        return _k.dot(r, z)
-
 
 def coarse_row(A_oo, A_og, ghost_owner, rank):
     """This rank's row of ``A_c = R A R^T`` for the one-constant-per-subdomain space.
@@ -248,12 +243,6 @@ class TwoLevel:
         s.coarse_bytes += 2 * self._send.nbytes
         if self.n:
             z += self._coef[0]
-
-    def apply(self, r, z):
-        """``apply_into(r, z)``, then return this rank's part of ``r . z`` (earlier protocol)."""
-        self.apply_into(r, z)
-        return _k.dot(r, z)
-
 
 def make_distributed_preconditioner(matrix, name, coarse, comm, stats, **options):
     """The block preconditioner for ``matrix`` (a DistributedMatrix), with the coarse space."""

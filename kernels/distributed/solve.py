@@ -204,6 +204,7 @@ def solve_poisson(
     variant=None,
     progress=None,
     monitor=None,
+    zero_mean=False,
     coarse=None,
     partition=None,
     gather=True,
@@ -229,7 +230,7 @@ def solve_poisson(
     rtol, atol, maxiter, check
         As in the serial solve; the stopping rule is on the global residual.
     quadrature : int
-    matrix_free, variant
+    matrix_free, variant, zero_mean
         Not available distributed (an error if set).
     progress : callable, optional
         ``progress(phase)`` on every rank.
@@ -265,6 +266,9 @@ def solve_poisson(
     """
     _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, partition,
                    monitor)
+    if zero_mean is not False:
+        raise InputError("zero_mean=True (a pure Neumann part) is not available in the "
+                         "distributed solve yet; solve it serially, or hold a point")
     comm = as_comm(comm)
     n_threads, ranks_on_node, how = default_threads(comm, threads)
     dcomm = comm.Dup()  # the solver's messages never meet the caller's

@@ -140,8 +140,11 @@ class IncompleteCholesky(Preconditioner):
 
     def _apply(self, r):
         out = np.empty_like(r)
-        _k.ic0_solve(self._indptr, self._indices, self._u, self._dinv, r, out)
+        self.apply_into(r, out)
         return out
+
+    def apply_into(self, r, z):
+        _k.ic0_solve(self._indptr, self._indices, self._u, self._dinv, r, z)
 
 
 def ic0_reference(A, modified=False):

@@ -23,6 +23,9 @@ class Identity(Preconditioner):
     def _apply(self, r):
         return r.copy()
 
+    def apply_into(self, r, z):
+        z[:] = r
+
 
 class Jacobi(Preconditioner):
     """``M = diag(A)^{-1}``.
@@ -48,8 +51,11 @@ class Jacobi(Preconditioner):
 
     def _apply(self, r):
         out = np.empty_like(r)
-        _k.jacobi_apply(self.inverse_diagonal, r, out)
+        self.apply_into(r, out)
         return out
+
+    def apply_into(self, r, z):
+        _k.jacobi_apply(self.inverse_diagonal, r, z)
 
     @property
     def memory_bytes(self):

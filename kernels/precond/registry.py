@@ -87,11 +87,14 @@ class Capabilities:
 
 
 class Preconditioner(LinearOperator):
-    """Base of the built-in preconditioners: a float64 symmetric LinearOperator.
+    """Base of the built-in preconditioners: a float64 symmetric LinearOperator that
+    follows the preconditioner protocol of :mod:`hatkernels.krylov` (``apply_into``,
+    ``description``/``describe()``, ``nbytes``).
 
     Subclasses set ``name`` and ``kind`` (what it is, in words), implement
-    ``_apply(r)`` on a contiguous float64 vector, and may override
-    ``memory_bytes`` and ``_details()`` (what it costs, in words).
+    ``_apply(r)`` on a contiguous float64 vector (and ``apply_into`` when they
+    can write into a given vector), and may override ``memory_bytes`` and
+    ``_details()`` (what it costs, in words).
     """
 
     name = "?"
@@ -118,6 +121,17 @@ class Preconditioner(LinearOperator):
 
     def _apply(self, r):  # pragma: no cover - every subclass overrides it
         raise NotImplementedError
+
+    def apply_into(self, r, z):
+        """``z = M r`` (the protocol of :mod:`hatkernels.krylov`); ``r`` is not modified.
+
+        Subclasses that can write into ``z`` directly override it to allocate nothing.
+        """
+        z[:] = self._apply(r)
+
+    def describe(self):
+        """One line: what it is and what it costs (:attr:`description`)."""
+        return self.description
 
     @property
     def memory_bytes(self):
