@@ -154,27 +154,6 @@ def _operator(A):
     return _OperatorProduct(A, A.shape[0]), A.shape[0]
 
 
-def _operator(A):
-    if isinstance(A, np.ndarray) and A.ndim == 2:
-        A = sp.csr_array(A)
-    if sp.issparse(A):
-        C = as_csr(A, "A")
-        return _CSRProduct(C), C.shape[0]
-    if not isinstance(A, LinearOperator):
-        try:
-            A = aslinearoperator(A)
-        except TypeError as exc:
-            raise InputError(f"A must be a sparse matrix, an array or a LinearOperator ({exc})") \
-                from None
-    if len(A.shape) != 2 or A.shape[0] != A.shape[1] or A.shape[0] == 0:
-        raise InputError(f"A must be square and non-empty, got shape {A.shape}")
-    if A.dtype is not None and np.issubdtype(A.dtype, np.complexfloating):
-        raise InputError(f"A is complex ({A.dtype}); only real operators are supported")
-    if callable(getattr(A, "matvec_into", None)):
-        return _InPlaceProduct(A), A.shape[0]
-    return _OperatorProduct(A, A.shape[0]), A.shape[0]
-
-
 def _check_scalars(rtol, atol, maxiter, n, callback):
     """``(rtol, atol, maxiter)`` checked, ``maxiter`` defaulting to ``10 n`` as scipy's."""
     rtol = real_option(rtol, "rtol", minimum=0.0)
