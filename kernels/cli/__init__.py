@@ -151,12 +151,17 @@ def _add_solve(sub, common, names):
             help="relative residual tolerance (default 1e-10)")
     _number(p, "--maxiter", int, minimum=1, metavar="N",
             help="at most N iterations (default 10 x unknowns); not converging exits 1")
-    p.add_argument("--out", default="hatkernels-out", metavar="DIR",
-                   help="output directory, written whole or not at all (default hatkernels-out)")
-    p.add_argument("--force", action="store_true",
-                   help="replace an existing output directory written by hatkernels")
+    _output(p, "hatkernels-out")
     p.set_defaults(func=solve.run)
     return p
+
+
+def _output(parser, default):
+    """--out and --force, the same for every command that writes a directory."""
+    parser.add_argument("--out", default=default, metavar="DIR",
+                        help=f"output directory, written whole or not at all (default {default})")
+    parser.add_argument("--force", action="store_true",
+                        help="replace an existing output directory written by hatkernels")
 
 
 def _add_verify(sub, common, names):
@@ -175,10 +180,7 @@ def _add_verify(sub, common, names):
             help="cells per side of the coarsest mesh (default 8)")
     v.add_argument("--preconditioner", choices=names, default="amg")
     _number(v, "--rtol", float, positive=True, default=1e-10)
-    v.add_argument("--out", default="hatkernels-verify", metavar="DIR",
-                   help="output directory (default hatkernels-verify)")
-    v.add_argument("--force", action="store_true",
-                   help="replace an existing output directory written by hatkernels")
+    _output(v, "hatkernels-verify")
     v.set_defaults(func=verify.run)
     return v
 
