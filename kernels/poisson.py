@@ -17,6 +17,7 @@ import time
 import numpy as np
 
 from hatkernels.discretise import discretise
+from hatkernels.memory import check_solve_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.precond import capabilities
 from hatkernels.problem import PoissonProblem
@@ -83,6 +84,7 @@ def solve_poisson(
     progress=None,
     monitor=None,
     zero_mean=False,
+    memory_check=True,
     **preconditioner_options,
 ):
     """Solve ``-div(kappa grad u) + c u = f`` on a mesh in one call.
@@ -108,6 +110,10 @@ def solve_poisson(
         "assemble", "solve"), for reporting.
     monitor : callable, optional
         ``monitor(iteration, residual_norm)`` after every CG iteration.
+    memory_check : bool
+        Before allocating, estimate the solve's peak memory from measured
+        per-point figures and refuse (InputError, with the estimate and the
+        memory available) when it does not fit; False skips the check.
 
     Returns
     -------
@@ -131,6 +137,8 @@ def solve_poisson(
     problem = PoissonProblem(mesh, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
                              coefficient=coefficient, reaction=reaction, neumann=neumann,
                              robin=robin, quadrature=quadrature, zero_mean=zero_mean)
+    if memory_check:
+        check_solve_memory(mesh, preconditioner)
     checked = time.perf_counter() - t0
     if matrix_free is None:
         matrix_free = matrix_free_default(preconditioner, problem)

@@ -36,6 +36,7 @@ from hatkernels.distributed.partition import METHODS, Partition, partition
 from hatkernels.distributed.precond import COARSE_SPACES, make_distributed_preconditioner
 from hatkernels.distributed.subdomain import local_coefficient, subdomain
 from hatkernels.errors import InputError
+from hatkernels.memory import check_solve_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.poisson import PoissonSolution
@@ -205,6 +206,7 @@ def solve_poisson(
     progress=None,
     monitor=None,
     zero_mean=False,
+    memory_check=True,
     coarse=None,
     partition=None,
     gather=True,
@@ -232,6 +234,9 @@ def solve_poisson(
     quadrature : int
     matrix_free, variant, zero_mean
         Not available distributed (an error if set).
+    memory_check : bool
+        As serial; each rank's share of the points is checked against what
+        its node has available (ranks on one node share it: checked roughly).
     progress : callable, optional
         ``progress(phase)`` on every rank.
     monitor : callable, optional
@@ -271,6 +276,9 @@ def solve_poisson(
                          "distributed solve yet; solve it serially, or hold a point")
     comm = as_comm(comm)
     n_threads, ranks_on_node, how = default_threads(comm, threads)
+    if memory_check:
+        _together(comm, "the memory check", check_solve_memory, mesh, preconditioner,
+                  share=ranks_on_node / comm.Get_size())
     dcomm = comm.Dup()  # the solver's messages never meet the caller's
     try:
         with _threads(n_threads):

@@ -259,6 +259,9 @@ class SmoothedAggregationAMG(_AMG):
     """
 
     name = "amg-sa"
+    #: Peak bytes per point of a whole solve with it, beyond the mesh (measured at
+    #: about 1e6 unknowns, docs/performance.md; hatkernels.memory uses it).
+    solve_bytes_per_point = 860
     kind = "smoothed-aggregation AMG (pyamg)"
     solver = staticmethod(pyamg.smoothed_aggregation_solver)
 
@@ -296,6 +299,9 @@ class RugeStubenAMG(_AMG):
     """
 
     name = "amg-rs"
+    #: Peak bytes per point of a whole solve with it, beyond the mesh (measured at
+    #: about 1e6 unknowns, docs/performance.md; hatkernels.memory uses it).
+    solve_bytes_per_point = 710
     kind = "classical Ruge-Stuben AMG (pyamg)"
     solver = staticmethod(pyamg.ruge_stuben_solver)
 

@@ -207,6 +207,9 @@ class ClassicalAMG(_AMG):
     """
 
     name = "amg-native"
+    #: Peak bytes per point of a whole solve with it, beyond the mesh (measured at
+    #: about 1e6 unknowns, docs/performance.md; hatkernels.memory uses it).
+    solve_bytes_per_point = 640
     kind = "classical Ruge-Stuben AMG (own parallel setup)"
 
     def __init__(self, A, *, cycle="V", degree=2, lower=0.3, estimate=False, theta=0.25,

@@ -41,6 +41,9 @@ class SparseDirect(Preconditioner):
     """
 
     name = "direct"
+    #: Peak bytes per point of a whole solve with it, beyond the mesh (measured at
+    #: about 1e6 unknowns, docs/performance.md; hatkernels.memory uses it).
+    solve_bytes_per_point = 2900
     kind = "sparse LU factorisation (SuperLU)"
 
     def __init__(self, A, *, max_unknowns=DIRECT_LIMIT, permc_spec="MMD_AT_PLUS_A"):

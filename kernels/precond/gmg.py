@@ -212,6 +212,9 @@ class GeometricMultigrid(Preconditioner):
     """
 
     name = "gmg"
+    #: Peak bytes per point of a whole solve with it, beyond the mesh (measured at
+    #: about 1e6 unknowns, docs/performance.md; hatkernels.memory uses it).
+    solve_bytes_per_point = 160
     kind = "geometric multigrid on nested refinements (matrix-free)"
     needs_matrix = False
     prefers_matrix_free = True

@@ -66,6 +66,9 @@ class IncompleteCholesky(Preconditioner):
     """
 
     name = "ic0"
+    #: Peak bytes per point of a whole solve with it, beyond the mesh (measured at
+    #: about 1e6 unknowns, docs/performance.md; hatkernels.memory uses it).
+    solve_bytes_per_point = 500
 
     def __init__(self, A, *, modified=False, shift=0.0):
         C = require_csr(A, self.name)

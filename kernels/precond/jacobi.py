@@ -12,6 +12,9 @@ class Identity(Preconditioner):
     """``M = I``: plain conjugate gradients.  Setup and apply cost nothing but a copy."""
 
     name = "none"
+    #: Peak bytes per point of a whole solve with it, beyond the mesh (measured at
+    #: about 1e6 unknowns, docs/performance.md; hatkernels.memory uses it).
+    solve_bytes_per_point = 380
     kind = "identity (no preconditioning)"
     #: Tells :func:`hatkernels.krylov.cg` to skip the apply (plain CG).
     is_identity = True
@@ -41,6 +44,9 @@ class Jacobi(Preconditioner):
     """
 
     name = "jacobi"
+    #: Peak bytes per point of a whole solve with it, beyond the mesh (measured at
+    #: about 1e6 unknowns, docs/performance.md; hatkernels.memory uses it).
+    solve_bytes_per_point = 400
     is_diagonal = True
     kind = "diagonal (Jacobi) scaling"
 

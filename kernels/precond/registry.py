@@ -18,7 +18,8 @@ do), ``prefers_matrix_free`` (a driver that can choose should hand it a
 matrix-free operator), ``needs_mesh`` (it needs the context's mesh, so it
 cannot act on a bare block of rows), ``is_identity`` and ``is_diagonal``
 (what it builds is the identity, or a diagonal that CG can fuse into its
-vector update).  :func:`capabilities` reads them, so that callers decide by
+vector update); ``solve_bytes_per_point`` is the measured peak of a whole
+solve with it, per point beyond the mesh (:mod:`hatkernels.memory`).  :func:`capabilities` reads them, so that callers decide by
 what a preconditioner is, never by its name.
 """
 
@@ -84,6 +85,7 @@ class Capabilities:
     needs_mesh: bool = False
     is_identity: bool = False
     is_diagonal: bool = False
+    solve_bytes_per_point: int = 0
 
 
 class Preconditioner(LinearOperator):
@@ -285,11 +287,12 @@ def capabilities(name):
 
     >>> capabilities("jacobi")
     Capabilities(needs_matrix=True, prefers_matrix_free=False, needs_mesh=False, \
-is_identity=False, is_diagonal=True)
+is_identity=False, is_diagonal=True, solve_bytes_per_point=400)
     """
     factory = _factory(name)
-    return Capabilities(*(getattr(factory, f.name, f.default) is True
-                          for f in dataclasses.fields(Capabilities)))
+    flags = [getattr(factory, f.name, f.default) is True
+             for f in dataclasses.fields(Capabilities) if f.type in (bool, "bool")]
+    return Capabilities(*flags, int(getattr(factory, "solve_bytes_per_point", 0) or 0))
 
 
 def make_preconditioner(A, name, *, context=None, **options):

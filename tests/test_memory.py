@@ -1,0 +1,58 @@
+"""The memory check before a solve: refuse with the estimate instead of dying mid-phase."""
+
+import subprocess
+import sys
+import textwrap
+
+import pytest
+
+import hatkernels
+from hatkernels import memory
+from hatkernels.mesh import rectangle
+
+
+def test_estimate_uses_the_measured_figures():
+    mesh = rectangle(100, 100)
+    caps = hatkernels.precond.capabilities
+    assert memory.solve_bytes(mesh, "amg") == mesh.n_points * caps("amg").solve_bytes_per_point
+    # a multigrid on the mesh's refinement history needs far less than an assembled AMG
+    # (docs/performance.md measured 151 against 627 bytes per point at 1e6 unknowns)
+    assert memory.solve_bytes(mesh, "gmg") < memory.solve_bytes(mesh, "amg") / 3
+    assert memory.solve_bytes(mesh, object()) == mesh.n_points * memory.UNKNOWN_BYTES_PER_POINT
+
+
+def test_available_memory_is_read():
+    have = memory.available_bytes()
+    assert have is None or have > 0
+
+
+def test_a_solve_that_does_not_fit_is_refused_before_it_starts(monkeypatch):
+    mesh = rectangle(40, 40)
+    monkeypatch.setattr(memory, "available_bytes", lambda: 100_000)
+    with pytest.raises(hatkernels.InputError,
+                       match=r"not enough memory: solving on 1,681 points with amg needs about "
+                             r"0\.0 GiB .* 0\.0 GiB are available.*memory_check=False"):
+        hatkernels.solve_poisson(mesh, 1.0)
+    assert hatkernels.solve_poisson(mesh, 1.0, memory_check=False).converged
+
+
+def test_the_address_space_limit_counts():
+    # a process limited to its current size plus 64 MiB cannot take a solve estimated at
+    # 640 bytes per point on 1e6 points: refused with the limit's room, no MemoryError
+    code = textwrap.dedent("""
+        import resource
+        import hatkernels
+        from hatkernels import memory
+        mesh = hatkernels.mesh.rectangle(999, 999)
+        size = int(open("/proc/self/statm").read().split()[0]) * 4096
+        resource.setrlimit(resource.RLIMIT_AS, (size + 64 * 2**20, resource.RLIM_INFINITY))
+        assert memory.available_bytes() <= 64 * 2**20
+        try:
+            hatkernels.solve_poisson(mesh, 1.0)
+        except hatkernels.InputError as exc:
+            print("refused:", exc)
+    """)
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         timeout=300)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.startswith("refused: not enough memory"), out.stdout
