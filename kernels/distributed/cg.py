@@ -42,7 +42,8 @@ DistributedCGResult = CGResult
 
 
 class Reducer:
-    """Global sums by ``Allreduce`` into a preallocated buffer, timed into ``stats``.
+    """Global sums (and a maximum) by ``Allreduce`` into a preallocated buffer, timed
+    into ``stats``.
 
     The reductions of the CG loop (:mod:`hatkernels._cg`); ``fuse_rz``: see there.
     """
@@ -67,6 +68,19 @@ class Reducer:
         s.reductions += 1
         s.reduction_bytes += buf.nbytes
         return float(buf[0]) if k == 1 else tuple(float(v) for v in buf)
+
+    def maximum(self, value):
+        """Global maximum of one float (one ``Allreduce``); the CG loop asks for it only
+        when it must rescale a system whose norms would leave float64's range."""
+        buf = self._buf[:1]
+        buf[0] = value
+        t0 = time.perf_counter()
+        self.comm.Allreduce(self._MPI.IN_PLACE, [buf, self._MPI.DOUBLE], op=self._MPI.MAX)
+        s = self.stats
+        s.reduction_seconds += time.perf_counter() - t0
+        s.reductions += 1
+        s.reduction_bytes += buf.nbytes
+        return float(buf[0])
 
 
 def _check_preconditioner(M):
