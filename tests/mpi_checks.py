@@ -236,7 +236,13 @@ def two_level_stays_bounded(comm):
         its = [found[P, "constants"][0] for P in range(1, comm.Get_size() + 1)]
         kap = [found[P, "constants"][1] for P in range(1, comm.Get_size() + 1)]
         top = comm.Get_size()
-        assert its[0] <= its[-1]
+        # with two parts or more the coarse space must pay for itself on this problem: a
+        # clearly smaller condition estimate than block Jacobi's and no more iterations
+        # (measured here: 41 against 66 at P = 2, 38 against 88 at P = 3)
+        for P in range(2, top + 1):
+            two, block = found[P, "constants"], found[P, None]
+            assert two[1] < 0.8 * block[1], (P, two, block)
+            assert two[0] <= block[0] + 1, (P, two, block)
         if top >= 3:
             assert its[2] <= 1.25 * its[1], its  # linear growth would be 1.5
             assert kap[2] <= 1.25 * kap[1], kap
