@@ -101,6 +101,39 @@ def _chunks(mesh, degree):
         yield sl, area[sl], x, y, w, lam
 
 
+class _RootSumOfSquares:
+    """``sqrt(sum of terms)``, each term given as ``scale**2 * ssq`` with ``ssq`` of order
+    one, accumulated without overflow or underflow (the scaled sum of LAPACK's ``dlassq``:
+    C. L. Lawson et al., Basic Linear Algebra Subprograms for Fortran Usage, 1979)."""
+
+    def __init__(self):
+        self.scale, self.ssq = 0.0, 1.0
+
+    def add(self, scale, ssq):
+        if scale == 0.0 or ssq == 0.0:
+            return
+        if scale > self.scale:
+            self.ssq = ssq + self.ssq * (self.scale / scale) ** 2
+            self.scale = scale
+        else:
+            self.ssq += ssq * (scale / self.scale) ** 2
+
+    def add_weighted(self, area, density_parts, w):
+        """Add ``area @ (sum_k c_k e_k**2) @ w`` given ``[(c_k or None, e_k), ...]``, scaled."""
+        big_e = max(float(np.abs(e).max(initial=0.0)) for _, e in density_parts)
+        big_a = float(area.max(initial=0.0))
+        if big_e == 0.0 or big_a == 0.0:
+            return
+        big_c = max((float(np.abs(c).max(initial=0.0)) for c, _ in density_parts
+                     if c is not None), default=1.0) or 1.0
+        dens = sum((1.0 if c is None else c / big_c) * (e / big_e) ** 2
+                   for c, e in density_parts)
+        self.add(float(np.sqrt(big_a * big_c)) * big_e, float((area / big_a) @ (dens @ w)))
+
+    def root(self):
+        return self.scale * float(np.sqrt(self.ssq))
+
+
 def l2_error(mesh, u, exact, *, quadrature=5):
     """``||u_h - u||_L2`` for nodal values ``u`` of the P1 function ``u_h``.
 
@@ -113,17 +146,17 @@ def l2_error(mesh, u, exact, *, quadrature=5):
     True
     """
     u = _nodal(mesh, u)
-    total = 0.0
+    total = _RootSumOfSquares()  # values near 1e200 or 1e-200 neither overflow nor vanish
     for sl, area, x, y, w, lam in _chunks(mesh, quadrature):
         uh = u[mesh.triangles[sl]] @ lam.T
         e = uh - _call(exact, x, y, "exact", sl.start)
-        total += float(area @ ((e * e) @ w))
-    return float(np.sqrt(total))
+        total.add_weighted(area, [(None, e)], w)
+    return total.root()
 
 
-def _gradient_error_sq(mesh, u, grad_exact, quadrature, coef=None):
+def _gradient_error(mesh, u, grad_exact, quadrature, coef=None):
     u = _nodal(mesh, u)
-    total = 0.0
+    total = _RootSumOfSquares()
     for sl, area, x, y, w, lam in _chunks(mesh, quadrature):
         tri = mesh.triangles[sl]
         _, G = element_gradients(mesh.points, tri)
@@ -132,20 +165,19 @@ def _gradient_error_sq(mesh, u, grad_exact, quadrature, coef=None):
         ex = gh[:, 0, None] - g[0]
         ey = gh[:, 1, None] - g[1]
         if coef is None:
-            dens = ex * ex + ey * ey
+            parts = [(None, ex), (None, ey)]
         elif coef.kind == "tensor":
             K = coef.value if coef.value.ndim == 2 else coef.value[sl]
             K = np.broadcast_to(K, (len(tri), 2, 2))
-            dens = (
-                K[:, 0, 0, None] * ex * ex
-                + 2 * K[:, 0, 1, None] * ex * ey
-                + K[:, 1, 1, None] * ey * ey
-            )
+            # e.K e = k00 ex^2 + 2 k01 ex ey + k11 ey^2, with ex ey = ((ex + ey)^2 - ex^2 - ey^2) / 2
+            k01 = K[:, 0, 1, None]
+            parts = [(K[:, 0, 0, None] - k01, ex), (K[:, 1, 1, None] - k01, ey),
+                     (np.broadcast_to(k01, ex.shape), ex + ey)]
         else:
-            kq = _coefficient_at(coef, mesh, sl, x, y, lam)
-            dens = kq * (ex * ex + ey * ey)
-        total += float(area @ (dens @ w))
-    return total
+            kq = np.broadcast_to(_coefficient_at(coef, mesh, sl, x, y, lam), ex.shape)
+            parts = [(kq, ex), (kq, ey)]
+        total.add_weighted(area, parts, w)
+    return total.root()
 
 
 def _coefficient_at(coef, mesh, sl, x, y, lam):
@@ -161,13 +193,13 @@ def _coefficient_at(coef, mesh, sl, x, y, lam):
 
 def h1_seminorm_error(mesh, u, grad_exact, *, quadrature=5):
     """``|u_h - u|_H1 = ||grad u_h - grad u||_L2``; ``grad_exact(x, y) -> (ux, uy)``."""
-    return np.sqrt(_gradient_error_sq(mesh, u, grad_exact, quadrature))
+    return _gradient_error(mesh, u, grad_exact, quadrature)
 
 
 def energy_error(mesh, u, grad_exact, coefficient=None, *, quadrature=5):
     """``(int kappa |grad(u_h - u)|^2)^(1/2)``, with a coefficient of any kind."""
     coef = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
-    return np.sqrt(_gradient_error_sq(mesh, u, grad_exact, quadrature, coef))
+    return _gradient_error(mesh, u, grad_exact, quadrature, coef)
 
 
 def observed_rates(h, errors):

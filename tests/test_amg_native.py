@@ -158,6 +158,7 @@ def test_dense_cholesky_matches_numpy():
     assert _a.dense_cholesky(S)[1] >= 0
 
 
+@pytest.mark.two_threads
 def test_same_bits_on_one_and_two_threads():
     A = reduced_stiffness(jittered_mesh(40, 2))
     r = np.random.default_rng(0).standard_normal(A.shape[0])

@@ -128,6 +128,7 @@ def test_manufactured_rates_with_gmg():
     assert 0.97 < study.rates["H1"][-1] < 1.03
 
 
+@pytest.mark.two_threads
 def test_one_and_two_threads_give_identical_solves():
     m = refined(rectangle(5, 5), 3)
     out = []
