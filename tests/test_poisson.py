@@ -260,3 +260,56 @@ def test_unused_points_and_bad_input():
         solve_poisson(base, 1.0, dirichlet_on=[99])
     with pytest.raises(hatkernels.InputError, match="reaction is -1.0"):
         solve_poisson(base, 1.0, reaction=-1.0)
+
+
+def _linear(x, y):
+    return 1 + 2 * x - 3 * y
+
+
+def test_data_forms_without_a_test_so_far():
+    # u = 1 + 2x - 3y is harmonic and P1 reproduces it exactly (the patch test; common
+    # practice, no source): every form of boundary data must give it to round-off
+    m = rectangle(8, 8)
+    exact = _linear(*m.points.T)
+    tol = 64 * np.finfo(float).eps * np.abs(exact).max()
+    # Dirichlet values as an array of one value per point
+    sol = solve_poisson(m, 0.0, dirichlet=exact.copy(), rtol=1e-14)
+    assert np.abs(sol.u - exact).max() <= tol
+    # a plain Neumann value (here a callable of the position) applies on every side
+    # that is not held: hold the left side of u = 1 + 2x, whose du/dn is 2 on the right
+    # and 0 on the top and bottom
+    lin = 1 + 2 * m.points[:, 0]
+    held = np.flatnonzero(m.points[:, 0] == 0)
+    h = lambda x, y: np.where(x == 1, 2.0, 0.0)  # noqa: E731
+    sol = solve_poisson(m, 0.0, dirichlet=lin, dirichlet_on=held, neumann=h, rtol=1e-14)
+    assert np.abs(sol.u - lin).max() <= tol
+    # a 2-tuple robin (r, s) applies on every side that is not held:
+    # kappa du/dn + r u = s with u = 1 + 2x, r = 1: s = du/dn + u on each side
+    s = lambda x, y: np.where(x == 1, 2.0, 0.0) + 1 + 2 * x  # noqa: E731
+    sol = solve_poisson(m, 0.0, dirichlet=lin, dirichlet_on=held, robin=(1.0, s), rtol=1e-14)
+    assert np.abs(sol.u - lin).max() <= 1e-12
+    # matrix-free with the preconditioner "none"
+    sol = solve_poisson(m, 0.0, dirichlet=exact, matrix_free=True, preconditioner="none",
+                        rtol=1e-14)
+    assert sol.stats.matrix_free and np.abs(sol.u - exact).max() <= tol
+
+
+def test_inputs_are_left_unchanged():
+    m = rectangle(6, 6)
+    f = np.linspace(1, 2, m.n_points)
+    kappa = np.linspace(1, 3, m.n_cells)
+    g = _linear(*m.points.T)
+    held = m.boundary_points().copy()
+    before = [a.copy() for a in (f, kappa, g, held, m.points, m.cells)]
+    solve_poisson(m, hatkernels.per_point(f), coefficient=kappa, dirichlet=g, dirichlet_on=held)
+    for old, new in zip(before, (f, kappa, g, held, m.points, m.cells), strict=True):
+        assert np.array_equal(old, new)
+
+
+def test_a_built_in_preconditioner_name_is_not_overwritten_by_accident():
+    from hatkernels.precond import PRECONDITIONERS, register_preconditioner
+
+    with pytest.raises(hatkernels.InputError, match="'jacobi' is already registered"):
+        register_preconditioner("jacobi", lambda A, context: A)
+    assert hatkernels.precond.capabilities("jacobi").is_diagonal  # still the built-in one
+    assert PRECONDITIONERS.count("jacobi") == 1
