@@ -10,8 +10,7 @@ from __future__ import annotations
 
 import os
 
-import numpy as np
-
+from hatkernels.checks import integer_option
 from hatkernels.errors import InputError
 
 __all__ = [
@@ -124,12 +123,12 @@ def default_threads(comm, threads=None):
     finally:
         node.Free()
     if threads is not None:
-        if (isinstance(threads, bool) or not isinstance(threads, (int, np.integer))
-                or not 1 <= threads <= top):
-            raise InputError(f"threads must be an integer between 1 and {top} (numba's "
-                             f"maximum here; set NUMBA_NUM_THREADS to allow more), got "
-                             f"{threads!r}")
-        return int(threads), local, "given"
+        try:
+            threads = integer_option(threads, "threads", minimum=1, maximum=top)
+        except InputError as exc:
+            raise InputError(f"{exc} ({top} is numba's maximum here; set NUMBA_NUM_THREADS "
+                             f"to allow more)") from None
+        return threads, local, "given"
     if "NUMBA_NUM_THREADS" in os.environ:
         return numba.get_num_threads(), local, "NUMBA_NUM_THREADS"
     total, mine = cores_per_node()
