@@ -1,0 +1,140 @@
+"""Kernels of the dof assembler: any number ``k`` of degrees of freedom per cell.
+
+The same scheme as the three-vertex plan of :mod:`hatkernels._jit.topology`
+and :mod:`hatkernels._jit.assembly`, with ``k`` a run-time value.  The
+*incidence* of dof ``i`` lists the codes ``k * t + a`` of the cells ``t``
+that hold ``i`` at local position ``a``, in increasing ``t``; the pattern of
+row ``i`` is the union of those cells' dofs; the slot plan gives, for each
+incidence ``e`` and each local position ``b``, the position in the CSR data
+of entry ``(i, cells[t, b])``.
+
+Parallel loops run over dofs (rows) and each iteration writes only its own
+row, so there are no races, and every entry is summed in cell order whatever
+the thread count.  The wrapper validates everything first: these kernels
+trust their indices (they read them as unsigned integers, which spares
+numba's checks for negative wraparound in the hot loops).
+"""
+
+from numba import prange, uint64
+
+from hatkernels._jit import jit
+from hatkernels._jit.topology import _find
+
+
+@jit()
+def incidence(cells, ptr, codes):
+    """Counting sort of the codes ``k * t + a`` by dof, into ``ptr`` (n+1,) and ``codes`` (M*k,).
+
+    The codes of dof ``i`` end up in ``codes[ptr[i]:ptr[i + 1]]`` in
+    increasing cell order.  Serial: one pass to count, one to place.
+    """
+    m, k = cells.shape
+    n = ptr.size - 1
+    ptr[:] = 0
+    for t in range(m):
+        for a in range(k):
+            ptr[cells[t, a] + 1] += 1
+    for i in range(n):
+        ptr[i + 1] += ptr[i]
+    fill = ptr[:-1].copy()
+    for t in range(m):
+        for a in range(k):
+            i = cells[t, a]
+            codes[fill[i]] = k * t + a
+            fill[i] += 1
+
+
+@jit(parallel=True)
+def pattern_scratch(cells, ptr, codes, scratch, counts):
+    """Sorted distinct columns of each row, into a scratch array with room to spare.
+
+    Row ``i`` (itself and the ``k - 1`` other dofs of each of its ``d``
+    cells: at most ``(k - 1) d + 1`` columns) is gathered at
+    ``scratch[i + (k - 1) ptr[i]:]``, a place known without counting first,
+    then sorted and compacted there; ``counts[i]`` gets its length (0 for a
+    dof in no cell).
+    """
+    k = cells.shape[1]
+    n = ptr.size - 1
+    for i in prange(n):
+        if ptr[i] == ptr[i + 1]:
+            counts[i] = 0
+            continue
+        start = i + (k - 1) * ptr[i]
+        scratch[start] = i
+        c = 1
+        for e in range(ptr[i], ptr[i + 1]):
+            t = codes[e] // k
+            for b in range(k):
+                j = cells[t, b]
+                if j != i:
+                    scratch[start + c] = j
+                    c += 1
+        row = scratch[start:start + c]
+        row.sort()
+        w = 1
+        for r in range(1, c):
+            if row[r] != row[w - 1]:
+                row[w] = row[r]
+                w += 1
+        counts[i] = w
+
+
+@jit(parallel=True)
+def pattern_fill(cells, ptr, codes, scratch, indptr, indices, slots):
+    """Copy the rows from the scratch array into CSR ``indices``; the slot plan.
+
+    ``slots[e, b]`` (shape (M*k, k)) is the position in ``indices`` of
+    entry ``(i, cells[t, b])`` for incidence ``e`` of dof ``i`` in cell ``t``.
+    Each row is written only by its own iteration.
+    """
+    k = cells.shape[1]
+    n = ptr.size - 1
+    for i in prange(n):
+        start = indptr[i]
+        end = indptr[i + 1]
+        src = i + (k - 1) * ptr[i]
+        for r in range(end - start):
+            indices[start + r] = scratch[src + r]
+        for e in range(ptr[i], ptr[i + 1]):
+            t = codes[e] // k
+            for b in range(k):
+                slots[e, b] = _find(indices, start, end, cells[t, b])
+
+
+@jit(parallel=True)
+def gather_matrix(indptr, ptr, codes, slots, element_matrices, data):
+    """Fill CSR ``data`` from element matrices (M, k, k), one row per iteration.
+
+    Row ``i`` walks its incidences in cell order and adds row ``a`` of each
+    cell's matrix into its slots: every entry gets its terms in increasing
+    cell order, so the bits do not depend on the thread count; and for
+    symmetric element matrices ``(i, j)`` gets the same terms in the same
+    order as ``(j, i)``, so the result is symmetric to the last bit.
+    """
+    k = uint64(element_matrices.shape[1])
+    n = indptr.size - 1
+    for i in prange(n):
+        for s in range(indptr[i], indptr[i + 1]):
+            data[uint64(s)] = 0.0
+        for e in range(ptr[i], ptr[i + 1]):
+            u = uint64(e)
+            q = uint64(codes[u])
+            t = q // k
+            a = q - k * t
+            for b in range(k):
+                data[uint64(slots[u, b])] += element_matrices[t, a, b]
+
+
+@jit(parallel=True)
+def gather_vector(ptr, codes, element_vectors, out):
+    """``out[i]`` = the sum of the element vectors' entries at dof ``i``, in cell order."""
+    k = uint64(element_vectors.shape[1])
+    n = ptr.size - 1
+    for i in prange(n):
+        s = 0.0
+        for e in range(ptr[i], ptr[i + 1]):
+            q = uint64(codes[uint64(e)])
+            t = q // k
+            s += element_vectors[t, q - k * t]
+        out[i] = s
