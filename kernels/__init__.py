@@ -13,6 +13,7 @@ from hatkernels import distributed, krylov, mesh, norms
 from hatkernels._jit import threads
 from hatkernels.assembly import (
     STRATEGIES,
+    DofAssembler,
     StiffnessAssembler,
     assemble_boundary_load,
     assemble_boundary_mass,
@@ -40,6 +41,7 @@ __all__ = [
     "STRATEGIES",
     "ConvergenceError",
     "DirichletSystem",
+    "DofAssembler",
     "InputError",
     "Mesh",
     "MeshError",

@@ -12,6 +12,7 @@ PUBLIC = {
     "STRATEGIES",
     "ConvergenceError",
     "DirichletSystem",
+    "DofAssembler",
     "InputError",
     "Mesh",
     "MeshError",

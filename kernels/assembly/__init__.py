@@ -24,6 +24,7 @@ from hatkernels.assembly import reference as _reference
 from hatkernels.assembly import triplets as _triplets
 from hatkernels.assembly.boundary_terms import boundary_load, boundary_mass
 from hatkernels.assembly.csr import CSRNumeric
+from hatkernels.assembly.dofs import DofAssembler
 from hatkernels.assembly.elements import load_values, lumped_values, mass_values
 from hatkernels.assembly.plan import CSRPlan, build_plan
 from hatkernels.coefficients import parse_coefficient
@@ -33,6 +34,7 @@ from hatkernels.mesh.core import Mesh
 __all__ = [
     "STRATEGIES",
     "CSRPlan",
+    "DofAssembler",
     "StiffnessAssembler",
     "assemble_boundary_load",
     "assemble_boundary_mass",
