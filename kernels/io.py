@@ -9,7 +9,7 @@ Every writer goes through :func:`atomic_file` (a temporary file in the same
 directory, then :func:`os.replace`), and a command's set of output files
 through :func:`output_directory` (a temporary directory next to the target,
 renamed into place), so that a failure or an interrupt never leaves a
-half-written file behind.
+half-written file behind (both live in :mod:`hatkernels._output`).
 
 >>> import os, tempfile, numpy as np, hatkernels
 >>> d = tempfile.mkdtemp()
@@ -28,22 +28,32 @@ import dataclasses
 import io as io_module
 import json
 import os
-import shutil
-import tempfile
 import warnings
 import zipfile
 
 import numpy as np
 
+from hatkernels._output import (
+    MARKER_FILES,
+    OutputError,
+    OutputNotWritable,
+    atomic_file,
+    check_output_directory,
+    check_output_file,
+    output_directory,
+    write_json,
+)
 from hatkernels.errors import InputError, MeshError
 from hatkernels.mesh.core import Mesh
 
 __all__ = [
     "MARKER_FILES",
     "OutputError",
+    "OutputNotWritable",
     "Solution",
     "atomic_file",
     "check_output_directory",
+    "check_output_file",
     "meshio_available",
     "mesh_from_arrays",
     "output_directory",
@@ -55,15 +65,6 @@ __all__ = [
     "write_vtu",
 ]
 
-#: Files that mark a directory as a hatkernels output (``--force`` replaces only those).
-MARKER_FILES = ("summary.json", "verify.json")
-GENERATOR = "hatkernels"
-
-
-class OutputError(InputError):
-    """An output path cannot be used: it exists, its parent is missing, or it is not writable."""
-
-
 def meshio_available():
     """True when meshio (the ``io`` extra) can be imported."""
     try:
@@ -71,131 +72,6 @@ def meshio_available():
     except ImportError:
         return False
     return True
-
-
-def _umask():
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
-
-
-@contextlib.contextmanager
-def atomic_file(path, suffix=""):
-    """Yield a temporary path next to ``path``; on success move it onto ``path``.
-
-    The temporary file is removed when the body raises (anything, including
-    KeyboardInterrupt), so ``path`` is either the complete new file or
-    untouched.  ``suffix`` is appended to the temporary name, for writers
-    that choose a format by extension.
-    """
-    path = os.fspath(path)
-    directory = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(prefix=f".{os.path.basename(path)}.tmp-", suffix=suffix,
-                               dir=directory)
-    os.close(fd)
-    try:
-        yield tmp
-        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the usual mode
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            os.unlink(tmp)
-        raise
-
-
-def write_json(path, data):
-    """Write ``data`` as indented JSON, atomically; return ``path``."""
-    text = json.dumps(data, indent=2, sort_keys=False, allow_nan=False) + "\n"
-    with atomic_file(path) as tmp, open(tmp, "w", encoding="utf-8") as f:
-        f.write(text)
-    return path
-
-
-def _is_hatkernels_output(directory):
-    try:
-        names = os.listdir(directory)
-    except OSError:
-        return False
-    if not names:
-        return True
-    for marker in MARKER_FILES:
-        if marker in names:
-            try:
-                with open(os.path.join(directory, marker), encoding="utf-8") as f:
-                    data = json.load(f)
-            except (OSError, ValueError):
-                continue
-            if isinstance(data, dict) and str(data.get("generator", "")).startswith(GENERATOR):
-                return True
-    return False
-
-
-def check_output_directory(path, *, force=False):
-    """Check that ``path`` can receive a command's output; return it as an absolute path.
-
-    Raises
-    ------
-    OutputError
-        ``path`` exists and ``force`` is false; it exists and is not a
-        directory; it exists but does not look like hatkernels output (not
-        empty and without a ``summary.json`` or ``verify.json`` written by
-        hatkernels), which ``force`` never replaces; or its parent directory
-        is missing or not writable.
-    """
-    path = os.path.abspath(os.fspath(path))
-    parent = os.path.dirname(path)
-    if os.path.lexists(path):
-        if not os.path.isdir(path) or os.path.islink(path):
-            raise OutputError(f"output {path} exists and is not a directory; choose another --out")
-        if not force:
-            raise OutputError(f"output directory {path} exists; use --force to replace it "
-                              f"or choose another --out")
-        if not _is_hatkernels_output(path):
-            raise OutputError(f"refusing to replace {path}: it is not empty and does not "
-                              f"look like hatkernels output (no summary.json or verify.json "
-                              f"written by hatkernels)")
-    if not os.path.isdir(parent):
-        raise OutputError(f"cannot write {path}: directory {parent} does not exist")
-    if not os.access(parent, os.W_OK | os.X_OK):
-        raise OutputError(f"cannot write {path}: directory {parent} is not writable")
-    return path
-
-
-@contextlib.contextmanager
-def output_directory(path, *, force=False):
-    """Yield a temporary directory; on success it becomes ``path``, complete.
-
-    The temporary directory is created next to ``path`` (same file system,
-    so the final rename is atomic).  On any exception it is removed and
-    ``path`` is left as it was.  With ``force`` an existing hatkernels output
-    at ``path`` is replaced: it is renamed aside, the new directory renamed
-    into place, then the old one deleted; between the two renames ``path``
-    briefly does not exist (POSIX has no portable atomic swap of
-    directories), and if the second rename fails the old directory is put
-    back.
-    """
-    path = check_output_directory(path, force=force)
-    parent, name = os.path.split(path)
-    tmp = tempfile.mkdtemp(prefix=f".{name}.tmp-", dir=parent)
-    try:
-        os.chmod(tmp, 0o777 & ~_umask())
-        yield tmp
-        check_output_directory(path, force=force)  # it may have appeared meanwhile
-        if os.path.lexists(path):
-            old = tempfile.mkdtemp(prefix=f".{name}.old-", dir=parent)
-            os.rmdir(old)
-            os.rename(path, old)
-            try:
-                os.rename(tmp, path)
-            except BaseException:
-                os.rename(old, path)
-                raise
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.rename(tmp, path)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
 
 
 # -- meshes -----------------------------------------------------------------------

@@ -6,7 +6,9 @@ import json
 import os
 import pathlib
 import pkgutil
+import resource
 import shutil
+import signal
 import struct
 import subprocess
 import sys
@@ -29,6 +31,46 @@ FIGURE = (800, 560)  # hatkernels.plot.SIZE x DPI
 def run(*args, cwd=None):
     return subprocess.run([sys.executable, "-m", "hatkernels.cli", *map(str, args)],
                           capture_output=True, text=True, cwd=cwd, timeout=900)
+
+
+def start(*args, cwd=None, file_limit=None, env=None):
+    """The command in a subprocess that takes Ctrl-C as a terminal would, optionally under a
+    file-size limit (``ulimit -f``, in bytes here)."""
+    def prepare():
+        # a child of a shell's background job may inherit SIGINT ignored: give it the default
+        signal.signal(signal.SIGINT, signal.SIG_DFL)
+        if file_limit is not None:
+            resource.setrlimit(resource.RLIMIT_FSIZE, (file_limit, file_limit))
+
+    return subprocess.Popen([sys.executable, "-m", "hatkernels.cli", *map(str, args)],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=cwd,
+                            env=env, preexec_fn=prepare)
+
+
+def interrupt_when(proc, marker):
+    """Send SIGINT once ``marker`` shows on the command's stderr; return (code, stderr lines)."""
+    seen = []
+    for line in proc.stderr:
+        seen.append(line.rstrip("\n"))
+        if marker in line:
+            proc.send_signal(signal.SIGINT)
+            break
+    else:
+        proc.wait(timeout=60)
+        raise AssertionError(f"{marker!r} never showed; stderr:\n" + "\n".join(seen))
+    rest = proc.communicate(timeout=120)[1]
+    return proc.returncode, seen + rest.splitlines()
+
+
+def listing(directory):
+    """Every name under ``directory``, hidden ones included, with the bytes of each file."""
+    out = {}
+    for root, dirs, files in os.walk(directory):
+        for name in dirs + files:
+            path = os.path.join(root, name)
+            key = os.path.relpath(path, directory)
+            out[key] = None if os.path.isdir(path) else pathlib.Path(path).read_bytes()
+    return out
 
 
 def png_size(path):
@@ -344,6 +386,205 @@ def test_force_never_replaces_a_foreign_directory(tmp_path):
     assert result.returncode == 2
     assert "does not look like hatkernels output" in error_line(result)
     assert (out / "notes.txt").read_text() == "keep me"
+
+
+# -- faults: a file-size limit, an output that cannot be made, Ctrl-C --------------------
+# Each leaves the parent directory exactly as it was (hidden temporaries included) and
+# ends in one line with its own exit code: 73 cannot create, 74 writing failed, 130 Ctrl-C.
+
+PAUSE = "_HATKERNELS_TEST_PAUSE"  # the command's private test hook (hatkernels.cli.progress)
+
+
+def paused(phase):
+    return dict(os.environ, **{PAUSE: f"{phase}@60"})
+
+
+def last_error(lines):
+    """The last stderr line, which must be the one error line; no traceback anywhere."""
+    assert not any("Traceback" in line for line in lines), "\n".join(lines)
+    assert lines and lines[-1].startswith("hatkernels: error: "), "\n".join(lines)
+    return lines[-1]
+
+
+@pytest.mark.parametrize("limit", [64 * 1024, 0], ids=["64KiB-png-fails", "nothing-fits"])
+def test_solve_under_a_file_size_limit(small, tmp_path, limit):
+    # ulimit -f: solution.npz (about 28 kB) fits under 64 KiB and solution.png (about 80 kB)
+    # does not, so the limit strikes half-way through the output; at 0 the first file fails.
+    # The command ignores SIGXFSZ (which would kill it silently) and reports EFBIG.
+    proc = start("solve", "--cells", 48, "--quiet", "--out", tmp_path / "o", file_limit=limit)
+    _, err = proc.communicate(timeout=900)
+    assert proc.returncode == 74, err
+    # at 0 bytes numba's own lock file cannot be made either: it warns (one line) first
+    line = last_error(err.splitlines())
+    assert "File too large" in line and "ulimit -f" in line
+    assert f"nothing written to {tmp_path / 'o'}" in line
+    assert listing(tmp_path) == {}
+
+
+def test_a_file_size_limit_leaves_an_existing_output_as_it_was(small, tmp_path):
+    out = tmp_path / "o"
+    shutil.copytree(small[1], out)
+    before = listing(tmp_path)
+    proc = start("solve", "--cells", 48, "--quiet", "--force", "--out", out,
+                 file_limit=64 * 1024)
+    _, err = proc.communicate(timeout=900)
+    assert proc.returncode == 74, err
+    assert f"{out} is as it was before" in err
+    assert listing(tmp_path) == before
+
+
+def test_a_full_disk_is_reported_and_nothing_is_left(tmp_path, monkeypatch, capsys):
+    # ENOSPC cannot be made without a small file system: the npz writer is made to fail
+    # with it, in process, after it has begun writing its temporary file
+    import errno
+
+    from hatkernels import io as kio
+
+    real = kio.write_solution
+
+    def full(path, *args, **kwargs):
+        real(path, *args, **kwargs)
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(kio, "write_solution", full)
+    assert cli.main(["solve", "--cells", "24", "--quiet", "--out", str(tmp_path / "o")]) == 74
+    line = capsys.readouterr().err.strip()
+    assert line.startswith("hatkernels: error: writing failed: No space left on device "
+                           "(the disk is full)"), line
+    assert listing(tmp_path) == {}
+
+
+UNWRITABLE = {
+    # as root permission bits stop nothing: a regular file as the parent fails for anyone
+    "parent-is-a-file": ("{dir}/plain.txt/out", "plain.txt is not a directory"),
+    # sysfs takes no new directory, even from root, though access() says it is writable:
+    # the failure comes when the temporary directory is created
+    "sysfs": ("/sys/hatkernels-test-out", "cannot create a file in /sys"),
+}
+
+
+@pytest.mark.parametrize("case", list(UNWRITABLE))
+def test_an_output_that_cannot_be_created(tmp_path, case):
+    out, message = UNWRITABLE[case]
+    if case == "sysfs":
+        if not os.path.isdir("/sys/kernel"):
+            pytest.skip("no sysfs mounted at /sys")
+        try:
+            os.mkdir(out)
+        except OSError:
+            pass
+        else:
+            os.rmdir(out)
+            pytest.skip("/sys takes new directories here")
+    (tmp_path / "plain.txt").write_text("keep me")
+    before = listing(tmp_path)
+    for command in (["solve", "--cells", "24"], ["verify", "--levels", "2", "--start", "4"]):
+        result = run(*command, "--quiet", "--out", out.format(dir=tmp_path))
+        assert result.returncode == 73, result.stderr
+        assert message in error_line(result)
+        assert listing(tmp_path) == before
+    # bench: refused before it starts (a file as parent) or when it writes (sysfs)
+    result = run("bench", "--cells", 4, "--repeat", 1, "--bandwidth-mb", 1, "--preconditioners",
+                 "jacobi", "--json", out.format(dir=tmp_path) + ".json", "--quiet")
+    assert result.returncode == 73, result.stderr
+    assert message in error_line(result)
+    assert listing(tmp_path) == before
+
+
+# Phases of a solve, as its progress lines name them; the pause sits at the start of each
+# ("solve: preconditioner" is announced by the library, inside solve_poisson; "write:
+# solution.png" comes after solution.npz is already in the temporary directory).
+SOLVE_PHASES = ["kernels:", "mesh: rectangle", "solve: preconditioner", "check: power",
+                "write: solution.png", "write: solution.vtu"]
+
+
+@pytest.mark.parametrize("phase", SOLVE_PHASES)
+def test_ctrl_c_in_each_phase_of_a_solve(small, tmp_path, phase):
+    before = listing(tmp_path)
+    proc = start("solve", "--cells", 48, "--out", tmp_path / "o", env=paused(phase))
+    code, lines = interrupt_when(proc, f'test pause in "{phase}')
+    assert code == 130, "\n".join(lines)
+    assert last_error(lines) == (f"hatkernels: error: interrupted; nothing written to "
+                                 f"{tmp_path / 'o'}")
+    assert listing(tmp_path) == before
+
+
+def test_ctrl_c_during_the_iterations_without_the_hook(small, tmp_path):
+    # no pause: the interrupt lands inside conjugate gradients, which cannot have ended
+    # (an rtol of 1e-300 is never reached); the first iteration line comes after a second
+    proc = start("solve", "--cells", 96, "--preconditioner", "jacobi", "--rtol", "1e-300",
+                 "--out", tmp_path / "o")
+    code, lines = interrupt_when(proc, "solve: iteration")
+    assert code == 130, "\n".join(lines)
+    assert "interrupted" in last_error(lines)
+    assert listing(tmp_path) == {}
+
+
+def test_ctrl_c_while_replacing_an_output_keeps_the_old_one(small, tmp_path):
+    out = tmp_path / "o"
+    shutil.copytree(small[1], out)
+    before = listing(tmp_path)
+    proc = start("solve", "--cells", 48, "--force", "--out", out,
+                 env=paused("write: solution.png"))
+    code, lines = interrupt_when(proc, "test pause in")
+    assert code == 130
+    assert last_error(lines).endswith(f"interrupted; {out} is as it was before")
+    assert listing(tmp_path) == before
+
+
+def test_ctrl_c_while_verify_writes(tmp_path):
+    proc = start("verify", "--levels", 2, "--start", 4, "--out", tmp_path / "v",
+                 env=paused("write: convergence.png"))
+    code, lines = interrupt_when(proc, "test pause in")
+    assert code == 130
+    assert "interrupted" in last_error(lines)
+    assert listing(tmp_path) == {}
+
+
+BENCH = ["bench", "--cells", 8, "--repeat", 1, "--bandwidth-mb", 1, "--preconditioners", "jacobi"]
+
+
+def test_bench_json_is_never_replaced_without_force(tmp_path):
+    record = tmp_path / "b.json"
+    record.write_text("an earlier record\n")
+    result = run(*BENCH, "--json", record, "--quiet")
+    assert result.returncode == 2
+    assert "exists; use --force" in error_line(result)
+    assert record.read_text() == "an earlier record\n"
+    result = run(*BENCH, "--json", record, "--force", "--quiet")
+    assert result.returncode == 0, result.stderr
+    assert json.loads(record.read_text())["cells"] == 8
+    assert os.listdir(tmp_path) == ["b.json"]
+
+
+def test_bench_json_under_faults(tmp_path):
+    record = tmp_path / "b.json"
+    record.write_text("an earlier record\n")
+    before = listing(tmp_path)
+    # a 1 kB limit: the record (several kB) cannot be written; the earlier one stays
+    proc = start(*BENCH, "--json", record, "--force", "--quiet", file_limit=1024)
+    _, err = proc.communicate(timeout=900)
+    assert proc.returncode == 74, err
+    assert "File too large" in err and f"{record} is as it was before" in err
+    assert listing(tmp_path) == before
+    proc = start(*BENCH, "--json", record, "--force", env=paused(f"write: {record}"))
+    code, lines = interrupt_when(proc, "test pause in")
+    assert code == 130
+    assert "interrupted" in last_error(lines)
+    assert listing(tmp_path) == before
+
+
+def test_the_pause_hook_is_inert_unless_set(monkeypatch, capsys):
+    # the private hook must not slow or change a normal run: unset, a phase only prints
+    slept = []
+    monkeypatch.setattr(progress.time, "sleep", slept.append)
+    monkeypatch.delenv(PAUSE, raising=False)
+    progress.Progress().phase("write: solution.png")
+    assert slept == [] and "test pause" not in capsys.readouterr().err
+    monkeypatch.setenv(PAUSE, "write:@2.5")
+    progress.Progress(quiet=True).phase("write: solution.png")
+    assert slept == [2.5]
+    assert capsys.readouterr().err == 'hatkernels: test pause in "write: solution.png"\n'
 
 
 # -- the other commands ---------------------------------------------------------------

@@ -5,19 +5,32 @@ subcommand (:mod:`~hatkernels.cli.solve`, :mod:`~hatkernels.cli.verify`,
 :mod:`~hatkernels.cli.bench`, :mod:`~hatkernels.cli.info`); it holds no
 logic of its own.
 
-Exit codes: 0 success; 2 bad usage or bad input (unknown option, missing or
-invalid mesh file, a NaN, an output directory that exists without
-``--force``); 1 when a solve does not converge (or ``verify`` does not see
-the expected rates), and for internal errors.  Errors are one line on
-stderr, ``hatkernels: error: ...``; ``--debug`` adds the traceback.
-Progress goes to stderr (``--quiet`` silences it); results to stdout.
+Exit codes (:data:`EXIT`): 0 success; 2 bad usage or bad input (unknown
+option, missing or invalid mesh file, a NaN, an output that exists without
+``--force``, a missing parent directory); 1 when a solve does not converge
+(or ``verify`` does not see the expected rates), out of memory, and internal
+errors; 73 when the output cannot be created (its parent is a file, is not
+writable, or is on a read-only file system; sysexits.h's EX_CANTCREAT);
+74 when writing fails part way (disk full, a file-size limit; sysexits.h's
+EX_IOERR); 130 on Ctrl-C (SIGINT), as shells report it.  Errors are one
+line on stderr, ``hatkernels: error: ...``; ``--debug`` adds the traceback.
+On every error the output (``--out``, ``bench --json``) is as it was
+before: no partial directory, no temporary file.  SIGXFSZ is ignored, so
+that a file-size limit (``ulimit -f``) is reported as an error rather than
+killing the process.  Progress goes to stderr (``--quiet`` silences it);
+results to stdout.
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
+import errno
+import os
+import signal
 import sys
 import textwrap
+import threading
 import traceback
 import warnings
 
@@ -27,8 +40,16 @@ from hatkernels.cli import bench, info, solve, verify
 from hatkernels.cli.common import PROG, error
 from hatkernels.cli.progress import Progress
 from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.io import OutputNotWritable
 
-__all__ = ["main", "build_parser", "UsageError"]
+__all__ = ["main", "build_parser", "UsageError", "EXIT"]
+
+#: The exit codes, by what went wrong.
+EXIT = {"ok": 0, "failed": 1, "usage": 2, "cannot-create": 73, "write-failed": 74,
+        "interrupted": 130}
+#: Why a write may fail part way, said in words a user can act on.
+WRITE_HINTS = {errno.EFBIG: "a file-size limit, see ulimit -f",
+               errno.ENOSPC: "the disk is full", errno.EDQUOT: "the disk quota is used up"}
 
 SCENARIO_HELP = """\
 The built-in scenario (invented demonstration data): a heat-spreader plate
@@ -204,7 +225,9 @@ def _add_bench(sub, common, names):
     _number(b, "--rtol", float, positive=True, default=1e-8)
     _number(b, "--bandwidth-mb", int, minimum=1, default=512, metavar="MB",
             help="array size for the bandwidth measurement (default 512 MiB)")
-    b.add_argument("--json", metavar="FILE", help="also write the results as JSON")
+    b.add_argument("--json", metavar="FILE",
+                   help="also write the results as JSON, whole or not at all")
+    b.add_argument("--force", action="store_true", help="replace an existing --json file")
     b.set_defaults(func=bench.run)
     return b
 
@@ -236,7 +259,9 @@ def build_parser():
                     "built-in heat-spreader scenario or a mesh file, verify convergence, "
                     "benchmark this machine, show versions.",
         epilog="Run 'hatkernels COMMAND --help' for each command. Exit codes: 0 success, "
-               "2 bad usage or input, 1 a solve that does not converge.",
+               "1 a solve that does not converge, 2 bad usage or input, 73 the output "
+               "cannot be created, 74 writing failed (disk full, file-size limit), "
+               "130 interrupted (Ctrl-C); on any error the output is left as it was.",
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     parser.commands = {name: add(sub, common, names) for name, add in (
@@ -245,8 +270,40 @@ def build_parser():
     return parser
 
 
+@contextlib.contextmanager
+def _file_size_limit_as_error():
+    """Ignore SIGXFSZ while the command runs, so that going over ``ulimit -f`` raises EFBIG.
+
+    By default the signal kills the process, with no message and with the
+    temporary files left behind.  Handlers can only be set from the main
+    thread; elsewhere (a test calling :func:`main` from a thread) nothing changes.
+    """
+    if not hasattr(signal, "SIGXFSZ") or threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGXFSZ, previous)
+
+
+def _target(args):
+    """The output the command was asked to write (``--out`` or ``bench --json``), or None."""
+    if args.command in ("solve", "verify"):
+        return args.out
+    return args.json if args.command == "bench" else None
+
+
+def _left_as_it_was(args):
+    target = _target(args)
+    if target is None:
+        return "nothing written"
+    return f"{target} is as it was before" if args.existed else f"nothing written to {target}"
+
+
 def main(argv=None):
-    """Run the command; return the exit code."""
+    """Run the command; return the exit code (see :data:`EXIT`)."""
     argv = list(sys.argv[1:] if argv is None else argv)
     parser = build_parser()
     try:
@@ -257,8 +314,9 @@ def main(argv=None):
         _check(parser, args)
     except UsageError as exc:
         error(exc)
-        return 2
+        return EXIT["usage"]
     args.argv = argv[argv.index(args.command) + 1:] if args.command in argv else []
+    args.existed = _target(args) is not None and os.path.lexists(_target(args))
     progress = Progress(quiet=args.quiet)
 
     def fail(code, text):
@@ -266,30 +324,37 @@ def main(argv=None):
         if args.debug:
             traceback.print_exc()
         error(text)
-        return code
+        return EXIT[code]
 
-    with warnings.catch_warnings():
+    with warnings.catch_warnings(), _file_size_limit_as_error():
         if not args.debug:
             warnings.showwarning = progress.warning
         try:
             return args.func(args, progress)
         except UsageError as exc:
-            return fail(2, exc)
+            return fail("usage", exc)
         except ConvergenceError as exc:
             text = str(exc).removeprefix("solve: ").removeprefix("not converged: ")
-            return fail(1, f"the solve did not converge: {text}; try a larger --maxiter, a "
-                           f"looser --rtol or another --preconditioner")
+            return fail("failed", f"the solve did not converge: {text}; try a larger "
+                                  f"--maxiter, a looser --rtol or another --preconditioner")
+        except OutputNotWritable as exc:
+            return fail("cannot-create", exc)
         except InputError as exc:
-            return fail(2, exc)
+            return fail("usage", exc)
         except KeyboardInterrupt:
-            return fail(130, "interrupted; no output written")
+            return fail("interrupted", f"interrupted; {_left_as_it_was(args)}")
         except MemoryError:
-            return fail(1, "out of memory; try a smaller mesh (--cells)")
+            return fail("failed", f"out of memory; try a smaller mesh (--cells); "
+                                  f"{_left_as_it_was(args)}")
         except OSError as exc:
-            return fail(1, f"{exc.strerror or exc}"
-                           + (f": {exc.filename}" if getattr(exc, "filename", None) else ""))
+            why = exc.strerror or str(exc)
+            if exc.errno in WRITE_HINTS:
+                why = f"writing failed: {why} ({WRITE_HINTS[exc.errno]})"
+            elif getattr(exc, "filename", None):
+                why += f": {exc.filename}"
+            return fail("write-failed", f"{why}; {_left_as_it_was(args)}")
         except Exception as exc:
-            return fail(1, f"internal error: {type(exc).__name__}: {exc}"
-                           + ("" if args.debug else " (run with --debug for the traceback)"))
+            return fail("failed", f"internal error: {type(exc).__name__}: {exc}"
+                        + ("" if args.debug else " (run with --debug for the traceback)"))
         finally:
             progress.close()

@@ -10,7 +10,6 @@ refinement) are run on the same triangulation built by refinement when
 from __future__ import annotations
 
 import math
-import os
 import time
 import warnings
 
@@ -152,10 +151,8 @@ def _refined_mesh(coarse, times):
 def run(args, progress):
     """Run ``hatkernels bench``; return the exit code."""
     names = args.preconditioners
-    if args.json is not None:
-        parent = os.path.dirname(os.path.abspath(args.json))
-        if not os.path.isdir(parent):
-            raise InputError(f"cannot write {args.json}: directory {parent} does not exist")
+    if args.json is not None:  # refused before the long part, and again when writing
+        kio.check_output_file(args.json, force=args.force)
     results = {"assembly": [], "solve": []}
     with threads(args.threads):
         progress.phase("kernels: compiling or loading on a tiny mesh")
@@ -203,6 +200,13 @@ def run(args, progress):
     fastest = min((r["total_seconds"] for r in ran), default=None)
     for r in ran:
         r["vs_fastest"] = r["total_seconds"] / fastest
+    if args.json is not None:
+        record = base_record(command_line(args))
+        record.update({"cells": args.cells, "triangles": m, "points": n, "nnz": nnz,
+                       "repeat": args.repeat, "bandwidth_GBs": bw, "threads": numba.get_num_threads(),
+                       "kernels_seconds": notice.seconds, "versions": versions(), **results})
+        progress.phase(f"write: {args.json}")
+        kio.write_json(kio.check_output_file(args.json, force=args.force), record)
     progress.phase("done")
     progress.close()
     system = systems.plain[0]
@@ -242,10 +246,5 @@ def run(args, progress):
     print("vs fastest: total (setup + solve) over the fastest total; setup is paid once per "
           "matrix, solve once per right-hand side")
     if args.json is not None:
-        record = base_record(command_line(args))
-        record.update({"cells": args.cells, "triangles": m, "points": n, "nnz": nnz,
-                       "repeat": args.repeat, "bandwidth_GBs": bw, "threads": numba.get_num_threads(),
-                       "kernels_seconds": notice.seconds, "versions": versions(), **results})
-        kio.write_json(args.json, record)
         print(f"\nwrote {args.json}")
     return 0

@@ -2,10 +2,18 @@
 
 Progress goes to stderr (``--quiet`` silences it, never warnings); results go
 to stdout.
+
+A private test hook, inert unless set: with the environment variable
+``_HATKERNELS_TEST_PAUSE=PREFIX`` (or ``PREFIX@SECONDS``, default 60) the
+command, on starting a phase whose text begins with ``PREFIX`` (such as
+``write: solution.png``), writes ``hatkernels: test pause in "<phase>"`` on
+stderr (even with ``--quiet``) and sleeps, so that a test can send a signal
+while the command is in that phase (tests/test_cli.py does, for Ctrl-C).
 """
 
 from __future__ import annotations
 
+import os
 import sys
 import threading
 import time
@@ -14,6 +22,7 @@ from hatkernels.cli import cache
 from hatkernels.cli.common import PROG
 
 __all__ = [
+    "PAUSE_VARIABLE",
     "COMPILE_ESTIMATE",
     "ITERATION_REPORT_SECONDS",
     "SLOW_FIRST_CALL",
@@ -28,6 +37,17 @@ SLOW_FIRST_CALL = 2.0
 COMPILE_ESTIMATE = 15
 #: At most one progress line per this many seconds during the CG iterations.
 ITERATION_REPORT_SECONDS = 1.0
+#: The private test hook (see the module docstring): pause on starting a named phase.
+PAUSE_VARIABLE = "_HATKERNELS_TEST_PAUSE"
+
+
+def _pause_setting():
+    """(prefix, seconds) from :data:`PAUSE_VARIABLE`, or None when it is unset or empty."""
+    text = os.environ.get(PAUSE_VARIABLE, "")
+    if not text:
+        return None
+    prefix, _, seconds = text.partition("@")
+    return prefix, float(seconds) if seconds else 60.0
 
 
 class Progress:
@@ -50,6 +70,7 @@ class Progress:
         self._line = None
         self._started = 0.0
         self._stop = None
+        self._pause = _pause_setting()
 
     def _stamp(self):
         return f"[{time.perf_counter() - self.t0:7.1f} s]"
@@ -78,6 +99,13 @@ class Progress:
 
     def phase(self, text):
         """Start a new phase: one line, stamped with the seconds since the start."""
+        self._phase(text)
+        if self._pause is not None and text.startswith(self._pause[0]):
+            with self._lock:
+                self._write(f'{PROG}: test pause in "{text}"\n')
+            time.sleep(self._pause[1])
+
+    def _phase(self, text):
         if self.quiet:
             return
         with self._lock:

@@ -92,10 +92,11 @@ def run(args, progress):
     """Run ``hatkernels solve``; return the exit code."""
     if ranks_from_environment() > 1:
         return solve_mpi.run(args, progress)
-    out = kio.check_output_directory(args.out, force=args.force)
     command = command_line(args)
     timings = {}
-    with threads(args.threads):
+    # The temporary output directory is made first: an output that cannot be
+    # created fails before the solve, and every later failure removes it.
+    with kio.output_directory(args.out, force=args.force) as tmp, threads(args.threads):
         arrays = None
         if args.mesh is not None:  # a missing or unreadable file fails before any compiling
             progress.phase(f"mesh: reading {args.mesh}")
@@ -114,8 +115,7 @@ def run(args, progress):
         timings["check"] = time.perf_counter() - t0
         summary = solve_summary(args, problem, sol, balance, timings, notice.seconds, command)
         progress.phase(f"write: solution.npz and summary.json into {args.out}")
-        with kio.output_directory(out, force=args.force) as tmp:
-            write_solve_outputs(tmp, problem, sol.u, summary, progress, args.rtol)
+        write_solve_outputs(tmp, problem, sol.u, summary, progress, args.rtol)
     progress.phase("done")
     progress.close()
     print(solve_report(problem, summary, args.out))

@@ -54,7 +54,7 @@ def _manufactured():
 
 def run(args, progress):
     """Run ``hatkernels verify``; return the exit code (1 when the rates are off)."""
-    out = kio.check_output_directory(args.out, force=args.force)
+    out = kio.check_output_directory(args.out, force=args.force)  # refused before solving
     command = command_line(args)
     exact, grad, source = _manufactured()
     notice = CompileNotice(progress)
@@ -96,6 +96,7 @@ def run(args, progress):
     progress.phase(f"write: {args.out}")
     with kio.output_directory(out, force=args.force) as tmp:
         if plot.available():
+            progress.phase("write: convergence.png")
             plot.convergence_figure(study.h, study.errors, os.path.join(tmp, "convergence.png"),
                                     title="P1 on the unit square, u = sin(pi x) sin(pi y)")
             files.append("convergence.png")
