@@ -26,22 +26,17 @@ is injected:
     iteration, one reduction saved in every other); false (serial) applies it
     after the test, so that the last iteration applies nothing.
 
-Scale.  The squared norms ``r . r``, ``r . z`` and ``p . A p`` overflow or
-underflow when the right-hand side or the operator is far from 1 (a mesh in
-units of 1e100 gives a load vector near 1e200, whose square is inf).  So the
-first ``b . b``, ``r . r``, ``r . z`` and ``p . A p`` are checked against a
-comfortable range, ``[2**-SAFE_EXPONENT, 2**SAFE_EXPONENT]``, wide enough for
-the residual to fall by 2**-300 and for sums of 1e12 terms.  When one is
-outside, before anything is updated, the solve starts again on ``2**k b``
-(and ``2**k x0``, ``2**k atol``): ``k`` brings the largest entry of ``b``
-near 1, then centres the three squared norms, measured on normalised
-vectors, on 1.  A power of two scales every operation exactly, so the
-iteration has the bits it would have in an unbounded exponent range; the
-solution, residual norms and tolerance are scaled back by ``2**-k``.
-Systems that no single scale fits (the three squared norms spread over more
-than ``2**(2 SAFE_EXPONENT)``) and solutions beyond float64's normal range
-are refused with an InputError giving the sizes.  Problems inside the range
-run exactly as before, without any extra pass.
+Scale.  ``r . r``, ``r . z`` and ``p . A p`` overflow or underflow when b or
+the operators are far from 1 (a mesh in units of 1e100 gives a load near
+1e200, whose square is inf).  So when the first ``b . b``, ``r . r``, ``r . z``
+or ``p . A p`` leaves ``[2**-SAFE_EXPONENT, 2**SAFE_EXPONENT]`` (room for a
+residual reduction of 2**-300 and sums of 1e12 terms), before anything is
+updated, the solve starts again as ``2**j A x' = 2**k b`` with ``2**m M``:
+``k`` brings ``b - A x0`` near 1, ``j`` and ``m`` the Rayleigh quotients of A
+and M, measured on normalised vectors.  Powers of two scale every operation
+exactly, so the iterates have the bits they would have with an unbounded
+exponent; ``x = 2**(j - k) x'``.  A solution beyond float64's normal range is
+refused (InputError).  Problems inside the range run as before, bit for bit.
 
 Every decision depends on reduced values only, so all ranks take the same
 branches.  With :data:`LOCAL` the kernels run in the order of the serial CG
@@ -235,13 +230,8 @@ def _breakdown_preconditioner(rz, iteration):
         f"(info = {BREAKDOWN_PRECONDITIONER})")
 
 
-def _comfortable(value):
-    return _LOW <= value <= _HIGH
-
-
 def _exponent(value):
-    """``e`` with ``value = m 2**e``, ``0.5 <= |m| < 1`` (value finite, nonzero)."""
-    return math.frexp(value)[1]
+    return math.frexp(value)[1]  # value = f 2**e with 0.5 <= |f| < 1
 
 
 def _max_abs(v, reductions):
@@ -249,70 +239,81 @@ def _max_abs(v, reductions):
     return reductions.maximum(float(np.max(np.abs(v))) if v.shape[0] else 0.0)
 
 
-def _ldexp(value, k):
-    """``value * 2**k`` as a float, inf where it overflows."""
-    try:
-        return math.ldexp(value, k)
-    except OverflowError:
-        return math.copysign(math.inf, value)
-
-
 def _scaled(v, k):
+    """``v * 2**k`` exactly (inf where it overflows); a float for a float."""
     with np.errstate(over="ignore", under="ignore"):
-        return np.ldexp(v, k)
+        return np.ldexp(v, k) if isinstance(v, np.ndarray) else float(np.ldexp(v, k))
 
 
-def _centring_shift(product, b, x0, M, reductions, k):
-    """Extra power of two ``j`` so that ``r.r``, ``r.z`` and ``p.Ap`` of the system scaled
-    by ``2**(k + j)`` are near 1; measured on normalised vectors, so nothing overflows.
+class _ScaledProduct:
+    """Products with ``2**j A``: exact, so the iteration keeps A's bits at another scale."""
 
-    Returns 0 when nothing can be measured (the scaled run then reports what it finds).
-    """
+    def __init__(self, product, j):
+        self.product, self.j, self.n_local = product, j, product.n_local
+
+    def matvec_dot(self, p, q):
+        d = self.product.matvec_dot(p, q)
+        np.ldexp(q, self.j, out=q)
+        return _scaled(d, self.j)
+
+    def residual(self, x, b, out):
+        self.product.residual(x, _scaled(b, -self.j), out)
+        np.ldexp(out, self.j, out=out)
+
+
+class _ScaledPreconditioner:
+    """``2**m M`` (its inverse diagonal scaled once, or each application scaled)."""
+
+    def __init__(self, M, m):
+        self.M, self.m = M, m
+        dinv = getattr(M, "inverse_diagonal", None)
+        if dinv is not None:
+            self.inverse_diagonal = _scaled(dinv, m)
+
+    def apply_into(self, r, z):
+        self.M.apply_into(r, z)
+        np.ldexp(z, self.m, out=z)
+
+
+def _scales(product, b, bmax, x0, M, reductions):
+    """Powers of two ``(k, j, m)`` for b, A and M that bring the largest entry of
+    ``2**k (b - A x0)`` near 1 and the Rayleigh quotients of ``2**j A`` and ``2**m M``
+    near 1 (measured on normalised vectors, so nothing overflows); 0 for a scale that
+    cannot be measured or is near 1 already."""
     n = b.shape[0]
-    r = np.empty(n)
-    bs = _scaled(b, k)
-    if x0 is None:
-        r[:] = bs
-    else:
-        product.residual(_scaled(x0, k), bs, r)
+    k = -_exponent(bmax)
+    r = _scaled(b, k)
+    if x0 is not None:
+        product.residual(_scaled(x0, k), r.copy(), r)
     rmax = _max_abs(r, reductions)
     if not math.isfinite(rmax):
         raise InputError("the initial residual b - A x0 overflows float64: x0 is too large "
                          "for this operator")
     if rmax == 0.0:
-        return 0
+        return k, 0, 0
     er = _exponent(rmax)
+    k -= max(min(er, 500), -500)  # r near 1, b at most 2**500
     rn = _scaled(r, -er)
-    w = np.empty(n)
-    if M is None or getattr(M, "is_identity", False) is True:
-        w[:] = rn
-    elif getattr(M, "inverse_diagonal", None) is not None:
-        _k.jacobi_apply(M.inverse_diagonal, rn, w)
-    else:
+    w = rn.copy()
+    if M is not None and getattr(M, "is_identity", False) is not True:
         M.apply_into(rn, w)
     wmax = _max_abs(w, reductions)
-    if math.isfinite(wmax) and wmax > 0.0:
-        ew = _exponent(wmax)
-        w = _scaled(w, -ew)
-        p = np.zeros(product.n_local)
-        p[:n] = w
-        q = np.empty(n)
-        values = reductions.sum(_k.dot(rn, rn), _k.dot(rn, w), product.matvec_dot(p, q))
-        offsets = (2 * er, 2 * er + ew, 2 * er + 2 * ew)  # r.r, r.z, p.Ap with p = z
-        logs = [math.log2(v) + o for v, o in zip(values, offsets, strict=True)
-                if v > 0.0 and math.isfinite(v)]
-    else:
-        logs = [math.log2(reductions.sum(_k.dot(rn, rn))) + 2 * er]
-    if not logs:
-        return 0
-    low, high = min(logs), max(logs)
-    if high - low > 2 * SAFE_EXPONENT:
-        raise InputError(
-            f"cannot solve this system in float64: r.r, r.z and p.Ap span 2**{low:.0f} to "
-            f"2**{high:.0f} (about 1e{low * math.log10(2):.0f} to 1e{high * math.log10(2):.0f}), "
-            f"more than one scale can bring into range; the operator or the preconditioner "
-            f"has entries too large or too small (rescale the problem's units)")
-    return -math.floor((low + high) / 4)
+    if not (math.isfinite(wmax) and wmax > 0.0):
+        return k, 0, 0
+    ew = _exponent(wmax)
+    w = _scaled(w, -ew)
+    p = np.zeros(product.n_local)
+    p[:n] = w
+    rr, rw, ww, wAw = reductions.sum(_k.dot(rn, rn), _k.dot(rn, w), _k.dot(w, w),
+                                     product.matvec_dot(p, np.empty(n)))
+
+    def power(ratio, offset):
+        if not (ratio > 0.0 and math.isfinite(ratio)):
+            return 0
+        e = -round(math.log2(ratio) + offset)
+        return e if abs(e) > 64 else 0
+
+    return k, power(wAw / ww, 0), power(rw / rr, ew)
 
 
 def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, monitor=None):
@@ -320,14 +321,14 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
 
     ``b`` and ``x0`` (or None) are float64 contiguous arrays of the owned
     length ``n``; ``x0`` is copied, never modified.  ``rtol``, ``atol`` and
-    ``maxiter`` are checked numbers (``rtol`` and ``atol`` may be inf).  It
-    does not warn: the caller reports a breakdown (``info < 0``) from the
-    message.  Raises InputError for a system outside float64's range (see the
-    module's notes on scale).  Collective when ``reductions`` communicate.
+    ``maxiter`` checked numbers (``rtol``, ``atol`` may be inf).  It does not
+    warn: the caller reports a breakdown (``info < 0``) from the message.
+    InputError for a solution beyond float64 (see Scale).  Collective when
+    ``reductions`` communicate.
     """
     options = dict(rtol=rtol, maxiter=maxiter, callback=callback, monitor=monitor)
     bb = reductions.sum(_k.dot(b, b))
-    if _comfortable(bb):
+    if _LOW <= bb <= _HIGH:
         result = _iterate(product, b, x0, M, reductions, bb, atol=atol, **options)
         if result is not None:
             return result
@@ -335,32 +336,35 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
     if bmax == 0.0:
         # scipy's convention: the zero right-hand side has the zero solution.
         return CGResult(np.zeros(b.shape[0]), 0, 0, np.zeros(1), atol, "zero right-hand side")
-    k = -_exponent(bmax)  # the largest entry of 2**k b is in [0.5, 1)
-    k += _centring_shift(product, b, x0, M, reductions, k)
+    # The solve of 2**j A x' = 2**k b with 2**m M: x = 2**(j - k) x', r = 2**-k r'.
+    k, j, m = _scales(product, b, bmax, x0, M, reductions)
     bs = _scaled(b, k)
-    xs = None if x0 is None else _scaled(x0, k)
-    if xs is not None and not np.isfinite(xs).all():
-        raise InputError(f"x0 times 2**{k} (the scale that brings b into range) overflows: "
-                         f"x0 is too large for this right-hand side")
+    xs = None if x0 is None else _scaled(x0, k - j)
+    if not (np.isfinite(bs).all() and (xs is None or np.isfinite(xs).all())):
+        raise InputError(f"b or x0 scaled by 2**{k} (to bring b - A x0 into range) overflows: "
+                         f"x0 solves the system to more digits than float64 can scale")
+    if j:
+        product = _ScaledProduct(product, j)
+    if m and M is not None:
+        M = _ScaledPreconditioner(M, m)
     if callback is not None:
-        options["callback"] = lambda x: callback(_scaled(x, -k))
+        options["callback"] = lambda x: callback(_scaled(x, j - k))
     if monitor is not None:
-        options["monitor"] = lambda it, rnorm: monitor(it, _ldexp(rnorm, -k))
+        options["monitor"] = lambda it, rnorm: monitor(it, _scaled(rnorm, -k))
     result = _iterate(product, bs, xs, M, reductions, reductions.sum(_k.dot(bs, bs)),
-                      atol=_ldexp(atol, k), check_scale=False, **options)
+                      atol=_scaled(atol, k), check_scale=False, **options)
     xmax = _max_abs(result.x, reductions)
     if xmax > 0.0:
-        e = _exponent(xmax) - k  # exponent of the largest entry of the solution
+        e = _exponent(xmax) + j - k  # exponent of the largest entry of the solution
         if e > 1024 or e < -1021:
             where = "beyond float64's largest" if e > 0 else "below float64's smallest normal"
             raise InputError(
                 f"the solution's largest entry, about 2**{e} (1e{e * math.log10(2):.0f}), is "
                 f"{where} number; rescale the problem's units")
-    result.x = _scaled(result.x, -k)
+    result.x = _scaled(result.x, j - k)
     result.residuals = _scaled(result.residuals, -k)
-    result.tolerance = _ldexp(result.tolerance, -k)
-    if k:
-        result.message += f" (solved scaled by 2**{k} to keep its norms in float64's range)"
+    result.tolerance = _scaled(result.tolerance, -k)
+    result.message += f" (solved as 2**{j} A x = 2**{k} b to keep its norms in float64's range)"
     return result
 
 
@@ -402,7 +406,7 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
 
     def out_of_range(value):
         # a negative or NaN value is a breakdown, reported as such below
-        return check_scale and (value == 0.0 or value > 0.0) and not _comfortable(value)
+        return check_scale and (value == 0.0 or value > 0.0) and not _LOW <= value <= _HIGH
 
     if fuse:
         rr, rz = total(_k.dot(r, r), precondition())

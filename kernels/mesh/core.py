@@ -115,6 +115,38 @@ def _longest_edge_sq(points, triangles):
     )
 
 
+def _scaled_areas(points, triangles, degenerate_tol):
+    """Twice the signed areas and ``|2 area| / longest side**2``; coordinates whose areas
+    float64 cannot represent are refused first, not called flat.  For triangles of size
+    ``h`` twice the area is near ``h**2`` and the squared hat gradients near ``h**-2``:
+    beyond about 1e154 and 1e-154 they overflow or underflow (into subnormals, with fewer
+    bits, down to zero, so that a flat triangle cannot be told from a thin one)."""
+    tiny = np.finfo(np.float64).tiny
+    p0, p1, p2 = (points[triangles[:, k]] for k in range(3))
+    with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+        d2a = signed_double_areas(points, triangles)
+        e2 = _longest_edge_sq(points, triangles)
+        rel = np.abs(d2a) / e2
+        span = np.maximum(np.abs(p1 - p0).max(axis=1), np.abs(p2 - p0).max(axis=1))
+        grad_sq = (e2 / np.abs(d2a)) / np.abs(d2a)
+    large = ~np.isfinite(d2a) | ~np.isfinite(e2)
+    thin = rel > degenerate_tol
+    blind = span < np.sqrt(tiny / degenerate_tol)
+    small = ~large & (span > 0) & (((np.abs(d2a) < tiny) & (thin | blind))
+                                   | (thin & ~np.isfinite(grad_sq)))
+    for bad, word, hint in ((large, "large", "down"), (small, "small", "up")):
+        if bad.any():
+            idx = np.flatnonzero(bad)
+            k = int(idx[0])
+            raise MeshError(
+                f"triangle {k} (points {', '.join(map(str, triangles[k].tolist()))}): coordinates"
+                f" too {word} to represent areas in float64 (side extent {float(span[k]):.3g}, "
+                f"twice the area {float(d2a[k]):.3g}; usable from about 1e-307 to 1e307); scale "
+                f"the coordinates {hint} (another unit of length)"
+                + (f"; {idx.size} triangles in all" if idx.size > 1 else ""))
+    return d2a, rel
+
+
 class Mesh:
     """A conforming triangle mesh in the plane.
 
@@ -165,24 +197,17 @@ class Mesh:
     def __init__(self, points, cells, *, degenerate_tol=DEGENERATE_TOL):
         p = _check_points(points)
         t = _check_triangles(cells, p.shape[0])
-        d2a = signed_double_areas(p, t)
-        rel = np.abs(d2a) / _longest_edge_sq(p, t)
-        flat = ~(rel > degenerate_tol)
-        if flat.any():
-            bad = np.flatnonzero(flat)
-            k = int(bad[0])
+        d2a, rel = _scaled_areas(p, t, degenerate_tol)
+        flat = np.flatnonzero(~(rel > degenerate_tol))
+        if flat.size:
+            k = int(flat[0])
             i, j, l = t[k].tolist()
             kind = "zero area" if d2a[k] == 0 else f"near-zero area (relative {rel[k]:.1e})"
-            coincide = [(u, v) for u, v in ((i, j), (j, l), (i, l)) if (p[u] == p[v]).all()]
-            why = (
-                f"points {coincide[0][0]} and {coincide[0][1]} coincide at {tuple(p[coincide[0][0]].tolist())}"
-                if coincide
-                else f"points {i}, {j}, {l} are collinear"
-            )
-            raise MeshError(
-                f"triangle {k} has {kind} ({why})"
-                + (f"; {bad.size} triangles in all" if bad.size > 1 else "")
-            )
+            same = [(u, v) for u, v in ((i, j), (j, l), (i, l)) if (p[u] == p[v]).all()]
+            why = (f"points {same[0][0]} and {same[0][1]} coincide at {tuple(p[same[0][0]].tolist())}"
+                   if same else f"points {i}, {j}, {l} are collinear")
+            raise MeshError(f"triangle {k} has {kind} ({why})"
+                            + (f"; {flat.size} triangles in all" if flat.size > 1 else ""))
         clockwise = d2a < 0
         n_cw = int(clockwise.sum())
         if n_cw:
