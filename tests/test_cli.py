@@ -279,6 +279,26 @@ def test_without_the_optional_extras(tmp_path):
     assert "not written: solution.vtu" in result.stdout
 
 
+@pytest.mark.two_threads  # skipped, with the reason, below 2 cores (tests/conftest.py)
+def test_one_and_two_threads_write_the_same_bits(tmp_path):
+    # the kernel rule "same bits for 1 and 2 threads", through the whole command
+    outs = []
+    for n in (1, 2):
+        out = tmp_path / f"t{n}"
+        result = run("solve", "--cells", 48, "--threads", n, "--quiet", "--out", out)
+        assert result.returncode == 0, result.stderr
+        assert json.loads((out / "summary.json").read_text())["solver"]["threads"] == n
+        outs.append(out / "solution.npz")
+    with np.load(outs[0]) as one, np.load(outs[1]) as two:
+        assert one.files == two.files
+        for name in one.files:
+            if name == "metadata":  # the record holds the command line and the time
+                continue
+            a, b = one[name], two[name]
+            assert a.dtype == b.dtype and a.shape == b.shape, name
+            assert a.tobytes() == b.tobytes(), f"{name} differs between 1 and 2 threads"
+
+
 # -- bad input: one line, the right code, no output ----------------------------------
 
 
