@@ -33,7 +33,8 @@ CSR kernel (other sparse formats are converted to CSR once; the input is not
 modified); the vector updates are fused kernels whose dot products reduce
 over fixed chunks, so a solve gives the same bits on 1 and 2 threads.  All
 arithmetic is float64 (float32 and integer inputs are converted, complex ones
-refused).
+refused: the one deliberate difference from scipy's calling convention, see
+:func:`cg`).
 
 The preconditioner protocol
 ---------------------------
@@ -156,8 +157,10 @@ def _operator(A):
 
 def _check_scalars(rtol, atol, maxiter, n, callback):
     """``(rtol, atol, maxiter)`` checked, ``maxiter`` defaulting to ``10 n`` as scipy's."""
-    rtol = real_option(rtol, "rtol", minimum=0.0)
-    atol = real_option(atol, "atol", minimum=0.0)
+    # inf is scipy's way of asking for no iteration (converged at once); NaN and
+    # negative values are refused (scipy iterates on them to NaN)
+    rtol = real_option(rtol, "rtol", minimum=0.0, finite=False)
+    atol = real_option(atol, "atol", minimum=0.0, finite=False)
     maxiter = integer_option(maxiter, "maxiter", allow_none=True)
     if maxiter is None:
         maxiter = 10 * n
@@ -167,6 +170,22 @@ def _check_scalars(rtol, atol, maxiter, n, callback):
     if callback is not None and not callable(callback):
         raise InputError(f"callback must be callable or None, got {type(callback).__name__}")
     return rtol, atol, maxiter
+
+
+def _initial_guess(x0, b, M, n):
+    """``x0`` checked; the string ``"Mb"`` (scipy's) is ``M @ b``, ``b`` without M."""
+    if isinstance(x0, str):
+        if x0 != "Mb":
+            raise InputError(f"x0 must be an array, None or the string 'Mb' (M @ b), got {x0!r}")
+        if M is None:
+            return b.copy()
+        z = np.empty(n)
+        M.apply_into(b, z)
+        if not np.isfinite(z).all():
+            raise InputError(f"x0='Mb': M @ b has a non-finite entry at "
+                             f"{int(np.argmin(np.isfinite(z)))}")
+        return z
+    return None if x0 is None else as_vector(x0, n, "x0")
 
 
 def cg_with_history(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None,
@@ -182,8 +201,7 @@ def cg_with_history(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None,
     b = as_vector(b, n, "b")
     rtol, atol, maxiter = _check_scalars(rtol, atol, maxiter, n, callback)
     M = _cg.as_preconditioner(M, n)
-    if x0 is not None:
-        x0 = as_vector(x0, n, "x0")
+    x0 = _initial_guess(x0, b, M, n)
     result = _cg.run(product, b, x0, M, _cg.LOCAL, rtol=rtol, atol=atol, maxiter=maxiter,
                      callback=callback, monitor=monitor)
     if result.info < 0 and warn:
@@ -199,12 +217,14 @@ def cg(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None, callback=Non
     A : sparse matrix, ndarray or LinearOperator, shape (n, n)
         Symmetric positive definite.  Sparse matrices use the parallel CSR kernel.
     b : ndarray, shape (n,) or (n, 1)
-    x0 : ndarray, optional
-        Initial guess (never modified); zeros by default.
+    x0 : ndarray or ``"Mb"``, optional
+        Initial guess (never modified); zeros by default; the string ``"Mb"``
+        (scipy's) starts from ``M @ b``.
     rtol, atol : float
-        Converged when ``norm(b - A @ x) <= max(rtol * norm(b), atol)``.
+        Converged when ``norm(b - A @ x) <= max(rtol * norm(b), atol)``;
+        ``>= 0``, inf allowed (converged at once, as in scipy).
     maxiter : int, optional
-        At most this many iterations (default ``10 * n``, as scipy).
+        At most this many iterations, ``>= 1`` (default ``10 * n``, as scipy).
     M : LinearOperator, matrix or None
         Symmetric positive definite preconditioner approximating ``A^{-1}``.
     callback : callable, optional
@@ -217,6 +237,20 @@ def cg(A, b, x0=None, *, rtol=1e-5, atol=0.0, maxiter=None, M=None, callback=Non
     info : int
         0 converged; >0 the iterations done without converging; -1 A not
         positive definite; -2 M not positive definite (with a warning).
+
+    Notes
+    -----
+    It takes what :func:`scipy.sparse.linalg.cg` takes for real problems and
+    returns the same ``info``, with one deliberate difference: complex ``A``,
+    ``b``, ``x0`` or ``M`` are refused (InputError), the kernels being real.
+    Values on which scipy gives no meaningful answer are refused too rather
+    than iterated on: a negative or NaN ``rtol`` or ``atol`` (scipy's iterates
+    turn NaN), a ``maxiter`` below 1 (scipy returns ``info`` 0, "converged",
+    for 0 and a negative ``info``, "breakdown", below), another string than
+    ``"Mb"`` for ``x0``.  Convergence is checked after every iteration on the
+    true residual, so ``info`` is 0 where scipy, which checks before each
+    iteration only, may report ``maxiter`` for an iterate that met the
+    tolerance in the last one.
 
     Examples
     --------

@@ -355,8 +355,10 @@ def test_scalar_options_are_checked_with_clear_messages():
         cg(A, b, maxiter=-3)
     with pytest.raises(InputError, match="rtol must be a real number, got '1e-5'"):
         cg(A, b, rtol="1e-5")
-    with pytest.raises(InputError, match="atol must be a finite number, got inf"):
-        cg(A, b, atol=float("inf"))
+    with pytest.raises(InputError, match="atol must be a number, got nan"):
+        cg(A, b, atol=float("nan"))
+    with pytest.raises(InputError, match="atol must be >= 0"):
+        cg(A, b, atol=-1.0)
     with pytest.raises(InputError, match="rtol must be >= 0"):
         cg(A, b, rtol=-1e-3)
     # numpy scalars are numbers too
@@ -381,3 +383,74 @@ def test_inverse_diagonal_of_the_wrong_length_is_not_used():
     ref = sla.spsolve(A.tocsc(), b)
     assert res.info == 0 and M.calls == res.iterations
     assert np.linalg.norm(res.x - ref) <= 1e-8 * np.linalg.norm(ref)
+
+
+def _scipy_cases(A):
+    D = sp.diags_array(1.0 / A.diagonal()).tocsr()
+    n = A.shape[0]
+    return {
+        "atol-inf": dict(atol=np.inf),
+        "atol-inf-x0": dict(atol=np.inf, x0=np.ones(n)),
+        "rtol-inf": dict(rtol=np.inf),
+        "x0-Mb": dict(x0="Mb"),
+        "x0-Mb-jacobi": dict(x0="Mb", M=D),
+        "x0-Mb-atol-inf": dict(x0="Mb", M=D, atol=np.inf),
+        "rtol0-atol": dict(rtol=0.0, atol=1e-6),
+        "rtol0-atol0-maxiter5": dict(rtol=0.0, atol=0.0, maxiter=5),
+        "maxiter1": dict(maxiter=1),
+        "jacobi-maxiter3": dict(M=D, maxiter=3),
+        "defaults": dict(),
+        "x0-column": dict(x0=np.full((n, 1), 0.25), rtol=1e-8),
+        "maxiter-numpy-int": dict(maxiter=np.int64(4)),
+    }
+
+
+@pytest.mark.parametrize("case", ["poisson2d", "random-spd"])
+def test_takes_what_scipy_takes_and_gives_the_same_info(case):
+    # reference library: scipy.sparse.linalg.cg, run side by side on the same arguments
+    A = CASES[case]()
+    b = rhs(A.shape[0], 9)
+    for name, kwargs in _scipy_cases(A).items():
+        seen_theirs, seen_ours = [], []
+        theirs, info_theirs = sla.cg(A, b, callback=seen_theirs.append, **kwargs)
+        ours, info = cg(A, b, callback=seen_ours.append, **kwargs)
+        assert info == info_theirs, name
+        assert len(seen_ours) == len(seen_theirs), name
+        assert ours.shape == theirs.shape, name
+        # the same recurrence: the iterates agree to round-off
+        assert np.linalg.norm(ours - theirs) <= 1e-10 * max(np.linalg.norm(theirs), 1.0), name
+
+
+def test_x0_mb_is_m_times_b_and_b_without_m():
+    # scipy: x0='Mb' means the initial guess M @ b (scipy/sparse/linalg/_isolve/utils.py,
+    # make_system); with atol=inf no iteration runs, so x is that guess
+    A = CASES["poisson2d"]()
+    b = rhs(A.shape[0], 10)
+    d = 1.0 / A.diagonal()
+    x, info = cg(A, b, "Mb", atol=np.inf, M=sp.diags_array(d).tocsr())
+    assert info == 0 and np.array_equal(x, d * b)
+    x, info = cg(A, b, "Mb", atol=np.inf)
+    assert info == 0 and np.array_equal(x, b)
+    # a preconditioner of the protocol (no LinearOperator) serves the same way
+    M = make_preconditioner(A, "ic0")
+    x, info = cg(A, b, "Mb", atol=np.inf, M=M)
+    assert info == 0 and np.array_equal(x, M.matvec(b))
+    # and the guess is used: iterating from M b converges to scipy's direct solution
+    x, info = cg(A, b, x0="Mb", rtol=1e-12, M=M)
+    ref = sla.spsolve(A.tocsc(), b)  # reference library: scipy (sparse direct solve)
+    assert info == 0 and np.linalg.norm(x - ref) <= 1e-8 * np.linalg.norm(ref)
+
+
+def test_what_scipy_would_iterate_to_nan_is_refused():
+    A = CASES["poisson1d"]()
+    b = rhs(A.shape[0])
+    with pytest.raises(InputError, match=r"x0 must be an array, None or the string 'Mb'"):
+        cg(A, b, x0="mb")
+    with pytest.raises(InputError, match="rtol must be a number, got nan"):
+        cg(A, b, rtol=float("nan"))
+    with pytest.raises(InputError, match="rtol must be >= 0"):
+        cg(A, b, rtol=-1e-8)
+    with pytest.raises(InputError, match=r"maxiter must be >= 1"):
+        cg(A, b, maxiter=0)
+    with pytest.raises(InputError, match="complex"):
+        cg(A, b.astype(complex))
