@@ -30,6 +30,7 @@ import json
 import os
 import warnings
 import zipfile
+import zlib
 
 import numpy as np
 
@@ -245,15 +246,54 @@ def write_solution(path, mesh, point_data=None, metadata=None, cell_data=None):
     return path
 
 
-def _json_array(archive, name, path):
-    if name not in archive.files:
-        return {}
+def _open_archive(path, where):
+    """The open :class:`numpy.lib.npyio.NpzFile` at ``path``; InputError naming ``where`` if not one."""
+    if not os.path.exists(path):
+        raise InputError(f"{where} not found")
+    if os.path.isdir(path):
+        raise InputError(f"{where} is a directory")
+    with open(path, "rb") as f:
+        head = f.read(4)
+    if head[:2] != b"PK":  # an .npz is a zip archive of .npy arrays
+        raise InputError(f"{where}: not an .npz archive (not a zip file; it starts with {head!r})")
     try:
-        value = json.loads(str(archive[name]))
+        archive = np.load(path, allow_pickle=False)
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
+        raise InputError(f"{where}: not a readable .npz archive, truncated or damaged "
+                         f"({exc})") from None
+    if not isinstance(archive, np.lib.npyio.NpzFile):
+        raise InputError(f"{where}: holds a single array, not an .npz archive")
+    return archive
+
+
+def _read_members(archive, where):
+    """Every array of ``archive``, read now, so that a damaged member is named here."""
+    out = {}
+    for name in archive.files:
+        try:
+            out[name] = archive[name]
+        except (OSError, ValueError, EOFError, KeyError, zipfile.BadZipFile, zlib.error) as exc:
+            raise InputError(f"{where}: cannot read array {name!r}, the file is truncated or "
+                             f"damaged ({exc})") from None
+        if not isinstance(out[name], np.ndarray):  # numpy hands back a non-.npy member's bytes
+            raise InputError(f"{where}: member {name!r} is not a .npy array; not an archive "
+                             f"written by numpy")
+    return out
+
+
+def _json_member(arrays, name, where):
+    if name not in arrays:
+        return {}
+    a = arrays[name]
+    if a.shape != () or a.dtype.kind != "U":
+        raise InputError(f"{where}: array {name!r} must be one JSON text (a 0-d string array), "
+                         f"got dtype {a.dtype} and shape {a.shape}")
+    try:
+        value = json.loads(str(a))
     except ValueError as exc:
-        raise InputError(f"{path}: array {name!r} is not valid JSON ({exc})") from None
+        raise InputError(f"{where}: array {name!r} is not valid JSON ({exc})") from None
     if not isinstance(value, dict):
-        raise InputError(f"{path}: array {name!r} must hold a JSON object")
+        raise InputError(f"{where}: array {name!r} must hold a JSON object")
     return value
 
 
@@ -262,24 +302,58 @@ def read_solution(path):
 
     Without a ``fields`` entry, arrays of length n_points are taken as point
     data and of length n_triangles as cell data.
+
+    Raises
+    ------
+    InputError
+        The file is missing, not an ``.npz`` archive, truncated or damaged;
+        ``points`` or ``triangles`` is missing; ``metadata`` or ``fields`` is
+        not a JSON object; ``fields`` names an array the archive lacks or a
+        kind other than "point" and "cell"; a field is not a real numeric
+        array or its length is not the count of points (or cells).  The
+        message starts with ``solution file PATH`` and names the array.
+    MeshError
+        ``points`` and ``triangles`` do not make a valid mesh (wrong shape or
+        dtype, a bad index): the message starts with the file name.
     """
     path = os.fspath(path)
-    mesh = read_mesh(path)
-    with np.load(path, allow_pickle=False) as archive:
-        metadata = _json_array(archive, "metadata", path)
-        fields = _json_array(archive, "fields", path)
-        names = [k for k in archive.files if k not in _RESERVED]
-        point_data, cell_data = {}, {}
-        for name in names:
-            a = archive[name]
-            kind = fields.get(name)
-            if kind is None:
-                if mesh.n_points == mesh.n_triangles:
-                    raise InputError(f"{path}: cannot tell whether {name!r} is per point or per "
-                                     f"cell (no 'fields' entry, and the counts are equal)")
-                kind = "point" if len(a) == mesh.n_points else "cell"
-            (point_data if kind == "point" else cell_data)[name] = a
-    _checked_fields(mesh, point_data, cell_data)
+    where = f"solution file {path}"
+    with _open_archive(path, where) as archive:
+        arrays = _read_members(archive, where)
+    missing = [k for k in ("points", "triangles") if k not in arrays]
+    if missing:
+        have = ", ".join(arrays) or "nothing"
+        raise InputError(f"{where}: no array {missing[0]!r} (it has: {have})")
+    metadata = _json_member(arrays, "metadata", where)
+    fields = _json_member(arrays, "fields", where)
+    for name, kind in fields.items():
+        if name not in arrays or name in _RESERVED:
+            raise InputError(f"{where}: 'fields' names an array {name!r} that it does not hold")
+        if kind not in ("point", "cell"):
+            raise InputError(f"{where}: 'fields' says {name!r} is {kind!r}; expected 'point' "
+                             f"or 'cell'")
+    mesh = _mesh_from_arrays(arrays["points"], arrays["triangles"], where)
+    point_data, cell_data = {}, {}
+    for name in (k for k in arrays if k not in _RESERVED):
+        a = arrays[name]
+        if a.dtype.kind not in "biuf" or a.ndim == 0:
+            raise InputError(f"{where}: array {name!r} must be a real numeric array with one "
+                             f"row per point or cell, got dtype {a.dtype} and shape {a.shape}")
+        kind = fields.get(name)
+        if kind is None:
+            if mesh.n_points == mesh.n_triangles:
+                raise InputError(f"{where}: cannot tell whether {name!r} is per point or per "
+                                 f"cell (no 'fields' entry, and the counts are equal)")
+            counts = {mesh.n_points: "point", mesh.n_triangles: "cell"}
+            if len(a) not in counts:
+                raise InputError(f"{where}: array {name!r} has {len(a)} rows, but the mesh has "
+                                 f"{mesh.n_points} points and {mesh.n_triangles} cells")
+            kind = counts[len(a)]
+        (point_data if kind == "point" else cell_data)[name] = a
+    try:
+        _checked_fields(mesh, point_data, cell_data)
+    except InputError as exc:
+        raise InputError(f"{where}: {exc}") from None
     return Solution(mesh, point_data, cell_data, metadata)
 
 
