@@ -173,19 +173,33 @@ def _element_array(values, shape, name):
     if arr.shape != shape:
         raise InputError(f"{name} has shape {arr.shape}, expected {shape}")
     arr = np.ascontiguousarray(arr, dtype=np.float64)
-    with np.errstate(over="ignore", invalid="ignore"):
-        finite = bool(np.isfinite(arr.sum()))  # a NaN or inf anywhere makes the sum one
-    if not finite:
-        bad = ~np.isfinite(arr)
-        if bad.any():  # else the sum only overflowed
-            cell_bad = bad.reshape(shape[0], -1)
-            t, p = _first(cell_bad, cell_bad.shape[1])
-            where = np.unravel_index(p, shape[1:])
-            local = where[0] if len(where) == 1 else tuple(int(w) for w in where)
-            raise InputError(
-                f"{name}: cell {t} has a non-finite entry {arr[(t, *where)]} at local {local}"
-            )
+    if not _all_finite(arr):
+        cell_bad = ~np.isfinite(arr).reshape(shape[0], -1)
+        t, p = _first(cell_bad, cell_bad.shape[1])
+        where = np.unravel_index(p, shape[1:])
+        local = where[0] if len(where) == 1 else tuple(int(w) for w in where)
+        raise InputError(
+            f"{name}: cell {t} has a non-finite entry {arr[(t, *where)]} at local {local}"
+        )
     return arr
+
+
+def _all_finite(arr):
+    # a NaN or inf anywhere makes the sum one; a finite sum proves every entry finite
+    with np.errstate(over="ignore", invalid="ignore"):
+        return bool(np.isfinite(arr.sum())) or bool(np.isfinite(arr).all())
+
+
+def _refuse_overflow(data, plan):
+    """Finite element values whose sums leave float64 are refused, never returned as inf."""
+    if _all_finite(data):
+        return
+    s = int(np.argmax(~np.isfinite(data)))
+    row = int(np.searchsorted(plan.indptr, s, side="right")) - 1
+    raise InputError(
+        f"assembled entry ({row}, {plan.indices[s]}) overflows float64 (its element "
+        "values are finite, their sum is not): scale the element values down"
+    )
 
 
 class DofAssembler:
@@ -267,6 +281,7 @@ class DofAssembler:
         )
         data = np.empty(pl.nnz)
         _jit_dofs.gather_matrix(pl.indptr, pl.ptr, pl.codes, pl.slots, K, data)
+        _refuse_overflow(data, pl)
         return pl.matrix(data)
 
     def vector(self, element_vectors):
@@ -278,6 +293,12 @@ class DofAssembler:
         F = _element_array(element_vectors, (self.n_cells, pl.k), "element_vectors")
         out = np.empty(self.n_dofs)
         _jit_dofs.gather_vector(pl.ptr, pl.codes, F, out)
+        if not _all_finite(out):
+            i = int(np.argmax(~np.isfinite(out)))
+            raise InputError(
+                f"assembled entry {i} overflows float64 (its element values are finite, "
+                "their sum is not): scale the element values down"
+            )
         return out
 
     def __repr__(self):
