@@ -2,11 +2,11 @@
 
 import inspect
 
-import numba
 import numpy as np
 import pytest
 import scipy.sparse as sp
 import scipy.sparse.linalg as sla
+from conftest import two_threads
 from linear_cases import random_spd
 from pyamg.gallery import poisson
 
@@ -200,7 +200,7 @@ def test_other_sparse_formats_converted_without_modifying_input():
     assert info == 0 and A.format == "coo" and np.array_equal(A.data, data)
 
 
-@pytest.mark.skipif(numba.config.NUMBA_NUM_THREADS < 2, reason="needs 2 numba threads")
+@two_threads
 @pytest.mark.parametrize("precond", ["none", "jacobi", "ic0"])
 def test_whole_solve_identical_bits_on_one_and_two_threads(precond):
     A = poisson((90, 90), format="csr")  # 8100 unknowns: several chunks per thread
