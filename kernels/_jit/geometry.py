@@ -45,3 +45,66 @@ def double_areas(points, triangles, out):
         out[t] = (points[i1, 0] - points[i0, 0]) * (points[i2, 1] - points[i0, 1]) - (
             points[i2, 0] - points[i0, 0]
         ) * (points[i1, 1] - points[i0, 1])
+
+
+@jit(parallel=True)
+def tetrahedron_gradients(points, cells):
+    """Volumes (M,), barycentric gradients (M, 4, 3) and longest squared edges (M,).
+
+    With ``e_k = x_k - x_0`` and ``det = e_1 . (e_2 x e_3)`` (six times the signed
+    volume), the gradient of the coordinate of vertex ``k`` (k = 1, 2, 3) is the
+    cross product of the other two edges in cyclic order over ``det``, and that
+    of vertex 0 minus their sum.  Dividing by the signed ``det`` gives the right
+    gradients for either orientation; the volume is ``|det| / 6``.  The longest
+    edge lets the caller judge near-zero volumes without a second pass.
+    """
+    m = cells.shape[0]
+    volumes = np.empty(m)
+    grads = np.empty((m, 4, 3))
+    longest = np.empty(m)
+    for t in prange(m):
+        i0 = cells[t, 0]
+        i1 = cells[t, 1]
+        i2 = cells[t, 2]
+        i3 = cells[t, 3]
+        ax = points[i1, 0] - points[i0, 0]
+        ay = points[i1, 1] - points[i0, 1]
+        az = points[i1, 2] - points[i0, 2]
+        bx = points[i2, 0] - points[i0, 0]
+        by = points[i2, 1] - points[i0, 1]
+        bz = points[i2, 2] - points[i0, 2]
+        cx = points[i3, 0] - points[i0, 0]
+        cy = points[i3, 1] - points[i0, 1]
+        cz = points[i3, 2] - points[i0, 2]
+        # b x c, c x a, a x b
+        g1x = by * cz - bz * cy
+        g1y = bz * cx - bx * cz
+        g1z = bx * cy - by * cx
+        g2x = cy * az - cz * ay
+        g2y = cz * ax - cx * az
+        g2z = cx * ay - cy * ax
+        g3x = ay * bz - az * by
+        g3y = az * bx - ax * bz
+        g3z = ax * by - ay * bx
+        det = ax * g1x + ay * g1y + az * g1z
+        volumes[t] = abs(det) / 6.0
+        grads[t, 1, 0] = g1x / det
+        grads[t, 1, 1] = g1y / det
+        grads[t, 1, 2] = g1z / det
+        grads[t, 2, 0] = g2x / det
+        grads[t, 2, 1] = g2y / det
+        grads[t, 2, 2] = g2z / det
+        grads[t, 3, 0] = g3x / det
+        grads[t, 3, 1] = g3y / det
+        grads[t, 3, 2] = g3z / det
+        for k in range(3):
+            grads[t, 0, k] = -((grads[t, 1, k] + grads[t, 2, k]) + grads[t, 3, k])
+        # the six edges: three from vertex 0, then b - a, c - a, c - b
+        e = ax * ax + ay * ay + az * az
+        e = max(e, bx * bx + by * by + bz * bz)
+        e = max(e, cx * cx + cy * cy + cz * cz)
+        e = max(e, (bx - ax) * (bx - ax) + (by - ay) * (by - ay) + (bz - az) * (bz - az))
+        e = max(e, (cx - ax) * (cx - ax) + (cy - ay) * (cy - ay) + (cz - az) * (cz - az))
+        e = max(e, (cx - bx) * (cx - bx) + (cy - by) * (cy - by) + (cz - bz) * (cz - bz))
+        longest[t] = e
+    return volumes, grads, longest
