@@ -88,6 +88,15 @@ def test_mesh_too_large_for_float64_is_refused_with_the_reason(L):
         hatkernels.Mesh(m.points * L, m.cells)
 
 
+def test_refined_below_float64_range_is_refused_by_areas():
+    # refinement builds meshes without validation: areas() refuses subnormal areas
+    m = rectangle(20, 20)
+    coarse = hatkernels.Mesh(m.points * 1e-152, m.cells)
+    assert coarse.refine().areas().min() > 0  # twice the area 6.2e-308: still normal
+    with pytest.raises(MeshError, match="coordinates too small to represent areas in float64"):
+        coarse.refine().refine().areas()
+
+
 def test_flat_triangles_keep_their_own_reason():
     with pytest.raises(MeshError, match=r"triangle 0 has zero area \(points 0, 1, 2 are "
                                         r"collinear\)"):

@@ -345,6 +345,8 @@ class Mesh:
         if "areas" not in self._cache:
             a = np.empty(self.n_triangles)
             _jit_geometry.double_areas(self._points, self._triangles, a)
+            if not (np.abs(a) >= np.finfo(np.float64).tiny).all():  # refined below float64's range
+                _scaled_areas(self._points, self._triangles, DEGENERATE_TOL)
             a *= 0.5
             self._cache["areas"] = _readonly(a)
         return self._cache["areas"]
