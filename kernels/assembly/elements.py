@@ -1,18 +1,37 @@
-"""Element values of the mass matrix and the load vector, vectorised over triangles.
+"""Element values of the mass matrix and the load vector, vectorised over triangles;
+element stiffness, mass and load values on tetrahedra.
 
-Symmetric element matrices are kept as two (M, 3) arrays: ``d[t, a]`` the
-diagonal entry of vertex ``a`` and ``o[t, c]`` the entry of the pair of
+Symmetric triangle element matrices are kept as two (M, 3) arrays: ``d[t, a]``
+the diagonal entry of vertex ``a`` and ``o[t, c]`` the entry of the pair of
 vertices opposite ``c``.  Closed forms come from the integrals of products of
-barycentric coordinates, ``int_T l1^p l2^q l3^r = 2|T| p! q! r! / (p+q+r+2)!``.
+barycentric coordinates, ``int_T l1^p l2^q l3^r = 2|T| p! q! r! / (p+q+r+2)!``,
+and on a tetrahedron ``int_T l1^p l2^q l3^r l4^s = 6|T| p! q! r! s! / (p+q+r+s+3)!``
+(M. A. Eisenberg and L. E. Malvern, *On finite element integration in natural
+co-ordinates*, Int. J. Numer. Meth. Eng. 7, 1973).  Tetrahedron values are full
+(M, 4, 4) matrices and (M, 4) vectors, computed from raw arrays (points,
+cells, volumes, gradients from :func:`hatkernels.element_gradients`) and a
+checked :class:`hatkernels.coefficients.Coefficient`, so that they need no mesh.
 """
 
 import numpy as np
 
 from hatkernels.coefficients import at_quadrature
 from hatkernels.errors import InputError
-from hatkernels.quadrature import triangle_rule
+from hatkernels.quadrature import tetrahedron_rule, triangle_rule
 
-__all__ = ["mass_values", "load_values", "lumped_values"]
+__all__ = [
+    "mass_values",
+    "load_values",
+    "lumped_values",
+    "tetrahedron_stiffness_values",
+    "tetrahedron_mass_values",
+    "tetrahedron_lumped_values",
+    "tetrahedron_load_values",
+]
+
+# Callables are evaluated on this many tetrahedra at a time, to bound the
+# temporaries at (chunk * points per tetrahedron) values.
+_TET_CHUNK = 1 << 16
 
 
 def mass_values(mesh, coef, quadrature):
@@ -57,3 +76,128 @@ def load_values(mesh, coef, quadrature):
         lam, w = triangle_rule(quadrature)
         return A[:, None] * ((at_quadrature(coef, mesh, quadrature) * w) @ lam)
     raise InputError(f"{coef.name} must be scalar, got a tensor")
+
+
+def _tetrahedron_quadrature(points, cells, coef, quadrature):
+    """Rule ``(lam (Q, 4), w (Q,))`` and a callable's checked values (M, Q) at its points."""
+    lam, w = tetrahedron_rule(quadrature)
+    m = len(cells)
+    out = np.empty((m, len(w)))
+    for start in range(0, m, _TET_CHUNK):
+        stop = min(m, start + _TET_CHUNK)
+        xq = np.einsum("qa,mai->imq", lam, points[cells[start:stop]])  # (3, m, Q)
+        owners = np.repeat(np.arange(start, stop), len(w))
+        coords = tuple(c.ravel() for c in xq)
+        v = coef.evaluate(coords, owners, owner="tetrahedron")
+        out[start:stop] = v.reshape(stop - start, len(w))
+    return lam, w, out
+
+
+def _tetrahedron_means(points, cells, coef, quadrature):
+    """Mean of a scalar coefficient over each tetrahedron: a float or an (M,) array
+    (exact for constant, per-cell and per-point values; by quadrature for callables)."""
+    if coef.kind == "constant":
+        return coef.value
+    if coef.kind == "cell":
+        return coef.value
+    if coef.kind == "point":
+        return coef.value[cells].mean(axis=1)
+    if coef.kind == "callable":
+        _, w, v = _tetrahedron_quadrature(points, cells, coef, quadrature)
+        return v @ w
+    raise InputError(f"{coef.name} must be scalar here, got a {coef.kind}")
+
+
+def tetrahedron_stiffness_values(points, cells, volumes, gradients, coef, quadrature=2):
+    """Element stiffness matrices ``int_T kappa grad(phi_a) . grad(phi_b)``, (M, 4, 4).
+
+    Parameters
+    ----------
+    points : ndarray, shape (n_points, 3)
+    cells : ndarray, shape (n_cells, 4)
+    volumes, gradients : ndarray, shapes (n_cells,) and (n_cells, 4, 3)
+        From :func:`hatkernels.element_gradients`.
+    coef : Coefficient
+        ``kappa``: a constant, one value per cell (M,), per point (N,; its exact
+        mean over the cell, kappa being linear and the gradients constant), a
+        callable (its mean by the rule of degree ``quadrature``), or a tensor,
+        one (3, 3) for all cells or one per cell (M, 3, 3): then the values are
+        ``|T| grad(phi_a) . K grad(phi_b)`` made exactly symmetric by averaging
+        with the transpose (a symmetric ``K`` changes only by round-off).
+    quadrature : int
+        Degree of the rule for a callable.
+
+    Returns
+    -------
+    ndarray, shape (n_cells, 4, 4)
+        Symmetric bit for bit, rows summing to zero up to round-off.
+    """
+    G = gradients
+    if coef.kind == "tensor":
+        K = np.asarray(coef.value, dtype=np.float64)
+        if K.shape not in ((3, 3), (len(G), 3, 3)):
+            raise InputError(
+                f"{coef.name}: a tensor on tetrahedra must have shape (3, 3) or "
+                f"({len(G)}, 3, 3), got {K.shape}"
+            )
+        spec = "ij,mbj->mbi" if K.ndim == 2 else "mij,mbj->mbi"
+        S = np.einsum("mai,mbi->mab", G, np.einsum(spec, K, G)) * volumes[:, None, None]
+        return 0.5 * (S + S.transpose(0, 2, 1))
+    w = volumes * _tetrahedron_means(points, cells, coef, quadrature)
+    return np.einsum("mai,mbi->mab", G, G) * w[:, None, None]
+
+
+def tetrahedron_mass_values(points, cells, volumes, coef, quadrature=2):
+    """Element mass matrices ``int_T c phi_a phi_b``, (M, 4, 4).
+
+    For constant or per-cell ``c``: ``c |T| (1 + delta_ab) / 20``; for ``c``
+    per point (linear on the cell): ``|T| (2 c_a + S) / 60`` on the diagonal and
+    ``|T| (c_a + c_b + S) / 120`` off it, ``S`` the sum of the four values
+    (both exact, from the integrals in the module's notes); for a callable, by
+    the rule of degree ``quadrature``.
+    """
+    m = len(volumes)
+    if coef.kind in ("constant", "cell"):
+        c = volumes * coef.value / 20.0
+        M = np.broadcast_to(c[:, None, None], (m, 4, 4)).copy()
+        M[:, range(4), range(4)] *= 2.0
+        return M
+    if coef.kind == "point":
+        cv = coef.value[cells]  # (M, 4)
+        s = cv.sum(axis=1)
+        M = (cv[:, :, None] + cv[:, None, :] + s[:, None, None]) * (volumes / 120.0)[:, None, None]
+        M[:, range(4), range(4)] = (2.0 * cv + s[:, None]) * (volumes / 60.0)[:, None]
+        return M
+    if coef.kind == "callable":
+        lam, w, v = _tetrahedron_quadrature(points, cells, coef, quadrature)
+        return np.einsum("mq,qa,qb->mab", v * w, lam, lam) * volumes[:, None, None]
+    raise InputError(f"{coef.name} must be scalar for a mass matrix, got a {coef.kind}")
+
+
+def tetrahedron_load_values(points, cells, volumes, coef, quadrature=2):
+    """Element load vectors ``int_T f phi_a``, (M, 4).
+
+    Constant or per-cell ``f``: ``f |T| / 4``; per point (``f`` linear on the
+    cell): ``|T| (f_a + S) / 20``, ``S`` the sum of the four values (exact); a
+    callable ``f(x, y, z)``: by the rule of degree ``quadrature`` at its points.
+    """
+    if coef.kind in ("constant", "cell"):
+        return np.repeat((volumes * coef.value / 4.0)[:, None], 4, axis=1)
+    if coef.kind == "point":
+        fv = coef.value[cells]
+        return (fv + fv.sum(axis=1, keepdims=True)) * (volumes / 20.0)[:, None]
+    if coef.kind == "callable":
+        lam, w, v = _tetrahedron_quadrature(points, cells, coef, quadrature)
+        return ((v * w) @ lam) * volumes[:, None]
+    raise InputError(f"{coef.name} must be scalar, got a {coef.kind}")
+
+
+def tetrahedron_lumped_values(points, cells, volumes, coef, quadrature=2):
+    """Row sums of the element mass matrices, (M, 4): ``c |T| / 4`` for constant or
+    per-cell ``c``.
+
+    The hat functions sum to one on the cell, so the row sums of
+    ``int_T c phi_a phi_b`` are ``int_T c phi_a``: the load values of ``c``,
+    computed by the same closed forms (exact) or the same rule.
+    """
+    return tetrahedron_load_values(points, cells, volumes, coef, quadrature)
