@@ -131,7 +131,7 @@ def _scaled_areas(points, triangles, degenerate_tol):
         grad_sq = (e2 / np.abs(d2a)) / np.abs(d2a)
     large = ~np.isfinite(d2a) | ~np.isfinite(e2)
     thin = rel > degenerate_tol
-    blind = span < np.sqrt(tiny / degenerate_tol)
+    blind = span < np.sqrt(tiny / max(degenerate_tol, np.finfo(np.float64).eps))
     small = ~large & (span > 0) & (((np.abs(d2a) < tiny) & (thin | blind))
                                    | (thin & ~np.isfinite(grad_sq)))
     for bad, word, hint in ((large, "large", "down"), (small, "small", "up")):
