@@ -60,6 +60,16 @@ def test_solution_scales_as_length_squared(L, preconditioner, unit_u_max):
     assert abs(_u_max(L, preconditioner) - expected) <= 1e-10 * expected
 
 
+@pytest.mark.parametrize("preconditioner", ("none", "gmg"))
+@pytest.mark.parametrize("L", (1e-150, 1e-100, 1e100, 1e150), ids=lambda L: f"L={L:g}")
+def test_matrix_free_solution_scales_as_length_squared(L, preconditioner):
+    # the matrix-free product through the same loop (analytic scaling; common practice,
+    # no source): compared with the assembled solve on the unit mesh
+    expected = L * L * _u_max(1.0, preconditioner)
+    got = _u_max(L, preconditioner, matrix_free=True)
+    assert abs(got - expected) <= 1e-10 * expected
+
+
 @pytest.mark.parametrize("L", (1e-100, 1e100), ids=("L=1e-100", "L=1e100"))
 def test_reaction_scales_with_length(L):
     # -lap u + c u = 1 stretched by L: u_{L, c / L**2}(L x) = L**2 u_{1, c}(x)

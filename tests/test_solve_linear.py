@@ -134,3 +134,19 @@ def test_monitor_sees_every_iteration_and_its_residual():
                    monitor=lambda k, r: seen.append((k, r)))
     assert [k for k, _ in seen] == list(range(1, result.iterations + 1))
     assert np.array([r for _, r in seen]) == pytest.approx(result.residuals[1:])
+
+
+@pytest.mark.parametrize("preconditioner", NAMES)
+@pytest.mark.parametrize("scale", (1e-250, 1e250))
+def test_right_hand_side_far_from_one(scale, preconditioner):
+    # b.b over- or underflows: solved scaled by a power of two, reported unscaled
+    A = CASES["poisson2d"]()
+    b = np.random.default_rng(4).standard_normal(A.shape[0])
+    result = solve(A, b * scale, preconditioner=preconditioner, rtol=1e-10)
+    assert result.converged
+    # reference library: scipy (sparse direct solve of the unscaled system)
+    ref = sla.spsolve(A.tocsc(), b)
+    assert np.linalg.norm(result.x / scale - ref) <= 1e-8 * np.linalg.norm(ref)
+    assert result.residuals[0] == pytest.approx(np.linalg.norm(b) * scale, rel=1e-14, abs=0)
+    assert result.stats.tolerance == pytest.approx(1e-10 * np.linalg.norm(b) * scale,
+                                                   rel=1e-14, abs=0)
