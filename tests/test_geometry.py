@@ -69,3 +69,9 @@ def test_degenerate_or_non_finite_triangles_are_named():
     for old, new in zip(before, inputs, strict=True):
         assert np.array_equal(old, new, equal_nan=True)
     assert np.isnan(bad).sum() == 1 and np.isnan(bad[4, 1])
+
+
+def test_ragged_input_is_an_input_error():
+    # numpy refuses ragged lists with its own ValueError; the library names the arguments
+    with pytest.raises(hatkernels.InputError, match="points and cells cannot be read as arrays"):
+        element_gradients([[0.0, 0.0], [1.0]], [[0, 1, 2]])
