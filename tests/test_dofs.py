@@ -273,6 +273,19 @@ def test_inputs_are_never_modified_and_may_be_read_only():
         np.testing.assert_array_equal(a, b)
 
 
+def test_long_rows_against_scipy_triplets():
+    # twelve dofs per cell, each dof in about eighteen cells: rows of ~200 candidate
+    # columns take the kernel's sorting branch, the short rows its insertion branch
+    rng = np.random.default_rng(11)
+    cells = np.array([rng.permutation(40)[:12] for _ in range(60)] + [list(range(41, 53))])
+    K = rng.standard_normal((len(cells), 12, 12))
+    assembler = DofAssembler(cells)
+    A = assembler.matrix(K)
+    assert_canonical(A)
+    assert_close(A, triplets(cells, K, 53))  # reference library: scipy
+    assert np.diff(A.indptr)[:40].min() > 12 and np.diff(A.indptr)[40:].max() == 12
+
+
 def test_explicit_zeros_are_kept_and_unused_dofs_have_empty_rows():
     cells = np.array([[0, 2, 3], [3, 2, 5]])
     assembler = DofAssembler(cells, n_dofs=7)  # dofs 1, 4 and 6 are in no cell

@@ -18,7 +18,12 @@ numba's checks for negative wraparound in the hot loops).
 from numba import prange, uint64
 
 from hatkernels._jit import jit
-from hatkernels._jit.topology import _find
+from hatkernels._jit.topology import _find, _insert_sorted
+
+# Rows with at most this many candidate columns are built by insertion (a few
+# shifts per column, measured faster than a sort call on the short rows of
+# low-order cells); longer rows are sorted, O(L log L) instead of O(L^2).
+_INSERT_MAX = 64
 
 
 @jit()
@@ -44,6 +49,18 @@ def incidence(cells, ptr, codes):
             fill[i] += 1
 
 
+@jit()
+def first_repeat(cells):
+    """The first cell that lists a dof twice, or -1 (serial: it stops at the first)."""
+    m, k = cells.shape
+    for t in range(m):
+        for a in range(1, k):
+            for b in range(a):
+                if cells[t, a] == cells[t, b]:
+                    return t
+    return -1
+
+
 @jit(parallel=True)
 def pattern_scratch(cells, ptr, codes, scratch, counts):
     """Sorted distinct columns of each row, into a scratch array with room to spare.
@@ -63,6 +80,15 @@ def pattern_scratch(cells, ptr, codes, scratch, counts):
         start = i + (k - 1) * ptr[i]
         scratch[start] = i
         c = 1
+        if (k - 1) * (ptr[i + 1] - ptr[i]) < _INSERT_MAX:
+            for e in range(ptr[i], ptr[i + 1]):
+                t = codes[e] // k
+                a = codes[e] - k * t
+                for b in range(k):
+                    if b != a:
+                        c = _insert_sorted(scratch, start, c, cells[t, b])
+            counts[i] = c
+            continue
         for e in range(ptr[i], ptr[i + 1]):
             t = codes[e] // k
             for b in range(k):
@@ -96,10 +122,12 @@ def pattern_fill(cells, ptr, codes, scratch, indptr, indices, slots):
         src = i + (k - 1) * ptr[i]
         for r in range(end - start):
             indices[start + r] = scratch[src + r]
+        diag = _find(indices, start, end, i) if end > start else start
         for e in range(ptr[i], ptr[i + 1]):
             t = codes[e] // k
+            a = codes[e] - k * t
             for b in range(k):
-                slots[e, b] = _find(indices, start, end, cells[t, b])
+                slots[e, b] = diag if b == a else _find(indices, start, end, cells[t, b])
 
 
 @jit(parallel=True)

@@ -81,7 +81,10 @@ def _first(mask, k):
 
 
 def _check_cell_dofs(cell_dofs, n_dofs):
-    """The validated table as int64 (a copy) and the number of dofs."""
+    """The validated table in the plan's index dtype (a copy if needed) and the number of dofs.
+
+    The kernels only read the table, so an array already in that dtype is used as it is.
+    """
     try:
         arr = np.asarray(cell_dofs)
     except (ValueError, TypeError) as exc:
@@ -93,11 +96,12 @@ def _check_cell_dofs(cell_dofs, n_dofs):
     if arr.dtype == np.bool_ or arr.dtype.kind not in "iu":
         raise InputError(f"cell_dofs must hold integers, got dtype {arr.dtype}")
     m, k = arr.shape
-    if arr.dtype.kind == "i" and (neg := arr < 0).any():
-        t, a = _first(neg, k)
+    lo, hi = int(arr.min()), int(arr.max())
+    if lo < 0:
+        t, a = _first(arr < 0, k)
         raise InputError(f"cell {t} has a negative dof index {arr[t, a]} (local position {a})")
     if n_dofs is None:
-        n = int(arr.max()) + 1
+        n = hi + 1
     else:
         if isinstance(n_dofs, (bool, np.bool_)):
             raise InputError(f"n_dofs must be an integer, got {n_dofs!r}")
@@ -109,25 +113,21 @@ def _check_cell_dofs(cell_dofs, n_dofs):
             raise InputError(f"n_dofs must be at least 1, got {n}")
     if n > np.iinfo(np.int64).max // 2:
         raise InputError(f"n_dofs = {n} is too large for int64 indices")
-    if (out := arr >= n).any():
-        t, a = _first(out, k)
+    if hi >= n:
+        t, a = _first(arr >= n, k)
         raise InputError(
             f"cell {t} has dof index {arr[t, a]} (local position {a}), out of range "
             f"for n_dofs = {n}"
         )
-    arr = arr.astype(np.int64)  # a copy: the caller's table is never touched
-    if k > 1:
-        s = np.sort(arr, axis=1)
-        same = s[:, 1:] == s[:, :-1]
-        if same.any():
-            t, p = _first(same, k - 1)
-            v = s[t, p]
-            a, b = np.flatnonzero(arr[t] == v)[:2]
-            raise InputError(
-                f"cell {t} lists dof {v} twice (local positions {a} and {b}); a dof "
-                "may appear once per cell"
-            )
-    return arr, n
+    cells = np.ascontiguousarray(arr, dtype=_index_dtype(n, m * k))
+    if (t := _jit_dofs.first_repeat(cells)) >= 0:
+        row = cells[t].tolist()
+        a = next(b for b in range(k) if row[b] in row[:b])
+        raise InputError(
+            f"cell {t} lists dof {row[a]} twice (local positions {row.index(row[a])} and "
+            f"{a}); a dof may appear once per cell"
+        )
+    return cells, n
 
 
 def _index_dtype(*counts):
@@ -136,10 +136,9 @@ def _index_dtype(*counts):
 
 
 def build_dof_plan(cells, n):
-    """Symbolic phase for a validated (M, k) int64 table ``cells`` over ``n`` dofs."""
+    """Symbolic phase for a validated (M, k) table ``cells`` over ``n`` dofs (only read)."""
     m, k = cells.shape
-    dt = _index_dtype(n, m * k)
-    cells = cells.astype(dt, copy=False)
+    dt = cells.dtype
     ptr = np.empty(n + 1, dtype=dt)
     codes = np.empty(m * k, dtype=dt)
     _jit_dofs.incidence(cells, ptr, codes)
