@@ -480,3 +480,33 @@ def test_inputs_are_not_modified():
     elements.tetrahedron_stiffness_values(p, t, vol, g, coefficient("point", cp))
     assert np.array_equal(p, saved[0]) and np.array_equal(t, saved[1])
     assert np.array_equal(cp, saved_c)
+
+
+def test_six_signed_volumes_kernel():
+    # the orientation a 3-D mesh needs: det(x1 - x0, x2 - x0, x3 - x0) (analytic for the
+    # reference tetrahedron: +1, and -1 with two vertices swapped); |det| / 6 is the volume
+    # element_gradients returns, bit for bit (the same operations)
+    from hatkernels._jit.geometry import six_signed_volumes
+
+    out = np.empty(2)
+    six_signed_volumes(REFERENCE, np.array([[0, 1, 2, 3], [0, 2, 1, 3]], dtype=np.int32), out)
+    assert out.tolist() == [1.0, -1.0]
+    p, t = random_tetrahedra(4, m=20)
+    out = np.empty(len(t))
+    six_signed_volumes(p, t, out)
+    vol, _ = element_gradients(p, t)
+    assert np.array_equal(np.abs(out) / 6.0, vol)
+    assert (out > 0).any() and (out < 0).any()
+
+
+@pytest.mark.two_threads
+def test_six_signed_volumes_one_and_two_threads():
+    from hatkernels._jit.geometry import six_signed_volumes
+
+    p, t = grid(8, 0.2, 9)
+    out1, out2 = np.empty(len(t)), np.empty(len(t))
+    with hatkernels.threads(1):
+        six_signed_volumes(p, t, out1)
+    with hatkernels.threads(2):
+        six_signed_volumes(p, t, out2)
+    assert np.array_equal(out1, out2)
