@@ -35,9 +35,9 @@ Tetrahedron rules, weights normalised to sum to one (multiply by the volume):
   10/189 (Stroud 1971, rule T3:5-1; Keast 1986 lists a rule of the same
   shape).  All weights positive, all points inside.
 
-The values are checked, not trusted: tests/test_quadrature.py and
-tests/test_tetrahedra.py integrate every monomial up to the degree against
-the closed form and show one of the next degree failing.  3 is served by
+The values are checked, not trusted: tests/test_tetrahedra.py integrates
+every monomial up to the degree against the closed form and shows one of the
+next degree failing (tests/test_quadrature.py does the same for triangles).  3 is served by
 the five-point rule, 4 and 5 by the fifteen-point rule.
 """
 
