@@ -18,13 +18,13 @@ is injected:
 ``reductions``
     ``sum(*values)`` turns this process's parts of one or a few dot products
     into the global values (a float for one, a tuple for several), in one
-    communication; ``maximum(value)`` gives the global maximum of one float
-    (used only when the system must be rescaled, see below).  :data:`LOCAL` is
-    the serial one: no communication, the values unchanged.  ``fuse_rz`` true (the MPI reducer) applies the
-    preconditioner before the convergence test so that ``r . r`` and
-    ``r . z`` share one reduction (one wasted application in the last
-    iteration, one reduction saved in every other); false (serial) applies it
-    after the test, so that the last iteration applies nothing.
+    communication; ``maximum(value)`` the global maximum of one float (only
+    when the system must be rescaled, see Scale).  :data:`LOCAL` is the serial
+    one: no communication, the values unchanged.  ``fuse_rz`` true (the MPI
+    reducer) applies the preconditioner before the convergence test so that
+    ``r . r`` and ``r . z`` share one reduction (one wasted application in the
+    last iteration, one reduction saved in every other); false (serial)
+    applies it after the test, so that the last iteration applies nothing.
 
 Scale.  ``r . r``, ``r . z`` and ``p . A p`` overflow or underflow when b or
 the operators are far from 1 (a mesh in units of 1e100 gives a load near
