@@ -54,9 +54,10 @@ def _check_areas(areas, p, t):
     kernel: a zero or non-finite area is exactly what spoils the gradients,
     and the kernel itself is harmless on any float input.
     """
-    if np.isfinite(areas).all() and areas.all():
+    tiny = np.finfo(np.float64).tiny  # below it areas are subnormal: digits already lost
+    if np.isfinite(areas).all() and (np.abs(areas) >= tiny).all():
         return
-    bad = ~np.isfinite(areas) | (areas == 0)
+    bad = ~np.isfinite(areas) | (np.abs(areas) < tiny)
     k = int(np.flatnonzero(bad)[0])
     tri = t[k].tolist()
     more = f"; {int(bad.sum())} triangles in all" if bad.sum() > 1 else ""
@@ -69,6 +70,10 @@ def _check_areas(areas, p, t):
         )
     if not np.isfinite(areas[k]):
         raise MeshError(f"triangle {k} (points {tri}) has an area that overflows{more}")
+    if areas[k] != 0:
+        raise MeshError(
+            f"triangle {k} (points {tri}): coordinates too small to represent areas in "
+            f"float64 (area {float(areas[k]):.3g}); scale the coordinates up{more}")
     raise MeshError(
         f"triangle {k} has zero area (points {tri[0]}, {tri[1]}, {tri[2]} are collinear){more}"
     )
