@@ -22,7 +22,7 @@ from hatkernels.assembly import (
     assemble_stiffness,
 )
 from hatkernels.boundary import DirichletSystem, apply_dirichlet
-from hatkernels.coefficients import per_edge, per_point, per_triangle
+from hatkernels.coefficients import per_cell, per_edge, per_point, per_triangle
 from hatkernels.discretise import LinearSystem, discretise
 from hatkernels.errors import ConvergenceError, InputError, MeshError, MeshWarning
 from hatkernels.geometry import element_gradients
@@ -66,6 +66,7 @@ __all__ = [
     "make_preconditioner",
     "mesh",
     "norms",
+    "per_cell",
     "per_edge",
     "per_point",
     "per_triangle",

@@ -31,6 +31,7 @@ __all__ = [
     "parse_edge_coefficient",
     "per_edge",
     "per_point",
+    "per_cell",
     "per_triangle",
 ]
 
@@ -56,8 +57,13 @@ def per_point(values):
     return Field(values, "point")
 
 
+def per_cell(values):
+    """Mark ``values`` as one per cell, triangle or tetrahedron (piecewise constant)."""
+    return Field(values, "cell")
+
+
 def per_triangle(values):
-    """Mark ``values`` as one per triangle (piecewise constant)."""
+    """Mark ``values`` as one per triangle (piecewise constant); :func:`per_cell` in 2-D."""
     return Field(values, "cell")
 
 
@@ -195,7 +201,9 @@ def parse_coefficient(value, mesh, *, name="coefficient", sign="positive", tenso
             raise InputError(f"{name} is {v!r}; {_REQUIREMENT[sign]}")
         return Coefficient("constant", v, name, sign)
     a = _as_real_array(value, name)
-    n, m = mesh.n_points, mesh.n_triangles
+    n, m = mesh.n_points, mesh.n_cells
+    items = _items(mesh)
+    cell, cells = items["cell"][0], items["cell"][1]
     if a.ndim == 0 and on is None:
         return parse_coefficient(float(a), mesh, name=name, sign=sign, tensor=tensor)
     d = mesh.dim
@@ -203,15 +211,15 @@ def parse_coefficient(value, mesh, *, name="coefficient", sign="positive", tenso
         if not tensor:
             raise InputError(f"{name} must be scalar here, got a tensor of shape {a.shape}")
         if a.ndim == 3 and a.shape[0] != m:
-            raise InputError(f"{name} has {a.shape[0]} tensors, but the mesh has {m} triangles")
-        _check_tensors(a, name, "triangle" if a.ndim == 3 else "constant")
+            raise InputError(f"{name} has {a.shape[0]} tensors, but the mesh has {m} {cells}")
+        _check_tensors(a, name, cell if a.ndim == 3 else "constant")
         return Coefficient("tensor", a, name, sign)
     if a.ndim != 1:
         raise InputError(
             f"{name} has shape {a.shape}; expected a number, one value per point ({n},), "
-            f"one per triangle ({m},)" + (f", or {d}x{d} tensors" if tensor else "")
+            f"one per {cell} ({m},)" + (f", or {d}x{d} tensors" if tensor else "")
         )
-    return _per_item(a, on, name, sign, n, "cell", m)
+    return _per_item(a, on, name, sign, n, "cell", m, items)
 
 
 # how each kind of item is named in messages, and the helper that tags it
@@ -220,16 +228,21 @@ _ITEM = {
     "cell": ("triangle", "triangles", "per_triangle"),
     "edge": ("edge", "edges", "per_edge"),
 }
+_ITEM_3D = {**_ITEM, "cell": ("tetrahedron", "tetrahedra", "per_cell")}
 
 
-def _per_item(a, on, name, sign, n_points, other, n_other):
-    """A 1-D array of values per point or per ``other`` item (triangle or edge), checked."""
-    plural = _ITEM[other][1]
+def _items(mesh):
+    return _ITEM_3D if mesh.dim == 3 else _ITEM
+
+
+def _per_item(a, on, name, sign, n_points, other, n_other, items=_ITEM):
+    """A 1-D array of values per point or per ``other`` item (cell or edge), checked."""
+    plural = items[other][1]
     if on is None:
         if len(a) == n_points == n_other:
             raise InputError(
                 f"{name} has {len(a)} values and there are {n_points} points and {n_other} "
-                f"{plural}: wrap it with hatkernels.per_point(...) or hatkernels.{_ITEM[other][2]}(...)"
+                f"{plural}: wrap it with hatkernels.per_point(...) or hatkernels.{items[other][2]}(...)"
             )
         on = "point" if len(a) == n_points else other if len(a) == n_other else None
     expected = n_points if on == "point" else n_other
@@ -237,7 +250,7 @@ def _per_item(a, on, name, sign, n_points, other, n_other):
         raise InputError(
             f"{name} has {len(a)} values, but there are {n_points} points and {n_other} {plural}"
         )
-    _check_values(a, name, sign, _ITEM[on][0])
+    _check_values(a, name, sign, items[on][0])
     return Coefficient(on, a, name, sign)
 
 

@@ -37,6 +37,7 @@ PUBLIC = {
     "make_preconditioner",
     "mesh",
     "norms",
+    "per_cell",
     "per_edge",
     "per_point",
     "per_triangle",

@@ -13,6 +13,11 @@ no duplicates, the full pattern of the mesh graph including explicit zeros):
     numeric phase that fills ``data`` row by row with no COO step,
     race-free and with the same bits for any thread count.
 
+On tetrahedra (a mesh of ``dim == 3``) the same three strategies apply to
+the element values of :mod:`hatkernels.assembly.elements`, the ``csr`` one
+through the generic plan of :class:`DofAssembler`
+(:mod:`hatkernels.assembly.tetrahedra`).
+
 See docs/assembly.md for what each costs.
 """
 
@@ -27,6 +32,7 @@ from hatkernels.assembly.csr import CSRNumeric
 from hatkernels.assembly.dofs import DofAssembler
 from hatkernels.assembly.elements import load_values, lumped_values, mass_values
 from hatkernels.assembly.plan import CSRPlan, build_plan
+from hatkernels.assembly.tetrahedra import TetrahedronAssembly
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
@@ -86,13 +92,20 @@ class StiffnessAssembler:
         self.mesh = _mesh(mesh)
         self.strategy = _strategy(strategy)
         self._numeric = None
-        if strategy == "csr":
+        self._cells3d = None
+        if mesh.dim == 3:
+            if fused or index_dtype is not None:
+                raise InputError("fused and index_dtype apply to triangle meshes only")
+            self._cells3d = TetrahedronAssembly(mesh, strategy)
+        elif strategy == "csr":
             plan = build_plan(mesh, index_dtype_override=index_dtype)
             self._numeric = CSRNumeric(mesh, plan, fused=fused)
 
     @property
     def plan(self):
-        """The :class:`CSRPlan` (``csr`` strategy only)."""
+        """The :class:`CSRPlan` (``csr`` strategy only; on tetrahedra, the DofAssembler)."""
+        if self._cells3d is not None:
+            return self._cells3d.plan if self.strategy == "csr" else None
         return None if self._numeric is None else self._numeric.plan
 
     def _matrix(self, data):
@@ -106,6 +119,8 @@ class StiffnessAssembler:
         averaged over each triangle with the rule of degree ``quadrature``.
         """
         coef = parse_coefficient(coefficient, self.mesh, name="coefficient", tensor=True)
+        if self._cells3d is not None:
+            return self._cells3d.stiffness(coef, quadrature)
         if self.strategy == "reference":
             return _reference.stiffness(self.mesh, coef, quadrature)
         if self.strategy == "triplets":
@@ -115,7 +130,7 @@ class StiffnessAssembler:
     def assemble_data(self, coefficient=None, *, quadrature=2, out=None):
         """``csr`` only: the numeric phase alone, into ``out`` (the matrix ``data``) if given."""
         if self._numeric is None:
-            raise InputError("assemble_data needs the csr strategy")
+            raise InputError("assemble_data needs the csr strategy on a triangle mesh")
         coef = parse_coefficient(coefficient, self.mesh, name="coefficient", tensor=True)
         if out is not None and (out.shape != (self.plan.nnz,) or out.dtype != np.float64):
             raise InputError(f"out must be a float64 array of shape ({self.plan.nnz},)")
@@ -124,6 +139,8 @@ class StiffnessAssembler:
     def assemble_mass(self, coefficient=None, *, lumped=False, quadrature=2):
         """Mass matrix ``int c phi_i phi_j`` (consistent, or lumped to its row sums)."""
         coef = parse_coefficient(coefficient, self.mesh, name="mass coefficient", sign="any")
+        if self._cells3d is not None:
+            return (self._cells3d.lumped if lumped else self._cells3d.mass)(coef, quadrature)
         if lumped:
             return _lumped(self.mesh, coef, quadrature)
         if self.strategy == "reference":
@@ -161,7 +178,7 @@ def assemble_stiffness(mesh, coefficient=None, *, strategy="csr", quadrature=2):
     >>> A.shape, float(A[12, 12])                # an interior point: 4 on the diagonal
     ((25, 25), 4.0)
     """
-    if _strategy(strategy) != "csr":
+    if _strategy(strategy) != "csr" or _mesh(mesh).dim == 3:
         return StiffnessAssembler(mesh, strategy=strategy).assemble(coefficient, quadrature=quadrature)
     # One matrix only: the fused numeric phase (no element-value temporaries)
     # and the plan's pattern handed to the matrix, which keeps the peak memory
@@ -183,7 +200,9 @@ def assemble_mass(mesh, coefficient=None, *, lumped=False, strategy="csr", quadr
     >>> round(float(M.sum()), 12)                # the area of the unit square
     1.0
     """
-    _mesh(mesh)
+    if _mesh(mesh).dim == 3:
+        return StiffnessAssembler(mesh, strategy=strategy).assemble_mass(
+            coefficient, lumped=lumped, quadrature=quadrature)
     if lumped:
         coef = parse_coefficient(coefficient, mesh, name="mass coefficient", sign="any")
         return _lumped(mesh, coef, quadrature)
@@ -211,6 +230,8 @@ def assemble_load(mesh, f, *, quadrature=2):
     """
     _mesh(mesh)
     coef = parse_coefficient(f, mesh, name="load", sign="any")
+    if mesh.dim == 3:
+        return TetrahedronAssembly(mesh).load(coef, quadrature)
     tri = mesh.triangles
     if coef.kind in ("constant", "cell"):
         # the same value at the three vertices: one pass, no (M,) temporaries
