@@ -54,47 +54,48 @@ def _manufactured():
 
 def run(args, progress):
     """Run ``hatkernels verify``; return the exit code (1 when the rates are off)."""
-    out = kio.check_output_directory(args.out, force=args.force)  # refused before solving
-    command = command_line(args)
-    exact, grad, source = _manufactured()
-    notice = CompileNotice(progress)
-    level = [0]
-    solve_seconds = []
+    # The temporary output directory is made first: an output that cannot be created
+    # fails before the solves, and every later failure removes it.
+    with kio.output_directory(args.out, force=args.force) as tmp:
+        command = command_line(args)
+        exact, grad, source = _manufactured()
+        notice = CompileNotice(progress)
+        level = [0]
+        solve_seconds = []
 
-    def solver(mesh):
-        level[0] += 1
-        progress.phase(f"level {level[0]} of {args.levels}: {mesh.n_triangles:,} triangles")
-        t0 = time.perf_counter()
-        with notice if level[0] == 1 else contextlib.nullcontext():  # the first compiles
-            sol = solve_poisson(mesh, source, dirichlet=0.0, preconditioner=args.preconditioner,
-                                rtol=args.rtol, check=True)
-        solve_seconds.append(time.perf_counter() - t0)
-        return sol.u
+        def solver(mesh):
+            level[0] += 1
+            progress.phase(f"level {level[0]} of {args.levels}: {mesh.n_triangles:,} triangles")
+            t0 = time.perf_counter()
+            with notice if level[0] == 1 else contextlib.nullcontext():  # the first compiles
+                sol = solve_poisson(mesh, source, dirichlet=0.0, preconditioner=args.preconditioner,
+                                    rtol=args.rtol, check=True)
+            solve_seconds.append(time.perf_counter() - t0)
+            return sol.u
 
-    with threads(args.threads):
-        study = convergence_study(rectangle(args.start), solver, exact, grad, levels=args.levels)
-    l2, h1 = float(study.rates["L2"][-1]), float(study.rates["H1"][-1])
-    passed = abs(l2 - 2) <= RATE_TOLERANCE and abs(h1 - 1) <= RATE_TOLERANCE
-    record = base_record(command)
-    record.update({
-        "problem": "-lap u = 2 pi^2 sin(pi x) sin(pi y) on the unit square, u = 0 on the "
-                   "boundary; exact u = sin(pi x) sin(pi y)",
-        "meshes": f"rectangle({args.start}) and {args.levels - 1} uniform refinements",
-        "preconditioner": args.preconditioner,
-        "rtol": args.rtol,
-        "h": study.h.tolist(),
-        "n_points": study.n_points.tolist(),
-        "errors": {k: v.tolist() for k, v in study.errors.items()},
-        "rates": {k: v.tolist() for k, v in study.rates.items()},
-        "expected_rates": {"L2": 2, "H1": 1},
-        "rate_tolerance": RATE_TOLERANCE,
-        "passed": passed,
-        "solve_seconds": solve_seconds,
-        "versions": versions(),
-    })
-    files = ["verify.json"]
-    progress.phase(f"write: {args.out}")
-    with kio.output_directory(out, force=args.force) as tmp:
+        with threads(args.threads):
+            study = convergence_study(rectangle(args.start), solver, exact, grad, levels=args.levels)
+        l2, h1 = float(study.rates["L2"][-1]), float(study.rates["H1"][-1])
+        passed = abs(l2 - 2) <= RATE_TOLERANCE and abs(h1 - 1) <= RATE_TOLERANCE
+        record = base_record(command)
+        record.update({
+            "problem": "-lap u = 2 pi^2 sin(pi x) sin(pi y) on the unit square, u = 0 on the "
+                       "boundary; exact u = sin(pi x) sin(pi y)",
+            "meshes": f"rectangle({args.start}) and {args.levels - 1} uniform refinements",
+            "preconditioner": args.preconditioner,
+            "rtol": args.rtol,
+            "h": study.h.tolist(),
+            "n_points": study.n_points.tolist(),
+            "errors": {k: v.tolist() for k, v in study.errors.items()},
+            "rates": {k: v.tolist() for k, v in study.rates.items()},
+            "expected_rates": {"L2": 2, "H1": 1},
+            "rate_tolerance": RATE_TOLERANCE,
+            "passed": passed,
+            "solve_seconds": solve_seconds,
+            "versions": versions(),
+        })
+        files = ["verify.json"]
+        progress.phase(f"write: {args.out}")
         if plot.available():
             progress.phase("write: convergence.png")
             plot.convergence_figure(study.h, study.errors, os.path.join(tmp, "convergence.png"),
