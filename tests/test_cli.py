@@ -585,6 +585,17 @@ def test_ctrl_c_in_each_phase_of_a_solve(small, tmp_path, phase):
     assert listing(tmp_path) == before
 
 
+def test_ctrl_c_after_the_output_is_in_place_says_so(small, tmp_path):
+    # the "done" phase comes after the final rename: the output is whole, and the message
+    # must not claim that nothing was written
+    proc = start("solve", "--cells", 48, "--out", tmp_path / "o", env=paused("done"))
+    code, lines = interrupt_when(proc, 'test pause in "done"')
+    assert code == 130
+    assert last_error(lines).endswith(f"interrupted; {tmp_path / 'o'} was written whole "
+                                      f"before the interrupt")
+    assert set(os.listdir(tmp_path)) == {"o"} and set(os.listdir(tmp_path / "o")) == SOLVE_FILES
+
+
 def test_ctrl_c_during_the_iterations_without_the_hook(small, tmp_path):
     # no pause: the interrupt lands inside conjugate gradients, which cannot have ended
     # (an rtol of 1e-300 is never reached); the first iteration line comes after a second

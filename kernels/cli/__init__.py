@@ -295,11 +295,22 @@ def _target(args):
     return args.json if args.command == "bench" else None
 
 
+def _identity(path):
+    """What tells whether ``path`` was replaced meanwhile: its inode and time, or None."""
+    try:
+        st = os.lstat(path)
+    except (OSError, TypeError):
+        return None
+    return st.st_ino, st.st_mtime_ns
+
+
 def _left_as_it_was(args):
     target = _target(args)
     if target is None:
         return "nothing written"
-    return f"{target} is as it was before" if args.existed else f"nothing written to {target}"
+    if _identity(target) != args.before:  # the interrupt came after the final rename
+        return f"{target} was written whole before the interrupt"
+    return f"{target} is as it was before" if args.before else f"nothing written to {target}"
 
 
 def main(argv=None):
@@ -316,7 +327,7 @@ def main(argv=None):
         error(exc)
         return EXIT["usage"]
     args.argv = argv[argv.index(args.command) + 1:] if args.command in argv else []
-    args.existed = _target(args) is not None and os.path.lexists(_target(args))
+    args.before = None if _target(args) is None else _identity(_target(args))
     progress = Progress(quiet=args.quiet)
 
     def fail(code, text):
