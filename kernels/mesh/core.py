@@ -1,4 +1,6 @@
-"""The triangle mesh: validation once, then immutable arrays and cached topology."""
+"""The mesh of triangles or tetrahedra: validation once, then immutable arrays and
+cached topology.  The checks live in :mod:`hatkernels.mesh.triangles` and
+:mod:`hatkernels.mesh.tetrahedra`; the constructor picks them by the points' shape."""
 
 from __future__ import annotations
 
@@ -10,28 +12,33 @@ from hatkernels._jit import geometry as _jit_geometry
 from hatkernels._jit import topology as _topo
 from hatkernels._sets import index_union
 from hatkernels.errors import InputError, MeshError, MeshWarning
+from hatkernels.geometry import DEGENERATE_VOLUME_TOL
+from hatkernels.mesh import tetrahedra as _tet
 from hatkernels.mesh.components import point_components
 from hatkernels.mesh.core_index import index_dtype
 from hatkernels.mesh.pattern import csr_pattern
 from hatkernels.mesh.quality import quality as _quality
+from hatkernels.mesh.quality3d import tetrahedron_quality
 from hatkernels.mesh.refine import refine as _refine
 from hatkernels.mesh.refinement import Refinement
 from hatkernels.mesh.reorder import reorder as _reorder
+from hatkernels.mesh.triangles import (
+    CELL_WORDS,
+    DEGENERATE_TOL,
+    check_cells,
+    check_points,
+    longest_edge_sq,
+    reoriented_triangles,
+    scaled_areas,
+)
 
 # Refinement and index_dtype are re-exported: they were first defined here.
 __all__ = ["Mesh", "Refinement", "index_dtype", "DEGENERATE_TOL"]
 
-#: A triangle is degenerate when twice its area is at most this fraction of
-#: its longest edge squared (that ratio is about the smallest altitude over
-#: the longest edge).  Round-off in the area of a flat triangle with
-#: coordinates of order one is near 1e-16, so 1e-12 flags collinear points
-#: while accepting anisotropic triangles up to aspect ratios near 1e12.
-DEGENERATE_TOL = 1e-12
-
 #: The derived arrays a mesh may hold in its cache, by name (see :meth:`Mesh.cached`).
 CACHEABLE = frozenset(
     {"areas", "boundary_edges", "boundary_points", "edges", "incidence", "triangle_edges",
-     "unused"}
+     "unused", "volumes", "faces", "cell_faces", "boundary_faces"}
 )
 
 
@@ -40,147 +47,51 @@ def _readonly(a):
     return a
 
 
-def _check_points(points):
-    try:
-        p = np.asarray(points)
-    except Exception as exc:  # ragged lists and the like
-        raise MeshError(f"points cannot be read as an array: {exc}") from None
-    if p.ndim != 2 or p.shape[1] != 2:
-        raise MeshError(f"points must have shape (n_points, 2), got shape {p.shape}")
-    if p.shape[0] == 0:
-        raise MeshError("points is empty")
-    if p.dtype.kind not in "fiu" or p.dtype == np.float16:
-        raise MeshError(
-            f"points must be a real floating-point array (float64), got dtype {p.dtype}"
-        )
-    p = np.array(p, dtype=np.float64, order="C", copy=True)
-    finite = np.isfinite(p).all(axis=1)
-    if not finite.all():
-        bad = np.flatnonzero(~finite)
-        raise MeshError(
-            f"point {bad[0]} has a non-finite coordinate ({float(p[bad[0], 0])!r}, {float(p[bad[0], 1])!r})"
-            + (f"; {bad.size} points in all" if bad.size > 1 else "")
-        )
-    return p
-
-
-def _check_triangles(triangles, n_points):
-    try:
-        t = np.asarray(triangles)
-    except Exception as exc:
-        raise MeshError(f"triangles cannot be read as an array: {exc}") from None
-    if t.ndim != 2 or t.shape[1] != 3:
-        raise MeshError(f"triangles must have shape (n_triangles, 3), got shape {t.shape}")
-    if t.shape[0] == 0:
-        raise MeshError("triangles is empty")
-    if t.dtype.kind not in "iu":
-        raise MeshError(
-            f"triangles must be an integer array of point indices, got dtype {t.dtype}"
-        )
-    lo = t.min(axis=1)
-    if lo.min() < 0:
-        k = int(np.flatnonzero(lo < 0)[0])
-        raise MeshError(f"triangle {k} has a negative point index {t[k].tolist()}")
-    hi = t.max(axis=1)
-    if hi.max() >= n_points:
-        k = int(np.flatnonzero(hi >= n_points)[0])
-        raise MeshError(
-            f"triangle {k} refers to point {int(hi[k])}, but there are only {n_points} "
-            f"points (valid indices 0..{n_points - 1})"
-        )
-    t = np.array(t, dtype=index_dtype(n_points), order="C", copy=True)
-    same = (t[:, 0] == t[:, 1]) | (t[:, 1] == t[:, 2]) | (t[:, 0] == t[:, 2])
-    if same.any():
-        bad = np.flatnonzero(same)
-        raise MeshError(
-            f"triangle {bad[0]} repeats a vertex {t[bad[0]].tolist()}"
-            + (f"; {bad.size} triangles in all" if bad.size > 1 else "")
-        )
-    return t
-
-
-def signed_double_areas(points, triangles):
-    """Twice the signed area of each triangle (positive when counterclockwise)."""
-    p0 = points[triangles[:, 0]]
-    d1 = points[triangles[:, 1]] - p0
-    d2 = points[triangles[:, 2]] - p0
-    return d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0]
-
-
-def _longest_edge_sq(points, triangles):
-    p0, p1, p2 = (points[triangles[:, k]] for k in range(3))
-    return np.maximum(
-        np.maximum(((p1 - p0) ** 2).sum(axis=1), ((p2 - p1) ** 2).sum(axis=1)),
-        ((p0 - p2) ** 2).sum(axis=1),
-    )
-
-
-def _scaled_areas(points, triangles, degenerate_tol):
-    """Twice the signed areas and ``|2 area| / longest side**2``; coordinates whose areas
-    float64 cannot represent are refused first, not called flat.  For triangles of size
-    ``h`` twice the area is near ``h**2`` and the squared hat gradients near ``h**-2``:
-    beyond about 1e154 and 1e-154 they overflow or underflow (into subnormals, with fewer
-    bits, down to zero, so that a flat triangle cannot be told from a thin one)."""
-    tiny = np.finfo(np.float64).tiny
-    p0, p1, p2 = (points[triangles[:, k]] for k in range(3))
-    with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
-        d2a = signed_double_areas(points, triangles)
-        e2 = _longest_edge_sq(points, triangles)
-        rel = np.abs(d2a) / e2
-        span = np.maximum(np.abs(p1 - p0).max(axis=1), np.abs(p2 - p0).max(axis=1))
-        grad_sq = (e2 / np.abs(d2a)) / np.abs(d2a)
-    large = ~np.isfinite(d2a) | ~np.isfinite(e2)
-    thin = rel > degenerate_tol
-    blind = span < np.sqrt(tiny / max(degenerate_tol, np.finfo(np.float64).eps))
-    small = ~large & (span > 0) & (((np.abs(d2a) < tiny) & (thin | blind))
-                                   | (thin & ~np.isfinite(grad_sq)))
-    for bad, word, hint in ((large, "large", "down"), (small, "small", "up")):
-        if bad.any():
-            idx = np.flatnonzero(bad)
-            k = int(idx[0])
-            raise MeshError(
-                f"triangle {k} (points {', '.join(map(str, triangles[k].tolist()))}): coordinates"
-                f" too {word} to represent areas in float64 (side extent {float(span[k]):.3g}, "
-                f"twice the area {float(d2a[k]):.3g}; usable from about 1e-307 to 1e307); scale "
-                f"the coordinates {hint} (another unit of length)"
-                + (f"; {idx.size} triangles in all" if idx.size > 1 else ""))
-    return d2a, rel
-
 
 class Mesh:
-    """A conforming triangle mesh in the plane.
+    """A conforming mesh of triangles in the plane or of tetrahedra in space.
 
     Parameters
     ----------
-    points : array_like, shape (n_points, 2)
-        Coordinates; any real dtype, stored as float64.
-    cells : array_like, shape (n_cells, 3)
-        Point indices of each triangle; any integer dtype, stored as int32
-        (int64 when there are more than 2**31 - 1 points).
-    degenerate_tol : float
-        Relative area below which a triangle counts as degenerate, see
-        :data:`DEGENERATE_TOL`.
+    points : array_like, shape (n_points, 2) or (n_points, 3)
+        Coordinates; any real dtype, stored as float64.  Their shape picks
+        the cells: triangles for points in the plane, tetrahedra in space.
+    cells : array_like, shape (n_cells, 3) or (n_cells, 4)
+        Point indices of each triangle or tetrahedron; any integer dtype,
+        stored as int32 (int64 when there are more than 2**31 - 1 points).
+    degenerate_tol : float, optional
+        Triangles: relative area (``|2 area| / longest side**2``) below which
+        a triangle is degenerate, :data:`DEGENERATE_TOL` by default.
+        Tetrahedra: ``6 |V| / longest edge**3`` below which a tetrahedron is,
+        :data:`hatkernels.geometry.DEGENERATE_VOLUME_TOL` by default (the
+        measure :func:`hatkernels.element_gradients` judges by).
 
     Raises
     ------
     MeshError
-        With the index of the first offending triangle or point: wrong shape
-        or dtype, non-finite coordinates, indices out of range, a repeated
-        vertex, a (near) zero area, duplicate or overlapping triangles, an
-        edge shared by more than two triangles.
+        With the index of the first offending cell or point: wrong shape or
+        dtype, non-finite coordinates, indices out of range, a repeated
+        vertex, a (near) zero area or volume (collinear or coplanar points),
+        duplicate or overlapping cells, an edge shared by more than two
+        triangles or a face shared by more than two tetrahedra.
 
     Warns
     -----
     MeshWarning
-        When clockwise triangles were reoriented (in the mesh's own copy,
-        never in the caller's array) or some points belong to no triangle.
-        Such points give empty matrix rows; :func:`hatkernels.apply_dirichlet`
-        leaves them out of the system.
+        When clockwise triangles or negatively oriented tetrahedra were
+        reoriented (in the mesh's own copy, never in the caller's array) or
+        some points belong to no cell.  Such points give empty matrix rows;
+        :func:`hatkernels.apply_dirichlet` leaves them out of the system.
 
     Notes
     -----
     The inputs are copied; the mesh's arrays are read-only, so topology
-    (edges, boundary) is computed once and cached.
+    (edges, faces, boundary) is computed once and cached.  Stored cells are
+    positively oriented: triangles counterclockwise, tetrahedra with
+    ``det(x1 - x0, x2 - x0, x3 - x0) > 0``.  Edges, refinement and
+    reordering are for triangles only so far (an InputError on tetrahedra);
+    ``.triangles`` of a 3-D mesh and ``.tetrahedra`` of a 2-D one are
+    InputErrors too, ``.cells`` serves both.
 
     Examples
     --------
@@ -192,40 +103,32 @@ class Mesh:
     array([0, 1, 2, 3], dtype=int32)
     >>> m.edges().tolist()
     [[0, 1], [0, 2], [0, 3], [1, 3], [2, 3]]
+    >>> t = hatkernels.Mesh([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]], [[0, 1, 2, 3]])
+    >>> t, t.dim, t.measures() * 6
+    (Mesh(4 points, 1 tetrahedra), 3, array([1.]))
     """
 
-    def __init__(self, points, cells, *, degenerate_tol=DEGENERATE_TOL):
-        p = _check_points(points)
-        t = _check_triangles(cells, p.shape[0])
-        d2a, rel = _scaled_areas(p, t, degenerate_tol)
-        flat = np.flatnonzero(~(rel > degenerate_tol))
-        if flat.size:
-            k = int(flat[0])
-            i, j, l = t[k].tolist()
-            kind = "zero area" if d2a[k] == 0 else f"near-zero area (relative {rel[k]:.1e})"
-            same = [(u, v) for u, v in ((i, j), (j, l), (i, l)) if (p[u] == p[v]).all()]
-            why = (f"points {same[0][0]} and {same[0][1]} coincide at {tuple(p[same[0][0]].tolist())}"
-                   if same else f"points {i}, {j}, {l} are collinear")
-            raise MeshError(f"triangle {k} has {kind} ({why})"
-                            + (f"; {flat.size} triangles in all" if flat.size > 1 else ""))
-        clockwise = d2a < 0
-        n_cw = int(clockwise.sum())
-        if n_cw:
-            t[clockwise, 1], t[clockwise, 2] = t[clockwise, 2], t[clockwise, 1].copy()
-            warnings.warn(
-                f"{n_cw} of {t.shape[0]} triangles were clockwise and have been reoriented "
-                f"(first: triangle {int(np.flatnonzero(clockwise)[0])})",
-                MeshWarning,
-                stacklevel=2,
-            )
+    def __init__(self, points, cells, *, degenerate_tol=None):
+        p = check_points(points)
+        dim = p.shape[1]
+        t = check_cells(cells, p.shape[0], dim)
+        if dim == 2:
+            tol = DEGENERATE_TOL if degenerate_tol is None else degenerate_tol
+            t = reoriented_triangles(p, t, tol, stacklevel=2)
+        else:
+            tol = DEGENERATE_VOLUME_TOL if degenerate_tol is None else degenerate_tol
+            t = _tet.reoriented(p, t, tol, stacklevel=2)
         self._init(p, t)
-        self._check_edges()
+        if dim == 2:
+            self._check_edges()
+        else:
+            _tet.check_faces(t)
         used = np.bincount(t.ravel(), minlength=p.shape[0]) > 0
         if not used.all():
             unused = np.flatnonzero(~used)
             self._cache["unused"] = _readonly(unused.astype(t.dtype))
             warnings.warn(
-                f"{unused.size} of {p.shape[0]} points belong to no triangle "
+                f"{unused.size} of {p.shape[0]} points belong to no {CELL_WORDS[dim][1]} "
                 f"(first: point {unused[0]}); they get empty matrix rows",
                 MeshWarning,
                 stacklevel=2,
@@ -291,13 +194,28 @@ class Mesh:
 
     @property
     def triangles(self):
-        """The cells of a 2-D mesh (an alias of :attr:`cells`)."""
+        """The cells of a 2-D mesh (an alias of :attr:`cells`); an InputError in 3-D."""
+        self._need(2, "triangles", "a 3-D mesh has tetrahedra: use .cells or .tetrahedra")
+        return self._triangles
+
+    @property
+    def tetrahedra(self):
+        """The cells of a 3-D mesh (an alias of :attr:`cells`); an InputError in 2-D."""
+        self._need(3, "tetrahedra", "a 2-D mesh has triangles: use .cells or .triangles")
         return self._triangles
 
     @property
     def dim(self):
-        """The space dimension (2: points in the plane, cells are triangles)."""
+        """The space dimension: 2 (points in the plane, triangles) or 3 (tetrahedra)."""
         return self._points.shape[1]
+
+    def _need(self, dim, name, hint=None):
+        """Refuse ``name`` on a mesh of the other dimension, with an InputError."""
+        if self.dim != dim:
+            raise InputError(
+                f"Mesh.{name} is not available for "
+                f"{CELL_WORDS[self.dim][0]}{' yet' if hint is None else ''}"
+                + (f": {hint}" if hint else ""))
 
     @property
     def n_cells(self):
@@ -309,6 +227,7 @@ class Mesh:
 
     @property
     def n_triangles(self):
+        self._need(2, "n_triangles", "use .n_cells")
         return self._triangles.shape[0]
 
     @property
@@ -327,26 +246,36 @@ class Mesh:
         extra = ""
         if self._refinement is not None:
             extra = f", {len(self.levels()) - 1} refinements"
-        return f"Mesh({self.n_points} points, {self.n_triangles} triangles{extra})"
+        return f"Mesh({self.n_points} points, {self.n_cells} {CELL_WORDS[self.dim][0]}{extra})"
 
     def unused_points(self):
-        """Points that belong to no triangle, sorted."""
+        """Points that belong to no cell, sorted."""
         if "unused" not in self._cache:
             used = np.bincount(self._triangles.ravel(), minlength=self.n_points) > 0
             self._cache["unused"] = _readonly(np.flatnonzero(~used).astype(self._triangles.dtype))
         return self._cache["unused"]
 
     def measures(self):
-        """Measure (area in 2-D) of each cell, shape (n_cells,)."""
-        return self.areas()
+        """Measure of each cell (area in 2-D, volume in 3-D), shape (n_cells,), positive."""
+        return self.areas() if self.dim == 2 else self.volumes()
+
+    def volumes(self):
+        """Volume of each tetrahedron, shape (n_tetrahedra,), float64, positive."""
+        self._need(3, "volumes()", "use measures() or areas()")
+        if "volumes" not in self._cache:
+            v = _tet.six_volumes(self._points, self._triangles)
+            v /= 6.0
+            self._cache["volumes"] = _readonly(v)
+        return self._cache["volumes"]
 
     def areas(self):
         """Area of each triangle, shape (n_triangles,)."""
+        self._need(2, "areas()", "use measures() or volumes()")
         if "areas" not in self._cache:
             a = np.empty(self.n_triangles)
             _jit_geometry.double_areas(self._points, self._triangles, a)
             if not (np.abs(a) >= np.finfo(np.float64).tiny).all():  # refined below float64's range
-                _scaled_areas(self._points, self._triangles, DEGENERATE_TOL)
+                scaled_areas(self._points, self._triangles, DEGENERATE_TOL)
             a *= 0.5
             self._cache["areas"] = _readonly(a)
         return self._cache["areas"]
@@ -368,6 +297,7 @@ class Mesh:
         return self._cache["incidence"]
 
     def _edge_topology(self):
+        self._need(2, "edges()")
         if "edges" not in self._cache or "triangle_edges" not in self._cache:
             tri = self._triangles_for_topology()
             ptr, codes = self._incidence()
@@ -400,6 +330,7 @@ class Mesh:
         (outer boundaries run counterclockwise, holes clockwise); sorted by
         first point, then second.
         """
+        self._need(2, "boundary_edges()", "use boundary_faces()")
         if "boundary_edges" not in self._cache:
             tri = self._triangles_for_topology()
             ptr, codes = self._incidence()
@@ -415,18 +346,51 @@ class Mesh:
     def boundary_points(self):
         """Points on the boundary, sorted, shape (n_boundary_points,)."""
         if "boundary_points" not in self._cache:
-            points = index_union(self.n_points, self.boundary_edges().ravel())
+            sides = self.boundary_edges() if self.dim == 2 else self.boundary_faces()
+            points = index_union(self.n_points, sides.ravel())
             self._cache["boundary_points"] = _readonly(points.astype(self._triangles.dtype))
         return self._cache["boundary_points"]
 
     def boundary_length(self):
         """Total length of the boundary edges."""
+        self._need(2, "boundary_length()")
         b = self.boundary_edges()
         return float(np.linalg.norm(self._points[b[:, 1]] - self._points[b[:, 0]], axis=1).sum())
 
     def h(self):
         """Longest edge length in the mesh (the mesh size)."""
-        return float(np.sqrt(_longest_edge_sq(self._points, self._triangles).max()))
+        longest = longest_edge_sq if self.dim == 2 else _tet.longest_edge_sq
+        return float(np.sqrt(longest(self._points, self._triangles).max()))
+
+    # -- faces of tetrahedra -------------------------------------------------------
+
+    def _face_topology(self):
+        self._need(3, "faces()", "triangles have edges: use edges()")
+        if "faces" not in self._cache:
+            faces, cell_faces, boundary = _tet.face_topology(self._triangles)
+            self._cache["faces"] = _readonly(faces)
+            self._cache["cell_faces"] = _readonly(cell_faces)
+            self._cache["boundary_faces"] = _readonly(boundary)
+        return self._cache["faces"], self._cache["cell_faces"], self._cache["boundary_faces"]
+
+    def faces(self):
+        """Unique faces of the tetrahedra ``(i, j, k)`` with ``i < j < k``, sorted,
+        shape (n_faces, 3)."""
+        return self._face_topology()[0]
+
+    def cell_faces(self):
+        """Number (row of :meth:`faces`) of the face opposite each local vertex,
+        shape (n_tetrahedra, 4)."""
+        return self._face_topology()[1]
+
+    def boundary_faces(self):
+        """Faces that belong to one tetrahedron only, shape (n_boundary_faces, 3).
+
+        Each is oriented outward: seen from outside the mesh its points run
+        counterclockwise (the right-hand normal ``(x1 - x0) x (x2 - x0)`` points
+        out).  Rows come in the order of their sorted point triples.
+        """
+        return self._face_topology()[2]
 
     # -- the cache -----------------------------------------------------------------
 
@@ -483,15 +447,19 @@ class Mesh:
         The four children of triangle ``t`` are triangles ``4t .. 4t+3``;
         boundary topology is carried over without recomputation.
         """
+        self._need(2, "refine()")
         return _refine(self)
 
     def reorder(self, method="rcm"):
         """Renumber points and triangles for locality; see :func:`hatkernels.mesh.reorder`."""
+        self._need(2, "reorder()")
         return _reorder(self, method)
 
     def quality(self):
-        """Angles, areas and aspect ratios; see :class:`hatkernels.mesh.MeshQuality`."""
-        return _quality(self)
+        """Shape measures: angles, areas and aspect ratios of triangles
+        (:class:`hatkernels.mesh.MeshQuality`); dihedral angles, volumes and radius
+        ratios of tetrahedra (:class:`hatkernels.mesh.TetrahedronQuality`)."""
+        return _quality(self) if self.dim == 2 else tetrahedron_quality(self)
 
     def components(self):
         """``(count, labels)``: connected parts and each point's part (-1: in no cell);

@@ -1,4 +1,5 @@
-"""Mesh generators: rectangles, an L-shaped domain, a disk, and Delaunay of given points."""
+"""Mesh generators: rectangles, an L-shaped domain, a disk, and Delaunay of given points
+(in the plane or, through :mod:`hatkernels.mesh.generators3d`, in space)."""
 
 import warnings
 
@@ -7,8 +8,12 @@ from scipy.spatial import Delaunay
 
 from hatkernels.checks import integer_option, real_option
 from hatkernels.errors import InputError, MeshWarning
-from hatkernels.mesh.core import DEGENERATE_TOL, Mesh, _check_points, signed_double_areas
+from hatkernels.geometry import DEGENERATE_VOLUME_TOL
+from hatkernels.mesh.core import Mesh
 from hatkernels.mesh.core_index import index_dtype
+from hatkernels.mesh.generators3d import tetrahedralise
+from hatkernels.mesh.triangles import DEGENERATE_TOL, signed_double_areas
+from hatkernels.mesh.triangles import check_points as _check_points
 
 __all__ = ["rectangle", "l_shape", "disk", "triangulate", "SPLITS"]
 
@@ -163,20 +168,27 @@ def disk(n, *, radius=1.0, center=(0.0, 0.0)):
     return Mesh._trusted(points, np.vstack(tris).astype(index_dtype(len(points))))
 
 
-def triangulate(points, *, inside=None, degenerate_tol=DEGENERATE_TOL):
-    """Delaunay triangulation of given points (scipy.spatial.Delaunay), validated.
+def triangulate(points, *, inside=None, degenerate_tol=None):
+    """Delaunay triangulation of given points (scipy.spatial.Delaunay), validated:
+    triangles in the plane, tetrahedra in space.
 
     Parameters
     ----------
-    points : array_like, shape (n_points, 2)
+    points : array_like, shape (n_points, 2) or (n_points, 3)
     inside : callable, optional
-        ``inside(x, y) -> bool array``, evaluated at triangle centroids; the
-        triangles where it is False are dropped (to cut holes or re-entrant
-        corners out of the convex hull).
-    degenerate_tol : float
+        ``inside(x, y) -> bool array`` (``inside(x, y, z)`` in space),
+        evaluated at cell centroids; the cells where it is False are dropped
+        (to cut holes or re-entrant corners out of the convex hull).
+    degenerate_tol : float, optional
         Flat triangles that Qhull creates on collinear hull points (relative
-        area below this) are dropped with a :class:`MeshWarning`: they cover
-        no area, so the domain does not change.
+        area below this, :data:`DEGENERATE_TOL` by default) are dropped with a
+        :class:`MeshWarning`: they cover no area, so the domain does not
+        change.  In space, tetrahedra with ``6 |V| / L**3`` below it
+        (``DEGENERATE_VOLUME_TOL`` by default; Qhull makes them on cospherical
+        points, a grid say) are dropped with a warning when they lie on the
+        hull, and refused with a :class:`MeshError` when dropping them would
+        leave the mesh non-conforming (a flat tetrahedron inside the hull); see
+        :func:`hatkernels.mesh.generators3d.tetrahedralise`.
 
     The result goes through every check of :class:`Mesh`; points that end up
     in no triangle (duplicates, or outside ``inside``) are reported.
@@ -188,6 +200,18 @@ def triangulate(points, *, inside=None, degenerate_tol=DEGENERATE_TOL):
     4
     """
     p = _check_points(points)
+    if p.shape[1] == 3:
+        tol = DEGENERATE_VOLUME_TOL if degenerate_tol is None else degenerate_tol
+        cells = tetrahedralise(p, tol)
+        if inside is not None:
+            c = p[cells].mean(axis=1)
+            keep = np.asarray(inside(c[:, 0], c[:, 1], c[:, 2]), dtype=bool)
+            if keep.shape != (len(cells),):
+                raise InputError(
+                    f"inside(x, y, z) returned shape {keep.shape} for {len(cells)} centroids")
+            cells = cells[keep]
+        return Mesh(p, cells, degenerate_tol=tol)
+    degenerate_tol = DEGENERATE_TOL if degenerate_tol is None else degenerate_tol
     if len(p) < 3:
         raise InputError(f"need at least 3 points to triangulate, got {len(p)}")
     try:

@@ -41,6 +41,8 @@ def refine(mesh):
     """
     if not callable(getattr(type(mesh), "_trusted", None)):
         raise InputError(f"refine needs a hatkernels.Mesh, got {type(mesh).__name__}")
+    if mesh.dim != 2:
+        raise InputError("refine is not available for tetrahedra yet")
     had = mesh.cached()
     edges, tri_edges = mesh._edge_topology()
     n, m, n_edges = mesh.n_points, mesh.n_triangles, len(edges)

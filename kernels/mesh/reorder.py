@@ -105,6 +105,8 @@ def reorder(mesh, method="rcm"):
         raise InputError(f"reorder needs a hatkernels.Mesh, got {type(mesh).__name__}")
     if method not in REORDERINGS:
         raise InputError(f"unknown reordering {method!r}; choose one of {REORDERINGS}")
+    if mesh.dim != 2:
+        raise InputError("reorder is not available for tetrahedra yet")
     tri = mesh.triangles
     if method == "rcm":
         e = mesh.edges()
