@@ -596,6 +596,32 @@ def test_ctrl_c_after_the_output_is_in_place_says_so(small, tmp_path):
     assert set(os.listdir(tmp_path)) == {"o"} and set(os.listdir(tmp_path / "o")) == SOLVE_FILES
 
 
+def test_ctrl_c_between_the_renames_of_a_replacement_is_held(tmp_path, monkeypatch):
+    # --force replaces an output by two renames (old aside, new in place); a Ctrl-C right
+    # after the first would leave no output at all unless it is held until both are done
+    from hatkernels import _output
+
+    out = tmp_path / "o"
+    out.mkdir()
+    (out / "summary.json").write_text(json.dumps({"generator": "hatkernels old"}))
+    real = os.rename
+    calls = []
+
+    def rename_then_interrupt(src, dst):
+        real(src, dst)
+        calls.append(dst)
+        if len(calls) == 1:
+            signal.raise_signal(signal.SIGINT)
+
+    monkeypatch.setattr(_output.os, "rename", rename_then_interrupt)
+    with pytest.raises(KeyboardInterrupt):
+        with _output.output_directory(out, force=True) as tmp:
+            _output.write_json(os.path.join(tmp, "summary.json"), {"generator": "hatkernels new"})
+    assert len(calls) == 2  # the second rename ran before the interrupt was let through
+    assert os.listdir(tmp_path) == ["o"]  # neither the old copy nor the temporary is left
+    assert json.loads((out / "summary.json").read_text())["generator"] == "hatkernels new"
+
+
 def test_ctrl_c_during_the_iterations_without_the_hook(small, tmp_path):
     # no pause: the interrupt lands inside conjugate gradients, which cannot have ended
     # (an rtol of 1e-300 is never reached); the first iteration line comes after a second
