@@ -373,3 +373,21 @@ def test_random_corruption_is_named(seed, kind, data):
                 Mesh(p, cells)
             assert "tetrahedr" in str(err.value) or "point" in str(err.value)
     assert np.array_equal(p, before[0], equal_nan=True) and np.array_equal(cells, before[1])
+
+
+def test_face_keys_beyond_packed_integers():
+    # with 2**21 points or more the packed key n**3 overflows int64 and the faces are
+    # sorted by rows instead: the same faces, shifted by the offset
+    from hatkernels.mesh.tetrahedra import check_faces, face_topology
+
+    m = ball(1)
+    big = m.cells.astype(np.int64) + 2**21
+    for small, large in zip(face_topology(m.cells), face_topology(big), strict=True):
+        assert (large - small == (2**21 if small.shape[1] == 3 else 0)).all()
+    off = 2**21  # the cells of TWO (see test_bad_tetrahedra_are_named), renumbered
+    with pytest.raises(MeshError, match=rf"tetrahedra 0 and 1 lie on the same side of their shared face \({off}, {off + 1}, {off + 2}\)"):
+        check_faces(np.array([[0, 1, 2, 3], [0, 1, 2, 5]]) + off)
+    with pytest.raises(MeshError, match=r"is shared by 3 tetrahedra \(0, 1, 2\)"):
+        check_faces(np.array([[0, 1, 2, 3], [0, 2, 1, 4], [0, 1, 2, 5]]) + off)
+    with pytest.raises(MeshError, match=f"tetrahedra 0 and {len(big)} are duplicates"):
+        check_faces(np.r_[big, big[:1, [1, 2, 0, 3]]])

@@ -106,16 +106,21 @@ def reoriented(points, cells, degenerate_tol, stacklevel):
 
 def _faces(cells):
     """Outward faces (4 n_cells, 3) in cell order (face ``4 c + a`` is opposite vertex
-    ``a`` of cell ``c``), their sorted keys, and the order that sorts the keys."""
+    ``a`` of cell ``c``), their sorted keys, the order that sorts the keys, and
+    ``same`` (4 n_cells - 1,): whether sorted key ``i`` equals key ``i + 1``."""
     outward = cells[:, OUTWARD].reshape(-1, 3)
     keys = np.sort(outward, axis=1)
     n = int(cells.max()) + 1
-    if n < 2**21:  # n**3 fits in int64: one argsort of packed keys
+    if n < 2**21:  # n**3 fits in int64: one argsort of packed keys, 1-D comparisons
         packed = (keys[:, 0].astype(np.int64) * n + keys[:, 1]) * n + keys[:, 2]
         order = np.argsort(packed, kind="stable")
+        sorted_packed = packed[order]
+        same = sorted_packed[1:] == sorted_packed[:-1]
     else:
         order = np.lexsort((keys[:, 2], keys[:, 1], keys[:, 0]))
-    return outward, keys, order
+        k = keys[order]
+        same = (k[1:] == k[:-1]).all(axis=1)
+    return outward, keys, order, same
 
 
 def _parity(triples):
@@ -131,54 +136,52 @@ def face_topology(cells):
     the face opposite each local vertex; boundary : (n_boundary_faces, 3), the
     faces of one cell, outward as in their cell, in the order of their keys.
     """
-    outward, keys, order = _faces(cells)
-    k = keys[order]
-    new = np.empty(len(k), dtype=bool)
+    outward, keys, order, same = _faces(cells)
+    new = np.empty(len(order), dtype=bool)
     new[0] = True
-    new[1:] = (k[1:] != k[:-1]).any(axis=1)
+    new[1:] = ~same
     number = np.cumsum(new) - 1
     dt = cells.dtype
-    cell_faces = np.empty(len(k), dtype=dt)
+    cell_faces = np.empty(len(order), dtype=dt)
     cell_faces[order] = number
-    faces = k[new].astype(dt)
-    count = np.bincount(number)
     starts = np.flatnonzero(new)
-    single = starts[count == 1]
-    boundary = outward[order[single]].astype(dt)
+    faces = keys[order[starts]].astype(dt)
+    count = np.diff(np.append(starts, len(order)))
+    boundary = outward[order[starts[count == 1]]].astype(dt)
     return faces, cell_faces.reshape(-1, 4), boundary
 
 
 def check_faces(cells):
     """Refuse duplicate cells, faces shared by three cells or more and two cells on
     the same side of a shared face, naming the cells and the face."""
-    outward, keys, order = _faces(cells)
-    k = keys[order]
-    cell_of = order // 4
-    same = (k[1:] == k[:-1]).all(axis=1)
-    if not same.any():
+    outward, keys, order, same = _faces(cells)
+    triple = np.flatnonzero(same[1:] & same[:-1])
+    pair = np.flatnonzero(same)
+    parity = _parity(outward[order[pair]])
+    clash = pair[parity == _parity(outward[order[pair + 1]])]
+    if triple.size == 0 and clash.size == 0:
         return
-    # duplicates first: the same four points share all four faces
+    cell_of = order // 4
+    # duplicates first: the same four points share all four faces (each a clash)
     cs = np.sort(cells, axis=1)
     corder = np.lexsort(cs.T[::-1])
     dup = np.flatnonzero((cs[corder[1:]] == cs[corder[:-1]]).all(axis=1))
     if dup.size:
         a, b = sorted((int(corder[dup[0]]), int(corder[dup[0] + 1])))
         raise MeshError(f"tetrahedra {a} and {b} are duplicates (points {cs[a].tolist()})")
-    triple = np.flatnonzero(same[1:] & same[:-1])
     if triple.size:
         i = int(triple[0])
         j = i + 2
-        while j + 1 < len(k) and (k[j + 1] == k[i]).all():
+        while j + 1 < len(order) and same[j]:
             j += 1
         who = sorted(int(c) for c in cell_of[i:j + 1])
+        key = keys[order[i]].tolist()
         raise MeshError(
-            f"face ({', '.join(map(str, k[i].tolist()))}) is shared by {len(who)} tetrahedra "
+            f"face ({', '.join(map(str, key))}) is shared by {len(who)} tetrahedra "
             f"({', '.join(map(str, who))}); a face belongs to at most two")
-    parity = _parity(outward[order])
-    clash = np.flatnonzero(same & (parity[1:] == parity[:-1]))
-    if clash.size:
-        i = int(clash[0])
-        a, b = sorted((int(cell_of[i]), int(cell_of[i + 1])))
-        raise MeshError(
-            f"tetrahedra {a} and {b} lie on the same side of their shared face "
-            f"({', '.join(map(str, k[i].tolist()))}): they overlap")
+    i = int(clash[0])
+    a, b = sorted((int(cell_of[i]), int(cell_of[i + 1])))
+    key = keys[order[i]].tolist()
+    raise MeshError(
+        f"tetrahedra {a} and {b} lie on the same side of their shared face "
+        f"({', '.join(map(str, key))}): they overlap")
