@@ -195,13 +195,13 @@ class Mesh:
     @property
     def triangles(self):
         """The cells of a 2-D mesh (an alias of :attr:`cells`); an InputError in 3-D."""
-        self._need(2, "triangles", "a 3-D mesh has tetrahedra: use .cells or .tetrahedra")
+        self._need(2, "triangles", "use .cells or .tetrahedra")
         return self._triangles
 
     @property
     def tetrahedra(self):
         """The cells of a 3-D mesh (an alias of :attr:`cells`); an InputError in 2-D."""
-        self._need(3, "tetrahedra", "a 2-D mesh has triangles: use .cells or .triangles")
+        self._need(3, "tetrahedra", "use .cells or .triangles")
         return self._triangles
 
     @property
@@ -321,6 +321,7 @@ class Mesh:
 
     def triangle_edges(self):
         """Number (row of :meth:`edges`) of the edge opposite each local vertex, shape (n_triangles, 3)."""
+        self._need(2, "triangle_edges()")
         return self._edge_topology()[1]
 
     def boundary_edges(self):
