@@ -83,14 +83,14 @@ def solution_figure(mesh, u, path, *, title="", label="u", length_scale=1.0, len
     outlines : sequence of (name, (x0, x1, y0, y1))
         Rectangles to outline and name (in mesh coordinates).
     """
+    u = _finite(u, "u")
+    if u.shape != (mesh.n_points,):
+        raise InputError(f"u has shape {u.shape}; expected ({mesh.n_points},)")
+    fig = _figure(size, dpi)  # without matplotlib: the InputError with the install hint
     from matplotlib.patches import Rectangle
     from matplotlib.ticker import MaxNLocator
     from matplotlib.tri import Triangulation
 
-    u = _finite(u, "u")
-    if u.shape != (mesh.n_points,):
-        raise InputError(f"u has shape {u.shape}; expected ({mesh.n_points},)")
-    fig = _figure(size, dpi)
     ax = fig.add_subplot()
     s = float(length_scale)
     used = np.unique(mesh.triangles)  # points in no triangle carry no value

@@ -917,3 +917,20 @@ def test_preconditioners_are_named_only_in_option_parsing():
         found = {node.value for node in ast.walk(ast.parse(path.read_text()))
                  if isinstance(node, ast.Constant) and node.value in names}
         assert not found, f"{path.name} names preconditioners {sorted(found)}"
+
+
+def test_a_solve_that_does_not_fit_is_refused_before_it_starts(tmp_path):
+    # the library's estimate against what is available (here made tiny): one line, exit 2,
+    # nothing written; --no-memory-check solves anyway
+    code = ("import sys, hatkernels.memory as m; m.available_bytes = lambda: 1000; "
+            "from hatkernels.cli import main; sys.exit(main(sys.argv[1:]))")
+    args = ["solve", "--cells", "16", "--quiet", "--out", tmp_path / "out"]
+    out = subprocess.run([sys.executable, "-c", code, *map(str, args)], capture_output=True,
+                         text=True, timeout=600)
+    assert out.returncode == 2, out.stderr
+    assert "not enough memory" in out.stderr and "--no-memory-check" in out.stderr
+    assert len(out.stderr.strip().splitlines()) == 1 and not (tmp_path / "out").exists()
+    out = subprocess.run([sys.executable, "-c", code, *map(str, args), "--no-memory-check"],
+                         capture_output=True, text=True, timeout=600)
+    assert out.returncode == 0, out.stderr
+    assert (tmp_path / "out" / "solution.npz").exists()

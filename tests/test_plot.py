@@ -122,12 +122,6 @@ def test_without_matplotlib_figures_are_refused_with_the_fix(tmp_path, without_m
     assert os.listdir(tmp_path) == []
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="bug in hatkernels.plot.solution_figure: it imports matplotlib.patches, .ticker "
-    "and .tri at its top, before _figure() turns a missing matplotlib into the InputError "
-    "with the install hint, so without matplotlib it raises ModuleNotFoundError",
-)
 def test_without_matplotlib_solution_figure_is_refused_with_the_fix(tmp_path,
                                                                    without_matplotlib):
     mesh = hatkernels.mesh.rectangle(2, 2)

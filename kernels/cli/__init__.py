@@ -170,6 +170,10 @@ def _add_solve(sub, common, names):
                    help="preconditioner for conjugate gradients (default: amg)")
     _number(p, "--rtol", float, positive=True, default=1e-10,
             help="relative residual tolerance (default 1e-10)")
+    p.add_argument("--no-memory-check", dest="memory_check", action="store_false",
+                   help="solve even when the estimated peak memory exceeds what is available "
+                        "(the estimate comes from measured bytes per point; by default such "
+                        "a solve is refused before it starts)")
     _number(p, "--maxiter", int, minimum=1, metavar="N",
             help="at most N iterations (default 10 x unknowns); not converging exits 1")
     _output(p, "hatkernels-out")

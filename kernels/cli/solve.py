@@ -78,6 +78,7 @@ def _solve(args, problem, progress):
     try:
         return scenarios.solve_problem(
             problem, preconditioner=args.preconditioner, rtol=args.rtol, maxiter=args.maxiter,
+            memory_check=args.memory_check,
             progress=lambda phase: progress.phase(PHASE_TEXT.get(phase, phase)),
             monitor=IterationReport(progress),
         )

@@ -109,6 +109,7 @@ def _solve(problem, args, comm, progress, gather="root", monitor=None):
     return scenarios.solve_problem(
         problem, preconditioner=args.preconditioner, rtol=args.rtol, maxiter=args.maxiter,
         progress=progress, monitor=monitor, solver=solve_poisson, comm=comm,
+        memory_check=getattr(args, "memory_check", True),
         coarse=COMMAND_COARSE, gather=gather, threads=args.threads)
 
 
