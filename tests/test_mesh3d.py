@@ -391,3 +391,12 @@ def test_face_keys_beyond_packed_integers():
         check_faces(np.array([[0, 1, 2, 3], [0, 2, 1, 4], [0, 1, 2, 5]]) + off)
     with pytest.raises(MeshError, match=f"tetrahedra 0 and {len(big)} are duplicates"):
         check_faces(np.r_[big, big[:1, [1, 2, 0, 3]]])
+
+
+def test_ball_bad_arguments():
+    with pytest.raises(InputError, match="radius must be > 0, got 0"):
+        ball(2, radius=0)
+    with pytest.raises(InputError, match="center must be three finite numbers"):
+        ball(2, center=(0.0, 1.0))
+    with pytest.raises(InputError, match="n must be >= 1, got 0"):
+        ball(0)

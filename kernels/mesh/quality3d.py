@@ -8,14 +8,15 @@ relative to ``x0`` is ``(|a|^2 (b x c) + |b|^2 (c x a) + |c|^2 (a x b)) /
 (2 a . (b x c))`` with ``a, b, c`` the edges from ``x0`` (the solution of
 ``2 (x_k - x0) . y = |x_k - x0|^2`` by Cramer's rule; common practice, no source).
 Dihedral angles come from the outward face normals ``n_k, n_l``: the interior
-angle at their common edge is ``pi`` minus the angle between them.
+angle at their common edge is ``pi`` minus the angle between them; the
+gradients of the barycentric coordinates point along ``-n_k``.
 """
 
 import dataclasses
 
 import numpy as np
 
-from hatkernels.mesh.tetrahedra import OUTWARD
+from hatkernels._jit import geometry as _jit_geometry
 
 __all__ = ["TetrahedronQuality", "tetrahedron_quality"]
 
@@ -60,26 +61,27 @@ def tetrahedron_quality(mesh):
     (45.0, 90.0)
     """
     p, t = mesh.points, mesh.cells
-    x = p[t]  # (M, 4, 3)
-    f = x[:, OUTWARD]  # (M, 4, 3, 3): the outward faces
-    normals = np.cross(f[:, :, 1] - f[:, :, 0], f[:, :, 2] - f[:, :, 0])  # twice the area
-    norm = np.linalg.norm(normals, axis=2)
-    angles = []
-    for k in range(4):
-        for m in range(k + 1, 4):
-            cross = np.linalg.norm(np.cross(normals[:, k], normals[:, m]), axis=1)
-            dot = (normals[:, k] * normals[:, m]).sum(axis=1)
-            angles.append(np.degrees(np.arctan2(cross, -dot)))
-    ang = np.column_stack(angles)
-    dmin, dmax = ang.min(axis=1), ang.max(axis=1)
-    volume = mesh.measures()
-    a, b, c = x[:, 1] - x[:, 0], x[:, 2] - x[:, 0], x[:, 3] - x[:, 0]
+    # The gradient of the coordinate of vertex k is -n_k |F_k| / (3 V), n_k the unit
+    # outward normal of the face opposite k: its direction gives the dihedral angles
+    # and its length the face areas, so r = 3 V / sum |F_k| = 1 / sum |grad_k|.
+    volume, g, _ = _jit_geometry.tetrahedron_gradients(p, t)
+    length = np.sqrt((g * g).sum(axis=2))
+    angles = np.empty((len(t), 6))
+    for n, (k, m) in enumerate(((0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3))):
+        cross = np.sqrt((np.cross(g[:, k], g[:, m]) ** 2).sum(axis=1))
+        dot = (g[:, k] * g[:, m]).sum(axis=1)
+        angles[:, n] = np.arctan2(cross, -dot)
+    del g
+    dmin, dmax = np.degrees(angles.min(axis=1)), np.degrees(angles.max(axis=1))
+    del angles
+    inradius = 1.0 / length.sum(axis=1)
+    x0 = p[t[:, 0]]
+    a, b, c = p[t[:, 1]] - x0, p[t[:, 2]] - x0, p[t[:, 3]] - x0
     bc, ca, ab = np.cross(b, c), np.cross(c, a), np.cross(a, b)
     det = (a * bc).sum(axis=1)
     sq = [(v * v).sum(axis=1)[:, None] for v in (a, b, c)]
     centre = (sq[0] * bc + sq[1] * ca + sq[2] * ab) / (2 * det[:, None])
-    circum = np.linalg.norm(centre, axis=1)
-    inradius = 3 * volume / (0.5 * norm.sum(axis=1))
+    circum = np.sqrt((centre * centre).sum(axis=1))
     ratio = 3 * inradius / circum
     i_dmin, i_dmax = int(dmin.argmin()), int(dmax.argmax())
     i_vmin, i_vmax, i_r = int(volume.argmin()), int(volume.argmax()), int(ratio.argmin())
