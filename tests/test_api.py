@@ -53,7 +53,8 @@ def test_public_names_are_exactly_the_locked_set():
     assert len(hatkernels.__all__) == len(PUBLIC)  # no name listed twice
     for name in hatkernels.__all__:
         assert hasattr(hatkernels, name), name
-    for name in ("rectangle", "l_shape", "disk", "triangulate", "refine", "reorder"):
+    for name in ("rectangle", "l_shape", "disk", "triangulate", "refine", "reorder", "cuboid",
+                 "ball"):
         assert callable(getattr(hatkernels.mesh, name))
 
 

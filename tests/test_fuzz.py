@@ -64,7 +64,7 @@ def test_mesh_takes_any_arrays(data):
     cells = data.draw(arrays_near((BASE.n_cells, 3), tdt))
     out = accepted_or_named(lambda: hatkernels.Mesh(points, cells))
     if isinstance(out, hatkernels.Mesh):
-        assert np.isfinite(out.points).all() and (out.areas() > 0).all()
+        assert np.isfinite(out.points).all() and (out.measures() > 0).all()
 
 
 @given(st.data())
