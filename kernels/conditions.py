@@ -127,6 +127,9 @@ def parse_conditions(mesh, *, dirichlet=0.0, dirichlet_on=None, neumann=None, ro
     ``neumann`` value or a 2-tuple ``robin`` applies on every boundary side
     that is not held; ``(sides, h)`` and ``(sides, r, s)`` name their sides.
     """
+    if mesh.dim == 3 and (neumann is not None or robin is not None):
+        raise InputError("neumann and robin terms on the faces of tetrahedra are not "
+                         "available yet; on a 3-D mesh hold u (dirichlet) or add a reaction")
     if dirichlet_on is None:
         dirichlet_on = "boundary" if neumann is None and robin is None else np.empty(0, np.int64)
     held = _held_points(mesh, dirichlet_on)

@@ -135,6 +135,17 @@ def _read_meshio_mesh(path):
     points = np.asarray(m.points)
     if points.ndim != 2 or points.shape[1] not in (2, 3):
         raise InputError(f"mesh file {path}: points have shape {points.shape}, expected 2-D or 3-D")
+    tetra = [c for c in m.cells if c.type == "tetra"]
+    if tetra:
+        # a tetrahedral mesh: its triangle, line and vertex cells are boundary parts
+        others = sorted({c.type for c in m.cells} - {"tetra", "triangle", "line", "vertex"})
+        if others:
+            raise InputError(f"mesh file {path}: has {', '.join(others)} cells besides "
+                             f"tetrahedra; only linear tetrahedra are supported")
+        if points.shape[1] != 3:
+            raise InputError(f"mesh file {path}: tetrahedra need 3-D points, got shape "
+                             f"{points.shape}")
+        return points, np.concatenate([np.asarray(c.data) for c in tetra])
     if points.shape[1] == 3:
         z = points[:, 2]
         finite = np.isfinite(z)
@@ -158,8 +169,9 @@ def read_mesh_arrays(path):
     """The ``points`` and ``triangles`` arrays of a mesh file, read but not yet checked.
 
     ``.npz``: arrays ``points`` and ``triangles``.  Any other extension is
-    handed to meshio (if installed): its triangle cells are used, line and
-    vertex cells ignored, a z coordinate dropped when it is constant.
+    handed to meshio (if installed): its tetrahedra when it has any (a 3-D
+    mesh; triangle, line and vertex cells ignored), else its triangle cells
+    (line and vertex cells ignored, a z coordinate dropped when it is constant).
     Raises :class:`InputError` when the file is missing, unreadable or lacks
     the arrays.  :func:`read_mesh` also builds and checks the :class:`Mesh`.
     """

@@ -70,6 +70,10 @@ class StiffnessOperator(LinearOperator):
     ):
         if not isinstance(mesh, Mesh):
             raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
+        if mesh.dim != 2:
+            raise InputError("the matrix-free stiffness operator is not available for "
+                             "tetrahedra yet; use the assembled matrix (matrix_free=False, "
+                             "and a preconditioner that needs no refinement history)")
         if variant not in VARIANTS:
             raise InputError(f"unknown matrix-free variant {variant!r}; choose one of {VARIANTS}")
         block_size = integer_option(block_size, "block_size", minimum=1)
