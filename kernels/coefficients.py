@@ -308,10 +308,15 @@ def triangle_means(coef, mesh, degree):
 
 
 def parse_edge_coefficient(value, mesh, n_edges, *, name, sign):
-    """Check a boundary coefficient: a number, per point (N,), per edge (n_edges,) or callable.
+    """Check a boundary coefficient: a number, per point (N,), per side (n_edges,) or callable.
 
-    Returns a :class:`Coefficient` whose kind is "constant", "point", "edge" or "callable".
+    A side is an edge in 2-D and a triangular face in 3-D (``per_edge`` data on a
+    tetrahedral mesh hold one value per face, and messages say "face").
+    Returns a :class:`Coefficient` whose kind is "constant", "point", "edge" (per side)
+    or "callable".
     """
+    items = _SIDE_ITEM_3D if mesh.dim == 3 else _ITEM
+    side, sides = items["edge"][0], items["edge"][1]
     if (
         value is None
         or isinstance(value, numbers.Real)
@@ -323,7 +328,7 @@ def parse_edge_coefficient(value, mesh, n_edges, *, name, sign):
     if isinstance(value, Field):
         on, value = value.on, value.values
         if on == "cell":
-            raise InputError(f"{name} lives on points or edges, not on triangles")
+            raise InputError(f"{name} lives on points or {sides}, not on {_items(mesh)['cell'][1]}")
     a = _as_real_array(value, name)
     n = mesh.n_points
     if a.ndim == 0 and on is None:
@@ -331,6 +336,10 @@ def parse_edge_coefficient(value, mesh, n_edges, *, name, sign):
     if a.ndim != 1:
         raise InputError(
             f"{name} has shape {a.shape}; expected a number, one value per point ({n},) "
-            f"or one per edge ({n_edges},)"
+            f"or one per {side} ({n_edges},)"
         )
-    return _per_item(a, on, name, sign, n, "edge", n_edges)
+    return _per_item(a, on, name, sign, n, "edge", n_edges, items)
+
+
+# boundary data on a tetrahedral mesh: its sides are faces, given with per_edge(...)
+_SIDE_ITEM_3D = {**_ITEM, "edge": ("face", "faces", "per_edge")}

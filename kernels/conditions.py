@@ -16,7 +16,7 @@ import dataclasses
 import numpy as np
 
 from hatkernels._sets import index_union
-from hatkernels.assembly.boundary_terms import check_edges
+from hatkernels.assembly.boundary_terms import check_sides
 from hatkernels.checks import point_indices
 from hatkernels.coefficients import Coefficient, parse_edge_coefficient
 from hatkernels.errors import InputError
@@ -39,7 +39,8 @@ class Dirichlet:
 
 @dataclasses.dataclass(frozen=True)
 class Flux:
-    """Imposed flux ``h`` on ``sides`` (E, 2) int64 (a checked boundary coefficient)."""
+    """Imposed flux ``h`` on ``sides`` int64, (E, 2) edges or (E, 3) faces (a checked boundary
+    coefficient)."""
 
     sides: np.ndarray
     flux: Coefficient
@@ -47,7 +48,7 @@ class Flux:
 
 @dataclasses.dataclass(frozen=True)
 class Robin:
-    """``kappa du/dn + r u = s`` on ``sides`` (E, 2); ``r >= 0``."""
+    """``kappa du/dn + r u = s`` on ``sides`` ((E, 2) edges or (E, 3) faces); ``r >= 0``."""
 
     sides: np.ndarray
     r: Coefficient
@@ -65,7 +66,8 @@ class Robin:
 
 
 def _held_points(mesh, where):
-    """Points named by ``where``: "boundary", point indices (k,) or sides (k, 2)."""
+    """Points named by ``where``: "boundary", point indices (k,) or sides ((k, 2) edges in
+    2-D, (k, 3) faces in 3-D)."""
     if isinstance(where, str):
         if where != "boundary":
             raise InputError(
@@ -74,7 +76,7 @@ def _held_points(mesh, where):
         return mesh.boundary_points().astype(np.int64)
     w = np.asarray(where)
     if w.ndim == 2:
-        return index_union(mesh.n_points, check_edges(mesh, w).ravel())
+        return index_union(mesh.n_points, check_sides(mesh, w).ravel())
     return index_union(mesh.n_points, point_indices(w, mesh.n_points, "dirichlet_on"))
 
 
@@ -112,8 +114,8 @@ def _held_values(mesh, points, g):
 
 
 def free_sides(mesh, held):
-    """Boundary sides not held: a side is held when all its points are."""
-    b = mesh.boundary_edges()
+    """Boundary sides (edges, or faces in 3-D) not held: a side is held when all its points are."""
+    b = mesh.boundary_faces() if mesh.dim == 3 else mesh.boundary_edges()
     is_held = np.zeros(mesh.n_points, dtype=bool)
     is_held[held] = True
     return b[~is_held[b].all(axis=1)].astype(np.int64)
@@ -125,11 +127,9 @@ def parse_conditions(mesh, *, dirichlet=0.0, dirichlet_on=None, neumann=None, ro
     ``dirichlet_on`` defaults to the whole boundary unless ``neumann`` or
     ``robin`` is given (then no point is held unless named).  A plain
     ``neumann`` value or a 2-tuple ``robin`` applies on every boundary side
-    that is not held; ``(sides, h)`` and ``(sides, r, s)`` name their sides.
+    that is not held; ``(sides, h)`` and ``(sides, r, s)`` name their sides: edges
+    (k, 2) on triangles, faces (k, 3) on tetrahedra.
     """
-    if mesh.dim == 3 and (neumann is not None or robin is not None):
-        raise InputError("neumann and robin terms on the faces of tetrahedra are not "
-                         "available yet; on a 3-D mesh hold u (dirichlet) or add a reaction")
     if dirichlet_on is None:
         dirichlet_on = "boundary" if neumann is None and robin is None else np.empty(0, np.int64)
     held = _held_points(mesh, dirichlet_on)
@@ -140,14 +140,14 @@ def parse_conditions(mesh, *, dirichlet=0.0, dirichlet_on=None, neumann=None, ro
         if isinstance(neumann, tuple) and len(neumann) != 2:
             raise InputError(f"neumann must be h or (sides, h), got a tuple of {len(neumann)}")
         sides, h = neumann if isinstance(neumann, tuple) else (free_sides(mesh, held), neumann)
-        e = check_edges(mesh, sides)
+        e = check_sides(mesh, sides)
         flux = Flux(e, parse_edge_coefficient(h, mesh, len(e), name="boundary load", sign="any"))
     convection = None
     if robin is not None:
         if not isinstance(robin, tuple) or len(robin) not in (2, 3):
             raise InputError("robin must be (r, s) or (sides, r, s)")
         sides, r, s = robin if len(robin) == 3 else (free_sides(mesh, held),) + robin
-        e = check_edges(mesh, sides)
+        e = check_sides(mesh, sides)
         convection = Robin(
             e,
             parse_edge_coefficient(r, mesh, len(e), name="boundary coefficient",

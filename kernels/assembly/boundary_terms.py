@@ -1,8 +1,18 @@
-"""Boundary terms on a set of edges: Neumann load and Robin mass.
+"""Boundary terms on sides (edges in 2-D, triangular faces in 3-D): Neumann load and Robin mass.
 
 On an edge of length ``L`` with end points ``a, b`` and linear hat functions,
 ``int_e l_a^p l_b^q ds = L p! q! / (p + q + 1)!``; callables are integrated
 by Gauss-Legendre rules.
+
+On a face of area ``A`` with barycentric coordinates ``l_a, l_b, l_c``,
+``int_F l_a^p l_b^q l_c^s dS = 2 A p! q! s! / (p + q + s + 2)!`` (I. Eisenberg
+and L. E. Malvern, *On finite element integration in natural co-ordinates*,
+Int. J. Numer. Meth. Engng 7, 1973).  Hence the load of a constant ``g`` is
+``A g / 3`` per point, the mass of a constant ``r`` is ``A r (1 + delta_ij) / 12``,
+and for data linear on the face (per point) the load is ``A (2 g_i + g_j + g_k) / 12``
+and the mass ``A (6 r_i + 2 r_j + 2 r_k) / 60`` on the diagonal and
+``A (2 r_i + 2 r_j + r_k) / 60`` off it (``k`` the third point).  Callables are
+integrated by :func:`hatkernels.quadrature.triangle_rule` mapped onto the face.
 """
 
 import numpy as np
@@ -10,9 +20,9 @@ import scipy.sparse as sp
 
 from hatkernels.coefficients import parse_edge_coefficient
 from hatkernels.errors import InputError
-from hatkernels.quadrature import edge_rule
+from hatkernels.quadrature import edge_rule, triangle_rule
 
-__all__ = ["check_edges", "boundary_load", "boundary_mass", "side_load", "side_mass"]
+__all__ = ["check_edges", "check_faces", "check_sides", "boundary_load", "boundary_mass", "side_load", "side_mass"]
 
 
 def check_edges(mesh, edges):
@@ -66,13 +76,16 @@ def _edge_quadrature(coef, mesh, e, degree):
 
 def boundary_load(mesh, g, edges=None, *, quadrature=2):
     """``b_i = int_Gamma g phi_i ds`` over the given edges; see :func:`hatkernels.assemble_boundary_load`."""
-    e = check_edges(mesh, edges)
+    e = check_sides(mesh, edges)
     coef = parse_edge_coefficient(g, mesh, len(e), name="boundary load", sign="any")
     return side_load(mesh, coef, e, quadrature)
 
 
 def side_load(mesh, coef, e, quadrature):
-    """:func:`boundary_load` for checked sides ``e`` (E, 2) and a parsed coefficient (trusted)."""
+    """:func:`boundary_load` for checked sides ``e`` ((E, 2) edges or (E, 3) faces) and a
+    parsed coefficient (trusted)."""
+    if mesh.dim == 3:
+        return _face_load(mesh, coef, e, quadrature)
     L = _lengths(mesh, e)
     if coef.kind == "constant":
         ve = np.repeat((L * coef.value / 2)[:, None], 2, axis=1)
@@ -89,13 +102,16 @@ def side_load(mesh, coef, e, quadrature):
 
 def boundary_mass(mesh, r, edges=None, *, quadrature=2):
     """``R_ij = int_Gamma r phi_i phi_j ds`` over the given edges, as canonical CSR."""
-    e = check_edges(mesh, edges)
+    e = check_sides(mesh, edges)
     coef = parse_edge_coefficient(r, mesh, len(e), name="boundary coefficient", sign="nonnegative")
     return side_mass(mesh, coef, e, quadrature)
 
 
 def side_mass(mesh, coef, e, quadrature):
-    """:func:`boundary_mass` for checked sides ``e`` (E, 2) and a parsed coefficient (trusted)."""
+    """:func:`boundary_mass` for checked sides ``e`` ((E, 2) edges or (E, 3) faces) and a
+    parsed coefficient (trusted)."""
+    if mesh.dim == 3:
+        return _face_mass(mesh, coef, e, quadrature)
     L = _lengths(mesh, e)
     if coef.kind in ("constant", "edge"):
         rv = coef.value
@@ -118,5 +134,104 @@ def side_mass(mesh, coef, e, quadrature):
     vals = np.concatenate([daa, dbb, dab, dab])
     n = mesh.n_points
     R = sp.coo_matrix((vals, (rows, cols)), shape=(n, n)).tocsr()
+    R.sum_duplicates()
+    return R
+
+
+def check_sides(mesh, sides):
+    """Validated sides of the mesh: edges (E, 2) in 2-D, faces (E, 3) in 3-D (default: the
+    boundary sides)."""
+    return check_faces(mesh, sides) if mesh.dim == 3 else check_edges(mesh, sides)
+
+
+def check_faces(mesh, faces):
+    """Validate an (E, 3) array of faces of a tetrahedral mesh (default: the boundary faces).
+
+    Each row must be a face of :meth:`Mesh.faces` in any order of its points; the rows
+    are returned as given (their orientation kept), as int64.
+    """
+    if mesh.dim != 3:
+        raise InputError("faces are sides of tetrahedra; this mesh has triangles: pass edges")
+    if faces is None:
+        return mesh.boundary_faces().astype(np.int64)
+    f = np.asarray(faces)
+    if f.ndim != 2 or f.shape[1] != 3 or (f.size and f.dtype.kind not in "iu"):
+        raise InputError(
+            f"faces must be an integer array of shape (n_faces, 3), got {f.dtype} {f.shape}"
+        )
+    f = f.astype(np.int64)
+    if f.size == 0:
+        return f
+    out = (f < 0) | (f >= mesh.n_points)
+    if out.any():
+        k = int(np.flatnonzero(out.any(axis=1))[0])
+        raise InputError(
+            f"face {k} refers to a point outside 0..{mesh.n_points - 1}: {f[k].tolist()}"
+        )
+    s = np.sort(f, axis=1)
+    same = (s[:, 0] == s[:, 1]) | (s[:, 1] == s[:, 2])
+    if same.any():
+        k = int(np.flatnonzero(same)[0])
+        raise InputError(f"face {k} {f[k].tolist()} repeats a point")
+    known = mesh.faces().astype(np.int64)
+    n = np.int64(mesh.n_points)
+    # (rank of the leading pair) * n + third point: fits int64 where i * n * n would not
+    pair = known[:, 0] * n + known[:, 1]
+    pairs = np.unique(pair)
+    key = np.searchsorted(pairs, pair) * n + known[:, 2]
+    want_pair = s[:, 0] * n + s[:, 1]
+    at = np.minimum(np.searchsorted(pairs, want_pair), len(pairs) - 1)
+    want = at * n + s[:, 2]
+    pos = np.minimum(np.searchsorted(key, want), len(key) - 1)
+    missing = (pairs[at] != want_pair) | (key[pos] != want)
+    if missing.any():
+        k = int(np.flatnonzero(missing)[0])
+        raise InputError(f"face {k} {tuple(f[k].tolist())} is not a face of the mesh")
+    return f
+
+
+def _areas(mesh, f):
+    p = mesh.points
+    return 0.5 * np.linalg.norm(np.cross(p[f[:, 1]] - p[f[:, 0]], p[f[:, 2]] - p[f[:, 0]]), axis=1)
+
+
+def _face_quadrature(coef, mesh, f, degree):
+    lam, w = triangle_rule(degree)
+    xq = mesh.points[f].transpose(0, 2, 1) @ lam.T  # (E, 3 coordinates, Q)
+    owner = np.repeat(np.arange(len(f)), len(w))
+    v = coef.evaluate(tuple(xq[:, c, :].ravel() for c in range(3)), owner, "face")
+    return v.reshape(len(f), len(w)), lam, w
+
+
+def _face_load(mesh, coef, f, quadrature):
+    A = _areas(mesh, f)
+    if coef.kind in ("constant", "edge"):  # "edge": one value per side, here per face
+        vf = np.repeat((A * coef.value / 3)[:, None], 3, axis=1)
+    elif coef.kind == "point":
+        g = coef.value[f]
+        vf = A[:, None] / 12 * (g + g.sum(axis=1, keepdims=True))
+    else:
+        v, lam, w = _face_quadrature(coef, mesh, f, quadrature)
+        vf = A[:, None] * ((v * w) @ lam)
+    return np.bincount(f.ravel(), weights=vf.ravel(), minlength=mesh.n_points)
+
+
+def _face_mass(mesh, coef, f, quadrature):
+    A = _areas(mesh, f)
+    eye = np.eye(3)
+    if coef.kind in ("constant", "edge"):
+        m = (A * coef.value / 12)[:, None, None] * (1 + eye)
+    elif coef.kind == "point":
+        r = coef.value[f]
+        # diagonal (6 r_i + 2 r_j + 2 r_k) / 60, off it (2 r_i + 2 r_j + r_k) / 60
+        pair = r[:, :, None] + r[:, None, :] + r.sum(axis=1)[:, None, None]
+        m = (A / 60)[:, None, None] * (1 + eye) * pair
+    else:
+        v, lam, w = _face_quadrature(coef, mesh, f, quadrature)
+        m = A[:, None, None] * np.einsum("eq,qi,qj->eij", v * w, lam, lam)
+    n = mesh.n_points
+    rows = np.repeat(f, 3, axis=1).ravel()
+    cols = np.tile(f, (1, 3)).ravel()
+    R = sp.coo_matrix((m.ravel(), (rows, cols)), shape=(n, n)).tocsr()
     R.sum_duplicates()
     return R
