@@ -448,7 +448,6 @@ class Mesh:
         The four children of triangle ``t`` are triangles ``4t .. 4t+3``;
         boundary topology is carried over without recomputation.
         """
-        self._need(2, "refine()")
         return _refine(self)
 
     def reorder(self, method="rcm"):

@@ -1,4 +1,5 @@
-"""Uniform nested refinement: every triangle into four by its edge midpoints.
+"""Uniform nested refinement: every triangle into four by its edge midpoints
+(tetrahedra into eight: :mod:`hatkernels.mesh.refine3d`).
 
 The refined mesh is built by the class of the mesh it comes from
 (``type(mesh)._trusted``), so this module needs nothing from
@@ -10,6 +11,7 @@ import numpy as np
 from hatkernels._jit import topology as _topo
 from hatkernels.errors import InputError
 from hatkernels.mesh.core_index import index_dtype
+from hatkernels.mesh.refine3d import refine_tetrahedra
 from hatkernels.mesh.refinement import Refinement
 
 __all__ = ["refine"]
@@ -41,8 +43,8 @@ def refine(mesh):
     """
     if not callable(getattr(type(mesh), "_trusted", None)):
         raise InputError(f"refine needs a hatkernels.Mesh, got {type(mesh).__name__}")
-    if mesh.dim != 2:
-        raise InputError("refine is not available for tetrahedra yet")
+    if mesh.dim == 3:
+        return refine_tetrahedra(mesh)
     had = mesh.cached()
     edges, tri_edges = mesh._edge_topology()
     n, m, n_edges = mesh.n_points, mesh.n_triangles, len(edges)
