@@ -328,7 +328,8 @@ def parse_edge_coefficient(value, mesh, n_edges, *, name, sign):
     if isinstance(value, Field):
         on, value = value.on, value.values
         if on == "cell":
-            raise InputError(f"{name} lives on points or {sides}, not on {_items(mesh)['cell'][1]}")
+            cells = _items(mesh)["cell"][1]
+            raise InputError(f"{name} lives on points or {sides}, not on {cells}")
     a = _as_real_array(value, name)
     n = mesh.n_points
     if a.ndim == 0 and on is None:
