@@ -188,6 +188,20 @@ def test_robin_with_r_zero_does_not_fix_the_constant():
     mesh = cuboid(2, 2, 2)
     with pytest.raises(hatkernels.InputError, match="no Dirichlet points, reaction or Robin"):
         hatkernels.solve_poisson(mesh, 0.0, robin=(0.0, 0.0))
+    right = faces_where(mesh, 0, 1.0)
+    with pytest.raises(hatkernels.InputError, match="no Dirichlet points, reaction or Robin"):
+        hatkernels.solve_poisson(mesh, 0.0, robin=(right, hatkernels.per_edge(np.zeros(8)), 1.0))
+
+
+def test_robin_on_one_face_alone_fixes_the_constant():
+    # r > 0 only at the points of x = 1 (per point) or on its faces (per face), zero flux
+    # elsewhere: u = s / r = 2 everywhere (analytic: the constant solves the problem)
+    mesh = cuboid(2, 2, 2)
+    right = faces_where(mesh, 0, 1.0)
+    r_points = np.where(np.isclose(mesh.points[:, 0], 1.0), 1.5, 0.0)
+    for r in (hatkernels.per_point(r_points), hatkernels.per_edge(np.full(len(right), 1.5))):
+        sol = hatkernels.solve_poisson(mesh, 0.0, robin=(right, r, 3.0), rtol=1e-13)
+        assert np.abs(sol.u - 2.0).max() < 1e-10
 
 
 def test_neumann_on_part_of_the_boundary_converges_at_second_order():
