@@ -1,4 +1,5 @@
-"""Uniform refinement of tetrahedra (Bey's rule): geometry, topology, quality, the maps."""
+"""Uniform refinement of tetrahedra (Bey's rule): geometry, topology, quality, the maps;
+reordering of tetrahedral meshes (RCM, Hilbert curve in space)."""
 
 import warnings
 
@@ -6,10 +7,11 @@ import numpy as np
 import pytest
 from conftest import EPS
 from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
+from scipy.sparse.csgraph import connected_components, reverse_cuthill_mckee
 
-from hatkernels import Mesh
-from hatkernels.mesh import cuboid, triangulate
+import hatkernels
+from hatkernels import InputError, Mesh
+from hatkernels.mesh import REORDERINGS, cuboid, hilbert_keys, triangulate
 
 #: The regular tetrahedron (cells reordered to positive orientation) and a
 #: deliberately uneven one.
@@ -210,3 +212,83 @@ def test_components_match_scipy():
     assert count == n_ref == 2
     # same partition: the pairs (ours, scipy's) are one-to-one
     assert len(set(zip(labels.tolist(), ref.tolist(), strict=True))) == n_ref
+
+
+# -- reordering in 3-D --
+
+
+def shuffled_cuboid(n=5, seed=1):
+    m = cuboid(n, n, n)
+    rng = np.random.default_rng(seed)
+    order = rng.permutation(m.n_points)
+    inv = np.empty_like(order)
+    inv[order] = np.arange(order.size)
+    return checked(m.points[order], inv[m.cells][rng.permutation(m.n_cells)])
+
+
+def spans(mesh):
+    e = edge_set(mesh.cells)
+    return np.abs(e[:, 0] - e[:, 1])
+
+
+@pytest.mark.parametrize("method", REORDERINGS)
+def test_reorder_preserves_tetrahedral_mesh(method):
+    m = shuffled_cuboid()
+    new, perm = m.reorder(method)
+    assert (new.points == m.points[perm.points]).all()
+    inv = perm.points_inverse()
+    np.testing.assert_array_equal(new.cells, inv[m.cells[perm.triangles]])
+    checked(new.points, new.cells)  # still valid and positively oriented, no warnings
+    # a shuffled numbering puts neighbours far apart; both orders bring them close
+    # (rcm: the largest gap, the bandwidth; hilbert: the typical gap)
+    measure = np.max if method == "rcm" else np.mean
+    assert measure(spans(new)) < measure(spans(m)) / 3
+
+
+def test_rcm_matches_scipy_in_3d():
+    m = shuffled_cuboid(4)
+    _, perm = m.reorder("rcm")
+    e = edge_set(m.cells)
+    g = coo_matrix((np.ones(len(e)), (e[:, 0], e[:, 1])), shape=(m.n_points,) * 2)
+    g = (g + g.T).tocsr()
+    # reference library: scipy.sparse.csgraph.reverse_cuthill_mckee
+    assert (perm.points == reverse_cuthill_mckee(g, symmetric_mode=True)).all()
+
+
+@pytest.mark.parametrize("bits", [1, 2, 3, 4])
+def test_hilbert_curve_in_space_visits_neighbouring_cells(bits):
+    # On a full 2^b x 2^b x 2^b grid a Hilbert curve visits every cell once and
+    # steps to a face neighbour each time (D. Hilbert, Math. Ann. 38, 1891; the
+    # curve in space as in J. Skilling, AIP Conf. Proc. 707, 2004).
+    side = 1 << bits
+    grid = np.stack(np.meshgrid(*[np.arange(side)] * 3, indexing="ij"), -1).reshape(-1, 3)
+    xyz = grid + 0.5
+    keys = hilbert_keys(xyz, bits)
+    assert (np.sort(keys) == np.arange(side**3)).all()
+    path = xyz[np.argsort(keys)]
+    assert (np.abs(np.diff(path, axis=0)).sum(axis=1) == 1).all()
+    assert (hilbert_keys(xyz, bits, plain=True) == keys).all()
+
+
+def test_hilbert_keys_in_space_kernel_equals_numpy_at_full_depth():
+    xyz = np.random.default_rng(2).random((4000, 3))
+    for bits in (16, 21):
+        assert (hilbert_keys(xyz, bits) == hilbert_keys(xyz, bits, plain=True)).all()
+
+
+def test_hilbert_keys_bad_arguments_in_space():
+    xyz = np.zeros((3, 3))
+    with pytest.raises(InputError, match="between 1 and 21, got 22; points in 3-D take three bits"):
+        hilbert_keys(xyz, 22)
+    with pytest.raises(InputError, match=r"shape \(n, 2\) or \(n, 3\), got \(3, 4\)"):
+        hilbert_keys(np.zeros((3, 4)))
+
+
+@pytest.mark.two_threads
+def test_hilbert_keys_in_space_same_bits_on_two_threads():
+    xyz = np.random.default_rng(4).random((20000, 3))
+    with hatkernels.threads(1):
+        one = hilbert_keys(xyz)
+    with hatkernels.threads(2):
+        two = hilbert_keys(xyz)
+    np.testing.assert_array_equal(one, two)

@@ -452,7 +452,6 @@ class Mesh:
 
     def reorder(self, method="rcm"):
         """Renumber points and triangles for locality; see :func:`hatkernels.mesh.reorder`."""
-        self._need(2, "reorder()")
         return _reorder(self, method)
 
     def quality(self):

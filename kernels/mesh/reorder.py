@@ -1,4 +1,5 @@
-"""Renumbering points and triangles: bandwidth (RCM) or cache locality (Hilbert curve).
+"""Renumbering points and cells (triangles or tetrahedra): bandwidth (RCM) or cache
+locality (Hilbert curve).
 
 The renumbered mesh is built by the class of the mesh it comes from
 (``type(mesh)._trusted``), so this module needs nothing from
@@ -14,6 +15,7 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 from hatkernels._jit import reorder as _jit_reorder
 from hatkernels.checks import integer_option
 from hatkernels.errors import InputError
+from hatkernels.mesh.refine3d import unique_edges
 
 __all__ = ["reorder", "MeshPermutation", "hilbert_keys", "REORDERINGS"]
 
@@ -44,14 +46,25 @@ def _cells(xy, bits):
 def hilbert_keys(xy, bits=16, *, plain=False):
     """Position of each point along a Hilbert curve through its bounding box.
 
-    Coordinates are quantised to ``2**bits`` cells per side (``bits <= 31``).
-    The numba kernel does one point per iteration; ``plain=True`` runs the
-    vectorised NumPy version it is tested against.
+    Points in the plane (n, 2) or in space (n, 3).  Coordinates are quantised
+    to ``2**bits`` cells per side (``bits <= 31`` in the plane, ``bits <= 21`` in
+    space, where a key holds three bits a level).  The numba kernels do one
+    point per iteration; ``plain=True`` runs the vectorised NumPy versions they
+    are tested against.  In space the curve is J. Skilling's ("Programming the
+    Hilbert curve", AIP Conf. Proc. 707, 2004).
     """
     bits = integer_option(bits, "bits")
-    if not 1 <= bits <= 31:
-        raise InputError(f"bits must be between 1 and 31, got {bits}")
+    dim = np.shape(xy)[1] if np.ndim(xy) == 2 else 0
+    if dim not in (2, 3):
+        raise InputError(f"hilbert_keys needs points of shape (n, 2) or (n, 3), got {np.shape(xy)}")
+    most = 31 if dim == 2 else 21
+    if not 1 <= bits <= most:
+        raise InputError(f"bits must be between 1 and {most}, got {bits}"
+                         + ("; points in 3-D take three bits a level of a 63-bit key"
+                            if dim == 3 else ""))
     q = _cells(xy, bits)
+    if dim == 3:
+        return _hilbert3_plain(q, bits) if plain else _jit_reorder.hilbert_keys3(q, bits)
     if not plain:
         return _jit_reorder.hilbert_keys(q, bits)
     side = 1 << bits
@@ -72,6 +85,33 @@ def hilbert_keys(xy, bits=16, *, plain=False):
     return d
 
 
+def _hilbert3_plain(q, bits):
+    """Skilling's transform of (n, 3) cells, vectorised over points (see hilbert_keys)."""
+    x = [q[:, i].astype(np.int64) for i in range(3)]
+    m = 1 << (bits - 1)
+    while m > 1:
+        p = m - 1
+        for i in range(3):
+            high = (x[i] & m) > 0
+            t = np.where(high, 0, (x[0] ^ x[i]) & p)
+            x[0] = np.where(high, x[0] ^ p, x[0] ^ t)
+            if i:
+                x[i] = x[i] ^ t
+        m >>= 1
+    x[1] ^= x[0]
+    x[2] ^= x[1]
+    t = np.zeros_like(x[0])
+    m = 1 << (bits - 1)
+    while m > 1:
+        t = np.where((x[2] & m) > 0, t ^ (m - 1), t)
+        m >>= 1
+    d = np.zeros_like(x[0])
+    for j in range(bits - 1, -1, -1):
+        for i in range(3):
+            d = (d << 1) | (((x[i] ^ t) >> j) & 1)
+    return d
+
+
 def reorder(mesh, method="rcm"):
     """Renumber a mesh; return ``(new_mesh, MeshPermutation)``.
 
@@ -88,7 +128,7 @@ def reorder(mesh, method="rcm"):
         little; on meshes read from files or from Delaunay of scattered points
         either can be worth several times in SpMV speed.
 
-    Triangles are renumbered and sorted too (by their lowest new point for
+    Cells (triangles, or tetrahedra in 3-D) are renumbered and sorted too (by their lowest new point for
     rcm, by centroid along the curve for hilbert), so that per-triangle data
     must be permuted with ``perm.triangles``.  The refinement history is not
     carried over (multigrid needs the original numbering).
@@ -105,11 +145,9 @@ def reorder(mesh, method="rcm"):
         raise InputError(f"reorder needs a hatkernels.Mesh, got {type(mesh).__name__}")
     if method not in REORDERINGS:
         raise InputError(f"unknown reordering {method!r}; choose one of {REORDERINGS}")
-    if mesh.dim != 2:
-        raise InputError("reorder is not available for tetrahedra yet")
-    tri = mesh.triangles
+    tri = mesh.cells
     if method == "rcm":
-        e = mesh.edges()
+        e = mesh.edges() if mesh.dim == 2 else unique_edges(tri, mesh.n_points)[0]
         n = mesh.n_points
         g = sp.csr_matrix(
             (
