@@ -38,7 +38,7 @@ class PoissonProblem:
         The source (any kind of :mod:`hatkernels.coefficients`).
     dirichlet : number, (n_points,) array or callable ``g(x, y)``
         The held value on the Dirichlet points.
-    dirichlet_on : "boundary", point indices or (k, 2) sides, optional
+    dirichlet_on : "boundary", point indices, or sides ((k, 2) edges or (k, 3) faces), optional
         Where ``u = g``.  By default the whole boundary, unless ``neumann``
         or ``robin`` is given, in which case no point is held unless named.
     coefficient : kappa, any kind (tensors allowed); positive.

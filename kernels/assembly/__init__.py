@@ -248,22 +248,28 @@ def assemble_load(mesh, f, *, quadrature=2):
 
 
 def assemble_boundary_load(mesh, g, edges=None, *, quadrature=2):
-    """Neumann load ``b_i = int_Gamma g phi_i ds`` over ``edges`` (default: the whole boundary).
+    """Neumann load ``b_i = int_Gamma g phi_i ds`` over sides (default: the whole boundary).
 
-    ``g``: a number, an array per point or per edge (in the order of
-    ``edges``, or of :meth:`Mesh.boundary_edges` by default), or a callable
-    integrated by Gauss-Legendre exact to degree ``quadrature``.
+    ``edges``: the sides, (k, 2) edges of triangles or (k, 3) faces of
+    tetrahedra (default :meth:`Mesh.boundary_edges` / :meth:`Mesh.boundary_faces`).
+    ``g``: a number, an array per point or per side (in the order of the
+    sides), or a callable integrated exactly to degree ``quadrature``
+    (Gauss-Legendre on edges, :func:`~hatkernels.quadrature.triangle_rule` on faces).
 
     >>> import hatkernels
     >>> b = hatkernels.assemble_boundary_load(hatkernels.mesh.rectangle(2, 2), 1.0)
     >>> round(float(b.sum()), 12)                # the perimeter
     4.0
+    >>> b = hatkernels.assemble_boundary_load(hatkernels.mesh.cuboid(2, 2, 2), 1.0)
+    >>> round(float(b.sum()), 12)                # the surface of the unit cube
+    6.0
     """
     return boundary_load(_mesh(mesh), g, edges, quadrature=quadrature)
 
 
 def assemble_boundary_mass(mesh, r, edges=None, *, quadrature=2):
-    """Robin term ``R_ij = int_Gamma r phi_i phi_j ds`` over ``edges``, as canonical CSR.
+    """Robin term ``R_ij = int_Gamma r phi_i phi_j ds`` over sides (edges or faces, as for
+    :func:`assemble_boundary_load`), as canonical CSR.
 
     ``r`` must be non-negative (so that stiffness plus ``R`` stays positive definite).
 
