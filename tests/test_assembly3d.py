@@ -119,3 +119,11 @@ def test_tetrahedral_mesh_files_are_read(tmp_path):
     back = read_mesh(path)
     assert back.dim == 3 and np.array_equal(back.cells, mesh.cells)
     assert np.array_equal(back.points, mesh.points)
+
+
+def test_the_distributed_solve_refuses_tetrahedra_by_name():
+    pytest.importorskip("mpi4py")
+    from hatkernels.distributed import solve_poisson
+
+    with pytest.raises(hatkernels.InputError, match="not available for tetrahedra yet"):
+        solve_poisson(cuboid(2, 2, 2), 1.0)

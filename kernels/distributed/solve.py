@@ -163,6 +163,9 @@ def _local_boundary(sub, problem):
 def _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, parts, monitor):
     if not isinstance(mesh, Mesh):
         raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
+    if mesh.dim != 2:
+        raise InputError("the distributed solve is not available for tetrahedra yet; solve "
+                         "a 3-D mesh with hatkernels.solve_poisson on one machine")
     if matrix_free:
         raise InputError("matrix_free=True is not available in the distributed solve; each "
                          "rank assembles its rows (leave matrix_free unset)")
