@@ -292,3 +292,14 @@ def test_hilbert_keys_in_space_same_bits_on_two_threads():
     with hatkernels.threads(2):
         two = hilbert_keys(xyz)
     np.testing.assert_array_equal(one, two)
+
+
+def test_unused_points_stay_unused():
+    points = np.concatenate([UNEVEN[0], [[5.0, 5.0, 5.0]]])
+    with pytest.warns(hatkernels.MeshWarning, match="belong to no"):
+        coarse = Mesh(points, UNEVEN[1])
+    fine = coarse.refine()
+    used = np.bincount(fine.cells.ravel(), minlength=fine.n_points) > 0
+    np.testing.assert_array_equal(fine.unused_points(), np.flatnonzero(~used))
+    np.testing.assert_array_equal(fine.unused_points(), fine.refinement.coarse_points[[4]])
+    np.testing.assert_array_equal(fine.points[fine.unused_points()], [[5.0, 5.0, 5.0]])

@@ -79,9 +79,11 @@ def refine_tetrahedra(mesh):
 
     Fine points are numbered by first use in the fine cells (the eight children
     of coarse cell ``t`` are cells ``8t .. 8t+7``), as in 2-D, for locality.
-    Peak memory, beyond the result: the int64 edge keys and numpy's sort of them
-    (about 6 x 3 x 8 bytes per coarse cell, under 20 bytes per fine cell) and the
-    provisional fine cells (16 bytes per fine cell with int32 indices).
+    Working memory at peak, beyond the coarse mesh: the int64 keys of the six
+    edges of each coarse cell with numpy's sort and inverse map of them (about
+    12 bytes per fine cell), the provisional and the final fine cells (16 bytes
+    each per fine cell with int32 indices), and the points; measured figures
+    belong in the benchmark report.
     """
     cells = np.array(mesh.cells)  # a copy: Bey's order is restored in it
     swapped = _swapped(mesh)
