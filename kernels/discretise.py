@@ -40,14 +40,15 @@ class LinearSystem:
 
     Attributes
     ----------
-    A : scipy CSR (n_free, n_free), or StiffnessOperator (n_points, n_points)
+    A : scipy CSR (n_free, n_free), or StiffnessOperator (n_points, n_points); over MPI,
+        this rank's :class:`~hatkernels.distributed.matrix.DistributedMatrix`
     b : ndarray
     problem : PoissonProblem
     matrix_free : bool
     variant : str or None
         The matrix-free variant (None when assembled).
     unknowns : int
-        Free unknowns (the held points are not unknowns).
+        Free unknowns (the held points are not unknowns); over MPI, this rank's.
     stored_bytes : int
         What ``A`` stores.
     nnz : int

@@ -180,6 +180,13 @@ class LocalSystem:
         u[self.owned_fixed] = self.owned_values
         return u
 
+    def restrict(self, u_owned):
+        """The owned unknowns from values at the owned points (the inverse of :meth:`expand`)."""
+        u_owned = np.asarray(u_owned)
+        if u_owned.shape != (self.n_owned,):
+            raise InputError(f"expected {self.n_owned} owned values, got shape {u_owned.shape}")
+        return u_owned[self.owned_free]
+
     def __repr__(self):
         return (f"LocalSystem({self.n_unknowns} owned unknowns of {self.n_owned} points, "
                 f"{self.pattern.n_ghosts} ghost unknowns, nnz {self.A.nnz})")

@@ -27,6 +27,7 @@ import numba
 import numpy as np
 
 from hatkernels._jit import threads as _threads
+from hatkernels.discretise import LinearSystem
 from hatkernels.distributed.assembly import assemble_local, local_boundary_data, reduce_local
 from hatkernels.distributed.cg import cg
 from hatkernels.distributed.halo import CommStats
@@ -348,6 +349,9 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
     del A_L, b_L
     matrix = DistributedMatrix(local.A, local.pattern, comm, stats)
     n_of = local.n_unknowns
+    # this rank's share of the problem's linear system, in the serial solve's type
+    system = LinearSystem(matrix, local.b, problem, False, None, n_of, int(matrix.nbytes),
+                          int(matrix.nnz), timings, local)
     arrived = matrix.halo.exchange_indices(local.free_points[:n_of])
     _together(comm, "the halo check", _check_halo, arrived, local.free_points[n_of:])
     timings["assemble"] = time.perf_counter() - t2
@@ -359,10 +363,10 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
     timings["setup"] = time.perf_counter() - t3
     setup_stats = dataclasses.replace(stats)
     t4 = time.perf_counter()
-    result = cg(matrix, local.b, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
+    result = cg(system.A, system.b, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
                 monitor=monitor)
     timings["solve"] = time.perf_counter() - t4
-    u_owned = local.expand(result.x)
+    u_owned = system.expand(result.x)
 
     t5 = time.perf_counter()
     u = _gather(comm, split, u_owned, gather)
