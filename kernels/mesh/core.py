@@ -88,10 +88,10 @@ class Mesh:
     The inputs are copied; the mesh's arrays are read-only, so topology
     (edges, faces, boundary) is computed once and cached.  Stored cells are
     positively oriented: triangles counterclockwise, tetrahedra with
-    ``det(x1 - x0, x2 - x0, x3 - x0) > 0``.  Edges, refinement and
-    reordering are for triangles only so far (an InputError on tetrahedra);
-    ``.triangles`` of a 3-D mesh and ``.tetrahedra`` of a 2-D one are
-    InputErrors too, ``.cells`` serves both.
+    ``det(x1 - x0, x2 - x0, x3 - x0) > 0``.  The edge list and the boundary
+    edges are for triangles only so far (an InputError on tetrahedra, which
+    have faces); ``.triangles`` of a 3-D mesh and ``.tetrahedra`` of a 2-D
+    one are InputErrors too, ``.cells`` serves both.
 
     Examples
     --------
@@ -440,18 +440,19 @@ class Mesh:
     # -- derived meshes ----------------------------------------------------------
 
     def refine(self):
-        """Uniform refinement: each triangle split into four by its edge midpoints.
+        """Uniform refinement: each cell split by its edge midpoints, a triangle into four,
+        a tetrahedron into eight (J. Bey's rule, shapes bounded over any number of levels).
 
         The result is nested: it has this mesh's points and one more at the
         middle of each edge; :attr:`refinement` holds this mesh and the maps
         from coarse points and edges to fine points (see :class:`Refinement`).
-        The four children of triangle ``t`` are triangles ``4t .. 4t+3``;
-        boundary topology is carried over without recomputation.
+        The children of cell ``t`` are cells ``4t .. 4t+3`` (triangles) or
+        ``8t .. 8t+7`` (tetrahedra).
         """
         return _refine(self)
 
     def reorder(self, method="rcm"):
-        """Renumber points and triangles for locality; see :func:`hatkernels.mesh.reorder`."""
+        """Renumber points and cells for locality; see :func:`hatkernels.mesh.reorder`."""
         return _reorder(self, method)
 
     def quality(self):

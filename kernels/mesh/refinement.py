@@ -31,8 +31,9 @@ class Refinement:
 
     The fine points are numbered in the order the fine triangles first use
     them, which keeps neighbours close in memory at every level; these maps
-    are all that interpolation between the levels needs.  The four children
-    of coarse triangle ``t`` are fine triangles ``4t .. 4t+3``.
+    are all that interpolation between the levels needs.  The children of
+    coarse cell ``t`` are fine cells ``4t .. 4t+3`` (triangles) or ``8t ..
+    8t+7`` (tetrahedra).
     """
 
     coarse: "Mesh"  # noqa: F821  (the class lives above this module)
