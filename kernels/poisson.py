@@ -16,7 +16,9 @@ import time
 
 import numpy as np
 
+from hatkernels.checks import integer_option
 from hatkernels.discretise import discretise
+from hatkernels.errors import InputError
 from hatkernels.memory import check_solve_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.precond import capabilities
@@ -56,6 +58,15 @@ class PoissonSolution:
                 f"converged={s.converged}, {s.timings['total']:.3g} s)")
 
 
+def refined(mesh, times):
+    """``mesh`` refined ``times`` times (checked: a Mesh, an integer >= 0)."""
+    if not isinstance(mesh, Mesh):
+        raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
+    for _ in range(integer_option(times, "refine", minimum=0)):
+        mesh = mesh.refine()
+    return mesh
+
+
 def matrix_free_default(preconditioner, problem):
     """The form :func:`solve_poisson` picks: matrix-free when the preconditioner prefers it
     and the problem has the stiffness term only."""
@@ -67,6 +78,7 @@ def solve_poisson(
     mesh,
     f=1.0,
     *,
+    refine=0,
     dirichlet=0.0,
     dirichlet_on=None,
     coefficient=None,
@@ -91,7 +103,12 @@ def solve_poisson(
 
     Parameters
     ----------
-    mesh, f, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin, quadrature, zero_mean
+    mesh : Mesh
+    refine : int
+        Solve on ``mesh`` refined this many times (:meth:`Mesh.refine`); ``.u``
+        and ``.mesh`` are then those of the refined mesh, which is built here
+        (and stored: the patch-wise path that never stores it is future work).
+    f, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin, quadrature, zero_mean
         The problem: see :class:`hatkernels.problem.PoissonProblem` (``zero_mean=True``
         solves a pure Neumann part for its solution with mean zero).
     preconditioner, rtol, atol, maxiter, check, **preconditioner_options
@@ -134,6 +151,7 @@ def solve_poisson(
     (True, 0.0736)
     """
     t0 = time.perf_counter()
+    mesh = refined(mesh, refine)
     problem = PoissonProblem(mesh, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
                              coefficient=coefficient, reaction=reaction, neumann=neumann,
                              robin=robin, quadrature=quadrature, zero_mean=zero_mean)

@@ -313,3 +313,20 @@ def test_a_built_in_preconditioner_name_is_not_overwritten_by_accident():
         register_preconditioner("jacobi", lambda A, context: A)
     assert hatkernels.precond.capabilities("jacobi").is_diagonal  # still the built-in one
     assert PRECONDITIONERS.count("jacobi") == 1
+
+
+def test_refine_solves_on_the_refined_mesh():
+    # refine=k means "on mesh.refine() applied k times" (DESIGN.md's contract): the same
+    # points, numbering and values as refining first; -lap u = 1 on the unit square has
+    # its centre value 0.0737 (series solution; value from memory), which the refined
+    # solve approaches
+    coarse = rectangle(4, 4)
+    sol = solve_poisson(coarse, 1.0, refine=3, preconditioner="gmg", rtol=1e-12)
+    fine = coarse.refine().refine().refine()
+    assert sol.mesh.n_points == fine.n_points and np.array_equal(sol.mesh.points, fine.points)
+    direct = solve_poisson(fine, 1.0, preconditioner="direct")
+    assert np.abs(sol.u - direct.u).max() <= 1e-10
+    centre = np.flatnonzero((fine.points == 0.5).all(axis=1))[0]
+    assert abs(sol.u[centre] - 0.0737) < 2e-4
+    with pytest.raises(hatkernels.InputError, match="refine must be >= 0"):
+        solve_poisson(coarse, 1.0, refine=-1)

@@ -40,7 +40,7 @@ from hatkernels.errors import InputError
 from hatkernels.memory import check_solve_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.perf import peak_rss_bytes
-from hatkernels.poisson import PoissonSolution
+from hatkernels.poisson import PoissonSolution, refined
 from hatkernels.problem import PoissonProblem
 from hatkernels.solver import report_convergence
 from hatkernels.stats import SolveStats
@@ -192,6 +192,7 @@ def solve_poisson(
     mesh,
     f=1.0,
     *,
+    refine=0,
     comm=None,
     dirichlet=0.0,
     dirichlet_on=None,
@@ -225,7 +226,7 @@ def solve_poisson(
 
     Parameters
     ----------
-    mesh, f, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin
+    mesh, f, refine, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin
         As in :func:`hatkernels.poisson.solve_poisson`.
     comm : mpi4py intracommunicator, optional
         Default ``MPI.COMM_WORLD``.
@@ -273,6 +274,7 @@ def solve_poisson(
     ConvergenceError
         With ``check=True``, on every rank.
     """
+    mesh = refined(mesh, refine)  # every rank refines the whole mesh (the replicated path)
     _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, partition,
                    monitor)
     if zero_mean is not False:
