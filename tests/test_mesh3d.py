@@ -9,7 +9,6 @@ from hypothesis import given
 from hypothesis import strategies as st
 from scipy.spatial import ConvexHull, Delaunay
 
-import hatkernels
 from hatkernels import InputError, Mesh, MeshError, MeshWarning
 from hatkernels.mesh import ball, cuboid, rectangle, triangulate
 
