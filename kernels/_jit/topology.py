@@ -229,7 +229,7 @@ def first_appearance(triangles, n_points, new_id):
     new_id[:] = -1
     k = 0
     for t in range(triangles.shape[0]):
-        for a in range(3):
+        for a in range(triangles.shape[1]):  # any cell width: triangles, tetrahedra
             v = triangles[t, a]
             if new_id[v] < 0:
                 new_id[v] = k
@@ -268,20 +268,3 @@ def component_roots(cells, parent):
                 a = b
     for i in range(parent.size):
         parent[i] = _root(parent, i)
-
-
-@jit()
-def first_appearance_rows(cells, n_points, new_id):
-    """:func:`first_appearance` for cells of any width (tetrahedra: four points a row)."""
-    new_id[:] = -1
-    k = 0
-    for t in range(cells.shape[0]):
-        for a in range(cells.shape[1]):
-            v = cells[t, a]
-            if new_id[v] < 0:
-                new_id[v] = k
-                k += 1
-    for v in range(n_points):
-        if new_id[v] < 0:
-            new_id[v] = k
-            k += 1

@@ -106,7 +106,7 @@ def refine_tetrahedra(mesh):
     fine = fine.reshape(8 * m, 4)
 
     new_id = np.empty(n + n_edges, dtype=dt)
-    _topo.first_appearance_rows(fine, n + n_edges, new_id)
+    _topo.first_appearance(fine, n + n_edges, new_id)
     fine = new_id[fine]
     coarse_points = new_id[:n]
     midpoints = new_id[n:]
