@@ -139,15 +139,21 @@ def parse_conditions(mesh, *, dirichlet=0.0, dirichlet_on=None, neumann=None, ro
     if neumann is not None:
         if isinstance(neumann, tuple) and len(neumann) != 2:
             raise InputError(f"neumann must be h or (sides, h), got a tuple of {len(neumann)}")
-        sides, h = neumann if isinstance(neumann, tuple) else (free_sides(mesh, held), neumann)
-        e = check_sides(mesh, sides)
+        # only sides the user names are checked: the mesh's own boundary sides are valid, and
+        # checking them would build the whole edge or face list of the mesh for nothing
+        if isinstance(neumann, tuple):
+            e, h = check_sides(mesh, neumann[0]), neumann[1]
+        else:
+            e, h = free_sides(mesh, held), neumann
         flux = Flux(e, parse_edge_coefficient(h, mesh, len(e), name="boundary load", sign="any"))
     convection = None
     if robin is not None:
         if not isinstance(robin, tuple) or len(robin) not in (2, 3):
             raise InputError("robin must be (r, s) or (sides, r, s)")
-        sides, r, s = robin if len(robin) == 3 else (free_sides(mesh, held),) + robin
-        e = check_sides(mesh, sides)
+        if len(robin) == 3:
+            e, r, s = check_sides(mesh, robin[0]), robin[1], robin[2]
+        else:
+            e, (r, s) = free_sides(mesh, held), robin
         convection = Robin(
             e,
             parse_edge_coefficient(r, mesh, len(e), name="boundary coefficient",

@@ -25,24 +25,30 @@ from hatkernels.quadrature import edge_rule, triangle_rule
 __all__ = ["check_edges", "check_faces", "check_sides", "boundary_load", "boundary_mass", "side_load", "side_mass"]
 
 
+def _side_array(mesh, sides, word):
+    """``sides`` as an int64 (E, 2 or 3) array of point indices in range, or an InputError."""
+    width = {"edge": 2, "face": 3}[word]
+    a = np.asarray(sides)
+    if a.ndim != 2 or a.shape[1] != width or (a.size and a.dtype.kind not in "iu"):
+        raise InputError(f"{word}s must be an integer array of shape (n_{word}s, {width}), "
+                         f"got {a.dtype} {a.shape}")
+    a = a.astype(np.int64)
+    out = (a < 0) | (a >= mesh.n_points)
+    if out.any():
+        k = int(np.flatnonzero(out.any(axis=1))[0])
+        raise InputError(
+            f"{word} {k} refers to a point outside 0..{mesh.n_points - 1}: {a[k].tolist()}"
+        )
+    return a
+
+
 def check_edges(mesh, edges):
     """Validate an (E, 2) array of mesh edges (default: the boundary edges)."""
     if edges is None:
         return mesh.boundary_edges()
-    e = np.asarray(edges)
-    if e.ndim != 2 or e.shape[1] != 2 or (e.size and e.dtype.kind not in "iu"):
-        raise InputError(
-            f"edges must be an integer array of shape (n_edges, 2), got {e.dtype} {e.shape}"
-        )
-    e = e.astype(np.int64)
+    e = _side_array(mesh, edges, "edge")
     if e.size == 0:
         return e
-    out = (e < 0) | (e >= mesh.n_points)
-    if out.any():
-        k = int(np.flatnonzero(out.any(axis=1))[0])
-        raise InputError(
-            f"edge {k} refers to a point outside 0..{mesh.n_points - 1}: {e[k].tolist()}"
-        )
     same = e[:, 0] == e[:, 1]
     if same.any():
         k = int(np.flatnonzero(same)[0])
@@ -154,20 +160,9 @@ def check_faces(mesh, faces):
         raise InputError("faces are sides of tetrahedra; this mesh has triangles: pass edges")
     if faces is None:
         return mesh.boundary_faces().astype(np.int64)
-    f = np.asarray(faces)
-    if f.ndim != 2 or f.shape[1] != 3 or (f.size and f.dtype.kind not in "iu"):
-        raise InputError(
-            f"faces must be an integer array of shape (n_faces, 3), got {f.dtype} {f.shape}"
-        )
-    f = f.astype(np.int64)
+    f = _side_array(mesh, faces, "face")
     if f.size == 0:
         return f
-    out = (f < 0) | (f >= mesh.n_points)
-    if out.any():
-        k = int(np.flatnonzero(out.any(axis=1))[0])
-        raise InputError(
-            f"face {k} refers to a point outside 0..{mesh.n_points - 1}: {f[k].tolist()}"
-        )
     s = np.sort(f, axis=1)
     same = (s[:, 0] == s[:, 1]) | (s[:, 1] == s[:, 2])
     if same.any():
