@@ -104,7 +104,7 @@ def zero_means(problem, u):
     part's measure: weights ``int phi_i`` (the load of the source 1).
     """
     mesh = problem.mesh
-    _, labels = mesh.components()
+    labels = problem.part_labels
     weights = assemble_load(mesh, 1.0)
     u = np.array(u, dtype=np.float64)
     for part in problem.floating:
@@ -119,7 +119,7 @@ def balanced(problem, b):
     That is a constant subtracted from the part's source: it makes the
     singular part's system consistent, so the held pin point takes no load.
     """
-    _, labels = problem.mesh.components()
+    labels = problem.part_labels
     weights = assemble_load(problem.mesh, 1.0)
     for part in problem.floating:
         inside = labels == part

@@ -73,6 +73,9 @@ class PoissonProblem:
         The parts (labels of :meth:`Mesh.components`) solved with zero mean;
         empty unless ``zero_mean``.  For each, one point is held at 0 in
         ``dirichlet`` and the solution is shifted afterwards.
+    part_labels : ndarray or None
+        Each point's connected part (:meth:`Mesh.components`) when there are
+        floating parts, else None.
 
     Raises
     ------
@@ -105,6 +108,7 @@ class PoissonProblem:
         if not isinstance(zero_mean, bool):
             raise InputError(f"zero_mean must be True or False, got {zero_mean!r}")
         self.floating = np.empty(0, dtype=np.int64)
+        self.part_labels = None
         c = self.reaction
         if self.dirichlet.whole_boundary or c is not None and c.kind == "constant" and c.value > 0:
             return  # every part of the mesh is held: no need to find the parts
@@ -115,6 +119,7 @@ class PoissonProblem:
         if loose.size:
             self._balance(labels, loose)
             self.floating = loose
+            self.part_labels = labels  # kept: discretise and expand need them again
             pins = _pins(mesh, loose)
             points = np.concatenate([self.dirichlet.points, pins])
             values = np.concatenate([self.dirichlet.values, np.zeros(pins.size)])
