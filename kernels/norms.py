@@ -1,8 +1,14 @@
 """Error norms against exact solutions, and convergence studies over refinements.
 
-All integrals use a triangle rule (degree 5 by default, see
-:mod:`hatkernels.quadrature`), evaluated in chunks of triangles so that memory
-stays bounded on large meshes.
+On triangles and on tetrahedra alike.  All integrals use a rule of the
+cell's kind (degree 5 by default: seven points on a triangle, fifteen on a
+tetrahedron, see :mod:`hatkernels.quadrature`), evaluated in chunks of cells
+so that memory stays bounded on large meshes.
+
+Exact solutions and gradients are callables taking the coordinates of the
+quadrature points as separate arrays, as coefficients and loads are called
+elsewhere in the library: ``exact(x, y)`` in 2-D and ``exact(x, y, z)`` in
+3-D, each argument of shape ``(cells in the chunk, points per cell)``.
 """
 
 from __future__ import annotations
@@ -16,7 +22,7 @@ from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.geometry import element_gradients
 from hatkernels.mesh.core import Mesh
-from hatkernels.quadrature import triangle_rule
+from hatkernels.quadrature import tetrahedron_rule, triangle_rule
 
 __all__ = [
     "ConvergenceStudy",
@@ -27,7 +33,14 @@ __all__ = [
     "observed_rates",
 ]
 
+#: Cells per chunk: triangles in 2-D; tetrahedra take half as many (a degree-5 rule
+#: has 15 points on a tetrahedron against 7 on a triangle), so that the temporaries
+#: hold about the same number of values (a few million) in both.
 _CHUNK = 1 << 17
+
+_CELL = {2: "triangle", 3: "tetrahedron"}
+_ARGS = {2: "x, y", 3: "x, y, z"}
+_GRADIENT = {2: "(ux, uy)", 3: "(ux, uy, uz)"}
 
 
 def _nodal(mesh, u):
@@ -41,20 +54,22 @@ def _nodal(mesh, u):
     u = u.astype(np.float64, copy=False)
     bad = ~np.isfinite(u)
     if bad.any():
-        bad[mesh.unused_points()] = False  # values at points in no triangle are never read
+        bad[mesh.unused_points()] = False  # values at points in no cell are never read
         if bad.any():
             k = int(np.flatnonzero(bad)[0])
             raise InputError(f"u[{k}] = {float(u[k])!r} is not finite")
     return u
 
 
-def _call(fn, x, y, name, first, components=1):
-    """``fn(x, y)`` at the quadrature points (m, Q) of triangles ``first .. first + m - 1``,
-    checked: real, the right shape, finite (else the point and triangle are named)."""
+def _call(fn, coords, name, first, cell, components=1):
+    """``fn(*coords)`` at the quadrature points, each coordinate (m, Q), of cells
+    ``first .. first + m - 1`` (``cell`` names their kind), checked: real, the right
+    shape, finite (else the point and the cell are named)."""
+    call = f"{name}({_ARGS[len(coords)]})"
     try:
-        v = fn(x, y)
+        v = fn(*coords)
     except Exception as exc:
-        raise InputError(f"{name}(x, y) raised {type(exc).__name__}: {exc}") from exc
+        raise InputError(f"{call} raised {type(exc).__name__}: {exc}") from exc
     if isinstance(v, tuple | list):
         v = [np.asarray(c) for c in v]
         kinds = {c.dtype.kind for c in v}
@@ -62,43 +77,45 @@ def _call(fn, x, y, name, first, components=1):
         v = np.asarray(v)
         kinds = {v.dtype.kind}
     if not kinds <= set("fiu"):
-        raise InputError(f"{name}(x, y) must return real numbers, got dtype(s) {sorted(kinds)}")
+        raise InputError(f"{call} must return real numbers, got dtype(s) {sorted(kinds)}")
     try:
         v = np.asarray(v, dtype=np.float64)
     except ValueError:  # components of different shapes
         raise InputError(
-            f"{name}(x, y) returned {components} components of different shapes: "
+            f"{call} returned {len(v)} components of different shapes: "
             f"{[np.shape(c) for c in v]}"
         ) from None
-    want = x.shape if components == 1 else (components,) + x.shape
+    shape = coords[0].shape
+    want = shape if components == 1 else (components,) + shape
     if v.shape != want:
         v = np.broadcast_to(v, want) if v.ndim == 0 else v
     if v.shape != want:
-        raise InputError(f"{name}(x, y) returned shape {v.shape}, expected {want}")
+        what = (f"one value per point, {want}" if components == 1
+                else f"{components} components {_GRADIENT[components]} of shape {shape}, {want}")
+        raise InputError(f"{call} returned shape {v.shape}, expected {what}")
     if not np.isfinite(v).all():
-        c, t, q = np.unravel_index(
-            int(np.flatnonzero(~np.isfinite(v))[0]), (components,) + x.shape
-        )
-        what = name if components == 1 else f"component {c} of {name}"
+        c, t, q = np.unravel_index(int(np.flatnonzero(~np.isfinite(v))[0]), (components,) + shape)
+        what = call if components == 1 else f"component {c} of {call}"
+        at = ", ".join(repr(float(x[t, q])) for x in coords)
         raise InputError(
-            f"{what}(x, y) is {float(v.reshape(components, *x.shape)[c, t, q])!r} at "
-            f"({float(x[t, q])!r}, {float(y[t, q])!r}), a quadrature point of triangle "
-            f"{first + t}; it must be finite"
+            f"{what} is {float(v.reshape(components, *shape)[c, t, q])!r} at ({at}), a "
+            f"quadrature point of {cell} {first + t}; it must be finite"
         )
     return v
 
 
 def _chunks(mesh, degree):
-    """Yield (triangle slice, area, physical quadrature points x, y, weights, barycentric)."""
-    lam, w = triangle_rule(degree)
+    """Yield (cell slice, measures, quadrature point coordinates (dim arrays (m, Q)),
+    weights, barycentric points)."""
+    lam, w = (triangle_rule if mesh.dim == 2 else tetrahedron_rule)(degree)
     p = mesh.points
-    area = mesh.areas()
-    for start in range(0, mesh.n_triangles, _CHUNK):
-        sl = slice(start, min(mesh.n_triangles, start + _CHUNK))
-        tri = mesh.triangles[sl]
-        x = p[tri, 0] @ lam.T
-        y = p[tri, 1] @ lam.T
-        yield sl, area[sl], x, y, w, lam
+    measure = mesh.measures()
+    step = _CHUNK if mesh.dim == 2 else max(1, _CHUNK // 2)
+    for start in range(0, mesh.n_cells, step):
+        sl = slice(start, min(mesh.n_cells, start + step))
+        cells = mesh.cells[sl]
+        coords = tuple(p[cells, i] @ lam.T for i in range(mesh.dim))
+        yield sl, measure[sl], coords, w, lam
 
 
 class _RootSumOfSquares:
@@ -118,17 +135,17 @@ class _RootSumOfSquares:
         else:
             self.ssq += ssq * (scale / self.scale) ** 2
 
-    def add_weighted(self, area, density_parts, w):
-        """Add ``area @ (sum_k c_k e_k**2) @ w`` given ``[(c_k or None, e_k), ...]``, scaled."""
+    def add_weighted(self, measure, density_parts, w):
+        """Add ``measure @ (sum_k c_k e_k**2) @ w`` given ``[(c_k or None, e_k), ...]``, scaled."""
         big_e = max(float(np.abs(e).max(initial=0.0)) for _, e in density_parts)
-        big_a = float(area.max(initial=0.0))
+        big_a = float(measure.max(initial=0.0))
         if big_e == 0.0 or big_a == 0.0:
             return
         big_c = max((float(np.abs(c).max(initial=0.0)) for c, _ in density_parts
                      if c is not None), default=1.0) or 1.0
         dens = sum((1.0 if c is None else c / big_c) * (e / big_e) ** 2
                    for c, e in density_parts)
-        self.add(float(np.sqrt(big_a * big_c)) * big_e, float((area / big_a) @ (dens @ w)))
+        self.add(float(np.sqrt(big_a * big_c)) * big_e, float((measure / big_a) @ (dens @ w)))
 
     def root(self):
         return self.scale * float(np.sqrt(self.ssq))
@@ -137,67 +154,133 @@ class _RootSumOfSquares:
 def l2_error(mesh, u, exact, *, quadrature=5):
     """``||u_h - u||_L2`` for nodal values ``u`` of the P1 function ``u_h``.
 
-    ``exact(x, y)`` takes and returns arrays.
+    Parameters
+    ----------
+    mesh : Mesh
+        Triangles or tetrahedra.
+    u : array_like, shape (n_points,)
+        Nodal values of ``u_h``; not modified.
+    exact : callable
+        ``exact(x, y)`` on triangles, ``exact(x, y, z)`` on tetrahedra: takes
+        arrays of quadrature point coordinates and returns the values there
+        (an array of the same shape, or a number).
+    quadrature : int
+        Degree of the rule (1 to 5).
 
+    Raises
+    ------
+    InputError
+        ``u`` of the wrong shape or not finite (naming the point); ``exact``
+        raising, returning the wrong shape, or a non-finite value (naming the
+        quadrature point and the cell).
+
+    Examples
+    --------
     >>> import numpy as np, hatkernels
     >>> m = hatkernels.mesh.rectangle(4, 4)
     >>> f = lambda x, y: 1 + 2 * x - y
     >>> bool(hatkernels.norms.l2_error(m, f(*m.points.T), f) < 1e-15)     # linear: exact
     True
+    >>> c = hatkernels.mesh.cuboid(2, 2, 2)
+    >>> g = lambda x, y, z: x * y * z               # int over the unit cube of g^2 = 1/27
+    >>> round(hatkernels.norms.l2_error(c, np.zeros(c.n_points), g) ** 2 * 27, 12)
+    1.0
     """
     u = _nodal(mesh, u)
+    cell = _CELL[mesh.dim]
     total = _RootSumOfSquares()  # values near 1e200 or 1e-200 neither overflow nor vanish
-    for sl, area, x, y, w, lam in _chunks(mesh, quadrature):
-        uh = u[mesh.triangles[sl]] @ lam.T
-        e = uh - _call(exact, x, y, "exact", sl.start)
-        total.add_weighted(area, [(None, e)], w)
+    for sl, measure, coords, w, lam in _chunks(mesh, quadrature):
+        uh = u[mesh.cells[sl]] @ lam.T
+        e = uh - _call(exact, coords, "exact", sl.start, cell)
+        total.add_weighted(measure, [(None, e)], w)
     return total.root()
 
 
 def _gradient_error(mesh, u, grad_exact, quadrature, coef=None):
     u = _nodal(mesh, u)
+    d, cell = mesh.dim, _CELL[mesh.dim]
     total = _RootSumOfSquares()
-    for sl, area, x, y, w, lam in _chunks(mesh, quadrature):
-        tri = mesh.triangles[sl]
-        _, G = element_gradients(mesh.points, tri)
-        gh = np.einsum("ma,mai->mi", u[tri], G)  # constant gradient per triangle
-        g = _call(grad_exact, x, y, "grad_exact", sl.start, components=2)  # (2, m, Q)
-        ex = gh[:, 0, None] - g[0]
-        ey = gh[:, 1, None] - g[1]
+    for sl, measure, coords, w, lam in _chunks(mesh, quadrature):
+        cells = mesh.cells[sl]
+        _, G = element_gradients(mesh.points, cells)
+        gh = np.einsum("ma,mai->mi", u[cells], G)  # constant gradient per cell
+        g = _call(grad_exact, coords, "grad_exact", sl.start, cell, components=d)  # (d, m, Q)
+        e = [gh[:, i, None] - g[i] for i in range(d)]
         if coef is None:
-            parts = [(None, ex), (None, ey)]
+            parts = [(None, ei) for ei in e]
         elif coef.kind == "tensor":
-            K = coef.value if coef.value.ndim == 2 else coef.value[sl]
-            K = np.broadcast_to(K, (len(tri), 2, 2))
-            # e.K e = k00 ex^2 + 2 k01 ex ey + k11 ey^2, with ex ey = ((ex + ey)^2 - ex^2 - ey^2) / 2
-            k01 = K[:, 0, 1, None]
-            parts = [(K[:, 0, 0, None] - k01, ex), (K[:, 1, 1, None] - k01, ey),
-                     (np.broadcast_to(k01, ex.shape), ex + ey)]
+            parts = _tensor_parts(coef.value if coef.value.ndim == 2 else coef.value[sl], e)
         else:
-            kq = np.broadcast_to(_coefficient_at(coef, mesh, sl, x, y, lam), ex.shape)
-            parts = [(kq, ex), (kq, ey)]
-        total.add_weighted(area, parts, w)
+            kq = np.broadcast_to(_coefficient_at(coef, mesh, sl, coords, lam), e[0].shape)
+            parts = [(kq, ei) for ei in e]
+        total.add_weighted(measure, parts, w)
     return total.root()
 
 
-def _coefficient_at(coef, mesh, sl, x, y, lam):
+def _tensor_parts(K, e):
+    """``e.K e`` as weighted squares, for ``_RootSumOfSquares.add_weighted``:
+    ``sum_i (k_ii - sum_{j != i} k_ij) e_i^2 + sum_{i < j} k_ij (e_i + e_j)^2``
+    (expand ``(e_i + e_j)^2``), with ``k_ij`` read above the diagonal."""
+    d = len(e)
+    K = np.broadcast_to(K, (len(e[0]), d, d))
+    pairs = [(i, j) for i in range(d) for j in range(i + 1, d)]
+    parts = []
+    for i in range(d):
+        kii = K[:, i, i, None]
+        for j in range(d):
+            if j != i:
+                kii = kii - K[:, min(i, j), max(i, j), None]
+        parts.append((kii, e[i]))
+    for i, j in pairs:
+        parts.append((np.broadcast_to(K[:, i, j, None], e[i].shape), e[i] + e[j]))
+    return parts
+
+
+def _coefficient_at(coef, mesh, sl, coords, lam):
     if coef.kind == "constant":
         return coef.value
     if coef.kind == "cell":
         return coef.value[sl][:, None]
     if coef.kind == "point":
-        return coef.value[mesh.triangles[sl]] @ lam.T
-    owners = np.repeat(np.arange(sl.start, sl.stop), x.shape[1])
-    return coef.evaluate((x.ravel(), y.ravel()), owners).reshape(x.shape)
+        return coef.value[mesh.cells[sl]] @ lam.T
+    shape = coords[0].shape
+    owners = np.repeat(np.arange(sl.start, sl.stop), shape[1])
+    flat = tuple(c.ravel() for c in coords)
+    return coef.evaluate(flat, owners, owner=_CELL[mesh.dim]).reshape(shape)
 
 
 def h1_seminorm_error(mesh, u, grad_exact, *, quadrature=5):
-    """``|u_h - u|_H1 = ||grad u_h - grad u||_L2``; ``grad_exact(x, y) -> (ux, uy)``."""
+    """``|u_h - u|_H1 = ||grad u_h - grad u||_L2``.
+
+    ``grad_exact(x, y) -> (ux, uy)`` on triangles, ``grad_exact(x, y, z) -> (ux, uy, uz)``
+    on tetrahedra (a tuple of arrays, or one array of shape ``(dim,) + x.shape``);
+    otherwise as :func:`l2_error`.
+
+    >>> import numpy as np, hatkernels
+    >>> c = hatkernels.mesh.cuboid(2, 2, 2)
+    >>> grad = lambda x, y, z: (0 * x, 0 * x, 0 * x)
+    >>> hatkernels.norms.h1_seminorm_error(c, 2 * c.points[:, 2], grad)   # |(0, 0, 2)| on volume 1
+    2.0
+    """
     return _gradient_error(mesh, u, grad_exact, quadrature)
 
 
 def energy_error(mesh, u, grad_exact, coefficient=None, *, quadrature=5):
-    """``(int kappa |grad(u_h - u)|^2)^(1/2)``, with a coefficient of any kind."""
+    """``(int kappa |grad(u_h - u)|^2)^(1/2)``, with a coefficient of any kind.
+
+    ``coefficient`` as for :func:`hatkernels.solve_poisson`: a number, one value
+    per point or per cell, a symmetric positive definite ``dim x dim`` tensor
+    (one, or one per cell; then the integrand is ``e . K e``, ``e`` the gradient
+    error), or a callable of the coordinates; ``grad_exact`` as for
+    :func:`h1_seminorm_error`.
+
+    >>> import numpy as np, hatkernels
+    >>> c = hatkernels.mesh.cuboid(2, 2, 2)
+    >>> grad = lambda x, y, z: (0 * x, 0 * x, 0 * x)
+    >>> K = np.array([[2.0, 0.0, 1.0], [0.0, 1.0, 0.0], [1.0, 0.0, 3.0]])
+    >>> round(hatkernels.norms.energy_error(c, c.points[:, 0] + c.points[:, 2], grad, K), 12)
+    2.645751311065
+    """
     coef = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
     return _gradient_error(mesh, u, grad_exact, quadrature, coef)
 
@@ -241,18 +324,42 @@ def convergence_study(mesh, solver, exact, grad_exact=None, *, levels=4, quadrat
     Parameters
     ----------
     mesh : Mesh
-        The coarsest mesh.
+        The coarsest mesh, triangles or tetrahedra; refined by
+        :meth:`Mesh.refine` (1 -> 4 triangles, 1 -> 8 tetrahedra).
     solver : callable
         ``solver(mesh) -> nodal values`` (an array, or an object with ``.u``).
     exact, grad_exact : callable
-        The exact solution and its gradient ``(ux, uy)``; without
-        ``grad_exact`` only the L2 error is measured.
+        The exact solution and its gradient, called with the coordinates
+        ``(x, y)`` on triangles and ``(x, y, z)`` on tetrahedra, as in
+        :func:`l2_error` and :func:`h1_seminorm_error`; without ``grad_exact``
+        only the L2 error is measured.
+    levels : int
+        Number of meshes, at least 2.
+    quadrature : int
+        Degree of the rule for the errors.
 
     Returns
     -------
     ConvergenceStudy
         ``h`` (longest edge), ``n_points``, ``errors`` and ``rates`` keyed by
         ``"L2"`` and ``"H1"``.
+
+    Examples
+    --------
+    ``u = x y z (1 - x)`` on the unit cube, ``-lap u = 2 y z``, ``u`` given on
+    the boundary:
+
+    >>> import numpy as np, hatkernels
+    >>> u = lambda x, y, z: x * y * z * (1 - x)
+    >>> grad = lambda x, y, z: ((1 - 2 * x) * y * z, x * (1 - x) * z, x * (1 - x) * y)
+    >>> def solver(m):
+    ...     return hatkernels.solve_poisson(m, lambda x, y, z: 2 * y * z, dirichlet=u)
+    >>> study = hatkernels.norms.convergence_study(
+    ...     hatkernels.mesh.cuboid(2, 2, 2), solver, u, grad, levels=3)
+    >>> [int(n) for n in study.n_points]
+    [27, 125, 729]
+    >>> bool(study.rates["L2"][-1] > 1.5 and study.rates["H1"][-1] > 0.8)
+    True
     """
     levels = integer_option(levels, "levels", minimum=2)
     h, n, e2, e1 = [], [], [], []
