@@ -12,7 +12,10 @@ how they are summed into the matrix, as in 2-D:
 ``csr``
     the generic row-owned plan of :class:`~hatkernels.assembly.dofs.DofAssembler`
     with the points as degrees of freedom: built once per assembler, then a
-    parallel gather with the same bits for any thread count.
+    parallel gather with the same bits for any thread count.  The stiffness
+    skips the (M, 4, 4) element matrices and the gradients: six edge
+    values per cell straight from the coordinates, then the gather
+    (:mod:`hatkernels._jit.assembly3d`).
 
 Every strategy returns the same canonical matrix: sorted indices, no
 duplicates, the full pattern of the mesh graph (explicit zeros kept).
@@ -23,13 +26,16 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
+from hatkernels._jit import assembly3d as _jit3d
 from hatkernels.assembly.dofs import DofAssembler
 from hatkernels.assembly.elements import (
+    _tetrahedron_means,
     tetrahedron_load_values,
     tetrahedron_lumped_values,
     tetrahedron_mass_values,
     tetrahedron_stiffness_values,
 )
+from hatkernels.errors import InputError
 from hatkernels.geometry import element_gradients
 
 __all__ = ["TetrahedronAssembly"]
@@ -92,10 +98,36 @@ class TetrahedronAssembly:
         return self.plan.matrix(values)
 
     def stiffness(self, coef, quadrature):
+        if self.strategy == "csr":
+            return self.plan.plan.matrix(self.stiffness_data(coef, quadrature))
         volumes, gradients = self.geometry()
         values = tetrahedron_stiffness_values(self.mesh.points, self.mesh.cells, volumes,
                                               gradients, coef, quadrature)
         return self._matrix(values)
+
+    def stiffness_data(self, coef, quadrature, out=None):
+        """The csr strategy's stiffness values on the plan's pattern, from the six edge values
+        of each cell computed straight from the coordinates (:mod:`hatkernels._jit.assembly3d`)."""
+        m = self.mesh
+        edges = np.empty((m.n_cells, 6))
+        if coef.kind == "tensor":
+            K = np.ascontiguousarray(coef.value, dtype=np.float64)
+            if K.shape not in ((3, 3), (m.n_cells, 3, 3)):
+                raise InputError(
+                    f"{coef.name}: a tensor on tetrahedra must have shape (3, 3) or "
+                    f"({m.n_cells}, 3, 3), got {K.shape}"
+                )
+            _jit3d.stiffness_edges_tensor(m.points, m.cells, K.reshape(-1, 3, 3),
+                                          int(K.ndim == 3), edges)
+        else:
+            kappa = np.ascontiguousarray(
+                np.atleast_1d(_tetrahedron_means(m.points, m.cells, coef, quadrature)),
+                dtype=np.float64)
+            _jit3d.stiffness_edges(m.points, m.cells, kappa, int(kappa.size > 1), edges)
+        pl = self.plan.plan
+        data = np.empty(pl.nnz) if out is None else out
+        _jit3d.gather_edges(pl.indptr, pl.ptr, pl.codes, pl.slots, edges, data)
+        return data
 
     def mass(self, coef, quadrature):
         volumes, _ = self.geometry()

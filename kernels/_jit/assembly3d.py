@@ -1,0 +1,140 @@
+"""Stiffness assembly on tetrahedra without the (M, 4, 4) element matrices.
+
+A tetrahedron's stiffness matrix is symmetric with rows summing to zero
+(the gradients of the barycentric coordinates sum to zero): its six
+off-diagonal entries, one per edge (``EDGE``), determine it, the diagonal
+being minus the sum of its row's.  They are computed straight from the
+coordinates (48 bytes per cell instead of 128 for the full matrices, and no
+gradient array of 96), then gathered into the CSR data by the generic dof
+plan of :mod:`hatkernels._jit.dofs` with ``k = 4``: row ``i`` walks its
+incidences in cell order, so the bits do not depend on the thread count,
+and ``(i, j)`` and ``(j, i)`` get the same edge value from each cell, so the
+matrix is symmetric to the last bit.
+"""
+
+import numpy as np
+from numba import prange, uint64
+
+from hatkernels._jit import jit
+
+#: The edge of local vertices (a, b), a != b, in the order 01, 02, 03, 12, 13, 23 (-1 on the diagonal).
+EDGE = np.array([[-1, 0, 1, 2], [0, -1, 3, 4], [1, 3, -1, 5], [2, 4, 5, -1]], dtype=np.int64)
+
+
+@jit(inline="always")
+def _normals(points, cells, t):
+    """``det`` (six times the signed volume) and the face normals ``n_0 .. n_3`` (12 scalars).
+
+    The same algebra as :func:`hatkernels._jit.geometry.tetrahedron_gradients`:
+    with ``e_k = x_k - x_0``, the gradient of barycentric coordinate ``k`` is
+    ``n_k / det`` for the cross products below, and ``n_0 = -(n_1 + n_2 + n_3)``.
+    Scalars, not an array: an allocation per cell measured slower than the algebra.
+    """
+    i0 = cells[t, 0]
+    i1 = cells[t, 1]
+    i2 = cells[t, 2]
+    i3 = cells[t, 3]
+    ax = points[i1, 0] - points[i0, 0]
+    ay = points[i1, 1] - points[i0, 1]
+    az = points[i1, 2] - points[i0, 2]
+    bx = points[i2, 0] - points[i0, 0]
+    by = points[i2, 1] - points[i0, 1]
+    bz = points[i2, 2] - points[i0, 2]
+    cx = points[i3, 0] - points[i0, 0]
+    cy = points[i3, 1] - points[i0, 1]
+    cz = points[i3, 2] - points[i0, 2]
+    n1x = by * cz - bz * cy
+    n1y = bz * cx - bx * cz
+    n1z = bx * cy - by * cx
+    n2x = cy * az - cz * ay
+    n2y = cz * ax - cx * az
+    n2z = cx * ay - cy * ax
+    n3x = ay * bz - az * by
+    n3y = az * bx - ax * bz
+    n3z = ax * by - ay * bx
+    det = ax * n1x + ay * n1y + az * n1z
+    return (det, -(n1x + n2x + n3x), -(n1y + n2y + n3y), -(n1z + n2z + n3z),
+            n1x, n1y, n1z, n2x, n2y, n2z, n3x, n3y, n3z)
+
+
+@jit(inline="always")
+def _dot(x0, y0, z0, x1, y1, z1):
+    return x0 * x1 + y0 * y1 + z0 * z1
+
+
+@jit(parallel=True)
+def stiffness_edges(points, cells, kappa, ks, out):
+    """``out[t]`` = the six off-diagonal stiffness entries of tetrahedron ``t`` (order of ``EDGE``).
+
+    For a scalar coefficient:
+
+    ``|T| kappa grad(phi_a) . grad(phi_b) = kappa (n_a . n_b) / (6 |det|)``;
+    ``kappa[t * ks]`` is the cell's mean coefficient (``ks`` 0: one value).
+    """
+    m = cells.shape[0]
+    for t in prange(m):
+        det, ax, ay, az, bx, by, bz, cx, cy, cz, dx, dy, dz = _normals(points, cells, t)
+        w = kappa[t * ks] / (6.0 * abs(det))
+        out[t, 0] = w * _dot(ax, ay, az, bx, by, bz)
+        out[t, 1] = w * _dot(ax, ay, az, cx, cy, cz)
+        out[t, 2] = w * _dot(ax, ay, az, dx, dy, dz)
+        out[t, 3] = w * _dot(bx, by, bz, cx, cy, cz)
+        out[t, 4] = w * _dot(bx, by, bz, dx, dy, dz)
+        out[t, 5] = w * _dot(cx, cy, cz, dx, dy, dz)
+
+
+@jit(inline="always")
+def _sym(K, x0, y0, z0, x1, y1, z1):
+    """``(n0 . K n1 + n1 . K n0) / 2``: exactly symmetric in its two vectors."""
+    s = (x0 * (K[0, 0] * x1 + K[0, 1] * y1 + K[0, 2] * z1)
+         + y0 * (K[1, 0] * x1 + K[1, 1] * y1 + K[1, 2] * z1)
+         + z0 * (K[2, 0] * x1 + K[2, 1] * y1 + K[2, 2] * z1))
+    r = (x1 * (K[0, 0] * x0 + K[0, 1] * y0 + K[0, 2] * z0)
+         + y1 * (K[1, 0] * x0 + K[1, 1] * y0 + K[1, 2] * z0)
+         + z1 * (K[2, 0] * x0 + K[2, 1] * y0 + K[2, 2] * z0))
+    return 0.5 * (s + r)
+
+
+@jit(parallel=True)
+def stiffness_edges_tensor(points, cells, tensor, ts, out):
+    """The same for a 3x3 tensor per cell (``ts`` 1) or one for all cells (``ts`` 0).
+
+    The rows of ``K_T`` still sum to zero.  Entry ``(a, b)`` is ``(n_a . K n_b + n_b . K n_a) / 2 / (6 |det|)``:
+    exactly symmetric for any ``K``, equal to ``n_a . K n_b`` for a symmetric one.
+    """
+    m = cells.shape[0]
+    for t in prange(m):
+        det, ax, ay, az, bx, by, bz, cx, cy, cz, dx, dy, dz = _normals(points, cells, t)
+        w = 1.0 / (6.0 * abs(det))
+        K = tensor[t * ts]
+        out[t, 0] = w * _sym(K, ax, ay, az, bx, by, bz)
+        out[t, 1] = w * _sym(K, ax, ay, az, cx, cy, cz)
+        out[t, 2] = w * _sym(K, ax, ay, az, dx, dy, dz)
+        out[t, 3] = w * _sym(K, bx, by, bz, cx, cy, cz)
+        out[t, 4] = w * _sym(K, bx, by, bz, dx, dy, dz)
+        out[t, 5] = w * _sym(K, cx, cy, cz, dx, dy, dz)
+
+
+@jit(parallel=True)
+def gather_edges(indptr, ptr, codes, slots, values, data):
+    """CSR ``data`` from the six edge values per tetrahedron (M, 6), one row per iteration.
+
+    The plan is that of :func:`hatkernels._jit.dofs.gather_matrix` with ``k = 4``;
+    the diagonal entry of each cell is minus the sum of its row's three.
+    """
+    n = indptr.size - 1
+    for i in prange(n):
+        for s in range(indptr[i], indptr[i + 1]):
+            data[uint64(s)] = 0.0
+        for e in range(ptr[i], ptr[i + 1]):
+            u = uint64(e)
+            q = uint64(codes[u])
+            t = q // uint64(4)
+            a = q - uint64(4) * t
+            diag = 0.0
+            for b in range(4):
+                if b != a:
+                    v = values[t, EDGE[a, b]]
+                    data[uint64(slots[u, b])] += v
+                    diag -= v
+            data[uint64(slots[u, a])] += diag
