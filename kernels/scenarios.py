@@ -1,4 +1,6 @@
-"""The built-in scenario of ``hatkernels solve``, and problems read from a mesh file.
+"""The built-in plate scenario of ``hatkernels solve``, problems read from a mesh file, and
+what every scenario shares (:class:`Problem`, :class:`Cooling`, :func:`solve_problem`,
+:func:`power_balance`); the 3-D block is in :mod:`hatkernels.block`.
 
 The heat-spreader plate is an invented demonstration, not a product: a thin
 aluminium plate 120 mm x 80 mm, 2 mm thick, under two heat-producing
@@ -19,7 +21,8 @@ D. P. DeWitt, Fundamentals of Heat and Mass Transfer, table A.1; value from
 memory).
 
 A :class:`Problem` is everything :func:`solve_problem` needs; it is built by
-:func:`heat_spreader` or :func:`mesh_problem` and knows how to state itself.
+:func:`heat_spreader`, :func:`hatkernels.block.heat_spreader_block` or
+:func:`mesh_problem` and knows how to state itself.
 
 >>> p = heat_spreader(rectangle_cells=48)
 >>> p.mesh.n_triangles, round(p.total_power(), 12)
@@ -33,7 +36,7 @@ import dataclasses
 import numpy as np
 
 from hatkernels.assembly import assemble_load, assemble_stiffness
-from hatkernels.coefficients import per_triangle
+from hatkernels.coefficients import per_cell
 from hatkernels.errors import InputError
 from hatkernels.mesh.generators import rectangle
 from hatkernels.poisson import solve_poisson
@@ -43,6 +46,7 @@ __all__ = [
     "COARSE_CELLS",
     "DEFAULT_CELLS",
     "Component",
+    "Cooling",
     "HeatSpreader",
     "PLATE",
     "Problem",
@@ -50,11 +54,12 @@ __all__ = [
     "mesh_problem",
     "power_balance",
     "solve_problem",
+    "source_per_cell",
 ]
 
 CAUTION = (
-    "CAUTION: these results are engineering estimates from a simplified model (steady, "
-    "in-plane conduction, idealised boundary conditions). They must be checked by a "
+    "CAUTION: these results are engineering estimates from a simplified model (steady "
+    "conduction, constant properties, idealised boundary conditions). They must be checked by a "
     "qualified person against local codes and licensed practice before any design, "
     "safety or purchasing decision."
 )
@@ -81,6 +86,10 @@ class Component:
         cx, cy = self.center
         return (f"{self.name}: {self.width * 1e3:g} mm x {self.height * 1e3:g} mm centred at "
                 f"({cx * 1e3:g} mm, {cy * 1e3:g} mm), {self.power:g} W")
+
+    def inside(self, centroids):
+        """Which of ``centroids`` (n, 2) lie strictly inside the footprint."""
+        return _inside(centroids, self.bounds)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -115,13 +124,43 @@ DEFAULT_CELLS = 960
 COARSE_CELLS = 15
 
 
+@dataclasses.dataclass(frozen=True)
+class Cooling:
+    """Convection on some boundary sides: ``k dT/dn + film (T - coolant) = 0`` (Robin).
+
+    ``sides``: (E, 2) edges or (E, 3) faces; ``film``: the film coefficient
+    h in W/(m^2 K); ``coolant``: its temperature (degC); ``where``: the sides
+    in words, for the report.
+    """
+
+    sides: np.ndarray
+    film: float
+    coolant: float
+    where: str
+
+    def heat_out(self, mesh, u):
+        """``integral of film (u - coolant)`` over the sides (W, or W/m in 2-D).
+
+        Newton's law of cooling integrated exactly for the P1 field: each side
+        contributes its measure times the mean of ``u - coolant`` at its points.
+        """
+        x = mesh.points[self.sides]
+        if self.sides.shape[1] == 3:
+            size = 0.5 * np.linalg.norm(np.cross(x[:, 1] - x[:, 0], x[:, 2] - x[:, 0]), axis=1)
+        else:
+            size = np.linalg.norm(x[:, 1] - x[:, 0], axis=1)
+        return self.film * float(size @ (u[self.sides].mean(axis=1) - self.coolant))
+
+
 @dataclasses.dataclass
 class Problem:
     """A steady conduction (or generic Poisson) problem on a mesh, ready to solve.
 
-    ``source`` and ``conductivity`` are numbers or per-triangle arrays;
-    ``dirichlet`` is the value on the whole boundary; ``thickness`` (metres)
-    turns per-volume quantities into watts (None for a generic problem).
+    ``source`` and ``conductivity`` are numbers or per-cell arrays;
+    ``dirichlet`` is the value on the whole boundary, or None when
+    ``cooling`` (a :class:`Cooling`) is the only condition and the rest of the
+    boundary is insulated; ``thickness`` (metres) turns the per-volume
+    quantities of a plate into watts (None for a solid or a generic problem).
     ``length_scale`` and ``length_unit`` say how to show coordinates
     (1e3 and "mm" for the plate), ``quantity`` and ``unit`` name the solution.
     """
@@ -130,9 +169,10 @@ class Problem:
     mesh: object
     source: object
     conductivity: object
-    dirichlet: float
+    dirichlet: float | None
     statement: list
     thickness: float | None = None
+    cooling: Cooling | None = None
     components: tuple = ()
     length_scale: float = 1.0
     length_unit: str = ""
@@ -142,59 +182,78 @@ class Problem:
     mesh_description: str = ""
 
     def source_array(self):
-        """The source per triangle, shape (n_triangles,)."""
+        """The source per cell, shape (n_cells,)."""
         s = self.source
-        return np.full(self.mesh.n_triangles, float(s)) if np.ndim(s) == 0 else np.asarray(s)
+        return np.full(self.mesh.n_cells, float(s)) if np.ndim(s) == 0 else np.asarray(s)
 
     def total_power(self):
-        """``integral of q`` times the thickness (W), or the plain integral for a generic problem."""
-        total = float(self.source_array() @ self.mesh.areas())
+        """``integral of q`` (times the thickness of a plate) in W, or the plain integral for a
+        generic problem."""
+        total = float(self.source_array() @ self.mesh.measures())
         return total * (self.thickness or 1.0)
 
     def component_powers(self):
-        """Power put in under each component, computed from the per-triangle source (W)."""
+        """Power put in inside each component (or heat source), from the per-cell source (W)."""
         q = self.source_array()
-        c = self.mesh.points[self.mesh.triangles].mean(axis=1)
+        c = self.mesh.points[self.mesh.cells].mean(axis=1)
+        size = self.mesh.measures()
         out = {}
         for comp in self.components:
-            inside = _inside(c, comp.bounds)
-            out[comp.name] = float(q[inside] @ self.mesh.areas()[inside]) * self.thickness
+            inside = comp.inside(c)
+            out[comp.name] = float(q[inside] @ size[inside]) * (self.thickness or 1.0)
         return out
 
 
 def _inside(centroids, bounds):
-    x0, x1, y0, y1 = bounds
-    x, y = centroids[:, 0], centroids[:, 1]
-    return (x > x0) & (x < x1) & (y > y0) & (y < y1)
+    inside = np.ones(len(centroids), dtype=bool)
+    for axis in range(len(bounds) // 2):  # (x0, x1, y0, y1) or (x0, x1, y0, y1, z0, z1)
+        x = centroids[:, axis]
+        inside &= (x > bounds[2 * axis]) & (x < bounds[2 * axis + 1])
+    return inside
+
+
+def source_per_cell(mesh, components, depth=1.0, hint=""):
+    """Per-cell source (W/m^3) that puts exactly each component's power into its region.
+
+    A cell belongs to a region when its centroid lies strictly inside
+    (``component.inside``).  Each region's value is ``P / (depth * measure it
+    covers)`` (``depth``: a plate's thickness; 1 for a solid), so the integral
+    is exactly ``P`` whether or not the mesh lines up with the region.
+
+    Raises
+    ------
+    InputError
+        A region contains no cell centroid (the mesh is too coarse); ``hint``
+        says how to ask for a finer one.
+    """
+    c = mesh.points[mesh.cells].mean(axis=1)
+    size = mesh.measures()
+    q = np.zeros(mesh.n_cells)
+    word = "triangle" if mesh.dim == 2 else "tetrahedron"
+    for comp in components:
+        inside = comp.inside(c)
+        covered = float(size[inside].sum())
+        if covered == 0.0:
+            raise InputError(
+                f"the mesh is too coarse for the scenario: no {word} centre lies inside the "
+                f"{comp.describe()}; {hint}"
+            )
+        q[inside] += comp.power / (depth * covered)
+    return q
 
 
 def component_source(mesh, plate=PLATE):
-    """Per-triangle source (W/m^3) of the plate's components, exact total power per component.
-
-    A triangle belongs to a footprint when its centroid lies strictly
-    inside.  Each component's value is ``P / (thickness * area it covers)``,
-    so the integral is exactly ``P`` whether or not the mesh lines up with the
-    footprint (it does on the default mesh, where the value is the nominal
-    ``P / (footprint area * thickness)``).
+    """Per-triangle source (W/m^3) of the plate's components, exact total power per component
+    (:func:`source_per_cell`; on the default mesh the footprints line up with the cells and
+    the value is the nominal ``P / (footprint area * thickness)``).
 
     Raises
     ------
     InputError
         A footprint contains no triangle centroid (the mesh is too coarse).
     """
-    c = mesh.points[mesh.triangles].mean(axis=1)
-    area = mesh.areas()
-    q = np.zeros(mesh.n_triangles)
-    for comp in plate.components:
-        inside = _inside(c, comp.bounds)
-        covered = float(area[inside].sum())
-        if covered == 0.0:
-            raise InputError(
-                f"the mesh is too coarse for the scenario: no triangle centre lies inside the "
-                f"{comp.describe()}; use a finer mesh (--cells 24 or more)"
-            )
-        q[inside] += comp.power / (plate.thickness * covered)
-    return q
+    return source_per_cell(mesh, plate.components, plate.thickness,
+                           "use a finer mesh (--cells 24 or more)")
 
 
 def heat_spreader(mesh=None, *, rectangle_cells=None, source=None, conductivity=None,
@@ -265,7 +324,7 @@ def mesh_problem(mesh, *, source=None, conductivity=None, dirichlet=None, name="
 
 
 def _coefficient(value):
-    return value if np.ndim(value) == 0 else per_triangle(value)
+    return value if np.ndim(value) == 0 else per_cell(value)
 
 
 def solve_problem(problem, *, preconditioner="amg", rtol=1e-10, maxiter=None, progress=None,
@@ -281,11 +340,14 @@ def solve_problem(problem, *, preconditioner="amg", rtol=1e-10, maxiter=None, pr
     Raises :class:`~hatkernels.errors.ConvergenceError` when the solve does not
     reach ``rtol``.
     """
+    if problem.cooling is None:
+        conditions = {"dirichlet": problem.dirichlet, "dirichlet_on": "boundary"}
+    else:  # convection on its sides, the rest insulated (no Dirichlet point)
+        c = problem.cooling
+        conditions = {"robin": (c.sides, c.film, c.film * c.coolant)}
     return solver(
         problem.mesh,
         _coefficient(problem.source),
-        dirichlet=problem.dirichlet,
-        dirichlet_on="boundary",
         coefficient=_coefficient(problem.conductivity),
         preconditioner=preconditioner,
         rtol=rtol,
@@ -293,27 +355,35 @@ def solve_problem(problem, *, preconditioner="amg", rtol=1e-10, maxiter=None, pr
         check=True,
         progress=progress,
         monitor=monitor,
+        **conditions,
         **options,
     )
 
 
 def power_balance(problem, u):
-    """Heat put in against heat leaving through the Dirichlet boundary.
+    """Heat put in against heat leaving through the held or the cooled boundary.
 
-    The reaction ``A u - b`` on the boundary rows is the discrete flux
-    ``integral k dT/dn phi_i`` over the boundary; its sum with the sign
-    reversed is the heat leaving (per unit thickness), which conservation
-    says equals the integral of the source.  Returns a dict with
-    ``power_in``, ``heat_out`` (W for the plate), their ``imbalance`` and the
-    ``relative_imbalance``.
+    Held boundary (Dirichlet): the reaction ``A u - b`` on the boundary rows
+    is the discrete flux ``integral k dT/dn phi_i`` over the boundary; its sum
+    with the sign reversed is the heat leaving (per unit thickness of a
+    plate).  Cooled sides (:class:`Cooling`): the heat leaving is Newton's
+    law of cooling, ``integral h (T - coolant)`` over those sides, computed
+    from the solution alone.  Conservation says either equals the integral
+    of the source, to the solver's tolerance.  Returns a dict with
+    ``power_in``, ``heat_out`` (W for the scenarios), their ``imbalance`` and
+    the ``relative_imbalance``.
     """
     mesh = problem.mesh
-    A = assemble_stiffness(mesh, _coefficient(problem.conductivity))
-    b = assemble_load(mesh, _coefficient(problem.source))
-    reaction = A @ u - b
     t = problem.thickness or 1.0
-    heat_out = -float(reaction[mesh.boundary_points()].sum()) * t
-    power_in = float(b.sum()) * t
+    if problem.cooling is not None:
+        power_in = problem.total_power()
+        heat_out = problem.cooling.heat_out(mesh, u) * t
+    else:
+        A = assemble_stiffness(mesh, _coefficient(problem.conductivity))
+        b = assemble_load(mesh, _coefficient(problem.source))
+        reaction = A @ u - b
+        heat_out = -float(reaction[mesh.boundary_points()].sum()) * t
+        power_in = float(b.sum()) * t
     imbalance = power_in - heat_out
     return {
         "power_in": power_in,
