@@ -1,7 +1,8 @@
 """Reading meshes and writing results: whole files or nothing.
 
 Meshes are read from ``.npz`` archives (arrays ``points`` (n_points, 2) and
-``triangles`` (n_triangles, 3)), always, and from any format meshio reads
+``triangles`` (n_triangles, 3), or ``points`` (n_points, 3) and
+``tetrahedra`` (n_tetrahedra, 4)), always, and from any format meshio reads
 when the ``io`` extra is installed.  Results are written to ``.npz`` (always)
 and ``.vtu`` (with meshio).
 
@@ -104,15 +105,21 @@ def _read_npz_mesh(path):
         raise InputError(f"mesh file {path}: holds a single array, not an .npz archive with "
                          f"'points' and 'triangles'")
     with archive:
-        missing = [k for k in ("points", "triangles") if k not in archive.files]
+        cells = _cells_name(archive.files)
+        missing = [k for k in ("points", cells) if k not in archive.files]
         if missing:
             have = ", ".join(archive.files) or "nothing"
             raise InputError(f"mesh file {path}: no array {missing[0]!r} (it has: {have})")
         try:
-            points, triangles = archive["points"], archive["triangles"]
+            points, cells = archive["points"], archive[cells]
         except (OSError, ValueError, zipfile.BadZipFile) as exc:
             raise InputError(f"mesh file {path}: cannot read its arrays ({exc})") from None
-    return points, triangles
+    return points, cells
+
+
+def _cells_name(names):
+    """The archive's cell array: ``tetrahedra`` when it has one (and no ``triangles``)."""
+    return "tetrahedra" if "tetrahedra" in names and "triangles" not in names else "triangles"
 
 
 def _read_meshio_mesh(path):
@@ -168,7 +175,7 @@ def _read_meshio_mesh(path):
 def read_mesh_arrays(path):
     """The ``points`` and ``triangles`` arrays of a mesh file, read but not yet checked.
 
-    ``.npz``: arrays ``points`` and ``triangles``.  Any other extension is
+    ``.npz``: arrays ``points`` and ``triangles`` (or ``tetrahedra``).  Any other extension is
     handed to meshio (if installed): its tetrahedra when it has any (a 3-D
     mesh; triangle, line and vertex cells ignored), else its triangle cells
     (line and vertex cells ignored, a z coordinate dropped when it is constant).
@@ -218,14 +225,14 @@ class Solution:
     metadata: dict
 
 
-_RESERVED = ("points", "triangles", "metadata", "fields")
+_RESERVED = ("points", "triangles", "tetrahedra", "metadata", "fields")
 
 
 def _checked_fields(mesh, point_data, cell_data):
     """Check field shapes against the mesh; return (point arrays, cell arrays)."""
     out = ({}, {})
     for slot, kind, data, n in ((0, "point", point_data, mesh.n_points),
-                                (1, "cell", cell_data, mesh.n_triangles)):
+                                (1, "cell", cell_data, mesh.n_cells)):
         for name, values in (data or {}).items():
             if not isinstance(name, str) or not name.isidentifier() or name in _RESERVED:
                 raise InputError(f"{kind} array name {name!r} is reserved or not an identifier "
@@ -240,10 +247,14 @@ def _checked_fields(mesh, point_data, cell_data):
     return out
 
 
+_CELL_KEY = {2: "triangles", 3: "tetrahedra"}
+
+
 def write_solution(path, mesh, point_data=None, metadata=None, cell_data=None):
     """Write a mesh and fields to an ``.npz`` archive, atomically; return ``path``.
 
-    The archive holds ``points`` (n_points, 2), ``triangles`` (n_triangles, 3),
+    The archive holds ``points`` (n_points, 2), ``triangles`` (n_triangles, 3)
+    (in 3-D: ``points`` (n_points, 3), ``tetrahedra`` (n_tetrahedra, 4)),
     one array per field under its own name (for example ``u``, one value per
     point), ``fields`` (a JSON string mapping each field name to "point" or
     "cell") and ``metadata`` (a JSON string).  It loads with
@@ -253,7 +264,7 @@ def write_solution(path, mesh, point_data=None, metadata=None, cell_data=None):
     meta = json.dumps(metadata or {}, allow_nan=False)
     fields = json.dumps({**{k: "point" for k in points}, **{k: "cell" for k in cells}})
     with atomic_file(path) as tmp, open(tmp, "wb") as f:
-        np.savez_compressed(f, points=mesh.points, triangles=mesh.triangles,
+        np.savez_compressed(f, points=mesh.points, **{_CELL_KEY[mesh.dim]: mesh.cells},
                             metadata=np.array(meta), fields=np.array(fields), **points, **cells)
     return path
 
@@ -319,7 +330,7 @@ def read_solution(path):
     ------
     InputError
         The file is missing, not an ``.npz`` archive, truncated or damaged;
-        ``points`` or ``triangles`` is missing; ``metadata`` or ``fields`` is
+        ``points`` or ``triangles`` (``tetrahedra``) is missing; ``metadata`` or ``fields`` is
         not a JSON object; ``fields`` names an array the archive lacks or a
         kind other than "point" and "cell"; a field is not a real numeric
         array or its length is not the count of points (or cells).  The
@@ -332,7 +343,8 @@ def read_solution(path):
     where = f"solution file {path}"
     with _open_archive(path, where) as archive:
         arrays = _read_members(archive, where)
-    missing = [k for k in ("points", "triangles") if k not in arrays]
+    cells = _cells_name(arrays)
+    missing = [k for k in ("points", cells) if k not in arrays]
     if missing:
         have = ", ".join(arrays) or "nothing"
         raise InputError(f"{where}: no array {missing[0]!r} (it has: {have})")
@@ -344,7 +356,7 @@ def read_solution(path):
         if kind not in ("point", "cell"):
             raise InputError(f"{where}: 'fields' says {name!r} is {kind!r}; expected 'point' "
                              f"or 'cell'")
-    mesh = _mesh_from_arrays(arrays["points"], arrays["triangles"], where)
+    mesh = _mesh_from_arrays(arrays["points"], arrays[cells], where)
     point_data, cell_data = {}, {}
     for name in (k for k in arrays if k not in _RESERVED):
         a = arrays[name]
@@ -353,13 +365,13 @@ def read_solution(path):
                              f"row per point or cell, got dtype {a.dtype} and shape {a.shape}")
         kind = fields.get(name)
         if kind is None:
-            if mesh.n_points == mesh.n_triangles:
+            if mesh.n_points == mesh.n_cells:
                 raise InputError(f"{where}: cannot tell whether {name!r} is per point or per "
                                  f"cell (no 'fields' entry, and the counts are equal)")
-            counts = {mesh.n_points: "point", mesh.n_triangles: "cell"}
+            counts = {mesh.n_points: "point", mesh.n_cells: "cell"}
             if len(a) not in counts:
                 raise InputError(f"{where}: array {name!r} has {len(a)} rows, but the mesh has "
-                                 f"{mesh.n_points} points and {mesh.n_triangles} cells")
+                                 f"{mesh.n_points} points and {mesh.n_cells} cells")
             kind = counts[len(a)]
         (point_data if kind == "point" else cell_data)[name] = a
     try:
@@ -369,11 +381,16 @@ def read_solution(path):
     return Solution(mesh, point_data, cell_data, metadata)
 
 
+#: VTK's name, through meshio, of a mesh's cells by dimension (VTK XML types 5 and 10).
+_VTK_CELLS = {2: "triangle", 3: "tetra"}
+
+
 def write_vtu(path, mesh, point_data=None, cell_data=None):
     """Write a VTK unstructured grid (``.vtu``) through meshio, atomically; return ``path``.
 
-    Points get a zero z coordinate (VTK is 3-D).  Raises :class:`InputError`
-    when meshio is not installed.
+    Triangles (VTK cell type 5) get a zero z coordinate (VTK is 3-D);
+    tetrahedra are written as VTK type 10.  Raises :class:`InputError` when
+    meshio is not installed.
     """
     if not meshio_available():
         raise InputError("writing .vtu needs meshio; install the io extra "
@@ -381,9 +398,12 @@ def write_vtu(path, mesh, point_data=None, cell_data=None):
     import meshio
 
     point_arrays, cell_arrays = _checked_fields(mesh, point_data, cell_data)
+    points = mesh.points
+    if mesh.dim == 2:
+        points = np.column_stack([points, np.zeros(mesh.n_points)])
     out = meshio.Mesh(
-        np.column_stack([mesh.points, np.zeros(mesh.n_points)]),
-        [("triangle", np.asarray(mesh.triangles))],
+        points,
+        [(_VTK_CELLS[mesh.dim], np.asarray(mesh.cells))],
         point_data=point_arrays,
         cell_data={k: [v] for k, v in cell_arrays.items()},
     )

@@ -20,7 +20,9 @@ __all__ = [
     "SIZE",
     "available",
     "convergence_figure",
+    "plane_section",
     "residuals_figure",
+    "section_figure",
     "solution_figure",
 ]
 
@@ -122,6 +124,136 @@ def solution_figure(mesh, u, path, *, title="", label="u", length_scale=1.0, len
     ticks = MaxNLocator(8).tick_values(lo, hi)
     bar.set_ticks(ticks[(ticks >= lo) & (ticks <= hi)])
     fig.tight_layout()
+    return _save(fig, path, dpi)
+
+
+def plane_section(mesh, u, axis, value):
+    """The P1 field ``u`` of a tetrahedral mesh on the plane ``x[axis] = value``, exactly.
+
+    Each tetrahedron the plane cuts gives a triangle or a quadrilateral (two
+    triangles) whose corners lie on its edges; ``u`` is interpolated linearly
+    along those edges, so the section of a P1 field is itself P1 on the
+    returned triangles.  A point of the mesh on the plane counts as above it,
+    so a face lying in the plane is taken once (from the cell below it) and
+    corners that coincide are merged.
+
+    Returns
+    -------
+    coords : ndarray, shape (k, 2)
+        The corners in the plane's two other coordinates, in axis order.
+    triangles : ndarray, shape (t, 3)
+        Triangles of positive area (zero-area pieces, from cells that touch
+        the plane in an edge or a point only, are dropped).
+    values : ndarray, shape (k,)
+
+    Raises
+    ------
+    InputError
+        ``u`` does not have one finite value per point, or the plane misses
+        the mesh.
+
+    >>> from hatkernels.mesh import cuboid
+    >>> m = cuboid(2, 2, 2)
+    >>> xy, tri, v = plane_section(m, m.points[:, 0] + m.points[:, 2], 2, 0.3)
+    >>> bool(np.allclose(v, xy[:, 0] + 0.3)), xy.min(axis=0).tolist(), xy.max(axis=0).tolist()
+    (True, [0.0, 0.0], [1.0, 1.0])
+    """
+    u = _finite(u, "u")
+    if mesh.dim != 3 or u.shape != (mesh.n_points,):
+        raise InputError(f"plane_section needs a tetrahedral mesh and one value per point; got a "
+                         f"{mesh.dim}-D mesh and u of shape {u.shape}")
+    x = mesh.points
+    below = x[:, axis] < value
+    cells = mesh.cells
+    n_below = below[cells].sum(axis=1)
+    cut = cells[(n_below > 0) & (n_below < 4)].astype(np.int64)
+    if cut.size == 0:
+        raise InputError(f"the plane x[{axis}] = {value!r} does not cut the mesh")
+    nb = n_below[(n_below > 0) & (n_below < 4)]
+    cut = np.take_along_axis(cut, np.argsort(~below[cut], axis=1, kind="stable"), axis=1)
+    # corners as (below point, above point) edges, in cyclic order round the piece
+    pieces = []
+    for count, edges in ((1, [(0, 1), (0, 2), (0, 3)]), (3, [(0, 3), (1, 3), (2, 3)]),
+                         (2, [(0, 2), (0, 3), (1, 3), (1, 2)])):
+        c = cut[nb == count]
+        corners = np.stack([np.stack([c[:, a], c[:, b]], axis=1) for a, b in edges], axis=1)
+        tri = [(0, 1, 2)] if count != 2 else [(0, 1, 2), (0, 2, 3)]
+        pieces += [corners[:, list(t)] for t in tri]
+    ends = np.concatenate(pieces).reshape(-1, 2)  # (3 t, 2): below and above point of a corner
+    p, q = ends[:, 0], ends[:, 1]
+    t = (value - x[p, axis]) / (x[q, axis] - x[p, axis])
+    key = np.where(t == 1.0, q * len(x) + q, p * len(x) + q)  # a corner on a point: that point
+    keys, first, corner = np.unique(key, return_index=True, return_inverse=True)
+    p, q, t = p[first], q[first], t[first]
+    other = [a for a in range(3) if a != axis]
+    coords = x[p][:, other] + t[:, None] * (x[q][:, other] - x[p][:, other])
+    values = u[p] + t * (u[q] - u[p])
+    triangles = corner.reshape(-1, 3)
+    e1 = coords[triangles[:, 1]] - coords[triangles[:, 0]]
+    e2 = coords[triangles[:, 2]] - coords[triangles[:, 0]]
+    area = np.abs(e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0])
+    scale = float(np.ptp(coords, axis=0).prod()) or 1.0
+    return coords, triangles[area > 1e-12 * scale], values
+
+
+def section_figure(mesh, u, path, *, title="", label="u", length_scale=1.0, length_unit="",
+                   boxes=(), levels=24, size=SIZE, dpi=DPI):
+    """Two plane sections of a tetrahedral mesh's field through its largest value; write a PNG.
+
+    Above: the horizontal plane ``z = z_max`` seen from above (x, y); below:
+    the vertical plane ``y = y_max`` seen from the side (x, z); one colour
+    scale.  ``boxes``: sequence of (name, (x0, x1, y0, y1, z0, z1)) outlined
+    where each plane cuts them (in mesh coordinates).  Sections as in
+    :func:`plane_section`.
+    """
+    u = _finite(u, "u")
+    if u.shape != (mesh.n_points,):
+        raise InputError(f"u has shape {u.shape}; expected ({mesh.n_points},)")
+    fig = _figure(size, dpi)
+    from matplotlib.patches import Rectangle
+    from matplotlib.ticker import MaxNLocator
+    from matplotlib.tri import Triangulation
+
+    used = np.unique(mesh.cells)
+    imax = used[np.argmax(u[used])]
+    lo, hi = float(u[used].min()), float(u[used].max())
+    if hi - lo <= 1e-12 * max(1.0, abs(hi)):
+        lo, hi = lo - 0.5, hi + 0.5
+    s = float(length_scale)
+    spans = np.ptp(mesh.points, axis=0)
+    grid = fig.add_gridspec(2, 1, height_ratios=[spans[1], max(spans[2], spans[1] / 6)],
+                            hspace=0.55)
+    unit = f" ({length_unit})" if length_unit else ""
+    filled = None
+    for row, axis in enumerate((2, 1)):
+        ax = fig.add_subplot(grid[row])
+        at = float(mesh.points[imax, axis])
+        xy, tri, v = plane_section(mesh, u, axis, at)
+        tri = Triangulation(xy[:, 0] * s, xy[:, 1] * s, tri)
+        filled = ax.tricontourf(tri, v, levels=np.linspace(lo, hi, levels + 1), cmap="inferno")
+        a, b = [k for k in range(3) if k != axis]
+        for name, bounds in boxes:
+            lo_ax, hi_ax = bounds[2 * axis], bounds[2 * axis + 1]
+            if not lo_ax <= at <= hi_ax:
+                continue
+            x0, x1, y0, y1 = bounds[2 * a], bounds[2 * a + 1], bounds[2 * b], bounds[2 * b + 1]
+            ax.add_patch(Rectangle((x0 * s, y0 * s), (x1 - x0) * s, (y1 - y0) * s, fill=False,
+                                   edgecolor="cyan", linewidth=1.0, linestyle="--"))
+            if axis == 2:
+                ax.annotate(name, ((x0 + x1) / 2 * s, y1 * s), xytext=(0, 3), fontsize=8,
+                            textcoords="offset points", ha="center", va="bottom", color="cyan")
+        ax.plot(mesh.points[imax, a] * s, mesh.points[imax, b] * s, marker="+", color="cyan",
+                markersize=8)
+        ax.set_aspect("equal")
+        ax.set_xlabel(f"{'xyz'[a]}{unit}")
+        ax.set_ylabel(f"{'xyz'[b]}{unit}")
+        ax.set_title(f"section {'xyz'[axis]} = {at * s:.4g}"
+                     f"{' ' + length_unit if length_unit else ''}", fontsize=9)
+    if title:
+        fig.suptitle(title, fontsize=10)
+    bar = fig.colorbar(filled, ax=fig.axes, label=label, shrink=0.9)
+    ticks = MaxNLocator(8).tick_values(lo, hi)
+    bar.set_ticks(ticks[(ticks >= lo) & (ticks <= hi)])
     return _save(fig, path, dpi)
 
 
