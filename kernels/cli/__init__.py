@@ -65,9 +65,21 @@ integrated power is exactly 15 W and 5 W on any mesh. The default mesh has
 960 x 640 cells (0.125 mm, 1,228,800 triangles), which line up with the
 footprints.
 
-With --mesh FILE the problem is -div(k grad u) = Q on that mesh with u = G on
-its whole boundary (constants --conductivity, --source, --dirichlet; default
-1, 1, 0; units those of the file).
+--scenario block (invented demonstration data): a copper heat-spreader block
+64 mm x 48 mm x 8 mm, conductivity 401 W/(m K) (pure copper at 300 K;
+Incropera and DeWitt, table A.1; value from memory), with three heat-source
+regions embedded at z = 5..7 mm: a main die 12 mm x 12 mm (60 W), a second
+die 8 mm x 8 mm (25 W) and a regulator 10 mm x 4 mm (10 W); the bottom face
+cooled by convection, h = 5000 W/(m^2 K) to coolant at 25 degC (Robin), the
+other faces insulated. The mesh: 16 x 12 x 2 cubes of 4 mm, six tetrahedra
+each, refined --refine K times (default 4: 9,437,184 tetrahedra of 0.25 mm
+cubes). --source replaces the regions by a uniform q, --film and --coolant
+the cooling.
+
+With --mesh FILE the problem is -div(k grad u) = Q on that mesh (triangles,
+or tetrahedra read through meshio) with u = G on its whole boundary
+(constants --conductivity, --source, --dirichlet; default 1, 1, 0; units
+those of the file).
 
 CAUTION: results are engineering estimates and must be checked by a
 qualified person against local codes and licensed practice."""
@@ -125,9 +137,8 @@ def _check(parser, args):
                 (integer_option if kind is int else real_option)(value, flag, **bounds)
     except InputError as exc:
         raise UsageError(f"{exc} (see '{command.prog} --help')") from None
-    if args.command == "solve" and args.cells is not None and args.refine is not None:
-        raise UsageError(f"--cells and --refine both set the mesh size; give one "
-                         f"(see '{command.prog} --help')")
+    if args.command == "solve":
+        _check_scenario(args, command.prog)
     if args.command == "bench":
         for name in args.preconditioners:
             if name not in PRECONDITIONERS:
@@ -135,37 +146,68 @@ def _check(parser, args):
                                  f"{', '.join(PRECONDITIONERS)}")
 
 
+#: Options that apply to one scenario only: option -> (dest, the scenario it belongs to).
+SCENARIO_ONLY = {"--cells": ("cells", "plate"), "--dirichlet": ("dirichlet", "plate"),
+                 "--film": ("film", "block"), "--coolant": ("coolant", "block")}
+
+
+def _check_scenario(args, prog):
+    """The solve options that do not go together; UsageError naming the option."""
+    if args.cells is not None and args.refine is not None:
+        raise UsageError(f"--cells and --refine both set the mesh size; give one "
+                         f"(see '{prog} --help')")
+    if args.mesh is not None and args.scenario is not None:
+        raise UsageError(f"--mesh and --scenario both choose the problem; give one "
+                         f"(see '{prog} --help')")
+    scenario = "mesh" if args.mesh is not None else args.scenario or "plate"
+    for flag, (dest, owner) in SCENARIO_ONLY.items():
+        if getattr(args, dest) is None or owner == scenario:
+            continue
+        if scenario == "mesh" and flag == "--dirichlet":
+            continue
+        what = "--mesh" if scenario == "mesh" else f"--scenario {scenario}"
+        raise UsageError(f"{flag} applies to --scenario {owner} only, not to {what} "
+                         f"(see '{prog} --help')")
+
+
 def _add_solve(sub, common, names):
     p = sub.add_parser(
         "solve", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter,
-        help="solve the built-in heat-spreader scenario (or a mesh file) and write results",
+        help="solve a built-in heat-spreader scenario (or a mesh file) and write results",
         description=textwrap.fill(
             "Solve steady conduction on the built-in heat-spreader plate (default: 1,228,800 "
-            "triangles) or on a mesh file; print a summary and write solution.npz, "
-            "summary.json, solution.png, residuals.png and solution.vtu (with meshio) into "
-            "--out.", 79),
+            "triangles), the heat-spreader block (--scenario block: 9,437,184 tetrahedra) or "
+            "a mesh file; print a summary and write solution.npz, summary.json, "
+            "solution.png, residuals.png and solution.vtu (with meshio) into --out.", 79),
         epilog=SCENARIO_HELP,
     )
+    p.add_argument("--scenario", choices=("plate", "block"),
+                   help="the built-in scenario: plate (2-D, the default) or block (3-D)")
     size = p.add_mutually_exclusive_group()
     _number(p, "--cells", int, group=size, minimum=1, metavar="NX",
-            help="cells along the 120 mm side (the 80 mm side is scaled); "
+            help="plate: cells along the 120 mm side (the 80 mm side is scaled); "
                  "default 960 (0.125 mm cells)")
     _number(p, "--refine", int, minimum=0, metavar="K",
-            help="refine a coarse mesh K times (the plate: 15 x 10 cells of 8 mm; "
-                 "with --mesh: the file's mesh); K=6 gives the default size")
+            help="refine a coarse mesh K times (the plate: 15 x 10 cells of 8 mm, K=6 gives "
+                 "its default size; the block: 4 mm cubes, default K=4; with --mesh: the "
+                 "file's mesh)")
     size.add_argument("--mesh", metavar="FILE",
                       help="solve on this mesh instead: .npz with arrays points and triangles, "
                            "or any format meshio reads (io extra); Dirichlet on the whole "
                            "boundary, constant source")
     _number(p, "--source", float, metavar="Q",
-            help="constant source instead of the components (W/m^3 on the plate; "
-                 "default 1 with --mesh)")
+            help="constant source instead of the components or heat sources (W/m^3 on "
+                 "the plate and the block; default 1 with --mesh)")
     _number(p, "--conductivity", float, positive=True, metavar="K",
-            help="constant conductivity (W/(m K) on the plate, default 237; default 1 "
-                 "with --mesh)")
+            help="constant conductivity (W/(m K): default 237 on the plate, 401 on the "
+                 "block; default 1 with --mesh)")
     _number(p, "--dirichlet", float, metavar="G",
             help="value held on the boundary (coolant temperature in degC on the "
                  "plate, default 25; default 0 with --mesh)")
+    _number(p, "--film", float, positive=True, metavar="H",
+            help="block: film coefficient of the cooled bottom face, W/(m^2 K) (default 5000)")
+    _number(p, "--coolant", float, metavar="T",
+            help="block: coolant temperature, degC (default 25)")
     p.add_argument("--preconditioner", choices=names, default="amg",
                    help="preconditioner for conjugate gradients (default: amg)")
     _number(p, "--rtol", float, positive=True, default=1e-10,
@@ -259,8 +301,8 @@ def build_parser():
 
     parser = _Parser(
         prog=PROG,
-        description="Fast, verified linear (P1) finite elements on triangle meshes: solve the "
-                    "built-in heat-spreader scenario or a mesh file, verify convergence, "
+        description="Fast, verified linear (P1) finite elements on triangle and tetrahedron "
+                    "meshes: solve the built-in heat-spreader scenarios or a mesh file, verify convergence, "
                     "benchmark this machine, show versions.",
         epilog="Run 'hatkernels COMMAND --help' for each command. Exit codes: 0 success, "
                "1 a solve that does not converge, 2 bad usage or input, 73 the output "
@@ -359,7 +401,7 @@ def main(argv=None):
         except KeyboardInterrupt:
             return fail("interrupted", f"interrupted; {_left_as_it_was(args)}")
         except MemoryError:
-            return fail("failed", f"out of memory; try a smaller mesh (--cells); "
+            return fail("failed", f"out of memory; try a smaller mesh (--cells, --refine); "
                                   f"{_left_as_it_was(args)}")
         except OSError as exc:
             why = exc.strerror or str(exc)

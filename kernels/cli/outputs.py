@@ -33,10 +33,15 @@ def write_solve_outputs(directory, problem, u, summary, progress, rtol):
         title = (f"{problem.name}: {problem.quantity}, max {summary['solution']['max']:.4g}"
                  f"{' ' + problem.unit if problem.unit else ''}")
         progress.phase("write: solution.png")
-        plot.solution_figure(problem.mesh, u, os.path.join(directory, "solution.png"),
-                             title=title, label=label, length_scale=problem.length_scale,
-                             length_unit=problem.length_unit,
-                             outlines=[(c.name, c.bounds) for c in problem.components])
+        picture = {"title": title, "label": label, "length_scale": problem.length_scale,
+                   "length_unit": problem.length_unit}
+        path = os.path.join(directory, "solution.png")
+        if problem.mesh.dim == 2:
+            plot.solution_figure(problem.mesh, u, path, **picture,
+                                 outlines=[(c.name, c.bounds) for c in problem.components])
+        else:  # two plane sections through the hottest point
+            plot.section_figure(problem.mesh, u, path, **picture,
+                                boxes=[(c.name, c.bounds) for c in problem.components])
         method = summary["solver"]["preconditioner"].split(":")[0]
         plot.residuals_figure(summary["solver"]["residuals"],
                               os.path.join(directory, "residuals.png"), rtol=rtol,

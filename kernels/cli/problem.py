@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
+from hatkernels import block, scenarios
 from hatkernels import io as kio
-from hatkernels import scenarios
-from hatkernels.mesh import Mesh, rectangle
+from hatkernels.mesh import Mesh, cuboid, rectangle
 from hatkernels.scenarios import COARSE_CELLS, DEFAULT_CELLS, PLATE
 
 __all__ = ["build_mesh", "make_problem", "tiny_problem"]
@@ -14,14 +14,22 @@ def _times(k):
     return f"{k} time{'s' if k != 1 else ''}"
 
 
+def _is_block(args):
+    return args.mesh is None and args.scenario == "block"
+
+
 def build_mesh(args, progress, arrays=None):
     """The mesh the options ask for, and its description for the report.
 
     ``arrays`` are what :func:`hatkernels.io.read_mesh_arrays` read from
     ``--mesh`` (read before the kernels compile, so that a bad file fails
     first); the mesh checks run here.  ``--refine K`` refines the file's mesh,
-    or the plate's coarse 8 mm mesh, K times.
+    the plate's coarse 8 mm mesh or the block's 4 mm cubes K times (the block
+    by default 4 times).
     """
+    if _is_block(args):
+        return block.block_mesh(block.BLOCK_REFINE if args.refine is None else args.refine,
+                                progress=progress.phase)
     if args.mesh is not None:
         progress.phase(f"mesh: checking {args.mesh}")
         mesh = kio.mesh_from_arrays(*arrays, args.mesh)
@@ -40,14 +48,19 @@ def build_mesh(args, progress, arrays=None):
     if args.refine and args.mesh is not None:
         description += f", refined {_times(args.refine)}"
     for k in range(args.refine or 0):
+        words = "triangles" if mesh.dim == 2 else "tetrahedra"
         progress.phase(f"mesh: refinement {k + 1} of {args.refine} "
-                       f"({4 * mesh.n_triangles:,} triangles)")
+                       f"({2**mesh.dim * mesh.n_cells:,} {words})")
         mesh = mesh.refine()
     return mesh, description
 
 
 def make_problem(args, mesh, description):
-    """The plate scenario on ``mesh``, or the generic problem of a ``--mesh`` file."""
+    """The plate or block scenario on ``mesh``, or the generic problem of a ``--mesh`` file."""
+    if _is_block(args):
+        return block.heat_spreader_block(mesh, source=args.source, conductivity=args.conductivity,
+                                         film=args.film, coolant=args.coolant,
+                                         mesh_description=description)
     if args.mesh is not None:
         return scenarios.mesh_problem(mesh, source=args.source, conductivity=args.conductivity,
                                       dirichlet=args.dirichlet, name=args.mesh,
@@ -56,21 +69,27 @@ def make_problem(args, mesh, description):
                                    coolant=args.dirichlet, mesh_description=description)
 
 
-def tiny_problem(args, refinements=1):
+def tiny_problem(args, refinements=1, dim=2):
     """The same kind of problem on a tiny mesh: run it first so that the kernels compile.
 
-    A ``--mesh`` run gets a 4 x 4 square through the checks a mesh file goes
-    through; the plate its coarse mesh.  Either is refined ``refinements``
-    times, which compiles the refinement kernels and makes the plate's mesh
-    fine enough for the component footprints.
+    A ``--mesh`` run gets a 4 x 4 square (a 2 x 2 x 2 cube of tetrahedra for
+    ``dim`` 3) through the checks a mesh file goes through; the plate and the
+    block their coarse meshes.  Either is refined ``refinements`` times, which
+    compiles the refinement kernels and makes the scenarios' meshes fine
+    enough for their heat sources.
     """
     if args.mesh is not None:
-        grid = rectangle(4, 4)
-        tiny = Mesh(grid.points, grid.triangles)
+        grid = rectangle(4, 4) if dim == 2 else cuboid(2, 2, 2)
+        tiny = Mesh(grid.points, grid.cells)
+    elif _is_block(args):
+        tiny = block.coarse_mesh()
     else:
         tiny = rectangle(*PLATE.cells(COARSE_CELLS), bounds=PLATE.bounds)
     for _ in range(refinements):
         tiny = tiny.refine()
     if args.mesh is not None:
         return scenarios.mesh_problem(tiny, source=args.source, conductivity=args.conductivity)
+    if _is_block(args):
+        return block.heat_spreader_block(tiny, source=args.source, conductivity=args.conductivity,
+                                         film=args.film, coolant=args.coolant)
     return scenarios.heat_spreader(tiny, source=args.source, conductivity=args.conductivity)

@@ -35,14 +35,15 @@ PHASE_TEXT = {
 REFINE_HINT = "; in this command --refine K builds the mesh by refinement"
 
 
-def _warm_up(args):
+def _warm_up(args, dim=2):
     """Run the same kind of problem on a tiny mesh, so that kernels compile (or load) here.
 
     It goes through the same steps as the real run (mesh checks for a file,
     refinement, assembly, solve, power balance), so that the phase times of
-    the real problem do not include compilation.
+    the real problem do not include compilation.  ``dim``: that of a ``--mesh``
+    file's points.
     """
-    problem = tiny_problem(args)
+    problem = tiny_problem(args, dim=dim)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -84,7 +85,8 @@ def _solve(args, problem, progress):
         )
     except InputError as exc:
         if problem.mesh.refinement is None and _needs_refinement(args):
-            size = " (--refine 6 gives the default size)" if args.mesh is None else ""
+            size = (" (--refine 6 gives the default size)"
+                     if args.mesh is None and args.scenario != "block" else "")
             raise InputError(f"{exc}{REFINE_HINT}{size}") from exc
         raise
 
@@ -98,19 +100,21 @@ def run(args, progress):
     # The temporary output directory is made first: an output that cannot be
     # created fails before the solve, and every later failure removes it.
     with kio.output_directory(args.out, force=args.force) as tmp, threads(args.threads):
-        arrays = None
+        arrays, dim = None, 2
         if args.mesh is not None:  # a missing or unreadable file fails before any compiling
             progress.phase(f"mesh: reading {args.mesh}")
             arrays = kio.read_mesh_arrays(args.mesh)
+            dim = 3 if arrays[0].ndim == 2 and arrays[0].shape[1] == 3 else 2
         progress.phase("kernels: loading compiled kernels (or compiling them)")
         with CompileNotice(progress) as notice:
-            _warm_up(args)
+            _warm_up(args, dim)
         t0 = time.perf_counter()
         mesh, description = build_mesh(args, progress, arrays)
         problem = make_problem(args, mesh, description)
         timings["mesh"] = time.perf_counter() - t0
         sol = _solve(args, problem, progress)
-        progress.phase("check: power balance from the boundary reactions")
+        progress.phase("check: power balance " + ("from the boundary reactions"
+                       if problem.cooling is None else "through the cooled sides"))
         t0 = time.perf_counter()
         balance = scenarios.power_balance(problem, sol.u)
         timings["check"] = time.perf_counter() - t0

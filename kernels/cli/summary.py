@@ -63,6 +63,28 @@ def distributed_figures(sol, coarse):
     }
 
 
+#: The words for a mesh's cells, by dimension.
+CELL = {2: "triangle", 3: "tetrahedron"}
+CELLS = {2: "triangles", 3: "tetrahedra"}
+
+
+def _component(c):
+    """A plate's component or a block's heat source, for the record."""
+    if hasattr(c, "center"):
+        return {"name": c.name, "width": c.width, "height": c.height, "center": list(c.center),
+                "power": c.power}
+    return {"name": c.name, "bounds": list(c.bounds), "power": c.power}
+
+
+def _mean(mesh, u):
+    """The mean of the P1 field over the mesh: its integral (exact, each cell's measure times
+    the mean of its points' values) over the total measure."""
+    size = mesh.measures()
+    cells = mesh.cells
+    total = sum(float(size @ u[cells[:, j]]) for j in range(cells.shape[1]))  # column by column:
+    return total / cells.shape[1] / float(size.sum())  # no (n_cells, d + 1) temporary
+
+
 def _extreme(u, used, which):
     values = u[used]
     k = int(np.argmax(values) if which == "max" else np.argmin(values))
@@ -83,7 +105,7 @@ def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command
     """
     mesh, u = problem.mesh, sol.u
     figures = solve_figures(sol)
-    used = np.unique(mesh.triangles)
+    used = np.unique(mesh.cells)
     vmax, imax, nmax = _extreme(u, used, "max")
     vmin, imin, nmin = _extreme(u, used, "min")
     res = figures["residuals"]
@@ -94,23 +116,25 @@ def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command
         "statement": problem.statement,
         "conductivity": float(problem.conductivity),
         "source": (float(problem.source) if np.ndim(problem.source) == 0
-                   else "per triangle, from the components"),
+                   else f"per {CELL[mesh.dim]}, from the {'components' if mesh.dim == 2 else 'heat sources'}"),
         "dirichlet_value": problem.dirichlet,
         "thickness": problem.thickness,
-        "components": [
-            {"name": c.name, "width": c.width, "height": c.height, "center": list(c.center),
-             "power": c.power} for c in problem.components
-        ],
+        "components": [_component(c) for c in problem.components],
     }
+    if problem.cooling is not None:
+        c = problem.cooling
+        summary["problem"]["cooling"] = {"where": c.where, "film": c.film, "coolant": c.coolant,
+                                         "sides": int(len(c.sides))}
     summary["units"] = {
-        "length": "m" if problem.thickness else "mesh units",
+        "length": "m" if problem.power_unit else "mesh units",
         "solution": problem.unit or "solution units",
-        "power": problem.power_unit or "source x area",
+        "power": problem.power_unit or ("source x area" if mesh.dim == 2 else "source x volume"),
     }
     summary["mesh"] = {
         "description": problem.mesh_description,
+        "dimension": mesh.dim,
         "points": mesh.n_points,
-        "triangles": mesh.n_triangles,
+        CELLS[mesh.dim]: mesh.n_cells,
         "h": mesh.h(),
     }
     for key in ("unknowns", "dirichlet_points", "nnz", "matrix_free", "operator_bytes"):
@@ -138,6 +162,7 @@ def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command
         "quantity": problem.quantity,
         "max": vmax, "max_at": mesh.points[imax].tolist(), "max_point": imax, "max_points": nmax,
         "min": vmin, "min_at": mesh.points[imin].tolist(), "min_point": imin, "min_points": nmin,
+        "mean": _mean(mesh, u),
     }
     power = dict(balance)
     if problem.components:
@@ -150,9 +175,8 @@ def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command
 
 def _where(problem, point):
     s, unit = problem.length_scale, problem.length_unit
-    x, y = (float(c) * s for c in point)
     sep = f" {unit}" if unit else ""
-    return f"({x:.4g}{sep}, {y:.4g}{sep})"
+    return "(" + ", ".join(f"{float(c) * s:.4g}{sep}" for c in point) + ")"
 
 
 def solve_report(problem, summary, out, extra=()):
@@ -163,14 +187,16 @@ def solve_report(problem, summary, out, extra=()):
     pu = f" {problem.power_unit}" if problem.power_unit else ""
     lines = [f"{PROG} solve: {problem.statement[0]}"]
     lines += [f"  {text}" for text in problem.statement[1:]]
+    cells = CELLS[s["mesh"]["dimension"]]
     lines.append(f"{'mesh':<16}{s['mesh']['description']}: {s['mesh']['points']:,} points, "
-                 f"{s['mesh']['triangles']:,} triangles")
+                 f"{s['mesh'][cells]:,} {cells}")
     if s.get("matrix_free"):
         stored = f"matrix-free operator ({s['operator_bytes'] / 1e6:.1f} MB)"
     else:
         stored = f"{s['nnz']:,} matrix entries"
-    lines.append(f"{'unknowns':<16}{s['unknowns']:,} (plus {s['dirichlet_points']:,} Dirichlet "
-                 f"points), {stored}")
+    held = (f" (plus {s['dirichlet_points']:,} Dirichlet points)" if s["dirichlet_points"]
+            else " (no point held)")
+    lines.append(f"{'unknowns':<16}{s['unknowns']:,}{held}, {stored}")
     lines.append(f"{'preconditioner':<16}{solver['preconditioner']}")
     lines.append(f"{'threads':<16}{solver['threads']} (numba)")
     order = ("mesh", "kernels", "assemble", "boundary", "setup", "solve", "check")
@@ -186,12 +212,19 @@ def solve_report(problem, summary, out, extra=()):
     min_where = (f"on {sol['min_points']:,} points, first at " if sol["min_points"] > 1 else "at ")
     lines.append(f"{'':<16}min {sol['min']:.6g}{unit} {min_where}"
                  f"{_where(problem, mesh.points[sol['min_point']])}")
+    lines.append(f"{'':<16}mean {sol['mean']:.6g}{unit} (over the "
+                 f"{'area' if mesh.dim == 2 else 'volume'})")
     parts = ""
     if pw.get("components"):
         parts = " (" + ", ".join(f"{n} {v:.6g}{pu}" for n, v in pw["components"].items()) + ")"
-    what_in = "power in" if problem.thickness else "source total"
+    what_in = "power in" if problem.power_unit else "source total"
     lines.append(f"{what_in:<16}{pw['power_in']:.6g}{pu}{parts}")
-    lines.append(f"{'':<16}{pw['heat_out']:.6g}{pu} leaves through the Dirichlet boundary "
+    if problem.cooling is None:
+        where = "the Dirichlet boundary"
+    else:
+        c = problem.cooling
+        where = f"{c.where} (h (T - {c.coolant:g}) integrated over it)"
+    lines.append(f"{'':<16}{pw['heat_out']:.6g}{pu} leaves through {where} "
                  f"(imbalance {pw['imbalance']:.2e}{pu}, relative {pw['relative_imbalance']:.1e})")
     lines.append(f"{'peak memory':<16}{s['peak_rss_bytes'] / 1e9:.2f} GB (process high-water mark)")
     lines.append(f"{'output':<16}{out}: {', '.join(s['files'])}")
