@@ -2,10 +2,12 @@
 
 :func:`assemble_local` runs the serial ``csr`` assembly
 (:class:`~hatkernels.StiffnessAssembler`) and the load, mass and boundary
-terms on a :class:`~hatkernels.distributed.Subdomain`'s local mesh.  Its owned
-rows are complete (every triangle touching an owned point is local) and
+terms on a :class:`~hatkernels.distributed.Subdomain`'s local mesh, of
+triangles or tetrahedra.  Its owned rows are complete (every cell touching an
+owned point is local) and
 equal, entry for entry and bit for bit, to the rows of the whole mesh's
-matrix; the ghost rows are partial and only ever dropped.
+matrix; the ghost rows are partial and only ever dropped.  Boundary data live on
+sides: edges of triangles, faces of tetrahedra (:func:`local_boundary_data`).
 
 :func:`reduce_local` applies :func:`hatkernels.apply_dirichlet` to the local
 system: prescribed points leave the unknowns and their values move to the
@@ -60,12 +62,15 @@ def rows_in_global(A_rows, columns, n):
 
 
 def local_boundary_data(sub, n_points, edges, value, *, name, sign):
-    """Boundary edges and data of the whole mesh restricted to the edges touching owned points.
+    """Boundary sides and data of the whole mesh restricted to the sides touching owned points.
 
-    ``edges`` (E, 2) global edges, ``value`` a Coefficient from
-    ``parse_edge_coefficient`` on the whole mesh with these edges.  Returns
-    ``(local_edges, local_value)`` ready for the boundary-term functions on
-    ``sub.mesh`` (the edges keep their relative order, so sums keep their order).
+    ``edges`` global sides: (E, 2) edges of triangles or (E, 3) faces of
+    tetrahedra; ``value`` a Coefficient from ``parse_edge_coefficient`` on the
+    whole mesh with these sides.  Returns ``(local_sides, local_value)`` ready
+    for the boundary-term functions on ``sub.mesh`` (the sides keep their
+    relative order, so sums keep their order).  A boundary side with an owned
+    point belongs to one cell, which has that point, so it is a side of the
+    local mesh.
     """
     local = sub.local_numbers(np.arange(n_points), n_points)
     e = np.asarray(edges, dtype=np.int64)
@@ -81,7 +86,7 @@ def local_boundary_data(sub, n_points, edges, value, *, name, sign):
     elif kind == "edge":
         lv = per_edge(np.asarray(v)[sel])
     elif kind == "callable":
-        lv = _LocalCallable(kind, v, name, sign, edge_map=np.flatnonzero(sel))
+        lv = _LocalCallable(kind, v, name, sign, side_map=np.flatnonzero(sel))
     else:
         raise InputError(f"{name}: unexpected kind {kind!r} for boundary data")
     return le, lv
@@ -95,16 +100,16 @@ def assemble_local(sub, *, kappa, f, reaction=None, neumann=None, robin=None, qu
     sub : Subdomain
     kappa, f, reaction : Coefficient
         Restricted to ``sub`` (:func:`~hatkernels.distributed.subdomain.local_coefficient`).
-    neumann : ``(local_edges, h)``, optional
-    robin : ``(local_edges, r, s)``, optional
-        From :func:`local_boundary_data`.
+    neumann : ``(local_sides, h)``, optional
+    robin : ``(local_sides, r, s)``, optional
+        From :func:`local_boundary_data` (edges in 2-D, faces in 3-D).
 
     Returns
     -------
     A : scipy CSR, shape (n_local, n_local)
     b : ndarray, shape (n_local,)
     has_robin : bool
-        A positive Robin coefficient on some local edge.
+        A positive Robin coefficient on some local side.
 
     The terms are added in the order of :func:`hatkernels.poisson.solve_poisson`,
     so the owned entries have the same bits as the serial ones.

@@ -5,23 +5,24 @@ rank computes the same split from the same mesh):
 
 ``hilbert``
     Points sorted along a Hilbert space-filling curve
-    (:func:`hatkernels.mesh.hilbert_keys`), cut into contiguous runs of equal
-    weight.  Neighbours in the plane are close on the curve, so each run is
-    a compact region; one sort, O(N log N).
+    (:func:`hatkernels.mesh.hilbert_keys`, in the plane or in space), cut into
+    contiguous runs of equal weight.  Neighbours are close on the curve, so
+    each run is a compact region; one sort, O(N log N).
 ``rcb``
-    Recursive coordinate bisection: split the point set across the longer
+    Recursive coordinate bisection: split the point set across the longest
     side of its bounding box at the weighted median, in proportion to the
     parts on each side, and recurse.  Straight cuts: often a little less
     interface than the curve's staircase on rectangles, more on curved
     domains.  O(N log N log P).
 
 The weight is ``"points"`` (each point 1: balances owned rows, hence SpMV
-and vector work) or ``"triangles"`` (each point its number of triangles:
-balances assembly work).  Any other partitioner (a graph partitioner, say)
+and vector work) or ``"cells"`` (each point its number of cells, triangles
+or tetrahedra: balances assembly work; ``"triangles"`` is its older name,
+for triangle meshes).  Any other partitioner (a graph partitioner, say)
 can be used through :func:`partition_from_owner`.
 
-A part owns its points; the triangles touching them and one layer of ghost
-points (the other vertices of those triangles) make its subdomain, see
+A part owns its points; the cells touching them and one layer of ghost
+points (the other vertices of those cells) make its subdomain, see
 :mod:`hatkernels.distributed.subdomain`.  :meth:`Partition.quality` reports
 balance and interface size.
 """
@@ -35,13 +36,24 @@ import numpy as np
 from hatkernels.checks import integer_option
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
+from hatkernels.mesh.refine3d import unique_edges
 from hatkernels.mesh.reorder import hilbert_keys
 
 __all__ = ["METHODS", "WEIGHTS", "Partition", "PartitionQuality", "partition",
            "partition_from_owner"]
 
 METHODS = ("hilbert", "rcb")
-WEIGHTS = ("points", "triangles")
+#: Values of ``weight``; ``"triangles"`` is the older name of ``"cells"``, for triangle meshes.
+WEIGHTS = ("points", "cells", "triangles")
+
+_CELL_WORDS = {2: "triangles", 3: "tetrahedra"}
+
+
+def mesh_edges(mesh):
+    """The unique edges ``(i, j)``, ``i < j``, sorted, of a triangle or tetrahedron mesh."""
+    if mesh.dim == 2:
+        return mesh.edges()
+    return unique_edges(mesh.cells, mesh.n_points)[0]
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
@@ -54,26 +66,30 @@ class PartitionQuality:
         Points owned by each part.
     owned_entries : ndarray
         Stored matrix entries in the owned rows (the SpMV work of the part).
-    triangles : ndarray
-        Triangles in each subdomain (those touching an owned point; a
-        triangle on an interface counts in every part it touches).
+    cells : ndarray
+        Cells (triangles or tetrahedra) in each subdomain (those touching an
+        owned point; a cell on an interface counts in every part it touches).
+        ``triangles`` is its older name.
     ghosts : ndarray
         Ghost points of each subdomain (the halo it receives per product).
     neighbours : ndarray
         Parts each part exchanges values with.
     interface_points : int
-        Points with a neighbour (a point sharing a triangle) in another part.
+        Points with a neighbour (a point sharing a cell) in another part.
     cut_edges : int
         Mesh edges whose two ends lie in different parts.
+    dim : int
+        The mesh's dimension (2: triangles, 3: tetrahedra).
     """
 
     owned_points: np.ndarray
     owned_entries: np.ndarray
-    triangles: np.ndarray
+    cells: np.ndarray
     ghosts: np.ndarray
     neighbours: np.ndarray
     interface_points: int
     cut_edges: int
+    dim: int = 2
 
     @staticmethod
     def _imbalance(values):
@@ -95,30 +111,50 @@ class PartitionQuality:
         return self._imbalance(self.owned_entries)
 
     @property
+    def cell_imbalance(self):
+        """``max / mean - 1`` of the subdomain cells."""
+        return self._imbalance(self.cells)
+
+    @property
+    def triangles(self):
+        """The subdomain cells of a triangle mesh (the older name of :attr:`cells`)."""
+        return self.cells
+
+    @property
     def triangle_imbalance(self):
-        """``max / mean - 1`` of the subdomain triangles."""
-        return self._imbalance(self.triangles)
+        """:attr:`cell_imbalance` under its older name."""
+        return self.cell_imbalance
 
     def as_dict(self):
-        """Plain numbers and lists, for JSON and printing."""
-        return {
+        """Plain numbers and lists, for JSON and printing.
+
+        Cell counts are under ``"cells"`` and ``"cell_imbalance"``; on triangle
+        meshes also under their older names ``"triangles"`` and ``"triangle_imbalance"``.
+        """
+        out = {
             "parts": self.parts,
+            "dim": int(self.dim),
             "imbalance": self.imbalance,
             "entry_imbalance": self.entry_imbalance,
-            "triangle_imbalance": self.triangle_imbalance,
+            "cell_imbalance": self.cell_imbalance,
             "interface_points": int(self.interface_points),
             "cut_edges": int(self.cut_edges),
             "owned_points": self.owned_points.tolist(),
             "owned_entries": self.owned_entries.tolist(),
-            "triangles": self.triangles.tolist(),
+            "cells": self.cells.tolist(),
             "ghosts": self.ghosts.tolist(),
             "neighbours": self.neighbours.tolist(),
         }
+        if self.dim == 2:
+            out["triangle_imbalance"] = out["cell_imbalance"]
+            out["triangles"] = out["cells"]
+        return out
 
     def __repr__(self):
         return (f"PartitionQuality({self.parts} parts, imbalance {self.imbalance:.2%} points / "
-                f"{self.entry_imbalance:.2%} entries / {self.triangle_imbalance:.2%} triangles, "
-                f"{self.interface_points} interface points, ghosts {self.ghosts.tolist()})")
+                f"{self.entry_imbalance:.2%} entries / {self.cell_imbalance:.2%} "
+                f"{_CELL_WORDS[self.dim]}, {self.interface_points} interface points, "
+                f"ghosts {self.ghosts.tolist()})")
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
@@ -157,7 +193,7 @@ class Partition:
         """Balance and interface size, see :class:`PartitionQuality`."""
         mesh, owner, P = self.mesh, self.owner, self.parts
         n = mesh.n_points
-        e = mesh.edges()
+        e = mesh_edges(mesh)
         a, b = owner[e[:, 0]], owner[e[:, 1]]
         cut = a != b
         degree = np.bincount(e.ravel(), minlength=n)
@@ -175,19 +211,24 @@ class Partition:
         part_pairs = np.unique(np.concatenate([a[cut].astype(np.int64) * P + b[cut],
                                                b[cut].astype(np.int64) * P + a[cut]]))
         neighbours = np.bincount(part_pairs // P, minlength=P)
-        t = owner[mesh.triangles]
-        touched = (np.bincount(t[:, 0], minlength=P)
-                   + np.bincount(t[:, 1], minlength=P, weights=(t[:, 1] != t[:, 0]))
-                   + np.bincount(t[:, 2], minlength=P,
-                                 weights=(t[:, 2] != t[:, 0]) & (t[:, 2] != t[:, 1])))
+        # a cell counts once in each part owning one of its vertices: its j-th vertex's part
+        # counts unless an earlier vertex has the same part
+        t = owner[mesh.cells]
+        touched = np.zeros(P, dtype=np.int64)
+        for j in range(t.shape[1]):
+            first = np.ones(len(t), dtype=bool)
+            for i in range(j):
+                first &= t[:, j] != t[:, i]
+            touched += np.bincount(t[first, j], minlength=P)
         return PartitionQuality(
             owned_points=self.counts(),
             owned_entries=entries.astype(np.int64),
-            triangles=np.asarray(touched, dtype=np.int64),
+            cells=touched,
             ghosts=ghosts.astype(np.int64),
             neighbours=neighbours.astype(np.int64),
             interface_points=int(interface.sum()),
             cut_edges=int(cut.sum()),
+            dim=mesh.dim,
         )
 
     def __repr__(self):
@@ -208,7 +249,10 @@ def _check(mesh, parts):
 def _weights(mesh, weight):
     if weight == "points":
         return np.ones(mesh.n_points)
-    return np.bincount(mesh.triangles.ravel(), minlength=mesh.n_points).astype(np.float64)
+    if weight == "triangles" and mesh.dim != 2:
+        raise InputError("partition weight 'triangles' is for triangle meshes; this mesh has "
+                         "tetrahedra: use weight='cells'")
+    return np.bincount(mesh.cells.ravel(), minlength=mesh.n_points).astype(np.float64)
 
 
 def _cut_runs(weights, parts):
@@ -252,8 +296,10 @@ def _rcb(mesh, parts, w):
             continue
         sub = xy[idx]
         ext = sub.max(axis=0) - sub.min(axis=0)
-        axis = 0 if ext[0] >= ext[1] else 1
-        order = idx[np.lexsort((sub[:, 1 - axis], sub[:, axis]))]
+        axis = int(np.argmax(ext))  # the longest side; the first of equal ones
+        # sorted along that axis, ties broken by the other axes in their order
+        others = [a for a in range(xy.shape[1]) if a != axis]
+        order = idx[np.lexsort(tuple(sub[:, a] for a in reversed(others)) + (sub[:, axis],))]
         left = p // 2
         side = _proportional(w[order], left, p)
         stack.append((order[side == 0], first, left))
@@ -287,8 +333,10 @@ def partition(mesh, parts, *, method="rcb", weight="points"):
         Recursive coordinate bisection (the default: the smaller interface
         on the built-in meshes, docs/distributed.md) or space-filling-curve
         runs (see the module docstring).
-    weight : {"points", "triangles"}
-        What to balance: owned points, or the triangles around them.
+    weight : {"points", "cells", "triangles"}
+        What to balance: owned points, or the cells (triangles or
+        tetrahedra) around them; ``"triangles"`` is the older name of
+        ``"cells"``, for triangle meshes.
 
     Examples
     --------
@@ -300,6 +348,9 @@ def partition(mesh, parts, *, method="rcb", weight="points"):
     >>> q = p.quality()
     >>> bool(q.imbalance < 0.05), q.interface_points > 0
     (True, True)
+    >>> from hatkernels.mesh import cuboid
+    >>> partition(cuboid(4, 4, 4), 2).counts().tolist()
+    [62, 63]
     """
     parts = _check(mesh, parts)
     if method not in METHODS:

@@ -28,6 +28,11 @@ Additive two-level (:class:`TwoLevel`, ``coarse="constants"``)
     and O. Widlund, Domain Decomposition Methods, Springer 2005, chapter 3;
     value from memory for the form of the bound): iterations stay bounded
     when ranks are added at fixed points per rank.
+
+Both are algebraic (they see rows and the owner of each column, never
+coordinates), so they serve triangles and tetrahedra alike.  What needs the
+geometry or the refinement history of the mesh (``gmg``) is refused by name,
+with the names that can be used instead.
 """
 
 from __future__ import annotations

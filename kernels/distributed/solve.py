@@ -1,12 +1,13 @@
 """The one-call distributed solve: :func:`hatkernels.poisson.solve_poisson` over MPI ranks.
 
-Every rank is given the whole mesh and the same data (the replicated input
-path: simple, and it keeps the call identical to the serial one, but each
-rank holds the whole mesh, so memory per rank does not shrink as ranks are
-added; see docs/distributed.md for the scalable alternative).  Each rank
+The mesh may have triangles or tetrahedra.  Every rank is given the whole
+mesh and the same data (the replicated input path: simple, and it keeps the
+call identical to the serial one, but each rank holds the whole mesh, so
+memory per rank does not shrink as ranks are added; see docs/distributed.md
+for the scalable alternative).  Each rank
 
 1. partitions the mesh (deterministically: all ranks compute the same split),
-2. extracts its subdomain (owned points, the triangles touching them, one
+2. extracts its subdomain (owned points, the cells touching them, one
    layer of ghosts) and assembles its owned rows there,
 3. reduces the Dirichlet points and lifts their values, locally,
 4. runs the distributed CG with a block-Jacobi (optionally two-level)
@@ -60,8 +61,9 @@ class Distribution:
     partition : dict
         Method, weight and quality of the split (imbalance, cut sides...).
     balance : list of dict
-        One per rank: owned points and unknowns, cells, ghosts, neighbours,
-        stored entries and bytes, halo bytes and messages per product,
+        One per rank: owned points and unknowns, cells (``"cells"``; on
+        triangle meshes also ``"triangles"``), ghosts, neighbours, stored
+        entries and bytes, halo bytes and messages per product,
         communication counters and seconds, timings, peak memory.
     communication : dict
         Volumes per iteration of the busiest rank, seconds.
@@ -133,14 +135,15 @@ def _together(comm, what, fn, *args, **kwargs):
 
 
 def _same_input_everywhere(comm, mesh, parts):
-    mine = (mesh.n_points, mesh.n_triangles, float(mesh.points.sum()),
-            int(mesh.triangles.sum(dtype=np.int64)))
+    mine = (mesh.n_points, mesh.n_cells, mesh.dim, float(mesh.points.sum()),
+            int(mesh.cells.sum(dtype=np.int64)))
     seen = comm.allgather(mine)
     for r, other in enumerate(seen):
         if other != mine:
             raise InputError(f"rank {r} was given another mesh ({other[0]} points, {other[1]} "
-                             f"triangles) than rank {comm.Get_rank()} ({mine[0]}, {mine[1]}): "
-                             f"the distributed solve needs the same mesh on every rank")
+                             f"cells in {other[2]}-D) than rank {comm.Get_rank()} ({mine[0]}, "
+                             f"{mine[1]} in {mine[2]}-D): the distributed solve needs the same "
+                             f"mesh on every rank")
     if parts.owner.shape != (mesh.n_points,) or parts.mesh is not mesh:
         raise InputError("the partition was made for another mesh")
 
@@ -164,9 +167,6 @@ def _local_boundary(sub, problem):
 def _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, parts, monitor):
     if not isinstance(mesh, Mesh):
         raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
-    if mesh.dim != 2:
-        raise InputError("the distributed solve is not available for tetrahedra yet; solve "
-                         "a 3-D mesh with hatkernels.solve_poisson on one machine")
     if matrix_free:
         raise InputError("matrix_free=True is not available in the distributed solve; each "
                          "rank assembles its rows (leave matrix_free unset)")
@@ -379,7 +379,7 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
         "rank": rank,
         "owned_points": int(sub.n_owned),
         "owned_unknowns": int(n_of),
-        "triangles": int(len(sub.triangles)),
+        "cells": int(len(sub.cells)),
         "ghost_points": int(sub.n_ghosts),
         "ghost_unknowns": int(local.pattern.n_ghosts),
         "neighbours": sub.neighbours.tolist(),
@@ -392,6 +392,8 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
         "timings": timings,
         "peak_rss_bytes": peak_rss_bytes(),
     }
+    if mesh.dim == 2:
+        mine["triangles"] = mine["cells"]  # the older name of the figure, on triangle meshes
     balance = comm.allgather(mine)
     worst = {k: max(b["timings"][k] for b in balance) for k in timings}
     unknowns = sum(b["owned_unknowns"] for b in balance)

@@ -1,4 +1,4 @@
-"""One part's piece of the mesh: owned points, the triangles touching them, one layer of ghosts.
+"""One part's piece of the mesh: owned points, the cells touching them, one layer of ghosts.
 
 A :class:`Subdomain` numbers its points locally: the owned points first
 (ascending global number), then the ghost points grouped by the part that
@@ -6,14 +6,15 @@ owns them (ascending global number within a group).  Grouping makes the
 values received from each neighbour one contiguous slice of a local vector,
 so halo receives land in place with no unpacking.
 
-The triangles of a subdomain are every triangle with at least one owned
-vertex, in ascending global order.  That makes the owned rows of anything
-assembled on the local mesh complete and, because each point sees its
-triangles in the same order as in the whole mesh, equal to the rows of the
-whole mesh's matrix bit for bit.  Ghost rows are partial and are dropped.
+The cells of a subdomain (triangles, or tetrahedra in 3-D) are every cell
+with at least one owned vertex, in ascending global order.  That makes the
+owned rows of anything assembled on the local mesh complete and, because
+each point sees its cells in the same order as in the whole mesh, equal to
+the rows of the whole mesh's matrix bit for bit.  Ghost rows are partial and
+are dropped.
 
 Coefficients are restricted to the subdomain by :func:`local_coefficient`;
-for callables, messages about bad values keep naming the global triangle.
+for callables, messages about bad values keep naming the global cell.
 """
 
 from __future__ import annotations
@@ -40,8 +41,9 @@ class Subdomain:
     points : ndarray, shape (n_local,)
         Global number of each local point: owned ones first, then ghosts.
     n_owned : int
-    triangles : ndarray, shape (n_local_triangles,)
-        Global number of each local triangle, ascending.
+    cells : ndarray, shape (n_local_cells,)
+        Global number of each local cell (triangle or tetrahedron), ascending.
+        ``triangles`` is its name on triangle meshes.
     mesh : Mesh
         The local mesh, in local numbering.
     ghost_owner : ndarray, shape (n_ghosts,)
@@ -61,7 +63,7 @@ class Subdomain:
     parts: int
     points: np.ndarray
     n_owned: int
-    triangles: np.ndarray
+    cells: np.ndarray
     mesh: Mesh
     ghost_owner: np.ndarray
     neighbours: np.ndarray
@@ -71,6 +73,13 @@ class Subdomain:
     @property
     def n_ghosts(self):
         return len(self.points) - self.n_owned
+
+    @property
+    def triangles(self):
+        """The local cells of a triangle mesh (:attr:`cells`); an InputError in 3-D."""
+        if self.mesh.dim != 2:
+            raise InputError("Subdomain.triangles is not available for tetrahedra: use .cells")
+        return self.cells
 
     @property
     def owned(self):
@@ -85,14 +94,15 @@ class Subdomain:
 
     def __repr__(self):
         return (f"Subdomain(part {self.part} of {self.parts}: {self.n_owned} owned + "
-                f"{self.n_ghosts} ghost points, {len(self.triangles)} triangles, "
+                f"{self.n_ghosts} ghost points, {len(self.cells)} "
+                f"{'triangles' if self.mesh.dim == 2 else 'tetrahedra'}, "
                 f"neighbours {self.neighbours.tolist()})")
 
 
 def subdomain(partition, part):
     """The :class:`Subdomain` of ``part`` in a :class:`~hatkernels.distributed.Partition`.
 
-    Costs O(n_points + n_triangles) on the whole mesh (the replicated-input
+    Costs O(n_points + n_cells) on the whole mesh (the replicated-input
     path; see docs/distributed.md for the scalable one).
 
     Examples
@@ -102,14 +112,17 @@ def subdomain(partition, part):
     >>> s = subdomain(partition(rectangle(4, 4), 2), 0)
     >>> s.n_owned, s.n_ghosts, s.neighbours.tolist()
     (12, 6, [1])
+    >>> from hatkernels.mesh import cuboid
+    >>> subdomain(partition(cuboid(3, 3, 3), 2), 1)
+    Subdomain(part 1 of 2: 32 owned + 16 ghost points, 108 tetrahedra, neighbours [0])
     """
     part = integer_option(part, "part", minimum=0, maximum=partition.parts - 1)
     mesh, owner = partition.mesh, partition.owner
     n = mesh.n_points
-    tri = mesh.triangles
-    mine = owner[tri] == part
+    cells = mesh.cells
+    mine = owner[cells] == part
     tids = np.flatnonzero(mine.any(axis=1))
-    lt = tri[tids]
+    lt = cells[tids]
     present = np.zeros(n, dtype=bool)
     present[lt.ravel()] = True
     is_owned = owner == part
@@ -126,18 +139,20 @@ def subdomain(partition, part):
     neighbours = np.unique(ghost_owner)
     recv_offsets = np.searchsorted(ghost_owner, np.append(neighbours, partition.parts))
     n_owned = len(owned)
-    send = _send_lists(lmesh.triangles, n_owned, ghost_owner, neighbours, len(points))
+    send = _send_lists(lmesh.cells, n_owned, ghost_owner, neighbours, len(points))
     for a in (points, tids, ghost_owner, neighbours, recv_offsets, *send):
         a.setflags(write=False)
     return Subdomain(part=part, parts=partition.parts, points=points, n_owned=n_owned,
-                     triangles=tids, mesh=lmesh, ghost_owner=ghost_owner,
+                     cells=tids, mesh=lmesh, ghost_owner=ghost_owner,
                      neighbours=neighbours, recv_offsets=recv_offsets, send=send)
 
 
-def _send_lists(ltri, n_owned, ghost_owner, neighbours, n_local):
-    """For each neighbour, the owned local points sharing a triangle with one of its points."""
-    a = np.concatenate([ltri[:, 0], ltri[:, 1], ltri[:, 2], ltri[:, 1], ltri[:, 2], ltri[:, 0]])
-    b = np.concatenate([ltri[:, 1], ltri[:, 2], ltri[:, 0], ltri[:, 0], ltri[:, 1], ltri[:, 2]])
+def _send_lists(lcells, n_owned, ghost_owner, neighbours, n_local):
+    """For each neighbour, the owned local points sharing a cell with one of its points."""
+    k = lcells.shape[1]
+    i, j = np.nonzero(~np.eye(k, dtype=bool))  # every ordered pair of a cell's vertices
+    a = lcells[:, i].ravel()
+    b = lcells[:, j].ravel()
     keep = (a < n_owned) & (b >= n_owned)
     q = ghost_owner[b[keep] - n_owned].astype(np.int64)
     key = np.unique(q * n_local + a[keep])
@@ -151,18 +166,19 @@ def _send_lists(ltri, n_owned, ghost_owner, neighbours, n_local):
 
 @dataclasses.dataclass(frozen=True)
 class _LocalCallable(Coefficient):
-    """A callable coefficient on a subdomain whose messages name global triangles or edges.
+    """A callable coefficient on a subdomain whose messages name global cells or sides.
 
     ``evaluate`` is called with local owner numbers; they are mapped to the
-    global ones before the check.  ``__call__`` makes the object pass for a
-    plain callable where a function is expected (boundary data).
+    global ones before the check (``cell_map`` for triangles and tetrahedra,
+    ``side_map`` for edges and faces).  ``__call__`` makes the object pass for
+    a plain callable where a function is expected (boundary data).
     """
 
-    triangle_map: np.ndarray = None
-    edge_map: np.ndarray = None
+    cell_map: np.ndarray = None
+    side_map: np.ndarray = None
 
     def evaluate(self, coords, owners, owner="triangle"):
-        table = self.triangle_map if owner == "triangle" else self.edge_map
+        table = self.side_map if owner in ("edge", "face") else self.cell_map
         if table is not None:
             owners = table[np.asarray(owners, dtype=np.int64)]
         return super().evaluate(coords, owners, owner)
@@ -174,19 +190,20 @@ class _LocalCallable(Coefficient):
 def local_coefficient(coef, sub, *, edge_map=None):
     """Restrict a :class:`~hatkernels.coefficients.Coefficient` of the whole mesh to ``sub``.
 
-    Values per triangle follow ``sub.triangles``, per point ``sub.points``;
-    constants and (2, 2) tensors are shared; callables are evaluated where
+    Values per cell follow ``sub.cells``, per point ``sub.points``;
+    constants and (d, d) tensors are shared; callables are evaluated where
     the local mesh needs them (same points, same values), and ``edge_map``
-    (local edge -> global edge number) names edges in their messages.
+    (local side -> global side number: edges, or faces in 3-D) names sides in
+    their messages.
     """
     if not isinstance(coef, Coefficient):
         raise InputError(f"expected a parsed Coefficient, got {type(coef).__name__}")
     kind, value = coef.kind, coef.value
     if kind == "callable":
         return _LocalCallable(kind, value, coef.name, coef.sign,
-                              triangle_map=sub.triangles, edge_map=edge_map)
+                              cell_map=sub.cells, side_map=edge_map)
     if kind == "cell" or (kind == "tensor" and np.ndim(value) == 3):
-        value = value[sub.triangles]
+        value = value[sub.cells]
     elif kind == "point":
         value = value[sub.points]
     return Coefficient(kind, value, coef.name, coef.sign)
