@@ -9,12 +9,16 @@ from scipy.sparse.linalg import LinearOperator
 
 from hatkernels._jit import operators as _jit_ops
 from hatkernels._sets import index_union
-from hatkernels.assembly.csr import kernel_coefficient
 from hatkernels.checks import integer_option, point_indices
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
-from hatkernels.operators.variants import DEFAULT_VARIANT, VARIANTS, build_variant
+from hatkernels.operators.variants import (
+    DEFAULT_VARIANT,
+    VARIANTS,
+    build_variant,
+    variant_coefficient,
+)
 
 __all__ = ["StiffnessOperator", "DEFAULT_BLOCK"]
 
@@ -23,7 +27,7 @@ DEFAULT_BLOCK = 1024
 
 
 def _dirichlet_mask(mesh, dirichlet):
-    """Fixed indices: identity rows at ``dirichlet`` and at points in no triangle."""
+    """Fixed indices: identity rows at ``dirichlet`` and at points in no cell."""
     if dirichlet is None:
         return np.empty(0, dtype=np.int64)
     d = point_indices(dirichlet, mesh.n_points, "dirichlet")
@@ -41,10 +45,10 @@ class StiffnessOperator(LinearOperator):
         What is stored and how the product runs (see :mod:`hatkernels.operators`).
     dirichlet : array of point indices, optional
         With it, the operator is the symmetrically eliminated matrix: identity
-        rows and columns at these points (and at points in no triangle), the
+        rows and columns at these points (and at points in no cell), the
         stiffness matrix between the others.  The mesh is not copied.
     quadrature : int
-        Rule for averaging a callable coefficient over each triangle.
+        Rule for averaging a callable coefficient over each cell.
     block_size : int
         Elements per block of the colouring.
 
@@ -70,10 +74,6 @@ class StiffnessOperator(LinearOperator):
     ):
         if not isinstance(mesh, Mesh):
             raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
-        if mesh.dim != 2:
-            raise InputError("the matrix-free stiffness operator is not available for "
-                             "tetrahedra yet; use the assembled matrix (matrix_free=False, "
-                             "and a preconditioner that needs no refinement history)")
         if variant not in VARIANTS:
             raise InputError(f"unknown matrix-free variant {variant!r}; choose one of {VARIANTS}")
         block_size = integer_option(block_size, "block_size", minimum=1)
@@ -85,13 +85,13 @@ class StiffnessOperator(LinearOperator):
         self.block_size = block_size
         self.coefficient = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
         self._quadrature = quadrature
-        kc = kernel_coefficient(self.coefficient, mesh, quadrature)
+        kc = variant_coefficient(self.coefficient, mesh, quadrature)
         self._fixed = _dirichlet_mask(mesh, dirichlet)
         self._diag = None
         self._is_fixed = np.zeros(n if self._fixed.size else 0, dtype=np.bool_)
         self._is_fixed[self._fixed] = True
         self._near = (
-            np.flatnonzero(self._is_fixed[mesh.triangles].any(axis=1))
+            np.flatnonzero(self._is_fixed[mesh.cells].any(axis=1))
             if self._fixed.size
             else np.empty(0, dtype=np.int64)
         )
@@ -125,7 +125,7 @@ class StiffnessOperator(LinearOperator):
         self._impl.product(x, out)
         if self._fixed.size:
             # identity rows and columns: take the fixed columns back out (only
-            # the triangles next to fixed points), then the fixed rows copy x
+            # the cells next to fixed points), then the fixed rows copy x
             self._impl.remove_fixed_columns(self._near, self._is_fixed, x, out)
             _jit_ops.identity_rows(self._fixed, x, out)
         return out
@@ -172,7 +172,7 @@ class StiffnessOperator(LinearOperator):
         return self.diagonal_and_bound()[1]
 
     def diagonal_and_bound(self):
-        """``(diagonal, gershgorin_bound)`` in one pass over the triangles.
+        """``(diagonal, gershgorin_bound)`` in one pass over the cells.
 
         The diagonal is a new array (not the cached one of :meth:`diagonal`),
         the caller's to keep or overwrite: what a smoother needs, without a
@@ -190,5 +190,5 @@ class StiffnessOperator(LinearOperator):
 
     @property
     def fixed(self):
-        """Points with identity rows (Dirichlet points and points in no triangle)."""
+        """Points with identity rows (Dirichlet points and points in no cell)."""
         return self._fixed

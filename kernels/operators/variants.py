@@ -30,9 +30,11 @@ import numpy as np
 
 from hatkernels._jit import assembly as _jit_assembly
 from hatkernels._jit import operators as _jit_ops
+from hatkernels.assembly.csr import kernel_coefficient
 from hatkernels.errors import InputError
-from hatkernels.mesh.core_index import index_dtype
-from hatkernels.operators.colouring import row_colouring, triangle_colouring
+from hatkernels.operators import variants3d
+from hatkernels.operators.blocks import EdgeRows, ElementBlocks
+from hatkernels.operators.colouring import triangle_colouring
 
 __all__ = [
     "TriangleBlocks",
@@ -44,48 +46,15 @@ __all__ = [
     "VARIANTS",
     "DEFAULT_VARIANT",
     "build_variant",
+    "variant_coefficient",
 ]
 
 
-class TriangleBlocks:
-    """The interface, and what the variants share: the coefficient and a colouring of triangles.
+class TriangleBlocks(ElementBlocks):
+    """The triangle variants' setup kernels: diagonal, row sums, fixed columns.
 
-    Parameters
-    ----------
-    mesh : Mesh
-    coefficient : KernelCoefficient
-        From :func:`hatkernels.assembly.csr.kernel_coefficient`.
-    colouring : Colouring
-        Of blocks of consecutive triangles (:func:`triangle_colouring`).
+    Parameters as :class:`~hatkernels.operators.blocks.ElementBlocks`.
     """
-
-    #: The name :data:`VARIANT_CLASSES` knows the class by.
-    name = None
-    #: The class to use when the triangles need more than 64 colours (None: refuse).
-    fallback = None
-
-    def __init__(self, mesh, coefficient, colouring):
-        self.mesh = mesh
-        self.coefficient = coefficient
-        self.colouring = colouring
-
-    @property
-    def n_colours(self):
-        """Colours of the blocks the product runs through."""
-        return self.colouring.n_colours
-
-    @property
-    def nbytes(self):
-        """Bytes stored beyond the mesh."""
-        return self.colouring.nbytes + self.coefficient.nbytes
-
-    def product(self, x, out):
-        """``out = K x`` (``x`` float64, contiguous, length n_points; ``out`` overwritten)."""
-        raise NotImplementedError
-
-    def serial_product(self, x, out):
-        """``out = K x``, plainly: the version the product is tested against."""
-        raise NotImplementedError
 
     def diagonal_into(self, out):
         m = self.mesh
@@ -102,9 +71,6 @@ class TriangleBlocks:
         _jit_ops.remove_fixed_columns(
             m.points, m.triangles, *self.coefficient, near, is_fixed, x, out
         )
-
-    def __repr__(self):
-        return f"{type(self).__name__}({self.n_colours} colours, {self.nbytes} bytes)"
 
 
 class SerialGeometryProduct(TriangleBlocks):
@@ -208,7 +174,7 @@ class FactorsProduct(TriangleBlocks):
         out[:] = np.bincount(t.ravel(), weights=terms.ravel(), minlength=out.size)
 
 
-class EdgesProduct(TriangleBlocks):
+class EdgesProduct(EdgeRows, TriangleBlocks):
     """Stores one weight per edge and the edge list by first point; the product needs no triangles.
 
     The weight of an edge is the sum over its triangles of their entry for
@@ -220,51 +186,17 @@ class EdgesProduct(TriangleBlocks):
 
     def __init__(self, mesh, coefficient, colouring):
         super().__init__(mesh, coefficient, colouring)
-        n = mesh.n_points
         had = mesh.cached()
         edges = mesh.edges()
-        self.weights = np.empty(len(edges))
+        weights = np.empty(len(edges))
         _jit_ops.edge_weights(
-            mesh.points, mesh.triangles, *coefficient, *colouring, mesh.triangle_edges(),
-            self.weights,
+            mesh.points, mesh.triangles, *coefficient, *colouring, mesh.triangle_edges(), weights
         )
-        # the sorted edge list by first point: a start per point, an end per edge
-        # (int64 once the edge count passes int32, even if the point count does not)
-        self.starts = np.zeros(n + 1, dtype=index_dtype(len(edges), n + 1))
-        np.cumsum(np.bincount(edges[:, 0], minlength=n), out=self.starts[1:])
-        self.ends = np.ascontiguousarray(edges[:, 1])
+        # blocks of rows holding about as many edges as a block of triangles (three per row)
+        self._store_rows(edges, weights, mesh.n_points, colouring.block_size // 3)
         del edges
         # edge topology the products do not need (12 to 20 bytes per triangle)
         mesh.forget(*(mesh.cached() - had))
-        # blocks of rows holding about as many edges as a block of triangles (three per row in 2-D)
-        rows = max(1, colouring.block_size // 3)
-        self.row_colouring = row_colouring(self.starts, self.ends, n, rows)
-        if self.row_colouring is None:
-            raise InputError(
-                "the edges variant needs a colouring of edges with at most 64 colours; "
-                "reorder the mesh (Mesh.reorder('hilbert')) or use variant='geometry'"
-            )
-
-    @property
-    def n_colours(self):
-        return self.row_colouring.n_colours
-
-    @property
-    def nbytes(self):
-        own = self.starts.nbytes + self.ends.nbytes + self.weights.nbytes
-        return super().nbytes + own + self.row_colouring.nbytes
-
-    def product(self, x, out):
-        _jit_ops.apply_edges(self.starts, self.ends, self.weights, *self.row_colouring, x, out)
-
-    def serial_product(self, x, out):
-        # (K x)_i = sum over edges (i, j) of w_ij (x_j - x_i)
-        n = out.size
-        first = np.repeat(np.arange(n), np.diff(self.starts))
-        d = self.weights * (x[self.ends] - x[first])
-        out[:] = np.bincount(first, weights=d, minlength=n) - np.bincount(
-            self.ends, weights=d, minlength=n
-        )
 
 
 #: The variants by name; the first is the default.
@@ -274,15 +206,26 @@ VARIANTS = tuple(VARIANT_CLASSES)
 DEFAULT_VARIANT = "geometry"
 
 
-def build_variant(name, mesh, coefficient, block_size):
-    """The variant ``name`` for ``mesh``, on blocks of ``block_size`` triangles.
+def variant_coefficient(coef, mesh, quadrature):
+    """The kernels' view of a parsed stiffness coefficient on the cells of ``mesh``: a
+    :class:`~hatkernels.assembly.csr.KernelCoefficient` with 2x2 or 3x3 tensors."""
+    if mesh.dim == 3:
+        return variants3d.tetrahedron_coefficient(coef, mesh, quadrature)
+    return kernel_coefficient(coef, mesh, quadrature)
 
-    Falls back to the variant's :attr:`~TriangleBlocks.fallback`, with a
-    RuntimeWarning, when the triangles need more than 64 colours, or raises
+
+def build_variant(name, mesh, coefficient, block_size):
+    """The variant ``name`` for ``mesh``, on blocks of ``block_size`` cells.
+
+    The class comes from :data:`VARIANT_CLASSES` on triangles and from
+    :data:`hatkernels.operators.variants3d.VARIANT_CLASSES` on tetrahedra.
+    Falls back to the variant's :attr:`~ElementBlocks.fallback`, with a
+    RuntimeWarning, when the cells need more than 64 colours, or raises
     InputError if it has none.  Arguments are trusted (checked by the caller).
     """
-    cls = VARIANT_CLASSES[name]
-    colouring = triangle_colouring(mesh.triangles, mesh.n_points, block_size)
+    classes = VARIANT_CLASSES if mesh.dim == 2 else variants3d.VARIANT_CLASSES
+    cls = classes[name]
+    colouring = triangle_colouring(mesh.cells, mesh.n_points, block_size)
     if colouring is not None:
         return cls(mesh, coefficient, colouring)
     if cls.fallback is None:
@@ -290,9 +233,10 @@ def build_variant(name, mesh, coefficient, block_size):
             f"the {name} variant needs a colouring with at most 64 colours; reorder the "
             "mesh (Mesh.reorder('hilbert')) or use variant='geometry'"
         )
+    cells = "triangles" if mesh.dim == 2 else "tetrahedra"
     warnings.warn(
-        "matrix-free product: the mesh needs more than 64 colours (a point in very many "
-        "triangles, or a numbering with no locality); products run on one thread. "
+        f"matrix-free product: the mesh needs more than 64 colours (a point in very many "
+        f"{cells}, or a numbering with no locality); products run on one thread. "
         "Reorder the mesh (Mesh.reorder('hilbert')) to fix this.",
         RuntimeWarning,
         stacklevel=3,  # the caller of StiffnessOperator
