@@ -22,6 +22,7 @@ import numpy as np
 import pytest
 import scipy.linalg as sl
 import scipy.sparse as sp
+from conftest import EPS
 from mpi_checks import dense_preconditioners
 
 import hatkernels
@@ -39,9 +40,11 @@ from hatkernels.distributed.cg import condition_estimate
 from hatkernels.distributed.launch import rank_from_environment
 from hatkernels.distributed.matrix import split_columns
 from hatkernels.distributed.precond import coarse_row, galerkin_coarse
+from hatkernels.distributed.solve import _local_boundary
 from hatkernels.distributed.subdomain import local_coefficient, parse_local
 from hatkernels.errors import InputError
-from hatkernels.mesh import disk, l_shape, rectangle
+from hatkernels.mesh import ball, cuboid, disk, l_shape, rectangle
+from hatkernels.problem import PoissonProblem
 
 HERE = Path(__file__).resolve().parent
 #: Seconds an mpiexec run may take before it is killed (cold numba caches included).
@@ -126,6 +129,61 @@ def test_every_part_gets_a_point_even_when_tiny():
         assert partition(mesh, 4, method=method).counts().tolist() == [1, 1, 1, 1]
 
 
+def _edges_by_definition(mesh):
+    """Unique (low, high) point pairs of the cells' vertex pairs (numpy only)."""
+    c = mesh.cells.astype(np.int64)
+    k = c.shape[1]
+    i, j = np.triu_indices(k, 1)
+    pairs = np.sort(np.stack([c[:, i].ravel(), c[:, j].ravel()], axis=1), axis=1)
+    return np.unique(pairs, axis=0)
+
+
+@pytest.mark.parametrize("method", ["rcb", "hilbert"])
+@pytest.mark.parametrize("name", ["cuboid", "ball"])
+def test_partition_of_tetrahedra_balance_and_interface(name, method):
+    mesh = cuboid(9, 7, 6) if name == "cuboid" else ball(4)
+    e = _edges_by_definition(mesh)
+    for parts in (2, 3, 4):
+        p = partition(mesh, parts, method=method)
+        q = p.quality()
+        assert q.dim == 3 and "triangles" not in q.as_dict()
+        assert q.imbalance < 0.05, (parts, q)  # the same bound as on triangles
+        degree = np.bincount(e.ravel(), minlength=mesh.n_points) + 1
+        entries = np.bincount(p.owner, weights=degree, minlength=parts)
+        assert q.owned_entries.tolist() == entries.astype(int).tolist()
+        # interface and cut edges by their definitions, from edges found independently of
+        # the library (common practice, no source)
+        cut = p.owner[e[:, 0]] != p.owner[e[:, 1]]
+        assert q.interface_points == len(np.unique(e[cut])) > 0
+        assert q.cut_edges == int(cut.sum())
+        subs = [subdomain(p, k) for k in range(parts)]
+        assert q.ghosts.tolist() == [s.n_ghosts for s in subs]
+        assert q.cells.tolist() == [len(s.cells) for s in subs]
+        assert q.neighbours.tolist() == [len(s.neighbours) for s in subs]
+        for k, s in enumerate(subs):
+            touching = np.flatnonzero((p.owner[mesh.cells] == k).any(axis=1))
+            assert np.array_equal(s.cells, touching)
+            assert np.array_equal(s.points[s.mesh.cells], mesh.cells[s.cells])
+        print(f"{name} {method} P={parts}: {q}")
+    w = np.bincount(mesh.cells.ravel(), minlength=mesh.n_points)
+    per_part = np.bincount(partition(mesh, 3, method=method, weight="cells").owner, weights=w,
+                           minlength=3)
+    assert per_part.max() / per_part.mean() - 1 < 0.05
+    with pytest.raises(InputError, match="weight 'triangles' is for triangle meshes"):
+        partition(mesh, 2, weight="triangles")
+    with pytest.raises(InputError, match="Subdomain.triangles is not available for tetrahedra"):
+        subdomain(partition(mesh, 2), 0).triangles  # noqa: B018
+
+
+def test_rcb_cuts_across_the_longest_side_in_space():
+    # a long box along z: the first cut of two parts is a plane z = constant (common
+    # practice, no source: recursive bisection across the longest side)
+    mesh = cuboid(3, 3, 11, bounds=(0, 1, 0, 1, 0, 4))  # 12 layers of points: 6 each
+    z = mesh.points[:, 2]
+    owner = partition(mesh, 2).owner
+    assert z[owner == 0].max() < z[owner == 1].min()
+
+
 # -- subdomains, local assembly, halo patterns -------------------------------------
 
 
@@ -154,6 +212,55 @@ def test_owned_rows_equal_the_whole_mesh_rows_bit_for_bit(name):
         assert np.array_equal(mine.indices, ref.indices)
         assert np.array_equal(mine.data, ref.data)  # same bits: same triangles, same order
         assert np.array_equal(b_L[: s.n_owned], b[s.owned])
+
+
+@pytest.mark.parametrize("method", ["rcb", "hilbert"])
+def test_owned_rows_equal_the_whole_mesh_rows_on_tetrahedra(method):
+    mesh = cuboid(5, 4, 6)
+    rng = np.random.default_rng(5)
+    kappa = parse_coefficient(1 + rng.random(mesh.n_cells), mesh, tensor=True)
+    load = parse_coefficient(lambda x, y, z: np.cos(x) * y + z, mesh, sign="any")
+    react = parse_coefficient(hatkernels.per_point(rng.random(mesh.n_points)), mesh,
+                              sign="nonnegative")
+    faces = mesh.boundary_faces()
+    x = mesh.points[:, 0]
+    right = faces[(x[faces] == 1).all(axis=1)]
+    r = lambda x, y, z: 1 + x * y  # noqa: E731
+    s_face = hatkernels.per_point(rng.random(mesh.n_points))
+    h_face = hatkernels.per_edge(rng.random(len(faces)))  # one value per face
+    assembler = hatkernels.StiffnessAssembler(mesh)
+    A = assembler.assemble(kappa) + assembler.assemble_mass(react)
+    b = hatkernels.assemble_load(mesh, load)
+    # reference: the project's serial assembly of the whole mesh (stiffness checked against
+    # the 7-point stencil and pyamg in tests/test_assembly3d.py, face terms in their tests)
+    KR = sp.csr_matrix(assembler.assemble(kappa) + hatkernels.assemble_boundary_mass(mesh, r,
+                                                                                      right))
+    zero = parse_coefficient(0.0, mesh, sign="any")
+    g = (hatkernels.assemble_boundary_load(mesh, s_face, right)
+         + hatkernels.assemble_boundary_load(mesh, h_face, faces))
+    p = partition(mesh, 3, method=method)
+    problem = PoissonProblem(mesh, 1.0, dirichlet_on=[0], neumann=(faces, h_face),
+                             robin=(right, r, s_face))
+    for k in range(3):
+        s = subdomain(p, k)
+        nb, rb = _local_boundary(s, problem)
+        A_L, b_L, has_robin = assemble_local(s, kappa=local_coefficient(kappa, s),
+                                             f=local_coefficient(load, s),
+                                             reaction=local_coefficient(react, s))
+        mine = rows_in_global(A_L[: s.n_owned], s.points, mesh.n_points)
+        ref = sp.csr_matrix(A[s.owned])
+        ref.sort_indices()
+        assert np.array_equal(mine.indices, ref.indices)
+        assert np.array_equal(mine.data, ref.data)  # same bits: same cells, same order
+        assert np.array_equal(b_L[: s.n_owned], b[s.owned])
+        # the face terms: the same sums, to round-off (scipy sums the duplicates of a face
+        # matrix in an order that depends on the numbering)
+        F_L, g_L, has_robin = assemble_local(s, kappa=local_coefficient(kappa, s),
+                                             f=local_coefficient(zero, s), neumann=nb, robin=rb)
+        mine = rows_in_global(F_L[: s.n_owned], s.points, mesh.n_points)
+        assert has_robin == bool(np.isin(s.owned, right).any())
+        assert abs(mine - KR[s.owned]).max() <= 8 * EPS * abs(KR).max()
+        assert np.abs(g_L[: s.n_owned] - g[s.owned]).max() <= 8 * EPS * np.abs(g).max()
 
 
 def test_subdomain_layout():
@@ -185,10 +292,11 @@ def _global_messages(p, patterns, subs, n_ids):
 
 
 @pytest.mark.parametrize("method", ["rcb", "hilbert"])
-def test_halo_patterns_match_across_parts(method):
+@pytest.mark.parametrize("name", ["l_shape", "cuboid"])
+def test_halo_patterns_match_across_parts(method, name):
     # What rank r sends to q is, in order, what q expects from r: before and after
     # the Dirichlet points are taken out (the restricted patterns).
-    mesh = l_shape(9)
+    mesh = l_shape(9) if name == "l_shape" else cuboid(6, 5, 4)
     P = 4
     p = partition(mesh, P, method=method)
     subs = [subdomain(p, k) for k in range(P)]
@@ -261,6 +369,33 @@ def test_local_coefficient_kinds_and_global_names_in_errors():
         assemble_local(s, kappa=bad, f=parse_local(1.0, mesh, s, name="f", sign="any"))
     k = int(info.value.args[0].split("triangle ")[1].split(";")[0])
     assert mesh.points[mesh.triangles[k]][:, 0].max() > 0.9  # a global triangle number
+
+
+def test_errors_on_tetrahedra_name_global_cells_and_faces():
+    mesh = cuboid(5, 5, 5)
+    s = subdomain(partition(mesh, 2), 1)
+    bad = parse_local(lambda x, y, z: np.where(x > 0.9, -1.0, 1.0), mesh, s, name="coefficient",
+                      tensor=True)
+    with pytest.raises(InputError, match=r"quadrature point of tetrahedron (\d+)") as info:
+        assemble_local(s, kappa=bad, f=parse_local(1.0, mesh, s, name="f", sign="any"))
+    k = int(info.value.args[0].split("tetrahedron ")[1].split(";")[0])
+    assert mesh.points[mesh.cells[k]][:, 0].max() > 0.9  # a global tetrahedron number
+    faces = mesh.boundary_faces()
+    problem = PoissonProblem(mesh, 1.0, dirichlet_on=[0],
+                             neumann=(faces, lambda x, y, z: np.where(z > 0.9, np.nan, 1.0)))
+    nb, _ = _local_boundary(s, problem)
+    with pytest.raises(InputError, match=r"quadrature point of face (\d+)") as info:
+        assemble_local(s, kappa=parse_local(None, mesh, s, name="k", tensor=True),
+                       f=parse_local(1.0, mesh, s, name="f", sign="any"), neumann=nb)
+    text = info.value.args[0]
+    k = int(text.split("face ")[1].split(";")[0])
+    at = np.array([float(c) for c in text.split(" at (")[1].split(")")[0].split(",")])
+    # a global face number: the face of the whole mesh that holds the quadrature point named
+    corners = mesh.points[faces[k]]
+    assert at[2] > 0.9
+    assert np.all(at >= corners.min(axis=0) - 1e-12) and np.all(at <= corners.max(axis=0) + 1e-12)
+    normal = np.cross(corners[1] - corners[0], corners[2] - corners[0])
+    assert abs(normal @ (at - corners[0])) <= 1e-12
 
 
 # -- coarse space ----------------------------------------------------------------------
