@@ -2,6 +2,9 @@
 
     python -m pytest bench/test_bench_matrix_free.py --benchmark-only [--size full]
 
+Triangles (``test_product``) and tetrahedra (``test_product_tetrahedra``, on
+``cuboid(n, n, n)``, up to 1e7 tetrahedra with ``--size full``).
+
 ``y = K x`` with the full stiffness matrix ``K`` of a mesh (no Dirichlet rows),
 on two numberings of the same ``n x n`` mesh: ``rectangle`` (row by row, as
 the generator numbers it) and ``refined`` (``rectangle(c, c)`` refined until
@@ -25,6 +28,7 @@ import pytest
 from conftest import (
     MAX_THREADS,
     THREADS,
+    best_time,
     peak_of_call,
     record,
     shared_mesh,
@@ -92,5 +96,91 @@ def test_product(benchmark, machine, request, cells, numbering, method, n_thread
         method=method, plain=method == "scipy", baseline=None if method == "scipy" else "scipy",
         mesh=numbering, threads=n_threads, n_triangles=int(mesh.n_triangles), n_points=int(n),
         nnz=int(A.nnz), stored_bytes=int(stored), csr_stored_bytes=int(csr_bytes(A) - 16 * n),
+        default_variant=method == DEFAULT_VARIANT, peak_bytes=peak, peak_source=source, **first,
+    )
+
+
+# -- tetrahedra ----------------------------------------------------------------------------
+#: cells per side of cuboid(n, n, n) (6 n^3 tetrahedra); full reaches about 1e7
+CUBE_SIZES = {"quick": [6, 12], "full": [30, 60, 120]}
+
+
+def pytest_generate_tests(metafunc):
+    # the sizes of the tetrahedral cases (bench/conftest.py's hook sizes the 2-D ones)
+    if "cube" in metafunc.fixturenames:
+        sizes = CUBE_SIZES[size_mode(metafunc.config)]
+        metafunc.parametrize("cube", sizes, ids=[f"n_tetrahedra={6 * n**3}" for n in sizes])
+
+
+_cubes = {}
+
+
+def cube_mesh(n, numbering):
+    """``cuboid(n, n, n)`` as the generator numbers it, or made by refinement (numbered by
+    first use, as gmg sees it): ``cuboid(n / 4)`` refined twice, or ``cuboid(n / 2)`` once."""
+    key = (n, numbering)
+    if key not in _cubes:
+        from hatkernels.mesh import cuboid
+
+        if numbering == "cuboid":
+            _cubes[key] = cuboid(n, n, n)
+        else:
+            levels = 2 if n % 4 == 0 else 1
+            m = cuboid(n >> levels, n >> levels, n >> levels)
+            for _ in range(levels):
+                m = m.refine()
+            _cubes[key] = m
+    return _cubes[key]
+
+
+@pytest.mark.parametrize("numbering", ["cuboid", "refined"], ids=lambda s: f"mesh={s}")
+@pytest.mark.parametrize("method, n_threads", CASES)
+def test_product_tetrahedra(benchmark, machine, request, cube, numbering, method, n_threads):
+    """As :func:`test_product` on tetrahedra; ``ns_per_point`` and ``bytes_per_point`` (stored)
+    in extra_info, kind ``product-3d``."""
+    mesh = cube_mesh(cube, numbering)
+    key = (cube, numbering, 3)
+    if key not in _operators:
+        _operators.clear()  # one assembled matrix at a time: 10^7 tetrahedra hold 0.3 GiB
+        _operators[key] = assemble_stiffness(mesh)
+    A = _operators[key]
+    n = mesh.n_points
+    x = np.random.default_rng(0).standard_normal(n)
+    y = np.empty(n)
+    csr_stored = csr_bytes(A) - 16 * n
+    if method == "scipy":
+        fn = lambda: A @ x  # noqa: E731
+        stored, moved = csr_stored, csr_bytes(A)
+    elif method == "scipy-into":
+
+        def fn():
+            y[:] = 0.0
+            csr_matvec(n, n, A.indptr, A.indices, A.data, x, y)
+
+        stored, moved = csr_stored, csr_bytes(A) + 8 * n
+    elif method == "csr":
+        fn = lambda: _k.spmv(A.indptr, A.indices, A.data, x, y)  # noqa: E731
+        stored, moved = csr_stored, csr_bytes(A)
+    else:
+        op = StiffnessOperator(mesh, variant=method)
+        fn = lambda: op.matvec_into(x, y)  # noqa: E731
+        reads = {
+            "geometry": mesh.cells.nbytes + mesh.points.nbytes,
+            "factors": mesh.cells.nbytes + op.nbytes,
+            "edges": op.nbytes,
+        }[method]
+        stored, moved = op.nbytes, reads + 3 * 8 * n
+    with threads(n_threads):
+        first = warm(benchmark, fn)
+        benchmark.pedantic(fn, **_rounds(request.config))
+        peak, source = peak_of_call(benchmark, fn)
+    t = best_time(benchmark)
+    record(
+        benchmark, machine, moved, moved, kind="product-3d",
+        operation="stiffness product on tetrahedra", method=method, plain=method == "scipy",
+        baseline=None if method == "scipy" else "scipy", mesh=numbering, threads=n_threads,
+        n_tetrahedra=int(mesh.n_cells), n_points=int(n), nnz=int(A.nnz),
+        stored_bytes=int(stored), csr_stored_bytes=int(csr_stored),
+        bytes_per_point=stored / n, ns_per_point=None if t is None else t / n * 1e9,
         default_variant=method == DEFAULT_VARIANT, peak_bytes=peak, peak_source=source, **first,
     )
