@@ -104,6 +104,47 @@ def solution_equals_serial_and_scipy(comm):
 
 
 @check
+def tetrahedra_equal_serial(comm):
+    import numpy as np
+
+    from hatkernels.distributed import solve_poisson
+    from hatkernels.mesh import cuboid
+
+    mesh = cuboid(6, 6, 6)
+    x, y, z = mesh.points.T
+    faces = mesh.boundary_faces()
+    on = lambda c, v: faces[(mesh.points[faces, c] == v).all(axis=1)]  # noqa: E731
+    cases = [
+        ("amg", None, {}),
+        ("amg", "constants", {"coefficient": lambda x, y, z: 1 + x * z,
+                              "dirichlet": x + 2 * y - z}),
+        # held on one face, a film coefficient varying over another, a flux on the rest
+        ("ic0", None, {"dirichlet_on": on(0, 0.0), "reaction": 2.0, "neumann": 0.5,
+                       "robin": (on(0, 1.0), lambda x, y, z: 1 + y * z, 3.0)}),
+        ("jacobi", "constants", {"dirichlet_on": on(2, 0.0),
+                                 "robin": (lambda x, y, z: 2 + x, lambda x, y, z: x * y)}),
+    ]
+    found = []
+    for pc, coarse, kw in cases:
+        f = lambda x, y, z: 1 + np.sin(3 * x) * y * z  # noqa: E731
+        sol = solve_poisson(mesh, f, comm=comm, rtol=1e-12, preconditioner=pc,
+                            coarse=coarse, check=True, **kw)
+        ser = _serial(mesh, f, rtol=1e-12, preconditioner=pc, **kw)
+        # the project's serial solve on tetrahedra (itself checked against analytic
+        # solutions in tests/test_convergence3d.py and test_solvers3d.py, its face terms
+        # in tests/test_faces.py): the partition must not change the answer, point by point
+        assert np.abs(sol.u - ser.u).max() <= 1e-10 * np.abs(ser.u).max(), (pc, kw.keys())
+        assert sol.stats.unknowns == ser.stats.unknowns
+        assert sol.stats.nnz == ser.stats.nnz
+        part = sol.stats.distribution.partition
+        assert part["dim"] == 3 and part["imbalance"] < 0.05
+        assert [b["cells"] for b in sol.stats.distribution.balance] == part["cells"]
+        found.append((pc, coarse, sol.stats.iterations))
+    if comm.Get_rank() == 0:
+        print("mpi_checks: iterations on cuboid(6, 6, 6) at rtol 1e-12", found)
+
+
+@check
 def matrix_rows_equal_serial(comm):
     import numpy as np
     import scipy.sparse as sp
@@ -192,6 +233,7 @@ def one_rank_equals_serial_bit_for_bit(comm):
     import numpy as np
 
     from hatkernels.distributed import solve_poisson
+    from hatkernels.mesh import cuboid
 
     me = comm.Split(color=0 if comm.Get_rank() == 0 else 1, key=comm.Get_rank())
     try:
@@ -202,6 +244,12 @@ def one_rank_equals_serial_bit_for_bit(comm):
                     ser = _serial(mesh, 1.0, rtol=1e-10, preconditioner=pc)
                     assert sol.stats.iterations == ser.stats.iterations
                     assert np.array_equal(sol.u, ser.u), pc
+            mesh = cuboid(5, 5, 5)  # tetrahedra
+            for pc in ("amg", "ic0"):
+                sol = solve_poisson(mesh, 1.0, comm=me, rtol=1e-10, preconditioner=pc)
+                ser = _serial(mesh, 1.0, rtol=1e-10, preconditioner=pc)
+                assert sol.stats.iterations == ser.stats.iterations
+                assert np.array_equal(sol.u, ser.u), ("cuboid", pc)
     finally:
         me.Free()
         _wait_politely(comm)

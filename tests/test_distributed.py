@@ -562,7 +562,7 @@ def test_mpi_checks(ranks):
     code, out, err = run_mpi(ranks, [sys.executable, str(HERE / "mpi_checks.py")])
     print(out)
     assert code == 0, f"exit {code}\n{out}\n{err}"
-    assert f"all 12 checks passed on {ranks} ranks" in out
+    assert f"all 13 checks passed on {ranks} ranks" in out
 
 
 @needs_mpi
