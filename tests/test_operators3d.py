@@ -284,3 +284,15 @@ def test_unused_points_get_identity_rows_with_dirichlet():
     x = np.ones(m.n_points)
     assert (op @ x)[-1] == 1.0 and m.n_points - 1 in op.fixed
     assert (StiffnessOperator(m) @ x)[-1] == 0.0  # without Dirichlet: the empty row of K
+
+
+@pytest.mark.parametrize("mesh", MESHES)
+def test_edge_rows_are_the_unique_edges(mesh):
+    # reference library: numpy's unique over the sorted point pairs of every cell
+    m = MESHES[mesh]()
+    pairs = np.sort(m.cells[:, [[0, 1], [0, 2], [0, 3], [1, 2], [1, 3], [2, 3]]], axis=2)
+    ref = np.unique(pairs.reshape(-1, 2), axis=0)
+    impl = StiffnessOperator(m, variant="edges", block_size=8)._impl
+    first = np.repeat(np.arange(m.n_points), np.diff(impl.starts))
+    assert np.array_equal(np.column_stack([first, impl.ends]), ref)
+    assert impl.ends.dtype == m.cells.dtype

@@ -272,31 +272,6 @@ def offdiagonal_values(points, cells, kappa, ks, tensor, ts, out):
         out[t, 5] = o23
 
 
-@jit(parallel=True)
-def edge_weights(points, cells, kappa, ks, tensor, ts, block_size, colour_ptr, blocks,
-                 cell_edges, w):
-    """``w[e]``: the sum over edge ``e``'s cells of their entry for its two points.
-
-    ``cell_edges[t, j]`` is the edge of pair ``j`` (01, 02, 03, 12, 13, 23) of
-    cell ``t``; two blocks of one colour share no point, hence no edge.
-    """
-    m = cells.shape[0]
-    _zero(w)
-    for c in range(colour_ptr.size - 1):
-        for k in prange(colour_ptr[c], colour_ptr[c + 1]):
-            b = blocks[k]
-            for t in range(b * block_size, min(m, (b + 1) * block_size)):
-                o01, o02, o03, o12, o13, o23, _, _, _, _ = _offdiagonals(
-                    points, cells, t, kappa, ks, tensor, ts
-                )
-                w[cell_edges[t, 0]] += o01
-                w[cell_edges[t, 1]] += o02
-                w[cell_edges[t, 2]] += o03
-                w[cell_edges[t, 3]] += o12
-                w[cell_edges[t, 4]] += o13
-                w[cell_edges[t, 5]] += o23
-
-
 @jit()
 def remove_fixed_columns(points, cells, kappa, ks, tensor, ts, near, is_fixed, x, y):
     """``y -= K[:, fixed] x[fixed]``, over the cells ``near`` the fixed points only
@@ -332,3 +307,84 @@ def apply_factors(cells, ovals, block_size, colour_ptr, blocks, x, y):
                     ovals[t, uint64(3)], ovals[t, uint64(4)], ovals[t, uint64(5)],
                     x[i0], x[i1], x[i2], x[i3],
                 )
+
+
+@jit(inline="always")
+def _pair(cells, t, p):
+    """Points ``(low, high)`` of pair ``p`` (01, 02, 03, 12, 13, 23) of cell ``t``."""
+    a = 0 if p < 3 else (1 if p < 5 else 2)
+    b = p + 1 if p < 3 else (p - 1 if p < 5 else 3)
+    i, j = cells[t, a], cells[t, b]
+    return (i, j) if i < j else (j, i)
+
+
+@jit()
+def edge_rows(cells, n_points, starts):
+    """The unique edges of the cells by first point: ``ends`` returned, ``starts`` filled.
+
+    Row ``i`` (edges ``(i, j)`` with ``i < j``) is ``ends[starts[i]:starts[i+1]]``,
+    sorted: the edge list of :func:`hatkernels.mesh.refine3d.unique_edges` in
+    its order.  Every pair of every cell is put in its low point's row, then each
+    row is sorted and its repeats dropped (rows are short: a few tens of entries).
+    """
+    m = cells.shape[0]
+    ptr = np.zeros(n_points + 1, dtype=np.int64)
+    for t in range(m):
+        for p in range(6):
+            i, _ = _pair(cells, t, p)
+            ptr[i + 1] += 1
+    for i in range(n_points):
+        ptr[i + 1] += ptr[i]
+    buf = np.empty(ptr[n_points], dtype=cells.dtype)
+    fill = ptr[:-1].copy()
+    for t in range(m):
+        for p in range(6):
+            i, j = _pair(cells, t, p)
+            buf[fill[i]] = j
+            fill[i] += 1
+    starts[0] = 0
+    for i in range(n_points):
+        row = buf[ptr[i]:ptr[i + 1]]
+        for r in range(1, row.size):  # insertion sort: rows are short
+            v = row[r]
+            q = r
+            while q > 0 and row[q - 1] > v:
+                row[q] = row[q - 1]
+                q -= 1
+            row[q] = v
+        k = 0
+        for r in range(row.size):
+            if r == 0 or row[r] != row[r - 1]:
+                row[k] = row[r]
+                k += 1
+        fill[i] = k
+        starts[i + 1] = starts[i] + k
+    ends = np.empty(starts[n_points], dtype=cells.dtype)
+    for i in range(n_points):
+        ends[starts[i]:starts[i + 1]] = buf[ptr[i]:ptr[i] + fill[i]]
+    return ends
+
+
+@jit(parallel=True)
+def edge_weights(points, cells, kappa, ks, tensor, ts, block_size, colour_ptr, blocks,
+                 starts, ends, w):
+    """``w[e]``: the sum over edge ``e``'s cells of their entry for its two points.
+
+    Edge ``(i, j)``, ``i < j``, is found in row ``i`` of the edge list
+    (:func:`edge_rows`); two blocks of one colour share no point, hence no edge.
+    """
+    m = cells.shape[0]
+    _zero(w)
+    for c in range(colour_ptr.size - 1):
+        for k in prange(colour_ptr[c], colour_ptr[c + 1]):
+            b = blocks[k]
+            for t in range(b * block_size, min(m, (b + 1) * block_size)):
+                o01, o02, o03, o12, o13, o23, _, _, _, _ = _offdiagonals(
+                    points, cells, t, kappa, ks, tensor, ts
+                )
+                for p in range(6):
+                    i, j = _pair(cells, t, p)
+                    e = starts[i]
+                    while ends[e] != j:
+                        e += 1
+                    w[e] += (o01, o02, o03, o12, o13, o23)[p]

@@ -73,20 +73,24 @@ class EdgeRows:
     (``row_colouring``).  Put it before the cell class among the bases.
     """
 
-    def _store_rows(self, edges, weights, n_points, rows_per_block):
-        """Keep ``weights`` and the sorted unique ``edges`` (n_edges, 2) as rows; colour them."""
-        n = n_points
-        self.weights = weights
-        # int64 once the edge count passes int32, even if the point count does not
-        self.starts = np.zeros(n + 1, dtype=index_dtype(len(edges), n + 1))
-        np.cumsum(np.bincount(edges[:, 0], minlength=n), out=self.starts[1:])
-        self.ends = np.ascontiguousarray(edges[:, 1])
-        self.row_colouring = row_colouring(self.starts, self.ends, n, max(1, rows_per_block))
+    def _store_rows(self, starts, ends, weights, n_points, rows_per_block):
+        """Keep the edge list by first point and its ``weights``; colour blocks of rows."""
+        self.starts, self.ends, self.weights = starts, ends, weights
+        self.row_colouring = row_colouring(starts, ends, n_points, max(1, rows_per_block))
         if self.row_colouring is None:
             raise InputError(
                 "the edges variant needs a colouring of edges with at most 64 colours; "
                 "reorder the mesh (Mesh.reorder('hilbert')) or use variant='geometry'"
             )
+
+    @staticmethod
+    def rows_of(edges, n_points):
+        """``(starts, ends)`` of sorted unique ``edges`` (n_edges, 2), ``(low, high)`` pairs."""
+        n = n_points
+        # int64 once the edge count passes int32, even if the point count does not
+        starts = np.zeros(n + 1, dtype=index_dtype(len(edges), n + 1))
+        np.cumsum(np.bincount(edges[:, 0], minlength=n), out=starts[1:])
+        return starts, np.ascontiguousarray(edges[:, 1])
 
     @property
     def n_colours(self):

@@ -193,7 +193,8 @@ class EdgesProduct(EdgeRows, TriangleBlocks):
             mesh.points, mesh.triangles, *coefficient, *colouring, mesh.triangle_edges(), weights
         )
         # blocks of rows holding about as many edges as a block of triangles (three per row)
-        self._store_rows(edges, weights, mesh.n_points, colouring.block_size // 3)
+        starts, ends = self.rows_of(edges, mesh.n_points)
+        self._store_rows(starts, ends, weights, mesh.n_points, colouring.block_size // 3)
         del edges
         # edge topology the products do not need (12 to 20 bytes per triangle)
         mesh.forget(*(mesh.cached() - had))

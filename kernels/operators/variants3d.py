@@ -24,7 +24,7 @@ import numpy as np
 from hatkernels._jit import operators3d as _jit3
 from hatkernels.assembly.csr import KernelCoefficient
 from hatkernels.assembly.elements import _tetrahedron_means
-from hatkernels.mesh.refine3d import unique_edges
+from hatkernels.mesh.core_index import index_dtype
 from hatkernels.operators.blocks import EdgeRows, ElementBlocks
 from hatkernels.operators.colouring import Colouring
 
@@ -148,13 +148,18 @@ class TetrahedronEdges(EdgeRows, TetrahedronBlocks):
 
     def __init__(self, mesh, coefficient, colouring):
         super().__init__(mesh, coefficient, colouring)
-        edges, cell_edges = unique_edges(mesh.cells, mesh.n_points)
-        weights = np.empty(len(edges))
-        _jit3.edge_weights(mesh.points, mesh.cells, *coefficient, *colouring, cell_edges, weights)
-        del cell_edges
+        n = mesh.n_points
+        # the edge list by first point straight from the cells (no (M, 6) edge numbers):
+        # the rows of unique_edges, in its order
+        starts = np.empty(n + 1, dtype=np.int64)
+        ends = _jit3.edge_rows(mesh.cells, n, starts)
+        starts = starts.astype(index_dtype(len(ends), n + 1))
+        weights = np.empty(len(ends))
+        _jit3.edge_weights(mesh.points, mesh.cells, *coefficient, *colouring, starts, ends,
+                           weights)
         # blocks of rows holding about as many edges as a block of cells (on the
         # cuboid: 7 edges per row, 6 cells per point)
-        self._store_rows(edges, weights, mesh.n_points, colouring.block_size // 6)
+        self._store_rows(starts, ends, weights, n, colouring.block_size // 6)
 
 
 #: The tetrahedron classes by variant name, in the order of the triangle ones.
