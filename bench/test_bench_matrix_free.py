@@ -39,7 +39,7 @@ from scipy.sparse._sparsetools import csr_matvec
 
 from hatkernels import StiffnessOperator, assemble_stiffness, threads
 from hatkernels._jit import sparse as _k
-from hatkernels.operators import DEFAULT_VARIANT, VARIANTS
+from hatkernels.operators import DEFAULT_VARIANT, DEFAULT_VARIANT_3D, VARIANTS
 from hatkernels.sparse import csr_bytes
 
 CASES = [pytest.param("scipy", MAX_THREADS, id="method=scipy"),
@@ -182,5 +182,5 @@ def test_product_tetrahedra(benchmark, machine, request, cube, numbering, method
         n_tetrahedra=int(mesh.n_cells), n_points=int(n), nnz=int(A.nnz),
         stored_bytes=int(stored), csr_stored_bytes=int(csr_stored),
         bytes_per_point=stored / n, ns_per_point=None if t is None else t / n * 1e9,
-        default_variant=method == DEFAULT_VARIANT, peak_bytes=peak, peak_source=source, **first,
+        default_variant=method == DEFAULT_VARIANT_3D, peak_bytes=peak, peak_source=source, **first,
     )

@@ -20,7 +20,7 @@ import hatkernels
 from hatkernels import Mesh, StiffnessOperator, assemble_stiffness, threads
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.mesh import cuboid
-from hatkernels.operators import VARIANTS
+from hatkernels.operators import DEFAULT_VARIANT, DEFAULT_VARIANT_3D, VARIANTS, default_variant
 from hatkernels.operators.colouring import triangle_colouring
 from hatkernels.operators.variants import build_variant, variant_coefficient
 from hatkernels.operators.variants3d import (
@@ -223,13 +223,15 @@ def test_variants_are_picked_by_dimension():
         assert type(v) is VARIANT_CLASSES[name] and v.name == name
     op = StiffnessOperator(m, variant="geometry")
     assert isinstance(op._impl, TetrahedronGeometry) and "colours" in repr(op)
+    assert StiffnessOperator(m, variant="edges", block_size=8).nbytes == build_variant(
+        "edges", m, kc, 8).nbytes  # no Dirichlet arrays
 
 
 def test_storage():
     m = cuboid(12, 12, 12)
     A = assemble_stiffness(m)
     csr = A.data.nbytes + A.indices.nbytes + A.indptr.nbytes
-    assert StiffnessOperator(m).nbytes < csr / 50  # the geometry variant: a colouring
+    assert StiffnessOperator(m, variant="geometry").nbytes < csr / 50  # a colouring
     assert StiffnessOperator(m, variant="factors").nbytes >= 48 * m.n_cells
     # 12 bytes per unique edge and 4 per point: about half of the CSR matrix
     assert StiffnessOperator(m, variant="edges").nbytes < 0.55 * csr
@@ -245,15 +247,22 @@ def hedgehog(k=100):
 
 def test_more_than_64_colours_falls_back_or_refuses():
     m = hedgehog()
-    with pytest.warns(RuntimeWarning, match="more than 64 colours.*tetrahedra"):
-        op = StiffnessOperator(m, block_size=1)
     x = np.random.default_rng(3).standard_normal(m.n_points)
-    assert isinstance(op._impl, SerialTetrahedronGeometry)
-    assert product_close(op @ x, assemble_stiffness(m), x)
-    assert close(op.diagonal(), assemble_stiffness(m).diagonal())
-    for name in ("factors", "edges"):
-        with pytest.raises(hatkernels.InputError, match="at most 64 colours"):
-            StiffnessOperator(m, variant=name, block_size=1)
+    A = assemble_stiffness(m)
+    for name in ("geometry", "edges"):  # edges is the default: it falls back too
+        with pytest.warns(RuntimeWarning, match="more than 64 colours.*tetrahedra"):
+            op = StiffnessOperator(m, variant=name, block_size=1)
+        assert isinstance(op._impl, SerialTetrahedronGeometry) and op.n_colours == 1
+        assert product_close(op @ x, A, x)
+        assert close(op.diagonal(), A.diagonal())
+    with pytest.raises(hatkernels.InputError, match="at most 64 colours"):
+        StiffnessOperator(m, variant="factors", block_size=1)
+
+
+def test_the_default_variant_follows_the_dimension():
+    assert StiffnessOperator(cuboid(2, 2, 2)).variant == DEFAULT_VARIANT_3D == "edges"
+    assert StiffnessOperator(hatkernels.mesh.rectangle(2, 2)).variant == DEFAULT_VARIANT
+    assert default_variant(3) == DEFAULT_VARIANT_3D and default_variant(2) == DEFAULT_VARIANT
 
 
 def test_bad_input_is_named():

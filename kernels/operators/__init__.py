@@ -18,11 +18,23 @@ bits on any thread count (see :mod:`hatkernels._jit.operators`):
     triangle, 0.45 of the CSR matrix; the product no longer needs the
     triangles.
 
-docs/matrix-free.md has the measured speeds; :data:`DEFAULT_VARIANT` is
-the one the benchmark picked.
+On tetrahedra (:mod:`hatkernels.operators.variants3d`) the same three:
+``geometry`` recomputes each tetrahedron's normals and determinant,
+``factors`` stores six entries per tetrahedron (48 bytes), ``edges`` one
+weight per unique edge.
+
+docs/matrix-free.md has the measured speeds; :data:`DEFAULT_VARIANT`
+(triangles) and :data:`DEFAULT_VARIANT_3D` (tetrahedra) are the ones the
+benchmark picked; :func:`default_variant` gives the one for a dimension.
 """
 
 from hatkernels.operators.stiffness import DEFAULT_BLOCK, StiffnessOperator
-from hatkernels.operators.variants import DEFAULT_VARIANT, VARIANTS
+from hatkernels.operators.variants import (
+    DEFAULT_VARIANT,
+    DEFAULT_VARIANT_3D,
+    VARIANTS,
+    default_variant,
+)
 
-__all__ = ["StiffnessOperator", "VARIANTS", "DEFAULT_VARIANT", "DEFAULT_BLOCK"]
+__all__ = ["StiffnessOperator", "VARIANTS", "DEFAULT_VARIANT", "DEFAULT_VARIANT_3D",
+           "default_variant", "DEFAULT_BLOCK"]

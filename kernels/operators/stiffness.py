@@ -14,9 +14,9 @@ from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
 from hatkernels.operators.variants import (
-    DEFAULT_VARIANT,
     VARIANTS,
     build_variant,
+    default_variant,
     variant_coefficient,
 )
 
@@ -41,8 +41,11 @@ class StiffnessOperator(LinearOperator):
     ----------
     mesh : Mesh
     coefficient : any kind accepted by :func:`hatkernels.assemble_stiffness`
-    variant : {"geometry", "factors", "edges"}
-        What is stored and how the product runs (see :mod:`hatkernels.operators`).
+    variant : {"geometry", "factors", "edges"}, optional
+        What is stored and how the product runs (see :mod:`hatkernels.operators`);
+        default :data:`~hatkernels.operators.DEFAULT_VARIANT` (``geometry``) on
+        triangles and :data:`~hatkernels.operators.DEFAULT_VARIANT_3D` (``edges``)
+        on tetrahedra, the ones the benchmark picked.
     dirichlet : array of point indices, optional
         With it, the operator is the symmetrically eliminated matrix: identity
         rows and columns at these points (and at points in no cell), the
@@ -67,13 +70,15 @@ class StiffnessOperator(LinearOperator):
         mesh,
         coefficient=None,
         *,
-        variant=DEFAULT_VARIANT,
+        variant=None,
         dirichlet=None,
         quadrature=2,
         block_size=DEFAULT_BLOCK,
     ):
         if not isinstance(mesh, Mesh):
             raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
+        if variant is None:
+            variant = default_variant(mesh.dim)
         if variant not in VARIANTS:
             raise InputError(f"unknown matrix-free variant {variant!r}; choose one of {VARIANTS}")
         block_size = integer_option(block_size, "block_size", minimum=1)

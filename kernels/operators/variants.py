@@ -45,6 +45,8 @@ __all__ = [
     "VARIANT_CLASSES",
     "VARIANTS",
     "DEFAULT_VARIANT",
+    "DEFAULT_VARIANT_3D",
+    "default_variant",
     "build_variant",
     "variant_coefficient",
 ]
@@ -203,8 +205,18 @@ class EdgesProduct(EdgeRows, TriangleBlocks):
 #: The variants by name; the first is the default.
 VARIANT_CLASSES = {cls.name: cls for cls in (GeometryProduct, FactorsProduct, EdgesProduct)}
 VARIANTS = tuple(VARIANT_CLASSES)
-#: The one the benchmark picked (docs/matrix-free.md has the measured speeds).
+#: The one the benchmark picked on triangles (docs/matrix-free.md has the measured speeds).
 DEFAULT_VARIANT = "geometry"
+#: The one the benchmark picked on tetrahedra: ``edges``, the fastest product (faster
+#: than scipy's CSR product on one thread, cuboid(60, 60, 60)) with a setup of a few
+#: tens of products, storing under half of the CSR matrix; ``geometry`` stores nothing
+#: but recomputes six tetrahedra per point at every product (docs/matrix-free.md).
+DEFAULT_VARIANT_3D = "edges"
+
+
+def default_variant(dim):
+    """:data:`DEFAULT_VARIANT` on triangles (``dim`` 2), :data:`DEFAULT_VARIANT_3D` on tetrahedra."""
+    return DEFAULT_VARIANT if dim == 2 else DEFAULT_VARIANT_3D
 
 
 def variant_coefficient(coef, mesh, quadrature):

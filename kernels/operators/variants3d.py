@@ -145,6 +145,8 @@ class TetrahedronEdges(EdgeRows, TetrahedronBlocks):
     needs no cells.  12 bytes per edge and 4 per point."""
 
     name = "edges"
+    # the default on tetrahedra: a mesh numbered with no locality still gets a product
+    fallback = SerialTetrahedronGeometry
 
     def __init__(self, mesh, coefficient, colouring):
         super().__init__(mesh, coefficient, colouring)
