@@ -27,7 +27,7 @@ __all__ = ["run", "PHASE_TEXT"]
 #: The progress line for each phase the library announces.
 PHASE_TEXT = {
     "assemble": "assemble: stiffness matrix and load vector",
-    "boundary": "boundary: Dirichlet conditions",
+    "boundary": "boundary: checks and boundary conditions",
     "solve": "solve: preconditioner setup and conjugate gradients",
 }
 

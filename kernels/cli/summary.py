@@ -105,7 +105,9 @@ def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command
     """
     mesh, u = problem.mesh, sol.u
     figures = solve_figures(sol)
-    used = np.unique(mesh.cells)
+    used = np.ones(mesh.n_points, dtype=bool)
+    used[mesh.unused_points()] = False  # points in no cell carry no value
+    used = np.flatnonzero(used)
     vmax, imax, nmax = _extreme(u, used, "max")
     vmin, imin, nmin = _extreme(u, used, "min")
     res = figures["residuals"]
