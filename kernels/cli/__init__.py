@@ -192,9 +192,9 @@ def _add_solve(sub, common, names):
                  "its default size; the block: 4 mm cubes, default K=4; with --mesh: the "
                  "file's mesh)")
     size.add_argument("--mesh", metavar="FILE",
-                      help="solve on this mesh instead: .npz with arrays points and triangles, "
-                           "or any format meshio reads (io extra); Dirichlet on the whole "
-                           "boundary, constant source")
+                      help="solve on this mesh instead: .npz with arrays points and triangles "
+                           "(or tetrahedra), or any format meshio reads (io extra; triangles "
+                           "or tetrahedra); Dirichlet on the whole boundary, constant source")
     _number(p, "--source", float, metavar="Q",
             help="constant source instead of the components or heat sources (W/m^3 on "
                  "the plate and the block; default 1 with --mesh)")
