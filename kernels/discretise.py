@@ -27,7 +27,7 @@ from hatkernels.assembly import StiffnessAssembler, assemble_load
 from hatkernels.assembly.boundary_terms import side_load, side_mass
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.errors import InputError
-from hatkernels.operators import DEFAULT_VARIANT, StiffnessOperator
+from hatkernels.operators import StiffnessOperator, default_variant
 from hatkernels.precond import PreconditionerContext
 from hatkernels.solver import stored_bytes
 
@@ -148,7 +148,7 @@ def discretise(problem, *, matrix_free=False, variant=None, progress=None):
         Build the matrix-free form (stiffness term only).
     variant : str, optional
         Its variant (:data:`hatkernels.operators.VARIANTS`); default
-        :data:`~hatkernels.operators.DEFAULT_VARIANT`.
+        :func:`~hatkernels.operators.default_variant` of the mesh's dimension.
     progress : callable, optional
         ``progress(phase)`` as "boundary" and "assemble" start.
 
@@ -176,7 +176,7 @@ def discretise(problem, *, matrix_free=False, variant=None, progress=None):
         b = balanced(problem, b)
     held = problem.dirichlet
     if matrix_free:
-        variant = DEFAULT_VARIANT if variant is None else variant
+        variant = default_variant(mesh.dim) if variant is None else variant
         op = StiffnessOperator(mesh, problem.coefficient, dirichlet=held.points, quadrature=q,
                                variant=variant)
         g = np.zeros(mesh.n_points)
