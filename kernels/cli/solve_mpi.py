@@ -48,7 +48,7 @@ COMMAND_COARSE = "constants"
 
 #: The progress line for each phase the distributed solve announces.
 PHASE_TEXT = {
-    "boundary": "boundary: Dirichlet conditions and partition",
+    "boundary": "boundary: checks, boundary conditions and partition",
     "assemble": "assemble: owned rows on each rank's subdomain",
     "solve": "solve: preconditioner setup and distributed conjugate gradients",
 }
@@ -149,7 +149,9 @@ def _collective(args, progress, comm):
 
 def _report(args, progress, out, problem, sol, timings, kernels_seconds, command, peak):
     """Rank 0: power balance, summary, output files, the printed report."""
-    progress.phase("check: power balance from the boundary reactions (rank 0)")
+    progress.phase("check: power balance " + ("from the boundary reactions" if problem.cooling
+                                               is None else "through the cooled sides")
+                   + " (rank 0)")
     t0 = time.perf_counter()
     balance = scenarios.power_balance(problem, sol.u)
     timings["check"] = time.perf_counter() - t0

@@ -24,8 +24,10 @@ __all__ = [
 
 #: Phases the library times, copied into the record under the same names.
 LIBRARY_PHASES = ("assemble", "boundary", "setup", "solve")
+#: The library's older name of a per-rank figure (on triangle meshes only), kept in the record.
+OLDER_NAMES = ("triangles",)
 #: Per-rank figures kept in the record of a distributed solve.
-RANK_FIGURES = ("rank", "owned_points", "owned_unknowns", "triangles", "ghost_points",
+RANK_FIGURES = ("rank", "owned_points", "owned_unknowns", "cells", "ghost_points",
                 "ghost_unknowns", "neighbours", "nnz", "halo_bytes_per_product",
                 "halo_messages_per_product", "communication", "timings")
 
@@ -59,7 +61,7 @@ def distributed_figures(sol, coarse):
         "condition_estimate": st.condition_estimate,
         "partition": d.partition,
         "communication": d.communication,
-        "balance": [{k: b[k] for k in RANK_FIGURES} for b in d.balance],
+        "balance": [{k: b[k] for k in RANK_FIGURES + OLDER_NAMES if k in b} for b in d.balance],
     }
 
 
@@ -255,7 +257,8 @@ def distributed_report(d):
         c = b["communication"]
         lines.append(
             f"{'rank ' + str(b['rank']):<16}{b['owned_points']:,} points ({b['owned_unknowns']:,} "
-            f"unknowns), {b['triangles']:,} triangles, {b['ghost_points']:,} ghosts from "
+            f"unknowns), {b['cells']:,} {'triangles' if 'triangles' in b else 'tetrahedra'}, "
+            f"{b['ghost_points']:,} ghosts from "
             f"{len(b['neighbours'])} neighbour{'s' if len(b['neighbours']) != 1 else ''}; "
             f"communication {format_seconds(c['seconds'])} of a "
             f"{format_seconds(b['timings']['solve'])} solve (halo "
