@@ -303,3 +303,17 @@ def test_unused_points_stay_unused():
     np.testing.assert_array_equal(fine.unused_points(), np.flatnonzero(~used))
     np.testing.assert_array_equal(fine.unused_points(), fine.refinement.coarse_points[[4]])
     np.testing.assert_array_equal(fine.points[fine.unused_points()], [[5.0, 5.0, 5.0]])
+
+
+@pytest.mark.parametrize("make", [lambda: hatkernels.mesh.cuboid(2, 3, 1),
+                                  lambda: hatkernels.mesh.ball(2)],
+                         ids=["cuboid", "ball"])
+def test_boundary_faces_carried_over_equal_those_found_on_the_fine_mesh(make):
+    # the refined mesh takes its boundary faces from the coarse mesh's (four children each);
+    # they must be exactly what the face sort of the fine mesh finds (common practice, no source)
+    mesh = make()
+    for _ in range(2):
+        mesh = mesh.refine()
+        carried = mesh.boundary_faces()
+        found = hatkernels.mesh.Mesh._trusted(mesh.points, mesh.cells).boundary_faces()
+        assert carried.dtype == found.dtype and np.array_equal(carried, found)

@@ -389,8 +389,13 @@ class Mesh:
 
         Each is oriented outward: seen from outside the mesh its points run
         counterclockwise (the right-hand normal ``(x1 - x0) x (x2 - x0)`` points
-        out).  Rows come in the order of their sorted point triples.
+        out), starting from its smallest point.  Rows come in the order of their
+        sorted point triples.  A refined mesh has them from its coarse mesh's
+        (:meth:`refine`), without the fine mesh's faces.
         """
+        if "boundary_faces" in self._cache:
+            self._need(3, "boundary_faces()", "use boundary_edges()")
+            return self._cache["boundary_faces"]
         return self._face_topology()[2]
 
     # -- the cache -----------------------------------------------------------------

@@ -129,12 +129,20 @@ def _parity(triples):
     return ((a > b).astype(np.int8) + (a > c) + (b > c)) % 2
 
 
+def smallest_first(triples):
+    """Each row rotated (orientation kept) so that its smallest point comes first: a copy."""
+    t = np.asarray(triples)
+    shift = np.argmin(t, axis=1)
+    cols = (shift[:, None] + np.arange(3)[None, :]) % 3
+    return np.take_along_axis(t, cols, axis=1)
+
+
 def face_topology(cells):
     """``(faces, cell_faces, boundary)`` of a valid mesh.
 
     faces : (n_faces, 3), the sorted keys, sorted; cell_faces : (n_cells, 4),
     the face opposite each local vertex; boundary : (n_boundary_faces, 3), the
-    faces of one cell, outward as in their cell, in the order of their keys.
+    faces of one cell, outward, smallest point first, in the order of their keys.
     """
     outward, keys, order, same = _faces(cells)
     new = np.empty(len(order), dtype=bool)
@@ -147,7 +155,7 @@ def face_topology(cells):
     starts = np.flatnonzero(new)
     faces = keys[order[starts]].astype(dt)
     count = np.diff(np.append(starts, len(order)))
-    boundary = outward[order[starts[count == 1]]].astype(dt)
+    boundary = smallest_first(outward[order[starts[count == 1]]].astype(dt))
     return faces, cell_faces.reshape(-1, 4), boundary
 
 
