@@ -207,10 +207,10 @@ VARIANT_CLASSES = {cls.name: cls for cls in (GeometryProduct, FactorsProduct, Ed
 VARIANTS = tuple(VARIANT_CLASSES)
 #: The one the benchmark picked on triangles (docs/matrix-free.md has the measured speeds).
 DEFAULT_VARIANT = "geometry"
-#: The one the benchmark picked on tetrahedra: ``edges``, the fastest product (faster
-#: than scipy's CSR product on one thread, cuboid(60, 60, 60)) with a setup of a few
-#: tens of products, storing under half of the CSR matrix; ``geometry`` stores nothing
-#: but recomputes six tetrahedra per point at every product (docs/matrix-free.md).
+#: The one the benchmark picked on tetrahedra: ``edges``, the fastest product, whose
+#: setup pays for itself within one solve, storing under half of the CSR matrix;
+#: ``geometry`` stores nothing but recomputes six tetrahedra per point at every
+#: product, several times slower (docs/matrix-free.md has the figures).
 DEFAULT_VARIANT_3D = "edges"
 
 
