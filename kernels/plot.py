@@ -134,8 +134,9 @@ def plane_section(mesh, u, axis, value):
     triangles) whose corners lie on its edges; ``u`` is interpolated linearly
     along those edges, so the section of a P1 field is itself P1 on the
     returned triangles.  A point of the mesh on the plane counts as above it,
-    so a face lying in the plane is taken once (from the cell below it) and
-    corners that coincide are merged.
+    so a face lying in the plane is taken once (from the cell below it; on
+    the mesh's lowest face, where no cell lies below, from the cell above)
+    and corners that coincide are merged.
 
     Returns
     -------
@@ -163,13 +164,16 @@ def plane_section(mesh, u, axis, value):
         raise InputError(f"plane_section needs a tetrahedral mesh and one value per point; got a "
                          f"{mesh.dim}-D mesh and u of shape {u.shape}")
     x = mesh.points
-    below = x[:, axis] < value
     cells = mesh.cells
-    n_below = below[cells].sum(axis=1)
-    cut = cells[(n_below > 0) & (n_below < 4)].astype(np.int64)
-    if cut.size == 0:
+    for below in (x[:, axis] < value, x[:, axis] <= value):  # the second: the lowest face
+        n_below = below[cells].sum(axis=1)
+        crossing = (n_below > 0) & (n_below < 4)
+        if crossing.any():
+            break
+    else:
         raise InputError(f"the plane x[{axis}] = {value!r} does not cut the mesh")
-    nb = n_below[(n_below > 0) & (n_below < 4)]
+    cut = cells[crossing].astype(np.int64)
+    nb = n_below[crossing]
     cut = np.take_along_axis(cut, np.argsort(~below[cut], axis=1, kind="stable"), axis=1)
     # corners as (below point, above point) edges, in cyclic order round the piece
     pieces = []
@@ -182,7 +186,9 @@ def plane_section(mesh, u, axis, value):
     ends = np.concatenate(pieces).reshape(-1, 2)  # (3 t, 2): below and above point of a corner
     p, q = ends[:, 0], ends[:, 1]
     t = (value - x[p, axis]) / (x[q, axis] - x[p, axis])
-    key = np.where(t == 1.0, q * len(x) + q, p * len(x) + q)  # a corner on a point: that point
+    key = p * len(x) + q
+    key[t == 1.0] = q[t == 1.0] * (len(x) + 1)  # a corner on a point of the mesh: that point
+    key[t == 0.0] = p[t == 0.0] * (len(x) + 1)
     keys, first, corner = np.unique(key, return_index=True, return_inverse=True)
     p, q, t = p[first], q[first], t[first]
     other = [a for a in range(3) if a != axis]

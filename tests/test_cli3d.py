@@ -2,6 +2,7 @@
 user runs them (in a subprocess, on small meshes), with checks from outside the project."""
 
 import errno
+import functools
 import json
 import os
 import subprocess
@@ -10,6 +11,8 @@ import sys
 import numpy as np
 import pytest
 from conftest import EPS
+from hypothesis import given
+from hypothesis import strategies as st
 from test_cli import SOLVE_FILES, error_line, listing, png_size, run, start
 
 import hatkernels
@@ -236,11 +239,13 @@ def test_a_full_disk_while_writing_the_vtu(tmp_path, monkeypatch, capsys):
 # -- the section picture -------------------------------------------------------------------
 
 
-@pytest.mark.parametrize("z", [0.006, 0.005, 0.008], ids=["on-a-layer", "between", "top"])
+@pytest.mark.parametrize("z", [0.006, 0.005, 0.008, 0.0],
+                         ids=["on-a-layer", "between", "top", "bottom"])
 def test_plane_section_is_exact_for_linear_fields(z):
     # A linear field's section is the same linear function, and the section of the block
     # covers its 64 mm x 48 mm cross-section once (common practice, no source); on 2 mm
-    # cubes z = 6 mm is a layer of points, 5 mm lies between layers, 8 mm is the top face.
+    # cubes z = 6 mm is a layer of points, 5 mm lies between layers, 8 mm is the top face
+    # and 0 the bottom (the cooled face).
     mesh = heat_spreader_block(refine=1).mesh
     x = mesh.points
     f = 1.0 + 2.0 * x[:, 0] - 3.0 * x[:, 1] + 5.0 * x[:, 2]
@@ -250,6 +255,31 @@ def test_plane_section_is_exact_for_linear_fields(z):
     area = 0.5 * np.abs(e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0])
     assert area.sum() == pytest.approx(L * W, rel=1e3 * EPS, abs=0)
     assert len(np.unique(np.round(xy / 1e-9), axis=0)) == len(xy)  # corners merged
+
+
+@functools.lru_cache(maxsize=1)
+def _block_mesh():
+    return heat_spreader_block(refine=1).mesh
+
+
+@given(axis=st.sampled_from([0, 1, 2]), where=st.floats(0.0, 1.0, exclude_min=True),
+       a=st.floats(-10, 10), b=st.floats(-10, 10), c=st.floats(-10, 10))
+def test_plane_section_of_any_plane_and_linear_field(axis, where, a, b, c):
+    # any axis plane inside the block (its upper face included): the section of a linear
+    # field is that field, and the pieces cover the block's cross-section once (common
+    # practice, no source)
+    mesh = _block_mesh()
+    size = (L, W, H)
+    value = where * size[axis]
+    x = mesh.points
+    xy, tri, v = plane_section(mesh, a * x[:, 0] + b * x[:, 1] + c * x[:, 2], axis, value)
+    coef = [a, b, c]
+    other = [k for k in range(3) if k != axis]
+    expected = coef[axis] * value + coef[other[0]] * xy[:, 0] + coef[other[1]] * xy[:, 1]
+    assert np.abs(v - expected).max() <= 64 * EPS * (abs(a) + abs(b) + abs(c) + 1) * L
+    e1, e2 = xy[tri[:, 1]] - xy[tri[:, 0]], xy[tri[:, 2]] - xy[tri[:, 0]]
+    area = 0.5 * np.abs(e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0])
+    assert area.sum() == pytest.approx(size[other[0]] * size[other[1]], rel=1e3 * EPS, abs=0)
 
 
 def test_plane_section_refuses_a_plane_outside():
@@ -278,7 +308,7 @@ def test_tetrahedral_mesh_file_against_the_ball(tmp_path):
         points, tets, u = saved["points"], saved["tetrahedra"], saved["u"]
     assert np.array_equal(points, mesh.points) and np.array_equal(tets, mesh.cells)
     exact = G + Q * (1.0 - (points**2).sum(axis=1)) / (6 * k)
-    assert np.abs(u - exact).max() < 0.05 * (exact.max() - G)  # 4 cubes to the radius
+    assert np.abs(u - exact).max() < 0.05 * (exact.max() - G)  # 4 cubes to the radius: 0.026
     direct = hatkernels.solve_poisson(mesh, Q, dirichlet=G, coefficient=k, rtol=1e-10)
     assert np.abs(u - direct.u).max() <= 1e-9 * np.abs(direct.u).max()
     summary = json.loads((out / "summary.json").read_text())
