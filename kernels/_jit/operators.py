@@ -75,6 +75,15 @@ def _zero(y):
 
 
 @jit(parallel=True)
+def masked_copy(x, fixed, out):
+    """``out = x`` with ``out[fixed] = 0``."""
+    for i in prange(x.size):
+        out[i] = x[i]
+    for k in prange(fixed.size):
+        out[fixed[k]] = 0.0
+
+
+@jit(parallel=True)
 def identity_rows(fixed, x, y):
     """``y[fixed] = x[fixed]``."""
     for k in prange(fixed.size):
