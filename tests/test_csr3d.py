@@ -92,3 +92,19 @@ def test_one_and_two_threads_give_the_same_bits(kind):
             out.append(assemble_stiffness(mesh, coef))
     assert np.array_equal(out[0].data, out[1].data)
     assert np.array_equal(out[0].indices, out[1].indices)
+
+
+@pytest.mark.parametrize("kind", ["constant", "cell"])
+def test_load_kernel_equals_the_element_values(delaunay, kind):
+    # the one-pass kernel against the bincount of the element load vectors |T| f / 4
+    from hatkernels.assembly.elements import tetrahedron_load_values
+    from hatkernels.coefficients import parse_coefficient
+
+    f = 2.5 if kind == "constant" else 1.0 + np.arange(delaunay.n_cells) / delaunay.n_cells
+    b = hatkernels.assemble_load(delaunay, f)
+    coef = parse_coefficient(f, delaunay, name="load", sign="any")
+    v = tetrahedron_load_values(delaunay.points, delaunay.cells, delaunay.volumes(), coef)
+    plain = np.bincount(delaunay.cells.ravel(), weights=v.ravel(), minlength=delaunay.n_points)
+    assert np.abs(b - plain).max() <= 16 * EPS * np.abs(plain).max()
+    # the integral of f over the unit cube (common practice, no source)
+    assert b.sum() == pytest.approx(float(np.sum(delaunay.volumes() * f)), rel=64 * EPS, abs=0)

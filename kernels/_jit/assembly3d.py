@@ -138,3 +138,20 @@ def gather_edges(indptr, ptr, codes, slots, values, data):
                     data[uint64(slots[u, b])] += v
                     diag -= v
             data[uint64(slots[u, a])] += diag
+
+
+@jit()
+def load_per_tetrahedron(points, cells, value, vs, out):
+    """``out_i = sum over tetrahedra T of i of |T| value_T / 4`` (serial, in cell order).
+
+    ``value[t * vs]`` is cell ``t``'s value (``vs = 0``: one value for all).
+    The plain version is ``np.bincount`` of the element values
+    (:func:`hatkernels.assembly.elements.tetrahedron_load_values`); this one
+    needs no (M,) or (M, 4) temporaries.
+    """
+    out[:] = 0.0
+    for t in range(cells.shape[0]):
+        det, _, _, _, _, _, _, _, _, _, _, _, _ = _normals(points, cells, t)
+        v = (abs(det) / 6.0) * (value[t * vs] / 4.0)
+        for a in range(4):
+            out[cells[t, a]] += v

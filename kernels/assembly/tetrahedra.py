@@ -37,6 +37,7 @@ from hatkernels.assembly.elements import (
 )
 from hatkernels.errors import InputError
 from hatkernels.geometry import element_gradients
+from hatkernels.mesh import tetrahedra as _tet
 
 __all__ = ["TetrahedronAssembly"]
 
@@ -75,6 +76,13 @@ class TetrahedronAssembly:
         self.strategy = strategy
         self._geometry = None
         self._dofs = None
+
+    def volumes(self):
+        """Cell volumes (M,): from :meth:`geometry` when it is there, else without the
+        gradients (8 bytes per cell instead of 104)."""
+        if self._geometry is not None:
+            return self._geometry[0]
+        return np.abs(_tet.six_volumes(self.mesh.points, self.mesh.cells)) / 6.0
 
     def geometry(self):
         """``(volumes (M,), gradients (M, 4, 3))``, computed on first use."""
@@ -130,12 +138,12 @@ class TetrahedronAssembly:
         return data
 
     def mass(self, coef, quadrature):
-        volumes, _ = self.geometry()
+        volumes = self.volumes()
         return self._matrix(tetrahedron_mass_values(self.mesh.points, self.mesh.cells, volumes,
                                                     coef, quadrature))
 
     def lumped(self, coef, quadrature):
-        volumes, _ = self.geometry()
+        volumes = self.volumes()
         values = tetrahedron_lumped_values(self.mesh.points, self.mesh.cells, volumes, coef,
                                            quadrature)
         diag = np.bincount(self.mesh.cells.ravel(), weights=values.ravel(),
@@ -143,7 +151,15 @@ class TetrahedronAssembly:
         return sp.csr_matrix(sp.diags(diag, format="csr"))
 
     def load(self, coef, quadrature):
-        volumes, _ = self.geometry()
+        m = self.mesh
+        if coef.kind in ("constant", "cell"):
+            # the same value at the four vertices: one pass, no (M,) temporaries
+            value = np.ascontiguousarray(np.atleast_1d(coef.value), dtype=np.float64)
+            out = np.empty(m.n_points)
+            _jit3d.load_per_tetrahedron(m.points, m.cells, value,
+                                        0 if coef.kind == "constant" else 1, out)
+            return out
+        volumes = self.volumes()
         values = tetrahedron_load_values(self.mesh.points, self.mesh.cells, volumes, coef,
                                          quadrature)
         return np.bincount(self.mesh.cells.ravel(), weights=values.ravel(),
