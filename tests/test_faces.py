@@ -301,3 +301,20 @@ def test_bad_boundary_data_on_faces_say_face():
         hatkernels.assemble_boundary_mass(mesh, hatkernels.per_edge(r))
     with pytest.raises(hatkernels.InputError, match=r"a quadrature point of face \d+"):
         hatkernels.assemble_boundary_load(mesh, lambda x, y, z: np.where(x > 0.9, np.nan, 1.0))
+
+
+def test_interior_faces_are_faces_too_and_refined_meshes_need_no_face_list():
+    # a refined mesh checks faces on its boundary against the faces carried over from the
+    # coarse mesh; an interior face is looked up in the whole face list (common practice)
+    from hatkernels.assembly.boundary_terms import check_faces
+
+    mesh = hatkernels.mesh.cuboid(2, 2, 2).refine()
+    boundary = mesh.boundary_faces()[:5]
+    assert np.array_equal(check_faces(mesh, boundary[:, ::-1]), boundary[:, ::-1])
+    assert "faces" not in mesh.cached()  # the boundary sufficed
+    inner = mesh.faces()
+    is_boundary = {tuple(sorted(f)) for f in mesh.boundary_faces().tolist()}
+    inside = np.array([f for f in inner.tolist() if tuple(f) not in is_boundary][:3])
+    assert np.array_equal(check_faces(mesh, inside), inside)
+    with pytest.raises(hatkernels.InputError, match=r"face 1 .* is not a face of the mesh"):
+        check_faces(mesh, np.array([inside[0], [0, 1, mesh.n_points - 1]]))

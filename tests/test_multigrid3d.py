@@ -107,3 +107,16 @@ def test_one_and_two_threads_give_the_same_bits(levels):
         with hatkernels.threads(n):
             out.append(solve_poisson(mesh, 1.0, preconditioner="gmg", rtol=1e-8).u)
     assert np.array_equal(out[0], out[1])
+
+
+@pytest.mark.parametrize("dim", [2, 3])
+def test_a_problem_without_held_points_is_refused_by_name(dim):
+    # gmg's levels hold the stiffness only: singular without Dirichlet points, so a
+    # Robin-only problem would break CG down; it is refused, naming what to use instead
+    mesh = (hatkernels.mesh.rectangle(4, 4) if dim == 2 else cuboid(2, 2, 2)).refine()
+    sides = mesh.boundary_edges() if dim == 2 else mesh.boundary_faces()
+    with pytest.raises(hatkernels.InputError, match="no Dirichlet points.*amg"):
+        solve_poisson(mesh, 1.0, dirichlet_on=[], robin=(sides, 2.0, 0.0),
+                      preconditioner="gmg")
+    sol = solve_poisson(mesh, 1.0, dirichlet_on=[], robin=(sides, 2.0, 0.0))
+    assert sol.converged  # the default amg solves it

@@ -168,21 +168,31 @@ def check_faces(mesh, faces):
     if same.any():
         k = int(np.flatnonzero(same)[0])
         raise InputError(f"face {k} {f[k].tolist()} repeats a point")
-    known = mesh.faces().astype(np.int64)
-    n = np.int64(mesh.n_points)
-    # (rank of the leading pair) * n + third point: fits int64 where i * n * n would not
-    pair = known[:, 0] * n + known[:, 1]
-    pairs = np.unique(pair)
-    key = np.searchsorted(pairs, pair) * n + known[:, 2]
-    want_pair = s[:, 0] * n + s[:, 1]
-    at = np.minimum(np.searchsorted(pairs, want_pair), len(pairs) - 1)
-    want = at * n + s[:, 2]
-    pos = np.minimum(np.searchsorted(key, want), len(key) - 1)
-    missing = (pairs[at] != want_pair) | (key[pos] != want)
+    # boundary faces first (a refined mesh has them without its whole face list),
+    # then, for any face left, every face of the mesh
+    missing = _not_among(np.sort(mesh.boundary_faces(), axis=1), s, mesh.n_points)
+    if missing.any():
+        rest = np.flatnonzero(missing)
+        missing[rest] = _not_among(mesh.faces(), s[rest], mesh.n_points)
     if missing.any():
         k = int(np.flatnonzero(missing)[0])
         raise InputError(f"face {k} {tuple(f[k].tolist())} is not a face of the mesh")
     return f
+
+
+def _not_among(known, want, n_points):
+    """Whether each sorted triple of ``want`` is missing from the sorted triples ``known``."""
+    known = known.astype(np.int64)
+    n = np.int64(n_points)
+    # (rank of the leading pair) * n + third point: fits int64 where i * n * n would not
+    pair = known[:, 0] * n + known[:, 1]
+    pairs = np.unique(pair)
+    key = np.sort(np.searchsorted(pairs, pair) * n + known[:, 2])
+    want_pair = want[:, 0] * n + want[:, 1]
+    at = np.minimum(np.searchsorted(pairs, want_pair), len(pairs) - 1)
+    target = at * n + want[:, 2]
+    pos = np.minimum(np.searchsorted(key, target), len(key) - 1)
+    return (pairs[at] != want_pair) | (key[pos] != target)
 
 
 def _areas(mesh, f):

@@ -293,6 +293,12 @@ class GeometricMultigrid(Preconditioner):
         lower = real_option(lower, "gmg: lower", between=(0, 1))
         n = mesh.n_points
         fixed = self._fixed(mesh, dirichlet)
+        if fixed.size == mesh.unused_points().size:
+            raise InputError(
+                "gmg: the problem holds no point at a given value (no Dirichlet points); gmg's "
+                "levels carry the stiffness alone, which is singular then (Robin, flux and "
+                "reaction terms are not in its levels): use preconditioner='amg'"
+            )
         free = index_complement(n, fixed)
         if A.shape[0] == n:
             self._free = None
