@@ -440,3 +440,32 @@ def test_random_element_arrays_work_or_are_named(shape, poison, kind, seed):
         else:
             assert tuple(shape) == good and kind not in ("complex", "object")
             assert np.isfinite(values).all()
+
+
+@pytest.mark.parametrize("which", sorted(P2_MESHES))
+def test_row_gather_for_tables_beyond_64_colours_agrees(which):
+    # a table whose cells need more than 64 colours falls back to the row gather; both
+    # paths against scipy's triplets (reference library), each symmetric to the bit
+    import dataclasses
+
+    mesh = P2_MESHES[which]()
+    cells, _, K, coords = p2_setup(mesh)
+    assembler = DofAssembler(cells)
+    assert assembler.plan.colour_ptr is not None  # a numbered mesh: few colours
+    scattered = assembler.matrix(K)
+    assembler._plan = dataclasses.replace(assembler.plan, colour_ptr=None, blocks=None)
+    gathered = assembler.matrix(K)
+    for A in (scattered, gathered):
+        assert_close(A, triplets(cells, K, len(coords)))
+        assert (A != A.T).nnz == 0
+
+
+def test_a_table_with_no_locality_needs_the_row_gather():
+    # cells in random order over few dofs: every block touches every dof's neighbourhood,
+    # more than 64 colours; the plan says so and the gather still agrees with scipy
+    rng = np.random.default_rng(3)
+    cells = np.array([rng.choice(200, size=3, replace=False) for _ in range(40_000)])
+    assembler = DofAssembler(cells, 200)
+    assert assembler.plan.colour_ptr is None
+    K = rng.random((len(cells), 3, 3))
+    assert_close(assembler.matrix(K), triplets(cells, K, 200))

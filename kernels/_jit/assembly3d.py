@@ -135,9 +135,9 @@ def gather_edges(indptr, ptr, codes, slots, values, data):
             for b in range(4):
                 if b != a:
                     v = values[t, EDGE[a, b]]
-                    data[uint64(slots[u, b])] += v
+                    data[uint64(slots[q, b])] += v
                     diag -= v
-            data[uint64(slots[u, a])] += diag
+            data[uint64(slots[q, a])] += diag
 
 
 @jit()

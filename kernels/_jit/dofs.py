@@ -110,9 +110,10 @@ def pattern_scratch(cells, ptr, codes, scratch, counts):
 def pattern_fill(cells, ptr, codes, scratch, indptr, indices, slots):
     """Copy the rows from the scratch array into CSR ``indices``; the slot plan.
 
-    ``slots[e, b]`` (shape (M*k, k)) is the position in ``indices`` of
-    entry ``(i, cells[t, b])`` for incidence ``e`` of dof ``i`` in cell ``t``.
-    Each row is written only by its own iteration.
+    ``slots[k t + a, b]`` (shape (M*k, k), in cell order) is the position in
+    ``indices`` of entry ``(cells[t, a], cells[t, b])``: for incidence ``e``
+    of dof ``i``, row ``codes[e]``.  Each row ``i`` writes only the slots of
+    its own incidences.
     """
     k = cells.shape[1]
     n = ptr.size - 1
@@ -124,15 +125,17 @@ def pattern_fill(cells, ptr, codes, scratch, indptr, indices, slots):
             indices[start + r] = scratch[src + r]
         diag = _find(indices, start, end, i) if end > start else start
         for e in range(ptr[i], ptr[i + 1]):
-            t = codes[e] // k
-            a = codes[e] - k * t
+            q = codes[e]
+            t = q // k
+            a = q - k * t
             for b in range(k):
-                slots[e, b] = diag if b == a else _find(indices, start, end, cells[t, b])
+                slots[q, b] = diag if b == a else _find(indices, start, end, cells[t, b])
 
 
 @jit(parallel=True)
 def gather_matrix(indptr, ptr, codes, slots, element_matrices, data):
-    """Fill CSR ``data`` from element matrices (M, k, k), one row per iteration.
+    """Fill CSR ``data`` from element matrices (M, k, k), one row per iteration (the plain
+    version of :func:`scatter_matrix`, and the path for tables needing > 64 colours).
 
     Row ``i`` walks its incidences in cell order and adds row ``a`` of each
     cell's matrix into its slots: every entry gets its terms in increasing
@@ -151,7 +154,36 @@ def gather_matrix(indptr, ptr, codes, slots, element_matrices, data):
             t = q // k
             a = q - k * t
             for b in range(k):
-                data[uint64(slots[u, b])] += element_matrices[t, a, b]
+                data[uint64(slots[q, b])] += element_matrices[t, a, b]
+
+
+@jit(parallel=True)
+def scatter_matrix(slots, element_matrices, block_size, colour_ptr, blocks, data):
+    """Fill CSR ``data`` from element matrices (M, k, k) by coloured blocks of cells.
+
+    Blocks of ``block_size`` consecutive cells run in parallel within a
+    colour (two blocks of one colour share no dof, so no two threads write
+    one entry), colour after colour; each block adds its cells' matrices in
+    cell order.  Every entry gets its terms in an order fixed by the table
+    (colour, block, cell), whatever the thread count; ``(i, j)`` and
+    ``(j, i)`` get theirs from the same cells in the same order, so
+    symmetric element matrices give a matrix symmetric to the last bit.
+    Reads the element matrices and the slots once, in order.
+    """
+    m = uint64(element_matrices.shape[0])
+    k = uint64(element_matrices.shape[1])
+    bs = uint64(block_size)
+    for s in prange(data.size):
+        data[s] = 0.0
+    for c in range(colour_ptr.size - 1):
+        for j in prange(colour_ptr[c], colour_ptr[c + 1]):
+            b = uint64(blocks[j])
+            stop = min(m, (b + uint64(1)) * bs)
+            for t in range(b * bs, stop):
+                for a in range(k):
+                    r = t * k + a
+                    for q in range(k):
+                        data[uint64(slots[r, q])] += element_matrices[t, a, q]
 
 
 @jit(parallel=True)

@@ -17,10 +17,14 @@ import numpy as np
 import scipy.sparse as sp
 
 from hatkernels._jit import dofs as _jit_dofs
+from hatkernels._jit.operators import colour_blocks as _jit_colour_blocks
 from hatkernels.errors import InputError
 from hatkernels.mesh import core_index
 
 __all__ = ["DofAssembler", "DofPlan"]
+
+#: Cells per block of the colouring the matrix scatter runs through.
+BLOCK_CELLS = 512
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
@@ -29,10 +33,12 @@ class DofPlan:
 
     For dof ``i`` and each cell ``t`` that holds it at local position ``a``,
     incidence ``e`` in ``ptr[i]:ptr[i+1]`` has code ``codes[e] = k t + a``
-    (in increasing ``t``), and ``slots[e, b]`` is the position in the CSR
-    data of entry ``(i, cell_dofs[t, b])``.  All index arrays share one
-    dtype: int32 while the dofs, incidences and stored entries fit, int64
-    beyond.
+    (in increasing ``t``), and ``slots[k t + a, b]`` (cell order) is the
+    position in the CSR data of entry ``(cell_dofs[t, a], cell_dofs[t, b])``.
+    All index arrays share one dtype: int32 while the dofs, incidences and
+    stored entries fit, int64 beyond.  ``colour_ptr`` and ``blocks`` colour
+    blocks of ``block_size`` consecutive cells so that two blocks of one
+    colour share no dof (None when more than 64 colours would be needed).
     """
 
     n: int
@@ -42,6 +48,9 @@ class DofPlan:
     ptr: np.ndarray
     codes: np.ndarray
     slots: np.ndarray
+    block_size: int = 0
+    colour_ptr: np.ndarray | None = None
+    blocks: np.ndarray | None = None
 
     @property
     def nnz(self):
@@ -53,7 +62,9 @@ class DofPlan:
 
     @property
     def nbytes(self):
-        return sum(a.nbytes for a in (self.indptr, self.indices, self.ptr, self.codes, self.slots))
+        arrays = (self.indptr, self.indices, self.ptr, self.codes, self.slots,
+                  self.colour_ptr, self.blocks)
+        return sum(a.nbytes for a in arrays if a is not None)
 
     def matrix(self, data):
         """Canonical scipy CSR on this pattern with ``data`` (not copied) and its own index arrays.
@@ -158,7 +169,14 @@ def build_dof_plan(cells, n):
     indices = np.empty(nnz, dtype=dt)
     slots = np.empty((m * k, k), dtype=dt)
     _jit_dofs.pattern_fill(cells, ptr, codes, scratch, indptr, indices, slots)
-    return DofPlan(n, k, indptr, indices, ptr, codes, slots)
+    del scratch
+    colour = _jit_colour_blocks(cells, n, BLOCK_CELLS)
+    colour_ptr = blocks = None
+    if not (colour.size and colour[0] < 0):
+        blocks = np.argsort(colour, kind="stable").astype(np.int64)
+        colour_ptr = np.zeros(int(colour.max(initial=-1)) + 2, dtype=np.int64)
+        np.cumsum(np.bincount(colour), out=colour_ptr[1:])
+    return DofPlan(n, k, indptr, indices, ptr, codes, slots, BLOCK_CELLS, colour_ptr, blocks)
 
 
 def _element_array(values, shape, name):
@@ -206,9 +224,11 @@ class DofAssembler:
 
     The caller computes the element matrices (any element, any number ``k``
     of degrees of freedom per cell); this class adds them up.  The table is
-    validated and the CSR pattern and slot plan are built once, here; each
-    :meth:`matrix` or :meth:`vector` call then runs only a parallel,
-    row-owned gather: race-free, with the same bits for any thread count.
+    validated and the CSR pattern, slot plan and a colouring of blocks of
+    cells are built once, here; each :meth:`matrix` call then runs only a
+    parallel scatter by coloured blocks (or, for a table needing more than
+    64 colours, a row-owned gather), each :meth:`vector` call a row-owned
+    gather: race-free, with the same bits for any thread count.
 
     Parameters
     ----------
@@ -279,7 +299,12 @@ class DofAssembler:
             element_matrices, (self.n_cells, pl.k, pl.k), "element_matrices"
         )
         data = np.empty(pl.nnz)
-        _jit_dofs.gather_matrix(pl.indptr, pl.ptr, pl.codes, pl.slots, K, data)
+        if pl.colour_ptr is not None:
+            # coloured blocks of cells: each element matrix and its slots read once, in
+            # order (measured about twice as fast as the row gather on tetrahedra)
+            _jit_dofs.scatter_matrix(pl.slots, K, pl.block_size, pl.colour_ptr, pl.blocks, data)
+        else:
+            _jit_dofs.gather_matrix(pl.indptr, pl.ptr, pl.codes, pl.slots, K, data)
         _refuse_overflow(data, pl)
         return pl.matrix(data)
 
