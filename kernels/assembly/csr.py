@@ -13,17 +13,17 @@ from hatkernels.coefficients import triangle_means
 class KernelCoefficient(NamedTuple):
     """A stiffness coefficient as the raw kernels take it, in their argument order.
 
-    Triangle ``t`` uses ``kappa[t * kappa_step]`` and, when ``tensor`` is not
-    empty, the 2x2 matrix ``tensor[t * tensor_step]``: a step of 0 is one value
-    for every triangle, 1 a value per triangle.  Pass it to a kernel as
+    Cell ``t`` (triangle, d = 2, or tetrahedron, d = 3) uses ``kappa[t * kappa_step]``
+    and, when ``tensor`` is not empty, the d x d matrix ``tensor[t * tensor_step]``:
+    a step of 0 is one value for every cell, 1 a value per cell.  Pass it to a kernel as
     ``*coefficient``; everywhere else use the names.
 
     Attributes
     ----------
-    kappa : ndarray, shape (1,) or (n_triangles,)
+    kappa : ndarray, shape (1,) or (n_cells,)
         The scalar coefficient (ones for a tensor coefficient).
     kappa_step : int
-    tensor : ndarray, shape (0, 2, 2), (1, 2, 2) or (n_triangles, 2, 2)
+    tensor : ndarray, shape (0, d, d), (1, d, d) or (n_cells, d, d)
         Empty for a scalar coefficient.
     tensor_step : int
     """
