@@ -107,8 +107,8 @@ def load(paths):
     return entries, runs, skipped
 
 
-def load_huge(path):
-    """The ``--json`` output of bench/huge_solve.py."""
+def load_huge(path, cells="triangles"):
+    """The ``--json`` output of bench/huge_solve.py (``cells``: its count's key)."""
     try:
         with open(path, encoding="utf-8") as f:
             data = json.load(f)
@@ -116,7 +116,7 @@ def load_huge(path):
         raise ReportError(f"cannot read {path}: {exc.strerror or exc}") from None
     except json.JSONDecodeError as exc:
         raise ReportError(f"{path} is not JSON (line {exc.lineno}: {exc.msg})") from None
-    need = ("triangles", "points", "phases", "iterations", "peak_rss_GiB")
+    need = (cells, "points", "phases", "iterations", "peak_rss_GiB")
     if not isinstance(data, dict) or any(k not in data for k in need):
         raise ReportError(f"{path} is not bench/huge_solve.py --json output (needs {', '.join(need)})")
     return data
@@ -129,7 +129,7 @@ def _i(e, key, default=None):
 
 def _match_key(e):
     kind = _i(e, "kind")
-    mesh = _i(e, "mesh") if kind == "product" else None
+    mesh = _i(e, "mesh") if kind in ("product", "product-3d") else None
     return (kind, _i(e, "operation"), _i(e, "n_triangles"), _i(e, "n_points"), mesh)
 
 
@@ -852,13 +852,83 @@ _TET_TITLES = {
 }
 
 
-def tetrahedra_tables(ix):
-    """One table per (kind, operation) of the 3-D benchmarks."""
+def _largest(ix, kind, method, operation=None, **match):
+    """The entry of ``method`` at the largest number of tetrahedra (most threads)."""
+    es = [e for e in ix.select(kind, operation, method, **match) if _i(e, "n_tetrahedra")]
+    return max(es, key=lambda e: _i(e, "n_tetrahedra")) if es else None
+
+
+def targets_3d(ix, huge3d=None):
+    """The tetrahedra issue's targets against the 3-D entries (and huge_solve.py --dim 3)."""
+    rows = []
+    for op, plain, fast, need, label in (
+            ("stiffness-3d", "triplets", "csr", 20, "csr numeric ≥ 20× faster than triplets"),
+            ("element-matrices", "coo", "dofs", 10,
+             "generic element path (DofAssembler) ≥ 10× faster than scipy's COO route")):
+        e = _largest(ix, "assembly", fast, op)
+        b = None if e is None else ix.baseline(e, plain)
+        if e is None or b is None:
+            rows.append([label, "not measured in these files", "not measured"])
+            continue
+        r = b["time"] / e["time"]
+        rows.append([label + f" ({fmt_int(_i(e, 'n_tetrahedra'))} tetrahedra)",
+                     f"{fmt_time(e['time'])} against {fmt_time(b['time'])}: {fmt_ratio(r)}",
+                     _verdict(r >= need)])
+    # matrix-free: as fast as scipy's product, storing at most a third of its bytes
+    label = "a matrix-free variant ≥ scipy's CSR product in speed, ≤ 1/3 of its bytes"
+    sc = _largest(ix, "product-3d", "scipy", mesh="cuboid")
+    if sc is None:
+        rows.append([label, "not measured in these files", "not measured"])
+    else:
+        nt = _i(sc, "n_tetrahedra")
+        texts, ok = [], False
+        for v in ("geometry", "factors", "edges"):
+            es = [e for e in ix.select("product-3d", method=v, mesh="cuboid")
+                  if _i(e, "n_tetrahedra") == nt]
+            if not es:
+                continue
+            e = min(es, key=lambda e: e["time"])
+            share = _i(e, "stored_bytes") / max(1, _i(sc, "stored_bytes"))
+            faster = sc["time"] / e["time"]
+            ok = ok or (faster >= 1 and share <= 1 / 3)
+            texts.append(f"`{v}` {fmt_ratio(faster)} scipy's speed at {share:.2f} of its bytes")
+        rows.append([label + f" ({fmt_int(nt)} tetrahedra)", "; ".join(texts), _verdict(ok)])
+    # whole solves at about a million unknowns
+    label = "default pipeline ≥ 5× faster end to end than PyAMG used plainly (~10^6 unknowns)"
+    a = _largest(ix, "solve", "amg")
+    p = None if a is None else ix.baseline(a, "pyamg-rs")
+    if a is None or p is None:
+        rows.append([label, "not measured in these files", "not measured"])
+    else:
+        r = p["time"] / a["time"]
+        g = ix.baseline(a, "gmg")
+        extra = "" if g is None else f"; gmg {fmt_time(g['time'])} ({fmt_ratio(p['time'] / g['time'])})"
+        rows.append([label + f" ({fmt_int(_i(a, 'unknowns'))} unknowns)",
+                     f"amg {fmt_time(a['time'])} against pyamg-rs {fmt_time(p['time'])}: "
+                     f"{fmt_ratio(r)}{extra}", _verdict(r >= 5)])
+    label = "10^8-tetrahedron solve (refined, gmg, matrix-free) within 24 GiB"
+    if huge3d is None:
+        rows.append([label, "bench/huge_solve.py --dim 3 is run apart; pass --huge3d",
+                     "not measured"])
+    else:
+        phases = huge3d["phases"]
+        rows.append([label, f"{huge3d['tetrahedra']:,} tetrahedra, {huge3d['points']:,} points: "
+                     f"peak {huge3d['peak_rss_GiB']:.1f} GiB, {huge3d['iterations']} iterations; "
+                     f"mesh {phases['mesh']:.1f} s, assemble {phases['assemble']:.1f} s, setup "
+                     f"{phases['setup']:.1f} s, solve {phases['solve']:.1f} s",
+                     _verdict(huge3d["peak_rss_GiB"] <= 24 and huge3d["converged"])])
+    return rows
+
+
+def tetrahedra_tables(ix, huge3d=None):
+    """The 3-D targets, then one table per (kind, operation) of the 3-D benchmarks."""
     groups = defaultdict(list)
     for e in ix.entries:
         groups[(_i(e, "kind"), _i(e, "operation"))].append(e)
-    parts = []
-    for key in sorted(groups, key=lambda k: (k[0] != "assembly", k[0] != "product", k)):
+    if not ix.entries and huge3d is None:
+        return ""
+    parts = ["**Targets on tetrahedra**\n\n" + targets_table(targets_3d(ix, huge3d))]
+    for key in sorted(groups, key=lambda k: (k[0] != "assembly", k[0] != "product-3d", k)):
         es = sorted(groups[key], key=lambda e: (_i(e, "n_tetrahedra") or 0,
                                                 _order(key[0], _i(e, "method")),
                                                 _i(e, "threads") or 0))
@@ -866,8 +936,9 @@ def tetrahedra_tables(ix):
         for e in es:
             nt = _i(e, "n_tetrahedra")
             stored = _i(e, "stored_bytes")
+            where = f" ({_i(e, 'mesh')})" if _i(e, "mesh") else ""
             rows.append([
-                fmt_int(nt), fmt_int(_i(e, "n_points")), f"`{_i(e, 'method')}`",
+                fmt_int(nt), fmt_int(_i(e, "n_points")), f"`{_i(e, 'method')}`{where}",
                 _i(e, "threads", "—"), fmt_time(e["time"]),
                 "1 (plain)" if _i(e, "plain") else fmt_ratio(ix.ratio(e)),
                 fmt_int(_i(e, "iterations")) if key[0] == "solve" else
@@ -885,7 +956,7 @@ def tetrahedra_tables(ix):
     return "\n\n".join(parts)
 
 
-def render(entries, runs, skipped, images_rel=None, image_names=(), huge=None):
+def render(entries, runs, skipped, images_rel=None, image_names=(), huge=None, huge3d=None):
     ix = Index([e for e in entries if not is_3d(e)])
     ix3 = Index([e for e in entries if is_3d(e)])
     parts = [BEGIN, "",
@@ -902,7 +973,7 @@ def render(entries, runs, skipped, images_rel=None, image_names=(), huge=None):
                 ("### Whole solves", solve_tables(ix)),
                 ("### Thread scaling", thread_table(ix)),
                 ("### Refinement and first calls", other_tables(ix)),
-                ("### Tetrahedra", tetrahedra_tables(ix3))]
+                ("### Tetrahedra", tetrahedra_tables(ix3, huge3d))]
     for title, body in sections:
         if body:
             parts += [title, "", body, ""]
@@ -966,10 +1037,12 @@ def main(argv=None):
                    help="markdown file whose generated section is replaced (created if missing)")
     p.add_argument("--images", help="directory for the perf-*.png plots (none if left out)")
     p.add_argument("--huge", help="bench/huge_solve.py --json output, for its target")
+    p.add_argument("--huge3d", help="bench/huge_solve.py --dim 3 --json output, for its target")
     args = p.parse_args(argv)
     try:
         entries, runs, skipped = load(args.files)
         huge = load_huge(args.huge) if args.huge else None
+        huge3d = load_huge(args.huge3d, "tetrahedra") if args.huge3d else None
         pngs = {}
         rel = None
         if args.images:
@@ -981,7 +1054,7 @@ def main(argv=None):
         out_dir = os.path.dirname(os.path.abspath(args.out))
         if not os.path.isdir(out_dir):
             raise ReportError(f"--out {args.out}: directory {out_dir} does not exist")
-        section = render(entries, runs, skipped, rel, sorted(pngs), huge)
+        section = render(entries, runs, skipped, rel, sorted(pngs), huge, huge3d)
         text = merged_markdown(args.out, section)
     except ReportError as exc:
         print(f"report: error: {exc}", file=sys.stderr)
