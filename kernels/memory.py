@@ -21,8 +21,9 @@ and gmg at 241 (1.5 times its 2-D 160).  The 3-D estimate is therefore
 ``max(1.5 x the 2-D figure, THREE_D_ASSEMBLED)`` for a preconditioner that
 needs the matrix and 1.5 x the 2-D figure for a matrix-free one; a sparse
 direct factorisation fills in far more in 3-D (SuperLU on 103,823 unknowns:
-2.5e8 entries, about 29,000 bytes per point, growing with the size), so
-``direct`` gets :data:`THREE_D_DIRECT`.
+2.5e8 entries, about 29,000 bytes per point, growing with the size): a
+preconditioner whose 3-D figure does not follow its 2-D one states it as
+``solve_bytes_per_point_3d``.
 """
 
 from __future__ import annotations
@@ -39,10 +40,9 @@ __all__ = ["available_bytes", "solve_bytes", "check_solve_memory"]
 #: assembled pipeline's (matrix, CG vectors, right-hand side), as a floor.
 UNKNOWN_BYTES_PER_POINT = 400
 
-#: Tetrahedra: the floor of an assembled pipeline's peak per point, and the
-#: direct factorisation's (see the module docstring).
+#: Tetrahedra: the floor of an assembled pipeline's peak per point (see the
+#: module docstring).
 THREE_D_ASSEMBLED = 950
-THREE_D_DIRECT = 30_000
 
 #: The estimate's margin: measured peaks vary by a few per cent between runs
 #: and meshes; refuse only when the estimate clearly does not fit.
@@ -83,16 +83,15 @@ def available_bytes():
 def solve_bytes(mesh, preconditioner):
     """Estimated peak bytes of a ``solve_poisson`` on ``mesh`` beyond the mesh itself."""
     per_point = UNKNOWN_BYTES_PER_POINT
-    needs_matrix = True
+    needs_matrix, stated_3d = True, 0
     if isinstance(preconditioner, str) and preconditioner in PRECONDITIONERS:
         caps = capabilities(preconditioner)
         per_point = caps.solve_bytes_per_point or per_point
         needs_matrix = caps.needs_matrix and not caps.prefers_matrix_free
-        if mesh.dim == 3 and preconditioner == "direct":
-            per_point = THREE_D_DIRECT
-    if mesh.dim == 3 and per_point != THREE_D_DIRECT:
-        per_point = 1.5 * per_point
-        if needs_matrix:
+        stated_3d = caps.solve_bytes_per_point_3d
+    if mesh.dim == 3:
+        per_point = stated_3d or 1.5 * per_point
+        if needs_matrix and not stated_3d:
             per_point = max(per_point, THREE_D_ASSEMBLED)
     wide = mesh.cells.size >= 2**31 or mesh.cells.dtype.itemsize > 4
     return int(mesh.n_points * per_point * (1.5 if wide else 1.0))

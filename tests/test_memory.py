@@ -33,7 +33,9 @@ def test_tetrahedra_get_their_own_figures():
         assert per3 >= 1.5 * per2
     assert memory.solve_bytes(cube, "amg") >= memory.THREE_D_ASSEMBLED * cube.n_points
     assert memory.solve_bytes(cube, "gmg") < memory.solve_bytes(cube, "amg") / 3
-    assert memory.solve_bytes(cube, "direct") == memory.THREE_D_DIRECT * cube.n_points
+    stated = hatkernels.precond.capabilities("direct").solve_bytes_per_point_3d
+    assert stated > 10 * memory.THREE_D_ASSEMBLED  # SuperLU's fill-in in 3-D
+    assert memory.solve_bytes(cube, "direct") == stated * cube.n_points
 
 
 def test_available_memory_is_read():

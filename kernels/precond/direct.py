@@ -44,6 +44,9 @@ class SparseDirect(Preconditioner):
     #: Peak bytes per point of a whole solve with it, beyond the mesh (measured at
     #: about 1e6 unknowns, docs/performance.md; hatkernels.memory uses it).
     solve_bytes_per_point = 2900
+    #: On tetrahedra the fill-in is far larger: SuperLU on 103,823 unknowns of a cuboid
+    #: took 2.5e8 factor entries, about 29,000 bytes per point (growing with the size).
+    solve_bytes_per_point_3d = 30_000
     kind = "sparse LU factorisation (SuperLU)"
 
     def __init__(self, A, *, max_unknowns=DIRECT_LIMIT, permc_spec="MMD_AT_PLUS_A"):

@@ -19,7 +19,9 @@ matrix-free operator), ``needs_mesh`` (it needs the context's mesh, so it
 cannot act on a bare block of rows), ``is_identity`` and ``is_diagonal``
 (what it builds is the identity, or a diagonal that CG can fuse into its
 vector update); ``solve_bytes_per_point`` is the measured peak of a whole
-solve with it, per point beyond the mesh (:mod:`hatkernels.memory`).  :func:`capabilities` reads them, so that callers decide by
+solve with it, per point beyond the mesh (:mod:`hatkernels.memory`), and
+``solve_bytes_per_point_3d`` the same on tetrahedra where it does not follow
+the 2-D figure (0: it does).  :func:`capabilities` reads them, so that callers decide by
 what a preconditioner is, never by its name.
 """
 
@@ -86,6 +88,7 @@ class Capabilities:
     is_identity: bool = False
     is_diagonal: bool = False
     solve_bytes_per_point: int = 0
+    solve_bytes_per_point_3d: int = 0
 
 
 class Preconditioner(LinearOperator):
@@ -287,12 +290,13 @@ def capabilities(name):
 
     >>> capabilities("jacobi")
     Capabilities(needs_matrix=True, prefers_matrix_free=False, needs_mesh=False, \
-is_identity=False, is_diagonal=True, solve_bytes_per_point=400)
+is_identity=False, is_diagonal=True, solve_bytes_per_point=400, solve_bytes_per_point_3d=0)
     """
     factory = _factory(name)
     flags = [getattr(factory, f.name, f.default) is True
              for f in dataclasses.fields(Capabilities) if f.type in (bool, "bool")]
-    return Capabilities(*flags, int(getattr(factory, "solve_bytes_per_point", 0) or 0))
+    return Capabilities(*flags, int(getattr(factory, "solve_bytes_per_point", 0) or 0),
+                        int(getattr(factory, "solve_bytes_per_point_3d", 0) or 0))
 
 
 def make_preconditioner(A, name, *, context=None, **options):
