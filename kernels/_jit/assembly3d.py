@@ -16,6 +16,7 @@ import numpy as np
 from numba import prange, uint64
 
 from hatkernels._jit import jit
+from hatkernels._jit.geometry import tetrahedron_normals
 
 #: The edge of local vertices (a, b), a != b, in the order 01, 02, 03, 12, 13, 23 (-1 on the diagonal).
 EDGE = np.array([[-1, 0, 1, 2], [0, -1, 3, 4], [1, 3, -1, 5], [2, 4, 5, -1]], dtype=np.int64)
@@ -23,36 +24,10 @@ EDGE = np.array([[-1, 0, 1, 2], [0, -1, 3, 4], [1, 3, -1, 5], [2, 4, 5, -1]], dt
 
 @jit(inline="always")
 def _normals(points, cells, t):
-    """``det`` (six times the signed volume) and the face normals ``n_0 .. n_3`` (12 scalars).
-
-    The same algebra as :func:`hatkernels._jit.geometry.tetrahedron_gradients`:
-    with ``e_k = x_k - x_0``, the gradient of barycentric coordinate ``k`` is
-    ``n_k / det`` for the cross products below, and ``n_0 = -(n_1 + n_2 + n_3)``.
-    Scalars, not an array: an allocation per cell measured slower than the algebra.
-    """
-    i0 = cells[t, 0]
-    i1 = cells[t, 1]
-    i2 = cells[t, 2]
-    i3 = cells[t, 3]
-    ax = points[i1, 0] - points[i0, 0]
-    ay = points[i1, 1] - points[i0, 1]
-    az = points[i1, 2] - points[i0, 2]
-    bx = points[i2, 0] - points[i0, 0]
-    by = points[i2, 1] - points[i0, 1]
-    bz = points[i2, 2] - points[i0, 2]
-    cx = points[i3, 0] - points[i0, 0]
-    cy = points[i3, 1] - points[i0, 1]
-    cz = points[i3, 2] - points[i0, 2]
-    n1x = by * cz - bz * cy
-    n1y = bz * cx - bx * cz
-    n1z = bx * cy - by * cx
-    n2x = cy * az - cz * ay
-    n2y = cz * ax - cx * az
-    n2z = cx * ay - cy * ax
-    n3x = ay * bz - az * by
-    n3y = az * bx - ax * bz
-    n3z = ax * by - ay * bx
-    det = ax * n1x + ay * n1y + az * n1z
+    """``det`` and the four face normals ``n_0 .. n_3`` of cell ``t`` (13 scalars), from
+    :func:`hatkernels._jit.geometry.tetrahedron_normals`."""
+    n1x, n1y, n1z, n2x, n2y, n2z, n3x, n3y, n3z, det, _, _, _, _ = tetrahedron_normals(
+        points, cells, t)
     return (det, -(n1x + n2x + n3x), -(n1y + n2y + n3y), -(n1z + n2z + n3z),
             n1x, n1y, n1z, n2x, n2y, n2z, n3x, n3y, n3z)
 

@@ -1,7 +1,7 @@
 """Per-triangle geometry: areas and gradients of the barycentric coordinates."""
 
 import numpy as np
-from numba import prange
+from numba import prange, uint64
 
 from hatkernels._jit import jit
 
@@ -63,10 +63,8 @@ def tetrahedron_gradients(points, cells):
     grads = np.empty((m, 4, 3))
     longest = np.empty(m)
     for t in prange(m):
-        i0 = cells[t, 0]
-        i1 = cells[t, 1]
-        i2 = cells[t, 2]
-        i3 = cells[t, 3]
+        g1x, g1y, g1z, g2x, g2y, g2z, g3x, g3y, g3z, det, i0, i1, i2, i3 = (
+            tetrahedron_normals(points, cells, t))
         ax = points[i1, 0] - points[i0, 0]
         ay = points[i1, 1] - points[i0, 1]
         az = points[i1, 2] - points[i0, 2]
@@ -76,17 +74,6 @@ def tetrahedron_gradients(points, cells):
         cx = points[i3, 0] - points[i0, 0]
         cy = points[i3, 1] - points[i0, 1]
         cz = points[i3, 2] - points[i0, 2]
-        # b x c, c x a, a x b
-        g1x = by * cz - bz * cy
-        g1y = bz * cx - bx * cz
-        g1z = bx * cy - by * cx
-        g2x = cy * az - cz * ay
-        g2y = cz * ax - cx * az
-        g2z = cx * ay - cy * ax
-        g3x = ay * bz - az * by
-        g3y = az * bx - ax * bz
-        g3z = ax * by - ay * bx
-        det = ax * g1x + ay * g1y + az * g1z
         volumes[t] = abs(det) / 6.0
         grads[t, 1, 0] = g1x / det
         grads[t, 1, 1] = g1y / det
@@ -127,3 +114,29 @@ def six_signed_volumes(points, cells, out):
         cy = points[cells[t, 3], 1] - points[i0, 1]
         cz = points[cells[t, 3], 2] - points[i0, 2]
         out[t] = ax * (by * cz - bz * cy) + ay * (bz * cx - bx * cz) + az * (bx * cy - by * cx)
+
+
+@jit(inline="always")
+def tetrahedron_normals(points, cells, t):
+    """``n1, n2, n3`` (9 values), ``det`` and the four points of cell ``t``.
+
+    With ``e_k = x_k - x_0``: ``n_1 = e_2 x e_3``, ``n_2 = e_3 x e_1``, ``n_3 = e_1 x e_2``
+    and ``det = e_1 . n_1`` (six times the signed volume); the gradient of barycentric
+    coordinate ``k`` is ``n_k / det`` and ``n_0 = -(n_1 + n_2 + n_3)``.  Scalars, not
+    an array: the matrix-free products and the csr stiffness inline it.
+    """
+    t = uint64(t)
+    z, o, w = uint64(0), uint64(1), uint64(2)
+    i0 = uint64(cells[t, z])
+    i1 = uint64(cells[t, o])
+    i2 = uint64(cells[t, w])
+    i3 = uint64(cells[t, uint64(3)])
+    px, py, pz = points[i0, z], points[i0, o], points[i0, w]
+    ax, ay, az = points[i1, z] - px, points[i1, o] - py, points[i1, w] - pz
+    bx, by, bz = points[i2, z] - px, points[i2, o] - py, points[i2, w] - pz
+    cx, cy, cz = points[i3, z] - px, points[i3, o] - py, points[i3, w] - pz
+    n1x, n1y, n1z = by * cz - bz * cy, bz * cx - bx * cz, bx * cy - by * cx
+    n2x, n2y, n2z = cy * az - cz * ay, cz * ax - cx * az, cx * ay - cy * ax
+    n3x, n3y, n3z = ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx
+    det = ax * n1x + ay * n1y + az * n1z
+    return n1x, n1y, n1z, n2x, n2y, n2z, n3x, n3y, n3z, det, i0, i1, i2, i3

@@ -32,30 +32,11 @@ import numpy as np
 from numba import prange, uint64
 
 from hatkernels._jit import jit
+from hatkernels._jit.geometry import tetrahedron_normals as _normals
 from hatkernels._jit.operators import _zero
 
 #: Cells per pass of the fast products (buffers of 13 x CHUNK doubles stay in L1).
 CHUNK = 128
-
-
-@jit(inline="always")
-def _normals(points, cells, t):
-    """``n1, n2, n3`` (9 values), ``det`` and the four points of cell ``t``."""
-    t = uint64(t)
-    z, o, w = uint64(0), uint64(1), uint64(2)
-    i0 = uint64(cells[t, z])
-    i1 = uint64(cells[t, o])
-    i2 = uint64(cells[t, w])
-    i3 = uint64(cells[t, uint64(3)])
-    px, py, pz = points[i0, z], points[i0, o], points[i0, w]
-    ax, ay, az = points[i1, z] - px, points[i1, o] - py, points[i1, w] - pz
-    bx, by, bz = points[i2, z] - px, points[i2, o] - py, points[i2, w] - pz
-    cx, cy, cz = points[i3, z] - px, points[i3, o] - py, points[i3, w] - pz
-    n1x, n1y, n1z = by * cz - bz * cy, bz * cx - bx * cz, bx * cy - by * cx
-    n2x, n2y, n2z = cy * az - cz * ay, cz * ax - cx * az, cx * ay - cy * ax
-    n3x, n3y, n3z = ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx
-    det = ax * n1x + ay * n1y + az * n1z
-    return n1x, n1y, n1z, n2x, n2y, n2z, n3x, n3y, n3z, det, i0, i1, i2, i3
 
 
 @jit(inline="always")
