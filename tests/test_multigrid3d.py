@@ -20,8 +20,8 @@ def refined(coarse, times):
 
 @pytest.fixture(scope="module")
 def levels():
-    """cuboid(2, 2, 2) refined 1 to 4 times (384 to 196,608 tetrahedra)."""
-    out = [cuboid(2, 2, 2).refine()]
+    """cuboid(3, 3, 3) refined 1 to 4 times (1,296 to 663,552 tetrahedra)."""
+    out = [cuboid(3, 3, 3).refine()]
     for _ in range(3):
         out.append(out[-1].refine())
     return out
@@ -49,7 +49,7 @@ def test_gmg_answer_equals_superlu(levels, kind):
     rng = np.random.default_rng(7)
     coef = {
         # smooth on the coarse cells: a value per coarse cell repeated over its 64 children
-        "cell": np.repeat(1.0 + rng.random(mesh.levels()[0].n_cells), 64),
+        "cell": np.repeat(1.0 + rng.random(mesh.levels()[0].n_cells), 64),  # 8 x 8 children
         "point": 1.0 + mesh.points[:, 0] ** 2,
         "tensor": np.array([[2.0, 0.2, 0.0], [0.2, 1.0, 0.1], [0.0, 0.1, 1.5]]),
         "callable": lambda x, y, z: 1.0 + x * y + z,

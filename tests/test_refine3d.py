@@ -317,3 +317,26 @@ def test_boundary_faces_carried_over_equal_those_found_on_the_fine_mesh(make):
         carried = mesh.boundary_faces()
         found = hatkernels.mesh.Mesh._trusted(mesh.points, mesh.cells).boundary_faces()
         assert carried.dtype == found.dtype and np.array_equal(carried, found)
+
+
+@pytest.mark.parametrize("times", [1, 2])
+def test_a_refined_cuboid_is_the_finer_grid_cut_the_same_way(times):
+    # cuboid records which cells it stores swapped against their path through the cube,
+    # so refinement starts Bey's rule from the path and the children are Kuhn simplices
+    # again: the refined cube's interior stiffness rows are h times the 7-point stencil
+    # (6 on the diagonal, -1 to the six axis neighbours, nothing else nonzero), as for
+    # cuboid(2^k n) itself (Bey, Computing 55, 1995; stencil: common practice, no source)
+    mesh = cuboid(3, 3, 3)
+    for _ in range(times):
+        mesh = mesh.refine()
+    h = 1.0 / (3 * 2**times)
+    A = hatkernels.assemble_stiffness(mesh).tocsr()
+    inside = np.setdiff1d(np.arange(mesh.n_points), mesh.boundary_points())
+    rows = A[inside]
+    tol = 64 * EPS * h
+    big = np.abs(rows.data) > tol
+    counts = np.add.reduceat(big.astype(int), rows.indptr[:-1])
+    assert (counts == 7).all()  # the diagonal and six neighbours, the rest zero to round-off
+    assert np.abs(A[inside, inside].A1 - 6 * h).max() <= tol
+    off = rows.data[big & (rows.data < 0)]
+    assert off.size == 6 * inside.size and np.abs(off + h).max() <= tol

@@ -143,6 +143,10 @@ class Mesh:
         self._triangles = _readonly(triangles)
         self._refinement = refinement
         self._cache = {}
+        # tetrahedra a generator stored with their last two points swapped (for a
+        # positive orientation) against the point order refinement should start
+        # from; None: start from the stored order (see hatkernels.mesh.refine3d)
+        self._stored_swapped = None
 
     @classmethod
     def _trusted(cls, points, triangles, *, refinement=None, **cache):

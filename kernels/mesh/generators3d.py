@@ -42,11 +42,18 @@ def _bounds3(bounds):
 
 
 def _grid_tetrahedra(nx, ny, nz, flip=None):
-    """Tetrahedra (6 nx ny nz, 4) of a grid of cubes whose points are numbered x fastest.
+    """Tetrahedra (6 nx ny nz, 4) of a grid of cubes whose points are numbered x fastest,
+    and which of them are stored swapped (6 nx ny nz,).
 
-    ``flip`` (3, nx ny nz) of bools turns the diagonal of a cube over along the
-    axes where it is True (its start at the cube's high side on that axis);
-    the orientation is restored by swapping two vertices.
+    Each tetrahedron's points run along a path through its cube, one axis step
+    at a time, from the diagonal's start to its end (Kuhn's simplices).  Half
+    of them are negatively oriented in that order and are stored with their
+    last two points swapped; refinement undoes the swap first
+    (:func:`hatkernels.mesh.refine3d.refine_tetrahedra`), so that Bey's rule
+    splits every tetrahedron along its path and the refined grid is again
+    the finer grid cut the same way.  ``flip`` (3, nx ny nz) of bools turns
+    the diagonal of a cube over along the axes where it is True (its start at
+    the cube's high side on that axis).
     """
     k, rest = np.divmod(np.arange(nx * ny * nz, dtype=np.int64), nx * ny)
     j, i = np.divmod(rest, nx)
@@ -59,6 +66,7 @@ def _grid_tetrahedra(nx, ny, nz, flip=None):
         step[flip] *= -1
         sign = np.where(flip.sum(axis=0) % 2 == 1, -1, 1)
     tets = np.empty((base.size, 6, 4), dtype=np.int64)
+    swapped = np.empty((base.size, 6), dtype=bool)
     for n, (order, parity) in enumerate(_ORDERS):
         v = base
         tets[:, n, 0] = v
@@ -67,7 +75,8 @@ def _grid_tetrahedra(nx, ny, nz, flip=None):
             tets[:, n, a + 1] = v
         swap = parity * sign < 0
         tets[swap, n, 2], tets[swap, n, 3] = tets[swap, n, 3], tets[swap, n, 2].copy()
-    return tets.reshape(-1, 4)
+        swapped[:, n] = swap
+    return tets.reshape(-1, 4), swapped.reshape(-1)
 
 
 def _grid_points(x, y, z):
@@ -101,8 +110,10 @@ def cuboid(nx, ny=None, nz=None, *, bounds=(0.0, 1.0, 0.0, 1.0, 0.0, 1.0)):
     x0, x1, y0, y1, z0, z1 = _bounds3(bounds)
     points = _grid_points(np.linspace(x0, x1, nx + 1), np.linspace(y0, y1, ny + 1),
                           np.linspace(z0, z1, nz + 1))
-    cells = _grid_tetrahedra(nx, ny, nz)
-    return Mesh._trusted(points, cells.astype(index_dtype(len(points))))
+    cells, swapped = _grid_tetrahedra(nx, ny, nz)
+    mesh = Mesh._trusted(points, cells.astype(index_dtype(len(points))))
+    mesh._stored_swapped = swapped
+    return mesh
 
 
 def ball(n, *, radius=1.0, center=(0.0, 0.0, 0.0)):
@@ -137,12 +148,14 @@ def ball(n, *, radius=1.0, center=(0.0, 0.0, 0.0)):
     k, rest = np.divmod(np.arange(m ** 3), m * m)
     j, i = np.divmod(rest, m)
     flip = np.stack([i < n, j < n, k < n])
-    cells = _grid_tetrahedra(m, m, m, flip)
+    cells, swapped = _grid_tetrahedra(m, m, m, flip)
     inf = np.abs(x).max(axis=1)
     two = np.linalg.norm(x, axis=1)
     scale = np.divide(inf, two, out=np.zeros_like(inf), where=two > 0)
     points = c + radius * x * scale[:, None]
-    return Mesh._trusted(points, cells.astype(index_dtype(len(points))))
+    mesh = Mesh._trusted(points, cells.astype(index_dtype(len(points))))
+    mesh._stored_swapped = swapped
+    return mesh
 
 
 def tetrahedralise(p, degenerate_tol):

@@ -16,9 +16,13 @@ The children (x01, x02, x12, x13) and (x02, x12, x13, x23) are negatively orient
 in Bey's order.  The mesh stores every cell positively, so those two are stored
 with their last two points swapped; which cells are stored swapped follows from the
 refinement history (child ``8t + k`` of coarse cell ``t``), and the swap is undone
-before the next refinement so that Bey's order, and his bound, carry on.  A mesh
-without history (a given mesh, or a reordered one) starts Bey's order afresh from
-its stored order, which his bound allows for any starting order.
+before the next refinement so that Bey's order, and his bound, carry on.  The
+generators ``cuboid`` and ``ball`` record which of their cells they store swapped
+against the cell's path through its cube (Kuhn's order), so that those start from
+the path: Bey's rule on a Kuhn simplex in path order gives Kuhn simplices again
+(one shape class), and a refined cube is the finer grid cut the same way.  Any
+other mesh without history (a given mesh, or a reordered one) starts Bey's order
+afresh from its stored order, which his bound allows for any starting order.
 """
 
 import numpy as np
@@ -50,11 +54,14 @@ def _swapped(mesh):
 
     Read from the refinement history: child ``8t + k`` is swapped when its parent
     was swapped xor child ``k`` is odd.  A mesh whose history is not a refinement
-    into eight (none, or cell counts that do not match) starts with no swaps.
+    into eight (none, or cell counts that do not match) starts from what its
+    generator recorded (``cuboid`` and ``ball`` store half their cells swapped
+    against their path through the cube), or with no swaps.
     """
     r = mesh.refinement
     if r is None or r.coarse.dim != 3 or mesh.n_cells != 8 * r.coarse.n_cells:
-        return np.zeros(mesh.n_cells, dtype=bool)
+        given = mesh._stored_swapped  # a generator's (cuboid, ball), or none
+        return np.zeros(mesh.n_cells, dtype=bool) if given is None else given
     parent = _swapped(r.coarse)
     return (parent[:, None] ^ ODD_CHILDREN[None, :]).reshape(-1)
 

@@ -189,8 +189,8 @@ class GeometricMultigrid(Preconditioner):
     cycle : {"V", "W", "F"}, optional
         Default ``"V"`` on triangles and ``"F"`` on tetrahedra.  In 3-D the
         V-cycle's iterations grew with the depth of the hierarchy (rtol
-        1e-8 on ``cuboid(2, 2, 2)`` refined 1 to 5 times: 6, 7, 9, 10, 10)
-        while the F-cycle's stay put (6, 7, 8, 8, 8); a coarser level has an
+        1e-8 on ``cuboid(2, 2, 2)`` refined 1 to 5 times: 5, 7, 8, 9, 10)
+        while the F-cycle's stay put (5, 7, 8, 8, 7); a coarser level has an
         eighth of the points, so the F-cycle's extra visits cost about 15 %
         more work per cycle (``sum (l + 1) / 8^l`` against ``sum 1 / 8^l``).
     smoother : {"chebyshev", "jacobi"}
