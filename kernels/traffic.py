@@ -22,10 +22,11 @@ def assembly_floors(mesh, plan):
     Parameters
     ----------
     mesh : Mesh
-        Its ``points`` and ``triangles`` arrays are read once.
+        Its ``points`` and ``cells`` (triangles or tetrahedra) arrays are read once.
     plan : object
-        The symbolic phase (``StiffnessAssembler(mesh).plan``), or anything
-        with ``nnz`` and the ``indices`` array of the pattern.
+        The symbolic phase (``StiffnessAssembler(mesh).plan``; on tetrahedra
+        its ``.plan``), or anything with ``nnz`` and the ``indices`` array of
+        the pattern.
 
     Returns
     -------
@@ -34,7 +35,7 @@ def assembly_floors(mesh, plan):
         indices, indptr); ``"numeric"``: a re-assembly, which writes the values
         only; ``"csr_data"``: the csr numeric phase as written (element values
         out and back, incidences and slots, the output values), a model of
-        that implementation rather than a floor.
+        that implementation rather than a floor (triangles only).
 
     Examples
     --------
@@ -46,11 +47,13 @@ def assembly_floors(mesh, plan):
     >>> f["first"] - f["numeric"] == plan.indices.itemsize * (plan.nnz + mesh.n_points + 1)
     True
     """
-    n, m, nnz = mesh.n_points, mesh.n_triangles, int(plan.nnz)
+    n, m, nnz = mesh.n_points, mesh.n_cells, int(plan.nnz)
     index = plan.indices.dtype.itemsize
-    mesh_bytes = mesh.triangles.nbytes + mesh.points.nbytes
-    return {
+    mesh_bytes = mesh.cells.nbytes + mesh.points.nbytes
+    floors = {
         "first": mesh_bytes + (8 + index) * nnz + index * (n + 1),
         "numeric": mesh_bytes + 8 * nnz,
-        "csr_data": mesh_bytes + m * (2 * _ELEMENT_VALUES + 6 * 3 * index) + 8 * nnz,
     }
+    if mesh.dim == 2:  # the model of the triangles' numeric phase
+        floors["csr_data"] = mesh_bytes + m * (2 * _ELEMENT_VALUES + 6 * 3 * index) + 8 * nnz
+    return floors
