@@ -257,12 +257,20 @@ def _add_bench(sub, common, names):
         "bench", parents=[common],
         help="compare assembly strategies and preconditioners on this machine",
         description="Assemble the stiffness matrix of the unit square with --cells cells per "
-                    "side by each strategy (triplets, csr first call, csr numeric) and solve "
-                    "-lap u = 1 with each preconditioner; print times, ratios and the "
+                    "side (or of the mesh of --mesh FILE) by each strategy (triplets, csr "
+                    "first call, csr numeric) and solve -lap u = 1 with u = 0 on the "
+                    "boundary with each preconditioner; print times, ratios and the "
                     "measured memory bandwidth. Speeds are for this machine and run only.",
     )
-    _number(b, "--cells", int, minimum=2, default=300, metavar="N",
-            help="cells per side of the unit square (default 300: 180,000 triangles)")
+    size = b.add_mutually_exclusive_group()
+    _number(b, "--cells", int, group=size, minimum=2, metavar="N",
+            help=f"cells per side of the unit square (default {bench.DEFAULT_CELLS}: "
+                 f"{2 * bench.DEFAULT_CELLS**2:,} triangles)")
+    size.add_argument("--mesh", metavar="FILE",
+                      help="run on this mesh instead: .npz with arrays points and triangles (or "
+                           "tetrahedra), or any format meshio reads (io extra); the problem is "
+                           "-div grad u = 1 with u = 0 on the whole boundary; preconditioners "
+                           "that need a mesh made by refinement are skipped")
     _number(b, "--repeat", int, minimum=1, default=3, help="best of R (default 3)")
     b.add_argument("--preconditioners", type=lambda s: [x for x in s.split(",") if x],
                    metavar="A,B,...", default=[n for n in names if n not in ALIASES],
