@@ -91,10 +91,13 @@ class Coefficient:
         messages."""
         args = ", ".join("xyz"[: len(coords)])
         call = f"{self.name}({args})"
-        try:
-            v = self.value(*coords)
-        except Exception as exc:
-            raise InputError(f"{call} raised {type(exc).__name__}: {exc}") from exc
+        if isinstance(self.value, Pieces):  # data given by region or by boundary tag
+            v = self.value.at(coords, np.asarray(owners, dtype=np.int64), owner)
+        else:
+            try:
+                v = self.value(*coords)
+            except Exception as exc:
+                raise InputError(f"{call} raised {type(exc).__name__}: {exc}") from exc
         v = np.asarray(v)
         if v.dtype.kind not in "fiub" or v.dtype.kind == "b":
             raise InputError(f"{call} must return real numbers, got dtype {v.dtype}")
@@ -181,9 +184,16 @@ def parse_coefficient(value, mesh, *, name="coefficient", sign="positive", tenso
     ``sign`` is ``"positive"`` (diffusion), ``"nonnegative"`` or ``"any"``
     (loads).  ``tensor`` allows 2x2 tensors.  Raises :class:`InputError`
     naming the triangle or point of the first bad value.
+
+    A dict ``{region: value}`` gives a value per region of a mesh with region
+    tags (:attr:`hatkernels.Mesh.regions`); keys are tags or their names, values
+    any of the kinds above.  With ``tensor`` (a diffusion coefficient) every
+    region needs one; for loads and reactions a region left out gets 0.
     """
     if isinstance(value, Coefficient):
         return value
+    if isinstance(value, dict):
+        return parse_by_region(value, mesh, name=name, sign=sign, tensor=tensor)
     if value is None:
         return Coefficient("constant", 1.0, name, sign)
     if isinstance(value, bool):
@@ -344,3 +354,137 @@ def parse_edge_coefficient(value, mesh, n_edges, *, name, sign):
 
 # boundary data on a tetrahedral mesh: its sides are faces, given with per_edge(...)
 _SIDE_ITEM_3D = {**_ITEM, "edge": ("face", "faces", "per_edge")}
+
+
+# -- data given piece by piece: by region, or by boundary tag -------------------------------
+
+
+class Pieces:
+    """Pointwise values of data given piece by piece over items (cells, or sides).
+
+    Item ``k`` takes piece ``index[k]`` (-1: the value 0) and is item ``rank[k]`` of
+    that piece's own arrays (per-cell or per-side values).  ``items`` (n_items, k)
+    are the items' points, for per-point pieces, which are interpolated linearly
+    inside the item.  :meth:`Coefficient.evaluate` calls :meth:`at` with the owners
+    of the points (item numbers), so the pieces work wherever callables do.
+    """
+
+    def __init__(self, parts, index, rank, points, items):
+        self.parts = tuple(parts)
+        self.index = index
+        self.rank = rank
+        self.points = points
+        self.items = items
+
+    def __repr__(self):
+        return f"Pieces({', '.join(p.name for p in self.parts)})"
+
+    def at(self, coords, owners, owner):
+        out = np.zeros(len(owners))
+        which = self.index[owners]
+        for p, part in enumerate(self.parts):
+            sel = np.flatnonzero(which == p)
+            if not sel.size:
+                continue
+            own = owners[sel]
+            sub = tuple(np.asarray(c)[sel] for c in coords)
+            if part.kind == "constant":
+                v = part.value
+            elif part.kind in ("cell", "edge"):
+                v = np.asarray(part.value)[self.rank[own]]
+            elif part.kind == "point":
+                v = _interpolate(part.value, self.points, self.items[own], np.column_stack(sub))
+            else:  # "callable" (tensors are refused when the pieces are made)
+                v = part.evaluate(sub, own, owner)
+            out[sel] = v
+        return out
+
+
+def _interpolate(values, points, items, x):
+    """Linear interpolation of per-point ``values`` at ``x`` (m, d), each inside the simplex
+    ``items[k]`` (a cell, or a side: the barycentric coordinates in its own plane)."""
+    v = points[items]  # (m, k, d)
+    edges = v[:, 1:, :] - v[:, :1, :]  # (m, k-1, d)
+    gram = edges @ edges.transpose(0, 2, 1)
+    rhs = edges @ (x - v[:, 0, :])[:, :, None]
+    mu = np.linalg.solve(gram, rhs)[:, :, 0]
+    lam = np.column_stack([1.0 - mu.sum(axis=1), mu])
+    return (values[items] * lam).sum(axis=1)
+
+
+def combine(parts, index, rank, mesh, items, *, name, sign, on):
+    """One :class:`Coefficient` over ``items`` from ``parts`` given piece by piece.
+
+    ``on`` is "cell" (items are the mesh's cells, pieces parsed on the whole mesh) or
+    "edge" (items are sides, each piece parsed on its own sides).  All constants and
+    per-item values give an array of one value per item (kind ``on``; per-cell
+    tensors when a piece is a tensor); anything else a callable kind whose value
+    is :class:`Pieces`.
+    """
+    n = len(index)
+    d = mesh.dim
+    if any(p.kind == "tensor" for p in parts):
+        other = [p for p in parts if p.kind not in ("tensor", "constant", "cell")]
+        if other:
+            raise InputError(f"{name}: {other[0].name} is {other[0].kind}, and another region "
+                             f"has a tensor; mix tensors with numbers or per-cell values only")
+        out = np.zeros((n, d, d))
+        for k, p in enumerate(parts):
+            sel = index == k
+            v = np.asarray(p.value, dtype=np.float64)
+            if p.kind == "tensor":
+                out[sel] = v if v.ndim == 2 else v[rank[sel]]
+            else:
+                s = v if v.ndim == 0 else v[rank[sel]]
+                out[sel] = np.asarray(s)[..., None, None] * np.eye(d)
+        return Coefficient("tensor", _checked_tensor_pieces(out, index, name), name, sign)
+    if all(p.kind in ("constant", on) for p in parts):
+        out = np.zeros(n)
+        for k, p in enumerate(parts):
+            sel = index == k
+            out[sel] = p.value if p.kind == "constant" else np.asarray(p.value)[rank[sel]]
+        if sign == "positive" and (index < 0).any():  # cannot happen: diffusion needs them all
+            raise InputError(f"{name} has no value on some items")
+        return Coefficient(on, out, name, sign)
+    return Coefficient("callable", Pieces(parts, index, rank, mesh.points, items), name, sign)
+
+
+def _checked_tensor_pieces(out, index, name):
+    if (index < 0).any():
+        raise InputError(f"{name}: a region has no tensor")
+    return out
+
+
+def parse_by_region(value, mesh, *, name, sign, tensor=False):
+    """:func:`parse_coefficient` for a dict ``{region tag or name: value}``."""
+    tags = mesh.tags
+    if tags is None or tags.regions is None:
+        keys = ", ".join(repr(k) for k in list(value)[:3])
+        raise InputError(f"{name} is given by region ({keys}), but the mesh has no region "
+                         f"tags (Mesh.regions is None)")
+    if not value:
+        raise InputError(f"{name} is an empty dict; give a value per region")
+    chosen = {}
+    for key, v in value.items():
+        t = tags.region_tag(key, what=f"{name}: region")
+        if t in chosen:
+            raise InputError(f"{name}: region {tags.region_label(t)} is given twice "
+                             f"(as {chosen[t][0]!r} and {key!r})")
+        if isinstance(v, dict):
+            raise InputError(f"{name} in region {tags.region_label(t)} is a dict; a region "
+                             f"takes a number, an array, a tensor or a callable")
+        chosen[t] = (key, v)
+    if tensor:
+        missing = [t for t in tags.region_tags().tolist() if t not in chosen]
+        if missing:
+            raise InputError(f"{name}: region {tags.region_label(missing[0])} has none "
+                             f"({len(missing)} of {len(tags.region_tags())} regions lack one); "
+                             f"every region needs a {name}")
+    index = np.full(mesh.n_cells, -1, dtype=np.int64)
+    parts = []
+    for k, t in enumerate(sorted(chosen)):
+        label = f"{name} in region {tags.region_label(t)}"
+        parts.append(parse_coefficient(chosen[t][1], mesh, name=label, sign=sign, tensor=tensor))
+        index[tags.regions == t] = k
+    rank = np.arange(mesh.n_cells)
+    return combine(parts, index, rank, mesh, mesh.cells, name=name, sign=sign, on="cell")

@@ -24,12 +24,9 @@ half-written file behind (both live in :mod:`hatkernels._output`).
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
-import io as io_module
 import json
 import os
-import warnings
 import zipfile
 import zlib
 
@@ -45,8 +42,19 @@ from hatkernels._output import (
     output_directory,
     write_json,
 )
-from hatkernels.errors import InputError, MeshError
+from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
+from hatkernels.meshfiles import (  # noqa: F401  (re-exported)
+    MeshArrays,
+    _cells_name,
+    _mesh_from_arrays,
+    mesh_from_arrays,
+    meshio_available,
+    read_mesh,
+    read_mesh_arrays,
+    read_mesh_file,
+    write_mesh,
+)
 
 __all__ = [
     "MARKER_FILES",
@@ -61,156 +69,14 @@ __all__ = [
     "output_directory",
     "read_mesh",
     "read_mesh_arrays",
+    "read_mesh_file",
+    "MeshArrays",
+    "write_mesh",
     "read_solution",
     "write_json",
     "write_solution",
     "write_vtu",
 ]
-
-def meshio_available():
-    """True when meshio (the ``io`` extra) can be imported."""
-    try:
-        import meshio  # noqa: F401
-    except ImportError:
-        return False
-    return True
-
-
-# -- meshes -----------------------------------------------------------------------
-
-
-def _mesh_from_arrays(points, triangles, source):
-    try:
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
-            mesh = Mesh(points, triangles)
-    except MeshError as exc:
-        raise MeshError(f"{source}: {exc}") from None
-    for w in caught:  # say which file the warning is about
-        warnings.warn(f"{source}: {w.message}", w.category, stacklevel=3)
-    return mesh
-
-
-def _read_npz_mesh(path):
-    with open(path, "rb") as f:
-        head = f.read(4)
-    if head[:2] != b"PK":  # an .npz is a zip archive of .npy arrays
-        raise InputError(f"mesh file {path}: not an .npz archive (not a zip file; it starts "
-                         f"with {head!r})")
-    try:
-        archive = np.load(path, allow_pickle=False)
-    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
-        raise InputError(f"mesh file {path}: not a readable .npz archive ({exc})") from None
-    if not isinstance(archive, np.lib.npyio.NpzFile):
-        raise InputError(f"mesh file {path}: holds a single array, not an .npz archive with "
-                         f"'points' and 'triangles'")
-    with archive:
-        cells = _cells_name(archive.files)
-        missing = [k for k in ("points", cells) if k not in archive.files]
-        if missing:
-            have = ", ".join(archive.files) or "nothing"
-            raise InputError(f"mesh file {path}: no array {missing[0]!r} (it has: {have})")
-        try:
-            points, cells = archive["points"], archive[cells]
-        except (OSError, ValueError, zipfile.BadZipFile) as exc:
-            raise InputError(f"mesh file {path}: cannot read its arrays ({exc})") from None
-    return points, cells
-
-
-def _cells_name(names):
-    """The archive's cell array: ``tetrahedra`` when it has one (and no ``triangles``)."""
-    return "tetrahedra" if "tetrahedra" in names and "triangles" not in names else "triangles"
-
-
-def _read_meshio_mesh(path):
-    if not meshio_available():
-        raise InputError(f"mesh file {path}: only .npz meshes can be read without meshio; "
-                         f"install the io extra (pip install 'hatkernels[io]')")
-    import meshio
-
-    # meshio prints its complaints and may call sys.exit for a file it cannot
-    # parse: keep its output and turn both into one InputError.
-    said = io_module.StringIO()
-    try:
-        with contextlib.redirect_stdout(said), contextlib.redirect_stderr(said):
-            m = meshio.read(path)
-    except (Exception, SystemExit) as exc:
-        text = [line.strip() for line in (str(exc) + "\n" + said.getvalue()).splitlines()]
-        text = [line for line in text if line and not line.isdigit()]
-        why = " ".join(text) if text else type(exc).__name__
-        raise InputError(f"mesh file {path}: meshio cannot read it ({why})") from None
-    points = np.asarray(m.points)
-    if points.ndim != 2 or points.shape[1] not in (2, 3):
-        raise InputError(f"mesh file {path}: points have shape {points.shape}, expected 2-D or 3-D")
-    tetra = [c for c in m.cells if c.type == "tetra"]
-    if tetra:
-        # a tetrahedral mesh: its triangle, line and vertex cells are boundary parts
-        others = sorted({c.type for c in m.cells} - {"tetra", "triangle", "line", "vertex"})
-        if others:
-            raise InputError(f"mesh file {path}: has {', '.join(others)} cells besides "
-                             f"tetrahedra; only linear tetrahedra are supported")
-        if points.shape[1] != 3:
-            raise InputError(f"mesh file {path}: tetrahedra need 3-D points, got shape "
-                             f"{points.shape}")
-        return points, np.concatenate([np.asarray(c.data) for c in tetra])
-    if points.shape[1] == 3:
-        z = points[:, 2]
-        finite = np.isfinite(z)
-        if finite.any() and np.ptp(z[finite]) > 1e-12 * max(1.0, np.abs(points[:, :2]).max()):
-            k = int(np.argmax(np.abs(z - z[finite][0]) > 0))
-            raise InputError(f"mesh file {path}: not a plane mesh (point {k} has z = {z[k]!r}, "
-                             f"point 0 has z = {z[0]!r})")
-        points = points[:, :2]
-    blocks = [c for c in m.cells if c.type == "triangle"]
-    others = sorted({c.type for c in m.cells} - {"triangle", "line", "vertex"})
-    if others:
-        raise InputError(f"mesh file {path}: has {', '.join(others)} cells; only linear "
-                         f"triangles (with optional line and vertex cells) are supported")
-    if not blocks:
-        raise InputError(f"mesh file {path}: has no triangle cells")
-    triangles = np.concatenate([np.asarray(c.data) for c in blocks])
-    return points, triangles
-
-
-def read_mesh_arrays(path):
-    """The ``points`` and ``triangles`` arrays of a mesh file, read but not yet checked.
-
-    ``.npz``: arrays ``points`` and ``triangles`` (or ``tetrahedra``).  Any other extension is
-    handed to meshio (if installed): its tetrahedra when it has any (a 3-D
-    mesh; triangle, line and vertex cells ignored), else its triangle cells
-    (line and vertex cells ignored, a z coordinate dropped when it is constant).
-    Raises :class:`InputError` when the file is missing, unreadable or lacks
-    the arrays.  :func:`read_mesh` also builds and checks the :class:`Mesh`.
-    """
-    path = os.fspath(path)
-    if not os.path.exists(path):
-        raise InputError(f"mesh file {path} not found")
-    if os.path.isdir(path):
-        raise InputError(f"mesh file {path} is a directory")
-    if path.lower().endswith(".npz"):
-        return _read_npz_mesh(path)
-    return _read_meshio_mesh(path)
-
-
-def mesh_from_arrays(points, triangles, path):
-    """The checked :class:`Mesh` of arrays read from ``path`` (named in errors and warnings)."""
-    return _mesh_from_arrays(points, triangles, f"mesh file {os.fspath(path)}")
-
-
-def read_mesh(path):
-    """Read a :class:`Mesh` from ``path`` (formats as in :func:`read_mesh_arrays`).
-
-    Raises
-    ------
-    InputError
-        The file is missing, unreadable, or lacks the arrays.
-    MeshError
-        The arrays do not make a valid mesh; the message starts with the file
-        name and names the point or triangle.
-    """
-    points, triangles = read_mesh_arrays(path)
-    return mesh_from_arrays(points, triangles, path)
-
 
 # -- solutions --------------------------------------------------------------------
 

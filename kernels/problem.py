@@ -103,7 +103,7 @@ class PoissonProblem:
         self.source = parse_coefficient(f, mesh, name="load", sign="any")
         self.reaction = None if reaction is None else parse_coefficient(
             reaction, mesh, name="reaction", sign="nonnegative")
-        self.dirichlet, self.flux, self.robin = parse_conditions(
+        self.dirichlet, self.flux, self.robin, self.pieces = parse_conditions(
             mesh, dirichlet=dirichlet, dirichlet_on=dirichlet_on, neumann=neumann, robin=robin)
         if not isinstance(zero_mean, bool):
             raise InputError(f"zero_mean must be True or False, got {zero_mean!r}")

@@ -27,6 +27,7 @@ from hatkernels.checks import integer_option
 from hatkernels.coefficients import Coefficient, parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh, index_dtype
+from hatkernels.mesh.tags import restricted_tags
 
 __all__ = ["Subdomain", "subdomain", "local_coefficient"]
 
@@ -134,6 +135,8 @@ def subdomain(partition, part):
     local = np.full(n, -1, dtype=np.int64)
     local[points] = np.arange(len(points))
     lmesh = Mesh._trusted(mesh.points[points], local[lt].astype(dt))
+    if mesh.tags is not None:  # regions and boundary tags, in local numbers
+        lmesh._tags = restricted_tags(mesh.tags, lmesh, tids, local)
 
     ghost_owner = owner[ghosts].astype(np.int32)
     neighbours = np.unique(ghost_owner)

@@ -11,7 +11,7 @@ import numpy as np
 from hatkernels._jit import geometry as _jit_geometry
 from hatkernels._jit import topology as _topo
 from hatkernels._sets import index_union
-from hatkernels.errors import InputError, MeshError, MeshWarning
+from hatkernels.errors import InputError, MeshWarning
 from hatkernels.geometry import DEGENERATE_VOLUME_TOL
 from hatkernels.mesh import tetrahedra as _tet
 from hatkernels.mesh.components import point_components
@@ -22,10 +22,12 @@ from hatkernels.mesh.quality3d import tetrahedron_quality
 from hatkernels.mesh.refine import refine as _refine
 from hatkernels.mesh.refinement import Refinement
 from hatkernels.mesh.reorder import reorder as _reorder
+from hatkernels.mesh.tags import check_tags
 from hatkernels.mesh.triangles import (
     CELL_WORDS,
     DEGENERATE_TOL,
     check_cells,
+    check_edge_sharing,
     check_points,
     longest_edge_sq,
     reoriented_triangles,
@@ -147,6 +149,7 @@ class Mesh:
         # positive orientation) against the point order refinement should start
         # from; None: start from the stored order (see hatkernels.mesh.refine3d)
         self._stored_swapped = None
+        self._tags = None  # a hatkernels.mesh.tags.MeshTags, or None
 
     @classmethod
     def _trusted(cls, points, triangles, *, refinement=None, **cache):
@@ -162,24 +165,7 @@ class Mesh:
         return self
 
     def _check_edges(self):
-        ptr, codes = self._incidence()
-        first, second = _topo.directed_edge_check(self._triangles_for_topology(), ptr, codes)
-        hit = np.flatnonzero(first >= 0)
-        if hit.size == 0:
-            return
-        i = int(hit[0])
-        t1, t2 = int(first[i]), int(second[i])
-        tri = self._triangles
-        if set(tri[t1].tolist()) == set(tri[t2].tolist()):
-            raise MeshError(
-                f"triangles {t1} and {t2} are duplicates (points {sorted(tri[t1].tolist())})"
-            )
-        row = tri[t1].tolist()
-        j = row[(row.index(i) + 1) % 3]
-        raise MeshError(
-            f"triangles {t1} and {t2} both lie on the left of edge ({i} -> {j}): they overlap, "
-            f"or the edge is shared by more than two triangles"
-        )
+        check_edge_sharing(self)
 
     # -- arrays ---------------------------------------------------------------
 
@@ -233,6 +219,37 @@ class Mesh:
     def n_triangles(self):
         self._need(2, "n_triangles", "use .n_cells")
         return self._triangles.shape[0]
+
+    @property
+    def tags(self):
+        """The region and boundary tags (:class:`hatkernels.mesh.tags.MeshTags`), or None."""
+        return self._tags
+
+    @property
+    def regions(self):
+        """The region tag of each cell, (n_cells,) int32 read-only, or None when untagged."""
+        return None if self._tags is None else self._tags.regions
+
+    def with_tags(self, regions=None, sides=None, side_tags=None, region_names=None,
+                  side_names=None):
+        """A mesh with the same points and cells (shared, not copied) carrying these tags.
+
+        ``regions``: one integer per cell; ``sides``: boundary sides ((k, 2) edges or
+        (k, 3) faces, points in any order) with ``side_tags`` one integer each;
+        ``region_names`` and ``side_names``: dicts of name -> tag.  The tags replace
+        any this mesh has (this mesh is not changed).  Raises MeshError naming the
+        cell, side or tag at fault (see :func:`hatkernels.mesh.tags.check_tags`).
+
+        >>> from hatkernels.mesh import rectangle
+        >>> m = rectangle(2, 1).with_tags(regions=[1, 1, 2, 2], region_names={"steel": 2})
+        >>> m.tags.region_label(2), m.tags.region_tag("steel")
+        ('steel (2)', 2)
+        """
+        new = type(self).__new__(type(self))
+        new.__dict__.update(self.__dict__)
+        new._cache = dict(self._cache)
+        new._tags = check_tags(self, regions, sides, side_tags, region_names, side_names)
+        return new
 
     @property
     def refinement(self):

@@ -13,6 +13,7 @@ from hatkernels.errors import InputError
 from hatkernels.mesh.core_index import index_dtype
 from hatkernels.mesh.refine3d import refine_tetrahedra
 from hatkernels.mesh.refinement import Refinement
+from hatkernels.mesh.tags import refined_tags
 
 __all__ = ["refine"]
 
@@ -43,8 +44,13 @@ def refine(mesh):
     """
     if not callable(getattr(type(mesh), "_trusted", None)):
         raise InputError(f"refine needs a hatkernels.Mesh, got {type(mesh).__name__}")
-    if mesh.dim == 3:
-        return refine_tetrahedra(mesh)
+    fine = refine_tetrahedra(mesh) if mesh.dim == 3 else _refine_triangles(mesh)
+    if getattr(mesh, "tags", None) is not None:
+        fine._tags = refined_tags(mesh.tags, fine)  # regions and boundary tags carried over
+    return fine
+
+
+def _refine_triangles(mesh):
     had = mesh.cached()
     edges, tri_edges = mesh._edge_topology()
     n, m, n_edges = mesh.n_points, mesh.n_triangles, len(edges)

@@ -16,6 +16,7 @@ from hatkernels._jit import reorder as _jit_reorder
 from hatkernels.checks import integer_option
 from hatkernels.errors import InputError
 from hatkernels.mesh.refine3d import unique_edges
+from hatkernels.mesh.tags import reordered_tags
 
 __all__ = ["reorder", "MeshPermutation", "hilbert_keys", "REORDERINGS"]
 
@@ -171,4 +172,6 @@ def reorder(mesh, method="rcm"):
     new = type(mesh)._trusted(
         mesh.points[perm], new_tri[tperm], unused=np.sort(inv[mesh.unused_points()])
     )
+    if getattr(mesh, "tags", None) is not None:  # regions and boundary tags follow
+        new._tags = reordered_tags(mesh.tags, inv, tperm, new.cells.dtype)
     return new, MeshPermutation(points=perm, triangles=tperm)

@@ -8,6 +8,7 @@ import warnings
 
 import numpy as np
 
+from hatkernels._jit import topology as _topo
 from hatkernels.errors import MeshError, MeshWarning
 from hatkernels.mesh.core_index import index_dtype
 
@@ -166,3 +167,25 @@ def reoriented_triangles(p, t, degenerate_tol, stacklevel):
             stacklevel=stacklevel + 1,
         )
     return t
+
+
+def check_edge_sharing(mesh):
+    """MeshError naming two triangles that duplicate or overlap each other, if any."""
+    ptr, codes = mesh._incidence()
+    first, second = _topo.directed_edge_check(mesh._triangles_for_topology(), ptr, codes)
+    hit = np.flatnonzero(first >= 0)
+    if hit.size == 0:
+        return
+    i = int(hit[0])
+    t1, t2 = int(first[i]), int(second[i])
+    tri = mesh.cells
+    if set(tri[t1].tolist()) == set(tri[t2].tolist()):
+        raise MeshError(
+            f"triangles {t1} and {t2} are duplicates (points {sorted(tri[t1].tolist())})"
+        )
+    row = tri[t1].tolist()
+    j = row[(row.index(i) + 1) % 3]
+    raise MeshError(
+        f"triangles {t1} and {t2} both lie on the left of edge ({i} -> {j}): they overlap, "
+        f"or the edge is shared by more than two triangles"
+    )
