@@ -42,11 +42,15 @@ class PoissonSolution:
         ``setup``, ``solve``, ``total``), unknowns, what is stored, the
         preconditioner, threads and peak memory.
     mesh : Mesh
+    problem : PoissonProblem or None
+        The checked problem (data, conditions and their tags), for results by
+        region and boundary tag (:mod:`hatkernels.results`).
     """
 
     u: np.ndarray
     stats: SolveStats
     mesh: Mesh
+    problem: object = dataclasses.field(default=None, repr=False)
 
     @property
     def converged(self):
@@ -173,4 +177,4 @@ def solve_poisson(
     stats.timings = {**system.timings, **stats.timings, "total": time.perf_counter() - t0}
     stats.unknowns = system.unknowns
     stats.dirichlet_points = int(problem.dirichlet.points.size)
-    return PoissonSolution(u=u, stats=stats, mesh=mesh)
+    return PoissonSolution(u=u, stats=stats, mesh=mesh, problem=problem)

@@ -439,7 +439,8 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
         ranks=size,
         distribution=distribution,
     )
-    return DistributedPoissonSolution(u=u, stats=stats_out, mesh=mesh, u_owned=u_owned,
+    return DistributedPoissonSolution(u=u, stats=stats_out, mesh=mesh, problem=problem,
+                                      u_owned=u_owned,
                                       owned=sub.owned.copy(), rank=rank, size=size)
 
 
