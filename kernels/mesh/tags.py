@@ -140,8 +140,17 @@ def _resolve(key, names, tags, what, kind):
     return tag
 
 
+def _array(values, what):
+    """``np.asarray(values)``, with a MeshError for what numpy cannot make an array of
+    (ragged lists, say)."""
+    try:
+        return np.asarray(values)
+    except (ValueError, TypeError) as exc:
+        raise MeshError(f"{what} cannot be read as an array: {exc}") from None
+
+
 def _tag_array(values, n, what, item):
-    a = np.asarray(values)
+    a = _array(values, what)
     if a.ndim != 1 or len(a) != n:
         raise MeshError(f"{what} must hold one integer per {item} ({n},), got shape {a.shape}")
     if a.size and a.dtype.kind == "f":
@@ -224,7 +233,7 @@ def check_tags(mesh, regions=None, sides=None, side_tags=None, region_names=None
         s = np.empty((0, dim), dtype=boundary.dtype)
         t = np.empty(0, np.int32)
     else:
-        s = np.asarray(sides)
+        s = _array(sides, "sides")
         if s.ndim != 2 or s.shape[1] != dim or (s.size and s.dtype.kind not in "iu"):
             raise MeshError(f"sides must be an integer array of {word}s, shape (k, {dim}), "
                             f"got {s.dtype} {s.shape}")
