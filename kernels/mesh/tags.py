@@ -228,7 +228,7 @@ def check_tags(mesh, regions=None, sides=None, side_tags=None, region_names=None
                                    "triangle" if dim == 2 else "tetrahedron"))
     boundary = mesh.boundary_edges() if dim == 2 else mesh.boundary_faces()
     if sides is None:
-        if side_tags is not None and len(side_tags):
+        if side_tags is not None and _array(side_tags, "side_tags").size:
             raise MeshError("side_tags given without sides")
         s = np.empty((0, dim), dtype=boundary.dtype)
         t = np.empty(0, np.int32)
