@@ -18,6 +18,7 @@ two maps from name to tag, one for regions and one for sides.
 
 from __future__ import annotations
 
+import collections.abc
 import dataclasses
 import numbers
 import types
@@ -171,7 +172,7 @@ def _tag_array(values, n, what, item):
 def _names(names, what):
     if names is None:
         return types.MappingProxyType({})
-    if not isinstance(names, dict):
+    if not isinstance(names, collections.abc.Mapping):
         raise MeshError(f"{what} must be a dict of name -> integer tag, got "
                         f"{type(names).__name__}")
     out = {}
