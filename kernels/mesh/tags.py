@@ -127,8 +127,11 @@ def _resolve(key, names, tags, what, kind):
     elif isinstance(key, str):
         if key in names:
             tag = int(names[key])
-        elif key.strip().lstrip("-").isdigit():
-            tag = int(key)
+        else:
+            try:  # the tag written as text; anything else is an unknown name
+                tag = int(key)
+            except ValueError:
+                tag = None
     else:
         raise InputError(f"{what} {key!r}: a tag is an integer or a name, not a "
                          f"{type(key).__name__}")
