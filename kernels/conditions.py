@@ -305,8 +305,8 @@ def parse_conditions(mesh, *, dirichlet=0.0, dirichlet_on=None, neumann=None, ro
         """The pieces of a neumann (width 1) or robin (width 2) argument."""
         if isinstance(value, dict):
             if mesh.tags is None or len(mesh.tags.sides) == 0:
-                raise InputError(f"{what} is given by boundary tag, but the mesh has no "
-                                 f"boundary tags")
+                raise InputError(f"{what} is given by boundary tag ({list(value)[:3]}), but "
+                                 f"the mesh has no boundary tags")
             out = []
             for key, data in value.items():
                 t = mesh.tags.side_tag(key, what=f"{what}: boundary tag")
