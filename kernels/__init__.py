@@ -31,6 +31,7 @@ from hatkernels.operators import StiffnessOperator
 from hatkernels.poisson import PoissonSolution, solve_poisson
 from hatkernels.precond import PRECONDITIONERS, make_preconditioner, register_preconditioner
 from hatkernels.problem import PoissonProblem
+from hatkernels.results import balance
 from hatkernels.solver import SolveResult, solve
 from hatkernels.stats import SolveStats
 
@@ -61,6 +62,7 @@ __all__ = [
     "assemble_load",
     "assemble_mass",
     "assemble_stiffness",
+    "balance",
     "element_gradients",
     "krylov",
     "make_preconditioner",

@@ -30,6 +30,7 @@ PUBLIC = {
     "assemble_load",
     "assemble_mass",
     "assemble_stiffness",
+    "balance",
     "discretise",
     "distributed",
     "element_gradients",
