@@ -7,6 +7,9 @@ the library's own, already tested against outside references; here the check is
 that the scalable path reproduces them entry by entry (common practice, no source).
 """
 
+import sys
+from pathlib import Path
+
 import numpy as np
 import pytest
 
@@ -110,3 +113,18 @@ def test_bad_input_is_named():
         partition_coarse_cells(coarse, 9, 1)
     with pytest.raises(InputError, match=r"one part per coarse cell \(8,\)"):
         refined_subdomain(coarse, 1, np.zeros(3, dtype=int), 0)
+
+
+# -- under mpiexec: the distributed solve on the partitioned refinement ----------------------
+
+from test_distributed import needs_mpi, run_mpi  # noqa: E402
+
+
+@needs_mpi
+@pytest.mark.parametrize("ranks", [1, 2, 3, 4])
+def test_partitioned_solve_matches_the_serial_one(ranks):
+    script = Path(__file__).resolve().parent / "mpi_refined_checks.py"
+    code, out, err = run_mpi(ranks, [sys.executable, str(script)])
+    print(out)
+    assert code == 0, f"exit {code}\n{out}\n{err}"
+    assert f"all 6 checks passed on {ranks} ranks" in out

@@ -38,7 +38,8 @@ from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh, index_dtype
 from hatkernels.mesh.refine3d import _swapped
 
-__all__ = ["FineNumbering", "fine_numbering", "partition_coarse_cells", "refined_subdomain"]
+__all__ = ["FineNumbering", "fine_numbering", "lattice_order", "lattice_parents",
+           "partition_coarse_cells", "refined_subdomain"]
 
 
 @functools.lru_cache(maxsize=16)
@@ -58,6 +59,29 @@ def lattice_order(dim, k, swapped=False):
     for a in (lam, ref.cells):
         a.setflags(write=False)
     return lam, ref.cells
+
+
+@functools.lru_cache(maxsize=16)
+def lattice_parents(dim, k, swapped=False):
+    """For each lattice point of one cell refined ``k >= 1`` times (the order of
+    :func:`lattice_order`), the two points of the cell refined ``k - 1`` times whose
+    mean it is, as indices into that order: ``(n, 2)``, both the same for a point
+    that is already a point one level down.  Read from the refinement itself, so a
+    point in the middle of Bey's octahedron gets the ends of the diagonal that is
+    really an edge."""
+    n = 2**k
+    corners = np.vstack([np.zeros(dim), n * np.eye(dim)])
+    ref = Mesh._trusted(corners, np.arange(dim + 1)[None, :])
+    if dim == 3:
+        ref._stored_swapped = np.array([bool(swapped)])
+    for _ in range(k):
+        ref = ref.refine()
+    r = ref.refinement
+    out = np.empty((ref.n_points, 2), dtype=np.int64)
+    out[r.coarse_points] = np.arange(r.coarse.n_points)[:, None]
+    out[r.midpoints] = r.edge_points
+    out.setflags(write=False)
+    return out
 
 
 def _owner_cells(cells):

@@ -1,0 +1,104 @@
+"""What a distributed solve returns, and the rule that makes a failing step fail on every
+rank: shared by the replicated path (:mod:`hatkernels.distributed.solve`) and the
+partitioned one (:mod:`hatkernels.distributed.refined_solve`)."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from hatkernels.errors import InputError
+from hatkernels.poisson import PoissonSolution
+
+__all__ = ["GATHER", "Distribution", "DistributedPoissonSolution"]
+
+#: Values of ``gather``: the full solution on every rank, on rank 0 only, or nowhere.
+GATHER = (True, "root", False)
+
+
+@dataclasses.dataclass
+class Distribution:
+    """How a distributed solve was spread over the ranks (``SolveStats.distribution``).
+
+    Attributes
+    ----------
+    partition : dict
+        Method, weight and quality of the split (imbalance, cut sides...).
+    balance : list of dict
+        One per rank: owned points and unknowns, cells (``"cells"``; on
+        triangle meshes also ``"triangles"``), ghosts, neighbours, stored
+        entries and bytes, halo bytes and messages per product,
+        communication counters and seconds, timings, peak memory.
+    communication : dict
+        Volumes per iteration of the busiest rank, seconds.
+    threads_per_rank : dict
+        ``threads``, ``ranks_on_node`` and ``chosen_by`` (how the count was chosen).
+    """
+
+    partition: dict
+    balance: list
+    communication: dict
+    threads_per_rank: dict = None
+
+
+@dataclasses.dataclass(repr=False)
+class DistributedPoissonSolution(PoissonSolution):
+    """What the distributed :func:`solve_poisson` found, on one rank.
+
+    Attributes
+    ----------
+    u : ndarray, shape (n_points,), or None
+        Values at the points, where gathered (see ``gather``); None elsewhere.
+    stats : SolveStats
+        As serial (``timings`` are the maximum over ranks, ``unknowns``,
+        ``nnz`` and ``stored_bytes`` global, ``peak_rss_bytes`` the largest
+        rank's), with ``ranks`` and ``distribution`` (a :class:`Distribution`).
+        The same on every rank.
+    mesh : Mesh
+    u_owned : ndarray
+        Values at this rank's owned points.
+    owned : ndarray
+        Global numbers of those points (ascending).
+    rank, size : int
+    """
+
+    u_owned: np.ndarray = None
+    owned: np.ndarray = None
+    rank: int = 0
+    size: int = 1
+
+    def __repr__(self):
+        s = self.stats
+        return (f"DistributedPoissonSolution(rank {self.rank} of {self.size}, "
+                f"{s.unknowns} unknowns, {s.iterations} iterations, "
+                f"converged={s.converged}, {s.timings['total']:.3g} s)")
+
+
+def _together(comm, what, fn, *args, **kwargs):
+    """Run a local step on every rank; if it fails anywhere, raise on every rank.
+
+    The failing rank re-raises its own exception; the others raise the same
+    type (InputError for bad input, RuntimeError otherwise) naming the rank.
+    Costs one small ``allgather`` (setup only).
+    """
+    try:
+        value, failure = fn(*args, **kwargs), None
+    except Exception as exc:  # re-raised below, on every rank
+        value, failure = None, exc
+    note = None if failure is None else (isinstance(failure, InputError),
+                                         f"{type(failure).__name__}: {failure}")
+    notes = comm.allgather(note)
+    bad = [(r, n) for r, n in enumerate(notes) if n is not None]
+    if bad:
+        if failure is not None:
+            raise failure
+        r, (is_input, text) = bad[0]
+        cls = InputError if is_input else RuntimeError
+        raise cls(f"{what} failed on rank {r}: {text}")
+    return value
+
+
+def _per(balance, counter, iterations):
+    """A solve-phase counter of the busiest rank, per iteration (setup excluded)."""
+    return max(b["communication"][counter] for b in balance) / iterations

@@ -1,0 +1,304 @@
+"""``distributed.solve_poisson(mesh, f, refine=k, preconditioner="gmg")``: the solve on the
+mesh refined k times with partitioned refinement and distributed multigrid
+(:mod:`hatkernels.distributed.refined`); no rank builds the fine mesh.
+
+The data are parsed and checked once on the coarse mesh (a
+:class:`~hatkernels.problem.PoissonProblem`, so the errors are the serial
+ones); on the fine levels they are used as given: numbers and callables as
+they are, values per region (per coarse cell) inherited by the fine cells,
+held values on the fine points of the held coarse sides, fluxes and
+convection on the fine sides of their coarse sides.  Data that live on the
+fine mesh's own points, cells or sides (arrays) cannot be given this way.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numba
+import numpy as np
+
+from hatkernels._jit import threads as _threads
+from hatkernels.assembly import assemble_load, assemble_stiffness
+from hatkernels.assembly.boundary_terms import side_load, side_mass
+from hatkernels.coefficients import Coefficient, Pieces
+from hatkernels.distributed.cg import cg
+from hatkernels.distributed.finenumbers import fine_numbering, partition_coarse_cells
+from hatkernels.distributed.halo import CommStats
+from hatkernels.distributed.launch import as_comm, default_threads, mpi
+from hatkernels.distributed.matrix import DistributedMatrix
+from hatkernels.distributed.outcome import (
+    GATHER,
+    DistributedPoissonSolution,
+    Distribution,
+    _per,
+    _together,
+)
+from hatkernels.distributed.refined import (
+    DistributedMultigrid,
+    _masked_rows,
+    build_level,
+    fine_sides_on,
+    points_on,
+)
+from hatkernels.errors import InputError
+from hatkernels.mesh.core import Mesh
+from hatkernels.perf import peak_rss_bytes
+from hatkernels.problem import PoissonProblem
+from hatkernels.solver import report_convergence
+from hatkernels.stats import SolveStats
+
+__all__ = ["solve_partitioned", "solve_refined"]
+
+
+def _on_level(coef, part, per):
+    """A coarse-mesh Coefficient on a level's local mesh (cells inherit their parent's)."""
+    if coef is None:
+        return None
+    kind, value = coef.kind, coef.value
+    if isinstance(value, Pieces):  # by region, some region's value a callable
+        if any(q.kind == "point" for q in value.parts):
+            raise InputError(f"{coef.name}: a region's values per coarse point cannot be "
+                             f"used with refine=k on the partitioned path")
+        parent = part.cells // per
+        pieces = Pieces(value.parts, value.index[parent], parent, part.mesh.points,
+                        part.mesh.cells)
+        return Coefficient(kind, pieces, coef.name, coef.sign)
+    if kind in ("constant", "callable") or (kind == "tensor" and np.ndim(value) == 2):
+        return coef
+    if kind in ("cell", "tensor"):
+        return Coefficient(kind, value[part.cells // per], coef.name, coef.sign)
+    raise InputError(f"{coef.name} is given per point of the coarse mesh; with refine=k on "
+                     f"the partitioned path give numbers, callables or values per region")
+
+
+def _refuse_arrays(dirichlet, dirichlet_on, neumann, robin):
+    """Arrays of points or sides name the coarse mesh, not the fine one: refused."""
+    def is_array(v):
+        return isinstance(v, np.ndarray) or isinstance(v, list) and v and not all(
+            isinstance(k, str) for k in v)
+
+    if dirichlet_on is not None and not isinstance(dirichlet_on, str) and is_array(dirichlet_on):
+        raise InputError("dirichlet_on: with refine=k the distributed solve takes 'boundary' "
+                         "or boundary tags, not point indices")
+    if isinstance(dirichlet, (np.ndarray, list)):
+        raise InputError("dirichlet: with refine=k give a number, a callable or {tag: value}")
+    for name, v in (("neumann", neumann), ("robin", robin)):
+        if isinstance(v, tuple) and len(v) == (2 if name == "neumann" else 3) and is_array(v[0]):
+            raise InputError(f"{name}: with refine=k name boundary tags, not sides")
+
+
+def _held_values(dirichlet, coarse, part, held, held_pieces):
+    """Held values at the local points of a level (0 where not held)."""
+    g = np.zeros(part.n_local)
+    x = part.mesh.points.T
+
+    def value(v, where):
+        if callable(v):
+            out = np.asarray(v(*x[:, where]), dtype=np.float64)
+            return np.broadcast_to(out, (where.size,)) if out.ndim == 0 else out
+        return float(v)
+
+    if isinstance(dirichlet, dict):
+        done = np.zeros(part.n_local, dtype=bool)
+        for key, v in dirichlet.items():  # the first listed tag gives the value where tags meet
+            t = coarse.tags.side_tag(key)
+            sides = np.concatenate([p.sides for p in held_pieces if p.tag == t])
+            where = np.flatnonzero(points_on(part, coarse, sides) & ~done)
+            g[where] = value(v, where)
+            done[where] = True
+    else:
+        where = np.flatnonzero(held)
+        g[where] = value(dirichlet, where)
+    if not np.isfinite(g).all():
+        k = int(np.flatnonzero(~np.isfinite(g))[0])
+        raise InputError(f"dirichlet is {g[k]!r} at fine point {int(part.points[k])}")
+    return g
+
+
+def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, reaction,
+                  neumann, robin, rtol, atol, maxiter, quadrature, monitor, gather,
+                  options):
+    """See the module notes; returns ``(u, u_owned, owned, stats, problem)``."""
+    t0 = time.perf_counter()
+    timings = {}
+    rank, size = comm.Get_rank(), comm.Get_size()
+    _refuse_arrays(dirichlet, dirichlet_on, neumann, robin)
+    problem = PoissonProblem(coarse, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
+                             coefficient=coefficient, reaction=reaction, neumann=neumann,
+                             robin=robin, quadrature=quadrature)
+    pieces = problem.pieces
+    held_pieces = [p for p in pieces if p.kind == "held"]
+    if held_pieces:
+        held_sides = np.concatenate([p.sides for p in held_pieces])
+    elif problem.dirichlet.whole_boundary:
+        held_sides = (coarse.boundary_edges() if coarse.dim == 2
+                      else coarse.boundary_faces()).astype(np.int64)
+    else:
+        raise InputError("gmg with refine=k needs held values on whole boundary sides "
+                         "(dirichlet_on='boundary' or boundary tags)")
+    timings["boundary"] = time.perf_counter() - t0
+
+    t1 = time.perf_counter()
+    numberings = [fine_numbering(coarse, j) for j in range(1, k + 1)]
+    cell_owner = partition_coarse_cells(coarse, size, k, numbering=numberings[-1])
+    parts = [build_level(coarse, j + 1, cell_owner, rank, comm, numbering=numberings[j])
+             for j in range(k)]
+    timings["partition"] = time.perf_counter() - t1
+
+    t2 = time.perf_counter()
+    per = [(4 if coarse.dim == 2 else 8) ** (j + 1) for j in range(k)]
+    fixed = [points_on(p, coarse, held_sides) for p in parts]
+    coarse_fixed = np.zeros(coarse.n_points, dtype=bool)
+    coarse_fixed[np.unique(held_sides)] = True
+    fine, pf = parts[-1], per[-1]
+    mesh = fine.mesh
+    kappa = _on_level(problem.coefficient, fine, pf)
+    A = assemble_stiffness(mesh, kappa, quadrature=quadrature)
+    if problem.reaction is not None:
+        from hatkernels.assembly import StiffnessAssembler
+
+        A = A + StiffnessAssembler(mesh).assemble_mass(_on_level(problem.reaction, fine, pf),
+                                                       quadrature=quadrature)
+    b = np.zeros(mesh.n_points)
+    boundary = fine_sides_on(fine, coarse, (coarse.boundary_edges() if coarse.dim == 2
+                                             else coarse.boundary_faces()).astype(np.int64))
+    for p in pieces:
+        if p.kind == "held":
+            continue
+        if p.tag is None:  # a plain value: every fine boundary side that is not held
+            held_here = np.flatnonzero(fixed[-1])
+            is_held = np.zeros(mesh.n_points, dtype=bool)
+            is_held[held_here] = True
+            sides = boundary[~is_held[boundary].all(axis=1)]
+        else:
+            sides = fine_sides_on(fine, coarse, p.sides)
+        for c in p.data:
+            if c.kind not in ("constant", "callable"):
+                raise InputError(f"{c.name}: with refine=k give a number or a callable")
+        if p.kind == "flux":
+            b += side_load(mesh, p.data[0], sides, quadrature)
+        else:
+            A = A + side_mass(mesh, p.data[0], sides, quadrature)
+            b += side_load(mesh, p.data[1], sides, quadrature)
+    b += assemble_load(mesh, _on_level(problem.source, fine, pf), quadrature=quadrature)
+    g = _held_values(dirichlet, coarse, fine, fixed[-1], held_pieces)
+    n = fine.n_owned
+    rhs = b[:n] - A[:n] @ g
+    held_owned = np.flatnonzero(fixed[-1][:n])
+    rhs[held_owned] = g[held_owned]
+    rows, _, _ = _masked_rows(A, n, fixed[-1])
+    del A, b
+    stats = CommStats()
+    matrix = DistributedMatrix(rows, fine.pattern, comm, stats)
+    timings["assemble"] = time.perf_counter() - t2
+
+    t3 = time.perf_counter()
+    coefs = [problem.coefficient] + [_on_level(problem.coefficient, p, q)
+                                     for p, q in zip(parts, per, strict=True)]
+    M = DistributedMultigrid(coarse, parts, cell_owner, coefs, fixed, coarse_fixed, comm, stats,
+                             quadrature=quadrature, **options)
+    timings["setup"] = time.perf_counter() - t3
+    t4 = time.perf_counter()
+    result = cg(matrix, rhs, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
+                monitor=monitor)
+    timings["solve"] = time.perf_counter() - t4
+    u_owned = result.x
+    t5 = time.perf_counter()
+    u = _gather(comm, fine.points[:n], u_owned, numberings[-1].n_fine, gather)
+    timings["gather"] = time.perf_counter() - t5
+    timings["total"] = time.perf_counter() - t0
+    mine = {
+        "rank": rank, "owned_points": int(n), "cells": int(len(fine.cells)),
+        "ghost_points": int(fine.n_local - n), "neighbours": fine.pattern.neighbours.tolist(),
+        "coarse_cells": int((cell_owner == rank).sum()),
+        "levels_points": [int(p.n_local) for p in parts],
+        "operator_bytes": int(matrix.nbytes), "multigrid_bytes": M.nbytes,
+        "halo_bytes_per_product": int(8 * fine.pattern.send_counts.sum()),
+        "communication": stats.as_dict(), "timings": timings,
+        "peak_rss_bytes": peak_rss_bytes(),
+    }
+    balance = comm.allgather(mine)
+    stats_out = SolveStats(
+        iterations=result.iterations, converged=result.converged, residuals=result.residuals,
+        timings={key: max(bb["timings"][key] for bb in balance) for key in timings},
+        unknowns=int(numberings[-1].n_fine), preconditioner=M.description,
+        stored_bytes=sum(bb["operator_bytes"] for bb in balance),
+        peak_rss_bytes=max(bb["peak_rss_bytes"] for bb in balance),
+        threads=numba.get_num_threads(), info=result.info, message=result.message,
+        tolerance=result.tolerance, condition_estimate=result.condition_estimate,
+        nnz=int(comm.allreduce(rows.nnz)), dirichlet_points=int(comm.allreduce(len(held_owned))),
+        ranks=size,
+    )
+    return u, u_owned, fine.points[:n].copy(), stats_out, problem, balance
+
+
+def _gather(comm, owned, u_owned, n, gather):
+    """The whole solution in the serial numbering on every rank (True), rank 0 ("root")
+    or none (False)."""
+    if gather is False:
+        return None
+    MPI = mpi()
+    counts = np.array(comm.allgather(len(owned)), dtype=np.int64)
+    displs = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    root_only = gather != True  # noqa: E712  ("root")
+    ids = np.empty(n, dtype=np.int64) if not root_only or comm.Get_rank() == 0 else None
+    vals = np.empty(n) if ids is not None else None
+    if root_only:
+        comm.Gatherv([owned.astype(np.int64), MPI.INT64_T],
+                     [ids, (counts, displs), MPI.INT64_T] if ids is not None else None, root=0)
+        comm.Gatherv([u_owned, MPI.DOUBLE],
+                     [vals, (counts, displs), MPI.DOUBLE] if vals is not None else None, root=0)
+    else:
+        comm.Allgatherv([owned.astype(np.int64), MPI.INT64_T],
+                        [ids, (counts, displs), MPI.INT64_T])
+        comm.Allgatherv([u_owned, MPI.DOUBLE], [vals, (counts, displs), MPI.DOUBLE])
+    if ids is None:
+        return None
+    u = np.empty(n)
+    u[ids] = vals
+    return u
+
+
+def solve_partitioned(mesh, f, refine, comm, dirichlet, dirichlet_on, coefficient, reaction,
+                 neumann, robin, rtol, atol, maxiter, check, quadrature, matrix_free, variant,
+                 monitor, zero_mean, parts, gather, threads, options):
+    """The partitioned path of :func:`hatkernels.distributed.solve_poisson` (refine=k, gmg)."""
+    if not isinstance(mesh, Mesh):
+        raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
+    if matrix_free or variant is not None or zero_mean is not False or parts is not None:
+        raise InputError("refine=k with gmg takes no matrix_free, variant, zero_mean or "
+                         "partition (the coarse cells are split by RCB)")
+    if gather not in GATHER:
+        raise InputError(f"gather must be one of {GATHER}, got {gather!r}")
+    comm = as_comm(comm)
+    n_threads, ranks_on_node, how = default_threads(comm, threads)
+    dcomm = comm.Dup()
+    try:
+        with _threads(n_threads):
+            u, u_owned, owned, stats, problem, balance = _together(
+                dcomm, "the partitioned solve", solve_refined, mesh, f, refine, dcomm,
+                dirichlet=dirichlet, dirichlet_on=dirichlet_on, coefficient=coefficient,
+                reaction=reaction, neumann=neumann, robin=robin, rtol=rtol, atol=atol,
+                maxiter=maxiter, quadrature=quadrature, monitor=monitor, gather=gather,
+                options=options)
+    finally:
+        dcomm.Free()
+    iters = max(stats.iterations, 1)
+    stats.distribution = Distribution(
+        partition={"method": "rcb of coarse cells", "weight": "fine points owned"},
+        balance=balance,
+        communication={
+            "halo_bytes_per_product": sum(b["halo_bytes_per_product"] for b in balance),
+            "halo_exchanges_per_iteration": _per(balance, "halo_exchanges", iters),
+            "reductions_per_iteration": _per(balance, "reductions", iters),
+            "coarse_bytes_per_application": 8 * mesh.n_points,
+            "seconds_max": max(b["communication"]["seconds"] for b in balance),
+        },
+        threads_per_rank={"threads": n_threads, "ranks_on_node": ranks_on_node,
+                          "chosen_by": how},
+    )
+    report_convergence(stats, check)
+    return DistributedPoissonSolution(u=u, stats=stats, mesh=mesh, problem=problem,
+                                      u_owned=u_owned, owned=owned,
+                                      rank=comm.Get_rank(), size=comm.Get_size())
