@@ -39,7 +39,8 @@ def _same_as_serial(comm, coarse, k, f, rtol=1e-12, **data):
 
     serial = hatkernels.solve_poisson(_refined(coarse, k), f, preconditioner="gmg", rtol=rtol,
                                       **data)
-    dist = distributed.solve_poisson(coarse, f, refine=k, rtol=rtol, comm=comm, **data)
+    dist = distributed.solve_poisson(coarse, f, refine=k, preconditioner="gmg", rtol=rtol,
+                                     comm=comm, **data)
     rel = np.abs(dist.u - serial.u).max() / np.abs(serial.u).max()
     assert rel < 1e-10, rel
     assert abs(dist.stats.iterations - serial.stats.iterations) <= 1, (
@@ -116,7 +117,8 @@ def memory_per_rank_falls(comm):
     from hatkernels import distributed
     from hatkernels.mesh import rectangle
 
-    dist = distributed.solve_poisson(rectangle(8, 8), 1.0, refine=4, comm=comm, gather=False)
+    dist = distributed.solve_poisson(rectangle(8, 8), 1.0, refine=4, preconditioner="gmg",
+                                     comm=comm, gather=False)
     n_fine = dist.stats.unknowns
     local = max(b["levels_points"][-1] for b in dist.stats.distribution.balance)
     size = comm.Get_size()
@@ -131,8 +133,8 @@ def bad_input_fails_on_every_rank(comm):
     from hatkernels.mesh import rectangle
 
     try:
-        distributed.solve_poisson(rectangle(2, 2), 1.0, refine=1, comm=comm,
-                                  dirichlet_on=[0, 1])
+        distributed.solve_poisson(rectangle(2, 2), 1.0, refine=1, preconditioner="gmg",
+                                  comm=comm, dirichlet_on=[0, 1])
     except InputError as exc:
         assert "point indices" in str(exc)
     else:
