@@ -10,6 +10,8 @@ optional ``plot`` extra; :func:`available` says whether it is installed.
 
 from __future__ import annotations
 
+import textwrap
+
 import numpy as np
 
 from hatkernels.errors import InputError
@@ -21,6 +23,7 @@ __all__ = [
     "available",
     "convergence_figure",
     "plane_section",
+    "region_outlines",
     "residuals_figure",
     "section_figure",
     "solution_figure",
@@ -67,6 +70,34 @@ def _finite(values, name):
     return v
 
 
+def region_outlines(mesh):
+    """The edges of a triangle mesh that separate two regions or lie on the boundary.
+
+    Returns segments of shape (k, 2, 2) (end points, mesh coordinates) for a
+    mesh with region tags (:attr:`hatkernels.Mesh.regions`); none (shape
+    (0, 2, 2)) for a mesh without.
+
+    >>> from hatkernels.mesh import rectangle
+    >>> m = rectangle(2, 1).with_tags(regions=[1, 1, 2, 2])
+    >>> sorted(tuple(map(tuple, s)) for s in region_outlines(m).tolist()
+    ...        if s[0][0] == s[1][0] == 0.5)   # the interface x = 1/2
+    [((0.5, 0.0), (0.5, 1.0))]
+    >>> len(region_outlines(m)), len(region_outlines(rectangle(2, 1)))
+    (7, 0)
+    """
+    if mesh.regions is None:
+        return np.empty((0, 2, 2))
+    edges = mesh.edges()
+    around = mesh.triangle_edges().ravel()
+    region = np.repeat(mesh.regions.astype(np.int64), 3)
+    low = np.full(len(edges), np.iinfo(np.int64).max)
+    high = np.full(len(edges), np.iinfo(np.int64).min)
+    np.minimum.at(low, around, region)
+    np.maximum.at(high, around, region)
+    keep = (low != high) | (np.bincount(around, minlength=len(edges)) == 1)
+    return mesh.points[edges[keep]]
+
+
 def solution_figure(mesh, u, path, *, title="", label="u", length_scale=1.0, length_unit="",
                     outlines=(), levels=24, size=SIZE, dpi=DPI):
     """Filled contours of nodal values ``u`` on ``mesh``, with a colour bar; write a PNG.
@@ -84,6 +115,9 @@ def solution_figure(mesh, u, path, *, title="", label="u", length_scale=1.0, len
         in ``length_unit`` (1e3 and "mm" for a mesh in metres).
     outlines : sequence of (name, (x0, x1, y0, y1))
         Rectangles to outline and name (in mesh coordinates).
+
+    A mesh with region tags gets the edges between regions, and its boundary,
+    drawn as thin dark lines (:func:`region_outlines`).
     """
     u = _finite(u, "u")
     if u.shape != (mesh.n_points,):
@@ -105,6 +139,11 @@ def solution_figure(mesh, u, path, *, title="", label="u", length_scale=1.0, len
                   linewidths=0.3, alpha=0.5)
     if mesh.n_triangles <= 2500:  # small meshes: show the triangles
         ax.triplot(tri, color="0.6", linewidth=0.2)
+    segments = region_outlines(mesh)
+    if len(segments):
+        from matplotlib.collections import LineCollection
+
+        ax.add_collection(LineCollection(segments * s, colors="0.1", linewidths=0.6))
     for name, (x0, x1, y0, y1) in outlines:
         ax.add_patch(Rectangle((x0 * s, y0 * s), (x1 - x0) * s, (y1 - y0) * s, fill=False,
                                edgecolor="cyan", linewidth=1.0, linestyle="--"))
@@ -119,7 +158,7 @@ def solution_figure(mesh, u, path, *, title="", label="u", length_scale=1.0, len
     ax.set_xlabel(f"x{unit}")
     ax.set_ylabel(f"y{unit}")
     if title:
-        ax.set_title(title, fontsize=10)
+        ax.set_title(textwrap.fill(title, 70), fontsize=10)
     bar = fig.colorbar(filled, ax=ax, label=label, shrink=0.9)
     ticks = MaxNLocator(8).tick_values(lo, hi)
     bar.set_ticks(ticks[(ticks >= lo) & (ticks <= hi)])
