@@ -1,0 +1,98 @@
+"""Iterations, memory per rank and communication of the partitioned distributed multigrid
+for P = 1, 2, 4, ... ranks (not a timed test: counts and bytes; times only as measured).
+
+    python bench/distributed_refined.py --ranks 1 2 4 8 16 --cells 16 --refine 6 \
+        --out bench/results/distributed_refined.json
+
+runs ``mpiexec -n P python bench/distributed_refined.py --worker ...`` for each P
+(oversubscribed when P exceeds the cores: then the times are not scaling figures)
+and writes one JSON record per P: CG iterations, the serial numbers of points
+and unknowns, per rank the finest level's local points, owned points, ghosts,
+neighbours and peak resident memory, the halo bytes per product and the coarse
+bytes per cycle.  ``--dim 3`` uses ``cuboid(cells)``; ``--per-rank`` keeps the
+points per rank fixed instead (weak scaling: ``cells`` grows with P).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+
+
+def worker(args):
+    from mpi4py import MPI
+
+    import hatkernels
+    from hatkernels import distributed
+    from hatkernels.mesh import cuboid, rectangle
+
+    comm = MPI.COMM_WORLD
+    cells = args.cells
+    coarse = rectangle(cells, cells) if args.dim == 2 else cuboid(cells)
+    f = (lambda x, y: 1.0 + x * y) if args.dim == 2 else (lambda x, y, z: 1.0 + x * y * z)
+    sol = distributed.solve_poisson(coarse, f, refine=args.refine, preconditioner="gmg",
+                                    rtol=1e-8, comm=comm, gather=False)
+    if comm.Get_rank() == 0:
+        s = sol.stats
+        bal = s.distribution.balance
+        print(json.dumps({
+            "ranks": comm.Get_size(), "dim": args.dim, "coarse_cells": cells,
+            "refine": args.refine, "points": s.unknowns, "iterations": s.iterations,
+            "converged": s.converged, "timings_max": s.timings,
+            "version": hatkernels.__version__,
+            "per_rank": [{k: b[k] for k in ("rank", "owned_points", "ghost_points", "cells",
+                                             "neighbours", "levels_points", "peak_rss_bytes",
+                                             "halo_bytes_per_product", "operator_bytes",
+                                             "multigrid_bytes")} for b in bal],
+            "halo_bytes_per_product": s.distribution.communication["halo_bytes_per_product"],
+            "coarse_bytes_per_cycle": s.distribution.communication[
+                "coarse_bytes_per_application"],
+        }), flush=True)
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
+    ap.add_argument("--ranks", type=int, nargs="+", default=[1, 2, 4])
+    ap.add_argument("--dim", type=int, choices=(2, 3), default=2)
+    ap.add_argument("--cells", type=int, default=16)
+    ap.add_argument("--refine", type=int, default=6)
+    ap.add_argument("--per-rank", action="store_true",
+                    help="weak scaling: coarse cells grow so that points per rank stay fixed")
+    ap.add_argument("--out")
+    args = ap.parse_args()
+    if args.worker:
+        worker(args)
+        return
+    here = os.path.dirname(os.path.abspath(__file__))
+    mpiexec = os.path.join(os.path.dirname(sys.executable), "mpiexec")
+    records = []
+    for p in args.ranks:
+        cells = args.cells
+        if args.per_rank:
+            cells = round(args.cells * p ** (1.0 / args.dim))
+        cmd = [mpiexec if os.path.exists(mpiexec) else "mpiexec", "-n", str(p), sys.executable,
+               os.path.join(here, "distributed_refined.py"), "--worker", "--dim", str(args.dim),
+               "--cells", str(cells), "--refine", str(args.refine)]
+        out = subprocess.run(cmd, capture_output=True, text=True, check=True).stdout
+        rec = json.loads(out.strip().splitlines()[-1])
+        records.append(rec)
+        worst = max(r["peak_rss_bytes"] for r in rec["per_rank"]) / 2**20
+        local = max(r["levels_points"][-1] for r in rec["per_rank"])
+        print(f"P={p:3d}: {rec['points']:,} points, {rec['iterations']} iterations, largest "
+              f"rank {local:,} local points, peak {worst:.0f} MiB, halo "
+              f"{rec['halo_bytes_per_product'] / 1e3:.1f} kB per product, solve "
+              f"{rec['timings_max']['solve']:.2f} s", flush=True)
+    if args.out:
+        with open(args.out + ".tmp", "w") as fh:
+            json.dump({"runs": records, "note": "oversubscribed beyond the cores: times are "
+                       "not scaling figures", "cores": os.cpu_count(),
+                       "per_rank": args.per_rank}, fh, indent=1)
+        os.replace(args.out + ".tmp", args.out)
+
+
+if __name__ == "__main__":
+    main()
