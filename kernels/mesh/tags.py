@@ -330,7 +330,7 @@ def label_sides(mesh, labels):
     >>> from hatkernels.mesh import rectangle
     >>> m = label_sides(rectangle(2, 2), {"left": lambda x, y: x == 0})
     >>> m.tags.sides_of([1]).tolist()
-    [[2, 0], [5, 2]]
+    [[3, 0], [6, 3]]
     """
     b = mesh.boundary_edges() if mesh.dim == 2 else mesh.boundary_faces()
     tags, names = _by_predicate(_centres(mesh.points, b), labels, "labels")
