@@ -141,6 +141,55 @@ def bad_input_fails_on_every_rank(comm):
         raise AssertionError("point indices with refine=k were accepted")
 
 
+@check
+def pieces_make_the_whole_solution(comm):
+    import os
+    import tempfile
+
+    import meshio
+    import numpy as np
+
+    import hatkernels
+    from hatkernels import distributed
+    from hatkernels.mesh import rectangle
+    from hatkernels.mesh.tags import label_cells
+
+    coarse = label_cells(rectangle(4, 3), {"a": lambda x, y: x < 0.5, "b": lambda x, y: x >= 0})
+    def f(x, y):
+        return 1 + x * y
+
+    dist = distributed.solve_poisson(coarse, f, refine=2, preconditioner="gmg", rtol=1e-12,
+                                     comm=comm, gather=False)
+    where = comm.bcast(tempfile.mkdtemp() if comm.Get_rank() == 0 else None, root=0)
+    out = os.path.join(where, "parts")
+    index = distributed.write_pvtu(out, dist, comm=comm)
+    if comm.Get_rank() == 0:
+        serial = hatkernels.solve_poisson(_refined(coarse, 2), f, preconditioner="gmg",
+                                          rtol=1e-12)
+        fine = _refined(coarse, 2)
+        text = open(index).read()
+        pieces = [f"piece-{r:04d}.vtu" for r in range(comm.Get_size())]
+        assert all(f'Source="{p}"' in text for p in pieces)
+        cells = 0
+        for p in pieces:
+            m = meshio.read(os.path.join(out, p))
+            cells += len(m.cells_dict["triangle"])
+            xy = m.points[:, :2]
+            # each piece point is a point of the fine mesh with the serial value there
+            d = np.linalg.norm(fine.points[None, :, :] - xy[:, None, :], axis=2)
+            k = d.argmin(axis=1)
+            assert d.min(axis=1).max() < 1e-12
+            assert np.abs(m.point_data["u"] - serial.u[k]).max() < 1e-9
+            assert set(np.unique(m.cell_data["region"][0]).tolist()) <= {1, 2}
+        assert cells == fine.n_cells  # every cell in exactly one piece
+    try:
+        distributed.write_pvtu(out, dist, comm=comm)
+    except hatkernels.errors.InputError as exc:
+        assert "exists" in str(exc) or "already" in str(exc), str(exc)
+    else:
+        raise AssertionError("an existing output was overwritten without force")
+
+
 def main():
     from mpi4py import MPI
 

@@ -127,4 +127,4 @@ def test_partitioned_solve_matches_the_serial_one(ranks):
     code, out, err = run_mpi(ranks, [sys.executable, str(script)])
     print(out)
     assert code == 0, f"exit {code}\n{out}\n{err}"
-    assert f"all 6 checks passed on {ranks} ranks" in out
+    assert f"all 7 checks passed on {ranks} ranks" in out

@@ -27,6 +27,7 @@ from hatkernels.distributed.partition import (
     partition_from_owner,
 )
 from hatkernels.distributed.precond import COARSE_SPACES
+from hatkernels.distributed.pvtu import write_pvtu
 from hatkernels.distributed.solve import GATHER, DistributedPoissonSolution, solve_poisson
 from hatkernels.distributed.subdomain import Subdomain, local_coefficient, subdomain
 
@@ -51,4 +52,5 @@ __all__ = [
     "reduce_local",
     "solve_poisson",
     "subdomain",
+    "write_pvtu",
 ]

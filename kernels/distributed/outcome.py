@@ -67,6 +67,9 @@ class DistributedPoissonSolution(PoissonSolution):
     owned: np.ndarray = None
     rank: int = 0
     size: int = 1
+    #: the partitioned path: ``(local mesh, point data, cell data)`` of this rank's own
+    #: cells, for :func:`hatkernels.distributed.write_pvtu`; None on the replicated path
+    piece: tuple = dataclasses.field(default=None, repr=False)
 
     def __repr__(self):
         s = self.stats

@@ -204,6 +204,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
                 monitor=monitor)
     timings["solve"] = time.perf_counter() - t4
     u_owned = result.x
+    piece = _piece(fine, u_owned, matrix, cell_owner, rank, pf, coarse)
     t5 = time.perf_counter()
     u = _gather(comm, fine.points[:n], u_owned, numberings[-1].n_fine, gather)
     timings["gather"] = time.perf_counter() - t5
@@ -230,7 +231,23 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
         nnz=int(comm.allreduce(rows.nnz)), dirichlet_points=int(comm.allreduce(len(held_owned))),
         ranks=size,
     )
-    return u, u_owned, fine.points[:n].copy(), stats_out, problem, balance
+    return u, u_owned, fine.points[:n].copy(), stats_out, problem, balance, piece
+
+
+def _piece(fine, u_owned, matrix, cell_owner, rank, per, coarse):
+    """This rank's own fine cells (those of its coarse cells: each fine cell on one rank)
+    with their points, u there (ghost values by one halo exchange) and their regions."""
+    u = np.zeros(fine.n_local)
+    u[: fine.n_owned] = u_owned
+    matrix.halo.exchange(u)
+    own = cell_owner[fine.cells // per] == rank
+    cells = fine.mesh.cells[own]
+    used, local = np.unique(cells, return_inverse=True)
+    mesh = Mesh._trusted(fine.mesh.points[used], local.reshape(cells.shape))
+    cell_data = {}
+    if coarse.regions is not None:
+        cell_data["region"] = coarse.regions[fine.cells[own] // per].astype(np.int32)
+    return mesh, {"u": u[used]}, cell_data
 
 
 def _gather(comm, owned, u_owned, n, gather):
@@ -276,7 +293,7 @@ def solve_partitioned(mesh, f, refine, comm, dirichlet, dirichlet_on, coefficien
     dcomm = comm.Dup()
     try:
         with _threads(n_threads):
-            u, u_owned, owned, stats, problem, balance = _together(
+            u, u_owned, owned, stats, problem, balance, piece = _together(
                 dcomm, "the partitioned solve", solve_refined, mesh, f, refine, dcomm,
                 dirichlet=dirichlet, dirichlet_on=dirichlet_on, coefficient=coefficient,
                 reaction=reaction, neumann=neumann, robin=robin, rtol=rtol, atol=atol,
@@ -301,4 +318,4 @@ def solve_partitioned(mesh, f, refine, comm, dirichlet, dirichlet_on, coefficien
     report_convergence(stats, check)
     return DistributedPoissonSolution(u=u, stats=stats, mesh=mesh, problem=problem,
                                       u_owned=u_owned, owned=owned,
-                                      rank=comm.Get_rank(), size=comm.Get_size())
+                                      rank=comm.Get_rank(), size=comm.Get_size(), piece=piece)
