@@ -282,7 +282,13 @@ def _by_predicate(centres, labels, what):
     for k, (name, test) in enumerate(labels.items(), start=1):
         if not callable(test):
             raise InputError(f"{what}[{name!r}] must be a callable test(x, y[, z]) -> bool")
-        hit = np.asarray(test(*centres.T), dtype=bool)
+        try:
+            hit = np.asarray(test(*centres.T), dtype=bool)
+        except Exception as exc:
+            raise InputError(f"{what}[{name!r}] raised {type(exc).__name__}: {exc}") from exc
+        if hit.ndim and hit.shape != (len(centres),):
+            raise InputError(f"{what}[{name!r}] returned shape {hit.shape} for {len(centres)} "
+                             f"centres; it must return one value per centre (or one for all)")
         hit = np.broadcast_to(hit, (len(centres),))
         out[(out < 0) & hit] = k
         names[name] = k
