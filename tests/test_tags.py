@@ -221,6 +221,20 @@ def test_with_tags_accepts_the_names_of_another_mesh():
     assert dict(again.tags.side_names) == dict(m.tags.side_names)
 
 
+@pytest.mark.parametrize("label", [label_cells, label_sides])
+@pytest.mark.parametrize("test, words", [
+    (lambda x, y: x[:2] < 1, ["'bad'", "2", "one value"]),
+    (lambda x, y: 1 / 0, ["'bad'", "ZeroDivisionError"]),
+    (lambda x: x < 1, ["'bad'", "TypeError"]),
+    (0.5, ["'bad'", "callable"]),
+], ids=["shape", "raises", "arguments", "not-callable"])
+def test_label_tests_that_fail_are_input_errors_naming_the_label(label, test, words):
+    with pytest.raises(InputError) as err:
+        label(BASE, {"good": lambda x, y: x < 0.5, "bad": test})
+    for w in words:
+        assert w in str(err.value), (w, str(err.value))
+
+
 INTERIOR = [0, 5]  # an edge of two triangles of rectangle(3, 3)
 
 
