@@ -26,7 +26,6 @@ from __future__ import annotations
 import argparse
 import contextlib
 import errno
-import os
 import signal
 import sys
 import textwrap
@@ -38,9 +37,11 @@ from hatkernels import PRECONDITIONERS
 from hatkernels.checks import integer_option, real_option
 from hatkernels.cli import bench, info, solve, verify
 from hatkernels.cli.common import PROG, error
+from hatkernels.cli.outputs import identity as _identity
 from hatkernels.cli.progress import Progress
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.io import OutputNotWritable
+from hatkernels.problemfile import CASES, case_file
 
 __all__ = ["main", "build_parser", "UsageError", "EXIT"]
 
@@ -75,6 +76,20 @@ other faces insulated. The mesh: 16 x 12 x 2 cubes of 4 mm, six tetrahedra
 each, refined --refine K times (default 4: 9,437,184 tetrahedra of 0.25 mm
 cubes). --source replaces the regions by a uniform q, --film and --coolant
 the cooling.
+
+--scenario heated-insert (invented demonstration data, 2-D): an aluminium
+mounting plate 120 mm x 10 mm in cross-section with a stainless steel insert
+carrying a 360 W/m heater, its left end in a cold clamp at 20 degC, its top
+face cooled by air (h = 10 W/(m^2 K), 25 degC), the rest insulated; read from
+a problem file shipped with hatkernels (the report says where, to copy it).
+
+PROBLEM.toml: a problem file (TOML): a mesh file with region and boundary
+tags, a material per region, a condition per boundary tag (held temperature,
+heat flux, or convection), solver and output settings; see
+docs/problem-files.md. It excludes --mesh, --scenario and the options that
+set a scenario's data (--cells, --source, --conductivity, --dirichlet,
+--film, --coolant); --refine, --preconditioner, --rtol, --maxiter and --out
+override the file.
 
 With --mesh FILE the problem is -div(k grad u) = Q on that mesh (triangles,
 or tetrahedra read through meshio) with u = G on its whole boundary
@@ -151,8 +166,42 @@ SCENARIO_ONLY = {"--cells": ("cells", "plate"), "--dirichlet": ("dirichlet", "pl
                  "--film": ("film", "block"), "--coolant": ("coolant", "block")}
 
 
+#: The solve settings a problem file may give, and their defaults when neither it nor the
+#: command line does.
+SOLVE_DEFAULTS = {"preconditioner": "amg", "rtol": 1e-10, "maxiter": None,
+                  "out": "hatkernels-out"}
+#: Options that set a scenario's mesh or data, which a problem file gives itself.
+NOT_WITH_A_FILE = ("--mesh", "--cells", "--source", "--conductivity", "--dirichlet", "--film",
+                   "--coolant")
+
+
+def _check_problem_file(args, prog):
+    """A problem file (PROBLEM.toml or a packaged one) excludes the options that set a
+    scenario's mesh or data; the others' defaults wait until the file is read."""
+    args.defaults = dict(SOLVE_DEFAULTS)
+    if args.problem is not None and args.scenario is not None:
+        raise UsageError(f"PROBLEM.toml ({args.problem}) and --scenario both choose the "
+                         f"problem; give one (see '{prog} --help')")
+    what = (f"PROBLEM.toml ({args.problem})" if args.problem is not None
+            else f"--scenario {args.scenario}" if args.scenario in CASES else None)
+    if what is None:
+        args.problem_file = None
+        for key, value in SOLVE_DEFAULTS.items():
+            if getattr(args, key) is None:
+                setattr(args, key, value)
+        return
+    given = [flag for flag in NOT_WITH_A_FILE if getattr(args, flag[2:]) is not None]
+    if given:
+        raise UsageError(f"{' and '.join(given)} cannot be combined with {what}: the problem "
+                         f"file gives the mesh and the data (see '{prog} --help')")
+    args.problem_file = args.problem if args.problem is not None else case_file(args.scenario)
+
+
 def _check_scenario(args, prog):
     """The solve options that do not go together; UsageError naming the option."""
+    _check_problem_file(args, prog)
+    if args.problem_file is not None:
+        return
     if args.cells is not None and args.refine is not None:
         raise UsageError(f"--cells and --refine both set the mesh size; give one "
                          f"(see '{prog} --help')")
@@ -176,13 +225,18 @@ def _add_solve(sub, common, names):
         help="solve a built-in heat-spreader scenario (or a mesh file) and write results",
         description=textwrap.fill(
             "Solve steady conduction on the built-in heat-spreader plate (default: 1,228,800 "
-            "triangles), the heat-spreader block (--scenario block: 9,437,184 tetrahedra) or "
-            "a mesh file; print a summary and write solution.npz, summary.json, "
+            "triangles), the heat-spreader block (--scenario block: 9,437,184 tetrahedra), "
+            "a problem file (PROBLEM.toml) or a mesh file; print a summary and write "
+            "solution.npz, summary.json, "
             "solution.png, residuals.png and solution.vtu (with meshio) into --out.", 79),
         epilog=SCENARIO_HELP,
     )
-    p.add_argument("--scenario", choices=("plate", "block"),
-                   help="the built-in scenario: plate (2-D, the default) or block (3-D)")
+    p.add_argument("problem", nargs="?", metavar="PROBLEM.toml",
+                   help="a problem file (TOML: mesh file, materials by region, conditions by "
+                        "boundary tag); see below")
+    p.add_argument("--scenario", choices=("plate", "block", *CASES),
+                   help="the built-in scenario: plate (2-D, the default), block (3-D), or a "
+                        "problem file shipped with hatkernels: " + ", ".join(CASES))
     size = p.add_mutually_exclusive_group()
     _number(p, "--cells", int, group=size, minimum=1, metavar="NX",
             help="plate: cells along the 120 mm side (the 80 mm side is scaled); "
@@ -208,9 +262,9 @@ def _add_solve(sub, common, names):
             help="block: film coefficient of the cooled bottom face, W/(m^2 K) (default 5000)")
     _number(p, "--coolant", float, metavar="T",
             help="block: coolant temperature, degC (default 25)")
-    p.add_argument("--preconditioner", choices=names, default="amg",
+    p.add_argument("--preconditioner", choices=names,
                    help="preconditioner for conjugate gradients (default: amg)")
-    _number(p, "--rtol", float, positive=True, default=1e-10,
+    _number(p, "--rtol", float, positive=True,
             help="relative residual tolerance (default 1e-10)")
     p.add_argument("--no-memory-check", dest="memory_check", action="store_false",
                    help="solve even when the estimated peak memory exceeds what is available "
@@ -218,15 +272,17 @@ def _add_solve(sub, common, names):
                         "a solve is refused before it starts)")
     _number(p, "--maxiter", int, minimum=1, metavar="N",
             help="at most N iterations (default 10 x unknowns); not converging exits 1")
-    _output(p, "hatkernels-out")
+    _output(p, "hatkernels-out", later=True)
     p.set_defaults(func=solve.run)
     return p
 
 
-def _output(parser, default):
-    """--out and --force, the same for every command that writes a directory."""
-    parser.add_argument("--out", default=default, metavar="DIR",
-                        help=f"output directory, written whole or not at all (default {default})")
+def _output(parser, default, later=False):
+    """--out and --force, the same for every command that writes a directory (``later``: the
+    default is filled after parsing, when no problem file gives one)."""
+    parser.add_argument("--out", default=None if later else default, metavar="DIR",
+                        help=f"output directory, written whole or not at all (default {default}"
+                             f"{'; a problem file may name one' if later else ''})")
     parser.add_argument("--force", action="store_true",
                         help="replace an existing output directory written by hatkernels")
 
@@ -347,15 +403,6 @@ def _target(args):
     if args.command in ("solve", "verify"):
         return args.out
     return args.json if args.command == "bench" else None
-
-
-def _identity(path):
-    """What tells whether ``path`` was replaced meanwhile: its inode and time, or None."""
-    try:
-        st = os.lstat(path)
-    except (OSError, TypeError):
-        return None
-    return st.st_ino, st.st_mtime_ns
 
 
 def _left_as_it_was(args):

@@ -8,40 +8,59 @@ from hatkernels import io as kio
 from hatkernels import plot
 from hatkernels.cli.common import not_installed
 
-__all__ = ["write_solve_outputs"]
+__all__ = ["identity", "write_outputs", "write_solve_outputs"]
 
 #: What summary.json repeats in the metadata of solution.npz.
 NPZ_METADATA = ("generator", "created", "command", "caution", "units", "problem", "solution")
 
 
+def identity(path):
+    """What tells whether ``path`` was replaced meanwhile: its inode and time, or None."""
+    try:
+        st = os.lstat(path)
+    except (OSError, TypeError):
+        return None
+    return st.st_ino, st.st_mtime_ns
+
+
 def write_solve_outputs(directory, problem, u, summary, progress, rtol):
+    """Write a scenario's files into ``directory`` (see :func:`write_outputs`)."""
+    return write_outputs(
+        directory, problem.mesh, u, summary, progress, rtol,
+        cell={"source": problem.source_array()}, name=problem.name, quantity=problem.quantity,
+        unit=problem.unit, length_scale=problem.length_scale, length_unit=problem.length_unit,
+        outlines=[(c.name, c.bounds) for c in problem.components])
+
+
+def write_outputs(directory, mesh, u, summary, progress, rtol, *, cell, name, quantity, unit,
+                  length_scale, length_unit, outlines=()):
     """Write a solve's files into ``directory`` (a temporary one, renamed whole by the caller).
 
-    Figures need matplotlib and solution.vtu needs meshio; without them those
-    files are skipped and the summary says so.  Adds ``files`` and
-    ``skipped`` to ``summary`` before writing it.
+    ``u`` goes into the files as ``quantity`` (``u`` in solution.npz), ``cell``
+    holds arrays of one value per cell; the picture names ``name`` and shows
+    ``outlines`` (boxes in mesh coordinates; a mesh's regions are outlined by
+    the picture itself).  Figures need matplotlib and solution.vtu needs
+    meshio; without them those files are skipped and the summary says so.
+    Adds ``files`` and ``skipped`` to ``summary`` before writing it.
     """
     files = ["solution.npz", "summary.json"]
     skipped = []
     meta = {k: summary[k] for k in NPZ_METADATA}
-    cell = {"source": problem.source_array()}
-    point = {problem.quantity: u}
-    kio.write_solution(os.path.join(directory, "solution.npz"), problem.mesh,
+    point = {quantity: u}
+    kio.write_solution(os.path.join(directory, "solution.npz"), mesh,
                        {"u": u}, meta, cell_data=cell)
     if plot.available():
-        label = problem.quantity + (f" ({problem.unit})" if problem.unit else "")
-        title = (f"{problem.name}: {problem.quantity}, max {summary['solution']['max']:.4g}"
-                 f"{' ' + problem.unit if problem.unit else ''}")
+        label = quantity + (f" ({unit})" if unit else "")
+        title = (f"{name}: {quantity}, max {summary['solution']['max']:.4g}"
+                 f"{' ' + unit if unit else ''}")
         progress.phase("write: solution.png")
-        picture = {"title": title, "label": label, "length_scale": problem.length_scale,
-                   "length_unit": problem.length_unit}
+        picture = {"title": title, "label": label, "length_scale": length_scale,
+                   "length_unit": length_unit}
         path = os.path.join(directory, "solution.png")
-        if problem.mesh.dim == 2:
-            plot.solution_figure(problem.mesh, u, path, **picture,
-                                 outlines=[(c.name, c.bounds) for c in problem.components])
+        if mesh.dim == 2:
+            plot.solution_figure(mesh, u, path, **picture, outlines=outlines)
         else:  # two plane sections through the hottest point
-            plot.section_figure(problem.mesh, u, path, **picture,
-                                boxes=[(c.name, c.bounds) for c in problem.components])
+            plot.section_figure(mesh, u, path, **picture, boxes=outlines)
         method = summary["solver"]["preconditioner"].split(":")[0]
         plot.residuals_figure(summary["solver"]["residuals"],
                               os.path.join(directory, "residuals.png"), rtol=rtol,
@@ -51,7 +70,7 @@ def write_solve_outputs(directory, problem, u, summary, progress, rtol):
         skipped.append(not_installed("solution.png and residuals.png", "matplotlib"))
     if kio.meshio_available():
         progress.phase("write: solution.vtu")
-        kio.write_vtu(os.path.join(directory, "solution.vtu"), problem.mesh, point, cell)
+        kio.write_vtu(os.path.join(directory, "solution.vtu"), mesh, point, cell)
         files.append("solution.vtu")
     else:
         skipped.append(not_installed("solution.vtu", "meshio"))

@@ -2,12 +2,19 @@
 
 from __future__ import annotations
 
+import warnings
+
 from hatkernels import block, scenarios
 from hatkernels import io as kio
+from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.mesh import Mesh, cuboid, rectangle
 from hatkernels.scenarios import COARSE_CELLS, DEFAULT_CELLS, PLATE
 
-__all__ = ["build_mesh", "make_problem", "tiny_problem"]
+__all__ = ["REFINE_HINT", "build_mesh", "make_problem", "needs_refinement", "refined",
+           "tiny_problem"]
+
+#: Added to the library's refusal of a preconditioner that needs a mesh made by refinement.
+REFINE_HINT = "; in this command --refine K builds the mesh by refinement"
 
 
 def _times(k):
@@ -47,12 +54,37 @@ def build_mesh(args, progress, arrays=None):
                        f"{PLATE.width / ny * 1e3:.4g} mm")
     if args.refine and args.mesh is not None:
         description += f", refined {_times(args.refine)}"
-    for k in range(args.refine or 0):
+    return refined(mesh, args.refine or 0, progress), description
+
+
+def refined(mesh, times, progress):
+    """``mesh`` refined ``times`` times, each refinement announced."""
+    for k in range(times):
         words = "triangles" if mesh.dim == 2 else "tetrahedra"
-        progress.phase(f"mesh: refinement {k + 1} of {args.refine} "
+        progress.phase(f"mesh: refinement {k + 1} of {times} "
                        f"({2**mesh.dim * mesh.n_cells:,} {words})")
         mesh = mesh.refine()
-    return mesh, description
+    return mesh
+
+
+def needs_refinement(args):
+    """Whether the preconditioner refuses a mesh without a refinement history but takes one with it.
+
+    Asked of the library, on the same tiny triangulation with and without
+    the history, only after it refused a solve: the command knows no
+    preconditioner by name.
+    """
+    def accepted(mesh):
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                scenarios.solve_problem(scenarios.mesh_problem(mesh),
+                                        preconditioner=args.preconditioner, rtol=args.rtol)
+        except (InputError, ConvergenceError):
+            return False
+        return True
+
+    return accepted(rectangle(4, 4).refine()) and not accepted(rectangle(8, 8))
 
 
 def make_problem(args, mesh, description):

@@ -1,5 +1,8 @@
 """``hatkernels solve``: the built-in scenario (or a mesh file), solved, checked and written.
 
+A problem file (``hatkernels solve PROBLEM.toml``, or a packaged one chosen
+by ``--scenario``) runs through :mod:`hatkernels.cli.problemfile`.
+
 Under ``mpiexec`` with more than one rank the same options run the
 distributed solve (:mod:`hatkernels.cli.solve_mpi`); the launcher's
 environment is read without importing mpi4py.
@@ -12,17 +15,24 @@ import warnings
 
 from hatkernels import io as kio
 from hatkernels import scenarios
-from hatkernels.cli import solve_mpi
+from hatkernels.cli import problemfile, solve_mpi
 from hatkernels.cli.common import command_line, threads
 from hatkernels.cli.outputs import write_solve_outputs
-from hatkernels.cli.problem import build_mesh, make_problem, tiny_problem
+from hatkernels.cli.problem import (
+    REFINE_HINT,
+    build_mesh,
+    make_problem,
+    needs_refinement,
+    tiny_problem,
+)
 from hatkernels.cli.progress import CompileNotice, IterationReport
 from hatkernels.cli.summary import solve_report, solve_summary
 from hatkernels.distributed.launch import ranks_from_environment
 from hatkernels.errors import ConvergenceError, InputError
-from hatkernels.mesh import rectangle
 
 __all__ = ["run", "PHASE_TEXT"]
+
+_needs_refinement = needs_refinement  # its older name here
 
 #: The progress line for each phase the library announces.
 PHASE_TEXT = {
@@ -30,9 +40,6 @@ PHASE_TEXT = {
     "boundary": "boundary: checks and boundary conditions",
     "solve": "solve: preconditioner setup and conjugate gradients",
 }
-
-#: Added to the library's refusal of a preconditioner that needs a mesh made by refinement.
-REFINE_HINT = "; in this command --refine K builds the mesh by refinement"
 
 
 def _warm_up(args, dim=2):
@@ -54,26 +61,6 @@ def _warm_up(args, dim=2):
         pass  # the real problem reports its own errors
 
 
-def _needs_refinement(args):
-    """Whether the preconditioner refuses a mesh without a refinement history but takes one with it.
-
-    Asked of the library, on the same tiny triangulation with and without
-    the history, only after it refused a solve: the command knows no
-    preconditioner by name.
-    """
-    def accepted(mesh):
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                scenarios.solve_problem(scenarios.mesh_problem(mesh),
-                                        preconditioner=args.preconditioner, rtol=args.rtol)
-        except (InputError, ConvergenceError):
-            return False
-        return True
-
-    return accepted(rectangle(4, 4).refine()) and not accepted(rectangle(8, 8))
-
-
 def _solve(args, problem, progress):
     """The library's solve of ``problem``; a refusal for want of refinement says what to type."""
     try:
@@ -84,7 +71,7 @@ def _solve(args, problem, progress):
             monitor=IterationReport(progress),
         )
     except InputError as exc:
-        if problem.mesh.refinement is None and _needs_refinement(args):
+        if problem.mesh.refinement is None and needs_refinement(args):
             size = (" (--refine 6 gives the default size)"
                      if args.mesh is None and args.scenario != "block" else "")
             raise InputError(f"{exc}{REFINE_HINT}{size}") from exc
@@ -93,6 +80,8 @@ def _solve(args, problem, progress):
 
 def run(args, progress):
     """Run ``hatkernels solve``; return the exit code."""
+    if args.problem_file is not None:
+        return problemfile.run(args, progress)
     if ranks_from_environment() > 1:
         return solve_mpi.run(args, progress)
     command = command_line(args)

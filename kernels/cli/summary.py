@@ -7,6 +7,8 @@ they feed.
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 
 from hatkernels._text import format_seconds
@@ -20,6 +22,9 @@ __all__ = [
     "solve_summary",
     "solve_report",
     "distributed_report",
+    "file_statement",
+    "file_summary",
+    "file_report",
 ]
 
 #: Phases the library times, copied into the record under the same names.
@@ -95,6 +100,49 @@ def _extreme(u, used, which):
     return v, int(used[k]), ties
 
 
+def _run_record(args, sol, timings, kernels_seconds):
+    """What a record says of the solve itself: unknowns, matrix, solver, phase times."""
+    figures = solve_figures(sol)
+    res = figures["residuals"]
+    out = {key: figures[key] for key in ("unknowns", "dirichlet_points", "nnz", "matrix_free",
+                                         "operator_bytes")}
+    out["solver"] = {
+        "preconditioner": figures["preconditioner"],
+        "requested": args.preconditioner,
+        "rtol": args.rtol,
+        "maxiter": args.maxiter,
+        "converged": figures["converged"],
+        "iterations": figures["iterations"],
+        "initial_residual": float(res[0]),
+        "final_residual": float(res[-1]),
+        "relative_residual": float(res[-1] / res[0]) if res[0] > 0 else 0.0,
+        "residuals": res.tolist(),
+        "threads": figures["threads"],
+    }
+    t = dict(timings)
+    t["kernels"] = kernels_seconds
+    for key in LIBRARY_PHASES:
+        t[key] = figures["timings"][key]
+    t["library_total"] = figures["timings"]["total"]
+    out["timings_s"] = t
+    return out
+
+
+def _solution_record(mesh, u, quantity):
+    """Largest and smallest value (where, on how many points) and the mean of ``u``."""
+    used = np.ones(mesh.n_points, dtype=bool)
+    used[mesh.unused_points()] = False  # points in no cell carry no value
+    used = np.flatnonzero(used)
+    vmax, imax, nmax = _extreme(u, used, "max")
+    vmin, imin, nmin = _extreme(u, used, "min")
+    return {
+        "quantity": quantity,
+        "max": vmax, "max_at": mesh.points[imax].tolist(), "max_point": imax, "max_points": nmax,
+        "min": vmin, "min_at": mesh.points[imin].tolist(), "min_point": imin, "min_points": nmin,
+        "mean": _mean(mesh, u),
+    }
+
+
 def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command,
                   peak_bytes=None):
     """The record of one solve, as written to summary.json.
@@ -105,14 +153,7 @@ def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command
     passes the largest rank's); the record holds the larger of it and this
     process's high-water mark now.
     """
-    mesh, u = problem.mesh, sol.u
-    figures = solve_figures(sol)
-    used = np.ones(mesh.n_points, dtype=bool)
-    used[mesh.unused_points()] = False  # points in no cell carry no value
-    used = np.flatnonzero(used)
-    vmax, imax, nmax = _extreme(u, used, "max")
-    vmin, imin, nmin = _extreme(u, used, "min")
-    res = figures["residuals"]
+    mesh = problem.mesh
     summary = base_record(command)
     summary["caution"] = CAUTION
     summary["problem"] = {
@@ -134,40 +175,9 @@ def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command
         "solution": problem.unit or "solution units",
         "power": problem.power_unit or ("source x area" if mesh.dim == 2 else "source x volume"),
     }
-    summary["mesh"] = {
-        "description": problem.mesh_description,
-        "dimension": mesh.dim,
-        "points": mesh.n_points,
-        CELLS[mesh.dim]: mesh.n_cells,
-        "h": mesh.h(),
-    }
-    for key in ("unknowns", "dirichlet_points", "nnz", "matrix_free", "operator_bytes"):
-        summary[key] = figures[key]
-    summary["solver"] = {
-        "preconditioner": figures["preconditioner"],
-        "requested": args.preconditioner,
-        "rtol": args.rtol,
-        "maxiter": args.maxiter,
-        "converged": figures["converged"],
-        "iterations": figures["iterations"],
-        "initial_residual": float(res[0]),
-        "final_residual": float(res[-1]),
-        "relative_residual": float(res[-1] / res[0]) if res[0] > 0 else 0.0,
-        "residuals": res.tolist(),
-        "threads": figures["threads"],
-    }
-    t = dict(timings)
-    t["kernels"] = kernels_seconds
-    for key in LIBRARY_PHASES:
-        t[key] = figures["timings"][key]
-    t["library_total"] = figures["timings"]["total"]
-    summary["timings_s"] = t
-    summary["solution"] = {
-        "quantity": problem.quantity,
-        "max": vmax, "max_at": mesh.points[imax].tolist(), "max_point": imax, "max_points": nmax,
-        "min": vmin, "min_at": mesh.points[imin].tolist(), "min_point": imin, "min_points": nmin,
-        "mean": _mean(mesh, u),
-    }
+    summary["mesh"] = _mesh_record(mesh, problem.mesh_description)
+    summary.update(_run_record(args, sol, timings, kernels_seconds))
+    summary["solution"] = _solution_record(mesh, sol.u, problem.quantity)
     power = dict(balance)
     if problem.components:
         power["components"] = problem.component_powers()
@@ -177,23 +187,27 @@ def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command
     return summary
 
 
-def _where(problem, point):
-    s, unit = problem.length_scale, problem.length_unit
+def _mesh_record(mesh, description):
+    return {
+        "description": description,
+        "dimension": mesh.dim,
+        "points": mesh.n_points,
+        CELLS[mesh.dim]: mesh.n_cells,
+        "h": mesh.h(),
+    }
+
+
+def _where(point, scale, unit):
     sep = f" {unit}" if unit else ""
-    return "(" + ", ".join(f"{float(c) * s:.4g}{sep}" for c in point) + ")"
+    return "(" + ", ".join(f"{float(c) * scale:.4g}{sep}" for c in point) + ")"
 
 
-def solve_report(problem, summary, out, extra=()):
-    """The printed report of a solve; ``extra`` lines go before the closing caution."""
-    s = summary
-    sol, solver, t, pw = s["solution"], s["solver"], s["timings_s"], s["power"]
-    unit = f" {problem.unit}" if problem.unit else ""
-    pu = f" {problem.power_unit}" if problem.power_unit else ""
-    lines = [f"{PROG} solve: {problem.statement[0]}"]
-    lines += [f"  {text}" for text in problem.statement[1:]]
+def _run_lines(s):
+    """The report's lines on the mesh, the unknowns, the solver and the times."""
+    solver, t = s["solver"], s["timings_s"]
     cells = CELLS[s["mesh"]["dimension"]]
-    lines.append(f"{'mesh':<16}{s['mesh']['description']}: {s['mesh']['points']:,} points, "
-                 f"{s['mesh'][cells]:,} {cells}")
+    lines = [f"{'mesh':<16}{s['mesh']['description']}: {s['mesh']['points']:,} points, "
+             f"{s['mesh'][cells]:,} {cells}"]
     if s.get("matrix_free"):
         stored = f"matrix-free operator ({s['operator_bytes'] / 1e6:.1f} MB)"
     else:
@@ -209,15 +223,40 @@ def solve_report(problem, summary, out, extra=()):
     lines.append(f"{'iterations':<16}{solver['iterations']}, final residual "
                  f"{solver['final_residual']:.3e} = {solver['relative_residual']:.2e} x initial "
                  f"(rtol {solver['rtol']:g}), converged")
-    mesh = problem.mesh
-    lines.append(f"{problem.quantity:<16}max {sol['max']:.6g}{unit} at "
-                 f"{_where(problem, mesh.points[sol['max_point']])}"
-                 + (f" ({sol['max_points']} points)" if sol["max_points"] > 1 else ""))
+    return lines
+
+
+def _field_lines(s, unit, scale, length_unit):
+    """The report's lines on the largest, smallest and mean value of the solution."""
+    sol = s["solution"]
+    unit = f" {unit}" if unit else ""
+    lines = [f"{sol['quantity']:<16}max {sol['max']:.6g}{unit} at "
+             f"{_where(sol['max_at'], scale, length_unit)}"
+             + (f" ({sol['max_points']} points)" if sol["max_points"] > 1 else "")]
     min_where = (f"on {sol['min_points']:,} points, first at " if sol["min_points"] > 1 else "at ")
     lines.append(f"{'':<16}min {sol['min']:.6g}{unit} {min_where}"
-                 f"{_where(problem, mesh.points[sol['min_point']])}")
+                 f"{_where(sol['min_at'], scale, length_unit)}")
     lines.append(f"{'':<16}mean {sol['mean']:.6g}{unit} (over the "
-                 f"{'area' if mesh.dim == 2 else 'volume'})")
+                 f"{'area' if s['mesh']['dimension'] == 2 else 'volume'})")
+    return lines
+
+
+def _closing_lines(s, out):
+    lines = [f"{'peak memory':<16}{s['peak_rss_bytes'] / 1e9:.2f} GB (process high-water mark)",
+             f"{'output':<16}{out}: {', '.join(s['files'])}"]
+    lines += [f"{'':<16}not written: {text}" for text in s["skipped"]]
+    return lines
+
+
+def solve_report(problem, summary, out, extra=()):
+    """The printed report of a solve; ``extra`` lines go before the closing caution."""
+    s = summary
+    pw = s["power"]
+    pu = f" {problem.power_unit}" if problem.power_unit else ""
+    lines = [f"{PROG} solve: {problem.statement[0]}"]
+    lines += [f"  {text}" for text in problem.statement[1:]]
+    lines += _run_lines(s)
+    lines += _field_lines(s, problem.unit, problem.length_scale, problem.length_unit)
     parts = ""
     if pw.get("components"):
         parts = " (" + ", ".join(f"{n} {v:.6g}{pu}" for n, v in pw["components"].items()) + ")"
@@ -230,11 +269,120 @@ def solve_report(problem, summary, out, extra=()):
         where = f"{c.where} (h (T - {c.coolant:g}) integrated over it)"
     lines.append(f"{'':<16}{pw['heat_out']:.6g}{pu} leaves through {where} "
                  f"(imbalance {pw['imbalance']:.2e}{pu}, relative {pw['relative_imbalance']:.1e})")
-    lines.append(f"{'peak memory':<16}{s['peak_rss_bytes'] / 1e9:.2f} GB (process high-water mark)")
-    lines.append(f"{'output':<16}{out}: {', '.join(s['files'])}")
-    for text in s["skipped"]:
-        lines.append(f"{'':<16}not written: {text}")
+    lines += _closing_lines(s, out)
     lines.extend(extra)
+    lines.append("")
+    lines.append(s["caution"])
+    return "\n".join(lines)
+
+
+#: The unit of a heat flow, by the mesh's dimension.
+FLOW_UNIT = {2: "W/m", 3: "W"}
+
+
+def file_summary(args, pf, sol, balance, timings, kernels_seconds, command):
+    """The record of a problem file's solve (``pf``: a :class:`hatkernels.problemfile.ProblemFile`;
+    ``balance``: :func:`hatkernels.results.balance` of ``sol``), as written to summary.json."""
+    mesh, tags = sol.mesh, sol.mesh.tags
+    summary = base_record(command)
+    summary["caution"] = CAUTION
+    summary["problem"] = {
+        "title": pf.title,
+        "file": os.path.abspath(pf.path),
+        "mesh_file": pf.mesh_path,
+        "length_unit": pf.length_unit,
+        "refine": args.refine,
+        "statement": file_statement(pf, mesh),
+        "materials": [{"name": m.name, "regions": [tags.region_label(t) for t in m.tags],
+                       "conductivity": np.asarray(m.conductivity).tolist(), "source": m.source}
+                      for m in pf.materials],
+        "conditions": [{"name": c.name, "tags": [tags.side_label(t) for t in c.tags],
+                        "condition": c.kind, "value": c.value, "ambient": c.ambient}
+                       for c in pf.conditions],
+        "insulated": [tags.side_label(t) for t in pf.insulated_tags()],
+        "untagged_sides": _untagged_sides(mesh),
+    }
+    summary["units"] = {"length": "m", "solution": "degC", "temperature": "degC",
+                        "conductivity": "W/(m K)", "source": "W/m^3", "heat_flux": "W/m^2",
+                        "power": ("W per metre of thickness" if mesh.dim == 2 else "W")}
+    times = f", refined {args.refine} time{'s' if args.refine != 1 else ''}" if args.refine else ""
+    summary["mesh"] = _mesh_record(mesh, f"{os.path.basename(pf.mesh_path)} (lengths in "
+                                         f"{pf.length_unit}, scaled to metres){times}")
+    summary.update(_run_record(args, sol, timings, kernels_seconds))
+    summary["solution"] = _solution_record(mesh, sol.u, "temperature")
+    summary["balance"] = balance.as_dict()
+    summary["peak_rss_bytes"] = peak_rss_bytes()
+    summary["versions"] = versions()
+    return summary
+
+
+def _untagged_sides(mesh):
+    b = mesh.boundary_edges() if mesh.dim == 2 else mesh.boundary_faces()
+    return int(len(b) - len(mesh.tags.sides))
+
+
+def file_statement(pf, mesh):
+    """What the report says of a problem file before the figures."""
+    tags = mesh.tags
+    lines = [f"problem file {os.path.abspath(pf.path)}",
+             "steady conduction -div(k grad T) = q, SI units, temperatures in degC; "
+             + ("2-D: heat flows are in W per metre of thickness (the depth out of the plane)"
+                if mesh.dim == 2 else "heat flows in W")]
+    insulated = [tags.side_label(t) for t in pf.insulated_tags()]
+    if insulated:
+        lines.append(f"boundary tags not in the file are insulated (zero flux): "
+                     f"{', '.join(insulated)}")
+    n = _untagged_sides(mesh)
+    if n:
+        lines.append(f"{n:,} boundary {'edges' if mesh.dim == 2 else 'faces'} carry no tag: "
+                     f"insulated (zero flux)")
+    return lines
+
+
+def _table(header, rows):
+    """Rows of cells under a header, text left-aligned and numbers right-aligned."""
+    width = [max(len(str(r[k])) for r in [header] + rows) for k in range(len(header))]
+    out = []
+    for r in [header] + rows:
+        out.append("  ".join(str(c).ljust(w) if k < 2 else str(c).rjust(w)
+                             for k, (c, w) in enumerate(zip(r, width, strict=True))).rstrip())
+    return out
+
+
+def file_report(pf, summary, out, extra=()):
+    """The printed report of a problem file's solve: the run, the per-region and per-boundary
+    tables and the balance; ``extra`` lines go after the statement."""
+    s = summary
+    b = s["balance"]
+    mesh_dim = s["mesh"]["dimension"]
+    flow = FLOW_UNIT[mesh_dim]
+    lines = [f"{PROG} solve: {s['problem']['title']}"]
+    lines += [f"  {text}" for text in s["problem"]["statement"]]
+    lines += [f"  {text}" for text in extra]
+    lines += _run_lines(s)
+    lines += _field_lines(s, "degC", 1.0 / pf.scale, pf.length_unit)
+    material = {t: m for m in pf.materials for t in m.tags}
+    rows = []
+    for r in b["regions"]:
+        m = material.get(r["tag"])
+        k = m.conductivity if m is not None else None
+        rows.append([r["label"], m.name if m else "", "tensor" if np.ndim(k) else f"{k:g}",
+                     f"{m.source:g}" if m else "", f"{r['u_min']:.6g}", f"{r['u_max']:.6g}",
+                     f"{r['u_mean']:.6g}", f"{r['source']:.6g}"])
+    table = _table(["region", "material", "k W/(m K)", "q W/m^3", "min degC", "max degC",
+                    "mean degC", f"power {flow}"], rows)
+    lines += [f"{'regions' if k == 0 else '':<16}{row}" for k, row in enumerate(table)]
+    condition = {t: c.describe() for c in pf.conditions for t in c.tags}
+    rows = [[e["label"], condition.get(e["tag"], e["condition"]), f"{e['u_min']:.6g}",
+             f"{e['u_max']:.6g}", f"{e['u_mean']:.6g}", f"{e['outflow']:.6g}"]
+            for e in b["boundary"]]
+    table = _table(["boundary tag", "condition", "min degC", "max degC", "mean degC",
+                    f"out {flow}"], rows)
+    lines += [f"{'boundary' if k == 0 else '':<16}{row}" for k, row in enumerate(table)]
+    lines.append(f"{'balance':<16}sources {b['sources']:.6g} {flow} = heat out "
+                 f"{b['outflow']:.6g} {flow} + absorbed {b['absorbed']:.6g} {flow} "
+                 f"(imbalance {b['imbalance']:.2e} {flow}, relative {b['relative']:.1e})")
+    lines += _closing_lines(s, out)
     lines.append("")
     lines.append(s["caution"])
     return "\n".join(lines)
