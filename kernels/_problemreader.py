@@ -266,19 +266,26 @@ class Reader:
                 out.append(t)
         return tuple(out)
 
+    def claim(self, owner, key, table, resolve, label, what):
+        """The tags of table ``key``, each recorded in ``owner`` (tag -> table name); a tag
+        another table has already claimed is refused."""
+        mine = self.tag_list(table, key, key[1], resolve)
+        for t in mine:
+            if t in owner:
+                self.fail(key, f"{label(t)} already has {what} (from "
+                               f"[{key[0]}.{dotted((owner[t],))}]); it takes one")
+            owner[t] = key[1]
+        return mine
+
     def materials(self, mesh, raw, regions):
         tags = mesh.tags
         owner = {}
         out = []
         for name, (k, q) in raw:
             key = ("regions", name)
-            mine = self.tag_list(regions[name], key, name,
-                                 lambda item: tags.region_tag(item, what="region"))
-            for t in mine:
-                if t in owner:
-                    self.fail(key, f"region {tags.region_label(t)} already has a material "
-                                   f"(from [regions.{dotted((owner[t],))}]); a region takes one")
-                owner[t] = name
+            mine = self.claim(owner, key, regions[name],
+                              lambda item: tags.region_tag(item, what="region"),
+                              lambda t: f"region {tags.region_label(t)}", "a material")
             if np.ndim(k) == 2 and k.shape != (mesh.dim, mesh.dim):
                 self.fail(key + ("conductivity",), f"a {k.shape[0]}x{k.shape[0]} tensor on a "
                           f"{mesh.dim}-D mesh; expected {mesh.dim}x{mesh.dim}")
@@ -300,13 +307,9 @@ class Reader:
             if tags is None or len(tags.sides) == 0:
                 self.fail(key, "the mesh has no boundary tags; a condition needs tagged "
                                "boundary sides")
-            mine = self.tag_list(boundary[name], key, name,
-                                 lambda item: tags.side_tag(item, what="boundary tag"))
-            for t in mine:
-                if t in owner:
-                    self.fail(key, f"boundary tag {tags.side_label(t)} already has a condition "
-                                   f"(from [boundary.{dotted((owner[t],))}]); a tag takes one")
-                owner[t] = name
+            mine = self.claim(owner, key, boundary[name],
+                              lambda item: tags.side_tag(item, what="boundary tag"),
+                              lambda t: f"boundary tag {tags.side_label(t)}", "a condition")
             out.append((name, mine, kind, value, ambient))
         if not any(c[2] in ("held", "convection") for c in out):
             self.fail(("boundary",),
