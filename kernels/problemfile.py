@@ -224,6 +224,7 @@ def read_problem(path):
     except UnicodeDecodeError as exc:
         line = raw[:exc.start].count(b"\n") + 1
         raise ProblemFileError(path, line, "", "not UTF-8 text (TOML files are UTF-8)") from None
+    text = text.removeprefix("\ufeff")  # a byte-order mark some editors write first
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

@@ -305,6 +305,10 @@ def test_the_good_file_is_good(files):
     assert [m.name for m in problem.materials] == ["copper"]
     assert [c.describe() for c in problem.conditions] == [
         "held at 0 degC", "convection, h = 10 W/(m^2 K) to 30 degC"]
+    assert problem.insulated_tags() == []
+    # a byte-order mark first (some editors write one) is not an error
+    (files / "bom.toml").write_bytes(b"\xef\xbb\xbf" + GOOD.encode())
+    assert read_problem(files / "bom.toml").materials == problem.materials
 
 
 @pytest.mark.parametrize("case", list(BAD))
