@@ -78,10 +78,13 @@ cubes). --source replaces the regions by a uniform q, --film and --coolant
 the cooling.
 
 --scenario heated-insert (invented demonstration data, 2-D): an aluminium
-mounting plate 120 mm x 10 mm in cross-section with a stainless steel insert
-carrying a 360 W/m heater, its left end in a cold clamp at 20 degC, its top
-face cooled by air (h = 10 W/(m^2 K), 25 degC), the rest insulated; read from
-a problem file shipped with hatkernels (the report says where, to copy it).
+mounting plate 100 mm x 20 mm in cross-section (k = 177 W/(m K)) with a
+stainless steel insert 20 mm x 10 mm (k = 14.9 W/(m K)) carrying a heater of
+1000 W per metre of length, its bottom face on a cold clamp at 20 degC from
+x = 0 to 25 mm, its top face cooled by air (h = 10 W/(m^2 K), 25 degC), the
+rest insulated; read from a problem file shipped with hatkernels (the report
+says where, to copy it; conductivities from Incropera and DeWitt, table A.1,
+values from memory).
 
 PROBLEM.toml: a problem file (TOML): a mesh file with region and boundary
 tags, a material per region, a condition per boundary tag (held temperature,
