@@ -154,11 +154,12 @@ class FineNumbering:
         """The owner coarse cell of each fine point number (the cell whose range holds it)."""
         return np.searchsorted(self.offset, np.asarray(numbers, dtype=np.int64), side="right") - 1
 
-    def fine_cells(self, cells):
+    def fine_cells(self, cells, num=None):
         """``(ids, cells)``: the serial numbers of the fine cells of coarse ``cells`` (each
-        coarse cell's ``c**k`` children, in order) and their points' fine numbers."""
+        coarse cell's ``c**k`` children, in order) and their points' fine numbers
+        (``num``: :meth:`numbers` of ``cells``, when the caller has it already)."""
         cells = np.asarray(cells, dtype=np.int64)
-        num = self.numbers(cells)
+        num = self.numbers(cells) if num is None else num
         per = (4 if self.dim == 2 else 8) ** self.k
         out = np.empty((len(cells), per, self.dim + 1), dtype=np.int64)
         for flag in self.patterns:
@@ -194,21 +195,34 @@ class FineNumbering:
         return out
 
     def _numbers_in(self, t, owner, lam, flag):
-        """Numbers for cells ``t`` (one pattern) whose points' owner cells are ``owner``."""
-        verts = self.coarse.cells.astype(np.int64)
+        """Numbers for cells ``t`` (one pattern) whose points' owner cells are ``owner``.
+
+        Most points are owned by the cell itself (its inside, and the sides it is the
+        lowest cell of): their place in the owner's pattern is their own.  Only the
+        others are mapped to their owner's vertex order, point by point.
+        """
         result = np.empty(owner.shape, dtype=np.int64)
-        r, i = np.nonzero(owner >= 0)  # every (cell, lattice point)
+        before_t = self.patterns[flag][2]
+        own = owner == t[:, None]
+        r, i = np.nonzero(own)
+        result[r, i] = self.offset[t[r]] + self._rank(before_t, i, t[r])
+        r, i = np.nonzero(~own)
+        if not r.size:
+            return result
         o = owner[r, i]
         # the point's coordinates in the owner's vertex order
-        vt = verts[t[r]]  # (P, d+1) global vertices of the cell
+        verts = self.coarse.cells
+        vt = verts[t[r]]
         vo = verts[o]
-        lam_t = lam[i]  # (P, d+1)
-        match = vt[:, :, None] == vo[:, None, :]  # match[p, j, j']: V_t[j] == V_o[j']
-        lam_o = np.einsum("pj,pjq->pq", lam_t, match.astype(np.int64))
-        # its place in the owner's pattern, and the owner's own points before it
+        lam_t = lam[i]
+        lam_o = np.zeros_like(lam_t)
+        for j in range(lam.shape[1]):  # vertex j of the cell is vertex q of the owner
+            for q in range(lam.shape[1]):
+                hit = vt[:, j] == vo[:, q]
+                lam_o[hit, q] = lam_t[hit, j]
+        del vt, vo, lam_t
         o_flag = self.swapped[o]
-        place = np.empty(len(o), dtype=np.int64)
-        rank = np.empty(len(o), dtype=np.int64)
+        number = np.empty(len(o), dtype=np.int64)
         for f, (_, _, before, keys, order) in self.patterns.items():
             sel = np.flatnonzero(o_flag == f)
             want = _lattice_key(lam_o[sel], 2**self.k)
@@ -216,10 +230,16 @@ class FineNumbering:
             if (pos >= len(keys)).any() or (keys[np.minimum(pos, len(keys) - 1)] != want).any():
                 raise RuntimeError("fine_numbering: a lattice point is missing from its "
                                    "owner's pattern")  # cannot happen on a conforming mesh
-            place[sel] = order[pos]
-            rank[sel] = (before[place[sel]] * self.owns[o[sel]]).sum(axis=1)
-        result[r, i] = self.offset[o] + rank
+            number[sel] = self.offset[o[sel]] + self._rank(before, order[pos], o[sel])
+        result[r, i] = number
         return result
+
+    def _rank(self, before, place, cells):
+        """The owned points of ``cells`` that come before ``place`` in their pattern."""
+        rank = np.zeros(len(place), dtype=np.int64)
+        for m in range(1, before.shape[1]):  # one subset of the cell's points at a time
+            rank += before[place, m] * self.owns[cells, m]
+        return rank
 
 
 def _lattice_key(lam, n):

@@ -154,7 +154,8 @@ def build_level(coarse, level, cell_owner, part, comm, numbering=None):
     near = np.zeros(coarse.n_points, dtype=bool)
     near[coarse.cells[mine].ravel()] = True
     cand = np.flatnonzero(near[coarse.cells].any(axis=1))
-    ids, fine = fn.fine_cells(cand)
+    num = fn.numbers(cand)
+    ids, fine = fn.fine_cells(cand, num)
     owned_pt = cell_owner[fn.point_owner_cells(fine)] == part
     keep = owned_pt.any(axis=1) | (cell_owner[ids // per] == part)
     ids, fine = ids[keep], fine[keep]
@@ -172,7 +173,6 @@ def build_level(coarse, level, cell_owner, part, comm, numbering=None):
     ghost_owner = p_owner[ghost_sel[order]].astype(np.int32)
     lcells = local_of[inverse.reshape(fine.shape)].astype(index_dtype(len(points)))
     # where each local point sits: its first appearance in the candidates' lattices
-    num = fn.numbers(cand)
     flat = num.ravel()
     pos = np.searchsorted(present, flat)
     hit = (pos < len(present)) & (present[np.minimum(pos, len(present) - 1)] == flat)
@@ -249,9 +249,13 @@ def fine_sides_on(level, coarse, sides):
     want = np.sort(sides.astype(np.int64), axis=1)[:, ::-1]
     want = _entity_keys(np.hstack([want, np.full((len(want), 1), -1)]), coarse.n_points)
     sup = _support(coarse, level.where_cell, level.lattice())
-    cells = level.mesh.cells.astype(np.int64)
-    all_sides = np.concatenate([np.delete(cells, j, axis=1) for j in range(dim + 1)])
-    u = np.sort(sup[all_sides].reshape(len(all_sides), -1), axis=1)[:, ::-1]
+    on = np.isin(_entity_keys(sup, coarse.n_points), _side_entities(coarse, sides))
+    cells = level.mesh.cells
+    # only the sides whose points all lie on the given sides' closure are candidates
+    all_sides = np.concatenate([s[on[s].all(axis=1)] for s in
+                                (np.delete(cells, j, axis=1) for j in range(dim + 1))])
+    all_sides = all_sides.astype(np.int64)
+    u = np.sort(sup[all_sides].reshape(len(all_sides), dim * (dim + 1)), axis=1)[:, ::-1]
     new = np.ones(u.shape, dtype=bool)
     new[:, 1:] = u[:, 1:] != u[:, :-1]
     new &= u >= 0
