@@ -43,17 +43,25 @@ __all__ = ["FineNumbering", "fine_numbering", "lattice_order", "lattice_parents"
 
 
 @functools.lru_cache(maxsize=16)
-def lattice_order(dim, k, swapped=False):
-    """``(lam, cells)``: the lattice points of one cell refined ``k`` times in
-    first-appearance order, as integer barycentric coordinates (n, dim + 1), and the
-    fine cells in those point numbers (c**k, dim + 1), read-only."""
-    n = 2**k
-    corners = np.vstack([np.zeros(dim), n * np.eye(dim)])
+def _reference(dim, k, swapped):
+    """One cell with corners at 0 and ``2**k`` times the unit vectors, refined ``k`` times
+    (stored swapped against Bey's order when ``swapped``, in 3-D)."""
+    corners = np.vstack([np.zeros(dim), 2**k * np.eye(dim)])
     ref = Mesh._trusted(corners, np.arange(dim + 1)[None, :])
     if dim == 3:
         ref._stored_swapped = np.array([bool(swapped)])
     for _ in range(k):
         ref = ref.refine()
+    return ref
+
+
+@functools.lru_cache(maxsize=16)
+def lattice_order(dim, k, swapped=False):
+    """``(lam, cells)``: the lattice points of one cell refined ``k`` times in
+    first-appearance order, as integer barycentric coordinates (n, dim + 1), and the
+    fine cells in those point numbers (c**k, dim + 1), read-only."""
+    n = 2**k
+    ref = _reference(dim, k, swapped)
     x = np.rint(ref.points).astype(np.int64)
     lam = np.column_stack([n - x.sum(axis=1), x])
     for a in (lam, ref.cells):
@@ -69,13 +77,7 @@ def lattice_parents(dim, k, swapped=False):
     that is already a point one level down.  Read from the refinement itself, so a
     point in the middle of Bey's octahedron gets the ends of the diagonal that is
     really an edge."""
-    n = 2**k
-    corners = np.vstack([np.zeros(dim), n * np.eye(dim)])
-    ref = Mesh._trusted(corners, np.arange(dim + 1)[None, :])
-    if dim == 3:
-        ref._stored_swapped = np.array([bool(swapped)])
-    for _ in range(k):
-        ref = ref.refine()
+    ref = _reference(dim, k, swapped)
     r = ref.refinement
     out = np.empty((ref.n_points, 2), dtype=np.int64)
     out[r.coarse_points] = np.arange(r.coarse.n_points)[:, None]
