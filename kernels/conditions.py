@@ -304,6 +304,8 @@ def parse_conditions(mesh, *, dirichlet=0.0, dirichlet_on=None, neumann=None, ro
     def side_pieces(value, kind, width, what):
         """The pieces of a neumann (width 1) or robin (width 2) argument."""
         if isinstance(value, dict):
+            if not value:
+                raise InputError(f"{what} is an empty dict; give a value per boundary tag")
             if mesh.tags is None or len(mesh.tags.sides) == 0:
                 raise InputError(f"{what} is given by boundary tag ({list(value)[:3]}), but "
                                  f"the mesh has no boundary tags")

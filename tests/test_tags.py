@@ -818,3 +818,12 @@ def test_local_assembly_of_tagged_data_gives_the_whole_mesh_rows(parts):
         # reference: the numpy assembly of the whole mesh (module notes), to round-off
         assert abs(rows - A[s.owned]).max() <= 64 * EPS * abs(A).max()
         assert np.abs(b_L[: s.n_owned] - b[s.owned]).max() <= 64 * EPS * np.abs(b).max()
+
+
+@pytest.mark.parametrize("name", ["neumann", "robin"])
+def test_an_empty_condition_dict_is_named(name):
+    # an empty {tag: value} dict names the argument, as dirichlet={} does (common practice,
+    # no source)
+    m = label_sides(rectangle(4, 4), {"left": lambda x, y: x == 0})
+    with pytest.raises(InputError, match=f"{name} is an empty dict"):
+        hk.solve_poisson(m, 1.0, dirichlet_on="left", **{name: {}})
