@@ -34,12 +34,20 @@ class Distribution:
         Volumes per iteration of the busiest rank, seconds.
     threads_per_rank : dict
         ``threads``, ``ranks_on_node`` and ``chosen_by`` (how the count was chosen).
+    path : str
+        ``"partitioned"`` (each rank refined its part of the coarse mesh: refine=k with
+        multigrid) or ``"replicated"`` (every rank held the whole mesh).
+    why : str
+        Why the replicated path was taken when the partitioned one was the default
+        (empty otherwise).
     """
 
     partition: dict
     balance: list
     communication: dict
     threads_per_rank: dict = None
+    path: str = "replicated"
+    why: str = ""
 
 
 @dataclasses.dataclass(repr=False)

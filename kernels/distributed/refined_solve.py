@@ -21,7 +21,7 @@ import numpy as np
 from hatkernels._jit import threads as _threads
 from hatkernels.assembly import assemble_load, assemble_stiffness
 from hatkernels.assembly.boundary_terms import side_load, side_mass
-from hatkernels.coefficients import Coefficient, Pieces
+from hatkernels.coefficients import Coefficient, Field, Pieces
 from hatkernels.distributed.cg import cg
 from hatkernels.distributed.finenumbers import fine_numbering, partition_coarse_cells
 from hatkernels.distributed.halo import CommStats
@@ -48,18 +48,27 @@ from hatkernels.problem import PoissonProblem
 from hatkernels.solver import report_convergence
 from hatkernels.stats import SolveStats
 
-__all__ = ["solve_partitioned", "solve_refined"]
+__all__ = ["NotRefinable", "solve_partitioned", "solve_refined"]
 
 
-def _on_level(coef, part, per):
+class NotRefinable(InputError):
+    """The problem cannot take the partitioned path: its data name the coarse mesh's points,
+    cells or sides (arrays), which the fine levels do not have, or it asks for options of
+    the replicated path.  With the default preconditioner the distributed solve then takes
+    the replicated path; with ``preconditioner="gmg"`` the error is raised."""
+
+
+def _on_level(coef, part, per, check_only=False):
     """A coarse-mesh Coefficient on a level's local mesh (cells inherit their parent's)."""
     if coef is None:
         return None
     kind, value = coef.kind, coef.value
     if isinstance(value, Pieces):  # by region, some region's value a callable
         if any(q.kind == "point" for q in value.parts):
-            raise InputError(f"{coef.name}: a region's values per coarse point cannot be "
-                             f"used with refine=k on the partitioned path")
+            raise NotRefinable(f"{coef.name}: a region's values per coarse point cannot be "
+                               f"used with refine=k on the partitioned path")
+        if check_only:
+            return None
         parent = part.cells // per
         pieces = Pieces(value.parts, value.index[parent], parent, part.mesh.points,
                         part.mesh.cells)
@@ -67,25 +76,62 @@ def _on_level(coef, part, per):
     if kind in ("constant", "callable") or (kind == "tensor" and np.ndim(value) == 2):
         return coef
     if kind in ("cell", "tensor"):
+        if check_only:
+            return None
         return Coefficient(kind, value[part.cells // per], coef.name, coef.sign)
-    raise InputError(f"{coef.name} is given per point of the coarse mesh; with refine=k on "
-                     f"the partitioned path give numbers, callables or values per region")
+    raise NotRefinable(f"{coef.name} is given per point of the coarse mesh; with refine=k on "
+                       f"the partitioned path give numbers, callables or values per region")
 
 
-def _refuse_arrays(dirichlet, dirichlet_on, neumann, robin):
+def _names_fine_items(value, dim):
+    """True for data given per point or cell: as in the serial solve such arrays would name
+    the refined mesh's points or cells, which the partitioned path never builds."""
+    if isinstance(value, dict):
+        return any(_names_fine_items(v, dim) for v in value.values())
+    if isinstance(value, Field):
+        return True
+    if isinstance(value, Coefficient):
+        return value.kind in ("point", "cell") or (value.kind == "tensor"
+                                                   and np.ndim(value.value) != 2)
+    if isinstance(value, (np.ndarray, list, tuple)):
+        return np.shape(value) != (dim, dim)  # a constant tensor is allowed
+    return False
+
+
+def _refuse_arrays(dirichlet, dirichlet_on, neumann, robin, data=(), dim=2):
     """Arrays of points or sides name the coarse mesh, not the fine one: refused."""
+    for name, value in data:
+        if _names_fine_items(value, dim):
+            raise NotRefinable(f"{name} is given per point or cell; with refine=k such arrays "
+                               f"belong to the refined mesh, which the partitioned path never "
+                               f"builds: give numbers, callables or {{region: value}}")
+
     def is_array(v):
         return isinstance(v, np.ndarray) or isinstance(v, list) and v and not all(
             isinstance(k, str) for k in v)
 
     if dirichlet_on is not None and not isinstance(dirichlet_on, str) and is_array(dirichlet_on):
-        raise InputError("dirichlet_on: with refine=k the distributed solve takes 'boundary' "
-                         "or boundary tags, not point indices")
+        raise NotRefinable("dirichlet_on: with refine=k the distributed solve takes "
+                           "'boundary' or boundary tags, not point indices")
     if isinstance(dirichlet, (np.ndarray, list)):
-        raise InputError("dirichlet: with refine=k give a number, a callable or {tag: value}")
+        raise NotRefinable("dirichlet: with refine=k give a number, a callable or "
+                           "{tag: value}")
     for name, v in (("neumann", neumann), ("robin", robin)):
         if isinstance(v, tuple) and len(v) == (2 if name == "neumann" else 3) and is_array(v[0]):
-            raise InputError(f"{name}: with refine=k name boundary tags, not sides")
+            raise NotRefinable(f"{name}: with refine=k name boundary tags, not sides")
+
+
+def _check_refinable(problem):
+    """Refuse, before any fine level is built, data the fine levels cannot take."""
+    for coef in (problem.coefficient, problem.source, problem.reaction):
+        if coef is not None:
+            _on_level(coef, None, None, check_only=True)
+    for p in problem.pieces:
+        if p.kind == "held":
+            continue
+        for c in p.data:
+            if c.kind not in ("constant", "callable"):
+                raise NotRefinable(f"{c.name}: with refine=k give a number or a callable")
 
 
 def _held_values(dirichlet, coarse, part, held, held_pieces):
@@ -118,12 +164,15 @@ def _held_values(dirichlet, coarse, part, held, held_pieces):
 
 def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, reaction,
                   neumann, robin, rtol, atol, maxiter, quadrature, monitor, gather,
-                  options):
-    """See the module notes; returns ``(u, u_owned, owned, stats, problem)``."""
+                  options, progress=None):
+    """See the module notes; returns ``(u, u_owned, owned, stats, problem, balance, piece)``."""
+    note = progress or (lambda phase: None)
+    note("boundary")
     t0 = time.perf_counter()
     timings = {}
     rank, size = comm.Get_rank(), comm.Get_size()
-    _refuse_arrays(dirichlet, dirichlet_on, neumann, robin)
+    _refuse_arrays(dirichlet, dirichlet_on, neumann, robin, data=(
+        ("f", f), ("coefficient", coefficient), ("reaction", reaction)), dim=coarse.dim)
     problem = PoissonProblem(coarse, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
                              coefficient=coefficient, reaction=reaction, neumann=neumann,
                              robin=robin, quadrature=quadrature)
@@ -135,8 +184,9 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
         held_sides = (coarse.boundary_edges() if coarse.dim == 2
                       else coarse.boundary_faces()).astype(np.int64)
     else:
-        raise InputError("gmg with refine=k needs held values on whole boundary sides "
-                         "(dirichlet_on='boundary' or boundary tags)")
+        raise NotRefinable("gmg with refine=k needs held values on whole boundary sides "
+                           "(dirichlet_on='boundary' or boundary tags)")
+    _check_refinable(problem)
     timings["boundary"] = time.perf_counter() - t0
 
     t1 = time.perf_counter()
@@ -146,6 +196,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
              for j in range(k)]
     timings["partition"] = time.perf_counter() - t1
 
+    note("assemble")
     t2 = time.perf_counter()
     per = [(4 if coarse.dim == 2 else 8) ** (j + 1) for j in range(k)]
     fixed = [points_on(p, coarse, held_sides) for p in parts]
@@ -173,9 +224,6 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
             sides = boundary[~is_held[boundary].all(axis=1)]
         else:
             sides = fine_sides_on(fine, coarse, p.sides)
-        for c in p.data:
-            if c.kind not in ("constant", "callable"):
-                raise InputError(f"{c.name}: with refine=k give a number or a callable")
         if p.kind == "flux":
             b += side_load(mesh, p.data[0], sides, quadrature)
         else:
@@ -193,6 +241,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     matrix = DistributedMatrix(rows, fine.pattern, comm, stats)
     timings["assemble"] = time.perf_counter() - t2
 
+    note("solve")
     t3 = time.perf_counter()
     coefs = [problem.coefficient] + [_on_level(problem.coefficient, p, q)
                                      for p, q in zip(parts, per, strict=True)]
@@ -278,14 +327,18 @@ def _gather(comm, owned, u_owned, n, gather):
 
 
 def solve_partitioned(mesh, f, refine, comm, dirichlet, dirichlet_on, coefficient, reaction,
-                 neumann, robin, rtol, atol, maxiter, check, quadrature, matrix_free, variant,
-                 monitor, zero_mean, parts, gather, threads, options):
+                      neumann, robin, rtol, atol, maxiter, check, quadrature, matrix_free,
+                      variant, monitor, zero_mean, parts, gather, threads, options,
+                      coarse=None, progress=None):
     """The partitioned path of :func:`hatkernels.distributed.solve_poisson` (refine=k, gmg)."""
     if not isinstance(mesh, Mesh):
         raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
-    if matrix_free or variant is not None or zero_mean is not False or parts is not None:
-        raise InputError("refine=k with gmg takes no matrix_free, variant, zero_mean or "
-                         "partition (the coarse cells are split by RCB)")
+    asked = [name for name, v in (("matrix_free", matrix_free), ("variant", variant),
+                                  ("zero_mean", zero_mean is not False),
+                                  ("partition", parts), ("coarse", coarse)) if v]
+    if asked:
+        raise NotRefinable(f"refine=k with gmg takes no {', '.join(asked)} (those belong to "
+                           f"the replicated path; the coarse cells are split by RCB)")
     if gather not in GATHER:
         raise InputError(f"gather must be one of {GATHER}, got {gather!r}")
     comm = as_comm(comm)
@@ -298,12 +351,13 @@ def solve_partitioned(mesh, f, refine, comm, dirichlet, dirichlet_on, coefficien
                 dirichlet=dirichlet, dirichlet_on=dirichlet_on, coefficient=coefficient,
                 reaction=reaction, neumann=neumann, robin=robin, rtol=rtol, atol=atol,
                 maxiter=maxiter, quadrature=quadrature, monitor=monitor, gather=gather,
-                options=options)
+                options=options, progress=progress)
     finally:
         dcomm.Free()
     iters = max(stats.iterations, 1)
     stats.distribution = Distribution(
         partition={"method": "rcb of coarse cells", "weight": "fine points owned"},
+        path="partitioned",
         balance=balance,
         communication={
             "halo_bytes_per_product": sum(b["halo_bytes_per_product"] for b in balance),

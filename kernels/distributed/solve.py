@@ -43,7 +43,7 @@ from hatkernels.distributed.outcome import (
 )
 from hatkernels.distributed.partition import METHODS, Partition, partition
 from hatkernels.distributed.precond import COARSE_SPACES, make_distributed_preconditioner
-from hatkernels.distributed.refined_solve import solve_partitioned
+from hatkernels.distributed.refined_solve import NotRefinable, solve_partitioned
 from hatkernels.distributed.subdomain import local_coefficient, subdomain
 from hatkernels.errors import InputError
 from hatkernels.memory import check_solve_memory
@@ -123,7 +123,7 @@ def solve_poisson(
     reaction=None,
     neumann=None,
     robin=None,
-    preconditioner="amg",
+    preconditioner=None,
     rtol=1e-10,
     atol=0.0,
     maxiter=None,
@@ -153,9 +153,18 @@ def solve_poisson(
         As in :func:`hatkernels.poisson.solve_poisson`.
     comm : mpi4py intracommunicator, optional
         Default ``MPI.COMM_WORLD``.
-    preconditioner : str
-        A name from :data:`hatkernels.PRECONDITIONERS`, applied by each rank to
-        its owned block (block Jacobi); not ``"gmg"``.
+    preconditioner : str, optional
+        With ``refine=k > 0``, None (the default) or ``"gmg"`` take the
+        partitioned path: each rank refines only its part of the coarse mesh
+        and the multigrid runs across ranks on every level, with the serial
+        iteration counts (:mod:`hatkernels.distributed.refined_solve`).  When
+        the problem cannot take it (data given per point or side of the
+        coarse mesh, held values on single points, ``coarse``, ``partition``),
+        None falls back to the replicated path with ``"amg"`` and says why in
+        ``stats.distribution.why``; ``"gmg"`` raises instead.  Otherwise a
+        name from :data:`hatkernels.PRECONDITIONERS` (default ``"amg"``) is
+        applied by each rank to its owned block (block Jacobi, or the
+        two-level method with ``coarse``) on the replicated path.
         ``**preconditioner_options`` go to it.
     rtol, atol, maxiter, check
         As in the serial solve; the stopping rule is on the global residual.
@@ -197,11 +206,21 @@ def solve_poisson(
     ConvergenceError
         With ``check=True``, on every rank.
     """
-    if refine and capabilities(preconditioner).needs_mesh:  # multigrid on the refinements
-        return solve_partitioned(mesh, f, refine, comm, dirichlet, dirichlet_on, coefficient,
-                            reaction, neumann, robin, rtol, atol, maxiter, check, quadrature,
-                            matrix_free, variant, monitor, zero_mean, partition, gather, threads,
-                            preconditioner_options)
+    why = ""
+    if refine and (preconditioner is None or isinstance(preconditioner, str)
+                   and capabilities(preconditioner).needs_mesh):
+        try:  # multigrid on the refinements, each rank refining its part
+            return solve_partitioned(
+                mesh, f, refine, comm, dirichlet, dirichlet_on, coefficient, reaction, neumann,
+                robin, rtol, atol, maxiter, check, quadrature, matrix_free, variant, monitor,
+                zero_mean, partition, gather, threads, preconditioner_options, coarse=coarse,
+                progress=progress)
+        except NotRefinable as exc:
+            if preconditioner is not None:
+                raise
+            why = str(exc)
+    if preconditioner is None:
+        preconditioner = "amg"
     mesh = refined(mesh, refine)  # every rank refines the whole mesh (the replicated path)
     _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, partition,
                    monitor)
@@ -223,6 +242,7 @@ def solve_poisson(
         dcomm.Free()
     sol.stats.distribution.threads_per_rank = {"threads": n_threads,
                                                "ranks_on_node": ranks_on_node, "chosen_by": how}
+    sol.stats.distribution.why = why
     report_convergence(sol.stats, check)
     return sol
 
