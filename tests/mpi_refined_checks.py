@@ -46,7 +46,24 @@ def _same_as_serial(comm, coarse, k, f, rtol=1e-12, **data):
         serial = hatkernels.solve_poisson(_refined(coarse, k), f, preconditioner="gmg",
                                           rtol=rtol, **data)
     mpi_checks._wait_politely(comm)
-    u, iterations = comm.bcast(None if serial is None else (serial.u, serial.stats.iterations))
+    if serial is not None:
+        from hatkernels.results import balance
+
+        totals = balance(serial)
+        totals = {"sources": totals.sources, "absorbed": totals.absorbed,
+                  "outflow": totals.outflow}
+    u, iterations, totals = comm.bcast(None if serial is None else (
+        serial.u, serial.stats.iterations, totals))
+    flows = dist.flows
+    # conservation (common practice, no source): what the sources put in is absorbed or
+    # flows out, up to the solver's residual; the totals are those of the serial balance
+    outflow = flows["outflow_held"] + flows["outflow_flux"] + flows["outflow_convection"]
+    scale = abs(flows["sources"]) + abs(outflow) + abs(flows["absorbed"])
+    assert abs(flows["sources"] - flows["absorbed"] - outflow - flows["imbalance"]) < 1e-12 * scale
+    assert abs(flows["imbalance"]) < 1e-8 * scale, flows
+    for key, value in (("sources", flows["sources"]), ("absorbed", flows["absorbed"]),
+                       ("outflow", outflow)):
+        assert abs(value - totals[key]) < 1e-9 * scale, (key, value, totals[key])
     rel = np.abs(dist.u - u).max() / np.abs(u).max()
     assert rel < 1e-10, rel
     assert abs(dist.stats.iterations - iterations) <= 1, (dist.stats.iterations, iterations)
@@ -62,6 +79,8 @@ def triangles_match_the_serial_solve(comm):
 
     dist = _same_as_serial(comm, rectangle(4, 3), 3, lambda x, y: 1 + x * y)
     assert dist.stats.preconditioner.startswith("distributed gmg")
+    # int (1 + x y) over the unit square = 5/4, exact for the degree-2 rule (common practice)
+    assert abs(dist.flows["sources"] - 1.25) < 1e-13, dist.flows
 
 
 @check

@@ -78,6 +78,13 @@ class DistributedPoissonSolution(PoissonSolution):
     #: the partitioned path: ``(local mesh, point data, cell data)`` of this rank's own
     #: cells, for :func:`hatkernels.distributed.write_pvtu`; None on the replicated path
     piece: tuple = dataclasses.field(default=None, repr=False)
+    #: the partitioned path: the balance of the whole body, summed over the ranks (the same
+    #: on every rank): ``sources`` (``int f``), ``absorbed`` (``int c u``), the outflow
+    #: (positive leaving the body) through the held sides, the flux sides and the
+    #: convection sides, and the ``imbalance`` the solver left (``sources - absorbed -
+    #: outflows``; about ``rtol`` times the load).  Defined as in
+    #: :func:`hatkernels.results.balance`, totals only.  None on the replicated path.
+    flows: dict = dataclasses.field(default=None, repr=False)
 
     def __repr__(self):
         s = self.stats

@@ -205,13 +205,19 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     fine, pf = parts[-1], per[-1]
     mesh = fine.mesh
     kappa = _on_level(problem.coefficient, fine, pf)
+    n = fine.n_owned
     A = assemble_stiffness(mesh, kappa, quadrature=quadrature)
+    weights = {}  # column sums over the owned rows, for the flows (see _flows)
     if problem.reaction is not None:
         from hatkernels.assembly import StiffnessAssembler
 
-        A = A + StiffnessAssembler(mesh).assemble_mass(_on_level(problem.reaction, fine, pf),
-                                                       quadrature=quadrature)
+        C = StiffnessAssembler(mesh).assemble_mass(_on_level(problem.reaction, fine, pf),
+                                                   quadrature=quadrature)
+        weights["absorbed"] = _column_sums(C, n)
+        A = A + C
+        del C
     b = np.zeros(mesh.n_points)
+    loads = dict.fromkeys(("source", "flux", "convection"), 0.0)
     boundary = fine_sides_on(fine, coarse, (coarse.boundary_edges() if coarse.dim == 2
                                              else coarse.boundary_faces()).astype(np.int64))
     for p in pieces:
@@ -225,16 +231,28 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
         else:
             sides = fine_sides_on(fine, coarse, p.sides)
         if p.kind == "flux":
-            b += side_load(mesh, p.data[0], sides, quadrature)
+            bp = side_load(mesh, p.data[0], sides, quadrature)
+            loads["flux"] += float(bp[:n].sum())
         else:
-            A = A + side_mass(mesh, p.data[0], sides, quadrature)
-            b += side_load(mesh, p.data[1], sides, quadrature)
-    b += assemble_load(mesh, _on_level(problem.source, fine, pf), quadrature=quadrature)
+            R = side_mass(mesh, p.data[0], sides, quadrature)
+            weights["convection"] = weights.get("convection", 0.0) + _column_sums(R, n)
+            A = A + R
+            bp = side_load(mesh, p.data[1], sides, quadrature)
+            loads["convection"] += float(bp[:n].sum())
+        b += bp
+    bp = assemble_load(mesh, _on_level(problem.source, fine, pf), quadrature=quadrature)
+    loads["source"] = float(bp[:n].sum())
+    b += bp
+    del bp
     g = _held_values(dirichlet, coarse, fine, fixed[-1], held_pieces)
-    n = fine.n_owned
     rhs = b[:n] - A[:n] @ g
     held_owned = np.flatnonzero(fixed[-1][:n])
     rhs[held_owned] = g[held_owned]
+    free_owned = np.flatnonzero(~fixed[-1][:n])
+    weights["held"] = _column_sums(A, n, held_owned)
+    weights["free"] = _column_sums(A, n, free_owned)
+    loads["held"] = float(b[held_owned].sum())
+    loads["free"] = float(b[free_owned].sum())
     rows, _, _ = _masked_rows(A, n, fixed[-1])
     del A, b
     stats = CommStats()
@@ -253,7 +271,11 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
                 monitor=monitor)
     timings["solve"] = time.perf_counter() - t4
     u_owned = result.x
-    piece = _piece(fine, u_owned, matrix, cell_owner, rank, pf, coarse)
+    u_local = np.zeros(fine.n_local)
+    u_local[:n] = u_owned
+    matrix.halo.exchange(u_local)
+    flows = _flows(comm, weights, loads, u_local)
+    piece = _piece(fine, u_local, cell_owner, rank, pf, coarse)
     t5 = time.perf_counter()
     u = _gather(comm, fine.points[:n], u_owned, numberings[-1].n_fine, gather)
     timings["gather"] = time.perf_counter() - t5
@@ -280,15 +302,42 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
         nnz=int(comm.allreduce(rows.nnz)), dirichlet_points=int(comm.allreduce(len(held_owned))),
         ranks=size,
     )
-    return u, u_owned, fine.points[:n].copy(), stats_out, problem, balance, piece
+    return u, u_owned, fine.points[:n].copy(), stats_out, problem, balance, piece, flows
 
 
-def _piece(fine, u_owned, matrix, cell_owner, rank, per, coarse):
+def _column_sums(A, n, rows=None):
+    """``sum_i A[i, j]`` over the owned rows ``i`` (all of them, or ``rows``): a local vector."""
+    sub = A[:n] if rows is None else A[rows]
+    return np.asarray(sub.sum(axis=0)).ravel()
+
+
+def _flows(comm, weights, loads, u):
+    """The balance of the whole body from every rank's owned rows (collective).
+
+    With the full local matrix ``A = K + C + R`` and load ``b`` (before the
+    held values are imposed), the residual ``A u - b`` summed over the held
+    owned rows is the flow in through the held sides; over the free rows it is
+    what the solver left.  Each sum is ``w . u - sum(b)`` with ``w`` the column
+    sums of the rows concerned, kept from assembly instead of the rows.
+    """
+    MPI = mpi()
+
+    def dot(key):
+        w = weights.get(key)
+        return 0.0 if w is None else float(w @ u)
+
+    mine = np.array([loads["source"], dot("absorbed"), loads["held"] - dot("held"),
+                     0.0 - loads["flux"], dot("convection") - loads["convection"],
+                     loads["free"] - dot("free")])
+    comm.Allreduce(MPI.IN_PLACE, [mine, MPI.DOUBLE], op=MPI.SUM)
+    names = ("sources", "absorbed", "outflow_held", "outflow_flux", "outflow_convection",
+             "imbalance")
+    return dict(zip(names, (float(v) for v in mine), strict=True))
+
+
+def _piece(fine, u, cell_owner, rank, per, coarse):
     """This rank's own fine cells (those of its coarse cells: each fine cell on one rank)
-    with their points, u there (ghost values by one halo exchange) and their regions."""
-    u = np.zeros(fine.n_local)
-    u[: fine.n_owned] = u_owned
-    matrix.halo.exchange(u)
+    with their points, u there (``u`` local, ghosts filled) and their regions."""
     own = cell_owner[fine.cells // per] == rank
     cells = fine.mesh.cells[own]
     used, local = np.unique(cells, return_inverse=True)
@@ -346,7 +395,7 @@ def solve_partitioned(mesh, f, refine, comm, dirichlet, dirichlet_on, coefficien
     dcomm = comm.Dup()
     try:
         with _threads(n_threads):
-            u, u_owned, owned, stats, problem, balance, piece = _together(
+            u, u_owned, owned, stats, problem, balance, piece, flows = _together(
                 dcomm, "the partitioned solve", solve_refined, mesh, f, refine, dcomm,
                 dirichlet=dirichlet, dirichlet_on=dirichlet_on, coefficient=coefficient,
                 reaction=reaction, neumann=neumann, robin=robin, rtol=rtol, atol=atol,
@@ -372,4 +421,5 @@ def solve_partitioned(mesh, f, refine, comm, dirichlet, dirichlet_on, coefficien
     report_convergence(stats, check)
     return DistributedPoissonSolution(u=u, stats=stats, mesh=mesh, problem=problem,
                                       u_owned=u_owned, owned=owned,
-                                      rank=comm.Get_rank(), size=comm.Get_size(), piece=piece)
+                                      rank=comm.Get_rank(), size=comm.Get_size(), piece=piece,
+                                      flows=flows)
