@@ -40,7 +40,8 @@ def worker(args):
         bal = s.distribution.balance
         print(json.dumps({
             "ranks": comm.Get_size(), "dim": args.dim, "coarse_cells": cells,
-            "refine": args.refine, "points": s.unknowns, "iterations": s.iterations,
+            "refine": args.refine, "points": s.unknowns + s.dirichlet_points,
+            "iterations": s.iterations,
             "converged": s.converged, "timings_max": s.timings,
             "version": hatkernels.__version__,
             "per_rank": [{k: b[k] for k in ("rank", "owned_points", "ghost_points", "cells",

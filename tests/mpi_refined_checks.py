@@ -143,7 +143,7 @@ def memory_per_rank_falls(comm):
 
     dist = distributed.solve_poisson(rectangle(8, 8), 1.0, refine=4, preconditioner="gmg",
                                      comm=comm, gather=False)
-    n_fine = dist.stats.unknowns
+    n_fine = dist.stats.unknowns + dist.stats.dirichlet_points  # every fine point
     local = max(b["levels_points"][-1] for b in dist.stats.distribution.balance)
     size = comm.Get_size()
     # a replicated fine mesh would put all n_fine points on every rank

@@ -294,7 +294,8 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     stats_out = SolveStats(
         iterations=result.iterations, converged=result.converged, residuals=result.residuals,
         timings={key: max(bb["timings"][key] for bb in balance) for key in timings},
-        unknowns=int(numberings[-1].n_fine), preconditioner=M.description,
+        unknowns=int(numberings[-1].n_fine) - int(comm.allreduce(len(held_owned))),
+        preconditioner=M.description,
         stored_bytes=sum(bb["operator_bytes"] for bb in balance),
         peak_rss_bytes=max(bb["peak_rss_bytes"] for bb in balance),
         threads=numba.get_num_threads(), info=result.info, message=result.message,
