@@ -182,6 +182,7 @@ def _check_problem_file(args, prog):
     """A problem file (PROBLEM.toml or a packaged one) excludes the options that set a
     scenario's mesh or data; the others' defaults wait until the file is read."""
     args.defaults = dict(SOLVE_DEFAULTS)
+    args.given = {key for key in SOLVE_DEFAULTS if getattr(args, key, None) is not None}
     if args.problem is not None and args.scenario is not None:
         raise UsageError(f"PROBLEM.toml ({args.problem}) and --scenario both choose the "
                          f"problem; give one (see '{prog} --help')")

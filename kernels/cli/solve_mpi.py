@@ -3,10 +3,16 @@
 :func:`hatkernels.cli.solve.run` calls :func:`run` when the launcher's
 environment says there is more than one rank
 (:func:`~hatkernels.distributed.launch.ranks_from_environment`, read before
-mpi4py is imported).  Every rank builds the same mesh and problem (the
-replicated input path), the solve is :func:`hatkernels.distributed.solve_poisson`
-with the two-level preconditioner, and only rank 0 checks the power balance,
-prints, and writes the output directory; the other ranks stay silent.
+mpi4py is imported).  With ``--refine K`` the plate and a ``--mesh`` file
+take the partitioned path (:mod:`hatkernels.cli.solve_parts`): each rank
+refines its part of the coarse mesh, the multigrid runs across the ranks,
+and each rank writes its piece of the solution.  Otherwise (no ``--refine``,
+the block, a ``--preconditioner`` that needs no refinement history, or plate components whose
+edges are not on the refined mesh's lines; the report says which) every rank
+builds the same mesh and problem (the replicated input path), the solve is
+:func:`hatkernels.distributed.solve_poisson` with the two-level
+preconditioner, and only rank 0 checks the power balance, prints, and writes
+the output directory; the other ranks stay silent.
 
 Errors: bad usage or input is detected identically on every rank; each
 raises it and :func:`hatkernels.cli.main` reports it once, on rank 0, with
@@ -18,6 +24,7 @@ could leave the others waiting in a collective call, aborts the job
 
 from __future__ import annotations
 
+import dataclasses
 import sys
 import time
 import traceback
@@ -25,6 +32,7 @@ import warnings
 
 from hatkernels import io as kio
 from hatkernels import scenarios
+from hatkernels.cli import solve_parts
 from hatkernels.cli.common import PROG, command_line
 from hatkernels.cli.outputs import write_solve_outputs
 from hatkernels.cli.problem import build_mesh, make_problem, tiny_problem
@@ -51,6 +59,14 @@ PHASE_TEXT = {
     "boundary": "boundary: checks, boundary conditions and partition",
     "assemble": "assemble: owned rows on each rank's subdomain",
     "solve": "solve: preconditioner setup and distributed conjugate gradients",
+}
+
+
+#: The progress line for each phase of the partitioned path.
+PARTS_TEXT = {
+    "boundary": "boundary: checks on the coarse mesh",
+    "assemble": "assemble: owned rows of the fine level on each rank",
+    "solve": "solve: multigrid setup on every level and distributed conjugate gradients",
 }
 
 
@@ -100,6 +116,10 @@ def run(args, progress):
         sys.stderr.flush()
         comm.Abort(1)
         raise
+    if solved[0] == "partitioned":
+        if rank == 0:
+            print(solved[1])
+        return 0
     if rank != 0:
         return 0
     return _report(args, progress, *solved)
@@ -135,6 +155,11 @@ def _collective(args, progress, comm):
         arrays = kio.read_mesh_arrays(args.mesh)
     progress.phase(f"kernels: loading compiled kernels (or compiling them) on "
                    f"{comm.Get_size()} ranks")
+    chosen, why = solve_parts.plan(args, arrays)
+    if chosen is not None:
+        return "partitioned", _partitioned(args, progress, comm, chosen, out, command)
+    if why:
+        progress.phase(f"path: every rank holds the whole refined mesh ({why})")
     with CompileNotice(progress) as notice:
         _warm_up(args, comm)
     t0 = time.perf_counter()
@@ -144,10 +169,34 @@ def _collective(args, progress, comm):
     sol = _solve(problem, args, comm, lambda phase: progress.phase(PHASE_TEXT.get(phase, phase)),
                  monitor=IterationReport(progress))
     peak = max(comm.allgather(peak_rss_bytes()))  # the largest rank's, for the report
-    return out, problem, sol, timings, notice.seconds, command, peak
+    return out, problem, sol, timings, notice.seconds, command, peak, why
 
 
-def _report(args, progress, out, problem, sol, timings, kernels_seconds, command, peak):
+def _partitioned(args, progress, comm, p, out, command):
+    """The partitioned path (:mod:`hatkernels.cli.solve_parts`); rank 0 gets the report."""
+    with CompileNotice(progress) as notice:
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                solve_parts.solve(dataclasses.replace(p, refine=1), args, comm)
+        except (InputError, ConvergenceError):
+            pass  # the real problem reports its own errors
+    progress.phase(f"mesh: each rank refines its part of the coarse mesh {p.refine} times")
+    sol = solve_parts.solve(p, args, comm,
+                            progress=lambda phase: progress.phase(PARTS_TEXT.get(phase, phase)),
+                            monitor=IterationReport(progress))
+    progress.phase("check: power balance and extremes, reduced over the ranks")
+    t0 = time.perf_counter()
+    summary = solve_parts.summary_record(args, p, sol, comm, {}, notice.seconds,
+                                         command, None)
+    summary["timings_s"]["check"] = time.perf_counter() - t0
+    solve_parts.write(args, out, summary, sol, comm, progress)
+    progress.phase("done")
+    progress.close()
+    return solve_parts.report(p, summary, args.out) if comm.Get_rank() == 0 else None
+
+
+def _report(args, progress, out, problem, sol, timings, kernels_seconds, command, peak, why):
     """Rank 0: power balance, summary, output files, the printed report."""
     progress.phase("check: power balance " + ("from the boundary reactions" if problem.cooling
                                                is None else "through the cooled sides")
@@ -158,6 +207,9 @@ def _report(args, progress, out, problem, sol, timings, kernels_seconds, command
     summary = solve_summary(args, problem, sol, balance, timings, kernels_seconds, command,
                             peak_bytes=peak)
     summary["distributed"] = distributed_figures(sol, COMMAND_COARSE)
+    summary["distributed"]["path"] = "replicated"
+    if why:
+        summary["distributed"]["why"] = why
     progress.phase(f"write: solution.npz and summary.json into {args.out} (rank 0)")
     with kio.output_directory(out, force=args.force) as tmp:
         write_solve_outputs(tmp, problem, sol.u, summary, progress, args.rtol)

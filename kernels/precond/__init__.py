@@ -50,7 +50,12 @@ __all__ = [
     "GeometricMultigrid",
     "DIRECT_LIMIT",
     "AMG_DEFAULT",
+    "DEFAULT",
 ]
+
+#: The preconditioner of a solve that names none (the default of hatkernels.solve and
+#: solve_poisson; the distributed solve's on its replicated path).
+DEFAULT = "amg"
 
 #: The variant ``"amg"`` names: the faster one on 2-D Poisson in bench/test_bench_linear.py.
 AMG_DEFAULT = "amg-native"
