@@ -36,7 +36,8 @@ class Distribution:
         ``threads``, ``ranks_on_node`` and ``chosen_by`` (how the count was chosen).
     path : str
         ``"partitioned"`` (each rank refined its part of the coarse mesh: refine=k with
-        multigrid) or ``"replicated"`` (every rank held the whole mesh).
+        multigrid), ``"replicated"`` (every rank held the whole mesh) or ``"scattered"``
+        (the mesh on rank 0 only, which sent each other rank its part).
     why : str
         Why the replicated path was taken when the partitioned one was the default
         (empty otherwise).
@@ -64,6 +65,8 @@ class DistributedPoissonSolution(PoissonSolution):
         rank's), with ``ranks`` and ``distribution`` (a :class:`Distribution`).
         The same on every rank.
     mesh : Mesh
+        The whole mesh; None on ranks other than 0 with scattered input (and
+        ``problem`` likewise).
     u_owned : ndarray
         Values at this rank's owned points.
     owned : ndarray

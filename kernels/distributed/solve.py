@@ -1,22 +1,30 @@
 """The one-call distributed solve: :func:`hatkernels.poisson.solve_poisson` over MPI ranks.
 
-The mesh may have triangles or tetrahedra.  Every rank is given the whole
-mesh and the same data (the replicated input path: simple, and it keeps the
-call identical to the serial one, but each rank holds the whole mesh, so
-memory per rank does not shrink as ranks are added; see docs/distributed.md
-for the scalable alternative).  Each rank
+The mesh may have triangles or tetrahedra.  Two input paths, chosen by what
+the ranks pass as ``mesh``:
 
-1. partitions the mesh (deterministically: all ranks compute the same split),
-2. extracts its subdomain (owned points, the cells touching them, one
-   layer of ghosts) and assembles its owned rows there,
-3. reduces the Dirichlet points and lifts their values, locally,
-4. runs the distributed CG with a block-Jacobi (optionally two-level)
+replicated
+    every rank is given the whole mesh and the same data (simple, and the call
+    is the serial one, but each rank holds the whole mesh, so memory per rank
+    does not shrink as ranks are added);
+scattered
+    the mesh on rank 0 only, None on the others: rank 0 parses the problem,
+    partitions it and sends each rank its part (its assembled local rows and
+    its halo plan, :mod:`hatkernels.distributed.scatter`), so no other rank
+    ever holds the whole mesh.
+
+Then each rank, on either path,
+
+1. reduces the Dirichlet points and lifts their values, locally,
+2. runs the distributed CG with a block-Jacobi (optionally two-level)
    preconditioner, and
-5. gathers the nodal solution where asked.
+3. gathers the nodal solution where asked.
 
-Errors in the local phases are agreed on before any rank goes on, so a bad
-value met by one rank raises on all of them instead of leaving the others
-waiting in a collective call.
+On the replicated path each rank partitions the mesh (deterministically: all
+ranks compute the same split) and cuts its own part.  Errors in the local
+phases are agreed on before any rank goes on, so a bad value met by one rank
+(or by rank 0 for all of them) raises on all of them instead of leaving the
+others waiting in a collective call.
 """
 
 from __future__ import annotations
@@ -29,7 +37,7 @@ import numpy as np
 
 from hatkernels._jit import threads as _threads
 from hatkernels.discretise import LinearSystem
-from hatkernels.distributed.assembly import assemble_local, local_boundary_data, reduce_local
+from hatkernels.distributed.assembly import reduce_local
 from hatkernels.distributed.cg import cg
 from hatkernels.distributed.halo import CommStats
 from hatkernels.distributed.launch import as_comm, default_threads, mpi
@@ -44,12 +52,20 @@ from hatkernels.distributed.outcome import (
 from hatkernels.distributed.partition import METHODS, Partition, partition
 from hatkernels.distributed.precond import COARSE_SPACES, make_distributed_preconditioner
 from hatkernels.distributed.refined_solve import NotRefinable, solve_partitioned
-from hatkernels.distributed.subdomain import local_coefficient, subdomain
+from hatkernels.distributed.scatter import (
+    input_mode,
+    input_status,
+    part_of,
+    recv_part,
+    scatter_parts,
+)
+from hatkernels.distributed.scatter import local_boundary as _local_boundary  # noqa: F401
 from hatkernels.errors import InputError
 from hatkernels.memory import check_solve_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.poisson import refined
+from hatkernels.precond import DEFAULT as DEFAULT_PRECONDITIONER
 from hatkernels.precond import capabilities
 from hatkernels.problem import PoissonProblem
 from hatkernels.solver import report_convergence
@@ -57,39 +73,39 @@ from hatkernels.stats import SolveStats
 
 __all__ = ["Distribution", "DistributedPoissonSolution", "solve_poisson", "GATHER"]
 
-def _same_input_everywhere(comm, mesh, parts):
-    mine = (mesh.n_points, mesh.n_cells, mesh.dim, float(mesh.points.sum()),
-            int(mesh.cells.sum(dtype=np.int64)))
-    seen = comm.allgather(mine)
-    for r, other in enumerate(seen):
-        if other != mine:
-            raise InputError(f"rank {r} was given another mesh ({other[0]} points, {other[1]} "
-                             f"cells in {other[2]}-D) than rank {comm.Get_rank()} ({mine[0]}, "
-                             f"{mine[1]} in {mine[2]}-D): the distributed solve needs the same "
-                             f"mesh on every rank")
-    if parts.owner.shape != (mesh.n_points,) or parts.mesh is not mesh:
-        raise InputError("the partition was made for another mesh")
+
+def _split(mesh, size, parts):
+    if isinstance(parts, Partition):
+        if parts.parts != size:
+            raise InputError(f"the partition has {parts.parts} parts but the communicator "
+                             f"has {size} ranks")
+        if parts.owner.shape != (mesh.n_points,) or parts.mesh is not mesh:
+            raise InputError("the partition was made for another mesh")
+        return parts
+    return partition(mesh, size, method=parts or "rcb")
 
 
-def _local_boundary(sub, problem):
-    """This rank's part of the problem's flux and Robin sides, with their data."""
-    n = problem.mesh.n_points
-    neumann = robin = None
-    if problem.flux is not None:
-        neumann = local_boundary_data(sub, n, problem.flux.sides, problem.flux.flux,
-                                      name="boundary load", sign="any")
-    if problem.robin is not None:
-        rb = problem.robin
-        le, lr = local_boundary_data(sub, n, rb.sides, rb.r, name="boundary coefficient",
-                                     sign="nonnegative")
-        _, ls = local_boundary_data(sub, n, rb.sides, rb.s, name="boundary load", sign="any")
-        robin = (le, lr, ls)
-    return neumann, robin
+def _nothing(*args, **kwargs):
+    """What the ranks without the mesh do while rank 0 reads the problem (scattered input)."""
+    return None
 
 
-def _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, parts, monitor):
-    if not isinstance(mesh, Mesh):
-        raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
+def _settled(part, failure):
+    if failure is not None:
+        raise failure
+    return part
+
+
+def _summary(problem, split):
+    """What every rank must know of the whole problem (sent from rank 0 when scattered)."""
+    return {"n_points": int(problem.mesh.n_points), "dim": int(problem.mesh.dim),
+            "n_fixed": int(problem.dirichlet.points.size),
+            "counts": split.counts().astype(np.int64),
+            "partition": {"method": split.method, "weight": split.weight,
+                          **split.quality().as_dict()}}
+
+
+def _check_options(preconditioner, coarse, gather, matrix_free, variant, parts, monitor):
     if matrix_free:
         raise InputError("matrix_free=True is not available in the distributed solve; each "
                          "rank assembles its rows (leave matrix_free unset)")
@@ -109,6 +125,7 @@ def _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, p
     if not (parts is None or isinstance(parts, Partition) or parts in METHODS):
         raise InputError(f"partition must be None, one of {METHODS} or a Partition, "
                          f"got {parts!r}")
+
 
 
 def solve_poisson(
@@ -144,12 +161,26 @@ def solve_poisson(
     """Solve ``-div(kappa grad u) + c u = f`` over the ranks of ``comm`` (collective).
 
     Takes the arguments of :func:`hatkernels.poisson.solve_poisson` (the same
-    meaning; every rank passes the same mesh and data) and returns the same
-    kind of result.  With one rank the result equals the serial one.
+    meaning) and returns the same kind of result.  With one rank the result
+    equals the serial one.  Every rank makes the same call, with the mesh
+    either on every rank (replicated input) or on rank 0 only (scattered
+    input, below).
 
     Parameters
     ----------
-    mesh, f, refine, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin
+    mesh : Mesh or None
+        The same mesh on every rank (replicated input), or the mesh on rank 0
+        and None on every other rank (scattered input: rank 0 parses the data,
+        partitions and sends each rank only its part, so no other rank holds
+        the whole mesh; see :mod:`hatkernels.distributed.scatter`).  Then the
+        problem's data (``f``, ``dirichlet``, ``dirichlet_on``,
+        ``coefficient``, ``reaction``, ``neumann``, ``robin``, ``quadrature``,
+        ``partition``) are taken from rank 0's call and the other ranks' are
+        ignored; callables need not be picklable, as only rank 0 evaluates
+        them.  ``refine`` must be 0 there (refining needs the mesh on every
+        rank).  Any other mix of meshes and None is an InputError on every
+        rank, naming the ranks.
+    f, refine, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin
         As in :func:`hatkernels.poisson.solve_poisson`.
     comm : mpi4py intracommunicator, optional
         Default ``MPI.COMM_WORLD``.
@@ -197,15 +228,27 @@ def solve_poisson(
     Returns
     -------
     DistributedPoissonSolution
+        With scattered input, ``mesh`` and ``problem`` are the whole mesh and
+        problem on rank 0 and None on the other ranks;
+        ``stats.distribution.path`` says which path ran.
 
     Raises
     ------
     InputError
         As the serial solve, on every rank; also when ranks were given
-        different meshes.
+        different meshes, a mesh on some ranks and None on others (other than
+        rank 0 alone), or different solver options (``refine``,
+        ``preconditioner``, ``coarse``, ``gather``, ``rtol``, ``atol``,
+        ``maxiter``).
     ConvergenceError
         With ``check=True``, on every rank.
     """
+    agreed = {"refine": refine, "preconditioner": preconditioner, "coarse": coarse,
+              "gather": gather, "rtol": rtol, "atol": atol, "maxiter": maxiter}
+    seen = None
+    if refine:  # refining needs the mesh everywhere: every rank learns of a None first
+        seen = as_comm(comm).allgather(input_status(mesh, agreed))
+        input_mode(seen)
     why = ""
     if refine and (preconditioner is None or isinstance(preconditioner, str)
                    and capabilities(preconditioner).needs_mesh):
@@ -220,24 +263,29 @@ def solve_poisson(
                 raise
             why = str(exc)
     if preconditioner is None:
-        preconditioner = "amg"
-    mesh = refined(mesh, refine)  # every rank refines the whole mesh (the replicated path)
-    _check_options(mesh, preconditioner, coarse, gather, matrix_free, variant, partition,
-                   monitor)
+        preconditioner = DEFAULT_PRECONDITIONER
+    if isinstance(mesh, Mesh):  # every rank refines the whole mesh (the replicated path)
+        mesh = refined(mesh, refine)
+    _check_options(preconditioner, coarse, gather, matrix_free, variant,
+                   None if mesh is None else partition, monitor)
     if zero_mean is not False:
         raise InputError("zero_mean=True (a pure Neumann part) is not available in the "
                          "distributed solve yet; solve it serially, or hold a point")
     comm = as_comm(comm)
+    if seen is None:
+        seen = comm.allgather(input_status(mesh, agreed))
+    scattered = input_mode(seen) == "scattered"
     n_threads, ranks_on_node, how = default_threads(comm, threads)
-    if memory_check:
-        _together(comm, "the memory check", check_solve_memory, mesh, preconditioner,
-                  share=ranks_on_node / comm.Get_size())
+    if memory_check:  # scattered: rank 0, holding the mesh, checks for all
+        _together(comm, "the memory check", _nothing if mesh is None else check_solve_memory,
+                  mesh, preconditioner, share=ranks_on_node / comm.Get_size())
     dcomm = comm.Dup()  # the solver's messages never meet the caller's
     try:
         with _threads(n_threads):
             sol = _solve(mesh, f, dcomm, dirichlet, dirichlet_on, coefficient, reaction,
                          neumann, robin, preconditioner, rtol, atol, maxiter, quadrature,
-                         progress, monitor, coarse, partition, gather, preconditioner_options)
+                         progress, monitor, coarse, partition, gather, preconditioner_options,
+                         scattered)
     finally:
         dcomm.Free()
     sol.stats.distribution.threads_per_rank = {"threads": n_threads,
@@ -249,8 +297,9 @@ def solve_poisson(
 
 def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin,
            preconditioner, rtol, atol, maxiter, quadrature, progress, monitor, coarse, parts,
-           gather, options):
+           gather, options, scattered):
     rank, size = comm.Get_rank(), comm.Get_size()
+    reads = rank == 0 or not scattered  # the ranks that hold the mesh and the data
     note = progress or (lambda phase: None)
     stats = CommStats()
     t0 = time.perf_counter()
@@ -258,45 +307,32 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
 
     note("boundary")
     t1 = time.perf_counter()
-    # the same checked problem as the serial solve; every rank parses the same data
-    problem = PoissonProblem(mesh, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
-                             coefficient=coefficient, reaction=reaction, neumann=neumann,
-                             robin=robin, quadrature=quadrature)
-    fixed, values = problem.dirichlet.points, problem.dirichlet.values
+    # the same checked problem as the serial solve, parsed by every rank that has the data
+    problem = _together(comm, "reading the problem", PoissonProblem if reads else _nothing,
+                        mesh, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
+                        coefficient=coefficient, reaction=reaction, neumann=neumann,
+                        robin=robin, quadrature=quadrature)
     timings["boundary"] = time.perf_counter() - t1
 
     t1 = time.perf_counter()
-    if isinstance(parts, Partition):
-        if parts.parts != size:
-            raise InputError(f"the partition has {parts.parts} parts but the communicator "
-                             f"has {size} ranks")
-        split = parts
-    else:
-        split = partition(mesh, size, method=parts or "rcb")
-    _same_input_everywhere(comm, mesh, split)
-    quality = split.quality()
-    sub = subdomain(split, rank)
+    split = _together(comm, "partitioning", _split if reads else _nothing, mesh, size, parts)
+    # the same mesh on every rank (replicated) was checked by input_mode
+    info = comm.bcast(_summary(problem, split) if rank == 0 else None, root=0) if scattered \
+        else _summary(problem, split)
     timings["partition"] = time.perf_counter() - t1
 
     note("assemble")
     t2 = time.perf_counter()
-
-    def local_system():
-        nb, rb = _local_boundary(sub, problem)
-        c = problem.reaction
-        A, b, _ = assemble_local(
-            sub, kappa=local_coefficient(problem.coefficient, sub),
-            f=local_coefficient(problem.source, sub),
-            reaction=None if c is None else local_coefficient(c, sub), neumann=nb, robin=rb,
-            quadrature=quadrature)
-        loc = sub.local_numbers(fixed, mesh.n_points)
-        here = loc >= 0
-        return A, b, loc[here], values[here]
-
-    A_L, b_L, fixed_local, values_local = _together(comm, "assembly", local_system)
-    local = _together(comm, "Dirichlet reduction", reduce_local, sub, A_L, b_L, fixed_local,
-                      values_local)
-    del A_L, b_L
+    if not scattered:
+        part = _together(comm, "assembly", part_of, problem, split, rank)
+    else:  # rank 0 cuts and sends every part, then its own
+        own, failure = (scatter_parts(comm, problem, split) if rank == 0
+                        else (recv_part(comm), None))
+        part = _together(comm, "assembly", _settled, own, failure)
+        del own
+    local = _together(comm, "Dirichlet reduction", reduce_local, part, part.A, part.b,
+                      part.fixed, part.values)
+    part = part.reduced()
     matrix = DistributedMatrix(local.A, local.pattern, comm, stats)
     n_of = local.n_unknowns
     # this rank's share of the problem's linear system, in the serial solve's type
@@ -316,21 +352,22 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
     result = cg(system.A, system.b, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
                 monitor=monitor)
     timings["solve"] = time.perf_counter() - t4
-    u_owned = system.expand(result.x)
+    u_owned = local.expand(result.x)  # no floating parts here (zero_mean is refused)
 
     t5 = time.perf_counter()
-    u = _gather(comm, split, u_owned, gather)
+    u = _gather(comm, info["counts"], None if split is None else split.order(),
+                info["n_points"], u_owned, gather, scattered)
     timings["gather"] = time.perf_counter() - t5
     timings["total"] = time.perf_counter() - t0
 
     mine = {
         "rank": rank,
-        "owned_points": int(sub.n_owned),
+        "owned_points": int(part.n_owned),
         "owned_unknowns": int(n_of),
-        "cells": int(len(sub.cells)),
-        "ghost_points": int(sub.n_ghosts),
+        "cells": int(part.n_cells),
+        "ghost_points": int(part.n_ghosts),
         "ghost_unknowns": int(local.pattern.n_ghosts),
-        "neighbours": sub.neighbours.tolist(),
+        "neighbours": part.neighbours.tolist(),
         "nnz": int(matrix.nnz),
         "operator_bytes": int(matrix.nbytes),
         "halo_bytes_per_product": int(8 * local.pattern.send_counts.sum()),
@@ -340,7 +377,7 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
         "timings": timings,
         "peak_rss_bytes": peak_rss_bytes(),
     }
-    if mesh.dim == 2:
+    if info["dim"] == 2:
         mine["triangles"] = mine["cells"]  # the older name of the figure, on triangle meshes
     balance = comm.allgather(mine)
     worst = {k: max(b["timings"][k] for b in balance) for k in timings}
@@ -354,7 +391,7 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
     iters = max(result.iterations, 1)
     halo_total = sum(b["halo_bytes_per_product"] for b in balance)
     distribution = Distribution(
-        partition={"method": split.method, "weight": split.weight, **quality.as_dict()},
+        partition=info["partition"],
         balance=balance,
         communication={
             "halo_bytes_per_product": halo_total,
@@ -367,6 +404,7 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
             "seconds_per_iteration_max": max(b["communication"]["seconds"] for b in balance)
             / iters,
         },
+        path="scattered" if scattered else "replicated",
     )
     stats_out = SolveStats(
         iterations=result.iterations,
@@ -383,13 +421,13 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
         tolerance=result.tolerance,
         condition_estimate=result.condition_estimate,
         nnz=nnz,
-        dirichlet_points=int(fixed.size),
+        dirichlet_points=info["n_fixed"],
         ranks=size,
         distribution=distribution,
     )
     return DistributedPoissonSolution(u=u, stats=stats_out, mesh=mesh, problem=problem,
                                       u_owned=u_owned,
-                                      owned=sub.owned.copy(), rank=rank, size=size)
+                                      owned=part.owned.copy(), rank=rank, size=size)
 
 
 def _check_halo(arrived, expected):
@@ -407,23 +445,34 @@ def _solve_part(total, setup):
     return out
 
 
-def _gather(comm, split, u_owned, gather):
+def _gather(comm, counts, order, n, u_owned, gather, scattered):
+    """The whole solution in the mesh's numbering, where ``gather`` asks for it.
+
+    ``order`` (the partition's gather order) is None on the ranks without the
+    mesh (scattered input): there rank 0 puts the values in place and, for
+    ``gather=True``, broadcasts them.
+    """
     if gather is False:
         return None
     MPI = mpi()
-    counts = split.counts().astype(np.int64)
+    counts = np.asarray(counts, dtype=np.int64)
     displs = np.concatenate([[0], np.cumsum(counts)[:-1]])
-    order = split.order()
-    n = split.mesh.n_points
-    if gather is True:
+    if gather is True and not scattered:
         buf = np.empty(n)
         comm.Allgatherv([u_owned, MPI.DOUBLE], [buf, (counts, displs), MPI.DOUBLE])
-    else:
-        buf = np.empty(n) if comm.Get_rank() == 0 else None
-        comm.Gatherv([u_owned, MPI.DOUBLE],
-                     [buf, (counts, displs), MPI.DOUBLE] if buf is not None else None, root=0)
-        if buf is None:
-            return None
-    u = np.empty(n)
-    u[order] = buf
+        u = np.empty(n)
+        u[order] = buf
+        return u
+    root = comm.Get_rank() == 0
+    buf = np.empty(n) if root else None
+    comm.Gatherv([u_owned, MPI.DOUBLE],
+                 [buf, (counts, displs), MPI.DOUBLE] if root else None, root=0)
+    u = None
+    if root:
+        u = np.empty(n)
+        u[order] = buf
+        del buf
+    if gather is True:
+        u = np.empty(n) if u is None else u
+        comm.Bcast([u, MPI.DOUBLE], root=0)
     return u
