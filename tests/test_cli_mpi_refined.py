@@ -78,10 +78,27 @@ def test_plate_on_two_ranks_is_the_serial_solution(tmp_path):
     assert "solution/solution.pvtu" in mine["files"]
 
 
-def test_plate_not_on_the_refined_lines_keeps_the_replicated_path(tmp_path):
-    code, out, err = run_mpi(2, _command(tmp_path, "mpi", "--refine", "2"), cwd=tmp_path)
-    assert code == 0, f"{out}\n{err}"
-    summary = json.loads((tmp_path / "mpi" / "summary.json").read_text())
-    assert summary["distributed"]["path"] == "replicated"
-    assert "do not lie on the lines" in summary["distributed"]["why"]
-    assert (tmp_path / "mpi" / "solution.npz").exists()
+def test_which_problems_take_the_partitioned_path():
+    # the plate's components lie on the lines of the 8 mm grid refined 4 times or more
+    # (their edges are multiples of 0.5 mm: the scenario's data); the block and a
+    # preconditioner without refinement history keep the replicated path
+    from types import SimpleNamespace
+
+    from hatkernels.cli import solve_parts
+
+    def args(**kw):
+        base = dict(refine=None, scenario=None, mesh=None, source=None, conductivity=None,
+                    dirichlet=None, preconditioner="amg", given=set())
+        return SimpleNamespace(**{**base, **kw})
+
+    assert solve_parts.plan(args(), None) == (None, "")
+    for k in (1, 2, 3):
+        chosen, why = solve_parts.plan(args(refine=k), None)
+        assert chosen is None and "do not lie on the lines" in why, k
+    chosen, _ = solve_parts.plan(args(refine=2, source=1e6), None)  # uniform: any refinement
+    assert chosen is not None and chosen.source == 1e6
+    chosen, why = solve_parts.plan(args(refine=4), None)
+    assert chosen.refine == 4 and chosen.coarse.n_cells == 300 and why == ""
+    assert "bottom face" in solve_parts.plan(args(refine=4, scenario="block"), None)[1]
+    chosen, why = solve_parts.plan(args(refine=4, given={"preconditioner"}), None)
+    assert chosen is None and "--preconditioner amg" in why
