@@ -107,6 +107,29 @@ def tagged_materials_and_conditions_match(comm):
 
 
 @check
+def level_operators_matrix_free_or_assembled(comm):
+    import numpy as np
+
+    from hatkernels import distributed
+    from hatkernels.mesh import ball, rectangle
+
+    # a tensor in 2-D, a callable on the ball (cells with obtuse angle pairs) in 3-D: the
+    # matrix-free levels (the default) give the serial answer
+    T = [[2.0, 0.3], [0.3, 1.0]]
+    free = _same_as_serial(comm, rectangle(4, 3), 2, 1.0, coefficient=T)
+    _same_as_serial(comm, ball(2), 1, 1.0, coefficient=lambda x, y, z: 1.0 + x * x)
+    # the assembled levels: the same rows, so the same iterations and solution
+    asm = distributed.solve_poisson(rectangle(4, 3), 1.0, refine=2, preconditioner="gmg",
+                                    rtol=1e-12, comm=comm, coefficient=T, matrix_free=False)
+    assert "level operators matrix-free (geometry)" in free.stats.preconditioner
+    assert "level operators assembled" in asm.stats.preconditioner
+    assert free.stats.iterations == asm.stats.iterations
+    assert np.abs(free.u - asm.u).max() < 1e-12 * np.abs(asm.u).max()
+    assert free.stats.nnz == asm.stats.nnz  # the same pattern, counted without assembling
+    assert free.stats.stored_bytes < asm.stats.stored_bytes / 2  # no stored rows
+
+
+@check
 def halos_round_trip_on_every_level(comm):
     import numpy as np
 

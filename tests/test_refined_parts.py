@@ -12,7 +12,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import EPS
 
+from hatkernels import StiffnessOperator, assemble_stiffness
+from hatkernels.coefficients import parse_coefficient
 from hatkernels.distributed import partition_from_owner, subdomain
 from hatkernels.distributed.finenumbers import (
     fine_numbering,
@@ -20,8 +23,20 @@ from hatkernels.distributed.finenumbers import (
     partition_coarse_cells,
     refined_subdomain,
 )
+from hatkernels.distributed.halo import CommStats
+from hatkernels.distributed.levelrows import (
+    TOO_MANY_COLOURS,
+    AssembledRows,
+    MatrixFreeRows,
+    _masked_rows,
+    describe_kinds,
+    level_operator,
+)
+from hatkernels.distributed.refined import build_level, points_on
+from hatkernels.distributed.refined_solve import _on_level
 from hatkernels.errors import InputError
-from hatkernels.mesh import ball, cuboid, disk, l_shape, rectangle
+from hatkernels.mesh import Mesh, ball, cuboid, disk, l_shape, rectangle
+from hatkernels.mesh.tags import label_cells
 
 
 def _refined(mesh, k):
@@ -115,6 +130,167 @@ def test_bad_input_is_named():
         refined_subdomain(coarse, 1, np.zeros(3, dtype=int), 0)
 
 
+# -- the level operators: matrix-free owned rows against the assembled ones -----------------
+#
+# Reference: the assembled stiffness rows with identity rows and zero columns at the held
+# points (assemble_stiffness, itself checked against the 5- and 7-point stencils and the
+# reference strategy elsewhere), multiplied by scipy's sparse product (reference library:
+# scipy).  A part's ghosts are filled from one global vector by the test, so no MPI runs.
+
+
+class _Parts:
+    """What build_level asks of a communicator, for part ``rank`` of ``size`` without MPI:
+    no rank asks anything of this one (its send lists stay empty, unused here)."""
+
+    def __init__(self, size, rank):
+        self.size, self.rank = size, rank
+
+    def Get_size(self):  # noqa: N802 (mpi4py's name)
+        return self.size
+
+    def Get_rank(self):  # noqa: N802
+        return self.rank
+
+    def alltoall(self, want):
+        return [[] for _ in want]
+
+
+class _Filled:
+    """A halo whose ghosts the test has filled already."""
+
+    comm = None
+
+    def __init__(self):
+        self.stats = CommStats()
+
+    def start(self, x):
+        pass
+
+    def finish(self):
+        pass
+
+    def exchange(self, x):
+        return x
+
+
+def _labelled(mesh):
+    return label_cells(mesh, {"a": lambda *x: x[0] < 0.5, "b": lambda *x: x[0] >= -10})
+
+
+def _tensor(d, scale=1.0):
+    T = np.diag(np.arange(1.0, d + 1.0)) * scale
+    T[0, 1] = T[1, 0] = 0.3 * scale
+    return T
+
+
+COEFFICIENTS = {  # the kinds _on_level hands the levels
+    "none": lambda d: None,
+    "number": lambda d: 3.5,
+    "callable": lambda d: (lambda *x: 1.0 + x[0] ** 2 + x[1]),
+    "by region": lambda d: {"a": 1.0, "b": 40.0},
+    "callable by region": lambda d: {"a": lambda *x: 2.0 + x[1], "b": 0.5},
+    "tensor": lambda d: _tensor(d),
+    "tensor by region": lambda d: {"a": _tensor(d), "b": _tensor(d, 5.0)},
+}
+
+LEVELS = {  # (coarse mesh, refinements, parts); disk and ball have obtuse angle pairs
+    "rectangle": (lambda: rectangle(5, 4), 2, 3),
+    "disk": (lambda: disk(4), 2, 3),
+    "cuboid": (lambda: cuboid(2), 2, 4),
+    "ball": (lambda: ball(2), 1, 3),
+}
+
+
+def _level_parts(name, coefficient):
+    """Every part of the level with its held points and its coefficient as the solve
+    makes them."""
+    make, k, parts = LEVELS[name]
+    coarse = _labelled(make())
+    value = COEFFICIENTS[coefficient](coarse.dim)
+    coef = None if value is None else parse_coefficient(value, coarse, tensor=True)
+    owner = partition_coarse_cells(coarse, parts, k)
+    sides = (coarse.boundary_edges() if coarse.dim == 2 else coarse.boundary_faces())
+    for p in range(parts):
+        part = build_level(coarse, k, owner, p, _Parts(parts, p))
+        fixed = points_on(part, coarse, sides.astype(np.int64))
+        yield part, fixed, _on_level(coef, part, (2**coarse.dim) ** k)
+
+
+def _close(actual, expected, scale, factor=64):
+    """Round-off: a few tens of epsilons of the magnitudes summed (common practice)."""
+    assert np.all(np.abs(actual - expected) <= factor * EPS * scale), \
+        np.abs(actual - expected).max() / np.max(scale)
+
+
+@pytest.mark.parametrize("coefficient", COEFFICIENTS)
+@pytest.mark.parametrize("name", LEVELS)
+def test_matrix_free_rows_equal_the_assembled_rows(name, coefficient):
+    rng = np.random.default_rng(7)
+    for part, fixed, coef in _level_parts(name, coefficient):
+        n = part.n_owned
+        A = assemble_stiffness(part.mesh, coef)
+        rows, diag, bound = _masked_rows(A, n, fixed)
+        op = MatrixFreeRows(part.mesh, n, fixed, coef, _Filled())
+        assert op.kind.startswith("matrix-free") and op.nnz == rows.nnz
+        x = rng.standard_normal(part.n_local)
+        y = np.empty(n)
+        dot = op.matvec_dot(x, y)
+        scale = abs(rows) @ np.abs(x)
+        _close(y, rows @ x, scale)  # reference library: scipy
+        assert dot == pytest.approx(x[:n] @ y, rel=1e-14, abs=0)
+        _close(op.unmasked_product(x)[:n], A[:n] @ x, abs(A[:n]) @ np.abs(x))
+        r = np.empty(n)
+        op.residual(x[:n], y, r, work=x.copy())
+        _close(r, 0.0 * r, scale)  # b - A x with b = A x
+        # Gershgorin's bound and the diagonal from the edges, as from the assembled rows
+        absum = np.asarray(abs(rows).sum(axis=1)).ravel()
+        _close(1.0 / op.inverse_diagonal, diag, absum)
+        assert op.local_bound == pytest.approx(bound, rel=64 * EPS, abs=0)
+
+
+def test_the_bound_is_the_assembled_rows_not_the_element_entries():
+    # on the ball the element entries of some edges differ in sign: summing their absolute
+    # values over the cells overestimates |K_ij|; the rows' bound is the smaller one
+    part, fixed, _ = next(iter(_level_parts("ball", "none")))
+    op = MatrixFreeRows(part.mesh, part.n_owned, fixed, None, _Filled())
+    _, bound = StiffnessOperator(part.mesh).diagonal_and_bound()  # element entries, all rows
+    _, _, assembled = _masked_rows(assemble_stiffness(part.mesh), part.n_owned, fixed)
+    assert op.local_bound == pytest.approx(assembled, rel=64 * EPS, abs=0)
+    assert bound > assembled + 0.01
+
+
+def test_assembled_rows_and_the_fallback():
+    part, fixed, coef = next(iter(_level_parts("disk", "callable")))
+    asm = level_operator(part, coef, fixed, _Filled(), matrix_free=False)
+    assert isinstance(asm, AssembledRows) and asm.kind == "assembled"
+    # a point in 70 cells, one cell per block: more than 64 colours, so the rows are
+    # assembled, and the description says why
+    angles = np.linspace(0.0, 2 * np.pi, 71)[:-1]
+    fan = Mesh(np.vstack([[0.0, 0.0], np.column_stack([np.cos(angles), np.sin(angles)])]),
+               np.array([[0, 1 + i, 1 + (i + 1) % 70] for i in range(70)]))
+    owner = np.zeros(fan.n_cells, dtype=np.int64)
+    level = build_level(fan, 1, owner, 0, _Parts(1, 0))
+    held = points_on(level, fan, fan.boundary_edges().astype(np.int64))
+    op = level_operator(level, None, held, _Filled(), block_size=1)
+    assert isinstance(op, AssembledRows) and op.kind == f"assembled ({TOO_MANY_COLOURS})"
+    mf = level_operator(level, None, held, _Filled())
+    assert isinstance(mf, MatrixFreeRows)
+    x = np.random.default_rng(3).standard_normal(level.n_local)
+    y, z = np.empty(level.n_owned), np.empty(level.n_owned)
+    op.matvec_into(x, y)
+    mf.matvec_into(x, z)
+    _close(z, y, abs(op.A_oo) @ np.abs(x[: level.n_owned]))
+    assert describe_kinds([[mf.kind, op.kind], [mf.kind, mf.kind]]) == (
+        "level operators matrix-free (geometry) on levels 1, 2 (some ranks), "
+        f"assembled ({TOO_MANY_COLOURS}) on level 2 (some ranks)")
+
+
+def test_bad_variant_is_named():
+    part, fixed, _ = next(iter(_level_parts("rectangle", "none")))
+    with pytest.raises(InputError, match="unknown matrix-free variant 'fast'"):
+        level_operator(part, None, fixed, _Filled(), variant="fast")
+
+
 # -- under mpiexec: the distributed solve on the partitioned refinement ----------------------
 
 from test_distributed import needs_mpi, run_mpi  # noqa: E402
@@ -127,4 +303,4 @@ def test_partitioned_solve_matches_the_serial_one(ranks):
     code, out, err = run_mpi(ranks, [sys.executable, str(script)])
     print(out)
     assert code == 0, f"exit {code}\n{out}\n{err}"
-    assert f"all 7 checks passed on {ranks} ranks" in out
+    assert f"all 8 checks passed on {ranks} ranks" in out

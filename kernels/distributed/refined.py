@@ -16,7 +16,9 @@ with the products, smoothers and transfers on owned entries:
 
 - a level's operator is the owned rows of its stiffness matrix with identity
   rows and zero columns at the held points (as the serial matrix-free
-  operator), applied after a halo exchange;
+  operator), applied after a halo exchange: by default the serial matrix-free
+  product on the rank's local mesh (:mod:`~hatkernels.distributed.levelrows`;
+  ``matrix_free=False`` assembles the rows instead);
 - the smoother is the same Chebyshev polynomial in ``D^-1 A`` on the same
   interval (Gershgorin's bound, a global maximum);
 - prolongation fills each owned fine point from its two parents (the ends of
@@ -39,7 +41,6 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
-import scipy.sparse as sp
 
 from hatkernels._jit import sparse as _k
 from hatkernels.assembly import assemble_stiffness
@@ -48,9 +49,14 @@ from hatkernels.distributed.finenumbers import (
     lattice_order,
     lattice_parents,
 )
-from hatkernels.distributed.halo import HaloPattern
+from hatkernels.distributed.halo import Halo, HaloPattern
 from hatkernels.distributed.launch import mpi
-from hatkernels.distributed.matrix import DistributedMatrix
+from hatkernels.distributed.levelrows import (
+    agree_bounds,
+    check_variant,
+    describe_kinds,
+    level_operator,
+)
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh, index_dtype
 from hatkernels.mesh.tags import MeshTags
@@ -268,54 +274,30 @@ def fine_sides_on(level, coarse, sides):
 # -- the levels' operators and transfers ---------------------------------------------------
 
 
-def _masked_rows(A, n_owned, fixed):
-    """Owned rows of ``A`` (local CSR) with identity rows and zero columns at ``fixed``
-    (a local bool mask); and Gershgorin's bound of ``D^-1 A`` over the free owned rows,
-    from the unmasked rows (as the serial operator's bound)."""
-    rows = sp.csr_matrix(A[:n_owned])
-    rows.sort_indices()
-    diag = rows.diagonal().copy()
-    absum = np.asarray(abs(rows).sum(axis=1)).ravel()
-    free = ~fixed[:n_owned]
-    ratio = absum[free] / diag[free]
-    local_bound = float(ratio.max(initial=1.0))
-    coo = rows.tocoo()
-    keep = ~fixed[coo.col] & ~fixed[coo.row]
-    r, c, v = coo.row[keep], coo.col[keep], coo.data[keep]
-    held = np.flatnonzero(fixed[:n_owned])
-    r = np.concatenate([r, held])
-    c = np.concatenate([c, held])
-    v = np.concatenate([v, np.ones(len(held))])
-    out = sp.csr_matrix((v, (r, c)), shape=rows.shape)
-    out.sort_indices()
-    diag[held] = 1.0
-    return out, diag, local_bound
-
-
 class _Level:
-    """One refined level on one rank: operator, smoother, work vectors, transfer."""
+    """One refined level on one rank: operator (:mod:`~hatkernels.distributed.levelrows`),
+    smoother (made once the ranks agree on its bound), work vectors, transfer."""
 
-    def __init__(self, part, coefficient, fixed, comm, stats, degree, lower, quadrature):
+    def __init__(self, part, operator, fixed, transfer, finest=False):
         self.part = part
+        self.operator = operator
         self.fixed_owned = np.flatnonzero(fixed[: part.n_owned])
-        A = assemble_stiffness(part.mesh, coefficient, quadrature=quadrature)
-        rows, diag, bound = _masked_rows(A, part.n_owned, fixed)
-        del A
-        MPI = mpi()
-        buf = np.array([bound])
-        comm.Allreduce(MPI.IN_PLACE, [buf, MPI.DOUBLE], op=MPI.MAX)
-        self.matrix = DistributedMatrix(rows, part.pattern, comm, stats)
         n = part.n_owned
         self.work = np.zeros(part.n_local)
         self.r, self.d, self.q = np.empty(n), np.empty(n), np.empty(n)
-        self.x, self.b = np.empty(n), np.empty(n)
-        self.smoother = ChebyshevSmoother(self.product, self.residual, 1.0 / diag, degree,
-                                          bound=float(buf[0]), estimate=False, lower=lower)
-        self.transfer = None
+        # the finest level's solution is the caller's output
+        self.x, self.b = None if finest else np.empty(n), np.empty(n)
+        self.smoother = None
+        self.transfer = transfer
+
+    def make_smoother(self, degree, lower):
+        self.smoother = ChebyshevSmoother(self.product, self.residual,
+                                          self.operator.inverse_diagonal, degree,
+                                          bound=self.operator.bound, estimate=False, lower=lower)
 
     def product(self, x, out):
         self.work[: self.part.n_owned] = x
-        self.matrix.matvec_into(self.work, out)
+        self.operator.matvec_into(self.work, out)
 
     def residual(self, x, b, out):
         self.product(x, out)
@@ -326,7 +308,8 @@ class _Level:
 
     @property
     def nbytes(self):
-        return int(self.matrix.nbytes + 8 * (6 * self.part.n_owned + self.part.n_local))
+        held = (self.work, self.r, self.d, self.q, self.x, self.b, *self.transfer)
+        return int(self.operator.nbytes + sum(v.nbytes for v in held if v is not None))
 
 
 def _parents(coarse, part, coarser, cell_owner, rank):
@@ -358,7 +341,8 @@ def _parents(coarse, part, coarser, cell_owner, rank):
         else:
             pa[rows] = to_local(down[sel_r[rows], par[:, 0]], "prolongation")
             pb[rows] = to_local(down[sel_r[rows], par[:, 1]], "prolongation")
-    return fine_local, pa, pb
+    dt = index_dtype(max(part.n_local, coarse.n_points if coarser is None else coarser.n_local))
+    return fine_local.astype(dt), pa.astype(dt), pb.astype(dt)
 
 
 class _ReverseAdd:
@@ -392,24 +376,38 @@ class _ReverseAdd:
 
 class DistributedMultigrid:
     """The serial ``gmg`` cycle across ranks (see the module notes); ``apply_into(r, z)`` on
-    owned entries of the finest level, collective."""
+    owned entries of the finest level, collective.  ``matrix_free``: the levels' operators
+    matrix-free (``variant``: which) or assembled rows; ``fine_operator``: the CG's operator
+    (of :mod:`~hatkernels.distributed.levelrows`), which the finest level then shares."""
 
     communicates = True
     is_identity = False
     inverse_diagonal = None
 
     def __init__(self, coarse, parts, cell_owner, coefficients, fixed, coarse_fixed, comm,
-                 stats, *, cycle=None, degree=2, lower=1.0 / 6.0, quadrature=2):
+                 stats, *, cycle=None, degree=2, lower=1.0 / 6.0, quadrature=2,
+                 matrix_free=True, variant=None, fine_operator=None):
         rank = comm.Get_rank()
         self.comm, self.stats = comm, stats
         self.cycle = cycle or ("V" if coarse.dim == 2 else "F")
-        self.levels = [
-            _Level(p, c, f, comm, stats, degree, lower, quadrature)
-            for p, c, f in zip(parts, coefficients[1:], fixed, strict=True)
+        check_variant(variant)
+        # the transfers first: their temporaries then meet fewer stored vectors
+        transfers = [_parents(coarse, p, parts[j - 1] if j > 0 else None, cell_owner, rank)
+                     for j, p in enumerate(parts)]
+        ops = [
+            fine_operator if j == len(parts) - 1 and fine_operator is not None else
+            level_operator(p, c, f, Halo(p.pattern, comm, stats), quadrature=quadrature,
+                           matrix_free=matrix_free, variant=variant)
+            for j, (p, c, f) in enumerate(zip(parts, coefficients[1:], fixed, strict=True))
         ]
+        self.shared = fine_operator  # the CG's operator, held by the finest level too
+        agree_bounds(ops, comm)
+        self.levels = [_Level(p, op, f, t, finest=j == len(parts) - 1)
+                       for j, (p, op, f, t) in enumerate(zip(parts, ops, fixed, transfers,
+                                                             strict=True))]
+        del transfers
         for j, lv in enumerate(self.levels):
-            coarser = parts[j - 1] if j > 0 else None
-            lv.transfer = _parents(coarse, lv.part, coarser, cell_owner, rank)
+            lv.make_smoother(degree, lower)
             if j > 0:
                 lv.reverse = _ReverseAdd(parts[j - 1].pattern, comm, stats)
         self.coarse = coarse
@@ -428,14 +426,17 @@ class DistributedMultigrid:
         n_levels = len(parts) + 1
         self.description = (f"distributed gmg: {n_levels} levels, {self.cycle}-cycle, "
                             f"Chebyshev degree {degree}, coarsest ({coarse.n_points} points) "
-                            f"replicated and factorised on every rank")
+                            f"replicated and factorised on every rank, "
+                            f"{describe_kinds(comm.allgather([op.kind for op in ops]))}")
 
     def describe(self):
         return self.description
 
     @property
     def nbytes(self):
-        return int(sum(lv.nbytes for lv in self.levels))
+        """Bytes of the levels, without the finest operator when it is the CG's own."""
+        shared = 0 if self.shared is None else self.shared.nbytes
+        return int(sum(lv.nbytes for lv in self.levels) - shared)
 
     def apply_into(self, r, z):
         fine = self.levels[-1]
@@ -492,7 +493,7 @@ class DistributedMultigrid:
         else:
             full = c.work
             full[: c.part.n_owned] = xc
-            c.matrix.halo.exchange(full)
+            c.operator.halo.exchange(full)
         x[fine_local] += 0.5 * (full[pa] + full[pb])
         x[lv.fixed_owned] = 0.0
         lv.smooth(x, b, False)

@@ -24,8 +24,9 @@ from hatkernels.assembly.boundary_terms import side_load, side_mass
 from hatkernels.coefficients import Coefficient, Field, Pieces
 from hatkernels.distributed.cg import cg
 from hatkernels.distributed.finenumbers import fine_numbering, partition_coarse_cells
-from hatkernels.distributed.halo import CommStats
+from hatkernels.distributed.halo import CommStats, Halo
 from hatkernels.distributed.launch import as_comm, default_threads, mpi
+from hatkernels.distributed.levelrows import _masked_rows, check_variant, level_operator
 from hatkernels.distributed.matrix import DistributedMatrix
 from hatkernels.distributed.outcome import (
     GATHER,
@@ -36,7 +37,6 @@ from hatkernels.distributed.outcome import (
 )
 from hatkernels.distributed.refined import (
     DistributedMultigrid,
-    _masked_rows,
     build_level,
     fine_sides_on,
     points_on,
@@ -206,8 +206,18 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     mesh = fine.mesh
     kappa = _on_level(problem.coefficient, fine, pf)
     n = fine.n_owned
-    A = assemble_stiffness(mesh, kappa, quadrature=quadrature)
+    stats = CommStats()
+    matrix_free = options.get("matrix_free", True)
+    # with the stiffness alone, the CG's operator is the finest level's (never assembled)
+    shared = matrix_free and problem.reaction is None and all(
+        p.kind != "convection" for p in pieces)
     weights = {}  # column sums over the owned rows, for the flows (see _flows)
+    if shared:
+        op = level_operator(fine, kappa, fixed[-1], Halo(fine.pattern, comm, stats),
+                            quadrature=quadrature, variant=options.get("variant"))
+        A = None
+    else:
+        A = assemble_stiffness(mesh, kappa, quadrature=quadrature)
     if problem.reaction is not None:
         from hatkernels.assembly import StiffnessAssembler
 
@@ -245,18 +255,29 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     b += bp
     del bp
     g = _held_values(dirichlet, coarse, fine, fixed[-1], held_pieces)
-    rhs = b[:n] - A[:n] @ g
     held_owned = np.flatnonzero(fixed[-1][:n])
-    rhs[held_owned] = g[held_owned]
     free_owned = np.flatnonzero(~fixed[-1][:n])
-    weights["held"] = _column_sums(A, n, held_owned)
-    weights["free"] = _column_sums(A, n, free_owned)
+    if shared:
+        rhs = b[:n] - op.unmasked_product(g)[:n]
+        # K symmetric: K 1_S is the column sums of the rows in S
+        for key, rows_in in (("held", held_owned), ("free", free_owned)):
+            ones = np.zeros(fine.n_local)
+            ones[rows_in] = 1.0
+            weights[key] = op.unmasked_product(ones)
+        del ones
+    else:
+        rhs = b[:n] - A[:n] @ g
+        weights["held"] = _column_sums(A, n, held_owned)
+        weights["free"] = _column_sums(A, n, free_owned)
+    rhs[held_owned] = g[held_owned]
     loads["held"] = float(b[held_owned].sum())
     loads["free"] = float(b[free_owned].sum())
-    rows, _, _ = _masked_rows(A, n, fixed[-1])
-    del A, b
-    stats = CommStats()
-    matrix = DistributedMatrix(rows, fine.pattern, comm, stats)
+    del b, g
+    if not shared:
+        rows, _, _ = _masked_rows(A, n, fixed[-1])
+        del A
+        op = DistributedMatrix(rows, fine.pattern, comm, stats)
+        del rows
     timings["assemble"] = time.perf_counter() - t2
 
     note("solve")
@@ -264,16 +285,17 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     coefs = [problem.coefficient] + [_on_level(problem.coefficient, p, q)
                                      for p, q in zip(parts, per, strict=True)]
     M = DistributedMultigrid(coarse, parts, cell_owner, coefs, fixed, coarse_fixed, comm, stats,
-                             quadrature=quadrature, **options)
+                             quadrature=quadrature, fine_operator=op if shared else None,
+                             **options)
     timings["setup"] = time.perf_counter() - t3
     t4 = time.perf_counter()
-    result = cg(matrix, rhs, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
+    result = cg(op, rhs, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
                 monitor=monitor)
     timings["solve"] = time.perf_counter() - t4
     u_owned = result.x
     u_local = np.zeros(fine.n_local)
     u_local[:n] = u_owned
-    matrix.halo.exchange(u_local)
+    op.halo.exchange(u_local)
     flows = _flows(comm, weights, loads, u_local)
     piece = _piece(fine, u_local, cell_owner, rank, pf, coarse)
     t5 = time.perf_counter()
@@ -285,7 +307,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
         "ghost_points": int(fine.n_local - n), "neighbours": fine.pattern.neighbours.tolist(),
         "coarse_cells": int((cell_owner == rank).sum()),
         "levels_points": [int(p.n_local) for p in parts],
-        "operator_bytes": int(matrix.nbytes), "multigrid_bytes": M.nbytes,
+        "operator_bytes": int(op.nbytes), "multigrid_bytes": M.nbytes,
         "halo_bytes_per_product": int(8 * fine.pattern.send_counts.sum()),
         "communication": stats.as_dict(), "timings": timings,
         "peak_rss_bytes": peak_rss_bytes(),
@@ -300,7 +322,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
         peak_rss_bytes=max(bb["peak_rss_bytes"] for bb in balance),
         threads=numba.get_num_threads(), info=result.info, message=result.message,
         tolerance=result.tolerance, condition_estimate=result.condition_estimate,
-        nnz=int(comm.allreduce(rows.nnz)), dirichlet_points=int(comm.allreduce(len(held_owned))),
+        nnz=int(comm.allreduce(op.nnz)), dirichlet_points=int(comm.allreduce(len(held_owned))),
         ranks=size,
     )
     return u, u_owned, fine.points[:n].copy(), stats_out, problem, balance, piece, flows
@@ -340,9 +362,21 @@ def _piece(fine, u, cell_owner, rank, per, coarse):
     """This rank's own fine cells (those of its coarse cells: each fine cell on one rank)
     with their points, u there (``u`` local, ghosts filled) and their regions."""
     own = cell_owner[fine.cells // per] == rank
-    cells = fine.mesh.cells[own]
-    used, local = np.unique(cells, return_inverse=True)
-    mesh = Mesh._trusted(fine.mesh.points[used], local.reshape(cells.shape))
+    # the points of the own cells in local order, renumbered (np.unique's result, by a
+    # mask rather than a sort: a fraction of the memory)
+    is_used = np.zeros(fine.n_local, dtype=bool)
+    if own.all():
+        cells = fine.mesh.cells
+    else:
+        cells = fine.mesh.cells[own]
+    is_used[cells] = True
+    used = np.flatnonzero(is_used)
+    if used.size == fine.n_local:  # one rank: the local mesh's arrays, not copied
+        mesh = Mesh._trusted(fine.mesh.points, cells)
+    else:
+        new = np.cumsum(is_used, dtype=cells.dtype) - 1
+        mesh = Mesh._trusted(fine.mesh.points[used], new[cells])
+    del is_used
     cell_data = {}
     if coarse.regions is not None:
         cell_data["region"] = coarse.regions[fine.cells[own] // per].astype(np.int32)
@@ -383,12 +417,17 @@ def solve_partitioned(mesh, f, refine, comm, dirichlet, dirichlet_on, coefficien
     """The partitioned path of :func:`hatkernels.distributed.solve_poisson` (refine=k, gmg)."""
     if not isinstance(mesh, Mesh):
         raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
-    asked = [name for name, v in (("matrix_free", matrix_free), ("variant", variant),
-                                  ("zero_mean", zero_mean is not False),
+    asked = [name for name, v in (("zero_mean", zero_mean is not False),
                                   ("partition", parts), ("coarse", coarse)) if v]
     if asked:
         raise NotRefinable(f"refine=k with gmg takes no {', '.join(asked)} (those belong to "
                            f"the replicated path; the coarse cells are split by RCB)")
+    # the levels' operators: matrix-free unless matrix_free=False (assembled rows)
+    if matrix_free is False and variant is not None:
+        raise InputError(f"variant={variant!r} names a matrix-free product, but "
+                         f"matrix_free=False asks for assembled levels")
+    options = dict(options, matrix_free=matrix_free is not False,
+                   variant=check_variant(variant))
     if gather not in GATHER:
         raise InputError(f"gather must be one of {GATHER}, got {gather!r}")
     comm = as_comm(comm)
