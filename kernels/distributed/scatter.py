@@ -19,7 +19,8 @@ The transfer is one small pickled header (names, dtypes, shapes and a few
 integers) and then one buffer message (``Send``/``Recv``) per array: no copy
 into a pickle on either side.  A failure on rank 0 while cutting a part is
 sent to every rank still waiting (a None header) and then raised on every
-rank by the caller (:func:`hatkernels.distributed.outcome._together`).
+rank (:func:`settle`).  Ranks waiting for rank 0 sleep between looks rather
+than spin in MPI, so that with more ranks than cores rank 0 keeps a core.
 
 :func:`input_status` and :func:`input_mode` decide, from what every rank was
 given, which path a call takes, and refuse inconsistent input on every rank.
@@ -28,17 +29,20 @@ given, which path a call takes, and refuse inconsistent input on every rank.
 from __future__ import annotations
 
 import dataclasses
+import time
 
 import numpy as np
 import scipy.sparse as sp
 
 from hatkernels.distributed.assembly import assemble_local, local_boundary_data
+from hatkernels.distributed.outcome import _together
 from hatkernels.distributed.subdomain import local_coefficient, subdomain
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh, index_dtype
 
 __all__ = ["Part", "part_of", "local_boundary", "send_part", "recv_part", "scatter_parts",
-           "part_arrays", "part_from_arrays", "input_status", "input_mode", "SCATTER_TAG"]
+           "part_arrays", "part_from_arrays", "on_root", "settle", "input_status", "input_mode",
+           "SCATTER_TAG"]
 
 #: Message tag of the parts' transfer (on the solver's own duplicated communicator).
 SCATTER_TAG = 72
@@ -193,6 +197,8 @@ def send_part(comm, part, dest):
 
 def recv_part(comm, source=0):
     """The :class:`Part` sent by :func:`send_part`, or None when the sender failed."""
+    while not comm.Iprobe(source=source, tag=SCATTER_TAG):
+        time.sleep(_NAP)  # not spinning: with more ranks than cores, rank 0 needs the core
     header = comm.recv(source=source, tag=SCATTER_TAG)
     if header is None:
         return None
@@ -205,12 +211,46 @@ def recv_part(comm, source=0):
     return part_from_arrays(header["meta"], arrays)
 
 
+#: Seconds a rank sleeps between looks while it waits for rank 0.
+_NAP = 0.002
+
+
+def settle(comm, what, value, failure):
+    """After work done on rank 0 only: every rank waits for it (sleeping, not spinning), then
+    ``failure`` (rank 0's exception or None) is raised on every rank, or ``value`` returned."""
+    request = comm.Ibarrier()
+    while not request.Test():
+        time.sleep(_NAP)
+    return _together(comm, what, _raise_or_return, value, failure)
+
+
+def _raise_or_return(value, failure):
+    if failure is not None:
+        raise failure
+    return value
+
+
+def on_root(comm, what, fn, *args, **kwargs):
+    """``fn(*args, **kwargs)`` on rank 0 (None elsewhere); a failure raises on every rank.
+
+    The counterpart of :func:`~hatkernels.distributed.outcome._together` (same
+    arguments) when only rank 0 has the data.
+    """
+    value = failure = None
+    if comm.Get_rank() == 0:
+        try:
+            value = fn(*args, **kwargs)
+        except Exception as exc:  # raised on every rank by settle
+            failure = exc
+    return settle(comm, what, value, failure)
+
+
 def scatter_parts(comm, problem, split):
     """On rank 0: cut and send every other rank's part, one at a time; cut its own last.
 
     Returns ``(own part or None, failure or None)``.  After a failure the
     ranks not yet served get None, so no rank is left waiting here; the caller
-    raises the failure on every rank.
+    raises the failure on every rank (:func:`settle`).
     """
     failure = None
     for r in range(1, comm.Get_size()):

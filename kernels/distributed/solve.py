@@ -55,9 +55,11 @@ from hatkernels.distributed.refined_solve import NotRefinable, solve_partitioned
 from hatkernels.distributed.scatter import (
     input_mode,
     input_status,
+    on_root,
     part_of,
     recv_part,
     scatter_parts,
+    settle,
 )
 from hatkernels.distributed.scatter import local_boundary as _local_boundary  # noqa: F401
 from hatkernels.errors import InputError
@@ -83,17 +85,6 @@ def _split(mesh, size, parts):
             raise InputError("the partition was made for another mesh")
         return parts
     return partition(mesh, size, method=parts or "rcb")
-
-
-def _nothing(*args, **kwargs):
-    """What the ranks without the mesh do while rank 0 reads the problem (scattered input)."""
-    return None
-
-
-def _settled(part, failure):
-    if failure is not None:
-        raise failure
-    return part
 
 
 def _summary(problem, split):
@@ -277,8 +268,9 @@ def solve_poisson(
     scattered = input_mode(seen) == "scattered"
     n_threads, ranks_on_node, how = default_threads(comm, threads)
     if memory_check:  # scattered: rank 0, holding the mesh, checks for all
-        _together(comm, "the memory check", _nothing if mesh is None else check_solve_memory,
-                  mesh, preconditioner, share=ranks_on_node / comm.Get_size())
+        (on_root if scattered else _together)(
+            comm, "the memory check", check_solve_memory, mesh, preconditioner,
+            share=ranks_on_node / comm.Get_size())
     dcomm = comm.Dup()  # the solver's messages never meet the caller's
     try:
         with _threads(n_threads):
@@ -299,7 +291,7 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
            preconditioner, rtol, atol, maxiter, quadrature, progress, monitor, coarse, parts,
            gather, options, scattered):
     rank, size = comm.Get_rank(), comm.Get_size()
-    reads = rank == 0 or not scattered  # the ranks that hold the mesh and the data
+    run = on_root if scattered else _together  # scattered: only rank 0 has the data
     note = progress or (lambda phase: None)
     stats = CommStats()
     t0 = time.perf_counter()
@@ -308,14 +300,13 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
     note("boundary")
     t1 = time.perf_counter()
     # the same checked problem as the serial solve, parsed by every rank that has the data
-    problem = _together(comm, "reading the problem", PoissonProblem if reads else _nothing,
-                        mesh, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
-                        coefficient=coefficient, reaction=reaction, neumann=neumann,
-                        robin=robin, quadrature=quadrature)
+    problem = run(comm, "reading the problem", PoissonProblem, mesh, f, dirichlet=dirichlet,
+                  dirichlet_on=dirichlet_on, coefficient=coefficient, reaction=reaction,
+                  neumann=neumann, robin=robin, quadrature=quadrature)
     timings["boundary"] = time.perf_counter() - t1
 
     t1 = time.perf_counter()
-    split = _together(comm, "partitioning", _split if reads else _nothing, mesh, size, parts)
+    split = run(comm, "partitioning", _split, mesh, size, parts)
     # the same mesh on every rank (replicated) was checked by input_mode
     info = comm.bcast(_summary(problem, split) if rank == 0 else None, root=0) if scattered \
         else _summary(problem, split)
@@ -328,7 +319,7 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
     else:  # rank 0 cuts and sends every part, then its own
         own, failure = (scatter_parts(comm, problem, split) if rank == 0
                         else (recv_part(comm), None))
-        part = _together(comm, "assembly", _settled, own, failure)
+        part = settle(comm, "assembly", own, failure)
         del own
     local = _together(comm, "Dirichlet reduction", reduce_local, part, part.A, part.b,
                       part.fixed, part.values)
