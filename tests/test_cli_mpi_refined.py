@@ -102,3 +102,30 @@ def test_which_problems_take_the_partitioned_path():
     assert "bottom face" in solve_parts.plan(args(refine=4, scenario="block"), None)[1]
     chosen, why = solve_parts.plan(args(refine=4, given={"preconditioner"}), None)
     assert chosen is None and "--preconditioner amg" in why
+
+
+def test_mesh_file_is_scattered_from_rank_0(tmp_path):
+    # a mesh that is no refinement (jittered interior points): rank 0 reads it and sends
+    # each rank its part; the solution is the serial command's (common practice, no source)
+    from hatkernels import Mesh
+    from hatkernels.mesh import rectangle
+
+    grid = rectangle(24, 20)
+    points = grid.points.copy()
+    inner = np.ones(len(points), dtype=bool)
+    inner[grid.boundary_points()] = False
+    points[inner] += np.random.default_rng(3).uniform(-0.01, 0.01, (inner.sum(), 2))
+    kio.write_mesh(str(tmp_path / "jittered.npz"), Mesh(points, grid.cells))
+    args = ("--mesh", "jittered.npz", "--source", "2")
+    code, out, err = run_mpi(2, _command(tmp_path, "mpi", *args), cwd=tmp_path)
+    assert code == 0, f"{out}\n{err}"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        serial = subprocess.run(_command(tmp_path, "serial", *args), capture_output=True,
+                                text=True, cwd=tmp_path, timeout=MPI_TIMEOUT)
+    assert serial.returncode == 0, serial.stderr
+    a = kio.read_solution(str(tmp_path / "mpi" / "solution.npz")).point_data["u"]
+    b = kio.read_solution(str(tmp_path / "serial" / "solution.npz")).point_data["u"]
+    assert np.abs(a - b).max() <= 1e-8 * np.abs(b).max()
+    summary = json.loads((tmp_path / "mpi" / "summary.json").read_text())
+    assert summary["distributed"]["path"] == "scattered"

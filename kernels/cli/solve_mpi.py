@@ -3,16 +3,22 @@
 :func:`hatkernels.cli.solve.run` calls :func:`run` when the launcher's
 environment says there is more than one rank
 (:func:`~hatkernels.distributed.launch.ranks_from_environment`, read before
-mpi4py is imported).  With ``--refine K`` the plate and a ``--mesh`` file
-take the partitioned path (:mod:`hatkernels.cli.solve_parts`): each rank
-refines its part of the coarse mesh, the multigrid runs across the ranks,
-and each rank writes its piece of the solution.  Otherwise (no ``--refine``,
-the block, a ``--preconditioner`` that needs no refinement history, or plate components whose
-edges are not on the refined mesh's lines; the report says which) every rank
-builds the same mesh and problem (the replicated input path), the solve is
-:func:`hatkernels.distributed.solve_poisson` with the two-level
-preconditioner, and only rank 0 checks the power balance, prints, and writes
-the output directory; the other ranks stay silent.
+mpi4py is imported).  Three paths, as in the library:
+
+- partitioned: with ``--refine K`` the plate and a ``--mesh`` file are
+  refinements (:mod:`hatkernels.cli.solve_parts`); each rank refines its
+  part of the coarse mesh, the multigrid runs across the ranks, and each
+  rank writes its piece of the solution;
+- scattered: a ``--mesh`` file without ``--refine`` is read on rank 0 only,
+  which sends each rank its part;
+- replicated: the rest (the plate without ``--refine`` or with plate
+  components whose edges are not on the refined mesh's lines, the block, a
+  ``--preconditioner`` that needs no refinement history; the report says
+  why) builds the same mesh and problem on every rank.
+
+The last two solve with the two-level preconditioner, and only rank 0 checks
+the power balance, prints, and writes the output directory; the other ranks
+stay silent.
 
 Errors: bad usage or input is detected identically on every rank; each
 raises it and :func:`hatkernels.cli.main` reports it once, on rank 0, with
@@ -45,6 +51,7 @@ from hatkernels.cli.summary import (
 )
 from hatkernels.distributed import solve_poisson
 from hatkernels.distributed.launch import MPIUnavailable, ranks_from_environment, world
+from hatkernels.distributed.scatter import on_root
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.perf import peak_rss_bytes
 
@@ -150,7 +157,11 @@ def _collective(args, progress, comm):
     command = f"mpiexec -n {comm.Get_size()} " + command_line(args)
     timings = {}
     arrays = None
-    if args.mesh is not None:  # every rank reads the file: the replicated input path
+    scattered = args.mesh is not None and not args.refine
+    if scattered:  # rank 0 reads the file and sends each rank its part
+        progress.phase(f"mesh: reading {args.mesh} (on rank 0, which sends each rank its part)")
+        arrays = on_root(comm, "reading the mesh", kio.read_mesh_arrays, args.mesh)
+    elif args.mesh is not None:  # a coarse mesh to refine: every rank reads it
         progress.phase(f"mesh: reading {args.mesh} (on every rank)")
         arrays = kio.read_mesh_arrays(args.mesh)
     progress.phase(f"kernels: loading compiled kernels (or compiling them) on "
@@ -163,7 +174,11 @@ def _collective(args, progress, comm):
     with CompileNotice(progress) as notice:
         _warm_up(args, comm)
     t0 = time.perf_counter()
-    mesh, description = build_mesh(args, progress, arrays)
+    if scattered:  # the mesh exists on rank 0 only
+        built = on_root(comm, "the mesh checks", build_mesh, args, progress, arrays)
+        mesh, description = built if built is not None else (None, f"from {args.mesh}")
+    else:
+        mesh, description = build_mesh(args, progress, arrays)
     problem = make_problem(args, mesh, description)
     timings["mesh"] = time.perf_counter() - t0
     sol = _solve(problem, args, comm, lambda phase: progress.phase(PHASE_TEXT.get(phase, phase)),
@@ -207,7 +222,7 @@ def _report(args, progress, out, problem, sol, timings, kernels_seconds, command
     summary = solve_summary(args, problem, sol, balance, timings, kernels_seconds, command,
                             peak_bytes=peak)
     summary["distributed"] = distributed_figures(sol, COMMAND_COARSE)
-    summary["distributed"]["path"] = "replicated"
+    summary["distributed"]["path"] = sol.stats.distribution.path
     if why:
         summary["distributed"]["why"] = why
     progress.phase(f"write: solution.npz and summary.json into {args.out} (rank 0)")
