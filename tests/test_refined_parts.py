@@ -24,6 +24,7 @@ from hatkernels.distributed.finenumbers import (
     refined_subdomain,
 )
 from hatkernels.distributed.halo import CommStats
+from hatkernels.distributed.levelparts import build_level, points_on
 from hatkernels.distributed.levelrows import (
     TOO_MANY_COLOURS,
     AssembledRows,
@@ -32,7 +33,6 @@ from hatkernels.distributed.levelrows import (
     describe_kinds,
     level_operator,
 )
-from hatkernels.distributed.refined import build_level, points_on
 from hatkernels.distributed.refined_solve import _on_level
 from hatkernels.errors import InputError
 from hatkernels.mesh import Mesh, ball, cuboid, disk, l_shape, rectangle
@@ -128,6 +128,40 @@ def test_bad_input_is_named():
         partition_coarse_cells(coarse, 9, 1)
     with pytest.raises(InputError, match=r"one part per coarse cell \(8,\)"):
         refined_subdomain(coarse, 1, np.zeros(3, dtype=int), 0)
+
+
+# -- one rank's part of a level, against the serial refinement cut by the same rule ----------
+
+
+@pytest.mark.parametrize("name, k, parts", [("rectangle", 2, 3), ("disk", 2, 4),
+                                             ("cuboid reordered", 2, 3), ("ball", 1, 4)])
+def test_level_parts_are_cut_from_the_serial_refinement(name, k, parts):
+    coarse = _labelled(MESHES[name]())
+    fine = _refined(coarse, k)
+    fn = fine_numbering(coarse, k)
+    owner = partition_coarse_cells(coarse, parts, k, numbering=fn)
+    point_owner = owner[fn.point_owner_cells(np.arange(fine.n_points))]
+    parent = np.arange(fine.n_cells) // (2**coarse.dim) ** k
+    for p in range(parts):
+        part = build_level(coarse, k, owner, p, _Parts(parts, p), numbering=fn)
+        # the cells of the part's coarse cells and every cell with an owned point, ascending;
+        # owned points ascending, then the ghosts by owner (common practice, no source)
+        ids = np.flatnonzero((point_owner[fine.cells] == p).any(axis=1) | (owner[parent] == p))
+        present = np.unique(fine.cells[ids])
+        mine = point_owner[present] == p
+        ghosts = present[~mine][np.argsort(point_owner[present[~mine]], kind="stable")]
+        points = np.concatenate([present[mine], ghosts])
+        assert np.array_equal(part.cells, ids) and np.array_equal(part.points, points)
+        assert part.n_owned == mine.sum()
+        assert np.array_equal(part.ghost_owner, point_owner[ghosts])
+        local = np.empty(fine.n_points, dtype=np.int64)
+        local[points] = np.arange(len(points))
+        assert np.array_equal(part.mesh.cells, local[fine.cells[ids]])
+        assert np.allclose(part.mesh.points, fine.points[points], rtol=0, atol=1e-14)
+        assert np.array_equal(part.mesh.regions, fine.regions[ids])
+        # each point's place: a lattice point of a coarse cell holding it
+        lattice = fn.numbers(part.where_cell)[np.arange(part.n_local), part.where_index]
+        assert np.array_equal(lattice, points)
 
 
 # -- the level operators: matrix-free owned rows against the assembled ones -----------------

@@ -14,6 +14,7 @@ fine mesh's own points, cells or sides (arrays) cannot be given this way.
 from __future__ import annotations
 
 import time
+import types
 
 import numba
 import numpy as np
@@ -26,6 +27,7 @@ from hatkernels.distributed.cg import cg
 from hatkernels.distributed.finenumbers import fine_numbering, partition_coarse_cells
 from hatkernels.distributed.halo import CommStats, Halo
 from hatkernels.distributed.launch import as_comm, default_threads, mpi
+from hatkernels.distributed.levelparts import build_level, fine_sides_on, points_on
 from hatkernels.distributed.levelrows import _masked_rows, check_variant, level_operator
 from hatkernels.distributed.matrix import DistributedMatrix
 from hatkernels.distributed.outcome import (
@@ -35,12 +37,7 @@ from hatkernels.distributed.outcome import (
     _per,
     _together,
 )
-from hatkernels.distributed.refined import (
-    DistributedMultigrid,
-    build_level,
-    fine_sides_on,
-    points_on,
-)
+from hatkernels.distributed.refined import DistributedMultigrid
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
 from hatkernels.perf import peak_rss_bytes
@@ -250,7 +247,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
             bp = side_load(mesh, p.data[1], sides, quadrature)
             loads["convection"] += float(bp[:n].sum())
         b += bp
-    bp = assemble_load(mesh, _on_level(problem.source, fine, pf), quadrature=quadrature)
+    bp = _source_load(problem.source, fine, pf, quadrature)
     loads["source"] = float(bp[:n].sum())
     b += bp
     del bp
@@ -328,6 +325,18 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     return u, u_owned, fine.points[:n].copy(), stats_out, problem, balance, piece, flows
 
 
+def _source_load(source, fine, per, quadrature, block=2**17):
+    """The source's load on the local mesh, assembled by blocks of ``block`` cells: the
+    quadrature's temporaries (tens of bytes per cell and point of the rule) stay small."""
+    b = np.zeros(fine.n_local)
+    for c0 in range(0, len(fine.cells), block):
+        cells = slice(c0, c0 + block)
+        sub = types.SimpleNamespace(cells=fine.cells[cells],
+                                    mesh=Mesh._trusted(fine.mesh.points, fine.mesh.cells[cells]))
+        b += assemble_load(sub.mesh, _on_level(source, sub, per), quadrature=quadrature)
+    return b
+
+
 def _column_sums(A, n, rows=None):
     """``sum_i A[i, j]`` over the owned rows ``i`` (all of them, or ``rows``): a local vector."""
     sub = A[:n] if rows is None else A[rows]
@@ -361,7 +370,7 @@ def _flows(comm, weights, loads, u):
 def _piece(fine, u, cell_owner, rank, per, coarse):
     """This rank's own fine cells (those of its coarse cells: each fine cell on one rank)
     with their points, u there (``u`` local, ghosts filled) and their regions."""
-    own = cell_owner[fine.cells // per] == rank
+    own = (cell_owner == rank)[fine.cells // per]
     # the points of the own cells in local order, renumbered (np.unique's result, by a
     # mask rather than a sort: a fraction of the memory)
     is_used = np.zeros(fine.n_local, dtype=bool)
