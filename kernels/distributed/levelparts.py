@@ -62,10 +62,10 @@ class LevelPart:
         return len(self.points)
 
     def lattice(self):
-        """Integer barycentric coordinates (n_local, dim + 1) of each local point in its
-        ``where_cell`` (scale ``2**level``)."""
+        """Integer barycentric coordinates (n_local, dim + 1), int32, of each local point in
+        its ``where_cell`` (scale ``2**level``)."""
         fn = self.numbering
-        out = np.empty((self.n_local, fn.dim + 1), dtype=np.int64)
+        out = np.empty((self.n_local, fn.dim + 1), dtype=np.int32)
         for flag in fn.patterns:
             rows = np.flatnonzero(fn.swapped[self.where_cell] == flag)
             lam, _ = lattice_order(fn.dim, self.level, flag)
@@ -207,8 +207,9 @@ def _entity_keys(vertex_sets, n):
 def _support(coarse, cells, lam):
     """The sorted coarse points (padded with -1) where ``lam > 0``: the entity a lattice
     point lies on (a point, an edge, a face or a cell)."""
-    v = np.where(lam > 0, coarse.cells[cells].astype(np.int64), -1)
-    return np.sort(v, axis=1)[:, ::-1]
+    v = np.where(lam > 0, coarse.cells[cells], -1)
+    v.sort(axis=1)
+    return v[:, ::-1]
 
 
 def _side_entities(coarse, sides):
@@ -247,9 +248,12 @@ def fine_sides_on(level, coarse, sides):
     on = np.isin(_entity_keys(sup, coarse.n_points), _side_entities(coarse, sides))
     cells = level.mesh.cells
     # only the sides whose points all lie on the given sides' closure are candidates
-    all_sides = np.concatenate([s[on[s].all(axis=1)] for s in
-                                (np.delete(cells, j, axis=1) for j in range(dim + 1))])
-    all_sides = all_sides.astype(np.int64)
+    on = on[cells]
+    all_sides = []
+    for j in range(dim + 1):
+        others = [i for i in range(dim + 1) if i != j]
+        all_sides.append(cells[on[:, others].all(axis=1)][:, others])
+    all_sides = np.concatenate(all_sides).astype(np.int64)
     u = np.sort(sup[all_sides].reshape(len(all_sides), dim * (dim + 1)), axis=1)[:, ::-1]
     new = np.ones(u.shape, dtype=bool)
     new[:, 1:] = u[:, 1:] != u[:, :-1]

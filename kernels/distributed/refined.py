@@ -95,17 +95,21 @@ class _Level:
         self.transfer = transfer
 
     def make_smoother(self, degree, lower):
-        self.smoother = ChebyshevSmoother(self.product, self.residual,
-                                          self.operator.inverse_diagonal, degree,
-                                          bound=self.operator.bound, estimate=False, lower=lower)
+        # the products hold the vectors, not the level: no reference cycle, so a
+        # multigrid's memory is freed as soon as it is dropped
+        work, op, n = self.work, self.operator, self.part.n_owned
 
-    def product(self, x, out):
-        self.work[: self.part.n_owned] = x
-        self.operator.matvec_into(self.work, out)
+        def product(x, out):
+            work[:n] = x
+            op.matvec_into(work, out)
 
-    def residual(self, x, b, out):
-        self.product(x, out)
-        _k.xpby(b, -1.0, out)
+        def residual(x, b, out):
+            product(x, out)
+            _k.xpby(b, -1.0, out)
+
+        self.product, self.residual = product, residual
+        self.smoother = ChebyshevSmoother(product, residual, op.inverse_diagonal, degree,
+                                          bound=op.bound, estimate=False, lower=lower)
 
     def smooth(self, x, b, zero_guess):
         self.smoother.smooth(x, b, zero_guess, self.r, self.d, self.q)

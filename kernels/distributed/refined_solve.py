@@ -254,14 +254,8 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     g = _held_values(dirichlet, coarse, fine, fixed[-1], held_pieces)
     held_owned = np.flatnonzero(fixed[-1][:n])
     free_owned = np.flatnonzero(~fixed[-1][:n])
-    if shared:
+    if shared:  # the column sums after the solve (see _stiffness_sums)
         rhs = b[:n] - op.unmasked_product(g)[:n]
-        # K symmetric: K 1_S is the column sums of the rows in S
-        for key, rows_in in (("held", held_owned), ("free", free_owned)):
-            ones = np.zeros(fine.n_local)
-            ones[rows_in] = 1.0
-            weights[key] = op.unmasked_product(ones)
-        del ones
     else:
         rhs = b[:n] - A[:n] @ g
         weights["held"] = _column_sums(A, n, held_owned)
@@ -289,10 +283,15 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     result = cg(op, rhs, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
                 monitor=monitor)
     timings["solve"] = time.perf_counter() - t4
+    m_bytes, m_text = M.nbytes, M.description
     u_owned = result.x
     u_local = np.zeros(fine.n_local)
     u_local[:n] = u_owned
     op.halo.exchange(u_local)
+    del M  # its memory is free again for the column sums
+    if shared:
+        weights.update(_stiffness_sums(op, fine.n_local, held_owned=held_owned,
+                                       free_owned=free_owned))
     flows = _flows(comm, weights, loads, u_local)
     piece = _piece(fine, u_local, cell_owner, rank, pf, coarse)
     t5 = time.perf_counter()
@@ -304,7 +303,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
         "ghost_points": int(fine.n_local - n), "neighbours": fine.pattern.neighbours.tolist(),
         "coarse_cells": int((cell_owner == rank).sum()),
         "levels_points": [int(p.n_local) for p in parts],
-        "operator_bytes": int(op.nbytes), "multigrid_bytes": M.nbytes,
+        "operator_bytes": int(op.nbytes), "multigrid_bytes": m_bytes,
         "halo_bytes_per_product": int(8 * fine.pattern.send_counts.sum()),
         "communication": stats.as_dict(), "timings": timings,
         "peak_rss_bytes": peak_rss_bytes(),
@@ -314,7 +313,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
         iterations=result.iterations, converged=result.converged, residuals=result.residuals,
         timings={key: max(bb["timings"][key] for bb in balance) for key in timings},
         unknowns=int(numberings[-1].n_fine) - int(comm.allreduce(len(held_owned))),
-        preconditioner=M.description,
+        preconditioner=m_text,
         stored_bytes=sum(bb["operator_bytes"] for bb in balance),
         peak_rss_bytes=max(bb["peak_rss_bytes"] for bb in balance),
         threads=numba.get_num_threads(), info=result.info, message=result.message,
@@ -335,6 +334,18 @@ def _source_load(source, fine, per, quadrature, block=2**17):
                                     mesh=Mesh._trusted(fine.mesh.points, fine.mesh.cells[cells]))
         b += assemble_load(sub.mesh, _on_level(source, sub, per), quadrature=quadrature)
     return b
+
+
+def _stiffness_sums(op, n_local, **rows):
+    """Column sums of the local stiffness matrix over each set of owned rows (keyed
+    ``held_owned`` -> ``"held"``): ``K`` is symmetric, so they are the unmasked products
+    ``K 1_S``, whose ghost entries are exact too (every cell at an owned point is local)."""
+    sums = {}
+    for key, which in rows.items():
+        ones = np.zeros(n_local)
+        ones[which] = 1.0
+        sums[key.split("_")[0]] = op.unmasked_product(ones)
+    return sums
 
 
 def _column_sums(A, n, rows=None):
