@@ -265,7 +265,7 @@ def test_matrix_free_rows_equal_the_assembled_rows(name, coefficient):
         A = assemble_stiffness(part.mesh, coef)
         rows, diag, bound = _masked_rows(A, n, fixed)
         op = MatrixFreeRows(part.mesh, n, fixed, coef, _Filled())
-        assert op.kind.startswith("matrix-free") and op.nnz == rows.nnz
+        assert op.kind.startswith("matrix-free") and op.nnz == 0
         x = rng.standard_normal(part.n_local)
         y = np.empty(n)
         dot = op.matvec_dot(x, y)

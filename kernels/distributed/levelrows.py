@@ -115,12 +115,10 @@ def _edge_weights(op):
 
 
 def _rows_from_edges(first, ends, w, n_owned, fixed):
-    """``(diagonal, local bound, nnz)`` of the masked owned rows from the edge weights.
+    """``(diagonal, local bound)`` of the masked owned rows from the edge weights.
 
     Zero row sums give ``K_ii = -sum_j K_ij``; ``sum_j |K_ij|`` over the unmasked row
     gives Gershgorin's bound over the free rows; held rows get 1 on the diagonal.
-    ``nnz`` counts the masked rows' pattern: the diagonal and the edges between two
-    free points, once per owned end.
     """
     n = len(fixed)
     s = np.bincount(first, w, n)[:n_owned]
@@ -135,10 +133,7 @@ def _rows_from_edges(first, ends, w, n_owned, fixed):
     ratio = (diag[free] + off[free]) / diag[free]
     bound = float(ratio.max(initial=1.0))
     diag[held] = 1.0
-    both = ~fixed[first] & ~fixed[ends]
-    nnz = n_owned + int(np.count_nonzero(both & (first < n_owned)))
-    nnz += int(np.count_nonzero(both & (ends < n_owned)))
-    return diag, bound, nnz
+    return diag, bound
 
 
 class _OwnedRows:
@@ -147,6 +142,8 @@ class _OwnedRows:
 
     #: ``"matrix-free (<variant>)"`` or ``"assembled"`` with the reason, if any.
     kind = None
+    #: Stored matrix entries (as :attr:`hatkernels.SolveStats.nnz`).
+    nnz = 0
 
     def __init__(self, n_owned, n_local, halo):
         self.n_owned, self.n_local = int(n_owned), int(n_local)
@@ -177,7 +174,8 @@ class _OwnedRows:
 
 
 class MatrixFreeRows(_OwnedRows):
-    """The owned rows of a level's masked stiffness matrix, never assembled.
+    """The owned rows of a level's masked stiffness matrix, never assembled (``nnz``, the
+    stored entries, is 0).
 
     Parameters
     ----------
@@ -204,8 +202,8 @@ class MatrixFreeRows(_OwnedRows):
                                           dirichlet=np.flatnonzero(fixed),
                                           quadrature=quadrature, block_size=block_size)
         self.kind = f"matrix-free ({self.operator.variant})"
-        diag, self.local_bound, self.nnz = _rows_from_edges(*_edge_weights(self.operator),
-                                                            self.n_owned, fixed)
+        diag, self.local_bound = _rows_from_edges(*_edge_weights(self.operator),
+                                                  self.n_owned, fixed)
         self.inverse_diagonal = np.reciprocal(diag, out=diag)
         self._out = np.empty(self.n_local)
 

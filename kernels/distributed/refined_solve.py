@@ -28,7 +28,12 @@ from hatkernels.distributed.finenumbers import fine_numbering, partition_coarse_
 from hatkernels.distributed.halo import CommStats, Halo
 from hatkernels.distributed.launch import as_comm, default_threads, mpi
 from hatkernels.distributed.levelparts import build_level, fine_sides_on, points_on
-from hatkernels.distributed.levelrows import _masked_rows, check_variant, level_operator
+from hatkernels.distributed.levelrows import (
+    MatrixFreeRows,
+    _masked_rows,
+    check_variant,
+    level_operator,
+)
 from hatkernels.distributed.matrix import DistributedMatrix
 from hatkernels.distributed.outcome import (
     GATHER,
@@ -319,7 +324,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
         threads=numba.get_num_threads(), info=result.info, message=result.message,
         tolerance=result.tolerance, condition_estimate=result.condition_estimate,
         nnz=int(comm.allreduce(op.nnz)), dirichlet_points=int(comm.allreduce(len(held_owned))),
-        ranks=size,
+        ranks=size, matrix_free=isinstance(op, MatrixFreeRows),
     )
     return u, u_owned, fine.points[:n].copy(), stats_out, problem, balance, piece, flows
 
