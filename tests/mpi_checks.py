@@ -571,22 +571,24 @@ def threads_per_rank_and_monitor(comm):
     assert all(other == seen for other in comm.allgather(seen))
 
 
-def main():
+def run_checks(name, checks):
+    """Run ``checks`` (functions of the communicator) on COMM_WORLD, one after the other,
+    each ranks' exception aborting every rank; rank 0 reports each and the total."""
     from mpi4py import MPI
 
     _install_abort_hook(MPI)
     warnings.simplefilter("error", RuntimeWarning)  # a solve that does not converge fails
     comm = MPI.COMM_WORLD
-    for fn in CHECKS:
+    for fn in checks:
         t0 = time.perf_counter()
         fn(comm)
         _wait_politely(comm)
         if comm.Get_rank() == 0:
-            print(f"mpi_checks: {fn.__name__} ok ({time.perf_counter() - t0:.1f} s)", flush=True)
+            print(f"{name}: {fn.__name__} ok ({time.perf_counter() - t0:.1f} s)", flush=True)
     if comm.Get_rank() == 0:
-        print(f"mpi_checks: all {len(CHECKS)} checks passed on {comm.Get_size()} ranks",
+        print(f"{name}: all {len(checks)} checks passed on {comm.Get_size()} ranks",
               flush=True)
 
 
 if __name__ == "__main__":
-    main()
+    run_checks("mpi_checks", CHECKS)

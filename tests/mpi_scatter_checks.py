@@ -14,8 +14,6 @@ beside its check.  The meshes are unstructured (jittered grids built with
 """
 
 import sys
-import time
-import warnings
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
@@ -279,23 +277,5 @@ def bad_input_raises_on_every_rank(comm):
     assert solve_poisson(mine, 1.0, comm=comm).stats.converged
 
 
-def main():
-    from mpi4py import MPI
-
-    mpi_checks._install_abort_hook(MPI)
-    warnings.simplefilter("error", RuntimeWarning)  # a solve that does not converge fails
-    comm = MPI.COMM_WORLD
-    for fn in CHECKS:
-        t0 = time.perf_counter()
-        fn(comm)
-        mpi_checks._wait_politely(comm)
-        if comm.Get_rank() == 0:
-            print(f"mpi_scatter_checks: {fn.__name__} ok ({time.perf_counter() - t0:.1f} s)",
-                  flush=True)
-    if comm.Get_rank() == 0:
-        print(f"mpi_scatter_checks: all {len(CHECKS)} checks passed on {comm.Get_size()} ranks",
-              flush=True)
-
-
 if __name__ == "__main__":
-    main()
+    mpi_checks.run_checks("mpi_scatter_checks", CHECKS)
