@@ -12,7 +12,17 @@ exchange, the distributed CG and :func:`solve_poisson` need MPI.
 Run a distributed solve with ``mpiexec -n P python script.py`` where the
 script calls :func:`solve_poisson` (the serial arguments plus ``comm``,
 ``coarse``, ``partition``, ``gather``, ``threads``), or with
-``mpiexec -n P hatkernels solve``.  See docs/distributed.md.
+``mpiexec -n P hatkernels solve``.  Three paths (``stats.distribution.path``):
+
+- ``"partitioned"``: ``refine=k`` with the default preconditioner (or
+  ``"gmg"``): each rank refines only its part of the coarse mesh and the
+  multigrid runs across the ranks, with the serial iteration counts;
+  :func:`write_pvtu` writes each rank's piece;
+- ``"scattered"``: the mesh on rank 0 only (None elsewhere): rank 0 sends
+  each rank its part;
+- ``"replicated"``: the same mesh on every rank.
+
+See docs/distributed.md.
 """
 
 from hatkernels.distributed.assembly import LocalSystem, assemble_local, reduce_local
