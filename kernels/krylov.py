@@ -3,7 +3,7 @@
 :func:`cg` takes the arguments of :func:`scipy.sparse.linalg.cg` and returns
 ``(x, info)``; :func:`cg_with_history` runs the same iteration and also returns
 the residual history and the iteration count (the solve layer uses it).  The
-iteration itself is :func:`hatkernels._cg.run`, the one loop that the
+iteration itself is ``run`` in :mod:`hatkernels._cg`, the one loop that the
 distributed CG (:mod:`hatkernels.distributed.cg`) runs too, with its global
 reductions injected.
 

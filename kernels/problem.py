@@ -18,7 +18,7 @@ from hatkernels.conditions import Dirichlet, parse_conditions
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
 
-#: Relative size (against the sum of |load|) below which a floating part's
+#: Relative size (against the sum of ``|load|``) below which a floating part's
 #: sources and boundary flux count as balanced.  Not round-off alone: callable
 #: data are integrated by quadrature, whose error leaves an imbalance of the
 #: order of the rule's error even for data that balance exactly; discretise

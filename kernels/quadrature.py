@@ -51,7 +51,9 @@ __all__ = [
     "triangle_rule", "tetrahedron_rule", "edge_rule", "TRIANGLE_DEGREES", "TETRAHEDRON_DEGREES"
 ]
 
+#: Degrees of the triangle rules; a requested degree gets the cheapest rule exact for it.
 TRIANGLE_DEGREES = (1, 2, 5)
+#: Degrees of the tetrahedron rules; a requested degree gets the cheapest rule exact for it.
 TETRAHEDRON_DEGREES = (1, 2, 3, 5)
 
 

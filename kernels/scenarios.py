@@ -1,6 +1,6 @@
 """The built-in plate scenario of ``hatkernels solve``, problems read from a mesh file, and
-what every scenario shares (:class:`Problem`, :class:`Cooling`, :func:`solve_problem`,
-:func:`power_balance`); the 3-D block is in :mod:`hatkernels.block`.
+what every scenario shares (``Problem``, ``Cooling``, ``solve_problem``,
+``power_balance``); the 3-D block is in :mod:`hatkernels.block`.
 
 The heat-spreader plate is an invented demonstration, not a product: a thin
 aluminium plate 120 mm x 80 mm, 2 mm thick, under two heat-producing

@@ -50,6 +50,8 @@ __all__ = [
     "build_plan",
 ]
 
+#: Values of ``strategy``: plain loops (the specification), vectorised triplets
+#: through scipy's COO, and the parallel symbolic-then-numeric ``csr`` (the default).
 STRATEGIES = ("reference", "triplets", "csr")
 
 

@@ -23,7 +23,7 @@ def point_components(mesh):
     For a mesh made by refinement the parts are those of the coarsest mesh,
     carried up level by level (refinement neither joins nor splits parts), so
     no graph of the fine mesh is built.  Otherwise a union-find over the cells
-    (:func:`hatkernels._jit.topology.component_roots`).
+    (``component_roots`` in :mod:`hatkernels._jit.topology`).
 
     >>> from hatkernels.mesh import rectangle
     >>> count, labels = point_components(rectangle(2, 2))

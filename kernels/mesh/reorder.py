@@ -20,6 +20,8 @@ from hatkernels.mesh.tags import reordered_tags
 
 __all__ = ["reorder", "MeshPermutation", "hilbert_keys", "REORDERINGS"]
 
+#: Values of ``method`` of :func:`reorder`: reverse Cuthill-McKee (bandwidth)
+#: and the Hilbert curve (cache locality).
 REORDERINGS = ("rcm", "hilbert")
 
 

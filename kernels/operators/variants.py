@@ -204,6 +204,7 @@ class EdgesProduct(EdgeRows, TriangleBlocks):
 
 #: The variants by name; the first is the default.
 VARIANT_CLASSES = {cls.name: cls for cls in (GeometryProduct, FactorsProduct, EdgesProduct)}
+#: Values of ``variant``, the default (on triangles) first.
 VARIANTS = tuple(VARIANT_CLASSES)
 #: The one the benchmark picked on triangles (docs/matrix-free.md has the measured speeds).
 DEFAULT_VARIANT = "geometry"
