@@ -311,9 +311,9 @@ class ModuleMap(SphinxDirective):
 
 
 def _add_new_guides(app, docname, source):
-    """Append to the guides' table of contents (the first toctree of the entry
-    page) every Markdown page of docs/ that no toctree of it lists yet, so that a
-    guide added later is on the site without a change here."""
+    """Add to the guides' table of contents (the first toctree of the entry page)
+    every Markdown page of docs/ that no toctree of it lists yet, so that a guide
+    added later (transient.md, eigenmodes.md) is on the site without a change here."""
     if docname != root_doc:
         return
     text = source[0]
@@ -325,7 +325,10 @@ def _add_new_guides(app, docname, source):
     here = pathlib.Path(app.srcdir)
     extra = sorted(p.stem for p in here.glob("*.md") if p.stem != root_doc and p.stem not in listed)
     if extra:
-        source[0] = text[:end] + "".join("\n" + name for name in extra) + text[end:]
+        # before the measurements page, which stays last, if it is listed
+        at = text.find("\nperformance\n", start, end + 1)
+        at = end if at < 0 else at
+        source[0] = text[:at] + "".join("\n" + name for name in extra) + text[at:]
 
 
 def setup(app):
