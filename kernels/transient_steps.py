@@ -1,0 +1,219 @@
+"""One step of the theta scheme on assembled matrices, and the heat it moves.
+
+With ``M`` the capacity mass (consistent, or lumped to its row sums) and ``K``
+the stiffness with the reaction mass and the Robin boundary mass, a step from
+``t_n`` to ``t_n + dt`` solves, for the change ``d = u^(n+1) - u^n`` of the free
+unknowns,
+
+    (M + tau K)_FF d_F = dt (b_theta - K u^n)_F - (M + tau K)_FD d_D,    tau = theta dt
+
+with ``b_theta = theta b(t_n+1) + (1 - theta) b(t_n)`` and ``d_D`` the change of
+the held values.  ``theta = 1`` is backward Euler, ``theta = 1/2`` Crank-Nicolson.
+The system matrix depends on ``tau`` alone, so a backward Euler step of
+``dt / 2`` uses the Crank-Nicolson matrix of ``dt`` (Rannacher's start-up, see
+:mod:`hatkernels.transient`): :class:`System` is built once per ``tau``, with
+its preconditioner.  Solving for the change keeps CG's relative tolerance on
+the step's own scale, and the previous change is the first guess (a linear
+extrapolation of u).
+
+:class:`Blocks` holds what is assembled once: the free-free blocks of ``M``
+and ``K``, the couplings to the held points, and the weights of the heat
+balance.  Energy per step (:meth:`Blocks.heat`): what the discrete equations
+of the held rows say flows out there (as :mod:`hatkernels.results` does for
+the steady case), the Robin and reaction terms, and the sources and imposed
+fluxes; the stored heat is ``1^T M u``.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+import scipy.sparse as sp
+
+from hatkernels import _cg
+from hatkernels._jit import sparse as _k
+from hatkernels.assembly import StiffnessAssembler
+from hatkernels.assembly.boundary_terms import side_mass
+from hatkernels.boundary import apply_dirichlet
+from hatkernels.krylov import _operator
+from hatkernels.precond import PreconditionerContext, make_preconditioner
+from hatkernels.sparse import as_csr
+
+__all__ = ["Blocks", "System", "measure_product"]
+
+
+def _sparse_weights(w):
+    """``(indices, values)`` of the nonzero entries of a weight vector."""
+    idx = np.flatnonzero(w)
+    return idx, w[idx]
+
+
+def _rows_with_entries(C):
+    """``(rows, C[rows])``: the rows of CSR ``C`` that hold entries, and those rows alone."""
+    rows = np.flatnonzero(np.diff(C.indptr))
+    return rows, C[rows]
+
+
+class Blocks:
+    """The matrices of a :class:`~hatkernels.transient_data.TransientProblem`, split by
+    free and held points, assembled once.
+
+    Attributes
+    ----------
+    free, held : ndarray
+        The unknowns (points in a cell that are not held) and the held points.
+    K_FF, M_FF : scipy CSR
+    stored_bytes : int
+        What the matrices hold.
+    """
+
+    def __init__(self, problem, lumped):
+        mesh, q = problem.mesh, problem.quadrature
+        n = mesh.n_points
+        assembler = StiffnessAssembler(mesh)
+        K = assembler.assemble(problem.coefficient, quadrature=q)
+        ones = np.ones(n)
+        w_reaction = w_robin = None
+        if problem.reaction is not None:
+            C = assembler.assemble_mass(problem.reaction, quadrature=q)
+            w_reaction = C @ ones
+            K = K + C
+        if problem.robin is not None:
+            R = side_mass(mesh, problem.robin.r, problem.robin.sides, q)
+            w_robin = R @ ones
+            K = K + R
+        K = as_csr(sp.csr_matrix(K))
+        M = as_csr(sp.csr_matrix(
+            assembler.assemble_mass(problem.capacity, lumped=lumped, quadrature=q)))
+        held = problem.dirichlet.points
+        zeros = np.zeros(n)
+        reduced = apply_dirichlet(K, zeros, held)
+        self.free, self.held = free, held = reduced.free, held
+        self.K_FF = reduced.A
+        self.M_FF = apply_dirichlet(M, zeros, held).A
+        del reduced
+        if held.size:  # couplings to the held points: K_FD u_D^n and the lifting
+            K_D, M_D = K[held], M[held]
+            K_DF, M_DF = K_D[:, free], M_D[:, free]
+            self.K_FD, self.M_FD = K_DF.T.tocsr(), M_DF.T.tocsr()
+            self._coupling = _rows_with_entries(self.K_FD)
+            # the held rows' column sums: the heat through the held points
+            self.k_DF = _sparse_weights(np.asarray(K_DF.sum(axis=0)).ravel())
+            self.m_DF = _sparse_weights(np.asarray(M_DF.sum(axis=0)).ravel())
+            self.k_DD = np.asarray(K_D[:, held].sum(axis=0)).ravel()
+            self.m_DD = np.asarray(M_D[:, held].sum(axis=0)).ravel()
+        # Robin (sparse: boundary points) and reaction (dense) weights 1^T R, 1^T C
+        self.robin = None if w_robin is None else (_sparse_weights(w_robin[free]),
+                                                   w_robin[held])
+        self.reaction = None if w_reaction is None else (w_reaction[free], w_reaction[held])
+        w = M @ ones  # 1^T M: each point's capacity (stored heat = w . u)
+        self.w_F, self.w_D = w[free], w[held]
+        self.stored_bytes = sum(int(C.data.nbytes + C.indices.nbytes + C.indptr.nbytes)
+                                for C in (self.K_FF, self.M_FF))
+
+    @property
+    def unknowns(self):
+        return int(self.free.size)
+
+    def coupling(self, uD):
+        """``K_FD uD`` as ``(rows, values)`` (the rows that touch a held point), or None."""
+        if not self.held.size or not np.any(uD):
+            return None
+        rows, sub = self._coupling
+        return rows, sub @ uD
+
+    def stored(self, x, uD):
+        """Stored heat ``1^T M u`` (capacity times temperature, integrated)."""
+        return float(_k.dot(self.w_F, x)) + float(self.w_D @ uD)
+
+    def heat(self, x, d, uD, dD, dt, theta, b_old, b_new):
+        """Over one step: ``(held_out, robin_ru, reaction_cu)``, the heat out through the
+        held points (from the held rows of the discrete equations) and the integrals
+        over the step of ``int r u`` on the Robin sides and ``int c u`` (theta-weighted,
+        as the scheme weighs them)."""
+        held_out = 0.0
+        if self.held.size:
+            iM, vM = self.m_DF
+            iK, vK = self.k_DF
+            md = vM @ d[iM] + self.m_DD @ dD
+            ku = vK @ (x[iK] + theta * d[iK]) + self.k_DD @ (uD + theta * dD)
+            bD = theta * b_new[self.held].sum() + (1 - theta) * b_old[self.held].sum()
+            held_out = -(md + dt * (ku - bD))
+        robin = reaction = 0.0
+        if self.robin is not None:
+            (i, v), wD = self.robin
+            robin = dt * (v @ (x[i] + theta * d[i]) + wD @ (uD + theta * dD))
+        if self.reaction is not None:
+            wF, wD = self.reaction
+            reaction = dt * (_k.dot(wF, x) + theta * _k.dot(wF, d) + wD @ (uD + theta * dD))
+        return float(held_out), float(robin), float(reaction)
+
+
+class System:
+    """``M + tau K`` on the free unknowns, its preconditioner and CG's product, built once
+    per ``tau``; ``dt`` scales the stiffness of the right-hand side (``dt K_FF``)."""
+
+    def __init__(self, blocks, tau, dt, preconditioner, context, options):
+        A = (blocks.M_FF + tau * blocks.K_FF).tocsr()
+        A.sum_duplicates()
+        A.sort_indices()
+        self.A = as_csr(A, "M + tau K")
+        self.tau, self.dt = float(tau), float(dt)
+        self.product, n = _operator(self.A)
+        start = time.perf_counter()
+        P = make_preconditioner(self.A, preconditioner, context=context, **options)
+        self.setup_seconds = time.perf_counter() - start
+        self.description = P.description
+        self.preconditioner_bytes = int(getattr(P, "nbytes", 0) or 0)
+        self.M = _cg.as_preconditioner(P, n)
+        K = blocks.K_FF
+        self.K_dt = (K.indptr, K.indices, dt * K.data)
+        self.lift = None
+        if blocks.held.size:
+            rows, sub = _rows_with_entries(blocks.M_FD + tau * blocks.K_FD)
+            self.lift = (rows, sub.tocsr())
+
+    @property
+    def stored_bytes(self):
+        A = self.A
+        return int(A.data.nbytes + A.indices.nbytes + A.indptr.nbytes + self.K_dt[2].nbytes
+                   + self.preconditioner_bytes)
+
+    def rhs(self, x, c_dt, scale, dD, out):
+        """``out = scale (c_dt - dt K_FF x) - (M + tau K)_FD dD`` (``c_dt`` is ``dt`` times
+        the free rows of ``b_theta - K_FD u_D^n``)."""
+        _k.residual(*self.K_dt, x, c_dt, out)
+        if scale != 1.0:
+            out *= scale
+        if self.lift is not None and np.any(dD):
+            rows, sub = self.lift
+            out[rows] -= sub @ dD
+        return out
+
+    def solve(self, rhs, x0, rtol, atol, maxiter):
+        """CG on ``(M + tau K) d = rhs`` from ``x0``; the :class:`~hatkernels._cg.CGResult`."""
+        return _cg.run(self.product, rhs, x0, self.M, _cg.LOCAL, rtol=rtol, atol=atol,
+                       maxiter=maxiter)
+
+
+def context_of(problem):
+    """The :class:`PreconditionerContext` a step system passes: the serial solve's
+    (mesh with its refinement history, coefficient, held points, quadrature)."""
+    return PreconditionerContext(mesh=problem.mesh, coefficient=problem.coefficient,
+                                 fixed=problem.dirichlet.points, quadrature=problem.quadrature)
+
+
+def measure_product(A, repeats=5):
+    """Seconds of one product with CSR ``A`` (the work unit), best of ``repeats`` after a
+    warm-up, measured now."""
+    x = np.ones(A.shape[0])
+    y = np.empty(A.shape[0])
+    arrays = (A.indptr, A.indices, A.data)
+    _k.spmv(*arrays, x, y)
+    best = float("inf")
+    for _ in range(repeats):
+        start = time.perf_counter()
+        _k.spmv(*arrays, x, y)
+        best = min(best, time.perf_counter() - start)
+    return best
