@@ -42,6 +42,8 @@ from hatkernels.mesh.reorder import hilbert_keys
 __all__ = ["METHODS", "WEIGHTS", "Partition", "PartitionQuality", "partition",
            "partition_from_owner"]
 
+#: Values of ``method`` of :func:`partition`: ``"hilbert"`` (cuts along a Hilbert curve) and
+#: ``"rcb"`` (recursive coordinate bisection).
 METHODS = ("hilbert", "rcb")
 #: Values of ``weight``; ``"triangles"`` is the older name of ``"cells"``, for triangle meshes.
 WEIGHTS = ("points", "cells", "triangles")
