@@ -1,0 +1,449 @@
+"""Eigenmodes: the smallest eigenpairs of ``-div(kappa grad u) = lambda rho u``.
+
+With P1 elements the problem is the generalised matrix eigenproblem
+``K x = lambda M x`` (stiffness with ``kappa``, mass with ``rho``) on the
+points not held at 0.  :func:`eigenmodes` is the driver: the data are parsed
+once, then either
+
+shift-invert
+    scipy's ``eigsh`` about 0 (SuperLU of ``K``; a dense solve below
+    :data:`~hatkernels.eigensolvers.DENSE_LIMIT` unknowns), for problems up to
+    :data:`SHIFT_INVERT_LIMIT` unknowns, or
+lobpcg
+    scipy's ``lobpcg`` preconditioned by this library's multigrid: ``gmg`` on
+    a mesh made by :meth:`Mesh.refine` (each level's own), else ``amg``.  On
+    a refined mesh the iteration is nested: the eigenvectors of the finest
+    coarse level with at most :data:`START_LIMIT` unknowns (by shift-invert)
+    are interpolated to the next level as its first block, a few iterations
+    are done there, and so on up to the given mesh, where the iteration runs
+    until every wanted eigenvalue is converged to ``rtol`` (see
+    :mod:`hatkernels.eigensolvers` for the estimate).  Without a refinement
+    history the block starts random (fixed seed).
+
+A connected part of the mesh that no held point touches (a Neumann part)
+has the eigenvalue 0 with the constant on that part as eigenvector; these
+*zero modes* are computed exactly, not iterated: they are reported with the
+value 0.0 and flagged in :attr:`Eigenmodes.zero_modes`, and the other modes
+are kept M-orthogonal to them (lobpcg's constraints), so that ``K``'s
+singularity never reaches a solver.  The preconditioner of a problem with
+zero modes is that of ``K + s M``, ``s > 0`` of the size of the first
+nonzero eigenvalue.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import time
+
+import numba
+import numpy as np
+
+from hatkernels import eigensolvers as _es
+from hatkernels._jit import sparse as _k
+from hatkernels.checks import integer_option, real_option
+from hatkernels.coefficients import parse_coefficient
+from hatkernels.conditions import parse_conditions
+from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.mesh.core import Mesh
+from hatkernels.perf import peak_rss_bytes
+from hatkernels.precond import (
+    DEFAULT,
+    PRECONDITIONERS,
+    PreconditionerContext,
+    capabilities,
+    make_preconditioner,
+)
+
+__all__ = ["eigenmodes", "Eigenmodes", "EigenStats", "SHIFT_INVERT_LIMIT", "START_LIMIT",
+           "METHODS"]
+
+#: ``method="auto"`` solves problems with at most this many unknowns by shift-invert.
+SHIFT_INVERT_LIMIT = 20_000
+#: The nested lobpcg starts on the finest coarser level with at most this many unknowns.
+START_LIMIT = 5_000
+METHODS = ("auto", "shift-invert", "lobpcg")
+# iterations on each intermediate level of the nested iteration, then on the finest level
+# before the first look at the error estimates
+_INTERMEDIATE = 2
+_FIRST = 3
+_FIRST_RANDOM = 10
+
+
+@dataclasses.dataclass
+class EigenStats:
+    """What :func:`eigenmodes` did and cost.
+
+    Attributes
+    ----------
+    method : str
+        "dense", "shift-invert" or "lobpcg".
+    unknowns : int
+        Free unknowns of the problem (points not held and in some cell).
+    block : int
+        lobpcg's block size (wanted modes beyond the zero modes plus extra vectors); 0 otherwise.
+    iterations : int
+        lobpcg iterations on the given mesh (0 for shift-invert).
+    levels : list of (unknowns, iterations)
+        The nested iteration, coarsest first: the start level (0 iterations: shift-invert)
+        and every level lobpcg ran on.
+    converged : bool
+    errors : ndarray, shape (k,)
+        lobpcg's estimated relative errors of the eigenvalues (0 for zero modes; NaN for
+        shift-invert, converged to machine precision by ARPACK).
+    rtol : float
+    products : dict
+        Products with the stiffness matrix and with the mass matrix, and preconditioner
+        applications, over all levels, each counted as its share of one on the given mesh.
+    preconditioner : str
+        What preconditioned lobpcg on the given mesh, in words ("" for shift-invert).
+    shift : float
+        The shift ``s`` of the zero modes' preconditioner ``K + s M`` (0 when there are none).
+    timings : dict
+        Seconds: ``assemble`` (all levels), ``setup`` (preconditioners), ``solve``
+        (eigensolvers), ``total``.
+    product_seconds : float
+        One product with the assembled stiffness matrix of the given mesh (the parallel CSR
+        kernel, best of three), measured in the same call.
+    work_units : float
+        ``timings["total"] / product_seconds``: the whole call in products with the
+        matrix (the performance model of docs/eigenmodes.md).
+    threads : int
+    peak_rss_bytes : int
+    """
+
+    method: str
+    unknowns: int
+    block: int = 0
+    iterations: int = 0
+    levels: list = dataclasses.field(default_factory=list)
+    converged: bool = True
+    errors: np.ndarray = None
+    rtol: float = math.nan
+    products: dict = dataclasses.field(default_factory=dict)
+    preconditioner: str = ""
+    shift: float = 0.0
+    timings: dict = dataclasses.field(default_factory=dict)
+    product_seconds: float = math.nan
+    work_units: float = math.nan
+    threads: int = 1
+    peak_rss_bytes: int = 0
+
+
+class Eigenmodes(tuple):
+    """``(values, vectors)``, with what was found about them.
+
+    A tuple, so ``values, vectors = eigenmodes(mesh, k)`` works.
+
+    Attributes
+    ----------
+    values : ndarray, shape (k,)
+        Ascending; exactly 0.0 for zero modes.
+    vectors : ndarray, shape (n_points, k)
+        Mass-normalised (``v.T @ M @ v = 1`` with the mass matrix of ``rho``),
+        M-orthogonal, 0 at held points and at points in no cell; each one's
+        largest entry (by magnitude, the first of equals) is positive.
+    zero_modes : ndarray of bool, shape (k,)
+        True for the eigenvalue 0 of a part of the mesh that nothing holds
+        (its vector is constant on that part and 0 elsewhere).
+    stats : EigenStats
+    mesh : Mesh
+    """
+
+    def __new__(cls, values, vectors, zero_modes, stats, mesh):
+        self = super().__new__(cls, (values, vectors))
+        self.zero_modes = zero_modes
+        self.stats = stats
+        self.mesh = mesh
+        return self
+
+    def __reduce__(self):
+        return (Eigenmodes, (self[0], self[1], self.zero_modes, self.stats, self.mesh))
+
+    @property
+    def values(self):
+        return self[0]
+
+    @property
+    def vectors(self):
+        return self[1]
+
+    def __repr__(self):
+        s = self.stats
+        shown = ", ".join(f"{v:.6g}" for v in self.values[:4])
+        more = ", ..." if len(self.values) > 4 else ""
+        return (f"Eigenmodes([{shown}{more}], {int(self.zero_modes.sum())} zero modes, "
+                f"{s.method}, {s.unknowns} unknowns)")
+
+
+def _checked(mesh, k, method, rtol, maxiter, extra, seed, preconditioner, quadrature):
+    if not isinstance(mesh, Mesh):
+        raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
+    k = integer_option(k, "k", minimum=1)
+    if method not in METHODS:
+        raise InputError(f"method must be one of {METHODS}, got {method!r}")
+    rtol = real_option(rtol, "rtol", between=(0.0, 1.0))
+    maxiter = integer_option(maxiter, "maxiter", minimum=1)
+    extra = integer_option(extra, "extra", minimum=0, allow_none=True)
+    seed = integer_option(seed, "seed", minimum=0)
+    integer_option(quadrature, "quadrature", minimum=1)
+    if preconditioner is not None:
+        capabilities(preconditioner)  # an InputError naming the valid ones when unknown
+    return k, rtol, maxiter, extra, seed
+
+
+def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, method="auto",
+               rtol=1e-8, maxiter=100, extra=None, preconditioner=None, seed=0, quadrature=2,
+               **preconditioner_options):
+    """The ``k`` smallest eigenpairs of ``-div(kappa grad u) = lambda rho u`` (P1).
+
+    Parameters
+    ----------
+    mesh : Mesh
+        Triangles or tetrahedra.
+    k : int
+        How many eigenpairs, ``1 <= k <`` the number of unknowns.
+    coefficient : kappa, optional
+        Anything :func:`hatkernels.solve_poisson` takes (a number, one value
+        per cell or per point, ``d x d`` tensors, a callable, ``{region:
+        value}``); positive.  Default 1.
+    density : rho
+        The same kinds, scalar, positive.  Default 1.
+    dirichlet_on : optional
+        Where ``u = 0``, as in :func:`hatkernels.solve_poisson`: None (the
+        default) or "boundary" for the whole boundary; point indices; sides
+        ((j, 2) edges, (j, 3) faces); boundary tag names or
+        :func:`hatkernels.conditions.tagged` tags.  The rest of the boundary
+        is natural (``kappa du/dn = 0``).  ``dirichlet_on=()`` holds
+        nothing: the pure Neumann problem, whose eigenvalue 0 is reported as
+        a zero mode.
+    method : {"auto", "shift-invert", "lobpcg"}
+        "auto": shift-invert up to :data:`SHIFT_INVERT_LIMIT` unknowns, lobpcg above.
+    rtol : float
+        lobpcg stops when the estimated relative error of each wanted
+        eigenvalue (against the exact eigenvalue of this discrete problem) is
+        below ``rtol``.  Below about 1e-10 the estimates reach lobpcg's own
+        round-off.
+    maxiter : int
+        lobpcg iterations allowed on the given mesh.
+    extra : int, optional
+        Vectors in lobpcg's block beyond the wanted ones; default ``max(2, ceil(k / 4))``.
+    preconditioner : str, optional
+        A name from :data:`hatkernels.PRECONDITIONERS` for lobpcg.  Default:
+        geometric multigrid on a mesh with a refinement history and no zero
+        modes, else ``amg``.  ``**preconditioner_options`` go to it.
+    seed : int
+        Seed of the random start (lobpcg without refinement history, ARPACK's start vector).
+    quadrature : int
+        Degree of the rule for callable coefficients.
+
+    Returns
+    -------
+    Eigenmodes
+        ``(values (k,), vectors (n_points, k))``, with ``.zero_modes`` and ``.stats``.
+
+    Raises
+    ------
+    InputError
+        Bad data (naming the cell, point or value), ``k`` out of range,
+        unknown options.
+    ConvergenceError
+        lobpcg did not converge within ``maxiter`` (the message says how many
+        of the ``k`` did), or shift-invert failed.
+
+    Examples
+    --------
+    >>> import numpy as np, hatkernels
+    >>> from hatkernels.eigen import eigenmodes
+    >>> values, vectors = eigenmodes(hatkernels.mesh.rectangle(32, 32), 3)
+    >>> np.round(values / np.pi**2, 3)     # 2, 5, 5 in the limit, approached from above
+    array([2.005, 5.021, 5.032])
+    >>> vectors.shape
+    (1089, 3)
+    >>> modes = eigenmodes(hatkernels.mesh.rectangle(8, 8), 2, dirichlet_on=())
+    >>> modes.zero_modes, float(modes.values[0])
+    (array([ True, False]), 0.0)
+    """
+    t0 = time.perf_counter()
+    k, rtol, maxiter, extra, seed = _checked(mesh, k, method, rtol, maxiter, extra, seed,
+                                             preconditioner, quadrature)
+    kappa = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
+    rho = parse_coefficient(density, mesh, name="density", sign="positive")
+    held = parse_conditions(mesh, dirichlet_on=dirichlet_on)[0].points
+    timings = {"assemble": 0.0, "setup": 0.0, "solve": 0.0}
+    t = time.perf_counter()
+    fine = _es.build_level(mesh, held, kappa, rho, quadrature)
+    timings["assemble"] += time.perf_counter() - t
+    n, z = fine.unknowns, fine.zero.shape[1]
+    if k >= n:
+        raise InputError(f"k = {k} eigenpairs asked for, but the problem has {n} unknowns "
+                         f"(points not held and in some cell); k must be below {n}")
+    if method == "auto":
+        method = "shift-invert" if n <= SHIFT_INVERT_LIMIT else "lobpcg"
+    stats = EigenStats(method=method, unknowns=n, rtol=rtol, threads=numba.get_num_threads())
+    if k <= z:  # zero modes only: nothing to iterate
+        values, X, stats.method = np.zeros(0), np.zeros((n, 0)), "zero modes"
+        stats.errors = np.zeros(k)
+    elif method == "shift-invert":
+        t = time.perf_counter()
+        values, X, stats.method = _es.shift_invert(fine, k, seed)
+        timings["solve"] += time.perf_counter() - t
+        values, X = values[z:], X[:, z:]
+        stats.errors = np.full(k, np.nan)
+    else:
+        m = k - z + (max(2, math.ceil(k / 4)) if extra is None else extra)
+        values, X = _lobpcg(fine, m, k - z, rtol, maxiter, seed, preconditioner,
+                            preconditioner_options, quadrature, stats, timings)
+        values, X = values[: k - z], X[:, : k - z]
+    values, vectors, zero_modes, stats.errors = _assembled(fine, values, X, k, stats.errors)
+    timings["total"] = time.perf_counter() - t0
+    stats.timings = timings
+    stats.product_seconds = _product_seconds(fine)
+    stats.work_units = timings["total"] / stats.product_seconds
+    stats.peak_rss_bytes = peak_rss_bytes()
+    return Eigenmodes(values, vectors, zero_modes, stats, mesh)
+
+
+def _assembled(fine, values, X, k, errors):
+    """The zero modes first, then the others made M-orthogonal to them, normalised and
+    signed; all as values at the points."""
+    Z = fine.zero[:, : min(k, fine.zero.shape[1])]
+    if Z.shape[1]:
+        X = X - Z @ (Z.T @ (fine.M @ X))  # round-off of the solvers' constraints
+    X = X / np.sqrt(np.einsum("ij,ij->j", X, fine.M @ X))
+    X = np.hstack([Z, X])
+    biggest = np.argmax(np.abs(X), axis=0)
+    X = X * np.where(X[biggest, np.arange(X.shape[1])] < 0, -1.0, 1.0)
+    zero_modes = np.arange(k) < Z.shape[1]
+    values = np.concatenate([np.zeros(Z.shape[1]), values])
+    errors = np.asarray(errors, dtype=np.float64).copy()
+    errors[zero_modes] = 0.0
+    return values, fine.expand(X), zero_modes, errors
+
+
+def _product_seconds(level):
+    """Best of three products with the given mesh's assembled stiffness matrix."""
+    K = level.K
+    x = np.ones(K.shape[0])
+    y = np.empty_like(x)
+    best = math.inf
+    for _ in range(3):
+        t = time.perf_counter()
+        _k.spmv(K.indptr, K.indices, K.data, x, y)
+        best = min(best, time.perf_counter() - t)
+    return best
+
+
+def _default_preconditioner(mesh, floating):
+    """Multigrid on the mesh's own refinement history when it has one and nothing floats
+    (the registered preconditioner that needs the mesh and no matrix), else the default."""
+    if not floating and mesh.refinement is not None:
+        for name in PRECONDITIONERS:
+            caps = capabilities(name)
+            if caps.needs_mesh and not caps.needs_matrix:
+                return name
+    return DEFAULT
+
+
+def _preconditioner(level, name, options, quadrature):
+    floating = level.zero.shape[1] > 0
+    chosen = name or _default_preconditioner(level.mesh, floating)
+    if floating:
+        if capabilities(chosen).needs_mesh:
+            raise InputError(f"preconditioner {chosen!r} works on the stiffness alone, which is "
+                             f"singular here: {level.zero.shape[1]} part(s) of the mesh hold no "
+                             f"point (zero modes); use one that takes a matrix")
+        A = (level.K + level.shift() * level.M).tocsr()
+        return make_preconditioner(A, chosen, **options)
+    context = PreconditionerContext(mesh=level.mesh, coefficient=level.kappa, fixed=level.held,
+                                    quadrature=quadrature)
+    try:
+        return make_preconditioner(level.K, chosen, context=context, **options)
+    except InputError:
+        if name is not None or chosen == DEFAULT:
+            raise
+        # the multigrid chosen by default cannot serve this mesh (say, every point of its
+        # coarsest level is held): the default preconditioner can
+        return make_preconditioner(level.K, DEFAULT, context=context, **options)
+
+
+def _chain(fine, m, quadrature):
+    """The nested start: ``(start level, [(mesh, held, kappa, rho) of each level above it
+    and below the given mesh])``, coarsest first; ``(None, [])`` when no coarser level fits
+    (at most :data:`START_LIMIT` unknowns, and at least twice the block beyond its zero modes).
+    """
+    chain = []
+    mesh, held, kappa, rho = fine.mesh, fine.held, fine.kappa, fine.rho
+    while mesh.refinement is not None:
+        mesh, held, kappa, rho = _es.coarser(mesh, held, kappa, rho)
+        chain.append((mesh, held, kappa, rho))
+        if mesh.n_points - held.size <= START_LIMIT:
+            break
+    if not chain:
+        return None, []
+    start = _es.build_level(*chain[-1], quadrature)
+    if start.unknowns > START_LIMIT or start.unknowns - start.zero.shape[1] < 2 * m:
+        return None, []
+    return start, chain[-2::-1]
+
+
+def _lobpcg(fine, m, wanted, rtol, maxiter, seed, name, options, quadrature, stats, timings):
+    """Ritz values and vectors (on the free points of ``fine``) of the nested or the plain
+    lobpcg iteration; fills ``stats``."""
+    n, z = fine.unknowns, fine.zero.shape[1]
+    t = time.perf_counter()
+    start, between = _chain(fine, m, quadrature)
+    timings["assemble"] += time.perf_counter() - t
+    used = {"stiffness": 0.0, "mass": 0.0, "preconditioner": 0.0}
+    stats.block = m
+    X = None
+    if start is not None:
+        t = time.perf_counter()
+        z0 = start.zero.shape[1]
+        V = _es.shift_invert(start, z0 + m, seed)[1]
+        timings["solve"] += time.perf_counter() - t
+        stats.levels.append((start.unknowns, 0))
+        X = start.expand(V[:, z0:])
+        del start, V
+    for problem in between + [None]:
+        t = time.perf_counter()
+        level = fine if problem is None else _es.build_level(*problem, quadrature)
+        timings["assemble"] += time.perf_counter() - t
+        _es.check_block(level, m, level.zero.shape[1])
+        if X is None:
+            X0 = np.random.default_rng(seed).standard_normal((level.unknowns, m))
+        else:
+            X0 = _es.prolong(level.mesh, X)[level.free]
+        t = time.perf_counter()
+        T = _preconditioner(level, name, options, quadrature)
+        timings["setup"] += time.perf_counter() - t
+        blocks = _es.Blocks(level, T)
+        Y = level.zero if level.zero.shape[1] else None
+        t = time.perf_counter()
+        if problem is None:
+            out = _es.run_lobpcg(blocks, X0, Y, k=wanted, rtol=rtol,
+                                 first=_FIRST if X is not None else _FIRST_RANDOM,
+                                 maxiter=maxiter)
+        else:
+            out = _es.run_lobpcg(blocks, X0, Y, k=wanted, rtol=None, first=_INTERMEDIATE,
+                                 maxiter=_INTERMEDIATE)
+        timings["solve"] += time.perf_counter() - t
+        for key, count in blocks.counts.items():
+            used[key] += count * level.unknowns / n
+        stats.levels.append((level.unknowns, out.iterations))
+        X = None if problem is None else level.expand(out.vectors)
+    stats.iterations = out.iterations
+    stats.converged = out.converged
+    stats.products = used
+    stats.preconditioner = getattr(T, "description", repr(T))
+    stats.shift = fine.shift()
+    stats.errors = np.concatenate([np.zeros(z), out.errors])
+    if not out.converged:
+        good = int((out.errors <= rtol).sum())
+        raise ConvergenceError(
+            f"eigenmodes: lobpcg converged {good + z} of the {wanted + z} eigenpairs asked "
+            f"for after {out.iterations} iterations on {n} unknowns (estimated relative "
+            f"errors up to {float(np.max(out.errors)):.2e} against rtol {rtol:g}"
+            + ("; the Ritz values stopped changing" if out.stalled else "")
+            + "); raise maxiter, loosen rtol or use method='shift-invert'")
+    return out.values, out.vectors

@@ -1,0 +1,335 @@
+"""The smallest eigenpairs of ``K x = lambda M x`` on the free unknowns, level by level.
+
+:func:`hatkernels.eigen.eigenmodes` is the driver; this module holds its
+pieces:
+
+:class:`Level`
+    the problem on one mesh: stiffness ``K`` and mass ``M`` assembled and
+    reduced to the free points, and the exact zero modes (the constants of
+    the connected parts that no held point touches, M-normalised);
+:func:`shift_invert`
+    scipy's ``eigsh`` in shift-invert mode (SuperLU of ``K - sigma M``), or
+    a dense solve for tiny problems;
+:func:`run_lobpcg`
+    scipy's ``lobpcg`` with a preconditioner, run in chunks of iterations
+    and stopped on an estimate of each wanted eigenvalue's error;
+:func:`coarser`, :func:`prolong`
+    the problem one refinement down, and vectors interpolated one up (for
+    the nested start: the eigenvectors of a coarse mesh, interpolated, are
+    the first block on the next finer one).
+
+Why chunks and not scipy's own tolerance: ``lobpcg`` stops when the 2-norm
+of every residual ``K x - lambda M x`` is below one absolute number, for
+every vector of the block.  That norm is dominated by the residual's
+oscillating part, which hardly affects the eigenvalue: on the unit square
+(65,025 unknowns, ten modes) the relative eigenvalue error was 1e-8 while
+the relative residual was still 0.4.  Eigenvalues of a symmetric pencil
+computed by Rayleigh-Ritz only decrease from one iteration to the next, so
+the changes of the Ritz values measure what is left: with ``c_j`` the last
+change and ``q = c_j / c_(j-1)`` (held in ``[0.1, 0.9]``) the remaining
+error is about ``c_j q / (1 - q)``.  Only the ``k`` wanted values are
+judged: the extra vectors of the block need not converge (a multiple
+eigenvalue split by the end of the block would never let them).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import warnings
+
+import numpy as np
+import scipy.linalg
+from scipy.sparse.linalg import eigsh, lobpcg
+
+from hatkernels._jit import sparse as _k
+from hatkernels.assembly import assemble_mass, assemble_stiffness
+from hatkernels.boundary import apply_dirichlet
+from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.precond.gmg import coarsen_coefficient
+
+__all__ = ["Level", "build_level", "coarser", "prolong", "shift_invert", "run_lobpcg",
+           "error_estimates", "Blocks", "DENSE_LIMIT"]
+
+#: Below this many unknowns the small eigenproblem is solved densely (LAPACK).
+DENSE_LIMIT = 600
+
+# the contraction factor assumed per iteration when the history cannot tell it
+Q_MIN, Q_MAX = 0.1, 0.9
+# a tolerance scipy's lobpcg never reaches: the driver decides when to stop
+_NEVER = 1e-300
+
+
+@dataclasses.dataclass(eq=False)
+class Level:
+    """The eigenproblem on one mesh.
+
+    Attributes
+    ----------
+    mesh : Mesh
+    K, M : scipy CSR, shape (n_free, n_free)
+        Stiffness (with ``kappa``) and mass (with ``rho``) on the free points.
+    free : ndarray
+        Each unknown's point (sorted); held points and points in no cell are not unknowns.
+    held : ndarray
+        The held points (sorted).
+    zero : ndarray, shape (n_free, z)
+        One M-normalised constant per connected part that no held point
+        touches: the exact eigenvectors of the eigenvalue 0 (``K`` annihilates
+        constants, row by row).
+    kappa, rho : Coefficient
+    """
+
+    mesh: object
+    K: object
+    M: object
+    free: np.ndarray
+    held: np.ndarray
+    zero: np.ndarray
+    kappa: object
+    rho: object
+
+    @property
+    def unknowns(self):
+        return self.K.shape[0]
+
+    def expand(self, X):
+        """``X`` (n_free, j) as values at all points (n_points, j), 0 where nothing is free."""
+        out = np.zeros((self.mesh.n_points, X.shape[1]))
+        out[self.free] = X
+        return out
+
+    def shift(self):
+        """A positive number near the first nonzero eigenvalue when some part floats, else 0.
+
+        The Rayleigh quotient of each coordinate function, made M-orthogonal
+        to the zero modes, bounds the first nonzero eigenvalue from above
+        (Courant's minimum-maximum principle) and is of its size; the
+        smallest one is taken.  ``K + shift M`` is then positive definite
+        and ``(K + shift M)^-1`` a fair preconditioner of ``K`` away from its
+        zero modes.
+        """
+        Z = self.zero
+        if Z.shape[1] == 0:
+            return 0.0
+        best = math.inf
+        for axis in range(self.mesh.dim):
+            v = np.array(self.mesh.points[self.free, axis], dtype=np.float64)
+            v -= Z @ (Z.T @ (self.M @ v))
+            mass = float(v @ (self.M @ v))
+            if mass > 0:
+                best = min(best, float(v @ (self.K @ v)) / mass)
+        return best if math.isfinite(best) and best > 0 else 1.0
+
+
+def build_level(mesh, held, kappa, rho, quadrature):
+    """Assemble and reduce the problem on ``mesh`` (``kappa``, ``rho`` parsed Coefficients)."""
+    K = assemble_stiffness(mesh, kappa, quadrature=quadrature)
+    M = assemble_mass(mesh, rho, quadrature=quadrature)
+    rhs = np.zeros(mesh.n_points)
+    k = apply_dirichlet(K, rhs, held)
+    del K
+    m = apply_dirichlet(M, rhs, held)  # the same pattern: the same free points
+    return Level(mesh, k.A, m.A, k.free, held, _zero_modes(mesh, held, k.free, m.A), kappa, rho)
+
+
+def _zero_modes(mesh, held, free, M):
+    count, labels = mesh.components()
+    held_parts = np.zeros(count, dtype=bool)
+    touched = labels[held]
+    held_parts[touched[touched >= 0]] = True
+    loose = np.flatnonzero(~held_parts)
+    Z = np.zeros((free.size, loose.size))
+    on_free = labels[free]
+    for j, part in enumerate(loose):
+        Z[:, j] = on_free == part
+        Z[:, j] /= math.sqrt(float(Z[:, j] @ (M @ Z[:, j])))
+    return Z
+
+
+def coarser(fine, held, kappa, rho):
+    """``(coarse mesh, held points, kappa, rho)`` one refinement below ``fine``.
+
+    A coarse point is held when its fine counterpart is; the coefficients go
+    down as the multigrid takes them (per-cell values averaged over the
+    children, per-point values kept at the coarse points).
+    """
+    r = fine.refinement
+    is_held = np.zeros(fine.n_points, dtype=bool)
+    is_held[held] = True
+    return (r.coarse, np.flatnonzero(is_held[r.coarse_points]),
+            coarsen_coefficient(kappa, fine, r.coarse), coarsen_coefficient(rho, fine, r.coarse))
+
+
+def prolong(fine, X):
+    """Values ``X`` (n_coarse_points, j) interpolated linearly to the points of ``fine``."""
+    r = fine.refinement
+    out = np.empty((fine.n_points, X.shape[1]))
+    out[r.coarse_points] = X
+    e = r.edge_points
+    out[r.midpoints] = 0.5 * (X[e[:, 0]] + X[e[:, 1]])
+    return out
+
+
+def shift_invert(level, count, seed):
+    """The ``count`` smallest eigenpairs of ``(K, M)``, zero modes included: ``(values,
+    vectors)`` ascending, the vectors M-orthonormal, ``method`` in words.
+
+    Dense (LAPACK) up to :data:`DENSE_LIMIT` unknowns; else scipy's ``eigsh``
+    in shift-invert mode about ``-shift`` (0 unless a part floats, when
+    ``K`` itself is singular), started from a fixed random vector.
+    """
+    K, M = level.K, level.M
+    n = K.shape[0]
+    if n <= DENSE_LIMIT:
+        values, vectors = scipy.linalg.eigh(K.toarray(), M.toarray(),
+                                            subset_by_index=(0, count - 1))
+        method = "dense"
+    else:
+        v0 = np.random.default_rng(seed).standard_normal(n)
+        try:
+            values, vectors = eigsh(K, count, M, sigma=-level.shift(), which="LM", v0=v0)
+        except Exception as exc:  # ARPACK's own errors carry no library type
+            raise ConvergenceError(f"eigenmodes: shift-invert (scipy's eigsh) failed on "
+                                   f"{n} unknowns: {exc}") from exc
+        method = "shift-invert"
+    order = np.argsort(values, kind="stable")
+    return values[order], vectors[:, order], method
+
+
+class Blocks:
+    """``K``, ``M`` and the preconditioner applied to blocks of vectors, counted.
+
+    Each column goes through the parallel CSR kernel (the product CG uses;
+    same bits on any thread count) or the preconditioner's ``apply_into``.
+    The results are column-major, so that lobpcg's blocks keep contiguous
+    columns.
+    """
+
+    def __init__(self, level, preconditioner):
+        self.n = level.unknowns
+        self._K = (level.K.indptr, level.K.indices, level.K.data)
+        self._M = (level.M.indptr, level.M.indices, level.M.data)
+        self._T = preconditioner
+        self.counts = {"stiffness": 0, "mass": 0, "preconditioner": 0}
+
+    def _columns(self, X, key, apply):
+        X = np.asarray(X, dtype=np.float64)
+        block = np.asfortranarray(X.reshape(self.n, -1))
+        out = np.empty(block.shape, order="F")
+        for j in range(block.shape[1]):
+            apply(block[:, j], out[:, j])
+        self.counts[key] += block.shape[1]
+        return out.reshape(X.shape, order="F")
+
+    def stiffness(self, X):
+        return self._columns(X, "stiffness", lambda x, y: _k.spmv(*self._K, x, y))
+
+    def mass(self, X):
+        return self._columns(X, "mass", lambda x, y: _k.spmv(*self._M, x, y))
+
+    def precondition(self, X):
+        return self._columns(X, "preconditioner", self._T.apply_into)
+
+
+def error_estimates(history, k):
+    """Estimated relative errors of the ``k`` smallest Ritz values from their history.
+
+    ``history`` is a list of arrays of Ritz values, one per iterate, oldest
+    first.  See the module notes; ``inf`` when there is no change to judge by.
+    """
+    L = np.asarray(history)[:, :k]
+    if len(L) < 2:
+        return np.full(k, np.inf)
+    c = np.abs(np.diff(L, axis=0))
+    last = c[-1]
+    q = np.full(k, Q_MAX)
+    if len(c) >= 2:
+        prev = c[-2]
+        np.divide(last, prev, out=q, where=prev > 0)
+        q = np.clip(q, Q_MIN, Q_MAX)
+    return last * q / (1.0 - q) / np.maximum(np.abs(L[-1]), np.finfo(float).tiny)
+
+
+@dataclasses.dataclass
+class LobpcgOutcome:
+    """What :func:`run_lobpcg` found: Ritz values and vectors of the whole block, the
+    iterations done, the history of Ritz values and the estimated errors of the wanted ones."""
+
+    values: np.ndarray
+    vectors: np.ndarray
+    iterations: int
+    history: list
+    errors: np.ndarray
+    converged: bool
+    stalled: bool = False
+
+
+def run_lobpcg(blocks, X, Y, *, k, rtol, first, maxiter):
+    """scipy's lobpcg from the block ``X`` (n_free, m), in chunks, until the ``k`` smallest
+    Ritz values' estimated relative errors are below ``rtol`` or ``maxiter`` iterations
+    are done; ``rtol=None`` runs ``first`` iterations and stops.
+
+    ``Y`` (n_free, z) or None: constraints (the zero modes), kept M-orthogonal
+    to the block.  ``X`` is overwritten.  Between chunks only the block is
+    carried over (lobpcg restarts without its search directions); the next
+    chunk is as long as the last contraction factor predicts, at least 2.
+    """
+    history = []
+    done = 0
+    chunk = min(first, maxiter)
+    errors = np.full(k, np.inf)
+    stalled = False
+    while True:
+        try:
+            with warnings.catch_warnings():
+                # lobpcg warns at every exit short of its tolerance, which is never met here
+                warnings.simplefilter("ignore", UserWarning)
+                values, X, lam = lobpcg(blocks.stiffness, X, B=blocks.mass,
+                                        M=blocks.precondition, Y=Y, tol=_NEVER,
+                                        maxiter=chunk - 1, largest=False,
+                                        retLambdaHistory=True)
+        except ValueError as exc:  # linearly dependent block, failed Cholesky of a Gram matrix
+            raise ConvergenceError(f"eigenmodes: lobpcg failed after {done} iterations: "
+                                   f"{exc}") from exc
+        done += chunk
+        # lam: the Ritz values of the starting block, of each iterate up to the one
+        # returned (lobpcg returns the iterate of smallest residual), then of the
+        # returned block after a last Rayleigh-Ritz step
+        new = [np.asarray(v) for v in lam[(1 if history else 0):-1]]
+        stalled = len(lam) <= 2 and bool(history)
+        history.extend(new)
+        if history:
+            history[-1] = np.asarray(values)
+        else:
+            history.append(np.asarray(values))
+        if rtol is None:
+            break
+        errors = error_estimates(history, k)
+        if (errors <= rtol).all() or stalled or done >= maxiter:
+            break
+        chunk = min(maxiter - done, _predicted(history, k, errors, rtol))
+    converged = rtol is None or bool((errors <= rtol).all())
+    return LobpcgOutcome(np.asarray(values), X, done, history, errors, converged, stalled)
+
+
+def _predicted(history, k, errors, rtol):
+    """Iterations the worst wanted value needs at its last contraction factor (>= 2)."""
+    L = np.asarray(history)[:, :k]
+    q = Q_MAX
+    if len(L) >= 3:
+        c = np.abs(np.diff(L, axis=0))
+        worst = int(np.argmax(errors / rtol))
+        if c[-2, worst] > 0:
+            q = float(np.clip(c[-1, worst] / c[-2, worst], Q_MIN, Q_MAX))
+    need = math.log(rtol / float(np.max(errors))) / math.log(q)
+    return max(2, math.ceil(need) + 1)
+
+
+def check_block(level, m, z):
+    """Refuse a block lobpcg cannot iterate with: it needs ``5 m`` unknowns beyond the ``z``
+    constraints (scipy's lobpcg turns to a dense solve otherwise)."""
+    if level.unknowns - z < 5 * m:
+        raise InputError(f"method='lobpcg' needs at least 5 x {m} (the block) unknowns beyond "
+                         f"the {z} zero modes, but the problem has {level.unknowns}; use "
+                         f"method='shift-invert'")
