@@ -1,4 +1,4 @@
-"""hatkernels: fast, verified kernels for linear (P1) finite elements on triangle meshes.
+"""hatkernels: fast, verified kernels for linear (P1) finite elements on triangles and tetrahedra.
 
 >>> import hatkernels
 >>> mesh = hatkernels.mesh.rectangle(16, 16)
@@ -24,6 +24,7 @@ from hatkernels.assembly import (
 from hatkernels.boundary import DirichletSystem, apply_dirichlet
 from hatkernels.coefficients import per_cell, per_edge, per_point, per_triangle
 from hatkernels.discretise import LinearSystem, discretise
+from hatkernels.eigen import Eigenmodes, eigenmodes
 from hatkernels.errors import ConvergenceError, InputError, MeshError, MeshWarning
 from hatkernels.geometry import element_gradients
 from hatkernels.mesh import Mesh
@@ -34,6 +35,7 @@ from hatkernels.problem import PoissonProblem
 from hatkernels.results import balance
 from hatkernels.solver import SolveResult, solve
 from hatkernels.stats import SolveStats
+from hatkernels.transient import TransientSolution, in_time, solve_transient
 
 __version__ = "0.1.0"
 
@@ -43,6 +45,7 @@ __all__ = [
     "ConvergenceError",
     "DirichletSystem",
     "DofAssembler",
+    "Eigenmodes",
     "InputError",
     "Mesh",
     "MeshError",
@@ -54,9 +57,11 @@ __all__ = [
     "SolveStats",
     "StiffnessAssembler",
     "StiffnessOperator",
+    "TransientSolution",
     "apply_dirichlet",
     "discretise",
     "distributed",
+    "eigenmodes",
     "assemble_boundary_load",
     "assemble_boundary_mass",
     "assemble_load",
@@ -64,6 +69,7 @@ __all__ = [
     "assemble_stiffness",
     "balance",
     "element_gradients",
+    "in_time",
     "krylov",
     "make_preconditioner",
     "mesh",
@@ -75,5 +81,6 @@ __all__ = [
     "register_preconditioner",
     "solve",
     "solve_poisson",
+    "solve_transient",
     "threads",
 ]

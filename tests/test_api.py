@@ -13,6 +13,7 @@ PUBLIC = {
     "ConvergenceError",
     "DirichletSystem",
     "DofAssembler",
+    "Eigenmodes",
     "InputError",
     "Mesh",
     "MeshError",
@@ -45,7 +46,11 @@ PUBLIC = {
     "register_preconditioner",
     "solve",
     "solve_poisson",
+    "solve_transient",
     "threads",
+    "TransientSolution",
+    "eigenmodes",
+    "in_time",
 }
 
 
