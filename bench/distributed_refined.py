@@ -41,7 +41,7 @@ def worker(args):
     f = (lambda x, y: 1.0 + x * y) if args.dim == 2 else (lambda x, y, z: 1.0 + x * y * z)
     kind = args.levels[0]
     options = dict(preconditioner="gmg", rtol=1e-8, comm=comm, gather=False,
-                   matrix_free=kind != "assembled")
+                   matrix_free=kind != "assembled", threads=args.threads)
     if ":" in kind:  # matrix-free:<variant>
         options["variant"] = kind.split(":")[1]
     # a small solve first: the kernels loaded, what the process holds before the
@@ -64,7 +64,7 @@ def worker(args):
             "ranks": comm.Get_size(), "dim": args.dim, "coarse_cells": cells,
             "refine": args.refine, "points": s.unknowns + s.dirichlet_points,
             "iterations": s.iterations,
-            "levels": kind,
+            "levels": kind, "threads": s.threads,
             "preconditioner": s.preconditioner,
             "converged": s.converged, "timings_max": s.timings,
             "seconds_per_iteration": min(per_iteration),
@@ -99,6 +99,8 @@ def main():
                          "assembled")
     ap.add_argument("--repeat", type=int, default=1,
                     help="solves per run; the time per iteration is the best of them")
+    ap.add_argument("--threads", type=int, default=None,
+                    help="numba threads per rank (default: the library's choice)")
     ap.add_argument("--out")
     args = ap.parse_args()
     if args.worker:
@@ -116,6 +118,7 @@ def main():
                    sys.executable, os.path.join(here, "distributed_refined.py"), "--worker",
                    "--dim", str(args.dim), "--cells", str(cells), "--refine", str(args.refine),
                    "--levels", kind, "--repeat", str(args.repeat)]
+            cmd += [] if args.threads is None else ["--threads", str(args.threads)]
             load = os.getloadavg()[0]
             out = subprocess.run(cmd, capture_output=True, text=True, check=True).stdout
             rec = json.loads(out.strip().splitlines()[-1])

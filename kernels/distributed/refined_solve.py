@@ -329,7 +329,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     return u, u_owned, fine.points[:n].copy(), stats_out, problem, balance, piece, flows
 
 
-def _source_load(source, fine, per, quadrature, block=2**17):
+def _source_load(source, fine, per, quadrature, block=2**15):
     """The source's load on the local mesh, assembled by blocks of ``block`` cells: the
     quadrature's temporaries (tens of bytes per cell and point of the rule) stay small."""
     b = np.zeros(fine.n_local)
@@ -398,9 +398,11 @@ def _piece(fine, u, cell_owner, rank, per, coarse):
     used = np.flatnonzero(is_used)
     if used.size == fine.n_local:  # one rank: the local mesh's arrays, not copied
         mesh = Mesh._trusted(fine.mesh.points, cells)
-    else:
+    else:  # cells is a copy already: renumbered in place, a block at a time
         new = np.cumsum(is_used, dtype=cells.dtype) - 1
-        mesh = Mesh._trusted(fine.mesh.points[used], new[cells])
+        for c0 in range(0, len(cells), 2**16):
+            cells[c0: c0 + 2**16] = new[cells[c0: c0 + 2**16]]
+        mesh = Mesh._trusted(fine.mesh.points[used], cells)
     del is_used
     cell_data = {}
     if coarse.regions is not None:
