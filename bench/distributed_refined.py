@@ -1,8 +1,19 @@
 """Iterations, memory per rank and communication of the partitioned distributed multigrid
 for P = 1, 2, 4, ... ranks (not a timed test: counts and bytes; times only as measured).
 
-    python bench/distributed_refined.py --ranks 1 2 4 8 16 --cells 16 --refine 6 \
+    python bench/distributed_refined.py --ranks 1 2 4 8 --cells 16 --refine 6 \
+        --levels matrix-free matrix-free:edges assembled --repeat 3 \
         --out bench/results/distributed_refined.json
+    python bench/distributed_refined.py --dim 3 --ranks 1 2 4 8 --cells 4 --refine 4 \
+        --levels matrix-free matrix-free:geometry assembled --repeat 3 \
+        --out bench/results/distributed_refined_3d.json
+    python bench/distributed_refined.py --per-rank --ranks 1 2 4 8 --cells 8 --refine 6 \
+        --repeat 3 --out bench/results/distributed_refined_weak.json
+    python bench/distributed_refined.py --threads 1 --ranks 1 2 --cells 8 --refine 6 \
+        --levels matrix-free matrix-free:edges assembled --repeat 3 \
+        --out bench/results/distributed_refined_1thread.json   # and --dim 3 --cells 4 --refine 4
+
+(each under ``flock /tmp/hk-bench.lock``, so that no two benchmarks share the cores)
 
 runs ``mpiexec -n P python bench/distributed_refined.py --worker ...`` for each P
 (oversubscribed when P exceeds the cores: then the times are not scaling figures)
