@@ -13,7 +13,7 @@ lobpcg
     scipy's ``lobpcg`` preconditioned by this library's multigrid: ``gmg`` on
     a mesh made by :meth:`Mesh.refine` (each level's own), else ``amg``.  On
     a refined mesh the iteration is nested: the eigenvectors of the finest
-    coarse level with at most :data:`START_LIMIT` unknowns (by shift-invert)
+    coarse level with at most :data:`SHIFT_INVERT_LIMIT` unknowns (by shift-invert)
     are interpolated to the next level as its first block, a few iterations
     are done there, and so on up to the given mesh, where the iteration runs
     until every wanted eigenvalue is converged to ``rtol`` (see
@@ -55,18 +55,21 @@ from hatkernels.precond import (
     make_preconditioner,
 )
 
-__all__ = ["eigenmodes", "Eigenmodes", "EigenStats", "SHIFT_INVERT_LIMIT", "START_LIMIT",
-           "METHODS"]
+__all__ = ["eigenmodes", "Eigenmodes", "EigenStats", "SHIFT_INVERT_LIMIT", "METHODS"]
 
-#: ``method="auto"`` solves problems with at most this many unknowns by shift-invert.
+#: ``method="auto"`` solves problems with at most this many unknowns by shift-invert, and
+#: the nested lobpcg starts on the finest coarser level that has at most this many.
 SHIFT_INVERT_LIMIT = 20_000
-#: The nested lobpcg starts on the finest coarser level with at most this many unknowns.
-START_LIMIT = 5_000
 METHODS = ("auto", "shift-invert", "lobpcg")
 # iterations on each intermediate level of the nested iteration, then on the finest level
-# before the first look at the error estimates
-_INTERMEDIATE = 2
-_FIRST = 3
+# before the first look at the error estimates (docs/eigenmodes.md has the measurements)
+_INTERMEDIATE = 1
+_FIRST = 2
+# the matrix-free operators of a multigrid built here: lobpcg applies it to every vector
+# of the block at every iteration, and the assembled K and M already take more memory than
+# the edge weights (0.45 of K), so the fastest product is worth its memory
+# (docs/matrix-free.md; DEFAULT_VARIANT favours memory for one solve)
+_VARIANT = "edges"
 _FIRST_RANDOM = 10
 
 
@@ -356,7 +359,7 @@ def _preconditioner(level, name, options, quadrature):
         A = (level.K + level.shift() * level.M).tocsr()
         return make_preconditioner(A, chosen, **options)
     context = PreconditionerContext(mesh=level.mesh, coefficient=level.kappa, fixed=level.held,
-                                    quadrature=quadrature)
+                                    variant=_VARIANT, quadrature=quadrature)
     try:
         return make_preconditioner(level.K, chosen, context=context, **options)
     except InputError:
@@ -370,19 +373,19 @@ def _preconditioner(level, name, options, quadrature):
 def _chain(fine, m, quadrature):
     """The nested start: ``(start level, [(mesh, held, kappa, rho) of each level above it
     and below the given mesh])``, coarsest first; ``(None, [])`` when no coarser level fits
-    (at most :data:`START_LIMIT` unknowns, and at least twice the block beyond its zero modes).
+    (at most :data:`SHIFT_INVERT_LIMIT` unknowns, and twice the block beyond its zero modes).
     """
     chain = []
     mesh, held, kappa, rho = fine.mesh, fine.held, fine.kappa, fine.rho
     while mesh.refinement is not None:
         mesh, held, kappa, rho = _es.coarser(mesh, held, kappa, rho)
         chain.append((mesh, held, kappa, rho))
-        if mesh.n_points - held.size <= START_LIMIT:
+        if mesh.n_points - held.size <= SHIFT_INVERT_LIMIT:
             break
     if not chain:
         return None, []
     start = _es.build_level(*chain[-1], quadrature)
-    if start.unknowns > START_LIMIT or start.unknowns - start.zero.shape[1] < 2 * m:
+    if start.unknowns > SHIFT_INVERT_LIMIT or start.unknowns - start.zero.shape[1] < 2 * m:
         return None, []
     return start, chain[-2::-1]
 

@@ -180,6 +180,21 @@ def test_lobpcg_with_geometric_multigrid_agrees_with_scipy():
     assert np.abs(C[1:3, 1:3] @ C[1:3, 1:3].T - np.eye(2)).max() < 1e-8
 
 
+def test_lobpcg_with_varying_data_down_the_levels():
+    # per-region kappa with a jump, per-cell rho and per-point kappa go down the nested
+    # levels (averaged or sampled); the answer on the given mesh is what counts
+    coarse = rectangle(8, 8)
+    halves = coarse.with_tags(regions=(coarse.points[coarse.cells].mean(axis=1)[:, 0] > 0.5)
+                              .astype(int))
+    m = refined(halves, 3)
+    rho = np.random.default_rng(5).uniform(0.5, 2.0, m.n_cells)
+    for kappa in ({0: 1.0, 1: 10.0}, 1.0 + m.points[:, 0] * m.points[:, 1]):
+        modes = eigenmodes(m, 4, method="lobpcg", coefficient=kappa, density=rho)
+        expected = eigenmodes(m, 4, method="shift-invert", coefficient=kappa, density=rho)
+        assert modes.stats.levels[0][1] == 0 and len(modes.stats.levels) == 2
+        assert modes.values == pytest.approx(expected.values, rel=1e-7, abs=0)
+
+
 def test_lobpcg_without_refinement_history_uses_amg():
     m = rectangle(50, 50)
     modes = eigenmodes(m, 4, method="lobpcg", coefficient=2.0, density=0.5)
