@@ -41,7 +41,7 @@ from hatkernels._jit import operators3d as _jit3
 from hatkernels._jit import sparse as _k
 from hatkernels.assembly import assemble_stiffness
 from hatkernels.distributed.launch import mpi
-from hatkernels.distributed.matrix import _arrays, split_columns
+from hatkernels.distributed.matrix import DistributedMatrix, _arrays, split_columns
 from hatkernels.errors import InputError
 from hatkernels.operators import DEFAULT_BLOCK, VARIANTS, StiffnessOperator
 from hatkernels.operators.blocks import EdgeRows
@@ -161,16 +161,8 @@ class _OwnedRows:
         self.matvec_into(p, out)
         return _k.dot(p[: self.n_owned], out)
 
-    def residual(self, x, b, out, work=None):
-        """``out = b - A x`` for owned ``x`` (``work``: a local vector, by default one
-        kept for the purpose)."""
-        if work is None:
-            if self._work is None:
-                self._work = np.zeros(self.n_local)
-            work = self._work
-        work[: self.n_owned] = x
-        self.matvec_into(work, out)
-        _k.xpby(b, -1.0, out)
+    #: ``out = b - A x`` for owned ``x``: the distributed matrix's, over ``matvec_into``
+    residual = DistributedMatrix.residual
 
 
 class MatrixFreeRows(_OwnedRows):
@@ -251,14 +243,9 @@ class AssembledRows(_OwnedRows):
         own = sum(a.nbytes for a in self._oo) + self.inverse_diagonal.nbytes
         return int(own + (sum(a.nbytes for a in self._og) if self._og else 0))
 
-    def matvec_into(self, p, out):
-        """``out = A p``: the owned columns' product while the ghosts travel."""
-        n = self.n_owned
-        self.halo.start(p)
-        _k.spmv(*self._oo, p[:n], out)
-        self.halo.finish()
-        if self._og is not None:
-            _k.spmv_add(*self._og, p[n:], out)
+    #: ``out = A p``: the distributed matrix's product of the same split rows (the owned
+    #: columns' part while the ghosts travel)
+    matvec_into = DistributedMatrix.matvec_into
 
     def unmasked_product(self, x):
         """As :meth:`MatrixFreeRows.unmasked_product`, from a transient assembly."""
