@@ -191,7 +191,12 @@ def solve_poisson(
     rtol, atol, maxiter, check
         As in the serial solve; the stopping rule is on the global residual.
     quadrature : int
-    matrix_free, variant, zero_mean
+    matrix_free, variant
+        On the partitioned path: the level operators are matrix-free by
+        default (``matrix_free=False`` assembles them; ``variant`` names the
+        matrix-free variant).  On the other paths each rank assembles its rows:
+        an error if set.
+    zero_mean
         Not available distributed (an error if set).
     memory_check : bool
         As serial; each rank's share of the points is checked against what
