@@ -104,10 +104,12 @@ class EigenStats:
         The shift ``s`` of the zero modes' preconditioner ``K + s M`` (0 when there are none).
     timings : dict
         Seconds: ``assemble`` (all levels), ``setup`` (preconditioners), ``solve``
-        (eigensolvers), ``total``.
+        (eigensolvers), ``total``; with lobpcg also the parts of ``solve`` spent in
+        ``products`` (stiffness and mass) and in the ``preconditioner`` (the rest of it is
+        lobpcg's own dense block algebra).
     product_seconds : float
-        One product with the assembled stiffness matrix of the given mesh (the parallel CSR
-        kernel, best of three), measured in the same call.
+        One product with the assembled stiffness matrix of the given mesh (the faster of the
+        parallel CSR kernel and scipy's product, best of three), measured in the same call.
     work_units : float
         ``timings["total"] / product_seconds``: the whole call in products with the
         matrix (the performance model of docs/eigenmodes.md).
@@ -325,15 +327,19 @@ def _assembled(fine, values, X, k, errors):
 
 
 def _product_seconds(level):
-    """Best of three products with the given mesh's assembled stiffness matrix."""
+    """One product with the given mesh's assembled stiffness matrix: the faster of the
+    parallel CSR kernel and scipy's one-thread product, best of three each (on a busy
+    machine every parallel region waits for a time slice, and small products then pay
+    more for that than for the work)."""
     K = level.K
     x = np.ones(K.shape[0])
     y = np.empty_like(x)
     best = math.inf
-    for _ in range(3):
-        t = time.perf_counter()
-        _k.spmv(K.indptr, K.indices, K.data, x, y)
-        best = min(best, time.perf_counter() - t)
+    for product in (lambda: _k.spmv(K.indptr, K.indices, K.data, x, y), lambda: K @ x):
+        for _ in range(3):
+            t = time.perf_counter()
+            product()
+            best = min(best, time.perf_counter() - t)
     return best
 
 
@@ -433,6 +439,8 @@ def _lobpcg(fine, m, wanted, rtol, maxiter, seed, name, options, quadrature, sta
         timings["solve"] += time.perf_counter() - t
         for key, count in blocks.counts.items():
             used[key] += count * level.unknowns / n
+        for key, seconds in blocks.seconds.items():
+            timings[key] = timings.get(key, 0.0) + seconds
         stats.levels.append((level.unknowns, out.iterations))
         X = None if problem is None else level.expand(out.vectors)
     stats.iterations = out.iterations

@@ -36,6 +36,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import time
 import warnings
 
 import numpy as np
@@ -215,31 +216,37 @@ class Blocks:
         self._K, self._M = level.K, level.M
         self._T = preconditioner
         self.counts = {"stiffness": 0, "mass": 0, "preconditioner": 0}
+        #: seconds in the products (stiffness and mass) and in the preconditioner
+        self.seconds = {"products": 0.0, "preconditioner": 0.0}
 
-    def _width(self, X, key):
+    def _product(self, A, X, key):
+        t = time.perf_counter()
+        out = A @ X
         self.counts[key] += 1 if X.ndim == 1 else X.shape[1]
+        self.seconds["products"] += time.perf_counter() - t
+        return out
 
     def stiffness(self, X):
-        self._width(X, "stiffness")
-        return self._K @ X
+        return self._product(self._K, X, "stiffness")
 
     def mass(self, X):
-        self._width(X, "mass")
-        return self._M @ X
+        return self._product(self._M, X, "mass")
 
     def precondition(self, X):
+        t = time.perf_counter()
         X = np.asarray(X, dtype=np.float64)
         if X.ndim == 1:
             out = np.empty(self.n)
             self._T.apply_into(np.ascontiguousarray(X), out)
-            self.counts["preconditioner"] += 1
-            return out
-        rows = _transposed(X, self.SLAB)
-        done = np.empty_like(rows)
-        for j in range(rows.shape[0]):
-            self._T.apply_into(rows[j], done[j])
-        self.counts["preconditioner"] += rows.shape[0]
-        return _transposed(done, self.SLAB, back=True)
+        else:
+            rows = _transposed(X, self.SLAB)
+            done = np.empty_like(rows)
+            for j in range(rows.shape[0]):
+                self._T.apply_into(rows[j], done[j])
+            out = _transposed(done, self.SLAB, back=True)
+        self.counts["preconditioner"] += 1 if X.ndim == 1 else X.shape[1]
+        self.seconds["preconditioner"] += time.perf_counter() - t
+        return out
 
 
 def _transposed(X, slab, back=False):
