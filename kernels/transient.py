@@ -103,7 +103,7 @@ def _schedule(times, dt, theta, startup):
 def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson",
                     startup=4, lumped=False, f=0.0, refine=0, dirichlet=0.0,
                     dirichlet_on=None, coefficient=None, reaction=None, neumann=None,
-                    robin=None, probes=None, preconditioner="amg", rtol=1e-8, atol=0.0,
+                    robin=None, probes=None, preconditioner="amg", rtol=1e-6, atol=0.0,
                     maxiter=None, check=False, quadrature=2, **preconditioner_options):
     """Solve ``capacity du/dt - div(kappa grad u) + c u = f(t)`` and return u at ``times``.
 
@@ -139,7 +139,9 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
         on ``M + theta dt K`` with the context the steady solve passes.
     rtol, atol, maxiter : CG's stopping rule for each step's change ``d`` of u:
         ``norm(rhs - A d) <= max(rtol * norm(rhs), atol)``.  The errors of the
-        steps add up to about ``rtol`` times the total change of u.
+        steps add up to at most about ``rtol`` times the total change of u (the
+        residual weighs an error in the rough modes more than in the smooth ones);
+        the default keeps them well below Crank-Nicolson's own error per step.
     check : bool
         Raise ConvergenceError at the first step that does not converge (default:
         finish, then warn once).
@@ -246,10 +248,14 @@ class _Run:
         s = self.systems.get(key)
         if s is None:
             start = time.perf_counter()
-            s = System(self.blocks, tau, dt, self.preconditioner, self.context, self.options)
-            self.timings["setup"] += time.perf_counter() - start
-            if not self.systems:
+            s = System(self.blocks, tau, dt)
+            built = time.perf_counter() - start
+            if not self.systems:  # the work unit, before a preconditioner's threads run
                 self.product_seconds = measure_product(s.A)
+            start = time.perf_counter()
+            s.precondition(self.preconditioner, self.context, self.options)
+            self.timings["setup"] += built + time.perf_counter() - start
+            if not self.systems:
                 self.nnz, self.description = int(s.A.nnz), s.description
             self.systems[key] = s
         return s
@@ -339,6 +345,9 @@ class _Run:
         self.timings.setdefault("output", 0.0)
         if not self.systems:  # no step at all (times == [0])
             self.description = "none (no step)"
+        else:  # measured again: a product slowed by another process must not set the unit
+            first = next(iter(self.systems.values()))
+            self.product_seconds = min(self.product_seconds, measure_product(first.A))
         return out
 
     def _account(self, k, x, d, uD, dD, h, theta, b_old, b_new, tot_old, tot_new):

@@ -154,25 +154,27 @@ class System:
     """``M + tau K`` on the free unknowns, its preconditioner and CG's product, built once
     per ``tau``; ``dt`` scales the stiffness of the right-hand side (``dt K_FF``)."""
 
-    def __init__(self, blocks, tau, dt, preconditioner, context, options):
+    def __init__(self, blocks, tau, dt):
         A = (blocks.M_FF + tau * blocks.K_FF).tocsr()
         A.sum_duplicates()
         A.sort_indices()
         self.A = as_csr(A, "M + tau K")
         self.tau, self.dt = float(tau), float(dt)
-        self.product, n = _operator(self.A)
-        start = time.perf_counter()
-        P = make_preconditioner(self.A, preconditioner, context=context, **options)
-        self.setup_seconds = time.perf_counter() - start
-        self.description = P.description
-        self.preconditioner_bytes = int(getattr(P, "nbytes", 0) or 0)
-        self.M = _cg.as_preconditioner(P, n)
+        self.product, self._n = _operator(self.A)
         K = blocks.K_FF
         self.K_dt = (K.indptr, K.indices, dt * K.data)
         self.lift = None
         if blocks.held.size:
             rows, sub = _rows_with_entries(blocks.M_FD + tau * blocks.K_FD)
             self.lift = (rows, sub.tocsr())
+        self.M, self.description, self.preconditioner_bytes = None, "", 0
+
+    def precondition(self, preconditioner, context, options):
+        """Build the preconditioner ``preconditioner`` (a registered name) of ``M + tau K``."""
+        P = make_preconditioner(self.A, preconditioner, context=context, **options)
+        self.description = P.description
+        self.preconditioner_bytes = int(getattr(P, "nbytes", 0) or 0)
+        self.M = _cg.as_preconditioner(P, self._n)
 
     @property
     def stored_bytes(self):

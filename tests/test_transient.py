@@ -205,6 +205,27 @@ def test_time_dependent_held_values_and_source_are_met_exactly():
             assert np.abs(row - exact(*m.points.T, t)).max() < 1e-10
 
 
+def test_held_values_and_sources_in_time_given_per_tag_and_region():
+    # u = 2 t + x on the unit square: held on the tagged left and right sides, the
+    # others insulated (du/dn = 0 there), f = 2 given per region, in time on one of
+    # them; exact for P1 and both schemes (common practice, no source)
+    from hatkernels.mesh.tags import label_cells, label_sides
+
+    m = label_sides(rectangle(8, 8), {"left": lambda x, y: x == 0.0,
+                                      "right": lambda x, y: x == 1.0})
+    m = label_cells(m, {"west": lambda x, y: x < 0.5, "east": lambda x, y: x == x})
+    held = {"left": in_time(lambda x, y, t: 2 * t + 0 * x),
+            "right": in_time(lambda x, y, t: 2 * t + 1 + 0 * x)}
+    f = {"west": 2.0, "east": in_time(lambda x, y, t: 2.0 + 0 * x * t)}
+    for scheme in ("backward-euler", "crank-nicolson"):
+        sol = solve_transient(m, lambda x, y: x, [0.05, 0.1], dt=0.025, scheme=scheme,
+                              dirichlet=held, f=f, rtol=1e-12)
+        for row, t in zip(sol.u, sol.times, strict=True):
+            assert np.abs(row - (2 * t + m.points[:, 0])).max() < 1e-10
+        e = sol.energy()
+        assert e.relative < 1e-9 and np.allclose(e.sources, 2.0 * 0.05, rtol=1e-12, atol=0)
+
+
 def test_crank_nicolson_is_exact_for_a_quadratic_in_time_with_flux_and_convection():
     # u = t^2 + t x: u_t - Laplace u = 2 t + x; kappa du/dn = t on x = 1, -t on x = 0;
     # on y = 0 and 1 convection du/dn + r u = s with s = r u (du/dn = 0 there).  Crank-

@@ -1,0 +1,204 @@
+"""Transient: per-step time and work units of solve_transient against a plain scipy loop.
+
+    python bench/transient.py --sizes 316 1000 1414 2000 --out bench/results/transient.json
+
+For each size ``n`` the cooling unit square (``rectangle(n, n)``, ``(n + 1)^2``
+points; ``u0 = sin(pi x) sin(pi y)``, ``u = 0`` on the boundary, Crank-Nicolson,
+``dt`` fixed, ``--steps`` steps) is marched twice, each in a fresh process:
+
+``hatkernels``
+    :func:`hatkernels.transient.solve_transient` with its defaults (the matrix
+    ``M + dt/2 K`` and its preconditioner once, CG warm-started per step) but
+    ``startup=0``, so that both march the same plain Crank-Nicolson steps and the
+    final fields differ by the solver's tolerance only.
+``superlu``
+    what a user would write with scipy: the same matrices (assembled by
+    hatkernels, Dirichlet rows removed), ``splu`` of ``M + dt/2 K`` once (column
+    ordering ``--ordering``, default ``MMD_AT_PLUS_A``, the better of SuperLU's
+    orderings for these symmetric matrices: about 40 % less fill than its
+    default ``COLAMD`` and half the solve time at 10^5 unknowns), then per step
+    ``u = lu.solve((M - dt/2 K) @ u)``.
+
+Per step: the median wall time over the steps after the first (which has no
+previous step to start from), and the same in work units (WU: one product with the
+assembled ``M + dt/2 K`` by the library's parallel CSR kernel, measured in the
+same process).  Also: setup times (assembly; preconditioner or factorisation),
+iterations, peak resident memory above the process's baseline (after a small
+warm-up march) per point, the largest difference between the two final fields
+relative to their maximum, the machine's copy bandwidth and the load average
+around each run (other processes on the two cores slow every parallel region:
+compare runs made on a quiet machine).  A size whose factorisation is predicted
+not to fit in memory (``--memory-gb``, from the fill per unknown measured at the
+previous size) is skipped for ``superlu`` and recorded as such.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import time
+
+
+def _problem(n, dim):
+    import numpy as np
+
+    from hatkernels.mesh import cuboid, rectangle
+
+    mesh = rectangle(n, n) if dim == 2 else cuboid(n, n, n)
+    u0 = np.prod(np.sin(np.pi * mesh.points), axis=1)
+    return mesh, u0
+
+
+def worker(args):
+    import numpy as np
+
+    from hatkernels.perf import PeakMemory
+    from hatkernels.transient import solve_transient
+
+    small, u_small = _problem(8, args.dim)
+    solve_transient(small, u_small, [0.01], dt=0.001)  # the kernels loaded first
+    mesh, u0 = _problem(args.n, args.dim)
+    dt, steps = args.dt, args.steps
+    rec = {"method": args.method, "dim": args.dim, "n": args.n, "points": mesh.n_points,
+           "dt": dt, "steps": steps}
+    peak = PeakMemory("rss")
+    if args.method == "hatkernels":
+        t = time.perf_counter()
+        with peak:
+            sol = solve_transient(mesh, u0, [steps * dt], dt=dt, startup=0)
+        s = sol.stats
+        later = slice(1, None)
+        rec.update(total_s=time.perf_counter() - t, unknowns=s.unknowns, nnz=s.nnz,
+                   assemble_s=s.timings["assemble"], setup_s=s.timings["setup"],
+                   product_s=s.product_seconds,
+                   step_s=float(np.median(s.step_seconds[later])),
+                   step_wu=float(np.median(s.work_units[later])),
+                   iterations=s.iterations.tolist(), rtol=s.rtol,
+                   preconditioner=s.preconditioner, converged=s.converged, threads=s.threads)
+        u = sol.u[-1]
+    else:
+        import scipy.sparse.linalg as sla
+
+        from hatkernels.assembly import StiffnessAssembler
+        from hatkernels.boundary import apply_dirichlet
+        from hatkernels.transient_steps import measure_product
+
+        with peak:
+            t = time.perf_counter()
+            assembler = StiffnessAssembler(mesh)
+            K = assembler.assemble()
+            M = assembler.assemble_mass()
+            held = mesh.boundary_points()
+            A = apply_dirichlet(M + 0.5 * dt * K, np.zeros(mesh.n_points), held)
+            B = (M - 0.5 * dt * K).tocsr()[A.free][:, A.free]  # not definite: scipy slices
+            del K, M
+            assemble = time.perf_counter() - t
+            product = measure_product(A.A)
+            t = time.perf_counter()
+            lu = sla.splu(A.A.tocsc(), permc_spec=args.ordering)
+            factor = time.perf_counter() - t
+            x = u0[A.free]
+            times = []
+            for _ in range(steps):
+                t = time.perf_counter()
+                x = lu.solve(B @ x)
+                times.append(time.perf_counter() - t)
+        later = times[1:]
+        rec.update(unknowns=int(A.A.shape[0]), nnz=int(A.A.nnz), assemble_s=assemble,
+                   setup_s=factor, product_s=product, step_s=float(np.median(later)),
+                   step_wu=float(np.median(later)) / product, ordering=args.ordering,
+                   fill_per_unknown=(lu.L.nnz + lu.U.nnz) / A.A.shape[0])
+        u = A.expand(x)
+    rec.update(peak_bytes=peak.peak, bytes_per_point=peak.peak / mesh.n_points,
+               u_max=float(u.max()))
+    np.save(args.field, u)
+    print(json.dumps(rec), flush=True)
+
+
+def _run(method, n, args, field, ordering):
+    cmd = [sys.executable, os.path.abspath(__file__), "--worker", "--method", method,
+           "--n", str(n), "--dim", str(args.dim), "--dt", str(args.dt), "--steps",
+           str(args.steps), "--ordering", ordering, "--field", field]
+    load = os.getloadavg()[0]
+    # OpenBLAS's threads (the dense coarsest solves) would compete with numba's
+    # (DEVELOPERS.md, Benchmarks); SuperLU does not use them
+    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1"}
+    out = subprocess.run(cmd, capture_output=True, text=True, check=True, env=env).stdout
+    rec = json.loads(out.strip().splitlines()[-1])
+    rec["load_average_before_after"] = [load, os.getloadavg()[0]]
+    return rec
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
+    ap.add_argument("--method", default="hatkernels", help=argparse.SUPPRESS)
+    ap.add_argument("--n", type=int, default=100, help=argparse.SUPPRESS)
+    ap.add_argument("--field", help=argparse.SUPPRESS)
+    ap.add_argument("--ordering", default="COLAMD", help=argparse.SUPPRESS)
+    ap.add_argument("--dim", type=int, choices=(2, 3), default=2)
+    ap.add_argument("--sizes", type=int, nargs="+", default=[316, 1000],
+                    help="cells per side: rectangle(n, n), or cuboid(n, n, n) with --dim 3")
+    ap.add_argument("--dt", type=float, default=1e-3)
+    ap.add_argument("--steps", type=int, default=20)
+    ap.add_argument("--orderings", nargs="+", default=["COLAMD", "MMD_AT_PLUS_A"],
+                    help="SuperLU column orderings (permc_spec) of the baseline; COLAMD is "
+                         "scipy's default")
+    ap.add_argument("--memory-gb", type=float, default=16.0,
+                    help="skip a baseline whose factor is predicted to exceed this")
+    ap.add_argument("--out")
+    args = ap.parse_args()
+    if args.worker:
+        worker(args)
+        return
+    import numpy as np
+
+    from hatkernels.perf import memory_bandwidth
+
+    records = []
+    fill = {}
+    machine = {"bandwidth_GBs": memory_bandwidth(), "cpus": os.cpu_count()}
+    for n in args.sizes:
+        points = (n + 1) ** args.dim
+        field = f"/tmp/transient-bench-{os.getpid()}.npy"
+        ours = _run("hatkernels", n, args, field, "")
+        ours_u = np.load(field)
+        records.append(ours)
+        print(f"{args.dim}-D n={n} hatkernels: {points:,} points, step "
+              f"{ours['step_s'] * 1e3:.1f} ms = {ours['step_wu']:.1f} WU "
+              f"({np.mean(ours['iterations'][1:]):.1f} iterations), setup "
+              f"{ours['setup_s']:.2f} s, {ours['bytes_per_point']:.0f} B/point", flush=True)
+        for ordering in args.orderings:
+            if ordering in fill:  # factor + solve work arrays, with fill growing
+                predicted = fill[ordering] * 1.3 * points * 12 * 2 / 2**30
+                if predicted > args.memory_gb:
+                    records.append({"method": "superlu", "ordering": ordering, "dim": args.dim,
+                                    "n": n, "points": points,
+                                    "skipped": f"factor predicted {predicted:.1f} GiB"})
+                    print(f"  superlu {ordering}: skipped (predicted {predicted:.1f} GiB)",
+                          flush=True)
+                    continue
+            rec = _run("superlu", n, args, field, ordering)
+            base_u = np.load(field)
+            fill[ordering] = rec["fill_per_unknown"]
+            rec["speedup_per_step"] = rec["step_s"] / ours["step_s"]
+            rec["relative_difference"] = float(np.abs(ours_u - base_u).max()
+                                               / np.abs(base_u).max())
+            records.append(rec)
+            print(f"  superlu {ordering}: step {rec['step_s'] * 1e3:.1f} ms = "
+                  f"{rec['step_wu']:.1f} WU, factor {rec['setup_s']:.1f} s, "
+                  f"{rec['bytes_per_point']:.0f} B/point; hatkernels is "
+                  f"{rec['speedup_per_step']:.1f}x faster per step, fields differ by "
+                  f"{rec['relative_difference']:.1e}", flush=True)
+        os.unlink(field)
+    if args.out:
+        with open(args.out, "w", encoding="utf-8") as f:
+            json.dump({"machine": machine, "dim": args.dim, "dt": args.dt,
+                       "steps": args.steps, "records": records}, f, indent=2)
+
+
+if __name__ == "__main__":
+    main()
