@@ -26,7 +26,7 @@ oscillating part, which hardly affects the eigenvalue: on the unit square
 the relative residual was still 0.4.  Eigenvalues of a symmetric pencil
 computed by Rayleigh-Ritz only decrease from one iteration to the next, so
 the changes of the Ritz values measure what is left: with ``c_j`` the last
-change and ``q = c_j / c_(j-1)`` (held in ``[0.1, 0.9]``) the remaining
+change and ``q = c_j / c_(j-1)`` (held in ``[0.25, 0.9]``) the remaining
 error is about ``c_j q / (1 - q)``.  Only the ``k`` wanted values are
 judged: the extra vectors of the block need not converge (a multiple
 eigenvalue split by the end of the block would never let them).
@@ -55,7 +55,7 @@ __all__ = ["Level", "build_level", "coarser", "prolong", "shift_invert", "run_lo
 DENSE_LIMIT = 600
 
 # the contraction factor assumed per iteration when the history cannot tell it
-Q_MIN, Q_MAX = 0.1, 0.9
+Q_MIN, Q_MAX = 0.25, 0.9
 # a tolerance scipy's lobpcg never reaches: the driver decides when to stop
 _NEVER = 1e-300
 
@@ -303,7 +303,7 @@ def run_lobpcg(blocks, X, Y, *, k, rtol, first, maxiter):
     ``Y`` (n_free, z) or None: constraints (the zero modes), kept M-orthogonal
     to the block.  ``X`` is overwritten.  Between chunks only the block is
     carried over (lobpcg restarts without its search directions); the next
-    chunk is as long as the last contraction factor predicts, at least 2.
+    chunk is as long as the last contraction factor predicts.
     """
     history = []
     done = 0
@@ -344,7 +344,7 @@ def run_lobpcg(blocks, X, Y, *, k, rtol, first, maxiter):
 
 
 def _predicted(history, k, errors, rtol):
-    """Iterations the worst wanted value needs at its last contraction factor (>= 2)."""
+    """Iterations the worst wanted value needs at its last contraction factor (>= 1)."""
     L = np.asarray(history)[:, :k]
     q = Q_MAX
     if len(L) >= 3:
@@ -353,7 +353,7 @@ def _predicted(history, k, errors, rtol):
         if c[-2, worst] > 0:
             q = float(np.clip(c[-1, worst] / c[-2, worst], Q_MIN, Q_MAX))
     need = math.log(rtol / float(np.max(errors))) / math.log(q)
-    return max(2, math.ceil(need) + 1)
+    return max(1, math.ceil(need))
 
 
 def check_block(level, m, z):
