@@ -284,7 +284,7 @@ def input_status(mesh, options):
     asks for refinement)``.
     """
     if mesh is None:
-        given = ("none",)
+        given = ("no mesh",)
     elif isinstance(mesh, Mesh):
         given = ("mesh", int(mesh.n_points), int(mesh.n_cells), int(mesh.dim),
                  float(mesh.points.sum()), int(mesh.cells.sum(dtype=np.int64)))
