@@ -118,7 +118,15 @@ def worker(args):
     print(json.dumps(rec), flush=True)
 
 
+def _wait_for_quiet(limit, most=1800):
+    """Wait (up to ``most`` seconds) until the 1-minute load average is below ``limit``."""
+    start = time.time()
+    while limit is not None and os.getloadavg()[0] >= limit and time.time() - start < most:
+        time.sleep(15)
+
+
 def _run(method, n, args, field, ordering):
+    _wait_for_quiet(args.quiet_load)
     cmd = [sys.executable, os.path.abspath(__file__), "--worker", "--method", method,
            "--n", str(n), "--dim", str(args.dim), "--dt", str(args.dt), "--steps",
            str(args.steps), "--ordering", ordering, "--field", field]
@@ -149,6 +157,9 @@ def main():
                          "scipy's default")
     ap.add_argument("--memory-gb", type=float, default=16.0,
                     help="skip a baseline whose factor is predicted to exceed this")
+    ap.add_argument("--quiet-load", type=float,
+                    help="before each run, wait (at most 30 min) for the 1-minute load "
+                         "average to fall below this")
     ap.add_argument("--out")
     args = ap.parse_args()
     if args.worker:

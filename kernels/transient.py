@@ -49,6 +49,7 @@ from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.krylov import _check_scalars
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.poisson import refined
+from hatkernels.precond import capabilities
 from hatkernels.transient_data import (
     Clock,
     TimeData,
@@ -67,6 +68,10 @@ __all__ = ["SCHEMES", "EnergyBalance", "TransientSolution", "TransientStats", "i
 
 #: The schemes by name, and their theta.
 SCHEMES = {"backward-euler": 1.0, "crank-nicolson": 0.5}
+
+#: Systems (matrix and preconditioner, one per step size) kept at a time: the scheme's own,
+#: and room for an odd output interval; older ones are rebuilt if needed again.
+KEEP_SYSTEMS = 2
 
 #: The most steps a solve takes (more is taken for a mistaken ``dt`` or ``times``).
 MAX_STEPS = 10**7
@@ -188,6 +193,8 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     if not isinstance(preconditioner, str):
         raise InputError(f"preconditioner must be a name (built once per step size), got "
                          f"{type(preconditioner).__name__}")
+    capabilities(preconditioner)  # an unknown name is refused before any assembly
+    schedule = _schedule(times, dt, theta, startup)
     clock = Clock(0.0)
     fb, gb, hb, rb, timed = bind(clock, mesh.dim, f=f, dirichlet=dirichlet, neumann=neumann,
                                  robin=robin, coefficient=coefficient, reaction=reaction,
@@ -202,7 +209,6 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     blocks = Blocks(problem, lumped)
     timings = {"assemble": time.perf_counter() - t, "setup": 0.0}
     rtol, atol, maxiter = _check_scalars(rtol, atol, maxiter, max(blocks.unknowns, 1), None)
-    schedule = _schedule(times, dt, theta, startup)
     run = _Run(problem, blocks, data, theta, preconditioner, preconditioner_options,
                timings)
     out = run.march(u0, times, schedule, located, rtol, atol, maxiter, check)
@@ -217,7 +223,7 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
         product_seconds=run.product_seconds, converged=failed == 0, failed_steps=failed,
         timings=timings, unknowns=blocks.unknowns, nnz=run.nnz,
         stored_bytes=blocks.stored_bytes + sum(s.stored_bytes for s in run.systems.values()),
-        preconditioner=run.description, systems=len(run.systems), scheme=label,
+        preconditioner=run.description, systems=run.built, scheme=label,
         rtol=rtol, peak_rss_bytes=peak_rss_bytes(), threads=numba.get_num_threads(),
         message=run.message or f"{len(schedule)} steps converged")
     if failed and not check:
@@ -236,7 +242,9 @@ class _Run:
         self.problem, self.blocks, self.data, self.theta = problem, blocks, data, theta
         self.preconditioner, self.options, self.timings = preconditioner, options, timings
         self.context = context_of(problem)
-        self.systems = {}
+        self.systems = {}  # by tau, least recently used first
+        self.built = 0
+        self._unit = None
         self.product_seconds = math.nan
         self.nnz = 0
         self.description = ""
@@ -244,20 +252,26 @@ class _Run:
         self.message = ""
 
     def system(self, tau, dt):
+        """The system of ``tau`` (built, with its preconditioner, on first use); the most
+        recently used :data:`KEEP_SYSTEMS` are kept."""
         key = float(f"{tau:.12g}")  # equal steps cut from an interval differ in the last bits
-        s = self.systems.get(key)
+        s = self.systems.pop(key, None)
         if s is None:
             start = time.perf_counter()
             s = System(self.blocks, tau, dt)
             built = time.perf_counter() - start
-            if not self.systems:  # the work unit, before a preconditioner's threads run
+            if self._unit is None:  # the work unit, before a preconditioner's threads run
+                self._unit = s.A
                 self.product_seconds = measure_product(s.A)
             start = time.perf_counter()
             s.precondition(self.preconditioner, self.context, self.options)
             self.timings["setup"] += built + time.perf_counter() - start
-            if not self.systems:
+            if not self.built:
                 self.nnz, self.description = int(s.A.nnz), s.description
-            self.systems[key] = s
+            self.built += 1
+            if len(self.systems) >= KEEP_SYSTEMS:
+                self.systems.pop(next(iter(self.systems)))  # the least recently used
+        self.systems[key] = s  # last: the most recently used
         return s
 
     def march(self, u0, times, schedule, probes, rtol, atol, maxiter, check):
@@ -313,8 +327,9 @@ class _Run:
                     c[coupling[0]] -= coupling[1]
                 c_dt = system.dt * c
                 last = (system, theta)
-            system.rhs(x, c_dt, h / system.dt, dD, rhs)
-            x0 = None if prev is None else prev if h == h_prev else prev * (h / h_prev)
+            system.rhs(x, c_dt, _ratio(h, system.dt), dD, rhs)
+            x0 = None if prev is None else prev * _ratio(h, h_prev) if _ratio(h, h_prev) != 1 \
+                else prev
             result = system.solve(rhs, x0, rtol, atol, maxiter)
             d = result.x
             self.iterations[i] = result.iterations
@@ -346,8 +361,7 @@ class _Run:
         if not self.systems:  # no step at all (times == [0])
             self.description = "none (no step)"
         else:  # measured again: a product slowed by another process must not set the unit
-            first = next(iter(self.systems.values()))
-            self.product_seconds = min(self.product_seconds, measure_product(first.A))
+            self.product_seconds = min(self.product_seconds, measure_product(self._unit))
         return out
 
     def _account(self, k, x, d, uD, dD, h, theta, b_old, b_new, tot_old, tot_new):
@@ -367,6 +381,13 @@ class _Run:
         starts = np.concatenate([[0.0], times[:-1]])
         return EnergyBalance(start=starts, end=times.copy(),
                              stored=np.diff(self.stored_at), **self.accounts)
+
+
+def _ratio(h, reference):
+    """``h / reference``, exactly 1 when they agree to 1e-12 (steps cut from one interval
+    differ in the last bits: no rescaling pass for that)."""
+    r = h / reference
+    return 1.0 if abs(r - 1.0) <= 1e-12 else r
 
 
 class _ProbeGather:

@@ -45,7 +45,8 @@ class TransientStats:
         The matrices and preconditioners held.
     preconditioner : str
     systems : int
-        Step sizes for which a system was built.
+        Systems built (one per step size; at most two are kept at a time, so a size
+        needed again after two others is built again).
     scheme : str
     rtol : float
     peak_rss_bytes, threads : int

@@ -186,7 +186,7 @@ class System:
         """``out = scale (c_dt - dt K_FF x) - (M + tau K)_FD dD`` (``c_dt`` is ``dt`` times
         the free rows of ``b_theta - K_FD u_D^n``)."""
         _k.residual(*self.K_dt, x, c_dt, out)
-        if scale != 1.0:
+        if scale != 1.0:  # a half step of the start-up
             out *= scale
         if self.lift is not None and np.any(dD):
             rows, sub = self.lift

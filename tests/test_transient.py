@@ -296,6 +296,14 @@ def test_step_sizes_share_systems_and_refine_numbers_like_mesh_refine():
     assert sol.stats.systems == 1 and sol.u.shape == (2, m.refine().n_points)
     sol = solve_transient(m, 1.0, [0.1, 0.17], dt=0.05, scheme="backward-euler")
     assert sol.stats.systems == 2  # 0.07 = 2 steps of 0.035
+    # three step sizes, two systems kept at a time: the third interval's is built anew,
+    # and u = 2 t + x - y (f = 2) is still met exactly (common practice, no source)
+    exact = lambda x, y, t: 2.0 * t + x - y  # noqa: E731
+    sol = solve_transient(m, lambda x, y: x - y, [0.1, 0.17, 0.3, 0.4], dt=0.05, f=2.0,
+                          dirichlet=in_time(exact), scheme="backward-euler", rtol=1e-12)
+    assert sol.stats.systems == 4  # 0.05, 0.035, 0.065, then 0.05 again
+    for row, t in zip(sol.u, sol.times, strict=True):
+        assert np.abs(row - exact(*m.points.T, t)).max() < 1e-10
 
 
 @two_threads
