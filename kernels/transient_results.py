@@ -88,7 +88,8 @@ class TransientStats:
                 "iterations_mean": pick(it, np.mean), "iterations_max": int(pick(it, np.max)),
                 "step_seconds_median": pick(self.step_seconds, np.median),
                 "work_units_median": pick(wu, np.median),
-                "product_seconds": self.product_seconds, "converged": self.converged,
+                "product_seconds": (self.product_seconds if np.isfinite(self.product_seconds)
+                                    else None), "converged": self.converged,
                 "failed_steps": self.failed_steps, "unknowns": self.unknowns, "nnz": self.nnz,
                 "stored_bytes": self.stored_bytes, "preconditioner": self.preconditioner,
                 "systems": self.systems, "timings": dict(self.timings),
