@@ -119,15 +119,16 @@ def level_operators_matrix_free_or_assembled(comm):
     free = _same_as_serial(comm, rectangle(4, 3), 2, 1.0, coefficient=T)
     _same_as_serial(comm, ball(2), 1, 1.0, coefficient=lambda x, y, z: 1.0 + x * x)
     # the assembled levels: the same rows, so the same iterations and solution
-    asm = distributed.solve_poisson(rectangle(4, 3), 1.0, refine=2, preconditioner="gmg",
-                                    rtol=1e-12, comm=comm, coefficient=T, matrix_free=False)
+    assembled = distributed.solve_poisson(rectangle(4, 3), 1.0, refine=2,
+                                          preconditioner="gmg", rtol=1e-12, comm=comm,
+                                          coefficient=T, matrix_free=False)
     assert "level operators matrix-free (geometry)" in free.stats.preconditioner
-    assert "level operators assembled" in asm.stats.preconditioner
-    assert free.stats.iterations == asm.stats.iterations
-    assert np.abs(free.u - asm.u).max() < 1e-12 * np.abs(asm.u).max()
+    assert "level operators assembled" in assembled.stats.preconditioner
+    assert free.stats.iterations == assembled.stats.iterations
+    assert np.abs(free.u - assembled.u).max() < 1e-12 * np.abs(assembled.u).max()
     assert free.stats.matrix_free and free.stats.nnz == 0  # nothing stored for the CG
-    assert not asm.stats.matrix_free and asm.stats.nnz > 0
-    assert free.stats.stored_bytes < asm.stats.stored_bytes / 2  # no stored rows
+    assert not assembled.stats.matrix_free and assembled.stats.nnz > 0
+    assert free.stats.stored_bytes < assembled.stats.stored_bytes / 2  # no stored rows
 
 
 @check

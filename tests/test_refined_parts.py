@@ -295,8 +295,8 @@ def test_the_bound_is_the_assembled_rows_not_the_element_entries():
 
 def test_assembled_rows_and_the_fallback():
     part, fixed, coef = next(iter(_level_parts("disk", "callable")))
-    asm = level_operator(part, coef, fixed, _Filled(), matrix_free=False)
-    assert isinstance(asm, AssembledRows) and asm.kind == "assembled"
+    assembled = level_operator(part, coef, fixed, _Filled(), matrix_free=False)
+    assert isinstance(assembled, AssembledRows) and assembled.kind == "assembled"
     # a point in 70 cells, one cell per block: more than 64 colours, so the rows are
     # assembled, and the description says why
     angles = np.linspace(0.0, 2 * np.pi, 71)[:-1]

@@ -34,7 +34,7 @@ from hatkernels import io as kio
 from hatkernels import plot, scenarios
 from hatkernels._text import format_seconds
 from hatkernels.cli.common import base_record, not_installed, versions
-from hatkernels.cli.summary import CELL, CELLS, _component, _run_record, solve_report
+from hatkernels.cli.summary import CELLS, _run_record, problem_record, solve_report
 from hatkernels.distributed import solve_poisson, write_pvtu
 from hatkernels.distributed.launch import mpi
 from hatkernels.errors import InputError
@@ -192,16 +192,7 @@ def summary_record(args, p, sol, comm, timings, kernels_seconds, command, peak):
     dim = p.coarse.dim
     summary = base_record(command)
     summary["caution"] = CAUTION
-    summary["problem"] = {
-        "name": problem.name,
-        "statement": problem.statement,
-        "conductivity": float(problem.conductivity),
-        "source": (float(problem.source) if problem.source is not None
-                   else f"per {CELL[dim]}, from the components"),
-        "dirichlet_value": problem.dirichlet,
-        "thickness": problem.thickness,
-        "components": [_component(c) for c in problem.components],
-    }
+    summary["problem"] = problem_record(problem, dim)
     summary["units"] = {
         "length": "m" if problem.power_unit else "mesh units",
         "solution": problem.unit or "solution units",

@@ -17,6 +17,7 @@ from hatkernels.perf import peak_rss_bytes
 from hatkernels.scenarios import CAUTION
 
 __all__ = [
+    "problem_record",
     "solve_figures",
     "distributed_figures",
     "solve_summary",
@@ -156,16 +157,7 @@ def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command
     mesh = problem.mesh
     summary = base_record(command)
     summary["caution"] = CAUTION
-    summary["problem"] = {
-        "name": problem.name,
-        "statement": problem.statement,
-        "conductivity": float(problem.conductivity),
-        "source": (float(problem.source) if np.ndim(problem.source) == 0
-                   else f"per {CELL[mesh.dim]}, from the {'components' if mesh.dim == 2 else 'heat sources'}"),
-        "dirichlet_value": problem.dirichlet,
-        "thickness": problem.thickness,
-        "components": [_component(c) for c in problem.components],
-    }
+    summary["problem"] = problem_record(problem, mesh.dim)
     if problem.cooling is not None:
         c = problem.cooling
         summary["problem"]["cooling"] = {"where": c.where, "film": c.film, "coolant": c.coolant,
@@ -185,6 +177,22 @@ def solve_summary(args, problem, sol, balance, timings, kernels_seconds, command
     summary["peak_rss_bytes"] = max(peak_bytes or 0, peak_rss_bytes())
     summary["versions"] = versions()
     return summary
+
+
+def problem_record(problem, dim):
+    """A scenario's problem for the record: statement, conductivity, source, held value,
+    thickness, components (a per-cell source is described, not listed)."""
+    per_cell = problem.source is None or np.ndim(problem.source) != 0
+    return {
+        "name": problem.name,
+        "statement": problem.statement,
+        "conductivity": float(problem.conductivity),
+        "source": (f"per {CELL[dim]}, from the {'components' if dim == 2 else 'heat sources'}"
+                   if per_cell else float(problem.source)),
+        "dirichlet_value": problem.dirichlet,
+        "thickness": problem.thickness,
+        "components": [_component(c) for c in problem.components],
+    }
 
 
 def _mesh_record(mesh, description):
