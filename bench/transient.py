@@ -27,9 +27,10 @@ iterations, peak resident memory above the process's baseline (after a small
 warm-up march) per point, the largest difference between the two final fields
 relative to their maximum, the machine's copy bandwidth and the load average
 around each run (other processes on the two cores slow every parallel region:
-compare runs made on a quiet machine).  A size whose factorisation is predicted
-not to fit in memory (``--memory-gb``, from the fill per unknown measured at the
-previous size) is skipped for ``superlu`` and recorded as such.
+compare runs made on a quiet machine; ``--quiet-load`` waits for one).  A size whose
+factorisation is predicted not to fit in memory (``--memory-gb``: the peak per point
+measured at the previous size, times 1.2) is skipped for ``superlu`` and recorded as
+such.
 """
 
 from __future__ import annotations
@@ -183,8 +184,8 @@ def main():
               f"({np.mean(ours['iterations'][1:]):.1f} iterations), setup "
               f"{ours['setup_s']:.2f} s, {ours['bytes_per_point']:.0f} B/point", flush=True)
         for ordering in args.orderings:
-            if ordering in fill:  # factor + solve work arrays, with fill growing
-                predicted = fill[ordering] * 1.3 * points * 12 * 2 / 2**30
+            if ordering in fill:  # the peak per point measured at the last size, grown
+                predicted = fill[ordering] * 1.2 * points / 2**30
                 if predicted > args.memory_gb:
                     records.append({"method": "superlu", "ordering": ordering, "dim": args.dim,
                                     "n": n, "points": points,
@@ -194,7 +195,7 @@ def main():
                     continue
             rec = _run("superlu", n, args, field, ordering)
             base_u = np.load(field)
-            fill[ordering] = rec["fill_per_unknown"]
+            fill[ordering] = rec["bytes_per_point"]
             rec["speedup_per_step"] = rec["step_s"] / ours["step_s"]
             rec["relative_difference"] = float(np.abs(ours_u - base_u).max()
                                                / np.abs(base_u).max())
