@@ -79,6 +79,10 @@ class Block:
     width: float = 0.048
     height: float = 0.008
     conductivity: float = 401.0
+    #: pure copper at 300 K, kg/m^3 and J/(kg K) (Incropera and DeWitt, Fundamentals of Heat
+    #: and Mass Transfer, table A.1; values from memory)
+    density: float = 8933.0
+    specific_heat: float = 385.0
     film: float = 5000.0
     coolant: float = 25.0
     cube: float = 0.004  # edge of the coarse mesh's cubes
@@ -183,4 +187,5 @@ def heat_spreader_block(mesh=None, *, refine=None, source=None, conductivity=Non
         statement=statement, cooling=cooling, components=sources, length_scale=1e3,
         length_unit="mm", quantity="temperature", unit="degC", power_unit="W",
         mesh_description=mesh_description or repr(mesh),
+        capacity=block.density * block.specific_heat,
     )

@@ -100,6 +100,10 @@ class HeatSpreader:
     width: float = 0.080
     thickness: float = 0.002
     conductivity: float = 237.0
+    #: pure aluminium at 300 K, kg/m^3 and J/(kg K) (Incropera and DeWitt, Fundamentals of
+    #: Heat and Mass Transfer, table A.1; values from memory)
+    density: float = 2702.0
+    specific_heat: float = 903.0
     coolant: float = 25.0
     components: tuple = (
         Component("processor", 0.020, 0.020, (0.040, 0.045), 15.0),
@@ -161,7 +165,8 @@ class Problem:
     ``cooling`` (a :class:`Cooling`) is the only condition and the rest of the
     boundary is insulated; ``thickness`` (metres) turns the per-volume
     quantities of a plate into watts (None for a solid or a generic problem).
-    ``length_scale`` and ``length_unit`` say how to show coordinates
+    ``capacity`` is the volumetric heat capacity ``rho c`` in J/(m^3 K) (None:
+    a generic problem, capacity 1).  ``length_scale`` and ``length_unit`` say how to show coordinates
     (1e3 and "mm" for the plate), ``quantity`` and ``unit`` name the solution.
     """
 
@@ -180,6 +185,9 @@ class Problem:
     unit: str = ""
     power_unit: str = ""
     mesh_description: str = ""
+    #: volumetric heat capacity rho c (J/(m^3 K)) for transient and modal runs; None for a
+    #: generic problem (capacity 1 in the mesh file's units)
+    capacity: float | None = None
 
     def source_array(self):
         """The source per cell, shape (n_cells,)."""
@@ -302,6 +310,7 @@ def heat_spreader(mesh=None, *, rectangle_cells=None, source=None, conductivity=
         statement=statement, thickness=plate.thickness, components=components,
         length_scale=1e3, length_unit="mm", quantity="temperature", unit="degC",
         power_unit="W", mesh_description=mesh_description or repr(mesh),
+        capacity=plate.density * plate.specific_heat,
     )
 
 

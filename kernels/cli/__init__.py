@@ -37,6 +37,11 @@ from hatkernels import PRECONDITIONERS
 from hatkernels.checks import integer_option, real_option
 from hatkernels.cli import bench, info, solve, verify
 from hatkernels.cli.common import PROG, error
+from hatkernels.cli.options import Parser as _Parser
+from hatkernels.cli.options import UsageError
+from hatkernels.cli.options import converter as _converter
+from hatkernels.cli.options import number as _number
+from hatkernels.cli.options import output as _output
 from hatkernels.cli.outputs import identity as _identity
 from hatkernels.cli.progress import Progress
 from hatkernels.errors import ConvergenceError, InputError
@@ -104,44 +109,6 @@ qualified person against local codes and licensed practice."""
 
 #: ``amg`` names another registered preconditioner: bench leaves it out by default.
 ALIASES = ("amg",)
-
-
-class UsageError(Exception):
-    """Bad command-line usage (exit 2)."""
-
-
-class _Parser(argparse.ArgumentParser):
-    """Usage errors raise instead of exiting; ``limits`` holds the numeric options' bounds."""
-
-    def __init__(self, *args, **kwargs):
-        super().__init__(*args, **kwargs)
-        self.limits = {}
-
-    def error(self, message):
-        raise UsageError(f"{message} (see '{self.prog} --help')")
-
-
-def _converter(kind):
-    what = "an integer" if kind is int else "a number"
-
-    def convert(text):
-        try:
-            return kind(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"not {what}: {text!r}") from None
-
-    convert.__name__ = "integer" if kind is int else "number"
-    return convert
-
-
-def _number(parser, flag, kind, *, group=None, minimum=None, positive=False, **kwargs):
-    """Add a numeric option (to ``group`` of ``parser`` if given); :func:`_check` checks its bounds."""
-    action = (group or parser).add_argument(flag, type=_converter(kind), **kwargs)
-    limits = {"minimum": minimum}
-    if kind is float:
-        limits["positive"] = positive
-    parser.limits[action.dest] = (flag, kind, limits)
-    return action
 
 
 def _check(parser, args):
@@ -279,16 +246,6 @@ def _add_solve(sub, common, names):
     _output(p, "hatkernels-out", later=True)
     p.set_defaults(func=solve.run)
     return p
-
-
-def _output(parser, default, later=False):
-    """--out and --force, the same for every command that writes a directory (``later``: the
-    default is filled after parsing, when no problem file gives one)."""
-    parser.add_argument("--out", default=None if later else default, metavar="DIR",
-                        help=f"output directory, written whole or not at all (default {default}"
-                             f"{'; a problem file may name one' if later else ''})")
-    parser.add_argument("--force", action="store_true",
-                        help="replace an existing output directory written by hatkernels")
 
 
 def _add_verify(sub, common, names):
