@@ -19,6 +19,8 @@ from hatkernels._keylines import dotted
 from hatkernels.errors import InputError
 from hatkernels.meshfiles import mesh_from_arrays, read_mesh_file
 from hatkernels.precond import PRECONDITIONERS
+from hatkernels.transient import MAX_STEPS, SCHEMES
+from hatkernels.transient_probes import locate
 
 __all__ = ["KEYS", "LENGTH_UNITS", "KeyProblem", "Reader"]
 
@@ -26,11 +28,13 @@ __all__ = ["KEYS", "LENGTH_UNITS", "KeyProblem", "Reader"]
 LENGTH_UNITS = {"m": 1.0, "cm": 1e-2, "mm": 1e-3, "um": 1e-6}
 #: The keys each table takes.
 KEYS = {
-    (): ("title", "mesh", "length_unit", "refine", "regions", "boundary", "solver", "output"),
-    ("regions", "*"): ("tags", "conductivity", "source"),
+    (): ("title", "mesh", "length_unit", "refine", "regions", "boundary", "solver", "output",
+         "time"),
+    ("regions", "*"): ("tags", "conductivity", "source", "density", "specific_heat"),
     ("boundary", "*"): ("tags", "held", "flux", "film", "ambient"),
     ("solver",): ("preconditioner", "rtol", "maxiter"),
     ("output",): ("directory",),
+    ("time",): ("end", "step", "outputs", "scheme", "initial", "probes"),
 }
 
 _TYPE_WORDS = ((bool, "a boolean"), (int, "an integer"), (float, "a number"), (str, "a string"),
@@ -101,8 +105,12 @@ class Reader:
                         self.fail((key, name), f"expected a [{key}.NAME] table, one per {what}, "
                                                f"got {_kind(inner)}")
                     self.table(inner, (key, name), KEYS[(key, "*")])
-            elif key in ("solver", "output"):
+            elif key in ("solver", "output", "time"):
                 self.table(value, (key,), KEYS[(key,)])
+        probes = data.get("time", {}).get("probes", {})
+        if not isinstance(probes, dict):
+            self.fail(("time", "probes"), f"expected a [time.probes] table of NAME = [x, y] "
+                                          f"points, got {_kind(probes)}")
         title = None
         if "title" in data:
             title = self.text(data["title"], ("title",), "a title (a string)")
@@ -128,16 +136,29 @@ class Reader:
                                "the output directory (a string)")
         raw_materials = [(name, self.material(t, ("regions", name)))
                          for name, t in data["regions"].items()]
+        time = None
+        if "time" in data:
+            time = self.time(data["time"])
+            for name, (_, _, rho, c) in raw_materials:
+                for value, part, what in ((rho, "density", "kg/m^3"),
+                                          (c, "specific_heat", "J/(kg K)")):
+                    if value is None:
+                        self.fail(("regions", name, part),
+                                  f"missing; with a [time] table every material needs its "
+                                  f"{part} ({what}): the heat capacity rho c = density x "
+                                  f"specific_heat")
         raw_conditions = [(name, self.condition(t, ("boundary", name)))
                           for name, t in data.get("boundary", {}).items()]
         mesh_path = os.path.join(os.path.dirname(os.path.abspath(self.path)), mesh_name)
         mesh = self.mesh(mesh_path, unit, data["regions"])
         materials = self.materials(mesh, raw_materials, data["regions"])
         conditions = self.conditions(mesh, raw_conditions, data.get("boundary", {}))
+        if time is not None:
+            time["probes"] = self.probes(probes, mesh, unit)
         return {"path": self.path, "title": title or os.path.basename(self.path),
                 "mesh_path": mesh_path, "length_unit": unit, "refine": refine, "mesh": mesh,
                 "materials": materials, "conditions": conditions, "solver": solver,
-                "output": output}
+                "output": output, "time": time}
 
     def solver(self, table):
         out = {"preconditioner": None, "rtol": None, "maxiter": None}
@@ -158,7 +179,8 @@ class Reader:
         return out
 
     def material(self, table, key):
-        """(conductivity, source) of one region table, checked but for the tensor's size."""
+        """(conductivity, source, density, specific heat) of one region table, checked but
+        for the tensor's size (density and specific heat None where not given)."""
         if "conductivity" not in table:
             self.fail(key + ("conductivity",), "missing; expected the conductivity in W/(m K)")
         k = table["conductivity"]
@@ -170,7 +192,78 @@ class Reader:
             k = self.number(k, key + ("conductivity",), what, positive=True)
         q = self.number(table.get("source", 0.0), key + ("source",),
                         "a source in W/m^3 (a finite number)")
-        return k, q
+        rho = c = None
+        if "density" in table:
+            rho = self.number(table["density"], key + ("density",),
+                              "a density > 0 in kg/m^3", positive=True)
+        if "specific_heat" in table:
+            c = self.number(table["specific_heat"], key + ("specific_heat",),
+                            "a specific heat > 0 in J/(kg K)", positive=True)
+        return k, q, rho, c
+
+    def time(self, table):
+        """The ``[time]`` table but its probes (checked against the mesh later), as a dict."""
+        key = ("time",)
+        what = {"end": "the end time > 0 in s", "step": "the largest time step > 0 in s",
+                "initial": "the initial temperature in degC (a finite number)"}
+        for name, text in what.items():
+            if name not in table:
+                self.fail(key + (name,), f"missing; expected {text}")
+        end = self.number(table["end"], key + ("end",), what["end"], positive=True)
+        step = self.number(table["step"], key + ("step",), what["step"], positive=True)
+        if end / step > MAX_STEPS:
+            self.fail(key + ("step",), f"end / step = {end / step:.3g} steps, more than "
+                                       f"{MAX_STEPS}; choose a longer step")
+        initial = self.number(table["initial"], key + ("initial",), what["initial"])
+        scheme = table.get("scheme", "crank-nicolson")
+        if not isinstance(scheme, str) or scheme not in SCHEMES:
+            self.fail(key + ("scheme",), f"expected one of {', '.join(map(repr, SCHEMES))}, "
+                                         f"got {_kind(scheme)}")
+        outputs = table.get("outputs", 10)
+        if isinstance(outputs, list):
+            outputs = self.output_times(outputs, end)
+        elif isinstance(outputs, bool) or not isinstance(outputs, int) or outputs < 1:
+            self.fail(key + ("outputs",), f"expected a count of output times (an integer "
+                                          f">= 1) or an array of increasing times in s, got "
+                                          f"{_kind(outputs)}")
+        return {"end": end, "step": step, "outputs": outputs, "scheme": scheme,
+                "initial": initial}
+
+    def output_times(self, values, end):
+        key = ("time", "outputs")
+        if not values:
+            self.fail(key, "expected a count of output times or an array of increasing times "
+                           "in s, got an empty array")
+        times = [self.number(v, key + (k,), "an output time > 0 in s", positive=True)
+                 for k, v in enumerate(values)]
+        for k in range(1, len(times)):
+            if not times[k] > times[k - 1]:
+                self.fail(key + (k,), f"output times must increase: {times[k]:g} s comes after "
+                                      f"{times[k - 1]:g} s")
+        if times[-1] > end:
+            self.fail(key + (len(times) - 1,), f"the output time {times[-1]:g} s is after "
+                                               f"end = {end:g} s")
+        return tuple(times)
+
+    def probes(self, table, mesh, unit):
+        """``((name, point in metres), ...)`` of ``[time.probes]``: each a point of the mesh."""
+        out = []
+        for name, value in table.items():
+            key = ("time", "probes", name)
+            axes = "[x, y]" if mesh.dim == 2 else "[x, y, z]"
+            if not isinstance(value, list) or len(value) != mesh.dim:
+                self.fail(key, f"expected a point {axes} in the mesh's length unit ({unit}), "
+                               f"got {_kind(value)}")
+            x = [self.number(v, key + (k,), "a coordinate (a finite number)")
+                 for k, v in enumerate(value)]
+            point = np.array(x) * LENGTH_UNITS[unit]
+            try:
+                locate(mesh, point[None, :], name=name)
+            except InputError:
+                self.fail(key, f"the point ({', '.join(f'{v:g}' for v in x)}) {unit} is "
+                               f"outside the mesh (in no cell)")
+            out.append((name, tuple(float(v) for v in point)))
+        return tuple(out)
 
     def tensor(self, rows, key, what):
         d = len(rows)
@@ -281,7 +374,7 @@ class Reader:
         tags = mesh.tags
         owner = {}
         out = []
-        for name, (k, q) in raw:
+        for name, (k, q, rho, c) in raw:
             key = ("regions", name)
             mine = self.claim(owner, key, regions[name],
                               lambda item: tags.region_tag(item, what="region"),
@@ -289,7 +382,7 @@ class Reader:
             if np.ndim(k) == 2 and k.shape != (mesh.dim, mesh.dim):
                 self.fail(key + ("conductivity",), f"a {k.shape[0]}x{k.shape[0]} tensor on a "
                           f"{mesh.dim}-D mesh; expected {mesh.dim}x{mesh.dim}")
-            out.append((name, mine, k, q))
+            out.append((name, mine, k, q, rho, c))
         missing = [int(t) for t in tags.region_tags() if int(t) not in owner]
         if missing:
             self.fail(("regions",), f"region {tags.region_label(missing[0])} of the mesh has no "

@@ -17,11 +17,20 @@ insulated.  ``docs/problem-files.md`` describes every key; in short::
     [boundary.clamp]               # a boundary tag's name or number; tags = [..] for several
     held = 20.0                    # degC; or flux = q (W/m^2 into the body);
                                    # or film = h (W/(m^2 K)) with ambient = T (degC)
+    density = 7900.0               # kg/m^3 and J/(kg K): needed with a [time] table
+    specific_heat = 477.0
+
     [solver]                       # optional: preconditioner, rtol, maxiter
     [output]                       # optional: directory
+    [time]                         # optional, a transient problem: end, step, initial
+    end = 600.0                    # (s, s, degC), outputs (a count or times in s), scheme
+    step = 5.0
+    initial = 20.0
+    [time.probes]                  # optional: points recorded every step (length_unit)
+    centre = [70.0, 10.0]
 
 Lengths are scaled to metres when the mesh is read; every other quantity is
-in SI units, temperatures in degC.  A mesh without region tags is one region:
+in SI units, temperatures in degC, times in s.  A mesh without region tags is one region:
 give it one ``[regions.NAME]`` table.
 
 Everything wrong with a file (TOML syntax, an unknown key, a wrong type or
@@ -70,7 +79,7 @@ from hatkernels.errors import InputError
 from hatkernels.poisson import solve_poisson
 
 __all__ = ["CASES", "LENGTH_UNITS", "BoundaryCondition", "Material", "ProblemFile",
-           "ProblemFileError", "case_file", "read_problem"]
+           "ProblemFileError", "TimeSettings", "case_file", "read_problem"]
 
 #: The problem files shipped with the package (in :mod:`hatkernels.cases`), by name.
 CASES = {"heated-insert": "heated-insert.toml"}
@@ -90,12 +99,22 @@ class ProblemFileError(InputError):
 @dataclasses.dataclass(frozen=True)
 class Material:
     """One ``[regions.NAME]`` table: the region tags it covers, conductivity (W/(m K), a float
-    or a (d, d) array) and source (W/m^3)."""
+    or a (d, d) array), source (W/m^3), density (kg/m^3) and specific heat (J/(kg K)); the
+    last two None where the file does not give them."""
 
     name: str
     tags: tuple
     conductivity: object
     source: float
+    density: float | None = None
+    specific_heat: float | None = None
+
+    @property
+    def capacity(self):
+        """The volumetric heat capacity ``density x specific_heat`` (J/(m^3 K)), or None."""
+        if self.density is None or self.specific_heat is None:
+            return None
+        return self.density * self.specific_heat
 
     def describe(self):
         k = self.conductivity
@@ -123,6 +142,44 @@ class BoundaryCondition:
 
 
 @dataclasses.dataclass(frozen=True)
+class TimeSettings:
+    """The ``[time]`` table: march from ``initial`` (degC, everywhere) at t = 0 to ``end``
+    (s) in steps of at most ``step`` (s) by ``scheme`` (a key of
+    :data:`hatkernels.transient.SCHEMES`).
+
+    ``outputs`` is a count (that many evenly spaced output times) or a tuple of
+    increasing times in s; ``probes`` holds ``(name, point)`` pairs, the points in
+    metres (the file gives them in its ``length_unit``).
+    """
+
+    end: float
+    step: float
+    initial: float
+    outputs: int | tuple = 10
+    scheme: str = "crank-nicolson"
+    probes: tuple = ()
+
+    def output_times(self):
+        """The output times after t = 0, in s: ``outputs`` evenly spaced ones ending at
+        ``end``, or the given times with ``end`` added when they stop before it.
+
+        >>> TimeSettings(end=60.0, step=1.0, initial=20.0, outputs=3).output_times().tolist()
+        [20.0, 40.0, 60.0]
+        >>> TimeSettings(60.0, 1.0, 20.0, outputs=(5.0, 30.0)).output_times().tolist()
+        [5.0, 30.0, 60.0]
+        """
+        if isinstance(self.outputs, tuple):
+            times = list(self.outputs)
+            if times[-1] < self.end:
+                times.append(self.end)
+            return np.array(times, dtype=np.float64)
+        n = int(self.outputs)
+        times = self.end * np.arange(1, n + 1) / n
+        times[-1] = self.end  # exactly
+        return times
+
+
+@dataclasses.dataclass(frozen=True)
 class ProblemFile:
     """A checked problem file.
 
@@ -131,7 +188,8 @@ class ProblemFile:
     (one region named after the only material when the file's mesh had
     none); ``materials`` and ``conditions`` in the file's order;
     ``solver`` holds ``preconditioner``, ``rtol`` and ``maxiter`` (None where
-    the file is silent); ``output`` the output directory or None.
+    the file is silent); ``output`` the output directory or None; ``time`` the
+    ``[time]`` table (a :class:`TimeSettings`), or None for a steady problem.
     """
 
     path: str
@@ -144,6 +202,7 @@ class ProblemFile:
     conditions: tuple
     solver: dict
     output: str | None
+    time: TimeSettings | None = None
 
     @property
     def scale(self):
@@ -163,6 +222,27 @@ class ProblemFile:
         for m in self.materials:
             q[np.isin(mesh.regions, m.tags)] = m.source
         return q
+
+    def capacity_per_cell(self, mesh=None):
+        """The volumetric heat capacity ``density x specific_heat`` (J/(m^3 K)) of each cell
+        of ``mesh`` (default: the file's; a refinement of it carries the regions).
+
+        Raises
+        ------
+        InputError
+            A material without a density or a specific heat (naming its region table).
+        """
+        mesh = self.mesh if mesh is None else mesh
+        c = np.zeros(mesh.n_cells)
+        for m in self.materials:
+            if m.capacity is None:
+                missing = " and ".join(k for k in ("density", "specific_heat")
+                                       if getattr(m, k) is None)
+                raise InputError(f"{self.path}: [regions.{dotted((m.name,))}] has no {missing}: "
+                                 f"the heat capacity rho c needs density (kg/m^3) and "
+                                 f"specific_heat (J/(kg K))")
+            c[np.isin(mesh.regions, m.tags)] = m.capacity
+        return c
 
     def solve_arguments(self):
         """The problem as keyword arguments of :func:`hatkernels.solve_poisson`, by tag."""
@@ -242,4 +322,6 @@ def read_problem(path):
                                exc.message) from None
     fields["materials"] = tuple(Material(*m) for m in fields["materials"])
     fields["conditions"] = tuple(BoundaryCondition(*c) for c in fields["conditions"])
+    if fields["time"] is not None:
+        fields["time"] = TimeSettings(**fields["time"])
     return ProblemFile(**fields)
