@@ -20,8 +20,12 @@ lobpcg
     :mod:`hatkernels.eigensolvers` for the estimate).  Without a refinement
     history the block starts random (fixed seed).
 
-A connected part of the mesh that no held point touches (a Neumann part)
-has the eigenvalue 0 with the constant on that part as eigenvector; these
+Sides cooled by convection (``robin``, ``kappa du/dn + r u = 0``) add the
+boundary mass of ``r`` to ``K`` (:mod:`hatkernels.eigenrobin`).
+
+A connected part of the mesh that neither a held point nor a side with
+``r > 0`` touches (a Neumann part) has the eigenvalue 0 with the constant
+on that part as eigenvector; these
 *zero modes* are computed exactly, not iterated: they are reported with the
 value 0.0 and flagged in :attr:`Eigenmodes.zero_modes`, and the other modes
 are kept M-orthogonal to them (lobpcg's constraints), so that ``K``'s
@@ -39,6 +43,7 @@ import time
 import numba
 import numpy as np
 
+from hatkernels import eigenrobin as _er
 from hatkernels import eigensolvers as _es
 from hatkernels._jit import sparse as _k
 from hatkernels.checks import integer_option, real_option
@@ -197,9 +202,9 @@ def _checked(mesh, k, method, rtol, maxiter, extra, seed, preconditioner, quadra
     return k, rtol, maxiter, extra, seed
 
 
-def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, method="auto",
-               rtol=1e-8, maxiter=100, extra=None, preconditioner=None, seed=0, quadrature=2,
-               **preconditioner_options):
+def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, robin=None,
+               method="auto", rtol=1e-8, maxiter=100, extra=None, preconditioner=None, seed=0,
+               quadrature=2, **preconditioner_options):
     """The ``k`` smallest eigenpairs of ``-div(kappa grad u) = lambda rho u`` (P1).
 
     Parameters
@@ -219,9 +224,19 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, met
         default) or "boundary" for the whole boundary; point indices; sides
         ((j, 2) edges, (j, 3) faces); boundary tag names or
         :func:`hatkernels.conditions.tagged` tags.  The rest of the boundary
-        is natural (``kappa du/dn = 0``).  ``dirichlet_on=()`` holds
-        nothing: the pure Neumann problem, whose eigenvalue 0 is reported as
-        a zero mode.
+        is natural (``kappa du/dn = 0``) where ``robin`` does not say
+        otherwise.  ``dirichlet_on=()`` holds nothing: the pure Neumann
+        problem, whose eigenvalue 0 is reported as a zero mode.  With
+        ``robin`` given, None holds nothing either (as in ``solve_poisson``).
+    robin : optional
+        ``kappa du/dn + r u = 0`` on some sides, in every form
+        :func:`hatkernels.solve_poisson` takes: ``(r, s)`` on every boundary
+        side not held, ``(sides, r, s)``, or ``{tag: (r, s)}``; ``r >= 0`` a
+        number, per point, per side or callable.  Only ``r`` enters the
+        eigenproblem (``(K + R) x = lambda M x``); ``s`` is checked and
+        ignored: it moves the steady state, and a disturbance of the steady
+        state obeys the homogeneous condition.  A part of the mesh that a
+        side with ``r > 0`` touches has no zero mode.
     method : {"auto", "shift-invert", "lobpcg"}
         "auto": shift-invert up to :data:`SHIFT_INVERT_LIMIT` unknowns, lobpcg above.
     rtol : float
@@ -235,8 +250,9 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, met
         Vectors in lobpcg's block beyond the wanted ones; default ``max(2, ceil(k / 4))``.
     preconditioner : str, optional
         A name from :data:`hatkernels.PRECONDITIONERS` for lobpcg.  Default:
-        geometric multigrid on a mesh with a refinement history and no zero
-        modes, else ``amg``.  ``**preconditioner_options`` go to it.
+        geometric multigrid on a mesh with a refinement history where every
+        part holds a point, else ``amg`` (on ``K + R``, the Robin term
+        included).  ``**preconditioner_options`` go to it.
     seed : int
         Seed of the random start (lobpcg without refinement history, ARPACK's start vector).
     quadrature : int
@@ -274,10 +290,12 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, met
                                              preconditioner, quadrature)
     kappa = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
     rho = parse_coefficient(density, mesh, name="density", sign="positive")
-    held = parse_conditions(mesh, dirichlet_on=dirichlet_on)[0].points
+    fixed, _, convection, _ = parse_conditions(mesh, dirichlet_on=dirichlet_on, robin=robin)
+    held = fixed.points
     timings = {"assemble": 0.0, "setup": 0.0, "solve": 0.0}
     t = time.perf_counter()
-    fine = _es.build_level(mesh, held, kappa, rho, quadrature)
+    R = _er.robin_matrix(mesh, convection, quadrature)
+    fine = _er.build(mesh, held, kappa, rho, R, quadrature)
     timings["assemble"] += time.perf_counter() - t
     n, z = fine.unknowns, fine.zero.shape[1]
     if k >= n:
@@ -297,7 +315,7 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, met
         stats.errors = np.full(k, np.nan)
     else:
         m = k - z + (max(2, math.ceil(k / 4)) if extra is None else extra)
-        values, X = _lobpcg(fine, m, k - z, rtol, maxiter, seed, preconditioner,
+        values, X = _lobpcg(fine, R, m, k - z, rtol, maxiter, seed, preconditioner,
                             preconditioner_options, quadrature, stats, timings)
         values, X = values[: k - z], X[:, : k - z]
     values, vectors, zero_modes, stats.errors = _assembled(fine, values, X, k, stats.errors)
@@ -356,13 +374,14 @@ def _default_preconditioner(mesh, floating):
 
 def _preconditioner(level, name, options, quadrature):
     floating = level.zero.shape[1] > 0
-    chosen = name or _default_preconditioner(level.mesh, floating)
-    if floating:
+    chosen = name or _default_preconditioner(level.mesh, level.stiffness_floats)
+    if level.stiffness_floats:
         if capabilities(chosen).needs_mesh:
+            why = (f"{level.zero.shape[1]} part(s) of the mesh hold no point (zero modes)"
+                   if floating else "a part of the mesh holds no point, only a Robin side")
             raise InputError(f"preconditioner {chosen!r} works on the stiffness alone, which is "
-                             f"singular here: {level.zero.shape[1]} part(s) of the mesh hold no "
-                             f"point (zero modes); use one that takes a matrix")
-        A = (level.K + level.shift() * level.M).tocsr()
+                             f"singular here: {why}; use one that takes a matrix")
+        A = (level.K + level.shift() * level.M).tocsr() if floating else level.K
         return make_preconditioner(A, chosen, **options)
     context = PreconditionerContext(mesh=level.mesh, coefficient=level.kappa, fixed=level.held,
                                     variant=_VARIANT, quadrature=quadrature)
@@ -376,32 +395,34 @@ def _preconditioner(level, name, options, quadrature):
         return make_preconditioner(level.K, DEFAULT, context=context, **options)
 
 
-def _chain(fine, m, quadrature):
-    """The nested start: ``(start level, [(mesh, held, kappa, rho) of each level above it
-    and below the given mesh])``, coarsest first; ``(None, [])`` when no coarser level fits
-    (at most :data:`SHIFT_INVERT_LIMIT` unknowns, and twice the block beyond its zero modes).
+def _chain(fine, R, m, quadrature):
+    """The nested start: ``(start level, [(mesh, held, kappa, rho, R) of each level above
+    it and below the given mesh])``, coarsest first; ``(None, [])`` when no coarser level
+    fits (at most :data:`SHIFT_INVERT_LIMIT` unknowns, and twice the block beyond its zero
+    modes).  The Robin term ``R`` goes down by Galerkin projection (:mod:`hatkernels.eigenrobin`).
     """
     chain = []
     mesh, held, kappa, rho = fine.mesh, fine.held, fine.kappa, fine.rho
     while mesh.refinement is not None:
+        R = _er.coarser_robin(mesh, R)
         mesh, held, kappa, rho = _es.coarser(mesh, held, kappa, rho)
-        chain.append((mesh, held, kappa, rho))
+        chain.append((mesh, held, kappa, rho, R))
         if mesh.n_points - held.size <= SHIFT_INVERT_LIMIT:
             break
     if not chain:
         return None, []
-    start = _es.build_level(*chain[-1], quadrature)
+    start = _er.build(*chain[-1], quadrature)
     if start.unknowns > SHIFT_INVERT_LIMIT or start.unknowns - start.zero.shape[1] < 2 * m:
         return None, []
     return start, chain[-2::-1]
 
 
-def _lobpcg(fine, m, wanted, rtol, maxiter, seed, name, options, quadrature, stats, timings):
+def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, stats, timings):
     """Ritz values and vectors (on the free points of ``fine``) of the nested or the plain
     lobpcg iteration; fills ``stats``."""
     n, z = fine.unknowns, fine.zero.shape[1]
     t = time.perf_counter()
-    start, between = _chain(fine, m, quadrature)
+    start, between = _chain(fine, R, m, quadrature)
     timings["assemble"] += time.perf_counter() - t
     used = {"stiffness": 0.0, "mass": 0.0, "preconditioner": 0.0}
     stats.block = m
@@ -416,7 +437,7 @@ def _lobpcg(fine, m, wanted, rtol, maxiter, seed, name, options, quadrature, sta
         del start, V
     for problem in between + [None]:
         t = time.perf_counter()
-        level = fine if problem is None else _es.build_level(*problem, quadrature)
+        level = fine if problem is None else _er.build(*problem, quadrature)
         timings["assemble"] += time.perf_counter() - t
         _es.check_block(level, m, level.zero.shape[1])
         if X is None:
