@@ -13,6 +13,10 @@ the generator numbers it) and ``refined`` (``rectangle(c, c)`` refined until
 ``scipy``          ``A @ x`` with scipy's CSR matrix, as a user writes it (allocates y)
 ``scipy-into``     scipy's own CSR kernel into a preallocated y (its best case)
 ``csr``            this project's parallel CSR kernel (what CG uses)
+``public``         the same kernel through the checked public wrapper
+                   ``hatkernels.sparse.spmv(A, x, out=y)``, called in a loop as a user
+                   would: the matrix's structure is checked on the first call only, and
+                   the values through the result (``sparse`` module notes)
 ``geometry``, ``factors``, ``edges``   :class:`hatkernels.StiffnessOperator` variants
 
 Bytes moved: the stored operator (CSR: data, indices, indptr; matrix-free:
@@ -40,12 +44,12 @@ from scipy.sparse._sparsetools import csr_matvec
 from hatkernels import StiffnessOperator, assemble_stiffness, threads
 from hatkernels._jit import sparse as _k
 from hatkernels.operators import DEFAULT_VARIANT, DEFAULT_VARIANT_3D, VARIANTS
-from hatkernels.sparse import csr_bytes
+from hatkernels.sparse import csr_bytes, spmv
 
 CASES = [pytest.param("scipy", MAX_THREADS, id="method=scipy"),
          pytest.param("scipy-into", MAX_THREADS, id="method=scipy-into")]
 CASES += [pytest.param(m, t, id=f"method={m}-threads={t}")
-          for m in ("csr",) + VARIANTS for t in THREADS]
+          for m in ("csr", "public") + VARIANTS for t in THREADS]
 
 _operators = {}
 
@@ -77,6 +81,9 @@ def test_product(benchmark, machine, request, cells, numbering, method, n_thread
         stored, moved = csr_bytes(A) - 16 * n, csr_bytes(A) + 8 * n
     elif method == "csr":
         fn = lambda: _k.spmv(A.indptr, A.indices, A.data, x, y)  # noqa: E731
+        stored, moved = csr_bytes(A) - 16 * n, csr_bytes(A)
+    elif method == "public":
+        fn = lambda: spmv(A, x, out=y)  # noqa: E731
         stored, moved = csr_bytes(A) - 16 * n, csr_bytes(A)
     else:
         op = StiffnessOperator(mesh, variant=method)

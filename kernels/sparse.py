@@ -9,7 +9,28 @@ dtype is copied.
 
 All arithmetic is float64: float32, integer and boolean inputs are converted
 (exactly); complex inputs are refused.
+
+What is checked when (a matrix is checked once, not once per product):
+
+* :func:`as_csr` checks a matrix's structure (shape, ``indptr`` rising from
+  0, every column index in range) the first time it sees the matrix, and
+  again whenever the matrix holds other arrays (``A.data = ...``,
+  ``A.indices = ...``, ``A.indptr = ...`` or a new shape: the arrays it
+  checked are told apart by identity).  It checks the values (finite) on
+  every call (one pass over ``A.data``), unless the caller asks it not to:
+* :func:`spmv` does not look at the values before the product: the parallel
+  kernel tests each row's sum as it is formed, and only a non-finite result
+  makes it look for the cause and name it (a non-finite entry of ``A`` always
+  makes its row's sum non-finite; so does one of ``x`` in a stored column).
+  :func:`dot` likewise looks at its vectors only when the result is not finite.
+  A result that overflows from finite inputs is returned as it is.
+* Writing into a checked matrix's index arrays in place (``A.indices[k] =
+  ...``) is not seen and is not supported: assign a new array, or call
+  ``as_csr(A, recheck=True)``.  Values may be written in place
+  (reassembly into the same pattern): they are checked as said above.
 """
+
+import weakref
 
 import numpy as np
 import scipy.sparse as sp
@@ -28,11 +49,61 @@ def _real_float64(dtype, what):
         raise InputError(f"{what} has dtype {dtype}; expected a real floating-point dtype")
 
 
-def as_csr(A, name="A"):
+#: The matrices :func:`as_csr` has checked and returned as they are, by ``id``: the shape,
+#: the arrays checked (held, so that identity tells a replaced array apart) and ``nnz``.
+#: An entry goes when its matrix is collected.
+_CHECKED = {}
+
+
+def _seen(A):
+    """Whether ``A`` holds the arrays :func:`as_csr` checked last time (O(1))."""
+    entry = _CHECKED.get(id(A))
+    if entry is None:
+        return False
+    shape, data, indices, indptr, nnz = entry
+    return (A.shape == shape and A.data is data and A.indices is indices
+            and A.indptr is indptr and int(indptr[-1]) == nnz)
+
+
+def _remember(A):
+    key = id(A)
+    if key not in _CHECKED:
+        try:
+            weakref.finalize(A, _CHECKED.pop, key, None)
+        except TypeError:  # a matrix type with no weak references: checked on every call
+            return
+    _CHECKED[key] = (A.shape, A.data, A.indices, A.indptr, int(A.indptr[-1]))
+
+
+def _non_finite(C, name):
+    """InputError naming the first non-finite stored entry of CSR ``C``, or None."""
+    nnz = int(C.indptr[-1])
+    finite = np.isfinite(C.data[:nnz])
+    if finite.all():
+        return None
+    k = int(np.argmin(finite))
+    row = int(np.searchsorted(C.indptr, k, side="right") - 1)
+    return InputError(f"{name} has a non-finite entry {C.data[k]} at row {row}, "
+                      f"column {int(C.indices[k])}")
+
+
+def as_csr(A, name="A", *, values=True, recheck=False):
     """Return ``A`` as a checked, square, float64 CSR matrix (a copy only if needed).
 
     Other sparse formats are converted once; ``A`` itself is never modified.
     ``indices`` and ``indptr`` of the result share one dtype (int32 or int64).
+    The structure of a matrix returned as it is (already CSR, float64, one
+    index dtype) is checked once and remembered while the matrix holds the
+    same arrays (see the module notes).
+
+    Parameters
+    ----------
+    values : bool
+        Check that every stored value is finite (one pass over ``A.data``);
+        False for a caller that checks its result instead (:func:`spmv`).
+    recheck : bool
+        Check the structure again even if it was checked before (after a
+        write into the index arrays in place).
 
     Raises
     ------
@@ -40,6 +111,10 @@ def as_csr(A, name="A"):
         Not sparse, not square, complex, malformed CSR arrays, or a non-finite
         entry (the message gives its row and column).
     """
+    if not recheck and _seen(A):
+        if values and not _k.all_finite(A.data[:int(A.indptr[-1])]):
+            raise _non_finite(A, name)
+        return A
     if not sp.issparse(A):
         raise InputError(f"{name} must be a scipy sparse matrix, got {type(A).__name__}")
     if A.ndim != 2 or A.shape[0] != A.shape[1]:
@@ -76,12 +151,12 @@ def as_csr(A, name="A"):
         k = int(np.argmax((used < 0) | (used >= n)))
         row = int(np.searchsorted(indptr, k, side="right") - 1)
         raise InputError(f"{name}: row {row} has column index {int(used[k])} outside 0..{n - 1}")
-    finite = np.isfinite(C.data[:nnz])
-    if not finite.all():
-        k = int(np.argmin(finite))
-        row = int(np.searchsorted(indptr, k, side="right") - 1)
-        raise InputError(f"{name} has a non-finite entry {C.data[k]} at row {row}, "
-                         f"column {int(used[k])}")
+    if values or C is not A:
+        bad = _non_finite(C, name)
+        if bad is not None:
+            raise bad
+    if C is A:
+        _remember(C)
     return C
 
 
@@ -110,12 +185,21 @@ def csr_bytes(A):
             + 8 * n_cols + 8 * n_rows)
 
 
+def _vector_fast(v, n):
+    """``v`` itself when it is already a contiguous float64 vector of length ``n``, else None."""
+    if (isinstance(v, np.ndarray) and v.dtype == np.float64 and v.shape == (n,)
+            and v.flags.c_contiguous):
+        return v
+    return None
+
+
 def spmv(A, x, out=None):
     """``A @ x`` with the parallel CSR kernel; ``out`` is overwritten when given.
 
-    ``A`` is checked by :func:`as_csr` (so any sparse format works); rows are
-    summed in storage order, so the result has the same bits on any thread
-    count.
+    ``A`` is checked by :func:`as_csr` (so any sparse format works) once, not
+    on every call; a non-finite result makes it look for the entry of ``A``
+    or ``x`` that caused it and name it (module notes).  Rows are summed in
+    storage order, so the result has the same bits on any thread count.
 
     Examples
     --------
@@ -126,15 +210,23 @@ def spmv(A, x, out=None):
     >>> spmv(A, np.ones(3))
     array([1., 0., 1.])
     """
-    C = as_csr(A)
+    C = as_csr(A, values=False)
     n = C.shape[0]
-    x = as_vector(x, n, "x")
+    v = _vector_fast(x, n)
+    if v is None:
+        v = as_vector(x, n, "x")
     if out is None:
         out = np.empty(n)
     elif not (isinstance(out, np.ndarray) and out.shape == (n,) and out.dtype == np.float64
               and out.flags.c_contiguous and out.flags.writeable):
         raise InputError(f"out must be a writeable contiguous float64 array of shape ({n},)")
-    _k.spmv(C.indptr, C.indices, C.data, x, out)
+    if np.may_share_memory(out, v):
+        raise InputError("out must not overlap x (the product reads x while writing out)")
+    if not _k.spmv_finite(C.indptr, C.indices, C.data, v, out):
+        bad = _non_finite(C, "A")
+        if bad is not None:
+            raise bad
+        as_vector(v, n, "x")  # raises naming the entry
     return out
 
 
@@ -146,9 +238,16 @@ def dot(x, y):
     >>> dot(np.arange(4.0), np.ones(4))
     6.0
     """
-    x = np.asarray(x)
-    if x.ndim != 1:
-        raise InputError(f"x must be 1-D, got shape {x.shape}")
-    x = as_vector(x, x.shape[0], "x")
-    y = as_vector(y, x.shape[0], "y")
-    return float(_k.dot(x, y))
+    a = np.asarray(x)
+    if a.ndim != 1:
+        raise InputError(f"x must be 1-D, got shape {a.shape}")
+    n = a.shape[0]
+    u, v = _vector_fast(a, n), _vector_fast(y, n)
+    if u is None or v is None:  # converted and checked; the values looked at only if needed
+        u = as_vector(a, n, "x") if u is None else u
+        v = as_vector(y, n, "y") if v is None else v
+    result = float(_k.dot(u, v))
+    if not np.isfinite(result):  # a non-finite entry, or an overflow of finite ones
+        as_vector(u, n, "x")
+        as_vector(v, n, "y")
+    return result

@@ -1,5 +1,7 @@
 """Parallel sparse kernels against scipy/numpy, and bit-identity across thread counts."""
 
+import gc
+
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -8,6 +10,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 from pyamg.gallery import poisson
 
+from hatkernels import sparse as hk_sparse
 from hatkernels._jit import sparse as K
 from hatkernels._jit import threads
 from hatkernels.errors import InputError
@@ -198,7 +201,9 @@ def test_one_and_two_threads_give_identical_bits():
                 starts += [rs, ds, xs]
             rc, dc, xc = y.copy(), w.copy(), x.copy()
             K.chebyshev_step(q, dinv, 0.5, 0.25, rc, dc, xc)
-            out[nt] = (q, pq, K.dot(x, y), rr, xx, rr_, added, res, xj, rj, zj, rrj, rzj, p,
+            qf = np.empty_like(x)
+            finite = K.spmv_finite(A.indptr, A.indices, A.data, x, qf)
+            out[nt] = (qf, finite, K.all_finite(x), q, pq, K.dot(x, y), rr, xx, rr_, added, res, xj, rj, zj, rrj, rzj, p,
                        jac, *starts, rc, dc, xc)
     for k, (a, b) in enumerate(zip(out[1], out[2], strict=True)):
         assert np.array_equal(a, b), k
@@ -253,3 +258,74 @@ def test_bad_vectors_are_refused_with_the_index_named():
     with pytest.raises(InputError, match="shape"):
         as_vector(np.ones(4), 3, "b")
     assert as_vector(np.ones((3, 1), dtype=np.float32), 3, "b").dtype == np.float64
+
+
+# -- checked once, not once per product -------------------------------------------------
+
+
+@given(st.integers(0, 3 * 4096), st.integers(0, 3), st.data())
+def test_finite_kernels_match_numpy(n, bad, data):
+    """The fast finiteness tests against the plain ones: numpy's ``isfinite(...).all()``."""
+    rng = np.random.default_rng(n)
+    v = rng.standard_normal(n)
+    for _ in range(bad if n else 0):
+        v[data.draw(st.integers(0, n - 1))] = data.draw(st.sampled_from([np.nan, np.inf,
+                                                                         -np.inf]))
+    assert K.all_finite(v) == bool(np.isfinite(v).all())
+    A = sp.random_array((n, n), density=min(1.0, 5.0 / max(n, 1)), rng=rng,
+                        format="csr") if n else sp.csr_array((0, 0))
+    y, y_plain = np.empty(n), np.empty(n)
+    flag = K.spmv_finite(A.indptr, A.indices, A.data, v, y)
+    K.spmv(A.indptr, A.indices, A.data, v, y_plain)
+    assert np.array_equal(y, y_plain, equal_nan=True)  # the same sums, bit for bit
+    assert flag == bool(np.isfinite(y_plain).all())
+
+
+def test_spmv_checks_the_structure_once_and_sees_replaced_arrays():
+    A = poisson((6, 6), format="csr")
+    x = np.ones(36)
+    spmv(A, x)
+    entry = hk_sparse._CHECKED
+    assert id(A) in entry  # remembered after the first product
+    bad = A.indices.copy()
+    bad[3] = 36
+    A.indices = bad  # a new array: seen and checked again
+    with pytest.raises(InputError, match="outside 0..35"):
+        spmv(A, x)
+    A.indices[3] = 1  # the same (now corrected) array again
+    assert np.array_equal(spmv(A, x), A @ x)
+    A.indices[3] = 40  # written in place: the documented way to have it seen again
+    with pytest.raises(InputError, match="outside 0..35"):
+        as_csr(A, recheck=True)
+    key = id(A)
+    del A
+    gc.collect()
+    assert key not in entry  # forgotten with its matrix
+
+
+def test_values_written_in_place_are_named_by_the_product():
+    A = poisson((5, 5), format="csr")
+    x = np.ones(25)
+    spmv(A, x)
+    A.data[A.indptr[7] + 1] = np.inf  # reassembly in place: no new array
+    with pytest.raises(InputError, match=r"non-finite entry inf at row 7"):
+        spmv(A, x)
+    with pytest.raises(InputError, match="row 7"):
+        as_csr(A)  # values are checked on every call unless the caller checks its result
+    A.data[A.indptr[7] + 1] = -1.0
+    x[11] = np.nan
+    with pytest.raises(InputError, match=r"x\[11\] is nan"):
+        spmv(A, x)
+    with pytest.raises(InputError, match=r"y\[11\] is nan"):
+        dot(np.ones(25), x)
+    same = np.ones(25)
+    with pytest.raises(InputError, match="overlap"):
+        spmv(A, same, out=same)  # the kernel would read x while writing it
+
+
+def test_overflow_of_finite_inputs_is_returned_not_refused():
+    # IEEE 754 arithmetic: 1e300 * 1e300 overflows to inf; no input is at fault
+    A = sp.csr_array(np.array([[1e300, 0.0], [0.0, 1.0]]))
+    y = spmv(A, np.array([1e300, 1.0]))
+    assert y[0] == np.inf and y[1] == 1.0
+    assert dot(np.array([1e300, 1.0]), np.array([1e300, 1.0])) == np.inf

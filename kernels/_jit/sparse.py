@@ -14,6 +14,8 @@ here validates its arguments: the wrappers in ``hatkernels.krylov`` and
 are written; every other argument is only read.
 """
 
+import math
+
 import numpy as np
 from numba import prange, uint64
 
@@ -27,6 +29,8 @@ from hatkernels._jit import jit
 __all__ = [
     "CHUNK",
     "spmv",
+    "spmv_finite",
+    "all_finite",
     "spmv_add",
     "spmv_dot",
     "residual",
@@ -105,6 +109,41 @@ def spmv(indptr, indices, data, x, out):
     """``out = A @ x`` for A in CSR; each row summed in storage order."""
     for i in prange(out.shape[0]):
         out[i] = _row_dot(indptr, indices, data, x, i)
+
+
+@jit(parallel=True)
+def spmv_finite(indptr, indices, data, x, out):
+    """``out = A @ x`` as :func:`spmv` (the same bits); True when every entry of ``out`` is
+    finite, tested as each row is summed (no second pass over ``out``)."""
+    n = out.shape[0]
+    nchunks = _nchunks(n)
+    bad = np.zeros(nchunks, dtype=np.uint8)
+    for c in prange(nchunks):
+        lo = c * CHUNK
+        hi = min(lo + CHUNK, n)
+        flag = 0
+        for i in range(lo, hi):
+            s = _row_dot(indptr, indices, data, x, i)
+            out[i] = s
+            if not math.isfinite(s):
+                flag = 1
+        bad[c] = flag
+    return bad.max() == 0 if nchunks else True
+
+
+@jit(parallel=True)
+def all_finite(v):
+    """True when every entry of ``v`` is finite (one pass, in parallel chunks)."""
+    n = v.shape[0]
+    nchunks = _nchunks(n)
+    bad = np.zeros(nchunks, dtype=np.uint8)
+    for c in prange(nchunks):
+        flag = 0
+        for i in range(c * CHUNK, min(c * CHUNK + CHUNK, n)):
+            if not math.isfinite(v[uint64(i)]):
+                flag = 1
+        bad[c] = flag
+    return bad.max() == 0 if nchunks else True
 
 
 @jit(parallel=True)
