@@ -23,6 +23,7 @@ __all__ = [
     "available",
     "convergence_figure",
     "plane_section",
+    "probes_figure",
     "region_outlines",
     "residuals_figure",
     "section_figure",
@@ -352,6 +353,35 @@ def convergence_figure(h, errors, path, *, title="", size=SIZE, dpi=DPI):
     ax.set_ylabel("error")
     ax.grid(True, which="both", linewidth=0.3)
     ax.legend()
+    if title:
+        ax.set_title(title, fontsize=10)
+    fig.tight_layout()
+    return _save(fig, path, dpi)
+
+
+def probes_figure(times, values, names, path, *, title="", label="u", time_unit="s",
+                  size=SIZE, dpi=DPI):
+    """Values at probes over time: one line per probe.
+
+    ``times`` (n,), ``values`` (n, n_probes), ``names`` one per probe (the legend);
+    ``label`` names the quantity on the vertical axis.
+    """
+    t = _finite(times, "times")
+    v = _finite(values, "values")
+    if t.ndim != 1 or t.size == 0 or v.ndim != 2 or v.shape[0] != t.size:
+        raise InputError(f"values must have one row per time, shape ({t.size}, n_probes), "
+                         f"got {v.shape}")
+    if len(names) != v.shape[1]:
+        raise InputError(f"{len(names)} names for {v.shape[1]} probes")
+    fig = _figure(size, dpi)
+    ax = fig.add_subplot()
+    for k, name in enumerate(names):
+        ax.plot(t, v[:, k], linewidth=1.2, label=str(name))
+    ax.set_xlabel(f"time ({time_unit})" if time_unit else "time")
+    ax.set_ylabel(label)
+    ax.grid(True, linewidth=0.3)
+    if len(names):
+        ax.legend()
     if title:
         ax.set_title(title, fontsize=10)
     fig.tight_layout()

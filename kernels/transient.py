@@ -109,7 +109,8 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
                     startup=4, lumped=False, f=0.0, refine=0, dirichlet=0.0,
                     dirichlet_on=None, coefficient=None, reaction=None, neumann=None,
                     robin=None, probes=None, preconditioner="amg", rtol=1e-6, atol=0.0,
-                    maxiter=None, check=False, quadrature=2, **preconditioner_options):
+                    maxiter=None, check=False, quadrature=2, monitor=None,
+                    **preconditioner_options):
     """Solve ``capacity du/dt - div(kappa grad u) + c u = f(t)`` and return u at ``times``.
 
     Parameters
@@ -150,6 +151,9 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     check : bool
         Raise ConvergenceError at the first step that does not converge (default:
         finish, then warn once).
+    monitor : callable, optional
+        ``monitor(step, steps, t, iterations)`` after every step: the steps done, of
+        how many, the time reached and that step's CG iterations (a progress report).
     **preconditioner_options
         Passed to the preconditioner.
 
@@ -209,8 +213,11 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     blocks = Blocks(problem, lumped)
     timings = {"assemble": time.perf_counter() - t, "setup": 0.0}
     rtol, atol, maxiter = _check_scalars(rtol, atol, maxiter, max(blocks.unknowns, 1), None)
+    if monitor is not None and not callable(monitor):
+        raise InputError(f"monitor must be callable, got {type(monitor).__name__}")
     run = _Run(problem, blocks, data, theta, preconditioner, preconditioner_options,
                timings)
+    run.monitor = monitor
     out = run.march(u0, times, schedule, located, rtol, atol, maxiter, check)
     timings["steps"] = float(run.step_seconds.sum())
     timings["data"] = data.seconds
@@ -250,6 +257,7 @@ class _Run:
         self.description = ""
         self.failed = 0
         self.message = ""
+        self.monitor = None
 
     def system(self, tau, dt):
         """The system of ``tau`` (built, with its preconditioner, on first use); the most
@@ -357,6 +365,8 @@ class _Run:
                 interval = k + 1
                 self.timings["output"] = self.timings.get("output", 0.0) + \
                     time.perf_counter() - start
+            if self.monitor is not None:
+                self.monitor(i + 1, n_steps, t1, int(result.iterations))
         self.timings.setdefault("output", 0.0)
         if not self.systems:  # no step at all (times == [0])
             self.description = "none (no step)"

@@ -23,6 +23,7 @@ __all__ = [
     "solve_summary",
     "solve_report",
     "distributed_report",
+    "file_record",
     "file_statement",
     "file_summary",
     "file_report",
@@ -291,25 +292,10 @@ FLOW_UNIT = {2: "W/m", 3: "W"}
 def file_summary(args, pf, sol, balance, timings, kernels_seconds, command):
     """The record of a problem file's solve (``pf``: a :class:`hatkernels.problemfile.ProblemFile`;
     ``balance``: :func:`hatkernels.results.balance` of ``sol``), as written to summary.json."""
-    mesh, tags = sol.mesh, sol.mesh.tags
+    mesh = sol.mesh
     summary = base_record(command)
     summary["caution"] = CAUTION
-    summary["problem"] = {
-        "title": pf.title,
-        "file": os.path.abspath(pf.path),
-        "mesh_file": pf.mesh_path,
-        "length_unit": pf.length_unit,
-        "refine": args.refine,
-        "statement": file_statement(pf, mesh),
-        "materials": [{"name": m.name, "regions": [tags.region_label(t) for t in m.tags],
-                       "conductivity": np.asarray(m.conductivity).tolist(), "source": m.source}
-                      for m in pf.materials],
-        "conditions": [{"name": c.name, "tags": [tags.side_label(t) for t in c.tags],
-                        "condition": c.kind, "value": c.value, "ambient": c.ambient}
-                       for c in pf.conditions],
-        "insulated": [tags.side_label(t) for t in pf.insulated_tags()],
-        "untagged_sides": _untagged_sides(mesh),
-    }
+    summary["problem"] = file_record(pf, mesh, args.refine)
     summary["units"] = {"length": "m", "solution": "degC", "temperature": "degC",
                         "conductivity": "W/(m K)", "source": "W/m^3", "heat_flux": "W/m^2",
                         "power": ("W per metre of thickness" if mesh.dim == 2 else "W")}
@@ -324,16 +310,40 @@ def file_summary(args, pf, sol, balance, timings, kernels_seconds, command):
     return summary
 
 
+def file_record(pf, mesh, refine, equation=None):
+    """A problem file's problem for the record (``mesh``: the mesh solved on; ``equation``:
+    as :func:`file_statement`)."""
+    tags = mesh.tags
+    return {
+        "title": pf.title,
+        "file": os.path.abspath(pf.path),
+        "mesh_file": pf.mesh_path,
+        "length_unit": pf.length_unit,
+        "refine": refine,
+        "statement": file_statement(pf, mesh, equation),
+        "materials": [{"name": m.name, "regions": [tags.region_label(t) for t in m.tags],
+                       "conductivity": np.asarray(m.conductivity).tolist(), "source": m.source}
+                      for m in pf.materials],
+        "conditions": [{"name": c.name, "tags": [tags.side_label(t) for t in c.tags],
+                        "condition": c.kind, "value": c.value, "ambient": c.ambient}
+                       for c in pf.conditions],
+        "insulated": [tags.side_label(t) for t in pf.insulated_tags()],
+        "untagged_sides": _untagged_sides(mesh),
+    }
+
+
 def _untagged_sides(mesh):
     b = mesh.boundary_edges() if mesh.dim == 2 else mesh.boundary_faces()
     return int(len(b) - len(mesh.tags.sides))
 
 
-def file_statement(pf, mesh):
-    """What the report says of a problem file before the figures."""
+def file_statement(pf, mesh, equation=None):
+    """What the report says of a problem file before the figures (``equation``: the
+    problem's equation in words, by default steady conduction)."""
     tags = mesh.tags
     lines = [f"problem file {os.path.abspath(pf.path)}",
-             "steady conduction -div(k grad T) = q, SI units, temperatures in degC; "
+             (equation or "steady conduction -div(k grad T) = q")
+             + ", SI units, temperatures in degC; "
              + ("2-D: heat flows are in W per metre of thickness (the depth out of the plane)"
                 if mesh.dim == 2 else "heat flows in W")]
     insulated = [tags.side_label(t) for t in pf.insulated_tags()]
