@@ -35,7 +35,8 @@ import warnings
 
 from hatkernels import PRECONDITIONERS
 from hatkernels.checks import integer_option, real_option
-from hatkernels.cli import bench, info, solve, verify
+from hatkernels.cli import bench, info, modes, solve, verify
+from hatkernels.cli import transient as _transient
 from hatkernels.cli.common import PROG, error
 from hatkernels.cli.options import Parser as _Parser
 from hatkernels.cli.options import UsageError
@@ -171,6 +172,7 @@ def _check_problem_file(args, prog):
 def _check_scenario(args, prog):
     """The solve options that do not go together; UsageError naming the option."""
     _check_problem_file(args, prog)
+    _transient.check(args, prog)
     if args.problem_file is not None:
         return
     if args.cells is not None and args.refine is not None:
@@ -244,6 +246,7 @@ def _add_solve(sub, common, names):
     _number(p, "--maxiter", int, minimum=1, metavar="N",
             help="at most N iterations (default 10 x unknowns); not converging exits 1")
     _output(p, "hatkernels-out", later=True)
+    _transient.add_options(p)
     p.set_defaults(func=solve.run)
     return p
 
@@ -327,7 +330,8 @@ def build_parser():
     parser = _Parser(
         prog=PROG,
         description="Fast, verified linear (P1) finite elements on triangle and tetrahedron "
-                    "meshes: solve the built-in heat-spreader scenarios or a mesh file, verify convergence, "
+                    "meshes: solve the built-in heat-spreader scenarios or a mesh file, compute "
+                    "their natural thermal modes, verify convergence, "
                     "benchmark this machine, show versions.",
         epilog="Run 'hatkernels COMMAND --help' for each command. Exit codes: 0 success, "
                "1 a solve that does not converge, 2 bad usage or input, 73 the output "
@@ -336,8 +340,8 @@ def build_parser():
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     parser.commands = {name: add(sub, common, names) for name, add in (
-        ("solve", _add_solve), ("verify", _add_verify), ("bench", _add_bench),
-        ("info", _add_info))}
+        ("solve", _add_solve), ("modes", modes.add_parser), ("verify", _add_verify),
+        ("bench", _add_bench), ("info", _add_info))}
     return parser
 
 
@@ -361,7 +365,7 @@ def _file_size_limit_as_error():
 
 def _target(args):
     """The output the command was asked to write (``--out`` or ``bench --json``), or None."""
-    if args.command in ("solve", "verify"):
+    if args.command in ("solve", "verify", "modes"):
         return args.out
     return args.json if args.command == "bench" else None
 
@@ -382,7 +386,7 @@ def main(argv=None):
     try:
         args = parser.parse_args(argv)
         if args.command is None:
-            raise UsageError("choose a command: solve, verify, bench or info "
+            raise UsageError("choose a command: solve, modes, verify, bench or info "
                              "(see 'hatkernels --help')")
         _check(parser, args)
     except UsageError as exc:

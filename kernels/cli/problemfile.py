@@ -6,7 +6,9 @@ The file is read by :func:`hatkernels.problemfile.read_problem`; the command
 line's ``--refine``, ``--preconditioner``, ``--rtol``, ``--maxiter`` and
 ``--out`` override what the file says, and defaults fill what neither says.
 The results by region and by boundary tag, and the balance of heat that
-ties them together, come from :func:`hatkernels.results.balance`.
+ties them together, come from :func:`hatkernels.results.balance`.  A file with
+a ``[time]`` table (or ``--until``) runs the transient mode
+(:mod:`hatkernels.cli.transient`).
 """
 
 from __future__ import annotations
@@ -17,6 +19,7 @@ import warnings
 
 from hatkernels import io as kio
 from hatkernels import problemfile, results
+from hatkernels.cli import transient
 from hatkernels.cli.common import command_line, threads
 from hatkernels.cli.outputs import identity, write_outputs
 from hatkernels.cli.problem import needs_refinement, refined
@@ -99,6 +102,9 @@ def run(args, progress):
     progress.phase(f"problem: reading {args.problem_file}")
     pf = problemfile.read_problem(args.problem_file)  # a bad file fails before any compiling
     settle(args, pf)
+    settings = transient.file_settings(args, pf)
+    if settings is not None:  # a [time] table, or --until: the transient mode
+        return transient.run_file(args, progress, pf, settings)
     command = command_line(args)
     timings = {}
     with kio.output_directory(args.out, force=args.force) as tmp, threads(args.threads):

@@ -1,7 +1,8 @@
 """``hatkernels solve``: the built-in scenario (or a mesh file), solved, checked and written.
 
 A problem file (``hatkernels solve PROBLEM.toml``, or a packaged one chosen
-by ``--scenario``) runs through :mod:`hatkernels.cli.problemfile`.
+by ``--scenario``) runs through :mod:`hatkernels.cli.problemfile`; ``--until T``
+(the transient mode) through :mod:`hatkernels.cli.transient`.
 
 Under ``mpiexec`` with more than one rank the same options run the
 distributed solve (:mod:`hatkernels.cli.solve_mpi`); the launcher's
@@ -15,7 +16,7 @@ import warnings
 
 from hatkernels import io as kio
 from hatkernels import scenarios
-from hatkernels.cli import problemfile, solve_mpi
+from hatkernels.cli import problemfile, solve_mpi, transient
 from hatkernels.cli.common import command_line, threads
 from hatkernels.cli.outputs import write_solve_outputs
 from hatkernels.cli.problem import (
@@ -82,6 +83,8 @@ def run(args, progress):
     """Run ``hatkernels solve``; return the exit code."""
     if args.problem_file is not None:
         return problemfile.run(args, progress)
+    if args.until is not None:
+        return transient.run(args, progress)
     if ranks_from_environment() > 1:
         return solve_mpi.run(args, progress)
     command = command_line(args)
