@@ -60,10 +60,12 @@ class KeyProblem(Exception):
 
 class Reader:
     """Checks one parsed problem file (read from ``path``); every failure is a
-    :class:`KeyProblem` naming the key."""
+    :class:`KeyProblem` naming the key.  ``insulated``: accept a boundary with no held or
+    cooled tag."""
 
-    def __init__(self, path):
+    def __init__(self, path, insulated=False):
         self.path = path
+        self.insulated = insulated
 
     def fail(self, key, message):
         raise KeyProblem(key, message)
@@ -404,7 +406,7 @@ class Reader:
                               lambda item: tags.side_tag(item, what="boundary tag"),
                               lambda t: f"boundary tag {tags.side_label(t)}", "a condition")
             out.append((name, mine, kind, value, ambient))
-        if not any(c[2] in ("held", "convection") for c in out):
+        if not self.insulated and not any(c[2] in ("held", "convection") for c in out):
             self.fail(("boundary",),
                       "no boundary tag is held or cooled (held = T, or film with ambient): "
                       "the temperature would be fixed only up to a constant")

@@ -275,8 +275,12 @@ def case_file(name):
     return str(importlib.resources.files("hatkernels.cases").joinpath(CASES[name]))
 
 
-def read_problem(path):
+def read_problem(path, *, insulated=False):
     """Read and check the problem file at ``path`` and the mesh it names.
+
+    A file must hold or cool some boundary tag (a steady temperature is fixed
+    only up to a constant otherwise) unless ``insulated`` is true (the modes of
+    a wholly insulated body are well defined: the first is the steady one).
 
     Returns
     -------
@@ -315,7 +319,7 @@ def read_problem(path):
             message = f"{message[:found.start()]} (column {found.group(2)})"
         raise ProblemFileError(path, line, "", f"TOML syntax: {message}") from None
     try:
-        fields = Reader(path).problem(data)
+        fields = Reader(path, insulated).problem(data)
     except KeyProblem as exc:
         lines = key_lines(text)
         raise ProblemFileError(path, line_of(lines, exc.key), dotted(exc.key),
