@@ -82,7 +82,8 @@ __all__ = ["CASES", "LENGTH_UNITS", "BoundaryCondition", "Material", "ProblemFil
            "ProblemFileError", "TimeSettings", "case_file", "read_problem"]
 
 #: The problem files shipped with the package (in :mod:`hatkernels.cases`), by name.
-CASES = {"heated-insert": "heated-insert.toml"}
+CASES = {"heated-insert": "heated-insert.toml",
+         "heated-insert-warmup": "heated-insert-warmup.toml"}
 
 class ProblemFileError(InputError):
     """A problem file that cannot be used: ``file, line N: key: what was expected``.

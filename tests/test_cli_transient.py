@@ -3,7 +3,10 @@ file and problem files with a ``[time]`` table, against solutions from outside t
 and every refusal.
 
 Runs call the command's main() in this process (small meshes, few steps); one runs it in a
-subprocess without the optional libraries.
+subprocess without the optional libraries.  All run on one numba thread: these meshes are too
+small for a second one to help, and on a busy 2-core machine each parallel region of a
+2-thread run waits for a time slice (a march of 100 small steps measured 30 s instead of
+0.25 s).  Thread counts are tested elsewhere (tests/test_threads.py).
 """
 
 import csv
@@ -28,6 +31,7 @@ from hatkernels.mesh.tags import label_sides
 #: Heat and Mass Transfer, 6th ed., 2007, table A.1; values from memory).
 K_AL, RHO_AL, C_AL = 237.0, 2702.0, 903.0
 THICKNESS = 0.002  # the plate's, m
+ONE_THREAD = ("--threads", "1")  # see the module's docstring
 COOLANT = 25.0  # degC
 
 
@@ -44,7 +48,7 @@ def listing(directory):
 
 def solve(capsys, *args):
     """``hatkernels solve ARGS --quiet`` in this process: (exit code, stdout, stderr)."""
-    code = cli.main(["solve", *map(str, args), "--quiet"])
+    code = cli.main(["solve", *map(str, args), "--quiet", *ONE_THREAD])
     captured = capsys.readouterr()
     return code, captured.out, captured.err
 
@@ -75,7 +79,7 @@ def plate(tmp_path_factory):
     """The plate, 30 x 20 cells, heating up for 12 s with 4 outputs, run once (with progress)."""
     out = tmp_path_factory.mktemp("plate") / "out"
     code = cli.main(["solve", "--cells", "30", "--until", "12", "--outputs", "4", "--out",
-                     str(out)])
+                     str(out), *ONE_THREAD])
     return code, out
 
 
@@ -118,7 +122,7 @@ def test_the_plate_heats_up_and_writes_every_file(plate):
 def test_the_plate_report_and_progress(plate, capsys):
     # the fixture printed its report and progress before capsys of this test: run a tiny one
     code = cli.main(["solve", "--cells", "30", "--until", "1", "--outputs", "1", "--out",
-                     str(plate[1].parent / "again")])
+                     str(plate[1].parent / "again"), *ONE_THREAD])
     captured = capsys.readouterr()
     assert code == 0, captured.err
     for phrase in ("solve (transient)", "rho c dT/dt - div(k grad T) = q", "initial "
@@ -508,10 +512,29 @@ def test_without_the_optional_extras(tmp_path):
     code = ("import sys; sys.modules['matplotlib'] = None; sys.modules['meshio'] = None;"
             "from hatkernels.cli import main;"
             f"sys.exit(main(['solve', '--cells', '30', '--until', '0.5', '--outputs', '1', "
-            f"'--quiet', '--out', {str(tmp_path / 'o')!r}]))")
+            f"'--quiet', '--threads', '1', '--out', {str(tmp_path / 'o')!r}]))")
     result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                             timeout=600)
     assert result.returncode == 0, result.stderr
     assert set(os.listdir(tmp_path / "o")) == {"solution.npz", "summary.json", "probes.csv"}
     assert "not written: series.pvd and the .vtu files (meshio is not installed" in result.stdout
     assert "not written: probes.png (matplotlib is not installed" in result.stdout
+
+
+def test_the_packaged_warm_up_ends_at_the_steady_packaged_case(tmp_path, capsys):
+    # --scenario heated-insert-warmup: 10 minutes from 20 degC; by then the part is at the
+    # temperatures of the steady packaged case (its slowest time constant is about 50 s)
+    code, out, err = solve(capsys, "--scenario", "heated-insert-warmup", "--out",
+                           tmp_path / "warm")
+    assert code == 0, err
+    code, _, err = solve(capsys, "--scenario", "heated-insert", "--out", tmp_path / "steady")
+    assert code == 0, err
+    warm = read_solution(tmp_path / "warm" / "solution.npz").point_data["u"]
+    steady = read_solution(tmp_path / "steady" / "solution.npz").point_data["u"]
+    assert np.abs(warm - steady).max() <= 1e-3  # degC, of a rise of about 20
+    s = json.loads((tmp_path / "warm" / "summary.json").read_text())
+    assert [p["name"] for p in s["probes"]] == ["heater", "top", "clamp"]
+    assert s["outputs"][0]["probes"] == {"heater": 20.0, "top": 20.0, "clamp": 20.0}
+    # 1000 W per metre of length for 600 s (the heater by hand: 5e6 W/m^3 x 20 mm x 10 mm)
+    assert s["energy"]["total"]["heat_in"] == pytest.approx(6e5, rel=1e-12, abs=0)
+    assert "copy heated-insert-warmup.toml and heated-insert.npz" in out

@@ -10,6 +10,10 @@ to the air, the rest is insulated.  The mesh was written by
 (:func:`hatkernels.io.write_mesh`); its coordinates are in millimetres (the
 problem file says ``length_unit = "mm"``).  Copy both files to start a
 problem of your own (:func:`hatkernels.problemfile.case_file` gives the path).
+
+``heated-insert-warmup.toml`` (``hatkernels solve --scenario heated-insert-warmup``):
+the same part and mesh in time, with a ``[time]`` table: from 20 degC everywhere,
+the heater switched on at t = 0, 10 minutes in steps of 5 s, three probes.
 """
 
 from __future__ import annotations

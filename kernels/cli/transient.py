@@ -20,6 +20,7 @@ from __future__ import annotations
 import dataclasses
 import inspect
 import math
+import os
 import re
 import time
 import warnings
@@ -294,6 +295,10 @@ def file_case(args, pf, settings, progress):
         if args.capacity is not None else
         ", ".join(f"{m.capacity:.6g} J/(m^3 K) ({m.name})" for m in pf.materials)
         + " (density x specific_heat of each material)"))
+    if args.problem is None:  # a packaged file: say where it is, to start one's own from it
+        statement.append(f"to start a problem of your own, copy {os.path.basename(pf.path)} "
+                         f"and {os.path.basename(pf.mesh_path)} from "
+                         f"{os.path.dirname(pf.path)}")
     record["statement"] = statement
     flow = "J/m" if mesh.dim == 2 else "J"  # 2-D: per metre of thickness
     times = f", refined {args.refine} time{'s' if args.refine != 1 else ''}" if args.refine else ""
