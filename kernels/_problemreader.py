@@ -154,6 +154,8 @@ class Reader:
         mesh_path = os.path.join(os.path.dirname(os.path.abspath(self.path)), mesh_name)
         mesh = self.mesh(mesh_path, unit, data["regions"])
         materials = self.materials(mesh, raw_materials, data["regions"])
+        if time is not None:  # in time, the capacity term fixes a body nothing holds or cools
+            self.insulated = True
         conditions = self.conditions(mesh, raw_conditions, data.get("boundary", {}))
         if time is not None:
             time["probes"] = self.probes(probes, mesh, unit)

@@ -538,3 +538,30 @@ def test_the_packaged_warm_up_ends_at_the_steady_packaged_case(tmp_path, capsys)
     # 1000 W per metre of length for 600 s (the heater by hand: 5e6 W/m^3 x 20 mm x 10 mm)
     assert s["energy"]["total"]["heat_in"] == pytest.approx(6e5, rel=1e-12, abs=0)
     assert "copy heated-insert-warmup.toml and heated-insert.npz" in out
+
+
+def test_an_insulated_body_in_time_keeps_every_joule(bar, capsys):
+    # a [time] file needs no held or cooled tag: the capacity fixes the temperature.
+    # Insulated all round with a uniform source, the bar heats uniformly, T = T0 + q t /
+    # (rho c) at every point (the first law for each piece: common practice, no source);
+    # with a flux into one end instead, all of it is stored (the first law)
+    heated = (BAR.replace("[boundary.hot]\nheld = 100.0\n", "")
+              .replace("specific_heat = 385.0\n", "specific_heat = 385.0\nsource = 1e6\n"))
+    (bar / "insulated.toml").write_text(heated)
+    code, _, err = solve(capsys, bar / "insulated.toml", "--out", bar / "ins")
+    assert code == 0, err
+    u = read_solution(bar / "ins" / "solution.npz").point_data["u"]
+    rise = 1e6 * 1.0 / (8900.0 * 385.0)  # q t / (rho c) after 1 s
+    assert np.abs(u - rise).max() <= 1e-6 * rise  # each step's CG stops at rtol 1e-6
+    s = json.loads((bar / "ins" / "summary.json").read_text())
+    assert s["energy"]["total"]["heat_out"] == pytest.approx(0.0, abs=1e-9)
+    fed = BAR.replace("held = 100.0", "flux = 1e4")
+    (bar / "fed.toml").write_text(fed)
+    code, _, err = solve(capsys, bar / "fed.toml", "--out", bar / "fed")
+    assert code == 0, err
+    saved = read_solution(bar / "fed" / "solution.npz")
+    came_in = 1e4 * 0.002 * 1.0  # W/m^2 over the 2 mm end for 1 s, per metre of thickness
+    stored = 8900.0 * 385.0 * p1_integral(saved.mesh, saved.point_data["u"])
+    assert stored == pytest.approx(came_in, rel=1e-6, abs=0)
+    total = json.loads((bar / "fed" / "summary.json").read_text())["energy"]["total"]
+    assert total["heat_in"] == pytest.approx(came_in, rel=1e-12, abs=0)

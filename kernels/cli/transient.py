@@ -300,12 +300,15 @@ def file_case(args, pf, settings, progress):
                          f"and {os.path.basename(pf.mesh_path)} from "
                          f"{os.path.dirname(pf.path)}")
     record["statement"] = statement
+    arguments = pf.solve_arguments()
+    if "dirichlet" not in arguments:  # no held tag: hold nothing (not the whole boundary)
+        arguments["dirichlet_on"] = np.empty(0, np.int64)
     flow = "J/m" if mesh.dim == 2 else "J"  # 2-D: per metre of thickness
     times = f", refined {args.refine} time{'s' if args.refine != 1 else ''}" if args.refine else ""
     return Case(
         title=pf.title, statement=statement, mesh=mesh,
         description=f"{pf.mesh_path} (lengths in {pf.length_unit}, scaled to metres){times}",
-        arguments=pf.solve_arguments(), capacity=per_cell(capacity), settings=settings,
+        arguments=arguments, capacity=per_cell(capacity), settings=settings,
         length_scale=1.0 / pf.scale, length_unit=pf.length_unit, quantity="temperature",
         unit="degC", energy_unit=flow,
         cell={"region": mesh.regions, "source": pf.source_per_cell(mesh), "capacity": capacity},
