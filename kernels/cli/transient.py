@@ -22,6 +22,7 @@ import inspect
 import math
 import os
 import re
+import textwrap
 import time
 import warnings
 
@@ -76,13 +77,12 @@ def _point(text):
 
 def add_options(parser):
     """The transient mode's options, in a group of their own."""
-    g = parser.add_argument_group(
-        "transient mode (heat-up in time; one process)",
+    g = parser.add_argument_group("transient mode (heat-up in time; one process)", textwrap.fill(
         "--until T marches rho c dT/dt - div(k grad T) = q from T0 everywhere at t = 0 (the "
         "sources switch on at t = 0) and writes series.pvd with one .vtu per output time, "
         "probes.csv, probes.png, solution.npz (the end time) and summary.json; a problem "
         "file with a [time] table does the same without --until, and these options override "
-        "its values.")
+        "its values.", 79))
     number(parser, "--until", float, group=g, positive=True, metavar="T",
            help="march up to T seconds (transient mode)")
     number(parser, "--step", float, group=g, positive=True, metavar="DT",
