@@ -34,8 +34,11 @@ K_CU, RHO_CU, C_CU = 401.0, 8933.0, 385.0
 
 
 def modes(capsys, *args):
-    """``hatkernels modes ARGS --quiet`` in this process: (exit code, stdout, stderr)."""
-    code = cli.main(["modes", *map(str, args), "--quiet"])
+    """``hatkernels modes ARGS --quiet --threads 1`` in this process: (exit code, stdout,
+    stderr).  One numba thread: these check numbers, and on a 2-core machine shared with
+    other work every parallel region of the many small products waits for a time slice
+    (measured: the plate's test 30 s with two threads under a load of 4, 1.8 s with one)."""
+    code = cli.main(["modes", *map(str, args), "--quiet", "--threads", "1"])
     captured = capsys.readouterr()
     return code, captured.out, captured.err
 

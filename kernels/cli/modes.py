@@ -153,6 +153,9 @@ def check(args):
             raise UsageError(f"{' and '.join(given)} cannot be combined with {what}: the "
                              f"problem file gives the mesh and the materials{see}")
     else:
+        if args.mesh is None and args.cells is None and args.refine is None:
+            args.refine = (modes_problem.BLOCK_REFINE if args.scenario == "block"
+                           else modes_problem.PLATE_REFINE)
         if args.cells is not None and args.refine is not None:
             raise UsageError(f"--cells and --refine both set the mesh size; give one{see}")
         if args.cells is not None and (args.mesh is not None or args.scenario == "block"):
@@ -168,11 +171,14 @@ def check(args):
 
 
 def _warm_up(args, dim, cooled):
-    """The same kind of eigenproblem on a tiny refined mesh, so that the kernels compile
-    (or load) before the phases are timed: lobpcg unless shift-invert is asked for, held or
-    cooled (``cooled``) as the real problem is, in ``dim`` dimensions."""
-    grid = rectangle(4, 4) if dim == 2 else cuboid(2, 2, 2)
-    grid = grid.refine().refine()
+    """The same kind of eigenproblem on a tiny mesh, so that the kernels compile (or load)
+    before the phases are timed: lobpcg unless shift-invert is asked for, in ``dim``
+    dimensions, held or cooled (``cooled``) and refined or not as the real problem is (the
+    default preconditioners differ)."""
+    if args.refine:
+        grid = (rectangle(4, 4) if dim == 2 else cuboid(2, 2, 2)).refine().refine()
+    else:
+        grid = rectangle(16, 16) if dim == 2 else cuboid(4, 4, 4)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")

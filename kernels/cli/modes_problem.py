@@ -19,7 +19,7 @@ import numpy as np
 
 from hatkernels.block import BLOCK
 from hatkernels.cli.problem import build_mesh, make_problem, refined
-from hatkernels.cli.summary import problem_record
+from hatkernels.cli.summary import file_record, problem_record
 from hatkernels.coefficients import per_cell
 from hatkernels.conditions import tagged
 from hatkernels.scenarios import COARSE_CELLS, PLATE
@@ -82,9 +82,8 @@ def _coefficient(value):
 
 
 def from_options(args, progress, arrays=None):
-    """The plate, the block or a ``--mesh`` file's problem (``arrays``: the file's, read)."""
-    if args.mesh is None and args.cells is None and args.refine is None:
-        args.refine = BLOCK_REFINE if args.scenario == "block" else PLATE_REFINE
+    """The plate, the block or a ``--mesh`` file's problem (``arrays``: the file's, read);
+    ``args.refine`` holds the default refinements (:func:`hatkernels.cli.modes.check`)."""
     mesh, description = build_mesh(args, progress, arrays)
     problem = make_problem(args, mesh, description)
     physical = problem.capacity is not None
@@ -147,31 +146,22 @@ def from_file(args, pf, progress):
     times = f", refined {args.refine} time{'s' if args.refine != 1 else ''}" if args.refine else ""
     description = (f"{os.path.basename(pf.mesh_path)} (lengths in {pf.length_unit}, scaled "
                    f"to metres){times}")
-    statement = [f"problem file {os.path.abspath(pf.path)}",
-                 "modes: -div(k grad T) = lambda (rho c) T, SI units"]
-    for m in pf.materials:
+    record = file_record(pf, mesh, args.refine,
+                         equation="natural thermal modes -div(k grad T) = lambda (rho c) T")
+    statement = record["statement"]
+    for m, entry in zip(pf.materials, record["materials"], strict=True):
         statement.append(f"{m.name}: k = {m.describe()}, rho c = {m.density:g} kg/m^3 x "
                          f"{m.specific_heat:g} J/(kg K) = {m.capacity:.6g} J/(m^3 K)")
+        entry.update(density=m.density, specific_heat=m.specific_heat, capacity=m.capacity)
     for c in pf.conditions:
         where = ", ".join(tags.side_label(t) for t in c.tags)
         modal = {"held": "a disturbance held at 0",
                  "convection": f"k dT/dn + h T = 0 (h = {c.value:g} W/(m^2 K))",
                  "flux": "insulated (the imposed flux sets the steady state only)"}[c.kind]
         statement.append(f"boundary tag {where}: {c.describe()}; in the modes {modal}")
-    statement.append("other boundary sides insulated; sources set the steady state, not the "
-                     "modes" + ("; nothing held or cooled: the first mode is the steady "
-                                "(uniform) one, lambda = 0" if not held and not cooled else ""))
-    record = {
-        "title": pf.title, "file": os.path.abspath(pf.path), "mesh_file": pf.mesh_path,
-        "length_unit": pf.length_unit, "refine": args.refine, "statement": statement,
-        "materials": [{"name": m.name, "regions": [tags.region_label(t) for t in m.tags],
-                       "conductivity": np.asarray(m.conductivity).tolist(),
-                       "density": m.density, "specific_heat": m.specific_heat,
-                       "capacity": m.capacity} for m in pf.materials],
-        "conditions": [{"name": c.name, "tags": [tags.side_label(t) for t in c.tags],
-                        "condition": c.kind, "value": c.value, "ambient": c.ambient}
-                       for c in pf.conditions],
-    }
+    statement.append("sources set the steady state, not the modes"
+                     + ("; nothing is held or cooled: the first mode is the steady (uniform) "
+                        "one, lambda = 0" if not held and not cooled else ""))
     return ModalProblem(name=pf.title, mesh=mesh, description=description, arguments=arguments,
                         statement=statement, record=record, units=SI_UNITS,
                         length_scale=1.0 / pf.scale, length_unit=pf.length_unit)

@@ -202,7 +202,7 @@ def report(modal, s, out):
     order = ("mesh", "kernels", "assemble", "setup", "solve")
     wu = solver["work_units"]
     lines.append(f"{'times':<16}"
-                 + ", ".join(f"{k} {format_seconds(t[k])}" for k in order if k in t)
+                 + ", ".join(f"{k} {format_seconds(t[k])}" for k in order if t.get(k))
                  + (f"; {wu:,.0f} work units (products with the stiffness matrix)"
                     if wu is not None else ""))
     table = _table(s)
