@@ -272,6 +272,26 @@ def test_outputs_are_written_whole_or_not_at_all(tmp_path, monkeypatch, capsys):
     assert len(record(out)["eigenvalues"]) == 3
 
 
+def test_without_the_optional_libraries_the_files_say_so(tmp_path, monkeypatch, capsys):
+    write_mesh(tmp_path / "square.npz", rectangle(8, 8))
+    monkeypatch.setattr(plot, "available", lambda: False)
+    monkeypatch.setattr(modes_report.kio, "meshio_available", lambda: False)
+    code, text, err = modes(capsys, "--mesh", tmp_path / "square.npz", "--count", 2, "--out",
+                            tmp_path / "o")
+    assert code == 0, err
+    assert sorted(os.listdir(tmp_path / "o")) == ["modes.npz", "summary.json"]
+    skipped = " ".join(record(tmp_path / "o")["skipped"])
+    assert "modes.png (matplotlib is not installed" in skipped
+    assert "modes.vtu (meshio is not installed" in skipped and "not written" in text
+
+
+def test_a_run_that_does_not_converge_exits_1_and_writes_nothing(tmp_path, capsys):
+    code, out, err = modes(capsys, "--refine", 1, "--method", "lobpcg", "--maxiter", 1,
+                           "--rtol", 1e-12, "--out", tmp_path / "o")
+    assert code == 1 and "did not converge" in one_error(err) and "--maxiter" in err
+    assert out == "" and os.listdir(tmp_path) == []
+
+
 def test_the_command_lists_modes(capsys):
     assert cli.main([]) == 2
     assert "choose a command: solve, modes" in capsys.readouterr().err
