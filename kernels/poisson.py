@@ -93,6 +93,7 @@ def solve_poisson(
     rtol=1e-10,
     atol=0.0,
     maxiter=None,
+    start=None,
     check=False,
     quadrature=2,
     matrix_free=None,
@@ -115,8 +116,12 @@ def solve_poisson(
     f, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin, quadrature, zero_mean
         The problem: see :class:`hatkernels.problem.PoissonProblem` (``zero_mean=True``
         solves a pure Neumann part for its solution with mean zero).
-    preconditioner, rtol, atol, maxiter, check, **preconditioner_options
-        As in :func:`hatkernels.solve`.
+    preconditioner, rtol, atol, maxiter, start, check, **preconditioner_options
+        As in :func:`hatkernels.solve`.  With ``refine=k`` and ``gmg``,
+        ``start="nested"`` begins CG from full multigrid (the coarse
+        solution worked up the levels), and ``rtol=None`` returns that
+        start alone: discretisation accuracy on smooth data for about one
+        and a third cycles' work (docs/solvers.md).
     matrix_free : bool, optional
         Solve with the matrix-free :class:`~hatkernels.StiffnessOperator`
         instead of an assembled matrix.  Default: True when the
@@ -159,6 +164,12 @@ def solve_poisson(
     problem = PoissonProblem(mesh, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
                              coefficient=coefficient, reaction=reaction, neumann=neumann,
                              robin=robin, quadrature=quadrature, zero_mean=zero_mean)
+    if rtol is None and np.any(problem.dirichlet.values != 0):
+        raise InputError(
+            "rtol=None (the nested start alone) reaches discretisation accuracy with zero held "
+            "values only: with held values the system's lifting is not smooth on the coarser "
+            f"levels ({int(np.count_nonzero(problem.dirichlet.values))} held points have a "
+            "nonzero value); give a tolerance (start='nested' still shortens CG)")
     if memory_check:
         check_solve_memory(mesh, preconditioner)
     checked = time.perf_counter() - t0
@@ -169,7 +180,7 @@ def solve_poisson(
     if progress is not None:
         progress("solve")
     result = solve(system.A, system.b, preconditioner=preconditioner, rtol=rtol, atol=atol,
-                   maxiter=maxiter, check=check, monitor=monitor,
+                   maxiter=maxiter, start=start, check=check, monitor=monitor,
                    context=system.context() if isinstance(preconditioner, str) else None,
                    **preconditioner_options)
     u = system.expand(result.x)

@@ -25,9 +25,10 @@ from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.krylov import cg_with_history
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.precond import make_preconditioner
+from hatkernels.sparse import as_vector
 from hatkernels.stats import SolveStats
 
-__all__ = ["solve", "SolveResult", "report_convergence", "stored_bytes"]
+__all__ = ["solve", "SolveResult", "report_convergence", "stored_bytes", "STARTS"]
 
 
 @dataclass
@@ -65,8 +66,12 @@ def stored_bytes(A):
     return int(getattr(A, "nbytes", 0))
 
 
+#: What ``start`` may name: the first iterate of CG when no ``x0`` is given.
+STARTS = ("zero", "nested")
+
+
 def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=None,
-          check=False, monitor=None, context=None, **preconditioner_options):
+          start=None, check=False, monitor=None, context=None, **preconditioner_options):
     """Solve the symmetric positive definite system ``A x = b``.
 
     Parameters
@@ -80,6 +85,16 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
         approximating ``A^{-1}`` (symmetric positive definite).
     rtol, atol, maxiter, x0
         As in :func:`hatkernels.krylov.cg` (``maxiter`` defaults to ``10 n``).
+        ``rtol=None``: no CG iteration at all, the ``"nested"`` start alone
+        (full multigrid: discretisation accuracy on smooth problems for
+        about one cycle's work and a third, with no residual tolerance
+        asked; ``converged`` is then True and ``message`` says so).
+    start : {"zero", "nested"}, optional
+        The first iterate when ``x0`` is None: zero, or full multigrid
+        (nested iteration from the coarsest level up, ``cycles`` cycles per
+        level: the preconditioner's ``full_cycle_into``, which ``gmg`` has),
+        after which CG goes on to ``rtol``.  Default ``"nested"`` with
+        ``rtol=None``, else ``"zero"``.
     check : bool
         Raise :class:`ConvergenceError` instead of warning when not converged.
     monitor : callable, optional
@@ -114,24 +129,28 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
         setup = 0.0
         description = getattr(M, "description", None) or repr(M)
     elif isinstance(preconditioner, str):
-        start = time.perf_counter()
+        clock = time.perf_counter()
         M = make_preconditioner(A, preconditioner, context=context, **preconditioner_options)
-        setup = time.perf_counter() - start
+        setup = time.perf_counter() - clock
         description = M.description
     else:
         raise InputError(f"preconditioner must be a name or a LinearOperator, "
                          f"got {type(preconditioner).__name__}")
 
-    start = time.perf_counter()
-    outcome = cg_with_history(A, b, x0, rtol=rtol, atol=atol, maxiter=maxiter, M=M, warn=False,
-                              monitor=monitor)
-    elapsed = time.perf_counter() - start
+    x0, first, start = _first_iterate(A, b, x0, start, rtol, M, description)
+    clock = time.perf_counter()
+    outcome = cg_with_history(A, b, x0, rtol=np.inf if rtol is None else rtol, atol=atol,
+                              maxiter=maxiter, M=M, warn=False, monitor=monitor)
+    elapsed = time.perf_counter() - clock
+    if rtol is None:
+        outcome.message = ("the nested start alone (rtol=None): full multigrid, no residual "
+                           "tolerance asked")
 
     stats = SolveStats(
         iterations=outcome.iterations,
         converged=outcome.converged,
         residuals=outcome.residuals,
-        timings={"setup": setup, "solve": elapsed},
+        timings={"setup": setup, "solve": elapsed, **first},
         unknowns=int(A.shape[0]),
         preconditioner=description,
         stored_bytes=stored_bytes(A),
@@ -146,6 +165,30 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
     )
     report_convergence(stats, check, stacklevel=3)
     return SolveResult(x=outcome.x, stats=stats)
+
+
+def _first_iterate(A, b, x0, start, rtol, M, description):
+    """``(x0, timings, start)``: the first iterate CG is given, ``{"start": seconds}`` when
+    it was computed by full multigrid, and the start's name."""
+    if start is None:
+        start = "nested" if rtol is None and x0 is None else "zero"
+    if start not in STARTS:
+        raise InputError(f"start must be one of {STARTS}, got {start!r}")
+    if start == "zero":
+        if rtol is None:
+            raise InputError("rtol=None asks for the nested start alone, but start='zero'")
+        return x0, {}, start
+    if x0 is not None:
+        raise InputError("x0 and start='nested' both give the first iterate; give one")
+    nested = getattr(M, "full_cycle_into", None)
+    if nested is None:
+        raise InputError(f"start='nested' (and rtol=None) need a multigrid preconditioner "
+                         f"with nested levels (gmg); {description} has none")
+    clock = time.perf_counter()
+    b = as_vector(b, A.shape[0], "b")
+    x = np.empty(A.shape[0])
+    nested(b, x)
+    return x, {"start": time.perf_counter() - clock}, start
 
 
 def report_convergence(stats, check, stacklevel=2):

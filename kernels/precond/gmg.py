@@ -33,17 +33,16 @@ from __future__ import annotations
 import numpy as np
 
 from hatkernels._jit import multigrid as _mg
-from hatkernels._jit import sparse as _k
 from hatkernels._sets import index_complement, index_union
 from hatkernels.assembly import assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.checks import integer_option, point_indices, real_option
-from hatkernels.coefficients import Coefficient, parse_coefficient
+from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
 from hatkernels.operators import StiffnessOperator, default_variant
-from hatkernels.precond.chebyshev import ChebyshevSmoother
 from hatkernels.precond.direct import SparseDirect
+from hatkernels.precond.gmg_levels import Level, coarsen_coefficient
 from hatkernels.precond.registry import Preconditioner, make_preconditioner
 
 __all__ = ["GeometricMultigrid", "coarsen_coefficient"]
@@ -57,116 +56,6 @@ NO_HISTORY = (
     "coarse mesh (for example hatkernels.mesh.rectangle(16, 16).refine().refine().refine()), "
     "or use preconditioner='amg'"
 )
-
-
-def coarsen_coefficient(coef, fine, coarse):
-    """The coefficient of the coarse mesh that ``fine`` was refined from.
-
-    Uniform refinement splits a cell into ``2**dim`` children, numbered
-    consecutively: per-cell values and tensors are averaged over them.
-    """
-    if coef.kind in ("constant", "callable"):
-        return coef
-    children = 2 ** fine.dim
-    if coef.kind == "cell":
-        return Coefficient(
-            "cell", coef.value.reshape(-1, children).mean(axis=1), coef.name, coef.sign
-        )
-    if coef.kind == "point":
-        return Coefficient(
-            "point", coef.value[fine.refinement.coarse_points], coef.name, coef.sign
-        )
-    if coef.value.ndim == 2:
-        return coef
-    return Coefficient(
-        "tensor", coef.value.reshape(-1, children, fine.dim, fine.dim).mean(axis=1), coef.name,
-        coef.sign
-    )
-
-
-class _JacobiSmoother:
-    """``steps`` damped Jacobi sweeps ``x += omega D^-1 (b - A x)``; symmetric."""
-
-    def __init__(self, product, residual, dinv, steps, omega):
-        self.residual = residual
-        self.scaled = omega * dinv
-        self.steps = steps
-
-    @property
-    def nbytes(self):
-        return self.scaled.nbytes
-
-    def smooth(self, x, b, zero_guess, r, d, q):
-        for step in range(self.steps):
-            if zero_guess and step == 0:
-                _k.jacobi_apply(self.scaled, b, x)  # from x = 0: x is the first update
-                continue
-            self.residual(x, b, r)
-            _k.jacobi_apply(self.scaled, r, d)
-            _k.xpby(d, 1.0, x)
-
-
-class _Level:
-    """One level: operator, smoother, work vectors, and the transfer to the next coarser one."""
-
-    def __init__(self, mesh, coef, fixed, variant, smoother, degree, omega, quadrature, op=None,
-                 own_x=True, lower=None):
-        self.mesh = mesh
-        self.fixed = fixed
-        if op is None:
-            op = StiffnessOperator(
-                mesh, coef, variant=variant, dirichlet=fixed, quadrature=quadrature
-            )
-        self.op = op
-        n = mesh.n_points
-        self.r, self.d, self.q = np.empty(n), np.empty(n), np.empty(n)
-        # the cycle's solution and right-hand side on this level: a finer level
-        # restricts into them; on the finest level the preconditioner's input
-        # goes into b and x is the caller's output (or a full-size buffer
-        # when the caller's vectors hold the free points only)
-        self.x = np.empty(n) if own_x else None
-        self.b = np.empty(n)
-        # Gershgorin's bound: guaranteed, one pass with the diagonal, and tight (2)
-        # on meshes without obtuse angle pairs; a Lanczos estimate would cost ten
-        # products.  The diagonal is inverted in place: one vector per level.
-        diag, bound = self.op.diagonal_and_bound()
-        dinv = np.reciprocal(diag, out=diag)
-        if smoother == "chebyshev":
-            self.smoother = ChebyshevSmoother(
-                self.op.matvec_into, self.residual, dinv, degree, bound=bound, estimate=False,
-                lower=lower,
-            )
-        else:
-            self.smoother = _JacobiSmoother(
-                self.op.matvec_into, self.residual, dinv, degree, omega
-            )
-        self.transfer = None
-
-    def residual(self, x, b, out):
-        self.op.matvec_into(x, out)
-        _k.xpby(b, -1.0, out)
-
-    def smooth(self, x, b, zero_guess):
-        self.smoother.smooth(x, b, zero_guess, self.r, self.d, self.q)
-
-    def set_transfer(self, refinement):
-        """Index arrays for prolongation from and restriction to the coarser mesh."""
-        e = refinement.edge_points
-        nc = refinement.coarse.n_points
-        dt = e.dtype
-        first_low = np.zeros(nc + 1, dtype=dt)
-        np.cumsum(np.bincount(e[:, 0], minlength=nc), out=first_low[1:])
-        by_high = np.argsort(e[:, 1], kind="stable").astype(dt)
-        by_high_ptr = np.zeros(nc + 1, dtype=dt)
-        np.cumsum(np.bincount(e[:, 1], minlength=nc), out=by_high_ptr[1:])
-        self.transfer = (refinement.coarse_points, e, refinement.midpoints, first_low,
-                         by_high_ptr, by_high)
-
-    @property
-    def nbytes(self):
-        vectors = (4 + (self.x is not None)) * self.r.nbytes
-        transfer = sum(a.nbytes for a in self.transfer) if self.transfer else 0
-        return vectors + transfer + self.op.nbytes + self.smoother.nbytes + self.fixed.nbytes
 
 
 class GeometricMultigrid(Preconditioner):
@@ -203,6 +92,9 @@ class GeometricMultigrid(Preconditioner):
         Jacobi damping.
     coarse : {"direct", "amg"}
         Solver of the coarsest level (``amg`` when it is too big to factorise).
+    nested_cycles : int
+        Cycles per level of :meth:`full_cycle_into` (full multigrid, the
+        ``start="nested"`` of :func:`hatkernels.solve`); default 1.
     variant : str, optional
         Matrix-free variant of the level operators (default: that of ``A``
         when it is a StiffnessOperator, whose data the finest level then
@@ -262,6 +154,7 @@ class GeometricMultigrid(Preconditioner):
         coarse="direct",
         variant=None,
         quadrature=2,
+        nested_cycles=1,
     ):
         fine_op = None
         if isinstance(A, StiffnessOperator):
@@ -290,6 +183,7 @@ class GeometricMultigrid(Preconditioner):
             if value not in choices:
                 raise InputError(f"gmg: {name} must be one of {choices}, got {value!r}")
         degree = integer_option(degree, "gmg: degree", minimum=1)
+        self.nested_cycles = integer_option(nested_cycles, "gmg: nested_cycles", minimum=1)
         lower = real_option(lower, "gmg: lower", between=(0, 1))
         n = mesh.n_points
         fixed = self._fixed(mesh, dirichlet)
@@ -332,7 +226,7 @@ class GeometricMultigrid(Preconditioner):
         # the finest level's x is the caller's output, unless A acts on the free points only
         own_x = [True] * (len(meshes) - 2) + [self._free is not None]
         self.levels = [
-            _Level(m, c, f, variant, smoother, self.degree, omega, quadrature, op, own, lower)
+            Level(m, c, f, variant, smoother, self.degree, omega, quadrature, op, own, lower)
             for m, c, f, op, own in zip(meshes[1:], coefs[1:], fixeds[1:], ops, own_x,
                                         strict=True)
         ]
@@ -387,6 +281,59 @@ class GeometricMultigrid(Preconditioner):
             x = fine.x
         _mg.zero_at(fine.fixed, b)
         self._cycle(len(self.levels), x, b, True, self.cycle)
+        if self._free is None:
+            x[fine.fixed] = r[fine.fixed]  # identity rows are solved exactly
+        else:
+            out[:] = x[self._free]
+        return out
+
+    def full_cycle_into(self, r, out, cycles=None):
+        """``out`` = full multigrid's approximation of ``A^-1 r``: nested iteration.
+
+        The right-hand side goes down the levels by restriction (the
+        transpose of the linear interpolation: on nested spaces, exactly the
+        load the coarser mesh's own hat functions see); the coarsest level
+        is solved; then each finer level starts from the interpolated
+        solution of the one below and runs ``cycles`` cycles.  On a smooth
+        problem each level's algebraic error then stays below its
+        discretisation error (A. Brandt, Multi-level adaptive solutions to
+        boundary-value problems, Math. Comp. 31, 1977; U. Trottenberg,
+        C. W. Oosterlee and A. Schuller, Multigrid, 2001, section 2.6), for
+        about ``cycles`` cycles' work and a third more (default: the
+        ``nested_cycles`` the preconditioner was built with).  ``r`` and
+        ``out`` as in :meth:`apply_into`.
+        """
+        cycles = self.nested_cycles if cycles is None else integer_option(
+            cycles, "gmg: cycles", minimum=1)
+        fine = self.levels[-1]
+        b = fine.b
+        if self._free is None:
+            b[:] = r
+            x = out
+        else:
+            b[:] = 0.0
+            b[self._free] = r
+            x = fine.x
+        _mg.zero_at(fine.fixed, b)
+        count = len(self.levels)
+        below = [(self._coarse_x, self._coarse_b, self.coarse_fixed)] + [
+            (lv.x, lv.b, lv.fixed) for lv in self.levels[:-1]]
+        for level in range(count, 0, -1):  # the loads, finest to coarsest
+            lv = self.levels[level - 1]
+            cp, e, mid, first_low, by_high_ptr, by_high = lv.transfer
+            _, bc, cfixed = below[level - 1]
+            _mg.restrict(cp, mid, first_low, by_high_ptr, by_high, lv.b, bc)
+            _mg.zero_at(cfixed, bc)
+        self._coarse_solve(self._coarse_x, self._coarse_b, True)
+        for level in range(1, count + 1):  # the solutions, coarsest to finest
+            lv = self.levels[level - 1]
+            xl = x if level == count else lv.x
+            cp, e, mid = lv.transfer[:3]
+            xl[:] = 0.0
+            _mg.prolong_add(cp, e, mid, below[level - 1][0], xl)
+            _mg.zero_at(lv.fixed, xl)
+            for _ in range(cycles):
+                self._cycle(level, xl, lv.b, False, self.cycle)
         if self._free is None:
             x[fine.fixed] = r[fine.fixed]  # identity rows are solved exactly
         else:

@@ -1,0 +1,125 @@
+"""The levels of the geometric multigrid (:mod:`hatkernels.precond.gmg`): coefficients
+taken down the refinement history, the damped Jacobi smoother, and one level's operator,
+smoother, work vectors and transfer indices.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from hatkernels._jit import sparse as _k
+from hatkernels.coefficients import Coefficient
+from hatkernels.operators import StiffnessOperator
+from hatkernels.precond.chebyshev import ChebyshevSmoother
+
+__all__ = ["Level", "JacobiSmoother", "coarsen_coefficient"]
+
+
+def coarsen_coefficient(coef, fine, coarse):
+    """The coefficient of the coarse mesh that ``fine`` was refined from.
+
+    Uniform refinement splits a cell into ``2**dim`` children, numbered
+    consecutively: per-cell values and tensors are averaged over them.
+    """
+    if coef.kind in ("constant", "callable"):
+        return coef
+    children = 2 ** fine.dim
+    if coef.kind == "cell":
+        return Coefficient(
+            "cell", coef.value.reshape(-1, children).mean(axis=1), coef.name, coef.sign
+        )
+    if coef.kind == "point":
+        return Coefficient(
+            "point", coef.value[fine.refinement.coarse_points], coef.name, coef.sign
+        )
+    if coef.value.ndim == 2:
+        return coef
+    return Coefficient(
+        "tensor", coef.value.reshape(-1, children, fine.dim, fine.dim).mean(axis=1), coef.name,
+        coef.sign
+    )
+
+
+class JacobiSmoother:
+    """``steps`` damped Jacobi sweeps ``x += omega D^-1 (b - A x)``; symmetric."""
+
+    def __init__(self, product, residual, dinv, steps, omega):
+        self.residual = residual
+        self.scaled = omega * dinv
+        self.steps = steps
+
+    @property
+    def nbytes(self):
+        return self.scaled.nbytes
+
+    def smooth(self, x, b, zero_guess, r, d, q):
+        for step in range(self.steps):
+            if zero_guess and step == 0:
+                _k.jacobi_apply(self.scaled, b, x)  # from x = 0: x is the first update
+                continue
+            self.residual(x, b, r)
+            _k.jacobi_apply(self.scaled, r, d)
+            _k.xpby(d, 1.0, x)
+
+
+class Level:
+    """One level: operator, smoother, work vectors, and the transfer to the next coarser one."""
+
+    def __init__(self, mesh, coef, fixed, variant, smoother, degree, omega, quadrature, op=None,
+                 own_x=True, lower=None):
+        self.mesh = mesh
+        self.fixed = fixed
+        if op is None:
+            op = StiffnessOperator(
+                mesh, coef, variant=variant, dirichlet=fixed, quadrature=quadrature
+            )
+        self.op = op
+        n = mesh.n_points
+        self.r, self.d, self.q = np.empty(n), np.empty(n), np.empty(n)
+        # the cycle's solution and right-hand side on this level: a finer level
+        # restricts into them; on the finest level the preconditioner's input
+        # goes into b and x is the caller's output (or a full-size buffer
+        # when the caller's vectors hold the free points only)
+        self.x = np.empty(n) if own_x else None
+        self.b = np.empty(n)
+        # Gershgorin's bound: guaranteed, one pass with the diagonal, and tight (2)
+        # on meshes without obtuse angle pairs; a Lanczos estimate would cost ten
+        # products.  The diagonal is inverted in place: one vector per level.
+        diag, bound = self.op.diagonal_and_bound()
+        dinv = np.reciprocal(diag, out=diag)
+        if smoother == "chebyshev":
+            self.smoother = ChebyshevSmoother(
+                self.op.matvec_into, self.residual, dinv, degree, bound=bound, estimate=False,
+                lower=lower,
+            )
+        else:
+            self.smoother = JacobiSmoother(
+                self.op.matvec_into, self.residual, dinv, degree, omega
+            )
+        self.transfer = None
+
+    def residual(self, x, b, out):
+        self.op.matvec_into(x, out)
+        _k.xpby(b, -1.0, out)
+
+    def smooth(self, x, b, zero_guess):
+        self.smoother.smooth(x, b, zero_guess, self.r, self.d, self.q)
+
+    def set_transfer(self, refinement):
+        """Index arrays for prolongation from and restriction to the coarser mesh."""
+        e = refinement.edge_points
+        nc = refinement.coarse.n_points
+        dt = e.dtype
+        first_low = np.zeros(nc + 1, dtype=dt)
+        np.cumsum(np.bincount(e[:, 0], minlength=nc), out=first_low[1:])
+        by_high = np.argsort(e[:, 1], kind="stable").astype(dt)
+        by_high_ptr = np.zeros(nc + 1, dtype=dt)
+        np.cumsum(np.bincount(e[:, 1], minlength=nc), out=by_high_ptr[1:])
+        self.transfer = (refinement.coarse_points, e, refinement.midpoints, first_low,
+                         by_high_ptr, by_high)
+
+    @property
+    def nbytes(self):
+        vectors = (4 + (self.x is not None)) * self.r.nbytes
+        transfer = sum(a.nbytes for a in self.transfer) if self.transfer else 0
+        return vectors + transfer + self.op.nbytes + self.smoother.nbytes + self.fixed.nbytes
