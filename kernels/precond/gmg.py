@@ -265,11 +265,9 @@ class GeometricMultigrid(Preconditioner):
         self.apply_into(r, out)
         return out
 
-    def apply_into(self, r, out):
-        """``out = M r`` (one cycle from a zero guess) with no allocation on the finest level.
-
-        ``r`` and ``out`` are distinct contiguous float64 vectors of length ``n``.
-        """
+    def _finest_input(self, r, out):
+        """The finest level's right-hand side filled from ``r`` (zero at the fixed points),
+        and the vector its solution goes into (``out`` itself when A acts on all points)."""
         fine = self.levels[-1]
         b = fine.b
         if self._free is None:
@@ -280,12 +278,24 @@ class GeometricMultigrid(Preconditioner):
             b[self._free] = r
             x = fine.x
         _mg.zero_at(fine.fixed, b)
-        self._cycle(len(self.levels), x, b, True, self.cycle)
+        return b, x
+
+    def _finest_output(self, r, out, x):
         if self._free is None:
-            x[fine.fixed] = r[fine.fixed]  # identity rows are solved exactly
+            fixed = self.levels[-1].fixed
+            x[fixed] = r[fixed]  # identity rows are solved exactly
         else:
             out[:] = x[self._free]
         return out
+
+    def apply_into(self, r, out):
+        """``out = M r`` (one cycle from a zero guess) with no allocation on the finest level.
+
+        ``r`` and ``out`` are distinct contiguous float64 vectors of length ``n``.
+        """
+        b, x = self._finest_input(r, out)
+        self._cycle(len(self.levels), x, b, True, self.cycle)
+        return self._finest_output(r, out, x)
 
     def full_cycle_into(self, r, out, cycles=None):
         """``out`` = full multigrid's approximation of ``A^-1 r``: nested iteration.
@@ -305,16 +315,7 @@ class GeometricMultigrid(Preconditioner):
         """
         cycles = self.nested_cycles if cycles is None else integer_option(
             cycles, "gmg: cycles", minimum=1)
-        fine = self.levels[-1]
-        b = fine.b
-        if self._free is None:
-            b[:] = r
-            x = out
-        else:
-            b[:] = 0.0
-            b[self._free] = r
-            x = fine.x
-        _mg.zero_at(fine.fixed, b)
+        _, x = self._finest_input(r, out)
         count = len(self.levels)
         below = [(self._coarse_x, self._coarse_b, self.coarse_fixed)] + [
             (lv.x, lv.b, lv.fixed) for lv in self.levels[:-1]]
@@ -334,11 +335,7 @@ class GeometricMultigrid(Preconditioner):
             _mg.zero_at(lv.fixed, xl)
             for _ in range(cycles):
                 self._cycle(level, xl, lv.b, False, self.cycle)
-        if self._free is None:
-            x[fine.fixed] = r[fine.fixed]  # identity rows are solved exactly
-        else:
-            out[:] = x[self._free]
-        return out
+        return self._finest_output(r, out, x)
 
     def _coarse_solve(self, x, b, zero_guess):
         free = self._coarse_free
