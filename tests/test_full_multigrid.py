@@ -122,6 +122,10 @@ def test_bad_starts_are_named():
         solve_poisson(m, 1.0, preconditioner="amg", rtol=None)
     with pytest.raises(InputError, match="start='zero'"):
         solve_poisson(m, 1.0, preconditioner="gmg", rtol=None, start="zero")
+    from hatkernels import distributed
+
+    with pytest.raises(InputError, match="serial only"):
+        distributed.solve_poisson(m, 1.0, refine=1, start="nested")
     with pytest.raises(InputError, match="nested_cycles"):
         solve_poisson(m, 1.0, preconditioner="gmg", rtol=None, nested_cycles=0)
     A = apply_dirichlet(assemble_stiffness(m), assemble_load(m, 1.0), m.boundary_points())

@@ -135,6 +135,7 @@ def solve_poisson(
     rtol=1e-10,
     atol=0.0,
     maxiter=None,
+    start=None,
     check=False,
     quadrature=2,
     matrix_free=None,
@@ -190,6 +191,10 @@ def solve_poisson(
         ``**preconditioner_options`` go to it.
     rtol, atol, maxiter, check
         As in the serial solve; the stopping rule is on the global residual.
+    start : None or "zero"
+        CG starts from zero; the serial solve's full-multigrid start
+        (``start="nested"``, ``rtol=None``) is not distributed yet and is
+        refused (InputError, on every rank).
     quadrature : int
     matrix_free, variant
         On the partitioned path: the level operators are matrix-free by
@@ -239,6 +244,10 @@ def solve_poisson(
     ConvergenceError
         With ``check=True``, on every rank.
     """
+    if rtol is None or start not in (None, "zero"):
+        raise InputError(f"start={start!r}, rtol={rtol!r}: the full-multigrid start is serial "
+                         f"only (hatkernels.solve_poisson); the distributed solve starts CG "
+                         f"from zero and needs a tolerance")
     agreed = {"refine": refine, "preconditioner": preconditioner, "coarse": coarse,
               "gather": gather, "rtol": rtol, "atol": atol, "maxiter": maxiter}
     seen = None
