@@ -168,6 +168,9 @@ def test_product_tetrahedra(benchmark, machine, request, cube, numbering, method
     elif method == "csr":
         fn = lambda: _k.spmv(A.indptr, A.indices, A.data, x, y)  # noqa: E731
         stored, moved = csr_stored, csr_bytes(A)
+    elif method == "public":
+        fn = lambda: spmv(A, x, out=y)  # noqa: E731
+        stored, moved = csr_stored, csr_bytes(A)
     else:
         op = StiffnessOperator(mesh, variant=method)
         fn = lambda: op.matvec_into(x, y)  # noqa: E731
