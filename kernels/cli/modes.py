@@ -25,7 +25,7 @@ from hatkernels.block import BLOCK
 from hatkernels.cli import modes_problem, modes_report
 from hatkernels.cli.common import command_line, threads
 from hatkernels.cli.options import UsageError, number, output
-from hatkernels.cli.problem import REFINE_HINT, needs_refinement
+from hatkernels.cli.problem import REFINE_HINT, needs_refinement, read_mesh_option
 from hatkernels.cli.progress import CompileNotice
 from hatkernels.distributed.launch import ranks_from_environment
 from hatkernels.eigen import METHODS, eigenmodes
@@ -217,12 +217,9 @@ def run(args, progress):
     command = command_line(args)
     timings = {}
     with kio.output_directory(args.out, force=args.force) as tmp, threads(args.threads):
-        arrays = None
         dim, cooled = modes_problem.kind(args, pf)
-        if args.mesh is not None:  # a missing or unreadable file fails before any compiling
-            progress.phase(f"mesh: reading {args.mesh}")
-            arrays = kio.read_mesh_arrays(args.mesh)
-            dim = 3 if arrays[0].ndim == 2 and arrays[0].shape[1] == 3 else 2
+        arrays, file_dim = read_mesh_option(args, progress)
+        dim = file_dim or dim
         progress.phase("kernels: loading compiled kernels (or compiling them)")
         with CompileNotice(progress) as notice:
             _warm_up(args, dim, cooled)

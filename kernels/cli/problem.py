@@ -10,8 +10,8 @@ from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.mesh import Mesh, cuboid, rectangle
 from hatkernels.scenarios import COARSE_CELLS, DEFAULT_CELLS, PLATE
 
-__all__ = ["REFINE_HINT", "build_mesh", "make_problem", "needs_refinement", "refined",
-           "tiny_problem"]
+__all__ = ["REFINE_HINT", "build_mesh", "make_problem", "needs_refinement", "read_mesh_option",
+           "refined", "tiny_problem"]
 
 #: Added to the library's refusal of a preconditioner that needs a mesh made by refinement.
 REFINE_HINT = "; in this command --refine K builds the mesh by refinement"
@@ -23,6 +23,18 @@ def _times(k):
 
 def _is_block(args):
     return args.mesh is None and args.scenario == "block"
+
+
+def read_mesh_option(args, progress):
+    """``(arrays, dim)`` of the ``--mesh`` file, or ``(None, None)`` without one.
+
+    Read before any compiling, so that a missing or unreadable file fails first.
+    """
+    if args.mesh is None:
+        return None, None
+    progress.phase(f"mesh: reading {args.mesh}")
+    arrays = kio.read_mesh_arrays(args.mesh)
+    return arrays, 3 if arrays[0].ndim == 2 and arrays[0].shape[1] == 3 else 2
 
 
 def build_mesh(args, progress, arrays=None):

@@ -24,6 +24,7 @@ from hatkernels.cli.problem import (
     build_mesh,
     make_problem,
     needs_refinement,
+    read_mesh_option,
     tiny_problem,
 )
 from hatkernels.cli.progress import CompileNotice, IterationReport
@@ -92,14 +93,10 @@ def run(args, progress):
     # The temporary output directory is made first: an output that cannot be
     # created fails before the solve, and every later failure removes it.
     with kio.output_directory(args.out, force=args.force) as tmp, threads(args.threads):
-        arrays, dim = None, 2
-        if args.mesh is not None:  # a missing or unreadable file fails before any compiling
-            progress.phase(f"mesh: reading {args.mesh}")
-            arrays = kio.read_mesh_arrays(args.mesh)
-            dim = 3 if arrays[0].ndim == 2 and arrays[0].shape[1] == 3 else 2
+        arrays, dim = read_mesh_option(args, progress)
         progress.phase("kernels: loading compiled kernels (or compiling them)")
         with CompileNotice(progress) as notice:
-            _warm_up(args, dim)
+            _warm_up(args, dim or 2)
         t0 = time.perf_counter()
         mesh, description = build_mesh(args, progress, arrays)
         problem = make_problem(args, mesh, description)

@@ -32,7 +32,14 @@ from hatkernels import io as kio
 from hatkernels.block import BLOCK
 from hatkernels.cli.common import command_line, threads
 from hatkernels.cli.options import UsageError, number
-from hatkernels.cli.problem import REFINE_HINT, build_mesh, make_problem, needs_refinement, refined
+from hatkernels.cli.problem import (
+    REFINE_HINT,
+    build_mesh,
+    make_problem,
+    needs_refinement,
+    read_mesh_option,
+    refined,
+)
 from hatkernels.cli.progress import ITERATION_REPORT_SECONDS, CompileNotice
 from hatkernels.cli.summary import file_record
 from hatkernels.cli.transient_report import report, summary_record, write_files
@@ -408,13 +415,9 @@ def _execute(args, progress, make_case, dim, pf=None):
 
 def run(args, progress):
     """``hatkernels solve --until T`` on the plate, the block or a ``--mesh`` file."""
-    arrays, dim = None, 2
-    if args.mesh is not None:  # a missing or unreadable file fails before any compiling
-        progress.phase(f"mesh: reading {args.mesh}")
-        arrays = kio.read_mesh_arrays(args.mesh)
-        dim = 3 if arrays[0].ndim == 2 and arrays[0].shape[1] == 3 else 2
-    elif args.scenario == "block":
-        dim = 3
+    arrays, dim = read_mesh_option(args, progress)
+    if dim is None:
+        dim = 3 if args.scenario == "block" else 2
     return _execute(args, progress, lambda: scenario_case(args, progress, arrays), dim)
 
 
