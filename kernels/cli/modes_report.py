@@ -17,6 +17,7 @@ from hatkernels import plot
 from hatkernels._text import format_seconds
 from hatkernels.cli.common import PROG, base_record, not_installed, versions
 from hatkernels.cli.modes_figure import modes_figure
+from hatkernels.cli.outputs import write_summary, write_vtu_or_skip
 from hatkernels.cli.summary import CELLS, _mesh_record
 from hatkernels.perf import peak_rss_bytes
 
@@ -145,17 +146,10 @@ def write(directory, modal, modes, record, pictures, progress, out):
         files.append("modes.png")
     else:
         skipped.append(not_installed("modes.png", "matplotlib"))
-    if kio.meshio_available():
-        progress.phase("write: modes.vtu")
-        kio.write_vtu(os.path.join(directory, "modes.vtu"), mesh,
-                      {f"mode_{j + 1}": V[:, j] for j in range(V.shape[1])})
-        files.append("modes.vtu")
-    else:
-        skipped.append(not_installed("modes.vtu", "meshio"))
-    record["files"] = files
-    record["skipped"] = skipped
-    kio.write_json(os.path.join(directory, "summary.json"), record)
-    return files, skipped
+    write_vtu_or_skip(directory, "modes.vtu", mesh,
+                      {f"mode_{j + 1}": V[:, j] for j in range(V.shape[1])}, None, files,
+                      skipped, progress)
+    return write_summary(directory, record, files, skipped)
 
 
 def _table(s):

@@ -8,7 +8,7 @@ from hatkernels import io as kio
 from hatkernels import plot
 from hatkernels.cli.common import not_installed
 
-__all__ = ["identity", "write_outputs", "write_solve_outputs"]
+__all__ = ["identity", "write_outputs", "write_solve_outputs", "write_summary", "write_vtu_or_skip"]
 
 #: What summary.json repeats in the metadata of solution.npz.
 NPZ_METADATA = ("generator", "created", "command", "caution", "units", "problem", "solution")
@@ -68,12 +68,24 @@ def write_outputs(directory, mesh, u, summary, progress, rtol, *, cell, name, qu
         files += ["solution.png", "residuals.png"]
     else:
         skipped.append(not_installed("solution.png and residuals.png", "matplotlib"))
+    write_vtu_or_skip(directory, "solution.vtu", mesh, point, cell, files, skipped, progress)
+    return write_summary(directory, summary, files, skipped)
+
+
+def write_vtu_or_skip(directory, name, mesh, point, cell, files, skipped, progress):
+    """``name`` (VTU, through meshio) into ``directory`` and onto ``files``; without meshio,
+    why not onto ``skipped``."""
     if kio.meshio_available():
-        progress.phase("write: solution.vtu")
-        kio.write_vtu(os.path.join(directory, "solution.vtu"), mesh, point, cell)
-        files.append("solution.vtu")
+        progress.phase(f"write: {name}")
+        kio.write_vtu(os.path.join(directory, name), mesh, point, cell)
+        files.append(name)
     else:
-        skipped.append(not_installed("solution.vtu", "meshio"))
+        skipped.append(not_installed(name, "meshio"))
+
+
+def write_summary(directory, summary, files, skipped):
+    """``summary`` with the lists of the files written and skipped, as ``summary.json`` in
+    ``directory``; returns ``(files, skipped)``."""
     summary["files"] = files
     summary["skipped"] = skipped
     kio.write_json(os.path.join(directory, "summary.json"), summary)

@@ -34,6 +34,7 @@ from hatkernels import io as kio
 from hatkernels import plot, scenarios
 from hatkernels._text import format_seconds
 from hatkernels.cli.common import base_record, not_installed, versions
+from hatkernels.cli.outputs import write_summary
 from hatkernels.cli.summary import CELLS, _run_record, problem_record, solve_report
 from hatkernels.distributed import solve_poisson, write_pvtu
 from hatkernels.distributed.launch import mpi
@@ -255,9 +256,7 @@ def write(args, out, summary, sol, comm, progress):
         else:
             skipped.append(not_installed("residuals.png", "matplotlib"))
         files.insert(0, "summary.json")
-        summary["files"] = files
-        summary["skipped"] = skipped
-        kio.write_json(os.path.join(tmp, "summary.json"), summary)
+        write_summary(tmp, summary, files, skipped)
     return files
 
 

@@ -18,6 +18,7 @@ from hatkernels import io as kio
 from hatkernels import plot
 from hatkernels._text import format_seconds
 from hatkernels.cli.common import PROG, base_record, not_installed, versions
+from hatkernels.cli.outputs import write_summary
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.transient_files import COLLECTION, _collection
 
@@ -190,10 +191,7 @@ def write_files(directory, case, sol, summary, progress):
         else:
             skipped.append(not_installed("probes.png", "matplotlib"))
     files.append("summary.json")
-    summary["files"] = files
-    summary["skipped"] = skipped
-    kio.write_json(os.path.join(directory, "summary.json"), summary)
-    return files, skipped
+    return write_summary(directory, summary, files, skipped)
 
 
 def _table(header, rows):
