@@ -1,0 +1,418 @@
+"""Stencil kernels on refined patches: the fine levels of a triangle mesh refined ``k``
+times, never stored (:mod:`hatkernels.patches`).
+
+A level with ``n = 2**l`` subdivisions per coarse edge keeps one value per fine
+point in a flat vector: first the inside points of every coarse cell (cell by
+cell, ``(n-1)(n-2)/2`` each), then the points inside every coarse edge (``n-1``
+each, running from ``edge_v[e, 0]`` to ``edge_v[e, 1]``), then the coarse
+vertices.  Inside coarse cell ``c`` (corners A, B, C = its points 0, 1, 2) a
+fine point is a lattice point ``(i, j)``, ``i + j <= n``, at
+``A + i/n (B - A) + j/n (C - A)``; the patch of a cell is its lattice with the
+cell's boundary, ``(n+1)(n+2)/2`` points, packed row by row (``j`` rows).
+
+Every fine triangle of a patch is the coarse triangle scaled by ``1/n``,
+translated or turned by half a turn, so in 2-D it has the coarse cell's element
+stiffness ``K`` (scale-free): the operator inside a patch is one 7-point
+stencil per cell.  Points on coarse edges and vertices are shared: each cell
+adds its part of their rows into a per-cell buffer (``pe``: edge points in the
+edge's own direction; ``pv``: corners) and a pass over edges and one over
+vertices add the parts in a fixed order, so every result is the same bits on any
+number of threads.
+
+``topo`` is the tuple ``(tri, cell_edge, cell_flip, edge_v, edge_cells, edge_le,
+vptr, vcell, vlv)`` of int64 arrays built by :mod:`hatkernels.patches.layout`:
+local edge 0 is A->B (points ``(t, 0)``), 1 is A->C (``(0, t)``), 2 is B->C
+(``(n - t, t)``); ``cell_flip[c, le]`` is 1 when the edge's own direction runs
+the other way; ``edge_cells``/``edge_le`` the (one or two) cells of each edge,
+lower cell first (-1 for none); ``vptr``/``vcell``/``vlv`` the cells around each
+vertex, ascending, with the vertex's local number in each.
+"""
+
+import numpy as np
+from numba import prange, uint64
+
+from hatkernels._jit import jit
+
+# gather modes
+PLAIN, MASKED, OWNED = 0, 1, 2
+
+
+@jit()
+def _off(i, j, n):
+    return j * (n + 1) - (j * (j - 1)) // 2 + i
+
+
+@jit()
+def _ioff(j, n):
+    """First inside index of row ``j >= 1`` within a cell's inside block."""
+    return (j - 1) * (n - 1) - ((j - 1) * j) // 2
+
+
+@jit()
+def _edge_pos(le, t, n):
+    if le == 0:
+        return _off(t, 0, n)
+    if le == 1:
+        return _off(0, t, n)
+    return _off(n - t, t, n)
+
+
+@jit()
+def _corner_pos(lv, n):
+    if lv == 0:
+        return 0
+    if lv == 1:
+        return _off(n, 0, n)
+    return _off(0, n, n)
+
+
+@jit()
+def _gather(x, c, loc, n, topo, held_e, held_v, mode):
+    """The patch of cell ``c`` from the flat vector ``x`` into ``loc``.
+
+    ``mode`` MASKED: held points read as 0; OWNED: shared points the cell does
+    not own (edges: owned by their lower cell; vertices: by their lowest cell)
+    read as 0, so that summing over cells counts every point once.
+    """
+    tri, cell_edge, cell_flip, edge_v, edge_cells, edge_le, vptr, vcell, vlv = topo
+    m = tri.shape[0]
+    inside = (n - 1) * (n - 2) // 2
+    base_e = m * inside
+    base_v = base_e + edge_v.shape[0] * (n - 1)
+    start = c * inside
+    one = uint64(1)
+    for j in range(1, n - 1):
+        row = uint64(start + _ioff(j, n))
+        o = uint64(_off(0, j, n))
+        for i in range(uint64(0), uint64(n - j - 1)):
+            loc[o + one + i] = x[row + i]
+    for le in range(3):
+        e = cell_edge[c, le]
+        zero = (mode == MASKED and held_e[e]) or (mode == OWNED and edge_cells[e, 0] != c)
+        flip = cell_flip[c, le]
+        first = base_e + e * (n - 1)
+        for t in range(1, n):
+            s = n - t if flip else t
+            loc[_edge_pos(le, t, n)] = 0.0 if zero else x[first + s - 1]
+    for lv in range(3):
+        v = tri[c, lv]
+        zero = (mode == MASKED and held_v[v]) or (mode == OWNED and vcell[vptr[v]] != c)
+        loc[_corner_pos(lv, n)] = 0.0 if zero else x[base_v + v]
+
+
+@jit()
+def _scatter(out, c, y, pe, pv, n, topo):
+    """Inside rows of ``out`` into ``y``; the cell's parts of shared rows into ``pe``, ``pv``."""
+    cell_flip = topo[2]
+    inside = (n - 1) * (n - 2) // 2
+    start = c * inside
+    one = uint64(1)
+    for j in range(1, n - 1):
+        row = uint64(start + _ioff(j, n))
+        o = uint64(_off(0, j, n))
+        for i in range(uint64(0), uint64(n - j - 1)):
+            y[row + i] = out[o + one + i]
+    for le in range(3):
+        flip = cell_flip[c, le]
+        for t in range(1, n):
+            s = n - t if flip else t
+            pe[c, le, s - 1] = out[_edge_pos(le, t, n)]
+    for lv in range(3):
+        pv[c, lv] = out[_corner_pos(lv, n)]
+
+
+@jit(parallel=True)
+def _sum_shared(y, pe, pv, n, topo):
+    """Shared rows of ``y``: the cells' parts added, lower cell first."""
+    tri, edge_v, edge_cells, edge_le, vptr, vcell, vlv = (
+        topo[0], topo[3], topo[4], topo[5], topo[6], topo[7], topo[8])
+    m = tri.shape[0]
+    inside = (n - 1) * (n - 2) // 2
+    base_e = m * inside
+    n_edges = edge_v.shape[0]
+    base_v = base_e + n_edges * (n - 1)
+    for e in prange(n_edges):
+        c0, l0, c1, l1 = edge_cells[e, 0], edge_le[e, 0], edge_cells[e, 1], edge_le[e, 1]
+        first = base_e + e * (n - 1)
+        for s in range(n - 1):
+            acc = pe[c0, l0, s]
+            if c1 >= 0:
+                acc += pe[c1, l1, s]
+            y[first + s] = acc
+    for v in prange(vptr.shape[0] - 1):
+        acc = 0.0
+        for q in range(vptr[v], vptr[v + 1]):
+            acc += pv[vcell[q], vlv[q]]
+        y[base_v + v] = acc
+
+
+@jit()
+def _role_sum(loc, n, i, j, K, what):
+    """Row of lattice point ``(i, j)`` summed over the fine triangles of the patch that hold
+    it: ``what`` 0 the product with ``loc``, 1 the diagonal, 2 the sum of absolute entries."""
+    acc = 0.0
+    for kind in range(6):
+        # (role of (i, j), the triangle's A, B, C points) for the six triangles around it
+        if kind == 0:  # A of up(i, j)
+            a, b, r, up = i, j, 0, True
+        elif kind == 1:  # B of up(i - 1, j)
+            a, b, r, up = i - 1, j, 1, True
+        elif kind == 2:  # C of up(i, j - 1)
+            a, b, r, up = i, j - 1, 2, True
+        elif kind == 3:  # A of down(i - 1, j - 1)
+            a, b, r, up = i - 1, j - 1, 0, False
+        elif kind == 4:  # B of down(i, j - 1)
+            a, b, r, up = i, j - 1, 1, False
+        else:  # C of down(i - 1, j)
+            a, b, r, up = i - 1, j, 2, False
+        if a < 0 or b < 0:
+            continue
+        if up:
+            if a + b > n - 1:
+                continue
+            pa, pb, pc = _off(a, b, n), _off(a + 1, b, n), _off(a, b + 1, n)
+        else:
+            if a + b > n - 2:
+                continue
+            pa, pb, pc = _off(a + 1, b + 1, n), _off(a, b + 1, n), _off(a + 1, b, n)
+        if what == 0:
+            acc += K[r, 0] * loc[pa] + K[r, 1] * loc[pb] + K[r, 2] * loc[pc]
+        elif what == 1:
+            acc += K[r, r]
+        else:
+            acc += abs(K[r, 0]) + abs(K[r, 1]) + abs(K[r, 2])
+    return acc
+
+
+@jit()
+def _local_apply(loc, out, n, K, what):
+    """``out`` = the patch's rows (inside rows whole, boundary rows this cell's part)."""
+    d = 2.0 * (K[0, 0] + K[1, 1] + K[2, 2])
+    h, v, g = 2.0 * K[0, 1], 2.0 * K[0, 2], 2.0 * K[1, 2]
+    for j in range(1, n - 1):
+        o, below, above = _off(0, j, n), _off(0, j - 1, n), _off(0, j + 1, n)
+        if what == 0:
+            # unsigned indices: no negative-index wrap check, so the loop vectorises
+            o0, b0, a0 = uint64(o + 1), uint64(below + 1), uint64(above)
+            for q in range(uint64(0), uint64(n - j - 1)):
+                c0, cb, ca = o0 + q, b0 + q, a0 + q
+                out[c0] = (d * loc[c0] + h * (loc[c0 - uint64(1)] + loc[c0 + uint64(1)])
+                           + v * (loc[cb] + loc[ca + uint64(1)])
+                           + g * (loc[cb + uint64(1)] + loc[ca]))
+        else:
+            for i in range(1, n - j):
+                out[o + i] = _role_sum(loc, n, i, j, K, what)
+    for t in range(n + 1):  # the three sides, corners included
+        out[_off(t, 0, n)] = _role_sum(loc, n, t, 0, K, what)
+        out[_off(0, t, n)] = _role_sum(loc, n, 0, t, K, what)
+        out[_off(n - t, t, n)] = _role_sum(loc, n, n - t, t, K, what)
+
+
+@jit(parallel=True)
+def apply(x, y, n, K, topo, held_e, held_v, masked, pe, pv, what):
+    """``y = A x`` on one level (``what`` 0), or the diagonal (1) or absolute row sums (2).
+
+    ``masked``: held rows and columns taken out (identity rows, held columns
+    zero), as the system CG solves; otherwise the whole stiffness matrix.
+    """
+    tri = topo[0]
+    m = tri.shape[0]
+    size = (n + 1) * (n + 2) // 2
+    mode = MASKED if masked else PLAIN
+    for c in prange(m):
+        loc = np.empty(size)
+        out = np.empty(size)
+        _gather(x, c, loc, n, topo, held_e, held_v, mode)
+        _local_apply(loc, out, n, K[c], what)
+        _scatter(out, c, y, pe, pv, n, topo)
+    _sum_shared(y, pe, pv, n, topo)
+    if masked:
+        _held_rows(x, y, n, topo, held_e, held_v, what)
+
+
+@jit(parallel=True)
+def _held_rows(x, y, n, topo, held_e, held_v, what):
+    tri, edge_v = topo[0], topo[3]
+    inside = (n - 1) * (n - 2) // 2
+    base_e = tri.shape[0] * inside
+    base_v = base_e + edge_v.shape[0] * (n - 1)
+    for e in prange(edge_v.shape[0]):
+        if held_e[e]:
+            for s in range(n - 1):
+                k = base_e + e * (n - 1) + s
+                y[k] = x[k] if what == 0 else 1.0
+    for v in prange(held_v.shape[0]):
+        if held_v[v]:
+            y[base_v + v] = x[base_v + v] if what == 0 else 1.0
+
+
+@jit(parallel=True)
+def load(per_cell, y, n, topo, pe, pv):
+    """``y`` = the load of a source constant on each coarse cell, ``per_cell[c]`` = its
+    value times the fine triangles' area over 3 (each triangle gives that to its corners)."""
+    tri = topo[0]
+    m = tri.shape[0]
+    size = (n + 1) * (n + 2) // 2
+    for c in prange(m):
+        out = np.empty(size)
+        w = per_cell[c]
+        for j in range(n + 1):
+            for i in range(n + 1 - j):
+                # triangles holding (i, j): 6 inside, 3 on a side, 1 at a corner
+                # (from the up and down triangles that exist around it)
+                count = 0
+                if i + j <= n - 1:
+                    count += 1  # up(i, j)
+                if i >= 1 and i + j <= n:
+                    count += 1  # up(i - 1, j)
+                if j >= 1 and i + j <= n:
+                    count += 1  # up(i, j - 1)
+                if i >= 1 and j >= 1:
+                    count += 1  # down(i - 1, j - 1)
+                if j >= 1 and i + j <= n - 1:
+                    count += 1  # down(i, j - 1)
+                if i >= 1 and i + j <= n - 1:
+                    count += 1  # down(i - 1, j)
+                out[_off(i, j, n)] = count * w
+        _scatter(out, c, y, pe, pv, n, topo)
+    _sum_shared(y, pe, pv, n, topo)
+
+
+@jit(parallel=True)
+def prolong_add(xc, x, n, topo):
+    """``x += P xc``: ``xc`` on the level with ``n // 2`` subdivisions, ``x`` on ``n``;
+    linear interpolation (each new point the mean of its coarse edge's ends)."""
+    tri, edge_v = topo[0], topo[3]
+    m = tri.shape[0]
+    nc = n // 2
+    size_c = (nc + 1) * (nc + 2) // 2
+    inside = (n - 1) * (n - 2) // 2
+    no = edge_v[:, 0] < 0
+    for c in prange(m):
+        loc = np.empty(size_c)
+        _gather(xc, c, loc, nc, topo, no, no, PLAIN)
+        start = c * inside
+        for j in range(1, n - 1):
+            row = start + _ioff(j, n)
+            for i in range(1, n - j):
+                if i % 2 == 0 and j % 2 == 0:
+                    val = loc[_off(i // 2, j // 2, nc)]
+                elif j % 2 == 0:
+                    val = 0.5 * (loc[_off(i // 2, j // 2, nc)] + loc[_off(i // 2 + 1, j // 2, nc)])
+                elif i % 2 == 0:
+                    val = 0.5 * (loc[_off(i // 2, j // 2, nc)] + loc[_off(i // 2, j // 2 + 1, nc)])
+                else:
+                    val = 0.5 * (loc[_off(i // 2 + 1, j // 2, nc)]
+                                 + loc[_off(i // 2, j // 2 + 1, nc)])
+                x[row + i - 1] += val
+    n_edges = edge_v.shape[0]
+    base_e, base_ec = m * inside, m * ((nc - 1) * (nc - 2) // 2)
+    base_v, base_vc = base_e + n_edges * (n - 1), base_ec + n_edges * (nc - 1)
+    for e in prange(n_edges):
+        for s in range(1, n):
+            lo, hi = s // 2, (s + 1) // 2  # coarse points along the edge (0, nc: the ends)
+            a = xc[base_vc + edge_v[e, 0]] if lo == 0 else (
+                xc[base_vc + edge_v[e, 1]] if lo == nc else xc[base_ec + e * (nc - 1) + lo - 1])
+            if hi == lo:
+                val = a
+            else:
+                b = xc[base_vc + edge_v[e, 1]] if hi == nc else xc[base_ec + e * (nc - 1) + hi - 1]
+                val = 0.5 * (a + b)
+            x[base_e + e * (n - 1) + s - 1] += val
+    for v in prange(topo[6].shape[0] - 1):
+        x[base_v + v] += xc[base_vc + v]
+
+
+@jit(parallel=True)
+def restrict(r, rc, n, topo, pe, pv):
+    """``rc = P^T r``: ``r`` on the level with ``n`` subdivisions, ``rc`` on ``n // 2``;
+    ``pe``, ``pv`` the coarse level's buffers."""
+    tri, edge_v = topo[0], topo[3]
+    m = tri.shape[0]
+    nc = n // 2
+    size, size_c = (n + 1) * (n + 2) // 2, (nc + 1) * (nc + 2) // 2
+    no = edge_v[:, 0] < 0
+    for c in prange(m):
+        loc = np.empty(size)
+        out = np.empty(size_c)
+        _gather(r, c, loc, n, topo, no, no, OWNED)
+        for b in range(nc + 1):
+            for a in range(nc + 1 - b):
+                i, j = 2 * a, 2 * b
+                acc = 0.0
+                if i >= 1:
+                    acc += loc[_off(i - 1, j, n)]
+                if i + j + 1 <= n:
+                    acc += loc[_off(i + 1, j, n)] + loc[_off(i, j + 1, n)]
+                if j >= 1:
+                    acc += loc[_off(i, j - 1, n)] + loc[_off(i + 1, j - 1, n)]
+                if i >= 1:
+                    acc += loc[_off(i - 1, j + 1, n)]
+                out[_off(a, b, nc)] = loc[_off(i, j, n)] + 0.5 * acc
+        _scatter(out, c, rc, pe, pv, nc, topo)
+    _sum_shared(rc, pe, pv, nc, topo)
+
+
+@jit(parallel=True)
+def zero_held(x, n, topo, held_e, held_v):
+    """``x = 0`` at the held points of a level."""
+    tri, edge_v = topo[0], topo[3]
+    inside = (n - 1) * (n - 2) // 2
+    base_e = tri.shape[0] * inside
+    base_v = base_e + edge_v.shape[0] * (n - 1)
+    for e in prange(edge_v.shape[0]):
+        if held_e[e]:
+            for s in range(n - 1):
+                x[base_e + e * (n - 1) + s] = 0.0
+    for v in prange(held_v.shape[0]):
+        if held_v[v]:
+            x[base_v + v] = 0.0
+
+
+@jit(parallel=True)
+def gather_patches(x, cells, n, topo, out):
+    """``out[q]`` = the packed patch of cell ``cells[q]`` (for output and tests)."""
+    no = topo[3][:, 0] < 0
+    for q in prange(cells.shape[0]):
+        _gather(x, cells[q], out[q], n, topo, no, no, PLAIN)
+
+
+@jit()
+def scatter_patches(loc, cells, n, topo, x):
+    """The flat vector's entries from packed patches (shared points written by every cell
+    that holds them, with the same value: serial)."""
+    tri, cell_edge, cell_flip, edge_v = topo[0], topo[1], topo[2], topo[3]
+    m = tri.shape[0]
+    inside = (n - 1) * (n - 2) // 2
+    base_e = m * inside
+    base_v = base_e + edge_v.shape[0] * (n - 1)
+    for q in range(cells.shape[0]):
+        c = cells[q]
+        for j in range(1, n - 1):
+            row = c * inside + _ioff(j, n)
+            o = _off(0, j, n)
+            for i in range(1, n - j):
+                x[row + i - 1] = loc[q, o + i]
+        for le in range(3):
+            e = cell_edge[c, le]
+            for t in range(1, n):
+                s = n - t if cell_flip[c, le] else t
+                x[base_e + e * (n - 1) + s - 1] = loc[q, _edge_pos(le, t, n)]
+        for lv in range(3):
+            x[base_v + tri[c, lv]] = loc[q, _corner_pos(lv, n)]
+
+
+@jit(parallel=True)
+def copy_held(src, dst, n, topo, held_e, held_v):
+    """``dst = src`` at the held points of a level."""
+    tri, edge_v = topo[0], topo[3]
+    inside = (n - 1) * (n - 2) // 2
+    base_e = tri.shape[0] * inside
+    base_v = base_e + edge_v.shape[0] * (n - 1)
+    for e in prange(edge_v.shape[0]):
+        if held_e[e]:
+            for s in range(n - 1):
+                dst[base_e + e * (n - 1) + s] = src[base_e + e * (n - 1) + s]
+    for v in prange(held_v.shape[0]):
+        if held_v[v]:
+            dst[base_v + v] = src[base_v + v]

@@ -1,0 +1,151 @@
+"""Where the values of a never-stored refined mesh live: the coarse topology the patch
+kernels read, the levels' vector sizes, and the conversions to and from the numbering of
+``mesh.refine()`` repeated ``k`` times.
+
+See :mod:`hatkernels._jit.patches` for the vector layout (cell insides, then coarse edge
+insides, then coarse vertices).  All arrays here are of the coarse mesh's size; no fine
+index array and no fine coordinate is ever stored.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from hatkernels._jit import patches as _p
+from hatkernels.distributed.finenumbers import fine_numbering, lattice_order
+from hatkernels.errors import InputError
+
+__all__ = ["PatchLayout"]
+
+_CHUNK = 512  # coarse cells per block in the conversions
+
+
+class PatchLayout:
+    """The coarse triangle mesh ``coarse`` seen as patches refined ``k`` times.
+
+    Parameters
+    ----------
+    coarse : Mesh
+        A triangle mesh (2-D).
+    k : int
+        Refinements (``n = 2**k`` fine edges per coarse edge).
+    held_sides : ndarray (s, 2), optional
+        Coarse sides (pairs of point indices) whose fine points are held
+        (Dirichlet); their end points are held too.
+
+    Attributes
+    ----------
+    topo : tuple of int64 arrays
+        What the kernels read (see :mod:`hatkernels._jit.patches`).
+    held_e, held_v : bool arrays
+        Held coarse edges and vertices.
+    """
+
+    def __init__(self, coarse, k, held_sides=None):
+        if coarse.dim != 2:
+            raise InputError("the patch path takes triangle meshes (2-D); tetrahedra use the "
+                             "stored refinement")
+        self.coarse, self.k = coarse, int(k)
+        tri = coarse.triangles.astype(np.int64)
+        m = tri.shape[0]
+        edges, tri_edges = coarse._edge_topology()
+        edge_v = np.ascontiguousarray(edges, dtype=np.int64)
+        # local edges: 0 = A->B (opposite C), 1 = A->C (opposite B), 2 = B->C (opposite A)
+        cell_edge = np.ascontiguousarray(tri_edges[:, [2, 1, 0]], dtype=np.int64)
+        start = tri[:, [0, 0, 1]]
+        cell_flip = (start != edge_v[cell_edge, 0]).astype(np.int64)
+        n_edges = edge_v.shape[0]
+        flat_e = cell_edge.reshape(-1)
+        order = np.lexsort((np.repeat(np.arange(m), 3), flat_e))
+        edge_cells = np.full((n_edges, 2), -1, dtype=np.int64)
+        edge_le = np.full((n_edges, 2), -1, dtype=np.int64)
+        counts = np.bincount(flat_e, minlength=n_edges)
+        first = np.zeros(n_edges + 1, dtype=np.int64)
+        np.cumsum(counts, out=first[1:])
+        rank = np.arange(order.size) - first[flat_e[order]]
+        edge_cells[flat_e[order], rank] = order // 3
+        edge_le[flat_e[order], rank] = order % 3
+        flat_v = tri.reshape(-1)
+        vorder = np.lexsort((np.repeat(np.arange(m), 3), flat_v))
+        vptr = np.zeros(coarse.n_points + 1, dtype=np.int64)
+        np.cumsum(np.bincount(flat_v, minlength=coarse.n_points), out=vptr[1:])
+        self.topo = (tri, cell_edge, cell_flip, edge_v, edge_cells, edge_le, vptr,
+                     np.ascontiguousarray(vorder // 3), np.ascontiguousarray(vorder % 3))
+        self.n_cells, self.n_edges, self.n_vertices = m, n_edges, coarse.n_points
+        self.held_e = np.zeros(n_edges, dtype=bool)
+        self.held_v = np.zeros(coarse.n_points, dtype=bool)
+        if held_sides is not None and len(held_sides):
+            sides = np.sort(np.asarray(held_sides, dtype=np.int64), axis=1)
+            keys = np.sort(edge_v, axis=1) @ np.array([coarse.n_points, 1])
+            by_key = np.argsort(keys)
+            want = sides @ np.array([coarse.n_points, 1])
+            pos = np.searchsorted(keys[by_key], want)
+            pos = np.minimum(pos, n_edges - 1)
+            bad = keys[by_key][pos] != want
+            if bad.any():
+                s = sides[np.flatnonzero(bad)[0]]
+                raise InputError(f"held side ({s[0]}, {s[1]}) is not an edge of the coarse mesh")
+            self.held_e[by_key[pos]] = True
+            self.held_v[sides.reshape(-1)] = True
+
+    def size(self, level):
+        """Values on ``level`` (``n = 2**level``): every fine point once."""
+        n = 2**level
+        return (self.n_cells * ((n - 1) * (n - 2) // 2) + self.n_edges * (n - 1)
+                + self.n_vertices)
+
+    def buffers(self, level):
+        """The per-cell buffers of shared rows for ``level``."""
+        n = 2**level
+        return np.empty((self.n_cells, 3, n - 1)), np.empty((self.n_cells, 3))
+
+    # -- the numbering of mesh.refine() repeated k times ---------------------------------
+
+    def _blocks(self, level):
+        n = 2**level
+        lam, _ = lattice_order(2, level)
+        pos = (lam[:, 2] * (n + 1) - (lam[:, 2] * (lam[:, 2] - 1)) // 2 + lam[:, 1])
+        numbering = fine_numbering(self.coarse, level)
+        for lo in range(0, self.n_cells, _CHUNK):
+            cells = np.arange(lo, min(lo + _CHUNK, self.n_cells), dtype=np.int64)
+            yield cells, numbering.numbers(cells), pos
+
+    def to_refined(self, x, level=None, out=None):
+        """``x`` (this layout, on ``level``, default the finest) in the numbering of
+        ``coarse.refine()`` repeated ``level`` times."""
+        level = self.k if level is None else level
+        n = 2**level
+        if out is None:
+            out = np.empty(self.size(level))
+        size = (n + 1) * (n + 2) // 2
+        for cells, num, pos in self._blocks(level):
+            loc = np.empty((cells.size, size))
+            _p.gather_patches(x, cells, n, self.topo, loc)
+            out[num] = loc[:, pos]
+        return out
+
+    def from_refined(self, u, level=None):
+        """The inverse of :meth:`to_refined`."""
+        level = self.k if level is None else level
+        n = 2**level
+        x = np.empty(self.size(level))
+        size = (n + 1) * (n + 2) // 2
+        for cells, num, pos in self._blocks(level):
+            loc = np.empty((cells.size, size))
+            loc[:, pos] = u[num]
+            _p.scatter_patches(loc, cells, n, self.topo, x)
+        return x
+
+    def patch(self, x, cell, level=None):
+        """``(lam, values)``: the values of ``x`` on coarse ``cell``'s lattice, with their
+        integer barycentric coordinates (rows summing to ``2**level``, on the cell's
+        points 0, 1, 2): the solution per patch when the whole array would not fit."""
+        level = self.k if level is None else level
+        n = 2**level
+        if not 0 <= int(cell) < self.n_cells:
+            raise InputError(f"cell {cell} is not a coarse cell (0..{self.n_cells - 1})")
+        lam = np.array([(n - i - j, i, j) for j in range(n + 1) for i in range(n + 1 - j)],
+                       dtype=np.int64)
+        loc = np.empty((1, (n + 1) * (n + 2) // 2))
+        _p.gather_patches(x, np.array([int(cell)], dtype=np.int64), n, self.topo, loc)
+        return lam, loc[0]

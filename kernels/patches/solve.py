@@ -1,0 +1,278 @@
+"""``solve_poisson(mesh, f, refine=k)`` without storing the refined mesh.
+
+The data are parsed and checked once on the coarse mesh (a
+:class:`~hatkernels.problem.PoissonProblem`, so the errors are the serial
+ones).  The path takes: a coefficient and a source that are numbers or
+``{region: number}`` (constant on each coarse cell), held values that are a
+number or ``{tag: number}`` on whole boundary sides (the whole boundary or
+boundary tags).  Anything else (callables, arrays, reactions, fluxes,
+convection, zero mean, tetrahedra) takes the stored refinement, and
+:func:`patch_path_reason` says why.
+"""
+
+from __future__ import annotations
+
+import numbers
+import time
+
+import numba
+import numpy as np
+
+from hatkernels._jit import patches as _p
+from hatkernels.errors import InputError
+from hatkernels.patches.layout import PatchLayout
+from hatkernels.patches.multigrid import PatchMultigrid, PatchOperator
+from hatkernels.perf import peak_rss_bytes
+from hatkernels.problem import PoissonProblem
+
+__all__ = ["PatchSolution", "patch_path_reason", "solve_on_patches", "BYTES_PER_POINT"]
+
+# Peak bytes per fine point of solve_on_patches beyond the coarse mesh: CG's five
+# vectors and the right-hand side, the finest level's four work vectors and inverse
+# diagonal, the coarser levels (a third of six vectors more) and the shared-row
+# buffers; measured in bench/patches.py (docs/patches.md).
+BYTES_PER_POINT = 8 * (6 + 5 + 2) + 8
+
+
+def _is_number(v):
+    return isinstance(v, numbers.Real) and not isinstance(v, bool)
+
+
+def _numbers_by_key(v):
+    return isinstance(v, dict) and bool(v) and all(_is_number(x) for x in v.values())
+
+
+def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
+                      coefficient=None, reaction=None, neumann=None, robin=None,
+                      zero_mean=False, matrix_free=None, variant=None, options=None):
+    """None when ``solve_poisson(mesh, f, refine=refine, ...)`` can take the patch path,
+    else the reason it cannot (one sentence)."""
+    if getattr(mesh, "dim", None) != 2:
+        return "the patch path takes triangle meshes"
+    if not isinstance(refine, numbers.Integral) or refine < 1:
+        return "the patch path needs refine >= 1"
+    if reaction is not None or neumann is not None or robin is not None:
+        return "the patch path takes no reaction, flux or convection term"
+    if zero_mean:
+        return "the patch path takes no zero_mean"
+    if matrix_free is False or variant is not None:
+        return "matrix_free=False and variant belong to the stored path"
+    if options:
+        return f"preconditioner options ({', '.join(sorted(options))}) belong to the stored path"
+    for name, v in (("f", f), ("coefficient", coefficient)):
+        if not (v is None or _is_number(v) or _numbers_by_key(v)):
+            return f"{name} is not a number or {{region: number}}"
+    if not (_is_number(dirichlet) or _numbers_by_key(dirichlet)):
+        return "dirichlet is not a number or {tag: number}"
+    if not (dirichlet_on is None or isinstance(dirichlet_on, str) or (
+            isinstance(dirichlet_on, (list, tuple)) and dirichlet_on
+            and all(isinstance(k, str) for k in dirichlet_on))):
+        return "dirichlet_on is not 'boundary' or boundary tags"
+    return None
+
+
+class PatchSolution:
+    """What :func:`solve_on_patches` found.
+
+    Attributes
+    ----------
+    values : ndarray
+        The solution in the patch layout (:mod:`hatkernels._jit.patches`): every
+        fine point once, no fine mesh needed.
+    layout : PatchLayout
+    stats : SolveStats
+    u : ndarray
+        The solution in the numbering of ``coarse.refine()`` repeated ``k`` times,
+        made on first use (one more vector of the fine size).
+    mesh : Mesh
+        The refined mesh, built on first use (it costs what the patch path saves).
+    problem : PoissonProblem
+        The problem on :attr:`mesh`, built on first use.
+    """
+
+    def __init__(self, values, layout, stats, args):
+        self.values, self.layout, self.stats = values, layout, stats
+        self._args = args
+        self._u = self._mesh = self._problem = None
+
+    @property
+    def converged(self):
+        return self.stats.converged
+
+    @property
+    def u(self):
+        if self._u is None:
+            self._u = self.layout.to_refined(self.values)
+        return self._u
+
+    @property
+    def mesh(self):
+        if self._mesh is None:
+            m = self.layout.coarse
+            for _ in range(self.layout.k):
+                m = m.refine()
+            self._mesh = m
+        return self._mesh
+
+    @property
+    def problem(self):
+        if self._problem is None:
+            self._problem = PoissonProblem(self.mesh, **self._args)
+        return self._problem
+
+    def patch(self, cell):
+        """``(lam, values)`` on coarse ``cell`` (:meth:`PatchLayout.patch`)."""
+        return self.layout.patch(self.values, cell)
+
+    def __repr__(self):
+        s = self.stats
+        return (f"PatchSolution({s.unknowns} unknowns, {s.iterations} iterations, "
+                f"converged={s.converged}, {s.timings['total']:.3g} s)")
+
+
+def _held(coarse, problem, dirichlet):
+    """``(held_sides, side_values)``: the held coarse sides and the value on each."""
+    pieces = [p for p in problem.pieces if p.kind == "held"]
+    if pieces:
+        sides = np.concatenate([p.sides for p in pieces])
+    elif problem.dirichlet.whole_boundary:
+        sides = coarse.boundary_edges().astype(np.int64)
+    else:  # pragma: no cover - patch_path_reason admits nothing else
+        raise InputError("the patch path needs held values on whole boundary sides")
+    if isinstance(dirichlet, dict):
+        values = np.full(len(sides), np.nan)
+        keyed = {tuple(s): i for i, s in enumerate(np.sort(sides, axis=1).tolist())}
+        for key, v in reversed(list(dirichlet.items())):  # the first listed tag wins
+            t = coarse.tags.side_tag(key, what="dirichlet: boundary tag")
+            for s in np.sort(coarse.tags.sides_of([t]), axis=1).tolist():
+                if tuple(s) in keyed:
+                    values[keyed[tuple(s)]] = float(v)
+        missing = np.flatnonzero(np.isnan(values))
+        if missing.size:
+            s = sides[missing[0]]
+            raise InputError(f"dirichlet gives no value for held side ({s[0]}, {s[1]})")
+    else:
+        values = np.full(len(sides), float(dirichlet))
+    return sides, values
+
+
+def _per_cell(coef, m, what):
+    if coef.kind == "constant" and np.ndim(coef.value) == 0:
+        return np.full(m, float(coef.value))
+    if coef.kind == "cell" and np.ndim(coef.value) == 1:
+        return np.asarray(coef.value, dtype=np.float64)
+    raise InputError(f"{what}: the patch path takes values constant on each coarse cell")
+
+
+def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=None,
+                     coefficient=None, rtol=1e-10, atol=0.0, maxiter=None, start=None,
+                     check=False, monitor=None, quadrature=2, progress=None,
+                     memory_check=True, degree=2, nested_cycles=1):
+    """Solve ``-div(kappa grad u) = f`` on ``coarse`` refined ``refine`` times, patch by patch.
+
+    The arguments are those of :func:`hatkernels.solve_poisson` (the data the path
+    takes: see the module notes); CG with the patch multigrid
+    (:class:`PatchMultigrid`) as preconditioner.  Returns a :class:`PatchSolution`.
+    """
+    from hatkernels.memory import MARGIN, available_bytes
+    from hatkernels.solver import solve
+    from hatkernels.stats import SolveStats  # noqa: F401  (the stats type of the result)
+
+    t0 = time.perf_counter()
+    note = progress or (lambda phase: None)
+    note("boundary")
+    reason = patch_path_reason(coarse, refine, f=f, dirichlet=dirichlet,
+                               dirichlet_on=dirichlet_on, coefficient=coefficient)
+    if reason is not None:
+        raise InputError(f"the patch path cannot take this problem: {reason}")
+    args = dict(f=f, dirichlet=dirichlet, dirichlet_on=dirichlet_on, coefficient=coefficient,
+                quadrature=quadrature)
+    problem = PoissonProblem(coarse, **args)
+    m = coarse.n_triangles
+    kappa = _per_cell(problem.coefficient, m, "coefficient")
+    source = _per_cell(problem.source, m, "f")
+    sides, side_values = _held(coarse, problem, dirichlet)
+    if rtol is None and np.any(side_values != 0):
+        raise InputError("rtol=None (the nested start alone) reaches discretisation accuracy "
+                         "with zero held values only; give a tolerance")
+    layout = PatchLayout(coarse, refine, held_sides=sides)
+    k, n = refine, 2**refine
+    size = layout.size(k)
+    if memory_check:
+        have = available_bytes()
+        need = BYTES_PER_POINT * size
+        if have is not None and need * MARGIN > have:
+            raise InputError(
+                f"not enough memory: the patch path on {size:,} fine points needs about "
+                f"{need / 2**30:.1f} GiB ({BYTES_PER_POINT} bytes per point), but "
+                f"{have / 2**30:.1f} GiB are available; refine less, or pass "
+                f"memory_check=False to try anyway")
+    timings = {"boundary": time.perf_counter() - t0}
+
+    note("assemble")
+    t1 = time.perf_counter()
+    area = 0.5 * np.abs(np.cross(coarse.points[coarse.triangles[:, 1]]
+                                 - coarse.points[coarse.triangles[:, 0]],
+                                 coarse.points[coarse.triangles[:, 2]]
+                                 - coarse.points[coarse.triangles[:, 0]]))
+    b = np.empty(size)
+    pe, pv = layout.buffers(k)
+    _p.load(source * area / (3.0 * n * n), b, n, layout.topo, pe, pv)
+    g = _lifting(layout, sides, side_values, problem)
+    timings["assemble"] = time.perf_counter() - t1
+
+    t2 = time.perf_counter()
+    M = PatchMultigrid(layout, kappa, degree=degree, nested_cycles=nested_cycles)
+    A = PatchOperator(layout, M.K, k)
+    if g is not None:
+        full = PatchOperator(layout, M.K, k, masked=False)
+        lift = full @ g
+        b -= lift
+        del lift
+    _p.zero_held(b, n, layout.topo, layout.held_e, layout.held_v)
+    setup = time.perf_counter() - t2
+
+    note("solve")
+    result = solve(A, b, preconditioner=M, rtol=rtol, atol=atol, maxiter=maxiter,
+                   start=start, check=check, monitor=monitor)
+    del b
+    x = result.x
+    if g is not None:
+        x += g
+    stats = result.stats
+    stats.timings = {**timings, **stats.timings, "setup": setup,
+                     "total": time.perf_counter() - t0}
+    stats.unknowns = size
+    stats.dirichlet_points = int(_held_count(layout, n))
+    stats.peak_rss_bytes = peak_rss_bytes()
+    stats.threads = numba.get_num_threads()
+    return PatchSolution(x, layout, stats, args)
+
+
+def _held_count(layout, n):
+    return int(layout.held_e.sum()) * (n - 1) + int(layout.held_v.sum())
+
+
+def _lifting(layout, sides, side_values, problem):
+    """The held values on the finest level (zero elsewhere), or None when all are 0."""
+    if not np.any(side_values):
+        return None
+    k, n = layout.k, 2**layout.k
+    edge_value = np.zeros(layout.n_edges)
+    vertex_value = np.zeros(layout.n_vertices)
+    coarse = problem.mesh
+    keys = np.sort(layout.topo[3], axis=1) @ np.array([coarse.n_points, 1])
+    by_key = np.argsort(keys)
+    want = np.sort(sides, axis=1) @ np.array([coarse.n_points, 1])
+    e = by_key[np.searchsorted(keys[by_key], want)]
+    edge_value[e] = side_values
+    # where sides of different values meet, the vertex takes the parsed problem's value
+    # (the first listed tag's), as on the stored fine mesh
+    vertex_value[problem.dirichlet.points] = problem.dirichlet.values
+    g = np.zeros(layout.size(k))
+    inside = layout.n_cells * ((n - 1) * (n - 2) // 2)
+    base_v = inside + layout.n_edges * (n - 1)
+    g[inside:base_v].reshape(layout.n_edges, n - 1)[:] = edge_value[:, None]
+    g[base_v:] = vertex_value
+    _p.zero_held(g, n, layout.topo, ~layout.held_e, ~layout.held_v)  # only held points
+    return g
