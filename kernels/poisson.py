@@ -21,7 +21,7 @@ from hatkernels.discretise import discretise
 from hatkernels.errors import InputError
 from hatkernels.memory import check_solve_memory
 from hatkernels.mesh.core import Mesh
-from hatkernels.precond import capabilities
+from hatkernels.precond import DEFAULT, capabilities
 from hatkernels.problem import PoissonProblem
 from hatkernels.solver import solve
 from hatkernels.stats import SolveStats
@@ -89,7 +89,7 @@ def solve_poisson(
     reaction=None,
     neumann=None,
     robin=None,
-    preconditioner="amg",
+    preconditioner=None,
     rtol=1e-10,
     atol=0.0,
     maxiter=None,
@@ -111,13 +111,22 @@ def solve_poisson(
     mesh : Mesh
     refine : int
         Solve on ``mesh`` refined this many times (:meth:`Mesh.refine`); ``.u``
-        and ``.mesh`` are then those of the refined mesh, which is built here
-        (and stored: the patch-wise path that never stores it is future work).
+        is then in the numbering of the refined mesh.  With the default
+        preconditioner, triangles and data the patch path takes (numbers or
+        ``{region: number}`` for ``f`` and ``coefficient``, a number or
+        ``{tag: number}`` held on whole boundary sides, nothing else), the
+        refined mesh is never stored: the solve runs patch by patch on the
+        coarse mesh (:mod:`hatkernels.patches`, docs/patches.md) and returns a
+        :class:`~hatkernels.patches.PatchSolution` (``.mesh`` is built only if
+        asked for).  Otherwise, or with a preconditioner named, the refined
+        mesh is built here and stored.
     f, dirichlet, dirichlet_on, coefficient, reaction, neumann, robin, quadrature, zero_mean
         The problem: see :class:`hatkernels.problem.PoissonProblem` (``zero_mean=True``
         solves a pure Neumann part for its solution with mean zero).
     preconditioner, rtol, atol, maxiter, start, check, **preconditioner_options
-        As in :func:`hatkernels.solve`.  With ``refine=k`` and ``gmg``,
+        As in :func:`hatkernels.solve`; ``preconditioner=None`` (the default) is
+        the patch multigrid when ``refine`` takes the patch path, else
+        :data:`hatkernels.precond.DEFAULT`.  With ``refine=k`` and ``gmg``,
         ``start="nested"`` begins CG from full multigrid (the coarse
         solution worked up the levels), and ``rtol=None`` returns that
         start alone: discretisation accuracy on smooth data for about one
@@ -143,7 +152,8 @@ def solve_poisson(
 
     Returns
     -------
-    PoissonSolution
+    PoissonSolution, or PatchSolution on the patch path (the same ``u``, ``stats``,
+    ``mesh``, ``problem`` and ``converged``)
 
     Raises
     ------
@@ -159,6 +169,20 @@ def solve_poisson(
     >>> sol.converged, round(float(sol.u.max()), 4)   # the centre value, about 0.0737 in the limit
     (True, 0.0736)
     """
+    if preconditioner is None:
+        if refine and not isinstance(refine, bool):
+            from hatkernels.patches.solve import patch_path_reason, solve_on_patches
+
+            if patch_path_reason(mesh, refine, f=f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
+                                 coefficient=coefficient, reaction=reaction, neumann=neumann,
+                                 robin=robin, zero_mean=zero_mean, matrix_free=matrix_free,
+                                 variant=variant, options=preconditioner_options) is None:
+                return solve_on_patches(
+                    mesh, f, refine, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
+                    coefficient=coefficient, rtol=rtol, atol=atol, maxiter=maxiter, start=start,
+                    check=check, monitor=monitor, quadrature=quadrature, progress=progress,
+                    memory_check=memory_check)
+        preconditioner = DEFAULT
     t0 = time.perf_counter()
     mesh = refined(mesh, refine)
     problem = PoissonProblem(mesh, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,

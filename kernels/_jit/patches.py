@@ -35,6 +35,8 @@ from hatkernels._jit import jit
 
 # gather modes
 PLAIN, MASKED, OWNED = 0, 1, 2
+# coarse cells per parallel chunk (one scratch allocation each; no effect on the bits)
+CHUNK = 16
 
 
 @jit()
@@ -101,13 +103,14 @@ def _gather(x, c, loc, n, topo, held_e, held_v, mode):
 
 
 @jit()
-def _scatter(out, c, y, pe, pv, n, topo):
-    """Inside rows of ``out`` into ``y``; the cell's parts of shared rows into ``pe``, ``pv``."""
+def _scatter(out, c, y, pe, pv, n, topo, inside_too=True):
+    """Inside rows of ``out`` into ``y`` (unless ``inside_too`` is False); the cell's parts of
+    shared rows into ``pe``, ``pv``."""
     cell_flip = topo[2]
     inside = (n - 1) * (n - 2) // 2
     start = c * inside
     one = uint64(1)
-    for j in range(1, n - 1):
+    for j in range(1, n - 1 if inside_too else 1):
         row = uint64(start + _ioff(j, n))
         o = uint64(_off(0, j, n))
         for i in range(uint64(0), uint64(n - j - 1)):
@@ -202,10 +205,34 @@ def _local_apply(loc, out, n, K, what):
         else:
             for i in range(1, n - j):
                 out[o + i] = _role_sum(loc, n, i, j, K, what)
-    for t in range(n + 1):  # the three sides, corners included
-        out[_off(t, 0, n)] = _role_sum(loc, n, t, 0, K, what)
-        out[_off(0, t, n)] = _role_sum(loc, n, 0, t, K, what)
-        out[_off(n - t, t, n)] = _role_sum(loc, n, n - t, t, K, what)
+    if what != 0:
+        for t in range(n + 1):  # the three sides, corners included
+            out[_off(t, 0, n)] = _role_sum(loc, n, t, 0, K, what)
+            out[_off(0, t, n)] = _role_sum(loc, n, 0, t, K, what)
+            out[_off(n - t, t, n)] = _role_sum(loc, n, n - t, t, K, what)
+        return
+    # this cell's part of the side rows: the three fine triangles of the patch at a side
+    # point (one in each role), summed in closed form; the tests check them against
+    # _role_sum, which sums them triangle by triangle
+    tr = K[0, 0] + K[1, 1] + K[2, 2]
+    ab, ac, bc = K[0, 1], K[0, 2], K[1, 2]
+    r1 = _off(0, 1, n)
+    for i in range(1, n):  # side A-B: (i, 0)
+        out[i] = (tr * loc[i] + ab * (loc[i - 1] + loc[i + 1])
+                  + 2.0 * ac * loc[r1 + i] + 2.0 * bc * loc[r1 + i - 1])
+    for j in range(1, n):  # side A-C: (0, j)
+        o, lo, hi = _off(0, j, n), _off(0, j - 1, n), _off(0, j + 1, n)
+        out[o] = (tr * loc[o] + 2.0 * ab * loc[o + 1] + ac * (loc[hi] + loc[lo])
+                  + 2.0 * bc * loc[lo + 1])
+    for j in range(1, n):  # side B-C: (n - j, j)
+        i = n - j
+        o, lo, hi = _off(i, j, n), _off(0, j - 1, n), _off(0, j + 1, n)
+        out[o] = (tr * loc[o] + 2.0 * ab * loc[o - 1] + 2.0 * ac * loc[lo + i]
+                  + bc * (loc[hi + i - 1] + loc[lo + i + 1]))
+    b, c = _off(n, 0, n), _off(0, n, n)
+    out[0] = K[0, 0] * loc[0] + ab * loc[1] + ac * loc[r1]
+    out[b] = ab * loc[b - 1] + K[1, 1] * loc[b] + bc * loc[r1 + n - 1]
+    out[c] = ac * loc[_off(0, n - 1, n)] + bc * loc[_off(1, n - 1, n)] + K[2, 2] * loc[c]
 
 
 @jit(parallel=True)
@@ -219,12 +246,13 @@ def apply(x, y, n, K, topo, held_e, held_v, masked, pe, pv, what):
     m = tri.shape[0]
     size = (n + 1) * (n + 2) // 2
     mode = MASKED if masked else PLAIN
-    for c in prange(m):
+    for ch in prange((m + CHUNK - 1) // CHUNK):  # scratch once per chunk
         loc = np.empty(size)
         out = np.empty(size)
-        _gather(x, c, loc, n, topo, held_e, held_v, mode)
-        _local_apply(loc, out, n, K[c], what)
-        _scatter(out, c, y, pe, pv, n, topo)
+        for c in range(ch * CHUNK, min(m, (ch + 1) * CHUNK)):
+            _gather(x, c, loc, n, topo, held_e, held_v, mode)
+            _local_apply(loc, out, n, K[c], what)
+            _scatter(out, c, y, pe, pv, n, topo)
     _sum_shared(y, pe, pv, n, topo)
     if masked:
         _held_rows(x, y, n, topo, held_e, held_v, what)
@@ -253,28 +281,29 @@ def load(per_cell, y, n, topo, pe, pv):
     tri = topo[0]
     m = tri.shape[0]
     size = (n + 1) * (n + 2) // 2
-    for c in prange(m):
+    for ch in prange((m + CHUNK - 1) // CHUNK):  # scratch once per chunk
         out = np.empty(size)
-        w = per_cell[c]
-        for j in range(n + 1):
-            for i in range(n + 1 - j):
-                # triangles holding (i, j): 6 inside, 3 on a side, 1 at a corner
-                # (from the up and down triangles that exist around it)
-                count = 0
-                if i + j <= n - 1:
-                    count += 1  # up(i, j)
-                if i >= 1 and i + j <= n:
-                    count += 1  # up(i - 1, j)
-                if j >= 1 and i + j <= n:
-                    count += 1  # up(i, j - 1)
-                if i >= 1 and j >= 1:
-                    count += 1  # down(i - 1, j - 1)
-                if j >= 1 and i + j <= n - 1:
-                    count += 1  # down(i, j - 1)
-                if i >= 1 and i + j <= n - 1:
-                    count += 1  # down(i - 1, j)
-                out[_off(i, j, n)] = count * w
-        _scatter(out, c, y, pe, pv, n, topo)
+        for c in range(ch * CHUNK, min(m, (ch + 1) * CHUNK)):
+            w = per_cell[c]
+            for j in range(n + 1):
+                for i in range(n + 1 - j):
+                    # triangles holding (i, j): 6 inside, 3 on a side, 1 at a corner
+                    # (from the up and down triangles that exist around it)
+                    count = 0
+                    if i + j <= n - 1:
+                        count += 1  # up(i, j)
+                    if i >= 1 and i + j <= n:
+                        count += 1  # up(i - 1, j)
+                    if j >= 1 and i + j <= n:
+                        count += 1  # up(i, j - 1)
+                    if i >= 1 and j >= 1:
+                        count += 1  # down(i - 1, j - 1)
+                    if j >= 1 and i + j <= n - 1:
+                        count += 1  # down(i, j - 1)
+                    if i >= 1 and i + j <= n - 1:
+                        count += 1  # down(i - 1, j)
+                    out[_off(i, j, n)] = count * w
+            _scatter(out, c, y, pe, pv, n, topo)
     _sum_shared(y, pe, pv, n, topo)
 
 
@@ -288,23 +317,24 @@ def prolong_add(xc, x, n, topo):
     size_c = (nc + 1) * (nc + 2) // 2
     inside = (n - 1) * (n - 2) // 2
     no = edge_v[:, 0] < 0
-    for c in prange(m):
+    for ch in prange((m + CHUNK - 1) // CHUNK):  # scratch once per chunk
         loc = np.empty(size_c)
-        _gather(xc, c, loc, nc, topo, no, no, PLAIN)
-        start = c * inside
-        for j in range(1, n - 1):
-            row = start + _ioff(j, n)
-            for i in range(1, n - j):
-                if i % 2 == 0 and j % 2 == 0:
-                    val = loc[_off(i // 2, j // 2, nc)]
-                elif j % 2 == 0:
-                    val = 0.5 * (loc[_off(i // 2, j // 2, nc)] + loc[_off(i // 2 + 1, j // 2, nc)])
-                elif i % 2 == 0:
-                    val = 0.5 * (loc[_off(i // 2, j // 2, nc)] + loc[_off(i // 2, j // 2 + 1, nc)])
-                else:
-                    val = 0.5 * (loc[_off(i // 2 + 1, j // 2, nc)]
-                                 + loc[_off(i // 2, j // 2 + 1, nc)])
-                x[row + i - 1] += val
+        for c in range(ch * CHUNK, min(m, (ch + 1) * CHUNK)):
+            _gather(xc, c, loc, nc, topo, no, no, PLAIN)
+            start = c * inside
+            for j in range(1, n - 1):
+                row = start + _ioff(j, n)
+                for i in range(1, n - j):
+                    if i % 2 == 0 and j % 2 == 0:
+                        val = loc[_off(i // 2, j // 2, nc)]
+                    elif j % 2 == 0:
+                        val = 0.5 * (loc[_off(i // 2, j // 2, nc)] + loc[_off(i // 2 + 1, j // 2, nc)])
+                    elif i % 2 == 0:
+                        val = 0.5 * (loc[_off(i // 2, j // 2, nc)] + loc[_off(i // 2, j // 2 + 1, nc)])
+                    else:
+                        val = 0.5 * (loc[_off(i // 2 + 1, j // 2, nc)]
+                                     + loc[_off(i // 2, j // 2 + 1, nc)])
+                    x[row + i - 1] += val
     n_edges = edge_v.shape[0]
     base_e, base_ec = m * inside, m * ((nc - 1) * (nc - 2) // 2)
     base_v, base_vc = base_e + n_edges * (n - 1), base_ec + n_edges * (nc - 1)
@@ -332,24 +362,25 @@ def restrict(r, rc, n, topo, pe, pv):
     nc = n // 2
     size, size_c = (n + 1) * (n + 2) // 2, (nc + 1) * (nc + 2) // 2
     no = edge_v[:, 0] < 0
-    for c in prange(m):
+    for ch in prange((m + CHUNK - 1) // CHUNK):  # scratch once per chunk
         loc = np.empty(size)
         out = np.empty(size_c)
-        _gather(r, c, loc, n, topo, no, no, OWNED)
-        for b in range(nc + 1):
-            for a in range(nc + 1 - b):
-                i, j = 2 * a, 2 * b
-                acc = 0.0
-                if i >= 1:
-                    acc += loc[_off(i - 1, j, n)]
-                if i + j + 1 <= n:
-                    acc += loc[_off(i + 1, j, n)] + loc[_off(i, j + 1, n)]
-                if j >= 1:
-                    acc += loc[_off(i, j - 1, n)] + loc[_off(i + 1, j - 1, n)]
-                if i >= 1:
-                    acc += loc[_off(i - 1, j + 1, n)]
-                out[_off(a, b, nc)] = loc[_off(i, j, n)] + 0.5 * acc
-        _scatter(out, c, rc, pe, pv, nc, topo)
+        for c in range(ch * CHUNK, min(m, (ch + 1) * CHUNK)):
+            _gather(r, c, loc, n, topo, no, no, OWNED)
+            for b in range(nc + 1):
+                for a in range(nc + 1 - b):
+                    i, j = 2 * a, 2 * b
+                    acc = 0.0
+                    if i >= 1:
+                        acc += loc[_off(i - 1, j, n)]
+                    if i + j + 1 <= n:
+                        acc += loc[_off(i + 1, j, n)] + loc[_off(i, j + 1, n)]
+                    if j >= 1:
+                        acc += loc[_off(i, j - 1, n)] + loc[_off(i + 1, j - 1, n)]
+                    if i >= 1:
+                        acc += loc[_off(i - 1, j + 1, n)]
+                    out[_off(a, b, nc)] = loc[_off(i, j, n)] + 0.5 * acc
+            _scatter(out, c, rc, pe, pv, nc, topo)
     _sum_shared(rc, pe, pv, nc, topo)
 
 
@@ -416,3 +447,26 @@ def copy_held(src, dst, n, topo, held_e, held_v):
     for v in prange(held_v.shape[0]):
         if held_v[v]:
             dst[base_v + v] = src[base_v + v]
+
+
+@jit(parallel=True)
+def held_max_abs(x, n, topo, held_e, held_v):
+    """The largest ``|x|`` at the held points of a level (0.0 when none)."""
+    tri, edge_v = topo[0], topo[3]
+    inside = (n - 1) * (n - 2) // 2
+    base_e = tri.shape[0] * inside
+    base_v = base_e + edge_v.shape[0] * (n - 1)
+    per_edge = np.zeros(edge_v.shape[0])
+    for e in prange(edge_v.shape[0]):
+        if held_e[e]:
+            acc = 0.0
+            for s in range(n - 1):
+                acc = max(acc, abs(x[base_e + e * (n - 1) + s]))
+            per_edge[e] = acc
+    top = 0.0
+    for e in range(edge_v.shape[0]):
+        top = max(top, per_edge[e])
+    for v in range(held_v.shape[0]):
+        if held_v[v]:
+            top = max(top, abs(x[base_v + v]))
+    return top

@@ -8,5 +8,7 @@ allow it (:func:`patch_path_reason` says why not when they do not).
 
 from hatkernels.patches.layout import PatchLayout
 from hatkernels.patches.multigrid import PatchMultigrid, PatchOperator, element_stiffness
+from hatkernels.patches.solve import PatchSolution, patch_path_reason, solve_on_patches
 
-__all__ = ["PatchLayout", "PatchMultigrid", "PatchOperator", "element_stiffness"]
+__all__ = ["PatchLayout", "PatchMultigrid", "PatchOperator", "PatchSolution",
+           "element_stiffness", "patch_path_reason", "solve_on_patches"]

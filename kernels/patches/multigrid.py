@@ -22,14 +22,13 @@ from __future__ import annotations
 import numpy as np
 from scipy.sparse.linalg import LinearOperator
 
+from hatkernels._jit import patch_smooth as _s
 from hatkernels._jit import patches as _p
-from hatkernels._jit import sparse as _k
 from hatkernels.assembly import assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.checks import integer_option
 from hatkernels.coefficients import per_triangle
 from hatkernels.errors import InputError
-from hatkernels.precond.chebyshev import ChebyshevSmoother
 from hatkernels.precond.direct import SparseDirect
 from hatkernels.precond.registry import Preconditioner
 
@@ -101,30 +100,79 @@ class PatchOperator(LinearOperator):
         return self.pe.nbytes + self.pv.nbytes + self.K.nbytes
 
 
-class _Level:
-    def __init__(self, layout, K, level, degree, lower, own_x=True):
-        self.op = PatchOperator(layout, K, level)
-        size = self.op.shape[0]
-        self.n = self.op.n
-        self.r, self.d, self.q, self.b = (np.empty(size) for _ in range(4))
-        self.x = np.empty(size) if own_x else None
-        diag, bound = self.op.diagonal_and_bound()
-        self.smoother = ChebyshevSmoother(self.op.matvec_into, self.residual,
-                                          np.reciprocal(diag, out=diag), degree, bound=bound,
-                                          estimate=False, lower=lower)
-        self.pe, self.pv = layout.buffers(level)  # restriction into this level
+def inverse_diagonals(layout, K):
+    """``(per cell, per edge, per vertex)``: the inverse diagonal of every level's matrix
+    (inside a patch, on a coarse edge, at a coarse vertex: the 2-D stencils do not change
+    with the level; 0 at held and unused points)."""
+    tri, edge_cells = layout.topo[0], layout.topo[4]
+    trace = K[:, 0, 0] + K[:, 1, 1] + K[:, 2, 2]
+    dc = 1.0 / (2.0 * trace)
+    de = trace[edge_cells[:, 0]] + np.where(edge_cells[:, 1] >= 0, trace[edge_cells[:, 1]], 0.0)
+    dv = np.zeros(layout.n_vertices)
+    for lv in range(3):
+        np.add.at(dv, tri[:, lv], K[:, lv, lv])
+    with np.errstate(divide="ignore"):
+        de, dv = 1.0 / de, np.where(dv > 0, 1.0 / np.where(dv > 0, dv, 1.0), 0.0)
+    de[layout.held_e] = 0.0
+    dv[layout.held_v] = 0.0
+    return dc, de, dv
 
-    def residual(self, x, b, out):
-        self.op.matvec_into(x, out)
-        _k.xpby(b, -1.0, out)
+
+class _Level:
+    """One patch level: the fused Chebyshev smoother (:mod:`hatkernels._jit.patch_smooth`),
+    its two work vectors and, below the finest level, the cycle's ``x`` and ``b``."""
+
+    def __init__(self, layout, K, level, dinv, bound, degree, lower, finest, dtype):
+        self.layout, self.K, self.level, self.n = layout, K, level, 2**level
+        size = layout.size(level)
+        self.r, self.d = np.empty(size, dtype), np.empty(size, dtype)
+        self.x = None if finest else np.empty(size, dtype)
+        self.b = None if finest else np.empty(size, dtype)
+        self.pe, self.pv = layout.buffers(level)
+        self.dinv = dinv
+        self.degree = degree
+        upper = bound
+        low = lower * upper
+        self.theta, self.delta = 0.5 * (upper + low), 0.5 * (upper - low)
+
+    def _sweep(self, mode, last, b, x, c=0.0, c1=0.0, c2=0.0):
+        lay = self.layout
+        _s.sweep(mode, last, self.n, self.K, *self.dinv, lay.topo, lay.held_e, lay.held_v,
+                 self.pe, self.pv, b, x, self.r, self.d, c, c1, c2)
+
+    def residual(self, x, b):
+        """``self.r = b - A x``."""
+        self._sweep(_s.RESIDUAL, False, b, x)
 
     def smooth(self, x, b, zero_guess):
-        self.smoother.smooth(x, b, zero_guess, self.r, self.d, self.q)
+        """``degree`` Chebyshev steps on ``D^-1 A`` (as :class:`ChebyshevSmoother`)."""
+        sigma = self.theta / self.delta
+        rho = 1.0 / sigma
+        c = 1.0 / self.theta
+        steps = []
+        for _ in range(1, self.degree):
+            rho_new = 1.0 / (2.0 * sigma - rho)
+            steps.append((rho_new * rho, 2.0 * rho_new / self.delta))
+            rho = rho_new
+        if not steps:
+            if zero_guess:
+                lay = self.layout
+                _s.scaled_copy(self.n, *self.dinv, lay.topo, lay.held_e, lay.held_v, c, b, x)
+            else:
+                self._sweep(_s.START, True, b, x, c)
+            return
+        if zero_guess:
+            self._sweep(_s.ZERO, len(steps) == 1, b, x, c, *steps[0])
+            steps = steps[1:]
+        else:
+            self._sweep(_s.START, False, b, x, c)
+        for i, (c1, c2) in enumerate(steps):
+            self._sweep(_s.STEP, i == len(steps) - 1, b, x, c, c1, c2)
 
     @property
     def nbytes(self):
-        vectors = (5 + (self.x is not None)) * self.r.nbytes
-        return vectors + self.op.nbytes + self.pe.nbytes + self.pv.nbytes
+        vectors = (2 + 2 * (self.x is not None)) * self.r.nbytes
+        return vectors + self.pe.nbytes + self.pv.nbytes
 
 
 class PatchMultigrid(Preconditioner):
@@ -141,13 +189,18 @@ class PatchMultigrid(Preconditioner):
         Bottom of the smoother's interval as a fraction of its top.
     nested_cycles : int
         Cycles per level of :meth:`full_cycle_into`.
+    single : bool
+        Keep the levels' vectors in single precision (the arithmetic stays double):
+        half the preconditioner's memory, for the largest solves.  CG around it
+        still converges to the asked tolerance (tests/test_patches.py).
     """
 
     name = "patch-multigrid"
     kind = "geometric multigrid on refined patches, matrix-free stencils"
     needs_matrix = False
 
-    def __init__(self, layout, kappa, *, degree=2, lower=1.0 / 6.0, nested_cycles=1):
+    def __init__(self, layout, kappa, *, degree=2, lower=1.0 / 6.0, nested_cycles=1,
+                 single=False):
         self.layout = layout
         k = layout.k
         if k < 1:
@@ -156,8 +209,17 @@ class PatchMultigrid(Preconditioner):
         self.degree = integer_option(degree, "degree", minimum=1)
         self.nested_cycles = integer_option(nested_cycles, "nested_cycles", minimum=1)
         self.K = element_stiffness(layout.coarse, np.asarray(kappa, dtype=np.float64))
-        self.levels = [_Level(layout, self.K, level, self.degree, lower, own_x=level < k)
+        dinv = inverse_diagonals(layout, self.K)
+        # Gershgorin's bound per level: the rows of every level from 2 up are of the
+        # same kinds (inside a patch, on an edge, at a vertex), so level 2 speaks for them
+        bounds = [PatchOperator(layout, self.K, level).diagonal_and_bound()[1]
+                  for level in range(1, min(k, 2) + 1)]
+        self.levels = [_Level(layout, self.K, level, dinv, bounds[min(level, 2) - 1],
+                              self.degree, lower, finest=level == k,
+                              dtype=np.float32 if single else np.float64)
                        for level in range(1, k + 1)]
+        self.single = bool(single)
+        self._scratch = None  # the finest right-hand side when r is not 0 at held points
         coarse = layout.coarse
         fixed = np.flatnonzero(layout.held_v | (np.diff(layout.topo[6]) == 0))
         A = assemble_stiffness(coarse, per_triangle(np.asarray(kappa, dtype=np.float64)))
@@ -178,11 +240,17 @@ class PatchMultigrid(Preconditioner):
         return self.apply_into(r, out)
 
     def _finest_input(self, r):
+        """``r`` itself when it is 0 at the held points (as CG's residuals are), else a copy
+        with those zeroed."""
         lay = self.layout
-        b = self.levels[-1].b
-        b[:] = r
-        _p.zero_held(b, 2**lay.k, lay.topo, lay.held_e, lay.held_v)
-        return b
+        n = 2**lay.k
+        if _p.held_max_abs(r, n, lay.topo, lay.held_e, lay.held_v) == 0.0:
+            return r
+        if self._scratch is None:
+            self._scratch = np.empty(self.shape[0])
+        self._scratch[:] = r
+        _p.zero_held(self._scratch, n, lay.topo, lay.held_e, lay.held_v)
+        return self._scratch
 
     def _finest_output(self, r, out):
         lay = self.layout
@@ -203,9 +271,9 @@ class PatchMultigrid(Preconditioner):
         cycles = self.nested_cycles if cycles is None else integer_option(
             cycles, "cycles", minimum=1)
         k = self.layout.k
-        self._finest_input(r)
+        b = self._finest_input(r)
         for level in range(k, 0, -1):
-            self._restrict(level, self.levels[level - 1].b)
+            self._restrict(level, b if level == k else self.levels[level - 1].b)
         self._coarse_solve(self._coarse_x, self._coarse_b, True)
         for level in range(1, k + 1):
             lv = self.levels[level - 1]
@@ -214,7 +282,7 @@ class PatchMultigrid(Preconditioner):
             xc = self._coarse_x if level == 1 else self.levels[level - 2].x
             self._prolong_add(level, xc, x)
             for _ in range(cycles):
-                self._cycle(level, x, lv.b, False)
+                self._cycle(level, x, b if level == k else lv.b, False)
         return self._finest_output(r, out)
 
     def _below(self, level):
@@ -226,10 +294,8 @@ class PatchMultigrid(Preconditioner):
     def _restrict(self, level, r):
         lay = self.layout
         _, bc = self._below(level)
-        if level == 1:
-            pe, pv = self._pe0, self._pv0
-        else:
-            pe, pv = self.levels[level - 2].pe, self.levels[level - 2].pv
+        pe, pv = (self._pe0, self._pv0) if level == 1 else (self.levels[level - 2].pe,
+                                                             self.levels[level - 2].pv)
         _p.restrict(r, bc, 2**level, lay.topo, pe, pv)
         if level == 1:
             bc[self._held0] = 0.0
@@ -256,7 +322,7 @@ class PatchMultigrid(Preconditioner):
             return
         lv = self.levels[level - 1]
         lv.smooth(x, b, zero_guess)
-        lv.residual(x, b, lv.r)
+        lv.residual(x, b)
         self._restrict(level, lv.r)
         xc, bc = self._below(level)
         self._cycle(level - 1, xc, bc, True)
@@ -271,5 +337,7 @@ class PatchMultigrid(Preconditioner):
                 + getattr(self._coarse_solver, "memory_bytes", 0))
 
     def _details(self):
+        precision = "single" if self.single else "double"
         return (f"{len(self.levels) + 1} levels, V-cycle, Chebyshev degree {self.degree}, "
+                f"{precision} precision vectors, "
                 f"{self.memory_bytes / 2**20:.0f} MiB")

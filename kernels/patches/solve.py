@@ -20,18 +20,26 @@ import numpy as np
 
 from hatkernels._jit import patches as _p
 from hatkernels.errors import InputError
+from hatkernels.patches.cg import lean_cg
 from hatkernels.patches.layout import PatchLayout
 from hatkernels.patches.multigrid import PatchMultigrid, PatchOperator
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.problem import PoissonProblem
 
-__all__ = ["PatchSolution", "patch_path_reason", "solve_on_patches", "BYTES_PER_POINT"]
+__all__ = ["PatchSolution", "bytes_per_point", "patch_path_reason", "solve_on_patches"]
 
-# Peak bytes per fine point of solve_on_patches beyond the coarse mesh: CG's five
-# vectors and the right-hand side, the finest level's four work vectors and inverse
-# diagonal, the coarser levels (a third of six vectors more) and the shared-row
-# buffers; measured in bench/patches.py (docs/patches.md).
-BYTES_PER_POINT = 8 * (6 + 5 + 2) + 8
+# Bytes per fine point of solve_on_patches: the four vectors of the lean CG
+# (:mod:`hatkernels.patches.cg`), the finest level's two work vectors and the
+# coarser levels' four (a third as many points), in double or single precision;
+# nonzero held values keep the right-hand side too.  Checked against the measured
+# peak in bench/patches.py (docs/patches.md).
+CG_BYTES = 4 * 8
+
+
+def bytes_per_point(single, lifted=False):
+    """Peak bytes per fine point of the patch path beyond the coarse mesh."""
+    word = 4 if single else 8
+    return CG_BYTES + 8 * bool(lifted) + 2 * word + 4 * word / 3.0
 
 
 def _is_number(v):
@@ -167,16 +175,20 @@ def _per_cell(coef, m, what):
 def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=None,
                      coefficient=None, rtol=1e-10, atol=0.0, maxiter=None, start=None,
                      check=False, monitor=None, quadrature=2, progress=None,
-                     memory_check=True, degree=2, nested_cycles=1):
+                     memory_check=True, degree=2, nested_cycles=1, single=None):
     """Solve ``-div(kappa grad u) = f`` on ``coarse`` refined ``refine`` times, patch by patch.
 
     The arguments are those of :func:`hatkernels.solve_poisson` (the data the path
-    takes: see the module notes); CG with the patch multigrid
-    (:class:`PatchMultigrid`) as preconditioner.  Returns a :class:`PatchSolution`.
+    takes: see the module notes).  CG in four vectors (:func:`lean_cg`) with the
+    patch multigrid (:class:`PatchMultigrid`) as preconditioner; ``start="nested"``
+    begins from full multigrid, ``rtol=None`` returns that start alone.  ``single``:
+    the multigrid's vectors in single precision; default (None) only when double
+    precision would not fit in the memory available.  Returns a
+    :class:`PatchSolution`.
     """
     from hatkernels.memory import MARGIN, available_bytes
-    from hatkernels.solver import solve
-    from hatkernels.stats import SolveStats  # noqa: F401  (the stats type of the result)
+    from hatkernels.solver import STARTS, report_convergence
+    from hatkernels.stats import SolveStats
 
     t0 = time.perf_counter()
     note = progress or (lambda phase: None)
@@ -185,6 +197,12 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
                                dirichlet_on=dirichlet_on, coefficient=coefficient)
     if reason is not None:
         raise InputError(f"the patch path cannot take this problem: {reason}")
+    if start is None:
+        start = "nested" if rtol is None else "zero"
+    if start not in STARTS:
+        raise InputError(f"start must be one of {STARTS}, got {start!r}")
+    if rtol is None and start != "nested":
+        raise InputError("rtol=None asks for the nested start alone, but start='zero'")
     args = dict(f=f, dirichlet=dirichlet, dirichlet_on=dirichlet_on, coefficient=coefficient,
                 quadrature=quadrature)
     problem = PoissonProblem(coarse, **args)
@@ -192,60 +210,81 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     kappa = _per_cell(problem.coefficient, m, "coefficient")
     source = _per_cell(problem.source, m, "f")
     sides, side_values = _held(coarse, problem, dirichlet)
-    if rtol is None and np.any(side_values != 0):
+    lifted = bool(np.any(side_values != 0))
+    if rtol is None and lifted:
         raise InputError("rtol=None (the nested start alone) reaches discretisation accuracy "
                          "with zero held values only; give a tolerance")
     layout = PatchLayout(coarse, refine, held_sides=sides)
     k, n = refine, 2**refine
     size = layout.size(k)
-    if memory_check:
-        have = available_bytes()
-        need = BYTES_PER_POINT * size
-        if have is not None and need * MARGIN > have:
-            raise InputError(
-                f"not enough memory: the patch path on {size:,} fine points needs about "
-                f"{need / 2**30:.1f} GiB ({BYTES_PER_POINT} bytes per point), but "
-                f"{have / 2**30:.1f} GiB are available; refine less, or pass "
-                f"memory_check=False to try anyway")
+    have = available_bytes() if (memory_check or single is None) else None
+    if single is None:
+        single = have is not None and bytes_per_point(False, lifted) * size * MARGIN > have
+    need = bytes_per_point(single, lifted) * size
+    if memory_check and have is not None and need * MARGIN > have:
+        raise InputError(
+            f"not enough memory: the patch path on {size:,} fine points needs about "
+            f"{need / 2**30:.1f} GiB ({need / size:.0f} bytes per point), but "
+            f"{have / 2**30:.1f} GiB are available; refine less, or pass "
+            f"memory_check=False to try anyway")
     timings = {"boundary": time.perf_counter() - t0}
 
     note("assemble")
     t1 = time.perf_counter()
+    M = PatchMultigrid(layout, kappa, degree=degree, nested_cycles=nested_cycles,
+                       single=single)
+    A = PatchOperator(layout, M.K, k)
+    timings["setup"] = time.perf_counter() - t1
+    t2 = time.perf_counter()
     area = 0.5 * np.abs(np.cross(coarse.points[coarse.triangles[:, 1]]
                                  - coarse.points[coarse.triangles[:, 0]],
                                  coarse.points[coarse.triangles[:, 2]]
                                  - coarse.points[coarse.triangles[:, 0]]))
-    b = np.empty(size)
+    per_cell = source * area / (3.0 * n * n)
     pe, pv = layout.buffers(k)
-    _p.load(source * area / (3.0 * n * n), b, n, layout.topo, pe, pv)
-    g = _lifting(layout, sides, side_values, problem)
-    timings["assemble"] = time.perf_counter() - t1
 
-    t2 = time.perf_counter()
-    M = PatchMultigrid(layout, kappa, degree=degree, nested_cycles=nested_cycles)
-    A = PatchOperator(layout, M.K, k)
-    if g is not None:
-        full = PatchOperator(layout, M.K, k, masked=False)
-        lift = full @ g
-        b -= lift
-        del lift
-    _p.zero_held(b, n, layout.topo, layout.held_e, layout.held_v)
-    setup = time.perf_counter() - t2
+    def load(out):
+        _p.load(per_cell, out, n, layout.topo, pe, pv)
 
+    r = np.empty(size)
+    load(r)
+    kept = None
+    if lifted:
+        g = _lifting(layout, sides, side_values, problem)
+        r -= PatchOperator(layout, M.K, k, masked=False) @ g
+        del g
+        _p.zero_held(r, n, layout.topo, layout.held_e, layout.held_v)
+        kept = r.copy()
+    else:
+        _p.zero_held(r, n, layout.topo, layout.held_e, layout.held_v)
+
+    def remake_b(out):
+        if kept is not None:
+            out[:] = kept
+        else:
+            load(out)
+            _p.zero_held(out, n, layout.topo, layout.held_e, layout.held_v)
+
+    timings["assemble"] = time.perf_counter() - t2
     note("solve")
-    result = solve(A, b, preconditioner=M, rtol=rtol, atol=atol, maxiter=maxiter,
-                   start=start, check=check, monitor=monitor)
-    del b
+    t3 = time.perf_counter()
+    result = lean_cg(A, M, r, remake_b, rtol=rtol, atol=atol, maxiter=maxiter,
+                     nested=start == "nested", monitor=monitor)
+    timings["solve"] = time.perf_counter() - t3
+    del r
+    kept = None  # noqa: F841  (frees the kept right-hand side before u is made)
     x = result.x
-    if g is not None:
-        x += g
-    stats = result.stats
-    stats.timings = {**timings, **stats.timings, "setup": setup,
-                     "total": time.perf_counter() - t0}
-    stats.unknowns = size
-    stats.dirichlet_points = int(_held_count(layout, n))
-    stats.peak_rss_bytes = peak_rss_bytes()
-    stats.threads = numba.get_num_threads()
+    if lifted:
+        x += _lifting(layout, sides, side_values, problem)
+    stats = SolveStats(
+        iterations=result.iterations, converged=result.converged,
+        residuals=result.residuals, timings={**timings, "total": time.perf_counter() - t0},
+        unknowns=size, preconditioner=M.description, stored_bytes=0,
+        peak_rss_bytes=peak_rss_bytes(), threads=numba.get_num_threads(), info=result.info,
+        message=result.message, tolerance=result.tolerance,
+        condition_estimate=result.condition_estimate, nnz=0, matrix_free=True)
+    stats.dirichlet_points = _held_count(layout, n)
+    report_convergence(stats, check, stacklevel=3)
     return PatchSolution(x, layout, stats, args)
 
 
