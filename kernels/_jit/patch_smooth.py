@@ -26,7 +26,16 @@ import numpy as np
 from numba import prange, uint64
 
 from hatkernels._jit import jit
-from hatkernels._jit.patches import CHUNK, MASKED, _gather, _ioff, _local_apply, _off, _scatter
+from hatkernels._jit.patches import (
+    CHUNK,
+    MASKED,
+    _gather,
+    _ioff,
+    _local_apply,
+    _off,
+    _scatter,
+    _stencil,
+)
 
 ZERO, START, STEP, RESIDUAL = 0, 1, 2, 3
 
@@ -69,12 +78,17 @@ def sweep(mode, last, n, K, dinv_c, dinv_e, dinv_v, topo, held_e, held_v, pe, pv
     m = tri.shape[0]
     size = (n + 1) * (n + 2) // 2
     inside = (n - 1) * (n - 2) // 2
-    src = b if mode == ZERO else (d if mode == STEP else x)
     for ch in prange((m + CHUNK - 1) // CHUNK):  # scratch once per chunk
         loc = np.empty(size)
         out = np.empty(size)
         for cell in range(ch * CHUNK, min(m, (ch + 1) * CHUNK)):
-            _gather(src, cell, loc, n, topo, held_e, held_v, MASKED)
+            # (three calls, not one on a chosen array: the arrays may differ in precision)
+            if mode == ZERO:
+                _gather(b, cell, loc, n, topo, held_e, held_v, MASKED)
+            elif mode == STEP:
+                _gather(d, cell, loc, n, topo, held_e, held_v, MASKED)
+            else:
+                _gather(x, cell, loc, n, topo, held_e, held_v, MASKED)
             if mode == ZERO:  # the first direction, c D^-1 b, on the whole patch
                 di = dinv_c[cell]
                 cdi = c * di
@@ -95,23 +109,28 @@ def sweep(mode, last, n, K, dinv_c, dinv_e, dinv_v, topo, held_e, held_v, pe, pv
                 loc[0] = c * dinv_v[tri[cell, 0]] * loc[0]
                 loc[_off(n, 0, n)] = c * dinv_v[tri[cell, 1]] * loc[_off(n, 0, n)]
                 loc[_off(0, n, n)] = c * dinv_v[tri[cell, 2]] * loc[_off(0, n, n)]
-            _local_apply(loc, out, n, K[cell], 0)
+            _local_apply(loc, out, n, K[cell], 0, None, -1, False)  # the side rows only
+            kc = K[cell]
+            sd = 2.0 * (kc[0, 0] + kc[1, 1] + kc[2, 2])
+            sh, sv, sg = 2.0 * kc[0, 1], 2.0 * kc[0, 2], 2.0 * kc[1, 2]
             di = dinv_c[cell]
             start = cell * inside
             for j in range(1, n - 1):
                 row = uint64(start + _ioff(j, n))
                 o = uint64(_off(0, j, n) + 1)
+                ob, oa = uint64(_off(0, j - 1, n) + 1), uint64(_off(0, j + 1, n))
                 width = uint64(n - j - 1)
+                # the inside rows' products made where they are used (no pass through out)
                 # one loop per case, no branch inside: they vectorise
                 if mode == RESIDUAL:
                     for q in range(uint64(0), width):
-                        r[row + q] = b[row + q] - out[o + q]
+                        r[row + q] = b[row + q] - _stencil(loc, o + q, ob + q, oa + q, sd, sh, sv, sg)
                 elif mode == STEP and last:
                     for q in range(uint64(0), width):
-                        x[row + q] += c1 * d[row + q] + c2 * di * (r[row + q] - out[o + q])
+                        x[row + q] += c1 * d[row + q] + c2 * di * (r[row + q] - _stencil(loc, o + q, ob + q, oa + q, sd, sh, sv, sg))
                 elif mode == STEP:
                     for q in range(uint64(0), width):
-                        ri = r[row + q] - out[o + q]
+                        ri = r[row + q] - _stencil(loc, o + q, ob + q, oa + q, sd, sh, sv, sg)
                         dn = c1 * d[row + q] + c2 * di * ri
                         r[row + q] = ri
                         d[row + q] = dn
@@ -119,20 +138,20 @@ def sweep(mode, last, n, K, dinv_c, dinv_e, dinv_v, topo, held_e, held_v, pe, pv
                 elif mode == ZERO and last:
                     for q in range(uint64(0), width):
                         x[row + q] = loc[o + q] + (c1 * loc[o + q]
-                                                   + c2 * di * (b[row + q] - out[o + q]))
+                                                   + c2 * di * (b[row + q] - _stencil(loc, o + q, ob + q, oa + q, sd, sh, sv, sg)))
                 elif mode == ZERO:
                     for q in range(uint64(0), width):
-                        ri = b[row + q] - out[o + q]
+                        ri = b[row + q] - _stencil(loc, o + q, ob + q, oa + q, sd, sh, sv, sg)
                         dn = c1 * loc[o + q] + c2 * di * ri
                         r[row + q] = ri
                         d[row + q] = dn
                         x[row + q] = loc[o + q] + dn
                 elif last:  # START
                     for q in range(uint64(0), width):
-                        x[row + q] += c * di * (b[row + q] - out[o + q])
+                        x[row + q] += c * di * (b[row + q] - _stencil(loc, o + q, ob + q, oa + q, sd, sh, sv, sg))
                 else:
                     for q in range(uint64(0), width):
-                        ri = b[row + q] - out[o + q]
+                        ri = b[row + q] - _stencil(loc, o + q, ob + q, oa + q, sd, sh, sv, sg)
                         dn = c * di * ri
                         r[row + q] = ri
                         d[row + q] = dn

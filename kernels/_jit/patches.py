@@ -188,15 +188,36 @@ def _role_sum(loc, n, i, j, K, what):
 
 
 @jit()
-def _local_apply(loc, out, n, K, what):
-    """``out`` = the patch's rows (inside rows whole, boundary rows this cell's part)."""
+def _stencil(loc, c0, cb, ca, d, h, v, g):
+    """The inside row at packed place ``c0`` (``cb``, ``ca``: the places of the row below
+    and above, shifted as in :func:`_local_apply`)."""
+    one = uint64(1)
+    return (d * loc[c0] + h * (loc[c0 - one] + loc[c0 + one]) + v * (loc[cb] + loc[ca + one])
+            + g * (loc[cb + one] + loc[ca]))
+
+
+@jit()
+def _local_apply(loc, out, n, K, what, y=None, start=-1, inside=True):
+    """``out`` = the patch's rows (inside rows whole, boundary rows this cell's part).
+
+    With ``y`` given (``what`` 0), the inside rows go straight to ``y`` from ``start``
+    (the cell's inside block) instead of ``out``: one pass through the cache less;
+    with ``inside`` False they are not computed (the caller does, row by row)."""
     d = 2.0 * (K[0, 0] + K[1, 1] + K[2, 2])
     h, v, g = 2.0 * K[0, 1], 2.0 * K[0, 2], 2.0 * K[1, 2]
-    for j in range(1, n - 1):
+    for j in range(1, n - 1 if inside else 1):
         o, below, above = _off(0, j, n), _off(0, j - 1, n), _off(0, j + 1, n)
         if what == 0:
             # unsigned indices: no negative-index wrap check, so the loop vectorises
             o0, b0, a0 = uint64(o + 1), uint64(below + 1), uint64(above)
+            if y is not None:
+                row = uint64(start + _ioff(j, n))
+                for q in range(uint64(0), uint64(n - j - 1)):
+                    c0, cb, ca = o0 + q, b0 + q, a0 + q
+                    y[row + q] = (d * loc[c0] + h * (loc[c0 - uint64(1)] + loc[c0 + uint64(1)])
+                                  + v * (loc[cb] + loc[ca + uint64(1)])
+                                  + g * (loc[cb + uint64(1)] + loc[ca]))
+                continue
             for q in range(uint64(0), uint64(n - j - 1)):
                 c0, cb, ca = o0 + q, b0 + q, a0 + q
                 out[c0] = (d * loc[c0] + h * (loc[c0 - uint64(1)] + loc[c0 + uint64(1)])
@@ -251,8 +272,12 @@ def apply(x, y, n, K, topo, held_e, held_v, masked, pe, pv, what):
         out = np.empty(size)
         for c in range(ch * CHUNK, min(m, (ch + 1) * CHUNK)):
             _gather(x, c, loc, n, topo, held_e, held_v, mode)
-            _local_apply(loc, out, n, K[c], what)
-            _scatter(out, c, y, pe, pv, n, topo)
+            if what == 0:
+                _local_apply(loc, out, n, K[c], what, y, c * ((n - 1) * (n - 2) // 2))
+                _scatter(out, c, y, pe, pv, n, topo, False)
+            else:
+                _local_apply(loc, out, n, K[c], what)
+                _scatter(out, c, y, pe, pv, n, topo)
     _sum_shared(y, pe, pv, n, topo)
     if masked:
         _held_rows(x, y, n, topo, held_e, held_v, what)

@@ -72,6 +72,7 @@ class PatchLayout:
         self.topo = (tri, cell_edge, cell_flip, edge_v, edge_cells, edge_le, vptr,
                      np.ascontiguousarray(vorder // 3), np.ascontiguousarray(vorder % 3))
         self.n_cells, self.n_edges, self.n_vertices = m, n_edges, coarse.n_points
+        self._shared = None
         self.held_e = np.zeros(n_edges, dtype=bool)
         self.held_v = np.zeros(coarse.n_points, dtype=bool)
         if held_sides is not None and len(held_sides):
@@ -95,9 +96,15 @@ class PatchLayout:
                 + self.n_vertices)
 
     def buffers(self, level):
-        """The per-cell buffers of shared rows for ``level``."""
-        n = 2**level
-        return np.empty((self.n_cells, 3, n - 1)), np.empty((self.n_cells, 3))
+        """The per-cell buffers of shared rows for ``level``: views into one pair of arrays
+        sized for the finest level, shared by every level and operator of this layout (no
+        two kernels run at once, and none uses two levels' buffers)."""
+        if self._shared is None:
+            n = 2**self.k
+            self._shared = (np.empty(self.n_cells * 3 * (n - 1)), np.empty((self.n_cells, 3)))
+        flat, pv = self._shared
+        width = 2**level - 1
+        return flat[: self.n_cells * 3 * width].reshape(self.n_cells, 3, width), pv
 
     # -- the numbering of mesh.refine() repeated k times ---------------------------------
 

@@ -122,10 +122,12 @@ class _Level:
     """One patch level: the fused Chebyshev smoother (:mod:`hatkernels._jit.patch_smooth`),
     its two work vectors and, below the finest level, the cycle's ``x`` and ``b``."""
 
-    def __init__(self, layout, K, level, dinv, bound, degree, lower, finest, dtype):
+    def __init__(self, layout, K, level, dinv, bound, degree, lower, finest, dtype, work):
         self.layout, self.K, self.level, self.n = layout, K, level, 2**level
         size = layout.size(level)
-        self.r, self.d = np.empty(size, dtype), np.empty(size, dtype)
+        # the work vectors are views into the finest level's: a level needs them only
+        # while it smooths and until its residual is restricted
+        self.r, self.d = work[0][:size], work[1][:size]
         self.x = None if finest else np.empty(size, dtype)
         self.b = None if finest else np.empty(size, dtype)
         self.pe, self.pv = layout.buffers(level)
@@ -171,8 +173,8 @@ class _Level:
 
     @property
     def nbytes(self):
-        vectors = (2 + 2 * (self.x is not None)) * self.r.nbytes
-        return vectors + self.pe.nbytes + self.pv.nbytes
+        """Bytes of this level's own vectors (the shared work vectors not counted)."""
+        return 2 * (self.x is not None) * self.r.nbytes
 
 
 class PatchMultigrid(Preconditioner):
@@ -192,7 +194,7 @@ class PatchMultigrid(Preconditioner):
     single : bool
         Keep the levels' vectors in single precision (the arithmetic stays double):
         half the preconditioner's memory, for the largest solves.  CG around it
-        still converges to the asked tolerance (tests/test_patches.py).
+        still converges to the asked tolerance (tests/test_patches_solve.py).
     """
 
     name = "patch-multigrid"
@@ -214,9 +216,12 @@ class PatchMultigrid(Preconditioner):
         # same kinds (inside a patch, on an edge, at a vertex), so level 2 speaks for them
         bounds = [PatchOperator(layout, self.K, level).diagonal_and_bound()[1]
                   for level in range(1, min(k, 2) + 1)]
+        dtype = np.float32 if single else np.float64
+        size = layout.size(k)
+        self._work = (np.empty(size, dtype), np.empty(size, dtype))
         self.levels = [_Level(layout, self.K, level, dinv, bounds[min(level, 2) - 1],
-                              self.degree, lower, finest=level == k,
-                              dtype=np.float32 if single else np.float64)
+                              self.degree, lower, finest=level == k, dtype=dtype,
+                              work=self._work)
                        for level in range(1, k + 1)]
         self.single = bool(single)
         self._scratch = None  # the finest right-hand side when r is not 0 at held points
@@ -333,11 +338,12 @@ class PatchMultigrid(Preconditioner):
 
     @property
     def memory_bytes(self):
+        pe, pv = self.layout.buffers(self.layout.k)
         return (sum(lv.nbytes for lv in self.levels) + self._coarse_x.nbytes * 2
+                + sum(w.nbytes for w in self._work) + pe.nbytes + pv.nbytes
                 + getattr(self._coarse_solver, "memory_bytes", 0))
 
     def _details(self):
         precision = "single" if self.single else "double"
         return (f"{len(self.levels) + 1} levels, V-cycle, Chebyshev degree {self.degree}, "
-                f"{precision} precision vectors, "
-                f"{self.memory_bytes / 2**20:.0f} MiB")
+                f"{precision} precision vectors")

@@ -2,10 +2,12 @@
 
 The data are parsed and checked once on the coarse mesh (a
 :class:`~hatkernels.problem.PoissonProblem`, so the errors are the serial
-ones).  The path takes: a coefficient and a source that are numbers or
-``{region: number}`` (constant on each coarse cell), held values that are a
-number or ``{tag: number}`` on whole boundary sides (the whole boundary or
-boundary tags).  Anything else (callables, arrays, reactions, fluxes,
+ones).  The path takes: a coefficient that is a number or ``{region: number}``
+(constant on each coarse cell), a source that is a number, a callable or
+``{region: number or callable}`` (callables evaluated on the fly,
+:mod:`hatkernels.patches.load`), held values that are a number or
+``{tag: number}`` on whole boundary sides (the whole boundary or boundary
+tags).  Anything else (callable coefficients, arrays, reactions, fluxes,
 convection, zero mean, tetrahedra) takes the stored refinement, and
 :func:`patch_path_reason` says why.
 """
@@ -22,32 +24,44 @@ from hatkernels._jit import patches as _p
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
 from hatkernels.patches.layout import PatchLayout
+from hatkernels.patches.load import callable_load
 from hatkernels.patches.multigrid import PatchMultigrid, PatchOperator
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.problem import PoissonProblem
 
 __all__ = ["PatchSolution", "bytes_per_point", "patch_path_reason", "solve_on_patches"]
 
-# Bytes per fine point of solve_on_patches: the four vectors of the lean CG
-# (:mod:`hatkernels.patches.cg`), the finest level's two work vectors and the
-# coarser levels' four (a third as many points), in double or single precision;
-# nonzero held values keep the right-hand side too.  Checked against the measured
-# peak in bench/patches.py (docs/patches.md).
+# Bytes per fine point of solve_on_patches: see bytes_per_point; checked against the
+# measured peak in bench/patches.py (docs/patches.md).
 CG_BYTES = 4 * 8
 
 
-def bytes_per_point(single, lifted=False):
-    """Peak bytes per fine point of the patch path beyond the coarse mesh."""
+def bytes_per_point(single, keeps_b=False):
+    """Peak bytes per fine point of the patch path beyond the coarse mesh: CG's four
+    vectors (five when the right-hand side is kept: nonzero held values or a callable
+    source), the multigrid's two shared work vectors and its coarser levels' ``x`` and
+    ``b`` (a third as many points)."""
     word = 4 if single else 8
-    return CG_BYTES + 8 * bool(lifted) + 2 * word + 4 * word / 3.0
+    return CG_BYTES + 8 * bool(keeps_b) + 2 * word + 2 * word / 3.0
+
+
+# the estimate is measured, not a guess (bench/patches.py): a small margin, and the
+# interpreter with its libraries and the coarse mesh's arrays as a fixed amount
+MARGIN = 1.02
+FIXED_BYTES = 2**29
+
+
+def _need(single, keeps_b, size):
+    return bytes_per_point(single, keeps_b) * size * MARGIN + FIXED_BYTES
 
 
 def _is_number(v):
     return isinstance(v, numbers.Real) and not isinstance(v, bool)
 
 
-def _numbers_by_key(v):
-    return isinstance(v, dict) and bool(v) and all(_is_number(x) for x in v.values())
+def _numbers_by_key(v, callables=False):
+    return isinstance(v, dict) and bool(v) and all(
+        _is_number(x) or (callables and callable(x)) for x in v.values())
 
 
 def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
@@ -57,7 +71,7 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
     else the reason it cannot (one sentence)."""
     if getattr(mesh, "dim", None) != 2:
         return "the patch path takes triangle meshes"
-    if not isinstance(refine, numbers.Integral) or refine < 1:
+    if isinstance(refine, bool) or not isinstance(refine, numbers.Integral) or refine < 1:
         return "the patch path needs refine >= 1"
     if reaction is not None or neumann is not None or robin is not None:
         return "the patch path takes no reaction, flux or convection term"
@@ -67,9 +81,10 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
         return "matrix_free=False and variant belong to the stored path"
     if options:
         return f"preconditioner options ({', '.join(sorted(options))}) belong to the stored path"
-    for name, v in (("f", f), ("coefficient", coefficient)):
-        if not (v is None or _is_number(v) or _numbers_by_key(v)):
-            return f"{name} is not a number or {{region: number}}"
+    if not (coefficient is None or _is_number(coefficient) or _numbers_by_key(coefficient)):
+        return "coefficient is not a number or {region: number}"
+    if not (f is None or _is_number(f) or callable(f) or _numbers_by_key(f, callables=True)):
+        return "f is not a number, a callable or {region: number or callable}"
     if not (_is_number(dirichlet) or _numbers_by_key(dirichlet)):
         return "dirichlet is not a number or {tag: number}"
     if not (dirichlet_on is None or isinstance(dirichlet_on, str) or (
@@ -179,14 +194,14 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     """Solve ``-div(kappa grad u) = f`` on ``coarse`` refined ``refine`` times, patch by patch.
 
     The arguments are those of :func:`hatkernels.solve_poisson` (the data the path
-    takes: see the module notes).  CG in four vectors (:func:`lean_cg`) with the
+    takes: see the module notes).  CG in four vectors (:mod:`hatkernels.patches.cg`) with the
     patch multigrid (:class:`PatchMultigrid`) as preconditioner; ``start="nested"``
     begins from full multigrid, ``rtol=None`` returns that start alone.  ``single``:
     the multigrid's vectors in single precision; default (None) only when double
     precision would not fit in the memory available.  Returns a
     :class:`PatchSolution`.
     """
-    from hatkernels.memory import MARGIN, available_bytes
+    from hatkernels.memory import available_bytes
     from hatkernels.solver import STARTS, report_convergence
     from hatkernels.stats import SolveStats
 
@@ -208,9 +223,10 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     problem = PoissonProblem(coarse, **args)
     m = coarse.n_triangles
     kappa = _per_cell(problem.coefficient, m, "coefficient")
-    source = _per_cell(problem.source, m, "f")
+    source = None if problem.source.kind == "callable" else _per_cell(problem.source, m, "f")
     sides, side_values = _held(coarse, problem, dirichlet)
     lifted = bool(np.any(side_values != 0))
+    keeps_b = lifted or problem.source.kind == "callable"
     if rtol is None and lifted:
         raise InputError("rtol=None (the nested start alone) reaches discretisation accuracy "
                          "with zero held values only; give a tolerance")
@@ -219,9 +235,9 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     size = layout.size(k)
     have = available_bytes() if (memory_check or single is None) else None
     if single is None:
-        single = have is not None and bytes_per_point(False, lifted) * size * MARGIN > have
-    need = bytes_per_point(single, lifted) * size
-    if memory_check and have is not None and need * MARGIN > have:
+        single = have is not None and _need(False, keeps_b, size) > have
+    need = _need(single, keeps_b, size)
+    if memory_check and have is not None and need > have:
         raise InputError(
             f"not enough memory: the patch path on {size:,} fine points needs about "
             f"{need / 2**30:.1f} GiB ({need / size:.0f} bytes per point), but "
@@ -236,15 +252,17 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     A = PatchOperator(layout, M.K, k)
     timings["setup"] = time.perf_counter() - t1
     t2 = time.perf_counter()
-    area = 0.5 * np.abs(np.cross(coarse.points[coarse.triangles[:, 1]]
-                                 - coarse.points[coarse.triangles[:, 0]],
-                                 coarse.points[coarse.triangles[:, 2]]
-                                 - coarse.points[coarse.triangles[:, 0]]))
-    per_cell = source * area / (3.0 * n * n)
+    corner = coarse.points[coarse.triangles]
+    d1, d2 = corner[:, 1] - corner[:, 0], corner[:, 2] - corner[:, 0]
+    area = 0.5 * np.abs(d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0])
+    del corner, d1, d2
     pe, pv = layout.buffers(k)
 
     def load(out):
-        _p.load(per_cell, out, n, layout.topo, pe, pv)
+        if source is None:
+            callable_load(layout, problem.source, quadrature, out)
+        else:
+            _p.load(source * area / (3.0 * n * n), out, n, layout.topo, pe, pv)
 
     r = np.empty(size)
     load(r)
@@ -253,10 +271,9 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
         g = _lifting(layout, sides, side_values, problem)
         r -= PatchOperator(layout, M.K, k, masked=False) @ g
         del g
-        _p.zero_held(r, n, layout.topo, layout.held_e, layout.held_v)
+    _p.zero_held(r, n, layout.topo, layout.held_e, layout.held_v)
+    if lifted or source is None:  # kept, not made again: a callable costs its evaluations
         kept = r.copy()
-    else:
-        _p.zero_held(r, n, layout.topo, layout.held_e, layout.held_v)
 
     def remake_b(out):
         if kept is not None:

@@ -1,0 +1,272 @@
+"""The never-stored refinement against the stored-mesh gmg, in work units, up to 1e9 triangles.
+
+    flock /tmp/hk-bench.lock python bench/patches.py --cases 125:3 125:4 125:5 125:6 \
+        --out bench/results/patches.json
+    flock /tmp/hk-bench.lock python bench/patches.py --cases 177:7 --only patch
+
+The problem: ``-lap u = 1`` on the unit square, ``u = 0`` on its boundary, on
+``rectangle(c, c)`` refined ``k`` times (``2 c^2 4^k`` triangles), solved to rtol 1e-8.
+Each case ``c:k`` runs in its own process per path, one after the other (never at once),
+so that each peak memory is its own:
+
+``csr``
+    the work unit: one product with the assembled stiffness matrix of the refined mesh
+    (held rows removed) by the library's parallel CSR kernel, best of 10, and the
+    machine's copy bandwidth (:func:`hatkernels.perf.memory_bandwidth`);
+``stored``
+    ``solve_poisson(coarse, 1.0, refine=k, preconditioner="gmg")``: the refined mesh
+    built and stored, CG + matrix-free gmg (today's path for refined meshes);
+``patch``
+    ``solve_poisson(coarse, 1.0, refine=k)``: the patch path (docs/patches.md), CG +
+    patch multigrid; also the patch product (against its floor: read x, write y),
+    full multigrid alone (``rtol=None``) and its error.
+
+Accuracy of full multigrid: at the coarse mesh's points, the maximum error of the
+converged solution against the series solution of the problem (its discretisation
+error there; series: S. Timoshenko and J. N. Goodier, Theory of Elasticity, 1951,
+torsion of a rectangular bar) and the maximum difference between the full multigrid
+solution and the converged one (its algebraic error).  A case whose path does not fit
+in memory is reported as such.  Run it on a quiet machine.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import subprocess
+import sys
+import tempfile
+import time
+
+import numpy as np
+
+
+def series(x, y, terms=4001):
+    """``u`` of ``-lap u = 1`` on the unit square with ``u = 0`` on its boundary: the
+    single series ``x(1-x)/2 - 4/pi^3 sum_{n odd} sin(n pi x) cosh(n pi (y-1/2)) /
+    (n^3 cosh(n pi/2))``, its tail below about 2e-9 with 2001 odd terms (S. Timoshenko and
+    J. N. Goodier, Theory of Elasticity, 1951, torsion of a rectangular bar)."""
+    x, y = np.broadcast_arrays(np.asarray(x, dtype=float), np.asarray(y, dtype=float))
+    u = 0.5 * x * (1.0 - x)
+    a = np.abs(y - 0.5)
+    for n in range(1, terms + 1, 2):
+        # cosh(n pi a) / cosh(n pi / 2) without overflow
+        ratio = (np.exp(n * math.pi * (a - 0.5)) * (1 + np.exp(-2 * n * math.pi * a))
+                 / (1 + math.exp(-n * math.pi)))
+        u -= 4.0 / (math.pi**3 * n**3) * np.sin(n * math.pi * x) * ratio
+    return u
+
+
+# above this many points the patch case runs the solve alone (the full multigrid run and
+# the product timing would need memory beside the kept solution)
+EXTRAS_UP_TO = 3e8
+
+
+def _points(c, k):
+    return (c * 2**k + 1) ** 2
+
+
+def run_csr(c, k):
+    import hatkernels
+    from hatkernels import sparse
+    from hatkernels.perf import memory_bandwidth
+
+    mesh = hatkernels.mesh.rectangle(c, c)
+    for _ in range(k):
+        mesh = mesh.refine()
+    A = hatkernels.assemble_stiffness(mesh)
+    A = sparse.as_csr(hatkernels.apply_dirichlet(A, np.zeros(mesh.n_points),
+                                                 mesh.boundary_points()).A)
+    x = np.random.default_rng(1).standard_normal(A.shape[0])
+    y = np.empty_like(x)
+    best = math.inf
+    for _ in range(11):
+        t = time.perf_counter()
+        sparse.spmv(A, x, out=y)
+        best = min(best, time.perf_counter() - t)
+    return {"wu_seconds": best, "points": int(mesh.n_points), "nnz": int(A.nnz),
+            "numpy_copy_GBs": memory_bandwidth()["copy"]}
+
+
+def run_stored(c, k):
+    import hatkernels
+
+    coarse = hatkernels.mesh.rectangle(c, c)
+    t = time.perf_counter()
+    sol = hatkernels.solve_poisson(coarse, 1.0, refine=k, preconditioner="gmg", rtol=1e-8)
+    total = time.perf_counter() - t
+    st = sol.stats
+    return {"seconds": total, "phases": st.timings, "iterations": st.iterations,
+            "converged": bool(sol.converged), "peak_GiB": st.peak_rss_bytes / 2**30,
+            "u_max": float(sol.u.max())}
+
+
+def run_patch(c, k):
+    import hatkernels
+    from hatkernels.patches import PatchLayout, PatchOperator, element_stiffness
+    from hatkernels.perf import peak_rss_bytes
+
+    coarse = hatkernels.mesh.rectangle(c, c)
+    t = time.perf_counter()
+    sol = hatkernels.solve_poisson(coarse, 1.0, refine=k, rtol=1e-8)
+    total = time.perf_counter() - t
+    st = sol.stats
+    layout = sol.layout
+    out = {"seconds": total, "phases": st.timings, "iterations": st.iterations,
+           "converged": bool(sol.converged), "peak_GiB": st.peak_rss_bytes / 2**30,
+           "points": int(st.unknowns), "preconditioner": st.preconditioner}
+    # accuracy at the coarse points (vertices of the layout: the last n_vertices values)
+    p = coarse.points
+    at_vertices = sol.values[-layout.n_vertices:].copy()
+    out["u_max"] = float(sol.values.max())
+    out["discretisation_error"] = float(np.abs(at_vertices - series(p[:, 0], p[:, 1])).max())
+    converged = sol.values
+    del sol
+    if out["points"] > EXTRAS_UP_TO:
+        return out  # full multigrid beside the kept solution would not fit
+    t = time.perf_counter()
+    fmg = hatkernels.solve_poisson(coarse, 1.0, refine=k, rtol=None)
+    out["fmg_seconds"] = time.perf_counter() - t
+    out["fmg_phases"] = fmg.stats.timings
+    out["fmg_algebraic_error"] = float(np.abs(fmg.values - converged).max())
+    del fmg, converged
+    # the patch product (the CG's operator) against its floor
+    K = element_stiffness(coarse, np.ones(coarse.n_triangles))
+    layout = PatchLayout(coarse, k, held_sides=coarse.boundary_edges())
+    A = PatchOperator(layout, K)
+    x = np.random.default_rng(1).standard_normal(A.shape[0])
+    y = np.empty_like(x)
+    best = math.inf
+    for _ in range(11):
+        t = time.perf_counter()
+        A.matvec_into(x, y)
+        best = min(best, time.perf_counter() - t)
+    out["product_seconds"] = best
+    # its floor: the same bytes (read x, write y) moved by a parallel copy, best of 11
+    copy = _parallel_copy()
+    copy(x, y)
+    floor = math.inf
+    for _ in range(11):
+        t = time.perf_counter()
+        copy(x, y)
+        floor = min(floor, time.perf_counter() - t)
+    out["copy_seconds"] = floor
+    out["peak_GiB_all"] = peak_rss_bytes() / 2**30
+    return out
+
+
+def _parallel_copy():
+    import numba
+
+    @numba.njit(parallel=True, cache=False)
+    def copy(x, y):
+        for i in numba.prange(x.shape[0]):
+            y[i] = x[i]
+
+    return copy
+
+
+WORKERS = {"csr": run_csr, "stored": run_stored, "patch": run_patch}
+
+
+def worker(path, c, k):
+    try:
+        result = WORKERS[path](c, k)
+    except MemoryError:
+        result = {"error": "does not fit in memory"}
+    except Exception as exc:  # reported, not hidden: the table says why a case is missing
+        result = {"error": f"{type(exc).__name__}: {exc}"}
+    print("RESULT " + json.dumps(result), flush=True)
+
+
+def case(path, c, k):
+    run = subprocess.run([sys.executable, __file__, "--worker", path, str(c), str(k)],
+                         capture_output=True, text=True)
+    for line in run.stdout.splitlines():
+        if line.startswith("RESULT "):
+            return json.loads(line[7:])
+    tail = (run.stderr or run.stdout)[-300:]
+    return {"error": f"the worker stopped (code {run.returncode}, killed if -9: out of "
+                     f"memory): {tail}"}
+
+
+def fits(path, c, k, have):
+    """A rough check before starting a case, from measured bytes per point."""
+    per_point = {"csr": 250, "stored": 180, "patch": 43}[path]
+    return per_point * _points(c, k) < have
+
+
+def main(argv=None):
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--cases", nargs="+", default=["125:3", "125:4", "125:5", "125:6"],
+                   help="c:k pairs: rectangle(c, c) refined k times")
+    p.add_argument("--only", nargs="+", choices=sorted(WORKERS), default=sorted(WORKERS))
+    p.add_argument("--out", help="write the results here (JSON), whole or not at all")
+    p.add_argument("--worker", nargs=3, help=argparse.SUPPRESS)
+    args = p.parse_args(argv)
+    if args.worker:
+        worker(args.worker[0], int(args.worker[1]), int(args.worker[2]))
+        return 0
+    from hatkernels.memory import available_bytes
+
+    results = []
+    for spec in args.cases:
+        c, k = (int(v) for v in spec.split(":"))
+        row = {"coarse": c, "refine": k, "triangles": 2 * c * c * 4**k,
+               "points": _points(c, k)}
+        for path in ("csr", "stored", "patch"):
+            if path not in args.only:
+                continue
+            have = available_bytes() or 0
+            row[path] = case(path, c, k) if fits(path, c, k, have) else {
+                "error": "skipped: does not fit in memory (estimate)"}
+            print(f"{spec} {path}: {json.dumps(row[path])[:400]}", flush=True)
+        results.append(row)
+    report(results)
+    if args.out:
+        target = os.path.abspath(args.out)
+        fd, tmp = tempfile.mkstemp(dir=os.path.dirname(target), suffix=".tmp")
+        try:
+            with os.fdopen(fd, "w") as f:
+                json.dump(results, f, indent=2)
+            os.replace(tmp, target)
+        except BaseException:
+            os.unlink(tmp)
+            raise
+    return 0
+
+
+def report(results):
+    """A table in work units (the WU of the largest case that has one, per point, where a
+    case has none of its own: marked)."""
+    per_point = None
+    for row in results:
+        if "wu_seconds" in row.get("csr", {}):
+            per_point = row["csr"]["wu_seconds"] / row["csr"]["points"]
+    print("\n| triangles | path | seconds | iterations | WU total | WU per iteration | "
+          "peak GiB |")
+    print("|---|---|---|---|---|---|---|")
+    for row in results:
+        csr = row.get("csr", {})
+        wu = csr.get("wu_seconds")
+        mark = ""
+        if wu is None and per_point is not None:
+            wu, mark = per_point * row["points"], " (WU extrapolated)"
+        for path in ("stored", "patch"):
+            r = row.get(path)
+            if r is None:
+                continue
+            if "error" in r:
+                print(f"| {row['triangles']:.3g} | {path} | {r['error'][:60]} | | | | |")
+                continue
+            solve = r["phases"].get("solve", math.nan)
+            its = max(r["iterations"], 1)
+            print(f"| {row['triangles']:.3g} | {path} | {r['seconds']:.1f} | {r['iterations']} "
+                  f"| {r['seconds'] / wu if wu else math.nan:.0f}{mark} | "
+                  f"{solve / its / wu if wu else math.nan:.1f} | {r['peak_GiB']:.1f} |")
+
+
+if __name__ == "__main__":
+    sys.exit(main())
