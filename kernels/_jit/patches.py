@@ -69,6 +69,18 @@ def _corner_pos(lv, n):
 
 
 @jit()
+def _side(c, le, n, base_e, cell_edge, cell_flip, edge_cells, held_e, mode):
+    """``(base, step, zero)``: point ``t`` (1..n-1) of side ``le`` of cell ``c`` is entry
+    ``base + step t`` of a level's vector; ``zero``: the gather reads it as 0."""
+    e = cell_edge[c, le]
+    zero = (mode == MASKED and held_e[e]) or (mode == OWNED and edge_cells[e, 0] != c)
+    first = base_e + e * (n - 1)
+    if cell_flip[c, le]:
+        return first + n - 1, -1, zero
+    return first - 1, 1, zero
+
+
+@jit()
 def _gather(x, c, loc, n, topo, held_e, held_v, mode):
     """The patch of cell ``c`` from the flat vector ``x`` into ``loc``.
 
@@ -88,14 +100,18 @@ def _gather(x, c, loc, n, topo, held_e, held_v, mode):
         o = uint64(_off(0, j, n))
         for i in range(uint64(0), uint64(n - j - 1)):
             loc[o + one + i] = x[row + i]
-    for le in range(3):
-        e = cell_edge[c, le]
-        zero = (mode == MASKED and held_e[e]) or (mode == OWNED and edge_cells[e, 0] != c)
-        flip = cell_flip[c, le]
-        first = base_e + e * (n - 1)
-        for t in range(1, n):
-            s = n - t if flip else t
-            loc[_edge_pos(le, t, n)] = 0.0 if zero else x[first + s - 1]
+    # the three sides in one loop, positions kept incrementally (no division, no branch
+    # on the side): point t of side le is x[base[le] + step[le] t], or 0 where it reads 0
+    b0, s0, z0 = _side(c, 0, n, base_e, cell_edge, cell_flip, edge_cells, held_e, mode)
+    b1, s1, z1 = _side(c, 1, n, base_e, cell_edge, cell_flip, edge_cells, held_e, mode)
+    b2, s2, z2 = _side(c, 2, n, base_e, cell_edge, cell_flip, edge_cells, held_e, mode)
+    p1 = n + 1  # _off(0, 1, n)
+    for t in range(1, n):
+        v0, v1, v2 = x[b0 + s0 * t], x[b1 + s1 * t], x[b2 + s2 * t]
+        loc[t] = 0.0 if z0 else v0
+        loc[p1] = 0.0 if z1 else v1
+        loc[p1 + n - t] = 0.0 if z2 else v2
+        p1 += n + 1 - t
     for lv in range(3):
         v = tri[c, lv]
         zero = (mode == MASKED and held_v[v]) or (mode == OWNED and vcell[vptr[v]] != c)
@@ -115,11 +131,14 @@ def _scatter(out, c, y, pe, pv, n, topo, inside_too=True):
         o = uint64(_off(0, j, n))
         for i in range(uint64(0), uint64(n - j - 1)):
             y[row + i] = out[o + one + i]
-    for le in range(3):
-        flip = cell_flip[c, le]
-        for t in range(1, n):
-            s = n - t if flip else t
-            pe[c, le, s - 1] = out[_edge_pos(le, t, n)]
+    # pe[c, le, s - 1] for point t of side le, s = t or n - t (the edge's own direction)
+    f0, f1, f2 = cell_flip[c, 0], cell_flip[c, 1], cell_flip[c, 2]
+    p1 = n + 1  # _off(0, 1, n)
+    for t in range(1, n):
+        pe[c, 0, n - 1 - t if f0 else t - 1] = out[t]
+        pe[c, 1, n - 1 - t if f1 else t - 1] = out[p1]
+        pe[c, 2, n - 1 - t if f2 else t - 1] = out[p1 + n - t]
+        p1 += n + 1 - t
     for lv in range(3):
         pv[c, lv] = out[_corner_pos(lv, n)]
 
@@ -237,19 +256,19 @@ def _local_apply(loc, out, n, K, what, y=None, start=-1, inside=True):
     # _role_sum, which sums them triangle by triangle
     tr = K[0, 0] + K[1, 1] + K[2, 2]
     ab, ac, bc = K[0, 1], K[0, 2], K[1, 2]
-    r1 = _off(0, 1, n)
+    r1 = n + 1  # _off(0, 1, n)
     for i in range(1, n):  # side A-B: (i, 0)
         out[i] = (tr * loc[i] + ab * (loc[i - 1] + loc[i + 1])
                   + 2.0 * ac * loc[r1 + i] + 2.0 * bc * loc[r1 + i - 1])
-    for j in range(1, n):  # side A-C: (0, j)
-        o, lo, hi = _off(0, j, n), _off(0, j - 1, n), _off(0, j + 1, n)
+    lo, o = 0, n + 1  # _off(0, j - 1, n), _off(0, j, n), kept incrementally
+    for j in range(1, n):  # sides A-C: (0, j) and B-C: (n - j, j)
+        hi = o + n + 1 - j
         out[o] = (tr * loc[o] + 2.0 * ab * loc[o + 1] + ac * (loc[hi] + loc[lo])
                   + 2.0 * bc * loc[lo + 1])
-    for j in range(1, n):  # side B-C: (n - j, j)
         i = n - j
-        o, lo, hi = _off(i, j, n), _off(0, j - 1, n), _off(0, j + 1, n)
-        out[o] = (tr * loc[o] + 2.0 * ab * loc[o - 1] + 2.0 * ac * loc[lo + i]
-                  + bc * (loc[hi + i - 1] + loc[lo + i + 1]))
+        out[o + i] = (tr * loc[o + i] + 2.0 * ab * loc[o + i - 1] + 2.0 * ac * loc[lo + i]
+                      + bc * (loc[hi + i - 1] + loc[lo + i + 1]))
+        lo, o = o, hi
     b, c = _off(n, 0, n), _off(0, n, n)
     out[0] = K[0, 0] * loc[0] + ab * loc[1] + ac * loc[r1]
     out[b] = ab * loc[b - 1] + K[1, 1] * loc[b] + bc * loc[r1 + n - 1]
