@@ -35,6 +35,8 @@ from hatkernels._jit import jit
 
 # gather modes
 PLAIN, MASKED, OWNED = 0, 1, 2
+# what held_points writes
+ZERO, COPY, ONE = 0, 1, 2
 # coarse cells per parallel chunk (one scratch allocation each; no effect on the bits)
 CHUNK = 16
 
@@ -298,24 +300,8 @@ def apply(x, y, n, K, topo, held_e, held_v, masked, pe, pv, what):
                 _local_apply(loc, out, n, K[c], what)
                 _scatter(out, c, y, pe, pv, n, topo)
     _sum_shared(y, pe, pv, n, topo)
-    if masked:
-        _held_rows(x, y, n, topo, held_e, held_v, what)
-
-
-@jit(parallel=True)
-def _held_rows(x, y, n, topo, held_e, held_v, what):
-    tri, edge_v = topo[0], topo[3]
-    inside = (n - 1) * (n - 2) // 2
-    base_e = tri.shape[0] * inside
-    base_v = base_e + edge_v.shape[0] * (n - 1)
-    for e in prange(edge_v.shape[0]):
-        if held_e[e]:
-            for s in range(n - 1):
-                k = base_e + e * (n - 1) + s
-                y[k] = x[k] if what == 0 else 1.0
-    for v in prange(held_v.shape[0]):
-        if held_v[v]:
-            y[base_v + v] = x[base_v + v] if what == 0 else 1.0
+    if masked:  # identity rows: y = x in the product, 1 on the diagonal or row sums
+        held_points(x, y, n, topo, held_e, held_v, COPY if what == 0 else ONE)
 
 
 @jit(parallel=True)
@@ -429,88 +415,18 @@ def restrict(r, rc, n, topo, pe, pv):
 
 
 @jit(parallel=True)
-def zero_held(x, n, topo, held_e, held_v):
-    """``x = 0`` at the held points of a level."""
+def held_points(x, y, n, topo, held_e, held_v, op):
+    """At the held points of a level: ``y = 0`` (``op`` ZERO), ``y = x`` (COPY) or
+    ``y = 1`` (ONE)."""
     tri, edge_v = topo[0], topo[3]
     inside = (n - 1) * (n - 2) // 2
     base_e = tri.shape[0] * inside
     base_v = base_e + edge_v.shape[0] * (n - 1)
     for e in prange(edge_v.shape[0]):
         if held_e[e]:
-            for s in range(n - 1):
-                x[base_e + e * (n - 1) + s] = 0.0
+            for k in range(base_e + e * (n - 1), base_e + (e + 1) * (n - 1)):
+                y[k] = 0.0 if op == ZERO else (x[k] if op == COPY else 1.0)
     for v in prange(held_v.shape[0]):
         if held_v[v]:
-            x[base_v + v] = 0.0
-
-
-@jit(parallel=True)
-def gather_patches(x, cells, n, topo, out):
-    """``out[q]`` = the packed patch of cell ``cells[q]`` (for output and tests)."""
-    no = topo[3][:, 0] < 0
-    for q in prange(cells.shape[0]):
-        _gather(x, cells[q], out[q], n, topo, no, no, PLAIN)
-
-
-@jit()
-def scatter_patches(loc, cells, n, topo, x):
-    """The flat vector's entries from packed patches (shared points written by every cell
-    that holds them, with the same value: serial)."""
-    tri, cell_edge, cell_flip, edge_v = topo[0], topo[1], topo[2], topo[3]
-    m = tri.shape[0]
-    inside = (n - 1) * (n - 2) // 2
-    base_e = m * inside
-    base_v = base_e + edge_v.shape[0] * (n - 1)
-    for q in range(cells.shape[0]):
-        c = cells[q]
-        for j in range(1, n - 1):
-            row = c * inside + _ioff(j, n)
-            o = _off(0, j, n)
-            for i in range(1, n - j):
-                x[row + i - 1] = loc[q, o + i]
-        for le in range(3):
-            e = cell_edge[c, le]
-            for t in range(1, n):
-                s = n - t if cell_flip[c, le] else t
-                x[base_e + e * (n - 1) + s - 1] = loc[q, _edge_pos(le, t, n)]
-        for lv in range(3):
-            x[base_v + tri[c, lv]] = loc[q, _corner_pos(lv, n)]
-
-
-@jit(parallel=True)
-def copy_held(src, dst, n, topo, held_e, held_v):
-    """``dst = src`` at the held points of a level."""
-    tri, edge_v = topo[0], topo[3]
-    inside = (n - 1) * (n - 2) // 2
-    base_e = tri.shape[0] * inside
-    base_v = base_e + edge_v.shape[0] * (n - 1)
-    for e in prange(edge_v.shape[0]):
-        if held_e[e]:
-            for s in range(n - 1):
-                dst[base_e + e * (n - 1) + s] = src[base_e + e * (n - 1) + s]
-    for v in prange(held_v.shape[0]):
-        if held_v[v]:
-            dst[base_v + v] = src[base_v + v]
-
-
-@jit(parallel=True)
-def held_max_abs(x, n, topo, held_e, held_v):
-    """The largest ``|x|`` at the held points of a level (0.0 when none)."""
-    tri, edge_v = topo[0], topo[3]
-    inside = (n - 1) * (n - 2) // 2
-    base_e = tri.shape[0] * inside
-    base_v = base_e + edge_v.shape[0] * (n - 1)
-    per_edge = np.zeros(edge_v.shape[0])
-    for e in prange(edge_v.shape[0]):
-        if held_e[e]:
-            acc = 0.0
-            for s in range(n - 1):
-                acc = max(acc, abs(x[base_e + e * (n - 1) + s]))
-            per_edge[e] = acc
-    top = 0.0
-    for e in range(edge_v.shape[0]):
-        top = max(top, per_edge[e])
-    for v in range(held_v.shape[0]):
-        if held_v[v]:
-            top = max(top, abs(x[base_v + v]))
-    return top
+            k = base_v + v
+            y[k] = 0.0 if op == ZERO else (x[k] if op == COPY else 1.0)

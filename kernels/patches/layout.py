@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from hatkernels._jit import patch_points as _pp
 from hatkernels._jit import patches as _p
 from hatkernels.distributed.finenumbers import fine_numbering, lattice_order
 from hatkernels.errors import InputError
@@ -89,6 +90,20 @@ class PatchLayout:
             self.held_e[by_key[pos]] = True
             self.held_v[sides.reshape(-1)] = True
 
+    def zero_held(self, x, level=None, others=False):
+        """``x = 0`` at the held points of ``level`` (default the finest), in place; with
+        ``others``, at every point but the held ones."""
+        level = self.k if level is None else level
+        held_e, held_v = (~self.held_e, ~self.held_v) if others else (self.held_e, self.held_v)
+        _p.held_points(x, x, 2**level, self.topo, held_e, held_v, _p.ZERO)
+        return x
+
+    def copy_held(self, src, dst, level=None):
+        """``dst = src`` at the held points of ``level`` (default the finest)."""
+        level = self.k if level is None else level
+        _p.held_points(src, dst, 2**level, self.topo, self.held_e, self.held_v, _p.COPY)
+        return dst
+
     def size(self, level):
         """Values on ``level`` (``n = 2**level``): every fine point once."""
         n = 2**level
@@ -127,7 +142,7 @@ class PatchLayout:
         size = (n + 1) * (n + 2) // 2
         for cells, num, pos in self._blocks(level):
             loc = np.empty((cells.size, size))
-            _p.gather_patches(x, cells, n, self.topo, loc)
+            _pp.gather_patches(x, cells, n, self.topo, loc)
             out[num] = loc[:, pos]
         return out
 
@@ -140,7 +155,7 @@ class PatchLayout:
         for cells, num, pos in self._blocks(level):
             loc = np.empty((cells.size, size))
             loc[:, pos] = u[num]
-            _p.scatter_patches(loc, cells, n, self.topo, x)
+            _pp.scatter_patches(loc, cells, n, self.topo, x)
         return x
 
     def patch(self, x, cell, level=None):
@@ -154,5 +169,5 @@ class PatchLayout:
         lam = np.array([(n - i - j, i, j) for j in range(n + 1) for i in range(n + 1 - j)],
                        dtype=np.int64)
         loc = np.empty((1, (n + 1) * (n + 2) // 2))
-        _p.gather_patches(x, np.array([int(cell)], dtype=np.int64), n, self.topo, loc)
+        _pp.gather_patches(x, np.array([int(cell)], dtype=np.int64), n, self.topo, loc)
         return lam, loc[0]

@@ -22,6 +22,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.sparse.linalg import LinearOperator
 
+from hatkernels._jit import patch_points as _pp
 from hatkernels._jit import patch_smooth as _s
 from hatkernels._jit import patches as _p
 from hatkernels.assembly import assemble_stiffness
@@ -29,7 +30,7 @@ from hatkernels.boundary import apply_dirichlet
 from hatkernels.checks import integer_option
 from hatkernels.coefficients import per_triangle
 from hatkernels.errors import InputError
-from hatkernels.precond.direct import SparseDirect
+from hatkernels.precond.direct import SparseDirect, coarse_correction
 from hatkernels.precond.registry import Preconditioner
 
 __all__ = ["PatchOperator", "PatchMultigrid", "element_stiffness"]
@@ -249,18 +250,18 @@ class PatchMultigrid(Preconditioner):
         with those zeroed."""
         lay = self.layout
         n = 2**lay.k
-        if _p.held_max_abs(r, n, lay.topo, lay.held_e, lay.held_v) == 0.0:
+        if _pp.held_max_abs(r, n, lay.topo, lay.held_e, lay.held_v) == 0.0:
             return r
         if self._scratch is None:
             self._scratch = np.empty(self.shape[0])
         self._scratch[:] = r
-        _p.zero_held(self._scratch, n, lay.topo, lay.held_e, lay.held_v)
+        lay.zero_held(self._scratch)
         return self._scratch
 
     def _finest_output(self, r, out):
         lay = self.layout
         # identity rows are solved exactly: out = r at the held points
-        _p.copy_held(r, out, 2**lay.k, lay.topo, lay.held_e, lay.held_v)
+        lay.copy_held(r, out)
         return out
 
     def apply_into(self, r, out):
@@ -305,21 +306,16 @@ class PatchMultigrid(Preconditioner):
         if level == 1:
             bc[self._held0] = 0.0
         else:
-            _p.zero_held(bc, 2 ** (level - 1), lay.topo, lay.held_e, lay.held_v)
+            lay.zero_held(bc, level - 1)
 
     def _prolong_add(self, level, xc, x):
         lay = self.layout
         _p.prolong_add(xc, x, 2**level, lay.topo)
-        _p.zero_held(x, 2**level, lay.topo, lay.held_e, lay.held_v)
+        lay.zero_held(x, level)
 
     def _coarse_solve(self, x, b, zero_guess):
-        free = self._coarse_free
-        if zero_guess:
-            x[:] = 0.0
-            x[free] = self._coarse_solver.matvec(b[free])
-        else:
-            rf = b[free] - self._coarse_A @ x[free]
-            x[free] += self._coarse_solver.matvec(rf)
+        coarse_correction(self._coarse_solver, self._coarse_A, self._coarse_free, x, b,
+                          zero_guess)
 
     def _cycle(self, level, x, b, zero_guess):
         if level == 0:

@@ -271,7 +271,7 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
         g = _lifting(layout, sides, side_values, problem)
         r -= PatchOperator(layout, M.K, k, masked=False) @ g
         del g
-    _p.zero_held(r, n, layout.topo, layout.held_e, layout.held_v)
+    layout.zero_held(r)
     if lifted or source is None:  # kept, not made again: a callable costs its evaluations
         kept = r.copy()
 
@@ -280,7 +280,7 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
             out[:] = kept
         else:
             load(out)
-            _p.zero_held(out, n, layout.topo, layout.held_e, layout.held_v)
+            layout.zero_held(out)
 
     timings["assemble"] = time.perf_counter() - t2
     note("solve")
@@ -330,5 +330,5 @@ def _lifting(layout, sides, side_values, problem):
     base_v = inside + layout.n_edges * (n - 1)
     g[inside:base_v].reshape(layout.n_edges, n - 1)[:] = edge_value[:, None]
     g[base_v:] = vertex_value
-    _p.zero_held(g, n, layout.topo, ~layout.held_e, ~layout.held_v)  # only held points
+    layout.zero_held(g, others=True)  # the held points' values only
     return g

@@ -81,3 +81,15 @@ class SparseDirect(Preconditioner):
 
     def _details(self):
         return f"nnz(L+U)={self._nnz} ({self._nnz / self.shape[0]:.1f} per unknown)"
+
+
+def coarse_correction(solver, A, free, x, b, zero_guess):
+    """A multigrid cycle's bottom: ``x`` solved at the ``free`` points of the coarsest
+    level with ``solver`` (an approximation of ``A^-1``, ``A`` the free part), 0 at the
+    others when ``zero_guess``; otherwise ``x`` corrected by ``solver (b - A x)`` there."""
+    if zero_guess:
+        x[:] = 0.0
+        x[free] = solver.matvec(b[free])
+    else:
+        rf = b[free] - A @ x[free]
+        x[free] += solver.matvec(rf)

@@ -41,7 +41,7 @@ from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
 from hatkernels.operators import StiffnessOperator, default_variant
-from hatkernels.precond.direct import SparseDirect
+from hatkernels.precond.direct import SparseDirect, coarse_correction
 from hatkernels.precond.gmg_levels import Level, coarsen_coefficient
 from hatkernels.precond.registry import Preconditioner, make_preconditioner
 
@@ -338,13 +338,8 @@ class GeometricMultigrid(Preconditioner):
         return self._finest_output(r, out, x)
 
     def _coarse_solve(self, x, b, zero_guess):
-        free = self._coarse_free
-        if zero_guess:
-            x[:] = 0.0
-            x[free] = self._coarse_solver.matvec(b[free])
-        else:
-            rf = b[free] - self._coarse_A @ x[free]
-            x[free] += self._coarse_solver.matvec(rf)
+        coarse_correction(self._coarse_solver, self._coarse_A, self._coarse_free, x, b,
+                          zero_guess)
 
     def _cycle(self, level, x, b, zero_guess, kind):
         """One cycle on ``level`` (1 = the first refined mesh, 0 = the coarsest)."""
