@@ -172,3 +172,24 @@ def test_results_by_region_and_tag_work_on_a_patch_solution():
     assert got.relative < 1e-9 and want.relative < 1e-9
     assert [b.outflow for b in got.boundary] == pytest.approx(
         [b.outflow for b in want.boundary], rel=1e-8, abs=1e-10)
+
+
+def test_a_coarse_mesh_with_a_point_in_no_cell_takes_the_stored_path():
+    # the refined numbering counts the points of cells only: such a mesh is refused by the
+    # patch path, never given a vector of the wrong length
+    import warnings
+
+    base = rectangle(3, 3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        loose = hatkernels.Mesh(np.vstack([base.points, [[2.0, 2.0]]]), base.triangles)
+    assert "no cell" in patch_path_reason(loose, 2)
+    with pytest.raises(InputError, match="no cell"):
+        solve_on_patches(loose, 1.0, 2)
+
+
+@pytest.mark.parametrize("bad", [dict(rtol=-1.0), dict(atol=float("nan")), dict(maxiter=0),
+                                 dict(monitor=3), dict(start="sideways")])
+def test_bad_solver_options_are_refused_by_name(bad):
+    with pytest.raises(InputError, match=next(iter(bad))):
+        solve_on_patches(rectangle(3, 3), 1.0, 2, **bad)

@@ -21,6 +21,7 @@ import numpy as np
 
 from hatkernels._cg import BREAKDOWN_MATRIX, _breakdown_preconditioner, condition_estimate
 from hatkernels._jit import sparse as _k
+from hatkernels.krylov import _check_scalars
 
 __all__ = ["LeanResult", "lean_cg"]
 
@@ -48,7 +49,10 @@ def lean_cg(A, M, r, remake_b, *, rtol, atol=0.0, maxiter=None, nested=False, mo
     :class:`LeanResult` whose ``x`` is a new vector.
     """
     n = r.shape[0]
-    maxiter = 10 * n if maxiter is None else int(maxiter)
+    if rtol is None:
+        _, atol, maxiter = _check_scalars(0.0, atol, maxiter, n, None)
+    else:
+        rtol, atol, maxiter = _check_scalars(rtol, atol, maxiter, n, None)
     bnorm = math.sqrt(_k.dot(r, r))
     tol = max(atol, (0.0 if rtol is None else rtol) * bnorm)
     x = np.zeros(n)

@@ -13,13 +13,10 @@ import numpy as np
 
 from hatkernels._jit import patch_points as _pp
 from hatkernels._jit import patches as _p
-from hatkernels.distributed.finenumbers import fine_numbering, lattice_order
+from hatkernels.distributed.finenumbers import fine_numbering
 from hatkernels.errors import InputError
 
 __all__ = ["PatchLayout"]
-
-_CHUNK = 512  # coarse cells per block in the conversions
-
 
 class PatchLayout:
     """The coarse triangle mesh ``coarse`` seen as patches refined ``k`` times.
@@ -123,39 +120,33 @@ class PatchLayout:
 
     # -- the numbering of mesh.refine() repeated k times ---------------------------------
 
-    def _blocks(self, level):
+    def _numbering(self, level):
+        """What :func:`hatkernels._jit.patch_points.to_numbered` needs for ``level``."""
         n = 2**level
-        lam, _ = lattice_order(2, level)
-        pos = (lam[:, 2] * (n + 1) - (lam[:, 2] * (lam[:, 2] - 1)) // 2 + lam[:, 1])
         numbering = fine_numbering(self.coarse, level)
-        for lo in range(0, self.n_cells, _CHUNK):
-            cells = np.arange(lo, min(lo + _CHUNK, self.n_cells), dtype=np.int64)
-            yield cells, numbering.numbers(cells), pos
+        lam, masks, before = numbering.patterns[False][:3]
+        pos = lam[:, 2] * (n + 1) - (lam[:, 2] * (lam[:, 2] - 1)) // 2 + lam[:, 1]
+        return (np.ascontiguousarray(pos, dtype=np.int64),
+                np.ascontiguousarray(masks, dtype=np.int64),
+                np.ascontiguousarray(before, dtype=np.int64),
+                np.ascontiguousarray(numbering.owns), numbering.offset)
 
     def to_refined(self, x, level=None, out=None):
         """``x`` (this layout, on ``level``, default the finest) in the numbering of
-        ``coarse.refine()`` repeated ``level`` times."""
+        ``coarse.refine()`` repeated ``level`` times (a few ns per point: each coarse cell
+        writes the points it owns)."""
         level = self.k if level is None else level
-        n = 2**level
         if out is None:
             out = np.empty(self.size(level))
-        size = (n + 1) * (n + 2) // 2
-        for cells, num, pos in self._blocks(level):
-            loc = np.empty((cells.size, size))
-            _pp.gather_patches(x, cells, n, self.topo, loc)
-            out[num] = loc[:, pos]
+        _pp.to_numbered(x, 2**level, self.topo, *self._numbering(level), out, False)
         return out
 
     def from_refined(self, u, level=None):
         """The inverse of :meth:`to_refined`."""
         level = self.k if level is None else level
-        n = 2**level
         x = np.empty(self.size(level))
-        size = (n + 1) * (n + 2) // 2
-        for cells, num, pos in self._blocks(level):
-            loc = np.empty((cells.size, size))
-            loc[:, pos] = u[num]
-            _pp.scatter_patches(loc, cells, n, self.topo, x)
+        _pp.to_numbered(x, 2**level, self.topo, *self._numbering(level),
+                        np.ascontiguousarray(u, dtype=np.float64), True)
         return x
 
     def patch(self, x, cell, level=None):

@@ -73,6 +73,8 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
         return "the patch path takes triangle meshes"
     if isinstance(refine, bool) or not isinstance(refine, numbers.Integral) or refine < 1:
         return "the patch path needs refine >= 1"
+    if len(mesh.unused_points()):
+        return "the mesh has points in no cell (the refined numbering leaves them out)"
     if reaction is not None or neumann is not None or robin is not None:
         return "the patch path takes no reaction, flux or convection term"
     if zero_mean:
@@ -201,6 +203,7 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     precision would not fit in the memory available.  Returns a
     :class:`PatchSolution`.
     """
+    from hatkernels.krylov import _check_scalars
     from hatkernels.memory import available_bytes
     from hatkernels.solver import STARTS, report_convergence
     from hatkernels.stats import SolveStats
@@ -212,6 +215,9 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
                                dirichlet_on=dirichlet_on, coefficient=coefficient)
     if reason is not None:
         raise InputError(f"the patch path cannot take this problem: {reason}")
+    _check_scalars(0.0 if rtol is None else rtol, atol, maxiter, 1, None)  # before any work
+    if monitor is not None and not callable(monitor):
+        raise InputError(f"monitor must be callable or None, got {type(monitor).__name__}")
     if start is None:
         start = "nested" if rtol is None else "zero"
     if start not in STARTS:
