@@ -113,9 +113,9 @@ def solve_poisson(
         Solve on ``mesh`` refined this many times (:meth:`Mesh.refine`); ``.u``
         is then in the numbering of the refined mesh.  With the default
         preconditioner, triangles and data the patch path takes (numbers or
-        ``{region: number}`` for ``f`` and ``coefficient``, a number or
-        ``{tag: number}`` held on whole boundary sides, nothing else), the
-        refined mesh is never stored: the solve runs patch by patch on the
+        ``{region: number}`` for ``f`` and ``coefficient``, callable sources, a
+        number or ``{tag: number}`` held on whole boundary sides and as a flux),
+        the refined mesh is never stored: the solve runs patch by patch on the
         coarse mesh (:mod:`hatkernels.patches`, docs/patches.md) and returns a
         :class:`~hatkernels.patches.PatchSolution` (``.mesh`` is built only if
         asked for).  Otherwise, or with a preconditioner named, the refined
@@ -179,7 +179,7 @@ def solve_poisson(
                                  variant=variant, options=preconditioner_options) is None:
                 return solve_on_patches(
                     mesh, f, refine, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
-                    coefficient=coefficient, rtol=rtol, atol=atol, maxiter=maxiter, start=start,
+                    coefficient=coefficient, neumann=neumann, rtol=rtol, atol=atol, maxiter=maxiter, start=start,
                     check=check, monitor=monitor, quadrature=quadrature, progress=progress,
                     memory_check=memory_check)
         preconditioner = DEFAULT

@@ -193,3 +193,22 @@ def test_a_coarse_mesh_with_a_point_in_no_cell_takes_the_stored_path():
 def test_bad_solver_options_are_refused_by_name(bad):
     with pytest.raises(InputError, match=next(iter(bad))):
         solve_on_patches(rectangle(3, 3), 1.0, 2, **bad)
+
+
+def test_a_flux_by_tag_as_on_the_stored_mesh():
+    # held at 0 on the left, a flux in through the bottom (2.5) and out through the top
+    # (-1.0), the right insulated: against the stored refinement, and the balance
+    # (what comes in leaves: conservation, common practice, no source)
+    from hatkernels import results
+
+    coarse = label_sides(rectangle(4, 3), {"left": lambda x, y: x == 0,
+                                           "bottom": lambda x, y: y == 0,
+                                           "top": lambda x, y: y == 1})
+    data = dict(dirichlet={"left": 0.0}, neumann={"bottom": 2.5, "top": -1.0})
+    assert patch_path_reason(coarse, 3, **data) is None
+    sol = hatkernels.solve_poisson(coarse, 0.5, refine=3, rtol=1e-12, **data)
+    ref = stored(coarse, 0.5, 3, rtol=1e-12, **data)
+    assert isinstance(sol, PatchSolution)
+    np.testing.assert_allclose(sol.u, ref.u, rtol=0, atol=1e-9 * np.abs(ref.u).max())
+    assert results.balance(sol).relative < 1e-9
+    assert "neumann" in patch_path_reason(coarse, 3, neumann=lambda x, y: x)

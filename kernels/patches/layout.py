@@ -74,18 +74,34 @@ class PatchLayout:
         self.held_e = np.zeros(n_edges, dtype=bool)
         self.held_v = np.zeros(coarse.n_points, dtype=bool)
         if held_sides is not None and len(held_sides):
-            sides = np.sort(np.asarray(held_sides, dtype=np.int64), axis=1)
-            keys = np.sort(edge_v, axis=1) @ np.array([coarse.n_points, 1])
-            by_key = np.argsort(keys)
-            want = sides @ np.array([coarse.n_points, 1])
-            pos = np.searchsorted(keys[by_key], want)
-            pos = np.minimum(pos, n_edges - 1)
-            bad = keys[by_key][pos] != want
-            if bad.any():
-                s = sides[np.flatnonzero(bad)[0]]
-                raise InputError(f"held side ({s[0]}, {s[1]}) is not an edge of the coarse mesh")
-            self.held_e[by_key[pos]] = True
-            self.held_v[sides.reshape(-1)] = True
+            self.held_e[self.edge_index(held_sides, "held side")] = True
+            self.held_v[np.asarray(held_sides, dtype=np.int64).reshape(-1)] = True
+
+    def edge_index(self, sides, what="side"):
+        """The coarse edge number of each side ``(a, b)`` (points in either order)."""
+        sides = np.sort(np.asarray(sides, dtype=np.int64).reshape(-1, 2), axis=1)
+        n_points = self.coarse.n_points
+        keys = np.sort(self.topo[3], axis=1) @ np.array([n_points, 1])
+        by_key = np.argsort(keys)
+        want = sides @ np.array([n_points, 1])
+        pos = np.minimum(np.searchsorted(keys[by_key], want), len(keys) - 1)
+        bad = keys[by_key][pos] != want
+        if bad.any():
+            s = sides[np.flatnonzero(bad)[0]]
+            raise InputError(f"{what} ({s[0]}, {s[1]}) is not an edge of the coarse mesh")
+        return by_key[pos]
+
+    def edge_points(self, x, level=None):
+        """The view of ``x`` (on ``level``, default the finest) at the points inside the
+        coarse edges: (n_edges, 2**level - 1), each row in its edge's own direction."""
+        level = self.k if level is None else level
+        n = 2**level
+        inside = self.n_cells * ((n - 1) * (n - 2) // 2)
+        return x[inside:inside + self.n_edges * (n - 1)].reshape(self.n_edges, n - 1)
+
+    def vertex_points(self, x):
+        """The view of ``x`` at the coarse vertices (the last ``n_vertices`` entries)."""
+        return x[x.shape[0] - self.n_vertices:]
 
     def zero_held(self, x, level=None, others=False):
         """``x = 0`` at the held points of ``level`` (default the finest), in place; with

@@ -7,9 +7,9 @@ ones).  The path takes: a coefficient that is a number or ``{region: number}``
 ``{region: number or callable}`` (callables evaluated on the fly,
 :mod:`hatkernels.patches.load`), held values that are a number or
 ``{tag: number}`` on whole boundary sides (the whole boundary or boundary
-tags).  Anything else (callable coefficients, arrays, reactions, fluxes,
-convection, zero mean, tetrahedra) takes the stored refinement, and
-:func:`patch_path_reason` says why.
+tags), a flux that is a number or ``{tag: number}``.  Anything else (callable
+coefficients or fluxes, arrays, reactions, convection, zero mean, tetrahedra)
+takes the stored refinement, and :func:`patch_path_reason` says why.
 """
 
 from __future__ import annotations
@@ -75,8 +75,10 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
         return "the patch path needs refine >= 1"
     if len(mesh.unused_points()):
         return "the mesh has points in no cell (the refined numbering leaves them out)"
-    if reaction is not None or neumann is not None or robin is not None:
-        return "the patch path takes no reaction, flux or convection term"
+    if reaction is not None or robin is not None:
+        return "the patch path takes no reaction or convection term"
+    if not (neumann is None or _is_number(neumann) or _numbers_by_key(neumann)):
+        return "neumann is not a number or {tag: number}"
     if zero_mean:
         return "the patch path takes no zero_mean"
     if matrix_free is False or variant is not None:
@@ -190,7 +192,7 @@ def _per_cell(coef, m, what):
 
 
 def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=None,
-                     coefficient=None, rtol=1e-10, atol=0.0, maxiter=None, start=None,
+                     coefficient=None, neumann=None, rtol=1e-10, atol=0.0, maxiter=None, start=None,
                      check=False, monitor=None, quadrature=2, progress=None,
                      memory_check=True, degree=2, nested_cycles=1, single=None):
     """Solve ``-div(kappa grad u) = f`` on ``coarse`` refined ``refine`` times, patch by patch.
@@ -212,7 +214,8 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     note = progress or (lambda phase: None)
     note("boundary")
     reason = patch_path_reason(coarse, refine, f=f, dirichlet=dirichlet,
-                               dirichlet_on=dirichlet_on, coefficient=coefficient)
+                               dirichlet_on=dirichlet_on, coefficient=coefficient,
+                               neumann=neumann)
     if reason is not None:
         raise InputError(f"the patch path cannot take this problem: {reason}")
     _check_scalars(0.0 if rtol is None else rtol, atol, maxiter, 1, None)  # before any work
@@ -225,7 +228,7 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     if rtol is None and start != "nested":
         raise InputError("rtol=None asks for the nested start alone, but start='zero'")
     args = dict(f=f, dirichlet=dirichlet, dirichlet_on=dirichlet_on, coefficient=coefficient,
-                quadrature=quadrature)
+                neumann=neumann, quadrature=quadrature)
     problem = PoissonProblem(coarse, **args)
     m = coarse.n_triangles
     kappa = _per_cell(problem.coefficient, m, "coefficient")
@@ -264,11 +267,15 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     del corner, d1, d2
     pe, pv = layout.buffers(k)
 
+    flux = _flux(layout, problem)
+
     def load(out):
         if source is None:
             callable_load(layout, problem.source, quadrature, out)
         else:
             _p.load(source * area / (3.0 * n * n), out, n, layout.topo, pe, pv)
+        if flux is not None:
+            _add_flux(layout, flux, out)
 
     r = np.empty(size)
     load(r)
@@ -319,22 +326,38 @@ def _lifting(layout, sides, side_values, problem):
     """The held values on the finest level (zero elsewhere), or None when all are 0."""
     if not np.any(side_values):
         return None
-    k, n = layout.k, 2**layout.k
     edge_value = np.zeros(layout.n_edges)
-    vertex_value = np.zeros(layout.n_vertices)
-    coarse = problem.mesh
-    keys = np.sort(layout.topo[3], axis=1) @ np.array([coarse.n_points, 1])
-    by_key = np.argsort(keys)
-    want = np.sort(sides, axis=1) @ np.array([coarse.n_points, 1])
-    e = by_key[np.searchsorted(keys[by_key], want)]
-    edge_value[e] = side_values
+    edge_value[layout.edge_index(sides)] = side_values
+    g = np.zeros(layout.size(layout.k))
+    layout.edge_points(g)[:] = edge_value[:, None]
     # where sides of different values meet, the vertex takes the parsed problem's value
     # (the first listed tag's), as on the stored fine mesh
-    vertex_value[problem.dirichlet.points] = problem.dirichlet.values
-    g = np.zeros(layout.size(k))
-    inside = layout.n_cells * ((n - 1) * (n - 2) // 2)
-    base_v = inside + layout.n_edges * (n - 1)
-    g[inside:base_v].reshape(layout.n_edges, n - 1)[:] = edge_value[:, None]
-    g[base_v:] = vertex_value
+    layout.vertex_points(g)[problem.dirichlet.points] = problem.dirichlet.values
     layout.zero_held(g, others=True)  # the held points' values only
     return g
+
+
+def _flux(layout, problem):
+    """``(edges, sides, h L)``: the coarse edges with an imposed flux, their points and the
+    flux times their length (None without a flux)."""
+    flux = problem.flux
+    if flux is None or not len(flux.sides):
+        return None
+    h = flux.flux
+    if h.kind not in ("constant", "edge"):
+        raise InputError("neumann: the patch path takes numbers (per boundary tag)")
+    sides = np.asarray(flux.sides, dtype=np.int64)
+    p = layout.coarse.points
+    length = np.linalg.norm(p[sides[:, 1]] - p[sides[:, 0]], axis=1)
+    return layout.edge_index(sides, "flux side"), sides, np.asarray(h.value) * length
+
+
+def _add_flux(layout, flux, out):
+    """``out`` += the boundary load of the flux on the finest level: each fine side of
+    length L/n gives h L/(2n) to each of its two points."""
+    edges, sides, hl = flux
+    n = 2**layout.k
+    layout.edge_points(out)[edges] += (hl / n)[:, None]
+    vertices = layout.vertex_points(out)
+    np.add.at(vertices, sides[:, 0], hl / (2 * n))
+    np.add.at(vertices, sides[:, 1], hl / (2 * n))
