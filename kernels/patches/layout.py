@@ -47,9 +47,18 @@ class PatchLayout:
         tri = coarse.triangles.astype(np.int64)
         m = tri.shape[0]
         edges, tri_edges = coarse._edge_topology()
-        edge_v = np.ascontiguousarray(edges, dtype=np.int64)
         # local edges: 0 = A->B (opposite C), 1 = A->C (opposite B), 2 = B->C (opposite A)
         cell_edge = np.ascontiguousarray(tri_edges[:, [2, 1, 0]], dtype=np.int64)
+        # edges numbered by first use in the cells: a cell's edges (their values, their
+        # lookups) sit near its neighbours', so a pass over the cells reads them in order
+        flat = cell_edge.reshape(-1)
+        first_use = np.full(len(edges), flat.size, dtype=np.int64)
+        np.minimum.at(first_use, flat, np.arange(flat.size))
+        renumber = np.empty(len(edges), dtype=np.int64)
+        renumber[np.argsort(first_use, kind="stable")] = np.arange(len(edges))
+        cell_edge = np.ascontiguousarray(renumber[cell_edge])
+        edge_v = np.empty((len(edges), 2), dtype=np.int64)
+        edge_v[renumber] = edges
         start = tri[:, [0, 0, 1]]
         cell_flip = (start != edge_v[cell_edge, 0]).astype(np.int64)
         n_edges = edge_v.shape[0]
