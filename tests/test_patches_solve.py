@@ -212,3 +212,45 @@ def test_a_flux_by_tag_as_on_the_stored_mesh():
     np.testing.assert_allclose(sol.u, ref.u, rtol=0, atol=1e-9 * np.abs(ref.u).max())
     assert results.balance(sol).relative < 1e-9
     assert "neumann" in patch_path_reason(coarse, 3, neumann=lambda x, y: x)
+
+
+def test_a_flux_number_reaches_sides_whose_ends_are_held():
+    # a boundary side not held but with both ends held (between two held tags) has free
+    # fine points: the number given as neumann must reach them, as on the stored mesh
+    coarse = label_sides(rectangle(3, 3), {
+        "ends": lambda x, y: (y == 0) & ((x < 0.3) | (x > 0.7)),
+        "left": lambda x, y: x == 0})
+    for data in (dict(dirichlet_on=["ends", "left"], neumann=1.0),
+                 dict(dirichlet={"ends": 0.0, "left": 0.0}, neumann=1.0)):
+        sol = hatkernels.solve_poisson(coarse, 1.0, refine=2, rtol=1e-12, **data)
+        ref = stored(coarse, 1.0, 2, rtol=1e-12, **data)
+        assert isinstance(sol, PatchSolution)
+        np.testing.assert_allclose(sol.u, ref.u, rtol=0, atol=1e-9 * np.abs(ref.u).max())
+
+
+def test_a_coarse_mesh_with_every_point_held():
+    # rectangle(1, 1): no free coarse point, the coarse correction is zero; against the
+    # stored mesh solved with amg (the stored gmg cannot take it)
+    sol = hatkernels.solve_poisson(rectangle(1, 1), 1.0, refine=3, rtol=1e-12)
+    ref = hatkernels.solve_poisson(rectangle(1, 1), 1.0, refine=3, preconditioner="amg",
+                                   rtol=1e-12)
+    assert isinstance(sol, PatchSolution) and sol.converged
+    np.testing.assert_allclose(sol.u, ref.u, rtol=0, atol=1e-10)
+
+
+def test_layout_methods_refuse_vectors_of_the_wrong_size():
+    from hatkernels.patches import PatchLayout
+
+    layout = PatchLayout(rectangle(3, 3), 2, held_sides=rectangle(3, 3).boundary_edges())
+    for call in (lambda: layout.to_refined(np.ones(5)), lambda: layout.from_refined(np.ones(5)),
+                 lambda: layout.patch(np.ones(5), 0), lambda: layout.zero_held(np.ones(5)),
+                 lambda: layout.zero_held(np.ones(layout.size(2), dtype=np.int64))):
+        with pytest.raises(InputError, match="shape|float64"):
+            call()
+    with pytest.raises(InputError):
+        PatchLayout(rectangle(3, 3), -1)
+
+
+def test_solve_on_patches_names_what_it_cannot_take():
+    with pytest.raises(InputError, match="reaction"):
+        solve_on_patches(rectangle(3, 3), 1.0, 2, reaction=1.0)

@@ -211,7 +211,15 @@ class PatchMultigrid(Preconditioner):
         super().__init__(layout.size(k))
         self.degree = integer_option(degree, "degree", minimum=1)
         self.nested_cycles = integer_option(nested_cycles, "nested_cycles", minimum=1)
-        self.K = element_stiffness(layout.coarse, np.asarray(kappa, dtype=np.float64))
+        kappa = np.asarray(kappa, dtype=np.float64)
+        if kappa.shape != (layout.n_cells,):
+            raise InputError(f"kappa must hold one number per coarse cell ({layout.n_cells}), "
+                             f"got shape {kappa.shape}")
+        bad = np.flatnonzero(~(np.isfinite(kappa) & (kappa > 0)))
+        if bad.size:
+            raise InputError(f"kappa must be positive and finite; it is {kappa[bad[0]]!r} on "
+                             f"coarse cell {int(bad[0])}")
+        self.K = element_stiffness(layout.coarse, kappa)
         dinv = inverse_diagonals(layout, self.K)
         # Gershgorin's bound per level: the rows of every level from 2 up are of the
         # same kinds (inside a patch, on an edge, at a vertex), so level 2 speaks for them
@@ -230,10 +238,9 @@ class PatchMultigrid(Preconditioner):
         fixed = np.flatnonzero(layout.held_v | (np.diff(layout.topo[6]) == 0))
         A = assemble_stiffness(coarse, per_triangle(np.asarray(kappa, dtype=np.float64)))
         system = apply_dirichlet(A, np.zeros(coarse.n_points), fixed)
-        if system.A.shape[0] == 0:
-            raise InputError("every point of the coarse mesh is held")
         self._coarse_free, self._coarse_A = system.free, system.A
-        self._coarse_solver = SparseDirect(system.A)
+        # every coarse point held: the coarse space has nothing to solve (its correction 0)
+        self._coarse_solver = SparseDirect(system.A) if system.A.shape[0] else None
         self._coarse_x = np.empty(coarse.n_points)
         self._coarse_b = np.empty(coarse.n_points)
         self._held0 = fixed
@@ -314,6 +321,10 @@ class PatchMultigrid(Preconditioner):
         lay.zero_held(x, level)
 
     def _coarse_solve(self, x, b, zero_guess):
+        if self._coarse_solver is None:
+            if zero_guess:
+                x[:] = 0.0
+            return
         coarse_correction(self._coarse_solver, self._coarse_A, self._coarse_free, x, b,
                           zero_guess)
 

@@ -192,7 +192,8 @@ def _per_cell(coef, m, what):
 
 
 def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=None,
-                     coefficient=None, neumann=None, rtol=1e-10, atol=0.0, maxiter=None, start=None,
+                     coefficient=None, neumann=None, reaction=None, robin=None,
+                     zero_mean=False, rtol=1e-10, atol=0.0, maxiter=None, start=None,
                      check=False, monitor=None, quadrature=2, progress=None,
                      memory_check=True, degree=2, nested_cycles=1, single=None):
     """Solve ``-div(kappa grad u) = f`` on ``coarse`` refined ``refine`` times, patch by patch.
@@ -215,7 +216,8 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     note("boundary")
     reason = patch_path_reason(coarse, refine, f=f, dirichlet=dirichlet,
                                dirichlet_on=dirichlet_on, coefficient=coefficient,
-                               neumann=neumann)
+                               neumann=neumann, reaction=reaction, robin=robin,
+                               zero_mean=zero_mean)
     if reason is not None:
         raise InputError(f"the patch path cannot take this problem: {reason}")
     _check_scalars(0.0 if rtol is None else rtol, atol, maxiter, 1, None)  # before any work
@@ -267,7 +269,7 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     del corner, d1, d2
     pe, pv = layout.buffers(k)
 
-    flux = _flux(layout, problem)
+    flux = _flux(layout, problem, neumann)
 
     def load(out):
         if source is None:
@@ -337,19 +339,32 @@ def _lifting(layout, sides, side_values, problem):
     return g
 
 
-def _flux(layout, problem):
+def _flux(layout, problem, neumann):
     """``(edges, sides, h L)``: the coarse edges with an imposed flux, their points and the
     flux times their length (None without a flux)."""
-    flux = problem.flux
-    if flux is None or not len(flux.sides):
-        return None
-    h = flux.flux
-    if h.kind not in ("constant", "edge"):
-        raise InputError("neumann: the patch path takes numbers (per boundary tag)")
-    sides = np.asarray(flux.sides, dtype=np.int64)
     p = layout.coarse.points
+    if neumann is None:
+        return None
+    if isinstance(neumann, dict):  # whole sides of boundary tags, as parsed
+        flux = problem.flux
+        if flux is None or not len(flux.sides):
+            return None
+        if flux.flux.kind not in ("constant", "edge"):
+            raise InputError("neumann: the patch path takes numbers (per boundary tag)")
+        sides, h = np.asarray(flux.sides, dtype=np.int64), np.asarray(flux.flux.value)
+    else:
+        # a number goes on every side not held.  On the coarse mesh a side counts as held
+        # when both its ends are, but a fine side inside a coarse side that is not held
+        # has a free point: so the sides are taken edge by edge, as the fine mesh has them
+        boundary = np.asarray(layout.coarse.boundary_edges(), dtype=np.int64)
+        sides = boundary[~layout.held_e[layout.edge_index(boundary)]]
+        h = float(neumann)
+        if not np.isfinite(h):
+            raise InputError(f"neumann must be a finite number, got {neumann!r}")
+        if not len(sides):
+            return None
     length = np.linalg.norm(p[sides[:, 1]] - p[sides[:, 0]], axis=1)
-    return layout.edge_index(sides, "flux side"), sides, np.asarray(h.value) * length
+    return layout.edge_index(sides, "flux side"), sides, h * length
 
 
 def _add_flux(layout, flux, out):
