@@ -14,16 +14,14 @@ which the printed maximum should approach; for the unit cube it is
 """
 
 import argparse
-import json
-import os
 import resource
 import sys
-import tempfile
 import time
 
 import numba
 
 import hatkernels
+from hatkernels._output import write_json
 
 
 def rss_gib():
@@ -89,16 +87,7 @@ def main(argv=None):
           f"({st.peak_rss_bytes / mesh.n_cells:.0f} bytes per {cell}, "
           f"{report['peak_rss_bytes_per_point']:.0f} per point)")
     if args.json:
-        # whole or not at all: a temporary file beside the target, then a rename
-        target = os.path.abspath(args.json)
-        fd, tmp = tempfile.mkstemp(dir=os.path.dirname(target), suffix=".tmp")
-        try:
-            with os.fdopen(fd, "w") as f:
-                json.dump(report, f, indent=2)
-            os.replace(tmp, target)
-        except BaseException:
-            os.unlink(tmp)
-            raise
+        write_json(args.json, report)  # whole or not at all
     return 0 if sol.converged else 1
 
 

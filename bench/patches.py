@@ -35,13 +35,13 @@ from __future__ import annotations
 import argparse
 import json
 import math
-import os
 import subprocess
 import sys
-import tempfile
 import time
 
 import numpy as np
+
+from hatkernels._output import write_json
 
 
 def series(x, y, terms=4001):
@@ -256,15 +256,7 @@ def main(argv=None):
         results.append(row)
     report(results)
     if args.out:
-        target = os.path.abspath(args.out)
-        fd, tmp = tempfile.mkstemp(dir=os.path.dirname(target), suffix=".tmp")
-        try:
-            with os.fdopen(fd, "w") as f:
-                json.dump(results, f, indent=2)
-            os.replace(tmp, target)
-        except BaseException:
-            os.unlink(tmp)
-            raise
+        write_json(args.out, results)  # whole or not at all
     return 0
 
 
