@@ -11,7 +11,6 @@ context and runs CG.
 
 from __future__ import annotations
 
-import dataclasses
 import time
 
 import numpy as np
@@ -24,42 +23,9 @@ from hatkernels.mesh.core import Mesh
 from hatkernels.precond import DEFAULT, capabilities
 from hatkernels.problem import PoissonProblem
 from hatkernels.solver import solve
-from hatkernels.stats import SolveStats
+from hatkernels.stats import PoissonSolution
 
 __all__ = ["PoissonSolution", "solve_poisson"]
-
-
-@dataclasses.dataclass
-class PoissonSolution:
-    """What :func:`solve_poisson` found.
-
-    Attributes
-    ----------
-    u : ndarray, shape (n_points,)
-        Values at the points (points in no cell get 0).
-    stats : SolveStats
-        Iterations, residuals, times per phase (``boundary``, ``assemble``,
-        ``setup``, ``solve``, ``total``), unknowns, what is stored, the
-        preconditioner, threads and peak memory.
-    mesh : Mesh
-    problem : PoissonProblem or None
-        The checked problem (data, conditions and their tags), for results by
-        region and boundary tag (:mod:`hatkernels.results`).
-    """
-
-    u: np.ndarray
-    stats: SolveStats
-    mesh: Mesh
-    problem: object = dataclasses.field(default=None, repr=False)
-
-    @property
-    def converged(self):
-        return self.stats.converged
-
-    def __repr__(self):
-        s = self.stats
-        return (f"{type(self).__name__}({s.unknowns} unknowns, {s.iterations} iterations, "
-                f"converged={s.converged}, {s.timings['total']:.3g} s)")
 
 
 def refined(mesh, times):
@@ -152,8 +118,9 @@ def solve_poisson(
 
     Returns
     -------
-    PoissonSolution, or PatchSolution on the patch path (the same ``u``, ``stats``,
-    ``mesh``, ``problem`` and ``converged``)
+    PoissonSolution (on the patch path its subclass
+    :class:`~hatkernels.patches.PatchSolution`, whose ``u``, ``mesh`` and ``problem``
+    are made on first use)
 
     Raises
     ------

@@ -1,13 +1,19 @@
-"""What a solve did and cost: one dataclass for the serial and the distributed paths."""
+"""What a solve did and cost: one dataclass for the serial and the distributed paths, and
+what :func:`hatkernels.solve_poisson` returns (:class:`PoissonSolution`, here so that every
+path that solves a Poisson problem can return one)."""
 
 from __future__ import annotations
 
 import dataclasses
 import math
+from typing import TYPE_CHECKING
 
 import numpy as np
 
-__all__ = ["SolveStats"]
+if TYPE_CHECKING:
+    from hatkernels.mesh.core import Mesh
+
+__all__ = ["PoissonSolution", "SolveStats"]
 
 
 @dataclasses.dataclass
@@ -87,3 +93,36 @@ class SolveStats:
     def __repr__(self):
         return (f"SolveStats({self.unknowns} unknowns, {self.iterations} iterations, "
                 f"converged={self.converged}, residual reduction {self.reduction:.2e})")
+
+
+@dataclasses.dataclass
+class PoissonSolution:
+    """What :func:`solve_poisson` found.
+
+    Attributes
+    ----------
+    u : ndarray, shape (n_points,)
+        Values at the points (points in no cell get 0).
+    stats : SolveStats
+        Iterations, residuals, times per phase (``boundary``, ``assemble``,
+        ``setup``, ``solve``, ``total``), unknowns, what is stored, the
+        preconditioner, threads and peak memory.
+    mesh : Mesh
+    problem : PoissonProblem or None
+        The checked problem (data, conditions and their tags), for results by
+        region and boundary tag (:mod:`hatkernels.results`).
+    """
+
+    u: np.ndarray
+    stats: SolveStats
+    mesh: Mesh
+    problem: object = dataclasses.field(default=None, repr=False)
+
+    @property
+    def converged(self):
+        return self.stats.converged
+
+    def __repr__(self):
+        s = self.stats
+        return (f"{type(self).__name__}({s.unknowns} unknowns, {s.iterations} iterations, "
+                f"converged={s.converged}, {s.timings['total']:.3g} s)")

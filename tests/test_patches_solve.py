@@ -28,6 +28,7 @@ def test_solve_poisson_takes_the_patch_path_by_default_and_agrees_with_the_store
     coarse = rectangle(4, 3)
     sol = hatkernels.solve_poisson(coarse, 1.0, refine=3, dirichlet=0.25, rtol=1e-11)
     assert isinstance(sol, PatchSolution) and sol.converged
+    assert isinstance(sol, hatkernels.PoissonSolution)  # code testing for one still works
     ref = stored(coarse, 1.0, 3, dirichlet=0.25, rtol=1e-11)
     assert not isinstance(ref, PatchSolution)
     assert sol.u.shape == ref.u.shape

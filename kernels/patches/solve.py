@@ -28,6 +28,7 @@ from hatkernels.patches.load import callable_load
 from hatkernels.patches.multigrid import PatchMultigrid, PatchOperator
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.problem import PoissonProblem
+from hatkernels.stats import PoissonSolution
 
 __all__ = ["PatchSolution", "bytes_per_point", "patch_path_reason", "solve_on_patches"]
 
@@ -98,8 +99,9 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
     return None
 
 
-class PatchSolution:
-    """What :func:`solve_on_patches` found.
+class PatchSolution(PoissonSolution):
+    """What :func:`solve_on_patches` found: a :class:`~hatkernels.PoissonSolution` whose
+    ``u``, ``mesh`` and ``problem`` are made on first use.
 
     Attributes
     ----------
@@ -117,7 +119,7 @@ class PatchSolution:
         The problem on :attr:`mesh`, built on first use.
     """
 
-    def __init__(self, values, layout, stats, args):
+    def __init__(self, values, layout, stats, args):  # u, mesh, problem: properties here
         self.values, self.layout, self.stats = values, layout, stats
         self._args = args
         self._u = self._mesh = self._problem = None
