@@ -27,7 +27,7 @@ from hatkernels.assembly import StiffnessAssembler, assemble_load
 from hatkernels.assembly.boundary_terms import side_load, side_mass
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.errors import InputError
-from hatkernels.operators import StiffnessOperator, default_variant
+from hatkernels.operators import StiffnessOperator
 from hatkernels.precond import PreconditionerContext
 from hatkernels.solver import stored_bytes
 
@@ -147,8 +147,8 @@ def discretise(problem, *, matrix_free=False, variant=None, progress=None):
     matrix_free : bool
         Build the matrix-free form (stiffness term only).
     variant : str, optional
-        Its variant (:data:`hatkernels.operators.VARIANTS`); default
-        :func:`~hatkernels.operators.default_variant` of the mesh's dimension.
+        Its variant (:data:`hatkernels.operators.VARIANTS`, or ``inherited``); default
+        :func:`~hatkernels.operators.preferred_variant` of the mesh.
     progress : callable, optional
         ``progress(phase)`` as "boundary" and "assemble" start.
 
@@ -176,9 +176,9 @@ def discretise(problem, *, matrix_free=False, variant=None, progress=None):
         b = balanced(problem, b)
     held = problem.dirichlet
     if matrix_free:
-        variant = default_variant(mesh.dim) if variant is None else variant
         op = StiffnessOperator(mesh, problem.coefficient, dirichlet=held.points, quadrature=q,
                                variant=variant)
+        variant = op.variant
         g = np.zeros(mesh.n_points)
         g[held.points] = held.values
         b -= op.unmasked_matvec(g)  # lifting: move the known values to the right

@@ -1,6 +1,6 @@
 """Matrix-free stiffness operator: ``A @ x`` without a stored matrix.
 
-Three variants, one class each behind one interface
+Four variants, one class each behind one interface
 (:mod:`hatkernels.operators.variants`), all race-free and giving the same
 bits on any thread count (see :mod:`hatkernels._jit.operators`):
 
@@ -11,6 +11,11 @@ bits on any thread count (see :mod:`hatkernels._jit.operators`):
 ``factors``
     stores the three off-diagonal element entries per triangle (24 bytes per
     triangle): no geometry at product time.
+``inherited``
+    on a triangle mesh made by :meth:`~hatkernels.Mesh.refine` with a scalar
+    coefficient (the default there): every triangle's element matrix is its
+    coarsest ancestor's times its coefficient, so only the coarsest mesh's
+    entries are stored and nothing is recomputed.
 ``edges``
     stores one weight per edge (the cotangent formula summed over the edge's
     triangles) and the edge list by first point (an end point per edge, a
@@ -32,9 +37,11 @@ from hatkernels.operators.stiffness import DEFAULT_BLOCK, StiffnessOperator
 from hatkernels.operators.variants import (
     DEFAULT_VARIANT,
     DEFAULT_VARIANT_3D,
+    INHERITED,
     VARIANTS,
     default_variant,
+    preferred_variant,
 )
 
 __all__ = ["StiffnessOperator", "VARIANTS", "DEFAULT_VARIANT", "DEFAULT_VARIANT_3D",
-           "default_variant", "DEFAULT_BLOCK"]
+           "default_variant", "DEFAULT_BLOCK", "INHERITED", "preferred_variant"]

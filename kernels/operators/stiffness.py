@@ -14,9 +14,10 @@ from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
 from hatkernels.operators.variants import (
+    INHERITED,
     VARIANTS,
     build_variant,
-    default_variant,
+    preferred_variant,
     variant_coefficient,
 )
 
@@ -41,11 +42,14 @@ class StiffnessOperator(LinearOperator):
     ----------
     mesh : Mesh
     coefficient : any kind accepted by :func:`hatkernels.assemble_stiffness`
-    variant : {"geometry", "factors", "edges"}, optional
+    variant : {"geometry", "factors", "edges", "inherited"}, optional
         What is stored and how the product runs (see :mod:`hatkernels.operators`);
-        default :data:`~hatkernels.operators.DEFAULT_VARIANT` (``geometry``) on
+        default: ``inherited`` on triangle meshes made by :meth:`Mesh.refine`
+        with a scalar coefficient (the fastest, storing least), else
+        :data:`~hatkernels.operators.DEFAULT_VARIANT` (``geometry``) on
         triangles and :data:`~hatkernels.operators.DEFAULT_VARIANT_3D` (``edges``)
-        on tetrahedra, the ones the benchmark picked.
+        on tetrahedra, the ones the benchmark picked
+        (:func:`~hatkernels.operators.preferred_variant`).
     dirichlet : array of point indices, optional
         With it, the operator is the symmetrically eliminated matrix: identity
         rows and columns at these points (and at points in no cell), the
@@ -77,20 +81,21 @@ class StiffnessOperator(LinearOperator):
     ):
         if not isinstance(mesh, Mesh):
             raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
-        if variant is None:
-            variant = default_variant(mesh.dim)
-        if variant not in VARIANTS:
-            raise InputError(f"unknown matrix-free variant {variant!r}; choose one of {VARIANTS}")
+        names = VARIANTS + ((INHERITED,) if mesh.dim == 2 else ())
+        if variant is not None and variant not in names:
+            raise InputError(f"unknown matrix-free variant {variant!r}; choose one of {names}")
         block_size = integer_option(block_size, "block_size", minimum=1)
         t0 = time.perf_counter()
         n = mesh.n_points
         super().__init__(dtype=np.dtype(np.float64), shape=(n, n))
         self.mesh = mesh
-        self.variant = variant
         self.block_size = block_size
         self.coefficient = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
         self._quadrature = quadrature
         kc = variant_coefficient(self.coefficient, mesh, quadrature)
+        if variant is None:
+            variant = preferred_variant(mesh, kc)
+        self.variant = variant
         self._fixed = _dirichlet_mask(mesh, dirichlet)
         self._diag = None
         self._is_fixed = np.zeros(n if self._fixed.size else 0, dtype=np.bool_)

@@ -42,7 +42,11 @@ __all__ = [
     "SerialGeometryProduct",
     "FactorsProduct",
     "EdgesProduct",
+    "InheritedProduct",
     "VARIANT_CLASSES",
+    "INHERITED",
+    "inherited_reason",
+    "preferred_variant",
     "VARIANTS",
     "DEFAULT_VARIANT",
     "DEFAULT_VARIANT_3D",
@@ -164,16 +168,19 @@ class FactorsProduct(TriangleBlocks):
         _jit_ops.apply_factors(self.mesh.triangles, self.offdiagonals, *self.colouring, x, out)
 
     def serial_product(self, x, out):
-        # (K_T x)_a = sum over b != a of K_ab (x_b - x_a); column c holds the pair opposite c
-        t = self.mesh.triangles
-        o = self.offdiagonals
-        x0, x1, x2 = x[t[:, 0]], x[t[:, 1]], x[t[:, 2]]
-        terms = np.column_stack([
-            o[:, 2] * (x1 - x0) + o[:, 1] * (x2 - x0),
-            o[:, 2] * (x0 - x1) + o[:, 0] * (x2 - x1),
-            o[:, 1] * (x0 - x2) + o[:, 0] * (x1 - x2),
-        ])
-        out[:] = np.bincount(t.ravel(), weights=terms.ravel(), minlength=out.size)
+        _plain_product(self.mesh.triangles, self.offdiagonals, x, out)
+
+
+def _plain_product(t, o, x, out):
+    """``out = K x`` from the off-diagonals ``o`` (M, 3) of the triangles ``t``, plainly."""
+    # (K_T x)_a = sum over b != a of K_ab (x_b - x_a); column c holds the pair opposite c
+    x0, x1, x2 = x[t[:, 0]], x[t[:, 1]], x[t[:, 2]]
+    terms = np.column_stack([
+        o[:, 2] * (x1 - x0) + o[:, 1] * (x2 - x0),
+        o[:, 2] * (x0 - x1) + o[:, 0] * (x2 - x1),
+        o[:, 1] * (x0 - x2) + o[:, 0] * (x1 - x2),
+    ])
+    out[:] = np.bincount(t.ravel(), weights=terms.ravel(), minlength=out.size)
 
 
 class EdgesProduct(EdgeRows, TriangleBlocks):
@@ -200,6 +207,87 @@ class EdgesProduct(EdgeRows, TriangleBlocks):
         del edges
         # edge topology the products do not need (12 to 20 bytes per triangle)
         mesh.forget(*(mesh.cached() - had))
+
+
+#: The variant for triangle meshes made by :meth:`Mesh.refine` (scalar coefficients).
+INHERITED = "inherited"
+
+
+def inherited_reason(mesh, coefficient):
+    """Why the ``inherited`` variant cannot serve ``mesh`` and ``coefficient``, or None.
+
+    ``coefficient`` is the kernels' view (:func:`variant_coefficient`).
+    """
+    if mesh.dim != 2:
+        return "the children of a tetrahedron are not all similar to it"
+    if mesh.refinement is None:
+        return "the mesh was not made by Mesh.refine (it has no coarsest ancestor to inherit from)"
+    if coefficient.is_tensor:
+        return "a tensor coefficient turns with each triangle's own axes"
+    return None
+
+
+class InheritedProduct(TriangleBlocks):
+    """On a triangle mesh made by :meth:`Mesh.refine`: each element matrix is its ancestor's.
+
+    Refinement by edge midpoints makes four children similar to their parent
+    with their vertices in the same order (three shrunk copies and one turned
+    half round), and the P1 stiffness matrix does not change under shrinking,
+    moving or a half turn.  So fine triangle ``t``'s element matrix is that of
+    its coarsest ancestor ``t >> 2k`` (``k`` refinements; the children of
+    cell ``t`` are ``4t .. 4t+3``) times its own coefficient.  Stores the
+    coarsest mesh's three off-diagonals per triangle (with unit coefficient):
+    the product reads nothing per triangle but its points, and no geometry is
+    recomputed.  The same idea as :mod:`hatkernels.patches`, on a stored mesh.
+    """
+
+    name = INHERITED
+    fallback = SerialGeometryProduct
+
+    def __init__(self, mesh, coefficient, colouring):
+        reason = inherited_reason(mesh, coefficient)
+        if reason is not None:
+            raise InputError(f"the {INHERITED} variant does not apply: {reason}")
+        super().__init__(mesh, coefficient, colouring)
+        levels = mesh.levels()
+        base = levels[0]
+        self.shift = 2 * (len(levels) - 1)
+        self.base = np.empty((base.n_triangles, 3))
+        _jit_ops.offdiagonal_values(base.points, base.triangles, np.ones(1), 0,
+                                    np.empty((0, 2, 2)), 0, self.base)
+        kc = self.coefficient
+        self._kappa = (kc.kappa, kc.kappa_step)
+
+    @property
+    def nbytes(self):
+        return super().nbytes + self.base.nbytes
+
+    def product(self, x, out):
+        _jit_ops.apply_inherited(self.mesh.triangles, self.base, self.shift, *self._kappa,
+                                 *self.colouring, x, out)
+
+    def serial_product(self, x, out):
+        t = self.mesh.triangles
+        kappa, ks = self._kappa
+        cells = np.arange(len(t))
+        o = self.base[cells >> self.shift] * kappa[cells * ks][:, None]
+        _plain_product(t, o, x, out)
+
+    def remove_fixed_columns(self, near, is_fixed, x, out):
+        _jit_ops.remove_fixed_columns_inherited(self.mesh.triangles, self.base, self.shift,
+                                                *self._kappa, near, is_fixed, x, out)
+
+
+def preferred_variant(mesh, coefficient):
+    """The variant a :class:`~hatkernels.StiffnessOperator` takes when none is named.
+
+    :data:`INHERITED` where it applies (:func:`inherited_reason`), else
+    :func:`default_variant` of the mesh's dimension.  ``coefficient`` is the
+    kernels' view (:func:`variant_coefficient`).
+    """
+    if inherited_reason(mesh, coefficient) is None:
+        return INHERITED
+    return default_variant(mesh.dim)
 
 
 #: The variants by name; the first is the default.
@@ -238,6 +326,11 @@ def build_variant(name, mesh, coefficient, block_size):
     InputError if it has none.  Arguments are trusted (checked by the caller).
     """
     classes = VARIANT_CLASSES if mesh.dim == 2 else variants3d.VARIANT_CLASSES
+    if name == INHERITED:
+        reason = inherited_reason(mesh, coefficient)
+        if reason is not None:
+            raise InputError(f"the {INHERITED} variant does not apply: {reason}")
+        classes = {INHERITED: InheritedProduct}
     cls = classes[name]
     colouring = triangle_colouring(mesh.cells, mesh.n_points, block_size)
     if colouring is not None:

@@ -40,7 +40,7 @@ from hatkernels.checks import integer_option, point_indices, real_option
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
-from hatkernels.operators import StiffnessOperator, default_variant
+from hatkernels.operators import StiffnessOperator
 from hatkernels.precond.direct import SparseDirect, coarse_correction
 from hatkernels.precond.gmg_levels import Level, coarsen_coefficient
 from hatkernels.precond.registry import Preconditioner, make_preconditioner
@@ -98,8 +98,7 @@ class GeometricMultigrid(Preconditioner):
     variant : str, optional
         Matrix-free variant of the level operators (default: that of ``A``
         when it is a StiffnessOperator, whose data the finest level then
-        shares; else :func:`hatkernels.operators.default_variant` of the mesh's
-        dimension).
+        shares; else :func:`hatkernels.operators.preferred_variant` of each level).
 
     The defaults (degree 2 on the interval [bound / 6, bound]) were the
     fastest of degrees 2 and 3 with bottoms bound / 30 to bound / 3 on
@@ -221,7 +220,6 @@ class GeometricMultigrid(Preconditioner):
             is_fixed_c[coarse_mesh.unused_points()] = True
             fixeds.append(np.flatnonzero(is_fixed_c))
         coefs, fixeds = coefs[::-1], fixeds[::-1]
-        variant = default_variant(mesh.dim) if variant is None else variant
         ops = [None] * (len(meshes) - 2) + [fine_op]
         # the finest level's x is the caller's output, unless A acts on the free points only
         own_x = [True] * (len(meshes) - 2) + [self._free is not None]
