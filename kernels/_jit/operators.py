@@ -90,6 +90,13 @@ def identity_rows(fixed, x, y):
         y[fixed[k]] = x[fixed[k]]
 
 
+@jit(parallel=True)
+def residual_rows(fixed, x, b, y):
+    """``y[fixed] = b[fixed] - x[fixed]``: the identity rows of a residual."""
+    for k in prange(fixed.size):
+        y[fixed[k]] = b[fixed[k]] - x[fixed[k]]
+
+
 @jit(inline="always")
 def _add_triangle(y, i0, i1, i2, o0, o1, o2, x0, x1, x2):
     """``y += K_T x`` for a zero-row-sum element matrix given by its off-diagonals.
@@ -348,46 +355,3 @@ def colour_row_blocks(starts, ends, n_points, rows_per_block):
             seen[ends[e]] |= bit
     return colour
 
-
-@jit(inline="always")
-def _inherited(base, shift, kappa, ks, t):
-    """Off-diagonals of fine triangle ``t``: its coarsest ancestor's, times its coefficient."""
-    a = uint64(t) >> uint64(shift)
-    w = kappa[uint64(t * ks)]
-    return w * base[a, uint64(0)], w * base[a, uint64(1)], w * base[a, uint64(2)]
-
-
-@jit(parallel=True)
-def apply_inherited(triangles, base, shift, kappa, ks, block_size, colour_ptr, blocks, x, y):
-    """``y = A x`` on a uniformly refined mesh from its coarsest mesh's off-diagonals.
-
-    Fine triangle ``t`` descends from coarsest triangle ``t >> shift`` and is
-    similar to it with its vertices in the same order, so its element matrix
-    is the ancestor's (with unit coefficient, ``base``) times its own
-    coefficient ``kappa[t * ks]``: nothing is read per triangle but its points.
-    """
-    m = triangles.shape[0]
-    _zero(y)
-    for c in range(colour_ptr.size - 1):
-        for k in prange(colour_ptr[c], colour_ptr[c + 1]):
-            b = blocks[k]
-            for tt in range(b * block_size, min(m, (b + 1) * block_size)):
-                t = uint64(tt)
-                i0 = uint64(triangles[t, uint64(0)])
-                i1 = uint64(triangles[t, uint64(1)])
-                i2 = uint64(triangles[t, uint64(2)])
-                o0, o1, o2 = _inherited(base, shift, kappa, ks, t)
-                _add_triangle(y, i0, i1, i2, o0, o1, o2, x[i0], x[i1], x[i2])
-
-
-@jit()
-def remove_fixed_columns_inherited(triangles, base, shift, kappa, ks, near, is_fixed, x, y):
-    """:func:`remove_fixed_columns` with the inherited element matrices."""
-    for k in range(near.size):
-        t = near[k]
-        i0, i1, i2 = triangles[t, 0], triangles[t, 1], triangles[t, 2]
-        o0, o1, o2 = _inherited(base, shift, kappa, ks, t)
-        a0 = x[i0] if is_fixed[i0] else 0.0
-        a1 = x[i1] if is_fixed[i1] else 0.0
-        a2 = x[i2] if is_fixed[i2] else 0.0
-        _add_triangle(y, i0, i1, i2, -o0, -o1, -o2, a0, a1, a2)

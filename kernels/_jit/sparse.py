@@ -40,6 +40,8 @@ __all__ = [
     "xpby",
     "jacobi_apply",
     "chebyshev_step",
+    "chebyshev_zero_start",
+    "chebyshev_last",
 ]
 
 #: Entries per chunk of a dot product.  Fixed so that the summation order,
@@ -277,4 +279,22 @@ def chebyshev_step(q, dinv, c1, c2, r, d, x):
         r[i] = ri
         di = c1 * d[i] + c2 * dinv[i] * ri
         d[i] = di
+        x[i] += di
+
+
+@jit(parallel=True)
+def chebyshev_zero_start(c, dinv, b, x):
+    """``x = c dinv b``: the first Chebyshev step from a zero guess when no later step
+    needs ``r`` (which is ``b``) or ``d`` (which is ``x``) kept apart."""
+    for i in prange(x.shape[0]):
+        x[i] = c * dinv[i] * b[i]
+
+
+@jit(parallel=True)
+def chebyshev_last(q, dinv, c1, c2, r, d, x):
+    """The last step of :func:`chebyshev_step`: ``x += c1 d + c2 dinv (r - q)``, the same
+    bits, with ``r`` and ``d`` read and not written (``d`` may be ``x`` itself)."""
+    for i in prange(x.shape[0]):
+        ri = r[i] - q[i]
+        di = c1 * d[i] + c2 * dinv[i] * ri
         x[i] += di

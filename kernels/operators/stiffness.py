@@ -8,6 +8,7 @@ import numpy as np
 from scipy.sparse.linalg import LinearOperator
 
 from hatkernels._jit import operators as _jit_ops
+from hatkernels._jit import sparse as _jit_sparse
 from hatkernels._sets import index_union
 from hatkernels.checks import integer_option, point_indices
 from hatkernels.coefficients import parse_coefficient
@@ -17,6 +18,7 @@ from hatkernels.operators.variants import (
     INHERITED,
     VARIANTS,
     build_variant,
+    default_variant,
     preferred_variant,
     variant_coefficient,
 )
@@ -94,7 +96,9 @@ class StiffnessOperator(LinearOperator):
         self._quadrature = quadrature
         kc = variant_coefficient(self.coefficient, mesh, quadrature)
         if variant is None:
-            variant = preferred_variant(mesh, kc)
+            # the inherited variant's blocks hold whole families of four
+            variant = (preferred_variant(mesh, kc) if block_size % 4 == 0
+                       else default_variant(mesh.dim))
         self.variant = variant
         self._fixed = _dirichlet_mask(mesh, dirichlet)
         self._diag = None
@@ -155,6 +159,21 @@ class StiffnessOperator(LinearOperator):
             # the cells next to fixed points), then the fixed rows copy x
             self._impl.remove_fixed_columns(self._near, self._is_fixed, x, out)
             _jit_ops.identity_rows(self._fixed, x, out)
+        return out
+
+    def residual_into(self, x, b, out):
+        """``out = b - A x`` with no allocation (``x``, ``b``, ``out`` distinct, float64,
+        contiguous, length n): one pass over the cells where the variant has a residual
+        form, else a product and a subtraction."""
+        residual = getattr(self._impl, "residual", None)
+        if residual is None or self._masked is not None:
+            self.matvec_into(x, out)
+            _jit_sparse.xpby(b, -1.0, out)
+            return out
+        residual(x, b, out)
+        if self._fixed.size:
+            self._impl.add_fixed_columns(self._near, self._is_fixed, x, out)
+            _jit_ops.residual_rows(self._fixed, x, b, out)
         return out
 
     def unmasked_matvec(self, x):

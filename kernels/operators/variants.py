@@ -29,6 +29,7 @@ import warnings
 import numpy as np
 
 from hatkernels._jit import assembly as _jit_assembly
+from hatkernels._jit import inherited as _jit_inh
 from hatkernels._jit import operators as _jit_ops
 from hatkernels.assembly.csr import kernel_coefficient
 from hatkernels.errors import InputError
@@ -209,6 +210,8 @@ class EdgesProduct(EdgeRows, TriangleBlocks):
         mesh.forget(*(mesh.cached() - had))
 
 
+_EMPTY = np.empty(0)
+
 #: The variant for triangle meshes made by :meth:`Mesh.refine` (scalar coefficients).
 INHERITED = "inherited"
 
@@ -248,6 +251,10 @@ class InheritedProduct(TriangleBlocks):
         reason = inherited_reason(mesh, coefficient)
         if reason is not None:
             raise InputError(f"the {INHERITED} variant does not apply: {reason}")
+        if colouring.block_size % 4:
+            raise InputError(f"the {INHERITED} variant takes the four children of a triangle "
+                             f"together: block_size must be a multiple of 4, got "
+                             f"{colouring.block_size}")
         super().__init__(mesh, coefficient, colouring)
         levels = mesh.levels()
         base = levels[0]
@@ -263,8 +270,18 @@ class InheritedProduct(TriangleBlocks):
         return super().nbytes + self.base.nbytes
 
     def product(self, x, out):
-        _jit_ops.apply_inherited(self.mesh.triangles, self.base, self.shift, *self._kappa,
-                                 *self.colouring, x, out)
+        _jit_inh.apply_inherited(self.mesh.triangles, self.base, self.shift, *self._kappa,
+                                 *self.colouring, x, _EMPTY, out)
+
+    def residual(self, x, b, out):
+        """``out = b - K x`` in one pass (the plain stiffness matrix)."""
+        _jit_inh.apply_inherited(self.mesh.triangles, self.base, self.shift, *self._kappa,
+                                 *self.colouring, x, b, out)
+
+    def add_fixed_columns(self, near, is_fixed, x, out):
+        """``out += K[:, fixed] x[fixed]``: :meth:`remove_fixed_columns` after :meth:`residual`."""
+        _jit_inh.remove_fixed_columns_inherited(self.mesh.triangles, self.base, self.shift,
+                                                *self._kappa, near, is_fixed, x, out, -1.0)
 
     def serial_product(self, x, out):
         t = self.mesh.triangles
@@ -274,8 +291,8 @@ class InheritedProduct(TriangleBlocks):
         _plain_product(t, o, x, out)
 
     def remove_fixed_columns(self, near, is_fixed, x, out):
-        _jit_ops.remove_fixed_columns_inherited(self.mesh.triangles, self.base, self.shift,
-                                                *self._kappa, near, is_fixed, x, out)
+        _jit_inh.remove_fixed_columns_inherited(self.mesh.triangles, self.base, self.shift,
+                                                *self._kappa, near, is_fixed, x, out, 1.0)
 
 
 def preferred_variant(mesh, coefficient):

@@ -101,15 +101,26 @@ class ChebyshevSmoother:
         """Smooth ``x`` in place; ``r``, ``d``, ``q`` are work vectors of the same length.
 
         With ``zero_guess`` the initial ``x`` is zero whatever ``x`` holds (it
-        is overwritten, not read).
+        is overwritten, not read).  On return the work vectors hold nothing the
+        caller may use (the last step does not update ``r`` and ``d``).
         """
-        if not zero_guess:
-            self.residual(x, b, r)
         sigma = self.theta / self.delta
         rho = 1.0 / sigma
-        _k.chebyshev_start(1.0 / self.theta, self.dinv, b, r, d, x, zero_guess)
-        for _ in range(1, self.degree):
+        if zero_guess and self.degree <= 2:
+            # from zero, the first direction is x itself and the residual b: neither
+            # is copied (5 vector passes of 13 saved at degree 2)
+            _k.chebyshev_zero_start(1.0 / self.theta, self.dinv, b, x)
+            r, d = b, x
+        else:
+            if not zero_guess:
+                self.residual(x, b, r)
+            _k.chebyshev_start(1.0 / self.theta, self.dinv, b, r, d, x, zero_guess)
+        for step in range(1, self.degree):
             self.product(d, q)
             rho_new = 1.0 / (2.0 * sigma - rho)
-            _k.chebyshev_step(q, self.dinv, rho_new * rho, 2.0 * rho_new / self.delta, r, d, x)
+            c1, c2 = rho_new * rho, 2.0 * rho_new / self.delta
+            if step == self.degree - 1:  # the last: r and d are not needed after it
+                _k.chebyshev_last(q, self.dinv, c1, c2, r, d, x)
+            else:
+                _k.chebyshev_step(q, self.dinv, c1, c2, r, d, x)
             rho = rho_new

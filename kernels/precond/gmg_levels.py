@@ -99,8 +99,7 @@ class Level:
         self.transfer = None
 
     def residual(self, x, b, out):
-        self.op.matvec_into(x, out)
-        _k.xpby(b, -1.0, out)
+        self.op.residual_into(x, b, out)
 
     def smooth(self, x, b, zero_guess):
         self.smoother.smooth(x, b, zero_guess, self.r, self.d, self.q)
