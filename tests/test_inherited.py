@@ -142,6 +142,30 @@ def test_dirichlet_equals_the_eliminated_matrix_and_is_symmetric(mesh):
     assert np.linalg.norm(Ax - A @ x) > 1e3 * EPS * np.linalg.norm(abs(A) @ np.abs(x))
 
 
+def residual_close(r, E, x, b):
+    """``r`` is ``b - E x`` to round-off relative to ``|b| + |E| |x|`` (Higham, Accuracy and
+    Stability of Numerical Algorithms, 2002, section 3.5)."""
+    return np.linalg.norm(r - (b - E @ x)) <= 16 * EPS * np.linalg.norm(np.abs(b) + abs(E) @ np.abs(x))
+
+
+@pytest.mark.parametrize("held", [False, True])
+def test_residual_equals_the_assembled_one(held):
+    m = refined(jittered_mesh(4, 19), 2)
+    rng = np.random.default_rng(18)
+    coef = rng.uniform(0.5, 3.0, m.n_triangles)
+    fixed = m.boundary_points() if held else None
+    op = StiffnessOperator(m, coef, dirichlet=fixed)
+    assert op.variant == "inherited"
+    A = assemble_stiffness(m, coef, strategy="reference")
+    E = eliminated(A, fixed) if held else A
+    x, b = rng.standard_normal(m.n_points), rng.standard_normal(m.n_points)
+    keep_x, keep_b = x.copy(), b.copy()
+    out = np.full(m.n_points, np.nan)
+    assert op.residual_into(x, b, out) is out
+    assert residual_close(out, E, x, b)
+    assert (x == keep_x).all() and (b == keep_b).all()
+
+
 # -- 3. plain and parallel products, thread counts --
 
 
@@ -161,12 +185,14 @@ def test_one_and_two_threads_give_identical_bits():
     rng = np.random.default_rng(2)
     x = rng.standard_normal(m.n_points)
     coef = rng.uniform(0.5, 2.0, m.n_triangles)
+    b = rng.standard_normal(m.n_points)
     out = []
     for n in (1, 2):
         with threads(n):
             op = StiffnessOperator(m, coef, block_size=16, dirichlet=m.boundary_points())
             assert op.variant == "inherited" and op.n_colours > 1
-            out.append((op @ x).tobytes() + op.unmasked_matvec(x).tobytes())
+            r = op.residual_into(x, b, np.empty(m.n_points))
+            out.append((op @ x).tobytes() + op.unmasked_matvec(x).tobytes() + r.tobytes())
     assert out[0] == out[1]
 
 
@@ -220,10 +246,25 @@ def test_naming_inherited_on_tetrahedra_says_why():
 def test_more_than_64_colours_falls_back_with_a_warning_and_the_right_product():
     from test_operators import fan
 
-    m = fan().refine()  # the centre point is in 70 fine triangles
+    m = fan().refine()  # the centre point is in 70 fine triangles of 70 families
     with pytest.warns(RuntimeWarning, match="more than 64 colours"):
-        op = StiffnessOperator(m, block_size=1)
+        op = StiffnessOperator(m, block_size=4)  # one family of four per block
     x = np.random.default_rng(15).standard_normal(m.n_points)
+    A = assemble_stiffness(m, strategy="reference")
+    assert product_close(op @ x, A, x)
+    b = np.random.default_rng(16).standard_normal(m.n_points)
+    r = op.residual_into(x, b, np.empty(m.n_points))
+    assert np.linalg.norm(r - (b - A @ x)) <= 16 * EPS * np.linalg.norm(np.abs(b) + abs(A) @ np.abs(x))
+
+
+def test_block_size_must_hold_whole_families():
+    # the product takes a triangle's four children together
+    m = hatkernels.mesh.rectangle(3, 2).refine()
+    assert StiffnessOperator(m, block_size=6).variant == "geometry"
+    with pytest.raises(hatkernels.InputError, match="multiple of 4"):
+        StiffnessOperator(m, variant="inherited", block_size=6)
+    op = StiffnessOperator(m, variant="inherited", block_size=12)
+    x = np.random.default_rng(17).standard_normal(m.n_points)
     assert product_close(op @ x, assemble_stiffness(m, strategy="reference"), x)
 
 
