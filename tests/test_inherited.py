@@ -232,11 +232,6 @@ def test_naming_inherited_where_it_does_not_apply_says_why():
         solve_poisson(rect, 1.0, preconditioner="jacobi", matrix_free=True, variant="inherited")
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="library: StiffnessOperator rejects 'inherited' on tetrahedra as an unknown variant "
-    "(kernels/operators/stiffness.py, the names check) before inherited_reason can say why",
-)
 def test_naming_inherited_on_tetrahedra_says_why():
     tets = hatkernels.mesh.cuboid(2).refine()
     with pytest.raises(hatkernels.InputError, match="tetrahedr"):

@@ -83,7 +83,7 @@ class StiffnessOperator(LinearOperator):
     ):
         if not isinstance(mesh, Mesh):
             raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
-        names = VARIANTS + ((INHERITED,) if mesh.dim == 2 else ())
+        names = VARIANTS + (INHERITED,)
         if variant is not None and variant not in names:
             raise InputError(f"unknown matrix-free variant {variant!r}; choose one of {names}")
         block_size = integer_option(block_size, "block_size", minimum=1)
@@ -115,8 +115,13 @@ class StiffnessOperator(LinearOperator):
         if self._fixed.size and mesh.dim == 3:
             self._masked = np.empty(n)
         elif self._fixed.size:
-            self._near = np.flatnonzero(self._is_fixed[mesh.cells].any(axis=1))
+            cells = mesh.cells
+            touches = self._is_fixed[cells[:, 0]]
+            for c in range(1, cells.shape[1]):  # column by column: any(axis=1) was 10x slower
+                touches |= self._is_fixed[cells[:, c]]
+            self._near = np.flatnonzero(touches)
         self._impl = build_variant(variant, mesh, kc, block_size)
+        self.variant = self._impl.name  # a fallback's own name when the colouring failed
         self.setup_time = time.perf_counter() - t0
 
     # -- what the operator stores ------------------------------------------------

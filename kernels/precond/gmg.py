@@ -269,8 +269,10 @@ class GeometricMultigrid(Preconditioner):
         fine = self.levels[-1]
         b = fine.b
         if self._free is None:
-            b[:] = r
             x = out
+            if not r[fine.fixed].any():
+                return r, x  # the cycle reads b, never writes it: no copy needed
+            b[:] = r
         else:
             b[:] = 0.0
             b[self._free] = r
@@ -313,15 +315,16 @@ class GeometricMultigrid(Preconditioner):
         """
         cycles = self.nested_cycles if cycles is None else integer_option(
             cycles, "gmg: cycles", minimum=1)
-        _, x = self._finest_input(r, out)
+        b, x = self._finest_input(r, out)
         count = len(self.levels)
         below = [(self._coarse_x, self._coarse_b, self.coarse_fixed)] + [
             (lv.x, lv.b, lv.fixed) for lv in self.levels[:-1]]
+        loads = [lv.b for lv in self.levels[:-1]] + [b]
         for level in range(count, 0, -1):  # the loads, finest to coarsest
             lv = self.levels[level - 1]
             cp, e, mid, first_low, by_high_ptr, by_high = lv.transfer
             _, bc, cfixed = below[level - 1]
-            _mg.restrict(cp, mid, first_low, by_high_ptr, by_high, lv.b, bc)
+            _mg.restrict(cp, mid, first_low, by_high_ptr, by_high, loads[level - 1], bc)
             _mg.zero_at(cfixed, bc)
         self._coarse_solve(self._coarse_x, self._coarse_b, True)
         for level in range(1, count + 1):  # the solutions, coarsest to finest
@@ -332,7 +335,7 @@ class GeometricMultigrid(Preconditioner):
             _mg.prolong_add(cp, e, mid, below[level - 1][0], xl)
             _mg.zero_at(lv.fixed, xl)
             for _ in range(cycles):
-                self._cycle(level, xl, lv.b, False, self.cycle)
+                self._cycle(level, xl, loads[level - 1], False, self.cycle)
         return self._finest_output(r, out, x)
 
     def _coarse_solve(self, x, b, zero_guess):
