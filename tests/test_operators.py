@@ -13,8 +13,8 @@ import hatkernels
 from hatkernels import Mesh, StiffnessOperator, assemble_stiffness, threads
 from hatkernels.assembly.csr import KernelCoefficient, kernel_coefficient
 from hatkernels.coefficients import parse_coefficient
+from hatkernels.mesh.colouring import triangle_colouring
 from hatkernels.operators import VARIANTS
-from hatkernels.operators.colouring import triangle_colouring
 from hatkernels.operators.variants import (
     VARIANT_CLASSES,
     SerialGeometryProduct,

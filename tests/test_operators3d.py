@@ -20,8 +20,8 @@ import hatkernels
 from hatkernels import Mesh, StiffnessOperator, assemble_stiffness, threads
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.mesh import cuboid
+from hatkernels.mesh.colouring import triangle_colouring
 from hatkernels.operators import DEFAULT_VARIANT, DEFAULT_VARIANT_3D, VARIANTS, default_variant
-from hatkernels.operators.colouring import triangle_colouring
 from hatkernels.operators.variants import build_variant, variant_coefficient
 from hatkernels.operators.variants3d import (
     VARIANT_CLASSES,

@@ -8,6 +8,7 @@ from hatkernels._jit import assembly as _jit_assembly
 from hatkernels.assembly.elements import mass_values
 from hatkernels.assembly.plan import build_plan
 from hatkernels.coefficients import triangle_means
+from hatkernels.mesh.colouring import block_size_for, triangle_colouring
 
 
 class KernelCoefficient(NamedTuple):
@@ -58,15 +59,18 @@ def kernel_coefficient(coef, mesh, quadrature):
 class CSRNumeric:
     """Numeric phases on a :class:`~hatkernels.assembly.plan.CSRPlan`.
 
-    ``fused=True`` computes the stiffness without the (M, 3) element-value
-    temporaries (48 bytes per triangle less at peak, slower by the
-    recomputation; see docs/assembly.md).
+    The stiffness goes in triangle by triangle over coloured blocks
+    (:func:`~hatkernels._jit.assembly.scatter_scalar`; 6 slot indices per
+    triangle kept after the first call).  ``fused=True`` fills it row by row
+    instead, recomputing each triangle's geometry at each of its vertices, with
+    nothing stored beyond the plan (slower; see docs/assembly.md).
     """
 
     def __init__(self, mesh, plan=None, *, fused=False):
         self.mesh = mesh
         self.plan = build_plan(mesh) if plan is None else plan
         self.fused = fused
+        self._scatter = None
 
     def stiffness_data(self, coef, quadrature, out=None):
         pl, m = self.plan, self.mesh
@@ -86,11 +90,35 @@ class CSRNumeric:
                 data,
             )
             return data
+        scatter = self._scatter_plan()
+        if scatter is not None:
+            slots, colouring = scatter
+            kernel = _jit_assembly.scatter_tensor if kc.is_tensor else _jit_assembly.scatter_scalar
+            kernel(m.points, pl.triangles, *kc, pl.diag, slots, *colouring, data)
+            return data
         d = np.empty((m.n_triangles, 3))
         o = np.empty((m.n_triangles, 3))
         _jit_assembly.stiffness_values(m.points, pl.triangles, *kc, d, o)
         self._gather(d, o, data)
         return data
+
+    def _scatter_plan(self):
+        """``(slots, colouring)`` for :func:`~hatkernels._jit.assembly.scatter_scalar`,
+        made on first use and kept (6 indices per triangle), or None when the triangles
+        need more than 64 colours (then the row-by-row gather serves)."""
+        if self._scatter is None:
+            pl, m = self.plan, self.mesh
+            colouring = triangle_colouring(pl.triangles, m.n_points, block_size_for(m.n_cells))
+            if colouring is None:
+                self._scatter = False
+                return None
+            # the plan's slots are by incidence (row order); here by triangle
+            slots = np.empty((m.n_triangles, 3, 2), dtype=pl.dtype)
+            flat = slots.reshape(-1, 2)
+            flat[pl.codes, 0] = pl.slot_next
+            flat[pl.codes, 1] = pl.slot_prev
+            self._scatter = (slots.reshape(m.n_triangles, 6), colouring)
+        return self._scatter or None
 
     def mass_data(self, coef, quadrature, out=None):
         d, o = mass_values(self.mesh, coef, quadrature)

@@ -43,9 +43,9 @@ from hatkernels.assembly import assemble_stiffness
 from hatkernels.distributed.launch import mpi
 from hatkernels.distributed.matrix import DistributedMatrix, _arrays, split_columns
 from hatkernels.errors import InputError
+from hatkernels.mesh.colouring import triangle_colouring
 from hatkernels.operators import DEFAULT_BLOCK, VARIANTS, StiffnessOperator
 from hatkernels.operators.blocks import EdgeRows
-from hatkernels.operators.colouring import triangle_colouring
 
 __all__ = ["MatrixFreeRows", "AssembledRows", "level_operator", "agree_bounds",
            "check_variant", "describe_kinds"]

@@ -13,8 +13,8 @@ import numpy as np
 
 from hatkernels._jit import operators as _jit_ops
 from hatkernels.errors import InputError
+from hatkernels.mesh.colouring import row_colouring
 from hatkernels.mesh.core_index import index_dtype
-from hatkernels.operators.colouring import row_colouring
 
 __all__ = ["ElementBlocks", "EdgeRows"]
 
@@ -28,7 +28,7 @@ class ElementBlocks:
     coefficient : KernelCoefficient
         From :func:`hatkernels.operators.variants.variant_coefficient`.
     colouring : Colouring
-        Of blocks of consecutive cells (:func:`~hatkernels.operators.colouring.triangle_colouring`).
+        Of blocks of consecutive cells (:func:`~hatkernels.mesh.colouring.triangle_colouring`).
     """
 
     #: The name :data:`~hatkernels.operators.variants.VARIANT_CLASSES` knows the class by.

@@ -13,6 +13,7 @@ from hatkernels._sets import index_union
 from hatkernels.checks import integer_option, point_indices
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
+from hatkernels.mesh.colouring import block_size_for
 from hatkernels.mesh.core import Mesh
 from hatkernels.operators.variants import (
     INHERITED,
@@ -23,7 +24,7 @@ from hatkernels.operators.variants import (
     variant_coefficient,
 )
 
-__all__ = ["StiffnessOperator", "DEFAULT_BLOCK", "inherited_block"]
+__all__ = ["StiffnessOperator", "DEFAULT_BLOCK"]
 
 #: Triangles per block of the colouring.
 DEFAULT_BLOCK = 1024
@@ -35,20 +36,6 @@ def _dirichlet_mask(mesh, dirichlet):
         return np.empty(0, dtype=np.int64)
     d = point_indices(dirichlet, mesh.n_points, "dirichlet")
     return index_union(mesh.n_points, d, mesh.unused_points())
-
-
-def inherited_block(n_cells):
-    """Cells per block for the ``inherited`` variant: about ``n_cells / 128``, a power of
-    two from 1024 to 65536.
-
-    Its product is bound by arithmetic and by loading each shared point once per colour,
-    not by the stored data: larger blocks share fewer points.  On ``rectangle(16, 16)``
-    refined 8 times (33.5 million triangles, 2 threads) blocks of 1024, 4096, 16384 and
-    65536 took 75, 58, 50 and 46 ms a product; on 2 million triangles 3.3, 3.2, 3.0 and
-    2.8 ms.  128 blocks keep dozens per colour for the threads to share.
-    """
-    target = max(1, n_cells // 128)
-    return int(min(65536, max(1024, 1 << (target.bit_length() - 1))))
 
 
 class StiffnessOperator(LinearOperator):
@@ -74,7 +61,8 @@ class StiffnessOperator(LinearOperator):
         Rule for averaging a callable coefficient over each cell.
     block_size : int, optional
         Elements per block of the colouring: default :data:`DEFAULT_BLOCK`, or
-        for the ``inherited`` variant :func:`inherited_block` of the cell count.
+        for the ``inherited`` variant
+        :func:`~hatkernels.mesh.colouring.block_size_for` of the cell count.
 
     Examples
     --------
@@ -117,7 +105,7 @@ class StiffnessOperator(LinearOperator):
             variant = (preferred_variant(mesh, kc) if block_size % 4 == 0
                        else default_variant(mesh.dim))
         if chosen and variant == INHERITED:
-            block_size = inherited_block(mesh.n_cells)
+            block_size = block_size_for(mesh.n_cells)
             self.block_size = block_size
         self.variant = variant
         self._fixed = _dirichlet_mask(mesh, dirichlet)

@@ -33,9 +33,9 @@ from hatkernels._jit import inherited as _jit_inh
 from hatkernels._jit import operators as _jit_ops
 from hatkernels.assembly.csr import kernel_coefficient
 from hatkernels.errors import InputError
+from hatkernels.mesh.colouring import triangle_colouring
 from hatkernels.operators import variants3d
 from hatkernels.operators.blocks import EdgeRows, ElementBlocks
-from hatkernels.operators.colouring import triangle_colouring
 
 __all__ = [
     "TriangleBlocks",

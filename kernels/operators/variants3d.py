@@ -24,9 +24,9 @@ import numpy as np
 from hatkernels._jit import operators3d as _jit3
 from hatkernels.assembly.csr import KernelCoefficient
 from hatkernels.assembly.elements import _tetrahedron_means
+from hatkernels.mesh.colouring import Colouring
 from hatkernels.mesh.core_index import index_dtype
 from hatkernels.operators.blocks import EdgeRows, ElementBlocks
-from hatkernels.operators.colouring import Colouring
 
 __all__ = [
     "tetrahedron_coefficient",

@@ -1,0 +1,89 @@
+"""The csr numeric phase triangle by triangle (coloured blocks) against the row-by-row
+gather and the plain reference assembly."""
+
+import numpy as np
+import pytest
+from conftest import EPS, jittered_mesh, meshes, two_threads
+from hypothesis import given, settings
+from test_assembly import coefficient_kinds
+from test_operators import fan
+
+from hatkernels import StiffnessAssembler, threads
+from hatkernels._jit import assembly as _jit_assembly
+from hatkernels.assembly.csr import kernel_coefficient
+from hatkernels.coefficients import parse_coefficient
+
+
+def row_gather(m, coef):
+    """The plain row-by-row numeric phase: element values, then each row gathers them."""
+    a = StiffnessAssembler(m)
+    pl = a.plan
+    kc = kernel_coefficient(parse_coefficient(coef, m, name="coefficient", tensor=True), m, 2)
+    d, o = np.empty((m.n_triangles, 3)), np.empty((m.n_triangles, 3))
+    _jit_assembly.stiffness_values(m.points, pl.triangles, *kc, d, o)
+    data = np.empty(pl.nnz)
+    _jit_assembly.gather_values(pl.indptr, pl.diag, pl.ptr, pl.codes, pl.slot_next,
+                                pl.slot_prev, d, o, data)
+    return data
+
+
+def close(a, b, scale):
+    return np.abs(a - b).max() <= 32 * EPS * scale
+
+
+@pytest.mark.parametrize("kind", ["none", "per-triangle", "per-node", "tensor",
+                                  "tensor-per-triangle", "callable"])
+def test_scatter_equals_the_gather_and_the_reference(kind):
+    m = jittered_mesh(30, 3)
+    coef = coefficient_kinds(m)[kind]
+    a = StiffnessAssembler(m)
+    A = a.assemble(coef)
+    assert a._numeric._scatter  # the coloured path ran
+    scale = np.abs(A.data).max()
+    assert close(A.data, row_gather(m, coef), scale)
+    # the plain triangle-loop assembly (reference strategy): an independent code path
+    R = StiffnessAssembler(m, strategy="reference").assemble(coef)
+    assert abs(A - R).max() <= 32 * EPS * scale
+
+
+@settings(max_examples=8, deadline=None)
+@given(meshes(min_n=2, max_n=9))
+def test_scatter_is_symmetric_to_the_bit_and_has_zero_row_sums(m):
+    A = StiffnessAssembler(m).assemble(None)
+    assert (A - A.T).count_nonzero() == 0
+    # constants are in the kernel of the stiffness matrix (common practice, no source)
+    assert np.abs(A @ np.ones(m.n_points)).max() <= 64 * EPS * np.abs(A.data).max()
+
+
+@two_threads
+def test_one_and_two_threads_give_the_same_bits():
+    m = jittered_mesh(40, 7)
+    out = []
+    for n in (1, 2):
+        with threads(n):
+            kinds = coefficient_kinds(m)
+            out.append([StiffnessAssembler(m).assemble(kinds[k]).data.tobytes()
+                        for k in ("per-triangle", "tensor")])
+    assert out[0] == out[1]
+
+
+def test_without_a_colouring_the_gather_serves(monkeypatch):
+    # meshes whose blocks need more than 64 colours get None from triangle_colouring
+    import hatkernels.assembly.csr as csr
+
+    monkeypatch.setattr(csr, "triangle_colouring", lambda *args: None)
+    m = fan()
+    a = StiffnessAssembler(m)
+    A = a.assemble(None)
+    assert a._numeric._scatter is False
+    R = StiffnessAssembler(m, strategy="reference").assemble(None)
+    assert abs(A - R).max() <= 32 * EPS * np.abs(A.data).max()
+
+
+def test_the_mesh_and_coefficient_are_not_modified():
+    m = jittered_mesh(12, 1)
+    kappa = coefficient_kinds(m)["per-triangle"]
+    before = (m.points.copy(), m.triangles.copy(), kappa.copy())
+    StiffnessAssembler(m).assemble(kappa)
+    for x, y in zip(before, (m.points, m.triangles, kappa), strict=True):
+        assert np.array_equal(x, y)
