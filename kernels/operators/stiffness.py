@@ -62,7 +62,7 @@ class StiffnessOperator(LinearOperator):
     block_size : int, optional
         Elements per block of the colouring: default :data:`DEFAULT_BLOCK`, or
         for the ``inherited`` variant
-        :func:`~hatkernels.mesh.colouring.block_size_for` of the cell count.
+        ``hatkernels.mesh.colouring.block_size_for`` of the cell count.
 
     Examples
     --------

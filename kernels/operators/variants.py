@@ -298,9 +298,9 @@ class InheritedProduct(TriangleBlocks):
 def preferred_variant(mesh, coefficient):
     """The variant a :class:`~hatkernels.StiffnessOperator` takes when none is named.
 
-    :data:`INHERITED` where it applies (:func:`inherited_reason`), else
+    :data:`INHERITED` where it applies (``inherited_reason``), else
     :func:`default_variant` of the mesh's dimension.  ``coefficient`` is the
-    kernels' view (:func:`variant_coefficient`).
+    kernels' view (``variant_coefficient``).
     """
     if inherited_reason(mesh, coefficient) is None:
         return INHERITED
