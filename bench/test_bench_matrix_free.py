@@ -18,6 +18,8 @@ the generator numbers it) and ``refined`` (``rectangle(c, c)`` refined until
                    would: the matrix's structure is checked on the first call only, and
                    the values through the result (``sparse`` module notes)
 ``geometry``, ``factors``, ``edges``   :class:`hatkernels.StiffnessOperator` variants
+``inherited``      the variant of refined meshes (``refined`` numbering only; the default
+                   there): the coarsest mesh's element matrices, four children at a time
 
 Bytes moved: the stored operator (CSR: data, indices, indptr; matrix-free:
 the mesh or the stored values it reads), ``x`` read, ``y`` written (and read
@@ -43,13 +45,13 @@ from scipy.sparse._sparsetools import csr_matvec
 
 from hatkernels import StiffnessOperator, assemble_stiffness, threads
 from hatkernels._jit import sparse as _k
-from hatkernels.operators import DEFAULT_VARIANT, DEFAULT_VARIANT_3D, VARIANTS
+from hatkernels.operators import DEFAULT_VARIANT, DEFAULT_VARIANT_3D, INHERITED, VARIANTS
 from hatkernels.sparse import csr_bytes, spmv
 
 CASES = [pytest.param("scipy", MAX_THREADS, id="method=scipy"),
          pytest.param("scipy-into", MAX_THREADS, id="method=scipy-into")]
 CASES += [pytest.param(m, t, id=f"method={m}-threads={t}")
-          for m in ("csr", "public") + VARIANTS for t in THREADS]
+          for m in ("csr", "public") + VARIANTS + (INHERITED,) for t in THREADS]
 
 _operators = {}
 
@@ -61,6 +63,8 @@ def _rounds(config):
 @pytest.mark.parametrize("numbering", ["rectangle", "refined"], ids=lambda s: f"mesh={s}")
 @pytest.mark.parametrize("method, n_threads", CASES)
 def test_product(benchmark, machine, request, cells, numbering, method, n_threads):
+    if method == INHERITED and numbering != "refined":
+        pytest.skip("the inherited variant needs a mesh made by refinement")
     mesh = shared_mesh(cells, numbering)
     key = (cells, numbering)
     if key not in _operators:
@@ -92,6 +96,7 @@ def test_product(benchmark, machine, request, cells, numbering, method, n_thread
             "geometry": mesh.triangles.nbytes + mesh.points.nbytes,
             "factors": mesh.triangles.nbytes + op.nbytes,
             "edges": op.nbytes,
+            INHERITED: mesh.triangles.nbytes + op.nbytes,
         }[method]
         stored, moved = op.nbytes, reads + 3 * 8 * n
     with threads(n_threads):
@@ -103,8 +108,14 @@ def test_product(benchmark, machine, request, cells, numbering, method, n_thread
         method=method, plain=method == "scipy", baseline=None if method == "scipy" else "scipy",
         mesh=numbering, threads=n_threads, n_triangles=int(mesh.n_triangles), n_points=int(n),
         nnz=int(A.nnz), stored_bytes=int(stored), csr_stored_bytes=int(csr_bytes(A) - 16 * n),
-        default_variant=method == DEFAULT_VARIANT, peak_bytes=peak, peak_source=source, **first,
+        default_variant=op_default(method, numbering), peak_bytes=peak, peak_source=source,
+        **first,
     )
+
+
+def op_default(method, numbering):
+    """Whether ``method`` is what StiffnessOperator takes by default on this numbering."""
+    return method == (INHERITED if numbering == "refined" else DEFAULT_VARIANT)
 
 
 # -- tetrahedra ----------------------------------------------------------------------------
@@ -178,6 +189,7 @@ def test_product_tetrahedra(benchmark, machine, request, cube, numbering, method
             "geometry": mesh.cells.nbytes + mesh.points.nbytes,
             "factors": mesh.cells.nbytes + op.nbytes,
             "edges": op.nbytes,
+            INHERITED: mesh.triangles.nbytes + op.nbytes,
         }[method]
         stored, moved = op.nbytes, reads + 3 * 8 * n
     with threads(n_threads):

@@ -195,7 +195,7 @@ def test_owned_rows_equal_the_whole_mesh_rows_bit_for_bit(name):
     load = parse_coefficient(lambda x, y: np.cos(x) * y, mesh, sign="any")
     react = parse_coefficient(hatkernels.per_point(rng.random(mesh.n_points)), mesh,
                               sign="nonnegative")
-    assembler = hatkernels.StiffnessAssembler(mesh)
+    assembler = hatkernels.StiffnessAssembler(mesh, by_rows=True)  # the serial row order
     A = assembler.assemble(kappa) + assembler.assemble_mass(react)
     b = hatkernels.assemble_load(mesh, load)
     p = partition(mesh, 3)

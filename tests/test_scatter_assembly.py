@@ -8,6 +8,7 @@ from hypothesis import given, settings
 from test_assembly import coefficient_kinds
 from test_operators import fan
 
+import hatkernels
 from hatkernels import StiffnessAssembler, threads
 from hatkernels._jit import assembly as _jit_assembly
 from hatkernels.assembly.csr import kernel_coefficient
@@ -87,3 +88,12 @@ def test_the_mesh_and_coefficient_are_not_modified():
     StiffnessAssembler(m).assemble(kappa)
     for x, y in zip(before, (m.points, m.triangles, kappa), strict=True):
         assert np.array_equal(x, y)
+
+
+def test_by_rows_gives_the_bits_of_assemble_stiffness():
+    # the distributed assembly's owned rows rely on this order (tests/mpi_checks.py)
+    m = jittered_mesh(20, 4)
+    coef = coefficient_kinds(m)["per-triangle"]
+    A = StiffnessAssembler(m, by_rows=True).assemble(coef)
+    assert A.data.tobytes() == hatkernels.assemble_stiffness(m, coef).data.tobytes()
+    assert close(StiffnessAssembler(m).assemble(coef).data, A.data, np.abs(A.data).max())

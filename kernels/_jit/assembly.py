@@ -198,14 +198,15 @@ def _scatter_triangle(points, triangles, t, kappa, ks, tensor, ts, scalar, diag,
     e00, e01, e10, e11, e20, e21, d, i0, i1, i2 = _geometry(points, triangles, t)
     if scalar:
         # _ip with the identity tensor, without its products by 0 (which the compiler
-        # must keep): the same values
+        # must keep)
         w = kappa[t * uint64(ks)] / (2.0 * d)
         o0 = w * (e10 * e20 + e11 * e21)
         o1 = w * (e20 * e00 + e21 * e01)
         o2 = w * (e00 * e10 + e01 * e11)
-        d0 = w * (e00 * e00 + e01 * e01)
-        d1 = w * (e10 * e10 + e11 * e11)
-        d2 = w * (e20 * e20 + e21 * e21)
+        # zero row sums (the edges add up to zero): K_aa = -(K_ab + K_ac)
+        d0 = -(o1 + o2)
+        d1 = -(o0 + o2)
+        d2 = -(o0 + o1)
     else:
         w = 1.0 / (2.0 * d)
         k00, k01, k11 = _rotated(tensor, t * uint64(ts))

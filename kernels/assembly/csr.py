@@ -63,14 +63,15 @@ class CSRNumeric:
     (:func:`~hatkernels._jit.assembly.scatter_scalar`; 6 slot indices per
     triangle kept after the first call).  ``fused=True`` fills it row by row
     instead, recomputing each triangle's geometry at each of its vertices, with
-    nothing stored beyond the plan (slower; see docs/assembly.md).
+    nothing stored beyond the plan (slower; see docs/assembly.md); ``by_rows=True``
+    fills it row by row from stored element values (the bits of the fused order).
     """
 
-    def __init__(self, mesh, plan=None, *, fused=False):
+    def __init__(self, mesh, plan=None, *, fused=False, by_rows=False):
         self.mesh = mesh
         self.plan = build_plan(mesh) if plan is None else plan
         self.fused = fused
-        self._scatter = None
+        self._scatter = False if by_rows else None
 
     def stiffness_data(self, coef, quadrature, out=None):
         pl, m = self.plan, self.mesh

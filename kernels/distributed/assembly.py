@@ -130,7 +130,8 @@ def assemble_local(sub, *, kappa, f, reaction=None, neumann=None, robin=None, qu
         has_robin = bool(R.nnz > 0 and R.max() > 0)
         b += assemble_boundary_load(m, s, edges, quadrature=quadrature)
     b += assemble_load(m, f, quadrature=quadrature)
-    assembler = StiffnessAssembler(m)
+    # row by row in mesh order: each owned row then has the bits of the serial assembly
+    assembler = StiffnessAssembler(m, by_rows=m.dim == 2)
     A = assembler.assemble(kappa, quadrature=quadrature)
     if reaction is not None:
         A = A + assembler.assemble_mass(reaction, quadrature=quadrature)
