@@ -216,16 +216,18 @@ def _scatter_triangle(points, triangles, t, kappa, ks, tensor, ts, scalar, diag,
         d0 = w * _ip(e00, e01, e00, e01, k00, k01, k11)
         d1 = w * _ip(e10, e11, e10, e11, k00, k01, k11)
         d2 = w * _ip(e20, e21, e20, e21, k00, k01, k11)
-    data[uint64(diag[i0])] += d0
-    data[uint64(diag[i1])] += d1
-    data[uint64(diag[i2])] += d2
+    # the row's entries lie next to its diagonal: slots are small offsets from it
+    p0, p1, p2 = diag[i0], diag[i1], diag[i2]
+    data[uint64(p0)] += d0
+    data[uint64(p1)] += d1
+    data[uint64(p2)] += d2
     # row a: (a, a+1) is the pair opposite a+2, (a, a+2) the one opposite a+1
-    data[uint64(slots[t, uint64(0)])] += o2
-    data[uint64(slots[t, uint64(1)])] += o1
-    data[uint64(slots[t, uint64(2)])] += o0
-    data[uint64(slots[t, uint64(3)])] += o2
-    data[uint64(slots[t, uint64(4)])] += o1
-    data[uint64(slots[t, uint64(5)])] += o0
+    data[uint64(p0 + slots[t, uint64(0)])] += o2
+    data[uint64(p0 + slots[t, uint64(1)])] += o1
+    data[uint64(p1 + slots[t, uint64(2)])] += o0
+    data[uint64(p1 + slots[t, uint64(3)])] += o2
+    data[uint64(p2 + slots[t, uint64(4)])] += o1
+    data[uint64(p2 + slots[t, uint64(5)])] += o0
 
 
 # One kernel per kind of coefficient (the flag is a constant inside each), as for the
@@ -238,8 +240,9 @@ def scatter_scalar(points, triangles, kappa, ks, tensor, ts, diag, slots, block_
     """Stiffness into CSR ``data`` triangle by triangle, by coloured blocks of triangles.
 
     Each triangle's geometry is computed once and its nine entries added at
-    ``diag`` (the diagonal of each point) and ``slots[t]`` (entries ``(a, a+1)``
-    and ``(a, a+2)`` of each local vertex ``a``, in that order).  Blocks of one
+    ``diag`` (the diagonal of each point) and ``diag`` plus ``slots[t]`` (the
+    offsets of entries ``(a, a+1)`` and ``(a, a+2)`` from the diagonal of row
+    ``a``, for each local vertex ``a`` in turn).  Blocks of one
     colour share no point, hence no row: race-free, and every entry receives
     its terms in the order colour, block, triangle whatever the thread count.
     Entry ``(i, j)`` and ``(j, i)`` get the same values from the same triangles
@@ -270,3 +273,4 @@ def scatter_tensor(points, triangles, kappa, ks, tensor, ts, diag, slots, block_
             for tt in range(b * block_size, min(m, (b + 1) * block_size)):
                 _scatter_triangle(points, triangles, uint64(tt), kappa, ks, tensor, ts, False,
                                   diag, slots, data)
+

@@ -60,7 +60,7 @@ class CSRNumeric:
     """Numeric phases on a :class:`~hatkernels.assembly.plan.CSRPlan`.
 
     The stiffness goes in triangle by triangle over coloured blocks
-    (:func:`~hatkernels._jit.assembly.scatter_scalar`; 6 slot indices per
+    (:func:`~hatkernels._jit.assembly.scatter_scalar`; 12 bytes of slot offsets per
     triangle kept after the first call).  ``fused=True`` fills it row by row
     instead, recomputing each triangle's geometry at each of its vertices, with
     nothing stored beyond the plan (slower; see docs/assembly.md); ``by_rows=True``
@@ -105,7 +105,7 @@ class CSRNumeric:
 
     def _scatter_plan(self):
         """``(slots, colouring)`` for :func:`~hatkernels._jit.assembly.scatter_scalar`,
-        made on first use and kept (6 indices per triangle), or None when the triangles
+        made on first use and kept (12 bytes per triangle), or None when the triangles
         need more than 64 colours (then the row-by-row gather serves)."""
         if self._scatter is None:
             pl, m = self.plan, self.mesh
@@ -113,11 +113,22 @@ class CSRNumeric:
             if colouring is None:
                 self._scatter = False
                 return None
-            # the plan's slots are by incidence (row order); here by triangle
-            slots = np.empty((m.n_triangles, 3, 2), dtype=pl.dtype)
+            # the plan's slots are by incidence (row order); here by triangle, as offsets
+            # from the row's diagonal (a row holds its neighbours: int16 always suffices
+            # below 32768 neighbours, checked), 12 bytes per triangle
+            rows = pl.triangles.ravel()[pl.codes]  # the point of each incidence
+            near = pl.diag[rows]
+            nxt = pl.slot_next - near
+            prv = pl.slot_prev - near
+            lim = np.iinfo(np.int16)
+            if min(nxt.min(initial=0), prv.min(initial=0)) < lim.min or max(
+                    nxt.max(initial=0), prv.max(initial=0)) > lim.max:
+                self._scatter = False
+                return None
+            slots = np.empty((m.n_triangles, 3, 2), dtype=np.int16)
             flat = slots.reshape(-1, 2)
-            flat[pl.codes, 0] = pl.slot_next
-            flat[pl.codes, 1] = pl.slot_prev
+            flat[pl.codes, 0] = nxt
+            flat[pl.codes, 1] = prv
             self._scatter = (slots.reshape(m.n_triangles, 6), colouring)
         return self._scatter or None
 
