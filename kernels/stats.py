@@ -31,8 +31,9 @@ class SolveStats:
         Residual norms, the initial one first.
     timings : dict
         Seconds per phase, in the order they ran (``setup`` and ``solve``
-        always; the drivers add ``boundary``, ``assemble``, ``partition``,
-        ``gather`` and ``total``).  Over MPI, each is the largest rank's.
+        always; the drivers add ``refine`` (with ``refine=k``), ``boundary``,
+        ``assemble``, ``partition``, ``gather`` and ``total``).  Over MPI, each
+        is the largest rank's.
     unknowns : int
         Free unknowns (all ranks together).
     preconditioner : str
