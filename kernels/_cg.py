@@ -53,16 +53,17 @@ import numpy as np
 from scipy.linalg import eigvalsh_tridiagonal
 from scipy.sparse.linalg import LinearOperator, aslinearoperator
 
+from hatkernels._cgstop import (
+    BREAKDOWN_MATRIX,
+    BREAKDOWN_PRECONDITIONER,
+    Stagnation,
+    breakdown_preconditioner,
+)
 from hatkernels._jit import sparse as _k
 from hatkernels.errors import InputError
 
 __all__ = ["run", "CGResult", "LOCAL", "as_preconditioner", "condition_estimate",
            "BREAKDOWN_MATRIX", "BREAKDOWN_PRECONDITIONER", "SAFE_EXPONENT"]
-
-#: ``info`` when ``p . A p <= 0``: the matrix is not positive definite.
-BREAKDOWN_MATRIX = -1
-#: ``info`` when ``r . z <= 0`` with ``r != 0``: the preconditioner is not positive definite.
-BREAKDOWN_PRECONDITIONER = -2
 
 #: Squared norms between ``2**-SAFE_EXPONENT`` and ``2**SAFE_EXPONENT`` at the start
 #: leave room for a residual reduction of 2**-300 (squares 2**-600) above float64's
@@ -221,13 +222,6 @@ def as_preconditioner(M, n):
     if M.shape != (n, n):
         raise InputError(f"M has shape {M.shape}, expected ({n}, {n}) to match A")
     return _MatvecPreconditioner(M, n)
-
-
-def _breakdown_preconditioner(rz, iteration):
-    return BREAKDOWN_PRECONDITIONER, (
-        f"breakdown after iteration {iteration}: r.z = {rz:.3e} <= 0 (or not finite) with "
-        f"r != 0, so the preconditioner M is not positive definite "
-        f"(info = {BREAKDOWN_PRECONDITIONER})")
 
 
 def _exponent(value):
@@ -424,12 +418,13 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
 
     iteration = 0
     restarts = 0
+    stall = Stagnation()
     info = maxiter
     message = f"not converged after {maxiter} iterations"
     alphas, betas = [], []
     lanczos = True
     if not (rz > 0.0 and math.isfinite(rz)):
-        info, message = _breakdown_preconditioner(rz, 0)
+        info, message = breakdown_preconditioner(rz, 0)
     else:
         p = np.zeros(product.n_local)  # on a rank, room for the ghosts after the owned entries
         po = p if p.shape[0] == n else p[:n]
@@ -458,7 +453,7 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
             if callback is not None:
                 callback(x)
             rnorm = math.sqrt(rr)
-            restart = False
+            restart = stalled = False
             if rnorm <= tol:
                 product.residual(x, b, r)
                 rr = total(_k.dot(r, r))
@@ -471,9 +466,13 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
                     break
                 restart = True
                 restarts += 1
+                stalled = stall.update(rnorm)
             history.append(rnorm)
             if monitor is not None:
                 monitor(iteration, rnorm)
+            if stalled:
+                info, message = iteration, stall.message(iteration, tol, bnorm)
+                break
             if iteration == maxiter:
                 break
             if identity:
@@ -481,7 +480,7 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
             elif restart or (dinv is None and not fuse):
                 rz_new = total(precondition())
             if not (rz_new > 0.0 and math.isfinite(rz_new)):
-                info, message = _breakdown_preconditioner(rz_new, iteration)
+                info, message = breakdown_preconditioner(rz_new, iteration)
                 break
             if restart:
                 po[:] = z

@@ -19,7 +19,8 @@ import math
 
 import numpy as np
 
-from hatkernels._cg import BREAKDOWN_MATRIX, _breakdown_preconditioner, condition_estimate
+from hatkernels._cg import condition_estimate
+from hatkernels._cgstop import BREAKDOWN_MATRIX, Stagnation, breakdown_preconditioner
 from hatkernels._jit import sparse as _k
 from hatkernels.krylov import _check_scalars
 
@@ -74,6 +75,7 @@ def lean_cg(A, M, r, remake_b, *, rtol, atol=0.0, maxiter=None, nested=False, mo
     alphas, betas = [], []
     info, message = maxiter, f"not converged after {maxiter} iterations"
     iteration = 0
+    stall = Stagnation()
     while iteration < maxiter:
         A.matvec_into(p, w)
         pw = _k.dot(p, w)
@@ -97,6 +99,9 @@ def lean_cg(A, M, r, remake_b, *, rtol, atol=0.0, maxiter=None, nested=False, mo
             if rnorm <= tol:
                 info, message = 0, f"converged in {iteration} iterations"
                 break
+            if stall.update(rnorm):
+                info, message = iteration, stall.message(iteration, tol, bnorm)
+                break
             r[:] = w  # go on from the true residual, with a fresh direction
             M.apply_into(r, w)
             rz = _k.dot(r, w)
@@ -108,7 +113,7 @@ def lean_cg(A, M, r, remake_b, *, rtol, atol=0.0, maxiter=None, nested=False, mo
         M.apply_into(r, w)  # z, in q's buffer
         rz_new = _k.dot(r, w)
         if not (rz_new > 0.0 and math.isfinite(rz_new)):
-            info, message = _breakdown_preconditioner(rz_new, iteration)
+            info, message = breakdown_preconditioner(rz_new, iteration)
             break
         beta = rz_new / rz
         betas.append(beta)
