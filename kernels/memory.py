@@ -34,7 +34,8 @@ import resource
 from hatkernels.errors import InputError
 from hatkernels.precond import PRECONDITIONERS, capabilities
 
-__all__ = ["available_bytes", "solve_bytes", "check_solve_memory"]
+__all__ = ["available_bytes", "solve_bytes", "check_solve_memory", "transient_bytes",
+           "check_transient_memory"]
 
 #: A registered preconditioner that states no figure (a user's): the plain
 #: assembled pipeline's (matrix, CG vectors, right-hand side), as a floor.
@@ -43,6 +44,12 @@ UNKNOWN_BYTES_PER_POINT = 400
 #: Tetrahedra: the floor of an assembled pipeline's peak per point (see the
 #: module docstring).
 THREE_D_ASSEMBLED = 950
+
+#: What a march (hatkernels.solve_transient) holds beyond a steady solve's peak, per
+#: point: the mass matrix and ``dt K`` (values sharing the stiffness's indices) and a few
+#: more vectors.  Measured with amg: 789 to 834 bytes per point against the steady
+#: solve's 640 (docs/transient.md).  The outputs come on top (8 bytes per point each).
+TRANSIENT_EXTRA = 200
 
 #: The estimate's margin: measured peaks vary by a few per cent between runs
 #: and meshes; refuse only when the estimate clearly does not fit.
@@ -103,12 +110,31 @@ def check_solve_memory(mesh, preconditioner, *, share=1.0):
     ``share``: the part of the solve this process holds (over MPI, the ranks on
     this node over all ranks: they share the node's memory).
     """
-    need = int(solve_bytes(mesh, preconditioner) * share)
+    _refuse_short(int(solve_bytes(mesh, preconditioner) * share), "solving", mesh,
+                  preconditioner)
+
+
+def transient_bytes(mesh, preconditioner, n_outputs):
+    """Estimated peak bytes of a ``solve_transient`` on ``mesh`` beyond the mesh itself,
+    keeping ``n_outputs`` fields.  A march always assembles its matrices, so a
+    matrix-free preconditioner's smaller steady figure does not apply."""
+    assembled = mesh.n_points * UNKNOWN_BYTES_PER_POINT
+    steady = max(solve_bytes(mesh, preconditioner), assembled)
+    return int(steady + mesh.n_points * (TRANSIENT_EXTRA + 8 * n_outputs))
+
+
+def check_transient_memory(mesh, preconditioner, n_outputs):
+    """Refuse (InputError) a march whose estimated peak does not fit in what is available."""
+    _refuse_short(transient_bytes(mesh, preconditioner, n_outputs),
+                  f"marching ({n_outputs} output times)", mesh, preconditioner)
+
+
+def _refuse_short(need, doing, mesh, preconditioner):
     have = available_bytes()
     if have is not None and need * MARGIN > have:
         name = preconditioner if isinstance(preconditioner, str) else "the given preconditioner"
         raise InputError(
-            f"not enough memory: solving on {mesh.n_points:,} points with {name} needs about "
+            f"not enough memory: {doing} on {mesh.n_points:,} points with {name} needs about "
             f"{need / 2**30:.1f} GiB beyond the mesh (measured per point), but "
             f"{have / 2**30:.1f} GiB are available; use a smaller mesh, a preconditioner "
             f"that needs less (see docs/performance.md), or pass memory_check=False "

@@ -47,6 +47,7 @@ from hatkernels._jit import sparse as _k
 from hatkernels.checks import integer_option, real_option
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.krylov import _check_scalars
+from hatkernels.memory import check_transient_memory
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.poisson import refined
 from hatkernels.precond import capabilities
@@ -109,7 +110,7 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
                     startup=4, lumped=False, f=0.0, refine=0, dirichlet=0.0,
                     dirichlet_on=None, coefficient=None, reaction=None, neumann=None,
                     robin=None, probes=None, preconditioner="amg", rtol=1e-6, atol=0.0,
-                    maxiter=None, check=False, quadrature=2, monitor=None,
+                    maxiter=None, check=False, quadrature=2, monitor=None, memory_check=True,
                     **preconditioner_options):
     """Solve ``capacity du/dt - div(kappa grad u) + c u = f(t)`` and return u at ``times``.
 
@@ -154,6 +155,10 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     monitor : callable, optional
         ``monitor(step, steps, t, iterations)`` after every step: the steps done, of
         how many, the time reached and that step's CG iterations (a progress report).
+    memory_check : bool
+        Refuse, before assembling anything, a march whose estimated peak
+        (:func:`hatkernels.memory.transient_bytes`: the measured per-point figures
+        and 8 bytes per point per output time) does not fit in the available memory.
     **preconditioner_options
         Passed to the preconditioner.
 
@@ -199,6 +204,8 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
                          f"{type(preconditioner).__name__}")
     capabilities(preconditioner)  # an unknown name is refused before any assembly
     schedule = _schedule(times, dt, theta, startup)
+    if memory_check:
+        check_transient_memory(mesh, preconditioner, len(times))
     clock = Clock(0.0)
     fb, gb, hb, rb, timed = bind(clock, mesh.dim, f=f, dirichlet=dirichlet, neumann=neumann,
                                  robin=robin, coefficient=coefficient, reaction=reaction,

@@ -73,3 +73,24 @@ def test_the_address_space_limit_counts():
                          timeout=300)
     assert out.returncode == 0, out.stderr
     assert out.stdout.startswith("refused: not enough memory"), out.stdout
+
+
+def test_a_march_that_does_not_fit_is_refused_before_it_starts(monkeypatch):
+    mesh = rectangle(20, 20)
+    times = [0.0, 0.1, 0.2]
+    monkeypatch.setattr(memory, "available_bytes", lambda: 100_000)
+    with pytest.raises(hatkernels.InputError,
+                       match=r"not enough memory: marching \(3 output times\) on 441 points "
+                             r"with amg needs about .*memory_check=False"):
+        hatkernels.solve_transient(mesh, 0.0, times, dt=0.05, f=1.0)
+    sol = hatkernels.solve_transient(mesh, 0.0, times, dt=0.05, f=1.0, memory_check=False)
+    assert len(sol.u) == 3
+
+
+def test_the_march_estimate_counts_its_outputs_and_its_matrices():
+    mesh = rectangle(20, 20)
+    one, eleven = memory.transient_bytes(mesh, "amg", 1), memory.transient_bytes(mesh, "amg", 11)
+    assert eleven - one == 8 * 10 * mesh.n_points
+    assert one > memory.solve_bytes(mesh, "amg")
+    # a march assembles even with a matrix-free preconditioner
+    assert memory.transient_bytes(mesh, "gmg", 1) >= memory.UNKNOWN_BYTES_PER_POINT * mesh.n_points

@@ -384,7 +384,8 @@ def _march(args, case, progress, rtol):
         return solve_transient(
             case.mesh, s.initial, times, dt=s.step, capacity=case.capacity, scheme=s.scheme,
             probes=points, preconditioner=args.preconditioner, rtol=rtol, maxiter=args.maxiter,
-            check=True, monitor=StepReport(progress), **case.arguments), times
+            check=True, monitor=StepReport(progress),
+            memory_check=getattr(args, "memory_check", True), **case.arguments), times
     except InputError as exc:
         if case.mesh.refinement is None and needs_refinement(args):
             raise InputError(f"{exc}{REFINE_HINT}") from exc
