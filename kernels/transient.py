@@ -157,7 +157,7 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
         how many, the time reached and that step's CG iterations (a progress report).
     memory_check : bool
         Refuse, before assembling anything, a march whose estimated peak
-        (:func:`hatkernels.memory.transient_bytes`: the measured per-point figures
+        (``hatkernels.memory.transient_bytes``: the measured per-point figures
         and 8 bytes per point per output time) does not fit in the available memory.
     **preconditioner_options
         Passed to the preconditioner.
