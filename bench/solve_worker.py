@@ -92,10 +92,11 @@ def mesh_read_bytes(mesh, variant):
     """Mesh bytes a matrix-free product of ``variant`` reads besides the operator's own arrays.
 
     As in test_bench_matrix_free.py: ``geometry`` reads points and triangles,
-    ``factors`` the triangles, ``edges`` nothing of the mesh.
+    ``factors`` and ``inherited`` the triangles, ``edges`` nothing of the mesh.
     """
     return {"geometry": mesh.triangles.nbytes + mesh.points.nbytes,
-            "factors": mesh.triangles.nbytes, "edges": 0}[variant]
+            "factors": mesh.triangles.nbytes, "inherited": mesh.triangles.nbytes,
+            "edges": 0}[variant]
 
 
 def _plain(mesh, name):

@@ -50,6 +50,7 @@ from hatkernels.checks import integer_option, real_option
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.conditions import parse_conditions
 from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.memory import check_eigen_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.precond import (
@@ -204,7 +205,7 @@ def _checked(mesh, k, method, rtol, maxiter, extra, seed, preconditioner, quadra
 
 def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, robin=None,
                method="auto", rtol=1e-8, maxiter=100, extra=None, preconditioner=None, seed=0,
-               quadrature=2, **preconditioner_options):
+               quadrature=2, memory_check=True, **preconditioner_options):
     """The ``k`` smallest eigenpairs of ``-div(kappa grad u) = lambda rho u`` (P1).
 
     Parameters
@@ -257,6 +258,11 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, rob
         Seed of the random start (lobpcg without refinement history, ARPACK's start vector).
     quadrature : int
         Degree of the rule for callable coefficients.
+    memory_check : bool
+        Refuse, before assembling anything, a call whose estimated peak does
+        not fit in the available memory (shift-invert: the sparse factorisation's
+        measured bytes per point; lobpcg: per point and per vector of its block,
+        ``hatkernels.memory.eigen_bytes``).
 
     Returns
     -------
@@ -292,6 +298,11 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, rob
     rho = parse_coefficient(density, mesh, name="density", sign="positive")
     fixed, _, convection, _ = parse_conditions(mesh, dirichlet_on=dirichlet_on, robin=robin)
     held = fixed.points
+    if memory_check:  # before anything is assembled; the unknowns are at most the points
+        guess = method if method != "auto" else (
+            "shift-invert" if mesh.n_points <= SHIFT_INVERT_LIMIT else "lobpcg")
+        check_eigen_memory(mesh, guess, k + (max(2, math.ceil(k / 4)) if extra is None
+                                             else extra))
     timings = {"assemble": 0.0, "setup": 0.0, "solve": 0.0}
     t = time.perf_counter()
     R = _er.robin_matrix(mesh, convection, quadrature)

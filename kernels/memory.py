@@ -35,7 +35,7 @@ from hatkernels.errors import InputError
 from hatkernels.precond import PRECONDITIONERS, capabilities
 
 __all__ = ["available_bytes", "solve_bytes", "check_solve_memory", "transient_bytes",
-           "check_transient_memory"]
+           "check_transient_memory", "eigen_bytes", "check_eigen_memory"]
 
 #: A registered preconditioner that states no figure (a user's): the plain
 #: assembled pipeline's (matrix, CG vectors, right-hand side), as a floor.
@@ -50,6 +50,12 @@ THREE_D_ASSEMBLED = 950
 #: more vectors.  Measured with amg: 789 to 834 bytes per point against the steady
 #: solve's 640 (docs/transient.md).  The outputs come on top (8 bytes per point each).
 TRANSIENT_EXTRA = 200
+
+#: lobpcg (hatkernels.eigenmodes) per point: the assembled K and M and the multigrid, and
+#: per vector of its block (``m``, the modes asked for and a few more) the block's
+#: vectors and products.  Fitted to the measured peak at 1,046,529 unknowns, ``m = 13``:
+#: 2,474 MiB, about 2,480 bytes per point (docs/eigenmodes.md): 400 + 160 m.
+EIGEN_BASE, EIGEN_PER_VECTOR = 400, 160
 
 #: The estimate's margin: measured peaks vary by a few per cent between runs
 #: and meshes; refuse only when the estimate clearly does not fit.
@@ -127,6 +133,23 @@ def check_transient_memory(mesh, preconditioner, n_outputs):
     """Refuse (InputError) a march whose estimated peak does not fit in what is available."""
     _refuse_short(transient_bytes(mesh, preconditioner, n_outputs),
                   f"marching ({n_outputs} output times)", mesh, preconditioner)
+
+
+def eigen_bytes(mesh, method, m):
+    """Estimated peak bytes of ``eigenmodes`` on ``mesh`` beyond the mesh itself, with a block
+    of ``m`` vectors: shift-invert's sparse factorisation (the ``direct`` figures, far
+    larger on tetrahedra), or lobpcg's :data:`EIGEN_BASE` + :data:`EIGEN_PER_VECTOR` m per
+    point (half as much again on tetrahedra)."""
+    if method == "shift-invert":
+        return solve_bytes(mesh, "direct")
+    per_point = EIGEN_BASE + EIGEN_PER_VECTOR * m
+    return int(mesh.n_points * per_point * (1.5 if mesh.dim == 3 else 1.0))
+
+
+def check_eigen_memory(mesh, method, m):
+    """Refuse (InputError) an eigenmodes call whose estimated peak does not fit."""
+    _refuse_short(eigen_bytes(mesh, method, m), f"finding modes by {method}", mesh,
+                  "shift-invert's factorisation" if method == "shift-invert" else "lobpcg")
 
 
 def _refuse_short(need, doing, mesh, preconditioner):

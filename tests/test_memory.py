@@ -4,6 +4,7 @@ import subprocess
 import sys
 import textwrap
 
+import numpy as np
 import pytest
 
 import hatkernels
@@ -94,3 +95,25 @@ def test_the_march_estimate_counts_its_outputs_and_its_matrices():
     assert one > memory.solve_bytes(mesh, "amg")
     # a march assembles even with a matrix-free preconditioner
     assert memory.transient_bytes(mesh, "gmg", 1) >= memory.UNKNOWN_BYTES_PER_POINT * mesh.n_points
+
+
+@pytest.mark.parametrize("method", ["shift-invert", "lobpcg"])
+def test_modes_that_do_not_fit_are_refused_before_they_start(monkeypatch, method):
+    from hatkernels.eigen import eigenmodes
+
+    mesh = rectangle(20, 20).refine()
+    monkeypatch.setattr(memory, "available_bytes", lambda: 100_000)
+    with pytest.raises(hatkernels.InputError,
+                       match=rf"not enough memory: finding modes by {method} on 1,681 points "
+                             r".*memory_check=False"):
+        eigenmodes(mesh, 3, method=method)
+    values, _ = eigenmodes(mesh, 3, method=method, memory_check=False)
+    # the first Dirichlet eigenvalue of the unit square, 2 pi^2, approached from above
+    # (common practice, no source)
+    assert 2 * np.pi**2 < values[0] < 2 * np.pi**2 * 1.01
+
+
+def test_the_modes_estimate_grows_with_the_block_and_the_factorisation_is_the_direct_one():
+    mesh = rectangle(20, 20)
+    assert memory.eigen_bytes(mesh, "lobpcg", 20) > memory.eigen_bytes(mesh, "lobpcg", 10)
+    assert memory.eigen_bytes(mesh, "shift-invert", 10) == memory.solve_bytes(mesh, "direct")

@@ -195,7 +195,8 @@ def _solve(args, modal, progress):
     try:
         return eigenmodes(modal.mesh, args.count, **modal.arguments, method=args.method,
                           rtol=args.rtol, maxiter=args.maxiter,
-                          preconditioner=args.preconditioner)
+                          preconditioner=args.preconditioner,
+                          memory_check=getattr(args, "memory_check", True))
     except InputError as exc:
         if (modal.mesh.refinement is None and args.preconditioner is not None
                 and needs_refinement(args)):
