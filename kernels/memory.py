@@ -32,7 +32,7 @@ import os
 import resource
 
 from hatkernels.errors import InputError
-from hatkernels.precond import PRECONDITIONERS, capabilities
+from hatkernels.precond import PRECONDITIONERS, SparseDirect, capabilities
 
 __all__ = ["available_bytes", "solve_bytes", "check_solve_memory", "transient_bytes",
            "check_transient_memory", "eigen_bytes", "check_eigen_memory"]
@@ -137,11 +137,11 @@ def check_transient_memory(mesh, preconditioner, n_outputs):
 
 def eigen_bytes(mesh, method, m):
     """Estimated peak bytes of ``eigenmodes`` on ``mesh`` beyond the mesh itself, with a block
-    of ``m`` vectors: shift-invert's sparse factorisation (the ``direct`` figures, far
+    of ``m`` vectors: shift-invert's sparse factorisation (the sparse direct figures, far
     larger on tetrahedra), or lobpcg's :data:`EIGEN_BASE` + :data:`EIGEN_PER_VECTOR` m per
     point (half as much again on tetrahedra)."""
     if method == "shift-invert":
-        return solve_bytes(mesh, "direct")
+        return solve_bytes(mesh, SparseDirect.name)
     per_point = EIGEN_BASE + EIGEN_PER_VECTOR * m
     return int(mesh.n_points * per_point * (1.5 if mesh.dim == 3 else 1.0))
 
