@@ -231,7 +231,8 @@ def _scatter_triangle(points, triangles, t, kappa, ks, tensor, ts, scalar, diag,
 
 
 # One kernel per kind of coefficient (the flag is a constant inside each), as for the
-# matrix-free products: a per-triangle branch cost a third of the time here.
+# matrix-free products: one kernel with the branch per triangle took 54.6 ms against
+# 46.5 for the pair (8e6 triangles, before the later changes).
 
 
 @jit(parallel=True)
