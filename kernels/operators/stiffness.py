@@ -107,7 +107,6 @@ class StiffnessOperator(LinearOperator):
         if chosen and variant == INHERITED:
             block_size = block_size_for(mesh.n_cells)
             self.block_size = block_size
-        self.variant = variant
         self._fixed = _dirichlet_mask(mesh, dirichlet)
         self._diag = None
         self._is_fixed = np.zeros(n if self._fixed.size else 0, dtype=np.bool_)
