@@ -93,8 +93,15 @@ def available_bytes():
     return min(found) if found else None
 
 
-def solve_bytes(mesh, preconditioner):
-    """Estimated peak bytes of a ``solve_poisson`` on ``mesh`` beyond the mesh itself."""
+#: How much a classical AMG's second splitting pass (``second_pass=True``) may grow the
+#: estimate: the hierarchy of a 1e6-point jittered Delaunay mesh grew 1.6 times, of a
+#: ball of tetrahedra 2.2 times (docs/solvers.md).
+SECOND_PASS_FACTOR = 2.2
+
+
+def solve_bytes(mesh, preconditioner, options=None):
+    """Estimated peak bytes of a ``solve_poisson`` on ``mesh`` beyond the mesh itself
+    (``options``: the preconditioner's, when they change the figure)."""
     per_point = UNKNOWN_BYTES_PER_POINT
     needs_matrix, stated_3d = True, 0
     if isinstance(preconditioner, str) and preconditioner in PRECONDITIONERS:
@@ -106,17 +113,20 @@ def solve_bytes(mesh, preconditioner):
         per_point = stated_3d or 1.5 * per_point
         if needs_matrix and not stated_3d:
             per_point = max(per_point, THREE_D_ASSEMBLED)
+    if options and options.get("second_pass") is True:
+        per_point *= SECOND_PASS_FACTOR
     wide = mesh.cells.size >= 2**31 or mesh.cells.dtype.itemsize > 4
     return int(mesh.n_points * per_point * (1.5 if wide else 1.0))
 
 
-def check_solve_memory(mesh, preconditioner, *, share=1.0):
+def check_solve_memory(mesh, preconditioner, *, share=1.0, options=None):
     """Refuse (InputError) a solve whose estimated peak does not fit in what is available.
 
     ``share``: the part of the solve this process holds (over MPI, the ranks on
-    this node over all ranks: they share the node's memory).
+    this node over all ranks: they share the node's memory); ``options``: the
+    preconditioner's (:func:`solve_bytes`).
     """
-    _refuse_short(int(solve_bytes(mesh, preconditioner) * share), "solving", mesh,
+    _refuse_short(int(solve_bytes(mesh, preconditioner, options) * share), "solving", mesh,
                   preconditioner)
 
 

@@ -163,7 +163,7 @@ def solve_poisson(
             f"levels ({int(np.count_nonzero(problem.dirichlet.values))} held points have a "
             "nonzero value); give a tolerance (start='nested' still shortens CG)")
     if memory_check:
-        check_solve_memory(mesh, preconditioner)
+        check_solve_memory(mesh, preconditioner, options=preconditioner_options)
     checked = time.perf_counter() - t0 - refining
     if matrix_free is None:
         matrix_free = matrix_free_default(preconditioner, problem)

@@ -18,6 +18,7 @@ from pyamg.strength import classical_strength_of_connection
 import hatkernels
 from hatkernels import threads
 from hatkernels._jit import amg as _a
+from hatkernels._jit import amg_split as _s
 from hatkernels.errors import InputError
 from hatkernels.krylov import cg_with_history
 from hatkernels.mesh import rectangle
@@ -69,8 +70,8 @@ def test_own_splitting_matches_pyamg_ruge_stuben(mesh):
     # between equal measures are broken in another order, so only the coarse size agrees
     A = reduced_stiffness(MESHES[mesh]())
     strong = strong_mask(A)
-    tptr, tind = _a.transpose_pattern(A.indptr, A.indices, strong, A.shape[0])
-    ours = _a.split(A.indptr, A.indices, strong, tptr, tind).astype(np.int64)
+    tptr, tind = _s.transpose_pattern(A.indptr, A.indices, strong, A.shape[0])
+    ours = _s.split(A.indptr, A.indices, strong, tptr, tind).astype(np.int64)
     reference = RS(pyamg_strength(A), second_pass=False).astype(np.int64)  # reference: PyAMG
     if mesh == "rectangle":
         assert np.array_equal(ours, reference)
@@ -84,13 +85,66 @@ def test_every_f_point_with_strong_couplings_has_a_strong_c_point(n, seed, theta
     # the property interpolation relies on (Ruge & Stueben 1987, first pass)
     A = reduced_stiffness(jittered_mesh(n, seed))
     strong = strong_mask(A, theta)
-    tptr, tind = _a.transpose_pattern(A.indptr, A.indices, strong, A.shape[0])
-    state = _a.split(A.indptr, A.indices, strong, tptr, tind)
+    tptr, tind = _s.transpose_pattern(A.indptr, A.indices, strong, A.shape[0])
+    state = _s.split(A.indptr, A.indices, strong, tptr, tind)
     assert set(np.unique(state)) <= {0, 1}
     for i in np.flatnonzero(state == 0):
         row = slice(A.indptr[i], A.indptr[i + 1])
         neighbours = A.indices[row][strong[row].astype(bool)]
         assert neighbours.size == 0 or (state[neighbours] == 1).any(), f"F point {i}"
+
+
+@settings(max_examples=15, deadline=None)
+@given(n=st.integers(4, 14), seed=st.integers(0, 10_000), theta=st.sampled_from([0.1, 0.25, 0.5]))
+def test_second_pass_leaves_every_strong_f_pair_a_common_c_point(n, seed, theta):
+    # the condition the second pass establishes (K. Stueben, "A review of algebraic
+    # multigrid", J. Comput. Appl. Math. 128, 2001): for an F point i and a strong F
+    # neighbour j, j is strongly coupled to one of i's strong C points; it only adds C points
+    A = reduced_stiffness(jittered_mesh(n, seed))
+    strong = strong_mask(A, theta)
+    tptr, tind = _s.transpose_pattern(A.indptr, A.indices, strong, A.shape[0])
+    first = _s.split(A.indptr, A.indices, strong, tptr, tind)
+    state = first.copy()
+    _s.second_pass(A.indptr, A.indices, strong, state)
+    assert np.all(state[first == 1] == 1)
+
+    def strong_of(i):
+        row = slice(A.indptr[i], A.indptr[i + 1])
+        return A.indices[row][strong[row].astype(bool)]
+
+    for i in np.flatnonzero(state == 0):
+        mine = strong_of(i)
+        c_points = set(mine[state[mine] == 1].tolist())
+        for j in mine[state[mine] == 0]:
+            assert c_points & set(strong_of(j).tolist()), f"F points {i} and {j}"
+
+
+def test_second_pass_against_pyamg():
+    # reference library: PyAMG's Ruge-Stueben splitting with its second pass; the two
+    # passes break ties in their own order, so the coarse sizes agree within 5 %, and CG
+    # needs as few iterations (within one) as with PyAMG's hierarchy of the same options;
+    # on this unstructured mesh the second pass cuts the first pass's iterations
+    import pyamg
+
+    A = reduced_stiffness(hatkernels.mesh.disk(40))
+    b = np.ones(A.shape[0])
+    ours = ClassicalHierarchy(A, max_coarse=50, second_pass=True)
+    ref = pyamg.ruge_stuben_solver(
+        A, strength=("classical", {"theta": THETA, "norm": "min"}),
+        CF=("RS", {"second_pass": True}), interpolation="classical", max_coarse=50)
+    assert abs(ours.levels[1].A.shape[0] - ref.levels[1].A.shape[0]) <= 0.05 * ref.levels[1].A.shape[0]
+    residuals = []
+    ref.solve(b, tol=1e-8, accel="cg", residuals=residuals)
+    with_second = cg_with_history(A, b, rtol=1e-8,
+                                  M=ClassicalAMG(A, max_coarse=50, second_pass=True))
+    first_only = cg_with_history(A, b, rtol=1e-8, M=ClassicalAMG(A, max_coarse=50))
+    assert with_second.info == 0
+    assert with_second.iterations <= len(residuals) - 1 + 1
+    assert with_second.iterations < first_only.iterations
+    assert np.allclose(with_second.x, sla.spsolve(A.tocsc(), b), rtol=1e-6)  # reference: scipy
+    assert "second pass" in repr(ClassicalAMG(A, second_pass=True))
+    with pytest.raises(InputError, match="second_pass"):
+        make_preconditioner(A, "amg-native", second_pass="yes")
 
 
 def pyamg_hierarchy(A, levels):
@@ -159,13 +213,14 @@ def test_dense_cholesky_matches_numpy():
 
 
 @pytest.mark.two_threads
-def test_same_bits_on_one_and_two_threads():
+@pytest.mark.parametrize("second_pass", [False, True])
+def test_same_bits_on_one_and_two_threads(second_pass):
     A = reduced_stiffness(jittered_mesh(40, 2))
     r = np.random.default_rng(0).standard_normal(A.shape[0])
     results = []
     for n in (1, 2):
         with threads(n):
-            M = ClassicalAMG(A, max_coarse=20)
+            M = ClassicalAMG(A, max_coarse=20, second_pass=second_pass)
             results.append(([lv.A.data.copy() for lv in M.ml.levels], M @ r))
     (levels1, z1), (levels2, z2) = results
     assert len(levels1) == len(levels2) > 2

@@ -20,6 +20,9 @@ def test_estimate_uses_the_measured_figures():
     # (docs/performance.md measured 151 against 627 bytes per point at 1e6 unknowns)
     assert memory.solve_bytes(mesh, "gmg") < memory.solve_bytes(mesh, "amg") / 3
     assert memory.solve_bytes(mesh, object()) == mesh.n_points * memory.UNKNOWN_BYTES_PER_POINT
+    # the second splitting pass can more than double a classical hierarchy (measured)
+    assert memory.solve_bytes(mesh, "amg", {"second_pass": True}) == int(
+        mesh.n_points * caps("amg").solve_bytes_per_point * memory.SECOND_PASS_FACTOR)
 
 
 def test_tetrahedra_get_their_own_figures():

@@ -1,0 +1,231 @@
+"""Raw-array kernels of the classical AMG setup's C/F splitting (Ruge and Stueben's two passes).
+
+J. W. Ruge, K. Stueben, "Algebraic multigrid", in Multigrid Methods, SIAM
+Frontiers in Applied Mathematics 3, 1987; K. Stueben, "A review of algebraic
+multigrid", J. Comput. Appl. Math. 128, 2001.  The rest of the setup
+(strength, interpolation, Galerkin product) is :mod:`hatkernels._jit.amg`.
+Serial on purpose: each pass decides one point after another, and the result
+depends on that order (point order here), never on the thread count.
+"""
+
+import numpy as np
+
+from hatkernels._jit import jit
+
+__all__ = ["transpose_pattern", "strong_pattern", "split", "second_pass", "F_POINT", "C_POINT"]
+
+#: Splitting codes.
+F_POINT = 0
+C_POINT = 1
+
+
+@jit()
+def transpose_pattern(indptr, indices, strong, n):
+    """The transpose of the strong couplings: ``(tptr, tind)``, row ``j`` lists the ``i`` with j in S_i."""
+    tptr = np.zeros(n + 1, dtype=indptr.dtype)
+    for k in range(indptr[n]):
+        if strong[k]:
+            tptr[indices[k] + 1] += 1
+    for j in range(n):
+        tptr[j + 1] += tptr[j]
+    tind = np.empty(tptr[n], dtype=indices.dtype)
+    fill = tptr[:n].copy()
+    for i in range(n):
+        for k in range(indptr[i], indptr[i + 1]):
+            if strong[k]:
+                j = indices[k]
+                tind[fill[j]] = i
+                fill[j] += 1
+    return tptr, tind
+
+
+@jit()
+def strong_pattern(indptr, indices, strong):
+    """The strong couplings as a CSR pattern ``(sptr, sind)``: row ``i`` lists S_i."""
+    n = indptr.shape[0] - 1
+    sptr = np.zeros(n + 1, dtype=indptr.dtype)
+    for i in range(n):
+        c = 0
+        for k in range(indptr[i], indptr[i + 1]):
+            c += strong[k]
+        sptr[i + 1] = sptr[i] + c
+    sind = np.empty(sptr[n], dtype=indices.dtype)
+    q = 0
+    for k in range(indptr[n]):
+        if strong[k]:
+            sind[q] = indices[k]
+            q += 1
+    return sptr, sind
+
+
+@jit()
+def split(indptr, indices, strong, tptr, tind):
+    """First pass of the Ruge-Stueben C/F splitting; returns one int8 per point (1 = C, 0 = F).
+
+    A point with no strong coupling of its own is F with nothing to
+    interpolate from (the smoother alone treats it).  The unassigned point of
+    largest measure becomes C; the points that strongly depend on it become
+    F, and the points those new F points depend on gain measure; the points
+    the new C point depends on lose measure.  Points wait in one doubly linked
+    list per measure: a point whose measure rose joins its new list last, one
+    whose measure fell joins first, and the first of the top list is taken
+    next (the tie-breaking of PyAMG's splitting, which this reproduces on
+    naturally numbered meshes).  The list operations are written out inline:
+    as calls they cost twice the time.
+    """
+    n = indptr.shape[0] - 1
+    UNSET = -1
+    state = np.full(n, UNSET, dtype=np.int8)
+    lam = np.zeros(n, dtype=np.int64)
+    top = 0
+    for i in range(n):
+        lam[i] = tptr[i + 1] - tptr[i]
+        if lam[i] > top:
+            top = lam[i]
+    head = np.full(2 * top + 2, -1, dtype=np.int64)  # a measure at most doubles
+    tail = np.full(2 * top + 2, -1, dtype=np.int64)
+    nxt = np.full(n, -1, dtype=np.int64)
+    prv = np.full(n, -1, dtype=np.int64)
+    for i in range(n):
+        own = 0
+        for k in range(indptr[i], indptr[i + 1]):
+            own += strong[k]
+        if own == 0:
+            state[i] = F_POINT
+            continue
+        b = lam[i]  # join list b first
+        h = head[b]
+        nxt[i] = h
+        if h >= 0:
+            prv[h] = i
+        else:
+            tail[b] = i
+        head[b] = i
+    while top >= 0:
+        i = head[top]
+        if i < 0:
+            top -= 1
+            continue
+        h = nxt[i]  # i leaves the top list, of which it is first
+        head[top] = h
+        if h >= 0:
+            prv[h] = -1
+        else:
+            tail[top] = -1
+        if top == 0:
+            # no unassigned or F point depends on i: C only if it has no C point to interpolate from
+            state[i] = C_POINT
+            for k in range(indptr[i], indptr[i + 1]):
+                if strong[k] and state[indices[k]] == C_POINT:
+                    state[i] = F_POINT
+                    break
+            continue
+        state[i] = C_POINT
+        for t in range(tptr[i], tptr[i + 1]):
+            j = tind[t]
+            if state[j] != UNSET:
+                continue
+            b, p, q = lam[j], prv[j], nxt[j]  # j leaves its list
+            if p >= 0:
+                nxt[p] = q
+            else:
+                head[b] = q
+            if q >= 0:
+                prv[q] = p
+            else:
+                tail[b] = p
+            state[j] = F_POINT
+            for k in range(indptr[j], indptr[j + 1]):
+                if not strong[k]:
+                    continue
+                m = indices[k]
+                if state[m] != UNSET:
+                    continue
+                b, p, q = lam[m], prv[m], nxt[m]  # m leaves list b ...
+                if p >= 0:
+                    nxt[p] = q
+                else:
+                    head[b] = q
+                if q >= 0:
+                    prv[q] = p
+                else:
+                    tail[b] = p
+                b += 1  # ... and joins list b + 1 last
+                lam[m] = b
+                t2 = tail[b]
+                prv[m] = t2
+                nxt[m] = -1
+                if t2 >= 0:
+                    nxt[t2] = m
+                else:
+                    head[b] = m
+                tail[b] = m
+                if b > top:
+                    top = b
+        for k in range(indptr[i], indptr[i + 1]):
+            if not strong[k]:
+                continue
+            j = indices[k]
+            if state[j] != UNSET or lam[j] == 0:
+                continue
+            b, p, q = lam[j], prv[j], nxt[j]  # j leaves list b ...
+            if p >= 0:
+                nxt[p] = q
+            else:
+                head[b] = q
+            if q >= 0:
+                prv[q] = p
+            else:
+                tail[b] = p
+            b -= 1  # ... and joins list b - 1 first
+            lam[j] = b
+            h = head[b]
+            nxt[j] = h
+            prv[j] = -1
+            if h >= 0:
+                prv[h] = j
+            else:
+                tail[b] = j
+            head[b] = j
+    return state
+
+
+@jit()
+def second_pass(indptr, indices, strong, state):
+    """The second pass of the C/F splitting, in place on ``state``, in point order.
+
+    For each F point ``i`` with its strong C points ``C_i``: a strong F
+    neighbour ``j`` none of whose strong couplings is in ``C_i`` would have its
+    coupling lumped onto the diagonal by the interpolation.  The first such
+    ``j`` joins ``C_i`` tentatively; if a second one is found, ``i`` becomes C
+    instead, else the tentative ``j`` becomes C (K. Stueben, "A review of
+    algebraic multigrid", 2001, the second pass of the classical coarsening).
+    """
+    n = indptr.shape[0] - 1
+    mark = np.full(n, -1, dtype=np.int64)  # mark[c] == i: c is in C_i
+    for i in range(n):
+        if state[i] != F_POINT:
+            continue
+        for k in range(indptr[i], indptr[i + 1]):
+            if strong[k] and state[indices[k]] == C_POINT:
+                mark[indices[k]] = i
+        tentative = -1
+        for k in range(indptr[i], indptr[i + 1]):
+            j = indices[k]
+            if not strong[k] or state[j] != F_POINT or mark[j] == i:
+                continue
+            shared = False
+            for k2 in range(indptr[j], indptr[j + 1]):
+                if strong[k2] and mark[indices[k2]] == i:
+                    shared = True
+                    break
+            if shared:
+                continue
+            if tentative >= 0:
+                state[i] = C_POINT
+                tentative = -1
+                break
+            tentative = j
+            mark[j] = i
+        if tentative >= 0:
+            state[tentative] = C_POINT
