@@ -4,11 +4,13 @@ J. W. Ruge, K. Stueben, "Algebraic multigrid", in Multigrid Methods, SIAM
 Frontiers in Applied Mathematics 3, 1987; K. Stueben, "A review of algebraic
 multigrid", J. Comput. Appl. Math. 128, 2001.  The rest of the setup
 (strength, interpolation, Galerkin product) is :mod:`hatkernels._jit.amg`.
-Serial on purpose: each pass decides one point after another, and the result
-depends on that order (point order here), never on the thread count.
+The passes are serial on purpose: each decides one point after another, and
+the result depends on that order (point order here), never on the thread
+count; the two patterns they read are built in parallel.
 """
 
 import numpy as np
+from numba import prange
 
 from hatkernels._jit import jit
 
@@ -19,42 +21,55 @@ F_POINT = 0
 C_POINT = 1
 
 
-@jit()
-def transpose_pattern(indptr, indices, strong, n):
-    """The transpose of the strong couplings: ``(tptr, tind)``, row ``j`` lists the ``i`` with j in S_i."""
+@jit(parallel=True)
+def transpose_pattern(indptr, indices, strong, n, nchunks=1):
+    """The transpose of the strong couplings: ``(tptr, tind)``, row ``j`` lists the ``i`` with j in S_i.
+
+    In parallel over ``nchunks`` ranges of columns: each chunk reads every
+    entry and keeps those in its range, so each list is in increasing ``i``
+    whatever the number of chunks.
+    """
     tptr = np.zeros(n + 1, dtype=indptr.dtype)
-    for k in range(indptr[n]):
-        if strong[k]:
-            tptr[indices[k] + 1] += 1
+    for c in prange(nchunks):
+        lo, hi = (n * c) // nchunks, (n * (c + 1)) // nchunks
+        for k in range(indptr[n]):
+            j = indices[k]
+            if strong[k] and j >= lo and j < hi:
+                tptr[j + 1] += 1
     for j in range(n):
         tptr[j + 1] += tptr[j]
     tind = np.empty(tptr[n], dtype=indices.dtype)
     fill = tptr[:n].copy()
-    for i in range(n):
-        for k in range(indptr[i], indptr[i + 1]):
-            if strong[k]:
+    for c in prange(nchunks):
+        lo, hi = (n * c) // nchunks, (n * (c + 1)) // nchunks
+        for i in range(n):
+            for k in range(indptr[i], indptr[i + 1]):
                 j = indices[k]
-                tind[fill[j]] = i
-                fill[j] += 1
+                if strong[k] and j >= lo and j < hi:
+                    tind[fill[j]] = i
+                    fill[j] += 1
     return tptr, tind
 
 
-@jit()
+@jit(parallel=True)
 def strong_pattern(indptr, indices, strong):
-    """The strong couplings as a CSR pattern ``(sptr, sind)``: row ``i`` lists S_i."""
+    """The strong couplings as a CSR pattern ``(sptr, sind)``: row ``i`` lists S_i (in parallel)."""
     n = indptr.shape[0] - 1
     sptr = np.zeros(n + 1, dtype=indptr.dtype)
-    for i in range(n):
+    for i in prange(n):
         c = 0
         for k in range(indptr[i], indptr[i + 1]):
             c += strong[k]
-        sptr[i + 1] = sptr[i] + c
+        sptr[i + 1] = c
+    for i in range(n):
+        sptr[i + 1] += sptr[i]
     sind = np.empty(sptr[n], dtype=indices.dtype)
-    q = 0
-    for k in range(indptr[n]):
-        if strong[k]:
-            sind[q] = indices[k]
-            q += 1
+    for i in prange(n):
+        q = sptr[i]
+        for k in range(indptr[i], indptr[i + 1]):
+            if strong[k]:
+                sind[q] = indices[k]
+                q += 1
     return sptr, sind
 
 

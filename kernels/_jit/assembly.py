@@ -17,6 +17,7 @@ written out once per triangle: helper calls per entry were measured four
 times slower (the compiler cannot reuse loads across the stores between them).
 """
 
+import numpy as np
 from numba import prange, uint64
 
 from hatkernels._jit import jit
@@ -193,8 +194,9 @@ def load_per_triangle(points, triangles, value, vs, out):
 
 
 @jit(inline="always")
-def _scatter_triangle(points, triangles, t, kappa, ks, tensor, ts, scalar, diag, slots, data):
-    """Add triangle ``t``'s nine stiffness entries into ``data`` (see :func:`scatter_scalar`)."""
+def _scatter_triangle(points, triangles, t, kappa, ks, tensor, ts, scalar, diag, slots, first,
+                      data):
+    """Put triangle ``t``'s nine stiffness entries into ``data`` (see :func:`scatter_scalar`)."""
     e00, e01, e10, e11, e20, e21, d, i0, i1, i2 = _geometry(points, triangles, t)
     if scalar:
         # _ip with the identity tensor, without its products by 0 (which the compiler
@@ -218,16 +220,63 @@ def _scatter_triangle(points, triangles, t, kappa, ks, tensor, ts, scalar, diag,
         d2 = w * _ip(e20, e21, e20, e21, k00, k01, k11)
     # the row's entries lie next to its diagonal: slots are small offsets from it
     p0, p1, p2 = diag[i0], diag[i1], diag[i2]
-    data[uint64(p0)] += d0
-    data[uint64(p1)] += d1
-    data[uint64(p2)] += d2
+    f = first[t]
+    _put(data, p0, d0, f & 1)
+    _put(data, p1, d1, f & 2)
+    _put(data, p2, d2, f & 4)
     # row a: (a, a+1) is the pair opposite a+2, (a, a+2) the one opposite a+1
-    data[uint64(p0 + slots[t, uint64(0)])] += o2
-    data[uint64(p0 + slots[t, uint64(1)])] += o1
-    data[uint64(p1 + slots[t, uint64(2)])] += o0
-    data[uint64(p1 + slots[t, uint64(3)])] += o2
-    data[uint64(p2 + slots[t, uint64(4)])] += o1
-    data[uint64(p2 + slots[t, uint64(5)])] += o0
+    _put(data, p0 + slots[t, uint64(0)], o2, f & 8)
+    _put(data, p0 + slots[t, uint64(1)], o1, f & 16)
+    _put(data, p1 + slots[t, uint64(2)], o0, f & 32)
+    _put(data, p1 + slots[t, uint64(3)], o2, f & 8)
+    _put(data, p2 + slots[t, uint64(4)], o1, f & 16)
+    _put(data, p2 + slots[t, uint64(5)], o0, f & 32)
+
+
+@jit(inline="always")
+def _put(data, p, v, first):
+    """``data[p] = v`` for the entry's first term, else ``data[p] += v`` (no zeroing pass)."""
+    p = uint64(p)
+    data[p] = v if first else data[p] + v
+
+
+@jit(parallel=True)
+def scatter_first(triangles, diag, slots, block_size, colour_ptr, blocks, nnz):
+    """For :func:`scatter_scalar`: which of its entries each triangle reaches first.
+
+    One byte per triangle: bits 0-2 for the diagonal of its vertex 0, 1, 2,
+    bits 3-5 for its edges (0, 1), (0, 2), (1, 2), each covering both entries
+    of the pair.  Every entry of the pattern belongs to some triangle, so with
+    these the scatter writes each entry's first term and adds the others, and
+    needs no pass that zeroes the values first (one write of the whole array
+    less).  The order is the scatter's own: colour, block, triangle.
+    """
+    m = triangles.shape[0]
+    seen = np.zeros(nnz, dtype=np.uint8)
+    first = np.zeros(m, dtype=np.uint8)
+    for c in range(colour_ptr.size - 1):
+        for k in prange(colour_ptr[c], colour_ptr[c + 1]):
+            b = blocks[k]
+            for t in range(b * block_size, min(m, (b + 1) * block_size)):
+                p0 = diag[triangles[t, 0]]
+                p1 = diag[triangles[t, 1]]
+                p2 = diag[triangles[t, 2]]
+                f = _mark(seen, p0, 1) | _mark(seen, p1, 2) | _mark(seen, p2, 4)
+                f |= _mark(seen, p0 + slots[t, 0], 8) | _mark(seen, p0 + slots[t, 1], 16)
+                f |= _mark(seen, p1 + slots[t, 2], 32)
+                seen[p1 + slots[t, 3]] = 1  # the other entry of each pair
+                seen[p2 + slots[t, 4]] = 1
+                seen[p2 + slots[t, 5]] = 1
+                first[t] = f
+    return first
+
+
+@jit(inline="always")
+def _mark(seen, p, bit):
+    if seen[p]:
+        return 0
+    seen[p] = 1
+    return bit
 
 
 # One kernel per kind of coefficient (the flag is a constant inside each), as for the
@@ -236,7 +285,7 @@ def _scatter_triangle(points, triangles, t, kappa, ks, tensor, ts, scalar, diag,
 
 
 @jit(parallel=True)
-def scatter_scalar(points, triangles, kappa, ks, tensor, ts, diag, slots, block_size,
+def scatter_scalar(points, triangles, kappa, ks, tensor, ts, diag, slots, first, block_size,
                    colour_ptr, blocks, data):
     """Stiffness into CSR ``data`` triangle by triangle, by coloured blocks of triangles.
 
@@ -249,29 +298,27 @@ def scatter_scalar(points, triangles, kappa, ks, tensor, ts, diag, slots, block_
     Entry ``(i, j)`` and ``(j, i)`` get the same values from the same triangles
     in the same order: the matrix is symmetric to the last bit.  Against the
     row-by-row gather, each geometry is computed once instead of three times.
+    ``first`` (:func:`scatter_first`) says which terms start their entries: no
+    entry is read before it is written, so ``data`` needs no zeroing.
     """
-    for s in prange(data.size):
-        data[s] = 0.0
     m = triangles.shape[0]
     for c in range(colour_ptr.size - 1):
         for k in prange(colour_ptr[c], colour_ptr[c + 1]):
             b = blocks[k]
             for tt in range(b * block_size, min(m, (b + 1) * block_size)):
                 _scatter_triangle(points, triangles, uint64(tt), kappa, ks, tensor, ts, True,
-                                  diag, slots, data)
+                                  diag, slots, first, data)
 
 
 @jit(parallel=True)
-def scatter_tensor(points, triangles, kappa, ks, tensor, ts, diag, slots, block_size,
+def scatter_tensor(points, triangles, kappa, ks, tensor, ts, diag, slots, first, block_size,
                    colour_ptr, blocks, data):
     """As :func:`scatter_scalar` for a tensor coefficient."""
-    for s in prange(data.size):
-        data[s] = 0.0
     m = triangles.shape[0]
     for c in range(colour_ptr.size - 1):
         for k in prange(colour_ptr[c], colour_ptr[c + 1]):
             b = blocks[k]
             for tt in range(b * block_size, min(m, (b + 1) * block_size)):
                 _scatter_triangle(points, triangles, uint64(tt), kappa, ks, tensor, ts, False,
-                                  diag, slots, data)
+                                  diag, slots, first, data)
 

@@ -60,8 +60,9 @@ class CSRNumeric:
     """Numeric phases on a :class:`~hatkernels.assembly.plan.CSRPlan`.
 
     The stiffness goes in triangle by triangle over coloured blocks
-    (:func:`~hatkernels._jit.assembly.scatter_scalar`; 12 bytes of slot offsets per
-    triangle kept after the first call).  ``fused=True`` fills it row by row
+    (:func:`~hatkernels._jit.assembly.scatter_scalar`; 12 bytes of slot offsets and
+    one byte saying which entries each triangle starts, per triangle, kept after the
+    first call).  ``fused=True`` fills it row by row
     instead, recomputing each triangle's geometry at each of its vertices, with
     nothing stored beyond the plan (slower; see docs/assembly.md); ``by_rows=True``
     fills it row by row from stored element values (the bits of the fused order).
@@ -93,9 +94,9 @@ class CSRNumeric:
             return data
         scatter = self._scatter_plan()
         if scatter is not None:
-            slots, colouring = scatter
+            slots, first, colouring = scatter
             kernel = _jit_assembly.scatter_tensor if kc.is_tensor else _jit_assembly.scatter_scalar
-            kernel(m.points, pl.triangles, *kc, pl.diag, slots, *colouring, data)
+            kernel(m.points, pl.triangles, *kc, pl.diag, slots, first, *colouring, data)
             return data
         d = np.empty((m.n_triangles, 3))
         o = np.empty((m.n_triangles, 3))
@@ -104,8 +105,8 @@ class CSRNumeric:
         return data
 
     def _scatter_plan(self):
-        """``(slots, colouring)`` for :func:`~hatkernels._jit.assembly.scatter_scalar`,
-        made on first use and kept (12 bytes per triangle), or None when the triangles
+        """``(slots, first, colouring)`` for :func:`~hatkernels._jit.assembly.scatter_scalar`,
+        made on first use and kept (13 bytes per triangle), or None when the triangles
         need more than 64 colours (then the row-by-row gather serves)."""
         if self._scatter is None:
             pl, m = self.plan, self.mesh
@@ -129,7 +130,10 @@ class CSRNumeric:
             flat = slots.reshape(-1, 2)
             flat[pl.codes, 0] = nxt
             flat[pl.codes, 1] = prv
-            self._scatter = (slots.reshape(m.n_triangles, 6), colouring)
+            slots = slots.reshape(m.n_triangles, 6)
+            first = _jit_assembly.scatter_first(pl.triangles, pl.diag, slots, *colouring,
+                                                pl.nnz)
+            self._scatter = (slots, first, colouring)
         return self._scatter or None
 
     def mass_data(self, coef, quadrature, out=None):
