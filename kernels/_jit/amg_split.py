@@ -4,13 +4,11 @@ J. W. Ruge, K. Stueben, "Algebraic multigrid", in Multigrid Methods, SIAM
 Frontiers in Applied Mathematics 3, 1987; K. Stueben, "A review of algebraic
 multigrid", J. Comput. Appl. Math. 128, 2001.  The rest of the setup
 (strength, interpolation, Galerkin product) is :mod:`hatkernels._jit.amg`.
-The passes are serial on purpose: each decides one point after another, and
-the result depends on that order (point order here), never on the thread
-count; the two patterns they read are built in parallel.
+Serial on purpose: each pass decides one point after another, and the result
+depends on that order (point order here), never on the thread count.
 """
 
 import numpy as np
-from numba import prange
 
 from hatkernels._jit import jit
 
@@ -21,55 +19,42 @@ F_POINT = 0
 C_POINT = 1
 
 
-@jit(parallel=True)
-def transpose_pattern(indptr, indices, strong, n, nchunks=1):
-    """The transpose of the strong couplings: ``(tptr, tind)``, row ``j`` lists the ``i`` with j in S_i.
-
-    In parallel over ``nchunks`` ranges of columns: each chunk reads every
-    entry and keeps those in its range, so each list is in increasing ``i``
-    whatever the number of chunks.
-    """
+@jit()
+def transpose_pattern(indptr, indices, strong, n):
+    """The transpose of the strong couplings: ``(tptr, tind)``, row ``j`` lists the ``i`` with j in S_i."""
     tptr = np.zeros(n + 1, dtype=indptr.dtype)
-    for c in prange(nchunks):
-        lo, hi = (n * c) // nchunks, (n * (c + 1)) // nchunks
-        for k in range(indptr[n]):
-            j = indices[k]
-            if strong[k] and j >= lo and j < hi:
-                tptr[j + 1] += 1
+    for k in range(indptr[n]):
+        if strong[k]:
+            tptr[indices[k] + 1] += 1
     for j in range(n):
         tptr[j + 1] += tptr[j]
     tind = np.empty(tptr[n], dtype=indices.dtype)
     fill = tptr[:n].copy()
-    for c in prange(nchunks):
-        lo, hi = (n * c) // nchunks, (n * (c + 1)) // nchunks
-        for i in range(n):
-            for k in range(indptr[i], indptr[i + 1]):
+    for i in range(n):
+        for k in range(indptr[i], indptr[i + 1]):
+            if strong[k]:
                 j = indices[k]
-                if strong[k] and j >= lo and j < hi:
-                    tind[fill[j]] = i
-                    fill[j] += 1
+                tind[fill[j]] = i
+                fill[j] += 1
     return tptr, tind
 
 
-@jit(parallel=True)
+@jit()
 def strong_pattern(indptr, indices, strong):
-    """The strong couplings as a CSR pattern ``(sptr, sind)``: row ``i`` lists S_i (in parallel)."""
+    """The strong couplings as a CSR pattern ``(sptr, sind)``: row ``i`` lists S_i."""
     n = indptr.shape[0] - 1
     sptr = np.zeros(n + 1, dtype=indptr.dtype)
-    for i in prange(n):
+    for i in range(n):
         c = 0
         for k in range(indptr[i], indptr[i + 1]):
             c += strong[k]
-        sptr[i + 1] = c
-    for i in range(n):
-        sptr[i + 1] += sptr[i]
+        sptr[i + 1] = sptr[i] + c
     sind = np.empty(sptr[n], dtype=indices.dtype)
-    for i in prange(n):
-        q = sptr[i]
-        for k in range(indptr[i], indptr[i + 1]):
-            if strong[k]:
-                sind[q] = indices[k]
-                q += 1
+    q = 0
+    for k in range(indptr[n]):
+        if strong[k]:
+            sind[q] = indices[k]
+            q += 1
     return sptr, sind
 
 

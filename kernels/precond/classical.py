@@ -95,7 +95,7 @@ def _split(indptr, indices, strong, n):
     ``hatkernels._jit.amg_split.split`` is the same algorithm (tested to give the same
     splitting); it serves matrices whose indices need 64 bits.
     """
-    tptr, tind = _s.transpose_pattern(indptr, indices, strong, n, _chunks())
+    tptr, tind = _s.transpose_pattern(indptr, indices, strong, n)
     if indptr.dtype != np.int32:
         return _s.split(indptr, indices, strong, tptr, tind)
     sptr, sind = _s.strong_pattern(indptr, indices, strong)
