@@ -55,6 +55,9 @@ class LinearSystem:
         Stored entries of ``A`` (0 when matrix-free).
     timings : dict
         Seconds of the phases that built it ("boundary", "assemble").
+    mass : ndarray or None
+        The row sums of its reaction and Robin terms, per point (for ``gmg``'s
+        levels; :class:`~hatkernels.precond.PreconditionerContext`).
     """
 
     A: object
@@ -67,6 +70,7 @@ class LinearSystem:
     nnz: int
     timings: dict
     _reduced: object = None
+    mass: object = None
 
     def expand(self, x):
         """Values at all points from a solution ``x`` of the system (held values put back;
@@ -90,7 +94,7 @@ class LinearSystem:
         p = self.problem
         return PreconditionerContext(mesh=p.mesh, coefficient=p.coefficient,
                                      fixed=p.dirichlet.points, variant=self.variant,
-                                     quadrature=p.quadrature)
+                                     quadrature=p.quadrature, mass=self.mass)
 
     def __repr__(self):
         form = f"matrix-free ({self.variant})" if self.matrix_free else f"CSR, nnz {self.nnz}"
@@ -136,6 +140,14 @@ def boundary_vector(problem):
     if problem.robin is not None:
         b += side_load(mesh, problem.robin.s, problem.robin.sides, q)
     return b
+
+
+def _lower_order_terms(problem, assembler, quadrature):
+    """The reaction and Robin matrices of ``problem`` that it has (a generator)."""
+    if problem.reaction is not None:
+        yield assembler.assemble_mass(problem.reaction, quadrature=quadrature)
+    if problem.robin is not None:
+        yield side_mass(problem.mesh, problem.robin.r, problem.robin.sides, quadrature)
 
 
 def discretise(problem, *, matrix_free=False, variant=None, progress=None):
@@ -191,12 +203,14 @@ def discretise(problem, *, matrix_free=False, variant=None, progress=None):
         # number of ranks (one rank equals this solve to the last bit)
         assembler = StiffnessAssembler(mesh, by_rows=mesh.dim == 2)
         A = assembler.assemble(problem.coefficient, quadrature=q)
-        if problem.reaction is not None:
-            A = A + assembler.assemble_mass(problem.reaction, quadrature=q)
-        if problem.robin is not None:
-            A = A + side_mass(mesh, problem.robin.r, problem.robin.sides, q)
+        mass = None  # the lower-order terms' row sums, for gmg's levels
+        for term in _lower_order_terms(problem, assembler, q):
+            A = A + term
+            rows = np.asarray(term.sum(axis=1)).ravel()
+            mass = rows if mass is None else mass + rows
         reduced = apply_dirichlet(A, b, held.points, held.values)
         system = LinearSystem(reduced.A, reduced.b, problem, False, None, reduced.A.shape[0],
-                              stored_bytes(reduced.A), int(reduced.A.nnz), timings, reduced)
+                              stored_bytes(reduced.A), int(reduced.A.nnz), timings, reduced,
+                              mass)
     timings["assemble"] = time.perf_counter() - t
     return system

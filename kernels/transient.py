@@ -36,6 +36,7 @@ person against local codes and licensed practice.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 import warnings
@@ -279,7 +280,8 @@ class _Run:
                 self._unit = s.A
                 self.product_seconds = measure_product(s.A)
             start = time.perf_counter()
-            s.precondition(self.preconditioner, self.context, self.options)
+            context = dataclasses.replace(self.context, mass=self.blocks.mass(tau))
+            s.precondition(self.preconditioner, context, self.options)
             self.timings["setup"] += built + time.perf_counter() - start
             if not self.built:
                 self.nnz, self.description = int(s.A.nnz), s.description

@@ -66,6 +66,10 @@ class Blocks:
     K_FF, M_FF : scipy CSR
     stored_bytes : int
         What the matrices hold.
+    rows_capacity, rows_lower : ndarray or None
+        Per point, the row sums of the capacity mass and of the reaction and
+        Robin terms (None without them): ``gmg``'s lumped mass term
+        ``rows_lower + rows_capacity / tau`` (:meth:`mass`).
     """
 
     def __init__(self, problem, lumped):
@@ -109,12 +113,21 @@ class Blocks:
         self.reaction = None if w_reaction is None else (w_reaction[free], w_reaction[held])
         w = M @ ones  # 1^T M: each point's capacity (stored heat = w . u)
         self.w_F, self.w_D = w[free], w[held]
+        self.rows_capacity = w
+        lower = [v for v in (w_reaction, w_robin) if v is not None]
+        self.rows_lower = sum(lower[1:], lower[0]) if lower else None
         self.stored_bytes = sum(int(C.data.nbytes + C.indices.nbytes + C.indptr.nbytes)
                                 for C in (self.K_FF, self.M_FF))
 
     @property
     def unknowns(self):
         return int(self.free.size)
+
+    def mass(self, tau):
+        """The lumped mass term of ``M + tau K`` divided by ``tau``, per point: what the
+        stiffness is to be augmented with in a preconditioner's own levels."""
+        m = self.rows_capacity / tau
+        return m if self.rows_lower is None else m + self.rows_lower
 
     def coupling(self, uD):
         """``K_FD uD`` as ``(rows, values)`` (the rows that touch a held point), or None."""

@@ -110,13 +110,17 @@ def test_one_and_two_threads_give_the_same_bits(levels):
 
 
 @pytest.mark.parametrize("dim", [2, 3])
-def test_a_problem_without_held_points_is_refused_by_name(dim):
-    # gmg's levels hold the stiffness only: singular without Dirichlet points, so a
-    # Robin-only problem would break CG down; it is refused, naming what to use instead
+def test_a_problem_without_held_points_needs_a_mass_term(dim):
+    # gmg's levels carry the stiffness and the lumped Robin (or reaction) term: a
+    # Robin-only problem is solved, as by amg (which assembles it); with neither held
+    # points nor such a term the stiffness is singular, and gmg is refused by name
     mesh = (hatkernels.mesh.rectangle(4, 4) if dim == 2 else cuboid(2, 2, 2)).refine()
     sides = mesh.boundary_edges() if dim == 2 else mesh.boundary_faces()
+    sol = solve_poisson(mesh, 1.0, dirichlet_on=[], robin=(sides, 2.0, 0.0),
+                        preconditioner="gmg", rtol=1e-10)
+    ref = solve_poisson(mesh, 1.0, dirichlet_on=[], robin=(sides, 2.0, 0.0),
+                        preconditioner="direct")  # reference library: SuperLU
+    assert sol.converged and np.allclose(sol.u, ref.u, rtol=1e-8)
+    K = hatkernels.assemble_stiffness(mesh)
     with pytest.raises(hatkernels.InputError, match="no Dirichlet points.*amg"):
-        solve_poisson(mesh, 1.0, dirichlet_on=[], robin=(sides, 2.0, 0.0),
-                      preconditioner="gmg")
-    sol = solve_poisson(mesh, 1.0, dirichlet_on=[], robin=(sides, 2.0, 0.0))
-    assert sol.converged  # the default amg solves it
+        hatkernels.precond.make_preconditioner(K, "gmg", mesh=mesh, dirichlet=[])

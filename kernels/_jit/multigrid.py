@@ -46,3 +46,10 @@ def zero_at(fixed, x):
     """``x[fixed] = 0``."""
     for k in prange(fixed.size):
         x[fixed[k]] = 0.0
+
+
+@jit(parallel=True)
+def add_diagonal(m, x, out, sign):
+    """``out += sign * m * x`` entry by entry (a lumped mass term of a level's operator)."""
+    for i in prange(x.shape[0]):
+        out[i] += sign * (m[i] * x[i])

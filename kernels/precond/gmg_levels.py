@@ -1,18 +1,19 @@
 """The levels of the geometric multigrid (:mod:`hatkernels.precond.gmg`): coefficients
-taken down the refinement history, the damped Jacobi smoother, and one level's operator,
-smoother, work vectors and transfer indices.
+and lumped masses taken down the refinement history, the damped Jacobi smoother, and one
+level's operator, smoother, work vectors and transfer indices.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from hatkernels._jit import multigrid as _mg
 from hatkernels._jit import sparse as _k
 from hatkernels.coefficients import Coefficient
 from hatkernels.operators import StiffnessOperator
 from hatkernels.precond.chebyshev import ChebyshevSmoother
 
-__all__ = ["Level", "JacobiSmoother", "coarsen_coefficient"]
+__all__ = ["Level", "JacobiSmoother", "coarsen_coefficient", "transfer_indices", "restrict_mass"]
 
 
 def coarsen_coefficient(coef, fine, coarse):
@@ -62,11 +63,41 @@ class JacobiSmoother:
             _k.xpby(d, 1.0, x)
 
 
+def transfer_indices(refinement):
+    """Index arrays for prolongation from and restriction to the coarser mesh of ``refinement``."""
+    e = refinement.edge_points
+    nc = refinement.coarse.n_points
+    dt = e.dtype
+    first_low = np.zeros(nc + 1, dtype=dt)
+    np.cumsum(np.bincount(e[:, 0], minlength=nc), out=first_low[1:])
+    by_high = np.argsort(e[:, 1], kind="stable").astype(dt)
+    by_high_ptr = np.zeros(nc + 1, dtype=dt)
+    np.cumsum(np.bincount(e[:, 1], minlength=nc), out=by_high_ptr[1:])
+    return (refinement.coarse_points, e, refinement.midpoints, first_low, by_high_ptr, by_high)
+
+
+def restrict_mass(mass, transfer):
+    """The coarse level's lumped mass from the fine one's: ``P^T m``.
+
+    A lumped mass is ``m_i = int c phi_i`` and a coarse hat function is the
+    combination of fine ones that interpolation gives, so the restriction is
+    the coarse mesh's own lumped mass, for any coefficient (up to quadrature).
+    """
+    cp, e, mid, first_low, by_high_ptr, by_high = transfer
+    coarse = np.empty(first_low.shape[0] - 1)
+    _mg.restrict(cp, mid, first_low, by_high_ptr, by_high, mass, coarse)
+    return coarse
+
+
 class Level:
-    """One level: operator, smoother, work vectors, and the transfer to the next coarser one."""
+    """One level: operator, smoother, work vectors, and the transfer to the next coarser one.
+
+    ``mass``: a lumped mass (reaction) term of the level's operator, one
+    nonnegative value per point (zero at the held points), or None.
+    """
 
     def __init__(self, mesh, coef, fixed, variant, smoother, degree, omega, quadrature, op=None,
-                 own_x=True, lower=None):
+                 own_x=True, lower=None, mass=None):
         self.mesh = mesh
         self.fixed = fixed
         if op is None:
@@ -74,6 +105,10 @@ class Level:
                 mesh, coef, variant=variant, dirichlet=fixed, quadrature=quadrature
             )
         self.op = op
+        if mass is not None:
+            mass = np.array(mass, dtype=np.float64)  # a copy: the held points are zeroed
+            mass[fixed] = 0.0
+        self.mass = mass
         n = mesh.n_points
         self.r, self.d, self.q = np.empty(n), np.empty(n), np.empty(n)
         # the cycle's solution and right-hand side on this level: a finer level
@@ -85,40 +120,42 @@ class Level:
         # Gershgorin's bound: guaranteed, one pass with the diagonal, and tight (2)
         # on meshes without obtuse angle pairs; a Lanczos estimate would cost ten
         # products.  The diagonal is inverted in place: one vector per level.
+        # With a mass term each row gains m_i on its diagonal and in its absolute sum,
+        # which only lowers its Gershgorin ratio: the stiffness's bound stays a bound.
         diag, bound = self.op.diagonal_and_bound()
+        if mass is not None:
+            diag += mass
         dinv = np.reciprocal(diag, out=diag)
         if smoother == "chebyshev":
             self.smoother = ChebyshevSmoother(
-                self.op.matvec_into, self.residual, dinv, degree, bound=bound, estimate=False,
+                self.product, self.residual, dinv, degree, bound=bound, estimate=False,
                 lower=lower,
             )
         else:
             self.smoother = JacobiSmoother(
-                self.op.matvec_into, self.residual, dinv, degree, omega
+                self.product, self.residual, dinv, degree, omega
             )
         self.transfer = None
 
+    def product(self, x, out):
+        self.op.matvec_into(x, out)
+        if self.mass is not None:
+            _mg.add_diagonal(self.mass, x, out, 1.0)
+
     def residual(self, x, b, out):
         self.op.residual_into(x, b, out)
+        if self.mass is not None:
+            _mg.add_diagonal(self.mass, x, out, -1.0)
 
     def smooth(self, x, b, zero_guess):
         self.smoother.smooth(x, b, zero_guess, self.r, self.d, self.q)
 
-    def set_transfer(self, refinement):
+    def set_transfer(self, refinement, transfer=None):
         """Index arrays for prolongation from and restriction to the coarser mesh."""
-        e = refinement.edge_points
-        nc = refinement.coarse.n_points
-        dt = e.dtype
-        first_low = np.zeros(nc + 1, dtype=dt)
-        np.cumsum(np.bincount(e[:, 0], minlength=nc), out=first_low[1:])
-        by_high = np.argsort(e[:, 1], kind="stable").astype(dt)
-        by_high_ptr = np.zeros(nc + 1, dtype=dt)
-        np.cumsum(np.bincount(e[:, 1], minlength=nc), out=by_high_ptr[1:])
-        self.transfer = (refinement.coarse_points, e, refinement.midpoints, first_low,
-                         by_high_ptr, by_high)
+        self.transfer = transfer_indices(refinement) if transfer is None else transfer
 
     @property
     def nbytes(self):
-        vectors = (4 + (self.x is not None)) * self.r.nbytes
+        vectors = (4 + (self.x is not None) + (self.mass is not None)) * self.r.nbytes
         transfer = sum(a.nbytes for a in self.transfer) if self.transfer else 0
         return vectors + transfer + self.op.nbytes + self.smoother.nbytes + self.fixed.nbytes

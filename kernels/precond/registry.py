@@ -69,6 +69,10 @@ class PreconditionerContext:
         The matrix-free variant for operators built on the mesh.
     quadrature : int
         Degree of the rule for callable coefficients.
+    mass : ndarray or None
+        A lumped mass term of the system, one value per point of the mesh
+        (reaction, Robin sides, a time step's capacity over its length), for
+        preconditioners that build their own operators (``gmg``).
     """
 
     mesh: object = None
@@ -76,6 +80,7 @@ class PreconditionerContext:
     fixed: object = None
     variant: object = None
     quadrature: int = 2
+    mass: object = None
 
 
 @dataclasses.dataclass(frozen=True)
