@@ -1,6 +1,7 @@
 """Transient: per-step time and work units of solve_transient against a plain scipy loop.
 
     python bench/transient.py --sizes 316 1000 1414 2000 --out bench/results/transient.json
+    python bench/transient.py --sizes 1000 --refine 3 --preconditioner gmg --orderings COLAMD
 
 For each size ``n`` the cooling unit square (``rectangle(n, n)``, ``(n + 1)^2``
 points; ``u0 = sin(pi x) sin(pi y)``, ``u = 0`` on the boundary, Crank-Nicolson,
@@ -43,12 +44,19 @@ import sys
 import time
 
 
-def _problem(n, dim):
+def _problem(n, dim, refine=0):
+    """The mesh (``n`` cells per side; with ``refine`` the coarse mesh of ``n / 2^refine``
+    cells per side refined that many times: the same points) and u0."""
     import numpy as np
 
     from hatkernels.mesh import cuboid, rectangle
 
-    mesh = rectangle(n, n) if dim == 2 else cuboid(n, n, n)
+    c = n >> refine
+    if c << refine != n:
+        raise SystemExit(f"--refine {refine} needs sizes divisible by {2 ** refine}, got {n}")
+    mesh = rectangle(c, c) if dim == 2 else cuboid(c, c, c)
+    for _ in range(refine):
+        mesh = mesh.refine()
     u0 = np.prod(np.sin(np.pi * mesh.points), axis=1)
     return mesh, u0
 
@@ -59,9 +67,10 @@ def worker(args):
     from hatkernels.perf import PeakMemory
     from hatkernels.transient import solve_transient
 
-    small, u_small = _problem(8, args.dim)
-    solve_transient(small, u_small, [0.01], dt=0.001)  # the kernels loaded first
-    mesh, u0 = _problem(args.n, args.dim)
+    small, u_small = _problem(32, args.dim, min(args.refine, 3))
+    solve_transient(small, u_small, [0.01], dt=0.001,  # the kernels loaded first
+                    preconditioner=args.preconditioner)
+    mesh, u0 = _problem(args.n, args.dim, args.refine)
     dt, steps = args.dt, args.steps
     rec = {"method": args.method, "dim": args.dim, "n": args.n, "points": mesh.n_points,
            "dt": dt, "steps": steps}
@@ -69,7 +78,8 @@ def worker(args):
     if args.method == "hatkernels":
         t = time.perf_counter()
         with peak:
-            sol = solve_transient(mesh, u0, [steps * dt], dt=dt, startup=0)
+            sol = solve_transient(mesh, u0, [steps * dt], dt=dt, startup=0,
+                                  preconditioner=args.preconditioner)
         s = sol.stats
         later = slice(1, None)
         rec.update(total_s=time.perf_counter() - t, unknowns=s.unknowns, nnz=s.nnz,
@@ -130,7 +140,8 @@ def _run(method, n, args, field, ordering):
     _wait_for_quiet(args.quiet_load)
     cmd = [sys.executable, os.path.abspath(__file__), "--worker", "--method", method,
            "--n", str(n), "--dim", str(args.dim), "--dt", str(args.dt), "--steps",
-           str(args.steps), "--ordering", ordering, "--field", field]
+           str(args.steps), "--ordering", ordering, "--field", field,
+           "--refine", str(args.refine), "--preconditioner", args.preconditioner]
     load = os.getloadavg()[0]
     # OpenBLAS's threads (the dense coarsest solves) would compete with numba's
     # (DEVELOPERS.md, Benchmarks); SuperLU does not use them
@@ -152,6 +163,11 @@ def main():
     ap.add_argument("--sizes", type=int, nargs="+", default=[316, 1000],
                     help="cells per side: rectangle(n, n), or cuboid(n, n, n) with --dim 3")
     ap.add_argument("--dt", type=float, default=1e-3)
+    ap.add_argument("--refine", type=int, default=0,
+                    help="build each mesh by refining a coarse one this many times (the "
+                         "same points), so that gmg has levels")
+    ap.add_argument("--preconditioner", default="amg",
+                    help="hatkernels' preconditioner (gmg needs --refine)")
     ap.add_argument("--steps", type=int, default=20)
     ap.add_argument("--orderings", nargs="+", default=["COLAMD", "MMD_AT_PLUS_A"],
                     help="SuperLU column orderings (permc_spec) of the baseline; COLAMD is "
@@ -207,9 +223,11 @@ def main():
                   f"{rec['relative_difference']:.1e}", flush=True)
         os.unlink(field)
     if args.out:
-        with open(args.out, "w", encoding="utf-8") as f:
-            json.dump({"machine": machine, "dim": args.dim, "dt": args.dt,
-                       "steps": args.steps, "records": records}, f, indent=2)
+        from hatkernels._output import write_json
+
+        write_json(args.out, {"machine": machine, "dim": args.dim, "dt": args.dt,
+                              "steps": args.steps, "refine": args.refine,
+                              "preconditioner": args.preconditioner, "records": records})
 
 
 if __name__ == "__main__":
