@@ -79,14 +79,19 @@ def test_own_splitting_matches_pyamg_ruge_stuben(mesh):
         assert abs(ours.sum() - reference.sum()) <= 0.05 * reference.sum()
 
 
+def first_pass(n, seed, theta):
+    """A jittered mesh's reduced stiffness, its strong couplings and its first-pass splitting."""
+    A = reduced_stiffness(jittered_mesh(n, seed))
+    strong = strong_mask(A, theta)
+    tptr, tind = _s.transpose_pattern(A.indptr, A.indices, strong, A.shape[0])
+    return A, strong, _s.split(A.indptr, A.indices, strong, tptr, tind)
+
+
 @settings(max_examples=15, deadline=None)
 @given(n=st.integers(4, 14), seed=st.integers(0, 10_000), theta=st.sampled_from([0.1, 0.25, 0.5]))
 def test_every_f_point_with_strong_couplings_has_a_strong_c_point(n, seed, theta):
     # the property interpolation relies on (Ruge & Stueben 1987, first pass)
-    A = reduced_stiffness(jittered_mesh(n, seed))
-    strong = strong_mask(A, theta)
-    tptr, tind = _s.transpose_pattern(A.indptr, A.indices, strong, A.shape[0])
-    state = _s.split(A.indptr, A.indices, strong, tptr, tind)
+    A, strong, state = first_pass(n, seed, theta)
     assert set(np.unique(state)) <= {0, 1}
     for i in np.flatnonzero(state == 0):
         row = slice(A.indptr[i], A.indptr[i + 1])
@@ -100,10 +105,7 @@ def test_second_pass_leaves_every_strong_f_pair_a_common_c_point(n, seed, theta)
     # the condition the second pass establishes (K. Stueben, "A review of algebraic
     # multigrid", J. Comput. Appl. Math. 128, 2001): for an F point i and a strong F
     # neighbour j, j is strongly coupled to one of i's strong C points; it only adds C points
-    A = reduced_stiffness(jittered_mesh(n, seed))
-    strong = strong_mask(A, theta)
-    tptr, tind = _s.transpose_pattern(A.indptr, A.indices, strong, A.shape[0])
-    first = _s.split(A.indptr, A.indices, strong, tptr, tind)
+    A, strong, first = first_pass(n, seed, theta)
     state = first.copy()
     _s.second_pass(A.indptr, A.indices, strong, state)
     assert np.all(state[first == 1] == 1)
