@@ -141,7 +141,8 @@ class GeometricMultigrid(Preconditioner):
     solution), the transfer indices (about 20 bytes per coarse point, so 5
     per fine point), a third more for the coarser levels together; one
     V-cycle does ``2 degree`` fine-level products (a zero first guess saves
-    one) plus a third more on the coarser levels.
+    one) plus a third more on the coarser levels.  A ``mass`` term adds its
+    vector on every level (8 bytes per point) and one vector pass to each product.
     """
 
     name = "gmg"
