@@ -25,8 +25,8 @@ costs no second matrix or preconditioner.
 Cost.  ``M + theta dt K`` (on the free unknowns) is assembled, and its
 preconditioner built, once per step size (:mod:`hatkernels.transient_steps`);
 each step is one product with ``K`` for the right-hand side and a CG solve
-for the change of u, warm-started from the previous step's change (a linear
-extrapolation), typically a few iterations.  Memory: the matrices and the
+for the change of u, warm-started from the last two steps' changes (a quadratic
+extrapolation of u), typically two or three iterations.  Memory: the matrices and the
 preconditioner, a few vectors, and the fields at the output times only
 (``len(times) x n_points``); probes record every step at O(number of probes).
 
@@ -324,6 +324,8 @@ class _Run:
         c_dt = None
         last = (None, None)
         prev, h_prev, moved = None, None, True
+        prev2, h_prev2 = None, None  # the change before: a quadratic start (_start)
+        x0_buf = np.empty(free.size)
         interval = 0 if times[0] > 0 else 1
         for i, (t0, t1, theta, k) in enumerate(schedule):
             h = t1 - t0
@@ -345,8 +347,7 @@ class _Run:
                 c_dt = system.dt * c
                 last = (system, theta)
             system.rhs(x, c_dt, _ratio(h, system.dt), dD, rhs)
-            x0 = None if prev is None else prev * _ratio(h, h_prev) if _ratio(h, h_prev) != 1 \
-                else prev
+            x0 = _start(prev, h_prev, prev2, h_prev2, h, x0_buf)
             result = system.solve(rhs, x0, rtol, atol, maxiter)
             d = result.x
             self.iterations[i] = result.iterations
@@ -361,6 +362,7 @@ class _Run:
             moved = bool(np.any(dD))
             uD = g_new
             b_old, tot_old = b_new, tot_new
+            prev2, h_prev2 = prev, h_prev
             prev, h_prev = d, h
             if pick is not None:
                 self.probe_values[i + 1] = pick.values(x, uD)
@@ -400,6 +402,20 @@ class _Run:
         starts = np.concatenate([[0.0], times[:-1]])
         return EnergyBalance(start=starts, end=times.copy(),
                              stored=np.diff(self.stored_at), **self.accounts)
+
+
+def _start(prev, h_prev, prev2, h_prev2, h, out):
+    """CG's first guess for a step's change ``d``: from the last two changes, ``2 d' - d''``
+    (u extrapolated quadratically) when the three steps are equal, else the last change
+    scaled to the step (linearly), else nothing."""
+    if prev is None:
+        return None
+    r = _ratio(h, h_prev)
+    if prev2 is not None and r == 1.0 and _ratio(h, h_prev2) == 1.0:
+        np.multiply(prev, 2.0, out=out)
+        out -= prev2
+        return out
+    return prev * r if r != 1.0 else prev
 
 
 def _ratio(h, reference):
