@@ -387,12 +387,20 @@ def _preconditioner(level, name, options, quadrature):
     floating = level.zero.shape[1] > 0
     chosen = name or _default_preconditioner(level.mesh, level.stiffness_floats)
     if level.stiffness_floats:
+        shift = level.shift() if floating else 0.0
+        A = (level.K + shift * level.M).tocsr() if floating else level.K
         if capabilities(chosen).needs_mesh:
-            why = (f"{level.zero.shape[1]} part(s) of the mesh hold no point (zero modes)"
-                   if floating else "a part of the mesh holds no point, only a Robin side")
-            raise InputError(f"preconditioner {chosen!r} works on the stiffness alone, which is "
-                             f"singular here: {why}; use one that takes a matrix")
-        A = (level.K + level.shift() * level.M).tocsr() if floating else level.K
+            if not floating:
+                raise InputError(f"preconditioner {chosen!r} builds its levels from the mesh, "
+                                 "whose stiffness is singular here: a part of the mesh holds "
+                                 "no point, only a Robin side; use one that takes a matrix")
+            # its levels carry the stiffness and the shift's lumped mass: K + shift M
+            rows = shift * np.asarray(level.M.sum(axis=1)).ravel()
+            mass = level.expand(rows[:, None])[:, 0]
+            context = PreconditionerContext(mesh=level.mesh, coefficient=level.kappa,
+                                            fixed=level.held, variant=_VARIANT,
+                                            quadrature=quadrature, mass=mass)
+            return make_preconditioner(A, chosen, context=context, **options)
         return make_preconditioner(A, chosen, **options)
     context = PreconditionerContext(mesh=level.mesh, coefficient=level.kappa, fixed=level.held,
                                     variant=_VARIANT, quadrature=quadrature)
