@@ -395,11 +395,10 @@ def _preconditioner(level, name, options, quadrature):
                                  "whose stiffness is singular here: a part of the mesh holds "
                                  "no point, only a Robin side; use one that takes a matrix")
             # its levels carry the stiffness and the shift's lumped mass: K + shift M
-            rows = shift * np.asarray(level.M.sum(axis=1)).ravel()
-            mass = level.expand(rows[:, None])[:, 0]
+            mass = level.expand(shift * level.M.sum(axis=1).reshape(-1, 1))[:, 0]
             context = PreconditionerContext(mesh=level.mesh, coefficient=level.kappa,
                                             fixed=level.held, variant=_VARIANT,
-                                            quadrature=quadrature, mass=mass)
+                                            quadrature=quadrature, mass=np.asarray(mass))
             return make_preconditioner(A, chosen, context=context, **options)
         return make_preconditioner(A, chosen, **options)
     context = PreconditionerContext(mesh=level.mesh, coefficient=level.kappa, fixed=level.held,
