@@ -269,7 +269,7 @@ class GeometricMultigrid(Preconditioner):
                                            masses[1:], strict=True)
         ]
         for lv, t in zip(self.levels, transfers, strict=True):
-            lv.set_transfer(lv.mesh.refinement, t)
+            lv.set_transfer(t)
         self._setup_coarse(meshes[0], coefs[0], fixeds[0], coarse, quadrature, masses[0])
 
     @staticmethod

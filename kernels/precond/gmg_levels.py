@@ -109,6 +109,7 @@ class Level:
             mass = np.array(mass, dtype=np.float64)  # a copy: the held points are zeroed
             mass[fixed] = 0.0
         self.mass = mass
+        self._bind()
         n = mesh.n_points
         self.r, self.d, self.q = np.empty(n), np.empty(n), np.empty(n)
         # the cycle's solution and right-hand side on this level: a finer level
@@ -147,12 +148,19 @@ class Level:
         if self.mass is not None:
             _mg.add_diagonal(self.mass, x, out, -1.0)
 
+    def _bind(self):
+        """Without a mass term the smoother and the cycle call the operator itself (no
+        wrapper on the hot path)."""
+        if self.mass is None:
+            self.product, self.residual = self.op.matvec_into, self.op.residual_into
+
     def smooth(self, x, b, zero_guess):
         self.smoother.smooth(x, b, zero_guess, self.r, self.d, self.q)
 
-    def set_transfer(self, refinement, transfer=None):
-        """Index arrays for prolongation from and restriction to the coarser mesh."""
-        self.transfer = transfer_indices(refinement) if transfer is None else transfer
+    def set_transfer(self, transfer):
+        """Index arrays for prolongation from and restriction to the coarser mesh
+        (:func:`transfer_indices`)."""
+        self.transfer = transfer
 
     @property
     def nbytes(self):
