@@ -101,11 +101,41 @@ def random_mesh():
     return jittered_mesh(6, 1234)
 
 
-def pytest_sessionfinish(session, exitstatus):
-    """Fail the run if anything imported the source folder as ``kernels``: a second copy."""
+#: Second copies reported by pytest-xdist workers, read by the controller at the end.
+_SECOND_COPIES = []
+
+
+def _second_copy():
+    """Where the source folder was imported from as ``kernels``, or None."""
     import sys
 
-    if "kernels" in sys.modules and session.exitstatus == 0:
+    module = sys.modules.get("kernels")
+    return None if module is None else str(getattr(module, "__file__", None) or module)
+
+
+@pytest.hookimpl(optionalhook=True)  # a pytest-xdist hook: unknown (and unused) without it
+def pytest_testnodedown(node, error):
+    found = getattr(node, "workeroutput", {}).get("second_copy")
+    if found:
+        _SECOND_COPIES.append(found)
+
+
+def pytest_sessionfinish(session, exitstatus):
+    """Fail the run if anything imported the source folder as ``kernels``: a second copy.
+
+    Under pytest-xdist the tests run in worker processes, whose own exit status does
+    not reach the run's: each worker hands what it found to the controller
+    (``workeroutput``, read in ``pytest_testnodedown``), which fails the run.
+    """
+    import sys
+
+    found = _second_copy()
+    workeroutput = getattr(session.config, "workeroutput", None)
+    if workeroutput is not None:  # an xdist worker
+        workeroutput["second_copy"] = found
+        return
+    found = found or next(iter(_SECOND_COPIES), None)
+    if found and session.exitstatus == 0:
         sys.stderr.write("\nthe library was imported a second time as 'kernels' "
-                         f"(from {sys.modules['kernels'].__file__}); import hatkernels\n")
+                         f"(from {found}); import hatkernels\n")
         session.exitstatus = 1
