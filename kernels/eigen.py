@@ -10,7 +10,7 @@ shift-invert
     :data:`~hatkernels.eigensolvers.DENSE_LIMIT` unknowns), for problems up to
     :data:`SHIFT_INVERT_LIMIT` unknowns, or
 lobpcg
-    scipy's ``lobpcg`` preconditioned by this library's multigrid: ``gmg`` on
+    LOBPCG (:mod:`hatkernels.eigenblock`) preconditioned by this library's multigrid: ``gmg`` on
     a mesh made by :meth:`Mesh.refine` (each level's own), else ``amg``.  On
     a refined mesh the iteration is nested: the eigenvectors of the finest
     coarse level with at most :data:`SHIFT_INVERT_LIMIT` unknowns (by shift-invert)
@@ -43,6 +43,7 @@ import time
 import numba
 import numpy as np
 
+from hatkernels import eigenblock as _eb
 from hatkernels import eigenrobin as _er
 from hatkernels import eigensolvers as _es
 from hatkernels._jit import sparse as _k
@@ -67,16 +68,14 @@ __all__ = ["eigenmodes", "Eigenmodes", "EigenStats", "SHIFT_INVERT_LIMIT", "METH
 #: the nested lobpcg starts on the finest coarser level that has at most this many.
 SHIFT_INVERT_LIMIT = 20_000
 METHODS = ("auto", "shift-invert", "lobpcg")
-# iterations on each intermediate level of the nested iteration, then on the finest level
-# before the first look at the error estimates (docs/eigenmodes.md has the measurements)
+# iterations on each intermediate level of the nested iteration (docs/eigenmodes.md has
+# the measurements)
 _INTERMEDIATE = 1
-_FIRST = 2
 # the matrix-free operators of a multigrid built here: lobpcg applies it to every vector
 # of the block at every iteration, and the assembled K and M already take more memory than
 # the edge weights (0.45 of K), so the fastest product is worth its memory
 # (docs/matrix-free.md; DEFAULT_VARIANT favours memory for one solve)
 _VARIANT = "edges"
-_FIRST_RANDOM = 10
 
 
 @dataclasses.dataclass
@@ -465,16 +464,11 @@ def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, 
         t = time.perf_counter()
         T = _preconditioner(level, name, options, quadrature)
         timings["setup"] += time.perf_counter() - t
-        blocks = _es.Blocks(level, T)
+        blocks = _eb.PencilBlocks(level.K, level.M, T)
         Y = level.zero if level.zero.shape[1] else None
         t = time.perf_counter()
-        if problem is None:
-            out = _es.run_lobpcg(blocks, X0, Y, k=wanted, rtol=rtol,
-                                 first=_FIRST if X is not None else _FIRST_RANDOM,
-                                 maxiter=maxiter)
-        else:
-            out = _es.run_lobpcg(blocks, X0, Y, k=wanted, rtol=None, first=_INTERMEDIATE,
-                                 maxiter=_INTERMEDIATE)
+        out = _eb.run(blocks, X0, Y, k=wanted, rtol=rtol, maxiter=maxiter, M=level.M,
+                      iterations=None if problem is None else _INTERMEDIATE)
         timings["solve"] += time.perf_counter() - t
         for key, count in blocks.counts.items():
             used[key] += count * level.unknowns / n
@@ -494,6 +488,5 @@ def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, 
             f"eigenmodes: lobpcg converged {good + z} of the {wanted + z} eigenpairs asked "
             f"for after {out.iterations} iterations on {n} unknowns (estimated relative "
             f"errors up to {float(np.max(out.errors)):.2e} against rtol {rtol:g}"
-            + ("; the Ritz values stopped changing" if out.stalled else "")
             + "); raise maxiter, loosen rtol or use method='shift-invert'")
     return out.values, out.vectors

@@ -10,17 +10,17 @@ pieces:
 :func:`shift_invert`
     scipy's ``eigsh`` in shift-invert mode (SuperLU of ``K - sigma M``), or
     a dense solve for tiny problems;
-:func:`run_lobpcg`
-    scipy's ``lobpcg`` with a preconditioner, run in chunks of iterations
-    and stopped on an estimate of each wanted eigenvalue's error;
+:func:`error_estimates`
+    the estimate of each wanted eigenvalue's error that stops the block
+    iteration (:mod:`hatkernels.eigenblock`);
 :func:`coarser`, :func:`prolong`
     the problem one refinement down, and vectors interpolated one up (for
     the nested start: the eigenvectors of a coarse mesh, interpolated, are
     the first block on the next finer one).
 
-Why chunks and not scipy's own tolerance: ``lobpcg`` stops when the 2-norm
-of every residual ``K x - lambda M x`` is below one absolute number, for
-every vector of the block.  That norm is dominated by the residual's
+Why an estimate and not a residual norm: a test that the 2-norm of every
+residual ``K x - lambda M x`` is below one absolute number (scipy's
+``lobpcg`` stops so) judges the eigenvalue badly.  That norm is dominated by the residual's
 oscillating part, which hardly affects the eigenvalue: on the unit square
 (65,025 unknowns, ten modes) the relative eigenvalue error was 1e-8 while
 the relative residual was still 0.4.  Eigenvalues of a symmetric pencil
@@ -36,28 +36,24 @@ from __future__ import annotations
 
 import dataclasses
 import math
-import time
-import warnings
 
 import numpy as np
 import scipy.linalg
-from scipy.sparse.linalg import eigsh, lobpcg
+from scipy.sparse.linalg import eigsh
 
 from hatkernels.assembly import assemble_mass, assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.precond.gmg import coarsen_coefficient
 
-__all__ = ["Level", "build_level", "coarser", "prolong", "shift_invert", "run_lobpcg",
-           "error_estimates", "Blocks", "DENSE_LIMIT"]
+__all__ = ["Level", "build_level", "coarser", "prolong", "shift_invert", "error_estimates",
+           "LobpcgOutcome", "DENSE_LIMIT"]
 
 #: Below this many unknowns the small eigenproblem is solved densely (LAPACK).
 DENSE_LIMIT = 600
 
 # the contraction factor assumed per iteration when the history cannot tell it
 Q_MIN, Q_MAX = 0.25, 0.9
-# a tolerance scipy's lobpcg never reaches: the driver decides when to stop
-_NEVER = 1e-300
 
 
 @dataclasses.dataclass(eq=False)
@@ -197,71 +193,6 @@ def shift_invert(level, count, seed):
     return values[order], vectors[:, order], method
 
 
-class Blocks:
-    """``K``, ``M`` and the preconditioner applied to blocks of vectors, counted.
-
-    The products are scipy's CSR times a dense block (one pass over the
-    matrix for the whole block, on one thread: as fast per column as the
-    parallel kernel on this project's machine, with no copy of lobpcg's
-    row-major blocks).  The preconditioner acts on one contiguous vector at
-    a time, so the block is transposed by cache-sized slabs (a plain NumPy
-    transpose of a tall block is about six times slower than a copy).
-    """
-
-    #: Rows per slab of the transposes (13 columns of 8,192 rows: under 1 MB).
-    SLAB = 8192
-
-    def __init__(self, level, preconditioner):
-        self.n = level.unknowns
-        self._K, self._M = level.K, level.M
-        self._T = preconditioner
-        self.counts = {"stiffness": 0, "mass": 0, "preconditioner": 0}
-        #: seconds in the products (stiffness and mass) and in the preconditioner
-        self.seconds = {"products": 0.0, "preconditioner": 0.0}
-
-    def _product(self, A, X, key):
-        t = time.perf_counter()
-        out = A @ X
-        self.counts[key] += 1 if X.ndim == 1 else X.shape[1]
-        self.seconds["products"] += time.perf_counter() - t
-        return out
-
-    def stiffness(self, X):
-        return self._product(self._K, X, "stiffness")
-
-    def mass(self, X):
-        return self._product(self._M, X, "mass")
-
-    def precondition(self, X):
-        t = time.perf_counter()
-        X = np.asarray(X, dtype=np.float64)
-        if X.ndim == 1:
-            out = np.empty(self.n)
-            self._T.apply_into(np.ascontiguousarray(X), out)
-        else:
-            rows = _transposed(X, self.SLAB)
-            done = np.empty_like(rows)
-            for j in range(rows.shape[0]):
-                self._T.apply_into(rows[j], done[j])
-            out = _transposed(done, self.SLAB, back=True)
-        self.counts["preconditioner"] += 1 if X.ndim == 1 else X.shape[1]
-        self.seconds["preconditioner"] += time.perf_counter() - t
-        return out
-
-
-def _transposed(X, slab, back=False):
-    """``X.T`` as a new row-major array, copied by slabs of ``slab`` rows of the tall side."""
-    if back:
-        out = np.empty((X.shape[1], X.shape[0]))
-        for i in range(0, X.shape[1], slab):
-            out[i:i + slab] = X[:, i:i + slab].T
-    else:
-        out = np.empty((X.shape[1], X.shape[0]))
-        for i in range(0, X.shape[0], slab):
-            out[:, i:i + slab] = X[i:i + slab].T
-    return out
-
-
 def error_estimates(history, k):
     """Estimated relative errors of the ``k`` smallest Ritz values from their history.
 
@@ -283,8 +214,9 @@ def error_estimates(history, k):
 
 @dataclasses.dataclass
 class LobpcgOutcome:
-    """What :func:`run_lobpcg` found: Ritz values and vectors of the whole block, the
-    iterations done, the history of Ritz values and the estimated errors of the wanted ones."""
+    """What :func:`hatkernels.eigenblock.run` found: Ritz values and vectors of the whole
+    block, the iterations done, the history of Ritz values and the estimated errors of the
+    wanted ones."""
 
     values: np.ndarray
     vectors: np.ndarray
@@ -292,73 +224,12 @@ class LobpcgOutcome:
     history: list
     errors: np.ndarray
     converged: bool
-    stalled: bool = False
-
-
-def run_lobpcg(blocks, X, Y, *, k, rtol, first, maxiter):
-    """scipy's lobpcg from the block ``X`` (n_free, m), in chunks, until the ``k`` smallest
-    Ritz values' estimated relative errors are below ``rtol`` or ``maxiter`` iterations
-    are done; ``rtol=None`` runs ``first`` iterations and stops.
-
-    ``Y`` (n_free, z) or None: constraints (the zero modes), kept M-orthogonal
-    to the block.  ``X`` is overwritten.  Between chunks only the block is
-    carried over (lobpcg restarts without its search directions); the next
-    chunk is as long as the last contraction factor predicts.
-    """
-    history = []
-    done = 0
-    chunk = min(first, maxiter)
-    errors = np.full(k, np.inf)
-    stalled = False
-    while True:
-        try:
-            with warnings.catch_warnings():
-                # lobpcg warns at every exit short of its tolerance, which is never met here
-                warnings.simplefilter("ignore", UserWarning)
-                values, X, lam = lobpcg(blocks.stiffness, X, B=blocks.mass,
-                                        M=blocks.precondition, Y=Y, tol=_NEVER,
-                                        maxiter=chunk - 1, largest=False,
-                                        retLambdaHistory=True)
-        except ValueError as exc:  # linearly dependent block, failed Cholesky of a Gram matrix
-            raise ConvergenceError(f"eigenmodes: lobpcg failed after {done} iterations: "
-                                   f"{exc}") from exc
-        done += chunk
-        # lam: the Ritz values of the starting block, of each iterate up to the one
-        # returned (lobpcg returns the iterate of smallest residual), then of the
-        # returned block after a last Rayleigh-Ritz step
-        new = [np.asarray(v) for v in lam[(1 if history else 0):-1]]
-        stalled = len(lam) <= 2 and bool(history)
-        history.extend(new)
-        if history:
-            history[-1] = np.asarray(values)
-        else:
-            history.append(np.asarray(values))
-        if rtol is None:
-            break
-        errors = error_estimates(history, k)
-        if (errors <= rtol).all() or stalled or done >= maxiter:
-            break
-        chunk = min(maxiter - done, _predicted(history, k, errors, rtol))
-    converged = rtol is None or bool((errors <= rtol).all())
-    return LobpcgOutcome(np.asarray(values), X, done, history, errors, converged, stalled)
-
-
-def _predicted(history, k, errors, rtol):
-    """Iterations the worst wanted value needs at its last contraction factor (>= 1)."""
-    L = np.asarray(history)[:, :k]
-    q = Q_MAX
-    if len(L) >= 3:
-        c = np.abs(np.diff(L, axis=0))
-        worst = int(np.argmax(errors / rtol))
-        if c[-2, worst] > 0:
-            q = float(np.clip(c[-1, worst] / c[-2, worst], Q_MIN, Q_MAX))
-    need = math.log(rtol / float(np.max(errors))) / math.log(q)
-    return max(1, math.ceil(need))
 
 
 def check_block(level, m, z):
     """Refuse a block lobpcg cannot iterate with: it needs ``5 m`` unknowns beyond the ``z``
-    constraints (scipy's lobpcg turns to a dense solve otherwise)."""
+    constraints (its basis is 3 m wide; the rest keeps the small problem well inside the
+    large one)."""
     if level.unknowns - z < 5 * m:
         raise InputError(f"method='lobpcg' needs at least 5 x {m} (the block) unknowns beyond "
                          f"the {z} zero modes, but the problem has {level.unknowns}; use "

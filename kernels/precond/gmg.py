@@ -327,7 +327,7 @@ class GeometricMultigrid(Preconditioner):
             fixed = self.levels[-1].fixed
             x[fixed] = r[fixed]  # identity rows are solved exactly
         else:
-            out[:] = x[self._free]
+            np.take(x, self._free, out=out)  # no temporary, unlike out[:] = x[free]
         return out
 
     def apply_into(self, r, out):
