@@ -137,6 +137,38 @@ def test_block_products(benchmark, machine, request, cells, method, n_threads):
            threads=n_threads, n_points=int(n), peak_bytes=peak, peak_source=source, **first)
 
 
+@pytest.mark.parametrize("method, n_threads", [pytest.param("numpy", MAX_THREADS, id="method=numpy")]
+                         + [pytest.param("ours", t, id=f"method=ours-threads={t}") for t in THREADS])
+def test_gram_pairs(benchmark, machine, request, cells, method, n_threads):
+    """The 12 Gram blocks of a Rayleigh-Ritz step on [X, W, P] (13 columns each) with
+    their K and M products: one pass in chunks (hatkernels._jit.blocks.gram_pairs)
+    against one NumPy ``X.T @ Y`` (BLAS) per block."""
+    from hatkernels._jit import blocks as KB
+
+    n = shared_mesh(cells).n_points
+    pool = np.random.default_rng(8).standard_normal((9, n, BLOCK))
+    pairs = [(i, j) for i in range(3) for j in range(i, 3)]
+    left = np.array([i for i, _ in pairs] * 2)
+    right = np.array([3 + j for _, j in pairs] + [6 + j for _, j in pairs])
+    out = np.empty((len(left), BLOCK, BLOCK))
+    if method == "numpy":
+
+        def fn():
+            for p in range(len(left)):
+                out[p] = pool[left[p]].T @ pool[right[p]]
+    else:
+        fn = lambda: KB.gram_pairs(pool, left, right, out)  # noqa: E731
+    with threads(n_threads):
+        first = warm(benchmark, fn)
+        benchmark.pedantic(fn, **_vector_rounds(request.config))
+        peak, source = peak_of_call(benchmark, fn)
+    floor = pool.nbytes  # each of the nine blocks read once
+    moved = floor if method == "ours" else 2 * len(left) * pool[0].nbytes
+    record(benchmark, machine, moved, floor, kind="block", operation="12 Gram blocks, 13 vectors",
+           method=method, plain=method == "numpy", baseline=None if method == "numpy" else "numpy",
+           threads=n_threads, n_points=int(n), peak_bytes=peak, peak_source=source, **first)
+
+
 # -- preconditioners: setup and apply -------------------------------------------------------
 # name: (kind, how to build it, largest number of unknowns in the full set)
 PRECONDITIONERS = {

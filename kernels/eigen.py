@@ -72,10 +72,17 @@ METHODS = ("auto", "shift-invert", "lobpcg")
 # the measurements)
 _INTERMEDIATE = 1
 # the matrix-free operators of a multigrid built here: lobpcg applies it to every vector
-# of the block at every iteration, and the assembled K and M already take more memory than
-# the edge weights (0.45 of K), so the fastest product is worth its memory
+# of the block at every iteration, so the fastest product is worth its memory: on triangles
+# with a constant or per-cell scalar coefficient the multigrid's own choice (``inherited``,
+# 7.8 against 11.4 WU per V-cycle at 1e6 unknowns, docs/eigenmodes.md), else ``edges``
 # (docs/matrix-free.md; DEFAULT_VARIANT favours memory for one solve)
 _VARIANT = "edges"
+
+
+def _variant(level):
+    if level.mesh.dim == 2 and level.kappa.kind in ("constant", "cell"):
+        return None
+    return _VARIANT
 
 
 @dataclasses.dataclass
@@ -396,12 +403,12 @@ def _preconditioner(level, name, options, quadrature):
             # its levels carry the stiffness and the shift's lumped mass: K + shift M
             mass = level.expand(shift * level.M.sum(axis=1).reshape(-1, 1))[:, 0]
             context = PreconditionerContext(mesh=level.mesh, coefficient=level.kappa,
-                                            fixed=level.held, variant=_VARIANT,
+                                            fixed=level.held, variant=_variant(level),
                                             quadrature=quadrature, mass=np.asarray(mass))
             return make_preconditioner(A, chosen, context=context, **options)
         return make_preconditioner(A, chosen, **options)
     context = PreconditionerContext(mesh=level.mesh, coefficient=level.kappa, fixed=level.held,
-                                    variant=_VARIANT, quadrature=quadrature)
+                                    variant=_variant(level), quadrature=quadrature)
     try:
         return make_preconditioner(level.K, chosen, context=context, **options)
     except InputError:
@@ -460,7 +467,7 @@ def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, 
         if X is None:
             X0 = np.random.default_rng(seed).standard_normal((level.unknowns, m))
         else:
-            X0 = _es.prolong(level.mesh, X)[level.free]
+            X0 = _es.prolong(level.mesh, X, level.free)
         t = time.perf_counter()
         T = _preconditioner(level, name, options, quadrature)
         timings["setup"] += time.perf_counter() - t

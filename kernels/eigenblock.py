@@ -176,15 +176,15 @@ def run(blocks, X0, Y, *, k, rtol, maxiter, iterations=None, M=None):
     # eleven buffers of n x m doubles, allocated (and first touched) once: X, W, P and
     # their products with K and M, the residuals as rows and the preconditioned rows, and
     # one for the new Ritz vectors (the new direction is made in the preconditioned rows')
-    pool = [np.empty(n * m) for _ in range(11)]
-    X, W, P, KX, KW, KP, MX, MW, MP = (b.reshape(n, m) for b in pool[:9])
+    pool = np.empty((11, n, m))
+    X, W, P, KX, KW, KP, MX, MW, MP = pool[:9]
     rows, done = pool[9].reshape(m, n), pool[10].reshape(m, n)
-    new_x, new_p = pool[9].reshape(n, m), pool[10].reshape(n, m)
+    new_x, new_p = pool[9], pool[10]
 
     X[:] = X0
     constraints.apply(X)
     blocks.products(X, KX, MX)
-    theta, C = _rayleigh_ritz(blocks, [X], [KX], [MX], m)
+    theta, C = _rayleigh_ritz(blocks, pool, [0], [3], [6], m)
     np.matmul(X, C, out=new_x)
     X[:] = new_x
     blocks.products(X, KX, MX)
@@ -198,9 +198,9 @@ def run(blocks, X0, Y, *, k, rtol, maxiter, iterations=None, M=None):
         constraints.apply(W)
         blocks.products(W, KW, MW)
         if steps == 0:  # no direction yet
-            theta, C = _rayleigh_ritz(blocks, [X, W], [KX, KW], [MX, MW], m)
+            theta, C = _rayleigh_ritz(blocks, pool, [0, 1], [3, 4], [6, 7], m)
         else:
-            theta, C = _rayleigh_ritz(blocks, [X, W, P], [KX, KW, KP], [MX, MW, MP], m)
+            theta, C = _rayleigh_ritz(blocks, pool, [0, 1, 2], [3, 4, 5], [6, 7, 8], m)
         t = time.perf_counter()
         # P = W C_W + P C_P, then X = X C_X + P (rows and done are free again)
         np.matmul(W, C[m:2 * m], out=new_p)
@@ -223,19 +223,23 @@ def run(blocks, X0, Y, *, k, rtol, maxiter, iterations=None, M=None):
     return LobpcgOutcome(theta, X, steps, history, errors, converged)
 
 
-def _rayleigh_ritz(blocks, basis, kb, mb, m):
-    """Ritz pairs of the basis (a list of (n, m) blocks) from its products ``kb``, ``mb``."""
+def _rayleigh_ritz(blocks, pool, basis, kb, mb, m):
+    """Ritz pairs of the basis ``pool[basis]`` from its products ``pool[kb]``, ``pool[mb]``
+    (lists of block numbers): both Gram matrices' upper blocks in one pass."""
     t = time.perf_counter()
     q = len(basis)
+    pairs = [(i, j) for i in range(q) for j in range(i, q)]
+    left = np.array([basis[i] for i, _ in pairs] * 2, dtype=np.int64)
+    right = np.array([kb[j] for _, j in pairs] + [mb[j] for _, j in pairs], dtype=np.int64)
+    parts = np.empty((len(left), m, m))
+    _kb.gram_pairs(pool, left, right, parts)
     GK = np.empty((q * m, q * m))
     GM = np.empty_like(GK)
-    for i in range(q):
-        for j in range(i, q):
-            rows, cols = slice(i * m, (i + 1) * m), slice(j * m, (j + 1) * m)
-            GK[rows, cols] = basis[i].T @ kb[j]
-            GM[rows, cols] = basis[i].T @ mb[j]
-            GK[cols, rows] = GK[rows, cols].T
-            GM[cols, rows] = GM[rows, cols].T
+    for p, (i, j) in enumerate(pairs):
+        rows, cols = slice(i * m, (i + 1) * m), slice(j * m, (j + 1) * m)
+        for G, part in ((GK, parts[p]), (GM, parts[len(pairs) + p])):
+            G[rows, cols] = part
+            G[cols, rows] = part.T
     out = ritz(GK, GM, m)
     blocks.seconds["dense"] += time.perf_counter() - t
     return out

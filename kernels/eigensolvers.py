@@ -41,6 +41,7 @@ import numpy as np
 import scipy.linalg
 from scipy.sparse.linalg import eigsh
 
+from hatkernels._jit import blocks as _kb
 from hatkernels.assembly import assemble_mass, assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.errors import ConvergenceError, InputError
@@ -157,13 +158,18 @@ def coarser(fine, held, kappa, rho):
             coarsen_coefficient(kappa, fine, r.coarse), coarsen_coefficient(rho, fine, r.coarse))
 
 
-def prolong(fine, X):
-    """Values ``X`` (n_coarse_points, j) interpolated linearly to the points of ``fine``."""
+def prolong(fine, X, rows=None):
+    """Values ``X`` (n_coarse_points, j) interpolated linearly to the points of ``fine``, or
+    to the points ``rows`` of it only (an (len(rows), j) block)."""
     r = fine.refinement
-    out = np.empty((fine.n_points, X.shape[1]))
-    out[r.coarse_points] = X
-    e = r.edge_points
-    out[r.midpoints] = 0.5 * (X[e[:, 0]] + X[e[:, 1]])
+    a = np.empty(fine.n_points, dtype=np.int64)
+    b = np.empty_like(a)
+    a[r.coarse_points] = b[r.coarse_points] = np.arange(r.coarse_points.size)
+    a[r.midpoints], b[r.midpoints] = r.edge_points[:, 0], r.edge_points[:, 1]
+    if rows is not None:
+        a, b = a[rows], b[rows]
+    out = np.empty((a.size, X.shape[1]))
+    _kb.interpolate_rows(np.ascontiguousarray(X, dtype=np.float64), a, b, out)
     return out
 
 

@@ -91,6 +91,20 @@ def test_residual_rows_and_from_rows_equal_numpy(seed, n, r):
     np.testing.assert_array_equal(back, rows.T)
 
 
+@settings(max_examples=25, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), n=st.integers(1, 7000), m=st.integers(1, 6),
+       pairs=st.lists(st.tuples(st.integers(0, 3), st.integers(0, 3)), min_size=1, max_size=5))
+def test_gram_pairs_equal_numpys_products(seed, n, m, pairs):
+    pool = np.random.default_rng(seed).standard_normal((4, n, m))
+    left = np.array([a for a, _ in pairs], dtype=np.int64)
+    right = np.array([b for _, b in pairs], dtype=np.int64)
+    out = np.full((len(pairs), m, m), np.nan)
+    kb.gram_pairs(pool, left, right, out)
+    for p, (a, b) in enumerate(pairs):
+        np.testing.assert_allclose(out[p], pool[a].T @ pool[b], rtol=1e-12,
+                                   atol=1e-12 * n)
+
+
 def test_kernels_give_the_same_bits_on_one_and_two_threads():
     A, B = random_pair(5, 20_000, 0.0004, False)
     x = np.random.default_rng(6).standard_normal((20_000, 13))
@@ -101,8 +115,11 @@ def test_kernels_give_the_same_bits_on_one_and_two_threads():
             kb.pair_product(A.indptr, A.indices, A.data, B.data, x, ax, bx)
             rows = np.empty((13, 20_000))
             kb.residual_rows(ax, bx, np.linspace(0, 1, 13), rows)
-            outs.append((ax, bx, rows))
-    for a, b in zip(*outs):
+            grams = np.empty((3, 13, 13))
+            kb.gram_pairs(np.stack([x, ax, bx]), np.array([0, 0, 1]), np.array([1, 2, 2]),
+                          grams)
+            outs.append((ax, bx, rows, grams))
+    for a, b in zip(*outs, strict=True):
         np.testing.assert_array_equal(a, b)
 
 
@@ -221,3 +238,28 @@ def test_the_start_block_is_not_modified():
     before = X.copy()
     run(PencilBlocks(K, M, Jacobi(K)), X, None, k=2, rtol=0.0, maxiter=2)
     np.testing.assert_array_equal(X, before)
+
+
+@settings(max_examples=15, deadline=None)
+@given(cells=st.integers(1, 6), times=st.integers(1, 2), j=st.integers(1, 4),
+       seed=st.integers(0, 2**32 - 1))
+def test_prolong_is_linear_interpolation_at_the_midpoints(cells, times, j, seed):
+    # the plain formula: a coarse point keeps its value, an edge midpoint takes the mean
+    from hatkernels.eigensolvers import prolong
+
+    fine = rectangle(cells, cells + 1)
+    for _ in range(times):
+        fine = fine.refine()
+    r = fine.refinement
+    X = np.random.default_rng(seed).standard_normal((r.coarse.n_points, j))
+    expected = np.empty((fine.n_points, j))
+    expected[r.coarse_points] = X
+    e = r.edge_points
+    expected[r.midpoints] = 0.5 * (X[e[:, 0]] + X[e[:, 1]])
+    np.testing.assert_array_equal(prolong(fine, X), expected)
+    rows = np.flatnonzero(np.arange(fine.n_points) % 3 != 1)
+    np.testing.assert_array_equal(prolong(fine, X, rows), expected[rows])
+    # and it is the interpolant: a linear function stays itself (common practice, no source)
+    lin = r.coarse.points @ np.array([2.0, -3.0]) + 1.0
+    np.testing.assert_allclose(prolong(fine, lin[:, None])[:, 0],
+                               fine.points @ np.array([2.0, -3.0]) + 1.0, atol=1e-13)
