@@ -42,7 +42,7 @@ import scipy.linalg
 from scipy.sparse.linalg import eigsh
 
 from hatkernels._jit import blocks as _kb
-from hatkernels.assembly import assemble_mass, assemble_stiffness
+from hatkernels.assembly import StiffnessAssembler, assemble_mass, assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.precond.gmg import coarsen_coefficient
@@ -121,8 +121,14 @@ class Level:
 
 def build_level(mesh, held, kappa, rho, quadrature):
     """Assemble and reduce the problem on ``mesh`` (``kappa``, ``rho`` parsed Coefficients)."""
-    K = assemble_stiffness(mesh, kappa, quadrature=quadrature)
-    M = assemble_mass(mesh, rho, quadrature=quadrature)
+    if mesh.dim == 2:  # one symbolic phase (the pattern) for both matrices
+        assembler = StiffnessAssembler(mesh, fused=True)
+        K = assembler.plan.matrix(assembler.assemble_data(kappa, quadrature=quadrature))
+        M = assembler.assemble_mass(rho, quadrature=quadrature)
+        del assembler
+    else:
+        K = assemble_stiffness(mesh, kappa, quadrature=quadrature)
+        M = assemble_mass(mesh, rho, quadrature=quadrature)
     rhs = np.zeros(mesh.n_points)
     k = apply_dirichlet(K, rhs, held)
     del K
