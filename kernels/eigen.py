@@ -117,8 +117,8 @@ class EigenStats:
     timings : dict
         Seconds: ``assemble`` (all levels), ``setup`` (preconditioners), ``solve``
         (eigensolvers), ``total``; with lobpcg also the parts of ``solve`` spent in
-        ``products`` (stiffness and mass) and in the ``preconditioner`` (the rest of it is
-        lobpcg's own dense block algebra).
+        ``products`` (stiffness and mass), the ``preconditioner`` and the ``dense`` block
+        algebra (Gram matrices and updates).
     product_seconds : float
         One product with the assembled stiffness matrix of the given mesh (the faster of the
         parallel CSR kernel and scipy's product, best of three), measured in the same call.
@@ -474,7 +474,7 @@ def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, 
         blocks = _eb.PencilBlocks(level.K, level.M, T)
         Y = level.zero if level.zero.shape[1] else None
         t = time.perf_counter()
-        out = _eb.run(blocks, X0, Y, k=wanted, rtol=rtol, maxiter=maxiter, M=level.M,
+        out = _eb.run(blocks, X0, Y, k=wanted, rtol=rtol, maxiter=maxiter,
                       iterations=None if problem is None else _INTERMEDIATE)
         timings["solve"] += time.perf_counter() - t
         for key, count in blocks.counts.items():

@@ -53,6 +53,7 @@ import numpy as np
 import scipy.linalg
 
 from hatkernels._jit import blocks as _kb
+from hatkernels.eigensolvers import LobpcgOutcome, error_estimates
 from hatkernels.errors import ConvergenceError
 
 __all__ = ["PencilBlocks", "run", "ritz", "shared_pattern", "DROP", "VECTORS_PER_COLUMN"]
@@ -99,6 +100,7 @@ class PencilBlocks:
 
     def __init__(self, K, M, preconditioner):
         self.n = K.shape[0]
+        self.M = M
         self._pattern = shared_pattern(K, M)
         self._T = preconditioner
         self.counts = {"stiffness": 0, "mass": 0, "preconditioner": 0}
@@ -159,20 +161,18 @@ class _Constraints:
             B -= self.Y @ (self.MY.T @ B)
 
 
-def run(blocks, X0, Y, *, k, rtol, maxiter, iterations=None, M=None):
+def run(blocks, X0, Y, *, k, rtol, maxiter, iterations=None):
     """LOBPCG from the start block ``X0`` (n, m), not modified.
 
-    ``Y`` (n, z) or None: M-orthonormal constraints (zero modes), with ``M``
-    the mass matrix they are orthonormal in.  Stops when the ``k`` smallest
+    ``Y`` (n, z) or None: constraints (zero modes), orthonormal in the mass
+    matrix of ``blocks``.  Stops when the ``k`` smallest
     Ritz values' estimated relative errors are at most ``rtol``, or after
     ``iterations`` iterations when given (``rtol`` then unused), or after
     ``maxiter``.  Returns a :class:`hatkernels.eigensolvers.LobpcgOutcome`
     with the vectors as an (n, m) array, M-orthonormal.
     """
-    from hatkernels.eigensolvers import LobpcgOutcome, error_estimates
-
     n, m = X0.shape
-    constraints = _Constraints(Y, M)
+    constraints = _Constraints(Y, blocks.M)
     # eleven buffers of n x m doubles, allocated (and first touched) once: X, W, P and
     # their products with K and M, the residuals as rows and the preconditioned rows, and
     # one for the new Ritz vectors (the new direction is made in the preconditioned rows')
