@@ -31,9 +31,10 @@ block algebra took 9.7 of the 17.5 seconds of a ten-mode solve
 (cProfile, docs/eigenmodes.md), and its blocks are stored so that each
 preconditioner application needs a transposed copy.  Here the sparse
 products take the whole block in one pass over the matrices
-(:func:`hatkernels._jit.blocks.pair_product`), the dense algebra is two
-matrix products per Gram or update (BLAS), and the preconditioner reads
-and writes contiguous rows.
+(:func:`hatkernels._jit.blocks.pair_product`), all Gram blocks of a
+Rayleigh-Ritz step are formed in one pass over the block
+(:func:`hatkernels._jit.blocks.gram_pairs`), the updates are BLAS, and the
+preconditioner reads and writes contiguous rows.
 
 Stopping is the caller's: :func:`run` records the Ritz values of every
 iterate and stops when the estimate of
@@ -56,14 +57,11 @@ from hatkernels._jit import blocks as _kb
 from hatkernels.eigensolvers import LobpcgOutcome, error_estimates
 from hatkernels.errors import ConvergenceError
 
-__all__ = ["PencilBlocks", "run", "ritz", "shared_pattern", "DROP", "VECTORS_PER_COLUMN"]
+__all__ = ["PencilBlocks", "run", "ritz", "shared_pattern", "DROP"]
 
 #: Relative eigenvalue of the scaled mass Gram matrix below which a basis
 #: direction counts as dependent on the others and is dropped.
 DROP = 1e-10
-
-#: Vectors of ``n`` doubles held per column of the block (see the module notes).
-VECTORS_PER_COLUMN = 11
 
 
 def shared_pattern(A, B):

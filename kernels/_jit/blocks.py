@@ -7,8 +7,9 @@ contiguous run of the block (one or two cache lines), where ``w`` separate
 vectors would cost ``w`` scattered reads.  Measured on a 1,046,529-unknown
 stiffness and mass pair, 13 vectors: one :func:`pair_product` costs 8.6
 single products (work units), the same products vector by vector in
-vector-per-row storage 15.8, and separately 26 (``bench/eigenmodes.py``
-records the figures of each run).
+vector-per-row storage 15.8, and separately 26
+(``bench/test_bench_linear.py::test_block_products`` measures it against
+scipy's products and the single-vector kernel).
 
 A preconditioner takes one contiguous vector, so the residuals go out as
 rows (:func:`residual_rows`, one vector per row) and the preconditioned
@@ -25,7 +26,8 @@ from numba import prange, uint64
 
 from hatkernels._jit import jit
 
-__all__ = ["pair_product", "residual_rows", "from_rows", "gram_pairs", "interpolate_rows", "ROWS", "GRAM_ROWS"]
+__all__ = ["pair_product", "residual_rows", "from_rows", "gram_pairs", "interpolate_rows",
+           "ROWS", "GRAM_ROWS"]
 
 #: Unknowns per parallel task of the copies between layouts.
 ROWS = 4096
@@ -94,8 +96,8 @@ def gram_pairs(pool, left, right, out):
     pair's partial product (BLAS on the cached chunk), and the partial
     products are added in chunk order.  One ``X.T @ Y`` per pair reads both
     blocks from memory each time, and BLAS runs a product this narrow (m
-    columns, n rows) on one thread; at 1e6 rows and 12 pairs of 13 columns
-    this is about five times faster (docs/eigenmodes.md).
+    columns, n rows) on one thread; for 12 pairs of 13 columns this is 3 to 4
+    times faster (``bench/test_bench_linear.py::test_gram_pairs``).
     """
     n = pool.shape[1]
     q = left.shape[0]
