@@ -5,7 +5,9 @@
 
 For each size ``n`` the cooling unit square (``rectangle(n, n)``, ``(n + 1)^2``
 points; ``u0 = sin(pi x) sin(pi y)``, ``u = 0`` on the boundary, Crank-Nicolson,
-``dt`` fixed, ``--steps`` steps) is marched twice, each in a fresh process:
+``dt`` fixed, ``--steps`` steps; ``--case`` heating: from ``u0 = 0`` with a unit
+source, jump: from 1 on a disc and 0 elsewhere) is marched twice, each in a
+fresh process:
 
 ``hatkernels``
     :func:`hatkernels.transient.solve_transient` with its defaults (the matrix
@@ -20,8 +22,9 @@ points; ``u0 = sin(pi x) sin(pi y)``, ``u = 0`` on the boundary, Crank-Nicolson,
     default ``COLAMD`` and half the solve time at 10^5 unknowns), then per step
     ``u = lu.solve((M - dt/2 K) @ u)``.
 
-Per step: the median wall time over the steps after the first (which has no
-previous step to start from), and the same in work units (WU: one product with the
+Per step: the median and the mean wall time over the steps after the first
+(which has no previous step to start from; the mean counts the steps that need
+no CG iteration and those that need one alike), and the same in work units (WU: one product with the
 assembled ``M + dt/2 K`` by the library's parallel CSR kernel, measured in the
 same process).  Also: setup times (assembly; preconditioner or factorisation),
 iterations, peak resident memory above the process's baseline (after a small
@@ -44,9 +47,9 @@ import sys
 import time
 
 
-def _problem(n, dim, refine=0):
+def _problem(n, dim, refine=0, case="cooling"):
     """The mesh (``n`` cells per side; with ``refine`` the coarse mesh of ``n / 2^refine``
-    cells per side refined that many times: the same points) and u0."""
+    cells per side refined that many times: the same points), u0 and the source."""
     import numpy as np
 
     from hatkernels.mesh import cuboid, rectangle
@@ -57,8 +60,12 @@ def _problem(n, dim, refine=0):
     mesh = rectangle(c, c) if dim == 2 else cuboid(c, c, c)
     for _ in range(refine):
         mesh = mesh.refine()
-    u0 = np.prod(np.sin(np.pi * mesh.points), axis=1)
-    return mesh, u0
+    if case == "cooling":
+        return mesh, np.prod(np.sin(np.pi * mesh.points), axis=1), 0.0
+    if case == "heating":
+        return mesh, np.zeros(mesh.n_points), 1.0
+    r2 = ((mesh.points - 0.5) ** 2).sum(axis=1)  # "jump": a hot disc in a cold body
+    return mesh, (r2 < 0.1).astype(float), 0.0
 
 
 def worker(args):
@@ -67,10 +74,10 @@ def worker(args):
     from hatkernels.perf import PeakMemory
     from hatkernels.transient import solve_transient
 
-    small, u_small = _problem(32, args.dim, min(args.refine, 3))
-    solve_transient(small, u_small, [0.01], dt=0.001,  # the kernels loaded first
+    small, u_small, f = _problem(32, args.dim, min(args.refine, 3), args.case)
+    solve_transient(small, u_small, [0.01], dt=0.001, f=f,  # the kernels loaded first
                     preconditioner=args.preconditioner)
-    mesh, u0 = _problem(args.n, args.dim, args.refine)
+    mesh, u0, f = _problem(args.n, args.dim, args.refine, args.case)
     dt, steps = args.dt, args.steps
     rec = {"method": args.method, "dim": args.dim, "n": args.n, "points": mesh.n_points,
            "dt": dt, "steps": steps}
@@ -78,7 +85,7 @@ def worker(args):
     if args.method == "hatkernels":
         t = time.perf_counter()
         with peak:
-            sol = solve_transient(mesh, u0, [steps * dt], dt=dt, startup=0,
+            sol = solve_transient(mesh, u0, [steps * dt], dt=dt, startup=0, f=f,
                                   preconditioner=args.preconditioner)
         s = sol.stats
         later = slice(1, None)
@@ -87,13 +94,15 @@ def worker(args):
                    product_s=s.product_seconds,
                    step_s=float(np.median(s.step_seconds[later])),
                    step_wu=float(np.median(s.work_units[later])),
+                   step_mean_s=float(np.mean(s.step_seconds[later])),
+                   step_mean_wu=float(np.mean(s.work_units[later])),
                    iterations=s.iterations.tolist(), rtol=s.rtol,
                    preconditioner=s.preconditioner, converged=s.converged, threads=s.threads)
         u = sol.u[-1]
     else:
         import scipy.sparse.linalg as sla
 
-        from hatkernels.assembly import StiffnessAssembler
+        from hatkernels.assembly import StiffnessAssembler, assemble_load
         from hatkernels.boundary import apply_dirichlet
         from hatkernels.transient_steps import measure_product
 
@@ -105,6 +114,7 @@ def worker(args):
             held = mesh.boundary_points()
             A = apply_dirichlet(M + 0.5 * dt * K, np.zeros(mesh.n_points), held)
             B = (M - 0.5 * dt * K).tocsr()[A.free][:, A.free]  # not definite: scipy slices
+            load = dt * assemble_load(mesh, f)[A.free] if f else 0.0
             del K, M
             assemble = time.perf_counter() - t
             product = measure_product(A.A)
@@ -115,12 +125,13 @@ def worker(args):
             times = []
             for _ in range(steps):
                 t = time.perf_counter()
-                x = lu.solve(B @ x)
+                x = lu.solve(B @ x + load)
                 times.append(time.perf_counter() - t)
         later = times[1:]
         rec.update(unknowns=int(A.A.shape[0]), nnz=int(A.A.nnz), assemble_s=assemble,
                    setup_s=factor, product_s=product, step_s=float(np.median(later)),
                    step_wu=float(np.median(later)) / product, ordering=args.ordering,
+                   step_mean_s=float(np.mean(later)), step_mean_wu=float(np.mean(later)) / product,
                    fill_per_unknown=(lu.L.nnz + lu.U.nnz) / A.A.shape[0])
         u = A.expand(x)
     rec.update(peak_bytes=peak.peak, bytes_per_point=peak.peak / mesh.n_points,
@@ -141,7 +152,8 @@ def _run(method, n, args, field, ordering):
     cmd = [sys.executable, os.path.abspath(__file__), "--worker", "--method", method,
            "--n", str(n), "--dim", str(args.dim), "--dt", str(args.dt), "--steps",
            str(args.steps), "--ordering", ordering, "--field", field,
-           "--refine", str(args.refine), "--preconditioner", args.preconditioner]
+           "--refine", str(args.refine), "--preconditioner", args.preconditioner,
+           "--case", args.case]
     load = os.getloadavg()[0]
     # OpenBLAS's threads (the dense coarsest solves) would compete with numba's
     # (DEVELOPERS.md, Benchmarks); SuperLU does not use them
@@ -169,6 +181,9 @@ def main():
     ap.add_argument("--preconditioner", default="amg",
                     help="hatkernels' preconditioner (gmg needs --refine)")
     ap.add_argument("--steps", type=int, default=20)
+    ap.add_argument("--case", choices=("cooling", "heating", "jump"), default="cooling",
+                    help="cooling: u0 = sin(pi x) sin(pi y) (the default); heating: u0 = 0 "
+                         "and a unit source; jump: u0 = 1 on a disc, 0 elsewhere")
     ap.add_argument("--orderings", nargs="+", default=["COLAMD", "MMD_AT_PLUS_A"],
                     help="SuperLU column orderings (permc_spec) of the baseline; COLAMD is "
                          "scipy's default")
@@ -196,7 +211,8 @@ def main():
         ours_u = np.load(field)
         records.append(ours)
         print(f"{args.dim}-D n={n} hatkernels: {points:,} points, step "
-              f"{ours['step_s'] * 1e3:.1f} ms = {ours['step_wu']:.1f} WU "
+              f"{ours['step_s'] * 1e3:.1f} ms = {ours['step_wu']:.1f} WU (mean "
+              f"{ours['step_mean_s'] * 1e3:.1f} ms = {ours['step_mean_wu']:.1f} WU) "
               f"({np.mean(ours['iterations'][1:]):.1f} iterations), setup "
               f"{ours['setup_s']:.2f} s, {ours['bytes_per_point']:.0f} B/point", flush=True)
         for ordering in args.orderings:
@@ -213,19 +229,22 @@ def main():
             base_u = np.load(field)
             fill[ordering] = rec["bytes_per_point"]
             rec["speedup_per_step"] = rec["step_s"] / ours["step_s"]
+            rec["speedup_per_step_mean"] = rec["step_mean_s"] / ours["step_mean_s"]
             rec["relative_difference"] = float(np.abs(ours_u - base_u).max()
                                                / np.abs(base_u).max())
             records.append(rec)
             print(f"  superlu {ordering}: step {rec['step_s'] * 1e3:.1f} ms = "
                   f"{rec['step_wu']:.1f} WU, factor {rec['setup_s']:.1f} s, "
                   f"{rec['bytes_per_point']:.0f} B/point; hatkernels is "
-                  f"{rec['speedup_per_step']:.1f}x faster per step, fields differ by "
+                  f"{rec['speedup_per_step']:.1f}x faster per step (median; mean "
+                  f"{rec['speedup_per_step_mean']:.1f}x), fields differ by "
                   f"{rec['relative_difference']:.1e}", flush=True)
         os.unlink(field)
     if args.out:
         from hatkernels._output import write_json
 
         write_json(args.out, {"machine": machine, "dim": args.dim, "dt": args.dt,
+                              "case": args.case,
                               "steps": args.steps, "refine": args.refine,
                               "preconditioner": args.preconditioner, "records": records})
 

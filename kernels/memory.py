@@ -46,10 +46,11 @@ UNKNOWN_BYTES_PER_POINT = 400
 THREE_D_ASSEMBLED = 950
 
 #: What a march (hatkernels.solve_transient) holds beyond a steady solve's peak, per
-#: point: the mass matrix and ``dt K`` (values sharing the stiffness's indices) and a few
-#: more vectors.  Measured with amg: 789 to 834 bytes per point against the steady
-#: solve's 640 (docs/transient.md).  The outputs come on top (8 bytes per point each).
-TRANSIENT_EXTRA = 200
+#: point: the mass matrix and ``dt K`` (values sharing the stiffness's indices), a few
+#: more vectors and the start space's eight (64 bytes).  Measured with amg: 871 to 885
+#: bytes per point against the steady solve's 640 (docs/transient.md).  The outputs
+#: come on top (8 bytes per point each).
+TRANSIENT_EXTRA = 264
 
 #: lobpcg (hatkernels.eigenmodes) per point: the assembled K and M and the multigrid, and
 #: per vector of its block (``m``, the modes asked for and a few more) the block's eleven

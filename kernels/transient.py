@@ -25,9 +25,11 @@ costs no second matrix or preconditioner.
 Cost.  ``M + theta dt K`` (on the free unknowns) is assembled, and its
 preconditioner built, once per step size (:mod:`hatkernels.transient_steps`);
 each step is one product with ``K`` for the right-hand side and a CG solve
-for the change of u, warm-started from the last two steps' changes (a quadratic
-extrapolation of u), typically two or three iterations.  Memory: the matrices and the
-preconditioner, a few vectors, and the fields at the output times only
+for the change of u, started from the change's projection onto the last changes
+that needed iterations (:class:`~hatkernels.transient_steps.StartSpace`; the
+first steps of a system: the last changes extrapolated), typically none to two
+iterations.  Memory: the matrices and the preconditioner, a few vectors, the
+last changes (eight vectors per system), and the fields at the output times only
 (``len(times) x n_points``); probes record every step at O(number of probes).
 
 CAUTION: results are engineering estimates and must be checked by a qualified
@@ -347,9 +349,13 @@ class _Run:
                 c_dt = system.dt * c
                 last = (system, theta)
             system.rhs(x, c_dt, _ratio(h, system.dt), dD, rhs)
-            x0 = _start(prev, h_prev, prev2, h_prev2, h, x0_buf)
+            x0 = system.space.guess(rhs, x0_buf)
+            if x0 is None:
+                x0 = _start(prev, h_prev, prev2, h_prev2, h, x0_buf)
             result = system.solve(rhs, x0, rtol, atol, maxiter)
             d = result.x
+            if result.iterations:
+                system.space.add(d, system.matvec)
             self.iterations[i] = result.iterations
             if result.info != 0:
                 self.failed += 1

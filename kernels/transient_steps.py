@@ -13,8 +13,8 @@ The system matrix depends on ``tau`` alone, so a backward Euler step of
 ``dt / 2`` uses the Crank-Nicolson matrix of ``dt`` (Rannacher's start-up, see
 :mod:`hatkernels.transient`): :class:`System` is built once per ``tau``, with
 its preconditioner.  Solving for the change keeps CG's relative tolerance on
-the step's own scale, and the previous change is the first guess (a linear
-extrapolation of u).
+the step's own scale; the first guess is the change's projection onto the last
+changes of the same system (:class:`StartSpace`).
 
 :class:`Blocks` holds what is assembled once: the free-free blocks of ``M``
 and ``K``, the couplings to the held points, and the weights of the heat
@@ -40,7 +40,7 @@ from hatkernels.krylov import _operator
 from hatkernels.precond import PreconditionerContext, make_preconditioner
 from hatkernels.sparse import as_csr
 
-__all__ = ["Blocks", "System", "measure_product"]
+__all__ = ["Blocks", "StartSpace", "System", "measure_product"]
 
 
 def _sparse_weights(w):
@@ -181,6 +181,7 @@ class System:
             rows, sub = _rows_with_entries(blocks.M_FD + tau * blocks.K_FD)
             self.lift = (rows, sub.tocsr())
         self.M, self.description, self.preconditioner_bytes = None, "", 0
+        self.space = StartSpace(self._n, START_SPACE)
 
     def precondition(self, preconditioner, context, options):
         """Build the preconditioner ``preconditioner`` (a registered name) of ``M + tau K``."""
@@ -193,7 +194,12 @@ class System:
     def stored_bytes(self):
         A = self.A
         return int(A.data.nbytes + A.indices.nbytes + A.indptr.nbytes + self.K_dt[2].nbytes
-                   + self.preconditioner_bytes)
+                   + self.preconditioner_bytes + self.space.nbytes)
+
+    def matvec(self, v, out):
+        """``out = (M + tau K) v``."""
+        A = self.A
+        _k.spmv(A.indptr, A.indices, A.data, v, out)
 
     def rhs(self, x, c_dt, scale, dD, out):
         """``out = scale (c_dt - dt K_FF x) - (M + tau K)_FD dD`` (``c_dt`` is ``dt`` times
@@ -210,6 +216,78 @@ class System:
         """CG on ``(M + tau K) d = rhs`` from ``x0``; the :class:`~hatkernels._cg.CGResult`."""
         return _cg.run(self.product, rhs, x0, self.M, _cg.LOCAL, rtol=rtol, atol=atol,
                        maxiter=maxiter)
+
+
+#: Directions :class:`StartSpace` keeps per system.
+START_SPACE = 4
+
+
+class StartSpace:
+    """CG's first guess for the steps of one system ``A``: the projection of the step's
+    solution, in ``A``'s energy norm, onto the span of the last ``size`` solutions
+    that needed CG iterations.  P. F. Fischer, *Projection techniques for iterative
+    solution of Ax = b with successive right-hand sides*, Computer Methods in Applied
+    Mechanics and Engineering 163 (1998) 193-204, with a window of the latest
+    solutions in place of his restarted orthonormal basis: no orthogonalisation
+    passes, and no step loses the history.
+
+    With the solutions ``X`` and their products ``AX`` kept, the guess for ``b`` is
+    ``x0 = X a`` with ``G a = X^T b``, ``G = X^T A X`` (updated by one row per added
+    solution).  The successive solutions are nearly parallel, so ``G`` is solved
+    by its eigenvalues after scaling to a unit diagonal, dropping the directions
+    below :attr:`DROP` of the largest (rounding, not information).  Memory:
+    ``2 size`` vectors.
+    """
+
+    #: Eigenvalues of the scaled Gram matrix below this share of the largest are
+    #: dropped from the solve.
+    DROP = 1e-12
+
+    def __init__(self, n, size):
+        self.X = np.empty((size, n))
+        self.AX = np.empty((size, n))
+        self.G = np.zeros((size, size))
+        self.count = 0
+        self._next = 0
+        self._a = np.empty(size)
+        self._row = np.empty(size)
+
+    @property
+    def nbytes(self):
+        return self.X.nbytes + self.AX.nbytes
+
+    def guess(self, b, out):
+        """The projection of ``A^-1 b`` into ``out`` (None while nothing is held)."""
+        c = self.count
+        if c == 0:
+            return None
+        a = self._a
+        _k.row_dots(self.X, c, b, a)
+        G = self.G[:c, :c]
+        s = 1.0 / np.sqrt(np.diag(G))
+        lam, V = np.linalg.eigh(G * s[:, None] * s[None, :])
+        keep = lam > self.DROP * lam[-1]
+        coeffs = np.zeros(self.X.shape[0])
+        coeffs[:c] = s * (V[:, keep] @ ((V[:, keep].T @ (s * a[:c])) / lam[keep]))
+        _k.combine_rows(coeffs, self.X, c, 0.0, out)
+        return out
+
+    def add(self, x, product):
+        """Hold the solution ``x`` (copied) in place of the oldest; ``product(v, out)``
+        writes ``A v``."""
+        size = self.X.shape[0]
+        if size == 0 or not np.any(x):  # the zero solution adds nothing
+            return
+        i = self._next
+        v, Av = self.X[i], self.AX[i]
+        v[:] = x
+        product(v, Av)
+        count = min(self.count + 1, size)
+        row = self._row
+        _k.row_dots(self.X, count, Av, row)
+        self.count, self._next = count, (i + 1) % size
+        self.G[i, :count] = row[:count]
+        self.G[:count, i] = row[:count]
 
 
 def context_of(problem):

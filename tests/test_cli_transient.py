@@ -108,7 +108,9 @@ def test_the_plate_heats_up_and_writes_every_file(plate):
     assert all(r["min"] >= COOLANT - 1e-9 for r in s["outputs"])
     steps = s["steps"]
     assert len(steps["iterations"]) == s["schedule"]["steps"] == 102  # 100 + 2 half steps
-    assert 1 <= steps["iterations_min"] <= steps["iterations_max"] <= 20
+    # a step whose projected start meets the tolerance takes no iteration
+    assert 0 <= steps["iterations_min"] <= steps["iterations_max"] <= 20
+    assert sum(steps["iterations"]) > 0
     assert steps["work_units_median"] > 0
     if meshio_available():  # the collection names each file with its time
         sets = ET.parse(out / "series.pvd").getroot().iter("DataSet")

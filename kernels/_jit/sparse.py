@@ -42,6 +42,8 @@ __all__ = [
     "chebyshev_step",
     "chebyshev_zero_start",
     "chebyshev_last",
+    "row_dots",
+    "combine_rows",
 ]
 
 #: Entries per chunk of a dot product.  Fixed so that the summation order,
@@ -298,3 +300,30 @@ def chebyshev_last(q, dinv, c1, c2, r, d, x):
         ri = r[i] - q[i]
         di = c1 * d[i] + c2 * dinv[i] * ri
         x[i] += di
+
+
+@jit(parallel=True)
+def row_dots(X, count, v, out):
+    """``out[i] = X[i] . v`` for the first ``count`` rows of ``X`` in one pass over ``v``:
+    chunked as :func:`dot`, so each equals ``dot(X[i], v)`` bit for bit."""
+    n = v.shape[0]
+    nchunks = _nchunks(n)
+    partial = np.empty((count, nchunks))
+    for c in prange(nchunks):
+        lo = c * CHUNK
+        hi = min(lo + CHUNK, n)
+        for i in range(count):
+            partial[i, c] = _chunk_dot(X[i], v, lo, hi)
+    for i in range(count):
+        out[i] = _sum_in_order(partial[i])
+
+
+@jit(parallel=True)
+def combine_rows(coeffs, X, count, keep, out):
+    """``out = keep * out + sum_i coeffs[i] X[i]`` over the first ``count`` rows, each
+    entry summed in row order (``keep`` 0 ignores what ``out`` holds)."""
+    for j in prange(out.shape[0]):
+        s = 0.0
+        for i in range(count):
+            s += coeffs[i] * X[i, j]
+        out[j] = s if keep == 0.0 else keep * out[j] + s
