@@ -169,6 +169,40 @@ def test_gram_pairs(benchmark, machine, request, cells, method, n_threads):
            threads=n_threads, n_points=int(n), peak_bytes=peak, peak_source=source, **first)
 
 
+@pytest.mark.parametrize("method, n_threads",
+                         [pytest.param("numpy", MAX_THREADS, id="method=numpy"),
+                          pytest.param("dots", MAX_THREADS, id="method=dots")]
+                         + [pytest.param("ours", t, id=f"method=ours-threads={t}") for t in THREADS])
+def test_row_dots(benchmark, machine, request, cells, method, n_threads):
+    """The start space's guess (hatkernels.transient_steps.StartSpace): the dot products of
+    four held changes with a right-hand side, in one pass over it
+    (hatkernels._jit.sparse.row_dots), against one chunked ``dot`` per change and
+    NumPy's ``X @ v`` (BLAS)."""
+    from hatkernels._jit import sparse as KS
+
+    n = shared_mesh(cells).n_points
+    rng = np.random.default_rng(9)
+    X, v, out = rng.standard_normal((4, n)), rng.standard_normal(n), np.empty(4)
+    if method == "numpy":
+        fn = lambda: np.dot(X, v, out=out)  # noqa: E731
+    elif method == "dots":
+
+        def fn():
+            for i in range(4):
+                out[i] = KS.dot(X[i], v)
+    else:
+        fn = lambda: KS.row_dots(X, 4, v, out)  # noqa: E731
+    with threads(n_threads):
+        first = warm(benchmark, fn)
+        benchmark.pedantic(fn, **_vector_rounds(request.config))
+        peak, source = peak_of_call(benchmark, fn)
+    floor = X.nbytes + v.nbytes  # each vector read once
+    moved = floor if method != "dots" else 2 * X.nbytes
+    record(benchmark, machine, moved, floor, kind="block", operation="4 dot products",
+           method=method, plain=method == "numpy", baseline=None if method == "numpy" else "numpy",
+           threads=n_threads, n_points=int(n), peak_bytes=peak, peak_source=source, **first)
+
+
 # -- preconditioners: setup and apply -------------------------------------------------------
 # name: (kind, how to build it, largest number of unknowns in the full set)
 PRECONDITIONERS = {

@@ -25,7 +25,7 @@ from scipy.sparse.linalg import LinearOperator
 from hatkernels._jit import patch_points as _pp
 from hatkernels._jit import patch_smooth as _s
 from hatkernels._jit import patches as _p
-from hatkernels.assembly import assemble_stiffness
+from hatkernels.assembly import assemble_mass, assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.checks import integer_option
 from hatkernels.coefficients import per_triangle
@@ -33,7 +33,10 @@ from hatkernels.errors import InputError
 from hatkernels.precond.direct import SparseDirect, coarse_correction
 from hatkernels.precond.registry import Preconditioner
 
-__all__ = ["PatchOperator", "PatchMultigrid", "element_stiffness"]
+__all__ = ["PatchOperator", "PatchMultigrid", "element_mass", "element_stiffness"]
+
+#: The P1 mass matrix of a triangle of unit area, consistent and lumped to its row sums.
+_MASS = {False: (np.ones((3, 3)) + np.eye(3)) / 12.0, True: np.eye(3) / 3.0}
 
 
 def element_stiffness(coarse, kappa):
@@ -48,6 +51,19 @@ def element_stiffness(coarse, kappa):
     g = np.stack([-g1 - g2, g1, g2], axis=1)  # (m, 3, 2)
     area = 0.5 * np.abs(det)
     return np.ascontiguousarray(np.einsum("mid,mjd->mij", g, g) * (area * kappa)[:, None, None])
+
+
+def element_mass(coarse, sigma, level, lumped=False):
+    """``(m, 3, 3)``: the P1 mass matrix, times ``sigma`` (one number per coarse cell), of
+    every fine triangle of level ``level`` (``4**level`` per coarse cell, each of the
+    coarse area over ``4**level``), consistent or lumped to its row sums.  Like the
+    stiffness, it is the same for every fine triangle of a patch (it depends on the area
+    alone), so ``element_stiffness + element_mass`` is the stencil of ``K + M_sigma``."""
+    p = coarse.points[coarse.triangles]
+    d1, d2 = p[:, 1] - p[:, 0], p[:, 2] - p[:, 0]
+    area = 0.5 * np.abs(d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0])
+    return np.ascontiguousarray((area * sigma / 4.0**level)[:, None, None]
+                                * _MASS[bool(lumped)])
 
 
 class PatchOperator(LinearOperator):
@@ -101,10 +117,22 @@ class PatchOperator(LinearOperator):
         return self.pe.nbytes + self.pv.nbytes + self.K.nbytes
 
 
+def _per_cell_sigma(sigma, m):
+    sigma = np.asarray(sigma, dtype=np.float64)
+    if sigma.shape != (m,):
+        raise InputError(f"sigma must hold one number per coarse cell ({m}), got shape "
+                         f"{sigma.shape}")
+    bad = np.flatnonzero(~(np.isfinite(sigma) & (sigma >= 0)))
+    if bad.size:
+        raise InputError(f"sigma must be >= 0 and finite; it is {float(sigma[bad[0]])!r} on coarse "
+                         f"cell {int(bad[0])}")
+    return sigma
+
+
 def inverse_diagonals(layout, K):
-    """``(per cell, per edge, per vertex)``: the inverse diagonal of every level's matrix
-    (inside a patch, on a coarse edge, at a coarse vertex: the 2-D stencils do not change
-    with the level; 0 at held and unused points)."""
+    """``(per cell, per edge, per vertex)``: the inverse diagonal of a level's matrix with
+    element matrices ``K`` (inside a patch, on a coarse edge, at a coarse vertex: one
+    number each; 0 at held and unused points)."""
     tri, edge_cells = layout.topo[0], layout.topo[4]
     trace = K[:, 0, 0] + K[:, 1, 1] + K[:, 2, 2]
     dc = 1.0 / (2.0 * trace)
@@ -192,6 +220,11 @@ class PatchMultigrid(Preconditioner):
         Bottom of the smoother's interval as a fraction of its top.
     nested_cycles : int
         Cycles per level of :meth:`full_cycle_into`.
+    sigma : ndarray (n_cells,), optional
+        A mass term: the operator is ``K + M_sigma`` (``M_sigma`` the mass matrix times
+        ``sigma``, one number >= 0 per coarse cell, consistent or ``lumped``), every level
+        its own rediscretisation (for nested P1 spaces the same as the Galerkin product
+        ``P^T A P``); the time step's ``M / tau + K`` with ``sigma = capacity / tau``.
     single : bool
         Keep the levels' vectors in single precision (the arithmetic stays double):
         half the preconditioner's memory, for the largest solves.  CG around it
@@ -203,7 +236,7 @@ class PatchMultigrid(Preconditioner):
     needs_matrix = False
 
     def __init__(self, layout, kappa, *, degree=2, lower=1.0 / 6.0, nested_cycles=1,
-                 single=False):
+                 single=False, sigma=None, lumped=False):
         self.layout = layout
         k = layout.k
         if k < 1:
@@ -217,26 +250,38 @@ class PatchMultigrid(Preconditioner):
                              f"got shape {kappa.shape}")
         bad = np.flatnonzero(~(np.isfinite(kappa) & (kappa > 0)))
         if bad.size:
-            raise InputError(f"kappa must be positive and finite; it is {kappa[bad[0]]!r} on "
+            raise InputError(f"kappa must be positive and finite; it is {float(kappa[bad[0]])!r} on "
                              f"coarse cell {int(bad[0])}")
-        self.K = element_stiffness(layout.coarse, kappa)
-        dinv = inverse_diagonals(layout, self.K)
-        # Gershgorin's bound per level: the rows of every level from 2 up are of the
-        # same kinds (inside a patch, on an edge, at a vertex), so level 2 speaks for them
-        bounds = [PatchOperator(layout, self.K, level).diagonal_and_bound()[1]
-                  for level in range(1, min(k, 2) + 1)]
+        stiffness = element_stiffness(layout.coarse, kappa)
+        if sigma is None:
+            # the 2-D stiffness stencils do not change with the level, and Gershgorin's
+            # bound is the same from level 2 up (rows inside, on an edge, at a vertex)
+            E = [stiffness] * k
+            dinv = [inverse_diagonals(layout, stiffness)] * k
+            checked = range(1, min(k, 2) + 1)
+        else:
+            sigma = _per_cell_sigma(sigma, layout.n_cells)
+            E = [stiffness + element_mass(layout.coarse, sigma, level, lumped)
+                 for level in range(1, k + 1)]
+            dinv = [inverse_diagonals(layout, e) for e in E]
+            checked = range(1, k + 1)  # the mass term scales with the level
+        bounds = [PatchOperator(layout, E[level - 1], level).diagonal_and_bound()[1]
+                  for level in checked]
+        self.K = E[-1]  # the finest level's element matrices
         dtype = np.float32 if single else np.float64
         size = layout.size(k)
         self._work = (np.empty(size, dtype), np.empty(size, dtype))
-        self.levels = [_Level(layout, self.K, level, dinv, bounds[min(level, 2) - 1],
-                              self.degree, lower, finest=level == k, dtype=dtype,
-                              work=self._work)
+        self.levels = [_Level(layout, E[level - 1], level, dinv[level - 1],
+                              bounds[min(level, len(bounds)) - 1], self.degree, lower,
+                              finest=level == k, dtype=dtype, work=self._work)
                        for level in range(1, k + 1)]
         self.single = bool(single)
         self._scratch = None  # the finest right-hand side when r is not 0 at held points
         coarse = layout.coarse
         fixed = np.flatnonzero(layout.held_v | (np.diff(layout.topo[6]) == 0))
         A = assemble_stiffness(coarse, per_triangle(np.asarray(kappa, dtype=np.float64)))
+        if sigma is not None:
+            A = (A + assemble_mass(coarse, per_triangle(sigma), lumped=lumped)).tocsr()
         system = apply_dirichlet(A, np.zeros(coarse.n_points), fixed)
         self._coarse_free, self._coarse_A = system.free, system.A
         # every coarse point held: the coarse space has nothing to solve (its correction 0)

@@ -1,0 +1,337 @@
+"""Time stepping on a never-stored refined mesh: the theta scheme of
+:func:`hatkernels.transient.solve_transient` on the patches of :mod:`hatkernels.patches`.
+
+A coarse triangle mesh refined ``k`` times is kept as the coarse mesh and vectors
+(docs/patches.md).  In 2-D the P1 mass matrix of a triangle depends on its area
+alone, and every fine triangle of a patch has the coarse cell's area over
+``4**k``: so ``M + tau K`` is one 7-point stencil per coarse cell, like ``K``
+(:func:`hatkernels.patches.multigrid.element_mass`), and each level of the
+multigrid carries its own rediscretised ``M / tau + K`` (for nested P1 spaces the
+Galerkin product).  A step is the one of :mod:`hatkernels.transient_steps`: for
+the change ``d`` of u,
+
+    (M + tau K) d = h (b - K u^n)    (held rows: d = 0; a change of the held values
+                                      in the first step lifted as in the stored path)
+
+with ``tau = theta h``, CG with the patch multigrid started from the projection
+of ``d`` onto the last changes (:class:`~hatkernels.transient_steps.StartSpace`).
+
+The path takes data constant in time: a coefficient and a capacity that are numbers or
+``{region: number}``, a source that is a number, a callable ``f(x, y)`` or
+``{region: number or callable}``, held values and fluxes that are numbers or
+``{tag: number}`` on whole coarse sides, and ``u0`` as a number, a callable ``u0(x, y)``
+or one value per point of the refined mesh.  Time-dependent data, reactions,
+convection and probes take :func:`~hatkernels.transient.solve_transient` on the
+stored refinement.  No heat balance is kept (it needs the held rows' equations).
+
+CAUTION: results are engineering estimates and must be checked by a qualified
+person against local codes and licensed practice.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+import warnings
+
+import numba
+import numpy as np
+
+from hatkernels import _cg
+from hatkernels._jit import patch_points as _pp
+from hatkernels._jit import patches as _p
+from hatkernels._jit import sparse as _k
+from hatkernels.checks import integer_option, real_option
+from hatkernels.coefficients import parse_coefficient
+from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.krylov import _check_scalars, _operator
+from hatkernels.patches.layout import PatchLayout
+from hatkernels.patches.load import callable_load
+from hatkernels.patches.multigrid import (
+    PatchMultigrid,
+    PatchOperator,
+    element_mass,
+    element_stiffness,
+)
+from hatkernels.patches.solve import (
+    _add_flux,
+    _flux,
+    _held,
+    _lifting,
+    _per_cell,
+    patch_path_reason,
+)
+from hatkernels.perf import peak_rss_bytes
+from hatkernels.problem import PoissonProblem
+from hatkernels.transient import SCHEMES, _schedule, _start
+from hatkernels.transient_data import InTime, checked_times
+from hatkernels.transient_results import TransientStats
+from hatkernels.transient_steps import START_SPACE, StartSpace
+
+__all__ = ["PatchMarch", "march_on_patches"]
+
+#: Coarse cells per block when ``u0`` is evaluated at the fine points.
+_BLOCK_CELLS = 256
+
+
+@dataclasses.dataclass
+class PatchMarch:
+    """What :func:`march_on_patches` computed.
+
+    Attributes
+    ----------
+    times : ndarray
+    values : ndarray, shape (len(times), n_fine)
+        u at the output times in the patch layout (every fine point once).
+    layout : PatchLayout
+    stats : TransientStats
+        ``product_seconds`` is NaN (no assembled matrix defines a work unit here;
+        ``bench/transient.py --patches`` times one on the stored refinement).
+    """
+
+    times: np.ndarray
+    values: np.ndarray
+    layout: PatchLayout
+    stats: TransientStats
+
+    @property
+    def u(self):
+        """u at the output times in the numbering of ``coarse.refine()`` repeated ``k``
+        times, made on use (one more array of the size of :attr:`values`)."""
+        return np.stack([self.layout.to_refined(v) for v in self.values])
+
+    def patch(self, cell, i=-1):
+        """``(lam, values)`` of coarse ``cell`` at output ``i`` (see
+        :meth:`PatchLayout.patch`)."""
+        return self.layout.patch(self.values[i], cell)
+
+
+def _refuse_timed(**data):
+    for name, v in data.items():
+        items = v.values() if isinstance(v, dict) else [v]
+        if any(isinstance(x, InTime) for x in items):
+            raise InputError(f"{name}: the patch path takes data constant in time; "
+                             f"in_time data take solve_transient on the stored refinement")
+
+
+def fine_values(layout, fn, what="u0"):
+    """``fn(x, y)`` at every fine point of ``layout``'s finest level, in its layout:
+    each block of coarse cells evaluates its lattices (points on shared sides are
+    written by every cell holding them, with the same value up to the rounding of
+    their coordinates; the last cell wins)."""
+    k, coarse = layout.k, layout.coarse
+    n = 2**k
+    size = layout.size(k)
+    index = np.arange(size, dtype=np.float64)  # exact below 2**53
+    lam = np.array([(n - i - j, i, j) for j in range(n + 1) for i in range(n + 1 - j)],
+                   dtype=np.float64) / n
+    corners = coarse.points[coarse.triangles]  # (m, 3, 2)
+    out = np.empty(size)
+    for lo in range(0, layout.n_cells, _BLOCK_CELLS):
+        cells = np.arange(lo, min(layout.n_cells, lo + _BLOCK_CELLS), dtype=np.int64)
+        where = np.empty((cells.size, lam.shape[0]))
+        _pp.gather_patches(index, cells, n, layout.topo, where)
+        xy = np.einsum("pr,crd->dcp", lam, corners[cells])
+        try:
+            v = np.asarray(fn(xy[0], xy[1]), dtype=np.float64)
+        except Exception as exc:
+            raise InputError(f"{what}(x, y) raised {type(exc).__name__}: {exc}") from exc
+        v = np.broadcast_to(v, where.shape)
+        bad = ~np.isfinite(v)
+        if bad.any():
+            c, p = np.argwhere(bad)[0]
+            raise InputError(f"{what}(x, y) is {float(v[c, p])!r} at ({xy[0, c, p]:.6g}, "
+                             f"{xy[1, c, p]:.6g}) in coarse cell {int(cells[c])}; it must be "
+                             f"finite")
+        out[where.astype(np.int64).ravel()] = v.ravel()
+    return out
+
+
+def _initial(layout, u0):
+    size = layout.size(layout.k)
+    if callable(u0):
+        return fine_values(layout, u0)
+    if isinstance(u0, bool):
+        raise InputError(f"u0 must be a number, an array or a callable, got {u0!r}")
+    v = np.asarray(u0)
+    if v.dtype.kind not in "fiu":
+        raise InputError(f"u0 must be real numbers, got dtype {v.dtype}")
+    if v.ndim == 0:
+        if not np.isfinite(v):
+            raise InputError(f"u0 is {float(v)!r}; it must be finite")
+        return np.full(size, float(v))
+    if v.shape != (size,):
+        raise InputError(f"u0 has shape {v.shape}; expected a number, a callable or one value "
+                         f"per point ({size},) of the refined mesh")
+    bad = np.flatnonzero(~np.isfinite(v))
+    if bad.size:
+        raise InputError(f"u0 is {float(v[bad[0]])!r} at point {int(bad[0])} of the refined "
+                         f"mesh; it must be finite")
+    return layout.from_refined(np.asarray(v, dtype=np.float64))
+
+
+class _System:
+    """``M + tau K`` on the finest level (held rows out), its multigrid and start space."""
+
+    def __init__(self, layout, kappa, capacity, stiffness, tau, lumped, degree):
+        k = layout.k
+        E = tau * stiffness + element_mass(layout.coarse, capacity, k, lumped)
+        self.A = PatchOperator(layout, E, k)
+        self.A_full = PatchOperator(layout, E, k, masked=False)
+        # the multigrid of M / tau + K, the same operator up to the factor tau
+        self.P = PatchMultigrid(layout, kappa, degree=degree, sigma=capacity / tau,
+                                lumped=lumped)
+        self.product, n = _operator(self.A)
+        self.M = _cg.as_preconditioner(self.P, n)
+        self.space = StartSpace(n, START_SPACE)
+
+    def matvec(self, v, out):
+        self.A.matvec_into(v, out)
+
+
+def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
+                     scheme="crank-nicolson", startup=4, lumped=False, f=0.0, dirichlet=0.0,
+                     dirichlet_on=None, coefficient=None, neumann=None, rtol=1e-6, atol=0.0,
+                     maxiter=None, check=False, quadrature=2, monitor=None, degree=2):
+    """March ``capacity du/dt - div(kappa grad u) = f`` on ``coarse`` refined ``refine``
+    times without storing the refined mesh; u at ``times``.
+
+    The arguments are those of :func:`hatkernels.transient.solve_transient` (the
+    data this path takes: see the module notes); ``degree`` is the multigrid's
+    Chebyshev degree.  Returns a :class:`PatchMarch`.  Memory per fine point: about
+    26 vectors (the outputs, u, the load, CG's five, the start space's eight, the two
+    last changes, the multigrid's work) plus 8 bytes per output time.
+    """
+    t_start = time.perf_counter()
+    _refuse_timed(f=f, dirichlet=dirichlet, neumann=neumann, capacity=capacity,
+                  coefficient=coefficient, u0=u0)
+    reason = patch_path_reason(coarse, refine, f=f, dirichlet=dirichlet,
+                               dirichlet_on=dirichlet_on, coefficient=coefficient,
+                               neumann=neumann)
+    if reason is not None:
+        raise InputError(f"march_on_patches cannot take this problem: {reason}")
+    dt = real_option(dt, "dt", positive=True)
+    times = checked_times(times)
+    if not isinstance(scheme, str) or scheme not in SCHEMES:
+        raise InputError(f"unknown scheme {scheme!r}; choose one of {list(SCHEMES)}")
+    theta = SCHEMES[scheme]
+    startup = integer_option(startup, "startup", minimum=0)
+    if startup % 2:
+        raise InputError(f"startup must be even (half steps come in pairs), got {startup}")
+    if not isinstance(lumped, bool):
+        raise InputError(f"lumped must be True or False, got {lumped!r}")
+    if monitor is not None and not callable(monitor):
+        raise InputError(f"monitor must be callable, got {type(monitor).__name__}")
+    schedule = _schedule(times, dt, theta, startup)
+    problem = PoissonProblem(coarse, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
+                             coefficient=coefficient, neumann=neumann, quadrature=quadrature)
+    m, k = coarse.n_triangles, int(refine)
+    n = 2**k
+    kappa = _per_cell(problem.coefficient, m, "coefficient")
+    cap = _per_cell(parse_coefficient(capacity, coarse, name="capacity", sign="positive"), m,
+                    "capacity")
+    sides, side_values = _held(coarse, problem, dirichlet)
+    layout = PatchLayout(coarse, k, held_sides=sides)
+    size = layout.size(k)
+    rtol, atol, maxiter = _check_scalars(rtol, atol, maxiter, size, None)
+    x = _initial(layout, u0)
+
+    t = time.perf_counter()
+    b = np.zeros(size)
+    if problem.source.kind == "callable":
+        callable_load(layout, problem.source, quadrature, b)
+    else:
+        source = _per_cell(problem.source, m, "f")
+        if np.any(source):
+            corner = coarse.points[coarse.triangles]
+            d1, d2 = corner[:, 1] - corner[:, 0], corner[:, 2] - corner[:, 0]
+            area = 0.5 * np.abs(d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0])
+            pe, pv = layout.buffers(k)
+            _p.load(source * area / (3.0 * n * n), b, n, layout.topo, pe, pv)
+    flux = _flux(layout, problem, neumann)
+    if flux is not None:
+        _add_flux(layout, flux, b)
+    stiffness = element_stiffness(coarse, kappa)
+    K = PatchOperator(layout, stiffness, k, masked=False)
+    # the held values: u0 there is replaced over the first step, as the stored path does
+    g = _lifting(layout, sides, side_values, problem)
+    lift = layout.copy_held(x, np.zeros(size))  # u0 at the held points, 0 elsewhere
+    if g is not None:
+        lift = g - lift
+    else:
+        np.negative(lift, out=lift)
+    lift = lift if np.any(lift) else None
+    timings = {"assemble": time.perf_counter() - t, "setup": 0.0}
+
+    systems, built = {}, 0
+    n_steps = len(schedule)
+    iterations = np.zeros(n_steps, dtype=np.int64)
+    step_seconds = np.zeros(n_steps)
+    values = np.empty((len(times), size))
+    if times[0] == 0.0:
+        values[0] = x
+    rhs, x0_buf = np.empty(size), np.empty(size)
+    prev = prev2 = h_prev = h_prev2 = None
+    failed, message, description, stored = 0, "", "", 0
+    for i, (t0, t1, th, out) in enumerate(schedule):
+        h = t1 - t0
+        tau = th * h
+        key = float(f"{tau:.12g}")
+        s = systems.pop(key, None)
+        if s is None:
+            t = time.perf_counter()
+            s = _System(layout, kappa, cap, stiffness, tau, lumped, degree)
+            timings["setup"] += time.perf_counter() - t
+            built += 1
+            description = s.P.description
+            stored = max(stored, s.P.memory_bytes + s.space.nbytes)
+            if len(systems) >= 2:
+                systems.pop(next(iter(systems)))
+        systems[key] = s
+        start = time.perf_counter()
+        K.matvec_into(x, rhs)  # rhs = h (b - K u)
+        _k.xpby(b, -1.0, rhs)
+        rhs *= h
+        if lift is not None:
+            rhs -= s.A_full @ lift
+        layout.zero_held(rhs)
+        x0 = s.space.guess(rhs, x0_buf)
+        if x0 is None:
+            x0 = _start(prev, h_prev, prev2, h_prev2, h, x0_buf)
+        result = _cg.run(s.product, rhs, x0, s.M, _cg.LOCAL, rtol=rtol, atol=atol,
+                         maxiter=maxiter)
+        d = result.x
+        iterations[i] = result.iterations
+        if result.info != 0:
+            failed += 1
+            text = f"step {i + 1} (t = {t0:.6g} to {t1:.6g}): {result.message}"
+            message = message or text
+            if check:
+                raise ConvergenceError(f"march_on_patches: {text}")
+        if result.iterations:
+            s.space.add(d, s.matvec)
+        x += d
+        if lift is not None:
+            x += lift
+            lift = None
+        prev2, h_prev2, prev, h_prev = prev, h_prev, d, h
+        step_seconds[i] = time.perf_counter() - start
+        if out >= 0:
+            values[out] = x
+        if monitor is not None:
+            monitor(i + 1, n_steps, t1, int(result.iterations))
+    timings["steps"] = float(step_seconds.sum())
+    timings["total"] = time.perf_counter() - t_start
+    label = scheme if theta == 1.0 or not startup else \
+        f"{scheme} with {startup} backward-euler half steps (Rannacher start-up)"
+    stats = TransientStats(
+        steps=n_steps, iterations=iterations, step_seconds=step_seconds,
+        product_seconds=float("nan"), converged=failed == 0, failed_steps=failed,
+        timings=timings, unknowns=size, nnz=0, stored_bytes=int(stored),
+        preconditioner=description or "none (no step)", systems=built, scheme=label,
+        rtol=rtol, peak_rss_bytes=peak_rss_bytes(), threads=numba.get_num_threads(),
+        message=message or f"{n_steps} steps converged")
+    if failed and not check:
+        warnings.warn(f"march_on_patches: {failed} of {n_steps} steps did not converge; the "
+                      f"first: {message}", RuntimeWarning, stacklevel=2)
+    return PatchMarch(times, values, layout, stats)

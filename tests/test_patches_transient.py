@@ -1,0 +1,185 @@
+"""Time stepping on a never-stored refined mesh (hatkernels.transient_patches) and the mass
+term of the patch operator and multigrid (hatkernels.patches.multigrid).
+
+Checks against something outside the path:
+
+* the stored refinement (``coarse.refine()`` repeated ``k`` times) with the stored
+  assembly of the stiffness and mass matrices (an independent implementation over
+  fine index arrays), SciPy's sparse direct solve, and the stored march
+  (:func:`hatkernels.transient.solve_transient`, assembled matrices and their own
+  preconditioner);
+* the decay per step of ``sin(pi x) sin(pi y)`` on the right-split square with
+  lumped mass, the scheme's amplification of the 5-point eigenvalue
+  ``(4 - 4 cos(pi h)) / h^2`` (R. J. LeVeque, Finite Difference Methods for
+  Ordinary and Partial Differential Equations, 2007, section 3.4; the
+  amplification from K. W. Morton and D. F. Mayers, Numerical Solution of Partial
+  Differential Equations, 2nd ed. 2005, ch. 2; value from memory);
+* the same bits on 1 and 2 threads.
+"""
+
+import math
+
+import numpy as np
+import pytest
+import scipy.sparse.linalg as spla
+from conftest import jittered_mesh, relative_error
+from test_threads import assert_same_bits, on_one_and_two_threads
+
+import hatkernels as hk
+from hatkernels import krylov
+from hatkernels.errors import InputError
+from hatkernels.mesh import cuboid, rectangle
+from hatkernels.mesh.tags import label_cells, label_sides
+from hatkernels.patches import PatchLayout, PatchMultigrid, PatchOperator, element_stiffness
+from hatkernels.patches.multigrid import element_mass
+from hatkernels.transient import in_time, solve_transient
+from hatkernels.transient_patches import march_on_patches
+
+IDENTITY = 1e-12
+
+
+def refined(mesh, k):
+    for _ in range(k):
+        mesh = mesh.refine()
+    return mesh
+
+
+def fine_cells(values, k):
+    """Per coarse cell values on the fine cells (Mesh.refine keeps children together)."""
+    return hk.per_triangle(np.repeat(np.asarray(values, dtype=float), 4**k))
+
+
+def sine(x, y):
+    return np.sin(np.pi * x) * np.sin(np.pi * y)
+
+
+@pytest.mark.parametrize("lumped", [False, True])
+@pytest.mark.parametrize("k", [1, 2, 3])
+def test_operator_with_mass_equals_the_stored_assembly(k, lumped):
+    coarse = jittered_mesh(3, 5)
+    fine = refined(coarse, k)
+    rng = np.random.default_rng(k + 7 * lumped)
+    kappa = rng.uniform(0.2, 5.0, coarse.n_triangles)
+    sigma = rng.uniform(0.0, 50.0, coarse.n_triangles)
+    layout = PatchLayout(coarse, k)
+    E = element_stiffness(coarse, kappa) + element_mass(coarse, sigma, k, lumped)
+    u = rng.standard_normal(fine.n_points)
+    y = layout.to_refined(PatchOperator(layout, E, k, masked=False) @ layout.from_refined(u))
+    A = (hk.assemble_stiffness(fine, fine_cells(kappa, k))
+         + hk.assemble_mass(fine, fine_cells(sigma, k), lumped=lumped))
+    assert relative_error(y, A @ u) <= IDENTITY
+
+
+@pytest.mark.parametrize("lumped", [False, True])
+def test_multigrid_with_mass_keeps_its_iterations_and_solves_the_stored_system(lumped):
+    coarse = rectangle(3, 3)
+    counts = []
+    for k in (2, 3, 4, 5):
+        fine = refined(coarse, k)
+        layout = PatchLayout(coarse, k, held_sides=coarse.boundary_edges())
+        kappa = np.ones(coarse.n_triangles)
+        sigma = np.full(coarse.n_triangles, 4.0**k)  # M / tau with tau ~ h^2: both terms count
+        P = PatchMultigrid(layout, kappa, sigma=sigma, lumped=lumped)
+        A = PatchOperator(layout, P.K, k)
+        b = layout.from_refined(sine(*fine.points.T))
+        layout.zero_held(b)
+        res = krylov.cg_with_history(A, b, M=P, rtol=1e-10)
+        assert res.info == 0
+        counts.append(res.iterations)
+        # reference: SciPy's direct solve of the stored system
+        S = (hk.assemble_stiffness(fine) + hk.assemble_mass(fine, sigma[0], lumped=lumped))
+        system = hk.apply_dirichlet(S, layout.to_refined(b), fine.boundary_points())
+        ref = system.expand(spla.spsolve(system.A.tocsc(), system.b))
+        assert relative_error(layout.to_refined(res.x), ref) <= 1e-8
+    assert max(counts) <= 12 and max(counts) - min(counts) <= 3, counts
+
+
+def tagged_square(n=4):
+    m = label_cells(rectangle(n, n), {"cold": lambda x, y: x < 0.5,
+                                      "hot": lambda x, y: x >= 0.5})
+    return label_sides(m, {"left": lambda x, y: x == 0, "right": lambda x, y: x == 1,
+                           "bottom": lambda x, y: y == 0, "top": lambda x, y: y == 1})
+
+
+@pytest.mark.parametrize("scheme, lumped", [("crank-nicolson", False),
+                                            ("backward-euler", True)])
+def test_march_agrees_with_the_stored_march(scheme, lumped):
+    coarse, k = tagged_square(), 3
+    args = dict(dt=2e-3, scheme=scheme, lumped=lumped, rtol=1e-11,
+                coefficient={"cold": 1.0, "hot": 4.0}, capacity={"cold": 2.0, "hot": 0.5},
+                f=lambda x, y: 10.0 * x * (1.0 - y), dirichlet={"left": 1.0, "bottom": 0.0},
+                neumann={"top": -2.0})
+    u0 = lambda x, y: x * y  # noqa: E731  (differs from the held values: lifted)
+    times = [0.004, 0.02]
+    ours = march_on_patches(coarse, u0, times, refine=k, **args)
+    stored = solve_transient(refined(coarse, k), u0, times, **args)
+    assert ours.stats.converged and ours.stats.steps == stored.stats.steps
+    assert np.abs(ours.u - stored.u).max() <= 1e-8 * np.abs(stored.u).max()
+
+
+@pytest.mark.parametrize("scheme, theta", [("backward-euler", 1.0), ("crank-nicolson", 0.5)])
+def test_decay_per_step_is_the_amplification_of_the_discrete_eigenvalue(scheme, theta):
+    coarse, k = rectangle(2, 2), 3  # refined: the right-split square of 16 x 16 cells
+    h, dt, steps = 1.0 / 16, 0.01, 6
+    lam = (4.0 - 4.0 * math.cos(math.pi * h)) / h**2
+    sol = march_on_patches(coarse, sine, dt * np.arange(steps + 1), dt=dt, refine=k,
+                           scheme=scheme, lumped=True, rtol=1e-12)
+    fine = refined(coarse, k)
+    u = sol.u
+    np.testing.assert_allclose(u[0], sine(*fine.points.T), rtol=0, atol=1e-15)
+    inside = np.abs(u[0]) > 0.1
+    ratios = u[1:, inside] / u[:-1, inside]
+    z = dt * lam
+    expected = np.full(steps, (1.0 - (1.0 - theta) * z) / (1.0 + theta * z))
+    if theta == 0.5:  # Rannacher's start-up: the first two steps as four half steps of BE
+        expected[:2] = (1.0 / (1.0 + z / 2)) ** 2
+    assert np.abs(ratios - expected[:, None]).max() <= 1e-9
+
+
+def test_same_bits_on_one_and_two_threads():
+    coarse = rectangle(3, 2)
+
+    def run():
+        sol = march_on_patches(coarse, sine, [0.01, 0.03], dt=2e-3, refine=4, f=1.0)
+        return [sol.values, sol.stats.iterations]
+
+    assert_same_bits(*on_one_and_two_threads(run))
+
+
+def test_outputs_patches_and_inputs_left_unchanged():
+    coarse, k = rectangle(2, 2), 2
+    fine = refined(coarse, k)
+    u0 = fine.points[:, 0].copy()
+    before = u0.copy()
+    sol = march_on_patches(coarse, u0, [0.0, 0.01], dt=5e-3, refine=k)
+    assert np.array_equal(u0, before)
+    assert np.array_equal(sol.u[0], u0)  # t = 0 gives u0 back, in the refined numbering
+    lam, values = sol.patch(1)
+    assert lam.shape == (15, 3) and values.shape == (15,)
+    assert sol.stats.steps == 2 + 2 and sol.stats.converged  # Rannacher's two half steps
+
+
+def test_bad_input_is_refused_naming_what_and_where():
+    coarse = rectangle(2, 2)
+    k = 2
+    size = refined(coarse, k).n_points
+    with pytest.raises(InputError, match="f: the patch path takes data constant in time"):
+        march_on_patches(coarse, 0.0, [0.1], dt=0.01, refine=k,
+                         f=in_time(lambda x, y, t: t + 0 * x))
+    with pytest.raises(InputError, match=rf"expected .* \({size},\)"):
+        march_on_patches(coarse, np.zeros(size - 1), [0.1], dt=0.01, refine=k)
+    with pytest.raises(InputError, match="u0\\(x, y\\) is nan at .* in coarse cell"):
+        march_on_patches(coarse, lambda x, y: np.where(x > 0.9, np.nan, 0.0), [0.1],
+                         dt=0.01, refine=k)
+    with pytest.raises(InputError, match="capacity"):
+        march_on_patches(coarse, 0.0, [0.1], dt=0.01, refine=k, capacity=-1.0)
+    with pytest.raises(InputError, match="dt"):
+        march_on_patches(coarse, 0.0, [0.1], dt=0.0, refine=k)
+    with pytest.raises(InputError, match="triangle meshes"):
+        march_on_patches(cuboid(1, 1, 1), 0.0, [0.1], dt=0.01, refine=1)
+    with pytest.raises(InputError, match="refine >= 1"):
+        march_on_patches(coarse, 0.0, [0.1], dt=0.01, refine=0)
+    with pytest.raises(InputError, match="sigma must be >= 0 and finite; it is -1.0 on coarse "
+                                         "cell 0"):
+        PatchMultigrid(PatchLayout(coarse, 1), np.ones(coarse.n_triangles),
+                       sigma=np.r_[-1.0, np.ones(coarse.n_triangles - 1)])
