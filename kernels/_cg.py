@@ -51,8 +51,8 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.linalg import eigvalsh_tridiagonal
-from scipy.sparse.linalg import LinearOperator, aslinearoperator
 
+from hatkernels._cgparts import Workspace, as_preconditioner
 from hatkernels._cgstop import (
     BREAKDOWN_MATRIX,
     BREAKDOWN_PRECONDITIONER,
@@ -62,7 +62,7 @@ from hatkernels._cgstop import (
 from hatkernels._jit import sparse as _k
 from hatkernels.errors import InputError
 
-__all__ = ["run", "CGResult", "LOCAL", "as_preconditioner", "condition_estimate",
+__all__ = ["run", "CGResult", "LOCAL", "Workspace", "as_preconditioner", "condition_estimate",
            "BREAKDOWN_MATRIX", "BREAKDOWN_PRECONDITIONER", "SAFE_EXPONENT"]
 
 #: Squared norms between ``2**-SAFE_EXPONENT`` and ``2**SAFE_EXPONENT`` at the start
@@ -137,6 +137,10 @@ class CGResult:
         CG's ``alpha`` of every iteration and ``beta`` of every direction
         update, the data of the Lanczos tridiagonal matrix; None after a
         restart (the recurrence behind it was broken).
+    residual : ndarray or None
+        ``b - A x`` as last computed from ``x`` (the true residual) when the
+        solve converged, else None.  With a workspace (``hatkernels._cgparts``),
+        ``x`` and this are its vectors: copy what is kept before the next solve.
     """
 
     x: np.ndarray
@@ -147,6 +151,7 @@ class CGResult:
     message: str
     restarts: int = 0
     coefficients: tuple | None = None
+    residual: np.ndarray | None = None
 
     @property
     def converged(self):
@@ -161,67 +166,6 @@ class CGResult:
         if self.coefficients is None:
             return float("nan")
         return condition_estimate(*self.coefficients)
-
-
-class _Diagonal:
-    """A preconditioner given by its inverse diagonal (applied inside CG's vector update)."""
-
-    def __init__(self, dinv):
-        self.inverse_diagonal = dinv
-
-    def apply_into(self, r, z):
-        _k.jacobi_apply(self.inverse_diagonal, r, z)
-
-
-class _ApplyOnly:
-    """A preconditioner's ``apply_into`` without its other attributes."""
-
-    def __init__(self, apply_into):
-        self.apply_into = apply_into
-
-
-class _MatvecPreconditioner:
-    """A LinearOperator's ``matvec`` as ``apply_into``; the result is checked for shape."""
-
-    def __init__(self, op, n):
-        self.op = op
-        self.n = n
-
-    def apply_into(self, r, z):
-        y = np.asarray(self.op.matvec(r))
-        if y.shape not in ((self.n,), (self.n, 1)):
-            raise InputError(f"M.matvec returned shape {y.shape}, expected ({self.n},)")
-        z[:] = y.reshape(self.n)
-
-
-def as_preconditioner(M, n):
-    """``M`` as an object of the preconditioner protocol, or None for the identity.
-
-    Objects of the protocol (:mod:`hatkernels.krylov`) are used as they are
-    (a valid ``inverse_diagonal`` first); anything else that scipy can turn
-    into a LinearOperator of shape ``(n, n)`` is wrapped so that its
-    ``matvec`` serves as ``apply_into``.
-    """
-    if M is None or getattr(M, "is_identity", False) is True:
-        return None
-    dinv = getattr(M, "inverse_diagonal", None)
-    if isinstance(dinv, np.ndarray) and dinv.shape == (n,) and dinv.dtype == np.float64:
-        return _Diagonal(np.ascontiguousarray(dinv))
-    if callable(getattr(M, "apply_into", None)):
-        shape = getattr(M, "shape", None)
-        if shape is not None and tuple(shape) != (n, n):
-            raise InputError(f"M has shape {shape}, expected ({n}, {n}) to match A")
-        # an inverse diagonal of another length or dtype must not reach the fused kernel
-        return M if dinv is None else _ApplyOnly(M.apply_into)
-    if not isinstance(M, LinearOperator):
-        try:
-            M = aslinearoperator(M)
-        except TypeError as exc:
-            raise InputError(f"M must be None, a matrix, a LinearOperator or a preconditioner "
-                             f"with apply_into ({exc})") from None
-    if M.shape != (n, n):
-        raise InputError(f"M has shape {M.shape}, expected ({n}, {n}) to match A")
-    return _MatvecPreconditioner(M, n)
 
 
 def _exponent(value):
@@ -310,17 +254,19 @@ def _scales(product, b, bmax, x0, M, reductions):
     return k, power(wAw / ww, 0), power(rw / rr, ew)
 
 
-def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, monitor=None):
+def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, monitor=None,
+        work=None):
     """Preconditioned CG on checked input; returns a :class:`CGResult`.
 
     ``b`` and ``x0`` (or None) are float64 contiguous arrays of the owned
     length ``n``; ``x0`` is copied, never modified.  ``rtol``, ``atol`` and
-    ``maxiter`` checked numbers (``rtol``, ``atol`` may be inf).  It does not
+    ``maxiter`` checked numbers (``rtol``, ``atol`` may be inf).  ``work`` (a
+    :class:`~hatkernels._cgparts.Workspace`, optional) lends the solve its vectors, kept for the next.  It does not
     warn: the caller reports a breakdown (``info < 0``) from the message.
     InputError for a solution beyond float64 (see Scale).  Collective when
     ``reductions`` communicate.
     """
-    options = dict(rtol=rtol, maxiter=maxiter, callback=callback, monitor=monitor)
+    options = dict(rtol=rtol, maxiter=maxiter, callback=callback, monitor=monitor, work=work)
     bb = reductions.sum(_k.dot(b, b))
     if _LOW <= bb <= _HIGH:
         result = _iterate(product, b, x0, M, reductions, bb, atol=atol, **options)
@@ -356,6 +302,7 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
                 f"the solution's largest entry, about 2**{e} (1e{e * math.log10(2):.0f}), is "
                 f"{where} number; rescale the problem's units")
     result.x = _scaled(result.x, j - k)
+    result.residual = None if result.residual is None else _scaled(result.residual, -k)
     result.residuals = _scaled(result.residuals, -k)
     result.tolerance = _scaled(result.tolerance, -k)
     result.message += f" (solved as 2**{j} A x = 2**{k} b to keep its norms in float64's range)"
@@ -363,7 +310,7 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
 
 
 def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback, monitor,
-             check_scale=True):
+             work=None, check_scale=True):
     """The CG iteration of :func:`run` with ``bb = b . b`` given (nonzero).
 
     With ``check_scale``, returns None, before updating anything, when the first
@@ -375,12 +322,15 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
     bnorm = math.sqrt(bb)
     tol = max(atol, rtol * bnorm)
 
+    def vector(name, size=n):  # the workspace's (kept between solves) or a new one
+        return np.empty(size) if work is None else work.get(name, size)
+
+    x, r = vector("x"), vector("r")
     if x0 is None:
-        x = np.zeros(n)
-        r = b.copy()
+        x.fill(0.0)
+        r[:] = b
     else:
-        x = x0.copy()
-        r = np.empty(n)
+        x[:] = x0
         product.residual(x, b, r)
 
     # Two shortcuts spare the call of M per iteration: the identity is not applied at
@@ -388,7 +338,7 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
     identity = M is None or getattr(M, "is_identity", False) is True
     dinv = None if identity else getattr(M, "inverse_diagonal", None)
     fuse = reductions.fuse_rz and not identity
-    z = r if identity else np.empty(n)
+    z = r if identity else vector("z")
 
     def precondition():
         """``z = M r``; return this process's part of ``r . z``."""
@@ -408,7 +358,8 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
         rr = total(_k.dot(r, r))
     history = [math.sqrt(rr)]
     if history[0] <= tol:
-        return CGResult(x, 0, 0, np.array(history), tol, "initial guess meets the tolerance")
+        return CGResult(x, 0, 0, np.array(history), tol, "initial guess meets the tolerance",
+                        residual=r)
     if identity:
         rz = rr
     elif not fuse:
@@ -426,10 +377,11 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
     if not (rz > 0.0 and math.isfinite(rz)):
         info, message = breakdown_preconditioner(rz, 0)
     else:
-        p = np.zeros(product.n_local)  # on a rank, room for the ghosts after the owned entries
+        p = vector("p", product.n_local)  # on a rank, room for the ghosts after the owned ones
+        p[n:] = 0.0
         po = p if p.shape[0] == n else p[:n]
         po[:] = z
-        q = np.empty(n)
+        q = vector("q")
         while iteration < maxiter:
             pq = total(product.matvec_dot(p, q))
             if iteration == 0 and out_of_range(pq):
@@ -495,4 +447,5 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
         message += (f" (the recursive residual met the tolerance {restarts} times but the "
                     f"true residual did not)")
     coefficients = (np.array(alphas), np.array(betas)) if lanczos else None
-    return CGResult(x, info, iteration, np.array(history), tol, message, restarts, coefficients)
+    return CGResult(x, info, iteration, np.array(history), tol, message, restarts, coefficients,
+                    residual=r if info == 0 else None)

@@ -46,6 +46,7 @@ import warnings
 import numba
 import numpy as np
 
+from hatkernels import _cg
 from hatkernels._jit import sparse as _k
 from hatkernels.checks import integer_option, real_option
 from hatkernels.errors import ConvergenceError, InputError
@@ -328,6 +329,8 @@ class _Run:
         prev, h_prev, moved = None, None, True
         prev2, h_prev2 = None, None  # the change before: a quadratic start (_start)
         x0_buf = np.empty(free.size)
+        work = _cg.Workspace()  # CG's vectors, kept from step to step
+        kept = (np.empty(free.size), np.empty(free.size))  # the last two changes
         interval = 0 if times[0] > 0 else 1
         for i, (t0, t1, theta, k) in enumerate(schedule):
             h = t1 - t0
@@ -352,10 +355,9 @@ class _Run:
             x0 = system.space.guess(rhs, x0_buf)
             if x0 is None:
                 x0 = _start(prev, h_prev, prev2, h_prev2, h, x0_buf)
-            result = system.solve(rhs, x0, rtol, atol, maxiter)
-            d = result.x
-            if result.iterations:
-                system.space.add(d, system.matvec)
+            result = system.solve(rhs, x0, rtol, atol, maxiter, work)
+            d = result.x  # the workspace's: copied below where kept
+            system.remember(rhs, result)
             self.iterations[i] = result.iterations
             if result.info != 0:
                 self.failed += 1
@@ -369,7 +371,8 @@ class _Run:
             uD = g_new
             b_old, tot_old = b_new, tot_new
             prev2, h_prev2 = prev, h_prev
-            prev, h_prev = d, h
+            prev, h_prev = kept[i % 2], h
+            prev[:] = d
             if pick is not None:
                 self.probe_values[i + 1] = pick.values(x, uD)
             self.step_seconds[i] = time.perf_counter() - start

@@ -271,6 +271,8 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
     if times[0] == 0.0:
         values[0] = x
     rhs, x0_buf = np.empty(size), np.empty(size)
+    work = _cg.Workspace()  # CG's vectors, kept from step to step
+    kept = (np.empty(size), np.empty(size))  # the last two changes
     prev = prev2 = h_prev = h_prev2 = None
     failed, message, description, stored = 0, "", "", 0
     for i, (t0, t1, th, out) in enumerate(schedule):
@@ -299,8 +301,8 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
         if x0 is None:
             x0 = _start(prev, h_prev, prev2, h_prev2, h, x0_buf)
         result = _cg.run(s.product, rhs, x0, s.M, _cg.LOCAL, rtol=rtol, atol=atol,
-                         maxiter=maxiter)
-        d = result.x
+                         maxiter=maxiter, work=work)
+        d = result.x  # the workspace's: copied below where kept
         iterations[i] = result.iterations
         if result.info != 0:
             failed += 1
@@ -308,13 +310,14 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
             message = message or text
             if check:
                 raise ConvergenceError(f"march_on_patches: {text}")
-        if result.iterations:
-            s.space.add(d, s.matvec)
+        if result.iterations:  # A d = rhs - r: no product
+            s.space.add(d, s.matvec, rhs, result.residual)
         x += d
         if lift is not None:
             x += lift
             lift = None
-        prev2, h_prev2, prev, h_prev = prev, h_prev, d, h
+        prev2, h_prev2, prev, h_prev = prev, h_prev, kept[i % 2], h
+        prev[:] = d
         step_seconds[i] = time.perf_counter() - start
         if out >= 0:
             values[out] = x

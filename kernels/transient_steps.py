@@ -212,10 +212,16 @@ class System:
             out[rows] -= sub @ dD
         return out
 
-    def solve(self, rhs, x0, rtol, atol, maxiter):
-        """CG on ``(M + tau K) d = rhs`` from ``x0``; the :class:`~hatkernels._cg.CGResult`."""
+    def solve(self, rhs, x0, rtol, atol, maxiter, work=None):
+        """CG on ``(M + tau K) d = rhs`` from ``x0``; the :class:`~hatkernels._cg.CGResult`
+        (its vectors ``work``'s, when given)."""
         return _cg.run(self.product, rhs, x0, self.M, _cg.LOCAL, rtol=rtol, atol=atol,
-                       maxiter=maxiter)
+                       maxiter=maxiter, work=work)
+
+    def remember(self, rhs, result):
+        """Give the start space a solve's solution (with ``A d = rhs - r``, no product)."""
+        if result.iterations:
+            self.space.add(result.x, self.matvec, rhs, result.residual)
 
 
 #: Directions :class:`StartSpace` keeps per system.
@@ -272,16 +278,20 @@ class StartSpace:
         _k.combine_rows(coeffs, self.X, c, 0.0, out)
         return out
 
-    def add(self, x, product):
+    def add(self, x, product, b=None, r=None):
         """Hold the solution ``x`` (copied) in place of the oldest; ``product(v, out)``
-        writes ``A v``."""
+        writes ``A v``, unless the right-hand side ``b`` and the true residual ``r`` of
+        a converged solve are given (``A x = b - r``, no product)."""
         size = self.X.shape[0]
         if size == 0 or not np.any(x):  # the zero solution adds nothing
             return
         i = self._next
         v, Av = self.X[i], self.AX[i]
         v[:] = x
-        product(v, Av)
+        if r is None:
+            product(v, Av)
+        else:
+            np.subtract(b, r, out=Av)
         count = min(self.count + 1, size)
         row = self._row
         _k.row_dots(self.X, count, Av, row)

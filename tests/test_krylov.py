@@ -454,3 +454,26 @@ def test_what_scipy_would_iterate_to_nan_is_refused():
         cg(A, b, maxiter=0)
     with pytest.raises(InputError, match="complex"):
         cg(A, b.astype(complex))
+
+
+def test_a_workspace_gives_the_same_iterates_and_the_true_residual():
+    """A march lends CG one workspace for all its steps: the same bits as fresh vectors,
+    its own vectors returned, and (converged) the true residual ``b - A x`` against
+    SciPy's product (reference library)."""
+    from hatkernels import _cg
+
+    A = poisson((30, 30), format="csr")
+    product, n = krylov._operator(A)
+    M = _cg.as_preconditioner(make_preconditioner(A, "jacobi"), n)
+    work = _cg.Workspace()
+    for seed in (0, 1):  # the second solve reuses the first one's vectors
+        b, x0 = rhs(n, seed), rhs(n, seed + 10)
+        fresh = _cg.run(product, b, x0, M, _cg.LOCAL, rtol=1e-9, atol=0.0, maxiter=500)
+        lent = _cg.run(product, b, x0, M, _cg.LOCAL, rtol=1e-9, atol=0.0, maxiter=500,
+                       work=work)
+        assert lent.x.tobytes() == fresh.x.tobytes() and lent.iterations == fresh.iterations
+        assert lent.x is work.get("x", n) and lent.residual is work.get("r", n)
+        np.testing.assert_allclose(lent.residual, b - A @ lent.x, rtol=0, atol=1e-12)
+    short = _cg.run(product, b, None, M, _cg.LOCAL, rtol=1e-12, atol=0.0, maxiter=2,
+                    work=work)
+    assert short.info > 0 and short.residual is None  # no true residual when not converged
