@@ -275,7 +275,8 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
     bmax = _max_abs(b, reductions)
     if bmax == 0.0:
         # scipy's convention: the zero right-hand side has the zero solution.
-        return CGResult(np.zeros(b.shape[0]), 0, 0, np.zeros(1), atol, "zero right-hand side")
+        return CGResult(np.zeros(b.shape[0]), 0, 0, np.zeros(1), atol, "zero right-hand side",
+                        residual=np.zeros(b.shape[0]))
     # The solve of 2**j A x' = 2**k b with 2**m M: x = 2**(j - k) x', r = 2**-k r'.
     k, j, m = _scales(product, b, bmax, x0, M, reductions)
     bs = _scaled(b, k)

@@ -3,7 +3,9 @@ the preconditioner as an object of the protocol, and the vectors it may keep bet
 solves.
 
 A march solves one system per step: fresh vectors on every solve would be touched for
-the first time on every step (page faults, about 3 s per GiB on some machines), so a
+the first time on every step (page faults: 0.1 to 0.3 s per GiB measured on the
+development machine when the system has the pages at hand, up to 3 s per GiB when it
+must first back them), so a
 :class:`Workspace` keeps them for the next solve of the same length.
 """
 

@@ -73,6 +73,12 @@ __all__ = ["PatchMarch", "march_on_patches"]
 #: Coarse cells per block when ``u0`` is evaluated at the fine points.
 _BLOCK_CELLS = 256
 
+#: Bytes per fine point of a march beyond the outputs (8 bytes per point each): u, the
+#: load, the right-hand side and the guess, CG's five vectors, the start space's eight,
+#: the last two changes, the multigrid's work vectors and coarser levels.  Measured 173 to
+#: 181 at the peak (bench/transient.py --patches, docs/patches.md).
+BYTES_PER_POINT = 192
+
 
 @dataclasses.dataclass
 class PatchMarch:
@@ -136,6 +142,10 @@ def fine_values(layout, fn, what="u0"):
             v = np.asarray(fn(xy[0], xy[1]), dtype=np.float64)
         except Exception as exc:
             raise InputError(f"{what}(x, y) raised {type(exc).__name__}: {exc}") from exc
+        if v.ndim and v.shape != where.shape:
+            raise InputError(f"{what}(x, y) returned shape {v.shape} for points of shape "
+                             f"{where.shape} (coarse cells {int(cells[0])} to "
+                             f"{int(cells[-1])}); it must return one value per point")
         v = np.broadcast_to(v, where.shape)
         bad = ~np.isfinite(v)
         if bad.any():
@@ -170,6 +180,19 @@ def _initial(layout, u0):
     return layout.from_refined(np.asarray(v, dtype=np.float64))
 
 
+def _check_memory(size, n_outputs):
+    from hatkernels.memory import available_bytes
+
+    need = size * (BYTES_PER_POINT + 8 * n_outputs)
+    have = available_bytes()
+    if have is not None and need > have:
+        raise InputError(
+            f"not enough memory: march_on_patches on {size:,} fine points with {n_outputs} "
+            f"output times needs about {need / 2**30:.1f} GiB ({BYTES_PER_POINT} bytes per "
+            f"point and 8 per output time), but {have / 2**30:.1f} GiB are available; refine "
+            f"less, ask for fewer output times, or pass memory_check=False to try anyway")
+
+
 class _System:
     """``M + tau K`` on the finest level (held rows out), its multigrid and start space."""
 
@@ -192,7 +215,8 @@ class _System:
 def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
                      scheme="crank-nicolson", startup=4, lumped=False, f=0.0, dirichlet=0.0,
                      dirichlet_on=None, coefficient=None, neumann=None, rtol=1e-6, atol=0.0,
-                     maxiter=None, check=False, quadrature=2, monitor=None, degree=2):
+                     maxiter=None, check=False, quadrature=2, monitor=None, degree=2,
+                     memory_check=True):
     """March ``capacity du/dt - div(kappa grad u) = f`` on ``coarse`` refined ``refine``
     times without storing the refined mesh; u at ``times``.
 
@@ -200,7 +224,9 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
     data this path takes: see the module notes); ``degree`` is the multigrid's
     Chebyshev degree.  Returns a :class:`PatchMarch`.  Memory per fine point: about
     26 vectors (the outputs, u, the load, CG's five, the start space's eight, the two
-    last changes, the multigrid's work) plus 8 bytes per output time.
+    last changes, the multigrid's work) plus 8 bytes per output time;
+    ``memory_check`` refuses, before allocating, a march whose estimate
+    (``BYTES_PER_POINT`` bytes per point) does not fit in the memory available.
     """
     t_start = time.perf_counter()
     _refuse_timed(f=f, dirichlet=dirichlet, neumann=neumann, capacity=capacity,
@@ -233,6 +259,8 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
     sides, side_values = _held(coarse, problem, dirichlet)
     layout = PatchLayout(coarse, k, held_sides=sides)
     size = layout.size(k)
+    if memory_check:
+        _check_memory(size, len(times))
     rtol, atol, maxiter = _check_scalars(rtol, atol, maxiter, size, None)
     x = _initial(layout, u0)
 
@@ -286,7 +314,8 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
             timings["setup"] += time.perf_counter() - t
             built += 1
             description = s.P.description
-            stored = max(stored, s.P.memory_bytes + s.space.nbytes)
+            stored = max(stored, sum(t.P.memory_bytes + t.space.nbytes
+                                     for t in (*systems.values(), s)))
             if len(systems) >= 2:
                 systems.pop(next(iter(systems)))
         systems[key] = s

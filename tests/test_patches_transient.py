@@ -23,6 +23,8 @@ import numpy as np
 import pytest
 import scipy.sparse.linalg as spla
 from conftest import jittered_mesh, relative_error
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from test_threads import assert_same_bits, on_one_and_two_threads
 
 import hatkernels as hk
@@ -183,3 +185,88 @@ def test_bad_input_is_refused_naming_what_and_where():
                                          "cell 0"):
         PatchMultigrid(PatchLayout(coarse, 1), np.ones(coarse.n_triangles),
                        sigma=np.r_[-1.0, np.ones(coarse.n_triangles - 1)])
+
+
+@settings(max_examples=8, deadline=None)
+@given(seed=st.integers(0, 10**6), k=st.integers(1, 2), lumped=st.booleans(),
+       scheme=st.sampled_from(["crank-nicolson", "backward-euler"]),
+       held=st.floats(-2.0, 2.0), dt=st.floats(1e-4, 1e-1))
+def test_random_data_agree_with_the_stored_march(seed, k, lumped, scheme, held, dt):
+    """Random regions, coefficients, capacities, held values and steps on a jittered mesh:
+    the same field as the stored march (reference: the stored assembly and its own
+    solver), and the inputs left unchanged."""
+    rng = np.random.default_rng(seed)
+    split = rng.uniform(0.2, 0.8)
+    coarse = label_cells(jittered_mesh(3, seed % 97), {"a": lambda x, y: x < split,
+                                                       "b": lambda x, y: x >= split})
+    kappa = {"a": rng.uniform(0.1, 10.0), "b": rng.uniform(0.1, 10.0)}
+    cap = {"a": rng.uniform(0.1, 10.0), "b": rng.uniform(0.1, 10.0)}
+    u0 = rng.standard_normal(refined(coarse, k).n_points)
+    before = u0.copy()
+    args = dict(dt=dt, scheme=scheme, lumped=lumped, rtol=1e-11, dirichlet=held,
+                coefficient=kappa, capacity=cap, f=lambda x, y: np.cos(3 * x) + y)
+    times = [2 * dt, 3 * dt]
+    ours = march_on_patches(coarse, u0, times, refine=k, **args)
+    stored = solve_transient(refined(coarse, k), u0, times, **args)
+    assert np.array_equal(u0, before)
+    scale = max(1.0, np.abs(stored.u).max())
+    assert np.abs(ours.u - stored.u).max() <= 1e-7 * scale
+
+
+def test_a_march_that_does_not_fit_is_refused_before_allocating(monkeypatch):
+    import hatkernels.memory as memory
+
+    monkeypatch.setattr(memory, "available_bytes", lambda: 10**5)
+    with pytest.raises(InputError, match=r"not enough memory: march_on_patches on 4,225 fine "
+                                         r"points with 3 output times"):
+        march_on_patches(rectangle(2, 2), 0.0, [0.1, 0.2, 0.3], dt=0.1, refine=5)
+
+
+@pytest.mark.parametrize("theta, scheme", [(0.5, "crank-nicolson"), (1.0, "backward-euler")])
+def test_march_agrees_with_a_plain_theta_scheme_loop(theta, scheme):
+    """Consistent mass, a source and a held value that differs from u0: against the theta
+    scheme written out here with SciPy's sparse direct solve (K. W. Morton and D. F.
+    Mayers, Numerical Solution of Partial Differential Equations, 2nd ed. 2005, ch. 2:
+    ``M (u' - u) + h K (theta u' + (1 - theta) u) = h b`` on the free rows, the held rows
+    at their value; value from memory)."""
+    coarse, k, h, steps, g = rectangle(3, 3), 2, 0.01, 4, 0.7
+    fine = refined(coarse, k)
+    x, y = fine.points.T
+    u = x * (1.0 - y) + 0.2  # not g on the boundary: the first step moves the held values
+    K = hk.assemble_stiffness(fine, 2.0)
+    M = hk.assemble_mass(fine, 3.0)
+    b = hk.assemble_load(fine, lambda x, y: 1.0 + x)
+    held = fine.boundary_points()
+    free = np.setdiff1d(np.arange(fine.n_points), held)
+    A = (M + theta * h * K).tocsr()
+    B = (M - (1.0 - theta) * h * K).tocsr()
+    ref = u.copy()
+    for _ in range(steps):
+        new = np.full(fine.n_points, g)
+        rhs = (B @ ref + h * b)[free] - A[free][:, held] @ new[held]
+        new[free] = spla.spsolve(A[free][:, free].tocsc(), rhs)
+        ref = new
+    u0 = u.copy()
+    ours = march_on_patches(coarse, u0, [steps * h], dt=h, refine=k, scheme=scheme,
+                            startup=0, coefficient=2.0, capacity=3.0,
+                            f=lambda x, y: 1.0 + x, dirichlet=g, rtol=1e-13)
+    stored = solve_transient(fine, u0, [steps * h], dt=h, scheme=scheme, startup=0,
+                             coefficient=2.0, capacity=3.0, f=lambda x, y: 1.0 + x,
+                             dirichlet=g, rtol=1e-13)
+    assert np.abs(ours.u[-1] - ref).max() <= 1e-9
+    assert np.abs(stored.u[-1] - ref).max() <= 1e-9
+    assert np.array_equal(u0, u)
+
+
+def test_a_step_that_does_not_converge_is_reported_and_the_march_goes_on():
+    from hatkernels.errors import ConvergenceError
+
+    coarse = rectangle(2, 2)
+    with pytest.warns(RuntimeWarning, match="steps did not converge"):
+        sol = march_on_patches(coarse, sine, [0.02], dt=0.01, refine=3, maxiter=1,
+                               rtol=1e-12)
+    assert sol.stats.failed_steps > 0 and not sol.stats.converged
+    assert np.isfinite(sol.values).all()
+    with pytest.raises(ConvergenceError, match="march_on_patches: step 1"):
+        march_on_patches(coarse, sine, [0.02], dt=0.01, refine=3, maxiter=1, rtol=1e-12,
+                         check=True)

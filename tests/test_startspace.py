@@ -164,3 +164,21 @@ def test_the_projection_start_saves_iterations_and_keeps_the_solution(cooling, m
     # the same discrete solution to the solver's tolerance, and both near the exact decay
     assert np.abs(with_space.u[-1] - without.u[-1]).max() < 1e-6
     assert np.abs(with_space.u[-1] - exact).max() < 2e-3
+
+
+def test_a_product_from_the_residual_holds_the_same_space():
+    """``add(x, b=b, r=r)`` takes ``A x = b - r`` instead of a product: the same Gram
+    matrix and guess to rounding (reference: SciPy's product)."""
+    A = laplacian(7)
+    n = A.shape[0]
+    rng = np.random.default_rng(4)
+    one, two = StartSpace(n, 3), StartSpace(n, 3)
+    for _ in range(4):
+        x, b = rng.standard_normal(n), rng.standard_normal(n)
+        r = b - A @ x
+        one.add(x, product_of(A))
+        two.add(x, None, b, r)
+    np.testing.assert_allclose(two.G, one.G, rtol=1e-12, atol=1e-12 * np.abs(one.G).max())
+    c = rng.standard_normal(n)
+    np.testing.assert_allclose(two.guess(c, np.empty(n)), one.guess(c, np.empty(n)),
+                               rtol=1e-9, atol=1e-9)

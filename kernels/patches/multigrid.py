@@ -54,11 +54,15 @@ def element_stiffness(coarse, kappa):
 
 
 def element_mass(coarse, sigma, level, lumped=False):
-    """``(m, 3, 3)``: the P1 mass matrix, times ``sigma`` (one number per coarse cell), of
+    """``(m, 3, 3)``: the P1 mass matrix, times ``sigma`` (a number, or one per coarse cell;
+    >= 0 and finite, else an InputError naming the cell), of
     every fine triangle of level ``level`` (``4**level`` per coarse cell, each of the
     coarse area over ``4**level``), consistent or lumped to its row sums.  Like the
     stiffness, it is the same for every fine triangle of a patch (it depends on the area
     alone), so ``element_stiffness + element_mass`` is the stencil of ``K + M_sigma``."""
+    m = coarse.n_triangles
+    s = np.asarray(sigma, dtype=np.float64)
+    sigma = _per_cell_sigma(np.full(m, float(s)) if s.ndim == 0 else s, m)
     p = coarse.points[coarse.triangles]
     d1, d2 = p[:, 1] - p[:, 0], p[:, 2] - p[:, 0]
     area = 0.5 * np.abs(d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0])
@@ -223,8 +227,9 @@ class PatchMultigrid(Preconditioner):
     sigma : ndarray (n_cells,), optional
         A mass term: the operator is ``K + M_sigma`` (``M_sigma`` the mass matrix times
         ``sigma``, one number >= 0 per coarse cell, consistent or ``lumped``), every level
-        its own rediscretisation (for nested P1 spaces the same as the Galerkin product
-        ``P^T A P``); the time step's ``M / tau + K`` with ``sigma = capacity / tau``.
+        its own rediscretisation (for nested P1 spaces and the consistent mass the same
+        as the Galerkin product ``P^T A P``; lumped, close to it); the time step's
+        ``M / tau + K`` with ``sigma = capacity / tau``.
     single : bool
         Keep the levels' vectors in single precision (the arithmetic stays double):
         half the preconditioner's memory, for the largest solves.  CG around it
