@@ -22,7 +22,9 @@ The path takes data constant in time: a coefficient and a capacity that are numb
 ``{tag: number}`` on whole coarse sides, and ``u0`` as a number, a callable ``u0(x, y)``
 or one value per point of the refined mesh.  Time-dependent data, reactions,
 convection and probes take :func:`~hatkernels.transient.solve_transient` on the
-stored refinement.  No heat balance is kept (it needs the held rows' equations).
+stored refinement.  The heat balance is the stored path's: the heat out through the
+held points from the held rows of the discrete equations, with the weights
+``M 1_D`` and ``K 1_D`` (two products, once) and two dot products per step.
 
 CAUTION: results are engineering estimates and must be checked by a qualified
 person against local codes and licensed practice.
@@ -65,7 +67,7 @@ from hatkernels.perf import peak_rss_bytes
 from hatkernels.problem import PoissonProblem
 from hatkernels.transient import SCHEMES, _schedule, _start
 from hatkernels.transient_data import InTime, checked_times
-from hatkernels.transient_results import TransientStats
+from hatkernels.transient_results import EnergyBalance, TransientStats
 from hatkernels.transient_steps import START_SPACE, StartSpace
 
 __all__ = ["PatchMarch", "march_on_patches"]
@@ -91,6 +93,9 @@ class PatchMarch:
         u at the output times in the patch layout (every fine point once).
     layout : PatchLayout
     stats : TransientStats
+    balance : EnergyBalance
+        Heat per output interval (as :meth:`TransientSolution.energy
+        <hatkernels.TransientSolution.energy>`).
         ``product_seconds`` is NaN (no assembled matrix defines a work unit here;
         ``bench/transient.py --patches`` times one on the stored refinement).
     """
@@ -99,6 +104,11 @@ class PatchMarch:
     values: np.ndarray
     layout: PatchLayout
     stats: TransientStats
+    balance: EnergyBalance = None
+
+    def energy(self):
+        """The :class:`~hatkernels.transient.EnergyBalance` per output interval."""
+        return self.balance
 
     @property
     def u(self):
@@ -276,9 +286,11 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
             area = 0.5 * np.abs(d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0])
             pe, pv = layout.buffers(k)
             _p.load(source * area / (3.0 * n * n), b, n, layout.topo, pe, pv)
+    source_total = float(b.sum())  # every point's load: the heat the source puts in
     flux = _flux(layout, problem, neumann)
     if flux is not None:
         _add_flux(layout, flux, b)
+    flux_total = float(b.sum()) - source_total
     stiffness = element_stiffness(coarse, kappa)
     K = PatchOperator(layout, stiffness, k, masked=False)
     # the held values: u0 there is replaced over the first step, as the stored path does
@@ -289,6 +301,14 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
     else:
         np.negative(lift, out=lift)
     lift = lift if np.any(lift) else None
+    # the heat balance: stored 1^T M u = (M 1) . u; out through the held rows:
+    # -(1_D^T M d + h (1_D^T K (u + theta d) - 1_D^T b)) per step
+    mass = PatchOperator(layout, element_mass(coarse, cap, k, lumped), k, masked=False)
+    held_ones = layout.copy_held(np.ones(size), np.zeros(size))
+    w_stored = mass @ np.ones(size)
+    w_mass, w_stiff = mass @ held_ones, K @ held_ones
+    b_held = float(_k.dot(held_ones, b))
+    del held_ones
     timings = {"assemble": time.perf_counter() - t, "setup": 0.0}
 
     systems, built = {}, 0
@@ -296,8 +316,15 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
     iterations = np.zeros(n_steps, dtype=np.int64)
     step_seconds = np.zeros(n_steps)
     values = np.empty((len(times), size))
+    n_out = len(times)
+    accounts = {key: np.zeros(n_out) for key in ("sources", "flux_in", "held_out")}
+    stored_at = np.zeros(n_out + 1)
+    stored_at[0] = _k.dot(w_stored, x)
+    interval = 0
     if times[0] == 0.0:
         values[0] = x
+        stored_at[1] = stored_at[0]
+        interval = 1
     rhs, x0_buf = np.empty(size), np.empty(size)
     work = _cg.Workspace()  # CG's vectors, kept from step to step
     kept = (np.empty(size), np.empty(size))  # the last two changes
@@ -341,15 +368,23 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
                 raise ConvergenceError(f"march_on_patches: {text}")
         if result.iterations:  # A d = rhs - r: no product
             s.space.add(d, s.matvec, rhs, result.residual)
+        md, kd = _k.dot(w_mass, d), _k.dot(w_stiff, d)  # the change's held rows
         x += d
-        if lift is not None:
+        if lift is not None:  # the held values' change in the first step
+            md, kd = md + _k.dot(w_mass, lift), kd + _k.dot(w_stiff, lift)
             x += lift
             lift = None
+        ku = _k.dot(w_stiff, x) - (1.0 - th) * kd  # 1_D^T K (u + theta d), u the old field
+        accounts["held_out"][interval] -= md + h * (ku - b_held)
+        accounts["sources"][interval] += h * source_total
+        accounts["flux_in"][interval] += h * flux_total
         prev2, h_prev2, prev, h_prev = prev, h_prev, kept[i % 2], h
         prev[:] = d
         step_seconds[i] = time.perf_counter() - start
         if out >= 0:
             values[out] = x
+            stored_at[out + 1] = _k.dot(w_stored, x)
+            interval = out + 1
         if monitor is not None:
             monitor(i + 1, n_steps, t1, int(result.iterations))
     timings["steps"] = float(step_seconds.sum())
@@ -366,4 +401,8 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
     if failed and not check:
         warnings.warn(f"march_on_patches: {failed} of {n_steps} steps did not converge; the "
                       f"first: {message}", RuntimeWarning, stacklevel=2)
-    return PatchMarch(times, values, layout, stats)
+    starts = np.concatenate([[0.0], times[:-1]])
+    zeros = np.zeros(n_out)
+    balance = EnergyBalance(start=starts, end=times.copy(), stored=np.diff(stored_at),
+                            convection_out=zeros, absorbed=zeros.copy(), **accounts)
+    return PatchMarch(times, values, layout, stats, balance)

@@ -270,3 +270,21 @@ def test_a_step_that_does_not_converge_is_reported_and_the_march_goes_on():
     with pytest.raises(ConvergenceError, match="march_on_patches: step 1"):
         march_on_patches(coarse, sine, [0.02], dt=0.01, refine=3, maxiter=1, rtol=1e-12,
                          check=True)
+
+
+def test_heat_balance_agrees_with_the_stored_march_and_closes():
+    """The heat per interval: the same figures as the stored march's balance (the held rows
+    of the stored assembly), and stored + out = in to the solver's tolerance (the first
+    law; common practice, no source)."""
+    coarse, k = tagged_square(), 2
+    args = dict(dt=5e-3, rtol=1e-12, coefficient={"cold": 1.0, "hot": 3.0},
+                capacity={"cold": 2.0, "hot": 0.5}, f=lambda x, y: 4.0 * x,
+                dirichlet={"left": 1.0}, neumann={"top": -2.0, "right": 0.5})
+    times = [0.01, 0.03]
+    ours = march_on_patches(coarse, 0.2, times, refine=k, **args).energy()
+    ref = solve_transient(refined(coarse, k), 0.2, times, **args).energy()
+    for name in ("stored", "sources", "flux_in", "held_out", "convection_out", "absorbed"):
+        np.testing.assert_allclose(getattr(ours, name), getattr(ref, name), rtol=1e-8,
+                                   atol=1e-10, err_msg=name)
+    scale = np.abs(ours.heat_in).max()
+    assert np.abs(ours.stored + ours.heat_out - ours.heat_in).max() <= 1e-9 * scale
