@@ -143,13 +143,14 @@ def worker(args):
 
 
 def patch_worker(args):
-    """The same march by :func:`hatkernels.transient_patches.march_on_patches` on
-    ``rectangle(n / 2^refine)`` refined ``refine`` times, the refined mesh never stored."""
+    """The same march by :func:`hatkernels.solve_transient` with ``refine`` and no
+    preconditioner named on ``rectangle(n / 2^refine)``: the never-stored refinement
+    (:func:`hatkernels.transient_patches.march_on_patches`)."""
     import numpy as np
 
     from hatkernels.mesh import rectangle
     from hatkernels.perf import PeakMemory
-    from hatkernels.transient_patches import march_on_patches
+    from hatkernels.transient import solve_transient
 
     def sine(x, y):
         return np.sin(np.pi * x) * np.sin(np.pi * y)
@@ -158,7 +159,7 @@ def patch_worker(args):
         return (((x - 0.5) ** 2 + (y - 0.5) ** 2) < 0.1).astype(float)
 
     u0, f = {"cooling": (sine, 0.0), "heating": (0.0, 1.0), "jump": (disc, 0.0)}[args.case]
-    march_on_patches(rectangle(4, 4), u0, [0.01], dt=0.001, refine=3, f=f)  # kernels loaded
+    solve_transient(rectangle(4, 4), u0, [0.01], dt=0.001, refine=3, f=f)  # kernels loaded
     c = args.n >> args.refine
     if args.dim != 2 or args.refine < 1 or c << args.refine != args.n:
         raise SystemExit("the patch march needs --dim 2 and --refine >= 1 dividing the size")
@@ -166,9 +167,11 @@ def patch_worker(args):
     peak = PeakMemory("rss")
     t = time.perf_counter()
     with peak:
-        sol = march_on_patches(rectangle(c, c), u0, [steps * dt], dt=dt, refine=args.refine,
-                               startup=0, f=f)
+        sol = solve_transient(rectangle(c, c), u0, [steps * dt], dt=dt, refine=args.refine,
+                              startup=0, f=f)
     s = sol.stats
+    if "patch" not in s.preconditioner:
+        raise SystemExit(f"solve_transient did not take the patch path: {s.preconditioner}")
     later = slice(1, None)
     rec = {"method": "patches", "dim": 2, "n": args.n, "points": s.unknowns, "dt": dt,
            "steps": steps, "total_s": time.perf_counter() - t, "unknowns": s.unknowns,
@@ -226,8 +229,8 @@ def main():
                     help="hatkernels' preconditioner (gmg needs --refine)")
     ap.add_argument("--steps", type=int, default=20)
     ap.add_argument("--patches", action="store_true",
-                    help="also march by march_on_patches (the refined mesh never stored; "
-                         "needs --refine)")
+                    help="also march by solve_transient with no preconditioner named, which "
+                         "keeps the refinement as patches (needs --refine)")
     ap.add_argument("--case", choices=("cooling", "heating", "jump"), default="cooling",
                     help="cooling: u0 = sin(pi x) sin(pi y) (the default); heating: u0 = 0 "
                          "and a unit source; jump: u0 = 1 on a disc, 0 elsewhere")

@@ -19,8 +19,8 @@ from hatkernels._keylines import dotted
 from hatkernels.errors import InputError
 from hatkernels.meshfiles import mesh_from_arrays, read_mesh_file
 from hatkernels.precond import PRECONDITIONERS
-from hatkernels.transient import MAX_STEPS, SCHEMES
 from hatkernels.transient_probes import locate
+from hatkernels.transient_steps import MAX_STEPS, SCHEMES
 
 __all__ = ["KEYS", "LENGTH_UNITS", "KeyProblem", "Reader"]
 

@@ -54,7 +54,7 @@ from hatkernels.krylov import _check_scalars
 from hatkernels.memory import check_transient_memory
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.poisson import refined
-from hatkernels.precond import capabilities
+from hatkernels.precond import DEFAULT, capabilities
 from hatkernels.transient_data import (
     Clock,
     TimeData,
@@ -64,56 +64,35 @@ from hatkernels.transient_data import (
     in_time,
     initial_values,
 )
+from hatkernels.transient_patches import (
+    PatchTransientSolution,
+    march_on_patches,
+    transient_patch_reason,
+)
 from hatkernels.transient_probes import locate
 from hatkernels.transient_results import EnergyBalance, TransientSolution, TransientStats
-from hatkernels.transient_steps import Blocks, System, context_of, measure_product
+from hatkernels.transient_steps import (
+    SCHEMES,
+    Blocks,
+    System,
+    _ratio,
+    _schedule,
+    _start,
+    context_of,
+    measure_product,
+)
 
 __all__ = ["SCHEMES", "EnergyBalance", "TransientSolution", "TransientStats", "in_time",
            "solve_transient"]
-
-#: The schemes by name, and their theta.
-SCHEMES = {"backward-euler": 1.0, "crank-nicolson": 0.5}
 
 #: Systems (matrix and preconditioner, one per step size) kept at a time: the scheme's own,
 #: and room for an odd output interval; older ones are rebuilt if needed again.
 KEEP_SYSTEMS = 2
 
-#: The most steps a solve takes (more is taken for a mistaken ``dt`` or ``times``).
-MAX_STEPS = 10**7
-
-
-def _schedule(times, dt, theta, startup):
-    """The steps ``(t0, t1, theta, output index or -1)``: each output interval in equal
-    steps of at most ``dt``; with Crank-Nicolson the first ``startup / 2`` steps as
-    ``startup`` backward Euler half steps."""
-    counts = np.ceil(np.diff(times, prepend=0.0) / dt * (1 - 1e-12))
-    if counts.sum() > MAX_STEPS:
-        raise InputError(f"dt = {dt!r} up to t = {times[-1]!r} takes {counts.sum():.3g} steps, "
-                         f"more than {MAX_STEPS}; choose a longer dt")
-    steps = []
-    left = startup if theta != 1.0 else 0
-    start = 0.0
-    for k, end in enumerate(times):
-        length = end - start
-        m = max(1, math.ceil(length / dt * (1 - 1e-12))) if length > 0 else 0
-        for j in range(m):
-            t0 = start + length * j / m
-            t1 = end if j == m - 1 else start + length * (j + 1) / m
-            out = k if j == m - 1 else -1
-            if left:
-                mid = 0.5 * (t0 + t1)
-                steps += [(t0, mid, 1.0, -1), (mid, t1, 1.0, out)]
-                left -= 2
-            else:
-                steps.append((t0, t1, theta, out))
-        start = end
-    return steps
-
-
 def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson",
                     startup=4, lumped=False, f=0.0, refine=0, dirichlet=0.0,
                     dirichlet_on=None, coefficient=None, reaction=None, neumann=None,
-                    robin=None, probes=None, preconditioner="amg", rtol=1e-6, atol=0.0,
+                    robin=None, probes=None, preconditioner=None, rtol=1e-6, atol=0.0,
                     maxiter=None, check=False, quadrature=2, monitor=None, memory_check=True,
                     **preconditioner_options):
     """Solve ``capacity du/dt - div(kappa grad u) + c u = f(t)`` and return u at ``times``.
@@ -145,9 +124,15 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
         is allowed: the capacity makes the problem well posed.
     probes : (n_probes, d) array, optional
         Points inside the mesh at which u is recorded after every step.
-    preconditioner : str
+    preconditioner : str or None
         A name from :data:`hatkernels.precond.PRECONDITIONERS`, built once per step size
-        on ``M + theta dt K`` with the context the steady solve passes.
+        on ``M + theta dt K`` with the context the steady solve passes.  None (the
+        default): with ``refine >= 1`` and data the never-stored refinement takes
+        (:func:`hatkernels.transient_patches.transient_patch_reason`), the march runs
+        there (:func:`~hatkernels.transient_patches.march_on_patches`: the patch
+        multigrid, no assembled matrix, no fine mesh; the result a
+        :class:`~hatkernels.transient_patches.PatchTransientSolution`); else
+        :data:`hatkernels.precond.DEFAULT`.
     rtol, atol, maxiter : CG's stopping rule for each step's change ``d`` of u:
         ``norm(rhs - A d) <= max(rtol * norm(rhs), atol)``.  The errors of the
         steps add up to at most about ``rtol`` times the total change of u (the
@@ -192,6 +177,22 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     (0.37, 0.37)
     """
     t_start = time.perf_counter()
+    if preconditioner is None:
+        if transient_patch_reason(mesh, refine, u0=u0, probes=probes, capacity=capacity, f=f,
+                                  dirichlet=dirichlet, dirichlet_on=dirichlet_on,
+                                  coefficient=coefficient, reaction=reaction, neumann=neumann,
+                                  robin=robin, options=preconditioner_options) is None:
+            march = march_on_patches(
+                mesh, u0, times, dt=dt, refine=refine, capacity=capacity, scheme=scheme,
+                startup=startup, lumped=lumped, f=f, dirichlet=dirichlet,
+                dirichlet_on=dirichlet_on, coefficient=coefficient, neumann=neumann,
+                rtol=rtol, atol=atol, maxiter=maxiter, check=check, quadrature=quadrature,
+                monitor=monitor, memory_check=memory_check)
+            problem_args = dict(f=f, capacity=capacity, dirichlet=dirichlet,
+                                dirichlet_on=dirichlet_on, coefficient=coefficient,
+                                neumann=neumann, quadrature=quadrature)
+            return PatchTransientSolution(march, mesh, refine, problem_args)
+        preconditioner = DEFAULT
     mesh = refined(mesh, refine)
     dt = real_option(dt, "dt", positive=True)
     times = checked_times(times)
@@ -411,27 +412,6 @@ class _Run:
         starts = np.concatenate([[0.0], times[:-1]])
         return EnergyBalance(start=starts, end=times.copy(),
                              stored=np.diff(self.stored_at), **self.accounts)
-
-
-def _start(prev, h_prev, prev2, h_prev2, h, out):
-    """CG's first guess for a step's change ``d``: from the last two changes, ``2 d' - d''``
-    (u extrapolated quadratically) when the three steps are equal, else the last change
-    scaled to the step (linearly), else nothing."""
-    if prev is None:
-        return None
-    r = _ratio(h, h_prev)
-    if prev2 is not None and r == 1.0 and _ratio(h, h_prev2) == 1.0:
-        np.multiply(prev, 2.0, out=out)
-        out -= prev2
-        return out
-    return prev * r if r != 1.0 else prev
-
-
-def _ratio(h, reference):
-    """``h / reference``, exactly 1 when they agree to 1e-12 (steps cut from one interval
-    differ in the last bits: no rescaling pass for that)."""
-    r = h / reference
-    return 1.0 if abs(r - 1.0) <= 1e-12 else r
 
 
 class _ProbeGather:

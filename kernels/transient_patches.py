@@ -59,18 +59,20 @@ from hatkernels.patches.solve import (
     _add_flux,
     _flux,
     _held,
+    _is_number,
     _lifting,
+    _numbers_by_key,
     _per_cell,
     patch_path_reason,
 )
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.problem import PoissonProblem
-from hatkernels.transient import SCHEMES, _schedule, _start
 from hatkernels.transient_data import InTime, checked_times
-from hatkernels.transient_results import EnergyBalance, TransientStats
-from hatkernels.transient_steps import START_SPACE, StartSpace
+from hatkernels.transient_results import EnergyBalance, TransientSolution, TransientStats
+from hatkernels.transient_steps import SCHEMES, START_SPACE, StartSpace, _schedule, _start
 
-__all__ = ["PatchMarch", "march_on_patches"]
+__all__ = ["PatchMarch", "PatchTransientSolution", "march_on_patches",
+           "transient_patch_reason"]
 
 #: Coarse cells per block when ``u0`` is evaluated at the fine points.
 _BLOCK_CELLS = 256
@@ -78,8 +80,8 @@ _BLOCK_CELLS = 256
 #: Bytes per fine point of a march beyond the outputs (8 bytes per point each): u, the
 #: load, the right-hand side and the guess, CG's five vectors, the start space's eight,
 #: the last two changes, the multigrid's work vectors and coarser levels.  Measured 173 to
-#: 181 at the peak (bench/transient.py --patches, docs/patches.md).
-BYTES_PER_POINT = 192
+#: 207 at the peak (bench/transient.py --patches, docs/patches.md), with a margin.
+BYTES_PER_POINT = 224
 
 
 @dataclasses.dataclass
@@ -114,12 +116,89 @@ class PatchMarch:
     def u(self):
         """u at the output times in the numbering of ``coarse.refine()`` repeated ``k``
         times, made on use (one more array of the size of :attr:`values`)."""
-        return np.stack([self.layout.to_refined(v) for v in self.values])
+        out = np.empty_like(self.values)
+        for v, row in zip(self.values, out, strict=True):
+            self.layout.to_refined(v, out=row)
+        return out
 
     def patch(self, cell, i=-1):
         """``(lam, values)`` of coarse ``cell`` at output ``i`` (see
         :meth:`PatchLayout.patch`)."""
         return self.layout.patch(self.values[i], cell)
+
+
+def _timed(v):
+    return any(isinstance(x, InTime) for x in (v.values() if isinstance(v, dict) else [v]))
+
+
+def transient_patch_reason(mesh, refine, *, u0=0.0, probes=None, capacity=1.0, f=0.0,
+                           dirichlet=0.0, dirichlet_on=None, coefficient=None, reaction=None,
+                           neumann=None, robin=None, options=None):
+    """None when :func:`~hatkernels.solve_transient` with ``refine`` and no preconditioner
+    named marches on the never-stored refinement (:func:`march_on_patches`), else why
+    not (one sentence)."""
+    for name, v in (("u0", u0), ("f", f), ("dirichlet", dirichlet), ("neumann", neumann),
+                    ("capacity", capacity), ("coefficient", coefficient)):
+        if _timed(v):
+            return f"{name} changes in time"
+    if probes is not None:
+        return "probes are read on the stored mesh"
+    reason = patch_path_reason(mesh, refine, f=f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
+                               coefficient=coefficient, reaction=reaction, neumann=neumann,
+                               robin=robin, options=options)
+    if reason is not None:
+        return reason
+    if not (_is_number(capacity) or _numbers_by_key(capacity)):
+        return "capacity is not a number or {region: number}"
+    return None
+
+
+class PatchTransientSolution(TransientSolution):
+    """A :class:`~hatkernels.TransientSolution` marched on the never-stored refinement:
+    ``u`` in the numbering of ``mesh.refine()`` repeated ``k`` times, the heat balance,
+    ``stats`` (``product_seconds`` NaN: no assembled matrix defines a work unit), and
+    ``mesh`` and ``problem`` built on first use (they cost what the path saves)."""
+
+    def __init__(self, march, coarse, refine, problem_args):
+        self._coarse, self._refine, self._args = coarse, refine, problem_args
+        self._mesh = self._problem = None
+        self.layout = march.layout
+        u = march.values  # renumbered in place, one row at a time: no second array
+        for i in range(u.shape[0]):
+            u[i] = march.layout.to_refined(u[i])
+        march.values = None
+        super().__init__(march.times, u, march.stats, None, None, _energy=march.balance)
+
+    @property
+    def mesh(self):
+        if self._mesh is None:
+            mesh = self._coarse
+            for _ in range(self._refine):
+                mesh = mesh.refine()
+            self._mesh = mesh
+        return self._mesh
+
+    @mesh.setter
+    def mesh(self, value):
+        self._mesh = value
+
+    @property
+    def problem(self):
+        if self._problem is None:
+            from hatkernels.transient_data import TransientProblem
+
+            args = dict(self._args)
+            f = args.pop("f")
+            self._problem = TransientProblem(self.mesh, f, **args)
+        return self._problem
+
+    @problem.setter
+    def problem(self, value):
+        self._problem = value
+
+    def __repr__(self):
+        return (f"TransientSolution({len(self.times)} times up to {self.times[-1]:.6g}, "
+                f"{self.stats.unknowns} points, {self.stats.steps} steps, on patches)")
 
 
 def _refuse_timed(**data):

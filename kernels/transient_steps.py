@@ -26,6 +26,7 @@ fluxes; the stored heat is ``1^T M u``.
 
 from __future__ import annotations
 
+import math
 import time
 
 import numpy as np
@@ -36,11 +37,68 @@ from hatkernels._jit import sparse as _k
 from hatkernels.assembly import StiffnessAssembler
 from hatkernels.assembly.boundary_terms import side_mass
 from hatkernels.boundary import apply_dirichlet
+from hatkernels.errors import InputError
 from hatkernels.krylov import _operator
 from hatkernels.precond import PreconditionerContext, make_preconditioner
 from hatkernels.sparse import as_csr
 
-__all__ = ["Blocks", "StartSpace", "System", "measure_product"]
+__all__ = ["MAX_STEPS", "SCHEMES", "Blocks", "StartSpace", "System", "measure_product"]
+
+
+#: The schemes by name, and their theta.
+SCHEMES = {"backward-euler": 1.0, "crank-nicolson": 0.5}
+
+#: The most steps a solve takes (more is taken for a mistaken ``dt`` or ``times``).
+MAX_STEPS = 10**7
+
+
+def _schedule(times, dt, theta, startup):
+    """The steps ``(t0, t1, theta, output index or -1)``: each output interval in equal
+    steps of at most ``dt``; with Crank-Nicolson the first ``startup / 2`` steps as
+    ``startup`` backward Euler half steps."""
+    counts = np.ceil(np.diff(times, prepend=0.0) / dt * (1 - 1e-12))
+    if counts.sum() > MAX_STEPS:
+        raise InputError(f"dt = {dt!r} up to t = {times[-1]!r} takes {counts.sum():.3g} steps, "
+                         f"more than {MAX_STEPS}; choose a longer dt")
+    steps = []
+    left = startup if theta != 1.0 else 0
+    start = 0.0
+    for k, end in enumerate(times):
+        length = end - start
+        m = max(1, math.ceil(length / dt * (1 - 1e-12))) if length > 0 else 0
+        for j in range(m):
+            t0 = start + length * j / m
+            t1 = end if j == m - 1 else start + length * (j + 1) / m
+            out = k if j == m - 1 else -1
+            if left:
+                mid = 0.5 * (t0 + t1)
+                steps += [(t0, mid, 1.0, -1), (mid, t1, 1.0, out)]
+                left -= 2
+            else:
+                steps.append((t0, t1, theta, out))
+        start = end
+    return steps
+
+
+def _start(prev, h_prev, prev2, h_prev2, h, out):
+    """CG's first guess for a step's change ``d``: from the last two changes, ``2 d' - d''``
+    (u extrapolated quadratically) when the three steps are equal, else the last change
+    scaled to the step (linearly), else nothing."""
+    if prev is None:
+        return None
+    r = _ratio(h, h_prev)
+    if prev2 is not None and r == 1.0 and _ratio(h, h_prev2) == 1.0:
+        np.multiply(prev, 2.0, out=out)
+        out -= prev2
+        return out
+    return prev * r if r != 1.0 else prev
+
+
+def _ratio(h, reference):
+    """``h / reference``, exactly 1 when they agree to 1e-12 (steps cut from one interval
+    differ in the last bits: no rescaling pass for that)."""
+    r = h / reference
+    return 1.0 if abs(r - 1.0) <= 1e-12 else r
 
 
 def _sparse_weights(w):

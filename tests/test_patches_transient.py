@@ -288,3 +288,26 @@ def test_heat_balance_agrees_with_the_stored_march_and_closes():
                                    atol=1e-10, err_msg=name)
     scale = np.abs(ours.heat_in).max()
     assert np.abs(ours.stored + ours.heat_out - ours.heat_in).max() <= 1e-9 * scale
+
+
+def test_solve_transient_takes_the_patch_path_by_itself_and_the_stored_one_when_named():
+    """With ``refine`` and no preconditioner named, the never-stored refinement; the same
+    field and heat as the stored march with gmg (reference: the stored assembly), the
+    mesh made on use; probes, data in time or a named preconditioner keep the stored
+    path."""
+    coarse, k = rectangle(3, 3), 3
+    args = dict(dt=4e-3, rtol=1e-11, f=1.0, capacity=2.0)
+    ours = solve_transient(coarse, sine, [0.008, 0.02], refine=k, **args)
+    stored = solve_transient(coarse, sine, [0.008, 0.02], refine=k, preconditioner="gmg",
+                             **args)
+    assert "patch" in ours.stats.preconditioner and ours.stats.nnz == 0
+    assert "patch" not in stored.stats.preconditioner and stored.stats.nnz > 0
+    assert "on patches" in repr(ours) and ours._mesh is None  # repr builds no mesh
+    assert np.abs(ours.u - stored.u).max() <= 1e-8
+    np.testing.assert_allclose(ours.energy().held_out, stored.energy().held_out, rtol=1e-7)
+    assert ours.mesh.n_points == stored.mesh.n_points == ours.u.shape[1]
+    assert ours.problem.mesh is ours.mesh
+    probed = solve_transient(coarse, sine, [0.008], refine=k, probes=[[0.5, 0.5]], **args)
+    timed = solve_transient(coarse, sine, [0.008], refine=k, dt=4e-3,
+                            f=in_time(lambda x, y, t: 1.0 + t + 0 * x))
+    assert probed.stats.nnz > 0 and timed.stats.nnz > 0
