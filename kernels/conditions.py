@@ -96,6 +96,9 @@ def _held_values(mesh, points, g):
             raise InputError(f"{call} is {float(v[k])!r} at point {points[k]} ({at})")
         return np.array(v, dtype=np.float64)
     v = np.asarray(g)
+    if v.dtype.kind not in "fiu":
+        raise InputError(f"dirichlet must be a number, a callable or one value per point, got "
+                         f"{type(g).__name__} {str(g)[:40]!r}")
     if v.ndim == 0:
         value = float(v)
         if not np.isfinite(value):

@@ -311,3 +311,30 @@ def test_solve_transient_takes_the_patch_path_by_itself_and_the_stored_one_when_
     timed = solve_transient(coarse, sine, [0.008], refine=k, dt=4e-3,
                             f=in_time(lambda x, y, t: 1.0 + t + 0 * x))
     assert probed.stats.nnz > 0 and timed.stats.nnz > 0
+
+
+BAD = [float("nan"), float("inf"), -1.0, "hot", [1.0, 2.0], {"nowhere": 1.0}, object()]
+
+
+@settings(max_examples=70, deadline=None)
+@given(name=st.sampled_from(["capacity", "coefficient", "f", "dirichlet", "neumann", "u0", "dt",
+                             "startup", "scheme", "lumped"]),
+       bad=st.sampled_from(BAD))
+def test_bad_values_on_the_patch_path_are_refused_by_name(name, bad):
+    """Fuzzing: one bad argument of solve_transient(refine=k) with no preconditioner named is
+    an InputError naming it, never a crash inside numpy or numba (the stored path may take
+    the problem instead; it must refuse it just as clearly)."""
+    args = dict(u0=0.5, dt=0.01, f=1.0, refine=2)
+    if name in ("capacity", "coefficient") and bad == -1.0 or name == "neumann" and bad == -1.0:
+        bad = float("nan") if name == "neumann" else bad  # a negative flux is valid
+    if name == "f" and bad == -1.0 or name == "dirichlet" and bad == -1.0:
+        return  # valid data
+    if name == "u0" and bad == -1.0:
+        return
+    args[name] = bad
+    u0 = args.pop("u0")
+    with pytest.raises(InputError) as info:
+        solve_transient(rectangle(2, 2), u0, [0.02], **args)
+    text = str(info.value)
+    named = {"f": ("f", "load"), "neumann": ("neumann", "boundary load")}.get(name, (name,))
+    assert any(n in text for n in named), text
