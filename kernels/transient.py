@@ -48,7 +48,6 @@ import numpy as np
 
 from hatkernels import _cg
 from hatkernels._jit import sparse as _k
-from hatkernels.checks import integer_option, real_option
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.krylov import _check_scalars
 from hatkernels.memory import check_transient_memory
@@ -60,7 +59,6 @@ from hatkernels.transient_data import (
     TimeData,
     TransientProblem,
     bind,
-    checked_times,
     in_time,
     initial_values,
 )
@@ -79,6 +77,7 @@ from hatkernels.transient_steps import (
     _schedule,
     _start,
     context_of,
+    march_options,
     measure_product,
 )
 
@@ -194,16 +193,7 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
             return PatchTransientSolution(march, mesh, refine, problem_args)
         preconditioner = DEFAULT
     mesh = refined(mesh, refine)
-    dt = real_option(dt, "dt", positive=True)
-    times = checked_times(times)
-    if not isinstance(scheme, str) or scheme not in SCHEMES:
-        raise InputError(f"unknown scheme {scheme!r}; choose one of {list(SCHEMES)}")
-    theta = SCHEMES[scheme]
-    startup = integer_option(startup, "startup", minimum=0)
-    if startup % 2:
-        raise InputError(f"startup must be even (half steps come in pairs), got {startup}")
-    if not isinstance(lumped, bool):
-        raise InputError(f"lumped must be True or False, got {lumped!r}")
+    dt, times, theta, startup = march_options(dt, times, scheme, startup, lumped)
     if not isinstance(preconditioner, str):
         raise InputError(f"preconditioner must be a name (built once per step size), got "
                          f"{type(preconditioner).__name__}")

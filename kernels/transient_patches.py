@@ -43,7 +43,6 @@ from hatkernels import _cg
 from hatkernels._jit import patch_points as _pp
 from hatkernels._jit import patches as _p
 from hatkernels._jit import sparse as _k
-from hatkernels.checks import integer_option, real_option
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.krylov import _check_scalars, _operator
@@ -67,9 +66,15 @@ from hatkernels.patches.solve import (
 )
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.problem import PoissonProblem
-from hatkernels.transient_data import InTime, checked_times
+from hatkernels.transient_data import InTime
 from hatkernels.transient_results import EnergyBalance, TransientSolution, TransientStats
-from hatkernels.transient_steps import SCHEMES, START_SPACE, StartSpace, _schedule, _start
+from hatkernels.transient_steps import (
+    START_SPACE,
+    StartSpace,
+    _schedule,
+    _start,
+    march_options,
+)
 
 __all__ = ["PatchMarch", "PatchTransientSolution", "march_on_patches",
            "transient_patch_reason"]
@@ -325,16 +330,7 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
                                neumann=neumann)
     if reason is not None:
         raise InputError(f"march_on_patches cannot take this problem: {reason}")
-    dt = real_option(dt, "dt", positive=True)
-    times = checked_times(times)
-    if not isinstance(scheme, str) or scheme not in SCHEMES:
-        raise InputError(f"unknown scheme {scheme!r}; choose one of {list(SCHEMES)}")
-    theta = SCHEMES[scheme]
-    startup = integer_option(startup, "startup", minimum=0)
-    if startup % 2:
-        raise InputError(f"startup must be even (half steps come in pairs), got {startup}")
-    if not isinstance(lumped, bool):
-        raise InputError(f"lumped must be True or False, got {lumped!r}")
+    dt, times, theta, startup = march_options(dt, times, scheme, startup, lumped)
     if monitor is not None and not callable(monitor):
         raise InputError(f"monitor must be callable, got {type(monitor).__name__}")
     schedule = _schedule(times, dt, theta, startup)

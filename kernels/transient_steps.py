@@ -52,6 +52,24 @@ SCHEMES = {"backward-euler": 1.0, "crank-nicolson": 0.5}
 MAX_STEPS = 10**7
 
 
+def march_options(dt, times, scheme, startup, lumped):
+    """``(dt, times, theta, startup)`` of a march, checked (InputError naming the bad one);
+    ``times`` a new float64 array."""
+    from hatkernels.checks import integer_option, real_option
+    from hatkernels.transient_data import checked_times
+
+    dt = real_option(dt, "dt", positive=True)
+    times = checked_times(times)
+    if not isinstance(scheme, str) or scheme not in SCHEMES:
+        raise InputError(f"unknown scheme {scheme!r}; choose one of {list(SCHEMES)}")
+    startup = integer_option(startup, "startup", minimum=0)
+    if startup % 2:
+        raise InputError(f"startup must be even (half steps come in pairs), got {startup}")
+    if not isinstance(lumped, bool):
+        raise InputError(f"lumped must be True or False, got {lumped!r}")
+    return dt, times, SCHEMES[scheme], startup
+
+
 def _schedule(times, dt, theta, startup):
     """The steps ``(t0, t1, theta, output index or -1)``: each output interval in equal
     steps of at most ``dt``; with Crank-Nicolson the first ``startup / 2`` steps as

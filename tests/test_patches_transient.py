@@ -25,13 +25,15 @@ import scipy.sparse.linalg as spla
 from conftest import jittered_mesh, relative_error
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from test_patches import fine_coefficient as fine_cells
+from test_patches import refined, tagged_square
 from test_threads import assert_same_bits, on_one_and_two_threads
 
 import hatkernels as hk
 from hatkernels import krylov
 from hatkernels.errors import InputError
 from hatkernels.mesh import cuboid, rectangle
-from hatkernels.mesh.tags import label_cells, label_sides
+from hatkernels.mesh.tags import label_cells
 from hatkernels.patches import PatchLayout, PatchMultigrid, PatchOperator, element_stiffness
 from hatkernels.patches.multigrid import element_mass
 from hatkernels.transient import in_time, solve_transient
@@ -40,15 +42,6 @@ from hatkernels.transient_patches import march_on_patches
 IDENTITY = 1e-12
 
 
-def refined(mesh, k):
-    for _ in range(k):
-        mesh = mesh.refine()
-    return mesh
-
-
-def fine_cells(values, k):
-    """Per coarse cell values on the fine cells (Mesh.refine keeps children together)."""
-    return hk.per_triangle(np.repeat(np.asarray(values, dtype=float), 4**k))
 
 
 def sine(x, y):
@@ -94,13 +87,6 @@ def test_multigrid_with_mass_keeps_its_iterations_and_solves_the_stored_system(l
         ref = system.expand(spla.spsolve(system.A.tocsc(), system.b))
         assert relative_error(layout.to_refined(res.x), ref) <= 1e-8
     assert max(counts) <= 12 and max(counts) - min(counts) <= 3, counts
-
-
-def tagged_square(n=4):
-    m = label_cells(rectangle(n, n), {"cold": lambda x, y: x < 0.5,
-                                      "hot": lambda x, y: x >= 0.5})
-    return label_sides(m, {"left": lambda x, y: x == 0, "right": lambda x, y: x == 1,
-                           "bottom": lambda x, y: y == 0, "top": lambda x, y: y == 1})
 
 
 @pytest.mark.parametrize("scheme, lumped", [("crank-nicolson", False),

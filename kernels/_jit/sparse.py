@@ -87,26 +87,6 @@ def _chunk_dot(x, y, lo, hi):
 
 
 @jit()
-def _chunk_row_dot(X, i, y, lo, hi):
-    # _chunk_dot of row i of X, indexed in place (no row view per chunk): the same bits
-    s0 = 0.0
-    s1 = 0.0
-    s2 = 0.0
-    s3 = 0.0
-    m = (hi - lo) // 4
-    for b in range(m):
-        j = uint64(lo + 4 * b)
-        s0 += X[i, j] * y[j]
-        s1 += X[i, j + uint64(1)] * y[j + uint64(1)]
-        s2 += X[i, j + uint64(2)] * y[j + uint64(2)]
-        s3 += X[i, j + uint64(3)] * y[j + uint64(3)]
-    for k in range(lo + 4 * m, hi):
-        j = uint64(k)
-        s0 += X[i, j] * y[j]
-    return (s0 + s1) + (s2 + s3)
-
-
-@jit()
 def _row_dot(indptr, indices, data, x, i):
     # Row i of A times x, summed in storage order.
     s = 0.0
@@ -333,7 +313,7 @@ def row_dots(X, count, v, out):
         lo = c * CHUNK
         hi = min(lo + CHUNK, n)
         for i in range(count):
-            partial[i, c] = _chunk_row_dot(X, uint64(i), v, lo, hi)
+            partial[i, c] = _chunk_dot(X[i], v, lo, hi)
     for i in range(count):
         out[i] = _sum_in_order(partial[i])
 
