@@ -198,6 +198,22 @@ class TransientProblem(PoissonProblem):
         return np.ones(count, dtype=bool)  # the capacity term makes every part definite
 
 
+def initial_array(u0, n, where):
+    """``u0`` given as a number or one value per point (``n`` of them, the points
+    ``where``) as an (n,) array; InputError for anything else.  Not checked finite."""
+    if isinstance(u0, bool):
+        raise InputError(f"u0 must be a number, an array or a callable, got {u0!r}")
+    v = np.asarray(u0)
+    if v.dtype.kind not in "fiu":
+        raise InputError(f"u0 must be real numbers, got dtype {v.dtype}")
+    if v.ndim == 0:
+        return np.full(n, float(v))
+    if v.shape != (n,):
+        raise InputError(f"u0 has shape {v.shape}; expected a number, a callable or one value "
+                         f"per point ({n},) {where}")
+    return v
+
+
 def initial_values(u0, mesh):
     """``u0`` as a new (n_points,) float64 array: a number, one value per point, or a
     callable of position ``u0(x, y[, z])``; InputError naming the bad point."""
@@ -218,16 +234,7 @@ def initial_values(u0, mesh):
             raise InputError(f"u0({args}) returned shape {v.shape} for {n} points")
         what = f"u0({args})"
     else:
-        if isinstance(u0, bool):
-            raise InputError(f"u0 must be a number, an array or a callable, got {u0!r}")
-        v = np.asarray(u0)
-        if v.dtype.kind not in "fiu":
-            raise InputError(f"u0 must be real numbers, got dtype {v.dtype}")
-        if v.ndim == 0:
-            v = np.full(n, float(v))
-        if v.shape != (n,):
-            raise InputError(f"u0 has shape {v.shape}; expected a number, a callable or one "
-                             f"value per point ({n},) of the mesh solved on")
+        v = initial_array(u0, n, "of the mesh solved on")
         what = "u0"
     v = np.array(v, dtype=np.float64)  # a copy: the caller's array is never touched
     bad = ~np.isfinite(v)

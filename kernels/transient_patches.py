@@ -66,7 +66,7 @@ from hatkernels.patches.solve import (
 )
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.problem import PoissonProblem
-from hatkernels.transient_data import InTime
+from hatkernels.transient_data import InTime, initial_array
 from hatkernels.transient_results import EnergyBalance, TransientSolution, TransientStats
 from hatkernels.transient_steps import (
     START_SPACE,
@@ -255,18 +255,7 @@ def _initial(layout, u0):
     size = layout.size(layout.k)
     if callable(u0):
         return fine_values(layout, u0)
-    if isinstance(u0, bool):
-        raise InputError(f"u0 must be a number, an array or a callable, got {u0!r}")
-    v = np.asarray(u0)
-    if v.dtype.kind not in "fiu":
-        raise InputError(f"u0 must be real numbers, got dtype {v.dtype}")
-    if v.ndim == 0:
-        if not np.isfinite(v):
-            raise InputError(f"u0 is {float(v)!r}; it must be finite")
-        return np.full(size, float(v))
-    if v.shape != (size,):
-        raise InputError(f"u0 has shape {v.shape}; expected a number, a callable or one value "
-                         f"per point ({size},) of the refined mesh")
+    v = initial_array(u0, size, "of the refined mesh")
     bad = np.flatnonzero(~np.isfinite(v))
     if bad.size:
         raise InputError(f"u0 is {float(v[bad[0]])!r} at point {int(bad[0])} of the refined "
