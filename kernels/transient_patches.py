@@ -405,11 +405,11 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
             timings["setup"] += time.perf_counter() - t
             built += 1
             description = s.P.description
-            stored = max(stored, sum(t.P.memory_bytes + t.space.nbytes
-                                     for t in (*systems.values(), s)))
             if len(systems) >= 2:
-                systems.pop(next(iter(systems)))
+                systems.pop(next(iter(systems)))  # the least recently used
         systems[key] = s
+        stored = max(stored, sum(kept_system.P.memory_bytes + kept_system.space.nbytes
+                                 for kept_system in systems.values()))
         start = time.perf_counter()
         K.matvec_into(x, rhs)  # rhs = h (b - K u)
         _k.xpby(b, -1.0, rhs)
