@@ -459,7 +459,9 @@ def test_reasons_the_patch_path_cannot_take_a_problem(square):
     tets = cuboid(1, 1, 1)
     cases = [
         ("triangle meshes", tets, 2, {}),
-        ("refine >= 1", square, 0, {}),
+        ("refine >= 1, got 0", square, 0, {}),
+        ("whole number of refinements, got 2.5", square, 2.5, {}),
+        ("whole number of refinements, got True", square, True, {}),
         ("reaction", square, 2, {"reaction": 1.0}),
         ("coefficient is not a number", square, 2, {"coefficient": lambda x, y: 1.0 + x}),
         ("coefficient is not a number", square, 2, {"coefficient": np.ones(square.n_triangles)}),

@@ -72,8 +72,10 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
     else the reason it cannot (one sentence)."""
     if getattr(mesh, "dim", None) != 2:
         return "the patch path takes triangle meshes"
-    if isinstance(refine, bool) or not isinstance(refine, numbers.Integral) or refine < 1:
-        return "the patch path needs refine >= 1"
+    if isinstance(refine, bool) or not isinstance(refine, numbers.Integral):
+        return f"refine must be a whole number of refinements, got {refine!r}"
+    if refine < 1:
+        return f"the patch path needs refine >= 1, got {int(refine)}"
     if len(mesh.unused_points()):
         return "the mesh has points in no cell (the refined numbering leaves them out)"
     if reaction is not None or robin is not None:
