@@ -36,7 +36,6 @@ nonzero eigenvalue.
 
 from __future__ import annotations
 
-import dataclasses
 import math
 import time
 
@@ -50,10 +49,14 @@ from hatkernels._jit import sparse as _k
 from hatkernels.checks import integer_option, real_option
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.conditions import parse_conditions
+from hatkernels.eigen_patches import eigen_patch_reason, eigenmodes_on_patches
+from hatkernels.eigenresults import Eigenmodes, EigenStats
+from hatkernels.eigensolvers import SHIFT_INVERT_LIMIT
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.memory import check_eigen_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.perf import peak_rss_bytes
+from hatkernels.poisson import refined
 from hatkernels.precond import (
     DEFAULT,
     PRECONDITIONERS,
@@ -64,13 +67,7 @@ from hatkernels.precond import (
 
 __all__ = ["eigenmodes", "Eigenmodes", "EigenStats", "SHIFT_INVERT_LIMIT", "METHODS"]
 
-#: ``method="auto"`` solves problems with at most this many unknowns by shift-invert, and
-#: the nested lobpcg starts on the finest coarser level that has at most this many.
-SHIFT_INVERT_LIMIT = 20_000
 METHODS = ("auto", "shift-invert", "lobpcg")
-# iterations on each intermediate level of the nested iteration (docs/eigenmodes.md has
-# the measurements)
-_INTERMEDIATE = 1
 # the matrix-free operators of a multigrid built here: lobpcg applies it to every vector
 # of the block at every iteration, so the fastest product is worth its memory: on triangles
 # with a constant or per-cell scalar coefficient the multigrid's own choice (``inherited``,
@@ -83,114 +80,6 @@ def _variant(level):
     if level.mesh.dim == 2 and level.kappa.kind in ("constant", "cell"):
         return None
     return _VARIANT
-
-
-@dataclasses.dataclass
-class EigenStats:
-    """What :func:`eigenmodes` did and cost.
-
-    Attributes
-    ----------
-    method : str
-        "dense", "shift-invert" or "lobpcg".
-    unknowns : int
-        Free unknowns of the problem (points not held and in some cell).
-    block : int
-        lobpcg's block size (wanted modes beyond the zero modes plus extra vectors); 0 otherwise.
-    iterations : int
-        lobpcg iterations on the given mesh (0 for shift-invert).
-    levels : list of (unknowns, iterations)
-        The nested iteration, coarsest first: the start level (0 iterations: shift-invert)
-        and every level lobpcg ran on.
-    converged : bool
-    errors : ndarray, shape (k,)
-        lobpcg's estimated relative errors of the eigenvalues (0 for zero modes; NaN for
-        shift-invert, converged to machine precision by ARPACK).
-    rtol : float
-    products : dict
-        Products with the stiffness matrix and with the mass matrix, and preconditioner
-        applications, over all levels, each counted as its share of one on the given mesh.
-    preconditioner : str
-        What preconditioned lobpcg on the given mesh, in words ("" for shift-invert).
-    shift : float
-        The shift ``s`` of the zero modes' preconditioner ``K + s M`` (0 when there are none).
-    timings : dict
-        Seconds: ``assemble`` (all levels), ``setup`` (preconditioners), ``solve``
-        (eigensolvers), ``total``; with lobpcg also the parts of ``solve`` spent in
-        ``products`` (stiffness and mass), the ``preconditioner`` and the ``dense`` block
-        algebra (Gram matrices and updates).
-    product_seconds : float
-        One product with the assembled stiffness matrix of the given mesh (the faster of the
-        parallel CSR kernel and scipy's product, best of three), measured in the same call.
-    work_units : float
-        ``timings["total"] / product_seconds``: the whole call in products with the
-        matrix (the performance model of docs/eigenmodes.md).
-    threads : int
-    peak_rss_bytes : int
-    """
-
-    method: str
-    unknowns: int
-    block: int = 0
-    iterations: int = 0
-    levels: list = dataclasses.field(default_factory=list)
-    converged: bool = True
-    errors: np.ndarray = None
-    rtol: float = math.nan
-    products: dict = dataclasses.field(default_factory=dict)
-    preconditioner: str = ""
-    shift: float = 0.0
-    timings: dict = dataclasses.field(default_factory=dict)
-    product_seconds: float = math.nan
-    work_units: float = math.nan
-    threads: int = 1
-    peak_rss_bytes: int = 0
-
-
-class Eigenmodes(tuple):
-    """``(values, vectors)``, with what was found about them.
-
-    A tuple, so ``values, vectors = eigenmodes(mesh, k)`` works.
-
-    Attributes
-    ----------
-    values : ndarray, shape (k,)
-        Ascending; exactly 0.0 for zero modes.
-    vectors : ndarray, shape (n_points, k)
-        Mass-normalised (``v.T @ M @ v = 1`` with the mass matrix of ``rho``),
-        M-orthogonal, 0 at held points and at points in no cell; each one's
-        largest entry (by magnitude, the first of equals) is positive.
-    zero_modes : ndarray of bool, shape (k,)
-        True for the eigenvalue 0 of a part of the mesh that nothing holds
-        (its vector is constant on that part and 0 elsewhere).
-    stats : EigenStats
-    mesh : Mesh
-    """
-
-    def __new__(cls, values, vectors, zero_modes, stats, mesh):
-        self = super().__new__(cls, (values, vectors))
-        self.zero_modes = zero_modes
-        self.stats = stats
-        self.mesh = mesh
-        return self
-
-    def __reduce__(self):
-        return (Eigenmodes, (self[0], self[1], self.zero_modes, self.stats, self.mesh))
-
-    @property
-    def values(self):
-        return self[0]
-
-    @property
-    def vectors(self):
-        return self[1]
-
-    def __repr__(self):
-        s = self.stats
-        shown = ", ".join(f"{v:.6g}" for v in self.values[:4])
-        more = ", ..." if len(self.values) > 4 else ""
-        return (f"Eigenmodes([{shown}{more}], {int(self.zero_modes.sum())} zero modes, "
-                f"{s.method}, {s.unknowns} unknowns)")
 
 
 def _checked(mesh, k, method, rtol, maxiter, extra, seed, preconditioner, quadrature):
@@ -211,7 +100,7 @@ def _checked(mesh, k, method, rtol, maxiter, extra, seed, preconditioner, quadra
 
 def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, robin=None,
                method="auto", rtol=1e-8, maxiter=100, extra=None, preconditioner=None, seed=0,
-               quadrature=2, memory_check=True, **preconditioner_options):
+               quadrature=2, memory_check=True, refine=0, **preconditioner_options):
     """The ``k`` smallest eigenpairs of ``-div(kappa grad u) = lambda rho u`` (P1).
 
     Parameters
@@ -264,6 +153,15 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, rob
         Seed of the random start (lobpcg without refinement history, ARPACK's start vector).
     quadrature : int
         Degree of the rule for callable coefficients.
+    refine : int
+        Find the modes of ``mesh`` refined this many times (:meth:`Mesh.refine`);
+        the vectors are then in the numbering of the refined mesh.  With no
+        preconditioner named and data the patch path takes
+        (:func:`hatkernels.eigen_patches.eigen_patch_reason`), the refined mesh
+        is never stored: lobpcg runs on stencils patch by patch
+        (:mod:`hatkernels.eigen_patches`), its result a
+        :class:`~hatkernels.eigen_patches.PatchEigenmodes`.  Otherwise the
+        refined mesh is built and solved on as given.
     memory_check : bool
         Refuse, before assembling anything, a call whose estimated peak does
         not fit in the available memory (shift-invert: the sparse factorisation's
@@ -297,7 +195,16 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, rob
     >>> modes.zero_modes, float(modes.values[0])
     (array([ True, False]), 0.0)
     """
+    if refine and not isinstance(refine, bool) and eigen_patch_reason(
+            mesh, refine, coefficient=coefficient, density=density, dirichlet_on=dirichlet_on,
+            robin=robin, method=method, preconditioner=preconditioner,
+            options=preconditioner_options) is None:
+        return eigenmodes_on_patches(
+            mesh, k, refine=refine, coefficient=coefficient, density=density,
+            dirichlet_on=dirichlet_on, rtol=rtol, maxiter=maxiter, extra=extra, seed=seed,
+            quadrature=quadrature, memory_check=memory_check)
     t0 = time.perf_counter()
+    mesh = refined(mesh, refine)
     k, rtol, maxiter, extra, seed = _checked(mesh, k, method, rtol, maxiter, extra, seed,
                                              preconditioner, quadrature)
     kappa = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)
@@ -475,7 +382,7 @@ def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, 
         Y = level.zero if level.zero.shape[1] else None
         t = time.perf_counter()
         out = _eb.run(blocks, X0, Y, k=wanted, rtol=rtol, maxiter=maxiter,
-                      iterations=None if problem is None else _INTERMEDIATE)
+                      iterations=None if problem is None else _es.INTERMEDIATE)
         timings["solve"] += time.perf_counter() - t
         for key, count in blocks.counts.items():
             used[key] += count * level.unknowns / n

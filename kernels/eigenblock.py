@@ -160,7 +160,9 @@ class _Constraints:
 
 
 def run(blocks, X0, Y, *, k, rtol, maxiter, iterations=None):
-    """LOBPCG from the start block ``X0`` (n, m), not modified.
+    """LOBPCG from the start block ``X0`` (n, m), not modified; (m, n), one vector per
+    row, when ``blocks.by_rows`` is True (products and preconditioner then take and give
+    blocks by rows, and so do the outcome's vectors).
 
     ``Y`` (n, z) or None: constraints (zero modes), orthonormal in the mass
     matrix of ``blocks``.  Stops when the ``k`` smallest
@@ -169,43 +171,61 @@ def run(blocks, X0, Y, *, k, rtol, maxiter, iterations=None):
     ``maxiter``.  Returns a :class:`hatkernels.eigensolvers.LobpcgOutcome`
     with the vectors as an (n, m) array, M-orthonormal.
     """
-    n, m = X0.shape
+    by_rows = getattr(blocks, "by_rows", False)  # blocks stored one vector per row
+    m, n = X0.shape if by_rows else X0.shape[::-1]
     constraints = _Constraints(Y, blocks.M)
     # eleven buffers of n x m doubles, allocated (and first touched) once: X, W, P and
     # their products with K and M, the residuals as rows and the preconditioned rows, and
     # one for the new Ritz vectors (the new direction is made in the preconditioned rows')
-    pool = np.empty((11, n, m))
+    pool = np.empty((11, m, n) if by_rows else (11, n, m))
     X, W, P, KX, KW, KP, MX, MW, MP = pool[:9]
-    rows, done = pool[9].reshape(m, n), pool[10].reshape(m, n)
+    if by_rows:
+        rows, done = pool[9], pool[10]
+    else:
+        rows, done = pool[9].reshape(m, n), pool[10].reshape(m, n)
     new_x, new_p = pool[9], pool[10]
+
+    def times(S, C, out):  # out = S C, the block S's vectors combined by the columns of C
+        if by_rows:
+            np.matmul(C.T, S, out=out)
+        else:
+            np.matmul(S, C, out=out)
 
     X[:] = X0
     constraints.apply(X)
     blocks.products(X, KX, MX)
-    theta, C = _rayleigh_ritz(blocks, pool, [0], [3], [6], m)
-    np.matmul(X, C, out=new_x)
+    theta, C = _rayleigh_ritz(blocks, pool, [0], [3], [6], m, by_rows)
+    times(X, C, new_x)
     X[:] = new_x
     blocks.products(X, KX, MX)
     history = [theta]
     errors = np.full(k, np.inf)
     steps = 0
     while steps < (maxiter if iterations is None else min(iterations, maxiter)):
-        _kb.residual_rows(KX, MX, theta, rows)
+        if by_rows:
+            np.multiply(MX, -theta[:, None], out=rows)
+            rows += KX
+        else:
+            _kb.residual_rows(KX, MX, theta, rows)
         blocks.precondition(rows, done)
-        _kb.from_rows(done, W)
+        if by_rows:
+            W[:] = done
+        else:
+            _kb.from_rows(done, W)
         constraints.apply(W)
         blocks.products(W, KW, MW)
         if steps == 0:  # no direction yet
-            theta, C = _rayleigh_ritz(blocks, pool, [0, 1], [3, 4], [6, 7], m)
+            theta, C = _rayleigh_ritz(blocks, pool, [0, 1], [3, 4], [6, 7], m, by_rows)
         else:
-            theta, C = _rayleigh_ritz(blocks, pool, [0, 1, 2], [3, 4, 5], [6, 7, 8], m)
+            theta, C = _rayleigh_ritz(blocks, pool, [0, 1, 2], [3, 4, 5], [6, 7, 8], m,
+                                      by_rows)
         t = time.perf_counter()
         # P = W C_W + P C_P, then X = X C_X + P (rows and done are free again)
-        np.matmul(W, C[m:2 * m], out=new_p)
+        times(W, C[m:2 * m], new_p)
         if steps:
-            np.matmul(P, C[2 * m:], out=new_x)
+            times(P, C[2 * m:], new_x)
             new_p += new_x
-        np.matmul(X, C[:m], out=new_x)
+        times(X, C[:m], new_x)
         new_x += new_p
         X[:] = new_x
         P[:] = new_p
@@ -221,7 +241,7 @@ def run(blocks, X0, Y, *, k, rtol, maxiter, iterations=None):
     return LobpcgOutcome(theta, X, steps, history, errors, converged)
 
 
-def _rayleigh_ritz(blocks, pool, basis, kb, mb, m):
+def _rayleigh_ritz(blocks, pool, basis, kb, mb, m, by_rows=False):
     """Ritz pairs of the basis ``pool[basis]`` from its products ``pool[kb]``, ``pool[mb]``
     (lists of block numbers): both Gram matrices' upper blocks in one pass."""
     t = time.perf_counter()
@@ -230,7 +250,12 @@ def _rayleigh_ritz(blocks, pool, basis, kb, mb, m):
     left = np.array([basis[i] for i, _ in pairs] * 2, dtype=np.int64)
     right = np.array([kb[j] for _, j in pairs] + [mb[j] for _, j in pairs], dtype=np.int64)
     parts = np.empty((len(left), m, m))
-    _kb.gram_pairs(pool, left, right, parts)
+    if by_rows:
+        used = np.unique(np.concatenate([left, right]))
+        _kb.gram_pairs_by_rows(pool, used, np.searchsorted(used, left),
+                               np.searchsorted(used, right), parts)
+    else:
+        _kb.gram_pairs(pool, left, right, parts)
     GK = np.empty((q * m, q * m))
     GM = np.empty_like(GK)
     for p, (i, j) in enumerate(pairs):

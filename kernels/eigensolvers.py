@@ -48,10 +48,19 @@ from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.precond.gmg import coarsen_coefficient
 
 __all__ = ["Level", "build_level", "coarser", "prolong", "shift_invert", "error_estimates",
-           "LobpcgOutcome", "DENSE_LIMIT"]
+           "LobpcgOutcome", "DENSE_LIMIT", "INTERMEDIATE",
+           "SHIFT_INVERT_LIMIT"]
 
 #: Below this many unknowns the small eigenproblem is solved densely (LAPACK).
 DENSE_LIMIT = 600
+
+#: ``method="auto"`` solves problems with at most this many unknowns by shift-invert, and
+#: the nested lobpcg starts on the finest coarser level that has at most this many.
+SHIFT_INVERT_LIMIT = 20_000
+
+#: lobpcg iterations on each level between the start and the given mesh in the nested
+#: iteration (docs/eigenmodes.md has the measurements).
+INTERMEDIATE = 1
 
 # the contraction factor assumed per iteration when the history cannot tell it
 Q_MIN, Q_MAX = 0.25, 0.9

@@ -26,8 +26,8 @@ from numba import prange, uint64
 
 from hatkernels._jit import jit
 
-__all__ = ["pair_product", "residual_rows", "from_rows", "gram_pairs", "interpolate_rows",
-           "ROWS", "GRAM_ROWS"]
+__all__ = ["pair_product", "residual_rows", "from_rows", "gram_pairs", "gram_pairs_by_rows",
+           "interpolate_rows", "ROWS", "GRAM_ROWS"]
 
 #: Unknowns per parallel task of the copies between layouts.
 ROWS = 4096
@@ -108,6 +108,35 @@ def gram_pairs(pool, left, right, out):
         hi = min(lo + GRAM_ROWS, n)
         for p in range(q):
             part[c, p] = np.dot(pool[left[p], lo:hi].T, pool[right[p], lo:hi])
+    out[:] = 0.0
+    for c in range(nc):
+        out += part[c]
+
+
+@jit(parallel=True)
+def gram_pairs_by_rows(pool, used, left, right, out):
+    """:func:`gram_pairs` for blocks stored by rows: ``out[p] = pool[left[p]] @
+    pool[right[p]].T`` with ``pool`` (b, m, n), one vector per row (the layout of
+    operators that take one contiguous vector, :mod:`hatkernels.eigen_patches`).
+
+    Each chunk of :data:`GRAM_ROWS` columns of the blocks numbered in ``used``
+    is copied once into contiguous scratch (``left`` and ``right`` index into
+    ``used``), every pair's partial product is formed there (BLAS), and the
+    partials are added in chunk order: the same bits on any thread count.
+    """
+    n = pool.shape[2]
+    m = pool.shape[1]
+    q = left.shape[0]
+    nc = (n + GRAM_ROWS - 1) // GRAM_ROWS
+    part = np.empty((nc, q, m, m))
+    for c in prange(nc):
+        lo = c * GRAM_ROWS
+        hi = min(lo + GRAM_ROWS, n)
+        local = np.empty((used.shape[0], m, hi - lo))
+        for u in range(used.shape[0]):
+            local[u] = pool[used[u], :, lo:hi]
+        for p in range(q):
+            part[c, p] = np.dot(local[left[p]], local[right[p]].T)
     out[:] = 0.0
     for c in range(nc):
         out += part[c]

@@ -1,0 +1,311 @@
+"""Eigenmodes on a refinement that is never stored.
+
+``eigenmodes(coarse, k, refine=r)`` takes this path when the data allow it
+(:func:`eigen_patch_reason`): a triangle mesh; ``kappa`` and ``rho`` numbers
+or ``{region: number}`` (constant on each coarse cell); ``u = 0`` on whole
+coarse sides (the boundary, or boundary tags) with every part of the mesh
+holding one; no Robin term; no preconditioner named; more than
+:data:`~hatkernels.eigensolvers.SHIFT_INVERT_LIMIT` points.  It runs the
+nested LOBPCG of :mod:`hatkernels.eigen` on the levels of a
+:class:`~hatkernels.patches.PatchLayout`:
+
+- the start: the finest level with at most ``SHIFT_INVERT_LIMIT`` unknowns
+  (and twice the block), refined and stored (it is small), solved by
+  shift-invert, its vectors taken into the patch layout;
+- on each level above it: the stiffness and mass matrices as stencils
+  (:class:`~hatkernels.patches.PatchOperator` with
+  :func:`~hatkernels.patches.element_stiffness` and
+  :func:`~hatkernels.patches.multigrid.element_mass`), the patch multigrid of
+  the stiffness as preconditioner, the block interpolated from the level
+  below; :data:`~hatkernels.eigensolvers.INTERMEDIATE` iterations on the levels
+  between, and to ``rtol`` on the finest;
+- blocks stored one vector per row, the layout the stencil kernels and the
+  multigrid take (``hatkernels.eigenblock.run`` with ``by_rows``).
+
+No fine index array, coordinate or matrix is stored: the memory is the
+block (about ``100 m`` bytes per fine point for a block of ``m`` vectors),
+the modes asked for (``8 k``) and the multigrid's vectors.  The vectors come
+back in the numbering of ``coarse.refine()`` repeated ``r`` times, as the
+stored path gives them on that mesh.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+
+import numba
+import numpy as np
+
+from hatkernels import eigenblock as _eb
+from hatkernels import eigensolvers as _es
+from hatkernels._jit import patches as _p
+from hatkernels._jit import sparse as _k
+from hatkernels.checks import integer_option, real_option
+from hatkernels.coefficients import parse_coefficient
+from hatkernels.eigenresults import Eigenmodes, EigenStats
+from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.memory import MARGIN, available_bytes
+from hatkernels.patches import PatchLayout, PatchMultigrid, PatchOperator, element_stiffness
+from hatkernels.patches.multigrid import element_mass
+from hatkernels.patches.solve import (
+    _held,
+    _held_count,
+    _is_number,
+    _numbers_by_key,
+    _per_cell,
+    patch_path_reason,
+)
+from hatkernels.perf import peak_rss_bytes
+from hatkernels.problem import PoissonProblem
+
+__all__ = ["eigen_patch_reason", "eigenmodes_on_patches", "PatchEigenmodes", "PatchPencil",
+           "BYTES_PER_POINT_AND_VECTOR"]
+
+#: The memory estimate per fine point and per vector of the block (the block, its
+#: products, the residuals and the interpolated start: about 12 vectors of 8 bytes each).
+BYTES_PER_POINT_AND_VECTOR = 100
+
+
+def eigen_patch_reason(mesh, refine, *, coefficient=None, density=1.0, dirichlet_on=None,
+                       robin=None, method="auto", preconditioner=None, options=None):
+    """None when ``eigenmodes(mesh, k, refine=refine, ...)`` can run on patches, else the
+    reason it cannot (one sentence)."""
+    reason = patch_path_reason(mesh, refine, f=0.0, coefficient=coefficient,
+                               dirichlet_on=dirichlet_on, robin=robin, options=options)
+    if reason is not None:
+        return reason
+    if preconditioner is not None:
+        return "a named preconditioner belongs to the stored path"
+    if method == "shift-invert":
+        return "method='shift-invert' factorises the stored matrices"
+    if not (_is_number(density) or _numbers_by_key(density)):
+        return "density is not a number or {region: number}"
+    n = 2**int(refine)
+    points = (mesh.n_triangles * ((n - 1) * (n - 2) // 2) + len(mesh.edges()) * (n - 1)
+              + mesh.n_points)
+    if points <= _es.SHIFT_INVERT_LIMIT:
+        return (f"the refined mesh has {points} points, few enough for the stored path "
+                f"(at most {_es.SHIFT_INVERT_LIMIT})")
+    problem = PoissonProblem(mesh, 0.0, dirichlet_on=dirichlet_on, coefficient=coefficient)
+    sides = _held(mesh, problem, 0.0)[0]
+    count, labels = mesh.components()
+    holding = np.zeros(count, dtype=bool)
+    holding[labels[np.asarray(sides, dtype=np.int64).reshape(-1)]] = True
+    if not holding.all():
+        return ("a part of the mesh holds no side (its constant is a zero mode, which the "
+                "stored path handles)")
+    return None
+
+
+class PatchPencil:
+    """The stiffness and mass stencils of one level and its multigrid, applied to blocks
+    stored one vector per row (``hatkernels.eigenblock.run`` with ``by_rows``);
+    counted and timed as ``hatkernels.eigenblock.PencilBlocks``."""
+
+    by_rows = True
+    M = None  # no constraints: every part holds a side, so there are no zero modes
+
+    def __init__(self, K, M, preconditioner):
+        self._K, self._M, self._T = K, M, preconditioner
+        self.counts = {"stiffness": 0, "mass": 0, "preconditioner": 0}
+        self.seconds = {"products": 0.0, "preconditioner": 0.0, "dense": 0.0}
+
+    def products(self, X, KX, MX):
+        """``KX[j] = K X[j]`` and ``MX[j] = M X[j]`` for every row."""
+        t = time.perf_counter()
+        for j in range(X.shape[0]):
+            self._K.matvec_into(X[j], KX[j])
+            self._M.matvec_into(X[j], MX[j])
+        self.counts["stiffness"] += X.shape[0]
+        self.counts["mass"] += X.shape[0]
+        self.seconds["products"] += time.perf_counter() - t
+
+    def precondition(self, rows, out):
+        """``out[j] = T rows[j]`` for each row."""
+        t = time.perf_counter()
+        for j in range(rows.shape[0]):
+            self._T.apply_into(rows[j], out[j])
+        self.counts["preconditioner"] += rows.shape[0]
+        self.seconds["preconditioner"] += time.perf_counter() - t
+
+
+class PatchEigenmodes(Eigenmodes):
+    """:class:`~hatkernels.Eigenmodes` found on patches: the same tuple and attributes,
+    with ``mesh`` (``coarse`` refined ``refine`` times) built on first use, and
+    ``layout`` (the :class:`~hatkernels.patches.PatchLayout` of the finest level)."""
+
+    def __new__(cls, values, vectors, zero_modes, stats, layout):
+        self = super().__new__(cls, values, vectors, zero_modes, stats, None)
+        self.layout = layout
+        return self
+
+    @property
+    def mesh(self):
+        if self._mesh is None:
+            m = self.layout.coarse
+            for _ in range(self.layout.k):
+                m = m.refine()
+            self._mesh = m
+        return self._mesh
+
+    @mesh.setter
+    def mesh(self, value):
+        self._mesh = value
+
+    def __reduce__(self):
+        return (PatchEigenmodes, (self[0], self[1], self.zero_modes, self.stats, self.layout))
+
+
+def _unknowns(layout, level):
+    return layout.size(level) - _held_count(layout, 2**level)
+
+
+def _start_level(layout, block):
+    """The level the nested iteration starts on by shift-invert (module notes)."""
+    below = range(layout.k)
+    fits = [lv for lv in below
+            if 2 * block <= _unknowns(layout, lv) <= _es.SHIFT_INVERT_LIMIT]
+    if fits:
+        return fits[-1]
+    big = [lv for lv in below if _unknowns(layout, lv) >= 2 * block]
+    if big:
+        return big[0]
+    raise InputError(f"eigenmodes on patches needs a coarser level with at least 2 x {block} "
+                     f"(the block) unknowns to start from; refine the coarse mesh once "
+                     f"more or ask for fewer modes")
+
+
+def _start(layout, level, kappa, rho, block, seed, quadrature):
+    """The first block on ``level``: shift-invert on that level's refined mesh, stored
+    (rows: one vector each, in the patch layout)."""
+    coarse = layout.coarse
+    mesh = coarse
+    for _ in range(level):
+        mesh = mesh.refine()
+    size = layout.size(level)
+    held = np.zeros(size)
+    layout.copy_held(np.ones(size), held, level)
+    held = np.flatnonzero(layout.to_refined(held, level))
+    times = 4**level  # the children of cell t are cells 4t .. 4t+3
+    problem = _es.build_level(
+        mesh, held, parse_coefficient(np.repeat(kappa, times), mesh, name="coefficient"),
+        parse_coefficient(np.repeat(rho, times), mesh, name="density"), quadrature)
+    X = problem.expand(_es.shift_invert(problem, block, seed)[1])
+    rows = np.empty((block, size))
+    for j in range(block):
+        rows[j] = layout.from_refined(X[:, j], level)
+    return rows
+
+
+def _prolonged(layout, rows, level):
+    """The block ``rows`` (on ``level - 1``) interpolated linearly to ``level``, held
+    points 0."""
+    out = np.zeros((rows.shape[0], layout.size(level)))
+    for j in range(rows.shape[0]):
+        _p.prolong_add(rows[j], out[j], 2**level, layout.topo)
+        layout.zero_held(out[j], level)
+    return out
+
+
+def eigenmodes_on_patches(coarse, k, *, refine, coefficient=None, density=1.0,
+                          dirichlet_on=None, rtol=1e-8, maxiter=100, extra=None, seed=0,
+                          quadrature=2, memory_check=True):
+    """The ``k`` smallest eigenpairs of ``-div(kappa grad u) = lambda rho u`` on ``coarse``
+    refined ``refine`` times, the refinement never stored (module notes).
+
+    The arguments are those of :func:`hatkernels.eigenmodes` (the data this path
+    takes: :func:`eigen_patch_reason`).  Returns a :class:`PatchEigenmodes`;
+    ``stats.work_units`` is NaN (no assembled matrix defines the unit here).
+    ``memory_check`` refuses, before allocating, a call whose estimate
+    (:data:`BYTES_PER_POINT_AND_VECTOR` per fine point and vector of the block,
+    8 per mode) does not fit in the memory available.
+    """
+    t0 = time.perf_counter()
+    reason = eigen_patch_reason(coarse, refine, coefficient=coefficient, density=density,
+                                dirichlet_on=dirichlet_on)
+    if reason is not None:
+        raise InputError(f"eigenmodes on patches cannot take this problem: {reason}")
+    k = integer_option(k, "k", minimum=1)
+    rtol = real_option(rtol, "rtol", between=(0.0, 1.0))
+    maxiter = integer_option(maxiter, "maxiter", minimum=1)
+    extra = integer_option(extra, "extra", minimum=0, allow_none=True)
+    seed = integer_option(seed, "seed", minimum=0)
+    integer_option(quadrature, "quadrature", minimum=1)
+    problem = PoissonProblem(coarse, 0.0, dirichlet_on=dirichlet_on, coefficient=coefficient,
+                             quadrature=quadrature)
+    cells = coarse.n_triangles
+    kappa = _per_cell(problem.coefficient, cells, "coefficient")
+    rho = _per_cell(parse_coefficient(density, coarse, name="density"), cells, "density")
+    sides = _held(coarse, problem, 0.0)[0]
+    r = int(refine)
+    layout = PatchLayout(coarse, r, held_sides=sides)
+    size, unknowns = layout.size(r), _unknowns(layout, r)
+    block = k + (max(2, math.ceil(k / 4)) if extra is None else extra)
+    if k >= unknowns:
+        raise InputError(f"k = {k} eigenpairs asked for, but the problem has {unknowns} "
+                         f"unknowns; k must be below {unknowns}")
+    if unknowns < 5 * block:
+        raise InputError(f"lobpcg needs at least 5 x {block} (the block) unknowns, but the "
+                         f"problem has {unknowns}")
+    if memory_check:
+        need = size * (BYTES_PER_POINT_AND_VECTOR * block + 8 * k)
+        have = available_bytes()
+        if have is not None and need * MARGIN > have:
+            raise InputError(
+                f"not enough memory: eigenmodes on patches with {size:,} points and a block "
+                f"of {block} needs about {need / 2**30:.1f} GiB, but {have / 2**30:.1f} GiB "
+                f"are available; ask for fewer modes, refine less, or pass "
+                f"memory_check=False to try anyway")
+    timings = {"assemble": 0.0, "setup": 0.0, "solve": 0.0}
+    stats = EigenStats(method="lobpcg", unknowns=unknowns, block=block, rtol=rtol,
+                       threads=numba.get_num_threads(), shift=0.0)
+    start = _start_level(layout, block)
+    t = time.perf_counter()
+    X = _start(layout, start, kappa, rho, block, seed, quadrature)
+    timings["solve"] += time.perf_counter() - t
+    stats.levels.append((_unknowns(layout, start), 0))
+    stiffness = element_stiffness(coarse, kappa)
+    used = {"stiffness": 0.0, "mass": 0.0, "preconditioner": 0.0}
+    for level in range(start + 1, r + 1):
+        t = time.perf_counter()
+        X = _prolonged(layout, X, level)
+        here = layout if level == r else PatchLayout(coarse, level, held_sides=sides)
+        K = PatchOperator(here, stiffness, level)
+        M = PatchOperator(here, element_mass(coarse, rho, level), level)
+        T = PatchMultigrid(here, kappa)
+        timings["setup"] += time.perf_counter() - t
+        blocks = PatchPencil(K, M, T)
+        t = time.perf_counter()
+        out = _eb.run(blocks, X, None, k=k, rtol=rtol, maxiter=maxiter,
+                      iterations=None if level == r else _es.INTERMEDIATE)
+        timings["solve"] += time.perf_counter() - t
+        for key, count in blocks.counts.items():
+            used[key] += count * layout.size(level) / size
+        for key, seconds in blocks.seconds.items():
+            timings[key] = timings.get(key, 0.0) + seconds
+        stats.levels.append((_unknowns(layout, level), out.iterations))
+        X = out.vectors
+    stats.iterations, stats.converged, stats.errors = out.iterations, out.converged, out.errors
+    stats.products, stats.preconditioner = used, T.description
+    if not out.converged:
+        good = int((out.errors <= rtol).sum())
+        raise ConvergenceError(
+            f"eigenmodes: lobpcg converged {good} of the {k} eigenpairs asked for after "
+            f"{out.iterations} iterations on {unknowns} unknowns (estimated relative errors "
+            f"up to {float(np.max(out.errors)):.2e} against rtol {rtol:g}); raise maxiter or "
+            f"loosen rtol")
+    vectors = np.empty((size, k))
+    v, mv = np.empty(size), np.empty(size)
+    for j in range(k):
+        M.matvec_into(X[j], mv)
+        layout.to_refined(X[j], out=v)
+        v /= math.sqrt(_k.dot(X[j], mv))
+        if v[np.argmax(np.abs(v))] < 0:  # the largest entry (the first of equals) positive
+            np.negative(v, out=v)
+        vectors[:, j] = v
+    timings["total"] = time.perf_counter() - t0
+    stats.timings = timings
+    stats.peak_rss_bytes = peak_rss_bytes()
+    return PatchEigenmodes(out.values[:k].copy(), vectors, np.zeros(k, dtype=bool), stats,
+                           layout)
