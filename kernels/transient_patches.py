@@ -77,7 +77,11 @@ from hatkernels.transient_steps import (
 )
 
 __all__ = ["PatchMarch", "PatchTransientSolution", "march_on_patches",
-           "transient_patch_reason"]
+           "transient_patch_reason", "SMOOTHER_ITERATIONS"]
+
+#: CG iterations preconditioned by the finest level's smoother alone, tried first on a step
+#: whose start was projected from past steps (docs/patches.md, "Time stepping on patches").
+SMOOTHER_ITERATIONS = 1
 
 #: Coarse cells per block when ``u0`` is evaluated at the fine points.
 _BLOCK_CELLS = 256
@@ -276,6 +280,19 @@ def _check_memory(size, n_outputs):
             f"less, ask for fewer output times, or pass memory_check=False to try anyway")
 
 
+class _FinestSmoother:
+    """The finest level's Chebyshev smoother from a zero guess, ``z = S r``, as a
+    preconditioner: symmetric and positive definite (its polynomial in ``D^-1 A`` is
+    positive on the whole spectrum), at one fused sweep per application."""
+
+    def __init__(self, level):
+        self.level = level
+
+    def apply_into(self, r, z):
+        self.level.smooth(z, r, True)
+        return z
+
+
 class _System:
     """``M + tau K`` on the finest level (held rows out), its multigrid and start space."""
 
@@ -290,6 +307,7 @@ class _System:
         self.product, n = _operator(self.A)
         self.M = _cg.as_preconditioner(self.P, n)
         self.space = StartSpace(n, START_SPACE)
+        self.S = _FinestSmoother(self.P.levels[-1])
 
     def matvec(self, v, out):
         self.A.matvec_into(v, out)
@@ -382,6 +400,7 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
     systems, built = {}, 0
     n_steps = len(schedule)
     iterations = np.zeros(n_steps, dtype=np.int64)
+    smoothed = np.zeros(n_steps, dtype=np.int64)
     step_seconds = np.zeros(n_steps)
     values = np.empty((len(times), size))
     n_out = len(times)
@@ -421,13 +440,21 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
         if lift is not None:
             rhs -= s.A_full @ lift
         layout.zero_held(rhs)
-        x0 = s.space.guess(rhs, x0_buf)
+        x0, result = s.space.guess(rhs, x0_buf), None
         if x0 is None:
             x0 = _start(prev, h_prev, prev2, h_prev2, h, x0_buf)
-        result = _cg.run(s.product, rhs, x0, s.M, _cg.LOCAL, rtol=rtol, atol=atol,
-                         maxiter=maxiter, work=work)
+        elif SMOOTHER_ITERATIONS:  # what a projected start misses, the smoother removes
+            result = _cg.run(s.product, rhs, x0, s.S, _cg.LOCAL, rtol=rtol, atol=atol,
+                             maxiter=min(SMOOTHER_ITERATIONS, maxiter), work=work)
+            smoothed[i] = result.iterations
+            if result.info != 0:  # on from there with the whole cycle
+                x0 = result.x if result.info > 0 else x0
+                result = None
+        if result is None:
+            result = _cg.run(s.product, rhs, x0, s.M, _cg.LOCAL, rtol=rtol, atol=atol,
+                             maxiter=maxiter, work=work)
+            iterations[i] = result.iterations
         d = result.x  # the workspace's: copied below where kept
-        iterations[i] = result.iterations
         if result.info != 0:
             failed += 1
             text = f"step {i + 1} (t = {t0:.6g} to {t1:.6g}): {result.message}"
@@ -462,7 +489,8 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
     label = scheme if theta == 1.0 or not startup else \
         f"{scheme} with {startup} backward-euler half steps (Rannacher start-up)"
     stats = TransientStats(
-        steps=n_steps, iterations=iterations, step_seconds=step_seconds,
+        steps=n_steps, iterations=iterations, smoother_iterations=smoothed,
+        step_seconds=step_seconds,
         product_seconds=float("nan"), converged=failed == 0, failed_steps=failed,
         timings=timings, unknowns=size, nnz=0, stored_bytes=int(stored),
         preconditioner=description or "none (no step)", systems=built, scheme=label,

@@ -25,7 +25,12 @@ class TransientStats:
     ----------
     steps : int
     iterations : ndarray, shape (steps,)
-        CG iterations of each step.
+        CG iterations of each step with the whole preconditioner.
+    smoother_iterations : ndarray, shape (steps,), or None
+        CG iterations preconditioned by the finest level's smoother alone, tried
+        first on each step with a projected start (the patch path,
+        :data:`hatkernels.transient_patches.SMOOTHER_ITERATIONS` at most); None on
+        the stored path.
     step_seconds : ndarray, shape (steps,)
         Wall time of each step (right-hand side, time-dependent data, CG, update,
         heat balance, probes; not the setup of a new step size).
@@ -71,6 +76,7 @@ class TransientStats:
     peak_rss_bytes: int = 0
     threads: int = 1
     message: str = ""
+    smoother_iterations: np.ndarray = None
 
     @property
     def work_units(self):

@@ -324,3 +324,56 @@ def test_bad_values_on_the_patch_path_are_refused_by_name(name, bad):
     text = str(info.value)
     named = {"f": ("f", "load"), "neumann": ("neumann", "boundary load")}.get(name, (name,))
     assert any(n in text for n in named), text
+
+
+def test_the_finest_smoother_is_a_symmetric_positive_definite_preconditioner():
+    """CG may take it as its preconditioner: the Chebyshev smoothing polynomial ``p`` of
+    ``D^-1 A`` is positive on A's spectrum, so ``p(D^-1 A) D^-1`` is symmetric positive
+    definite (common practice, no source); built here column by column on the free
+    points."""
+    from hatkernels.transient_patches import _FinestSmoother
+
+    coarse, k = rectangle(2, 2), 3
+    layout = PatchLayout(coarse, k, held_sides=coarse.boundary_edges())
+    P = PatchMultigrid(layout, np.ones(coarse.n_triangles),
+                       sigma=np.full(coarse.n_triangles, 50.0))
+    S = _FinestSmoother(P.levels[-1])
+    n = layout.size(k)
+    free = np.flatnonzero(layout.zero_held(np.ones(n)))
+    columns = []
+    for i in free:
+        e, z = np.zeros(n), np.empty(n)
+        e[i] = 1.0
+        S.apply_into(e, z)
+        assert np.all(z[np.setdiff1d(np.arange(n), free)] == 0.0)  # held points stay 0
+        columns.append(z[free])
+    Smat = np.array(columns).T
+    assert np.abs(Smat - Smat.T).max() <= 1e-13 * np.abs(Smat).max()
+    assert np.linalg.eigvalsh(0.5 * (Smat + Smat.T)).min() > 0.0
+
+
+def test_steps_the_smoother_finishes_keep_the_field_within_the_tolerance():
+    """At the default rtol many steps after the start-up are finished by one CG iteration
+    preconditioned by the finest level's smoother; the field stays within the tolerance of
+    the theta scheme solved exactly with SciPy's sparse LU (Crank-Nicolson,
+    ``M (u' - u) + h K (u' + u) / 2 = 0``, K. W. Morton and D. F. Mayers, 2005, ch. 2;
+    value from memory)."""
+    coarse, k, h, steps = rectangle(4, 4), 5, 1e-3, 24
+    fine = refined(coarse, k)
+    K, M = hk.assemble_stiffness(fine), hk.assemble_mass(fine)
+    free = np.setdiff1d(np.arange(fine.n_points), fine.boundary_points())
+    A = (M + 0.5 * h * K).tocsr()[free][:, free]
+    B = (M - 0.5 * h * K).tocsr()[free][:, free]
+    lu = spla.splu(A.tocsc())
+    u = np.zeros(fine.n_points)
+    u[free] = sine(*fine.points[free].T)
+    ref = u.copy()
+    for _ in range(steps):
+        ref[free] = lu.solve(B @ ref[free])
+    ours = march_on_patches(coarse, sine, [steps * h], dt=h, refine=k, startup=0)
+    s = ours.stats
+    finished = (s.smoother_iterations > 0) & (s.iterations == 0)
+    assert finished.sum() >= steps // 4, (s.smoother_iterations, s.iterations)
+    assert np.abs(ours.u[-1] - ref).max() <= 1e-5 * np.abs(ref).max()
+    stored = solve_transient(fine, u, [h], dt=h, startup=0)
+    assert stored.stats.smoother_iterations is None
