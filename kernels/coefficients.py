@@ -474,7 +474,7 @@ def parse_by_region(value, mesh, *, name, sign, tensor=False):
             raise InputError(f"{name} in region {tags.region_label(t)} is a dict; a region "
                              f"takes a number, an array, a tensor or a callable")
         chosen[t] = (key, v)
-    if tensor:
+    if tensor or sign == "positive":  # a diffusion, a density or a capacity: everywhere
         missing = [t for t in tags.region_tags().tolist() if t not in chosen]
         if missing:
             raise InputError(f"{name}: region {tags.region_label(missing[0])} has none "

@@ -148,14 +148,19 @@ def ritz(GK, GM, m):
 
 
 class _Constraints:
-    """Keeps blocks M-orthogonal to the columns of ``Y`` (n, z), which are M-orthonormal."""
+    """Keeps blocks M-orthogonal to the columns of ``Y`` (n, z), which are M-orthonormal;
+    the blocks are (n, m), or (m, n) when ``by_rows``."""
 
-    def __init__(self, Y, M):
-        self.Y = Y
+    def __init__(self, Y, M, by_rows=False):
+        self.Y, self.by_rows = Y, by_rows
         self.MY = None if Y is None else np.asarray(M @ Y)
 
     def apply(self, B):
-        if self.Y is not None:
+        if self.Y is None:
+            return
+        if self.by_rows:
+            B -= (B @ self.MY) @ self.Y.T
+        else:
             B -= self.Y @ (self.MY.T @ B)
 
 
@@ -173,7 +178,7 @@ def run(blocks, X0, Y, *, k, rtol, maxiter, iterations=None):
     """
     by_rows = getattr(blocks, "by_rows", False)  # blocks stored one vector per row
     m, n = X0.shape if by_rows else X0.shape[::-1]
-    constraints = _Constraints(Y, blocks.M)
+    constraints = _Constraints(Y, blocks.M, by_rows)
     # eleven buffers of n x m doubles, allocated (and first touched) once: X, W, P and
     # their products with K and M, the residuals as rows and the preconditioned rows, and
     # one for the new Ritz vectors (the new direction is made in the preconditioned rows')

@@ -300,6 +300,10 @@ def test_bad_data_name_the_cell():
         eigenmodes(m, 2, density=rho)
     with pytest.raises(InputError, match="expected a hatkernels.Mesh"):
         eigenmodes(m.points, 2)
+    # a density by region must name the region it lacks, as the coefficient's does
+    halves = m.with_tags(regions=(m.points[m.cells].mean(axis=1)[:, 0] > 0.5).astype(int))
+    with pytest.raises(InputError, match=r"density: region 1 has none"):
+        eigenmodes(halves, 2, density={0: 2.0})
 
 
 def test_multigrid_with_the_shifts_mass_serves_a_floating_part():
