@@ -49,6 +49,7 @@ from hatkernels.krylov import _check_scalars, _operator
 from hatkernels.patches.layout import PatchLayout
 from hatkernels.patches.load import callable_load
 from hatkernels.patches.multigrid import (
+    FinestSmoother,
     PatchMultigrid,
     PatchOperator,
     element_mass,
@@ -280,19 +281,6 @@ def _check_memory(size, n_outputs):
             f"less, ask for fewer output times, or pass memory_check=False to try anyway")
 
 
-class _FinestSmoother:
-    """The finest level's Chebyshev smoother from a zero guess, ``z = S r``, as a
-    preconditioner: symmetric and positive definite (its polynomial in ``D^-1 A`` is
-    positive on the whole spectrum), at one fused sweep per application."""
-
-    def __init__(self, level):
-        self.level = level
-
-    def apply_into(self, r, z):
-        self.level.smooth(z, r, True)
-        return z
-
-
 class _System:
     """``M + tau K`` on the finest level (held rows out), its multigrid and start space."""
 
@@ -307,7 +295,7 @@ class _System:
         self.product, n = _operator(self.A)
         self.M = _cg.as_preconditioner(self.P, n)
         self.space = StartSpace(n, START_SPACE)
-        self.S = _FinestSmoother(self.P.levels[-1])
+        self.S = FinestSmoother(self.P)
 
     def matvec(self, v, out):
         self.A.matvec_into(v, out)

@@ -331,13 +331,13 @@ def test_the_finest_smoother_is_a_symmetric_positive_definite_preconditioner():
     ``D^-1 A`` is positive on A's spectrum, so ``p(D^-1 A) D^-1`` is symmetric positive
     definite (common practice, no source); built here column by column on the free
     points."""
-    from hatkernels.transient_patches import _FinestSmoother
+    from hatkernels.patches.multigrid import FinestSmoother
 
     coarse, k = rectangle(2, 2), 3
     layout = PatchLayout(coarse, k, held_sides=coarse.boundary_edges())
     P = PatchMultigrid(layout, np.ones(coarse.n_triangles),
                        sigma=np.full(coarse.n_triangles, 50.0))
-    S = _FinestSmoother(P.levels[-1])
+    S = FinestSmoother(P)
     n = layout.size(k)
     free = np.flatnonzero(layout.zero_held(np.ones(n)))
     columns = []

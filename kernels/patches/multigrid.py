@@ -33,7 +33,8 @@ from hatkernels.errors import InputError
 from hatkernels.precond.direct import SparseDirect, coarse_correction
 from hatkernels.precond.registry import Preconditioner
 
-__all__ = ["PatchOperator", "PatchMultigrid", "element_mass", "element_stiffness"]
+__all__ = ["PatchOperator", "PatchMultigrid", "FinestSmoother", "element_mass",
+           "element_stiffness"]
 
 #: The P1 mass matrix of a triangle of unit area, consistent and lumped to its row sums.
 _MASS = {False: (np.ones((3, 3)) + np.eye(3)) / 12.0, True: np.eye(3) / 3.0}
@@ -404,3 +405,19 @@ class PatchMultigrid(Preconditioner):
         precision = "single" if self.single else "double"
         return (f"{len(self.levels) + 1} levels, V-cycle, Chebyshev degree {self.degree}, "
                 f"{precision} precision vectors")
+
+
+class FinestSmoother:
+    """The finest level's Chebyshev smoother of a :class:`PatchMultigrid` from a zero guess,
+    ``z = S r``, as a preconditioner (``apply_into``): symmetric and positive definite (its
+    polynomial in ``D^-1 A`` is positive on the whole spectrum), one fused sweep per
+    application at degree 2.  The patch march tries it before the V-cycle
+    (:data:`hatkernels.transient_patches.SMOOTHER_ITERATIONS`)."""
+
+    def __init__(self, multigrid):
+        self.level = multigrid.levels[-1]
+
+    def apply_into(self, r, z):
+        self.level.smooth(z, r, True)
+        return z
+
