@@ -68,12 +68,18 @@ def test_peak_memory_traced_sees_an_allocation_within_ten_percent():
 
 
 def test_peak_memory_rss_sees_touched_memory():
+    # fresh pages of an anonymous mapping: the allocator cannot hand back memory that an
+    # earlier test in this worker freed but kept resident (which np.empty may)
+    import mmap
+
     size = 50 * MB
     with perf.PeakMemory(mode="rss") as peak:
-        a = np.empty(size // 8)
+        mapped = mmap.mmap(-1, size)
+        a = np.frombuffer(mapped, dtype=np.float64)
         a.fill(2.0)
     assert peak.peak >= 0.9 * size
     del a
+    mapped.close()
     with pytest.raises(ValueError, match="mode must be 'traced' or 'rss', got 'heap'"):
         perf.PeakMemory(mode="heap")
 
