@@ -272,6 +272,7 @@ def eigenmodes_on_patches(coarse, k, *, refine, coefficient=None, density=1.0,
     for level in range(start + 1, r + 1):
         t = time.perf_counter()
         X = _prolonged(layout, X, level)
+        out = None  # the level below's vectors are a view of its whole block pool: let it go
         here = layout if level == r else PatchLayout(coarse, level, held_sides=sides)
         K = PatchOperator(here, stiffness, level)
         M = PatchOperator(here, element_mass(coarse, rho, level), level)
