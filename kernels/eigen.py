@@ -375,6 +375,7 @@ def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, 
             X0 = np.random.default_rng(seed).standard_normal((level.unknowns, m))
         else:
             X0 = _es.prolong(level.mesh, X, level.free)
+        out = None  # the level below's vectors are a view of its whole block pool
         t = time.perf_counter()
         T = _preconditioner(level, name, options, quadrature)
         timings["setup"] += time.perf_counter() - t
