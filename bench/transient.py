@@ -99,6 +99,7 @@ def worker(args):
                    step_mean_s=float(np.mean(s.step_seconds[later])),
                    step_mean_wu=float(np.mean(s.work_units[later])),
                    iterations=s.iterations.tolist(), rtol=s.rtol,
+                   smoother_iterations=s.smoother_iterations.tolist(),
                    preconditioner=s.preconditioner, converged=s.converged, threads=s.threads)
         u = sol.u[-1]
     else:
@@ -278,7 +279,8 @@ def main():
         print(f"{args.dim}-D n={n} hatkernels: {points:,} points, step "
               f"{ours['step_s'] * 1e3:.1f} ms = {ours['step_wu']:.1f} WU (mean "
               f"{ours['step_mean_s'] * 1e3:.1f} ms = {ours['step_mean_wu']:.1f} WU) "
-              f"({np.mean(ours['iterations'][1:]):.1f} iterations), setup "
+              f"({np.mean(ours['iterations'][1:]):.1f} iterations, "
+              f"{np.mean(ours['smoother_iterations'][1:]):.1f} with the smoother), setup "
               f"{ours['setup_s']:.2f} s, {ours['bytes_per_point']:.0f} B/point", flush=True)
         for ordering in args.orderings:
             if ordering in fill:  # the peak per point measured at the last size, grown

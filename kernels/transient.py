@@ -228,7 +228,8 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     label = scheme if theta == 1.0 or not startup else \
         f"{scheme} with {startup} backward-euler half steps (Rannacher start-up)"
     stats = TransientStats(
-        steps=len(schedule), iterations=run.iterations, step_seconds=run.step_seconds,
+        steps=len(schedule), iterations=run.iterations,
+        smoother_iterations=run.smoother_iterations, step_seconds=run.step_seconds,
         product_seconds=run.product_seconds, converged=failed == 0, failed_steps=failed,
         timings=timings, unknowns=blocks.unknowns, nnz=run.nnz,
         stored_bytes=blocks.stored_bytes + sum(s.stored_bytes for s in run.systems.values()),
@@ -296,6 +297,7 @@ class _Run:
         x = np.ascontiguousarray(u0[free])
         uD = u0[held].copy()
         self.iterations = np.zeros(n_steps, dtype=np.int64)
+        self.smoother_iterations = np.zeros(n_steps, dtype=np.int64)
         self.step_seconds = np.zeros(n_steps)
         self.probe_times = np.array([0.0] + [s[1] for s in schedule])
         pick = None
@@ -344,12 +346,13 @@ class _Run:
                 last = (system, theta)
             system.rhs(x, c_dt, _ratio(h, system.dt), dD, rhs)
             x0 = system.space.guess(rhs, x0_buf)
+            projected = x0 is not None
             if x0 is None:
                 x0 = _start(prev, h_prev, prev2, h_prev2, h, x0_buf)
-            result = system.solve(rhs, x0, rtol, atol, maxiter, work)
+            result, self.smoother_iterations[i], self.iterations[i] = system.solve(
+                rhs, x0, rtol, atol, maxiter, work, projected)
             d = result.x  # the workspace's: copied below where kept
             system.remember(rhs, result)
-            self.iterations[i] = result.iterations
             if result.info != 0:
                 self.failed += 1
                 text = f"step {i + 1} (t = {t0:.6g} to {t1:.6g}): {result.message}"

@@ -70,19 +70,17 @@ from hatkernels.problem import PoissonProblem
 from hatkernels.transient_data import InTime, initial_array
 from hatkernels.transient_results import EnergyBalance, TransientSolution, TransientStats
 from hatkernels.transient_steps import (
+    SMOOTHER_ITERATIONS,
     START_SPACE,
     StartSpace,
     _schedule,
     _start,
     march_options,
+    smoother_first,
 )
 
 __all__ = ["PatchMarch", "PatchTransientSolution", "march_on_patches",
-           "transient_patch_reason", "SMOOTHER_ITERATIONS"]
-
-#: CG iterations preconditioned by the finest level's smoother alone, tried first on a step
-#: whose start was projected from past steps (docs/patches.md, "Time stepping on patches").
-SMOOTHER_ITERATIONS = 1
+           "transient_patch_reason"]
 
 #: Coarse cells per block when ``u0`` is evaluated at the fine points.
 _BLOCK_CELLS = 256
@@ -432,12 +430,9 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
         if x0 is None:
             x0 = _start(prev, h_prev, prev2, h_prev2, h, x0_buf)
         elif SMOOTHER_ITERATIONS:  # what a projected start misses, the smoother removes
-            result = _cg.run(s.product, rhs, x0, s.S, _cg.LOCAL, rtol=rtol, atol=atol,
-                             maxiter=min(SMOOTHER_ITERATIONS, maxiter), work=work)
-            smoothed[i] = result.iterations
-            if result.info != 0:  # on from there with the whole cycle
-                x0 = result.x if result.info > 0 else x0
-                result = None
+            result, x0 = smoother_first(s.product, s.S, rhs, x0, rtol, atol, maxiter, work)
+            smoothed[i] = min(SMOOTHER_ITERATIONS, maxiter) if result is None else \
+                result.iterations
         if result is None:
             result = _cg.run(s.product, rhs, x0, s.M, _cg.LOCAL, rtol=rtol, atol=atol,
                              maxiter=maxiter, work=work)

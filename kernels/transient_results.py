@@ -27,10 +27,10 @@ class TransientStats:
     iterations : ndarray, shape (steps,)
         CG iterations of each step with the whole preconditioner.
     smoother_iterations : ndarray, shape (steps,), or None
-        CG iterations preconditioned by the finest level's smoother alone, tried
-        first on each step with a projected start (the patch path,
-        :data:`hatkernels.transient_patches.SMOOTHER_ITERATIONS` at most); None on
-        the stored path.
+        CG iterations preconditioned by a Chebyshev smoother alone (the patch
+        multigrid's finest level, or degree 2 on the assembled system), tried
+        first on each step with a projected start
+        (:data:`hatkernels.transient_steps.SMOOTHER_ITERATIONS` at most).
     step_seconds : ndarray, shape (steps,)
         Wall time of each step (right-hand side, time-dependent data, CG, update,
         heat balance, probes; not the setup of a new step size).

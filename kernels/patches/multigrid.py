@@ -412,7 +412,7 @@ class FinestSmoother:
     ``z = S r``, as a preconditioner (``apply_into``): symmetric and positive definite (its
     polynomial in ``D^-1 A`` is positive on the whole spectrum), one fused sweep per
     application at degree 2.  The patch march tries it before the V-cycle
-    (:data:`hatkernels.transient_patches.SMOOTHER_ITERATIONS`)."""
+    (:data:`hatkernels.transient_steps.SMOOTHER_ITERATIONS`)."""
 
     def __init__(self, multigrid):
         self.level = multigrid.levels[-1]
