@@ -47,11 +47,12 @@ THREE_D_ASSEMBLED = 950
 
 #: What a march (hatkernels.solve_transient) holds beyond a steady solve's peak, per
 #: point: the mass matrix and ``dt K`` (values sharing the stiffness's indices), a few
-#: more vectors and the start spaces' eight per kept system (64 bytes each, up to two
-#: systems).  Measured with amg and one system: 871 to 885 bytes per point against the
-#: steady solve's 640 (docs/transient.md).  The outputs come on top (8 bytes per point
-#: each).
-TRANSIENT_EXTRA = 328
+#: more vectors, the start spaces' eight per kept system (64 bytes each, up to two
+#: systems) and the first-tried smoother's inverse diagonal and work vector (16 bytes per
+#: system).  Measured with amg and one system: 871 to 885 bytes per point against the
+#: steady solve's 640 (docs/transient.md), 945 with the smoother.  The outputs come on
+#: top (8 bytes per point each).
+TRANSIENT_EXTRA = 360
 
 #: lobpcg (hatkernels.eigenmodes) per point: the assembled K and M and the multigrid, and
 #: per vector of its block (``m``, the modes asked for and a few more) the block's eleven

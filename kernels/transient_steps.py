@@ -33,6 +33,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from hatkernels import _cg
+from hatkernels._jit import amg as _amg
 from hatkernels._jit import sparse as _k
 from hatkernels.assembly import StiffnessAssembler
 from hatkernels.assembly.boundary_terms import side_mass
@@ -272,9 +273,11 @@ class _AssembledSmoother:
 
     def __init__(self, A):
         arrays = (A.indptr, A.indices, A.data)
-        diag = A.diagonal()
-        dinv = 1.0 / diag
-        bound = float(np.max(abs(A) @ np.ones(A.shape[0]) * dinv, initial=1.0))
+        dinv = np.empty(A.shape[0])
+        bound, row = _amg.diagonal_and_bound(*arrays, dinv)  # one pass, no copy of A
+        if row >= 0:  # M + tau K has a positive diagonal; a failure here is a bug
+            raise InputError(f"the step matrix M + tau K has diagonal {A.diagonal()[row]} "
+                             f"in row {row}; it must be > 0")
         self._q = np.empty(A.shape[0])
         self._cheb = ChebyshevSmoother(lambda x, out: _k.spmv(*arrays, x, out),
                                        lambda x, b, out: _k.residual(*arrays, x, b, out),
