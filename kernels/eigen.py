@@ -52,7 +52,7 @@ from hatkernels.conditions import parse_conditions
 from hatkernels.eigen_patches import eigen_patch_reason, eigenmodes_on_patches
 from hatkernels.eigenresults import Eigenmodes, EigenStats
 from hatkernels.eigensolvers import SHIFT_INVERT_LIMIT
-from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.errors import InputError
 from hatkernels.memory import check_eigen_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.perf import peak_rss_bytes
@@ -398,10 +398,6 @@ def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, 
     stats.shift = fine.shift()
     stats.errors = np.concatenate([np.zeros(z), out.errors])
     if not out.converged:
-        good = int((out.errors <= rtol).sum())
-        raise ConvergenceError(
-            f"eigenmodes: lobpcg converged {good + z} of the {wanted + z} eigenpairs asked "
-            f"for after {out.iterations} iterations on {n} unknowns (estimated relative "
-            f"errors up to {float(np.max(out.errors)):.2e} against rtol {rtol:g}"
-            + "); raise maxiter, loosen rtol or use method='shift-invert'")
+        raise _eb.not_converged(out, rtol, wanted + z, n, z,
+                                ", loosen rtol or use method='shift-invert'")
     return out.values, out.vectors

@@ -44,7 +44,7 @@ from hatkernels._jit import sparse as _k
 from hatkernels.checks import integer_option, real_option
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.eigenresults import Eigenmodes, EigenStats
-from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.errors import InputError
 from hatkernels.memory import MARGIN, available_bytes
 from hatkernels.patches import PatchLayout, PatchMultigrid, PatchOperator, element_stiffness
 from hatkernels.patches.multigrid import element_mass
@@ -100,18 +100,17 @@ def eigen_patch_reason(mesh, refine, *, coefficient=None, density=1.0, dirichlet
     return None
 
 
-class PatchPencil:
-    """The stiffness and mass stencils of one level and its multigrid, applied to blocks
-    stored one vector per row (``hatkernels.eigenblock.run`` with ``by_rows``);
-    counted and timed as ``hatkernels.eigenblock.PencilBlocks``."""
+class PatchPencil(_eb.BlockOperators):
+    """The stiffness and mass stencils of one level applied to blocks stored one vector per
+    row (``hatkernels.eigenblock.run`` with ``by_rows``), and its multigrid
+    (``hatkernels.eigenblock.BlockOperators``: counted and timed)."""
 
     by_rows = True
     M = None  # no constraints: every part holds a side, so there are no zero modes
 
     def __init__(self, K, M, preconditioner):
-        self._K, self._M, self._T = K, M, preconditioner
-        self.counts = {"stiffness": 0, "mass": 0, "preconditioner": 0}
-        self.seconds = {"products": 0.0, "preconditioner": 0.0, "dense": 0.0}
+        super().__init__(preconditioner)
+        self._K, self._M = K, M
 
     def products(self, X, KX, MX):
         """``KX[j] = K X[j]`` and ``MX[j] = M X[j]`` for every row."""
@@ -119,17 +118,7 @@ class PatchPencil:
         for j in range(X.shape[0]):
             self._K.matvec_into(X[j], KX[j])
             self._M.matvec_into(X[j], MX[j])
-        self.counts["stiffness"] += X.shape[0]
-        self.counts["mass"] += X.shape[0]
-        self.seconds["products"] += time.perf_counter() - t
-
-    def precondition(self, rows, out):
-        """``out[j] = T rows[j]`` for each row."""
-        t = time.perf_counter()
-        for j in range(rows.shape[0]):
-            self._T.apply_into(rows[j], out[j])
-        self.counts["preconditioner"] += rows.shape[0]
-        self.seconds["preconditioner"] += time.perf_counter() - t
+        self._counted(X.shape[0], time.perf_counter() - t)
 
 
 class PatchEigenmodes(Eigenmodes):
@@ -145,10 +134,7 @@ class PatchEigenmodes(Eigenmodes):
     @property
     def mesh(self):
         if self._mesh is None:
-            m = self.layout.coarse
-            for _ in range(self.layout.k):
-                m = m.refine()
-            self._mesh = m
+            self._mesh = self.layout.refined_mesh()
         return self._mesh
 
     @mesh.setter
@@ -292,12 +278,7 @@ def eigenmodes_on_patches(coarse, k, *, refine, coefficient=None, density=1.0,
     stats.iterations, stats.converged, stats.errors = out.iterations, out.converged, out.errors
     stats.products, stats.preconditioner = used, T.description
     if not out.converged:
-        good = int((out.errors <= rtol).sum())
-        raise ConvergenceError(
-            f"eigenmodes: lobpcg converged {good} of the {k} eigenpairs asked for after "
-            f"{out.iterations} iterations on {unknowns} unknowns (estimated relative errors "
-            f"up to {float(np.max(out.errors)):.2e} against rtol {rtol:g}); raise maxiter or "
-            f"loosen rtol")
+        raise _eb.not_converged(out, rtol, k, unknowns)
     vectors = np.empty((size, k))
     v, mv = np.empty(size), np.empty(size)
     for j in range(k):

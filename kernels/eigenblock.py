@@ -57,7 +57,8 @@ from hatkernels._jit import blocks as _kb
 from hatkernels.eigensolvers import LobpcgOutcome, error_estimates
 from hatkernels.errors import ConvergenceError
 
-__all__ = ["PencilBlocks", "run", "ritz", "shared_pattern", "DROP"]
+__all__ = ["BlockOperators", "PencilBlocks", "run", "ritz", "shared_pattern", "DROP",
+           "not_converged"]
 
 #: Relative eigenvalue of the scaled mass Gram matrix below which a basis
 #: direction counts as dependent on the others and is dropped.
@@ -87,31 +88,27 @@ def shared_pattern(A, B):
     return union.indptr, union.indices, values[0], values[1]
 
 
-class PencilBlocks:
-    """``K`` and ``M`` applied to columns of a block in one pass, and the preconditioner
-    ``T`` (an object with ``apply_into(r, out)``) to rows; counted and timed.
+class BlockOperators:
+    """What every block operator of :func:`run` shares: the preconditioner ``T`` (an
+    object with ``apply_into(r, out)``) applied to rows, and the counters.
 
     ``counts``: products with ``K``, with ``M``, and preconditioner applications, per
     vector; ``seconds``: time in the products, in the preconditioner and in the
-    dense block algebra of :func:`run`.
+    dense block algebra of :func:`run`.  Subclasses give ``products(X, KX, MX)``,
+    ``M`` (for constraints) and ``by_rows``.
     """
 
-    def __init__(self, K, M, preconditioner):
-        self.n = K.shape[0]
-        self.M = M
-        self._pattern = shared_pattern(K, M)
+    by_rows = False
+
+    def __init__(self, preconditioner):
         self._T = preconditioner
         self.counts = {"stiffness": 0, "mass": 0, "preconditioner": 0}
         self.seconds = {"products": 0.0, "preconditioner": 0.0, "dense": 0.0}
 
-    def products(self, X, KX, MX):
-        """``KX = K X`` and ``MX = M X`` for a block ``X`` (n, r)."""
-        t = time.perf_counter()
-        indptr, indices, k, m = self._pattern
-        _kb.pair_product(indptr, indices, k, m, X, KX, MX)
-        self.counts["stiffness"] += X.shape[1]
-        self.counts["mass"] += X.shape[1]
-        self.seconds["products"] += time.perf_counter() - t
+    def _counted(self, vectors, seconds):
+        self.counts["stiffness"] += vectors
+        self.counts["mass"] += vectors
+        self.seconds["products"] += seconds
 
     def precondition(self, rows, out):
         """``out[j] = T rows[j]`` for each row."""
@@ -120,6 +117,24 @@ class PencilBlocks:
             self._T.apply_into(rows[j], out[j])
         self.counts["preconditioner"] += rows.shape[0]
         self.seconds["preconditioner"] += time.perf_counter() - t
+
+
+class PencilBlocks(BlockOperators):
+    """``K`` and ``M`` (CSR) applied to the columns of a block in one pass; the
+    preconditioner to rows (:class:`BlockOperators`)."""
+
+    def __init__(self, K, M, preconditioner):
+        super().__init__(preconditioner)
+        self.n = K.shape[0]
+        self.M = M
+        self._pattern = shared_pattern(K, M)
+
+    def products(self, X, KX, MX):
+        """``KX = K X`` and ``MX = M X`` for a block ``X`` (n, r)."""
+        t = time.perf_counter()
+        indptr, indices, k, m = self._pattern
+        _kb.pair_product(indptr, indices, k, m, X, KX, MX)
+        self._counted(X.shape[1], time.perf_counter() - t)
 
 
 def ritz(GK, GM, m):
@@ -271,3 +286,16 @@ def _rayleigh_ritz(blocks, pool, basis, kb, mb, m, by_rows=False):
     out = ritz(GK, GM, m)
     blocks.seconds["dense"] += time.perf_counter() - t
     return out
+
+
+def not_converged(outcome, rtol, wanted, unknowns, converged_before=0, hint=""):
+    """The :class:`~hatkernels.errors.ConvergenceError` of an iteration that did not meet
+    ``rtol``: how many of the ``wanted`` converged (``converged_before`` counted in front,
+    the zero modes), after how many iterations, the errors, and what to try (``hint``)."""
+    good = int((outcome.errors <= rtol).sum()) + converged_before
+    return ConvergenceError(
+        f"eigenmodes: lobpcg converged {good} of the {wanted} eigenpairs asked for after "
+        f"{outcome.iterations} iterations on {unknowns} unknowns (estimated relative errors "
+        f"up to {float(np.max(outcome.errors)):.2e} against rtol {rtol:g}); raise maxiter"
+        f"{hint or ' or loosen rtol'}")
+

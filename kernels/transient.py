@@ -190,7 +190,7 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
             problem_args = dict(f=f, capacity=capacity, dirichlet=dirichlet,
                                 dirichlet_on=dirichlet_on, coefficient=coefficient,
                                 neumann=neumann, quadrature=quadrature)
-            return PatchTransientSolution(march, mesh, refine, problem_args)
+            return PatchTransientSolution(march, problem_args)
         preconditioner = DEFAULT
     mesh = refined(mesh, refine)
     dt, times, theta, startup = march_options(dt, times, scheme, startup, lumped)

@@ -167,8 +167,8 @@ class PatchTransientSolution(TransientSolution):
     ``stats`` (``product_seconds`` NaN: no assembled matrix defines a work unit), and
     ``mesh`` and ``problem`` built on first use (they cost what the path saves)."""
 
-    def __init__(self, march, coarse, refine, problem_args):
-        self._coarse, self._refine, self._args = coarse, refine, problem_args
+    def __init__(self, march, problem_args):
+        self._args = problem_args
         self._mesh = self._problem = None
         self.layout = march.layout
         u = march.values  # renumbered in place, one row at a time: no second array
@@ -180,10 +180,7 @@ class PatchTransientSolution(TransientSolution):
     @property
     def mesh(self):
         if self._mesh is None:
-            mesh = self._coarse
-            for _ in range(self._refine):
-                mesh = mesh.refine()
-            self._mesh = mesh
+            self._mesh = self.layout.refined_mesh()
         return self._mesh
 
     @mesh.setter

@@ -166,6 +166,15 @@ class PatchLayout:
 
     # -- the numbering of mesh.refine() repeated k times ---------------------------------
 
+    def refined_mesh(self, level=None):
+        """``coarse.refine()`` repeated ``level`` times (default the finest), built and
+        stored: what the patch path saves, for a caller who wants the mesh after all."""
+        level = self.k if level is None else integer_option(level, "level", minimum=0)
+        mesh = self.coarse
+        for _ in range(level):
+            mesh = mesh.refine()
+        return mesh
+
     def _numbering(self, level):
         """What :func:`hatkernels._jit.patch_points.to_numbered` needs for ``level``."""
         n = 2**level

@@ -139,10 +139,7 @@ class PatchSolution(PoissonSolution):
     @property
     def mesh(self):
         if self._mesh is None:
-            m = self.layout.coarse
-            for _ in range(self.layout.k):
-                m = m.refine()
-            self._mesh = m
+            self._mesh = self.layout.refined_mesh()
         return self._mesh
 
     @property
