@@ -196,7 +196,8 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, rob
     (array([ True, False]), 0.0)
     """
     if refine and not isinstance(refine, bool) and eigen_patch_reason(
-            mesh, refine, coefficient=coefficient, density=density, dirichlet_on=dirichlet_on,
+            mesh, refine, k=k, extra=extra, coefficient=coefficient, density=density,
+            dirichlet_on=dirichlet_on,
             robin=robin, method=method, preconditioner=preconditioner,
             options=preconditioner_options) is None:
         return eigenmodes_on_patches(

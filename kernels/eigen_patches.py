@@ -32,6 +32,7 @@ stored path gives them on that mesh.
 from __future__ import annotations
 
 import math
+import numbers
 import time
 
 import numba
@@ -67,26 +68,25 @@ __all__ = ["eigen_patch_reason", "eigenmodes_on_patches", "PatchEigenmodes", "Pa
 BYTES_PER_POINT_AND_VECTOR = 100
 
 
-def eigen_patch_reason(mesh, refine, *, coefficient=None, density=1.0, dirichlet_on=None,
-                       robin=None, method="auto", preconditioner=None, options=None):
+def eigen_patch_reason(mesh, refine, *, k=None, extra=None, coefficient=None, density=1.0,
+                       dirichlet_on=None, robin=None, method="auto", preconditioner=None,
+                       options=None):
     """None when ``eigenmodes(mesh, k, refine=refine, ...)`` can run on patches, else the
-    reason it cannot (one sentence)."""
+    reason it cannot (one sentence).  With ``k`` (and ``extra``) given, also whether
+    some coarser level can start the nested iteration for that block."""
     reason = patch_path_reason(mesh, refine, f=0.0, coefficient=coefficient,
                                dirichlet_on=dirichlet_on, robin=robin, options=options)
     if reason is not None:
         return reason
     if preconditioner is not None:
         return "a named preconditioner belongs to the stored path"
-    if method == "shift-invert":
-        return "method='shift-invert' factorises the stored matrices"
+    if method not in ("auto", "lobpcg"):  # the stored path names a bad one
+        return f"method={method!r} is the stored path's"
     if not (_is_number(density) or _numbers_by_key(density)):
         return "density is not a number or {region: number}"
-    n = 2**int(refine)
-    points = (mesh.n_triangles * ((n - 1) * (n - 2) // 2) + len(mesh.edges()) * (n - 1)
-              + mesh.n_points)
-    if points <= _es.SHIFT_INVERT_LIMIT:
-        return (f"the refined mesh has {points} points, few enough for the stored path "
-                f"(at most {_es.SHIFT_INVERT_LIMIT})")
+    if not all(v is None or (isinstance(v, numbers.Integral) and not isinstance(v, bool)
+                             and v >= low) for v, low in ((k, 1), (extra, 0))):
+        return "k or extra is not a whole number in range (the stored path names which)"
     # zero_mean: a part that holds nothing is this function's to name, not an error here
     problem = PoissonProblem(mesh, 0.0, dirichlet_on=dirichlet_on, coefficient=coefficient,
                              zero_mean=True)
@@ -97,7 +97,22 @@ def eigen_patch_reason(mesh, refine, *, coefficient=None, density=1.0, dirichlet
     if not holding.all():
         return ("a part of the mesh holds no side (its constant is a zero mode, which the "
                 "stored path handles)")
+    layout = PatchLayout(mesh, int(refine), held_sides=sides)
+    unknowns = _unknowns(layout, layout.k)
+    if unknowns <= _es.SHIFT_INVERT_LIMIT:  # method="auto" is shift-invert there
+        return (f"the problem has {unknowns} unknowns, few enough for shift-invert on the "
+                f"stored mesh (at most {_es.SHIFT_INVERT_LIMIT})")
+    if _unknowns(layout, 0) > _es.SHIFT_INVERT_LIMIT:
+        return (f"the coarse mesh has {_unknowns(layout, 0)} unknowns, more than the nested "
+                f"start's shift-invert takes ({_es.SHIFT_INVERT_LIMIT})")
+    if k is not None and _start_level(layout, _block(k, extra)) is None:
+        return (f"no coarser level has between 2 x {_block(k, extra)} (the block) and "
+                f"{_es.SHIFT_INVERT_LIMIT} unknowns to start the nested iteration from")
     return None
+
+
+def _block(k, extra):
+    return k + (max(2, math.ceil(k / 4)) if extra is None else extra)
 
 
 class PatchPencil(_eb.BlockOperators):
@@ -150,18 +165,12 @@ def _unknowns(layout, level):
 
 
 def _start_level(layout, block):
-    """The level the nested iteration starts on by shift-invert (module notes)."""
-    below = range(layout.k)
-    fits = [lv for lv in below
+    """The finest level below the given mesh with between ``2 block`` and
+    :data:`~hatkernels.eigensolvers.SHIFT_INVERT_LIMIT` unknowns, where the nested
+    iteration starts by shift-invert; None when there is none."""
+    fits = [lv for lv in range(layout.k)
             if 2 * block <= _unknowns(layout, lv) <= _es.SHIFT_INVERT_LIMIT]
-    if fits:
-        return fits[-1]
-    big = [lv for lv in below if _unknowns(layout, lv) >= 2 * block]
-    if big:
-        return big[0]
-    raise InputError(f"eigenmodes on patches needs a coarser level with at least 2 x {block} "
-                     f"(the block) unknowns to start from; refine the coarse mesh once "
-                     f"more or ask for fewer modes")
+    return fits[-1] if fits else None
 
 
 def _start(layout, level, kappa, rho, block, seed, quadrature):
@@ -210,14 +219,14 @@ def eigenmodes_on_patches(coarse, k, *, refine, coefficient=None, density=1.0,
     8 per mode) does not fit in the memory available.
     """
     t0 = time.perf_counter()
+    k = integer_option(k, "k", minimum=1)
+    extra = integer_option(extra, "extra", minimum=0, allow_none=True)
     reason = eigen_patch_reason(coarse, refine, coefficient=coefficient, density=density,
                                 dirichlet_on=dirichlet_on)
     if reason is not None:
         raise InputError(f"eigenmodes on patches cannot take this problem: {reason}")
-    k = integer_option(k, "k", minimum=1)
     rtol = real_option(rtol, "rtol", between=(0.0, 1.0))
     maxiter = integer_option(maxiter, "maxiter", minimum=1)
-    extra = integer_option(extra, "extra", minimum=0, allow_none=True)
     seed = integer_option(seed, "seed", minimum=0)
     integer_option(quadrature, "quadrature", minimum=1)
     problem = PoissonProblem(coarse, 0.0, dirichlet_on=dirichlet_on, coefficient=coefficient,
@@ -229,13 +238,19 @@ def eigenmodes_on_patches(coarse, k, *, refine, coefficient=None, density=1.0,
     r = int(refine)
     layout = PatchLayout(coarse, r, held_sides=sides)
     size, unknowns = layout.size(r), _unknowns(layout, r)
-    block = k + (max(2, math.ceil(k / 4)) if extra is None else extra)
+    block = _block(k, extra)
     if k >= unknowns:
         raise InputError(f"k = {k} eigenpairs asked for, but the problem has {unknowns} "
                          f"unknowns; k must be below {unknowns}")
     if unknowns < 5 * block:
         raise InputError(f"lobpcg needs at least 5 x {block} (the block) unknowns, but the "
-                         f"problem has {unknowns}")
+                         f"problem has {unknowns}; use method='shift-invert'")
+    start = _start_level(layout, block)
+    if start is None:
+        raise InputError(f"eigenmodes on patches needs a coarser level with between 2 x "
+                         f"{block} (the block) and {_es.SHIFT_INVERT_LIMIT} unknowns to "
+                         f"start from; ask for fewer modes, or leave it to eigenmodes, which "
+                         f"then takes the stored path")
     if memory_check:
         need = size * (BYTES_PER_POINT_AND_VECTOR * block + 8 * k)
         have = available_bytes()
@@ -248,7 +263,6 @@ def eigenmodes_on_patches(coarse, k, *, refine, coefficient=None, density=1.0,
     timings = {"assemble": 0.0, "setup": 0.0, "solve": 0.0}
     stats = EigenStats(method="lobpcg", unknowns=unknowns, block=block, rtol=rtol,
                        threads=numba.get_num_threads(), shift=0.0)
-    start = _start_level(layout, block)
     t = time.perf_counter()
     X = _start(layout, start, kappa, rho, block, seed, quadrature)
     timings["solve"] += time.perf_counter() - t

@@ -189,7 +189,7 @@ def run(blocks, X0, Y, *, k, rtol, maxiter, iterations=None):
     Ritz values' estimated relative errors are at most ``rtol``, or after
     ``iterations`` iterations when given (``rtol`` then unused), or after
     ``maxiter``.  Returns a :class:`hatkernels.eigensolvers.LobpcgOutcome`
-    with the vectors as an (n, m) array, M-orthonormal.
+    with the vectors as an (n, m) array ((m, n) by rows), M-orthonormal.
     """
     by_rows = getattr(blocks, "by_rows", False)  # blocks stored one vector per row
     m, n = X0.shape if by_rows else X0.shape[::-1]

@@ -51,7 +51,9 @@ class EigenStats:
         algebra (Gram matrices and updates).
     product_seconds : float
         One product with the assembled stiffness matrix of the given mesh (the faster of the
-        parallel CSR kernel and scipy's product, best of three), measured in the same call.
+        parallel CSR kernel and scipy's product, best of three), measured in the same call;
+        NaN on a never-stored refinement (:mod:`hatkernels.eigen_patches`), which assembles
+        nothing (``assemble`` is 0 there and ``work_units`` NaN).
     work_units : float
         ``timings["total"] / product_seconds``: the whole call in products with the
         matrix (the performance model of docs/eigenmodes.md).

@@ -427,12 +427,11 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
         if x0 is None:
             x0 = _start(prev, h_prev, prev2, h_prev2, h, x0_buf)
         elif SMOOTHER_ITERATIONS:  # what a projected start misses, the smoother removes
-            result, x0 = smoother_first(s.product, s.S, rhs, x0, rtol, atol, maxiter, work)
-            smoothed[i] = min(SMOOTHER_ITERATIONS, maxiter) if result is None else \
-                result.iterations
+            result, x0, smoothed[i] = smoother_first(s.product, s.S, rhs, x0, rtol, atol,
+                                                     maxiter, work)
         if result is None:
             result = _cg.run(s.product, rhs, x0, s.M, _cg.LOCAL, rtol=rtol, atol=atol,
-                             maxiter=maxiter, work=work)
+                             maxiter=maxiter - int(smoothed[i]), work=work)
             iterations[i] = result.iterations
         d = result.x  # the workspace's: copied below where kept
         if result.info != 0:

@@ -90,8 +90,10 @@ class TransientStats:
         def pick(a, f):
             return float(f(a)) if a.size else 0.0
 
+        sm = np.zeros_like(it) if self.smoother_iterations is None else self.smoother_iterations
         return {"steps": self.steps, "scheme": self.scheme, "rtol": self.rtol,
                 "iterations_mean": pick(it, np.mean), "iterations_max": int(pick(it, np.max)),
+                "smoother_iterations_mean": pick(sm, np.mean),
                 "step_seconds_median": pick(self.step_seconds, np.median),
                 "work_units_median": pick(wu, np.median),
                 "product_seconds": (self.product_seconds if np.isfinite(self.product_seconds)
@@ -102,12 +104,13 @@ class TransientStats:
                 "peak_rss_bytes": self.peak_rss_bytes, "threads": self.threads}
 
     def __repr__(self):
-        it = self.iterations
+        it, sm = self.iterations, self.smoother_iterations
         mean = float(it.mean()) if it.size else 0.0
+        smoothed = float(sm.mean()) if sm is not None and sm.size else 0.0
         wu = float(np.median(self.work_units)) if it.size else 0.0
         return (f"TransientStats({self.steps} steps of {self.scheme}, {self.unknowns} "
-                f"unknowns, {mean:.1f} iterations per step, median {wu:.1f} WU per step, "
-                f"converged={self.converged})")
+                f"unknowns, {mean:.1f} iterations per step (and {smoothed:.1f} with the "
+                f"smoother alone), median {wu:.1f} WU per step, converged={self.converged})")
 
 
 @dataclasses.dataclass(frozen=True)

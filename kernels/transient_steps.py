@@ -250,20 +250,25 @@ class Blocks:
 
 def smoother_first(product, smoother, rhs, x0, rtol, atol, maxiter, work):
     """:data:`SMOOTHER_ITERATIONS` CG iterations from ``x0`` preconditioned by ``smoother``
-    (``apply_into``; symmetric positive definite): ``(result, start)``, the converged
-    :class:`~hatkernels._cg.CGResult` and None otherwise, with the start for the whole
-    preconditioner (the iterate when it improved on ``x0``, else ``x0``).
+    (``apply_into``; symmetric positive definite): ``(result, start, used)``, the converged
+    :class:`~hatkernels._cg.CGResult` or None, the start for the whole preconditioner (the
+    iterate when it improved on ``x0``, else ``x0``) and the iterations spent, which the
+    caller takes off the whole preconditioner's ``maxiter``.  Not tried (``used`` 0) when
+    ``maxiter`` would leave the whole preconditioner no iteration.
 
     A start projected from past steps leaves a residual near the tolerance, made of
     components a smoother removes 5 to 10 times over, where a V-cycle would remove them
     100 times over at several times the cost; CG's own checks (the true residual
     included) decide whether that is enough.
     """
+    if maxiter <= SMOOTHER_ITERATIONS:
+        return None, x0, 0
     result = _cg.run(product, rhs, x0, smoother, _cg.LOCAL, rtol=rtol, atol=atol,
-                     maxiter=min(SMOOTHER_ITERATIONS, maxiter), work=work)
+                     maxiter=SMOOTHER_ITERATIONS, work=work)
+    used = int(result.iterations)
     if result.info == 0:
-        return result, x0
-    return None, (result.x if result.info > 0 else x0)
+        return result, x0, used
+    return None, (result.x if result.info > 0 else x0), used
 
 
 class _AssembledSmoother:
@@ -345,19 +350,17 @@ class System:
         vectors ``work``'s, when given).  A
         ``projected`` start gets :func:`smoother_first`, with a Chebyshev smoother of
         degree 2 on the assembled system made on first use."""
+        used = 0
         if projected and SMOOTHER_ITERATIONS:
             if self._smoother is None:
                 self._smoother = _AssembledSmoother(self.A)
-            result, x0 = smoother_first(self.product, self._smoother, rhs, x0, rtol, atol,
-                                        maxiter, work)
+            result, x0, used = smoother_first(self.product, self._smoother, rhs, x0, rtol,
+                                              atol, maxiter, work)
             if result is not None:
-                return result, result.iterations, 0
-            tried = min(SMOOTHER_ITERATIONS, maxiter)
-        else:
-            tried = 0
+                return result, used, 0
         result = _cg.run(self.product, rhs, x0, self.M, _cg.LOCAL, rtol=rtol, atol=atol,
-                         maxiter=maxiter, work=work)
-        return result, tried, result.iterations
+                         maxiter=maxiter - used, work=work)
+        return result, used, result.iterations
 
     def remember(self, rhs, result):
         """Give the start space a solve's solution (with ``A d = rhs - r``, no product)."""

@@ -221,11 +221,11 @@ SMALL = rectangle(5, 4)  # refined 5 times: 20,769 points, just above the limit
 DISPATCH = [
     # (coarse, refine, eigenmodes' arguments, what eigen_patch_reason says)
     (SMALL, R, {"preconditioner": "gmg"}, "a named preconditioner belongs to the stored"),
-    (SMALL, R, {"method": "shift-invert"}, "method='shift-invert' factorises"),
+    (SMALL, R, {"method": "shift-invert"}, "method='shift-invert' is the stored path's"),
     (SMALL, R, {"coefficient": lambda x, y: 1.0 + x}, "coefficient is not a number"),
     (SMALL, R, {"robin": (2.0, 0.0)}, "no reaction or convection term"),
     (SMALL, R, {"dirichlet_on": ()}, "dirichlet_on is not 'boundary' or boundary tags"),
-    (rectangle(6, 6), 4, {}, "the refined mesh has 9409 points, few enough"),
+    (rectangle(6, 6), 4, {}, "the problem has 9025 unknowns, few enough"),
     (cuboid(2, 2, 2), 2, {}, "the patch path takes triangle meshes"),
 ]
 
@@ -296,7 +296,7 @@ def test_a_part_that_holds_no_side_goes_to_the_stored_path():
     (SMALL, R, {"coefficient": lambda x, y: 1.0 + x}, "coefficient is not a number"),
     (SMALL, R, {"density": np.ones(SMALL.n_cells)}, "density is not a number"),
     (SMALL, R, {"dirichlet_on": ()}, "dirichlet_on is not"),
-    (rectangle(6, 6), 4, {}, "few enough for the stored path"),
+    (rectangle(6, 6), 4, {}, "few enough for shift-invert"),
 ])
 def test_data_the_patch_path_cannot_take_are_refused_by_name(mesh, r, kwargs, message):
     with pytest.raises(InputError, match="eigenmodes on patches cannot take this problem") as e:
@@ -312,14 +312,15 @@ def test_a_refine_that_is_not_a_whole_number_is_named_by_eigenmodes(r):
 
 def test_too_many_modes_are_refused_before_allocating():
     coarse = rectangle(6, 6)  # refined 5 times: 36,481 unknowns
-    for call in (eigenmodes, eigenmodes_on_patches):
-        with pytest.raises(InputError, match="k = 36481 eigenpairs asked for, but the problem "
-                                             "has 36481 unknowns"):
-            call(coarse, 36481, refine=R)
+    with pytest.raises(InputError, match="k = 36481 eigenpairs asked for, but the problem "
+                                         "has 36481 unknowns"):
+        eigenmodes_on_patches(coarse, 36481, refine=R)
+    # no coarser level can start so large a block: eigenmodes leaves it to the stored path
+    assert "no coarser level has between 2 x" in eigen_patch_reason(coarse, R, k=36481)
     with pytest.raises(InputError, match=r"lobpcg needs at least 5 x 8750 \(the block\)"):
         eigenmodes_on_patches(coarse, 7000, refine=R)
     # a block of 6,250: no coarser level has 2 x 6,250 unknowns to start from
-    with pytest.raises(InputError, match="needs a coarser level with at least 2 x 6250"):
+    with pytest.raises(InputError, match="needs a coarser level with between 2 x 6250"):
         eigenmodes_on_patches(coarse, 5000, refine=R, memory_check=False)
 
 
@@ -517,3 +518,13 @@ def test_the_mesh_is_the_refined_one_and_the_result_pickles(square):
     values, vectors = patch
     assert values is patch.values and vectors is patch.vectors
     assert "lobpcg" in repr(patch) and "36481 unknowns" in repr(patch)
+
+
+def test_the_dispatch_counts_unknowns_and_checks_the_start_and_the_method():
+    # 20,145 points but 17,745 unknowns: method="auto" means shift-invert on the stored mesh
+    assert "17745 unknowns, few enough" in eigen_patch_reason(rectangle(1, 74), 4)
+    # a coarse mesh beyond the nested start's shift-invert goes to the stored path
+    assert "the coarse mesh has 22201 unknowns" in eigen_patch_reason(rectangle(150, 150), 1)
+    for bad in ("bogus", None, "dense"):
+        with pytest.raises(InputError, match="method must be one of"):
+            eigenmodes(rectangle(5, 4), 2, refine=R, method=bad)

@@ -112,6 +112,10 @@ def summary_record(args, case, sol, timings, kernels_seconds, command, rtol):
     out["steps"] = {
         "iterations": it.tolist(), "iterations_min": int(it.min()),
         "iterations_mean": float(it.mean()), "iterations_max": int(it.max()),
+        "smoother_iterations": ([] if st.smoother_iterations is None
+                                else st.smoother_iterations.tolist()),
+        "smoother_iterations_mean": (0.0 if st.smoother_iterations is None
+                                     else float(st.smoother_iterations.mean())),
         "work_units": [_finite(w) for w in wu], "work_units_min": _finite(wu.min()),
         "work_units_median": _finite(np.median(wu)), "work_units_mean": _finite(wu.mean()),
         "work_units_max": _finite(wu.max()),
@@ -234,7 +238,9 @@ def report(case, summary, out):
         f"{k} {format_seconds(t[k])}" for k in ("mesh", "kernels", *PHASES) if k in t))
     lines.append(f"{'iterations':<16}per step min {steps['iterations_min']}, mean "
                  f"{steps['iterations_mean']:.1f}, max {steps['iterations_max']} (CG to rtol "
-                 f"{solver['rtol']:g} per step), {'all converged' if solver['converged'] else 'NOT all converged'}")
+                 f"{solver['rtol']:g} per step; before them, mean "
+                 f"{steps['smoother_iterations_mean']:.1f} with the smoother alone), "
+                 f"{'all converged' if solver['converged'] else 'NOT all converged'}")
     if steps["product_seconds"] is not None:
         lines.append(f"{'cost per step':<16}median {steps['work_units_median']:.3g} WU (min "
                      f"{steps['work_units_min']:.3g}, max {steps['work_units_max']:.3g}), "
