@@ -48,6 +48,7 @@ from hatkernels.eigenresults import Eigenmodes, EigenStats
 from hatkernels.errors import InputError
 from hatkernels.memory import MARGIN, available_bytes
 from hatkernels.patches import PatchLayout, PatchMultigrid, PatchOperator, element_stiffness
+from hatkernels.patches.layout import RefinedMeshOnDemand
 from hatkernels.patches.multigrid import element_mass
 from hatkernels.patches.solve import (
     _held,
@@ -136,7 +137,7 @@ class PatchPencil(_eb.BlockOperators):
         self._counted(X.shape[0], time.perf_counter() - t)
 
 
-class PatchEigenmodes(Eigenmodes):
+class PatchEigenmodes(RefinedMeshOnDemand, Eigenmodes):
     """:class:`~hatkernels.Eigenmodes` found on patches: the same tuple and attributes,
     with ``mesh`` (``coarse`` refined ``refine`` times) built on first use, and
     ``layout`` (the :class:`~hatkernels.patches.PatchLayout` of the finest level)."""
@@ -145,16 +146,6 @@ class PatchEigenmodes(Eigenmodes):
         self = super().__new__(cls, values, vectors, zero_modes, stats, None)
         self.layout = layout
         return self
-
-    @property
-    def mesh(self):
-        if self._mesh is None:
-            self._mesh = self.layout.refined_mesh()
-        return self._mesh
-
-    @mesh.setter
-    def mesh(self, value):
-        self._mesh = value
 
     def __reduce__(self):
         return (PatchEigenmodes, (self[0], self[1], self.zero_modes, self.stats, self.layout))

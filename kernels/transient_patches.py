@@ -46,7 +46,7 @@ from hatkernels._jit import sparse as _k
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.krylov import _check_scalars, _operator
-from hatkernels.patches.layout import PatchLayout
+from hatkernels.patches.layout import PatchLayout, RefinedMeshOnDemand
 from hatkernels.patches.load import callable_load
 from hatkernels.patches.multigrid import (
     FinestSmoother,
@@ -161,7 +161,7 @@ def transient_patch_reason(mesh, refine, *, u0=0.0, probes=None, capacity=1.0, f
     return None
 
 
-class PatchTransientSolution(TransientSolution):
+class PatchTransientSolution(RefinedMeshOnDemand, TransientSolution):
     """A :class:`~hatkernels.TransientSolution` marched on the never-stored refinement:
     ``u`` in the numbering of ``mesh.refine()`` repeated ``k`` times, the heat balance,
     ``stats`` (``product_seconds`` NaN: no assembled matrix defines a work unit), and
@@ -176,16 +176,6 @@ class PatchTransientSolution(TransientSolution):
             u[i] = march.layout.to_refined(u[i])
         march.values = None
         super().__init__(march.times, u, march.stats, None, None, _energy=march.balance)
-
-    @property
-    def mesh(self):
-        if self._mesh is None:
-            self._mesh = self.layout.refined_mesh()
-        return self._mesh
-
-    @mesh.setter
-    def mesh(self, value):
-        self._mesh = value
 
     @property
     def problem(self):

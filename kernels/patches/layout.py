@@ -17,7 +17,7 @@ from hatkernels.checks import integer_option
 from hatkernels.distributed.finenumbers import fine_numbering
 from hatkernels.errors import InputError
 
-__all__ = ["PatchLayout"]
+__all__ = ["PatchLayout", "RefinedMeshOnDemand"]
 
 class PatchLayout:
     """The coarse triangle mesh ``coarse`` seen as patches refined ``k`` times.
@@ -218,3 +218,21 @@ class PatchLayout:
         loc = np.empty((1, (n + 1) * (n + 2) // 2))
         _pp.gather_patches(x, np.array([int(cell)], dtype=np.int64), n, self.topo, loc)
         return lam, loc[0]
+
+
+class RefinedMeshOnDemand:
+    """For results made on patches: ``mesh``, the refined mesh of ``self.layout``, built
+    on first use (it costs what the patch path saves) and kept; it may be set."""
+
+    _mesh = None
+
+    @property
+    def mesh(self):
+        if self._mesh is None:
+            self._mesh = self.layout.refined_mesh()
+        return self._mesh
+
+    @mesh.setter
+    def mesh(self, value):
+        self._mesh = value
+

@@ -23,7 +23,7 @@ import numpy as np
 from hatkernels._jit import patches as _p
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
-from hatkernels.patches.layout import PatchLayout
+from hatkernels.patches.layout import PatchLayout, RefinedMeshOnDemand
 from hatkernels.patches.load import callable_load
 from hatkernels.patches.multigrid import PatchMultigrid, PatchOperator
 from hatkernels.perf import peak_rss_bytes
@@ -101,7 +101,7 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
     return None
 
 
-class PatchSolution(PoissonSolution):
+class PatchSolution(RefinedMeshOnDemand, PoissonSolution):
     """What :func:`solve_on_patches` found: a :class:`~hatkernels.PoissonSolution` whose
     ``u``, ``mesh`` and ``problem`` are made on first use.
 
@@ -135,12 +135,6 @@ class PatchSolution(PoissonSolution):
         if self._u is None:
             self._u = self.layout.to_refined(self.values)
         return self._u
-
-    @property
-    def mesh(self):
-        if self._mesh is None:
-            self._mesh = self.layout.refined_mesh()
-        return self._mesh
 
     @property
     def problem(self):
