@@ -75,6 +75,8 @@ def eigen_patch_reason(mesh, refine, *, k=None, extra=None, coefficient=None, de
     """None when ``eigenmodes(mesh, k, refine=refine, ...)`` can run on patches, else the
     reason it cannot (one sentence).  With ``k`` (and ``extra``) given, also whether
     some coarser level can start the nested iteration for that block."""
+    if getattr(mesh, "dim", None) == 3:
+        return "eigenmodes on patches take triangle meshes (tetrahedra: the stored path)"
     reason = patch_path_reason(mesh, refine, f=0.0, coefficient=coefficient,
                                dirichlet_on=dirichlet_on, robin=robin, options=options)
     if reason is not None:

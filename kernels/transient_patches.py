@@ -145,6 +145,8 @@ def transient_patch_reason(mesh, refine, *, u0=0.0, probes=None, capacity=1.0, f
     """None when :func:`~hatkernels.solve_transient` with ``refine`` and no preconditioner
     named marches on the never-stored refinement (:func:`march_on_patches`), else why
     not (one sentence)."""
+    if getattr(mesh, "dim", None) == 3:
+        return "time steps on patches take triangle meshes (tetrahedra: the stored path)"
     for name, v in (("u0", u0), ("f", f), ("dirichlet", dirichlet), ("neumann", neumann),
                     ("capacity", capacity), ("coefficient", coefficient)):
         if _timed(v):
@@ -305,9 +307,9 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
     t_start = time.perf_counter()
     _refuse_timed(f=f, dirichlet=dirichlet, neumann=neumann, capacity=capacity,
                   coefficient=coefficient, u0=u0)
-    reason = patch_path_reason(coarse, refine, f=f, dirichlet=dirichlet,
-                               dirichlet_on=dirichlet_on, coefficient=coefficient,
-                               neumann=neumann)
+    reason = transient_patch_reason(coarse, refine, f=f, dirichlet=dirichlet,
+                                    dirichlet_on=dirichlet_on, coefficient=coefficient,
+                                    neumann=neumann)
     if reason is not None:
         raise InputError(f"march_on_patches cannot take this problem: {reason}")
     dt, times, theta, startup = march_options(dt, times, scheme, startup, lumped)

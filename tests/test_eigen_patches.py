@@ -226,7 +226,7 @@ DISPATCH = [
     (SMALL, R, {"robin": (2.0, 0.0)}, "no reaction or convection term"),
     (SMALL, R, {"dirichlet_on": ()}, "dirichlet_on is not 'boundary' or boundary tags"),
     (rectangle(6, 6), 4, {}, "the problem has 9025 unknowns, few enough"),
-    (cuboid(2, 2, 2), 2, {}, "the patch path takes triangle meshes"),
+    (cuboid(2, 2, 2), 2, {}, "eigenmodes on patches take triangle meshes"),
 ]
 
 

@@ -32,7 +32,7 @@ from hatkernels.mesh.core_index import index_dtype
 from hatkernels.mesh.refinement import Refinement
 from hatkernels.mesh.tetrahedra import smallest_first
 
-__all__ = ["refine_tetrahedra", "BEY_CHILDREN"]
+__all__ = ["refine_tetrahedra", "bey_order", "BEY_CHILDREN"]
 
 #: The six edges of a tetrahedron as pairs of local points; edge ``j`` gets local
 #: number ``4 + j`` in :data:`BEY_CHILDREN`.
@@ -66,6 +66,16 @@ def _swapped(mesh):
     return (parent[:, None] ^ ODD_CHILDREN[None, :]).reshape(-1)
 
 
+def bey_order(mesh):
+    """The cells of ``mesh`` in Bey's point order (the order :meth:`Mesh.refine` refines
+    them in): a copy of the stored cells, with the last two points of the cells stored
+    swapped put back."""
+    cells = np.array(mesh.cells)
+    swapped = _swapped(mesh)
+    cells[swapped, 2], cells[swapped, 3] = cells[swapped, 3], cells[swapped, 2].copy()
+    return cells
+
+
 def unique_edges(cells, n_points):
     """``(edges, cell_edges)``: the sorted unique edges (n_edges, 2) as (low, high)
     point pairs in lexicographic order, and the edge number of each cell's six edges
@@ -93,9 +103,8 @@ def refine_tetrahedra(mesh):
     each per fine cell with int32 indices), and the points; measured figures
     belong in the benchmark report.
     """
-    cells = np.array(mesh.cells)  # a copy: Bey's order is restored in it
+    cells = bey_order(mesh)
     swapped = _swapped(mesh)
-    cells[swapped, 2], cells[swapped, 3] = cells[swapped, 3], cells[swapped, 2].copy()
     n, m = mesh.n_points, mesh.n_cells
     edges, cell_edges = unique_edges(cells, n)
     n_edges = len(edges)

@@ -1,6 +1,7 @@
-"""Refinement that is never stored: a triangle mesh refined ``k`` times kept as its coarse
-mesh and one vector per level, with the operator, smoother and grid transfers applied
-patch by patch by stencil kernels (docs/patches.md).
+"""Refinement that is never stored: a triangle or tetrahedral mesh refined ``k`` times
+kept as its coarse mesh and one vector per level, with the operator, smoother and grid
+transfers applied patch by patch by stencil kernels (docs/patches.md; tetrahedra:
+:mod:`hatkernels.patches.tets`).
 
 :func:`hatkernels.solve_poisson` takes this path by itself for ``refine=k`` when the data
 allow it (:func:`patch_path_reason` says why not when they do not).

@@ -70,8 +70,8 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
                       zero_mean=False, matrix_free=None, variant=None, options=None):
     """None when ``solve_poisson(mesh, f, refine=refine, ...)`` can take the patch path,
     else the reason it cannot (one sentence)."""
-    if getattr(mesh, "dim", None) != 2:
-        return "the patch path takes triangle meshes"
+    if getattr(mesh, "dim", None) not in (2, 3):
+        return "the patch path takes triangle and tetrahedral meshes"
     if isinstance(refine, bool) or not isinstance(refine, numbers.Integral):
         return f"refine must be a whole number of refinements, got {refine!r}"
     if refine < 1:
@@ -92,6 +92,10 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
         return "coefficient is not a number or {region: number}"
     if not (f is None or _is_number(f) or callable(f) or _numbers_by_key(f, callables=True)):
         return "f is not a number, a callable or {region: number or callable}"
+    if mesh.dim == 3 and neumann is not None:
+        return "on tetrahedra the patch path takes no flux (neumann) yet"
+    if mesh.dim == 3 and not (f is None or _is_number(f) or _numbers_by_key(f)):
+        return "on tetrahedra the patch path takes f as a number or {region: number}"
     if not (_is_number(dirichlet) or _numbers_by_key(dirichlet)):
         return "dirichlet is not a number or {tag: number}"
     if not (dirichlet_on is None or isinstance(dirichlet_on, str) or (
@@ -133,7 +137,10 @@ class PatchSolution(RefinedMeshOnDemand, PoissonSolution):
     @property
     def u(self):
         if self._u is None:
-            self._u = self.layout.to_refined(self.values)
+            if self.layout.coarse.dim == 3:  # places found from the refined mesh's cells
+                self._u = self.layout.to_refined(self.values, mesh=self.mesh)
+            else:
+                self._u = self.layout.to_refined(self.values)
         return self._u
 
     @property
@@ -227,6 +234,13 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     args = dict(f=f, dirichlet=dirichlet, dirichlet_on=dirichlet_on, coefficient=coefficient,
                 neumann=neumann, quadrature=quadrature)
     problem = PoissonProblem(coarse, **args)
+    if coarse.dim == 3:
+        from hatkernels.patches.tet_solve import solve_on_tets
+
+        return solve_on_tets(coarse, problem, dirichlet, refine, rtol=rtol, atol=atol,
+                             maxiter=maxiter, start=start, check=check, monitor=monitor,
+                             note=note, memory_check=memory_check, degree=degree,
+                             nested_cycles=nested_cycles, t0=t0, args=args)
     m = coarse.n_triangles
     kappa = _per_cell(problem.coefficient, m, "coefficient")
     source = None if problem.source.kind == "callable" else _per_cell(problem.source, m, "f")

@@ -1,0 +1,618 @@
+"""Patch kernels on tetrahedra: the refined lattice of each coarse cell, never stored.
+
+Bey's rule (J. Bey, "Tetrahedral grid refinement", Computing 55, 1995) refines a
+tetrahedron ``(x0, x1, x2, x3)`` in his point order into the Kuhn (Freudenthal)
+lattice of the affine map ``x = x0 + (p1 (x1 - x0) + p2 (x2 - x1) + p3 (x3 - x2)) / n``:
+after ``k`` refinements (``n = 2**k``) the fine points of the cell are the integer
+``p`` with ``n >= p1 >= p2 >= p3 >= 0`` and the fine cells are the six Kuhn types
+``{c, c + e_s0, c + e_s0 + e_s1, c + (1, 1, 1)}`` (``s`` a permutation) inside that
+simplex.  Every fine cell is an affine image of one reference shape under the
+same map, so P1 stiffness on the lattice is one 15-point stencil per coarse cell
+(the point and its neighbours ``p +- d``, ``d`` any nonzero 0/1 vector), scaled
+by ``1 / n``.  A point on the cell's boundary sees only the fine cells inside:
+its row there is a partial stencil that depends only on which barycentric
+coordinates ``lam0 = n - p1, lam1 = p1 - p2, lam2 = p2 - p3, lam3 = p3`` are zero
+(its *class*, a 4-bit mask ``Z``), so each cell keeps 15 classes of 15 weights.
+
+**Layout** of a level (``n`` subdivisions), every fine point once: the points
+inside each coarse cell (``C(n-1, 3)`` each, by ``p1``, then ``p2``, then ``p3``),
+inside each coarse face (``C(n-1, 2)`` each, by the face's sorted points), inside
+each coarse edge (``n - 1`` each, from its lower point), then the coarse vertices.
+A point of cell ``c`` with barycentric coordinates ``lam`` has its place computed
+from ``lam`` and the global numbers of ``c``'s points, so shared points need no
+orientation table.
+
+**Products** gather a cell's lattice into a buffer that stays in cache, apply the
+stencil to the inside points and the partial stencils to the boundary points,
+whose parts go to per-cell buffers in the face's (edge's) own order; passes over
+the faces, edges and vertices add the parts, lower cell first.  Every output is
+written by one loop iteration in a fixed order: the same bits on any number of
+threads.
+"""
+
+import numpy as np
+from numba import prange
+from numba import uint64 as U
+
+from hatkernels._jit import jit
+
+__all__ = ["DIRS", "SLOT_OFFSETS", "kuhn_types", "class_incidence", "lattice_size",
+           "level_size", "gather_cells", "product", "class_fill", "accumulate",
+           "prolong_add", "restrict", "places_of"]
+
+#: The seven edge directions of the Kuhn lattice (every nonzero 0/1 vector).
+DIRS = np.array([[1, 0, 0], [0, 1, 0], [0, 0, 1], [1, 1, 0], [1, 0, 1], [0, 1, 1], [1, 1, 1]],
+                dtype=np.int64)
+#: Slot 0 is the point, slots 1..7 ``p + DIRS``, slots 8..14 ``p - DIRS``.
+SLOT_OFFSETS = np.concatenate([np.zeros((1, 3), dtype=np.int64), DIRS, -DIRS])
+_O1 = np.ascontiguousarray(SLOT_OFFSETS[:, 0])
+_O2 = np.ascontiguousarray(SLOT_OFFSETS[:, 1])
+_O3 = np.ascontiguousarray(SLOT_OFFSETS[:, 2])
+#: The six edges of a tetrahedron as local point pairs (as in mesh.refine3d).
+PAIRS = np.array([[0, 1], [0, 2], [0, 3], [1, 2], [1, 3], [2, 3]], dtype=np.int64)
+
+
+def kuhn_types():
+    """The six Kuhn types as (6, 4, 3) integer vertices in lattice coordinates."""
+    out = np.zeros((6, 4, 3), dtype=np.int64)
+    for t, s in enumerate(((0, 1, 2), (0, 2, 1), (1, 0, 2), (1, 2, 0), (2, 0, 1), (2, 1, 0))):
+        out[t, 1, s[0]] = 1
+        out[t, 2, s[0]] = out[t, 2, s[1]] = 1
+        out[t, 3] = 1
+    return out
+
+
+def _inside(q, n):
+    return n >= q[0] >= q[1] >= q[2] >= 0
+
+
+def class_incidence():
+    """For each class ``Z`` (0..14): the ``(type, a, b, slot)`` of the fine cells inside
+    the coarse cell at a point of that class (the point is vertex ``a`` of a cell of
+    ``type``, ``b`` its partner at ``slot``), as a list of (m, 4) int arrays; geometry-free."""
+    types = kuhn_types()
+    rep = 12
+    slot_of = {tuple(o): s for s, o in enumerate(SLOT_OFFSETS.tolist())}
+    out = []
+    for z in range(15):
+        nonzero = [v for v in range(4) if not z >> v & 1]
+        lam = np.zeros(4, dtype=np.int64)
+        lam[nonzero] = rep // len(nonzero)
+        p = np.array([rep - lam[0], rep - lam[0] - lam[1], lam[3]])
+        rows = []
+        for t in range(6):
+            for a in range(4):
+                base = p - types[t, a]
+                if all(_inside(base + types[t, b], rep) for b in range(4)):
+                    for b in range(4):
+                        rows.append((t, a, b, slot_of[tuple(types[t, b] - types[t, a])]))
+        out.append(np.array(rows, dtype=np.int64).reshape(-1, 4))
+    return out
+
+
+@jit()
+def lattice_size(n):
+    """Points of one cell's whole lattice."""
+    return (n + 1) * (n + 2) * (n + 3) // 6
+
+
+@jit()
+def _L(p1, p2, p3):
+    """Place of lattice point ``p`` in a cell's whole lattice."""
+    return p1 * (p1 + 1) * (p1 + 2) // 6 + p2 * (p2 + 1) // 2 + p3
+
+
+@jit()
+def _sizes(n):
+    inner = (n - 1) * (n - 2) * (n - 3) // 6
+    face = (n - 1) * (n - 2) // 2
+    return inner, face, n - 1
+
+
+def level_size(n, m, n_faces, n_edges, n_vertices):
+    """Values on a level with ``n`` subdivisions."""
+    inner, face, edge = _sizes(n)
+    return m * inner + n_faces * face + n_edges * edge + n_vertices
+
+
+@jit()
+def _p_of(lam0, lam1, lam2, n):
+    p1 = n - lam0
+    p2 = p1 - lam1
+    return p1, p2, p2 - lam2
+
+
+@jit()
+def _face_order(V, FV, c, v, f, lk):
+    """``lk[k]``: the local point of cell ``c`` that is point ``k`` of face ``f`` (sorted)."""
+    for k in range(3):
+        for a in range(4):
+            if a != v and V[c, a] == FV[f, k]:
+                lk[k] = a
+
+
+@jit()
+def _gather(x, c, n, topo, loc, masked, owned, lk, lam):
+    """Cell ``c``'s whole lattice from the level vector ``x`` into ``loc``.
+
+    ``masked``: held points read as 0.  ``owned``: points on a face, edge or vertex
+    that ``c`` is not the first cell of read as 0 (each shared point counted once)."""
+    V, CF, CE, FV, FC, EV = topo[0], topo[1], topo[2], topo[3], topo[4], topo[5]
+    eptr, ecell, vptr, vcell = topo[6], topo[7], topo[8], topo[9]
+    held_f, held_e, held_v = topo[10], topo[11], topo[12]
+    m, nf, ne = V.shape[0], FV.shape[0], EV.shape[0]
+    inner, face, edge = _sizes(n)
+    fbase = m * inner
+    ebase = fbase + nf * face
+    vbase = ebase + ne * edge
+    for p1 in range(3, n):
+        for p2 in range(2, p1):
+            src = c * inner + _L(p1 - 3, p2 - 2, 0)
+            dst = _L(p1, p2, 1)
+            for t in range(p2 - 1):
+                loc[U(dst + t)] = x[U(src + t)]
+    for v in range(4):
+        f = CF[c, v]
+        _face_order(V, FV, c, v, f, lk)
+        zero = (masked and held_f[f]) or (owned and FC[f, 0] != c)
+        lam[v] = 0
+        for s in range(n - 2):
+            for v2 in range(s + 1):
+                lam[lk[0]] = n - s - 2
+                lam[lk[1]] = s - v2 + 1
+                lam[lk[2]] = v2 + 1
+                p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
+                loc[_L(p1, p2, p3)] = 0.0 if zero else x[fbase + f * face + s * (s + 1) // 2 + v2]
+    for le in range(6):
+        e = CE[c, le]
+        i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
+        la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+        zero = (masked and held_e[e]) or (owned and ecell[eptr[e]] != c)
+        for a in range(4):
+            lam[a] = 0
+        for t in range(1, n):
+            lam[lb] = t
+            lam[la] = n - t
+            p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
+            loc[_L(p1, p2, p3)] = 0.0 if zero else x[ebase + e * edge + t - 1]
+    for v in range(4):
+        g = V[c, v]
+        zero = (masked and held_v[g]) or (owned and vcell[vptr[g]] != c)
+        for a in range(4):
+            lam[a] = 0
+        lam[v] = n
+        p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
+        loc[_L(p1, p2, p3)] = 0.0 if zero else x[vbase + g]
+
+
+@jit()
+def _delta(p1, p2, s):
+    """``L(p + offset of slot s) - L(p)``: the cubic place formula's differences."""
+    d = _O3[s]
+    o1, o2 = _O1[s], _O2[s]
+    if o1 > 0:
+        d += (p1 + 1) * (p1 + 2) // 2
+    elif o1 < 0:
+        d -= p1 * (p1 + 1) // 2
+    if o2 > 0:
+        d += p2 + 1
+    elif o2 < 0:
+        d -= p2
+    return d
+
+
+@jit()
+def _partial(loc, wc, z, slots, n_slots, kk, p1, p2, p3):
+    """The partial stencil of class ``z`` at ``p`` (``wc[z, q]``: the cell's scaled weight
+    of the class's ``q``-th slot; ``kk``: :func:`_delta_table`)."""
+    base = _L(p1, p2, p3)
+    acc = 0.0
+    for q in range(n_slots[z]):
+        s = slots[z, q]
+        acc += wc[z, q] * loc[U(base + kk[p1, s] + _O2[s] * p2)]
+    return acc
+
+
+@jit()
+def _delta_table(n):
+    """``kk[p1, s]`` with ``L(p + offset of s) - L(p) = kk[p1, s] + o2 * p2``: the place
+    formula's differences are linear in ``p2`` on a layer of fixed ``p1``."""
+    kk = np.empty((n + 1, 15), dtype=np.int64)
+    for p1 in range(n + 1):
+        for s in range(15):
+            kk[p1, s] = _delta(p1, 0, s)
+    return kk
+
+
+@jit()
+def _boundary_walk(c, n, topo, lk, lam, what, loc, wc, slots, n_slots, kk, bf, be, bv, C):
+    """Each boundary point of cell ``c`` (faces, edges, vertices), with its place in the
+    per-cell buffers ``bf[c, v, i]``, ``be[c, le, i]``, ``bv[c, v]``: ``what`` 0 writes the
+    partial stencil's value on ``loc`` (weights ``wc``), 1 the class value ``C[c, Z]``."""
+    V, CE = topo[0], topo[2]
+    EV = topo[5]
+    e_q = np.empty(15, dtype=np.int64)
+    m_q = np.empty(15, dtype=np.int64)
+    for v in range(4):
+        z = 1 << v
+        if what != 0:
+            for i in range((n - 1) * (n - 2) // 2):
+                bf[c, v, i] = C[c, z]
+            continue
+        ns = n_slots[z]
+        # face points in the cell's own order (a, b), n > a > b > 0: rows of fixed a
+        for a in range(2, n):
+            p1 = n if v == 0 else a
+            for q in range(ns):
+                sl = slots[z, q]
+                e_q[q] = kk[p1, sl]
+                m_q[q] = 0 if v <= 1 else _O2[sl]
+                if v <= 1:  # p2 is fixed along the row
+                    e_q[q] += _O2[sl] * a
+            row = (a - 2) * (a - 1) // 2 - 1
+            for b in range(1, a):
+                if v == 0:
+                    base = _L(n, a, b)
+                elif v == 1:
+                    base = _L(a, a, b)
+                elif v == 2:
+                    base = _L(a, b, b)
+                else:
+                    base = _L(a, b, 0)
+                acc = 0.0
+                for q in range(ns):
+                    acc += wc[z, q] * loc[U(base + e_q[q] + m_q[q] * b)]
+                bf[c, v, row + b] = acc
+    for le in range(6):
+        e = CE[c, le]
+        i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
+        la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+        z = 15 ^ ((1 << i) | (1 << j))
+        for a in range(4):
+            lam[a] = 0
+        for t in range(1, n):
+            lam[lb] = t
+            lam[la] = n - t
+            if what == 0:
+                p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
+                be[c, le, t - 1] = _partial(loc, wc, z, slots, n_slots, kk, p1, p2, p3)
+            else:
+                be[c, le, t - 1] = C[c, z]
+    for v in range(4):
+        z = 15 ^ (1 << v)
+        if what == 0:
+            for a in range(4):
+                lam[a] = 0
+            lam[v] = n
+            p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
+            bv[c, v] = _partial(loc, wc, z, slots, n_slots, kk, p1, p2, p3)
+        else:
+            bv[c, v] = C[c, z]
+
+
+@jit()
+def _inside_rows(loc, y, start, n, w):
+    """``y[start:]`` = the 15-point stencil ``w`` (slots in order) at the cell's inside
+    points, row by row (``p1``, ``p2`` fixed): the offsets are constant along a row, so
+    the row loop is one of plain loads (written out: the compiler vectorises it)."""
+    w0, w1, w2, w3, w4, w5, w6, w7 = w[0], w[1], w[2], w[3], w[4], w[5], w[6], w[7]
+    w8, w9, w10, w11, w12, w13, w14 = w[8], w[9], w[10], w[11], w[12], w[13], w[14]
+    for p1 in range(3, n):
+        for p2 in range(2, p1):
+            base = _L(p1, p2, 0)
+            d1, d2, d3 = _delta(p1, p2, 1), _delta(p1, p2, 2), _delta(p1, p2, 3)
+            d4, d5, d6 = _delta(p1, p2, 4), _delta(p1, p2, 5), _delta(p1, p2, 6)
+            d7, d8, d9 = _delta(p1, p2, 7), _delta(p1, p2, 8), _delta(p1, p2, 9)
+            d10, d11, d12 = _delta(p1, p2, 10), _delta(p1, p2, 11), _delta(p1, p2, 12)
+            d13, d14 = _delta(p1, p2, 13), _delta(p1, p2, 14)
+            out = start + _L(p1 - 3, p2 - 2, 0) - 1
+            for p3 in range(1, p2):
+                b = base + p3
+                y[U(out + p3)] = ((w0 * loc[U(b)] + w1 * loc[U(b + d1)] + w2 * loc[U(b + d2)]
+                                + w3 * loc[U(b + d3)] + w4 * loc[U(b + d4)])
+                               + (w5 * loc[U(b + d5)] + w6 * loc[U(b + d6)] + w7 * loc[U(b + d7)]
+                                  + w8 * loc[U(b + d8)] + w9 * loc[U(b + d9)])
+                               + (w10 * loc[U(b + d10)] + w11 * loc[U(b + d11)] + w12 * loc[U(b + d12)]
+                                  + w13 * loc[U(b + d13)] + w14 * loc[U(b + d14)]))
+
+
+@jit(parallel=True)
+def product(x, y, n, topo, W, scale, slots, n_slots, masked, bf, be, bv):
+    """``y = A x`` on a level: inside points by the stencil, the rest through the buffers
+    (then :func:`accumulate`, called here).  ``W[c, Z, slot]`` the class weights at
+    ``n = 1``, ``scale`` their factor on this level (``1 / n``)."""
+    V = topo[0]
+    m = V.shape[0]
+    inner = _sizes(n)[0]
+    size = lattice_size(n)
+    kk = _delta_table(n)
+    for c in prange(m):
+        loc = np.empty(size)
+        lk = np.empty(3, dtype=np.int64)
+        lam = np.zeros(4, dtype=np.int64)
+        _gather(x, c, n, topo, loc, masked, False, lk, lam)
+        wc = np.empty((15, 15))
+        for z in range(15):
+            for q in range(n_slots[z]):
+                wc[z, q] = W[c, z, slots[z, q]] * scale
+        _inside_rows(loc, y, c * inner, n, wc[0])
+        _boundary_walk(c, n, topo, lk, lam, 0, loc, wc, slots, n_slots, kk, bf, be, bv, W[:, :, 0])
+    accumulate(y, n, topo, masked, bf, be, bv)
+
+
+@jit(parallel=True)
+def class_fill(C, inner_value, y, n, topo, masked, bf, be, bv):
+    """``y`` at each point: the sum over the cells holding it of ``C[c, Z]`` (``Z`` the
+    point's class in ``c``); inside points get ``inner_value[c]``.  Diagonals, row sums
+    and loads of constant data are such sums."""
+    V = topo[0]
+    m = V.shape[0]
+    inner = _sizes(n)[0]
+    for c in prange(m):
+        lk = np.empty(3, dtype=np.int64)
+        lam = np.zeros(4, dtype=np.int64)
+        for i in range(inner):
+            y[c * inner + i] = inner_value[c]
+        _boundary_walk(c, n, topo, lk, lam, 1, y, C, np.zeros((1, 1), np.int64),
+                       np.zeros(1, np.int64), np.zeros((1, 1), np.int64), bf, be, bv, C)
+    accumulate(y, n, topo, masked, bf, be, bv)
+
+
+@jit()
+def _face_local(v, lk, mu0, mu1, mu2, n):
+    """The place in a cell's own face order (:func:`_boundary_walk`) of the point of its
+    face ``v`` with coordinates ``mu`` on the face's sorted points (``lk``: their local
+    numbers in the cell)."""
+    l0 = l1 = l2 = 0
+    for k in range(3):
+        m = mu0 if k == 0 else (mu1 if k == 1 else mu2)
+        if lk[k] == 0:
+            l0 = m
+        elif lk[k] == 1:
+            l1 = m
+        elif lk[k] == 2:
+            l2 = m
+    p1, p2, p3 = _p_of(l0, l1, l2, n)
+    if v == 0:
+        a, b = p2, p3
+    elif v == 1:
+        a, b = p1, p3
+    else:
+        a, b = p1, p2
+    return (a - 2) * (a - 1) // 2 + b - 1
+
+
+@jit(parallel=True)
+def accumulate(y, n, topo, masked, bf, be, bv):
+    """The faces', edges' and vertices' values of ``y``: their cells' parts added, lower
+    cell first (held points 0 when ``masked``)."""
+    V, FV, FC, FL = topo[0], topo[3], topo[4], topo[13]
+    EV, eptr, ecell, ele = topo[5], topo[6], topo[7], topo[14]
+    vptr, vcell, vlv = topo[8], topo[9], topo[15]
+    held_f, held_e, held_v = topo[10], topo[11], topo[12]
+    m, nf, ne, nv = V.shape[0], FV.shape[0], EV.shape[0], vptr.shape[0] - 1
+    inner, face, edge = _sizes(n)
+    fbase = m * inner
+    ebase = fbase + nf * face
+    vbase = ebase + ne * edge
+    for f in prange(nf):
+        c0, c1, l0, l1 = FC[f, 0], FC[f, 1], FL[f, 0], FL[f, 1]
+        lk0 = np.empty(3, dtype=np.int64)
+        lk1 = np.empty(3, dtype=np.int64)
+        _face_order(V, FV, c0, l0, f, lk0)
+        if c1 >= 0:
+            _face_order(V, FV, c1, l1, f, lk1)
+        zero = masked and held_f[f]
+        for s in range(n - 2):
+            for v2 in range(s + 1):
+                i = s * (s + 1) // 2 + v2
+                if zero:
+                    y[fbase + f * face + i] = 0.0
+                    continue
+                mu0, mu1, mu2 = n - s - 2, s - v2 + 1, v2 + 1
+                acc = bf[c0, l0, _face_local(l0, lk0, mu0, mu1, mu2, n)]
+                if c1 >= 0:
+                    acc += bf[c1, l1, _face_local(l1, lk1, mu0, mu1, mu2, n)]
+                y[fbase + f * face + i] = acc
+    for e in prange(ne):
+        for i in range(edge):
+            acc = 0.0
+            for q in range(eptr[e], eptr[e + 1]):
+                acc += be[ecell[q], ele[q], i]
+            y[ebase + e * edge + i] = 0.0 if (masked and held_e[e]) else acc
+    for g in prange(nv):
+        acc = 0.0
+        for q in range(vptr[g], vptr[g + 1]):
+            acc += bv[vcell[q], vlv[q]]
+        y[vbase + g] = 0.0 if (masked and held_v[g]) else acc
+
+
+@jit()
+def _interp(loc, p1, p2, p3):
+    """The value at fine lattice point ``p`` (level ``2n``) interpolated from the
+    coarse lattice ``loc`` (level ``n``): the mean of the ends of its coarse edge."""
+    a1, a2, a3 = p1 // 2, p2 // 2, p3 // 2
+    v = loc[_L(a1, a2, a3)]
+    if p1 % 2 or p2 % 2 or p3 % 2:
+        v = 0.5 * (v + loc[_L(a1 + p1 % 2, a2 + p2 % 2, a3 + p3 % 2)])
+    return v
+
+
+@jit(parallel=True)
+def prolong_add(xc, xf, n, topo, masked):
+    """``xf += P xc`` from the level with ``n`` subdivisions to the one with ``2 n``: each
+    cell writes its inside points and the shared points it is the first cell of."""
+    V, CF, CE, FV, FC, EV = topo[0], topo[1], topo[2], topo[3], topo[4], topo[5]
+    eptr, ecell, vptr, vcell = topo[6], topo[7], topo[8], topo[9]
+    held_f, held_e, held_v = topo[10], topo[11], topo[12]
+    m, nf, ne = V.shape[0], FV.shape[0], EV.shape[0]
+    N = 2 * n
+    inner, face, edge = _sizes(N)
+    fbase = m * inner
+    ebase = fbase + nf * face
+    vbase = ebase + ne * edge
+    size = lattice_size(n)
+    for c in prange(m):
+        loc = np.empty(size)
+        lk = np.empty(3, dtype=np.int64)
+        lam = np.zeros(4, dtype=np.int64)
+        _gather(xc, c, n, topo, loc, masked, False, lk, lam)
+        for p1 in range(3, N):
+            for p2 in range(2, p1):
+                out = c * inner + _L(p1 - 3, p2 - 2, 0) - 1
+                for p3 in range(1, p2):
+                    xf[out + p3] += _interp(loc, p1, p2, p3)
+        for v in range(4):
+            f = CF[c, v]
+            if FC[f, 0] != c or (masked and held_f[f]):
+                continue
+            _face_order(V, FV, c, v, f, lk)
+            lam[v] = 0
+            for s in range(N - 2):
+                for v2 in range(s + 1):
+                    lam[lk[0]] = N - s - 2
+                    lam[lk[1]] = s - v2 + 1
+                    lam[lk[2]] = v2 + 1
+                    p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], N)
+                    xf[fbase + f * face + s * (s + 1) // 2 + v2] += _interp(loc, p1, p2, p3)
+        for le in range(6):
+            e = CE[c, le]
+            if ecell[eptr[e]] != c or (masked and held_e[e]):
+                continue
+            i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
+            la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+            for a in range(4):
+                lam[a] = 0
+            for t in range(1, N):
+                lam[lb] = t
+                lam[la] = N - t
+                p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], N)
+                xf[ebase + e * edge + t - 1] += _interp(loc, p1, p2, p3)
+        for v in range(4):
+            g = V[c, v]
+            if vcell[vptr[g]] != c or (masked and held_v[g]):
+                continue
+            for a in range(4):
+                lam[a] = 0
+            lam[v] = N
+            p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], N)
+            xf[vbase + g] += _interp(loc, p1, p2, p3)
+
+
+@jit()
+def _restricted(loc, N, a1, a2, a3):
+    """``(P^T r)`` at coarse point ``a`` from the fine lattice ``loc`` (level ``N``)."""
+    q1, q2, q3 = 2 * a1, 2 * a2, 2 * a3
+    base = _L(q1, q2, q3)
+    half = 0.0
+    for s in range(1, 15):
+        r1, r2, r3 = q1 + _O1[s], q2 + _O2[s], q3 + _O3[s]
+        if N >= r1 and r1 >= r2 and r2 >= r3 and r3 >= 0:
+            half += loc[base + _delta(q1, q2, s)]
+    return loc[base] + 0.5 * half
+
+
+@jit(parallel=True)
+def restrict(rf, rc, n, topo, masked, bf, be, bv):
+    """``rc = P^T rf`` to the level with ``n`` subdivisions from the one with ``2 n``:
+    each cell reads the fine points it owns (shared ones by their first cell) and
+    adds up its coarse points' parts; the shared coarse points through the buffers."""
+    V, CE, EV = topo[0], topo[2], topo[5]
+    m = V.shape[0]
+    N = 2 * n
+    inner = _sizes(n)[0]
+    size = lattice_size(N)
+    for c in prange(m):
+        loc = np.empty(size)
+        lk = np.empty(3, dtype=np.int64)
+        lam = np.zeros(4, dtype=np.int64)
+        _gather(rf, c, N, topo, loc, masked, True, lk, lam)
+        for a1 in range(3, n):
+            for a2 in range(2, a1):
+                out = c * inner + _L(a1 - 3, a2 - 2, 0) - 1
+                for a3 in range(1, a2):
+                    rc[out + a3] = _restricted(loc, N, a1, a2, a3)
+        for v in range(4):  # face points in the cell's own order (:func:`_boundary_walk`)
+            for a in range(2, n):
+                for b in range(1, a):
+                    if v == 0:
+                        a1, a2, a3 = n, a, b
+                    elif v == 1:
+                        a1, a2, a3 = a, a, b
+                    elif v == 2:
+                        a1, a2, a3 = a, b, b
+                    else:
+                        a1, a2, a3 = a, b, 0
+                    bf[c, v, (a - 2) * (a - 1) // 2 + b - 1] = _restricted(loc, N, a1, a2, a3)
+        for le in range(6):
+            e = CE[c, le]
+            i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
+            la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+            for a in range(4):
+                lam[a] = 0
+            for t in range(1, n):
+                lam[lb] = t
+                lam[la] = n - t
+                a1, a2, a3 = _p_of(lam[0], lam[1], lam[2], n)
+                be[c, le, t - 1] = _restricted(loc, N, a1, a2, a3)
+        for v in range(4):
+            for a in range(4):
+                lam[a] = 0
+            lam[v] = n
+            a1, a2, a3 = _p_of(lam[0], lam[1], lam[2], n)
+            bv[c, v] = _restricted(loc, N, a1, a2, a3)
+    accumulate(rc, n, topo, masked, bf, be, bv)
+
+
+@jit()
+def _place(c, lam, n, topo, lk):
+    """The place in a level's vector of the point of cell ``c`` with coordinates ``lam``."""
+    V, CF, CE, FV, EV = topo[0], topo[1], topo[2], topo[3], topo[5]
+    m, nf, ne = V.shape[0], FV.shape[0], EV.shape[0]
+    inner, face, edge = _sizes(n)
+    zeros = 0
+    for a in range(4):
+        zeros += lam[a] == 0
+    p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
+    if zeros == 0:
+        return c * inner + _L(p1 - 3, p2 - 2, p3 - 1)
+    fbase = m * inner
+    if zeros == 1:
+        v = 0
+        while lam[v] != 0:
+            v += 1
+        f = CF[c, v]
+        _face_order(V, FV, c, v, f, lk)
+        s = n - 2 - lam[lk[0]]
+        v2 = lam[lk[2]] - 1
+        return fbase + f * face + s * (s + 1) // 2 + v2
+    ebase = fbase + nf * face
+    if zeros == 2:
+        for le in range(6):
+            i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
+            if lam[i] > 0 and lam[j] > 0:
+                e = CE[c, le]
+                hi = j if V[c, i] == EV[e, 0] else i
+                return ebase + e * edge + lam[hi] - 1
+    vbase = ebase + ne * edge
+    v = 0
+    while lam[v] == 0:
+        v += 1
+    return vbase + V[c, v]
+
+
+@jit(parallel=True)
+def places_of(cells, lams, n, topo, out):
+    """``out[i]``: the place of the point of cell ``cells[i]`` with coordinates ``lams[i]``."""
+    for i in prange(cells.shape[0]):
+        lk = np.empty(3, dtype=np.int64)
+        out[i] = _place(cells[i], lams[i], n, topo, lk)
+
+
+@jit(parallel=True)
+def gather_cells(x, cells, n, topo, out):
+    """``out[q]``: the whole lattice of cell ``cells[q]`` (for output and tests)."""
+    for q in prange(cells.shape[0]):
+        lk = np.empty(3, dtype=np.int64)
+        lam = np.zeros(4, dtype=np.int64)
+        _gather(x, cells[q], n, topo, out[q], False, False, lk, lam)

@@ -1,0 +1,178 @@
+"""``solve_poisson(mesh, f, refine=k)`` on tetrahedra without storing the refined mesh.
+
+The 3-D branch of :func:`hatkernels.patches.solve.solve_on_patches`: the coarse data are
+parsed once (a :class:`~hatkernels.problem.PoissonProblem` on the coarse mesh), the
+layout and multigrid are :mod:`hatkernels.patches.tets`, CG is the four-vector one of
+:mod:`hatkernels.patches.cg`.  The path takes a coefficient and a source that are
+numbers or ``{region: number}``, and held values that are a number or
+``{tag: number}`` on whole coarse boundary faces; anything else takes the stored path
+(:func:`hatkernels.patches.solve.patch_path_reason` says why).
+"""
+
+from __future__ import annotations
+
+import time
+
+import numba
+import numpy as np
+
+from hatkernels.errors import InputError
+from hatkernels.patches.cg import lean_cg
+from hatkernels.patches.tets import CLASS_CELLS, TetLayout, TetMultigrid, TetOperator
+from hatkernels.perf import peak_rss_bytes
+
+__all__ = ["solve_on_tets", "tet_bytes_per_point"]
+
+
+def tet_bytes_per_point(k, keeps_b=False):
+    """Peak bytes per fine point beyond the coarse mesh with ``k`` refinements: CG's four
+    vectors (five when the right-hand side is kept), the multigrid's inverse diagonal and
+    three shared work vectors, each coarser level's inverse diagonal, ``x`` and ``b``
+    (an eighth as many points per level: a seventh in all), and the per-cell buffers of
+    the shared points' parts (``4 C(n-1, 2)`` per cell against ``n^3 / 6`` points)."""
+    n = 2**k
+    return 8 * (4 + bool(keeps_b)) + 8 * 4 + 8 * 3 / 7.0 + 8 * 12.0 / n
+
+
+def _held_faces(coarse, problem, dirichlet):
+    """``(faces, values, rank)``: the held coarse faces, the value on each and the place of
+    its tag in ``dirichlet`` (the first listed tag wins where held faces meet)."""
+    pieces = [p for p in problem.pieces if p.kind == "held"]
+    if pieces:
+        faces = np.concatenate([p.sides for p in pieces]).astype(np.int64)
+    elif problem.dirichlet.whole_boundary:
+        faces = np.asarray(coarse.boundary_faces(), dtype=np.int64)
+    else:  # pragma: no cover - patch_path_reason admits nothing else
+        raise InputError("the patch path needs held values on whole boundary faces")
+    values = np.full(len(faces), np.nan)
+    rank = np.zeros(len(faces), dtype=np.int64)
+    if isinstance(dirichlet, dict):
+        keyed = {tuple(s): i for i, s in enumerate(np.sort(faces, axis=1).tolist())}
+        items = list(dirichlet.items())
+        for r in range(len(items) - 1, -1, -1):  # the first listed tag written last
+            key, v = items[r]
+            t = coarse.tags.side_tag(key, what="dirichlet: boundary tag")
+            for s in np.sort(coarse.tags.sides_of([t]), axis=1).tolist():
+                if tuple(s) in keyed:
+                    values[keyed[tuple(s)]] = float(v)
+                    rank[keyed[tuple(s)]] = r
+        missing = np.flatnonzero(np.isnan(values))
+        if missing.size:
+            a, b, c = faces[missing[0]]
+            raise InputError(f"dirichlet gives no value for held face ({a}, {b}, {c})")
+    else:
+        values[:] = float(dirichlet)
+    return faces, values, rank
+
+
+def _lifting(layout, faces, values, rank, problem):
+    """The held values on the finest level (0 elsewhere), or None when all are 0."""
+    if not np.any(values):
+        return None
+    n = 2**layout.k
+    m, nf, ne = layout.n_cells, layout.n_faces, layout.n_edges
+    inner, face = (n - 1) * (n - 2) * (n - 3) // 6, (n - 1) * (n - 2) // 2
+    g = np.zeros(layout.size(layout.k))
+    fbase = m * inner
+    ebase = fbase + nf * face
+    vbase = ebase + ne * (n - 1)
+    f = layout.face_index(faces)
+    g[fbase:ebase].reshape(nf, face)[f] = values[:, None]
+    # an edge takes the value of the first-listed tag among its held faces
+    EV = layout.topo[5]
+    pairs = [layout._edge_index(EV, layout.n_vertices, faces[:, [a, b]])
+             for a, b in ((0, 1), (0, 2), (1, 2))]
+    best = np.full(ne, np.iinfo(np.int64).max)
+    for e in pairs:
+        np.minimum.at(best, e, rank)
+    edge_value = np.zeros(ne)
+    for e in pairs:
+        first = rank == best[e]  # faces of one rank have one tag, so one value
+        edge_value[e[first]] = values[first]
+    g[ebase:vbase].reshape(ne, n - 1)[layout.held_e] = edge_value[layout.held_e, None]
+    g[vbase:][problem.dirichlet.points] = problem.dirichlet.values
+    return g
+
+
+def _per_cell(coef, m, what):
+    if coef.kind == "constant" and np.ndim(coef.value) == 0:
+        return np.full(m, float(coef.value))
+    if coef.kind == "cell" and np.ndim(coef.value) == 1:
+        return np.asarray(coef.value, dtype=np.float64)
+    raise InputError(f"{what}: the patch path takes values constant on each coarse cell")
+
+
+def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, start, check,
+                  monitor, note, memory_check, degree, nested_cycles, t0, args):
+    """The 3-D solve of :func:`hatkernels.patches.solve.solve_on_patches` (arguments
+    checked there); returns a :class:`~hatkernels.patches.PatchSolution`."""
+    from hatkernels.memory import available_bytes
+    from hatkernels.patches.solve import FIXED_BYTES, MARGIN, PatchSolution
+    from hatkernels.solver import report_convergence
+    from hatkernels.stats import SolveStats
+
+    m = coarse.n_cells
+    kappa = _per_cell(problem.coefficient, m, "coefficient")
+    source = _per_cell(problem.source, m, "f")
+    faces, values, rank = _held_faces(coarse, problem, dirichlet)
+    lifted = bool(np.any(values != 0))
+    if rtol is None and lifted:
+        raise InputError("rtol=None (the nested start alone) reaches discretisation accuracy "
+                         "with zero held values only; give a tolerance")
+    layout = TetLayout(coarse, refine, held_faces=faces)
+    k, n = refine, 2**refine
+    size = layout.size(k)
+    need = tet_bytes_per_point(refine, lifted) * size * MARGIN + FIXED_BYTES
+    have = available_bytes() if memory_check else None
+    if have is not None and need > have:
+        raise InputError(
+            f"not enough memory: the patch path on {size:,} fine points needs about "
+            f"{need / 2**30:.1f} GiB ({need / size:.0f} bytes per point), but "
+            f"{have / 2**30:.1f} GiB are available; refine less, or pass "
+            f"memory_check=False to try anyway")
+    timings = {"boundary": time.perf_counter() - t0}
+
+    note("assemble")
+    t1 = time.perf_counter()
+    M = TetMultigrid(layout, kappa, degree=degree, nested_cycles=nested_cycles)
+    A = TetOperator(layout, M.W, k)
+    timings["setup"] = time.perf_counter() - t1
+    t2 = time.perf_counter()
+    # the load of a source constant on each coarse cell: f times the fine cells' volume
+    # over 4 for each fine cell at the point
+    unit = source * M.volumes / (4.0 * n**3)
+    C = unit[:, None] * CLASS_CELLS[None, :]
+    r = layout.class_sum(C, unit * CLASS_CELLS[0], k, masked=False)
+    g = _lifting(layout, faces, values, rank, problem) if lifted else None
+    if g is not None:
+        r -= TetOperator(layout, M.W, k, masked=False) @ g
+    layout.zero_held(r)
+    kept = r.copy() if lifted else None
+
+    def remake_b(out):
+        if kept is not None:
+            out[:] = kept
+        else:
+            out[:] = layout.class_sum(C, unit * CLASS_CELLS[0], k, masked=True)
+
+    timings["assemble"] = time.perf_counter() - t2
+    note("solve")
+    t3 = time.perf_counter()
+    result = lean_cg(A, M, r, remake_b, rtol=rtol, atol=atol, maxiter=maxiter,
+                     nested=start == "nested", monitor=monitor)
+    timings["solve"] = time.perf_counter() - t3
+    del r
+    kept = None  # noqa: F841  (frees the kept right-hand side)
+    x = result.x
+    if g is not None:
+        x += g
+    stats = SolveStats(
+        iterations=result.iterations, converged=result.converged,
+        residuals=result.residuals, timings={**timings, "total": time.perf_counter() - t0},
+        unknowns=size, preconditioner=M.description, stored_bytes=0,
+        peak_rss_bytes=peak_rss_bytes(), threads=numba.get_num_threads(), info=result.info,
+        message=result.message, tolerance=result.tolerance,
+        condition_estimate=result.condition_estimate, nnz=0, matrix_free=True)
+    stats.dirichlet_points = int(layout.held_mask().sum())
+    report_convergence(stats, check, stacklevel=4)
+    return PatchSolution(x, layout, stats, args)

@@ -1,0 +1,448 @@
+"""A never-stored refined tetrahedral mesh: its layout, its stiffness operator and its
+multigrid, cell by cell on the Kuhn lattices of :mod:`hatkernels._jit.patches3d`.
+
+The same idea as the triangle patches (:mod:`hatkernels.patches.layout` and
+:mod:`hatkernels.patches.multigrid`; B. Bergen, T. Gradl, F. Hulsemann and U. Rude,
+Computing in Science & Engineering 8(6), 2006; B. Gmeiner, U. Rude, H. Stengel,
+C. Waluga and B. Wohlmuth, Numer. Math. Theory Methods Appl. 8, 2015): on each coarse
+tetrahedron refined by Bey's rule the fine mesh is a lattice, so the stiffness matrix
+is a stencil per coarse cell and only vectors of the fine size are stored.  In 3-D the
+fine cells are not congruent to the coarse one (six Kuhn types under one affine map),
+so each coarse cell keeps 15 classes of 15 weights instead of one element matrix.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.sparse.linalg import LinearOperator
+
+from hatkernels._jit import patches3d as _t
+from hatkernels.assembly import assemble_stiffness
+from hatkernels.boundary import apply_dirichlet
+from hatkernels.checks import integer_option
+from hatkernels.coefficients import per_cell
+from hatkernels.errors import InputError
+from hatkernels.mesh.refine3d import bey_order, unique_edges
+from hatkernels.mesh.tetrahedra import face_topology
+from hatkernels.precond.chebyshev import ChebyshevSmoother
+from hatkernels.precond.direct import SparseDirect, coarse_correction
+from hatkernels.precond.registry import Preconditioner
+
+__all__ = ["TetLayout", "TetOperator", "TetMultigrid", "class_weights"]
+
+_INCIDENCE = _t.class_incidence()
+#: Per class: the fine cells at a point of that class inside its coarse cell.
+CLASS_CELLS = np.array([len(rows) // 4 for rows in _INCIDENCE], dtype=np.int64)
+
+
+def _slots():
+    slots = np.zeros((15, 15), dtype=np.int64)
+    count = np.zeros(15, dtype=np.int64)
+    for z, rows in enumerate(_INCIDENCE):
+        used = np.unique(rows[:, 3])
+        slots[z, :used.size] = used
+        count[z] = used.size
+    return slots, count
+
+
+_SLOTS, _N_SLOTS = _slots()
+
+
+def _incidence_csr(owner_of, n_owners):
+    """``(ptr, cell, local)`` listing, for each owner (edge, vertex), the cells holding it
+    (increasing) and its local number there; ``owner_of`` is (m, j)."""
+    m, j = owner_of.shape
+    flat = owner_of.reshape(-1)
+    order = np.lexsort((np.repeat(np.arange(m), j), flat))
+    ptr = np.zeros(n_owners + 1, dtype=np.int64)
+    np.cumsum(np.bincount(flat, minlength=n_owners), out=ptr[1:])
+    return ptr, np.ascontiguousarray(order // j), np.ascontiguousarray(order % j)
+
+
+def class_weights(cells_points, kappa):
+    """``W[c, Z, slot]``: the stiffness stencil of each class ``Z`` of coarse cell ``c``
+    at ``n = 1`` (level ``n`` has ``W / n``), from the element matrices of the six Kuhn
+    types under the cell's map; ``cells_points`` (m, 4, 3) in Bey's order."""
+    x = cells_points
+    J = np.stack([x[:, 1] - x[:, 0], x[:, 2] - x[:, 1], x[:, 3] - x[:, 2]], axis=2)  # columns
+    vol = np.abs(np.linalg.det(J)) / 6.0
+    Jinv = np.linalg.inv(J)
+    types = _t.kuhn_types()
+    K = np.empty((x.shape[0], 6, 4, 4))
+    for t in range(6):
+        Q = types[t, 1:].T.astype(np.float64)  # E = J Q: edges from the type's first point
+        G = np.linalg.inv(Q) @ Jinv  # rows: gradients of lam1..lam3
+        G = np.concatenate([-G.sum(axis=1, keepdims=True), G], axis=1)
+        K[:, t] = (kappa * vol)[:, None, None] * np.einsum("cai,cbi->cab", G, G)
+    W = np.zeros((x.shape[0], 15, 15))
+    for z, rows in enumerate(_INCIDENCE):
+        for t, a, b, s in rows:
+            W[:, z, s] += K[:, t, a, b]
+    return W, vol
+
+
+class TetLayout:
+    """The coarse tetrahedral mesh ``coarse`` seen as lattices refined ``k`` times.
+
+    Parameters
+    ----------
+    coarse : Mesh
+        A tetrahedral mesh (3-D).
+    k : int
+        Refinements (``n = 2**k`` fine edges per coarse edge).
+    held_faces : ndarray (h, 3), optional
+        Coarse boundary faces (point triples, any order) whose fine points are held.
+    """
+
+    def __init__(self, coarse, k, held_faces=None):
+        k = integer_option(k, "k (refinements)", minimum=0)
+        if coarse.dim != 3:
+            raise InputError("TetLayout takes tetrahedral meshes (3-D)")
+        self.coarse, self.k = coarse, int(k)
+        V = np.ascontiguousarray(bey_order(coarse), dtype=np.int64)
+        m, nv = V.shape[0], coarse.n_points
+        faces, cell_faces, _ = face_topology(V)
+        faces = np.ascontiguousarray(faces, dtype=np.int64)
+        cell_faces = np.ascontiguousarray(cell_faces, dtype=np.int64)
+        nf = faces.shape[0]
+        fptr, fcell, flocal = _incidence_csr(cell_faces, nf)
+        FC = np.full((nf, 2), -1, dtype=np.int64)
+        FL = np.zeros((nf, 2), dtype=np.int64)
+        two = np.diff(fptr) == 2
+        FC[:, 0], FL[:, 0] = fcell[fptr[:-1]], flocal[fptr[:-1]]
+        FC[two, 1], FL[two, 1] = fcell[fptr[:-1][two] + 1], flocal[fptr[:-1][two] + 1]
+        edges, cell_edges = unique_edges(V, nv)
+        EV = np.ascontiguousarray(edges, dtype=np.int64)
+        CE = np.ascontiguousarray(cell_edges, dtype=np.int64)
+        eptr, ecell, ele = _incidence_csr(CE, EV.shape[0])
+        vptr, vcell, vlv = _incidence_csr(V, nv)
+        self.held_f = np.zeros(nf, dtype=bool)
+        self.held_e = np.zeros(EV.shape[0], dtype=bool)
+        self.held_v = np.zeros(nv, dtype=bool)
+        self._faces = faces
+        if held_faces is not None and len(held_faces):
+            f = self.face_index(held_faces, "held face")
+            self.held_f[f] = True
+            self.held_v[faces[f].reshape(-1)] = True
+            tri = faces[f]
+            pairs = np.concatenate([tri[:, [0, 1]], tri[:, [0, 2]], tri[:, [1, 2]]])
+            self.held_e[self._edge_index(EV, nv, pairs)] = True
+        self.topo = (V, cell_faces, CE, faces, FC, EV, eptr, ecell, vptr, vcell,
+                     self.held_f, self.held_e, self.held_v, FL, ele, vlv)
+        self.n_cells, self.n_faces, self.n_edges, self.n_vertices = m, nf, EV.shape[0], nv
+        self._buffers = None
+
+    def face_index(self, triples, what="face"):
+        """The face number of each point triple (any order); names a triple that is not a
+        face of the coarse mesh."""
+        t = np.sort(np.asarray(triples, dtype=np.int64).reshape(-1, 3), axis=1)
+        n = self.coarse.n_points
+        keys = (self._faces[:, 0] * n + self._faces[:, 1]) * n + self._faces[:, 2]
+        want = (t[:, 0] * n + t[:, 1]) * n + t[:, 2]
+        pos = np.minimum(np.searchsorted(keys, want), len(keys) - 1)
+        bad = np.flatnonzero(keys[pos] != want)
+        if bad.size:
+            a, b, c = t[bad[0]]
+            raise InputError(f"{what} ({a}, {b}, {c}) is not a face of the coarse mesh")
+        return pos
+
+    @staticmethod
+    def _edge_index(EV, n, pairs):
+        pairs = np.sort(pairs, axis=1)
+        keys = EV[:, 0] * n + EV[:, 1]
+        return np.searchsorted(keys, pairs[:, 0] * n + pairs[:, 1])
+
+    def size(self, level):
+        """Values on ``level`` (``n = 2**level``): every fine point once."""
+        return _t.level_size(2**level, self.n_cells, self.n_faces, self.n_edges,
+                             self.n_vertices)
+
+    def buffers(self, level):
+        """Per-cell buffers of the shared points' parts for ``level``: views into arrays
+        sized for the finest level, shared by every level (no two kernels run at once)."""
+        if self._buffers is None:
+            n = 2**max(self.k, 1)
+            self._buffers = (np.empty(self.n_cells * 4 * (n - 1) * (n - 2) // 2),
+                             np.empty(self.n_cells * 6 * (n - 1)),
+                             np.empty((self.n_cells, 4)))
+        n = 2**level
+        bf, be, bv = self._buffers
+        face = max((n - 1) * (n - 2) // 2, 0)
+        return (bf[: self.n_cells * 4 * face].reshape(self.n_cells, 4, face),
+                be[: self.n_cells * 6 * (n - 1)].reshape(self.n_cells, 6, n - 1), bv)
+
+    def class_sum(self, C, inner, level, masked=True):
+        """The level vector whose value at each point is the sum, over the coarse cells
+        holding it, of ``C[c, Z]`` (``Z`` its class there); ``inner[c]`` inside cell ``c``."""
+        y = np.empty(self.size(level))
+        _t.class_fill(np.ascontiguousarray(C, dtype=np.float64),
+                      np.ascontiguousarray(inner, dtype=np.float64), y, 2**level, self.topo,
+                      masked, *self.buffers(level))
+        return y
+
+    def zero_held(self, x, level=None):
+        """``x = 0`` at the held points of ``level`` (default the finest), in place."""
+        level = self.k if level is None else level
+        x[self.class_sum(np.ones((self.n_cells, 15)), np.ones(self.n_cells), level,
+                         masked=True) == 0.0] = 0.0
+        return x
+
+    def held_mask(self, level=None):
+        """Boolean vector of the held points of ``level`` (default the finest)."""
+        level = self.k if level is None else level
+        ones = np.ones((self.n_cells, 15))
+        return self.class_sum(ones, np.ones(self.n_cells), level, masked=True) == 0.0
+
+    # -- the numbering of mesh.refine() repeated k times ---------------------------------
+
+    def refined_mesh(self, level=None):
+        """``coarse.refine()`` repeated ``level`` times (default the finest), built."""
+        level = self.k if level is None else integer_option(level, "level", minimum=0)
+        mesh = self.coarse
+        for _ in range(level):
+            mesh = mesh.refine()
+        return mesh
+
+    def places(self, mesh, level=None):
+        """For each point of ``mesh`` (``coarse`` refined ``level`` times, default the
+        finest): its place in this layout's vector.  Found from the fine cells' points:
+        fine cell ``j`` lies in coarse cell ``j // 8**level``, and the point's integer
+        barycentric coordinates there give its place."""
+        level = self.k if level is None else level
+        n = 2**level
+        cells = np.asarray(mesh.cells)
+        first = np.full(mesh.n_points, -1, dtype=np.int64)
+        flat = cells.reshape(-1)
+        first[flat[::-1]] = np.arange(flat.size - 1, -1, -1)
+        coarse_cell = first // 4 // (8**level)
+        V = self.topo[0]
+        x0 = self.coarse.points[V[coarse_cell, 0]]
+        cp = self.coarse.points[V]
+        J = np.stack([cp[:, 1] - cp[:, 0], cp[:, 2] - cp[:, 1], cp[:, 3] - cp[:, 2]], axis=2)
+        p = np.einsum("cij,cj->ci", np.linalg.inv(J)[coarse_cell],
+                      np.asarray(mesh.points) - x0) * n
+        pi = np.rint(p).astype(np.int64)
+        lam = np.stack([n - pi[:, 0], pi[:, 0] - pi[:, 1], pi[:, 1] - pi[:, 2], pi[:, 2]], axis=1)
+        out = np.empty(mesh.n_points, dtype=np.int64)
+        _t.places_of(coarse_cell, np.ascontiguousarray(lam), n, self.topo, out)
+        return out
+
+
+    def to_refined(self, x, level=None, mesh=None):
+        """``x`` (on ``level``, default the finest) in the numbering of ``coarse.refine()``
+        repeated ``level`` times; ``mesh`` is that refined mesh (built when not given: the
+        places are found from its cells)."""
+        level = self.k if level is None else level
+        x = np.asarray(x, dtype=np.float64)
+        if x.shape != (self.size(level),):
+            raise InputError(f"x has shape {x.shape}; level {level} of this layout has "
+                             f"{self.size(level):,} points")
+        mesh = self.refined_mesh(level) if mesh is None else mesh
+        return x[self.places(mesh, level)]
+
+    def from_refined(self, u, level=None, mesh=None):
+        """The inverse of :meth:`to_refined`."""
+        level = self.k if level is None else level
+        mesh = self.refined_mesh(level) if mesh is None else mesh
+        u = np.asarray(u, dtype=np.float64)
+        if u.shape != (mesh.n_points,):
+            raise InputError(f"u has shape {u.shape}; the refined mesh has {mesh.n_points:,} "
+                             "points")
+        x = np.empty(self.size(level))
+        x[self.places(mesh, level)] = u
+        return x
+
+    def patch(self, x, cell, level=None):
+        """``(lam, values)``: the values of ``x`` on coarse ``cell``'s lattice with their
+        integer barycentric coordinates (rows summing to ``2**level``, on the cell's
+        points in Bey's order, ``self.topo[0][cell]``)."""
+        level = self.k if level is None else level
+        n = 2**level
+        if not 0 <= int(cell) < self.n_cells:
+            raise InputError(f"cell {cell} is not a coarse cell (0..{self.n_cells - 1})")
+        x = np.ascontiguousarray(x, dtype=np.float64)
+        if x.shape != (self.size(level),):
+            raise InputError(f"x has shape {x.shape}; level {level} has {self.size(level):,} "
+                             "points")
+        p = np.array([(a, b, c) for a in range(n + 1) for b in range(a + 1)
+                      for c in range(b + 1)], dtype=np.int64)
+        lam = np.stack([n - p[:, 0], p[:, 0] - p[:, 1], p[:, 1] - p[:, 2], p[:, 2]], axis=1)
+        loc = np.empty((1, _t.lattice_size(n)))
+        _t.gather_cells(x, np.array([int(cell)], dtype=np.int64), n, self.topo, loc)
+        return lam, loc[0]
+
+
+class TetOperator(LinearOperator):
+    """The stiffness matrix on ``level`` of a :class:`TetLayout`, matrix-free; held rows
+    and columns taken out (zero) unless ``masked=False``."""
+
+    def __init__(self, layout, W, level=None, masked=True):
+        self.layout, self.W = layout, W
+        self.level = layout.k if level is None else int(level)
+        self.n = 2**self.level
+        self.masked = bool(masked)
+        size = layout.size(self.level)
+        super().__init__(dtype=np.dtype(np.float64), shape=(size, size))
+
+    def matvec_into(self, x, out):
+        if out is x:
+            raise InputError("TetOperator.matvec_into: out must not be x")
+        _t.product(x, out, self.n, self.layout.topo, self.W, 1.0 / self.n, _SLOTS, _N_SLOTS,
+                   self.masked, *self.layout.buffers(self.level))
+        return out
+
+    def _matvec(self, x):
+        x = np.ascontiguousarray(x, dtype=np.float64).reshape(-1)
+        return self.matvec_into(x, np.empty(self.shape[0]))
+
+    def _rmatvec(self, x):
+        return self._matvec(x)
+
+    def diagonal_and_bound(self):
+        """``(diagonal, bound)``: the diagonal (0 at held points) and an upper bound on the
+        spectrum of ``D^-1 A`` (Gershgorin's, from each coarse cell's absolute parts)."""
+        lay, s = self.layout, 1.0 / self.n
+        diag = lay.class_sum(self.W[:, :, 0] * s, self.W[:, 0, 0] * s, self.level, self.masked)
+        rows = lay.class_sum(np.abs(self.W).sum(axis=2) * s, np.abs(self.W[:, 0]).sum(axis=1) * s,
+                             self.level, self.masked)
+        keep = diag > 0
+        return diag, float((rows[keep] / diag[keep]).max(initial=1.0))
+
+
+class TetMultigrid(Preconditioner):
+    """V-cycle multigrid on the levels of a :class:`TetLayout` (an SPD preconditioner):
+    Chebyshev smoothing of ``degree`` on ``D^-1 A`` over ``[lower * top, top]`` (top
+    Gershgorin's bound), linear interpolation and its transpose, the coarse mesh's
+    assembled matrix factorised at the bottom.  ``cycle`` ``"F"`` (the default, as the
+    stored gmg's on tetrahedra: its iterations do not grow with the depth) or ``"V"``."""
+
+    name = "patch-multigrid-3d"
+    kind = "geometric multigrid on refined tetrahedra, matrix-free stencils"
+    needs_matrix = False
+
+    def __init__(self, layout, kappa, *, degree=2, lower=1.0 / 6.0, nested_cycles=1,
+                 cycle="F"):
+        if cycle not in ("V", "F"):
+            raise InputError(f"cycle must be 'V' or 'F', got {cycle!r}")
+        self.cycle = cycle
+        self.layout = layout
+        k = layout.k
+        if k < 1:
+            raise InputError("the patch multigrid needs refine >= 1")
+        super().__init__(layout.size(k))
+        self.degree = integer_option(degree, "degree", minimum=1)
+        self.nested_cycles = integer_option(nested_cycles, "nested_cycles", minimum=1)
+        kappa = np.asarray(kappa, dtype=np.float64)
+        bad = np.flatnonzero(~(np.isfinite(kappa) & (kappa > 0)))
+        if kappa.shape != (layout.n_cells,) or bad.size:
+            raise InputError("kappa must hold one positive finite number per coarse cell")
+        coarse = layout.coarse
+        self.W, self.volumes = class_weights(coarse.points[layout.topo[0]], kappa)
+        self.ops, self.smoothers, self.x, self.b, self.work = [], [], [], [], []
+        # three work vectors shared by every level (views of the finest level's): a level
+        # needs them only while it smooths and until its residual is restricted
+        shared = tuple(np.empty(layout.size(k)) for _ in range(3))
+        for level in range(1, k + 1):
+            op = TetOperator(layout, self.W, level)
+            diag, bound = op.diagonal_and_bound()
+            dinv = np.zeros_like(diag)
+            dinv[diag > 0] = 1.0 / diag[diag > 0]
+            del diag
+            size = layout.size(level)
+            self.ops.append(op)
+            self.smoothers.append(ChebyshevSmoother(
+                op.matvec_into, self._residual(op), dinv, self.degree, bound=bound,
+                estimate=False, lower=lower))
+            self.work.append(tuple(w[:size] for w in shared))
+            self.x.append(np.empty(size) if level < k else None)
+            self.b.append(np.empty(size) if level < k else None)
+        fixed = np.flatnonzero(layout.held_v)
+        A = assemble_stiffness(coarse, per_cell(kappa))
+        system = apply_dirichlet(A, np.zeros(coarse.n_points), fixed)
+        self._coarse_free, self._coarse_A = system.free, system.A
+        self._coarse_solver = SparseDirect(system.A) if system.A.shape[0] else None
+        self._coarse_x = np.empty(coarse.n_points)
+        self._coarse_b = np.empty(coarse.n_points)
+        self._held0 = fixed
+
+    @staticmethod
+    def _residual(op):
+        def residual(x, b, out):
+            op.matvec_into(x, out)
+            np.subtract(b, out, out=out)
+        return residual
+
+    def _apply(self, r):
+        out = np.empty(self.shape[0])
+        return self.apply_into(r, out)
+
+    def apply_into(self, r, out):
+        """``out = M r``: one V-cycle from a zero guess (``r`` must be 0 at held points)."""
+        self._cycle(self.layout.k, out, r, True, self.cycle)
+        return out
+
+    def full_cycle_into(self, r, out, cycles=None):
+        """Full multigrid: the load restricted to every level, the coarse solve, then each
+        level started from the interpolated solution below and ``cycles`` V-cycles."""
+        cycles = self.nested_cycles if cycles is None else int(cycles)
+        k = self.layout.k
+        for level in range(k, 0, -1):
+            self._restrict(level, r if level == k else self.b[level - 1])
+        self._coarse_solve(self._coarse_x, self._coarse_b, True)
+        for level in range(1, k + 1):
+            x = out if level == k else self.x[level - 1]
+            b = r if level == k else self.b[level - 1]
+            x[:] = 0.0
+            self._prolong_add(level, self._coarse_x if level == 1 else self.x[level - 2], x)
+            for _ in range(cycles):
+                self._cycle(level, x, b, False, self.cycle)
+        return out
+
+    def _below(self, level):
+        if level == 1:
+            return self._coarse_x, self._coarse_b
+        return self.x[level - 2], self.b[level - 2]
+
+    def _restrict(self, level, r):
+        _, bc = self._below(level)
+        _t.restrict(r, bc, 2**(level - 1), self.layout.topo, True,
+                    *self.layout.buffers(level - 1))
+
+    def _prolong_add(self, level, xc, x):
+        _t.prolong_add(xc, x, 2**(level - 1), self.layout.topo, True)
+
+    def _coarse_solve(self, x, b, zero_guess):
+        if self._coarse_solver is None:
+            if zero_guess:
+                x[:] = 0.0
+            return
+        coarse_correction(self._coarse_solver, self._coarse_A, self._coarse_free, x, b,
+                          zero_guess)
+
+    def _cycle(self, level, x, b, zero_guess, kind):
+        if level == 0:
+            self._coarse_solve(x, b, zero_guess)
+            return
+        sm, (r, d, q) = self.smoothers[level - 1], self.work[level - 1]
+        sm.smooth(x, b, zero_guess, r, d, q)
+        sm.residual(x, b, r)
+        self._restrict(level, r)
+        xc, bc = self._below(level)
+        if kind == "V":
+            self._cycle(level - 1, xc, bc, True, "V")
+        else:  # F: the palindrome V, F, V keeps the cycle symmetric
+            self._cycle(level - 1, xc, bc, True, "V")
+            self._cycle(level - 1, xc, bc, False, "F")
+            self._cycle(level - 1, xc, bc, False, "V")
+        self._prolong_add(level, xc, x)
+        sm.smooth(x, b, False, r, d, q)
+
+    @property
+    def memory_bytes(self):
+        vectors = [v for v in self.x + self.b if v is not None] + list(self.work[-1])
+        return int(sum(v.nbytes for v in vectors) + sum(s.dinv.nbytes for s in self.smoothers)
+                   + sum(b.nbytes for b in self.layout.buffers(self.layout.k)))
+
+    def _details(self):
+        return (f"{self.layout.k} lattice levels over {self.layout.n_cells} coarse cells, "
+                f"{self.cycle}-cycle, Chebyshev degree {self.degree}")
