@@ -45,6 +45,8 @@ DIRS = np.array([[1, 0, 0], [0, 1, 0], [0, 0, 1], [1, 1, 0], [1, 0, 1], [0, 1, 1
                 dtype=np.int64)
 #: Slot 0 is the point, slots 1..7 ``p + DIRS``, slots 8..14 ``p - DIRS``.
 SLOT_OFFSETS = np.concatenate([np.zeros((1, 3), dtype=np.int64), DIRS, -DIRS])
+#: Coarse cells per parallel chunk: each chunk allocates its buffers once.
+CELLS = 16
 _O1 = np.ascontiguousarray(SLOT_OFFSETS[:, 0])
 _O2 = np.ascontiguousarray(SLOT_OFFSETS[:, 1])
 _O3 = np.ascontiguousarray(SLOT_OFFSETS[:, 2])
@@ -326,17 +328,18 @@ def product(x, y, n, topo, W, scale, slots, n_slots, masked, bf, be, bv):
     inner = _sizes(n)[0]
     size = lattice_size(n)
     kk = _delta_table(n)
-    for c in prange(m):
+    for ch in prange((m + CELLS - 1) // CELLS):
         loc = np.empty(size)
         lk = np.empty(3, dtype=np.int64)
         lam = np.zeros(4, dtype=np.int64)
-        _gather(x, c, n, topo, loc, masked, False, lk, lam)
         wc = np.empty((15, 15))
-        for z in range(15):
-            for q in range(n_slots[z]):
-                wc[z, q] = W[c, z, slots[z, q]] * scale
-        _inside_rows(loc, y, c * inner, n, wc[0])
-        _boundary_walk(c, n, topo, lk, lam, 0, loc, wc, slots, n_slots, kk, bf, be, bv, W[:, :, 0])
+        for c in range(ch * CELLS, min(m, (ch + 1) * CELLS)):
+            _gather(x, c, n, topo, loc, masked, False, lk, lam)
+            for z in range(15):
+                for q in range(n_slots[z]):
+                    wc[z, q] = W[c, z, slots[z, q]] * scale
+            _inside_rows(loc, y, c * inner, n, wc[0])
+            _boundary_walk(c, n, topo, lk, lam, 0, loc, wc, slots, n_slots, kk, bf, be, bv, W[:, :, 0])
     accumulate(y, n, topo, masked, bf, be, bv)
 
 
@@ -348,13 +351,15 @@ def class_fill(C, inner_value, y, n, topo, masked, bf, be, bv):
     V = topo[0]
     m = V.shape[0]
     inner = _sizes(n)[0]
-    for c in prange(m):
+    for ch in prange((m + CELLS - 1) // CELLS):
         lk = np.empty(3, dtype=np.int64)
         lam = np.zeros(4, dtype=np.int64)
-        for i in range(inner):
-            y[c * inner + i] = inner_value[c]
-        _boundary_walk(c, n, topo, lk, lam, 1, y, C, np.zeros((1, 1), np.int64),
-                       np.zeros(1, np.int64), np.zeros((1, 1), np.int64), bf, be, bv, C)
+        no_slots, no_count, no_kk = (np.zeros((1, 1), np.int64), np.zeros(1, np.int64),
+                                     np.zeros((1, 1), np.int64))
+        for c in range(ch * CELLS, min(m, (ch + 1) * CELLS)):
+            for i in range(inner):
+                y[c * inner + i] = inner_value[c]
+            _boundary_walk(c, n, topo, lk, lam, 1, y, C, no_slots, no_count, no_kk, bf, be, bv, C)
     accumulate(y, n, topo, masked, bf, be, bv)
 
 
@@ -452,51 +457,52 @@ def prolong_add(xc, xf, n, topo, masked):
     ebase = fbase + nf * face
     vbase = ebase + ne * edge
     size = lattice_size(n)
-    for c in prange(m):
+    for ch in prange((m + CELLS - 1) // CELLS):
         loc = np.empty(size)
         lk = np.empty(3, dtype=np.int64)
         lam = np.zeros(4, dtype=np.int64)
-        _gather(xc, c, n, topo, loc, masked, False, lk, lam)
-        for p1 in range(3, N):
-            for p2 in range(2, p1):
-                out = c * inner + _L(p1 - 3, p2 - 2, 0) - 1
-                for p3 in range(1, p2):
-                    xf[out + p3] += _interp(loc, p1, p2, p3)
-        for v in range(4):
-            f = CF[c, v]
-            if FC[f, 0] != c or (masked and held_f[f]):
-                continue
-            _face_order(V, FV, c, v, f, lk)
-            lam[v] = 0
-            for s in range(N - 2):
-                for v2 in range(s + 1):
-                    lam[lk[0]] = N - s - 2
-                    lam[lk[1]] = s - v2 + 1
-                    lam[lk[2]] = v2 + 1
+        for c in range(ch * CELLS, min(m, (ch + 1) * CELLS)):
+            _gather(xc, c, n, topo, loc, masked, False, lk, lam)
+            for p1 in range(3, N):
+                for p2 in range(2, p1):
+                    out = c * inner + _L(p1 - 3, p2 - 2, 0) - 1
+                    for p3 in range(1, p2):
+                        xf[out + p3] += _interp(loc, p1, p2, p3)
+            for v in range(4):
+                f = CF[c, v]
+                if FC[f, 0] != c or (masked and held_f[f]):
+                    continue
+                _face_order(V, FV, c, v, f, lk)
+                lam[v] = 0
+                for s in range(N - 2):
+                    for v2 in range(s + 1):
+                        lam[lk[0]] = N - s - 2
+                        lam[lk[1]] = s - v2 + 1
+                        lam[lk[2]] = v2 + 1
+                        p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], N)
+                        xf[fbase + f * face + s * (s + 1) // 2 + v2] += _interp(loc, p1, p2, p3)
+            for le in range(6):
+                e = CE[c, le]
+                if ecell[eptr[e]] != c or (masked and held_e[e]):
+                    continue
+                i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
+                la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+                for a in range(4):
+                    lam[a] = 0
+                for t in range(1, N):
+                    lam[lb] = t
+                    lam[la] = N - t
                     p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], N)
-                    xf[fbase + f * face + s * (s + 1) // 2 + v2] += _interp(loc, p1, p2, p3)
-        for le in range(6):
-            e = CE[c, le]
-            if ecell[eptr[e]] != c or (masked and held_e[e]):
-                continue
-            i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
-            la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
-            for a in range(4):
-                lam[a] = 0
-            for t in range(1, N):
-                lam[lb] = t
-                lam[la] = N - t
+                    xf[ebase + e * edge + t - 1] += _interp(loc, p1, p2, p3)
+            for v in range(4):
+                g = V[c, v]
+                if vcell[vptr[g]] != c or (masked and held_v[g]):
+                    continue
+                for a in range(4):
+                    lam[a] = 0
+                lam[v] = N
                 p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], N)
-                xf[ebase + e * edge + t - 1] += _interp(loc, p1, p2, p3)
-        for v in range(4):
-            g = V[c, v]
-            if vcell[vptr[g]] != c or (masked and held_v[g]):
-                continue
-            for a in range(4):
-                lam[a] = 0
-            lam[v] = N
-            p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], N)
-            xf[vbase + g] += _interp(loc, p1, p2, p3)
+                xf[vbase + g] += _interp(loc, p1, p2, p3)
 
 
 @jit()
@@ -522,45 +528,46 @@ def restrict(rf, rc, n, topo, masked, bf, be, bv):
     N = 2 * n
     inner = _sizes(n)[0]
     size = lattice_size(N)
-    for c in prange(m):
+    for ch in prange((m + CELLS - 1) // CELLS):
         loc = np.empty(size)
         lk = np.empty(3, dtype=np.int64)
         lam = np.zeros(4, dtype=np.int64)
-        _gather(rf, c, N, topo, loc, masked, True, lk, lam)
-        for a1 in range(3, n):
-            for a2 in range(2, a1):
-                out = c * inner + _L(a1 - 3, a2 - 2, 0) - 1
-                for a3 in range(1, a2):
-                    rc[out + a3] = _restricted(loc, N, a1, a2, a3)
-        for v in range(4):  # face points in the cell's own order (:func:`_boundary_walk`)
-            for a in range(2, n):
-                for b in range(1, a):
-                    if v == 0:
-                        a1, a2, a3 = n, a, b
-                    elif v == 1:
-                        a1, a2, a3 = a, a, b
-                    elif v == 2:
-                        a1, a2, a3 = a, b, b
-                    else:
-                        a1, a2, a3 = a, b, 0
-                    bf[c, v, (a - 2) * (a - 1) // 2 + b - 1] = _restricted(loc, N, a1, a2, a3)
-        for le in range(6):
-            e = CE[c, le]
-            i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
-            la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
-            for a in range(4):
-                lam[a] = 0
-            for t in range(1, n):
-                lam[lb] = t
-                lam[la] = n - t
+        for c in range(ch * CELLS, min(m, (ch + 1) * CELLS)):
+            _gather(rf, c, N, topo, loc, masked, True, lk, lam)
+            for a1 in range(3, n):
+                for a2 in range(2, a1):
+                    out = c * inner + _L(a1 - 3, a2 - 2, 0) - 1
+                    for a3 in range(1, a2):
+                        rc[out + a3] = _restricted(loc, N, a1, a2, a3)
+            for v in range(4):  # face points in the cell's own order (:func:`_boundary_walk`)
+                for a in range(2, n):
+                    for b in range(1, a):
+                        if v == 0:
+                            a1, a2, a3 = n, a, b
+                        elif v == 1:
+                            a1, a2, a3 = a, a, b
+                        elif v == 2:
+                            a1, a2, a3 = a, b, b
+                        else:
+                            a1, a2, a3 = a, b, 0
+                        bf[c, v, (a - 2) * (a - 1) // 2 + b - 1] = _restricted(loc, N, a1, a2, a3)
+            for le in range(6):
+                e = CE[c, le]
+                i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
+                la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+                for a in range(4):
+                    lam[a] = 0
+                for t in range(1, n):
+                    lam[lb] = t
+                    lam[la] = n - t
+                    a1, a2, a3 = _p_of(lam[0], lam[1], lam[2], n)
+                    be[c, le, t - 1] = _restricted(loc, N, a1, a2, a3)
+            for v in range(4):
+                for a in range(4):
+                    lam[a] = 0
+                lam[v] = n
                 a1, a2, a3 = _p_of(lam[0], lam[1], lam[2], n)
-                be[c, le, t - 1] = _restricted(loc, N, a1, a2, a3)
-        for v in range(4):
-            for a in range(4):
-                lam[a] = 0
-            lam[v] = n
-            a1, a2, a3 = _p_of(lam[0], lam[1], lam[2], n)
-            bv[c, v] = _restricted(loc, N, a1, a2, a3)
+                bv[c, v] = _restricted(loc, N, a1, a2, a3)
     accumulate(rc, n, topo, masked, bf, be, bv)
 
 

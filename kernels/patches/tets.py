@@ -91,7 +91,8 @@ class TetLayout:
     k : int
         Refinements (``n = 2**k`` fine edges per coarse edge).
     held_faces : ndarray (h, 3), optional
-        Coarse boundary faces (point triples, any order) whose fine points are held.
+        Coarse faces (point triples, any order; on the boundary, or inside as a held
+        interface) whose fine points are held.
     """
 
     def __init__(self, coarse, k, held_faces=None):
@@ -135,14 +136,27 @@ class TetLayout:
     def face_index(self, triples, what="face"):
         """The face number of each point triple (any order); names a triple that is not a
         face of the coarse mesh."""
-        t = np.sort(np.asarray(triples, dtype=np.int64).reshape(-1, 3), axis=1)
+        try:
+            t = np.asarray(triples)
+        except Exception as exc:  # ragged lists and the like
+            raise InputError(f"{what}s cannot be read as point triples: {exc}") from None
+        if t.ndim != 2 or t.shape[1] != 3 or (t.size and t.dtype.kind not in "iu"):
+            raise InputError(f"{what}s must be an (h, 3) array of point indices, got "
+                             f"{t.dtype} {t.shape}")
         n = self.coarse.n_points
+        t = t.astype(np.int64)  # a copy: the caller's array is never kept or changed
+        out = np.flatnonzero(((t < 0) | (t >= n)).any(axis=1))
+        if out.size:
+            a, b, c = t[out[0]]
+            raise InputError(f"{what} ({a}, {b}, {c}) is not a face of the coarse mesh (its "
+                             f"points must be in 0..{n - 1})")
+        t = np.sort(t, axis=1)
         keys = (self._faces[:, 0] * n + self._faces[:, 1]) * n + self._faces[:, 2]
         want = (t[:, 0] * n + t[:, 1]) * n + t[:, 2]
         pos = np.minimum(np.searchsorted(keys, want), len(keys) - 1)
         bad = np.flatnonzero(keys[pos] != want)
         if bad.size:
-            a, b, c = t[bad[0]]
+            a, b, c = np.asarray(triples)[bad[0]]
             raise InputError(f"{what} ({a}, {b}, {c}) is not a face of the coarse mesh")
         return pos
 
@@ -333,9 +347,16 @@ class TetMultigrid(Preconditioner):
         self.degree = integer_option(degree, "degree", minimum=1)
         self.nested_cycles = integer_option(nested_cycles, "nested_cycles", minimum=1)
         kappa = np.asarray(kappa, dtype=np.float64)
+        if kappa.shape != (layout.n_cells,):
+            raise InputError(f"kappa must hold one number per coarse cell ({layout.n_cells}), "
+                             f"got shape {kappa.shape}")
         bad = np.flatnonzero(~(np.isfinite(kappa) & (kappa > 0)))
-        if kappa.shape != (layout.n_cells,) or bad.size:
-            raise InputError("kappa must hold one positive finite number per coarse cell")
+        if bad.size:
+            raise InputError(f"kappa must be positive and finite; it is {float(kappa[bad[0]])!r} "
+                             f"on coarse cell {int(bad[0])}")
+        # without held faces the stiffness matrix is singular (constants in its null
+        # space): the grid transfers still serve, a cycle is refused by name
+        self._singular = not layout.held_v.any()
         coarse = layout.coarse
         self.W, self.volumes = class_weights(coarse.points[layout.topo[0]], kappa)
         self.ops, self.smoothers, self.x, self.b, self.work = [], [], [], [], []
@@ -360,7 +381,8 @@ class TetMultigrid(Preconditioner):
         A = assemble_stiffness(coarse, per_cell(kappa))
         system = apply_dirichlet(A, np.zeros(coarse.n_points), fixed)
         self._coarse_free, self._coarse_A = system.free, system.A
-        self._coarse_solver = SparseDirect(system.A) if system.A.shape[0] else None
+        self._coarse_solver = (SparseDirect(system.A) if system.A.shape[0] and not self._singular
+                               else None)
         self._coarse_x = np.empty(coarse.n_points)
         self._coarse_b = np.empty(coarse.n_points)
         self._held0 = fixed
@@ -412,6 +434,9 @@ class TetMultigrid(Preconditioner):
         _t.prolong_add(xc, x, 2**(level - 1), self.layout.topo, True)
 
     def _coarse_solve(self, x, b, zero_guess):
+        if self._singular:
+            raise InputError("the patch multigrid needs held faces: without them the "
+                             "stiffness matrix is singular (constants are in its null space)")
         if self._coarse_solver is None:
             if zero_guess:
                 x[:] = 0.0
