@@ -460,8 +460,7 @@ def test_reasons_the_patch_path_cannot_take_a_problem(square):
     cases = [
         ("triangle and tetrahedral meshes", object(), 2, {}),
         ("on tetrahedra the patch path takes no flux", tets, 2, {"neumann": 1.0}),
-        ("on tetrahedra the patch path takes f as a number", tets, 2,
-         {"f": lambda x, y, z: x}),
+        ("f is not a number", tets, 2, {"f": np.ones(tets.n_points)}),
         ("refine >= 1, got 0", square, 0, {}),
         ("whole number of refinements, got 2.5", square, 2.5, {}),
         ("whole number of refinements, got True", square, True, {}),

@@ -247,6 +247,8 @@ CASES = {
     "tags swapped": dict(f=1.0, dirichlet={"bottom": -0.5, "left": 1.0}),
     "named sides": dict(f={"cold": 3.0, "hot": 1.0}, dirichlet=0.25,
                         dirichlet_on=["left", "right"]),
+    "callable f": dict(f=lambda x, y, z: np.sin(3.0 * x) + y * z, dirichlet={"left": 1.0}),
+    "callable by region": dict(f={"cold": lambda x, y, z: x * y, "hot": 2.0}),
 }
 
 
@@ -389,12 +391,15 @@ def test_whole_solve_same_bits_on_one_and_two_threads(cube):
 def test_the_path_taken(cube):
     assert patch_path_reason(cube, 2) is patch_path_reason(
         cube, 2, f={"hot": 1.0}, coefficient={"cold": 2.0}, dirichlet={"left": 1.0}) is None
-    refused = [("f", dict(f=lambda x, y, z: x)), ("f", dict(f={"hot": lambda x, y, z: x})),
+    assert patch_path_reason(cube, 2, f=lambda x, y, z: x) is None
+    assert patch_path_reason(cube, 2, f={"hot": lambda x, y, z: x, "cold": 1.0}) is None
+    refused = [("f is not", dict(f=np.ones(cube.n_points))),
                ("flux", dict(neumann=1.0)), ("flux", dict(neumann={"right": 1.0}))]
     for want, kw in refused:
         reason = patch_path_reason(cube, 2, **kw)
         assert reason is not None and want in reason, (kw, reason)
-    for kw in ({"preconditioner": "jacobi"}, {"preconditioner": "amg"}, {"f": lambda x, y, z: x},
+    for kw in ({"preconditioner": "jacobi"}, {"preconditioner": "amg"},
+               {"f": np.ones(cube.refine().n_points)},  # per fine point: the stored path
                {"neumann": {"right": 1.0}, "dirichlet_on": ["left"]}):
         sol = hk.solve_poisson(cube, **{"f": 1.0, **kw}, refine=1, rtol=1e-8)
         assert isinstance(sol, hk.PoissonSolution) and not isinstance(sol, PatchSolution), kw

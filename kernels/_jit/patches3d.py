@@ -623,3 +623,74 @@ def gather_cells(x, cells, n, topo, out):
         lk = np.empty(3, dtype=np.int64)
         lam = np.zeros(4, dtype=np.int64)
         _gather(x, cells[q], n, topo, out[q], False, False, lk, lam)
+
+
+@jit()
+def _scatter(loc, c, n, topo, out, bf, be, bv, lam):
+    """Cell ``c``'s whole lattice ``loc`` out: its inside points into ``out``, its faces',
+    edges' and vertices' points into the buffers (in :func:`_boundary_walk`'s order)."""
+    V, CE, EV = topo[0], topo[2], topo[5]
+    inner = _sizes(n)[0]
+    for p1 in range(3, n):
+        for p2 in range(2, p1):
+            src = _L(p1, p2, 1)
+            dst = c * inner + _L(p1 - 3, p2 - 2, 0)
+            for t in range(p2 - 1):
+                out[dst + t] = loc[src + t]
+    for v in range(4):
+        for a in range(2, n):
+            for b in range(1, a):
+                if v == 0:
+                    q = _L(n, a, b)
+                elif v == 1:
+                    q = _L(a, a, b)
+                elif v == 2:
+                    q = _L(a, b, b)
+                else:
+                    q = _L(a, b, 0)
+                bf[c, v, (a - 2) * (a - 1) // 2 + b - 1] = loc[q]
+    for le in range(6):
+        e = CE[c, le]
+        i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
+        la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+        for a in range(4):
+            lam[a] = 0
+        for t in range(1, n):
+            lam[lb] = t
+            lam[la] = n - t
+            p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
+            be[c, le, t - 1] = loc[_L(p1, p2, p3)]
+    for v in range(4):
+        for a in range(4):
+            lam[a] = 0
+        lam[v] = n
+        p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
+        bv[c, v] = loc[_L(p1, p2, p3)]
+
+
+@jit(parallel=True)
+def add_cell_loads(values, corners, cells, n, topo, out, bf, be, bv, total):
+    """Loads given per fine cell, into a level's vector: ``values[q, t, r]`` is what fine
+    cell ``t`` of coarse cell ``cells[q]`` gives its corner ``r``, ``corners[t, r]`` that
+    corner's place in the cell's lattice.  Inside points go to ``out``, shared ones to the
+    buffers; with ``total`` (the last block of cells) the shared points are summed."""
+    size = lattice_size(n)
+    count = cells.shape[0]
+    for ch in prange((count + CELLS - 1) // CELLS):
+        loc = np.empty(size)
+        lam = np.zeros(4, dtype=np.int64)
+        for q in range(ch * CELLS, min(count, (ch + 1) * CELLS)):
+            loc[:] = 0.0
+            for t in range(corners.shape[0]):
+                for r in range(4):
+                    loc[corners[t, r]] += values[q, t, r]
+            _scatter(loc, cells[q], n, topo, out, bf, be, bv, lam)
+    if total:
+        accumulate(out, n, topo, False, bf, be, bv)
+
+
+@jit(parallel=True)
+def subtract_from(b, y):
+    """``y = b - y`` (a residual from a product), in parallel."""
+    for i in prange(y.shape[0]):
+        y[i] = b[i] - y[i]

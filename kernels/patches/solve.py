@@ -94,8 +94,6 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
         return "f is not a number, a callable or {region: number or callable}"
     if mesh.dim == 3 and neumann is not None:
         return "on tetrahedra the patch path takes no flux (neumann) yet"
-    if mesh.dim == 3 and not (f is None or _is_number(f) or _numbers_by_key(f)):
-        return "on tetrahedra the patch path takes f as a number or {region: number}"
     if not (_is_number(dirichlet) or _numbers_by_key(dirichlet)):
         return "dirichlet is not a number or {tag: number}"
     if not (dirichlet_on is None or isinstance(dirichlet_on, str) or (
@@ -240,7 +238,8 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
         return solve_on_tets(coarse, problem, dirichlet, refine, rtol=rtol, atol=atol,
                              maxiter=maxiter, start=start, check=check, monitor=monitor,
                              note=note, memory_check=memory_check, degree=degree,
-                             nested_cycles=nested_cycles, t0=t0, args=args)
+                             nested_cycles=nested_cycles, t0=t0, args=args,
+                             quadrature=quadrature)
     m = coarse.n_triangles
     kappa = _per_cell(problem.coefficient, m, "coefficient")
     source = None if problem.source.kind == "callable" else _per_cell(problem.source, m, "f")

@@ -4,7 +4,8 @@ The 3-D branch of :func:`hatkernels.patches.solve.solve_on_patches`: the coarse 
 parsed once (a :class:`~hatkernels.problem.PoissonProblem` on the coarse mesh), the
 layout and multigrid are :mod:`hatkernels.patches.tets`, CG is the four-vector one of
 :mod:`hatkernels.patches.cg`.  The path takes a coefficient and a source that are
-numbers or ``{region: number}``, and held values that are a number or
+numbers or ``{region: number}`` (the source also a callable ``f(x, y, z)`` or
+``{region: number or callable}``, evaluated on the fly), and held values that are a number or
 ``{tag: number}`` on whole coarse boundary faces; anything else takes the stored path
 (:func:`hatkernels.patches.solve.patch_path_reason` says why).
 """
@@ -18,6 +19,7 @@ import numpy as np
 
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
+from hatkernels.patches.tet_load import callable_tet_load
 from hatkernels.patches.tets import CLASS_CELLS, TetLayout, TetMultigrid, TetOperator
 from hatkernels.perf import peak_rss_bytes
 
@@ -103,7 +105,7 @@ def _per_cell(coef, m, what):
 
 
 def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, start, check,
-                  monitor, note, memory_check, degree, nested_cycles, t0, args):
+                  monitor, note, memory_check, degree, nested_cycles, t0, args, quadrature=2):
     """The 3-D solve of :func:`hatkernels.patches.solve.solve_on_patches` (arguments
     checked there); returns a :class:`~hatkernels.patches.PatchSolution`."""
     from hatkernels.memory import available_bytes
@@ -113,7 +115,8 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
 
     m = coarse.n_cells
     kappa = _per_cell(problem.coefficient, m, "coefficient")
-    source = _per_cell(problem.source, m, "f")
+    callable_f = problem.source.kind == "callable"
+    source = None if callable_f else _per_cell(problem.source, m, "f")
     faces, values, rank = _held_faces(coarse, problem, dirichlet)
     lifted = bool(np.any(values != 0))
     if rtol is None and lifted:
@@ -122,7 +125,8 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
     layout = TetLayout(coarse, refine, held_faces=faces)
     k, n = refine, 2**refine
     size = layout.size(k)
-    need = tet_bytes_per_point(refine, lifted) * size * MARGIN + FIXED_BYTES
+    keeps_b = lifted or callable_f
+    need = tet_bytes_per_point(refine, keeps_b) * size * MARGIN + FIXED_BYTES
     have = available_bytes() if memory_check else None
     if have is not None and need > have:
         raise InputError(
@@ -140,14 +144,18 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
     t2 = time.perf_counter()
     # the load of a source constant on each coarse cell: f times the fine cells' volume
     # over 4 for each fine cell at the point
-    unit = source * M.volumes / (4.0 * n**3)
-    C = unit[:, None] * CLASS_CELLS[None, :]
-    r = layout.class_sum(C, unit * CLASS_CELLS[0], k, masked=False)
+    if callable_f:  # evaluated on the fly, with the stored path's rule
+        r = callable_tet_load(layout, problem.source, quadrature, M.volumes,
+                              np.empty(size))
+    else:
+        unit = source * M.volumes / (4.0 * n**3)
+        C = unit[:, None] * CLASS_CELLS[None, :]
+        r = layout.class_sum(C, unit * CLASS_CELLS[0], k, masked=False)
     g = _lifting(layout, faces, values, rank, problem) if lifted else None
     if g is not None:
         r -= TetOperator(layout, M.W, k, masked=False) @ g
     layout.zero_held(r)
-    kept = r.copy() if lifted else None
+    kept = r.copy() if keeps_b else None  # a callable is not evaluated twice
 
     def remake_b(out):
         if kept is not None:

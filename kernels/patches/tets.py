@@ -391,7 +391,7 @@ class TetMultigrid(Preconditioner):
     def _residual(op):
         def residual(x, b, out):
             op.matvec_into(x, out)
-            np.subtract(b, out, out=out)
+            _t.subtract_from(b, out)
         return residual
 
     def _apply(self, r):
