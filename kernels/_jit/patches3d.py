@@ -38,7 +38,8 @@ from hatkernels._jit import jit
 
 __all__ = ["DIRS", "SLOT_OFFSETS", "kuhn_types", "class_incidence", "lattice_size",
            "level_size", "gather_cells", "product", "class_fill", "accumulate",
-           "prolong_add", "restrict", "places_of"]
+           "prolong_add", "restrict", "places_of", "face_tables", "add_cell_loads",
+           "subtract_from"]
 
 #: The seven edge directions of the Kuhn lattice (every nonzero 0/1 vector).
 DIRS = np.array([[1, 0, 0], [0, 1, 0], [0, 0, 1], [1, 1, 0], [1, 0, 1], [0, 1, 1], [1, 1, 1]],
@@ -50,6 +51,10 @@ CELLS = 16
 _O1 = np.ascontiguousarray(SLOT_OFFSETS[:, 0])
 _O2 = np.ascontiguousarray(SLOT_OFFSETS[:, 1])
 _O3 = np.ascontiguousarray(SLOT_OFFSETS[:, 2])
+#: The orders of a face's three local points (others than the opposite one, increasing):
+#: a cell's face ``v`` with order ``PERMS[i]`` lists them by increasing global number.
+PERMS = np.array([[0, 1, 2], [0, 2, 1], [1, 0, 2], [1, 2, 0], [2, 0, 1], [2, 1, 0]],
+                 dtype=np.int64)
 #: The six edges of a tetrahedron as local point pairs (as in mesh.refine3d).
 PAIRS = np.array([[0, 1], [0, 2], [0, 3], [1, 2], [1, 3], [2, 3]], dtype=np.int64)
 
@@ -125,6 +130,44 @@ def _p_of(lam0, lam1, lam2, n):
 
 
 @jit()
+def face_tables(n):
+    """``(mapl, mapf)``, each (24, C(n-1, 2)): for a cell's face ``v`` whose points come in
+    order ``PERMS[i]`` (row ``6 v + i``), the place in the cell's lattice and in the
+    cell's own face order (:func:`_boundary_walk`) of the face's point ``j`` (the face's
+    own order, by its sorted points)."""
+    face = (n - 1) * (n - 2) // 2
+    mapl = np.zeros((24, max(face, 1)), dtype=np.int64)
+    mapf = np.zeros((24, max(face, 1)), dtype=np.int64)
+    lam = np.zeros(4, dtype=np.int64)
+    others = np.empty(3, dtype=np.int64)
+    for v in range(4):
+        k = 0
+        for a in range(4):
+            if a != v:
+                others[k] = a
+                k += 1
+        for pi in range(6):
+            l0, l1, l2 = others[PERMS[pi, 0]], others[PERMS[pi, 1]], others[PERMS[pi, 2]]
+            for s in range(n - 2):
+                for v2 in range(s + 1):
+                    lam[v] = 0
+                    lam[l0] = n - s - 2
+                    lam[l1] = s - v2 + 1
+                    lam[l2] = v2 + 1
+                    p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
+                    i = s * (s + 1) // 2 + v2
+                    mapl[6 * v + pi, i] = _L(p1, p2, p3)
+                    if v == 0:
+                        a, b = p2, p3
+                    elif v == 1:
+                        a, b = p1, p3
+                    else:
+                        a, b = p1, p2
+                    mapf[6 * v + pi, i] = (a - 2) * (a - 1) // 2 + b - 1
+    return mapl, mapf
+
+
+@jit()
 def _face_order(V, FV, c, v, f, lk):
     """``lk[k]``: the local point of cell ``c`` that is point ``k`` of face ``f`` (sorted)."""
     for k in range(3):
@@ -134,8 +177,9 @@ def _face_order(V, FV, c, v, f, lk):
 
 
 @jit()
-def _gather(x, c, n, topo, loc, masked, owned, lk, lam):
-    """Cell ``c``'s whole lattice from the level vector ``x`` into ``loc``.
+def _gather(x, c, n, topo, mapl, loc, masked, owned, lk, lam):
+    """Cell ``c``'s whole lattice from the level vector ``x`` into ``loc`` (``mapl``: the
+    level's :func:`face_tables`).
 
     ``masked``: held points read as 0.  ``owned``: points on a face, edge or vertex
     that ``c`` is not the first cell of read as 0 (each shared point counted once)."""
@@ -153,18 +197,14 @@ def _gather(x, c, n, topo, loc, masked, owned, lk, lam):
             dst = _L(p1, p2, 1)
             for t in range(p2 - 1):
                 loc[U(dst + t)] = x[U(src + t)]
+    FP = topo[16]
     for v in range(4):
         f = CF[c, v]
-        _face_order(V, FV, c, v, f, lk)
         zero = (masked and held_f[f]) or (owned and FC[f, 0] != c)
-        lam[v] = 0
-        for s in range(n - 2):
-            for v2 in range(s + 1):
-                lam[lk[0]] = n - s - 2
-                lam[lk[1]] = s - v2 + 1
-                lam[lk[2]] = v2 + 1
-                p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
-                loc[_L(p1, p2, p3)] = 0.0 if zero else x[fbase + f * face + s * (s + 1) // 2 + v2]
+        row = 6 * v + FP[c, v]
+        src = fbase + f * face
+        for i in range(face):
+            loc[mapl[row, i]] = 0.0 if zero else x[src + i]
     for le in range(6):
         e = CE[c, le]
         i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
@@ -300,13 +340,18 @@ def _inside_rows(loc, y, start, n, w):
     w0, w1, w2, w3, w4, w5, w6, w7 = w[0], w[1], w[2], w[3], w[4], w[5], w[6], w[7]
     w8, w9, w10, w11, w12, w13, w14 = w[8], w[9], w[10], w[11], w[12], w[13], w[14]
     for p1 in range(3, n):
+        # on a layer of fixed p1 the offsets are linear in p2 (slots 2, 4, 6, 7 step +1,
+        # slots 9, 11, 13, 14 step -1)
+        k1, k2, k3 = _delta(p1, 0, 1), _delta(p1, 0, 2), _delta(p1, 0, 3)
+        k4, k5, k6 = _delta(p1, 0, 4), _delta(p1, 0, 5), _delta(p1, 0, 6)
+        k7, k8, k9 = _delta(p1, 0, 7), _delta(p1, 0, 8), _delta(p1, 0, 9)
+        k10, k11, k12 = _delta(p1, 0, 10), _delta(p1, 0, 11), _delta(p1, 0, 12)
+        k13, k14 = _delta(p1, 0, 13), _delta(p1, 0, 14)
         for p2 in range(2, p1):
             base = _L(p1, p2, 0)
-            d1, d2, d3 = _delta(p1, p2, 1), _delta(p1, p2, 2), _delta(p1, p2, 3)
-            d4, d5, d6 = _delta(p1, p2, 4), _delta(p1, p2, 5), _delta(p1, p2, 6)
-            d7, d8, d9 = _delta(p1, p2, 7), _delta(p1, p2, 8), _delta(p1, p2, 9)
-            d10, d11, d12 = _delta(p1, p2, 10), _delta(p1, p2, 11), _delta(p1, p2, 12)
-            d13, d14 = _delta(p1, p2, 13), _delta(p1, p2, 14)
+            d1, d2, d3, d4, d5 = k1, k2 + p2, k3, k4 + p2, k5
+            d6, d7, d8, d9, d10 = k6 + p2, k7 + p2, k8, k9 - p2, k10
+            d11, d12, d13, d14 = k11 - p2, k12, k13 - p2, k14 - p2
             out = start + _L(p1 - 3, p2 - 2, 0) - 1
             for p3 in range(1, p2):
                 b = base + p3
@@ -319,7 +364,7 @@ def _inside_rows(loc, y, start, n, w):
 
 
 @jit(parallel=True)
-def product(x, y, n, topo, W, scale, slots, n_slots, masked, bf, be, bv):
+def product(x, y, n, topo, W, scale, slots, n_slots, masked, bf, be, bv, mapl, mapf):
     """``y = A x`` on a level: inside points by the stencil, the rest through the buffers
     (then :func:`accumulate`, called here).  ``W[c, Z, slot]`` the class weights at
     ``n = 1``, ``scale`` their factor on this level (``1 / n``)."""
@@ -334,17 +379,17 @@ def product(x, y, n, topo, W, scale, slots, n_slots, masked, bf, be, bv):
         lam = np.zeros(4, dtype=np.int64)
         wc = np.empty((15, 15))
         for c in range(ch * CELLS, min(m, (ch + 1) * CELLS)):
-            _gather(x, c, n, topo, loc, masked, False, lk, lam)
+            _gather(x, c, n, topo, mapl, loc, masked, False, lk, lam)
             for z in range(15):
                 for q in range(n_slots[z]):
                     wc[z, q] = W[c, z, slots[z, q]] * scale
             _inside_rows(loc, y, c * inner, n, wc[0])
             _boundary_walk(c, n, topo, lk, lam, 0, loc, wc, slots, n_slots, kk, bf, be, bv, W[:, :, 0])
-    accumulate(y, n, topo, masked, bf, be, bv)
+    accumulate(y, n, topo, masked, bf, be, bv, mapl, mapf)
 
 
 @jit(parallel=True)
-def class_fill(C, inner_value, y, n, topo, masked, bf, be, bv):
+def class_fill(C, inner_value, y, n, topo, masked, bf, be, bv, mapl, mapf):
     """``y`` at each point: the sum over the cells holding it of ``C[c, Z]`` (``Z`` the
     point's class in ``c``); inside points get ``inner_value[c]``.  Diagonals, row sums
     and loads of constant data are such sums."""
@@ -360,7 +405,7 @@ def class_fill(C, inner_value, y, n, topo, masked, bf, be, bv):
             for i in range(inner):
                 y[c * inner + i] = inner_value[c]
             _boundary_walk(c, n, topo, lk, lam, 1, y, C, no_slots, no_count, no_kk, bf, be, bv, C)
-    accumulate(y, n, topo, masked, bf, be, bv)
+    accumulate(y, n, topo, masked, bf, be, bv, mapl, mapf)
 
 
 @jit()
@@ -388,13 +433,14 @@ def _face_local(v, lk, mu0, mu1, mu2, n):
 
 
 @jit(parallel=True)
-def accumulate(y, n, topo, masked, bf, be, bv):
+def accumulate(y, n, topo, masked, bf, be, bv, mapl, mapf):
     """The faces', edges' and vertices' values of ``y``: their cells' parts added, lower
     cell first (held points 0 when ``masked``)."""
     V, FV, FC, FL = topo[0], topo[3], topo[4], topo[13]
     EV, eptr, ecell, ele = topo[5], topo[6], topo[7], topo[14]
     vptr, vcell, vlv = topo[8], topo[9], topo[15]
     held_f, held_e, held_v = topo[10], topo[11], topo[12]
+    FP = topo[16]
     m, nf, ne, nv = V.shape[0], FV.shape[0], EV.shape[0], vptr.shape[0] - 1
     inner, face, edge = _sizes(n)
     fbase = m * inner
@@ -402,23 +448,17 @@ def accumulate(y, n, topo, masked, bf, be, bv):
     vbase = ebase + ne * edge
     for f in prange(nf):
         c0, c1, l0, l1 = FC[f, 0], FC[f, 1], FL[f, 0], FL[f, 1]
-        lk0 = np.empty(3, dtype=np.int64)
-        lk1 = np.empty(3, dtype=np.int64)
-        _face_order(V, FV, c0, l0, f, lk0)
-        if c1 >= 0:
-            _face_order(V, FV, c1, l1, f, lk1)
+        r0 = 6 * l0 + FP[c0, l0]
+        r1 = 6 * l1 + FP[c1, l1] if c1 >= 0 else 0
         zero = masked and held_f[f]
-        for s in range(n - 2):
-            for v2 in range(s + 1):
-                i = s * (s + 1) // 2 + v2
-                if zero:
-                    y[fbase + f * face + i] = 0.0
-                    continue
-                mu0, mu1, mu2 = n - s - 2, s - v2 + 1, v2 + 1
-                acc = bf[c0, l0, _face_local(l0, lk0, mu0, mu1, mu2, n)]
-                if c1 >= 0:
-                    acc += bf[c1, l1, _face_local(l1, lk1, mu0, mu1, mu2, n)]
-                y[fbase + f * face + i] = acc
+        for i in range(face):
+            if zero:
+                y[fbase + f * face + i] = 0.0
+                continue
+            acc = bf[c0, l0, mapf[r0, i]]
+            if c1 >= 0:
+                acc += bf[c1, l1, mapf[r1, i]]
+            y[fbase + f * face + i] = acc
     for e in prange(ne):
         for i in range(edge):
             acc = 0.0
@@ -444,7 +484,7 @@ def _interp(loc, p1, p2, p3):
 
 
 @jit(parallel=True)
-def prolong_add(xc, xf, n, topo, masked):
+def prolong_add(xc, xf, n, topo, masked, mapl):
     """``xf += P xc`` from the level with ``n`` subdivisions to the one with ``2 n``: each
     cell writes its inside points and the shared points it is the first cell of."""
     V, CF, CE, FV, FC, EV = topo[0], topo[1], topo[2], topo[3], topo[4], topo[5]
@@ -462,7 +502,7 @@ def prolong_add(xc, xf, n, topo, masked):
         lk = np.empty(3, dtype=np.int64)
         lam = np.zeros(4, dtype=np.int64)
         for c in range(ch * CELLS, min(m, (ch + 1) * CELLS)):
-            _gather(xc, c, n, topo, loc, masked, False, lk, lam)
+            _gather(xc, c, n, topo, mapl, loc, masked, False, lk, lam)
             for p1 in range(3, N):
                 for p2 in range(2, p1):
                     out = c * inner + _L(p1 - 3, p2 - 2, 0) - 1
@@ -519,7 +559,7 @@ def _restricted(loc, N, a1, a2, a3):
 
 
 @jit(parallel=True)
-def restrict(rf, rc, n, topo, masked, bf, be, bv):
+def restrict(rf, rc, n, topo, masked, fine_mapl, bf, be, bv, mapl, mapf):
     """``rc = P^T rf`` to the level with ``n`` subdivisions from the one with ``2 n``:
     each cell reads the fine points it owns (shared ones by their first cell) and
     adds up its coarse points' parts; the shared coarse points through the buffers."""
@@ -533,7 +573,7 @@ def restrict(rf, rc, n, topo, masked, bf, be, bv):
         lk = np.empty(3, dtype=np.int64)
         lam = np.zeros(4, dtype=np.int64)
         for c in range(ch * CELLS, min(m, (ch + 1) * CELLS)):
-            _gather(rf, c, N, topo, loc, masked, True, lk, lam)
+            _gather(rf, c, N, topo, fine_mapl, loc, masked, True, lk, lam)
             for a1 in range(3, n):
                 for a2 in range(2, a1):
                     out = c * inner + _L(a1 - 3, a2 - 2, 0) - 1
@@ -568,7 +608,7 @@ def restrict(rf, rc, n, topo, masked, bf, be, bv):
                 lam[v] = n
                 a1, a2, a3 = _p_of(lam[0], lam[1], lam[2], n)
                 bv[c, v] = _restricted(loc, N, a1, a2, a3)
-    accumulate(rc, n, topo, masked, bf, be, bv)
+    accumulate(rc, n, topo, masked, bf, be, bv, mapl, mapf)
 
 
 @jit()
@@ -617,12 +657,12 @@ def places_of(cells, lams, n, topo, out):
 
 
 @jit(parallel=True)
-def gather_cells(x, cells, n, topo, out):
+def gather_cells(x, cells, n, topo, mapl, out):
     """``out[q]``: the whole lattice of cell ``cells[q]`` (for output and tests)."""
     for q in prange(cells.shape[0]):
         lk = np.empty(3, dtype=np.int64)
         lam = np.zeros(4, dtype=np.int64)
-        _gather(x, cells[q], n, topo, out[q], False, False, lk, lam)
+        _gather(x, cells[q], n, topo, mapl, out[q], False, False, lk, lam)
 
 
 @jit()
@@ -669,7 +709,7 @@ def _scatter(loc, c, n, topo, out, bf, be, bv, lam):
 
 
 @jit(parallel=True)
-def add_cell_loads(values, corners, cells, n, topo, out, bf, be, bv, total):
+def add_cell_loads(values, corners, cells, n, topo, out, bf, be, bv, mapl, mapf, total):
     """Loads given per fine cell, into a level's vector: ``values[q, t, r]`` is what fine
     cell ``t`` of coarse cell ``cells[q]`` gives its corner ``r``, ``corners[t, r]`` that
     corner's place in the cell's lattice.  Inside points go to ``out``, shared ones to the
@@ -686,7 +726,7 @@ def add_cell_loads(values, corners, cells, n, topo, out, bf, be, bv, total):
                     loc[corners[t, r]] += values[q, t, r]
             _scatter(loc, cells[q], n, topo, out, bf, be, bv, lam)
     if total:
-        accumulate(out, n, topo, False, bf, be, bv)
+        accumulate(out, n, topo, False, bf, be, bv, mapl, mapf)
 
 
 @jit(parallel=True)

@@ -53,7 +53,7 @@ def callable_tet_load(layout, coef, quadrature, volumes, out):
     mu = np.einsum("qr,trs->tqs", rule, lam_t)  # (T, Q, 4) on the coarse cell
     weights = rule * w[:, None]  # (Q, 4): w_q lam_q,r
     pts = layout.coarse.points[layout.topo[0]]  # (m, 4, 3) in Bey's order
-    bf, be, bv = layout.buffers(k)
+    buffers = layout.buffers(k)
     m = layout.n_cells
     block = max(1, _BLOCK_CELLS // len(lam_t))
     for lo in range(0, m, block):
@@ -64,6 +64,6 @@ def callable_tet_load(layout, coef, quadrature, volumes, out):
                           owner="coarse cell")
         values = np.einsum("ctq,qr->ctr", f.reshape(xyz.shape[1:]), weights)
         values *= (volumes[cells] / n**3)[:, None, None]
-        _t.add_cell_loads(values, corners, cells, n, layout.topo, out, bf, be, bv,
+        _t.add_cell_loads(values, corners, cells, n, layout.topo, out, *buffers,
                           lo + block >= m)
     return out

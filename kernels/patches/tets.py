@@ -128,10 +128,20 @@ class TetLayout:
             tri = faces[f]
             pairs = np.concatenate([tri[:, [0, 1]], tri[:, [0, 2]], tri[:, [1, 2]]])
             self.held_e[self._edge_index(EV, nv, pairs)] = True
+        # the order of each cell face's points by global number (a row of PERMS)
+        others = np.array([[a for a in range(4) if a != v] for v in range(4)])
+        order = np.argsort(V[:, others], axis=2)  # (m, 4, 3)
+        codes = {tuple(p): i for i, p in enumerate(_t.PERMS.tolist())}
+        key = order[..., 0] * 9 + order[..., 1] * 3 + order[..., 2]
+        lookup = np.zeros(27, dtype=np.int64)
+        for p, i in codes.items():
+            lookup[p[0] * 9 + p[1] * 3 + p[2]] = i
+        FP = np.ascontiguousarray(lookup[key])
         self.topo = (V, cell_faces, CE, faces, FC, EV, eptr, ecell, vptr, vcell,
-                     self.held_f, self.held_e, self.held_v, FL, ele, vlv)
+                     self.held_f, self.held_e, self.held_v, FL, ele, vlv, FP)
         self.n_cells, self.n_faces, self.n_edges, self.n_vertices = m, nf, EV.shape[0], nv
         self._buffers = None
+        self._maps = {}
 
     def face_index(self, triples, what="face"):
         """The face number of each point triple (any order); names a triple that is not a
@@ -172,8 +182,9 @@ class TetLayout:
                              self.n_vertices)
 
     def buffers(self, level):
-        """Per-cell buffers of the shared points' parts for ``level``: views into arrays
-        sized for the finest level, shared by every level (no two kernels run at once)."""
+        """Per-cell buffers of the shared points' parts for ``level`` (views into arrays
+        sized for the finest level, shared by every level: no two kernels run at once) and
+        the level's face tables."""
         if self._buffers is None:
             n = 2**max(self.k, 1)
             self._buffers = (np.empty(self.n_cells * 4 * (n - 1) * (n - 2) // 2),
@@ -183,7 +194,14 @@ class TetLayout:
         bf, be, bv = self._buffers
         face = max((n - 1) * (n - 2) // 2, 0)
         return (bf[: self.n_cells * 4 * face].reshape(self.n_cells, 4, face),
-                be[: self.n_cells * 6 * (n - 1)].reshape(self.n_cells, 6, n - 1), bv)
+                be[: self.n_cells * 6 * (n - 1)].reshape(self.n_cells, 6, n - 1), bv,
+                *self.face_maps(level))
+
+    def face_maps(self, level):
+        """The level's :func:`hatkernels._jit.patches3d.face_tables` (made once)."""
+        if level not in self._maps:
+            self._maps[level] = _t.face_tables(2**level)
+        return self._maps[level]
 
     def class_sum(self, C, inner, level, masked=True):
         """The level vector whose value at each point is the sum, over the coarse cells
@@ -282,7 +300,8 @@ class TetLayout:
                       for c in range(b + 1)], dtype=np.int64)
         lam = np.stack([n - p[:, 0], p[:, 0] - p[:, 1], p[:, 1] - p[:, 2], p[:, 2]], axis=1)
         loc = np.empty((1, _t.lattice_size(n)))
-        _t.gather_cells(x, np.array([int(cell)], dtype=np.int64), n, self.topo, loc)
+        _t.gather_cells(x, np.array([int(cell)], dtype=np.int64), n, self.topo,
+                        self.face_maps(level)[0], loc)
         return lam, loc[0]
 
 
@@ -428,10 +447,11 @@ class TetMultigrid(Preconditioner):
     def _restrict(self, level, r):
         _, bc = self._below(level)
         _t.restrict(r, bc, 2**(level - 1), self.layout.topo, True,
-                    *self.layout.buffers(level - 1))
+                    self.layout.face_maps(level)[0], *self.layout.buffers(level - 1))
 
     def _prolong_add(self, level, xc, x):
-        _t.prolong_add(xc, x, 2**(level - 1), self.layout.topo, True)
+        _t.prolong_add(xc, x, 2**(level - 1), self.layout.topo, True,
+                       self.layout.face_maps(level - 1)[0])
 
     def _coarse_solve(self, x, b, zero_guess):
         if self._singular:
