@@ -78,9 +78,10 @@ def solve_poisson(
     refine : int
         Solve on ``mesh`` refined this many times (:meth:`Mesh.refine`); ``.u``
         is then in the numbering of the refined mesh.  With the default
-        preconditioner, triangles and data the patch path takes (numbers or
-        ``{region: number}`` for ``f`` and ``coefficient``, callable sources, a
-        number or ``{tag: number}`` held on whole boundary sides and as a flux),
+        preconditioner, triangles or tetrahedra and data the patch path takes
+        (numbers or ``{region: number}`` for ``f`` and ``coefficient``, callable
+        sources, a number or ``{tag: number}`` held on whole boundary sides and,
+        on triangles, as a flux),
         the refined mesh is never stored: the solve runs patch by patch on the
         coarse mesh (:mod:`hatkernels.patches`, docs/patches.md) and returns a
         :class:`~hatkernels.patches.PatchSolution` (``.mesh`` is built only if

@@ -23,12 +23,13 @@ import numpy as np
 from hatkernels._jit import patches as _p
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
-from hatkernels.patches.layout import PatchLayout, RefinedMeshOnDemand
+from hatkernels.patches.layout import PatchLayout
 from hatkernels.patches.load import callable_load
 from hatkernels.patches.multigrid import PatchMultigrid, PatchOperator
+from hatkernels.patches.solution import FIXED_BYTES, MARGIN, PatchSolution
+from hatkernels.patches.tet_solve import solve_on_tets
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.problem import PoissonProblem
-from hatkernels.stats import PoissonSolution
 
 __all__ = ["PatchSolution", "bytes_per_point", "patch_path_reason", "solve_on_patches"]
 
@@ -46,10 +47,6 @@ def bytes_per_point(single, keeps_b=False):
     return CG_BYTES + 8 * bool(keeps_b) + 2 * word + 2 * word / 3.0
 
 
-# the estimate is measured, not a guess (bench/patches.py): a small margin, and the
-# interpreter with its libraries and the coarse mesh's arrays as a fixed amount
-MARGIN = 1.02
-FIXED_BYTES = 2**29
 
 
 def _need(single, keeps_b, size):
@@ -101,60 +98,6 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
             and all(isinstance(k, str) for k in dirichlet_on))):
         return "dirichlet_on is not 'boundary' or boundary tags"
     return None
-
-
-class PatchSolution(RefinedMeshOnDemand, PoissonSolution):
-    """What :func:`solve_on_patches` found: a :class:`~hatkernels.PoissonSolution` whose
-    ``u``, ``mesh`` and ``problem`` are made on first use.
-
-    Attributes
-    ----------
-    values : ndarray
-        The solution in the patch layout (:mod:`hatkernels._jit.patches`): every
-        fine point once, no fine mesh needed.
-    layout : PatchLayout
-    stats : SolveStats
-    u : ndarray
-        The solution in the numbering of ``coarse.refine()`` repeated ``k`` times,
-        made on first use (one more vector of the fine size).
-    mesh : Mesh
-        The refined mesh, built on first use (it costs what the patch path saves).
-    problem : PoissonProblem
-        The problem on :attr:`mesh`, built on first use.
-    """
-
-    def __init__(self, values, layout, stats, args):  # u, mesh, problem: properties here
-        self.values, self.layout, self.stats = values, layout, stats
-        self._args = args
-        self._u = self._mesh = self._problem = None
-
-    @property
-    def converged(self):
-        return self.stats.converged
-
-    @property
-    def u(self):
-        if self._u is None:
-            if self.layout.coarse.dim == 3:  # places found from the refined mesh's cells
-                self._u = self.layout.to_refined(self.values, mesh=self.mesh)
-            else:
-                self._u = self.layout.to_refined(self.values)
-        return self._u
-
-    @property
-    def problem(self):
-        if self._problem is None:
-            self._problem = PoissonProblem(self.mesh, **self._args)
-        return self._problem
-
-    def patch(self, cell):
-        """``(lam, values)`` on coarse ``cell`` (:meth:`PatchLayout.patch`)."""
-        return self.layout.patch(self.values, cell)
-
-    def __repr__(self):
-        s = self.stats
-        return (f"PatchSolution({s.unknowns} unknowns, {s.iterations} iterations, "
-                f"converged={s.converged}, {s.timings['total']:.3g} s)")
 
 
 def _held(coarse, problem, dirichlet):
@@ -233,8 +176,6 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
                 neumann=neumann, quadrature=quadrature)
     problem = PoissonProblem(coarse, **args)
     if coarse.dim == 3:
-        from hatkernels.patches.tet_solve import solve_on_tets
-
         return solve_on_tets(coarse, problem, dirichlet, refine, rtol=rtol, atol=atol,
                              maxiter=maxiter, start=start, check=check, monitor=monitor,
                              note=note, memory_check=memory_check, degree=degree,

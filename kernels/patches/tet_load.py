@@ -15,6 +15,7 @@ import functools
 import numpy as np
 
 from hatkernels._jit import patches3d as _t
+from hatkernels._jit import patches3d_moves as _m
 from hatkernels.quadrature import tetrahedron_rule
 
 __all__ = ["callable_tet_load"]
@@ -64,6 +65,6 @@ def callable_tet_load(layout, coef, quadrature, volumes, out):
                           owner="coarse cell")
         values = np.einsum("ctq,qr->ctr", f.reshape(xyz.shape[1:]), weights)
         values *= (volumes[cells] / n**3)[:, None, None]
-        _t.add_cell_loads(values, corners, cells, n, layout.topo, out, *buffers,
+        _m.add_cell_loads(values, corners, cells, n, layout.topo, out, *buffers,
                           lo + block >= m)
     return out

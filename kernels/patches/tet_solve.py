@@ -19,6 +19,7 @@ import numpy as np
 
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
+from hatkernels.patches.solution import FIXED_BYTES, MARGIN, PatchSolution
 from hatkernels.patches.tet_load import callable_tet_load
 from hatkernels.patches.tets import CLASS_CELLS, TetLayout, TetMultigrid, TetOperator
 from hatkernels.perf import peak_rss_bytes
@@ -109,7 +110,6 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
     """The 3-D solve of :func:`hatkernels.patches.solve.solve_on_patches` (arguments
     checked there); returns a :class:`~hatkernels.patches.PatchSolution`."""
     from hatkernels.memory import available_bytes
-    from hatkernels.patches.solve import FIXED_BYTES, MARGIN, PatchSolution
     from hatkernels.solver import report_convergence
     from hatkernels.stats import SolveStats
 

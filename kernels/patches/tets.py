@@ -17,6 +17,7 @@ import numpy as np
 from scipy.sparse.linalg import LinearOperator
 
 from hatkernels._jit import patches3d as _t
+from hatkernels._jit import patches3d_moves as _m
 from hatkernels.assembly import assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.checks import integer_option
@@ -198,7 +199,7 @@ class TetLayout:
                 *self.face_maps(level))
 
     def face_maps(self, level):
-        """The level's :func:`hatkernels._jit.patches3d.face_tables` (made once)."""
+        """The level's ``face_tables`` (:mod:`hatkernels._jit.patches3d`), made once."""
         if level not in self._maps:
             self._maps[level] = _t.face_tables(2**level)
         return self._maps[level]
@@ -256,7 +257,7 @@ class TetLayout:
         pi = np.rint(p).astype(np.int64)
         lam = np.stack([n - pi[:, 0], pi[:, 0] - pi[:, 1], pi[:, 1] - pi[:, 2], pi[:, 2]], axis=1)
         out = np.empty(mesh.n_points, dtype=np.int64)
-        _t.places_of(coarse_cell, np.ascontiguousarray(lam), n, self.topo, out)
+        _m.places_of(coarse_cell, np.ascontiguousarray(lam), n, self.topo, out)
         return out
 
 
@@ -300,7 +301,7 @@ class TetLayout:
                       for c in range(b + 1)], dtype=np.int64)
         lam = np.stack([n - p[:, 0], p[:, 0] - p[:, 1], p[:, 1] - p[:, 2], p[:, 2]], axis=1)
         loc = np.empty((1, _t.lattice_size(n)))
-        _t.gather_cells(x, np.array([int(cell)], dtype=np.int64), n, self.topo,
+        _m.gather_cells(x, np.array([int(cell)], dtype=np.int64), n, self.topo,
                         self.face_maps(level)[0], loc)
         return lam, loc[0]
 
@@ -410,7 +411,7 @@ class TetMultigrid(Preconditioner):
     def _residual(op):
         def residual(x, b, out):
             op.matvec_into(x, out)
-            _t.subtract_from(b, out)
+            _m.subtract_from(b, out)
         return residual
 
     def _apply(self, r):
@@ -446,11 +447,11 @@ class TetMultigrid(Preconditioner):
 
     def _restrict(self, level, r):
         _, bc = self._below(level)
-        _t.restrict(r, bc, 2**(level - 1), self.layout.topo, True,
+        _m.restrict(r, bc, 2**(level - 1), self.layout.topo, True,
                     self.layout.face_maps(level)[0], *self.layout.buffers(level - 1))
 
     def _prolong_add(self, level, xc, x):
-        _t.prolong_add(xc, x, 2**(level - 1), self.layout.topo, True,
+        _m.prolong_add(xc, x, 2**(level - 1), self.layout.topo, True,
                        self.layout.face_maps(level - 1)[0])
 
     def _coarse_solve(self, x, b, zero_guess):

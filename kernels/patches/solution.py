@@ -1,0 +1,68 @@
+"""What the patch path returns (2-D and 3-D alike), and its memory estimate's margins."""
+
+from __future__ import annotations
+
+from hatkernels.patches.layout import RefinedMeshOnDemand
+from hatkernels.problem import PoissonProblem
+from hatkernels.stats import PoissonSolution
+
+__all__ = ["PatchSolution", "MARGIN", "FIXED_BYTES"]
+
+# the estimate is measured, not a guess (bench/patches.py): a small margin, and the
+# interpreter with its libraries and the coarse mesh's arrays as a fixed amount
+MARGIN = 1.02
+FIXED_BYTES = 2**29
+
+
+class PatchSolution(RefinedMeshOnDemand, PoissonSolution):
+    """What :func:`~hatkernels.patches.solve_on_patches` found: a :class:`~hatkernels.PoissonSolution` whose
+    ``u``, ``mesh`` and ``problem`` are made on first use.
+
+    Attributes
+    ----------
+    values : ndarray
+        The solution in the patch layout (:mod:`hatkernels._jit.patches`): every
+        fine point once, no fine mesh needed.
+    layout : PatchLayout or TetLayout
+    stats : SolveStats
+    u : ndarray
+        The solution in the numbering of ``coarse.refine()`` repeated ``k`` times,
+        made on first use (one more vector of the fine size).
+    mesh : Mesh
+        The refined mesh, built on first use (it costs what the patch path saves).
+    problem : PoissonProblem
+        The problem on :attr:`mesh`, built on first use.
+    """
+
+    def __init__(self, values, layout, stats, args):  # u, mesh, problem: properties here
+        self.values, self.layout, self.stats = values, layout, stats
+        self._args = args
+        self._u = self._mesh = self._problem = None
+
+    @property
+    def converged(self):
+        return self.stats.converged
+
+    @property
+    def u(self):
+        if self._u is None:
+            if self.layout.coarse.dim == 3:  # places found from the refined mesh's cells
+                self._u = self.layout.to_refined(self.values, mesh=self.mesh)
+            else:
+                self._u = self.layout.to_refined(self.values)
+        return self._u
+
+    @property
+    def problem(self):
+        if self._problem is None:
+            self._problem = PoissonProblem(self.mesh, **self._args)
+        return self._problem
+
+    def patch(self, cell):
+        """``(lam, values)`` on coarse ``cell`` (:meth:`PatchLayout.patch`)."""
+        return self.layout.patch(self.values, cell)
+
+    def __repr__(self):
+        s = self.stats
+        return (f"PatchSolution({s.unknowns} unknowns, {s.iterations} iterations, "
+                f"converged={s.converged}, {s.timings['total']:.3g} s)")
