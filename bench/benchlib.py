@@ -117,3 +117,33 @@ def refined_rectangle(n):
     for _ in range(levels):
         mesh = mesh.refine()
     return mesh
+
+
+def worker_result(run, *args):
+    """In a worker process: ``run(*args)``, printed as one ``RESULT`` line of JSON (an
+    error is reported, not hidden: the table says why a case is missing)."""
+    import json
+
+    try:
+        result = run(*args)
+    except MemoryError:
+        result = {"error": "does not fit in memory"}
+    except Exception as exc:
+        result = {"error": f"{type(exc).__name__}: {exc}"}
+    print("RESULT " + json.dumps(result), flush=True)
+
+
+def run_worker(script, *args):
+    """Run ``script --worker *args`` in a fresh process and return its ``RESULT``."""
+    import json
+    import subprocess
+    import sys
+
+    run = subprocess.run([sys.executable, script, "--worker", *map(str, args)],
+                         capture_output=True, text=True)
+    for line in run.stdout.splitlines():
+        if line.startswith("RESULT "):
+            return json.loads(line[7:])
+    tail = (run.stderr or run.stdout)[-300:]
+    return {"error": f"the worker stopped (code {run.returncode}, killed if -9: out of "
+                     f"memory): {tail}"}

@@ -35,11 +35,11 @@ from __future__ import annotations
 import argparse
 import json
 import math
-import subprocess
 import sys
 import time
 
 import numpy as np
+from benchlib import run_worker, worker_result
 
 from hatkernels._output import write_json
 
@@ -219,24 +219,11 @@ def warm_up(path):
 
 def worker(path, c, k):
     warm_up(path)
-    try:
-        result = WORKERS[path](c, k)
-    except MemoryError:
-        result = {"error": "does not fit in memory"}
-    except Exception as exc:  # reported, not hidden: the table says why a case is missing
-        result = {"error": f"{type(exc).__name__}: {exc}"}
-    print("RESULT " + json.dumps(result), flush=True)
+    worker_result(WORKERS[path], c, k)
 
 
 def case(path, c, k):
-    run = subprocess.run([sys.executable, __file__, "--worker", path, str(c), str(k)],
-                         capture_output=True, text=True)
-    for line in run.stdout.splitlines():
-        if line.startswith("RESULT "):
-            return json.loads(line[7:])
-    tail = (run.stderr or run.stdout)[-300:]
-    return {"error": f"the worker stopped (code {run.returncode}, killed if -9: out of "
-                     f"memory): {tail}"}
+    return run_worker(__file__, path, c, k)
 
 
 def fits(path, c, k, have):

@@ -30,6 +30,7 @@ from hatkernels.boundary import apply_dirichlet
 from hatkernels.checks import integer_option
 from hatkernels.coefficients import per_triangle
 from hatkernels.errors import InputError
+from hatkernels.patches.solution import checked_kappa
 from hatkernels.precond.direct import SparseDirect, coarse_correction
 from hatkernels.precond.registry import Preconditioner
 
@@ -250,14 +251,7 @@ class PatchMultigrid(Preconditioner):
         super().__init__(layout.size(k))
         self.degree = integer_option(degree, "degree", minimum=1)
         self.nested_cycles = integer_option(nested_cycles, "nested_cycles", minimum=1)
-        kappa = np.asarray(kappa, dtype=np.float64)
-        if kappa.shape != (layout.n_cells,):
-            raise InputError(f"kappa must hold one number per coarse cell ({layout.n_cells}), "
-                             f"got shape {kappa.shape}")
-        bad = np.flatnonzero(~(np.isfinite(kappa) & (kappa > 0)))
-        if bad.size:
-            raise InputError(f"kappa must be positive and finite; it is {float(kappa[bad[0]])!r} on "
-                             f"coarse cell {int(bad[0])}")
+        kappa = checked_kappa(kappa, layout.n_cells)
         stiffness = element_stiffness(layout.coarse, kappa)
         if sigma is None:
             # the 2-D stiffness stencils do not change with the level, and Gershgorin's

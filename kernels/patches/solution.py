@@ -1,17 +1,46 @@
-"""What the patch path returns (2-D and 3-D alike), and its memory estimate's margins."""
+"""What the patch path returns (2-D and 3-D alike), and the checks both dimensions share:
+the memory estimate's margins and refusal, the coefficient per coarse cell."""
 
 from __future__ import annotations
 
+import numpy as np
+
+from hatkernels.errors import InputError
 from hatkernels.patches.layout import RefinedMeshOnDemand
 from hatkernels.problem import PoissonProblem
 from hatkernels.stats import PoissonSolution
 
-__all__ = ["PatchSolution", "MARGIN", "FIXED_BYTES"]
+__all__ = ["PatchSolution", "MARGIN", "FIXED_BYTES", "check_memory", "checked_kappa"]
 
 # the estimate is measured, not a guess (bench/patches.py): a small margin, and the
 # interpreter with its libraries and the coarse mesh's arrays as a fixed amount
 MARGIN = 1.02
 FIXED_BYTES = 2**29
+
+
+def check_memory(size, need, have):
+    """Refuse, before allocating, a solve on ``size`` fine points that needs ``need``
+    bytes where ``have`` are available (None: not known, not checked)."""
+    if have is not None and need > have:
+        raise InputError(
+            f"not enough memory: the patch path on {size:,} fine points needs about "
+            f"{need / 2**30:.1f} GiB ({need / size:.0f} bytes per point), but "
+            f"{have / 2**30:.1f} GiB are available; refine less, or pass "
+            f"memory_check=False to try anyway")
+
+
+def checked_kappa(kappa, n_cells):
+    """``kappa`` as float64, one positive finite number per coarse cell; errors name the
+    cell."""
+    kappa = np.asarray(kappa, dtype=np.float64)
+    if kappa.shape != (n_cells,):
+        raise InputError(f"kappa must hold one number per coarse cell ({n_cells}), "
+                         f"got shape {kappa.shape}")
+    bad = np.flatnonzero(~(np.isfinite(kappa) & (kappa > 0)))
+    if bad.size:
+        raise InputError(f"kappa must be positive and finite; it is {float(kappa[bad[0]])!r} on "
+                         f"coarse cell {int(bad[0])}")
+    return kappa
 
 
 class PatchSolution(RefinedMeshOnDemand, PoissonSolution):

@@ -26,7 +26,7 @@ from hatkernels.patches.cg import lean_cg
 from hatkernels.patches.layout import PatchLayout
 from hatkernels.patches.load import callable_load
 from hatkernels.patches.multigrid import PatchMultigrid, PatchOperator
-from hatkernels.patches.solution import FIXED_BYTES, MARGIN, PatchSolution
+from hatkernels.patches.solution import FIXED_BYTES, MARGIN, PatchSolution, check_memory
 from hatkernels.patches.tet_solve import solve_on_tets
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.problem import PoissonProblem
@@ -197,12 +197,7 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
     if single is None:
         single = have is not None and _need(False, keeps_b, size) > have
     need = _need(single, keeps_b, size)
-    if memory_check and have is not None and need > have:
-        raise InputError(
-            f"not enough memory: the patch path on {size:,} fine points needs about "
-            f"{need / 2**30:.1f} GiB ({need / size:.0f} bytes per point), but "
-            f"{have / 2**30:.1f} GiB are available; refine less, or pass "
-            f"memory_check=False to try anyway")
+    check_memory(size, need, have if memory_check else None)
     timings = {"boundary": time.perf_counter() - t0}
 
     note("assemble")

@@ -19,7 +19,7 @@ import numpy as np
 
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
-from hatkernels.patches.solution import FIXED_BYTES, MARGIN, PatchSolution
+from hatkernels.patches.solution import FIXED_BYTES, MARGIN, PatchSolution, check_memory
 from hatkernels.patches.tet_load import callable_tet_load
 from hatkernels.patches.tets import CLASS_CELLS, TetLayout, TetMultigrid, TetOperator
 from hatkernels.perf import peak_rss_bytes
@@ -127,13 +127,7 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
     size = layout.size(k)
     keeps_b = lifted or callable_f
     need = tet_bytes_per_point(refine, keeps_b) * size * MARGIN + FIXED_BYTES
-    have = available_bytes() if memory_check else None
-    if have is not None and need > have:
-        raise InputError(
-            f"not enough memory: the patch path on {size:,} fine points needs about "
-            f"{need / 2**30:.1f} GiB ({need / size:.0f} bytes per point), but "
-            f"{have / 2**30:.1f} GiB are available; refine less, or pass "
-            f"memory_check=False to try anyway")
+    check_memory(size, need, available_bytes() if memory_check else None)
     timings = {"boundary": time.perf_counter() - t0}
 
     note("assemble")
@@ -161,7 +155,7 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
         if kept is not None:
             out[:] = kept
         else:
-            out[:] = layout.class_sum(C, unit * CLASS_CELLS[0], k, masked=True)
+            layout.class_sum(C, unit * CLASS_CELLS[0], k, masked=True, out=out)
 
     timings["assemble"] = time.perf_counter() - t2
     note("solve")

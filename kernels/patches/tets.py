@@ -25,6 +25,7 @@ from hatkernels.coefficients import per_cell
 from hatkernels.errors import InputError
 from hatkernels.mesh.refine3d import bey_order, unique_edges
 from hatkernels.mesh.tetrahedra import face_topology
+from hatkernels.patches.solution import checked_kappa
 from hatkernels.precond.chebyshev import ChebyshevSmoother
 from hatkernels.precond.direct import SparseDirect, coarse_correction
 from hatkernels.precond.registry import Preconditioner
@@ -204,10 +205,11 @@ class TetLayout:
             self._maps[level] = _t.face_tables(2**level)
         return self._maps[level]
 
-    def class_sum(self, C, inner, level, masked=True):
+    def class_sum(self, C, inner, level, masked=True, out=None):
         """The level vector whose value at each point is the sum, over the coarse cells
-        holding it, of ``C[c, Z]`` (``Z`` its class there); ``inner[c]`` inside cell ``c``."""
-        y = np.empty(self.size(level))
+        holding it, of ``C[c, Z]`` (``Z`` its class there); ``inner[c]`` inside cell ``c``
+        (into ``out`` when given)."""
+        y = np.empty(self.size(level)) if out is None else out
         _t.class_fill(np.ascontiguousarray(C, dtype=np.float64),
                       np.ascontiguousarray(inner, dtype=np.float64), y, 2**level, self.topo,
                       masked, *self.buffers(level))
@@ -366,14 +368,7 @@ class TetMultigrid(Preconditioner):
         super().__init__(layout.size(k))
         self.degree = integer_option(degree, "degree", minimum=1)
         self.nested_cycles = integer_option(nested_cycles, "nested_cycles", minimum=1)
-        kappa = np.asarray(kappa, dtype=np.float64)
-        if kappa.shape != (layout.n_cells,):
-            raise InputError(f"kappa must hold one number per coarse cell ({layout.n_cells}), "
-                             f"got shape {kappa.shape}")
-        bad = np.flatnonzero(~(np.isfinite(kappa) & (kappa > 0)))
-        if bad.size:
-            raise InputError(f"kappa must be positive and finite; it is {float(kappa[bad[0]])!r} "
-                             f"on coarse cell {int(bad[0])}")
+        kappa = checked_kappa(kappa, layout.n_cells)
         # without held faces the stiffness matrix is singular (constants in its null
         # space): the grid transfers still serve, a cycle is refused by name
         self._singular = not layout.held_v.any()
