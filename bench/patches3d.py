@@ -1,7 +1,7 @@
 """The never-stored refinement of tetrahedra against the stored-mesh gmg, in work units.
 
     flock /tmp/hk-bench.lock python bench/patches3d.py --cases 8:4 4:5 8:5 \
-        --out bench/results/patches3d.json
+        --out bench/results/patches3d_2026-12-03.json
 
 The problem: ``-lap u = 1`` on the unit cube, ``u = 0`` on its boundary, on ``cuboid(c)``
 (``6 c^3`` tetrahedra) refined ``k`` times (``8^k`` times as many), solved to rtol 1e-8.

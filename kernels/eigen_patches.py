@@ -50,12 +50,12 @@ from hatkernels.memory import MARGIN, available_bytes
 from hatkernels.patches import PatchLayout, PatchMultigrid, PatchOperator, element_stiffness
 from hatkernels.patches.layout import RefinedMeshOnDemand
 from hatkernels.patches.multigrid import element_mass
+from hatkernels.patches.solution import per_coarse_cell
 from hatkernels.patches.solve import (
     _held,
     _held_count,
     _is_number,
     _numbers_by_key,
-    _per_cell,
     patch_path_reason,
 )
 from hatkernels.perf import peak_rss_bytes
@@ -225,8 +225,8 @@ def eigenmodes_on_patches(coarse, k, *, refine, coefficient=None, density=1.0,
     problem = PoissonProblem(coarse, 0.0, dirichlet_on=dirichlet_on, coefficient=coefficient,
                              quadrature=quadrature)
     cells = coarse.n_triangles
-    kappa = _per_cell(problem.coefficient, cells, "coefficient")
-    rho = _per_cell(parse_coefficient(density, coarse, name="density"), cells, "density")
+    kappa = per_coarse_cell(problem.coefficient, cells, "coefficient")
+    rho = per_coarse_cell(parse_coefficient(density, coarse, name="density"), cells, "density")
     sides = _held(coarse, problem, 0.0)[0]
     r = int(refine)
     layout = PatchLayout(coarse, r, held_sides=sides)

@@ -55,6 +55,7 @@ from hatkernels.patches.multigrid import (
     element_mass,
     element_stiffness,
 )
+from hatkernels.patches.solution import per_coarse_cell
 from hatkernels.patches.solve import (
     _add_flux,
     _flux,
@@ -62,7 +63,6 @@ from hatkernels.patches.solve import (
     _is_number,
     _lifting,
     _numbers_by_key,
-    _per_cell,
     patch_path_reason,
 )
 from hatkernels.perf import peak_rss_bytes
@@ -320,8 +320,8 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
                              coefficient=coefficient, neumann=neumann, quadrature=quadrature)
     m, k = coarse.n_triangles, int(refine)
     n = 2**k
-    kappa = _per_cell(problem.coefficient, m, "coefficient")
-    cap = _per_cell(parse_coefficient(capacity, coarse, name="capacity", sign="positive"), m,
+    kappa = per_coarse_cell(problem.coefficient, m, "coefficient")
+    cap = per_coarse_cell(parse_coefficient(capacity, coarse, name="capacity", sign="positive"), m,
                     "capacity")
     sides, side_values = _held(coarse, problem, dirichlet)
     layout = PatchLayout(coarse, k, held_sides=sides)
@@ -336,7 +336,7 @@ def march_on_patches(coarse, u0, times, *, dt, refine, capacity=1.0,
     if problem.source.kind == "callable":
         callable_load(layout, problem.source, quadrature, b)
     else:
-        source = _per_cell(problem.source, m, "f")
+        source = per_coarse_cell(problem.source, m, "f")
         if np.any(source):
             corner = coarse.points[coarse.triangles]
             d1, d2 = corner[:, 1] - corner[:, 0], corner[:, 2] - corner[:, 0]

@@ -28,7 +28,8 @@ from hatkernels.mesh import ball, cuboid
 from hatkernels.mesh.refine3d import bey_order
 from hatkernels.mesh.tags import label_cells, label_sides
 from hatkernels.patches import PatchSolution, patch_path_reason
-from hatkernels.patches.tets import TetLayout, TetMultigrid, TetOperator, class_weights
+from hatkernels.patches.tet_multigrid import TetMultigrid
+from hatkernels.patches.tets import TetLayout, TetOperator, class_weights
 
 #: Relative agreement of two implementations of one linear operator (round-off ~1e-15).
 IDENTITY = 1e-13
@@ -483,3 +484,30 @@ def test_fuzz_region_data(cube, cold, hot, extra, f):
     except InputError:
         pass
     assert repr((coefficient, f)) == kept  # read, not changed
+
+
+def test_public_pieces_refuse_bad_arguments_by_name():
+    # review findings: shapes and sizes checked before any kernel runs
+    mesh = cuboid(1)
+    lay = TetLayout(mesh, 2, held_faces=mesh.boundary_faces())
+    W, _ = class_weights(mesh.points[lay.topo[0]], np.ones(mesh.n_cells))
+    A, M = TetOperator(lay, W, 2), TetMultigrid(lay, np.ones(mesh.n_cells))
+    n = lay.size(2)
+    for call, want in [
+        (lambda: A.matvec_into(np.ones(3), np.empty(n)), "x has shape"),
+        (lambda: A.matvec_into(np.ones(n), np.empty(3)), "out must be"),
+        (lambda: M.apply_into(np.ones(3), np.empty(3)), "r has shape"),
+        (lambda: TetOperator(lay, W[:, :3], 2), "class weights"),
+        (lambda: lay.class_sum(np.ones((2, 15)), np.ones(2), 2), "class_sum needs"),
+        (lambda: lay.zero_held(np.ones(3)), "x must be"),
+        (lambda: lay.size(-1), "level"),
+        (lambda: lay.patch(np.zeros(n), 1.5), "cell"),
+        (lambda: TetLayout(mesh, 21), "k"),
+        (lambda: hk.patches.solve_on_patches(mesh, 1.0, 2, single=True), "single-precision"),
+    ]:
+        with pytest.raises(InputError, match=want):
+            call()
+    # the layout's size is exact in Python integers where int64 would overflow
+    assert lay.size(20) == (mesh.n_cells * (2**20 - 1) * (2**20 - 2) * (2**20 - 3) // 6
+                            + lay.n_faces * (2**20 - 1) * (2**20 - 2) // 2
+                            + lay.n_edges * (2**20 - 1) + lay.n_vertices)

@@ -57,8 +57,6 @@ _O3 = np.ascontiguousarray(SLOT_OFFSETS[:, 2])
 #: a cell's face ``v`` with order ``PERMS[i]`` lists them by increasing global number.
 PERMS = np.array([[0, 1, 2], [0, 2, 1], [1, 0, 2], [1, 2, 0], [2, 0, 1], [2, 1, 0]],
                  dtype=np.int64)
-#: The six edges of a tetrahedron as local point pairs (as in mesh.refine3d).
-PAIRS = np.array([[0, 1], [0, 2], [0, 3], [1, 2], [1, 3], [2, 3]], dtype=np.int64)
 
 
 def kuhn_types():
@@ -119,9 +117,10 @@ def _sizes(n):
 
 
 def level_size(n, m, n_faces, n_edges, n_vertices):
-    """Values on a level with ``n`` subdivisions."""
-    inner, face, edge = _sizes(n)
-    return m * inner + n_faces * face + n_edges * edge + n_vertices
+    """Values on a level with ``n`` subdivisions (Python integers: no overflow)."""
+    n, m = int(n), int(m)
+    inner, face = (n - 1) * (n - 2) * (n - 3) // 6, (n - 1) * (n - 2) // 2
+    return m * inner + int(n_faces) * face + int(n_edges) * (n - 1) + int(n_vertices)
 
 
 @jit()

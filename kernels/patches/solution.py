@@ -10,7 +10,8 @@ from hatkernels.patches.layout import RefinedMeshOnDemand
 from hatkernels.problem import PoissonProblem
 from hatkernels.stats import PoissonSolution
 
-__all__ = ["PatchSolution", "MARGIN", "FIXED_BYTES", "check_memory", "checked_kappa"]
+__all__ = ["PatchSolution", "MARGIN", "FIXED_BYTES", "check_memory", "checked_kappa",
+           "per_coarse_cell"]
 
 # the estimate is measured, not a guess (bench/patches.py): a small margin, and the
 # interpreter with its libraries and the coarse mesh's arrays as a fixed amount
@@ -27,6 +28,15 @@ def check_memory(size, need, have):
             f"{need / 2**30:.1f} GiB ({need / size:.0f} bytes per point), but "
             f"{have / 2**30:.1f} GiB are available; refine less, or pass "
             f"memory_check=False to try anyway")
+
+
+def per_coarse_cell(coef, m, what):
+    """A parsed coefficient constant on each coarse cell, as one number per cell."""
+    if coef.kind == "constant" and np.ndim(coef.value) == 0:
+        return np.full(m, float(coef.value))
+    if coef.kind == "cell" and np.ndim(coef.value) == 1:
+        return np.asarray(coef.value, dtype=np.float64)
+    raise InputError(f"{what}: the patch path takes values constant on each coarse cell")
 
 
 def checked_kappa(kappa, n_cells):

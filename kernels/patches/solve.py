@@ -7,9 +7,10 @@ ones).  The path takes: a coefficient that is a number or ``{region: number}``
 ``{region: number or callable}`` (callables evaluated on the fly,
 :mod:`hatkernels.patches.load`), held values that are a number or
 ``{tag: number}`` on whole boundary sides (the whole boundary or boundary
-tags), a flux that is a number or ``{tag: number}``.  Anything else (callable
-coefficients or fluxes, arrays, reactions, convection, zero mean, tetrahedra)
-takes the stored refinement, and :func:`patch_path_reason` says why.
+tags), a flux that is a number or ``{tag: number}`` (on triangles).  Tetrahedra run
+in :mod:`hatkernels.patches.tet_solve`.  Anything else (callable coefficients or
+fluxes, arrays, reactions, convection, zero mean, a flux on tetrahedra) takes the
+stored refinement, and :func:`patch_path_reason` says why.
 """
 
 from __future__ import annotations
@@ -26,7 +27,13 @@ from hatkernels.patches.cg import lean_cg
 from hatkernels.patches.layout import PatchLayout
 from hatkernels.patches.load import callable_load
 from hatkernels.patches.multigrid import PatchMultigrid, PatchOperator
-from hatkernels.patches.solution import FIXED_BYTES, MARGIN, PatchSolution, check_memory
+from hatkernels.patches.solution import (
+    FIXED_BYTES,
+    MARGIN,
+    PatchSolution,
+    check_memory,
+    per_coarse_cell,
+)
 from hatkernels.patches.tet_solve import solve_on_tets
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.problem import PoissonProblem
@@ -126,14 +133,6 @@ def _held(coarse, problem, dirichlet):
     return sides, values
 
 
-def _per_cell(coef, m, what):
-    if coef.kind == "constant" and np.ndim(coef.value) == 0:
-        return np.full(m, float(coef.value))
-    if coef.kind == "cell" and np.ndim(coef.value) == 1:
-        return np.asarray(coef.value, dtype=np.float64)
-    raise InputError(f"{what}: the patch path takes values constant on each coarse cell")
-
-
 def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=None,
                      coefficient=None, neumann=None, reaction=None, robin=None,
                      zero_mean=False, rtol=1e-10, atol=0.0, maxiter=None, start=None,
@@ -176,14 +175,17 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
                 neumann=neumann, quadrature=quadrature)
     problem = PoissonProblem(coarse, **args)
     if coarse.dim == 3:
+        if single not in (None, False):
+            raise InputError("single-precision levels are for triangle meshes; the patch "
+                             "path on tetrahedra keeps double precision")
         return solve_on_tets(coarse, problem, dirichlet, refine, rtol=rtol, atol=atol,
                              maxiter=maxiter, start=start, check=check, monitor=monitor,
                              note=note, memory_check=memory_check, degree=degree,
                              nested_cycles=nested_cycles, t0=t0, args=args,
                              quadrature=quadrature)
     m = coarse.n_triangles
-    kappa = _per_cell(problem.coefficient, m, "coefficient")
-    source = None if problem.source.kind == "callable" else _per_cell(problem.source, m, "f")
+    kappa = per_coarse_cell(problem.coefficient, m, "coefficient")
+    source = None if problem.source.kind == "callable" else per_coarse_cell(problem.source, m, "f")
     sides, side_values = _held(coarse, problem, dirichlet)
     lifted = bool(np.any(side_values != 0))
     keeps_b = lifted or problem.source.kind == "callable"

@@ -19,9 +19,16 @@ import numpy as np
 
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
-from hatkernels.patches.solution import FIXED_BYTES, MARGIN, PatchSolution, check_memory
+from hatkernels.patches.solution import (
+    FIXED_BYTES,
+    MARGIN,
+    PatchSolution,
+    check_memory,
+    per_coarse_cell,
+)
 from hatkernels.patches.tet_load import callable_tet_load
-from hatkernels.patches.tets import CLASS_CELLS, TetLayout, TetMultigrid, TetOperator
+from hatkernels.patches.tet_multigrid import TetMultigrid
+from hatkernels.patches.tets import CLASS_CELLS, TetLayout, TetOperator
 from hatkernels.perf import peak_rss_bytes
 
 __all__ = ["solve_on_tets", "tet_bytes_per_point"]
@@ -97,14 +104,6 @@ def _lifting(layout, faces, values, rank, problem):
     return g
 
 
-def _per_cell(coef, m, what):
-    if coef.kind == "constant" and np.ndim(coef.value) == 0:
-        return np.full(m, float(coef.value))
-    if coef.kind == "cell" and np.ndim(coef.value) == 1:
-        return np.asarray(coef.value, dtype=np.float64)
-    raise InputError(f"{what}: the patch path takes values constant on each coarse cell")
-
-
 def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, start, check,
                   monitor, note, memory_check, degree, nested_cycles, t0, args, quadrature=2):
     """The 3-D solve of :func:`hatkernels.patches.solve.solve_on_patches` (arguments
@@ -114,9 +113,9 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
     from hatkernels.stats import SolveStats
 
     m = coarse.n_cells
-    kappa = _per_cell(problem.coefficient, m, "coefficient")
+    kappa = per_coarse_cell(problem.coefficient, m, "coefficient")
     callable_f = problem.source.kind == "callable"
-    source = None if callable_f else _per_cell(problem.source, m, "f")
+    source = None if callable_f else per_coarse_cell(problem.source, m, "f")
     faces, values, rank = _held_faces(coarse, problem, dirichlet)
     lifted = bool(np.any(values != 0))
     if rtol is None and lifted:
@@ -145,9 +144,9 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
         unit = source * M.volumes / (4.0 * n**3)
         C = unit[:, None] * CLASS_CELLS[None, :]
         r = layout.class_sum(C, unit * CLASS_CELLS[0], k, masked=False)
-    g = _lifting(layout, faces, values, rank, problem) if lifted else None
-    if g is not None:
-        r -= TetOperator(layout, M.W, k, masked=False) @ g
+    if lifted:  # made again after the solve: not kept beside CG's vectors
+        r -= TetOperator(layout, M.W, k, masked=False) @ _lifting(layout, faces, values, rank,
+                                                                  problem)
     layout.zero_held(r)
     kept = r.copy() if keeps_b else None  # a callable is not evaluated twice
 
@@ -166,8 +165,8 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
     del r
     kept = None  # noqa: F841  (frees the kept right-hand side)
     x = result.x
-    if g is not None:
-        x += g
+    if lifted:
+        x += _lifting(layout, faces, values, rank, problem)
     stats = SolveStats(
         iterations=result.iterations, converged=result.converged,
         residuals=result.residuals, timings={**timings, "total": time.perf_counter() - t0},

@@ -1,5 +1,6 @@
-"""A never-stored refined tetrahedral mesh: its layout, its stiffness operator and its
-multigrid, cell by cell on the Kuhn lattices of :mod:`hatkernels._jit.patches3d`.
+"""A never-stored refined tetrahedral mesh: its layout and its stiffness operator, cell by
+cell on the Kuhn lattices of :mod:`hatkernels._jit.patches3d` (the multigrid:
+:mod:`hatkernels.patches.tet_multigrid`).
 
 The same idea as the triangle patches (:mod:`hatkernels.patches.layout` and
 :mod:`hatkernels.patches.multigrid`; B. Bergen, T. Gradl, F. Hulsemann and U. Rude,
@@ -18,19 +19,12 @@ from scipy.sparse.linalg import LinearOperator
 
 from hatkernels._jit import patches3d as _t
 from hatkernels._jit import patches3d_moves as _m
-from hatkernels.assembly import assemble_stiffness
-from hatkernels.boundary import apply_dirichlet
 from hatkernels.checks import integer_option
-from hatkernels.coefficients import per_cell
 from hatkernels.errors import InputError
 from hatkernels.mesh.refine3d import bey_order, unique_edges
 from hatkernels.mesh.tetrahedra import face_topology
-from hatkernels.patches.solution import checked_kappa
-from hatkernels.precond.chebyshev import ChebyshevSmoother
-from hatkernels.precond.direct import SparseDirect, coarse_correction
-from hatkernels.precond.registry import Preconditioner
 
-__all__ = ["TetLayout", "TetOperator", "TetMultigrid", "class_weights"]
+__all__ = ["TetLayout", "TetOperator", "class_weights", "CLASS_CELLS"]
 
 _INCIDENCE = _t.class_incidence()
 #: Per class: the fine cells at a point of that class inside its coarse cell.
@@ -98,7 +92,7 @@ class TetLayout:
     """
 
     def __init__(self, coarse, k, held_faces=None):
-        k = integer_option(k, "k (refinements)", minimum=0)
+        k = integer_option(k, "k (refinements)", minimum=0, maximum=20)
         if coarse.dim != 3:
             raise InputError("TetLayout takes tetrahedral meshes (3-D)")
         self.coarse, self.k = coarse, int(k)
@@ -163,10 +157,18 @@ class TetLayout:
             raise InputError(f"{what} ({a}, {b}, {c}) is not a face of the coarse mesh (its "
                              f"points must be in 0..{n - 1})")
         t = np.sort(t, axis=1)
-        keys = (self._faces[:, 0] * n + self._faces[:, 1]) * n + self._faces[:, 2]
-        want = (t[:, 0] * n + t[:, 1]) * n + t[:, 2]
-        pos = np.minimum(np.searchsorted(keys, want), len(keys) - 1)
-        bad = np.flatnonzero(keys[pos] != want)
+        # the faces are sorted rows: merge the triples into them (no packed key, which
+        # would overflow int64 beyond about 2e6 points)
+        faces = self._faces
+        rows = np.concatenate([faces, t])
+        order = np.lexsort((np.r_[np.zeros(len(faces)), np.ones(len(t))],
+                            rows[:, 2], rows[:, 1], rows[:, 0]))
+        place = np.where(order < len(faces), np.arange(order.size), -1)
+        last = np.maximum.accumulate(place)  # the last face at or before each place
+        where = np.empty(len(t), dtype=np.int64)
+        where[order[order >= len(faces)] - len(faces)] = last[order >= len(faces)]
+        pos = np.where(where >= 0, order[np.maximum(where, 0)], 0)
+        bad = np.flatnonzero((where < 0) | (faces[pos] != t).any(axis=1))
         if bad.size:
             a, b, c = np.asarray(triples)[bad[0]]
             raise InputError(f"{what} ({a}, {b}, {c}) is not a face of the coarse mesh")
@@ -180,6 +182,7 @@ class TetLayout:
 
     def size(self, level):
         """Values on ``level`` (``n = 2**level``): every fine point once."""
+        level = integer_option(level, "level", minimum=0)
         return _t.level_size(2**level, self.n_cells, self.n_faces, self.n_edges,
                              self.n_vertices)
 
@@ -209,15 +212,29 @@ class TetLayout:
         """The level vector whose value at each point is the sum, over the coarse cells
         holding it, of ``C[c, Z]`` (``Z`` its class there); ``inner[c]`` inside cell ``c``
         (into ``out`` when given)."""
-        y = np.empty(self.size(level)) if out is None else out
+        C, inner = np.asarray(C, dtype=np.float64), np.asarray(inner, dtype=np.float64)
+        if C.shape != (self.n_cells, 15) or inner.shape != (self.n_cells,):
+            raise InputError(f"class_sum needs C of shape ({self.n_cells}, 15) and inner of "
+                             f"shape ({self.n_cells},), got {C.shape} and {inner.shape}")
+        y = np.empty(self.size(level)) if out is None else self._vector(out, level, "out")
         _t.class_fill(np.ascontiguousarray(C, dtype=np.float64),
                       np.ascontiguousarray(inner, dtype=np.float64), y, 2**level, self.topo,
                       masked, *self.buffers(level))
         return y
 
+    def _vector(self, x, level, name):
+        """``x`` checked: a writable contiguous float64 vector of ``level``'s size."""
+        ok = (isinstance(x, np.ndarray) and x.dtype == np.float64 and x.ndim == 1
+              and x.flags.c_contiguous and x.flags.writeable)
+        if not ok or x.shape != (self.size(level),):
+            raise InputError(f"{name} must be a writable contiguous float64 vector of level "
+                             f"{level}'s {self.size(level):,} points")
+        return x
+
     def zero_held(self, x, level=None):
         """``x = 0`` at the held points of ``level`` (default the finest), in place."""
         level = self.k if level is None else level
+        self._vector(x, level, "x")
         x[self.class_sum(np.ones((self.n_cells, 15)), np.ones(self.n_cells), level,
                          masked=True) == 0.0] = 0.0
         return x
@@ -293,7 +310,8 @@ class TetLayout:
         points in Bey's order, ``self.topo[0][cell]``)."""
         level = self.k if level is None else level
         n = 2**level
-        if not 0 <= int(cell) < self.n_cells:
+        cell = integer_option(cell, "cell", minimum=0)
+        if not cell < self.n_cells:
             raise InputError(f"cell {cell} is not a coarse cell (0..{self.n_cells - 1})")
         x = np.ascontiguousarray(x, dtype=np.float64)
         if x.shape != (self.size(level),):
@@ -313,6 +331,10 @@ class TetOperator(LinearOperator):
     and columns taken out (zero) unless ``masked=False``."""
 
     def __init__(self, layout, W, level=None, masked=True):
+        W = np.ascontiguousarray(W, dtype=np.float64)
+        if W.shape != (layout.n_cells, 15, 15):
+            raise InputError(f"W must be the class weights, shape ({layout.n_cells}, 15, 15), "
+                             f"got {W.shape}")
         self.layout, self.W = layout, W
         self.level = layout.k if level is None else int(level)
         self.n = 2**self.level
@@ -323,6 +345,10 @@ class TetOperator(LinearOperator):
     def matvec_into(self, x, out):
         if out is x:
             raise InputError("TetOperator.matvec_into: out must not be x")
+        x = np.ascontiguousarray(x, dtype=np.float64)
+        if x.shape != (self.shape[0],):
+            raise InputError(f"x has shape {x.shape}; the operator has {self.shape[0]:,} rows")
+        self.layout._vector(out, self.level, "out")
         _t.product(x, out, self.n, self.layout.topo, self.W, 1.0 / self.n, _SLOTS, _N_SLOTS,
                    self.masked, *self.layout.buffers(self.level))
         return out
@@ -343,147 +369,3 @@ class TetOperator(LinearOperator):
                              self.level, self.masked)
         keep = diag > 0
         return diag, float((rows[keep] / diag[keep]).max(initial=1.0))
-
-
-class TetMultigrid(Preconditioner):
-    """V-cycle multigrid on the levels of a :class:`TetLayout` (an SPD preconditioner):
-    Chebyshev smoothing of ``degree`` on ``D^-1 A`` over ``[lower * top, top]`` (top
-    Gershgorin's bound), linear interpolation and its transpose, the coarse mesh's
-    assembled matrix factorised at the bottom.  ``cycle`` ``"F"`` (the default, as the
-    stored gmg's on tetrahedra: its iterations do not grow with the depth) or ``"V"``."""
-
-    name = "patch-multigrid-3d"
-    kind = "geometric multigrid on refined tetrahedra, matrix-free stencils"
-    needs_matrix = False
-
-    def __init__(self, layout, kappa, *, degree=2, lower=1.0 / 6.0, nested_cycles=1,
-                 cycle="F"):
-        if cycle not in ("V", "F"):
-            raise InputError(f"cycle must be 'V' or 'F', got {cycle!r}")
-        self.cycle = cycle
-        self.layout = layout
-        k = layout.k
-        if k < 1:
-            raise InputError("the patch multigrid needs refine >= 1")
-        super().__init__(layout.size(k))
-        self.degree = integer_option(degree, "degree", minimum=1)
-        self.nested_cycles = integer_option(nested_cycles, "nested_cycles", minimum=1)
-        kappa = checked_kappa(kappa, layout.n_cells)
-        # without held faces the stiffness matrix is singular (constants in its null
-        # space): the grid transfers still serve, a cycle is refused by name
-        self._singular = not layout.held_v.any()
-        coarse = layout.coarse
-        self.W, self.volumes = class_weights(coarse.points[layout.topo[0]], kappa)
-        self.ops, self.smoothers, self.x, self.b, self.work = [], [], [], [], []
-        # three work vectors shared by every level (views of the finest level's): a level
-        # needs them only while it smooths and until its residual is restricted
-        shared = tuple(np.empty(layout.size(k)) for _ in range(3))
-        for level in range(1, k + 1):
-            op = TetOperator(layout, self.W, level)
-            diag, bound = op.diagonal_and_bound()
-            dinv = np.zeros_like(diag)
-            dinv[diag > 0] = 1.0 / diag[diag > 0]
-            del diag
-            size = layout.size(level)
-            self.ops.append(op)
-            self.smoothers.append(ChebyshevSmoother(
-                op.matvec_into, self._residual(op), dinv, self.degree, bound=bound,
-                estimate=False, lower=lower))
-            self.work.append(tuple(w[:size] for w in shared))
-            self.x.append(np.empty(size) if level < k else None)
-            self.b.append(np.empty(size) if level < k else None)
-        fixed = np.flatnonzero(layout.held_v)
-        A = assemble_stiffness(coarse, per_cell(kappa))
-        system = apply_dirichlet(A, np.zeros(coarse.n_points), fixed)
-        self._coarse_free, self._coarse_A = system.free, system.A
-        self._coarse_solver = (SparseDirect(system.A) if system.A.shape[0] and not self._singular
-                               else None)
-        self._coarse_x = np.empty(coarse.n_points)
-        self._coarse_b = np.empty(coarse.n_points)
-        self._held0 = fixed
-
-    @staticmethod
-    def _residual(op):
-        def residual(x, b, out):
-            op.matvec_into(x, out)
-            _m.subtract_from(b, out)
-        return residual
-
-    def _apply(self, r):
-        out = np.empty(self.shape[0])
-        return self.apply_into(r, out)
-
-    def apply_into(self, r, out):
-        """``out = M r``: one V-cycle from a zero guess (``r`` must be 0 at held points)."""
-        self._cycle(self.layout.k, out, r, True, self.cycle)
-        return out
-
-    def full_cycle_into(self, r, out, cycles=None):
-        """Full multigrid: the load restricted to every level, the coarse solve, then each
-        level started from the interpolated solution below and ``cycles`` V-cycles."""
-        cycles = self.nested_cycles if cycles is None else int(cycles)
-        k = self.layout.k
-        for level in range(k, 0, -1):
-            self._restrict(level, r if level == k else self.b[level - 1])
-        self._coarse_solve(self._coarse_x, self._coarse_b, True)
-        for level in range(1, k + 1):
-            x = out if level == k else self.x[level - 1]
-            b = r if level == k else self.b[level - 1]
-            x[:] = 0.0
-            self._prolong_add(level, self._coarse_x if level == 1 else self.x[level - 2], x)
-            for _ in range(cycles):
-                self._cycle(level, x, b, False, self.cycle)
-        return out
-
-    def _below(self, level):
-        if level == 1:
-            return self._coarse_x, self._coarse_b
-        return self.x[level - 2], self.b[level - 2]
-
-    def _restrict(self, level, r):
-        _, bc = self._below(level)
-        _m.restrict(r, bc, 2**(level - 1), self.layout.topo, True,
-                    self.layout.face_maps(level)[0], *self.layout.buffers(level - 1))
-
-    def _prolong_add(self, level, xc, x):
-        _m.prolong_add(xc, x, 2**(level - 1), self.layout.topo, True,
-                       self.layout.face_maps(level - 1)[0])
-
-    def _coarse_solve(self, x, b, zero_guess):
-        if self._singular:
-            raise InputError("the patch multigrid needs held faces: without them the "
-                             "stiffness matrix is singular (constants are in its null space)")
-        if self._coarse_solver is None:
-            if zero_guess:
-                x[:] = 0.0
-            return
-        coarse_correction(self._coarse_solver, self._coarse_A, self._coarse_free, x, b,
-                          zero_guess)
-
-    def _cycle(self, level, x, b, zero_guess, kind):
-        if level == 0:
-            self._coarse_solve(x, b, zero_guess)
-            return
-        sm, (r, d, q) = self.smoothers[level - 1], self.work[level - 1]
-        sm.smooth(x, b, zero_guess, r, d, q)
-        sm.residual(x, b, r)
-        self._restrict(level, r)
-        xc, bc = self._below(level)
-        if kind == "V":
-            self._cycle(level - 1, xc, bc, True, "V")
-        else:  # F: the palindrome V, F, V keeps the cycle symmetric
-            self._cycle(level - 1, xc, bc, True, "V")
-            self._cycle(level - 1, xc, bc, False, "F")
-            self._cycle(level - 1, xc, bc, False, "V")
-        self._prolong_add(level, xc, x)
-        sm.smooth(x, b, False, r, d, q)
-
-    @property
-    def memory_bytes(self):
-        vectors = [v for v in self.x + self.b if v is not None] + list(self.work[-1])
-        return int(sum(v.nbytes for v in vectors) + sum(s.dinv.nbytes for s in self.smoothers)
-                   + sum(b.nbytes for b in self.layout.buffers(self.layout.k)))
-
-    def _details(self):
-        return (f"{self.layout.k} lattice levels over {self.layout.n_cells} coarse cells, "
-                f"{self.cycle}-cycle, Chebyshev degree {self.degree}")
