@@ -80,8 +80,8 @@ def solve_poisson(
         is then in the numbering of the refined mesh.  With the default
         preconditioner, triangles or tetrahedra and data the patch path takes
         (numbers or ``{region: number}`` for ``f`` and ``coefficient``, callable
-        sources, a number or ``{tag: number}`` held on whole boundary sides and,
-        on triangles, as a flux),
+        sources, a number or ``{tag: number}`` held on whole boundary sides and
+        as a flux),
         the refined mesh is never stored: the solve runs patch by patch on the
         coarse mesh (:mod:`hatkernels.patches`, docs/patches.md) and returns a
         :class:`~hatkernels.patches.PatchSolution` (``.mesh`` is built only if

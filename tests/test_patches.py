@@ -459,7 +459,7 @@ def test_reasons_the_patch_path_cannot_take_a_problem(square):
     tets = cuboid(1, 1, 1)
     cases = [
         ("triangle and tetrahedral meshes", object(), 2, {}),
-        ("on tetrahedra the patch path takes no flux", tets, 2, {"neumann": 1.0}),
+        ("neumann is not a number", tets, 2, {"neumann": lambda x, y, z: x}),
         ("f is not a number", tets, 2, {"f": np.ones(tets.n_points)}),
         ("refine >= 1, got 0", square, 0, {}),
         ("whole number of refinements, got 2.5", square, 2.5, {}),
@@ -483,7 +483,7 @@ def test_refused_problems_raise_input_errors_naming_the_reason(square):
     kappa_copy = kappa.copy()
     coefficient = {"cold": 1.0, "hot": 20.0}
     refused = [
-        (cuboid(1, 1, 1), dict(refine=2, neumann=1.0), "takes no flux"),
+        (cuboid(1, 1, 1), dict(refine=2, neumann=lambda x, y, z: x), "neumann is not"),
         (square, dict(refine=0), "refine >= 1"),
         (square, dict(refine=2, coefficient=lambda x, y: 1.0 + x), "coefficient"),
         (square, dict(refine=2, coefficient=kappa), "coefficient"),

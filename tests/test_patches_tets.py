@@ -250,6 +250,9 @@ CASES = {
                         dirichlet_on=["left", "right"]),
     "callable f": dict(f=lambda x, y, z: np.sin(3.0 * x) + y * z, dirichlet={"left": 1.0}),
     "callable by region": dict(f={"cold": lambda x, y, z: x * y, "hot": 2.0}),
+    "flux": dict(f=1.0, neumann=0.7, dirichlet={"left": 0.5}),
+    "flux by tag": dict(f=lambda x, y, z: x, neumann={"right": 2.0, "bottom": -1.0},
+                        dirichlet={"left": 1.0}),
 }
 
 
@@ -394,14 +397,17 @@ def test_the_path_taken(cube):
         cube, 2, f={"hot": 1.0}, coefficient={"cold": 2.0}, dirichlet={"left": 1.0}) is None
     assert patch_path_reason(cube, 2, f=lambda x, y, z: x) is None
     assert patch_path_reason(cube, 2, f={"hot": lambda x, y, z: x, "cold": 1.0}) is None
+    assert patch_path_reason(cube, 2, neumann=1.0) is None
+    assert patch_path_reason(cube, 2, neumann={"right": 1.0}, dirichlet_on=["left"]) is None
     refused = [("f is not", dict(f=np.ones(cube.n_points))),
-               ("flux", dict(neumann=1.0)), ("flux", dict(neumann={"right": 1.0}))]
+               ("neumann is not", dict(neumann=lambda x, y, z: x)),
+               ("reaction", dict(reaction=1.0))]
     for want, kw in refused:
         reason = patch_path_reason(cube, 2, **kw)
         assert reason is not None and want in reason, (kw, reason)
     for kw in ({"preconditioner": "jacobi"}, {"preconditioner": "amg"},
                {"f": np.ones(cube.refine().n_points)},  # per fine point: the stored path
-               {"neumann": {"right": 1.0}, "dirichlet_on": ["left"]}):
+               {"neumann": lambda x, y, z: x, "dirichlet_on": ["left"]}):
         sol = hk.solve_poisson(cube, **{"f": 1.0, **kw}, refine=1, rtol=1e-8)
         assert isinstance(sol, hk.PoissonSolution) and not isinstance(sol, PatchSolution), kw
 

@@ -7,10 +7,10 @@ ones).  The path takes: a coefficient that is a number or ``{region: number}``
 ``{region: number or callable}`` (callables evaluated on the fly,
 :mod:`hatkernels.patches.load`), held values that are a number or
 ``{tag: number}`` on whole boundary sides (the whole boundary or boundary
-tags), a flux that is a number or ``{tag: number}`` (on triangles).  Tetrahedra run
-in :mod:`hatkernels.patches.tet_solve`.  Anything else (callable coefficients or
-fluxes, arrays, reactions, convection, zero mean, a flux on tetrahedra) takes the
-stored refinement, and :func:`patch_path_reason` says why.
+tags), a flux that is a number or ``{tag: number}``.  Tetrahedra run in
+:mod:`hatkernels.patches.tet_solve`.  Anything else (callable coefficients or fluxes,
+arrays, reactions, convection, zero mean) takes the stored refinement, and
+:func:`patch_path_reason` says why.
 """
 
 from __future__ import annotations
@@ -96,8 +96,6 @@ def patch_path_reason(mesh, refine, *, f=1.0, dirichlet=0.0, dirichlet_on=None,
         return "coefficient is not a number or {region: number}"
     if not (f is None or _is_number(f) or callable(f) or _numbers_by_key(f, callables=True)):
         return "f is not a number, a callable or {region: number or callable}"
-    if mesh.dim == 3 and neumann is not None:
-        return "on tetrahedra the patch path takes no flux (neumann) yet"
     if not (_is_number(dirichlet) or _numbers_by_key(dirichlet)):
         return "dirichlet is not a number or {tag: number}"
     if not (dirichlet_on is None or isinstance(dirichlet_on, str) or (

@@ -6,7 +6,8 @@ layout and multigrid are :mod:`hatkernels.patches.tets`, CG is the four-vector o
 :mod:`hatkernels.patches.cg`.  The path takes a coefficient and a source that are
 numbers or ``{region: number}`` (the source also a callable ``f(x, y, z)`` or
 ``{region: number or callable}``, evaluated on the fly), and held values that are a number or
-``{tag: number}`` on whole coarse boundary faces; anything else takes the stored path
+``{tag: number}`` on whole coarse boundary faces, and a flux that is a number (on every
+face not held) or ``{tag: number}``; anything else takes the stored path
 (:func:`hatkernels.patches.solve.patch_path_reason` says why).
 """
 
@@ -104,6 +105,55 @@ def _lifting(layout, faces, values, rank, problem):
     return g
 
 
+def _flux(layout, problem, neumann):
+    """``(faces, points, h A)``: the coarse faces with an imposed flux, their points and the
+    flux times their area (None without a flux); as the 2-D path's sides."""
+    if neumann is None:
+        return None
+    if isinstance(neumann, dict):  # whole faces of boundary tags, as parsed
+        flux = problem.flux
+        if flux is None or not len(flux.sides):
+            return None
+        if flux.flux.kind not in ("constant", "edge"):
+            raise InputError("neumann: the patch path takes numbers (per boundary tag)")
+        faces, h = np.asarray(flux.sides, dtype=np.int64), np.asarray(flux.flux.value)
+    else:
+        # a number goes on every boundary face not held (a fine face inside a coarse face
+        # that is not held has a free point, whatever its edges)
+        boundary = np.asarray(layout.coarse.boundary_faces(), dtype=np.int64)
+        faces = boundary[~layout.held_f[layout.face_index(boundary)]]
+        h = float(neumann)
+        if not np.isfinite(h):
+            raise InputError(f"neumann must be a finite number, got {neumann!r}")
+        if not len(faces):
+            return None
+    p = layout.coarse.points
+    area = 0.5 * np.linalg.norm(np.cross(p[faces[:, 1]] - p[faces[:, 0]],
+                                         p[faces[:, 2]] - p[faces[:, 0]]), axis=1)
+    return layout.face_index(faces, "flux face"), faces, h * area
+
+
+def _add_flux(layout, flux, out):
+    """``out`` += the boundary load of the flux on the finest level: each fine triangle of
+    area ``A / n^2`` gives a third of ``h A / n^2`` to each of its points (6 triangles at
+    a point inside a face, 3 inside its edges, 1 at its corners)."""
+    f, faces, ha = flux
+    n = 2**layout.k
+    m, nf, ne = layout.n_cells, layout.n_faces, layout.n_edges
+    inner, face = (n - 1) * (n - 2) * (n - 3) // 6, (n - 1) * (n - 2) // 2
+    fbase = m * inner
+    ebase = fbase + nf * face
+    vbase = ebase + ne * (n - 1)
+    fine = ha / n**2  # h times one fine triangle's area, per coarse face
+    np.add.at(out[fbase:ebase].reshape(nf, face), f, (2.0 * fine)[:, None])
+    EV = layout.topo[5]
+    for a, b in ((0, 1), (0, 2), (1, 2)):
+        e = layout._edge_index(EV, layout.n_vertices, faces[:, [a, b]])
+        np.add.at(out[ebase:vbase].reshape(ne, n - 1), e, fine[:, None])
+    for a in range(3):
+        np.add.at(out[vbase:], faces[:, a], fine / 3.0)
+
+
 def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, start, check,
                   monitor, note, memory_check, degree, nested_cycles, t0, args, quadrature=2):
     """The 3-D solve of :func:`hatkernels.patches.solve.solve_on_patches` (arguments
@@ -137,6 +187,7 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
     t2 = time.perf_counter()
     # the load of a source constant on each coarse cell: f times the fine cells' volume
     # over 4 for each fine cell at the point
+    flux = _flux(layout, problem, args.get("neumann"))
     if callable_f:  # evaluated on the fly, with the stored path's rule
         r = callable_tet_load(layout, problem.source, quadrature, M.volumes,
                               np.empty(size))
@@ -144,6 +195,8 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
         unit = source * M.volumes / (4.0 * n**3)
         C = unit[:, None] * CLASS_CELLS[None, :]
         r = layout.class_sum(C, unit * CLASS_CELLS[0], k, masked=False)
+    if flux is not None:
+        _add_flux(layout, flux, r)
     if lifted:  # made again after the solve: not kept beside CG's vectors
         r -= TetOperator(layout, M.W, k, masked=False) @ _lifting(layout, faces, values, rank,
                                                                   problem)
@@ -155,6 +208,9 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
             out[:] = kept
         else:
             layout.class_sum(C, unit * CLASS_CELLS[0], k, masked=True, out=out)
+            if flux is not None:
+                _add_flux(layout, flux, out)
+                layout.zero_held(out)
 
     timings["assemble"] = time.perf_counter() - t2
     note("solve")
