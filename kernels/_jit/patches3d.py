@@ -169,6 +169,16 @@ def face_tables(n):
 
 
 @jit()
+def _edge_ends(V, EV, c, le, e):
+    """``(i, j, la, lb)``: the local points of cell ``c``'s edge ``le`` (global edge ``e``),
+    and the same two as its lower (``la``) and higher (``lb``) global point."""
+    i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
+    if V[c, i] == EV[e, 0]:
+        return i, j, i, j
+    return i, j, j, i
+
+
+@jit()
 def _face_order(V, FV, c, v, f, lk):
     """``lk[k]``: the local point of cell ``c`` that is point ``k`` of face ``f`` (sorted)."""
     for k in range(3):
@@ -208,8 +218,7 @@ def _gather(x, c, n, topo, mapl, loc, masked, owned, lk, lam):
             loc[mapl[row, i]] = 0.0 if zero else x[src + i]
     for le in range(6):
         e = CE[c, le]
-        i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
-        la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+        i, j, la, lb = _edge_ends(V, EV, c, le, e)
         zero = (masked and held_e[e]) or (owned and ecell[eptr[e]] != c)
         for a in range(4):
             lam[a] = 0
@@ -308,8 +317,7 @@ def _boundary_walk(c, n, topo, lk, lam, what, loc, wc, slots, n_slots, kk, bf, b
                 bf[c, v, row + b] = acc
     for le in range(6):
         e = CE[c, le]
-        i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
-        la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+        i, j, la, lb = _edge_ends(V, EV, c, le, e)
         z = 15 ^ ((1 << i) | (1 << j))
         for a in range(4):
             lam[a] = 0

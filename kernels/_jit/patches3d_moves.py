@@ -13,6 +13,7 @@ from hatkernels._jit.patches3d import (
     _O3,
     CELLS,
     _delta,
+    _edge_ends,
     _face_order,
     _gather,
     _p_of,
@@ -78,8 +79,7 @@ def prolong_add(xc, xf, n, topo, masked, mapl):
                 e = CE[c, le]
                 if ecell[eptr[e]] != c or (masked and held_e[e]):
                     continue
-                i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
-                la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+                i, j, la, lb = _edge_ends(V, EV, c, le, e)
                 for a in range(4):
                     lam[a] = 0
                 for t in range(1, N):
@@ -146,8 +146,7 @@ def restrict(rf, rc, n, topo, masked, fine_mapl, bf, be, bv, mapl, mapf):
                         bf[c, v, (a - 2) * (a - 1) // 2 + b - 1] = _restricted(loc, N, a1, a2, a3)
             for le in range(6):
                 e = CE[c, le]
-                i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
-                la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+                i, j, la, lb = _edge_ends(V, EV, c, le, e)
                 for a in range(4):
                     lam[a] = 0
                 for t in range(1, n):
@@ -244,8 +243,7 @@ def _scatter(loc, c, n, topo, out, bf, be, bv, lam):
                 bf[c, v, (a - 2) * (a - 1) // 2 + b - 1] = loc[q]
     for le in range(6):
         e = CE[c, le]
-        i, j = (0, 0, 0, 1, 1, 2)[le], (1, 2, 3, 2, 3, 3)[le]
-        la, lb = (i, j) if V[c, i] == EV[e, 0] else (j, i)
+        i, j, la, lb = _edge_ends(V, EV, c, le, e)
         for a in range(4):
             lam[a] = 0
         for t in range(1, n):

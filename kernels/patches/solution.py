@@ -11,7 +11,7 @@ from hatkernels.problem import PoissonProblem
 from hatkernels.stats import PoissonSolution
 
 __all__ = ["PatchSolution", "MARGIN", "FIXED_BYTES", "check_memory", "checked_kappa",
-           "per_coarse_cell"]
+           "per_coarse_cell", "flux_sides"]
 
 # the estimate is measured, not a guess (bench/patches.py): a small margin, and the
 # interpreter with its libraries and the coarse mesh's arrays as a fixed amount
@@ -37,6 +37,26 @@ def per_coarse_cell(coef, m, what):
     if coef.kind == "cell" and np.ndim(coef.value) == 1:
         return np.asarray(coef.value, dtype=np.float64)
     raise InputError(f"{what}: the patch path takes values constant on each coarse cell")
+
+
+def flux_sides(problem, neumann, free_sides):
+    """``(sides, h)`` of an imposed flux, or None without one: for ``{tag: number}`` the
+    tags' sides as parsed (``h`` one number or one per side), for a number every boundary
+    side not held (``free_sides()``, edges in 2-D, faces in 3-D)."""
+    if neumann is None:
+        return None
+    if isinstance(neumann, dict):  # whole sides of boundary tags, as parsed
+        flux = problem.flux
+        if flux is None or not len(flux.sides):
+            return None
+        if flux.flux.kind not in ("constant", "edge"):
+            raise InputError("neumann: the patch path takes numbers (per boundary tag)")
+        return np.asarray(flux.sides, dtype=np.int64), np.asarray(flux.flux.value)
+    h = float(neumann)
+    if not np.isfinite(h):
+        raise InputError(f"neumann must be a finite number, got {neumann!r}")
+    sides = free_sides()
+    return (sides, h) if len(sides) else None
 
 
 def checked_kappa(kappa, n_cells):

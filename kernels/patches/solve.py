@@ -32,6 +32,7 @@ from hatkernels.patches.solution import (
     MARGIN,
     PatchSolution,
     check_memory,
+    flux_sides,
     per_coarse_cell,
 )
 from hatkernels.patches.tet_solve import solve_on_tets
@@ -287,26 +288,18 @@ def _flux(layout, problem, neumann):
     """``(edges, sides, h L)``: the coarse edges with an imposed flux, their points and the
     flux times their length (None without a flux)."""
     p = layout.coarse.points
-    if neumann is None:
-        return None
-    if isinstance(neumann, dict):  # whole sides of boundary tags, as parsed
-        flux = problem.flux
-        if flux is None or not len(flux.sides):
-            return None
-        if flux.flux.kind not in ("constant", "edge"):
-            raise InputError("neumann: the patch path takes numbers (per boundary tag)")
-        sides, h = np.asarray(flux.sides, dtype=np.int64), np.asarray(flux.flux.value)
-    else:
+
+    def free_sides():
         # a number goes on every side not held.  On the coarse mesh a side counts as held
         # when both its ends are, but a fine side inside a coarse side that is not held
         # has a free point: so the sides are taken edge by edge, as the fine mesh has them
         boundary = np.asarray(layout.coarse.boundary_edges(), dtype=np.int64)
-        sides = boundary[~layout.held_e[layout.edge_index(boundary)]]
-        h = float(neumann)
-        if not np.isfinite(h):
-            raise InputError(f"neumann must be a finite number, got {neumann!r}")
-        if not len(sides):
-            return None
+        return boundary[~layout.held_e[layout.edge_index(boundary)]]
+
+    found = flux_sides(problem, neumann, free_sides)
+    if found is None:
+        return None
+    sides, h = found
     length = np.linalg.norm(p[sides[:, 1]] - p[sides[:, 0]], axis=1)
     return layout.edge_index(sides, "flux side"), sides, h * length
 

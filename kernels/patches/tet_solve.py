@@ -25,6 +25,7 @@ from hatkernels.patches.solution import (
     MARGIN,
     PatchSolution,
     check_memory,
+    flux_sides,
     per_coarse_cell,
 )
 from hatkernels.patches.tet_load import callable_tet_load
@@ -108,25 +109,16 @@ def _lifting(layout, faces, values, rank, problem):
 def _flux(layout, problem, neumann):
     """``(faces, points, h A)``: the coarse faces with an imposed flux, their points and the
     flux times their area (None without a flux); as the 2-D path's sides."""
-    if neumann is None:
-        return None
-    if isinstance(neumann, dict):  # whole faces of boundary tags, as parsed
-        flux = problem.flux
-        if flux is None or not len(flux.sides):
-            return None
-        if flux.flux.kind not in ("constant", "edge"):
-            raise InputError("neumann: the patch path takes numbers (per boundary tag)")
-        faces, h = np.asarray(flux.sides, dtype=np.int64), np.asarray(flux.flux.value)
-    else:
+    def free_faces():
         # a number goes on every boundary face not held (a fine face inside a coarse face
         # that is not held has a free point, whatever its edges)
         boundary = np.asarray(layout.coarse.boundary_faces(), dtype=np.int64)
-        faces = boundary[~layout.held_f[layout.face_index(boundary)]]
-        h = float(neumann)
-        if not np.isfinite(h):
-            raise InputError(f"neumann must be a finite number, got {neumann!r}")
-        if not len(faces):
-            return None
+        return boundary[~layout.held_f[layout.face_index(boundary)]]
+
+    found = flux_sides(problem, neumann, free_faces)
+    if found is None:
+        return None
+    faces, h = found
     p = layout.coarse.points
     area = 0.5 * np.linalg.norm(np.cross(p[faces[:, 1]] - p[faces[:, 0]],
                                          p[faces[:, 2]] - p[faces[:, 0]]), axis=1)
