@@ -29,7 +29,8 @@ from hatkernels.mesh.refine3d import bey_order
 from hatkernels.mesh.tags import label_cells, label_sides
 from hatkernels.patches import PatchSolution, patch_path_reason
 from hatkernels.patches.tet_multigrid import TetMultigrid
-from hatkernels.patches.tets import TetLayout, TetOperator, class_weights
+from hatkernels.patches.tets import PiecewiseDiagonal, TetLayout, TetOperator, class_weights
+from hatkernels.precond.chebyshev import ChebyshevSmoother, PointDiagonal
 
 #: Relative agreement of two implementations of one linear operator (round-off ~1e-15).
 IDENTITY = 1e-13
@@ -113,7 +114,54 @@ def test_product_equals_the_stored_assembly(which, k):
     E = (A.multiply(free[:, None]).multiply(free[None, :])).tocsr()
     rows = np.asarray(abs(E).sum(axis=1)).ravel()[~fixed] / E.diagonal()[~fixed]
     assert bound >= rows.max() * (1 - IDENTITY)
+    # the smoother's inverse diagonal, one number per block of points: the stored
+    # assembly's, point by point (0 at held points), and the same bound
+    block_diag, block_bound = op.block_diagonal_and_bound()
+    inv = PiecewiseDiagonal(layout, k, block_diag).expand()[layout.places(fine)]
+    ref = np.divide(1.0, A.diagonal(), out=np.zeros(fine.n_points), where=~fixed)
+    assert relative_error(inv, ref) <= IDENTITY
+    assert block_bound == bound
     assert np.array_equal(kappa, kappa_copy)
+
+
+@pytest.mark.parametrize("k", [1, 2, 4])
+def test_piecewise_diagonal_updates_match_the_per_point_kernels(k):
+    # the plain version: the per-point Chebyshev kernels on the expanded vector
+    coarse = ball(2)
+    layout = TetLayout(coarse, k, held_faces=coarse.boundary_faces()[::2])
+    W, _ = class_weights(coarse.points[bey_order(coarse)],
+                         np.linspace(0.5, 3.0, coarse.n_cells))
+    pw = PiecewiseDiagonal(layout, k, TetOperator(layout, W, k).block_diagonal_and_bound()[0])
+    pt = PointDiagonal(pw.expand())
+    assert pw.nbytes == 8 * (coarse.n_cells + layout.n_faces + layout.n_edges
+                             + layout.n_vertices)
+    rng = np.random.default_rng(k)
+    b, q, r0, d0, x0 = (rng.standard_normal(layout.size(k)) for _ in range(5))
+    calls = {  # each update as the smoother makes it
+        "zero start": lambda D, v: D.zero_start(0.7, v["b"], v["x"]),
+        "start from zero": lambda D, v: D.start(0.7, v["b"], v["r"], v["d"], v["x"], True),
+        "start": lambda D, v: D.start(0.7, v["b"], v["r"], v["d"], v["x"], False),
+        "step": lambda D, v: D.step(v["q"], 0.3, 1.1, v["r"], v["d"], v["x"]),
+        "last": lambda D, v: D.last(v["q"], 0.3, 1.1, v["r"], v["d"], v["x"]),
+    }
+    for call in calls.values():
+        outs = []
+        for diag in (pw, pt):
+            vec = {"b": b, "q": q, "r": r0.copy(), "d": d0.copy(), "x": x0.copy()}
+            call(diag, vec)
+            outs.append([vec["r"], vec["d"], vec["x"]])
+        assert_same_bits(outs[0], outs[1])
+
+
+def test_smoother_refuses_an_estimate_without_a_vector(cube):
+    layout = TetLayout(cube, 1, held_faces=cube.boundary_faces())
+    op = TetOperator(layout, class_weights(cube.points[bey_order(cube)],
+                                           np.ones(cube.n_cells))[0], 1)
+    pw = PiecewiseDiagonal(layout, 1, op.block_diagonal_and_bound()[0])
+    with pytest.raises(ValueError, match="needs dinv as a vector"):
+        ChebyshevSmoother(op.matvec_into, None, pw, 2, bound=2.0, estimate=True)
+    with pytest.raises(InputError, match="one number per block"):
+        PiecewiseDiagonal(layout, 1, np.ones(3))
 
 
 @pytest.mark.parametrize("m,k", [(2, 2), (3, 1), (1, 3)])

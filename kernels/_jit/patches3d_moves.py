@@ -23,7 +23,7 @@ from hatkernels._jit.patches3d import (
 )
 
 __all__ = ["prolong_add", "restrict", "places_of", "gather_cells", "add_cell_loads",
-           "subtract_from"]
+           "subtract_from", "piecewise_update"]
 
 
 @jit()
@@ -285,3 +285,54 @@ def subtract_from(b, y):
     """``y = b - y`` (a residual from a product), in parallel."""
     for i in prange(y.shape[0]):
         y[i] = b[i] - y[i]
+
+
+# modes of piecewise_update (the Chebyshev smoother's vector updates)
+PW_ZERO, PW_START, PW_START_ZERO, PW_STEP, PW_LAST = 0, 1, 2, 3, 4
+
+
+@jit(parallel=True)
+def piecewise_update(mode, values, lens, firsts, bases, c, c1, c2, b, q, r, d, x):
+    """The Chebyshev smoother's vector updates with ``1 / diag(A)`` constant on blocks.
+
+    Group ``g`` of a level's vector holds ``firsts[g+1] - firsts[g]`` blocks of
+    ``lens[g]`` points from index ``bases[g]``; block ``k`` of all has the inverse
+    diagonal ``values[k]``.  The updates and their bits are those of
+    :mod:`hatkernels._jit.sparse`'s ``chebyshev_*`` kernels on the expanded vector:
+    ``PW_ZERO`` ``x = c D^-1 b``; ``PW_START_ZERO`` ``r = b``, ``d = x = c D^-1 b``;
+    ``PW_START`` ``d = c D^-1 r``, ``x += d``; ``PW_STEP`` ``r -= q``,
+    ``d = c1 d + c2 D^-1 r``, ``x += d``; ``PW_LAST`` ``x += c1 d + c2 D^-1 (r - q)``.
+    """
+    for k in prange(values.shape[0]):
+        g = 0
+        while k >= firsts[g + 1]:
+            g += 1
+        lo = bases[g] + (k - firsts[g]) * lens[g]
+        hi = lo + lens[g]
+        di = values[k]
+        if mode == PW_ZERO:
+            for i in range(lo, hi):
+                x[i] = c * di * b[i]
+        elif mode == PW_START_ZERO:
+            for i in range(lo, hi):
+                bi = b[i]
+                r[i] = bi
+                dn = c * di * bi
+                d[i] = dn
+                x[i] = dn
+        elif mode == PW_START:
+            for i in range(lo, hi):
+                dn = c * di * r[i]
+                d[i] = dn
+                x[i] += dn
+        elif mode == PW_STEP:
+            for i in range(lo, hi):
+                ri = r[i] - q[i]
+                r[i] = ri
+                dn = c1 * d[i] + c2 * di * ri
+                d[i] = dn
+                x[i] += dn
+        else:
+            for i in range(lo, hi):
+                ri = r[i] - q[i]
+                x[i] += c1 * d[i] + c2 * di * ri

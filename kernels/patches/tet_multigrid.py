@@ -12,7 +12,7 @@ from hatkernels.checks import integer_option
 from hatkernels.coefficients import per_cell
 from hatkernels.errors import InputError
 from hatkernels.patches.solution import checked_kappa
-from hatkernels.patches.tets import TetOperator, class_weights
+from hatkernels.patches.tets import PiecewiseDiagonal, TetOperator, class_weights
 from hatkernels.precond.chebyshev import ChebyshevSmoother
 from hatkernels.precond.direct import SparseDirect, coarse_correction
 from hatkernels.precond.registry import Preconditioner
@@ -55,10 +55,8 @@ class TetMultigrid(Preconditioner):
         shared = tuple(np.empty(layout.size(k)) for _ in range(3))
         for level in range(1, k + 1):
             op = TetOperator(layout, self.W, level)
-            diag, bound = op.diagonal_and_bound()
-            dinv = np.zeros_like(diag)
-            dinv[diag > 0] = 1.0 / diag[diag > 0]
-            del diag
+            diag, bound = op.block_diagonal_and_bound()
+            dinv = PiecewiseDiagonal(layout, level, diag)  # one number per block of points
             size = layout.size(level)
             self.ops.append(op)
             self.smoothers.append(ChebyshevSmoother(

@@ -38,12 +38,13 @@ __all__ = ["solve_on_tets", "tet_bytes_per_point"]
 
 def tet_bytes_per_point(k, keeps_b=False):
     """Peak bytes per fine point beyond the coarse mesh with ``k`` refinements: CG's four
-    vectors (five when the right-hand side is kept), the multigrid's inverse diagonal and
-    three shared work vectors, each coarser level's inverse diagonal, ``x`` and ``b``
-    (an eighth as many points per level: a seventh in all), and the per-cell buffers of
-    the shared points' parts (``4 C(n-1, 2)`` per cell against ``n^3 / 6`` points)."""
+    vectors (five when the right-hand side is kept), the multigrid's three shared work
+    vectors, each coarser level's ``x`` and ``b`` (an eighth as many points per level: a
+    seventh in all), and the per-cell buffers of the shared points' parts (``4 C(n-1, 2)``
+    per cell against ``n^3 / 6`` points).  The inverse diagonals are one number per block
+    of points (:class:`~hatkernels.patches.tets.PiecewiseDiagonal`), not per point."""
     n = 2**k
-    return 8 * (4 + bool(keeps_b)) + 8 * 4 + 8 * 3 / 7.0 + 8 * 12.0 / n
+    return 8 * (4 + bool(keeps_b)) + 8 * 3 + 8 * 2 / 7.0 + 8 * 12.0 / n
 
 
 def _held_faces(coarse, problem, dirichlet):

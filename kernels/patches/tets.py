@@ -24,7 +24,8 @@ from hatkernels.errors import InputError
 from hatkernels.mesh.refine3d import bey_order, unique_edges
 from hatkernels.mesh.tetrahedra import face_topology
 
-__all__ = ["TetLayout", "TetOperator", "class_weights", "CLASS_CELLS"]
+__all__ = ["TetLayout", "TetOperator", "PiecewiseDiagonal", "block_values", "class_weights",
+           "CLASS_CELLS"]
 
 _INCIDENCE = _t.class_incidence()
 #: Per class: the fine cells at a point of that class inside its coarse cell.
@@ -369,3 +370,99 @@ class TetOperator(LinearOperator):
                              self.level, self.masked)
         keep = diag > 0
         return diag, float((rows[keep] / diag[keep]).max(initial=1.0))
+
+    def block_diagonal_and_bound(self):
+        """:meth:`diagonal_and_bound` with the diagonal one number per block
+        (:func:`block_values`; the same bits), computed on a level of at most 4
+        subdivisions with this level's scale: a block's sum does not depend on the level,
+        and from 4 subdivisions up every block has points.  No vector of this level's size
+        is made."""
+        lay, s = self.layout, 1.0 / self.n
+        probe = min(self.level, 2)
+        diag = lay.class_sum(self.W[:, :, 0] * s, self.W[:, 0, 0] * s, probe, self.masked)
+        rows = lay.class_sum(np.abs(self.W).sum(axis=2) * s, np.abs(self.W[:, 0]).sum(axis=1) * s,
+                             probe, self.masked)
+        keep = diag > 0
+        return (block_values(lay, probe, diag),
+                float((rows[keep] / diag[keep]).max(initial=1.0)))
+
+
+def _block_counts(layout):
+    return np.array([layout.n_cells, layout.n_faces, layout.n_edges, layout.n_vertices],
+                    dtype=np.int64)
+
+
+def _block_lens(n):
+    """Points per block on a level with ``n`` subdivisions: inside a cell, a face, an edge;
+    a vertex."""
+    return np.array([(n - 1) * (n - 2) * (n - 3) // 6, (n - 1) * (n - 2) // 2, n - 1, 1],
+                    dtype=np.int64)
+
+
+def block_values(layout, level, x):
+    """One value per block (cells, faces, edges, vertices) of the level vector ``x``: its
+    first point's (0 for a block without points on that level)."""
+    lens, counts = _block_lens(2**int(level)), _block_counts(layout)
+    out = np.zeros(int(counts.sum()))
+    first, base = 0, 0
+    for g in range(4):
+        if lens[g]:
+            out[first:first + counts[g]] = x[base + lens[g] * np.arange(counts[g])]
+        first, base = first + counts[g], base + counts[g] * lens[g]
+    return out
+
+
+class PiecewiseDiagonal:
+    """``1 / diag(A)`` on a level of a :class:`TetLayout`, one number per block of points:
+    the inside of each coarse cell, of each coarse face and of each coarse edge, and each
+    coarse vertex (the stencil's diagonal is the same on all points of a block: it sums
+    the same classes' weights of the same cells); 0 where the diagonal is 0 (held points).
+
+    Stands in for the per-point vector in :class:`hatkernels.precond.chebyshev.ChebyshevSmoother`
+    (the same bits; 8 bytes per point less), through the kernel
+    :func:`hatkernels._jit.patches3d_moves.piecewise_update`.
+    """
+
+    def __init__(self, layout, level, diag):
+        """``diag``: the diagonal per block (:func:`block_values`), 0 at held blocks."""
+        n = 2**int(level)
+        counts = _block_counts(layout)
+        self.lens = _block_lens(n)
+        diag = np.asarray(diag, dtype=np.float64)
+        if diag.shape != (int(counts.sum()),):
+            raise InputError(f"diag must hold one number per block ({int(counts.sum())}: "
+                             f"cells, faces, edges, vertices), got shape {diag.shape}")
+        self.firsts = np.concatenate([[0], np.cumsum(counts)])
+        self.bases = np.concatenate([[0], np.cumsum(counts * self.lens)])
+        self.values = np.zeros_like(diag)
+        np.divide(1.0, diag, out=self.values, where=diag > 0)
+
+    @property
+    def nbytes(self):
+        return self.values.nbytes
+
+    def expand(self):
+        """The per-point vector (for tests and inspection)."""
+        counts = np.diff(self.firsts)
+        return np.repeat(self.values, np.repeat(self.lens, counts))
+
+    def _update(self, mode, c=0.0, c1=0.0, c2=0.0, b=None, q=None, r=None, d=None, x=None):
+        empty = np.empty(0)
+        _m.piecewise_update(mode, self.values, self.lens, self.firsts, self.bases, c, c1, c2,
+                            empty if b is None else b, empty if q is None else q,
+                            empty if r is None else r, empty if d is None else d, x)
+
+    def zero_start(self, c, b, x):
+        self._update(_m.PW_ZERO, c, b=b, x=x)
+
+    def start(self, c, b, r, d, x, zero_guess):
+        if zero_guess:
+            self._update(_m.PW_START_ZERO, c, b=b, r=r, d=d, x=x)
+        else:
+            self._update(_m.PW_START, c, r=r, d=d, x=x)
+
+    def step(self, q, c1, c2, r, d, x):
+        self._update(_m.PW_STEP, 0.0, c1, c2, q=q, r=r, d=d, x=x)
+
+    def last(self, q, c1, c2, r, d, x):
+        self._update(_m.PW_LAST, 0.0, c1, c2, q=q, r=r, d=d, x=x)

@@ -11,7 +11,7 @@ import numpy as np
 
 from hatkernels._jit import sparse as _k
 
-__all__ = ["ChebyshevSmoother", "largest_eigenvalue", "LOWER", "UPPER"]
+__all__ = ["ChebyshevSmoother", "PointDiagonal", "largest_eigenvalue", "LOWER", "UPPER"]
 
 # The interval as fractions of the estimated largest eigenvalue of D^-1 A:
 # PyAMG's defaults for its own Chebyshev smoother (reference library:
@@ -51,6 +51,38 @@ def largest_eigenvalue(product, dinv, steps=10):
     return float(np.linalg.eigvalsh(T)[-1])
 
 
+class PointDiagonal:
+    """``1 / diag(A)`` kept per point, and the smoother's vector updates with it (the
+    parallel kernels of :mod:`hatkernels._jit.sparse`).
+
+    Any object with these four methods and ``nbytes`` can stand in for it (a diagonal
+    constant on blocks of points: :class:`hatkernels.patches.tets.PiecewiseDiagonal`).
+    """
+
+    def __init__(self, values):
+        self.values = values
+
+    @property
+    def nbytes(self):
+        return self.values.nbytes
+
+    def zero_start(self, c, b, x):
+        """``x = c D^-1 b``."""
+        _k.chebyshev_zero_start(c, self.values, b, x)
+
+    def start(self, c, b, r, d, x, zero_guess):
+        """``d = c D^-1 r``, ``x += d`` (from zero: ``r = b``, ``d = x = c D^-1 b``)."""
+        _k.chebyshev_start(c, self.values, b, r, d, x, zero_guess)
+
+    def step(self, q, c1, c2, r, d, x):
+        """``r -= q``, ``d = c1 d + c2 D^-1 r``, ``x += d``."""
+        _k.chebyshev_step(q, self.values, c1, c2, r, d, x)
+
+    def last(self, q, c1, c2, r, d, x):
+        """``x += c1 d + c2 D^-1 (r - q)`` (``r`` and ``d`` not written)."""
+        _k.chebyshev_last(q, self.values, c1, c2, r, d, x)
+
+
 class ChebyshevSmoother:
     """Chebyshev smoothing of ``A x = b`` with ``degree`` products per call.
 
@@ -60,8 +92,9 @@ class ChebyshevSmoother:
         ``product(x, out)``: ``out = A x``.
     residual : callable
         ``residual(x, b, out)``: ``out = b - A x``.
-    dinv : ndarray
-        ``1 / diag(A)``.
+    dinv : ndarray or PointDiagonal-like
+        ``1 / diag(A)``: a vector, or an object with the methods of
+        :class:`PointDiagonal` (only a vector with ``estimate``).
     degree : int
     bound : float, optional
         A guaranteed upper bound on the spectrum of ``D^-1 A`` (Gershgorin's,
@@ -80,8 +113,11 @@ class ChebyshevSmoother:
         self.product = product
         self.residual = residual
         self.dinv = dinv
+        self.diagonal = PointDiagonal(dinv) if isinstance(dinv, np.ndarray) else dinv
         self.degree = int(degree)
         if estimate:
+            if not isinstance(dinv, np.ndarray):
+                raise ValueError("ChebyshevSmoother: the Lanczos estimate needs dinv as a vector")
             upper = UPPER * largest_eigenvalue(product, dinv)
             if bound is not None:
                 upper = min(upper, bound)
@@ -95,7 +131,7 @@ class ChebyshevSmoother:
 
     @property
     def nbytes(self):
-        return self.dinv.nbytes
+        return self.diagonal.nbytes
 
     def smooth(self, x, b, zero_guess, r, d, q):
         """Smooth ``x`` in place; ``r``, ``d``, ``q`` are work vectors of the same length.
@@ -109,18 +145,18 @@ class ChebyshevSmoother:
         if zero_guess and self.degree <= 2:
             # from zero, the first direction is x itself and the residual b: neither
             # is copied (5 vector passes of 13 saved at degree 2)
-            _k.chebyshev_zero_start(1.0 / self.theta, self.dinv, b, x)
+            self.diagonal.zero_start(1.0 / self.theta, b, x)
             r, d = b, x
         else:
             if not zero_guess:
                 self.residual(x, b, r)
-            _k.chebyshev_start(1.0 / self.theta, self.dinv, b, r, d, x, zero_guess)
+            self.diagonal.start(1.0 / self.theta, b, r, d, x, zero_guess)
         for step in range(1, self.degree):
             self.product(d, q)
             rho_new = 1.0 / (2.0 * sigma - rho)
             c1, c2 = rho_new * rho, 2.0 * rho_new / self.delta
             if step == self.degree - 1:  # the last: r and d are not needed after it
-                _k.chebyshev_last(q, self.dinv, c1, c2, r, d, x)
+                self.diagonal.last(q, c1, c2, r, d, x)
             else:
-                _k.chebyshev_step(q, self.dinv, c1, c2, r, d, x)
+                self.diagonal.step(q, c1, c2, r, d, x)
             rho = rho_new
