@@ -310,6 +310,15 @@ def run(product, b, x0, M, reductions, *, rtol, atol, maxiter, callback=None, mo
     return result
 
 
+def _assign(dst, src):
+    """``dst[:] = src``, by the parallel kernel when both are contiguous float64 vectors."""
+    if (src.dtype == np.float64 and dst.dtype == np.float64 and src.shape == dst.shape
+            and src.flags.c_contiguous and dst.flags.c_contiguous):
+        _k.copy(src, dst)
+    else:
+        dst[:] = src
+
+
 def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback, monitor,
              work=None, check_scale=True):
     """The CG iteration of :func:`run` with ``bb = b . b`` given (nonzero).
@@ -328,8 +337,10 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
 
     x, r = vector("x"), vector("r")
     if x0 is None:
-        x.fill(0.0)
-        r[:] = b
+        # parallel first touch of the fresh vectors (the serial one costs more than a
+        # CG iteration on the largest solves)
+        _k.fill(x, 0.0)
+        _assign(r, b)
     else:
         x[:] = x0
         product.residual(x, b, r)
@@ -381,7 +392,7 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
         p = vector("p", product.n_local)  # on a rank, room for the ghosts after the owned ones
         p[n:] = 0.0
         po = p if p.shape[0] == n else p[:n]
-        po[:] = z
+        _assign(po, z)
         q = vector("q")
         while iteration < maxiter:
             pq = total(product.matvec_dot(p, q))

@@ -140,6 +140,10 @@ def test_fused_vector_kernels_match_numpy():
     p3 = p.copy()
     K.xpby(q, beta, p3)
     assert np.array_equal(p3, q + beta * p)
+    filled, copied = np.empty(n), np.empty(n)
+    K.fill(filled, -2.5)
+    K.copy(q, copied)
+    assert np.array_equal(filled, np.full(n, -2.5)) and np.array_equal(copied, q)
     out = np.empty(n)
     K.jacobi_apply(dinv, r, out)
     assert np.array_equal(out, dinv * r)
@@ -194,6 +198,8 @@ def test_one_and_two_threads_give_identical_bits():
             K.xpby(x, -1.25, p)
             jac = np.empty_like(x)
             K.jacobi_apply(dinv, y, jac)
+            K.copy(y, jac2 := np.empty_like(x))
+            K.fill(filled := np.empty_like(x), 0.5)
             starts = []
             for zero_guess in (True, False):
                 rs, ds, xs = y.copy(), w.copy(), x.copy()
@@ -204,7 +210,7 @@ def test_one_and_two_threads_give_identical_bits():
             qf = np.empty_like(x)
             finite = K.spmv_finite(A.indptr, A.indices, A.data, x, qf)
             out[nt] = (qf, finite, K.all_finite(x), q, pq, K.dot(x, y), rr, xx, rr_, added, res, xj, rj, zj, rrj, rzj, p,
-                       jac, *starts, rc, dc, xc)
+                       jac, jac2, filled, *starts, rc, dc, xc)
     for k, (a, b) in enumerate(zip(out[1], out[2], strict=True)):
         assert np.array_equal(a, b), k
 

