@@ -104,6 +104,7 @@ def test_product_equals_the_stored_assembly(which, k):
     # held rows and columns taken out; the held points by plain geometry
     fixed = on_triangles(fine.points, coarse.points[held])
     assert np.array_equal(layout.to_refined(layout.held_mask(), mesh=fine), fixed)
+    assert layout.held_count() == fixed.sum()
     free = (~fixed).astype(float)
     op = TetOperator(layout, W, k)
     assert relative_error((op @ x)[layout.places(fine)], free * (A @ (free * u))) <= IDENTITY

@@ -23,7 +23,7 @@ from hatkernels._jit.patches3d import (
 )
 
 __all__ = ["prolong_add", "restrict", "places_of", "gather_cells", "add_cell_loads",
-           "subtract_from", "piecewise_update"]
+           "subtract_from", "piecewise_update", "set_blocks"]
 
 
 @jit()
@@ -336,3 +336,19 @@ def piecewise_update(mode, values, lens, firsts, bases, c, c1, c2, b, q, r, d, x
             for i in range(lo, hi):
                 ri = r[i] - q[i]
                 x[i] += c1 * d[i] + c2 * di * ri
+
+
+@jit(parallel=True)
+def set_blocks(flags, lens, firsts, bases, x, value):
+    """``x = value`` on every block ``k`` with ``flags[k]`` (blocks as in
+    :func:`piecewise_update`): the held points of a level are whole blocks (the insides of
+    held faces and edges, held vertices)."""
+    for k in prange(flags.shape[0]):
+        if not flags[k]:
+            continue
+        g = 0
+        while k >= firsts[g + 1]:
+            g += 1
+        lo = bases[g] + (k - firsts[g]) * lens[g]
+        for i in range(lo, lo + lens[g]):
+            x[i] = value

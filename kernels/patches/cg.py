@@ -71,7 +71,8 @@ def lean_cg(A, M, r, remake_b, *, rtol, atol=0.0, maxiter=None, nested=False, mo
         return LeanResult(x, 0, 0, history, tol, "initial guess meets the tolerance", math.nan)
     M.apply_into(r, w)
     rz = _k.dot(r, w)
-    p = w.copy()
+    p = np.empty(n)
+    _k.copy(w, p)  # not w.copy(): the fresh vector's pages first touched by both threads
     alphas, betas = [], []
     info, message = maxiter, f"not converged after {maxiter} iterations"
     iteration = 0

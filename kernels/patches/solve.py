@@ -22,6 +22,7 @@ import numba
 import numpy as np
 
 from hatkernels._jit import patches as _p
+from hatkernels._jit import sparse as _k
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
 from hatkernels.patches.layout import PatchLayout
@@ -233,7 +234,8 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
         del g
     layout.zero_held(r)
     if lifted or source is None:  # kept, not made again: a callable costs its evaluations
-        kept = r.copy()
+        kept = np.empty_like(r)
+        _k.copy(r, kept)  # the fresh vector first touched by both threads
 
     def remake_b(out):
         if kept is not None:

@@ -18,6 +18,7 @@ import time
 import numba
 import numpy as np
 
+from hatkernels._jit import sparse as _k
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
 from hatkernels.patches.solution import (
@@ -194,7 +195,10 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
         r -= TetOperator(layout, M.W, k, masked=False) @ _lifting(layout, faces, values, rank,
                                                                   problem)
     layout.zero_held(r)
-    kept = r.copy() if keeps_b else None  # a callable is not evaluated twice
+    kept = None
+    if keeps_b:  # a callable is not evaluated twice
+        kept = np.empty(size)
+        _k.copy(r, kept)  # the fresh vector first touched by both threads
 
     def remake_b(out):
         if kept is not None:
@@ -223,6 +227,6 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
         peak_rss_bytes=peak_rss_bytes(), threads=numba.get_num_threads(), info=result.info,
         message=result.message, tolerance=result.tolerance,
         condition_estimate=result.condition_estimate, nnz=0, matrix_free=True)
-    stats.dirichlet_points = int(layout.held_mask().sum())
+    stats.dirichlet_points = layout.held_count()
     report_convergence(stats, check, stacklevel=4)
     return PatchSolution(x, layout, stats, args)

@@ -232,19 +232,34 @@ class TetLayout:
                              f"{level}'s {self.size(level):,} points")
         return x
 
+    def _held_blocks(self, level):
+        """``(flags, lens, firsts, bases)``: which blocks of ``level`` are held (cell insides
+        never; the insides of held faces and edges; held vertices) and where they lie."""
+        lens, counts = _block_lens(2**int(level)), _block_counts(self)
+        flags = np.concatenate([np.zeros(self.n_cells, dtype=np.bool_), self.held_f,
+                                self.held_e, self.held_v])
+        return (flags, lens, np.concatenate([[0], np.cumsum(counts)]),
+                np.concatenate([[0], np.cumsum(counts * lens)]))
+
     def zero_held(self, x, level=None):
         """``x = 0`` at the held points of ``level`` (default the finest), in place."""
         level = self.k if level is None else level
         self._vector(x, level, "x")
-        x[self.class_sum(np.ones((self.n_cells, 15)), np.ones(self.n_cells), level,
-                         masked=True) == 0.0] = 0.0
+        _m.set_blocks(*self._held_blocks(level), x, 0.0)
         return x
 
     def held_mask(self, level=None):
         """Boolean vector of the held points of ``level`` (default the finest)."""
         level = self.k if level is None else level
-        ones = np.ones((self.n_cells, 15))
-        return self.class_sum(ones, np.ones(self.n_cells), level, masked=True) == 0.0
+        mask = np.zeros(self.size(level), dtype=np.bool_)
+        _m.set_blocks(*self._held_blocks(level), mask, True)
+        return mask
+
+    def held_count(self, level=None):
+        """The number of held points of ``level`` (default the finest)."""
+        flags, lens, firsts, _ = self._held_blocks(self.k if level is None else level)
+        return int(sum(int(flags[firsts[g]:firsts[g + 1]].sum()) * int(lens[g])
+                       for g in range(4)))
 
     # -- the numbering of mesh.refine() repeated k times ---------------------------------
 
