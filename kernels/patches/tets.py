@@ -435,7 +435,7 @@ class PiecewiseDiagonal:
 
     Stands in for the per-point vector in :class:`hatkernels.precond.chebyshev.ChebyshevSmoother`
     (the same bits; 8 bytes per point less), through the kernel
-    :func:`hatkernels._jit.patches3d_moves.piecewise_update`.
+    ``hatkernels._jit.patches3d_moves.piecewise_update``.
     """
 
     def __init__(self, layout, level, diag):
@@ -468,16 +468,20 @@ class PiecewiseDiagonal:
                             empty if r is None else r, empty if d is None else d, x)
 
     def zero_start(self, c, b, x):
+        """As :meth:`hatkernels.precond.chebyshev.PointDiagonal.zero_start`."""
         self._update(_m.PW_ZERO, c, b=b, x=x)
 
     def start(self, c, b, r, d, x, zero_guess):
+        """As :meth:`hatkernels.precond.chebyshev.PointDiagonal.start`."""
         if zero_guess:
             self._update(_m.PW_START_ZERO, c, b=b, r=r, d=d, x=x)
         else:
             self._update(_m.PW_START, c, r=r, d=d, x=x)
 
     def step(self, q, c1, c2, r, d, x):
+        """As :meth:`hatkernels.precond.chebyshev.PointDiagonal.step`."""
         self._update(_m.PW_STEP, 0.0, c1, c2, q=q, r=r, d=d, x=x)
 
     def last(self, q, c1, c2, r, d, x):
+        """As :meth:`hatkernels.precond.chebyshev.PointDiagonal.last`."""
         self._update(_m.PW_LAST, 0.0, c1, c2, q=q, r=r, d=d, x=x)

@@ -98,7 +98,7 @@ class ChebyshevSmoother:
     degree : int
     bound : float, optional
         A guaranteed upper bound on the spectrum of ``D^-1 A`` (Gershgorin's,
-        say); the Lanczos estimate times :data:`UPPER` is capped by it.
+        say); the Lanczos estimate times ``UPPER`` (1.1) is capped by it.
     estimate : bool
         Run the Lanczos estimate; with ``False`` the interval's top is
         ``bound`` itself (which must then be given).
