@@ -291,6 +291,17 @@ def subtract_from(b, y):
 PW_ZERO, PW_START, PW_START_ZERO, PW_STEP, PW_LAST = 0, 1, 2, 3, 4
 
 
+@jit()
+def _block_range(k, lens, firsts, bases):
+    """``(lo, hi)``: the points of block ``k`` (group ``g`` holds blocks ``firsts[g]`` to
+    ``firsts[g+1] - 1``, each of ``lens[g]`` points, from index ``bases[g]``)."""
+    g = 0
+    while k >= firsts[g + 1]:
+        g += 1
+    lo = bases[g] + (k - firsts[g]) * lens[g]
+    return lo, lo + lens[g]
+
+
 @jit(parallel=True)
 def piecewise_update(mode, values, lens, firsts, bases, c, c1, c2, b, q, r, d, x):
     """The Chebyshev smoother's vector updates with ``1 / diag(A)`` constant on blocks.
@@ -304,11 +315,7 @@ def piecewise_update(mode, values, lens, firsts, bases, c, c1, c2, b, q, r, d, x
     ``d = c1 d + c2 D^-1 r``, ``x += d``; ``PW_LAST`` ``x += c1 d + c2 D^-1 (r - q)``.
     """
     for k in prange(values.shape[0]):
-        g = 0
-        while k >= firsts[g + 1]:
-            g += 1
-        lo = bases[g] + (k - firsts[g]) * lens[g]
-        hi = lo + lens[g]
+        lo, hi = _block_range(k, lens, firsts, bases)
         di = values[k]
         if mode == PW_ZERO:
             for i in range(lo, hi):
@@ -346,9 +353,6 @@ def set_blocks(flags, lens, firsts, bases, x, value):
     for k in prange(flags.shape[0]):
         if not flags[k]:
             continue
-        g = 0
-        while k >= firsts[g + 1]:
-            g += 1
-        lo = bases[g] + (k - firsts[g]) * lens[g]
-        for i in range(lo, lo + lens[g]):
+        lo, hi = _block_range(k, lens, firsts, bases)
+        for i in range(lo, hi):
             x[i] = value
