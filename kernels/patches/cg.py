@@ -19,7 +19,7 @@ import math
 
 import numpy as np
 
-from hatkernels._cg import condition_estimate
+from hatkernels._cg import condition_estimate, fresh_copy
 from hatkernels._cgstop import BREAKDOWN_MATRIX, Stagnation, breakdown_preconditioner
 from hatkernels._jit import sparse as _k
 from hatkernels.krylov import _check_scalars
@@ -71,8 +71,7 @@ def lean_cg(A, M, r, remake_b, *, rtol, atol=0.0, maxiter=None, nested=False, mo
         return LeanResult(x, 0, 0, history, tol, "initial guess meets the tolerance", math.nan)
     M.apply_into(r, w)
     rz = _k.dot(r, w)
-    p = np.empty(n)
-    _k.copy(w, p)  # not w.copy(): the fresh vector's pages first touched by both threads
+    p = fresh_copy(w)
     alphas, betas = [], []
     info, message = maxiter, f"not converged after {maxiter} iterations"
     iteration = 0

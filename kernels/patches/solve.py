@@ -21,8 +21,8 @@ import time
 import numba
 import numpy as np
 
+from hatkernels._cg import fresh_copy
 from hatkernels._jit import patches as _p
-from hatkernels._jit import sparse as _k
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
 from hatkernels.patches.layout import PatchLayout
@@ -234,8 +234,7 @@ def solve_on_patches(coarse, f=1.0, refine=1, *, dirichlet=0.0, dirichlet_on=Non
         del g
     layout.zero_held(r)
     if lifted or source is None:  # kept, not made again: a callable costs its evaluations
-        kept = np.empty_like(r)
-        _k.copy(r, kept)  # the fresh vector first touched by both threads
+        kept = fresh_copy(r)
 
     def remake_b(out):
         if kept is not None:

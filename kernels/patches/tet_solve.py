@@ -18,7 +18,7 @@ import time
 import numba
 import numpy as np
 
-from hatkernels._jit import sparse as _k
+from hatkernels._cg import fresh_copy
 from hatkernels.errors import InputError
 from hatkernels.patches.cg import lean_cg
 from hatkernels.patches.solution import (
@@ -195,10 +195,7 @@ def solve_on_tets(coarse, problem, dirichlet, refine, *, rtol, atol, maxiter, st
         r -= TetOperator(layout, M.W, k, masked=False) @ _lifting(layout, faces, values, rank,
                                                                   problem)
     layout.zero_held(r)
-    kept = None
-    if keeps_b:  # a callable is not evaluated twice
-        kept = np.empty(size)
-        _k.copy(r, kept)  # the fresh vector first touched by both threads
+    kept = fresh_copy(r) if keeps_b else None  # a callable is not evaluated twice
 
     def remake_b(out):
         if kept is not None:

@@ -235,11 +235,9 @@ class TetLayout:
     def _held_blocks(self, level):
         """``(flags, lens, firsts, bases)``: which blocks of ``level`` are held (cell insides
         never; the insides of held faces and edges; held vertices) and where they lie."""
-        lens, counts = _block_lens(2**int(level)), _block_counts(self)
         flags = np.concatenate([np.zeros(self.n_cells, dtype=np.bool_), self.held_f,
                                 self.held_e, self.held_v])
-        return (flags, lens, np.concatenate([[0], np.cumsum(counts)]),
-                np.concatenate([[0], np.cumsum(counts * lens)]))
+        return (flags, *_blocks(self, level))
 
     def zero_held(self, x, level=None):
         """``x = 0`` at the held points of ``level`` (default the finest), in place."""
@@ -402,28 +400,28 @@ class TetOperator(LinearOperator):
                 float((rows[keep] / diag[keep]).max(initial=1.0)))
 
 
-def _block_counts(layout):
-    return np.array([layout.n_cells, layout.n_faces, layout.n_edges, layout.n_vertices],
+def _blocks(layout, level):
+    """``(lens, firsts, bases)`` of a level's four groups of blocks (the insides of the
+    cells, faces and edges; the vertices): points per block, the group's first block and
+    its first point."""
+    n = 2**int(level)
+    lens = np.array([(n - 1) * (n - 2) * (n - 3) // 6, (n - 1) * (n - 2) // 2, n - 1, 1],
                     dtype=np.int64)
-
-
-def _block_lens(n):
-    """Points per block on a level with ``n`` subdivisions: inside a cell, a face, an edge;
-    a vertex."""
-    return np.array([(n - 1) * (n - 2) * (n - 3) // 6, (n - 1) * (n - 2) // 2, n - 1, 1],
-                    dtype=np.int64)
+    counts = np.array([layout.n_cells, layout.n_faces, layout.n_edges, layout.n_vertices],
+                      dtype=np.int64)
+    return (lens, np.concatenate([[0], np.cumsum(counts)]),
+            np.concatenate([[0], np.cumsum(counts * lens)]))
 
 
 def block_values(layout, level, x):
     """One value per block (cells, faces, edges, vertices) of the level vector ``x``: its
     first point's (0 for a block without points on that level)."""
-    lens, counts = _block_lens(2**int(level)), _block_counts(layout)
-    out = np.zeros(int(counts.sum()))
-    first, base = 0, 0
+    lens, firsts, bases = _blocks(layout, level)
+    out = np.zeros(int(firsts[-1]))
     for g in range(4):
         if lens[g]:
-            out[first:first + counts[g]] = x[base + lens[g] * np.arange(counts[g])]
-        first, base = first + counts[g], base + counts[g] * lens[g]
+            out[firsts[g]:firsts[g + 1]] = x[bases[g] + lens[g] * np.arange(
+                firsts[g + 1] - firsts[g])]
     return out
 
 
@@ -440,15 +438,11 @@ class PiecewiseDiagonal:
 
     def __init__(self, layout, level, diag):
         """``diag``: the diagonal per block (:func:`block_values`), 0 at held blocks."""
-        n = 2**int(level)
-        counts = _block_counts(layout)
-        self.lens = _block_lens(n)
+        self.lens, self.firsts, self.bases = _blocks(layout, level)
         diag = np.asarray(diag, dtype=np.float64)
-        if diag.shape != (int(counts.sum()),):
-            raise InputError(f"diag must hold one number per block ({int(counts.sum())}: "
+        if diag.shape != (int(self.firsts[-1]),):
+            raise InputError(f"diag must hold one number per block ({int(self.firsts[-1])}: "
                              f"cells, faces, edges, vertices), got shape {diag.shape}")
-        self.firsts = np.concatenate([[0], np.cumsum(counts)])
-        self.bases = np.concatenate([[0], np.cumsum(counts * self.lens)])
         self.values = np.zeros_like(diag)
         np.divide(1.0, diag, out=self.values, where=diag > 0)
 
