@@ -110,6 +110,19 @@ def _L(p1, p2, p3):
 
 
 @jit()
+def _face_point(v, n, a, b):
+    """Lattice place of point ``(a, b)`` (``2 <= a < n``, ``1 <= b < a``) inside the face
+    opposite vertex ``v`` of a cell, in the cell's own order of its face points."""
+    if v == 0:
+        return _L(n, a, b)
+    if v == 1:
+        return _L(a, a, b)
+    if v == 2:
+        return _L(a, b, b)
+    return _L(a, b, 0)
+
+
+@jit()
 def _sizes(n):
     inner = (n - 1) * (n - 2) * (n - 3) // 6
     face = (n - 1) * (n - 2) // 2
@@ -303,14 +316,7 @@ def _boundary_walk(c, n, topo, lk, lam, what, loc, wc, slots, n_slots, kk, bf, b
                     e_q[q] += _O2[sl] * a
             row = (a - 2) * (a - 1) // 2 - 1
             for b in range(1, a):
-                if v == 0:
-                    base = _L(n, a, b)
-                elif v == 1:
-                    base = _L(a, a, b)
-                elif v == 2:
-                    base = _L(a, b, b)
-                else:
-                    base = _L(a, b, 0)
+                base = _face_point(v, n, a, b)
                 acc = 0.0
                 for q in range(ns):
                     acc += wc[z, q] * loc[U(base + e_q[q] + m_q[q] * b)]

@@ -15,6 +15,7 @@ from hatkernels._jit.patches3d import (
     _delta,
     _edge_ends,
     _face_order,
+    _face_point,
     _gather,
     _p_of,
     _sizes,
@@ -232,15 +233,7 @@ def _scatter(loc, c, n, topo, out, bf, be, bv, lam):
     for v in range(4):
         for a in range(2, n):
             for b in range(1, a):
-                if v == 0:
-                    q = _L(n, a, b)
-                elif v == 1:
-                    q = _L(a, a, b)
-                elif v == 2:
-                    q = _L(a, b, b)
-                else:
-                    q = _L(a, b, 0)
-                bf[c, v, (a - 2) * (a - 1) // 2 + b - 1] = loc[q]
+                bf[c, v, (a - 2) * (a - 1) // 2 + b - 1] = loc[_face_point(v, n, a, b)]
     for le in range(6):
         e = CE[c, le]
         i, j, la, lb = _edge_ends(V, EV, c, le, e)
