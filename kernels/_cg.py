@@ -401,7 +401,9 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
         p[n:] = 0.0
         po = p if p.shape[0] == n else p[:n]
         _assign(po, z)
-        q = vector("q")
+        # q = A p is read only by the step that follows it, and z = M r only by the
+        # direction update before the next product: one vector holds both in turn
+        q = vector("q") if identity else z
         while iteration < maxiter:
             pq = total(product.matvec_dot(p, q))
             if iteration == 0 and out_of_range(pq):

@@ -263,8 +263,12 @@ class GeometricMultigrid(Preconditioner):
         ops = [None] * (len(meshes) - 2) + [fine_op]
         # the finest level's x is the caller's output, unless A acts on the free points only
         own_x = [True] * (len(meshes) - 2) + [self._free is not None]
+        # one set of smoother work vectors for all levels: a level's are dead while the
+        # levels below it work (V, W and F cycles and the nested start alike)
+        self._scratch = tuple(np.empty(n) for _ in range(3))
         self.levels = [
-            Level(m, c, f, variant, smoother, self.degree, omega, quadrature, op, own, lower, w)
+            Level(m, c, f, variant, smoother, self.degree, omega, quadrature, op, own, lower, w,
+                  self._scratch)
             for m, c, f, op, own, w in zip(meshes[1:], coefs[1:], fixeds[1:], ops, own_x,
                                            masses[1:], strict=True)
         ]
@@ -420,7 +424,8 @@ class GeometricMultigrid(Preconditioner):
     @property
     def memory_bytes(self):
         coarse = self._coarse_solver.memory_bytes + self._coarse_A.data.nbytes * 2
-        return int(sum(lv.nbytes for lv in self.levels) + coarse)
+        scratch = sum(v.nbytes for v in self._scratch)
+        return int(sum(lv.nbytes for lv in self.levels) + scratch + coarse)
 
     def _details(self):
         sizes = "/".join(

@@ -97,7 +97,7 @@ class Level:
     """
 
     def __init__(self, mesh, coef, fixed, variant, smoother, degree, omega, quadrature, op=None,
-                 own_x=True, lower=None, mass=None):
+                 own_x=True, lower=None, mass=None, scratch=None):
         self.mesh = mesh
         self.fixed = fixed
         if op is None:
@@ -111,7 +111,13 @@ class Level:
         self.mass = mass
         self._bind()
         n = mesh.n_points
-        self.r, self.d, self.q = np.empty(n), np.empty(n), np.empty(n)
+        # the smoother's work vectors and the residual: dead while a coarser level
+        # works, so all levels may share one set (``scratch``: three vectors of at
+        # least n entries, the finest level's size); their bytes count with their owner
+        self._owns_scratch = scratch is None
+        if scratch is None:
+            scratch = (np.empty(n), np.empty(n), np.empty(n))
+        self.r, self.d, self.q = (v[:n] for v in scratch)
         # the cycle's solution and right-hand side on this level: a finer level
         # restricts into them; on the finest level the preconditioner's input
         # goes into b and x is the caller's output (or a full-size buffer
@@ -164,6 +170,7 @@ class Level:
 
     @property
     def nbytes(self):
-        vectors = (4 + (self.x is not None) + (self.mass is not None)) * self.r.nbytes
+        vectors = (1 + 3 * self._owns_scratch + (self.x is not None)
+                   + (self.mass is not None)) * self.r.nbytes
         transfer = sum(a.nbytes for a in self.transfer) if self.transfer else 0
         return vectors + transfer + self.op.nbytes + self.smoother.nbytes + self.fixed.nbytes
