@@ -125,7 +125,8 @@ def test_second_pass_against_pyamg():
     # reference library: PyAMG's Ruge-Stueben splitting with its second pass; the two
     # passes break ties in their own order, so the coarse sizes agree within 5 %, and CG
     # needs as few iterations (within one) as with PyAMG's hierarchy of the same options;
-    # on this unstructured mesh the second pass cuts the first pass's iterations
+    # on this unstructured mesh the second pass cuts the iterations of the first pass with
+    # classical interpolation
     import pyamg
 
     A = reduced_stiffness(hatkernels.mesh.disk(40))
@@ -139,7 +140,8 @@ def test_second_pass_against_pyamg():
     ref.solve(b, tol=1e-8, accel="cg", residuals=residuals)
     with_second = cg_with_history(A, b, rtol=1e-8,
                                   M=ClassicalAMG(A, max_coarse=50, second_pass=True))
-    first_only = cg_with_history(A, b, rtol=1e-8, M=ClassicalAMG(A, max_coarse=50))
+    first_only = cg_with_history(A, b, rtol=1e-8, M=ClassicalAMG(A, max_coarse=50,
+                                                                interpolation="classical"))
     assert with_second.info == 0
     assert with_second.iterations <= len(residuals) - 1 + 1
     assert with_second.iterations < first_only.iterations
@@ -161,7 +163,7 @@ def pyamg_hierarchy(A, levels):
 
 def test_interpolation_and_coarse_matrices_match_pyamg():
     A = reduced_stiffness(rectangle(40, 40))
-    ours = ClassicalHierarchy(A, max_coarse=10, max_levels=4)
+    ours = ClassicalHierarchy(A, max_coarse=10, max_levels=4, interpolation="classical")
     ref = pyamg_hierarchy(A, 4)
     assert [lv.A.shape[0] for lv in ours.levels] == [lv.A.shape[0] for lv in ref.levels]
     for mine, theirs in zip(ours.levels[:-1], ref.levels[:-1], strict=True):
@@ -215,14 +217,16 @@ def test_dense_cholesky_matches_numpy():
 
 
 @pytest.mark.two_threads
-@pytest.mark.parametrize("second_pass", [False, True])
-def test_same_bits_on_one_and_two_threads(second_pass):
+@pytest.mark.parametrize(("second_pass", "interpolation"),
+                         [(False, "extended"), (False, "classical"), (True, "extended")])
+def test_same_bits_on_one_and_two_threads(second_pass, interpolation):
     A = reduced_stiffness(jittered_mesh(40, 2))
     r = np.random.default_rng(0).standard_normal(A.shape[0])
     results = []
     for n in (1, 2):
         with threads(n):
-            M = ClassicalAMG(A, max_coarse=20, second_pass=second_pass)
+            M = ClassicalAMG(A, max_coarse=20, second_pass=second_pass,
+                             interpolation=interpolation)
             results.append(([lv.A.data.copy() for lv in M.ml.levels], M @ r))
     (levels1, z1), (levels2, z2) = results
     assert len(levels1) == len(levels2) > 2

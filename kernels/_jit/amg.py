@@ -13,7 +13,11 @@ multigrid", in Multigrid Methods, SIAM Frontiers in Applied Mathematics 3,
   interpolates from its strongly coupled C points; a strong F neighbour's
   coupling is distributed over those C points in proportion to its own
   negative couplings to them (lumped onto the diagonal when it has none);
-  weak couplings are lumped onto the diagonal;
+  weak couplings are lumped onto the diagonal.  With ``extend``, a row with a
+  strong F neighbour that has no strong coupling to the row's strong C points
+  takes that neighbour's strong C points too, by the extended+i formula
+  (De Sterck, Falgout, Nolting and Yang, Numer. Linear Algebra Appl. 15,
+  2008), at most ``cap`` of them the largest;
 * ``galerkin``: the coarse matrix ``R A P`` (``R = P^T``) row by row, without
   forming ``A P``.
 
@@ -67,28 +71,95 @@ def strength(indptr, indices, data, theta, strong):
             strong[k] = 1 if (indices[k] != i and v > 0.0 and v >= cut) else 0
 
 
+@jit(inline="always")
+def _shares(indptr, indices, strong, pos, k, start, n_strong):
+    """Whether point ``k`` has a strong coupling to one of the F point's own strong C
+    points (``pos`` in ``start .. start + n_strong``)."""
+    for e in range(indptr[k], indptr[k + U(1)]):
+        q = pos[U(indices[U(e)])]
+        if strong[U(e)] and start <= q < start + n_strong:
+            return True
+    return False
+
+
+@jit(inline="always")
+def _mark_row(indptr, indices, strong, state, pos, ui, extend):
+    """Give each interpolation point of F point ``ui`` its place ``pos`` (from 0); return
+    ``(places, own)``: the first ``own`` are ``ui``'s strong C points, in matrix order;
+    with ``extend`` the strong C points of every strong F neighbour that shares none of
+    them follow, in the order met."""
+    start = 0
+    p = start
+    for k in range(indptr[ui], indptr[ui + U(1)]):
+        j = U(indices[U(k)])
+        if strong[U(k)] and state[j] == C_POINT:
+            pos[j] = p
+            p += 1
+    own = p - start
+    if extend:
+        for k in range(indptr[ui], indptr[ui + U(1)]):
+            j = U(indices[U(k)])
+            if strong[U(k)] and state[j] != C_POINT and j != ui and not _shares(
+                    indptr, indices, strong, pos, j, start, own):
+                for e in range(indptr[j], indptr[j + U(1)]):
+                    m = U(indices[U(e)])
+                    if strong[U(e)] and state[m] == C_POINT and pos[m] < 0:
+                        pos[m] = p
+                        p += 1
+    return p - start, own
+
+
+@jit(inline="always")
+def _unmark_row(indptr, indices, strong, state, pos, ui, extended):
+    """Undo :func:`_mark_row`: the row's own marks, and with ``extended`` every point it
+    can have marked beyond them."""
+    for k in range(indptr[ui], indptr[ui + U(1)]):
+        j = U(indices[U(k)])
+        if strong[U(k)]:
+            pos[j] = -1
+            if extended and state[j] != C_POINT:
+                for e in range(indptr[j], indptr[j + U(1)]):
+                    pos[U(indices[U(e)])] = -1
+
+
 @jit(parallel=True)
-def interpolation_counts(indptr, indices, strong, state, counts):
-    """``counts[i + 1]``: the entries of row ``i`` of P (1 for a C point, its strong C couplings for an F point)."""
+def interpolation_counts(indptr, indices, strong, state, counts, extend, cap, nchunks):
+    """``counts[i + 1]``: the entries of row ``i`` of P (1 for a C point; for an F point
+    its strong C couplings, and with ``extend`` the extension of :func:`interpolation`,
+    at most ``cap`` entries in an extended row).  Returns the most interpolation points
+    of any row before the cap (the size of :func:`interpolation`'s ``width``)."""
     n = indptr.shape[0] - 1
-    for i in prange(n):
-        if state[i] == C_POINT:
-            counts[i + 1] = 1
-        else:
-            c = 0
-            for k in range(indptr[i], indptr[i + 1]):
-                if strong[k] and state[indices[k]] == C_POINT:
-                    c += 1
-            counts[i + 1] = c
+    widest = np.zeros(nchunks, dtype=np.int64)
+    for c in prange(nchunks):
+        lo, hi = _bounds(n, nchunks, c)
+        pos = np.full(n, -1, dtype=np.int64)
+        w = 1
+        for i in range(lo, hi):
+            ui = U(i)
+            if state[ui] == C_POINT:
+                counts[ui + U(1)] = 1
+                continue
+            places, own = _mark_row(indptr, indices, strong, state, pos, ui, extend)
+            counts[ui + U(1)] = min(places, cap) if places > own else places
+            w = max(w, places)
+            _unmark_row(indptr, indices, strong, state, pos, ui, places > own)
+        widest[c] = w
+    return widest.max()
 
 
 @jit(parallel=True)
-def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata, nchunks):
-    """Fill P (``pptr`` given): the classical interpolation weights of every F point."""
+def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata, extend, cap,
+                  width, nchunks):
+    """Fill P (``pptr`` and ``width`` from :func:`interpolation_counts` with the same
+    ``extend`` and ``cap``): the classical interpolation weights of every F point; with
+    ``extend``, a row with a strong F neighbour that shares none of its strong C points
+    interpolates from theirs too, by the extended+i formula (:func:`_extended_row`)."""
     n = indptr.shape[0] - 1
     for c in prange(nchunks):
         lo, hi = _bounds(n, nchunks, c)
-        pos = np.full(n, -1, dtype=pind.dtype)
+        pos = np.full(n, -1, dtype=np.int64)
+        weights = np.empty(width)
+        columns = np.empty(width, dtype=pind.dtype)
         for i in range(lo, hi):
             ui = U(i)
             start = pptr[ui]
@@ -97,11 +168,18 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
                 pdata[U(start)] = 1.0
                 continue
             first, last = indptr[ui], indptr[ui + U(1)]
+            places, own = _mark_row(indptr, indices, strong, state, pos, ui, extend)
+            if places > own:
+                _extended_row(indptr, indices, data, strong, state, cidx, pos, ui, places,
+                              weights, columns)
+                _keep_largest(weights, columns, places, cap, pind, pdata, start,
+                              pptr[ui + U(1)] - start)
+                _unmark_row(indptr, indices, strong, state, pos, ui, True)
+                continue
             p = start
             for k in range(first, last):
                 j = U(indices[U(k)])
                 if strong[U(k)] and state[j] == C_POINT:
-                    pos[j] = p
                     pind[U(p)] = cidx[j]
                     pdata[U(p)] = 0.0
                     p += 1
@@ -116,7 +194,7 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
                     aii += a
                     diag += a
                 elif strong[U(k)] and state[j] == C_POINT:
-                    pdata[U(pos[j])] += a
+                    pdata[U(start + pos[j])] += a
                 elif strong[U(k)]:
                     # a strong F neighbour: spread a_ij over i's strong C points
                     # in proportion to j's negative couplings to them
@@ -128,7 +206,7 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
                         for e in range(indptr[j], indptr[j + U(1)]):
                             q = pos[U(indices[U(e)])]
                             if q >= 0 and data[U(e)] < 0.0:
-                                pdata[U(q)] += a * (data[U(e)] / denom)
+                                pdata[U(start + q)] += a * (data[U(e)] / denom)
                     else:
                         diag += a
                 else:
@@ -141,6 +219,100 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
                 j = U(indices[U(k)])
                 if strong[U(k)] and state[j] == C_POINT:
                     pos[j] = -1
+
+
+@jit(inline="always")
+def _extended_row(indptr, indices, data, strong, state, cidx, pos, ui, places, weights,
+                  columns):
+    """Row ``ui`` of P by the extended+i formula (H. De Sterck, R. D. Falgout, J. W.
+    Nolting and U. M. Yang, "Distance-two interpolation for parallel algebraic
+    multigrid", Numer. Linear Algebra Appl. 15, 2008) over the points ``pos`` marks,
+    into ``weights`` and ``columns`` (``places`` of them):
+
+    ``w_ij = -(a_ij + sum_k a_ik a-_kj / d_k) / D``, ``d_k = sum_{l marked or i} a-_kl``,
+    ``D = a_ii + sum (couplings to points neither marked nor strong F)
+    + sum_k a_ik a-_ki / d_k``, over the strong F neighbours ``k``, with ``a-``
+    the negative entries (a neighbour with ``d_k = 0`` is lumped onto ``D``)."""
+    for k in range(indptr[ui], indptr[ui + U(1)]):  # the columns: marked neighbours and
+        j = U(indices[U(k)])                        # marked points of strong F neighbours
+        if pos[j] >= 0:
+            columns[U(pos[j])] = cidx[j]
+        elif strong[U(k)] and state[j] != C_POINT:
+            for e in range(indptr[j], indptr[j + U(1)]):
+                m = U(indices[U(e)])
+                if pos[m] >= 0:
+                    columns[U(pos[m])] = cidx[m]
+    for q in range(places):
+        weights[q] = 0.0
+    aii = 0.0
+    diag = 0.0
+    for k in range(indptr[ui], indptr[ui + U(1)]):
+        j = U(indices[U(k)])
+        a = data[U(k)]
+        if j == ui:
+            aii += a
+            diag += a
+        elif pos[j] >= 0:
+            weights[U(pos[j])] += a
+        elif strong[U(k)] and state[j] != C_POINT:
+            denom = 0.0
+            for e in range(indptr[j], indptr[j + U(1)]):
+                m = U(indices[U(e)])
+                if data[U(e)] < 0.0 and (pos[m] >= 0 or m == ui):
+                    denom += data[U(e)]
+            if denom < 0.0:
+                for e in range(indptr[j], indptr[j + U(1)]):
+                    m = U(indices[U(e)])
+                    if data[U(e)] < 0.0:
+                        if pos[m] >= 0:
+                            weights[U(pos[m])] += a * (data[U(e)] / denom)
+                        elif m == ui:
+                            diag += a * (data[U(e)] / denom)
+            else:
+                diag += a
+        else:
+            diag += a
+    if not diag > 0.0:
+        diag = aii
+    for q in range(places):
+        weights[q] = -weights[q] / diag
+
+
+@jit(inline="always")
+def _keep_largest(weights, columns, places, cap, pind, pdata, start, count):
+    """The ``count`` (``min(places, cap)``) largest weights in size (the first place wins a
+    tie), scaled to keep the row's sum, into P's row from ``start``, sorted by column."""
+    total = 0.0
+    for q in range(places):
+        total += weights[q]
+    kept = 0.0
+    for r in range(count):  # selection: rows are short
+        best = -1
+        for q in range(places):
+            if columns[q] >= 0 and (best < 0 or abs(weights[q]) > abs(weights[best])):
+                best = q
+        pind[U(start + r)] = columns[best]
+        pdata[U(start + r)] = weights[best]
+        kept += weights[best]
+        columns[best] = -1
+    scale = total / kept if count < places and kept != 0.0 else 1.0
+    for r in range(count):
+        pdata[U(start + r)] *= scale
+    _sort_row(pind, pdata, start, start + count)
+
+
+@jit(inline="always")
+def _sort_row(pind, pdata, start, end):
+    """Insertion sort of one short row of P by column."""
+    for q in range(start + 1, end):
+        col, val = pind[U(q)], pdata[U(q)]
+        r = q - 1
+        while r >= start and pind[U(r)] > col:
+            pind[U(r + 1)] = pind[U(r)]
+            pdata[U(r + 1)] = pdata[U(r)]
+            r -= 1
+        pind[U(r + 1)] = col
+        pdata[U(r + 1)] = val
 
 
 @jit()
