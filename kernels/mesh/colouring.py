@@ -18,18 +18,24 @@ __all__ = ["Colouring", "triangle_colouring", "row_colouring", "block_size_for"]
 
 def block_size_for(n_cells):
     """Cells per block for kernels bound by arithmetic and by the points blocks share:
-    about ``n_cells / 128``, a power of two from 1024 to 65536.
+    about ``n_cells / 32``, a power of two from 1024 to 2**20.
 
     Each point on a block's border is loaded once per colour, so larger blocks
-    cost less; 128 blocks keep dozens per colour for the threads to share.
-    Measured on the ``inherited`` stiffness product (``rectangle(16, 16)`` refined 8
-    times, 33.5 million triangles, 2 threads): blocks of 1024, 4096, 16384 and 65536
-    took 75, 58, 50 and 46 ms; on 2 million triangles 3.3, 3.2, 3.0 and 2.8 ms.  The
-    element-by-element csr assembly (8 million triangles): 45, 38 and 37 ms for 1024,
-    8192 and 65536.
+    cost less, and fewer blocks need fewer colours (a pass over the vectors
+    each); 32 blocks in 2 to 4 colours still give 8 to 16 threads a block
+    each.  The size never depends on the thread count: the sums, and so the
+    bits, do not either.  Measured on the ``inherited`` stiffness product
+    (``rectangle(16, 16)`` refined 8 times, 33.5 million triangles, 2
+    threads): blocks of 1024, 4096, 16384 and 65536 took 75, 58, 50 and 46 ms.
+    The gmg V-cycle on ``rectangle(125, 125)`` refined 3, 4 and 5 times (2e6 to
+    3.2e7 triangles, 2 threads, medians of 10 in one process, 2026-12-04):
+    n/128 blocks (capped at 65536, 3 to 4 colours) against n/32 (2 colours): 35.5
+    and 30.2 ms, 158 and 141 ms, 538 and 492 ms.  The element-by-element csr
+    assembly and the ``edges`` and ``geometry`` products did not change beyond
+    the noise.
     """
-    target = max(1, int(n_cells) // 128)
-    return int(min(65536, max(1024, 1 << (target.bit_length() - 1))))
+    target = max(1, int(n_cells) // 32)
+    return int(min(1 << 20, max(1024, 1 << (target.bit_length() - 1))))
 
 
 class Colouring(NamedTuple):
