@@ -162,11 +162,9 @@ def apply_dirichlet(A, b, points, values=0.0):
 
     is_fixed = np.zeros(n, dtype=bool)
     is_fixed[fixed] = True
-    row_nnz = np.diff(A.indptr)
-    empty = row_nnz == 0
-    if A.nnz:
-        zero_rows = np.add.reduceat(np.abs(A.data), np.minimum(A.indptr[:-1], A.nnz - 1)) == 0
-        empty |= zero_rows & (row_nnz > 0)
+    diag = np.empty(n)
+    empty = np.empty(n, dtype=np.bool_)  # rows with no entry, or zeros only
+    _jit_dirichlet.row_summary(A.indptr, A.indices, A.data, diag, empty)
     isolated = np.flatnonzero(empty & ~is_fixed)
     if isolated.size:
         loaded = isolated[b[isolated] != 0]
@@ -176,7 +174,6 @@ def apply_dirichlet(A, b, points, values=0.0):
                 f"row {k} of the matrix is empty but b[{k}] = {float(b[k])!r}: the system has no solution"
             )
     free = np.flatnonzero(~is_fixed & ~empty)
-    diag = A.diagonal()
     bad = free[~(diag[free] > 0)]
     if bad.size:
         k = int(bad[0])

@@ -6,6 +6,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from conftest import EPS, jittered_mesh, meshes
 from hypothesis import given
+from hypothesis import strategies as st
 
 import hatkernels
 from hatkernels import Mesh, apply_dirichlet, assemble_load, assemble_stiffness
@@ -135,3 +136,30 @@ def test_bad_inputs_are_named():
     N[5, 5] = -1.0
     with pytest.raises(hatkernels.InputError, match="row 5 has diagonal -1.0 <= 0"):
         apply_dirichlet(N, b, [0])
+
+
+@pytest.mark.two_threads
+@given(st.integers(1, 40), st.floats(0.0, 0.5), st.integers(0, 2**32 - 1))
+def test_row_summary_matches_scipy(n, density, seed):
+    # reference library: scipy's diagonal and row sums of absolute values; rows with no
+    # entry, rows of explicit zeros and repeated entries included
+    from hatkernels import threads
+    from hatkernels._jit import dirichlet as _jd
+
+    rng = np.random.default_rng(seed)
+    A = sp.random_array((n, n), density=density, rng=rng, format="coo")
+    rows = np.r_[A.row, rng.integers(0, n, 3)]  # three repeated or explicitly zero entries
+    cols = np.r_[A.col, rng.integers(0, n, 3)]
+    vals = np.r_[A.data, 0.0, 0.0, rng.standard_normal()]
+    C = sp.csr_array((vals, (rows, cols)), shape=(n, n))  # keeps explicit zeros
+    C.sum_duplicates()
+    results = []
+    for t in (1, 2):
+        with threads(t):
+            diag, empty = np.empty(n), np.empty(n, dtype=np.bool_)
+            _jd.row_summary(C.indptr, C.indices, C.data, diag, empty)
+            results.append((diag, empty))
+    diag, empty = results[0]
+    assert np.array_equal(diag, results[1][0]) and np.array_equal(empty, results[1][1])
+    assert np.array_equal(diag, C.diagonal())
+    assert np.array_equal(empty, np.asarray(abs(C).sum(axis=1)).ravel() == 0)

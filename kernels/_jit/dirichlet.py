@@ -42,3 +42,20 @@ def reduced_fill(indptr, indices, data, newindex, free, g, b, rindptr, rindices,
             else:
                 acc -= data[s] * g[j]
         rb[r] = acc
+
+
+@jit(parallel=True)
+def row_summary(indptr, indices, data, diag, empty):
+    """Per row ``i``: ``diag[i]`` = the sum of its entries in column ``i``, and
+    ``empty[i]`` = 1 when it has no entry or only zeros (one pass, no temporaries)."""
+    for i in prange(indptr.shape[0] - 1):
+        d = 0.0
+        nonzero = False
+        for s in range(indptr[i], indptr[i + 1]):
+            v = data[s]
+            if v != 0.0:
+                nonzero = True
+            if indices[s] == i:
+                d += v
+        diag[i] = d
+        empty[i] = 0 if nonzero else 1
