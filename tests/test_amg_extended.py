@@ -42,12 +42,14 @@ def kernel_p(A, theta=THETA, extend=True):
     state = _split(A.indptr, A.indices, strong, n)
     cidx = np.cumsum(state, dtype=A.indptr.dtype) - 1
     pptr = np.zeros(n + 1, dtype=A.indptr.dtype)
-    width = _a.interpolation_counts(A.indptr, A.indices, strong, state, pptr, extend, CAP, 2)
+    extended = np.zeros(n if extend else 0, dtype=np.uint8)
+    width = _a.interpolation_counts(A.indptr, A.indices, strong, state, pptr, extend, CAP,
+                                    extended, 2)
     np.cumsum(pptr, out=pptr)
     pind = np.empty(pptr[-1], dtype=A.indptr.dtype)
     pdata = np.empty(pptr[-1])
     _a.interpolation(A.indptr, A.indices, A.data, strong, state, cidx, pptr, pind, pdata,
-                     extend, CAP, width, 2)
+                     extended, CAP, width, 2)
     P = sp.csr_array((pdata, pind, pptr), shape=(n, int(state.sum())))
     return P, strong, state
 

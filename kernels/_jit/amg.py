@@ -123,16 +123,18 @@ def _unmark_row(indptr, indices, strong, state, pos, ui, extended):
 
 
 @jit(parallel=True)
-def interpolation_counts(indptr, indices, strong, state, counts, extend, cap, nchunks):
+def interpolation_counts(indptr, indices, strong, state, counts, extend, cap, extended,
+                         nchunks):
     """``counts[i + 1]``: the entries of row ``i`` of P (1 for a C point; for an F point
     its strong C couplings, and with ``extend`` the extension of :func:`interpolation`,
-    at most ``cap`` entries in an extended row).  Returns the most interpolation points
-    of any row before the cap (the size of :func:`interpolation`'s ``width``)."""
+    at most ``cap`` entries in an extended row; ``extended[i]`` = 1 for such a row).
+    Returns the most interpolation points of any row before the cap (the size of
+    :func:`interpolation`'s ``width``)."""
     n = indptr.shape[0] - 1
     widest = np.zeros(nchunks, dtype=np.int64)
     for c in prange(nchunks):
         lo, hi = _bounds(n, nchunks, c)
-        pos = np.full(n, -1, dtype=np.int64)
+        pos = np.full(n, -1, dtype=np.int32)  # places within one row of P
         w = 1
         for i in range(lo, hi):
             ui = U(i)
@@ -141,6 +143,8 @@ def interpolation_counts(indptr, indices, strong, state, counts, extend, cap, nc
                 continue
             places, own = _mark_row(indptr, indices, strong, state, pos, ui, extend)
             counts[ui + U(1)] = min(places, cap) if places > own else places
+            if extend:
+                extended[ui] = places > own
             w = max(w, places)
             _unmark_row(indptr, indices, strong, state, pos, ui, places > own)
         widest[c] = w
@@ -148,16 +152,17 @@ def interpolation_counts(indptr, indices, strong, state, counts, extend, cap, nc
 
 
 @jit(parallel=True)
-def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata, extend, cap,
-                  width, nchunks):
-    """Fill P (``pptr`` and ``width`` from :func:`interpolation_counts` with the same
-    ``extend`` and ``cap``): the classical interpolation weights of every F point; with
-    ``extend``, a row with a strong F neighbour that shares none of its strong C points
-    interpolates from theirs too, by the extended+i formula (:func:`_extended_row`)."""
+def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata, extended,
+                  cap, width, nchunks):
+    """Fill P (``pptr``, ``extended`` and ``width`` from :func:`interpolation_counts`,
+    ``extended`` empty without ``extend``): the classical interpolation weights of every
+    F point; a row with a strong F neighbour that shares none of its strong C points
+    (``extended``) interpolates from theirs too, by the extended+i formula
+    (:func:`_extended_row`)."""
     n = indptr.shape[0] - 1
     for c in prange(nchunks):
         lo, hi = _bounds(n, nchunks, c)
-        pos = np.full(n, -1, dtype=np.int64)
+        pos = np.full(n, -1, dtype=np.int32)  # places within one row of P
         weights = np.empty(width)
         columns = np.empty(width, dtype=pind.dtype)
         for i in range(lo, hi):
@@ -168,6 +173,7 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
                 pdata[U(start)] = 1.0
                 continue
             first, last = indptr[ui], indptr[ui + U(1)]
+            extend = extended.size > 0 and extended[ui] == 1
             places, own = _mark_row(indptr, indices, strong, state, pos, ui, extend)
             if places > own:
                 _extended_row(indptr, indices, data, strong, state, cidx, pos, ui, places,

@@ -163,16 +163,17 @@ class ClassicalHierarchy:
             cidx = np.cumsum(state, dtype=itype)
             cidx -= 1
             pptr = np.zeros(n + 1, dtype=itype)
+            extended = np.zeros(n if extend else 0, dtype=np.uint8)
             width = _a.interpolation_counts(indptr, indices, strong, state, pptr, extend,
-                                            EXTENDED_CAP, _chunks())
+                                            EXTENDED_CAP, extended, _chunks())
             np.cumsum(pptr, out=pptr)
             ptype = index_dtype(n, pptr[-1])
             pptr = pptr.astype(ptype, copy=False)
             pind = np.empty(pptr[-1], dtype=ptype)
             pdata = np.empty(pptr[-1])
             _a.interpolation(indptr, indices, data, strong, state, cidx.astype(ptype, copy=False),
-                             pptr, pind, pdata, extend, EXTENDED_CAP, width, _chunks())
-            del strong, state, cidx
+                             pptr, pind, pdata, extended, EXTENDED_CAP, width, _chunks())
+            del strong, state, cidx, extended
             rptr, rind, rdata = _a.transpose(pptr, pind, pdata, n_coarse)
             cptr = np.zeros(n_coarse + 1, dtype=np.int64)
             _a.galerkin_counts(rptr, rind, indptr, indices, data, pptr, pind, n_coarse, cptr,
