@@ -251,9 +251,10 @@ class ClassicalAMG(_AMG):
         entries per row on average (triangles), else ``classical``
         (tetrahedra, whose denser coarse levels make the extension's setup
         cost more than it saves).  Measured at 1e6 unknowns, CG to 1e-10
-        (docs/solvers.md): ``disk(600)`` 27 to 12 iterations and 30 % less
-        time, a jittered Delaunay mesh 34 to 14 and 16 % less, ``l_shape(400)``
-        14 to 9; ``ball(30)`` 15 to 10 but 25 to 40 % more time for one solve.
+        (docs/solvers.md): ``disk(600)`` 27 to 12 iterations and 16 to 30 %
+        less time, a jittered Delaunay mesh 34 to 14 and 7 to 27 % less,
+        ``l_shape(400)`` 14 to 9; ``ball(30)`` 15 to 10 but 25 to 55 % more
+        time for one solve.
 
     Costs: as ``amg-rs``; setup memory beyond the hierarchy is about one
     byte per matrix entry and a few index arrays of the level's length.
