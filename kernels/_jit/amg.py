@@ -72,12 +72,12 @@ def strength(indptr, indices, data, theta, strong):
 
 
 @jit(inline="always")
-def _shares(indptr, indices, strong, pos, k, start, n_strong):
+def _shares(indptr, indices, strong, pos, k, own):
     """Whether point ``k`` has a strong coupling to one of the F point's own strong C
-    points (``pos`` in ``start .. start + n_strong``)."""
+    points (``pos`` below ``own``)."""
     for e in range(indptr[k], indptr[k + U(1)]):
         q = pos[U(indices[U(e)])]
-        if strong[U(e)] and start <= q < start + n_strong:
+        if strong[U(e)] and 0 <= q < own:
             return True
     return False
 
@@ -88,25 +88,24 @@ def _mark_row(indptr, indices, strong, state, pos, ui, extend):
     ``(places, own)``: the first ``own`` are ``ui``'s strong C points, in matrix order;
     with ``extend`` the strong C points of every strong F neighbour that shares none of
     them follow, in the order met."""
-    start = 0
-    p = start
+    p = 0
     for k in range(indptr[ui], indptr[ui + U(1)]):
         j = U(indices[U(k)])
         if strong[U(k)] and state[j] == C_POINT:
             pos[j] = p
             p += 1
-    own = p - start
+    own = p
     if extend:
         for k in range(indptr[ui], indptr[ui + U(1)]):
             j = U(indices[U(k)])
-            if strong[U(k)] and state[j] != C_POINT and j != ui and not _shares(
-                    indptr, indices, strong, pos, j, start, own):
+            if strong[U(k)] and state[j] != C_POINT and not _shares(
+                    indptr, indices, strong, pos, j, own):
                 for e in range(indptr[j], indptr[j + U(1)]):
                     m = U(indices[U(e)])
                     if strong[U(e)] and state[m] == C_POINT and pos[m] < 0:
                         pos[m] = p
                         p += 1
-    return p - start, own
+    return p, own
 
 
 @jit(inline="always")

@@ -141,6 +141,9 @@ class ClassicalHierarchy:
                  second_pass=False, interpolation="auto"):
         self.levels = []
         self.second_pass = bool(second_pass)
+        if interpolation not in INTERPOLATIONS:
+            raise InputError(f"interpolation must be one of {INTERPOLATIONS}, "
+                             f"got {interpolation!r}")
         if interpolation == "auto":
             rows = max(A.shape[0], 1)
             interpolation = "extended" if A.nnz <= AUTO_ROW_LIMIT * rows else "classical"
@@ -247,7 +250,8 @@ class ClassicalAMG(_AMG):
         extended+i formula of De Sterck, Falgout, Nolting and Yang (2008),
         keeping its 4 largest weights (``EXTENDED_CAP``) scaled to the same
         sum; every other row stays classical, so a uniform mesh keeps its
-        hierarchy.  ``auto`` (default): ``extended`` when A has at most 10
+        first level's P (a few rows of its coarse levels may extend).
+        ``auto`` (default): ``extended`` when A has at most 10
         entries per row on average (triangles), else ``classical``
         (tetrahedra, whose denser coarse levels make the extension's setup
         cost more than it saves).  Measured at 1e6 unknowns, CG to 1e-10
