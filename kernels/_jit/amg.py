@@ -83,16 +83,17 @@ def _shares(indptr, indices, strong, pos, k, own):
 
 
 @jit(inline="always")
-def _mark_row(indptr, indices, strong, state, pos, ui, extend):
-    """Give each interpolation point of F point ``ui`` its place ``pos`` (from 0); return
-    ``(places, own)``: the first ``own`` are ``ui``'s strong C points, in matrix order;
-    with ``extend`` the strong C points of every strong F neighbour that shares none of
-    them follow, in the order met."""
+def _mark_row(indptr, indices, strong, state, pos, marked, ui, extend):
+    """Give each interpolation point of F point ``ui`` its place ``pos`` (from 0; ``marked``
+    lists the points by place); return ``(places, own)``: the first ``own`` are ``ui``'s
+    strong C points, in matrix order; with ``extend`` the strong C points of every
+    strong F neighbour that shares none of them follow, in the order met."""
     p = 0
     for k in range(indptr[ui], indptr[ui + U(1)]):
         j = U(indices[U(k)])
         if strong[U(k)] and state[j] == C_POINT:
             pos[j] = p
+            marked[p] = j
             p += 1
     own = p
     if extend:
@@ -104,21 +105,16 @@ def _mark_row(indptr, indices, strong, state, pos, ui, extend):
                     m = U(indices[U(e)])
                     if strong[U(e)] and state[m] == C_POINT and pos[m] < 0:
                         pos[m] = p
+                        marked[p] = m
                         p += 1
     return p, own
 
 
 @jit(inline="always")
-def _unmark_row(indptr, indices, strong, state, pos, ui, extended):
-    """Undo :func:`_mark_row`: the row's own marks, and with ``extended`` every point it
-    can have marked beyond them."""
-    for k in range(indptr[ui], indptr[ui + U(1)]):
-        j = U(indices[U(k)])
-        if strong[U(k)]:
-            pos[j] = -1
-            if extended and state[j] != C_POINT:
-                for e in range(indptr[j], indptr[j + U(1)]):
-                    pos[U(indices[U(e)])] = -1
+def _unmark_row(pos, marked, places):
+    """Undo :func:`_mark_row`."""
+    for q in range(places):
+        pos[U(marked[q])] = -1
 
 
 @jit(parallel=True)
@@ -134,18 +130,19 @@ def interpolation_counts(indptr, indices, strong, state, counts, extend, cap, ex
     for c in prange(nchunks):
         lo, hi = _bounds(n, nchunks, c)
         pos = np.full(n, -1, dtype=np.int32)  # places within one row of P
+        marked = np.empty(n, dtype=np.int64)  # a row's points by place (pages touched: few)
         w = 1
         for i in range(lo, hi):
             ui = U(i)
             if state[ui] == C_POINT:
                 counts[ui + U(1)] = 1
                 continue
-            places, own = _mark_row(indptr, indices, strong, state, pos, ui, extend)
+            places, own = _mark_row(indptr, indices, strong, state, pos, marked, ui, extend)
             counts[ui + U(1)] = min(places, cap) if places > own else places
             if extend:
                 extended[ui] = places > own
             w = max(w, places)
-            _unmark_row(indptr, indices, strong, state, pos, ui, places > own)
+            _unmark_row(pos, marked, places)
         widest[c] = w
     return widest.max()
 
@@ -162,6 +159,7 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
     for c in prange(nchunks):
         lo, hi = _bounds(n, nchunks, c)
         pos = np.full(n, -1, dtype=np.int32)  # places within one row of P
+        marked = np.empty(width, dtype=np.int64)
         weights = np.empty(width)
         columns = np.empty(width, dtype=pind.dtype)
         for i in range(lo, hi):
@@ -173,13 +171,14 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
                 continue
             first, last = indptr[ui], indptr[ui + U(1)]
             extend = extended.size > 0 and extended[ui] == 1
-            places, own = _mark_row(indptr, indices, strong, state, pos, ui, extend)
+            places, own = _mark_row(indptr, indices, strong, state, pos, marked, ui, extend)
             if places > own:
-                _extended_row(indptr, indices, data, strong, state, cidx, pos, ui, places,
-                              weights, columns)
+                _extended_row(indptr, indices, data, strong, state, pos, ui, places, weights)
+                for q in range(places):
+                    columns[q] = cidx[U(marked[q])]
                 _keep_largest(weights, columns, places, cap, pind, pdata, start,
                               pptr[ui + U(1)] - start)
-                _unmark_row(indptr, indices, strong, state, pos, ui, True)
+                _unmark_row(pos, marked, places)
                 continue
             p = start
             for k in range(first, last):
@@ -220,33 +219,20 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
                 diag = aii
             for q in range(start, p):
                 pdata[U(q)] = -pdata[U(q)] / diag
-            for k in range(first, last):
-                j = U(indices[U(k)])
-                if strong[U(k)] and state[j] == C_POINT:
-                    pos[j] = -1
+            _unmark_row(pos, marked, own)
 
 
 @jit(inline="always")
-def _extended_row(indptr, indices, data, strong, state, cidx, pos, ui, places, weights,
-                  columns):
+def _extended_row(indptr, indices, data, strong, state, pos, ui, places, weights):
     """Row ``ui`` of P by the extended+i formula (H. De Sterck, R. D. Falgout, J. W.
     Nolting and U. M. Yang, "Distance-two interpolation for parallel algebraic
     multigrid", Numer. Linear Algebra Appl. 15, 2008) over the points ``pos`` marks,
-    into ``weights`` and ``columns`` (``places`` of them):
+    into ``weights`` by place (``places`` of them):
 
     ``w_ij = -(a_ij + sum_k a_ik a-_kj / d_k) / D``, ``d_k = sum_{l marked or i} a-_kl``,
     ``D = a_ii + sum (couplings to points neither marked nor strong F)
     + sum_k a_ik a-_ki / d_k``, over the strong F neighbours ``k``, with ``a-``
     the negative entries (a neighbour with ``d_k = 0`` is lumped onto ``D``)."""
-    for k in range(indptr[ui], indptr[ui + U(1)]):  # the columns: marked neighbours and
-        j = U(indices[U(k)])                        # marked points of strong F neighbours
-        if pos[j] >= 0:
-            columns[U(pos[j])] = cidx[j]
-        elif strong[U(k)] and state[j] != C_POINT:
-            for e in range(indptr[j], indptr[j + U(1)]):
-                m = U(indices[U(e)])
-                if pos[m] >= 0:
-                    columns[U(pos[m])] = cidx[m]
     for q in range(places):
         weights[q] = 0.0
     aii = 0.0
