@@ -180,15 +180,12 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
                               pptr[ui + U(1)] - start)
                 _unmark_row(pos, marked, places)
                 continue
-            p = start
-            for k in range(first, last):
-                j = U(indices[U(k)])
-                if strong[U(k)] and state[j] == C_POINT:
-                    pind[U(p)] = cidx[j]
-                    pdata[U(p)] = 0.0
-                    p += 1
-            if p == start:
+            if own == 0:
                 continue
+            for q in range(own):  # the strong C points, in matrix order (as marked)
+                pind[U(start + q)] = cidx[U(marked[q])]
+                pdata[U(start + q)] = 0.0
+            p = start + own
             aii = 0.0
             diag = 0.0
             for k in range(first, last):
