@@ -109,7 +109,7 @@ def sweep(mode, last, n, K, dinv_c, dinv_e, dinv_v, topo, held_e, held_v, pe, pv
                 loc[0] = c * dinv_v[tri[cell, 0]] * loc[0]
                 loc[_off(n, 0, n)] = c * dinv_v[tri[cell, 1]] * loc[_off(n, 0, n)]
                 loc[_off(0, n, n)] = c * dinv_v[tri[cell, 2]] * loc[_off(0, n, n)]
-            _local_apply(loc, out, n, K[cell], 0, None, -1, False)  # the side rows only
+            _local_apply(loc, out, n, K[cell], 0)  # the side rows only
             kc = K[cell]
             sd = 2.0 * (kc[0, 0] + kc[1, 1] + kc[2, 2])
             sh, sv, sg = 2.0 * kc[0, 1], 2.0 * kc[0, 2], 2.0 * kc[1, 2]

@@ -83,12 +83,15 @@ def _side(c, le, n, base_e, cell_edge, cell_flip, edge_cells, held_e, mode):
 
 
 @jit()
-def _gather(x, c, loc, n, topo, held_e, held_v, mode):
+def _gather(x, c, loc, n, topo, held_e, held_v, mode, ring=False):
     """The patch of cell ``c`` from the flat vector ``x`` into ``loc``.
 
     ``mode`` MASKED: held points read as 0; OWNED: shared points the cell does
     not own (edges: owned by their lower cell; vertices: by their lowest cell)
-    read as 0, so that summing over cells counts every point once.
+    read as 0, so that summing over cells counts every point once.  With ``ring``
+    only the sides, the corners and the inside points at most two rows or columns
+    from a side (rows 1 and 2, the first two and last two points of every other
+    row) are read: what the side rows and :func:`_inside_rows` take from ``loc``.
     """
     tri, cell_edge, cell_flip, edge_v, edge_cells, edge_le, vptr, vcell, vlv = topo
     m = tri.shape[0]
@@ -100,6 +103,12 @@ def _gather(x, c, loc, n, topo, held_e, held_v, mode):
     for j in range(1, n - 1):
         row = uint64(start + _ioff(j, n))
         o = uint64(_off(0, j, n))
+        if ring and j > 2 and n - j - 1 > 4:
+            loc[o + one] = x[row]
+            loc[o + uint64(2)] = x[row + one]
+            loc[o + uint64(n - j - 2)] = x[row + uint64(n - j - 3)]
+            loc[o + uint64(n - j - 1)] = x[row + uint64(n - j - 2)]
+            continue
         for i in range(uint64(0), uint64(n - j - 1)):
             loc[o + one + i] = x[row + i]
     # the three sides in one loop, positions kept incrementally (no division, no branch
@@ -218,36 +227,50 @@ def _stencil(loc, c0, cb, ca, d, h, v, g):
 
 
 @jit()
-def _local_apply(loc, out, n, K, what, y=None, start=-1, inside=True):
-    """``out`` = the patch's rows (inside rows whole, boundary rows this cell's part).
-
-    With ``y`` given (``what`` 0), the inside rows go straight to ``y`` from ``start``
-    (the cell's inside block) instead of ``out``: one pass through the cache less;
-    with ``inside`` False they are not computed (the caller does, row by row)."""
+def _inside_rows(x, loc, y, n, K, start, middle):
+    """The inside rows of the product written to ``y``: with ``middle`` the points whose
+    seven points are all inside, straight from ``x`` (no copy of the patch; the loop
+    over a row vectorises), else the others from ``loc`` (as :func:`_gather` with
+    ``ring`` leaves it).  The same sums in the same order as :func:`_stencil`."""
     d = 2.0 * (K[0, 0] + K[1, 1] + K[2, 2])
     h, v, g = 2.0 * K[0, 1], 2.0 * K[0, 2], 2.0 * K[1, 2]
-    for j in range(1, n - 1 if inside else 1):
-        o, below, above = _off(0, j, n), _off(0, j - 1, n), _off(0, j + 1, n)
-        if what == 0:
-            # unsigned indices: no negative-index wrap check, so the loop vectorises
-            o0, b0, a0 = uint64(o + 1), uint64(below + 1), uint64(above)
-            if y is not None:
-                row = uint64(start + _ioff(j, n))
-                for q in range(uint64(0), uint64(n - j - 1)):
-                    c0, cb, ca = o0 + q, b0 + q, a0 + q
-                    y[row + q] = (d * loc[c0] + h * (loc[c0 - uint64(1)] + loc[c0 + uint64(1)])
-                                  + v * (loc[cb] + loc[ca + uint64(1)])
-                                  + g * (loc[cb + uint64(1)] + loc[ca]))
+    one = uint64(1)
+    for j in range(1, n - 1):
+        row = uint64(start + _ioff(j, n))
+        width = uint64(n - j - 1)
+        whole = j == 1 or width < uint64(3)
+        if middle:
+            if whole:
                 continue
-            for q in range(uint64(0), uint64(n - j - 1)):
-                c0, cb, ca = o0 + q, b0 + q, a0 + q
-                out[c0] = (d * loc[c0] + h * (loc[c0 - uint64(1)] + loc[c0 + uint64(1)])
-                           + v * (loc[cb] + loc[ca + uint64(1)])
-                           + g * (loc[cb + uint64(1)] + loc[ca]))
-        else:
+            below = uint64(start + _ioff(j - 1, n))
+            above = uint64(start + _ioff(j + 1, n))
+            for q in range(one, width - one):
+                y[row + q] = (d * x[row + q] + h * (x[row + q - one] + x[row + q + one])
+                              + v * (x[below + q] + x[above + q])
+                              + g * (x[below + q + one] + x[above + q - one]))
+            continue
+        o, ob, oa = uint64(_off(0, j, n) + 1), uint64(_off(0, j - 1, n) + 1), uint64(_off(0, j + 1, n))
+        if whole:
+            for q in range(uint64(0), width):
+                y[row + q] = _stencil(loc, o + q, ob + q, oa + q, d, h, v, g)
+            continue
+        y[row] = _stencil(loc, o, ob, oa, d, h, v, g)
+        last = width - one
+        y[row + last] = _stencil(loc, o + last, ob + last, oa + last, d, h, v, g)
+
+
+@jit()
+def _local_apply(loc, out, n, K, what):
+    """``out`` = the rows the patch in ``loc`` gives: with ``what`` 1 or 2 (the diagonal,
+    the absolute row sums) the inside rows whole and this cell's part of the side rows;
+    with ``what`` 0 (the product) this cell's part of the side rows only; the inside
+    rows of a product are made where they are used (:func:`_inside_rows`,
+    :mod:`hatkernels._jit.patch_smooth`)."""
+    if what != 0:
+        for j in range(1, n - 1):
+            o = _off(0, j, n)
             for i in range(1, n - j):
                 out[o + i] = _role_sum(loc, n, i, j, K, what)
-    if what != 0:
         for t in range(n + 1):  # the three sides, corners included
             out[_off(t, 0, n)] = _role_sum(loc, n, t, 0, K, what)
             out[_off(0, t, n)] = _role_sum(loc, n, 0, t, K, what)
@@ -292,11 +315,17 @@ def apply(x, y, n, K, topo, held_e, held_v, masked, pe, pv, what):
         loc = np.empty(size)
         out = np.empty(size)
         for c in range(ch * CHUNK, min(m, (ch + 1) * CHUNK)):
-            _gather(x, c, loc, n, topo, held_e, held_v, mode)
             if what == 0:
-                _local_apply(loc, out, n, K[c], what, y, c * ((n - 1) * (n - 2) // 2))
+                # the middle of the inside rows straight from x (streamed in once); then,
+                # from the cache, the ring next to the sides and the side rows
+                start = c * ((n - 1) * (n - 2) // 2)
+                _inside_rows(x, loc, y, n, K[c], start, True)
+                _gather(x, c, loc, n, topo, held_e, held_v, mode, True)
+                _inside_rows(x, loc, y, n, K[c], start, False)
+                _local_apply(loc, out, n, K[c], what)
                 _scatter(out, c, y, pe, pv, n, topo, False)
             else:
+                _gather(x, c, loc, n, topo, held_e, held_v, mode)
                 _local_apply(loc, out, n, K[c], what)
                 _scatter(out, c, y, pe, pv, n, topo)
     _sum_shared(y, pe, pv, n, topo)
