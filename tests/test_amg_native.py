@@ -174,6 +174,29 @@ def test_interpolation_and_coarse_matrices_match_pyamg():
         assert abs(sp.csr_array(mine.A) - sp.csr_array(theirs.A)).max() < 1e-12 * scale
 
 
+@pytest.mark.parametrize("parts", [1, 2, 3, 8])
+def test_transpose_of_the_kept_entries_matches_scipy_for_any_number_of_blocks(parts):
+    rng = np.random.default_rng(parts)
+    n = 90
+    M = sp.csr_array(sp.random(n, n, density=0.06, random_state=rng, format="csr"))
+    M.data += 1.0  # no stored zeros: the reference below keeps entries by value
+    kept = (rng.random(M.nnz) < 0.6).astype(np.uint8)
+    kept_copy = kept.copy()
+    tptr, tind, tdata = _s.transpose_kept(M.indptr, M.indices, M.data, kept, n, parts)
+    K = sp.csr_array((M.data * kept, M.indices.copy(), M.indptr.copy()), shape=M.shape)
+    K.eliminate_zeros()
+    T = sp.csr_array((tdata, tind, tptr), shape=(n, n))
+    assert (T != K.T).nnz == 0  # reference library: scipy's transpose
+    rows = np.repeat(np.arange(n), np.diff(tptr))
+    assert np.all((np.diff(tind) > 0) | (np.diff(rows) > 0))  # columns increasing per row
+    pptr, pind = _s.transpose_pattern(M.indptr, M.indices, kept, n, parts)
+    assert np.array_equal(pptr, tptr) and np.array_equal(pind, tind)
+    assert np.array_equal(kept, kept_copy)
+    # the strong pattern: the kept entries row by row (reference: scipy's pattern of K)
+    sptr, sind = _s.strong_pattern(M.indptr, M.indices, kept)
+    assert np.array_equal(sptr, K.indptr) and np.array_equal(sind, K.indices)
+
+
 @pytest.mark.parametrize("seed", range(4))
 def test_galerkin_and_transpose_match_scipy(seed):
     rng = np.random.default_rng(seed)

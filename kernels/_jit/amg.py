@@ -35,7 +35,7 @@ from numba import prange
 from numba import uint64 as U
 
 from hatkernels._jit import jit
-from hatkernels._jit.amg_split import C_POINT
+from hatkernels._jit.amg_split import C_POINT, transpose_kept
 
 __all__ = [
     "strength",
@@ -303,25 +303,10 @@ def _sort_row(pind, pdata, start, end):
         pdata[U(r + 1)] = val
 
 
-@jit()
-def transpose(indptr, indices, data, n_cols):
-    """CSR transpose (serial counting sort); rows of the result list columns in increasing order."""
-    n = indptr.shape[0] - 1
-    tptr = np.zeros(n_cols + 1, dtype=indptr.dtype)
-    for k in range(indptr[n]):
-        tptr[indices[k] + 1] += 1
-    for j in range(n_cols):
-        tptr[j + 1] += tptr[j]
-    tind = np.empty(tptr[n_cols], dtype=indices.dtype)
-    tdata = np.empty(tptr[n_cols], dtype=data.dtype)
-    fill = tptr[:n_cols].copy()
-    for i in range(n):
-        for k in range(indptr[i], indptr[i + 1]):
-            j = indices[k]
-            tind[fill[j]] = i
-            tdata[fill[j]] = data[k]
-            fill[j] += 1
-    return tptr, tind, tdata
+def transpose(indptr, indices, data, n_cols, parts=2):
+    """CSR transpose; rows of the result list columns in increasing order
+    (:func:`hatkernels._jit.amg_split.transpose_kept`, in parallel)."""
+    return transpose_kept(indptr, indices, data, np.empty(0, dtype=np.uint8), n_cols, parts)
 
 
 @jit(parallel=True)

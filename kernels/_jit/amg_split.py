@@ -4,15 +4,18 @@ J. W. Ruge, K. Stueben, "Algebraic multigrid", in Multigrid Methods, SIAM
 Frontiers in Applied Mathematics 3, 1987; K. Stueben, "A review of algebraic
 multigrid", J. Comput. Appl. Math. 128, 2001.  The rest of the setup
 (strength, interpolation, Galerkin product) is :mod:`hatkernels._jit.amg`.
-Serial on purpose: each pass decides one point after another, and the result
-depends on that order (point order here), never on the thread count.
+The passes are serial on purpose: each decides one point after another, and the
+result depends on that order (point order here), never on the thread count.
+The transposes they need run in parallel, with the same result on any number of
+threads.
 """
 
 import numpy as np
+from numba import prange
 
 from hatkernels._jit import jit
 
-__all__ = ["transpose_pattern", "strong_pattern", "split", "second_pass", "F_POINT", "C_POINT"]
+__all__ = ["transpose_kept", "transpose_pattern", "strong_pattern", "split", "second_pass", "F_POINT", "C_POINT"]
 
 #: Splitting codes.
 F_POINT = 0
@@ -20,41 +23,82 @@ C_POINT = 1
 
 
 @jit()
-def transpose_pattern(indptr, indices, strong, n):
-    """The transpose of the strong couplings: ``(tptr, tind)``, row ``j`` lists the ``i`` with j in S_i."""
-    tptr = np.zeros(n + 1, dtype=indptr.dtype)
-    for k in range(indptr[n]):
-        if strong[k]:
-            tptr[indices[k] + 1] += 1
-    for j in range(n):
-        tptr[j + 1] += tptr[j]
-    tind = np.empty(tptr[n], dtype=indices.dtype)
-    fill = tptr[:n].copy()
-    for i in range(n):
-        for k in range(indptr[i], indptr[i + 1]):
-            if strong[k]:
-                j = indices[k]
-                tind[fill[j]] = i
-                fill[j] += 1
+def _part(n, parts, c):
+    return (n * c) // parts, (n * (c + 1)) // parts
+
+
+@jit(parallel=True)
+def transpose_kept(indptr, indices, data, kept, n_cols, parts):
+    """CSR transpose ``(tptr, tind, tdata)`` of the entries with ``kept[k]`` set (every entry
+    when ``kept`` is empty), with their values (none when ``data`` is empty).
+
+    Each row of the result lists its columns in increasing order.  The rows are
+    cut into ``parts`` blocks, counted and placed in parallel (each block in its
+    own places, known from the counts of the blocks before it), so the result is
+    the same for any ``parts``; the counts take ``parts`` integers per column.
+    """
+    n = indptr.shape[0] - 1
+    every = kept.shape[0] == 0
+    with_data = data.shape[0] > 0
+    place = np.zeros((parts, n_cols), dtype=indptr.dtype)
+    for c in prange(parts):
+        lo, hi = _part(n, parts, c)
+        for i in range(lo, hi):
+            for k in range(indptr[i], indptr[i + 1]):
+                if every or kept[k]:
+                    place[c, indices[k]] += 1
+    tptr = np.empty(n_cols + 1, dtype=indptr.dtype)
+    total = 0
+    for j in range(n_cols):  # counts become first places: column by column, block by block
+        tptr[j] = total
+        for c in range(parts):
+            m = place[c, j]
+            place[c, j] = total
+            total += m
+    tptr[n_cols] = total
+    tind = np.empty(total, dtype=indices.dtype)
+    tdata = np.empty(total if with_data else 0, dtype=data.dtype)
+    for c in prange(parts):
+        lo, hi = _part(n, parts, c)
+        for i in range(lo, hi):
+            for k in range(indptr[i], indptr[i + 1]):
+                if every or kept[k]:
+                    j = indices[k]
+                    q = place[c, j]
+                    tind[q] = i
+                    if with_data:
+                        tdata[q] = data[k]
+                    place[c, j] = q + 1
+    return tptr, tind, tdata
+
+
+def transpose_pattern(indptr, indices, strong, n, parts=2):
+    """The transpose of the strong couplings: ``(tptr, tind)``, row ``j`` lists the ``i``
+    with j in S_i, in increasing order (:func:`transpose_kept`)."""
+    tptr, tind, _ = transpose_kept(indptr, indices, np.empty(0), strong, n, parts)
     return tptr, tind
 
 
-@jit()
+@jit(parallel=True)
 def strong_pattern(indptr, indices, strong):
     """The strong couplings as a CSR pattern ``(sptr, sind)``: row ``i`` lists S_i."""
     n = indptr.shape[0] - 1
-    sptr = np.zeros(n + 1, dtype=indptr.dtype)
-    for i in range(n):
+    sptr = np.empty(n + 1, dtype=indptr.dtype)
+    sptr[0] = 0
+    for i in prange(n):
         c = 0
         for k in range(indptr[i], indptr[i + 1]):
             c += strong[k]
-        sptr[i + 1] = sptr[i] + c
+        sptr[i + 1] = c
+    for i in range(n):
+        sptr[i + 1] += sptr[i]
     sind = np.empty(sptr[n], dtype=indices.dtype)
-    q = 0
-    for k in range(indptr[n]):
-        if strong[k]:
-            sind[q] = indices[k]
-            q += 1
+    for i in prange(n):
+        q = sptr[i]
+        for k in range(indptr[i], indptr[i + 1]):
+            if strong[k]:
+                sind[q] = indices[k]
+                q += 1
     return sptr, sind
 
 

@@ -109,13 +109,18 @@ def _split(indptr, indices, strong, n):
     ``hatkernels._jit.amg_split.split`` is the same algorithm (tested to give the same
     splitting); it serves matrices whose indices need 64 bits.
     """
-    tptr, tind = _s.transpose_pattern(indptr, indices, strong, n)
+    tptr, tind = _s.transpose_pattern(indptr, indices, strong, n, _parts())
     if indptr.dtype != np.int32:
         return _s.split(indptr, indices, strong, tptr, tind)
     sptr, sind = _s.strong_pattern(indptr, indices, strong)
     state = np.empty(n, dtype=np.int32)
     pyamg.amg_core.rs_cf_splitting(n, sptr, sind, tptr, tind, np.zeros(n, dtype=np.int32), state)
     return state
+
+
+def _parts():
+    # row blocks of the parallel transposes: each keeps one count per column
+    return min(numba.get_num_threads(), 8)
 
 
 def _chunks():
@@ -177,7 +182,7 @@ class ClassicalHierarchy:
             _a.interpolation(indptr, indices, data, strong, state, cidx.astype(ptype, copy=False),
                              pptr, pind, pdata, extended, EXTENDED_CAP, width, _chunks())
             del strong, state, cidx, extended
-            rptr, rind, rdata = _a.transpose(pptr, pind, pdata, n_coarse)
+            rptr, rind, rdata = _a.transpose(pptr, pind, pdata, n_coarse, _parts())
             cptr = np.zeros(n_coarse + 1, dtype=np.int64)
             _a.galerkin_counts(rptr, rind, indptr, indices, data, pptr, pind, n_coarse, cptr,
                                _chunks())
