@@ -205,7 +205,7 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, rob
             dirichlet_on=dirichlet_on, rtol=rtol, maxiter=maxiter, extra=extra, seed=seed,
             quadrature=quadrature, memory_check=memory_check)
     t0 = time.perf_counter()
-    mesh = refined(mesh, refine)
+    mesh = refined(mesh, refine, memory_check)
     k, rtol, maxiter, extra, seed = _checked(mesh, k, method, rtol, maxiter, extra, seed,
                                              preconditioner, quadrature)
     kappa = parse_coefficient(coefficient, mesh, name="coefficient", tensor=True)

@@ -24,6 +24,13 @@ direct factorisation fills in far more in 3-D (SuperLU on 103,823 unknowns:
 2.5e8 entries, about 29,000 bytes per point, growing with the size): a
 preconditioner whose 3-D figure does not follow its 2-D one states it as
 ``solve_bytes_per_point_3d``.
+
+Refining a mesh ``k`` times (``solve_poisson(..., refine=k)`` on the stored
+mesh, the march and the modes likewise, the command's ``--refine``, and a
+patch solution's ``mesh``) is checked the same way before the first
+refinement: :func:`check_refine_memory` against a peak measured per cell of
+the finest mesh (:data:`REFINE_BYTES_PER_CELL`).  A refinement of 1e9
+triangles needs about 110 GiB that way; the patch path solves it in 24.
 """
 
 from __future__ import annotations
@@ -35,7 +42,8 @@ from hatkernels.errors import InputError
 from hatkernels.precond import PRECONDITIONERS, SparseDirect, capabilities
 
 __all__ = ["available_bytes", "solve_bytes", "check_solve_memory", "transient_bytes",
-           "check_transient_memory", "eigen_bytes", "check_eigen_memory"]
+           "check_transient_memory", "eigen_bytes", "check_eigen_memory", "refine_bytes",
+           "check_refine_memory"]
 
 #: A registered preconditioner that states no figure (a user's): the plain
 #: assembled pipeline's (matrix, CG vectors, right-hand side), as a floor.
@@ -61,9 +69,18 @@ TRANSIENT_EXTRA = 360
 #: (docs/eigenmodes.md); the figures leave about 9 % above it: 750 + 100 m.
 EIGEN_BASE, EIGEN_PER_VECTOR = 750, 100
 
+#: Refining a mesh ``k`` times (``Mesh.refine`` repeated: every coarser level stays
+#: referenced by the finer one's ``refinement``), peak bytes per cell of the finest
+#: mesh, by dimension and by index width (int64 once the finest mesh's incidences pass
+#: 2^31).  Measured in fresh processes, the peak over the start (2026-12-04):
+#: ``rectangle(125, 125)`` refined 4 and 5 times, 65 and 59 bytes per triangle (int32),
+#: 4 times with int64 forced 110; ``cuboid(10, 10, 10)`` refined 4 times and
+#: ``cuboid(20, 20, 20)`` 3 times, 52 bytes per tetrahedron (int32), 77 with int64.
+REFINE_BYTES_PER_CELL = {(2, False): 70, (2, True): 115, (3, False): 55, (3, True): 80}
 #: The estimate's margin: measured peaks vary by a few per cent between runs
 #: and meshes; refuse only when the estimate clearly does not fit.
 MARGIN = 1.1
+_INT32_MAX = 2**31 - 1
 
 
 def _meminfo_available():
@@ -164,6 +181,28 @@ def check_eigen_memory(mesh, method, m):
     """Refuse (InputError) an eigenmodes call whose estimated peak does not fit."""
     _refuse_short(eigen_bytes(mesh, method, m), f"finding modes by {method}", mesh,
                   "shift-invert's factorisation" if method == "shift-invert" else "lobpcg")
+
+
+def refine_bytes(mesh, times):
+    """``(cells, bytes)``: the cells of ``mesh`` refined ``times`` times (each cell into
+    4 triangles or 8 tetrahedra per refinement) and the estimated peak bytes of building
+    that chain of meshes (:data:`REFINE_BYTES_PER_CELL`)."""
+    cells = mesh.n_cells * (2**mesh.dim) ** int(times)
+    wide = (mesh.dim + 1) * cells > _INT32_MAX
+    return cells, int(cells * REFINE_BYTES_PER_CELL[(mesh.dim, wide)])
+
+
+def check_refine_memory(mesh, times, advice):
+    """Refuse (InputError) to refine ``mesh`` ``times`` times when the refined meshes would
+    not fit in what is available; ``advice`` says what to do instead."""
+    cells, need = refine_bytes(mesh, times)
+    have = available_bytes()
+    if have is not None and need * MARGIN > have:
+        words = "triangles" if mesh.dim == 2 else "tetrahedra"
+        raise InputError(
+            f"not enough memory: refining the mesh ({mesh.n_cells:,} {words}) {int(times)} "
+            f"times gives {cells:,} {words}, whose meshes need about {need / 2**30:.1f} GiB "
+            f"(measured per cell), but {have / 2**30:.1f} GiB are available; {advice}")
 
 
 def _refuse_short(need, doing, mesh, preconditioner):

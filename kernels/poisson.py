@@ -18,7 +18,7 @@ import numpy as np
 from hatkernels.checks import integer_option
 from hatkernels.discretise import discretise
 from hatkernels.errors import InputError
-from hatkernels.memory import check_solve_memory
+from hatkernels.memory import check_refine_memory, check_solve_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.precond import DEFAULT, capabilities
 from hatkernels.problem import PoissonProblem
@@ -28,13 +28,24 @@ from hatkernels.stats import PoissonSolution
 __all__ = ["PoissonSolution", "solve_poisson"]
 
 
-def refined(mesh, times):
-    """``mesh`` refined ``times`` times (checked: a Mesh, an integer >= 0)."""
+def refined(mesh, times, memory_check=False):
+    """``mesh`` refined ``times`` times (checked: a Mesh, an integer >= 0); with
+    ``memory_check``, refused first when the refined meshes would not fit."""
     if not isinstance(mesh, Mesh):
         raise InputError(f"expected a hatkernels.Mesh, got {type(mesh).__name__}")
-    for _ in range(integer_option(times, "refine", minimum=0)):
+    times = integer_option(times, "refine", minimum=0)
+    if memory_check and times:
+        check_refine_memory(mesh, times, REFINE_ADVICE)
+    for _ in range(times):
         mesh = mesh.refine()
     return mesh
+
+
+#: What a refusal to build refined meshes advises.
+REFINE_ADVICE = ("solve_poisson(mesh, f, refine=k) with the default preconditioner solves "
+                 "on the refined patches without building them (docs/patches.md), where its "
+                 "data allow; or refine fewer times, or pass memory_check=False "
+                 "(--no-memory-check) to try anyway")
 
 
 def matrix_free_default(preconditioner, problem):
@@ -152,7 +163,7 @@ def solve_poisson(
                     memory_check=memory_check)
         preconditioner = DEFAULT
     t0 = time.perf_counter()
-    mesh = refined(mesh, refine)
+    mesh = refined(mesh, refine, memory_check)
     refining = time.perf_counter() - t0
     problem = PoissonProblem(mesh, f, dirichlet=dirichlet, dirichlet_on=dirichlet_on,
                              coefficient=coefficient, reaction=reaction, neumann=neumann,

@@ -192,7 +192,7 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
                                 neumann=neumann, quadrature=quadrature)
             return PatchTransientSolution(march, problem_args)
         preconditioner = DEFAULT
-    mesh = refined(mesh, refine)
+    mesh = refined(mesh, refine, memory_check)
     dt, times, theta, startup = march_options(dt, times, scheme, startup, lumped)
     if not isinstance(preconditioner, str):
         raise InputError(f"preconditioner must be a name (built once per step size), got "

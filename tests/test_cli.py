@@ -934,3 +934,16 @@ def test_a_solve_that_does_not_fit_is_refused_before_it_starts(tmp_path):
                          capture_output=True, text=True, timeout=600)
     assert out.returncode == 0, out.stderr
     assert (tmp_path / "out" / "solution.npz").exists()
+
+
+def test_a_refinement_that_does_not_fit_is_refused_before_it_is_built(tmp_path):
+    # the refined meshes' estimate against what is available (here made tiny): one line
+    # naming the refinement, exit 2, nothing written
+    code = ("import sys, hatkernels.memory as m; m.available_bytes = lambda: 1000; "
+            "from hatkernels.cli import main; sys.exit(main(sys.argv[1:]))")
+    args = ["solve", "--refine", "3", "--quiet", "--out", tmp_path / "out"]
+    out = subprocess.run([sys.executable, "-c", code, *map(str, args)], capture_output=True,
+                         text=True, timeout=600)
+    assert out.returncode == 2, out.stderr
+    assert "refining the mesh" in out.stderr and "--no-memory-check" in out.stderr
+    assert len(out.stderr.strip().splitlines()) == 1 and not (tmp_path / "out").exists()

@@ -132,7 +132,7 @@ def _origin(material, body):
 def from_file(args, pf, progress):
     """A problem file's modes (``pf``: a :class:`hatkernels.problemfile.ProblemFile`) on its
     mesh refined ``args.refine`` times; its materials need density and specific heat."""
-    mesh = refined(pf.mesh, args.refine, progress)
+    mesh = refined(pf.mesh, args.refine, progress, getattr(args, "memory_check", True))
     tags = mesh.tags
     capacity = pf.capacity_per_cell(mesh)  # an InputError naming a material without them
     held = [t for c in pf.conditions if c.kind == "held" for t in c.tags]

@@ -7,6 +7,7 @@ import warnings
 from hatkernels import block, scenarios
 from hatkernels import io as kio
 from hatkernels.errors import ConvergenceError, InputError
+from hatkernels.memory import check_refine_memory
 from hatkernels.mesh import Mesh, cuboid, rectangle
 from hatkernels.scenarios import COARSE_CELLS, DEFAULT_CELLS, PLATE
 
@@ -66,11 +67,16 @@ def build_mesh(args, progress, arrays=None):
                        f"{PLATE.width / ny * 1e3:.4g} mm")
     if args.refine and args.mesh is not None:
         description += f", refined {_times(args.refine)}"
-    return refined(mesh, args.refine or 0, progress), description
+    return refined(mesh, args.refine or 0, progress,
+                   getattr(args, "memory_check", True)), description
 
 
-def refined(mesh, times, progress):
-    """``mesh`` refined ``times`` times, each refinement announced."""
+def refined(mesh, times, progress, memory_check=True):
+    """``mesh`` refined ``times`` times, each refinement announced; with ``memory_check``
+    refused first when the refined meshes would not fit."""
+    if memory_check and times:
+        check_refine_memory(mesh, times, "use --refine with fewer times, or "
+                            "--no-memory-check to try anyway")
     for k in range(times):
         words = "triangles" if mesh.dim == 2 else "tetrahedra"
         progress.phase(f"mesh: refinement {k + 1} of {times} "

@@ -112,7 +112,7 @@ def run(args, progress):
         with CompileNotice(progress) as notice:
             _warm_up(args, pf)
         t0 = time.perf_counter()
-        mesh = refined(pf.mesh, args.refine, progress)
+        mesh = refined(pf.mesh, args.refine, progress, getattr(args, "memory_check", True))
         timings["mesh"] = time.perf_counter() - t0
         sol = _solve(args, pf, mesh, progress)
         progress.phase("check: heat balance by region and boundary tag")

@@ -283,7 +283,7 @@ def file_settings(args, pf):
 
 def file_case(args, pf, settings, progress):
     """A problem file as a :class:`Case` (``settings``: from :func:`file_settings`)."""
-    mesh = refined(pf.mesh, args.refine, progress)
+    mesh = refined(pf.mesh, args.refine, progress, getattr(args, "memory_check", True))
     if args.capacity is None:
         capacity = pf.capacity_per_cell(mesh)  # InputError naming a material without rho, c
     else:

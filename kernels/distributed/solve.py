@@ -270,7 +270,7 @@ def solve_poisson(
     if preconditioner is None:
         preconditioner = DEFAULT_PRECONDITIONER
     if isinstance(mesh, Mesh):  # every rank refines the whole mesh (the replicated path)
-        mesh = refined(mesh, refine)
+        mesh = refined(mesh, refine, memory_check)
     _check_options(preconditioner, coarse, gather, matrix_free, variant,
                    None if mesh is None else partition, monitor)
     if zero_mean is not False:

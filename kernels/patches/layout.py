@@ -222,14 +222,24 @@ class PatchLayout:
 
 class RefinedMeshOnDemand:
     """For results made on patches: ``mesh``, the refined mesh of ``self.layout``, built
-    on first use (it costs what the patch path saves) and kept; it may be set."""
+    on first use (it costs what the patch path saves) and kept; it may be set.  Refused
+    (InputError) before anything is built when the refined meshes would not fit in the
+    memory available; ``layout.refined_mesh()`` builds them unchecked."""
 
     _mesh = None
 
     @property
     def mesh(self):
         if self._mesh is None:
-            self._mesh = self.layout.refined_mesh()
+            from hatkernels.memory import check_refine_memory
+
+            lay = self.layout
+            check_refine_memory(
+                lay.coarse, lay.k,
+                "the solution is in .values (the patch layout, every fine point once) and "
+                "per coarse cell in .patch(cell); .layout.refined_mesh() builds the meshes "
+                "unchecked")
+            self._mesh = lay.refined_mesh()
         return self._mesh
 
     @mesh.setter
