@@ -919,19 +919,25 @@ def test_preconditioners_are_named_only_in_option_parsing():
         assert not found, f"{path.name} names preconditioners {sorted(found)}"
 
 
+#: The command with the memory available made tiny (1000 bytes).
+SHORT_OF_MEMORY = ("import sys, hatkernels.memory as m; m.available_bytes = lambda: 1000; "
+                   "from hatkernels.cli import main; sys.exit(main(sys.argv[1:]))")
+
+
+def run_short_of_memory(args):
+    return subprocess.run([sys.executable, "-c", SHORT_OF_MEMORY, *map(str, args)],
+                          capture_output=True, text=True, timeout=600)
+
+
 def test_a_solve_that_does_not_fit_is_refused_before_it_starts(tmp_path):
     # the library's estimate against what is available (here made tiny): one line, exit 2,
     # nothing written; --no-memory-check solves anyway
-    code = ("import sys, hatkernels.memory as m; m.available_bytes = lambda: 1000; "
-            "from hatkernels.cli import main; sys.exit(main(sys.argv[1:]))")
     args = ["solve", "--cells", "16", "--quiet", "--out", tmp_path / "out"]
-    out = subprocess.run([sys.executable, "-c", code, *map(str, args)], capture_output=True,
-                         text=True, timeout=600)
+    out = run_short_of_memory(args)
     assert out.returncode == 2, out.stderr
     assert "not enough memory" in out.stderr and "--no-memory-check" in out.stderr
     assert len(out.stderr.strip().splitlines()) == 1 and not (tmp_path / "out").exists()
-    out = subprocess.run([sys.executable, "-c", code, *map(str, args), "--no-memory-check"],
-                         capture_output=True, text=True, timeout=600)
+    out = run_short_of_memory([*args, "--no-memory-check"])
     assert out.returncode == 0, out.stderr
     assert (tmp_path / "out" / "solution.npz").exists()
 
@@ -939,11 +945,7 @@ def test_a_solve_that_does_not_fit_is_refused_before_it_starts(tmp_path):
 def test_a_refinement_that_does_not_fit_is_refused_before_it_is_built(tmp_path):
     # the refined meshes' estimate against what is available (here made tiny): one line
     # naming the refinement, exit 2, nothing written
-    code = ("import sys, hatkernels.memory as m; m.available_bytes = lambda: 1000; "
-            "from hatkernels.cli import main; sys.exit(main(sys.argv[1:]))")
-    args = ["solve", "--refine", "3", "--quiet", "--out", tmp_path / "out"]
-    out = subprocess.run([sys.executable, "-c", code, *map(str, args)], capture_output=True,
-                         text=True, timeout=600)
+    out = run_short_of_memory(["solve", "--refine", "3", "--quiet", "--out", tmp_path / "out"])
     assert out.returncode == 2, out.stderr
     assert "refining the mesh" in out.stderr and "--no-memory-check" in out.stderr
     assert len(out.stderr.strip().splitlines()) == 1 and not (tmp_path / "out").exists()

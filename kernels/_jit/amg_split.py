@@ -15,7 +15,8 @@ from numba import prange
 
 from hatkernels._jit import jit
 
-__all__ = ["transpose_kept", "transpose_pattern", "strong_pattern", "split", "second_pass", "F_POINT", "C_POINT"]
+__all__ = ["transpose_kept", "transpose_pattern", "strong_pattern", "split", "second_pass",
+           "F_POINT", "C_POINT"]
 
 #: Splitting codes.
 F_POINT = 0
