@@ -76,7 +76,7 @@ EIGEN_BASE, EIGEN_PER_VECTOR = 750, 100
 #: ``rectangle(125, 125)`` refined 4 and 5 times, 65 and 59 bytes per triangle (int32),
 #: 4 times with int64 forced 110; ``cuboid(10, 10, 10)`` refined 4 times and
 #: ``cuboid(20, 20, 20)`` 3 times, 52 bytes per tetrahedron (int32), 77 with int64.
-REFINE_BYTES_PER_CELL = {(2, False): 70, (2, True): 115, (3, False): 55, (3, True): 80}
+REFINE_BYTES_PER_CELL = {(2, False): 70, (2, True): 115, (3, False): 58, (3, True): 85}
 #: The estimate's margin: measured peaks vary by a few per cent between runs
 #: and meshes; refuse only when the estimate clearly does not fit.
 MARGIN = 1.1
