@@ -26,8 +26,9 @@ preconditioner whose 3-D figure does not follow its 2-D one states it as
 ``solve_bytes_per_point_3d``.
 
 Refining a mesh ``k`` times (``solve_poisson(..., refine=k)`` on the stored
-mesh, the march and the modes likewise, the command's ``--refine``, and a
-patch solution's ``mesh``) is checked the same way before the first
+mesh, the march and the modes likewise, the command's ``--refine``, a patch
+solution's ``mesh``, and the distributed solve's replicated path, where every
+rank on a node builds the meshes) is checked the same way before the first
 refinement: :func:`check_refine_memory` against a peak measured per cell of
 the finest mesh (:data:`REFINE_BYTES_PER_CELL`).  A refinement of 1e9
 triangles needs about 110 GiB that way; the patch path solves it in 24.
@@ -192,17 +193,20 @@ def refine_bytes(mesh, times):
     return cells, int(cells * REFINE_BYTES_PER_CELL[(mesh.dim, wide)])
 
 
-def check_refine_memory(mesh, times, advice):
+def check_refine_memory(mesh, times, advice, copies=1):
     """Refuse (InputError) to refine ``mesh`` ``times`` times when the refined meshes would
-    not fit in what is available; ``advice`` says what to do instead."""
+    not fit in what is available; ``advice`` says what to do instead; ``copies``: the
+    processes on this machine that each build them (MPI ranks on one node)."""
     cells, need = refine_bytes(mesh, times)
+    need *= int(copies)
     have = available_bytes()
     if have is not None and need * MARGIN > have:
         words = "triangles" if mesh.dim == 2 else "tetrahedra"
+        each = f", {int(copies)} ranks on this node building them each" if copies > 1 else ""
         raise InputError(
             f"not enough memory: refining the mesh ({mesh.n_cells:,} {words}) {int(times)} "
             f"times gives {cells:,} {words}, whose meshes need about {need / 2**30:.1f} GiB "
-            f"(measured per cell), but {have / 2**30:.1f} GiB are available; {advice}")
+            f"(measured per cell{each}), but {have / 2**30:.1f} GiB are available; {advice}")
 
 
 def _refuse_short(need, doing, mesh, preconditioner):

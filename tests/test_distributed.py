@@ -568,6 +568,32 @@ def test_mpi_checks(ranks):
 
 
 @needs_mpi
+def test_a_replicated_refinement_that_does_not_fit_is_refused_on_every_rank(tmp_path):
+    # every rank of the replicated path refines the whole mesh: the two ranks on this node
+    # are checked together (twice one rank's need) and both refuse before refining
+    script = tmp_path / "refine.py"
+    script.write_text(
+        "import hatkernels, hatkernels.memory as m\n"
+        "from hatkernels.distributed import solve_poisson\n"
+        "from hatkernels.mesh import rectangle\n"
+        "from mpi4py import MPI\n"
+        "mesh = rectangle(20, 20)\n"
+        "one = m.refine_bytes(mesh, 2)[1]\n"
+        "m.available_bytes = lambda: int(1.5 * one)  # room for one copy, not two\n"
+        "try:\n"
+        "    solve_poisson(mesh, 1.0, refine=2, preconditioner='amg')\n"
+        "except hatkernels.InputError as exc:\n"
+        "    print(f'rank {MPI.COMM_WORLD.Get_rank()} refused: {exc}')\n"
+    )
+    code, out, err = run_mpi(2, [sys.executable, str(script)], timeout=120)
+    assert code == 0, f"{out}\n{err}"
+    for rank in (0, 1):
+        assert f"rank {rank} refused: not enough memory: refining the mesh (800 triangles) " \
+               "2 times gives 12,800 triangles" in out
+    assert "2 ranks on this node building them each" in out
+
+
+@needs_mpi
 def test_mpi_checks_failure_aborts_every_rank(tmp_path):
     # one rank raises while the other waits in a collective: the hook must end both
     script = tmp_path / "fail.py"

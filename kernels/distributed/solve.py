@@ -63,7 +63,7 @@ from hatkernels.distributed.scatter import (
 )
 from hatkernels.distributed.scatter import local_boundary as _local_boundary  # noqa: F401
 from hatkernels.errors import InputError
-from hatkernels.memory import check_solve_memory
+from hatkernels.memory import check_refine_memory, check_solve_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.poisson import refined
@@ -270,7 +270,14 @@ def solve_poisson(
     if preconditioner is None:
         preconditioner = DEFAULT_PRECONDITIONER
     if isinstance(mesh, Mesh):  # every rank refines the whole mesh (the replicated path)
-        mesh = refined(mesh, refine, memory_check)
+        if memory_check and refine:  # the mesh is on every rank here (refine needs it)
+            comm = as_comm(comm)
+            _together(comm, "the memory check", check_refine_memory, mesh, refine,
+                      "with the default preconditioner each rank refines its part only, "
+                      "where the data allow; or refine fewer times, start fewer ranks per "
+                      "node, or pass memory_check=False to try anyway",
+                      default_threads(comm)[1])
+        mesh = refined(mesh, refine)
     _check_options(preconditioner, coarse, gather, matrix_free, variant,
                    None if mesh is None else partition, monitor)
     if zero_mean is not False:
