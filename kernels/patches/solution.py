@@ -86,9 +86,12 @@ class PatchSolution(RefinedMeshOnDemand, PoissonSolution):
     stats : SolveStats
     u : ndarray
         The solution in the numbering of ``coarse.refine()`` repeated ``k`` times,
-        made on first use (one more vector of the fine size).
+        made on first use (one more vector of the fine size; on tetrahedra the places
+        are found from the refined cells, so it builds ``mesh`` too).
     mesh : Mesh
-        The refined mesh, built on first use (it costs what the patch path saves).
+        The refined mesh, built on first use (it costs what the patch path saves);
+        refused before anything is built when it would not fit in the memory
+        available (:func:`hatkernels.memory.check_refine_memory`).
     problem : PoissonProblem
         The problem on :attr:`mesh`, built on first use.
     """
