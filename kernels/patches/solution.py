@@ -91,7 +91,7 @@ class PatchSolution(RefinedMeshOnDemand, PoissonSolution):
     mesh : Mesh
         The refined mesh, built on first use (it costs what the patch path saves);
         refused before anything is built when it would not fit in the memory
-        available (:func:`hatkernels.memory.check_refine_memory`).
+        available (``hatkernels.memory.check_refine_memory``).
     problem : PoissonProblem
         The problem on :attr:`mesh`, built on first use.
     """
