@@ -21,6 +21,7 @@ import numbers
 
 import numpy as np
 
+from hatkernels._jit import assembly as _jit_assembly
 from hatkernels.errors import InputError
 from hatkernels.quadrature import triangle_rule
 
@@ -267,10 +268,10 @@ def _per_item(a, on, name, sign, n_points, other, n_other, items=_ITEM):
 def quadrature_points(mesh, degree, start=0, stop=None):
     """Physical quadrature points of triangles ``start:stop``: x, y of shape (m, Q)."""
     lam, _ = triangle_rule(degree)
-    tri = mesh.triangles[start:stop]
-    p = mesh.points
-    x = p[tri, 0] @ lam.T
-    y = p[tri, 1] @ lam.T
+    stop = mesh.n_triangles if stop is None else stop
+    x = np.empty((stop - start, len(lam)))
+    y = np.empty_like(x)
+    _jit_assembly.quadrature_coordinates(mesh.points, mesh.triangles, lam, start, x, y)
     return x, y
 
 

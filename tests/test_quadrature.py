@@ -2,7 +2,9 @@
 
 from math import factorial
 
+import numpy as np
 import pytest
+from conftest import jittered_mesh
 
 import hatkernels
 from hatkernels.quadrature import edge_rule, triangle_rule
@@ -59,3 +61,47 @@ def test_bad_degrees():
         with pytest.raises(hatkernels.InputError, match="quadrature degree"):
             triangle_rule(bad)
     assert not triangle_rule(2)[0].flags.writeable
+
+
+# -- the kernels that use the rules: quadrature points and weighted sums ----------------
+
+
+@pytest.mark.parametrize("degree", [1, 2, 5])
+def test_quadrature_kernels_agree_with_the_plain_numpy_forms(degree):
+    # plain versions (common practice, no source): the points as points[triangles] @ lam.T
+    # and the weighted sums as areas * ((values * w) @ table), both in numpy
+    from hatkernels._jit import assembly as J
+    from hatkernels.coefficients import quadrature_points
+
+    mesh = jittered_mesh(30, degree)
+    lam, w = triangle_rule(degree)
+    tri, p = mesh.triangles, mesh.points
+    x, y = quadrature_points(mesh, degree, 7, mesh.n_triangles - 5)
+    part = tri[7:mesh.n_triangles - 5]
+    assert np.abs(x - p[part, 0] @ lam.T).max() <= 4e-16
+    assert np.abs(y - p[part, 1] @ lam.T).max() <= 4e-16
+    values = np.random.default_rng(degree).standard_normal((mesh.n_triangles, len(w)))
+    areas = mesh.areas()
+    out = np.empty((mesh.n_triangles, 3))
+    J.weighted_sums(areas, values, w, lam, out)
+    plain = areas[:, None] * ((values * w) @ lam)
+    assert np.abs(out - plain).max() <= 1e-15 * np.abs(plain).max()
+    # the load of a callable: its integral against each hat function sums to the integral
+    # of f over the unit square (f = x + y: 1/2 + 1/2 = 1, analytic; exact for any rule of
+    # degree >= 1)
+    b = hatkernels.assemble_load(mesh, lambda x, y: x + y, quadrature=degree)
+    assert abs(b.sum() - 1.0) <= 1e-13
+
+
+@pytest.mark.two_threads
+def test_quadrature_kernels_give_the_same_bits_on_one_and_two_threads():
+    from test_threads import assert_same_bits, on_one_and_two_threads
+
+    mesh = jittered_mesh(40, 3)
+    f = lambda x, y: np.sin(3 * x) * y  # noqa: E731
+
+    def compute():
+        return [hatkernels.assemble_load(mesh, f, quadrature=5),
+                hatkernels.assemble_mass(mesh, f).data]
+
+    assert_same_bits(*on_one_and_two_threads(compute))

@@ -322,3 +322,41 @@ def scatter_tensor(points, triangles, kappa, ks, tensor, ts, diag, slots, first,
                 _scatter_triangle(points, triangles, uint64(tt), kappa, ks, tensor, ts, False,
                                   diag, slots, first, data)
 
+
+
+@jit(parallel=True)
+def quadrature_coordinates(points, triangles, lam, start, x, y):
+    """``x[t, q]``, ``y[t, q]``: quadrature point ``q`` (barycentric ``lam[q]``) of triangle
+    ``start + t``, each coordinate summed over the vertices in order.
+
+    The plain version is ``points[triangles, 0] @ lam.T``; numpy's product for
+    so small an inner size costs about three times this, with its temporaries.
+    """
+    nq = lam.shape[0]
+    for t in prange(x.shape[0]):
+        k = uint64(start + t)
+        i0 = uint64(triangles[k, 0])
+        i1 = uint64(triangles[k, 1])
+        i2 = uint64(triangles[k, 2])
+        for q in range(nq):
+            x[t, q] = lam[q, 0] * points[i0, 0] + lam[q, 1] * points[i1, 0] + lam[q, 2] * points[i2, 0]
+            y[t, q] = lam[q, 0] * points[i0, 1] + lam[q, 1] * points[i1, 1] + lam[q, 2] * points[i2, 1]
+
+
+@jit(parallel=True)
+def weighted_sums(areas, values, w, table, out):
+    """``out[t, a] = areas[t] * sum_q (values[t, q] w[q]) table[q, a]``, the sum in ``q`` order:
+    element loads (``table`` the barycentric coordinates of the points) and mass entries
+    from values at quadrature points.
+
+    The plain version is ``areas[:, None] * ((values * w) @ table)``; numpy's product
+    with an inner size of 3 to 7 costs about twenty times this.
+    """
+    nq = values.shape[1]
+    na = table.shape[1]
+    for t in prange(values.shape[0]):
+        for a in range(na):
+            s = 0.0
+            for q in range(nq):
+                s += (values[t, q] * w[q]) * table[q, a]
+            out[t, a] = areas[t] * s

@@ -15,6 +15,7 @@ checked :class:`hatkernels.coefficients.Coefficient`, so that they need no mesh.
 
 import numpy as np
 
+from hatkernels._jit import assembly as _jit_assembly
 from hatkernels.coefficients import at_quadrature
 from hatkernels.errors import InputError
 from hatkernels.quadrature import tetrahedron_rule, triangle_rule
@@ -48,10 +49,11 @@ def mass_values(mesh, coef, quadrature):
         o = A[:, None] / 60.0 * (2.0 * s - cv)  # (2 c_a + 2 c_b + c_c) |T| / 60
     elif coef.kind == "callable":
         lam, w = triangle_rule(quadrature)
-        v = at_quadrature(coef, mesh, quadrature) * w  # (M, Q)
-        d = A[:, None] * (v @ lam**2)
+        v = at_quadrature(coef, mesh, quadrature)  # (M, Q)
         pairs = np.roll(lam, -1, axis=1) * np.roll(lam, 1, axis=1)  # opposite vertex c
-        o = A[:, None] * (v @ pairs)
+        d, o = np.empty((len(A), 3)), np.empty((len(A), 3))
+        _jit_assembly.weighted_sums(A, v, w, np.ascontiguousarray(lam**2), d)
+        _jit_assembly.weighted_sums(A, v, w, np.ascontiguousarray(pairs), o)
     else:
         raise InputError(f"{coef.name} must be scalar for a mass matrix, got a tensor")
     return d, o
@@ -74,7 +76,9 @@ def load_values(mesh, coef, quadrature):
         return A[:, None] / 12.0 * (fv + fv.sum(axis=1, keepdims=True))
     if coef.kind == "callable":
         lam, w = triangle_rule(quadrature)
-        return A[:, None] * ((at_quadrature(coef, mesh, quadrature) * w) @ lam)
+        out = np.empty((len(A), 3))
+        _jit_assembly.weighted_sums(A, at_quadrature(coef, mesh, quadrature), w, lam, out)
+        return out
     raise InputError(f"{coef.name} must be scalar, got a tensor")
 
 
