@@ -66,6 +66,32 @@ def test_dot(benchmark, machine, request, cells, method, n_threads):
 
 
 @pytest.mark.parametrize("method, n_threads", VECTOR_CASES)
+def test_callable_load_sums(benchmark, machine, request, cells, method, n_threads):
+    """The sums of a callable load, ``areas * ((f(x_q) * w) @ lam)`` per triangle (degree 2,
+    three points): the numba kernel against NumPy's product, whose inner size is 3."""
+    from hatkernels._jit import assembly as JA
+    from hatkernels.quadrature import triangle_rule
+
+    mesh = shared_mesh(cells)
+    lam, w = triangle_rule(2)
+    m = mesh.n_triangles
+    values = np.random.default_rng(3).standard_normal((m, len(w)))
+    areas = np.ascontiguousarray(mesh.areas())
+    out = np.empty((m, 3))
+    fn = ((lambda: areas[:, None] * ((values * w) @ lam)) if method == "numpy"
+          else (lambda: JA.weighted_sums(areas, values, w, lam, out)))
+    with threads(n_threads):
+        first = warm(benchmark, fn)
+        benchmark.pedantic(fn, **_vector_rounds(request.config))
+        peak, source = peak_of_call(benchmark, fn)
+    moved = 8 * m * (len(w) + 1 + 3)  # read the values and the areas, write the sums
+    record(benchmark, machine, moved, moved, kind="kernel", operation="callable load sums",
+           method=method, plain=method == "numpy", baseline=None if method == "numpy" else "numpy",
+           threads=n_threads, n_points=int(mesh.n_points), peak_bytes=peak, peak_source=source,
+           **first)
+
+
+@pytest.mark.parametrize("method, n_threads", VECTOR_CASES)
 def test_cg_update(benchmark, machine, request, cells, method, n_threads):
     """x += alpha p; r -= alpha q; r.r -- one fused pass against three NumPy statements."""
     n = shared_mesh(cells).n_points
