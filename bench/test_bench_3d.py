@@ -149,6 +149,32 @@ def test_element_matrices(benchmark, machine, request, cube, method, n_threads):
            **figures(mesh), **first)
 
 
+@pytest.mark.parametrize("method, n_threads", [
+    pytest.param(m, t, id=f"method={m}-threads={t}")
+    for m in ["einsum", "ours"] for t in (THREADS if m == "ours" else [MAX_THREADS])
+])
+def test_quadrature_points_3d(benchmark, machine, request, cube, method, n_threads):
+    """The quadrature points of a callable's rule (degree 2, four per tetrahedron): numpy's
+    einsum over the cells' corners against the numba kernel."""
+    from hatkernels._jit import assembly3d as J3
+    from hatkernels.quadrature import tetrahedron_rule
+
+    mesh = cuboid(cube, cube, cube)
+    lam, _ = tetrahedron_rule(2)
+    points, cells = mesh.points, mesh.cells
+    xq = np.empty((3, mesh.n_cells, len(lam)))
+    fn = ((lambda: np.einsum("qa,mai->imq", lam, points[cells])) if method == "einsum"
+          else (lambda: J3.quadrature_coordinates(points, cells, lam, 0, xq)))
+    with threads(n_threads):
+        first = warm(benchmark, fn)
+        _, peak, source = timed_with_peak(benchmark, fn, lambda: (), _rounds(request.config, mesh))
+    moved = cells.nbytes + xq.nbytes  # read the cells (points in cache or not), write the points
+    record(benchmark, machine, moved, moved, kind="assembly", operation="quadrature-points",
+           method=method, plain=method == "einsum",
+           baseline=None if method == "einsum" else "einsum", threads=n_threads,
+           peak_bytes=peak, peak_source=source, **figures(mesh), **first)
+
+
 # -- whole solves ------------------------------------------------------------------------
 def nested_cube(n):
     """``cuboid(n, n, n)`` made by refining the coarsest cuboid that refines to it."""

@@ -105,3 +105,31 @@ def test_quadrature_kernels_give_the_same_bits_on_one_and_two_threads():
                 hatkernels.assemble_mass(mesh, f).data]
 
     assert_same_bits(*on_one_and_two_threads(compute))
+
+
+@pytest.mark.parametrize("degree", [1, 2, 3])
+def test_tetrahedron_quadrature_points_agree_with_the_plain_einsum(degree):
+    # plain version (common practice, no source): np.einsum over the cells' corners
+    from hatkernels._jit import assembly3d as J3
+    from hatkernels.quadrature import tetrahedron_rule
+
+    mesh = hatkernels.mesh.ball(4)
+    lam, w = tetrahedron_rule(degree)
+    xq = np.empty((3, mesh.n_cells - 9, len(w)))
+    J3.quadrature_coordinates(mesh.points, mesh.cells, lam, 4, xq)
+    plain = np.einsum("qa,mai->imq", lam, mesh.points[mesh.cells[4:mesh.n_cells - 5]])
+    assert np.abs(xq - plain).max() <= 4e-16
+    # the load of x + y + z on the unit cube sums to its integral, 3/2 (analytic)
+    b = hatkernels.assemble_load(hatkernels.mesh.cuboid(3, 4, 5), lambda x, y, z: x + y + z,
+                                 quadrature=degree)
+    assert abs(b.sum() - 1.5) <= 1e-13
+
+
+@pytest.mark.two_threads
+def test_tetrahedron_callable_load_gives_the_same_bits_on_one_and_two_threads():
+    from test_threads import assert_same_bits, on_one_and_two_threads
+
+    mesh = hatkernels.mesh.cuboid(9, 8, 7)
+    f = lambda x, y, z: np.sin(3 * x) * y + z  # noqa: E731
+    assert_same_bits(*on_one_and_two_threads(
+        lambda: [hatkernels.assemble_load(mesh, f, quadrature=3)]))

@@ -16,6 +16,7 @@ checked :class:`hatkernels.coefficients.Coefficient`, so that they need no mesh.
 import numpy as np
 
 from hatkernels._jit import assembly as _jit_assembly
+from hatkernels._jit import assembly3d as _jit_assembly3d
 from hatkernels.coefficients import at_quadrature
 from hatkernels.errors import InputError
 from hatkernels.quadrature import tetrahedron_rule, triangle_rule
@@ -89,7 +90,8 @@ def _tetrahedron_quadrature(points, cells, coef, quadrature):
     out = np.empty((m, len(w)))
     for start in range(0, m, _TET_CHUNK):
         stop = min(m, start + _TET_CHUNK)
-        xq = np.einsum("qa,mai->imq", lam, points[cells[start:stop]])  # (3, m, Q)
+        xq = np.empty((3, stop - start, len(w)))
+        _jit_assembly3d.quadrature_coordinates(points, cells, lam, start, xq)
         owners = np.repeat(np.arange(start, stop), len(w))
         coords = tuple(c.ravel() for c in xq)
         v = coef.evaluate(coords, owners, owner="tetrahedron")
@@ -192,7 +194,10 @@ def tetrahedron_load_values(points, cells, volumes, coef, quadrature=2):
         return (fv + fv.sum(axis=1, keepdims=True)) * (volumes / 20.0)[:, None]
     if coef.kind == "callable":
         lam, w, v = _tetrahedron_quadrature(points, cells, coef, quadrature)
-        return ((v * w) @ lam) * volumes[:, None]
+        out = np.empty((len(cells), 4))
+        _jit_assembly.weighted_sums(np.ascontiguousarray(volumes, dtype=np.float64), v, w,
+                                    lam, out)
+        return out
     raise InputError(f"{coef.name} must be scalar, got a {coef.kind}")
 
 
