@@ -120,9 +120,22 @@ def test_tetrahedron_quadrature_points_agree_with_the_plain_einsum(degree):
     plain = np.einsum("qa,mai->imq", lam, mesh.points[mesh.cells[4:mesh.n_cells - 5]])
     assert np.abs(xq - plain).max() <= 4e-16
     # the load of x + y + z on the unit cube sums to its integral, 3/2 (analytic)
-    b = hatkernels.assemble_load(hatkernels.mesh.cuboid(3, 4, 5), lambda x, y, z: x + y + z,
-                                 quadrature=degree)
+    cube = hatkernels.mesh.cuboid(3, 4, 5)
+    b = hatkernels.assemble_load(cube, lambda x, y, z: x + y + z, quadrature=degree)
     assert abs(b.sum() - 1.5) <= 1e-13
+    # the element masses of a callable against the plain einsum over the rule, and the
+    # whole mass matrix of c = 1 + x summing to its integral, 3/2 (analytic)
+    from hatkernels.assembly.elements import _tetrahedron_quadrature, tetrahedron_mass_values
+    from hatkernels.coefficients import parse_coefficient
+
+    coef = parse_coefficient(lambda x, y, z: 1.0 + x, cube, name="c", sign="positive")
+    masses = tetrahedron_mass_values(cube.points, cube.cells, cube.volumes(), coef, degree)
+    lam3, w3, v = _tetrahedron_quadrature(cube.points, cube.cells, coef, degree)
+    plain = np.einsum("mq,qa,qb->mab", v * w3, lam3, lam3) * cube.volumes()[:, None, None]
+    assert np.abs(masses - plain).max() <= 1e-15 * np.abs(plain).max()
+    # (the hat functions sum to one, so the entries sum to int (1 + x): exact for any rule)
+    total = hatkernels.assemble_mass(cube, lambda x, y, z: 1.0 + x, quadrature=degree).sum()
+    assert abs(total - 1.5) <= 1e-13
 
 
 @pytest.mark.two_threads

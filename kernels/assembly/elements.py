@@ -176,7 +176,11 @@ def tetrahedron_mass_values(points, cells, volumes, coef, quadrature=2):
         return M
     if coef.kind == "callable":
         lam, w, v = _tetrahedron_quadrature(points, cells, coef, quadrature)
-        return np.einsum("mq,qa,qb->mab", v * w, lam, lam) * volumes[:, None, None]
+        pairs = np.ascontiguousarray((lam[:, :, None] * lam[:, None, :]).reshape(len(w), 16))
+        out = np.empty((m, 16))
+        _jit_assembly.weighted_sums(np.ascontiguousarray(volumes, dtype=np.float64), v, w,
+                                    pairs, out)
+        return out.reshape(m, 4, 4)
     raise InputError(f"{coef.name} must be scalar for a mass matrix, got a {coef.kind}")
 
 
