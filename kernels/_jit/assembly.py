@@ -323,7 +323,6 @@ def scatter_tensor(points, triangles, kappa, ks, tensor, ts, diag, slots, first,
                                   diag, slots, first, data)
 
 
-
 @jit(parallel=True)
 def quadrature_coordinates(points, triangles, lam, start, x, y):
     """``x[t, q]``, ``y[t, q]``: quadrature point ``q`` (barycentric ``lam[q]``) of triangle
@@ -350,7 +349,8 @@ def weighted_sums(areas, values, w, table, out):
     from values at quadrature points.
 
     The plain version is ``areas[:, None] * ((values * w) @ table)``; numpy's product
-    with an inner size of 3 to 7 costs about twenty times this.
+    with an inner size of 3 to 7 measured 2 to 20 times this (bench/test_bench_linear.py,
+    ``test_callable_load_sums``).
     """
     nq = values.shape[1]
     na = table.shape[1]
