@@ -80,6 +80,13 @@ class LinearSystem:
             u = zero_means(self.problem, u)
         return u
 
+    @property
+    def points(self):
+        """The mesh point of each unknown (the free points of an assembled system)."""
+        if self._reduced is not None:
+            return self._reduced.free
+        return np.arange(self.problem.mesh.n_points)
+
     def restrict(self, u):
         """The system's unknowns from values at all points."""
         if self._reduced is not None:

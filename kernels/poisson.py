@@ -18,6 +18,7 @@ import numpy as np
 from hatkernels.checks import integer_option
 from hatkernels.discretise import discretise
 from hatkernels.errors import InputError
+from hatkernels.locality import Renumbering, poorly_numbered
 from hatkernels.memory import check_refine_memory, check_solve_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.precond import DEFAULT, capabilities
@@ -79,6 +80,7 @@ def solve_poisson(
     monitor=None,
     zero_mean=False,
     memory_check=True,
+    renumber=None,
     **preconditioner_options,
 ):
     """Solve ``-div(kappa grad u) + c u = f`` on a mesh in one call.
@@ -127,6 +129,15 @@ def solve_poisson(
         Before allocating, estimate the solve's peak memory from measured
         per-point figures and refuse (InputError, with the estimate and the
         memory available) when it does not fit; False skips the check.
+    renumber : bool, optional
+        Solve an assembled system in Z order (a space-filling curve through its
+        points) when its numbering has no locality: at least 65,536 unknowns and
+        more than half the matrix's entries far from its diagonal
+        (:mod:`hatkernels.locality`).  None (default) decides so, False never
+        renumbers, True always does where it may: with a preconditioner that
+        needs no mesh and without the nested start.  ``.u`` is in the mesh's
+        numbering either way; the time shows as ``stats.timings["renumber"]``,
+        and the solve holds one more copy of the matrix (docs/solvers.md).
 
     Returns
     -------
@@ -183,16 +194,38 @@ def solve_poisson(
     system.timings["boundary"] += checked  # the checks of the data count as boundary work
     if progress is not None:
         progress("solve")
-    result = solve(system.A, system.b, preconditioner=preconditioner, rtol=rtol, atol=atol,
+    A, b, renumbering = _renumbered(system, preconditioner, start, renumber)
+    context = system.context() if isinstance(preconditioner, str) and renumbering is None else None
+    result = solve(A, b, preconditioner=preconditioner, rtol=rtol, atol=atol,
                    maxiter=maxiter, start=start, check=check, monitor=monitor,
-                   context=system.context() if isinstance(preconditioner, str) else None,
-                   **preconditioner_options)
-    u = system.expand(result.x)
+                   context=context, **preconditioner_options)
+    x = result.x if renumbering is None else renumbering.back(result.x)
+    u = system.expand(x)
     stats = result.stats
     # the refinement is a phase of its own (it was counted as boundary work)
     phases = {"refine": refining} if refine else {}
+    if renumbering is not None:
+        phases["renumber"] = renumbering.seconds
     stats.timings = {**phases, **system.timings, **stats.timings,
                      "total": time.perf_counter() - t0}
     stats.unknowns = system.unknowns
     stats.dirichlet_points = int(problem.dirichlet.points.size)
     return PoissonSolution(u=u, stats=stats, mesh=mesh, problem=problem)
+
+
+def _renumbered(system, preconditioner, start, renumber=None):
+    """``(A, b, renumbering)``: the system in Z order when ``renumber`` asks for it or, with
+    None, when its numbering has no locality (:mod:`hatkernels.locality`); else as it is,
+    with ``renumbering`` None.
+
+    Only an assembled system with a named preconditioner that needs no mesh (the rows
+    are no longer the mesh's points) and no nested start is renumbered.
+    """
+    if renumber not in (None, True, False):
+        raise InputError(f"renumber must be None, True or False, got {renumber!r}")
+    if (renumber is False or system.matrix_free or not isinstance(preconditioner, str)
+            or start == "nested" or capabilities(preconditioner).needs_mesh
+            or (renumber is None and not poorly_numbered(system.A, system.problem.mesh.dim))):
+        return system.A, system.b, None
+    renumbering = Renumbering(system.problem.mesh.points[system.points])
+    return renumbering.matrix(system.A), renumbering.vector(system.b), renumbering

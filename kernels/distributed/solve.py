@@ -148,13 +148,15 @@ def solve_poisson(
     partition=None,
     gather=True,
     threads=None,
+    renumber=None,
     **preconditioner_options,
 ):
     """Solve ``-div(kappa grad u) + c u = f`` over the ranks of ``comm`` (collective).
 
     Takes the arguments of :func:`hatkernels.poisson.solve_poisson` (the same
     meaning) and returns the same kind of result.  With one rank the result
-    equals the serial one.  Every rank makes the same call, with the mesh
+    equals the serial one (with ``renumber=False``: a serial solve renumbers a
+    system whose numbering has no locality, the distributed one does not).  Every rank makes the same call, with the mesh
     either on every rank (replicated input) or on rank 0 only (scattered
     input, below).
 
@@ -203,6 +205,10 @@ def solve_poisson(
         an error if set.
     zero_mean
         Not available distributed (an error if set).
+    renumber : None or False
+        Each rank's rows stay in the mesh's order: None and False both mean
+        that here; ``True`` (renumber in Z order, as the serial solve may) is
+        not available distributed yet (an error, on every rank).
     memory_check : bool
         As serial; each rank's share of the points is checked against what
         its node has available (ranks on one node share it: checked roughly).
@@ -248,6 +254,10 @@ def solve_poisson(
         raise InputError(f"start={start!r}, rtol={rtol!r}: the full-multigrid start is serial "
                          f"only (hatkernels.solve_poisson); the distributed solve starts CG "
                          f"from zero and needs a tolerance")
+    if renumber not in (None, False):
+        raise InputError(f"renumber={renumber!r}: renumbering the system is serial only "
+                         f"(hatkernels.solve_poisson); each rank's rows stay in the mesh's "
+                         f"order (mesh.reorder('hilbert') renumbers the mesh itself)")
     agreed = {"refine": refine, "preconditioner": preconditioner, "coarse": coarse,
               "gather": gather, "rtol": rtol, "atol": atol, "maxiter": maxiter}
     seen = None
