@@ -92,6 +92,43 @@ def test_callable_load_sums(benchmark, machine, request, cells, method, n_thread
 
 
 @pytest.mark.parametrize("method, n_threads", VECTOR_CASES)
+def test_renumber(benchmark, machine, request, cells, method, n_threads):
+    """A stiffness matrix of the mesh in random point order put in locality order: Z order
+    by a counting sort and the parallel permutation (``hatkernels.locality``) against the
+    Hilbert keys, NumPy's argsort and scipy's ``A[p][:, p]``."""
+    from hatkernels import assemble_stiffness
+    from hatkernels.locality import Renumbering
+    from hatkernels.mesh import Mesh
+    from hatkernels.mesh.reorder import hilbert_keys
+
+    mesh = shared_mesh(cells)
+    rng = np.random.default_rng(7)
+    perm = rng.permutation(mesh.n_points)
+    inv = np.empty_like(perm)
+    inv[perm] = np.arange(perm.size)
+    shuffled = Mesh(mesh.points[perm], inv[mesh.triangles])
+    A = sp.csr_matrix(assemble_stiffness(shuffled))
+    points = shuffled.points
+    if method == "numpy":
+        def fn():
+            order = np.argsort(hilbert_keys(points, plain=True), kind="stable")
+            B = A[order][:, order]
+            B.sort_indices()
+            return B
+    else:
+        fn = lambda: Renumbering(points).matrix(A)  # noqa: E731
+    with threads(n_threads):
+        first = warm(benchmark, fn)
+        benchmark.pedantic(fn, **_vector_rounds(request.config))
+        peak, source = peak_of_call(benchmark, fn)
+    moved = 2 * (12 * A.nnz + 4 * A.shape[0]) + 16 * A.shape[0]  # the matrix twice, the points
+    record(benchmark, machine, moved, moved, kind="kernel", operation="renumber",
+           method=method, plain=method == "numpy", baseline=None if method == "numpy" else "numpy",
+           threads=n_threads, n_points=int(mesh.n_points), peak_bytes=peak, peak_source=source,
+           **first)
+
+
+@pytest.mark.parametrize("method, n_threads", VECTOR_CASES)
 def test_cg_update(benchmark, machine, request, cells, method, n_threads):
     """x += alpha p; r -= alpha q; r.r -- one fused pass against three NumPy statements."""
     n = shared_mesh(cells).n_points
