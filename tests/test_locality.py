@@ -41,8 +41,11 @@ def test_far_entries_counts_as_numpy():
     A = sp.random(300, 300, density=0.05, format="csr", random_state=1)
     rows = np.repeat(np.arange(300), np.diff(A.indptr))
     for limit in (0, 10, 100, 299):
-        assert R.far_entries(A.indptr, A.indices, limit) == np.count_nonzero(
-            np.abs(rows - A.indices) > limit)
+        for step in (1, 3, 299, 400):
+            kept = rows % step == 0
+            far, seen = R.far_entries(A.indptr, A.indices, limit, step)
+            assert far == np.count_nonzero(np.abs(rows - A.indices)[kept] > limit)
+            assert seen == np.count_nonzero(kept)
 
 
 def test_natural_numbering_is_kept_and_a_shuffled_one_is_not():

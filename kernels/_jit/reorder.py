@@ -86,18 +86,23 @@ def hilbert_keys3(q, bits):
 
 
 @jit(parallel=True)
-def far_entries(indptr, indices, limit):
-    """How many stored entries ``(i, j)`` of a CSR matrix have ``|i - j| > limit``."""
+def far_entries(indptr, indices, limit, step):
+    """``(far, seen)``: of the stored entries ``(i, j)`` of rows ``0, step, 2 step, ...`` of a
+    CSR matrix, how many have ``|i - j| > limit``, and how many there are."""
     n = indptr.shape[0] - 1
-    counts = np.zeros(n, dtype=np.int64)
-    for i in prange(n):
+    m = (n + step - 1) // step
+    far = np.zeros(m, dtype=np.int64)
+    seen = np.zeros(m, dtype=np.int64)
+    for r in prange(m):
+        i = r * step
         c = 0
         for k in range(indptr[i], indptr[i + 1]):
             d = indices[k] - i
             if d > limit or d < -limit:
                 c += 1
-        counts[i] = c
-    return counts.sum()
+        far[r] = c
+        seen[r] = indptr[i + 1] - indptr[i]
+    return far.sum(), seen.sum()
 
 
 @jit(parallel=True)
