@@ -93,7 +93,7 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
                     dirichlet_on=None, coefficient=None, reaction=None, neumann=None,
                     robin=None, probes=None, preconditioner=None, rtol=1e-6, atol=0.0,
                     maxiter=None, check=False, quadrature=2, monitor=None, memory_check=True,
-                    **preconditioner_options):
+                    renumber=None, **preconditioner_options):
     """Solve ``capacity du/dt - div(kappa grad u) + c u = f(t)`` and return u at ``times``.
 
     Parameters
@@ -147,6 +147,11 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
         Refuse, before assembling anything, a march whose estimated peak
         (``hatkernels.memory.transient_bytes``: the measured per-point figures
         and 8 bytes per point per output time) does not fit in the available memory.
+    renumber : bool, optional
+        As in :func:`hatkernels.solve_poisson`: the free unknowns in Z order when
+        their numbering has no locality (None), never (False) or always (True),
+        with a preconditioner that needs no mesh; ``.u`` is in the mesh's
+        numbering either way, the time in ``stats.timings["renumber"]``.
     **preconditioner_options
         Passed to the preconditioner.
 
@@ -197,7 +202,10 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     if not isinstance(preconditioner, str):
         raise InputError(f"preconditioner must be a name (built once per step size), got "
                          f"{type(preconditioner).__name__}")
-    capabilities(preconditioner)  # an unknown name is refused before any assembly
+    if renumber not in (None, True, False):
+        raise InputError(f"renumber must be None, True or False, got {renumber!r}")
+    if capabilities(preconditioner).needs_mesh:  # (an unknown name is refused here)
+        renumber = False  # its levels are the mesh's: the rows must stay the mesh's
     schedule = _schedule(times, dt, theta, startup)
     if memory_check:
         check_transient_memory(mesh, preconditioner, len(times))
@@ -212,8 +220,10 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     located = None if probes is None else locate(mesh, probes)
     data = TimeData(problem, clock, timed, gb)
     t = time.perf_counter()
-    blocks = Blocks(problem, lumped)
-    timings = {"assemble": time.perf_counter() - t, "setup": 0.0}
+    blocks = Blocks(problem, lumped, renumber)
+    timings = {"assemble": time.perf_counter() - t - blocks.renumber_seconds, "setup": 0.0}
+    if blocks.renumbered:
+        timings["renumber"] = blocks.renumber_seconds
     rtol, atol, maxiter = _check_scalars(rtol, atol, maxiter, max(blocks.unknowns, 1), None)
     if monitor is not None and not callable(monitor):
         raise InputError(f"monitor must be callable, got {type(monitor).__name__}")
@@ -415,7 +425,9 @@ class _ProbeGather:
         self.weights = probes.weights
         self.in_free = np.isin(v, free)
         self.in_held = np.isin(v, held)
-        self.pos_free = np.searchsorted(free, v).clip(max=max(free.size - 1, 0))
+        order = np.argsort(free, kind="stable")  # free may be renumbered: not sorted
+        self.pos_free = order[np.searchsorted(free[order], v).clip(max=max(free.size - 1, 0))] \
+            if free.size else np.zeros_like(v)
         self.pos_held = np.searchsorted(held, v).clip(max=max(held.size - 1, 0))
         self.fixed = np.where(self.in_free | self.in_held, 0.0, u0[v])
 

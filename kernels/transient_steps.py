@@ -40,6 +40,7 @@ from hatkernels.assembly.boundary_terms import side_mass
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.errors import InputError
 from hatkernels.krylov import _operator
+from hatkernels.locality import Renumbering, poorly_numbered
 from hatkernels.precond import PreconditionerContext, make_preconditioner
 from hatkernels.precond.chebyshev import ChebyshevSmoother
 from hatkernels.sparse import as_csr
@@ -148,6 +149,11 @@ class Blocks:
     ----------
     free, held : ndarray
         The unknowns (points in a cell that are not held) and the held points.
+        ``free`` is increasing, or in Z order when the unknowns were renumbered
+        (``renumber``, :mod:`hatkernels.locality`); ``held`` is increasing.
+    renumbered : bool
+    renumber_seconds : float
+        The time the renumbering took (0 without it).
     K_FF, M_FF : scipy CSR
     stored_bytes : int
         What the matrices hold.
@@ -157,7 +163,7 @@ class Blocks:
         ``rows_lower + rows_capacity / tau`` (:meth:`mass`).
     """
 
-    def __init__(self, problem, lumped):
+    def __init__(self, problem, lumped, renumber=False):
         mesh, q = problem.mesh, problem.quadrature
         n = mesh.n_points
         assembler = StiffnessAssembler(mesh)
@@ -182,6 +188,13 @@ class Blocks:
         self.K_FF = reduced.A
         self.M_FF = apply_dirichlet(M, zeros, held).A
         del reduced
+        self.renumbered, self.renumber_seconds = False, 0.0
+        if renumber is not False and (renumber or poorly_numbered(self.K_FF, mesh.dim)):
+            # every later use indexes with self.free: the blocks below follow it
+            order = Renumbering(mesh.points[free])
+            self.K_FF, self.M_FF = order.matrix(self.K_FF), order.matrix(self.M_FF)
+            self.free = free = free[order.order]
+            self.renumbered, self.renumber_seconds = True, order.seconds
         if held.size:  # couplings to the held points: K_FD u_D^n and the lifting
             K_D, M_D = K[held], M[held]
             K_DF, M_DF = K_D[:, free], M_D[:, free]
