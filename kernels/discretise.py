@@ -80,6 +80,14 @@ class LinearSystem:
             u = zero_means(self.problem, u)
         return u
 
+    def drop_matrix(self):
+        """Let the assembled matrix go (``A`` becomes None) once a copy of it serves the solve
+        (a renumbered one): one matrix less at the solve's peak.  ``expand`` and
+        ``restrict`` still work."""
+        self.A = None
+        if self._reduced is not None:
+            self._reduced = dataclasses.replace(self._reduced, A=None)
+
     @property
     def points(self):
         """The mesh point of each unknown (the free points of an assembled system)."""

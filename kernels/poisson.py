@@ -137,7 +137,7 @@ def solve_poisson(
         renumbers, True always does where it may: with a preconditioner that
         needs no mesh and without the nested start.  ``.u`` is in the mesh's
         numbering either way; the time shows as ``stats.timings["renumber"]``,
-        and the solve holds one more copy of the matrix (docs/solvers.md).
+        and the two matrices coexist while the copy is made (docs/solvers.md).
 
     Returns
     -------
@@ -195,6 +195,8 @@ def solve_poisson(
     if progress is not None:
         progress("solve")
     A, b, renumbering = _renumbered(system, preconditioner, start, renumber)
+    if renumbering is not None:
+        system.drop_matrix()  # the renumbered copy serves from here
     context = system.context() if isinstance(preconditioner, str) and renumbering is None else None
     result = solve(A, b, preconditioner=preconditioner, rtol=rtol, atol=atol,
                    maxiter=maxiter, start=start, check=check, monitor=monitor,
