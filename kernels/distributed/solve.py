@@ -206,9 +206,8 @@ def solve_poisson(
     zero_mean
         Not available distributed (an error if set).
     renumber : None or False
-        Each rank's rows stay in the mesh's order: None and False both mean
-        that here; ``True`` (renumber in Z order, as the serial solve may) is
-        not available distributed yet (an error, on every rank).
+        Each rank's rows stay in the mesh's order (``True``, the serial solve's
+        Z order, is not available distributed yet: an error on every rank).
     memory_check : bool
         As serial; each rank's share of the points is checked against what
         its node has available (ranks on one node share it: checked roughly).
