@@ -225,7 +225,8 @@ def _renumbered(system, preconditioner, start, renumber=None):
     """
     if renumber not in (None, True, False):
         raise InputError(f"renumber must be None, True or False, got {renumber!r}")
-    if (renumber is False or system.matrix_free or not isinstance(preconditioner, str)
+    if (renumber is False or system.matrix_free or system.unknowns == 0
+            or not isinstance(preconditioner, str)
             or start == "nested" or capabilities(preconditioner).needs_mesh
             or (renumber is None and not poorly_numbered(system.A, system.problem.mesh.dim))):
         return system.A, system.b, None

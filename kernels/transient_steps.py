@@ -189,7 +189,8 @@ class Blocks:
         self.M_FF = apply_dirichlet(M, zeros, held).A
         del reduced
         self.renumbered, self.renumber_seconds = False, 0.0
-        if renumber is not False and (renumber or poorly_numbered(self.K_FF, mesh.dim)):
+        if free.size and renumber is not False and (renumber
+                                                     or poorly_numbered(self.K_FF, mesh.dim)):
             # every later use indexes with self.free: the blocks below follow it
             order = Renumbering(mesh.points[free])
             self.K_FF, self.M_FF = order.matrix(self.K_FF), order.matrix(self.M_FF)

@@ -218,3 +218,16 @@ def test_march_on_a_shuffled_mesh_is_renumbered_and_agrees():
     off = solve_transient(mesh, bump, [0.0, 0.01], renumber=False, **kw)
     assert "renumber" not in off.stats.timings
     assert np.linalg.norm(off.u[1] - b.u[1]) <= 1e-8 * np.linalg.norm(b.u[1])
+
+
+def test_nothing_to_renumber_when_every_point_is_held():
+    # one square, all four corners held: no unknown; renumber=True gives the same clear
+    # error as the default (an empty system), not a crash in the ordering
+    from hatkernels.transient import solve_transient
+
+    m = hatkernels.mesh.rectangle(1, 1)
+    for renumber in (None, True):
+        with pytest.raises(hatkernels.InputError, match="empty"):
+            hatkernels.solve_poisson(m, 1.0, dirichlet=2.0, renumber=renumber)
+        with pytest.raises(hatkernels.InputError, match="empty"):
+            solve_transient(m, 0.0, [0.0, 0.1], dt=0.05, dirichlet=2.0, renumber=renumber)
