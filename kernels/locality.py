@@ -29,6 +29,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from hatkernels._jit import reorder as _jit_reorder
+from hatkernels.errors import InputError
 
 __all__ = ["poorly_numbered", "spread_limit", "Renumbering", "MIN_ROWS", "SPREAD", "MIN_SPREAD",
            "SAMPLE_ROWS"]
@@ -84,6 +85,13 @@ class Renumbering:
     def __init__(self, points):
         clock = time.perf_counter()
         points = np.ascontiguousarray(points, dtype=np.float64)
+        if points.ndim != 2 or points.shape[1] not in (2, 3):
+            raise InputError(f"Renumbering needs points of shape (n, 2) or (n, 3), "
+                             f"got {points.shape}")
+        bad = ~np.isfinite(points).all(axis=1)
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise InputError(f"point {k} has a non-finite coordinate {tuple(points[k])}")
         n, dim = points.shape
         # about one point per cell: the order inside a cell does not matter
         bits = max(1, int(np.log2(max(n, 2))) // dim)

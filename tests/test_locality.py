@@ -231,3 +231,12 @@ def test_nothing_to_renumber_when_every_point_is_held():
             hatkernels.solve_poisson(m, 1.0, dirichlet=2.0, renumber=renumber)
         with pytest.raises(hatkernels.InputError, match="empty"):
             solve_transient(m, 0.0, [0.0, 0.1], dt=0.05, dirichlet=2.0, renumber=renumber)
+
+
+def test_renumbering_names_bad_points():
+    with pytest.raises(hatkernels.InputError, match="shape"):
+        Renumbering(np.zeros((4, 1)))
+    pts = np.random.default_rng(0).uniform(size=(6, 2))
+    pts[3, 1] = np.nan
+    with pytest.raises(hatkernels.InputError, match="point 3"):
+        Renumbering(pts)
