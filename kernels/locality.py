@@ -106,6 +106,11 @@ class Renumbering:
     def matrix(self, A):
         """``P A P^T`` (CSR, sorted rows) with new row ``k`` old row ``order[k]``; ``A`` is not
         modified."""
+        n = self.order.size
+        if not sp.issparse(A) or A.format != "csr" or A.shape != (n, n):
+            raise InputError(f"Renumbering.matrix needs a CSR matrix of shape ({n}, {n}) "
+                             f"(one row per point), got {type(A).__name__} "
+                             f"{getattr(A, 'shape', '')}")
         clock = time.perf_counter()
         itype = A.indptr.dtype
         order = self.order.astype(itype, copy=False)

@@ -240,3 +240,8 @@ def test_renumbering_names_bad_points():
     pts[3, 1] = np.nan
     with pytest.raises(hatkernels.InputError, match="point 3"):
         Renumbering(pts)
+    r = Renumbering(np.random.default_rng(1).uniform(size=(5, 2)))
+    with pytest.raises(hatkernels.InputError, match=r"shape \(5, 5\)"):
+        r.matrix(sp.identity(4, format="csr"))
+    with pytest.raises(hatkernels.InputError, match="CSR"):
+        r.matrix(np.eye(5))
