@@ -6,10 +6,10 @@ lie (a mesh file written by a program that shuffles, a mesh assembled from
 pieces), those reads miss the caches at almost every entry, and a whole
 ``solve_poisson`` takes twice as long or more (docs/solvers.md).
 :func:`poorly_numbered` tells such a matrix from a well-numbered one from a
-sample of its rows; :class:`Renumbering` solves it in the order of a space-filling curve through
-its points instead (Z order: each point's coordinates cut into about one
-cell per point, their bits interleaved, sorted by one counting sort) and gives
-the answer back in the caller's numbering.
+sample of its rows; :class:`Renumbering` puts the system in the order of a
+space-filling curve through its points instead (Z order: each point's
+coordinates cut into about one cell per point, their bits interleaved, sorted
+by one counting sort) and gives the answer back in the caller's numbering.
 
 The test: in a mesh of ``n`` points in ``d`` dimensions numbered with any
 locality (by rows, by a front, along a curve) most entries ``(i, j)`` have
@@ -39,7 +39,7 @@ MIN_ROWS = 1 << 16
 #: The distance from the diagonal, in units of ``n^((d-1)/d)``, beyond which an entry
 #: counts as far.
 SPREAD = 8
-#: ... and at least this many rows.
+#: ... and never less than this many rows.
 MIN_SPREAD = 4096
 #: Rows whose entries :func:`poorly_numbered` counts.
 SAMPLE_ROWS = 1 << 16

@@ -159,6 +159,8 @@ def solve_poisson(
     >>> sol.converged, round(float(sol.u.max()), 4)   # the centre value, about 0.0737 in the limit
     (True, 0.0736)
     """
+    if renumber not in (None, True, False):
+        raise InputError(f"renumber must be None, True or False, got {renumber!r}")
     if preconditioner is None:
         if refine and not isinstance(refine, bool):
             from hatkernels.patches.solve import patch_path_reason, solve_on_patches
@@ -223,8 +225,6 @@ def _renumbered(system, preconditioner, start, renumber=None):
     Only an assembled system with a named preconditioner that needs no mesh (the rows
     are no longer the mesh's points) and no nested start is renumbered.
     """
-    if renumber not in (None, True, False):
-        raise InputError(f"renumber must be None, True or False, got {renumber!r}")
     if (renumber is False or system.matrix_free or system.unknowns == 0
             or not isinstance(preconditioner, str)
             or start == "nested" or capabilities(preconditioner).needs_mesh
