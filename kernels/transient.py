@@ -53,7 +53,7 @@ from hatkernels.krylov import _check_scalars
 from hatkernels.memory import check_transient_memory
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.poisson import refined
-from hatkernels.precond import DEFAULT, capabilities
+from hatkernels.precond import DEFAULT, PreconditionerContext, capabilities
 from hatkernels.transient_data import (
     Clock,
     TimeData,
@@ -285,7 +285,9 @@ class _Run:
                 self._unit = s.A
                 self.product_seconds = measure_product(s.A)
             start = time.perf_counter()
-            context = dataclasses.replace(self.context, mass=self.blocks.mass(tau))
+            # a renumbered system's rows are not the mesh's: no context (as solve_poisson)
+            context = (PreconditionerContext() if self.blocks.renumbered else
+                       dataclasses.replace(self.context, mass=self.blocks.mass(tau)))
             s.precondition(self.preconditioner, context, self.options)
             self.timings["setup"] += built + time.perf_counter() - start
             if not self.built:
