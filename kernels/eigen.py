@@ -36,6 +36,7 @@ nonzero eigenvalue.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 
@@ -53,6 +54,7 @@ from hatkernels.eigen_patches import eigen_patch_reason, eigenmodes_on_patches
 from hatkernels.eigenresults import Eigenmodes, EigenStats
 from hatkernels.eigensolvers import SHIFT_INVERT_LIMIT
 from hatkernels.errors import InputError
+from hatkernels.locality import Renumbering, poorly_numbered
 from hatkernels.memory import check_eigen_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.perf import peak_rss_bytes
@@ -100,7 +102,8 @@ def _checked(mesh, k, method, rtol, maxiter, extra, seed, preconditioner, quadra
 
 def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, robin=None,
                method="auto", rtol=1e-8, maxiter=100, extra=None, preconditioner=None, seed=0,
-               quadrature=2, memory_check=True, refine=0, **preconditioner_options):
+               quadrature=2, memory_check=True, refine=0, renumber=None,
+               **preconditioner_options):
     """The ``k`` smallest eigenpairs of ``-div(kappa grad u) = lambda rho u`` (P1).
 
     Parameters
@@ -167,6 +170,12 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, rob
         not fit in the available memory (shift-invert: the sparse factorisation's
         measured bytes per point; lobpcg: per point and per vector of its block,
         ``hatkernels.memory.eigen_bytes``).
+    renumber : bool, optional
+        As in :func:`hatkernels.solve_poisson`, for lobpcg on a mesh with no
+        refinement history (no nested start) and a preconditioner that needs no
+        mesh: the unknowns in Z order when their numbering has no locality
+        (None), never (False) or always (True).  The vectors are in the mesh's
+        numbering either way, the time in ``stats.timings["renumber"]``.
 
     Returns
     -------
@@ -205,6 +214,8 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, rob
             dirichlet_on=dirichlet_on, rtol=rtol, maxiter=maxiter, extra=extra, seed=seed,
             quadrature=quadrature, memory_check=memory_check)
     t0 = time.perf_counter()
+    if renumber not in (None, True, False):
+        raise InputError(f"renumber must be None, True or False, got {renumber!r}")
     mesh = refined(mesh, refine, memory_check)
     k, rtol, maxiter, extra, seed = _checked(mesh, k, method, rtol, maxiter, extra, seed,
                                              preconditioner, quadrature)
@@ -241,7 +252,7 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, rob
     else:
         m = k - z + (max(2, math.ceil(k / 4)) if extra is None else extra)
         values, X = _lobpcg(fine, R, m, k - z, rtol, maxiter, seed, preconditioner,
-                            preconditioner_options, quadrature, stats, timings)
+                            preconditioner_options, quadrature, stats, timings, renumber)
         values, X = values[: k - z], X[:, : k - z]
     values, vectors, zero_modes, stats.errors = _assembled(fine, values, X, k, stats.errors)
     timings["total"] = time.perf_counter() - t0
@@ -349,13 +360,23 @@ def _chain(fine, R, m, quadrature):
     return start, chain[-2::-1]
 
 
-def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, stats, timings):
+def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, stats, timings,
+            renumber=None):
     """Ritz values and vectors (on the free points of ``fine``) of the nested or the plain
     lobpcg iteration; fills ``stats``."""
     n, z = fine.unknowns, fine.zero.shape[1]
     t = time.perf_counter()
     start, between = _chain(fine, R, m, quadrature)
     timings["assemble"] += time.perf_counter() - t
+    order = None
+    if start is None and not between and renumber is not False and not capabilities(
+            name or _default_preconditioner(fine.mesh, fine.stiffness_floats)).needs_mesh \
+            and (renumber or poorly_numbered(fine.K, fine.mesh.dim)):
+        # the plain iteration on the one level: its rows in Z order (hatkernels.locality)
+        order = Renumbering(fine.mesh.points[fine.free])
+        fine = dataclasses.replace(fine, K=order.matrix(fine.K), M=order.matrix(fine.M),
+                                   zero=fine.zero[order.order], free=fine.free[order.order])
+        timings["renumber"] = order.seconds
     used = {"stiffness": 0.0, "mass": 0.0, "preconditioner": 0.0}
     stats.block = m
     X = None
@@ -401,4 +422,4 @@ def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, 
     if not out.converged:
         raise _eb.not_converged(out, rtol, wanted + z, n, z,
                                 ", loosen rtol or use method='shift-invert'")
-    return out.values, out.vectors
+    return out.values, out.vectors if order is None else out.vectors[order.inverse]

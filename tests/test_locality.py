@@ -245,3 +245,24 @@ def test_renumbering_names_bad_points():
         r.matrix(sp.identity(4, format="csr"))
     with pytest.raises(hatkernels.InputError, match="CSR"):
         r.matrix(np.eye(5))
+
+
+def test_eigenmodes_on_a_shuffled_mesh_are_renumbered_and_agree():
+    # lobpcg on a mesh with no refinement history: the shuffled mesh's modes, renumbered,
+    # are the natural mesh's (a jittered mesh: no repeated eigenvalue)
+    from hatkernels.eigen import eigenmodes
+
+    natural = jittered_mesh(260, 3, shuffle=False)
+    mesh, inv = shuffled(natural, seed=9)
+    a = eigenmodes(natural, 4, method="lobpcg", rtol=1e-9)
+    b = eigenmodes(mesh, 4, method="lobpcg", rtol=1e-9)
+    assert "renumber" in b.stats.timings and "renumber" not in a.stats.timings
+    assert np.allclose(b.values, a.values, rtol=1e-8, atol=0)
+    for j in range(4):  # the same mode, up to its sign
+        va, vb = a.vectors[:, j], b.vectors[inv, j]
+        sign = np.sign(va @ vb)
+        assert np.linalg.norm(sign * vb - va) <= 1e-4 * np.linalg.norm(va)
+    kept = eigenmodes(mesh, 2, method="lobpcg", renumber=False)
+    assert "renumber" not in kept.stats.timings
+    with pytest.raises(hatkernels.InputError, match="renumber must be"):
+        eigenmodes(mesh, 2, renumber="always")
