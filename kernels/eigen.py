@@ -54,7 +54,7 @@ from hatkernels.eigen_patches import eigen_patch_reason, eigenmodes_on_patches
 from hatkernels.eigenresults import Eigenmodes, EigenStats
 from hatkernels.eigensolvers import SHIFT_INVERT_LIMIT
 from hatkernels.errors import InputError
-from hatkernels.locality import Renumbering, poorly_numbered
+from hatkernels.locality import Renumbering, renumber_option, should_renumber
 from hatkernels.memory import check_eigen_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.perf import peak_rss_bytes
@@ -214,8 +214,7 @@ def eigenmodes(mesh, k, *, coefficient=None, density=1.0, dirichlet_on=None, rob
             dirichlet_on=dirichlet_on, rtol=rtol, maxiter=maxiter, extra=extra, seed=seed,
             quadrature=quadrature, memory_check=memory_check)
     t0 = time.perf_counter()
-    if renumber not in (None, True, False):
-        raise InputError(f"renumber must be None, True or False, got {renumber!r}")
+    renumber_option(renumber)
     mesh = refined(mesh, refine, memory_check)
     k, rtol, maxiter, extra, seed = _checked(mesh, k, method, rtol, maxiter, extra, seed,
                                              preconditioner, quadrature)
@@ -369,9 +368,9 @@ def _lobpcg(fine, R, m, wanted, rtol, maxiter, seed, name, options, quadrature, 
     start, between = _chain(fine, R, m, quadrature)
     timings["assemble"] += time.perf_counter() - t
     order = None
-    if start is None and not between and renumber is not False and not capabilities(
-            name or _default_preconditioner(fine.mesh, fine.stiffness_floats)).needs_mesh \
-            and (renumber or poorly_numbered(fine.K, fine.mesh.dim)):
+    chosen = name or _default_preconditioner(fine.mesh, fine.stiffness_floats)
+    if (start is None and not between and not capabilities(chosen).needs_mesh
+            and should_renumber(fine.K, fine.mesh.dim, renumber)):
         # the plain iteration on the one level: its rows in Z order (hatkernels.locality)
         order = Renumbering(fine.mesh.points[fine.free])
         fine = dataclasses.replace(fine, K=order.matrix(fine.K), M=order.matrix(fine.M),

@@ -31,8 +31,8 @@ import scipy.sparse as sp
 from hatkernels._jit import reorder as _jit_reorder
 from hatkernels.errors import InputError
 
-__all__ = ["poorly_numbered", "spread_limit", "Renumbering", "MIN_ROWS", "SPREAD", "MIN_SPREAD",
-           "SAMPLE_ROWS"]
+__all__ = ["poorly_numbered", "spread_limit", "renumber_option", "should_renumber",
+           "Renumbering", "MIN_ROWS", "SPREAD", "MIN_SPREAD", "SAMPLE_ROWS"]
 
 #: Systems with fewer rows are never renumbered (their vectors fit the caches).
 MIN_ROWS = 1 << 16
@@ -64,6 +64,21 @@ def poorly_numbered(A, dim):
     step = max(1, n // SAMPLE_ROWS)
     far, seen = _jit_reorder.far_entries(A.indptr, A.indices, spread_limit(n, dim), step)
     return 2 * int(far) > int(seen)
+
+
+def renumber_option(renumber):
+    """``renumber`` checked: None (decide by :func:`poorly_numbered`), True or False."""
+    if renumber not in (None, True, False):
+        raise InputError(f"renumber must be None, True or False, got {renumber!r}")
+    return renumber
+
+
+def should_renumber(A, dim, renumber):
+    """Whether to renumber CSR ``A``: never with ``renumber=False`` or no rows, always with
+    True, and with None when :func:`poorly_numbered` says so."""
+    if renumber is False or A.shape[0] == 0:
+        return False
+    return bool(renumber) or poorly_numbered(A, dim)
 
 
 class Renumbering:

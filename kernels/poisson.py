@@ -18,7 +18,7 @@ import numpy as np
 from hatkernels.checks import integer_option
 from hatkernels.discretise import discretise
 from hatkernels.errors import InputError
-from hatkernels.locality import Renumbering, poorly_numbered
+from hatkernels.locality import Renumbering, renumber_option, should_renumber
 from hatkernels.memory import check_refine_memory, check_solve_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.precond import DEFAULT, capabilities
@@ -159,8 +159,7 @@ def solve_poisson(
     >>> sol.converged, round(float(sol.u.max()), 4)   # the centre value, about 0.0737 in the limit
     (True, 0.0736)
     """
-    if renumber not in (None, True, False):
-        raise InputError(f"renumber must be None, True or False, got {renumber!r}")
+    renumber_option(renumber)
     if preconditioner is None:
         if refine and not isinstance(refine, bool):
             from hatkernels.patches.solve import patch_path_reason, solve_on_patches
@@ -225,10 +224,9 @@ def _renumbered(system, preconditioner, start, renumber=None):
     Only an assembled system with a named preconditioner that needs no mesh (the rows
     are no longer the mesh's points) and no nested start is renumbered.
     """
-    if (renumber is False or system.matrix_free or system.unknowns == 0
-            or not isinstance(preconditioner, str)
-            or start == "nested" or capabilities(preconditioner).needs_mesh
-            or (renumber is None and not poorly_numbered(system.A, system.problem.mesh.dim))):
+    if (system.matrix_free or not isinstance(preconditioner, str) or start == "nested"
+            or capabilities(preconditioner).needs_mesh
+            or not should_renumber(system.A, system.problem.mesh.dim, renumber)):
         return system.A, system.b, None
     renumbering = Renumbering(system.problem.mesh.points[system.points])
     return renumbering.matrix(system.A), renumbering.vector(system.b), renumbering

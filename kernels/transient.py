@@ -50,6 +50,7 @@ from hatkernels import _cg
 from hatkernels._jit import sparse as _k
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.krylov import _check_scalars
+from hatkernels.locality import renumber_option
 from hatkernels.memory import check_transient_memory
 from hatkernels.perf import peak_rss_bytes
 from hatkernels.poisson import refined
@@ -202,8 +203,7 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     if not isinstance(preconditioner, str):
         raise InputError(f"preconditioner must be a name (built once per step size), got "
                          f"{type(preconditioner).__name__}")
-    if renumber not in (None, True, False):
-        raise InputError(f"renumber must be None, True or False, got {renumber!r}")
+    renumber_option(renumber)
     if capabilities(preconditioner).needs_mesh:  # (an unknown name is refused here)
         renumber = False  # its levels are the mesh's: the rows must stay the mesh's
     schedule = _schedule(times, dt, theta, startup)

@@ -40,7 +40,7 @@ from hatkernels.assembly.boundary_terms import side_mass
 from hatkernels.boundary import apply_dirichlet
 from hatkernels.errors import InputError
 from hatkernels.krylov import _operator
-from hatkernels.locality import Renumbering, poorly_numbered
+from hatkernels.locality import Renumbering, should_renumber
 from hatkernels.precond import PreconditionerContext, make_preconditioner
 from hatkernels.precond.chebyshev import ChebyshevSmoother
 from hatkernels.sparse import as_csr
@@ -189,8 +189,7 @@ class Blocks:
         self.M_FF = apply_dirichlet(M, zeros, held).A
         del reduced
         self.renumbered, self.renumber_seconds = False, 0.0
-        if free.size and renumber is not False and (renumber
-                                                     or poorly_numbered(self.K_FF, mesh.dim)):
+        if should_renumber(self.K_FF, mesh.dim, renumber):
             # every later use indexes with self.free: the blocks below follow it
             order = Renumbering(mesh.points[free])
             self.K_FF, self.M_FF = order.matrix(self.K_FF), order.matrix(self.M_FF)
