@@ -18,7 +18,7 @@ from hatkernels.checks import point_indices
 from hatkernels.errors import InputError
 from hatkernels.sparse import as_csr
 
-__all__ = ["DirichletSystem", "apply_dirichlet"]
+__all__ = ["DirichletSystem", "apply_dirichlet", "apply_dirichlet_in_place"]
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
@@ -147,6 +147,55 @@ def apply_dirichlet(A, b, points, values=0.0):
     DirichletSystem(9 free of 25, 16 fixed, 0 isolated, nnz 41)
     >>> u = sysd.expand(np.zeros(9))
     """
+    A, b, fixed, vals, free, isolated, newindex, g = _reduction(A, b, points, values)
+    dt = A.indptr.dtype
+    counts = _jit_dirichlet.reduced_counts(A.indptr, A.indices, newindex, free)
+    rindptr = np.zeros(free.size + 1, dtype=dt)
+    np.cumsum(counts, out=rindptr[1:])
+    rindices = np.empty(int(rindptr[-1]), dtype=dt)
+    rdata = np.empty(int(rindptr[-1]))
+    rb = np.empty(free.size)
+    _jit_dirichlet.reduced_fill(
+        A.indptr, A.indices, A.data, newindex, free, g, b, rindptr, rindices, rdata, rb
+    )
+    return _system(rdata, rindices, rindptr, rb, free, fixed, vals, isolated, n=A.shape[0])
+
+
+def apply_dirichlet_in_place(A, b, points, values=0.0):
+    """:func:`apply_dirichlet` that builds the reduced matrix in ``A``'s own arrays.
+
+    For a matrix that the caller made and will not use again (the solvers'
+    assembled systems): no second matrix is allocated, which saves its memory
+    and the time of touching it.  Afterwards ``A`` holds garbage; ``b`` is
+    not modified.  When ``A`` is not canonical CSR of float64 a converted
+    copy is reduced instead, and ``A`` is left as it was.
+    """
+    A, b, fixed, vals, free, isolated, newindex, g = _reduction(A, b, points, values)
+    rindptr = np.empty(free.size + 1, dtype=A.indptr.dtype)
+    rb = np.empty(free.size)
+    nnz = _jit_dirichlet.compact_in_place(
+        A.indptr, A.indices, A.data, newindex, free, g, b, rindptr, rb
+    )
+    data, indices = A.data[:nnz], A.indices[:nnz]
+    if nnz < 0.75 * A.data.size:  # most of A held: do not keep its arrays alive
+        data, indices = data.copy(), indices.copy()
+    return _system(data, indices, rindptr, rb, free, fixed, vals, isolated, n=A.shape[0])
+
+
+def _system(data, indices, indptr, b, free, fixed, vals, isolated, *, n):
+    size = free.size
+    Ar = sp.csr_matrix((data, indices, indptr), shape=(size, size), copy=False)
+    Ar.has_sorted_indices = True
+    Ar.has_canonical_format = True
+    dt = indptr.dtype
+    return DirichletSystem(A=Ar, b=b, free=free, fixed=fixed.astype(dt), values=vals,
+                           isolated=isolated.astype(dt), n=n)
+
+
+def _reduction(A, b, points, values):
+    """The checked inputs of a reduction and its index maps: ``A`` (canonical CSR),
+    ``b`` (float64), the fixed points and values, the free and isolated points,
+    each point's free index (-1 if not free) and the full-length lifting vector."""
     A = _canonical_csr(A)
     n = A.shape[0]
     b = np.asarray(b)
@@ -187,24 +236,4 @@ def apply_dirichlet(A, b, points, values=0.0):
     newindex[free] = np.arange(free.size, dtype=dt)
     g = np.zeros(n)
     g[fixed] = vals
-    counts = _jit_dirichlet.reduced_counts(A.indptr, A.indices, newindex, free)
-    rindptr = np.zeros(free.size + 1, dtype=dt)
-    np.cumsum(counts, out=rindptr[1:])
-    rindices = np.empty(int(rindptr[-1]), dtype=dt)
-    rdata = np.empty(int(rindptr[-1]))
-    rb = np.empty(free.size)
-    _jit_dirichlet.reduced_fill(
-        A.indptr, A.indices, A.data, newindex, free, g, b, rindptr, rindices, rdata, rb
-    )
-    Ar = sp.csr_matrix((rdata, rindices, rindptr), shape=(free.size, free.size), copy=False)
-    Ar.has_sorted_indices = True
-    Ar.has_canonical_format = True
-    return DirichletSystem(
-        A=Ar,
-        b=rb,
-        free=free,
-        fixed=fixed.astype(dt),
-        values=vals,
-        isolated=isolated.astype(dt),
-        n=n,
-    )
+    return A, b, fixed, vals, free, isolated, newindex, g

@@ -4,7 +4,8 @@ Two forms, one :class:`LinearSystem`:
 
 assembled
     stiffness (+ mass of the reaction, + Robin boundary mass) in canonical
-    CSR, reduced to the free unknowns by :func:`hatkernels.apply_dirichlet`;
+    CSR, reduced to the free unknowns in its own arrays
+    (:func:`hatkernels.boundary.apply_dirichlet_in_place`);
 matrix-free
     a :class:`~hatkernels.StiffnessOperator` with identity rows at the held
     points, the held values lifted to the right-hand side (stiffness term
@@ -25,7 +26,7 @@ import numpy as np
 
 from hatkernels.assembly import StiffnessAssembler, assemble_load
 from hatkernels.assembly.boundary_terms import side_load, side_mass
-from hatkernels.boundary import apply_dirichlet
+from hatkernels.boundary import apply_dirichlet_in_place
 from hatkernels.errors import InputError
 from hatkernels.operators import StiffnessOperator
 from hatkernels.precond import PreconditionerContext
@@ -217,13 +218,18 @@ def discretise(problem, *, matrix_free=False, variant=None, progress=None):
         # row by row in mesh order: the bits the distributed solve reproduces on any
         # number of ranks (one rank equals this solve to the last bit)
         assembler = StiffnessAssembler(mesh, by_rows=mesh.dim == 2)
-        A = assembler.assemble(problem.coefficient, quadrature=q)
+        if mesh.dim == 2:  # on the plan's own pattern: neither is used after the reduction
+            A = assembler.plan.matrix(assembler.assemble_data(problem.coefficient, quadrature=q))
+        else:
+            A = assembler.assemble(problem.coefficient, quadrature=q)
         mass = None  # the lower-order terms' row sums, for gmg's levels
         for term in _lower_order_terms(problem, assembler, q):
             A = A + term
             rows = np.asarray(term.sum(axis=1)).ravel()
             mass = rows if mass is None else mass + rows
-        reduced = apply_dirichlet(A, b, held.points, held.values)
+        # A is ours and not used again: the reduced matrix is built in its arrays
+        reduced = apply_dirichlet_in_place(A, b, held.points, held.values)
+        del A
         system = LinearSystem(reduced.A, reduced.b, problem, False, None, reduced.A.shape[0],
                               stored_bytes(reduced.A), int(reduced.A.nnz), timings, reduced,
                               mass)

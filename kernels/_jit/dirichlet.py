@@ -59,3 +59,31 @@ def row_summary(indptr, indices, data, diag, empty):
                 d += v
         diag[i] = d
         empty[i] = 0 if nonzero else 1
+
+
+@jit()
+def compact_in_place(indptr, indices, data, newindex, free, g, b, rindptr, rb):
+    """:func:`reduced_fill` written over the matrix's own ``indices`` and ``data``.
+
+    The free-free entries move to the front, in the same order; ``rindptr``
+    and ``rb`` are filled as there.  In one pass in row order every entry is
+    written at or before the place it is read from, so nothing is overwritten
+    before it is read.  Returns the number of entries kept.
+    """
+    pos = 0
+    rindptr[0] = 0
+    for r in range(free.size):
+        i = free[r]
+        acc = b[i]
+        for s in range(indptr[i], indptr[i + 1]):
+            j = indices[s]
+            k = newindex[j]
+            if k >= 0:
+                indices[pos] = k
+                data[pos] = data[s]
+                pos += 1
+            else:
+                acc -= data[s] * g[j]
+        rb[r] = acc
+        rindptr[r + 1] = pos
+    return pos
