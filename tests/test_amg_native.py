@@ -347,3 +347,20 @@ def test_singular_semidefinite_system_is_preconditioned():
     # reference library: scipy's least-squares solution of the same singular system
     ref = sla.lsqr(A, b, atol=1e-14, btol=1e-14, iter_lim=20000)[0]
     assert np.allclose(res.x - res.x.mean(), ref - ref.mean(), atol=1e-7)
+
+
+def test_a_coarse_level_that_overflowed_is_named():
+    # the hierarchy's own levels skip the structure checks of as_csr (they are built
+    # from a checked matrix), but a non-finite value is still refused by name
+    from hatkernels.precond.amg import _ChebyshevLevel
+    from hatkernels.precond.classical import _Level
+
+    A = sp.csr_array(reduced_stiffness(rectangle(6, 6)))
+    bad = A.copy()
+    bad.data[3] = np.inf
+    with pytest.raises(InputError, match="level's A has a non-finite entry"):
+        _ChebyshevLevel(_Level(bad), 2)
+    P = sp.csr_array(sp.eye(A.shape[0], 4, format="csr"))
+    P.data[1] = np.nan
+    with pytest.raises(InputError, match="level's P has a non-finite entry"):
+        _ChebyshevLevel(_Level(A, P, P.T.tocsr()), 2)

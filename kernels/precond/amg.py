@@ -56,10 +56,22 @@ class _ChebyshevLevel:
     """One level's arrays for the parallel cycle: A, P, R in CSR, 1/diag(A), coefficients."""
 
     def __init__(self, level, degree, lower=None, estimate=True):
-        A = as_csr(level.A, "level A")
-        self.A = (A.indptr, A.indices, A.data)
-        self.P = self._csr(level.P) if getattr(level, "P", None) is not None else None
-        self.R = self._csr(level.R) if getattr(level, "R", None) is not None else None
+        own = getattr(level, "own", False)
+        if own:
+            # built by ClassicalHierarchy from a checked matrix: well formed (the structure
+            # checks of as_csr would cost a few passes per level); only finiteness is checked
+            A = level.A
+            for name, M in (("A", A), ("P", level.P), ("R", level.R)):
+                if M is not None and not _k.all_finite(M.data):
+                    raise InputError(f"amg: a level's {name} has a non-finite entry (the "
+                                     f"coarse levels overflowed: rescale the problem)")
+            self.A = self._own(A)
+        else:
+            A = as_csr(level.A, "level A")
+            self.A = (A.indptr, A.indices, A.data)
+        transfer = self._own if own else self._csr
+        self.P = transfer(level.P) if getattr(level, "P", None) is not None else None
+        self.R = transfer(level.R) if getattr(level, "R", None) is not None else None
         self.n = A.shape[0]
         dinv = np.empty(self.n)
         # Gershgorin's bound on the spectrum of D^-1 A is guaranteed; Lanczos is tighter.
@@ -79,6 +91,12 @@ class _ChebyshevLevel:
             lower=lower,
         )
         self.dinv = dinv
+
+    @staticmethod
+    def _own(M):
+        itype = np.result_type(M.indptr.dtype, M.indices.dtype)
+        return (np.ascontiguousarray(M.indptr, dtype=itype),
+                np.ascontiguousarray(M.indices, dtype=itype), M.data)
 
     @staticmethod
     def _csr(M):

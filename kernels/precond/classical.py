@@ -39,6 +39,9 @@ EXTENDED_CAP = 4
 class _Level:
     """A level of :class:`ClassicalHierarchy`: its matrix and, above the coarsest, P and R = P^T."""
 
+    #: built by the hierarchy from a checked matrix: the cycle takes its arrays as they are
+    own = True
+
     def __init__(self, A, P=None, R=None):
         self.A, self.P, self.R = A, P, R
 
