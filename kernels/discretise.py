@@ -216,8 +216,11 @@ def discretise(problem, *, matrix_free=False, variant=None, progress=None):
                               int(op.nbytes), 0, timings)
     else:
         # row by row in mesh order: the bits the distributed solve reproduces on any
-        # number of ranks (one rank equals this solve to the last bit)
-        assembler = StiffnessAssembler(mesh, by_rows=mesh.dim == 2)
+        # number of ranks (one rank equals this solve to the last bit).  Each row computes
+        # its triangles' values itself (``fused``): the same bits as from stored element
+        # values (``by_rows``) without their 48 bytes per triangle of fresh memory, whose
+        # first touch made that the slower of the two here (docs/assembly.md)
+        assembler = StiffnessAssembler(mesh, fused=mesh.dim == 2)
         if mesh.dim == 2:  # on the plan's own pattern: neither is used after the reduction
             A = assembler.plan.matrix(assembler.assemble_data(problem.coefficient, quadrature=q))
         else:
