@@ -18,7 +18,7 @@ numba's checks for negative wraparound in the hot loops).
 from numba import prange, uint64
 
 from hatkernels._jit import jit
-from hatkernels._jit.topology import _find, _insert_sorted
+from hatkernels._jit.topology import _insert_sorted, row_position
 
 # Rows with at most this many candidate columns are built by insertion (a few
 # shifts per column, measured faster than a sort call on the short rows of
@@ -123,13 +123,13 @@ def pattern_fill(cells, ptr, codes, scratch, indptr, indices, slots):
         src = i + (k - 1) * ptr[i]
         for r in range(end - start):
             indices[start + r] = scratch[src + r]
-        diag = _find(indices, start, end, i) if end > start else start
+        diag = row_position(indices, start, end, i) if end > start else start
         for e in range(ptr[i], ptr[i + 1]):
             q = codes[e]
             t = q // k
             a = q - k * t
             for b in range(k):
-                slots[q, b] = diag if b == a else _find(indices, start, end, cells[t, b])
+                slots[q, b] = diag if b == a else row_position(indices, start, end, cells[t, b])
 
 
 @jit(parallel=True)

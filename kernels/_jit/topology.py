@@ -102,7 +102,7 @@ def pattern_scratch(triangles, ptr, codes, scratch, counts):
 
 
 @jit()
-def _find(indices, lo, hi, value):
+def row_position(indices, lo, hi, value):
     """Position of ``value`` in the sorted ``indices[lo:hi]`` (it must be there)."""
     while hi - lo > 8:
         mid = (lo + hi) // 2
@@ -116,16 +116,12 @@ def _find(indices, lo, hi, value):
 
 
 @jit(parallel=True)
-def pattern_fill(triangles, ptr, codes, scratch, indptr, indices, diag, slot_next, slot_prev,
-                 with_slots):
-    """Copy the rows from the scratch array into CSR ``indices``; diagonal and slot plan.
+def pattern_fill(ptr, scratch, indptr, indices, diag):
+    """Copy the rows from the scratch array into CSR ``indices``; the diagonal.
 
     ``diag[i]`` is the position of ``(i, i)`` in ``indices`` (-1 for a point
-    in no triangle, whose row is empty).  With ``with_slots``, for each
-    incidence ``e`` of point ``i`` in triangle ``t`` at local vertex ``a``:
-    ``slot_next[e]`` is the position of ``(i, triangle[t, a+1])`` and
-    ``slot_prev[e]`` that of ``(i, triangle[t, a+2])``.  Each row is written
-    only by its own iteration.
+    in no triangle, whose row is empty).  Each row is written only by its own
+    iteration.
     """
     n = ptr.size - 1
     for i in prange(n):
@@ -137,12 +133,23 @@ def pattern_fill(triangles, ptr, codes, scratch, indptr, indices, diag, slot_nex
         src = i + 2 * ptr[i]
         for k in range(end - start):
             indices[start + k] = scratch[src + k]
-        diag[i] = _find(indices, start, end, i)
-        if with_slots:
-            for e in range(ptr[i], ptr[i + 1]):
-                t, b, c2 = _others(codes, e)
-                slot_next[uint64(e)] = _find(indices, start, end, triangles[t, b])
-                slot_prev[uint64(e)] = _find(indices, start, end, triangles[t, c2])
+        diag[i] = row_position(indices, start, end, i)
+
+
+@jit(parallel=True)
+def pattern_slots(triangles, ptr, codes, indptr, indices, slot_next, slot_prev):
+    """Where each incidence's two entries are: for incidence ``e`` of point ``i`` in
+    triangle ``t`` at local vertex ``a``, ``slot_next[e]`` is the position of
+    ``(i, triangle[t, a+1])`` in ``indices`` and ``slot_prev[e]`` that of
+    ``(i, triangle[t, a+2])``."""
+    n = ptr.size - 1
+    for i in prange(n):
+        start = indptr[i]
+        end = indptr[i + 1]
+        for e in range(ptr[i], ptr[i + 1]):
+            t, b, c2 = _others(codes, e)
+            slot_next[uint64(e)] = row_position(indices, start, end, triangles[t, b])
+            slot_prev[uint64(e)] = row_position(indices, start, end, triangles[t, c2])
 
 
 @jit(parallel=True)
@@ -214,7 +221,7 @@ def triangle_edges(triangles, indptr, indices, diag, first_edge):
             q = triangles[t, (c + 2) % 3]
             i = min(p, q)
             j = max(p, q)
-            pos = _find(indices, diag[i] + 1, indptr[i + 1], j)
+            pos = row_position(indices, diag[i] + 1, indptr[i + 1], j)
             out[t, c] = first_edge[i] + pos - diag[i] - 1
     return out
 

@@ -79,18 +79,8 @@ class CSRNumeric:
         data = np.empty(pl.nnz) if out is None else out
         kc = kernel_coefficient(coef, m, quadrature)
         if self.fused:
-            _jit_assembly.gather_stiffness(
-                m.points,
-                pl.triangles,
-                *kc,
-                pl.indptr,
-                pl.diag,
-                pl.ptr,
-                pl.codes,
-                pl.slot_next,
-                pl.slot_prev,
-                data,
-            )
+            _jit_assembly.gather_stiffness(m.points, pl.triangles, *kc, pl.indptr, pl.indices,
+                                           pl.diag, pl.ptr, pl.codes, data)
             return data
         scatter = self._scatter_plan()
         if scatter is not None:

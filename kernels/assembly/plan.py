@@ -10,7 +10,7 @@ import scipy.sparse as sp
 from hatkernels._jit import topology as _topo
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import index_dtype
-from hatkernels.mesh.pattern import csr_pattern
+from hatkernels.mesh.pattern import csr_pattern, incidence_slots
 
 __all__ = ["CSRPlan", "build_plan"]
 
@@ -24,11 +24,17 @@ class CSRPlan:
     the data positions ``slot_next[e]`` of ``(i, vertex a+1)`` and
     ``slot_prev[e]`` of ``(i, vertex a+2)``; ``diag[i]`` is the position of
     ``(i, i)``.  All index arrays share one dtype: int32 while the number of
-    incidences, points and stored entries fit, int64 beyond.
+    incidences, points and stored entries fit, int64 beyond.  ``ptr`` and
+    ``codes`` are the mesh's own incidence where its dtype is the plan's.
 
-    Memory: ``3 * 3`` indices per triangle (codes and two slots) plus
-    ``3`` per point (ptr, diag, indptr) and one per stored entry (indices):
-    with int32 and ``nnz ~ 3.5 M``, about 58 bytes per triangle.
+    The slots are made on first use and kept: the fused stiffness finds its
+    entries in each row and needs none, the element-value gathers (by rows,
+    mass) and the triangle-by-triangle scatter read them.
+
+    Memory: ``3`` indices per triangle (codes), ``6`` more once the slots are
+    made, plus ``3`` per point (ptr, diag, indptr) and one per stored entry
+    (indices): with int32 and ``nnz ~ 3.5 M``, about 34 bytes per triangle, 58
+    with the slots.
     """
 
     n: int
@@ -37,9 +43,22 @@ class CSRPlan:
     diag: np.ndarray
     ptr: np.ndarray
     codes: np.ndarray
-    slot_next: np.ndarray
-    slot_prev: np.ndarray
     triangles: np.ndarray  # the mesh's triangles in the plan's index dtype
+    _slots: list = dataclasses.field(default_factory=list, compare=False)
+
+    @property
+    def slot_next(self):
+        return self._made_slots()[0]
+
+    @property
+    def slot_prev(self):
+        return self._made_slots()[1]
+
+    def _made_slots(self):
+        if not self._slots:
+            self._slots.extend(incidence_slots(self.triangles, self.ptr, self.codes,
+                                               self.indptr, self.indices))
+        return self._slots
 
     @property
     def nnz(self):
@@ -51,18 +70,8 @@ class CSRPlan:
 
     @property
     def nbytes(self):
-        return sum(
-            a.nbytes
-            for a in (
-                self.indptr,
-                self.indices,
-                self.diag,
-                self.ptr,
-                self.codes,
-                self.slot_next,
-                self.slot_prev,
-            )
-        )
+        arrays = (self.indptr, self.indices, self.diag, self.ptr, self.codes, *self._slots)
+        return sum(a.nbytes for a in arrays)
 
     def matrix(self, data, *, copy_pattern=False):
         """A canonical scipy CSR matrix on this pattern with the given data (not copied).
@@ -86,7 +95,7 @@ class CSRPlan:
 
 
 def build_plan(mesh, *, index_dtype_override=None):
-    """Symbolic phase for ``mesh``: pattern, diagonal positions and slot plan.
+    """Symbolic phase for ``mesh``: pattern and diagonal positions (slots on first use).
 
     ``index_dtype_override`` (np.int64) forces wide indices, for testing the
     path that very large meshes take.
@@ -100,13 +109,14 @@ def build_plan(mesh, *, index_dtype_override=None):
             raise InputError(f"this mesh needs {dt} indices")
         dt = np.dtype(index_dtype_override)
     tri = tri.astype(dt, copy=False)
-    ptr = np.empty(mesh.n_points + 1, dtype=dt)
-    codes = np.empty(3 * mesh.n_triangles, dtype=dt)
-    _topo.incidence(tri, ptr, codes)
-    indptr, indices, diag, slot_next, slot_prev = csr_pattern(
-        tri, ptr, codes, with_slots=True, index_dtype_override=index_dtype_override
-    )
+    ptr, codes = mesh._incidence()  # cached by the mesh (its checks made it)
+    if ptr.dtype != dt:
+        ptr = np.empty(mesh.n_points + 1, dtype=dt)
+        codes = np.empty(3 * mesh.n_triangles, dtype=dt)
+        _topo.incidence(tri, ptr, codes)
+    indptr, indices, diag = csr_pattern(tri, ptr, codes,
+                                        index_dtype_override=index_dtype_override)
     if indptr.dtype != dt:
         # more stored entries than int32 can count: everything in int64
         return build_plan(mesh, index_dtype_override=np.int64)
-    return CSRPlan(mesh.n_points, indptr, indices, diag, ptr, codes, slot_next, slot_prev, tri)
+    return CSRPlan(mesh.n_points, indptr, indices, diag, ptr, codes, tri)

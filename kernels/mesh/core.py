@@ -322,7 +322,7 @@ class Mesh:
         if "edges" not in self._cache or "triangle_edges" not in self._cache:
             tri = self._triangles_for_topology()
             ptr, codes = self._incidence()
-            indptr, indices, diag, _, _ = csr_pattern(tri, ptr, codes, with_slots=False)
+            indptr, indices, diag = csr_pattern(tri, ptr, codes)
             counts = np.diff(indptr)
             rows = np.repeat(np.arange(self.n_points, dtype=indptr.dtype), counts)
             keep = indices > rows

@@ -5,17 +5,17 @@ import numpy as np
 from hatkernels._jit import topology as _topo
 from hatkernels.mesh.core_index import index_dtype
 
-__all__ = ["csr_pattern"]
+__all__ = ["csr_pattern", "incidence_slots"]
 
 
-def csr_pattern(triangles, ptr, codes, *, with_slots, index_dtype_override=None):
-    """``(indptr, indices, diag, slot_next, slot_prev)`` from the incidence of a mesh.
+def csr_pattern(triangles, ptr, codes, *, index_dtype_override=None):
+    """``(indptr, indices, diag)`` from the incidence of a mesh.
 
     One pass collects each row, sorted, into a scratch array at a position
     known in advance (``i + 2 ptr[i]``, room for ``2k + 1`` columns); a second
-    copies the rows into place and finds the diagonal and, ``with_slots``,
-    where each incidence's two entries are.  All arrays share one index dtype:
-    that of ``ptr``, or int64 when the stored entries do not fit in it.
+    copies the rows into place and finds the diagonal.  All arrays share one
+    index dtype: that of ``ptr``, or int64 when the stored entries do not fit
+    in it.  Where each incidence's entries are is :func:`incidence_slots`.
     """
     n = ptr.size - 1
     m3 = codes.size
@@ -34,10 +34,15 @@ def csr_pattern(triangles, ptr, codes, *, with_slots, index_dtype_override=None)
     del counts
     indices = np.empty(nnz, dtype=dt)
     diag = np.empty(n, dtype=dt)
-    slots = m3 if with_slots else 0
-    slot_next = np.empty(slots, dtype=dt)
-    slot_prev = np.empty(slots, dtype=dt)
-    _topo.pattern_fill(
-        triangles, ptr, codes, scratch, indptr, indices, diag, slot_next, slot_prev, with_slots
-    )
-    return indptr, indices, diag, slot_next, slot_prev
+    _topo.pattern_fill(ptr, scratch, indptr, indices, diag)
+    return indptr, indices, diag
+
+
+def incidence_slots(triangles, ptr, codes, indptr, indices):
+    """``(slot_next, slot_prev)``: for incidence ``e`` of point ``i`` in triangle ``t`` at
+    local vertex ``a``, the positions in ``indices`` of ``(i, triangle[t, a+1])`` and
+    ``(i, triangle[t, a+2])`` (in the pattern's index dtype)."""
+    slot_next = np.empty(codes.size, dtype=indptr.dtype)
+    slot_prev = np.empty(codes.size, dtype=indptr.dtype)
+    _topo.pattern_slots(triangles, ptr, codes, indptr, indices, slot_next, slot_prev)
+    return slot_next, slot_prev
