@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import time
 
+import numba
 import numpy as np
 
 from hatkernels.checks import integer_option
@@ -23,8 +24,8 @@ from hatkernels.memory import check_refine_memory, check_solve_memory
 from hatkernels.mesh.core import Mesh
 from hatkernels.precond import DEFAULT, capabilities
 from hatkernels.problem import PoissonProblem
-from hatkernels.solver import solve
-from hatkernels.stats import PoissonSolution
+from hatkernels.solver import SolveResult, solve
+from hatkernels.stats import PoissonSolution, SolveStats
 
 __all__ = ["PoissonSolution", "solve_poisson"]
 
@@ -195,13 +196,18 @@ def solve_poisson(
     system.timings["boundary"] += checked  # the checks of the data count as boundary work
     if progress is not None:
         progress("solve")
-    A, b, renumbering = _renumbered(system, preconditioner, start, renumber)
-    if renumbering is not None:
-        system.drop_matrix()  # the renumbered copy serves from here
-    context = system.context() if isinstance(preconditioner, str) and renumbering is None else None
-    result = solve(A, b, preconditioner=preconditioner, rtol=rtol, atol=atol,
-                   maxiter=maxiter, start=start, check=check, monitor=monitor,
-                   context=context, **preconditioner_options)
+    if system.unknowns == 0 and not system.matrix_free:
+        result = _all_held(system, preconditioner)  # u is the held values: nothing to solve
+        renumbering = None
+    else:
+        A, b, renumbering = _renumbered(system, preconditioner, start, renumber)
+        if renumbering is not None:
+            system.drop_matrix()  # the renumbered copy serves from here
+        context = (system.context() if isinstance(preconditioner, str) and renumbering is None
+                   else None)
+        result = solve(A, b, preconditioner=preconditioner, rtol=rtol, atol=atol,
+                       maxiter=maxiter, start=start, check=check, monitor=monitor,
+                       context=context, **preconditioner_options)
     x = result.x if renumbering is None else renumbering.back(result.x)
     u = system.expand(x)
     stats = result.stats
@@ -230,3 +236,17 @@ def _renumbered(system, preconditioner, start, renumber=None):
         return system.A, system.b, None
     renumbering = Renumbering(system.problem.mesh.points[system.points])
     return renumbering.matrix(system.A), renumbering.vector(system.b), renumbering
+
+
+def _all_held(system, preconditioner):
+    """The result of a problem whose every point is held (or in no cell): no unknown, so
+    no CG and no preconditioner; the answer is the held values."""
+    if isinstance(preconditioner, str):
+        capabilities(preconditioner)  # a wrong name is still refused
+    stats = SolveStats(iterations=0, converged=True, residuals=np.zeros(1),
+                       timings={"setup": 0.0, "solve": 0.0}, unknowns=0,
+                       preconditioner="none: every point is held, nothing to solve",
+                       threads=numba.get_num_threads(), tolerance=0.0,
+                       message="every point is held by a Dirichlet condition: u is the held "
+                               "values")
+    return SolveResult(x=np.zeros(0), stats=stats)

@@ -221,6 +221,10 @@ def solve_transient(mesh, u0, times, *, dt, capacity=1.0, scheme="crank-nicolson
     data = TimeData(problem, clock, timed, gb)
     t = time.perf_counter()
     blocks = Blocks(problem, lumped, renumber)
+    if blocks.unknowns == 0:
+        raise InputError(f"every one of the {problem.mesh.n_points} points is held by a "
+                         "Dirichlet condition (or in no cell): there is nothing to march; "
+                         "the field at each time is the held values")
     timings = {"assemble": time.perf_counter() - t - blocks.renumber_seconds, "setup": 0.0}
     if blocks.renumbered:
         timings["renumber"] = blocks.renumber_seconds

@@ -330,3 +330,20 @@ def test_refine_solves_on_the_refined_mesh():
     assert abs(sol.u[centre] - 0.0737) < 2e-4
     with pytest.raises(hatkernels.InputError, match="refine must be >= 0"):
         solve_poisson(coarse, 1.0, refine=-1)
+
+
+@pytest.mark.parametrize("matrix_free", [False, True])
+def test_a_problem_whose_every_point_is_held_returns_the_held_values(matrix_free):
+    # with every point held there is no unknown: u is the data itself (the definition of a
+    # Dirichlet condition; common practice, no source), with no CG iteration
+    m = rectangle(1, 1).refine()  # 9 points, one inside
+    g = lambda x, y: 1.0 + x - 2.0 * y  # noqa: E731
+    sol = solve_poisson(m, 5.0, dirichlet=g, dirichlet_on=np.arange(m.n_points),
+                        matrix_free=matrix_free,
+                        preconditioner="none" if matrix_free else None)
+    assert np.array_equal(sol.u, g(*m.points.T))
+    assert sol.stats.unknowns == 0 and sol.stats.converged
+    if not matrix_free:
+        assert sol.stats.iterations == 0 and "nothing to solve" in sol.stats.preconditioner
+    with pytest.raises(hatkernels.InputError, match="unknown preconditioner"):
+        solve_poisson(m, 1.0, dirichlet_on=np.arange(m.n_points), preconditioner="nonesuch")

@@ -406,3 +406,9 @@ def test_fuzzed_times_and_steps_work_or_raise_input_error(times, dt):
     except InputError:
         return
     assert sol.u.shape == (len(times), m.n_points) and np.isfinite(sol.u).all()
+
+
+def test_a_march_whose_every_point_is_held_is_refused_by_name():
+    m = rectangle(1, 1)
+    with pytest.raises(InputError, match="every one of the 4 points is held"):
+        hatkernels.solve_transient(m, 0.0, [0.1], dt=0.05, dirichlet=2.0)
