@@ -173,8 +173,6 @@ def gather_stiffness(points, triangles, kappa, ks, tensor, ts, indptr, indices, 
             data[uint64(diag[i])] = dsum
 
 
-
-
 @jit()
 def load_per_triangle(points, triangles, value, vs, out):
     """``out_i = sum over triangles T of i of area(T) value_T / 3`` (serial, in triangle order).
