@@ -23,7 +23,7 @@ from hatkernels.errors import InputError
 from hatkernels.krylov import cg_with_history
 from hatkernels.mesh import rectangle
 from hatkernels.precond import make_preconditioner
-from hatkernels.precond.classical import ClassicalAMG, ClassicalHierarchy
+from hatkernels.precond.classical import ClassicalAMG, ClassicalHierarchy, _galerkin, _Room
 
 THETA = 0.25
 
@@ -208,20 +208,36 @@ def test_galerkin_and_transpose_match_scipy(seed):
     rptr, rind, rdata = _a.transpose(P.indptr, P.indices, P.data, nc)
     R = sp.csr_array((rdata, rind, rptr), shape=(nc, n))
     assert (R != P.T).nnz == 0  # reference library: scipy's transpose
+    # one pass into per-chunk room: a chunk without room enough says so ...
     counts = np.zeros(nc + 1, dtype=np.int64)
-    _a.galerkin_counts(rptr, rind, A.indptr, A.indices, A.data, P.indptr, P.indices, nc,
-                       counts, 3)
-    cptr = np.cumsum(counts).astype(A.indptr.dtype)
-    cind = np.empty(cptr[-1], dtype=A.indptr.dtype)
-    cdata = np.empty(cptr[-1])
-    _a.galerkin(rptr, rind, rdata, A.indptr, A.indices, A.data, P.indptr, P.indices, P.data,
-                nc, cptr, cind, cdata, 3)
-    kept = _a.drop_zeros(cptr, cind, cdata)
-    C = sp.csr_array((cdata[:kept], cind[:kept], cptr), shape=(nc, nc))
+    starts = np.array([0, 8, 16])
+    over, _ = _a.galerkin(rptr, rind, rdata, A.indptr, A.indices, A.data, P.indptr,
+                          P.indices, P.data, nc, counts, starts, np.empty(16, np.int32),
+                          np.empty(16), 2)
+    assert over == 2
+    # ... and is retried with more: start from a quarter entry per entry of R
+    room = _Room()
+    room.per_entry = 0.25
+    cptr, cind, cdata, room = _galerkin((rptr, rind, rdata), (A.indptr, A.indices, A.data),
+                                        (P.indptr, P.indices, P.data), nc, room)
+    assert room.per_entry >= 2.0
+    C = sp.csr_array((cdata, cind, cptr), shape=(nc, nc))
     reference = (P.T @ A @ P).toarray()  # reference library: scipy's sparse products
     assert np.abs(C.toarray() - reference).max() <= 1e-13 * np.abs(reference).max()
     off = C.indices != np.repeat(np.arange(nc), np.diff(C.indptr))
     assert (C.data[off] != 0.0).all()
+
+
+def test_galerkin_drops_entries_that_cancel_exactly():
+    # P^T P for P = [[1, 1], [1, -1]]: the off-diagonal 1 - 1 is exactly 0 and is dropped,
+    # the diagonal 2 stays (common practice, no source)
+    P = sp.csr_array(np.array([[1.0, 1.0], [1.0, -1.0], [0.0, 0.0]]))
+    A = sp.csr_array(sp.eye(3))
+    rptr, rind, rdata = _a.transpose(P.indptr, P.indices, P.data, 2)
+    cptr, cind, cdata, _ = _galerkin((rptr, rind, rdata), (A.indptr, A.indices, A.data),
+                                     (P.indptr, P.indices, P.data), 2, _Room())
+    assert cptr.tolist() == [0, 1, 2] and cind.tolist() == [0, 1]
+    assert cdata.tolist() == [2.0, 2.0]
 
 
 def test_dense_cholesky_matches_numpy():

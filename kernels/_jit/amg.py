@@ -19,7 +19,7 @@ multigrid", in Multigrid Methods, SIAM Frontiers in Applied Mathematics 3,
   (De Sterck, Falgout, Nolting and Yang, Numer. Linear Algebra Appl. 15,
   2008), at most ``cap`` of them the largest;
 * ``galerkin``: the coarse matrix ``R A P`` (``R = P^T``) row by row, without
-  forming ``A P``.
+  forming ``A P``, in one pass into per-chunk room (``gather_rows`` packs it).
 
 Every parallel kernel owns its output rows and sums each row in a fixed
 order, so the hierarchy has the same bits on any number of threads.  As in
@@ -42,8 +42,8 @@ __all__ = [
     "interpolation_counts",
     "interpolation",
     "transpose",
-    "galerkin_counts",
     "galerkin",
+    "gather_rows",
     "drop_zeros",
     "diagonal_and_bound",
     "dense_cholesky",
@@ -309,58 +309,82 @@ def transpose(indptr, indices, data, n_cols, parts=2):
     return transpose_kept(indptr, indices, data, np.empty(0, dtype=np.uint8), n_cols, parts)
 
 
-@jit(parallel=True)
-def galerkin_counts(rptr, rind, aptr, aind, adata, pptr, pind, n_coarse, counts, nchunks):
-    """``counts[I + 1]``: the entries of row ``I`` of ``R A P``."""
-    for c in prange(nchunks):
-        lo, hi = _bounds(n_coarse, nchunks, c)
-        mark = np.full(n_coarse, -1, dtype=pind.dtype)
-        for row in range(lo, hi):
-            m = 0
-            for t in range(rptr[U(row)], rptr[U(row) + U(1)]):
-                i = U(rind[U(t)])
-                for k in range(aptr[i], aptr[i + U(1)]):
-                    if adata[U(k)] == 0.0:  # stored zeros of A add no entries
-                        continue
-                    j = U(aind[U(k)])
-                    for s in range(pptr[j], pptr[j + U(1)]):
-                        col = U(pind[U(s)])
-                        if mark[col] != row:
-                            mark[col] = row
-                            m += 1
-            counts[U(row) + U(1)] = m
+@jit(inline="always")
+def _galerkin_row(row, q, limit, rptr, rind, rdata, aptr, aind, adata, pptr, pind, pdata,
+                  pos, sind, sdata):
+    """Row ``row`` of ``R A P`` into ``sind``/``sdata`` from place ``q``; returns the place
+    after it, or -1 when it would pass ``limit``.  The sums run in a fixed order."""
+    start = q
+    for t in range(rptr[U(row)], rptr[U(row) + U(1)]):
+        i = U(rind[U(t)])
+        r = rdata[U(t)]
+        for k in range(aptr[i], aptr[i + U(1)]):
+            a = adata[U(k)]
+            if a == 0.0:  # stored zeros of A add no entries
+                continue
+            j = U(aind[U(k)])
+            ra = r * a
+            for s in range(pptr[j], pptr[j + U(1)]):
+                col = U(pind[U(s)])
+                v = ra * pdata[U(s)]
+                p = pos[col]
+                if p < start:
+                    if q == limit:
+                        return -1
+                    pos[col] = q
+                    sind[U(q)] = col
+                    sdata[U(q)] = v
+                    q += 1
+                else:
+                    sdata[U(p)] += v
+    return q
 
 
 @jit(parallel=True)
-def galerkin(rptr, rind, rdata, aptr, aind, adata, pptr, pind, pdata, n_coarse,
-             cptr, cind, cdata, nchunks):
-    """Fill ``C = R A P`` (``cptr`` given); each row's sums in a fixed order."""
+def galerkin(rptr, rind, rdata, aptr, aind, adata, pptr, pind, pdata, n_coarse, counts,
+             starts, sind, sdata, nchunks):
+    """``C = R A P`` in one pass: chunk ``c`` of the coarse rows (``_bounds``) writes its rows
+    one after another into ``sind``/``sdata`` from ``starts[c]``, before ``starts[c + 1]``;
+    ``counts[I + 1]`` gets row ``I``'s length (:func:`gather_rows` packs them).
+
+    Returns ``(overflowed, zeros)``: how many chunks did not fit (then nothing is
+    usable: call again with more room), and how many off-diagonal entries summed to
+    exactly zero (:func:`drop_zeros` removes them).  No separate counting pass: that
+    would walk the triple product twice.
+    """
+    over = np.zeros(nchunks, dtype=np.int64)
+    zeros = np.zeros(nchunks, dtype=np.int64)
     for c in prange(nchunks):
         lo, hi = _bounds(n_coarse, nchunks, c)
-        pos = np.full(n_coarse, -1, dtype=cind.dtype)
+        pos = np.full(n_coarse, -1, dtype=sind.dtype)
+        q = starts[c]
+        z = 0
         for row in range(lo, hi):
-            start = cptr[U(row)]
-            q = start
-            for t in range(rptr[U(row)], rptr[U(row) + U(1)]):
-                i = U(rind[U(t)])
-                r = rdata[U(t)]
-                for k in range(aptr[i], aptr[i + U(1)]):
-                    a = adata[U(k)]
-                    if a == 0.0:
-                        continue
-                    j = U(aind[U(k)])
-                    ra = r * a
-                    for s in range(pptr[j], pptr[j + U(1)]):
-                        col = U(pind[U(s)])
-                        v = ra * pdata[U(s)]
-                        p = pos[col]
-                        if p < start:
-                            pos[col] = q
-                            cind[U(q)] = col
-                            cdata[U(q)] = v
-                            q += 1
-                        else:
-                            cdata[U(p)] += v
+            end = _galerkin_row(row, q, starts[c + 1], rptr, rind, rdata, aptr, aind, adata,
+                                pptr, pind, pdata, pos, sind, sdata)
+            if end < 0:
+                over[c] = 1
+                break
+            counts[U(row) + U(1)] = end - q
+            for e in range(q, end):
+                if sdata[U(e)] == 0.0 and sind[U(e)] != row:
+                    z += 1
+            q = end
+        zeros[c] = z
+    return over.sum(), zeros.sum()
+
+
+@jit(parallel=True)
+def gather_rows(starts, cptr, sind, sdata, cind, cdata, nchunks):
+    """Pack the chunks :func:`galerkin` left in ``sind``/``sdata`` into ``cind``/``cdata``
+    (``cptr``: the row starts, from its counts)."""
+    n_coarse = cptr.shape[0] - 1
+    for c in prange(nchunks):
+        lo, hi = _bounds(n_coarse, nchunks, c)
+        src, dst = starts[c], cptr[lo]
+        for e in range(cptr[hi] - dst):
+            cind[U(dst + e)] = sind[U(src + e)]
+            cdata[U(dst + e)] = sdata[U(src + e)]
 
 
 @jit()

@@ -131,6 +131,48 @@ def _chunks():
     return numba.get_num_threads()
 
 
+class _Room:
+    """Scratch for :func:`_galerkin`, kept from level to level (each smaller than the last,
+    so its pages are first touched once), and the room per entry of R it gives."""
+
+    def __init__(self):
+        self.sind = self.sdata = None
+        self.per_entry = 3.0  # P1 triangles: about 1.8 entries of R A P per entry of R
+
+
+def _galerkin(R, A, P, n_coarse, room):
+    """``C = R A P`` as ``(cptr, cind, cdata, room)``: one pass into per-chunk room sized
+    from R's entries, retried with twice the room when a chunk does not fit."""
+    rptr = R[0]
+    nchunks = _chunks()
+    while True:
+        starts = np.zeros(nchunks + 1, dtype=np.int64)
+        for c in range(nchunks):
+            lo, hi = (n_coarse * c) // nchunks, (n_coarse * (c + 1)) // nchunks
+            starts[c + 1] = starts[c] + int(room.per_entry * (rptr[hi] - rptr[lo])) + 64
+        stype = index_dtype(n_coarse, starts[-1])
+        if room.sind is None or room.sind.shape[0] < starts[-1] or room.sind.dtype != stype:
+            room.sind = room.sdata = None  # free the old before the new is made
+            room.sind, room.sdata = np.empty(starts[-1], dtype=stype), np.empty(starts[-1])
+        counts = np.zeros(n_coarse + 1, dtype=np.int64)
+        over, zeros = _a.galerkin(*R, *A, *P, n_coarse, counts, starts, room.sind,
+                                  room.sdata, nchunks)
+        if over == 0:
+            break
+        room.per_entry *= 2.0
+    np.cumsum(counts, out=counts)
+    ctype = index_dtype(n_coarse, counts[-1])
+    cptr = counts.astype(ctype, copy=False)
+    cind, cdata = np.empty(cptr[-1], dtype=ctype), np.empty(cptr[-1])
+    _a.gather_rows(starts, cptr, room.sind, room.sdata, cind, cdata, nchunks)
+    # the next level's room: this level's entries per entry of R, and half as much again
+    room.per_entry = max(2.0, 1.5 * cptr[-1] / max(rptr[-1], 1))
+    if zeros:
+        kept = _a.drop_zeros(cptr, cind, cdata)
+        cind, cdata = cind[:kept].copy(), cdata[:kept].copy()
+    return cptr, cind, cdata, room
+
+
 class ClassicalHierarchy:
     """Ruge-Stueben hierarchy built with this project's parallel kernels (``hatkernels._jit.amg``).
 
@@ -159,6 +201,7 @@ class ClassicalHierarchy:
         extend = interpolation == "extended"
         indptr, indices, data = _csr_arrays(A)
         current = A
+        room = _Room()
         while len(self.levels) + 1 < max_levels and current.shape[0] > max_coarse:
             n = current.shape[0]
             strong = np.empty(indptr[-1], dtype=np.uint8)
@@ -186,24 +229,14 @@ class ClassicalHierarchy:
                              pptr, pind, pdata, extended, EXTENDED_CAP, width, _chunks())
             del strong, state, cidx, extended
             rptr, rind, rdata = _a.transpose(pptr, pind, pdata, n_coarse, _parts())
-            cptr = np.zeros(n_coarse + 1, dtype=np.int64)
-            _a.galerkin_counts(rptr, rind, indptr, indices, data, pptr, pind, n_coarse, cptr,
-                               _chunks())
-            np.cumsum(cptr, out=cptr)
-            ctype = index_dtype(n_coarse, cptr[-1])
-            cptr = cptr.astype(ctype, copy=False)
-            cind = np.empty(cptr[-1], dtype=ctype)
-            cdata = np.empty(cptr[-1])
-            _a.galerkin(rptr, rind, rdata, indptr, indices, data, pptr, pind, pdata, n_coarse,
-                        cptr, cind, cdata, _chunks())
-            kept = _a.drop_zeros(cptr, cind, cdata)
-            if kept < cind.shape[0]:
-                cind, cdata = cind[:kept].copy(), cdata[:kept].copy()
+            cptr, cind, cdata, room = _galerkin((rptr, rind, rdata), (indptr, indices, data),
+                                                (pptr, pind, pdata), n_coarse, room)
             P = sp.csr_array((pdata, pind, pptr), shape=(n, n_coarse))
             R = sp.csr_array((rdata, rind, rptr), shape=(n_coarse, n))
             self.levels.append(_Level(current, P, R))
             current = sp.csr_array((cdata, cind, cptr), shape=(n_coarse, n_coarse))
             indptr, indices, data = cptr, cind, cdata
+        del room
         self.levels.append(_Level(current))
         if current.shape[0] <= self.DENSE_LIMIT:
             self.coarse_solver = _DenseCholesky(current)
