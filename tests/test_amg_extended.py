@@ -24,7 +24,13 @@ from hatkernels.errors import InputError
 from hatkernels.krylov import cg_with_history
 from hatkernels.precond import make_preconditioner
 from hatkernels.precond.classical import EXTENDED_CAP as CAP
-from hatkernels.precond.classical import ClassicalAMG, ClassicalHierarchy, _split
+from hatkernels.precond.classical import (
+    ClassicalAMG,
+    ClassicalHierarchy,
+    _interpolation,
+    _Room,
+    _split,
+)
 
 THETA = 0.25
 
@@ -41,15 +47,8 @@ def kernel_p(A, theta=THETA, extend=True):
     _a.strength(A.indptr, A.indices, A.data, theta, strong)
     state = _split(A.indptr, A.indices, strong, n)
     cidx = np.cumsum(state, dtype=A.indptr.dtype) - 1
-    pptr = np.zeros(n + 1, dtype=A.indptr.dtype)
-    extended = np.zeros(n if extend else 0, dtype=np.uint8)
-    width = _a.interpolation_counts(A.indptr, A.indices, strong, state, pptr, extend, CAP,
-                                    extended, 2)
-    np.cumsum(pptr, out=pptr)
-    pind = np.empty(pptr[-1], dtype=A.indptr.dtype)
-    pdata = np.empty(pptr[-1])
-    _a.interpolation(A.indptr, A.indices, A.data, strong, state, cidx, pptr, pind, pdata,
-                     extended, CAP, width, 2)
+    pptr, pind, pdata, _ = _interpolation((A.indptr, A.indices, A.data), strong, state, cidx,
+                                          extend, _Room())
     P = sp.csr_array((pdata, pind, pptr), shape=(n, int(state.sum())))
     return P, strong, state
 

@@ -39,7 +39,6 @@ from hatkernels._jit.amg_split import C_POINT, transpose_kept
 
 __all__ = [
     "strength",
-    "interpolation_counts",
     "interpolation",
     "transpose",
     "galerkin",
@@ -118,73 +117,53 @@ def _unmark_row(pos, marked, places):
 
 
 @jit(parallel=True)
-def interpolation_counts(indptr, indices, strong, state, counts, extend, cap, extended,
-                         nchunks):
-    """``counts[i + 1]``: the entries of row ``i`` of P (1 for a C point; for an F point
-    its strong C couplings, and with ``extend`` the extension of :func:`interpolation`,
-    at most ``cap`` entries in an extended row; ``extended[i]`` = 1 for such a row).
-    Returns the most interpolation points of any row before the cap (the size of
-    :func:`interpolation`'s ``width``)."""
+def interpolation(indptr, indices, data, strong, state, cidx, counts, starts, sind, sdata,
+                  extend, cap, nchunks):
+    """P in one pass, as :func:`galerkin` writes ``R A P``: chunk ``c`` of the rows writes
+    its rows one after another into ``sind``/``sdata`` from ``starts[c]`` and
+    ``counts[i + 1]`` gets row ``i``'s length (:func:`gather_rows` packs them).  A row
+    takes at most its matrix row's length plus ``cap`` entries, so room that size never
+    runs out.
+
+    A C point's row is its coarse index ``cidx``; an F point takes the classical
+    interpolation weights; with ``extend``, a row with a strong F neighbour that shares
+    none of its strong C points interpolates from theirs too, by the extended+i formula
+    (:func:`_extended_row`), keeping its ``cap`` largest weights."""
     n = indptr.shape[0] - 1
-    widest = np.zeros(nchunks, dtype=np.int64)
     for c in prange(nchunks):
         lo, hi = _bounds(n, nchunks, c)
         pos = np.full(n, -1, dtype=np.int32)  # places within one row of P
-        marked = np.empty(n, dtype=np.int64)  # a row's points by place (pages touched: few)
-        w = 1
+        # a row's points, weights and columns by place (pages touched: few)
+        marked = np.empty(n, dtype=np.int64)
+        weights = np.empty(n)
+        columns = np.empty(n, dtype=sind.dtype)
+        start = starts[c]
         for i in range(lo, hi):
             ui = U(i)
             if state[ui] == C_POINT:
+                sind[U(start)] = cidx[ui]
+                sdata[U(start)] = 1.0
                 counts[ui + U(1)] = 1
-                continue
-            places, own = _mark_row(indptr, indices, strong, state, pos, marked, ui, extend)
-            counts[ui + U(1)] = min(places, cap) if places > own else places
-            if extend:
-                extended[ui] = places > own
-            w = max(w, places)
-            _unmark_row(pos, marked, places)
-        widest[c] = w
-    return widest.max()
-
-
-@jit(parallel=True)
-def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata, extended,
-                  cap, width, nchunks):
-    """Fill P (``pptr``, ``extended`` and ``width`` from :func:`interpolation_counts`,
-    ``extended`` empty without ``extend``): the classical interpolation weights of every
-    F point; a row with a strong F neighbour that shares none of its strong C points
-    (``extended``) interpolates from theirs too, by the extended+i formula
-    (:func:`_extended_row`)."""
-    n = indptr.shape[0] - 1
-    for c in prange(nchunks):
-        lo, hi = _bounds(n, nchunks, c)
-        pos = np.full(n, -1, dtype=np.int32)  # places within one row of P
-        marked = np.empty(width, dtype=np.int64)
-        weights = np.empty(width)
-        columns = np.empty(width, dtype=pind.dtype)
-        for i in range(lo, hi):
-            ui = U(i)
-            start = pptr[ui]
-            if state[ui] == C_POINT:
-                pind[U(start)] = cidx[ui]
-                pdata[U(start)] = 1.0
+                start += 1
                 continue
             first, last = indptr[ui], indptr[ui + U(1)]
-            extend = extended.size > 0 and extended[ui] == 1
             places, own = _mark_row(indptr, indices, strong, state, pos, marked, ui, extend)
             if places > own:
                 _extended_row(indptr, indices, data, strong, state, pos, ui, places, weights)
                 for q in range(places):
                     columns[q] = cidx[U(marked[q])]
-                _keep_largest(weights, columns, places, cap, pind, pdata, start,
-                              pptr[ui + U(1)] - start)
+                count = min(places, cap)
+                _keep_largest(weights, columns, places, cap, sind, sdata, start, count)
                 _unmark_row(pos, marked, places)
+                counts[ui + U(1)] = count
+                start += count
                 continue
+            counts[ui + U(1)] = own
             if own == 0:
                 continue
             for q in range(own):  # the strong C points, in matrix order (as marked)
-                pind[U(start + q)] = cidx[U(marked[q])]
-                pdata[U(start + q)] = 0.0
+                sind[U(start + q)] = cidx[U(marked[q])]
+                sdata[U(start + q)] = 0.0
             p = start + own
             aii = 0.0
             diag = 0.0
@@ -195,7 +174,7 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
                     aii += a
                     diag += a
                 elif strong[U(k)] and state[j] == C_POINT:
-                    pdata[U(start + pos[j])] += a
+                    sdata[U(start + pos[j])] += a
                 elif strong[U(k)]:
                     # a strong F neighbour: spread a_ij over i's strong C points
                     # in proportion to j's negative couplings to them
@@ -207,7 +186,7 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
                         for e in range(indptr[j], indptr[j + U(1)]):
                             q = pos[U(indices[U(e)])]
                             if q >= 0 and data[U(e)] < 0.0:
-                                pdata[U(start + q)] += a * (data[U(e)] / denom)
+                                sdata[U(start + q)] += a * (data[U(e)] / denom)
                     else:
                         diag += a
                 else:
@@ -215,8 +194,9 @@ def interpolation(indptr, indices, data, strong, state, cidx, pptr, pind, pdata,
             if not diag > 0.0:  # lumping made the diagonal non-positive: use a_ii alone
                 diag = aii
             for q in range(start, p):
-                pdata[U(q)] = -pdata[U(q)] / diag
+                sdata[U(q)] = -sdata[U(q)] / diag
             _unmark_row(pos, marked, own)
+            start = p
 
 
 @jit(inline="always")

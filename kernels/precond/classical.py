@@ -132,39 +132,72 @@ def _chunks():
 
 
 class _Room:
-    """Scratch for :func:`_galerkin`, kept from level to level (each smaller than the last,
-    so its pages are first touched once), and the room per entry of R it gives."""
+    """Scratch for :func:`_interpolation` and :func:`_galerkin`, kept from level to level
+    (each smaller than the last, so its pages are first touched once), and the room per
+    entry of R the product gives itself."""
 
     def __init__(self):
         self.sind = self.sdata = None
         self.per_entry = 3.0  # P1 triangles: about 1.8 entries of R A P per entry of R
+
+    def arrays(self, starts, n_rows):
+        """Scratch for ``starts[-1]`` entries whose indices and places fit one dtype."""
+        stype = index_dtype(n_rows, starts[-1])
+        if self.sind is None or self.sind.shape[0] < starts[-1] or self.sind.dtype != stype:
+            self.sind = self.sdata = None  # free the old before the new is made
+            self.sind, self.sdata = np.empty(starts[-1], dtype=stype), np.empty(starts[-1])
+        return self.sind, self.sdata
+
+
+def _chunk_starts(n_rows, room_of):
+    """Each chunk's first place in the scratch (the last entry: the end), from the room
+    ``room_of(lo, hi)`` its rows ``lo:hi`` need; the chunks are the kernels' own."""
+    nchunks = _chunks()
+    bounds = [(n_rows * c) // nchunks for c in range(nchunks + 1)]
+    starts = np.zeros(nchunks + 1, dtype=np.int64)
+    np.cumsum([room_of(lo, hi) for lo, hi in zip(bounds[:-1], bounds[1:], strict=True)],
+              out=starts[1:])
+    return starts
+
+
+def _packed(starts, counts, room, n_cols):
+    """``(ptr, ind, data)`` of the rows a one-pass kernel left in ``room``'s chunks."""
+    np.cumsum(counts, out=counts)
+    dtype = index_dtype(max(len(counts) - 1, n_cols), counts[-1])
+    ptr = counts.astype(dtype, copy=False)
+    ind, data = np.empty(ptr[-1], dtype=dtype), np.empty(ptr[-1])
+    _a.gather_rows(starts, ptr, room.sind, room.sdata, ind, data, len(starts) - 1)
+    return ptr, ind, data
+
+
+def _interpolation(A, strong, state, cidx, extend, room):
+    """P as ``(pptr, pind, pdata, room)``: one pass into room of a matrix row plus
+    ``EXTENDED_CAP`` entries per row (never too little), then packed."""
+    indptr = A[0]
+    n = indptr.shape[0] - 1
+    starts = _chunk_starts(n, lambda lo, hi: indptr[hi] - indptr[lo] + EXTENDED_CAP * (hi - lo))
+    sind, sdata = room.arrays(starts, n)
+    counts = np.zeros(n + 1, dtype=np.int64)
+    _a.interpolation(*A, strong, state, cidx.astype(sind.dtype, copy=False), counts, starts,
+                     sind, sdata, extend, EXTENDED_CAP, len(starts) - 1)
+    return (*_packed(starts, counts, room, int(cidx[-1]) + 1 if n else 0), room)
 
 
 def _galerkin(R, A, P, n_coarse, room):
     """``C = R A P`` as ``(cptr, cind, cdata, room)``: one pass into per-chunk room sized
     from R's entries, retried with twice the room when a chunk does not fit."""
     rptr = R[0]
-    nchunks = _chunks()
     while True:
-        starts = np.zeros(nchunks + 1, dtype=np.int64)
-        for c in range(nchunks):
-            lo, hi = (n_coarse * c) // nchunks, (n_coarse * (c + 1)) // nchunks
-            starts[c + 1] = starts[c] + int(room.per_entry * (rptr[hi] - rptr[lo])) + 64
-        stype = index_dtype(n_coarse, starts[-1])
-        if room.sind is None or room.sind.shape[0] < starts[-1] or room.sind.dtype != stype:
-            room.sind = room.sdata = None  # free the old before the new is made
-            room.sind, room.sdata = np.empty(starts[-1], dtype=stype), np.empty(starts[-1])
+        starts = _chunk_starts(n_coarse,
+                               lambda lo, hi: int(room.per_entry * (rptr[hi] - rptr[lo])) + 64)
+        sind, sdata = room.arrays(starts, n_coarse)
         counts = np.zeros(n_coarse + 1, dtype=np.int64)
-        over, zeros = _a.galerkin(*R, *A, *P, n_coarse, counts, starts, room.sind,
-                                  room.sdata, nchunks)
+        over, zeros = _a.galerkin(*R, *A, *P, n_coarse, counts, starts, sind, sdata,
+                                  len(starts) - 1)
         if over == 0:
             break
         room.per_entry *= 2.0
-    np.cumsum(counts, out=counts)
-    ctype = index_dtype(n_coarse, counts[-1])
-    cptr = counts.astype(ctype, copy=False)
-    cind, cdata = np.empty(cptr[-1], dtype=ctype), np.empty(cptr[-1])
-    _a.gather_rows(starts, cptr, room.sind, room.sdata, cind, cdata, nchunks)
+    cptr, cind, cdata = _packed(starts, counts, room, n_coarse)
     # the next level's room: this level's entries per entry of R, and half as much again
     room.per_entry = max(2.0, 1.5 * cptr[-1] / max(rptr[-1], 1))
     if zeros:
@@ -216,18 +249,9 @@ class ClassicalHierarchy:
             itype = indptr.dtype
             cidx = np.cumsum(state, dtype=itype)
             cidx -= 1
-            pptr = np.zeros(n + 1, dtype=itype)
-            extended = np.zeros(n if extend else 0, dtype=np.uint8)
-            width = _a.interpolation_counts(indptr, indices, strong, state, pptr, extend,
-                                            EXTENDED_CAP, extended, _chunks())
-            np.cumsum(pptr, out=pptr)
-            ptype = index_dtype(n, pptr[-1])
-            pptr = pptr.astype(ptype, copy=False)
-            pind = np.empty(pptr[-1], dtype=ptype)
-            pdata = np.empty(pptr[-1])
-            _a.interpolation(indptr, indices, data, strong, state, cidx.astype(ptype, copy=False),
-                             pptr, pind, pdata, extended, EXTENDED_CAP, width, _chunks())
-            del strong, state, cidx, extended
+            pptr, pind, pdata, room = _interpolation((indptr, indices, data), strong, state,
+                                                     cidx, extend, room)
+            del strong, state, cidx
             rptr, rind, rdata = _a.transpose(pptr, pind, pdata, n_coarse, _parts())
             cptr, cind, cdata, room = _galerkin((rptr, rind, rdata), (indptr, indices, data),
                                                 (pptr, pind, pdata), n_coarse, room)
