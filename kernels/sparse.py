@@ -65,7 +65,10 @@ def _seen(A):
             and A.indptr is indptr and int(indptr[-1]) == nnz)
 
 
-def _remember(A):
+def remember_checked(A):
+    """Record ``A`` as checked, so that :func:`as_csr` does not walk its structure again
+    while it holds the same arrays: for :func:`as_csr`'s own results, and for matrices
+    this package builds on a pattern it made itself (float64, one index dtype)."""
     key = id(A)
     if key not in _CHECKED:
         try:
@@ -156,7 +159,7 @@ def as_csr(A, name="A", *, values=True, recheck=False):
         if bad is not None:
             raise bad
     if C is A:
-        _remember(C)
+        remember_checked(C)
     return C
 
 

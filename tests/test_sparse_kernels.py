@@ -335,3 +335,19 @@ def test_overflow_of_finite_inputs_is_returned_not_refused():
     y = spmv(A, np.array([1e300, 1.0]))
     assert y[0] == np.inf and y[1] == 1.0
     assert dot(np.array([1e300, 1.0]), np.array([1e300, 1.0])) == np.inf
+
+
+def test_a_plans_own_matrix_is_taken_as_checked_and_its_values_still_are():
+    import hatkernels
+    from hatkernels.mesh import rectangle
+
+    assembler = hatkernels.StiffnessAssembler(rectangle(4, 4), fused=True)
+    A = assembler.plan.matrix(assembler.assemble_data(1.0))
+    assert id(A) in hk_sparse._CHECKED  # its pattern is the plan's own
+    # integer values are not float64: such a matrix goes the whole way through as_csr
+    B = assembler.plan.matrix(np.ones(assembler.plan.nnz, dtype=np.int64))
+    assert id(B) not in hk_sparse._CHECKED
+    assert as_csr(B).dtype == np.float64
+    A.data[5] = np.nan  # the values are still read and named
+    with pytest.raises(InputError, match="non-finite entry nan"):
+        as_csr(A)

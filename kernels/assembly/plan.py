@@ -11,6 +11,7 @@ from hatkernels._jit import topology as _topo
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import index_dtype
 from hatkernels.mesh.pattern import csr_pattern, incidence_slots
+from hatkernels.sparse import remember_checked
 
 __all__ = ["CSRPlan", "build_plan"]
 
@@ -85,6 +86,10 @@ class CSRPlan:
         A = sp.csr_matrix((data, indices, indptr), shape=(self.n, self.n), copy=False)
         A.has_sorted_indices = True
         A.has_canonical_format = True
+        if A.dtype == np.float64 and A.data.shape == indices.shape:
+            # the pattern is the plan's own (built and tested here): as_csr need not walk
+            # it again; the values are still checked for finiteness where they are read
+            remember_checked(A)
         return A
 
     def __repr__(self):
