@@ -37,7 +37,7 @@ from hatkernels._jit import amg as _amg
 from hatkernels._jit import sparse as _k
 from hatkernels.assembly import StiffnessAssembler
 from hatkernels.assembly.boundary_terms import side_mass
-from hatkernels.boundary import apply_dirichlet
+from hatkernels.boundary import apply_dirichlet_in_place
 from hatkernels.errors import InputError
 from hatkernels.krylov import _operator
 from hatkernels.locality import Renumbering, should_renumber
@@ -182,12 +182,16 @@ class Blocks:
         M = as_csr(sp.csr_matrix(
             assembler.assemble_mass(problem.capacity, lumped=lumped, quadrature=q)))
         held = problem.dirichlet.points
+        # what is read from K and M whole comes first: both are then reduced in their own
+        # arrays (no second copy of either), and not used again
+        K_D, M_D = K[held], M[held]
+        w = M @ ones  # 1^T M: each point's capacity (stored heat = w . u)
         zeros = np.zeros(n)
-        reduced = apply_dirichlet(K, zeros, held)
+        reduced = apply_dirichlet_in_place(K, zeros, held)
         self.free, self.held = free, held = reduced.free, held
         self.K_FF = reduced.A
-        self.M_FF = apply_dirichlet(M, zeros, held).A
-        del reduced
+        self.M_FF = apply_dirichlet_in_place(M, zeros, held).A
+        del reduced, K, M
         self.renumbered, self.renumber_seconds = False, 0.0
         if should_renumber(self.K_FF, mesh.dim, renumber):
             # every later use indexes with self.free: the blocks below follow it
@@ -196,7 +200,6 @@ class Blocks:
             self.free = free = free[order.order]
             self.renumbered, self.renumber_seconds = True, order.seconds
         if held.size:  # couplings to the held points: K_FD u_D^n and the lifting
-            K_D, M_D = K[held], M[held]
             K_DF, M_DF = K_D[:, free], M_D[:, free]
             self.K_FD, self.M_FD = K_DF.T.tocsr(), M_DF.T.tocsr()
             self._coupling = _rows_with_entries(self.K_FD)
@@ -205,11 +208,11 @@ class Blocks:
             self.m_DF = _sparse_weights(np.asarray(M_DF.sum(axis=0)).ravel())
             self.k_DD = np.asarray(K_D[:, held].sum(axis=0)).ravel()
             self.m_DD = np.asarray(M_D[:, held].sum(axis=0)).ravel()
+        del K_D, M_D
         # Robin (sparse: boundary points) and reaction (dense) weights 1^T R, 1^T C
         self.robin = None if w_robin is None else (_sparse_weights(w_robin[free]),
                                                    w_robin[held])
         self.reaction = None if w_reaction is None else (w_reaction[free], w_reaction[held])
-        w = M @ ones  # 1^T M: each point's capacity (stored heat = w . u)
         self.w_F, self.w_D = w[free], w[held]
         self.rows_capacity = w
         lower = [v for v in (w_reaction, w_robin) if v is not None]
