@@ -79,24 +79,89 @@ def test_own_splitting_matches_pyamg_ruge_stuben(mesh):
         assert abs(ours.sum() - reference.sum()) <= 0.05 * reference.sum()
 
 
-def first_pass(n, seed, theta):
+def first_pass(n, seed, theta, kernel="ruge-stuben"):
     """A jittered mesh's reduced stiffness, its strong couplings and its first-pass splitting."""
     A = reduced_stiffness(jittered_mesh(n, seed))
     strong = strong_mask(A, theta)
+    if kernel == "point-order":
+        return A, strong, _s.point_order_split(A.indptr, A.indices, strong)
     tptr, tind = _s.transpose_pattern(A.indptr, A.indices, strong, A.shape[0])
     return A, strong, _s.split(A.indptr, A.indices, strong, tptr, tind)
 
 
 @settings(max_examples=15, deadline=None)
-@given(n=st.integers(4, 14), seed=st.integers(0, 10_000), theta=st.sampled_from([0.1, 0.25, 0.5]))
-def test_every_f_point_with_strong_couplings_has_a_strong_c_point(n, seed, theta):
-    # the property interpolation relies on (Ruge & Stueben 1987, first pass)
-    A, strong, state = first_pass(n, seed, theta)
+@given(n=st.integers(4, 14), seed=st.integers(0, 10_000), theta=st.sampled_from([0.1, 0.25, 0.5]),
+       kernel=st.sampled_from(["ruge-stuben", "point-order"]))
+def test_every_f_point_with_strong_couplings_has_a_strong_c_point(n, seed, theta, kernel):
+    # the property interpolation relies on (Ruge & Stueben 1987, first pass), for both
+    # first passes
+    A, strong, state = first_pass(n, seed, theta, kernel)
     assert set(np.unique(state)) <= {0, 1}
     for i in np.flatnonzero(state == 0):
         row = slice(A.indptr[i], A.indptr[i + 1])
         neighbours = A.indices[row][strong[row].astype(bool)]
         assert neighbours.size == 0 or (state[neighbours] == 1).any(), f"F point {i}"
+
+
+def plain_point_order(A, strong):
+    """The point-order splitting written plainly, with sets: each point still undecided at
+    its turn becomes C (unless it has no strong coupling either way: F), and the
+    undecided points that strongly depend on it become F (common practice, no source)."""
+    n = A.shape[0]
+    rows = np.repeat(np.arange(n), np.diff(A.indptr))
+    depends_on = [set() for _ in range(n)]  # j in depends_on[i]: i in S_j
+    own = [set() for _ in range(n)]
+    for k in np.flatnonzero(strong):
+        own[rows[k]].add(int(A.indices[k]))
+        depends_on[int(A.indices[k])].add(int(rows[k]))
+    state = [None] * n
+    for i in range(n):
+        if state[i] is not None:
+            continue
+        if not own[i] and not depends_on[i]:
+            state[i] = 0
+            continue
+        state[i] = 1
+        for j in sorted(depends_on[i]):
+            if state[j] is None:
+                state[j] = 0
+    return np.array(state)
+
+
+@settings(max_examples=15, deadline=None)
+@given(n=st.integers(4, 14), seed=st.integers(0, 10_000), theta=st.sampled_from([0.1, 0.25, 0.5]))
+def test_point_order_splitting_equals_its_plain_transcription(n, seed, theta):
+    A, strong, state = first_pass(n, seed, theta, "point-order")
+    assert np.array_equal(state, plain_point_order(A, strong))
+    # no C point strongly depends on an earlier one: those were made F first
+    c_points = np.flatnonzero(state == 1)
+    rows = np.repeat(np.arange(A.shape[0]), np.diff(A.indptr))
+    k = np.flatnonzero(strong.astype(bool) & (state[rows] == 1) & (state[A.indices] == 1))
+    assert np.all(A.indices[k] > rows[k]), "a C point depends on an earlier C point"
+    assert c_points.size > 0
+
+
+def test_point_order_iterations_against_pyamg_ruge_stuben():
+    # reference library: PyAMG's classical AMG (Ruge-Stueben splitting, classical
+    # interpolation) as CG's preconditioner; the default amg-native, whose splitting takes
+    # the points in order, needs at most one iteration more (docs/solvers.md measures
+    # both splittings at 1e6 unknowns)
+    import pyamg
+
+    for mesh in (rectangle(60, 60), hatkernels.mesh.disk(30), jittered_mesh(40, 3)):
+        A = reduced_stiffness(mesh)
+        b = np.ones(A.shape[0])
+        ref = pyamg.ruge_stuben_solver(
+            A, strength=("classical", {"theta": THETA, "norm": "min"}),
+            CF=("RS", {"second_pass": False}), interpolation="classical", max_coarse=50)
+        theirs = cg_with_history(A, b, rtol=1e-8, M=ref.aspreconditioner(cycle="V"))
+        ours = cg_with_history(A, b, rtol=1e-8, M=ClassicalAMG(A, max_coarse=50))
+        assert ours.info == 0 and theirs.info == 0
+        assert ours.iterations <= theirs.iterations + 1, (ours.iterations, theirs.iterations)
+        assert np.allclose(ours.x, sla.spsolve(A.tocsc(), b), rtol=1e-6)  # reference: scipy
+    assert "point-order C/F splitting" in repr(ClassicalAMG(A))
+    with pytest.raises(InputError, match="splitting must be one of"):
+        make_preconditioner(A, "amg-native", splitting="random")
 
 
 @settings(max_examples=15, deadline=None)
@@ -131,17 +196,17 @@ def test_second_pass_against_pyamg():
 
     A = reduced_stiffness(hatkernels.mesh.disk(40))
     b = np.ones(A.shape[0])
-    ours = ClassicalHierarchy(A, max_coarse=50, second_pass=True)
+    ours = ClassicalHierarchy(A, max_coarse=50, second_pass=True, splitting="ruge-stuben")
     ref = pyamg.ruge_stuben_solver(
         A, strength=("classical", {"theta": THETA, "norm": "min"}),
         CF=("RS", {"second_pass": True}), interpolation="classical", max_coarse=50)
     assert abs(ours.levels[1].A.shape[0] - ref.levels[1].A.shape[0]) <= 0.05 * ref.levels[1].A.shape[0]
     residuals = []
     ref.solve(b, tol=1e-8, accel="cg", residuals=residuals)
-    with_second = cg_with_history(A, b, rtol=1e-8,
-                                  M=ClassicalAMG(A, max_coarse=50, second_pass=True))
-    first_only = cg_with_history(A, b, rtol=1e-8, M=ClassicalAMG(A, max_coarse=50,
-                                                                interpolation="classical"))
+    with_second = cg_with_history(A, b, rtol=1e-8, M=ClassicalAMG(
+        A, max_coarse=50, second_pass=True, splitting="ruge-stuben"))
+    first_only = cg_with_history(A, b, rtol=1e-8, M=ClassicalAMG(
+        A, max_coarse=50, interpolation="classical", splitting="ruge-stuben"))
     assert with_second.info == 0
     assert with_second.iterations <= len(residuals) - 1 + 1
     assert with_second.iterations < first_only.iterations
@@ -163,7 +228,8 @@ def pyamg_hierarchy(A, levels):
 
 def test_interpolation_and_coarse_matrices_match_pyamg():
     A = reduced_stiffness(rectangle(40, 40))
-    ours = ClassicalHierarchy(A, max_coarse=10, max_levels=4, interpolation="classical")
+    ours = ClassicalHierarchy(A, max_coarse=10, max_levels=4, interpolation="classical",
+                              splitting="ruge-stuben")
     ref = pyamg_hierarchy(A, 4)
     assert [lv.A.shape[0] for lv in ours.levels] == [lv.A.shape[0] for lv in ref.levels]
     for mine, theirs in zip(ours.levels[:-1], ref.levels[:-1], strict=True):
@@ -256,16 +322,17 @@ def test_dense_cholesky_matches_numpy():
 
 
 @pytest.mark.two_threads
-@pytest.mark.parametrize(("second_pass", "interpolation"),
-                         [(False, "extended"), (False, "classical"), (True, "extended")])
-def test_same_bits_on_one_and_two_threads(second_pass, interpolation):
+@pytest.mark.parametrize(("second_pass", "interpolation", "splitting"),
+                         [(False, "extended", "point-order"), (False, "classical", "point-order"),
+                          (True, "extended", "point-order"), (False, "extended", "ruge-stuben")])
+def test_same_bits_on_one_and_two_threads(second_pass, interpolation, splitting):
     A = reduced_stiffness(jittered_mesh(40, 2))
     r = np.random.default_rng(0).standard_normal(A.shape[0])
     results = []
     for n in (1, 2):
         with threads(n):
             M = ClassicalAMG(A, max_coarse=20, second_pass=second_pass,
-                             interpolation=interpolation)
+                             interpolation=interpolation, splitting=splitting)
             results.append(([lv.A.data.copy() for lv in M.ml.levels], M @ r))
     (levels1, z1), (levels2, z2) = results
     assert len(levels1) == len(levels2) > 2
@@ -279,9 +346,16 @@ def test_64_bit_indices_give_the_same_hierarchy(monkeypatch):
     import hatkernels.mesh.core_index as index_module
 
     A = reduced_stiffness(rectangle(30, 30))
-    narrow = ClassicalHierarchy(A, max_coarse=10)
+    narrow = ClassicalHierarchy(A, max_coarse=10, splitting="ruge-stuben")
+    in_order = ClassicalHierarchy(A, max_coarse=10)
     monkeypatch.setattr(index_module, "_INT32_MAX", 10)
-    broad = ClassicalHierarchy(A, max_coarse=10)
+    broad = ClassicalHierarchy(A, max_coarse=10, splitting="ruge-stuben")
+    # the point-order splitting is one kernel for both index widths: the same hierarchy
+    in_order_broad = ClassicalHierarchy(A, max_coarse=10)
+    assert in_order_broad.levels[1].A.indices.dtype == np.int64
+    assert len(in_order.levels) == len(in_order_broad.levels)
+    for mine, theirs in zip(in_order.levels, in_order_broad.levels, strict=True):
+        assert np.array_equal(mine.A.data, theirs.A.data)
     assert broad.levels[1].A.indices.dtype == np.int64
     assert broad.levels[0].P.indptr.dtype == np.int64
     # the same splitting on the naturally numbered fine levels; on the last, tiny one the

@@ -1,4 +1,5 @@
-"""Raw-array kernels of the classical AMG setup's C/F splitting (Ruge and Stueben's two passes).
+"""Raw-array kernels of the classical AMG setup's C/F splitting: Ruge and Stueben's two
+passes, and a first pass in point order (the default of ``amg-native``).
 
 J. W. Ruge, K. Stueben, "Algebraic multigrid", in Multigrid Methods, SIAM
 Frontiers in Applied Mathematics 3, 1987; K. Stueben, "A review of algebraic
@@ -15,7 +16,8 @@ from numba import prange
 
 from hatkernels._jit import jit
 
-__all__ = ["transpose_kept", "transpose_pattern", "strong_pattern", "split", "second_pass",
+__all__ = ["transpose_kept", "transpose_pattern", "strong_pattern", "split", "point_order_split",
+           "second_pass",
            "F_POINT", "C_POINT"]
 
 #: Splitting codes.
@@ -232,6 +234,47 @@ def split(indptr, indices, strong, tptr, tind):
             else:
                 tail[b] = j
             head[b] = j
+    return state
+
+
+@jit()
+def point_order_split(indptr, indices, strong):
+    """C/F splitting in point order; returns one int8 per point (1 = C, 0 = F).
+
+    Each point still undecided when its turn comes becomes C, and every
+    undecided point that strongly depends on it becomes F: a maximal set of C
+    points, none strongly depending on an earlier one, chosen greedily in
+    point order.  Written the other way round, which needs no transpose: at
+    its turn a point is F if it strongly depends on an earlier C point, else
+    C.  A point with no strong coupling either way is F with nothing to
+    interpolate from (the smoother alone treats it).  Every other F point
+    strongly depends on a C point, as after the first Ruge-Stueben pass
+    (:func:`split`), but the measures that pass keeps up to date, and its
+    cost, are left out.  On a mesh numbered with locality (the solvers
+    renumber one that is not) the order makes the pattern regular; on a
+    randomly numbered one it is a random greedy choice (docs/solvers.md gives
+    the iterations either way).
+    """
+    n = indptr.shape[0] - 1
+    depended = np.zeros(n, dtype=np.uint8)  # some point strongly depends on it
+    for k in range(indptr[n]):
+        if strong[k]:
+            depended[indices[k]] = 1
+    state = np.empty(n, dtype=np.int8)
+    for i in range(n):
+        own = False
+        f_point = False
+        for k in range(indptr[i], indptr[i + 1]):
+            if strong[k]:
+                own = True
+                c = indices[k]
+                if c < i and state[c] == C_POINT:
+                    f_point = True
+                    break
+        if f_point or not (own or depended[i]):
+            state[i] = F_POINT
+        else:
+            state[i] = C_POINT
     return state
 
 
