@@ -101,6 +101,51 @@ def pattern_scratch(triangles, ptr, codes, scratch, counts):
         counts[i] = c
 
 
+@jit(parallel=True)
+def pattern_direct(triangles, ptr, codes, indptr, indices, diag):
+    """Each row's sorted distinct columns straight into CSR ``indices``, at ``indptr``
+    made from predicted row lengths; the diagonal's position into ``diag``.
+
+    Returns how many rows did not have their predicted length (never written
+    past; the caller then builds the pattern with :func:`pattern_scratch`).
+    """
+    n = ptr.size - 1
+    wrong = 0
+    for i in prange(n):
+        start = indptr[i]
+        room = indptr[i + 1] - start
+        if room == 0:
+            diag[i] = -1
+            wrong += ptr[i + 1] > ptr[i]
+            continue
+        indices[start] = i
+        c = 1
+        fits = True
+        for e in range(ptr[i], ptr[i + 1]):
+            t, b, c2 = _others(codes, e)
+            for v in (triangles[t, b], triangles[t, c2]):
+                pos = start + c
+                while pos > start and indices[pos - 1] > v:
+                    pos -= 1
+                if pos > start and indices[pos - 1] == v:
+                    continue
+                if c == room:
+                    fits = False
+                    break
+                for r in range(start + c, pos, -1):
+                    indices[r] = indices[r - 1]
+                indices[pos] = v
+                c += 1
+            if not fits:
+                break
+        if not fits or c != room:
+            wrong += 1
+            diag[i] = -1
+            continue
+        diag[i] = row_position(indices, start, start + c, i)
+    return wrong
+
+
 @jit()
 def row_position(indices, lo, hi, value):
     """Position of ``value`` in the sorted ``indices[lo:hi]`` (it must be there)."""

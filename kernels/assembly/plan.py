@@ -119,7 +119,9 @@ def build_plan(mesh, *, index_dtype_override=None):
         ptr = np.empty(mesh.n_points + 1, dtype=dt)
         codes = np.empty(3 * mesh.n_triangles, dtype=dt)
         _topo.incidence(tri, ptr, codes)
-    indptr, indices, diag = csr_pattern(tri, ptr, codes,
+    # the rows' lengths from the boundary (which the mesh keeps once found): no scratch
+    outgoing = np.bincount(mesh.boundary_edges()[:, 0], minlength=mesh.n_points)
+    indptr, indices, diag = csr_pattern(tri, ptr, codes, outgoing=outgoing,
                                         index_dtype_override=index_dtype_override)
     if indptr.dtype != dt:
         # more stored entries than int32 can count: everything in int64

@@ -322,7 +322,8 @@ class Mesh:
         if "edges" not in self._cache or "triangle_edges" not in self._cache:
             tri = self._triangles_for_topology()
             ptr, codes = self._incidence()
-            indptr, indices, diag = csr_pattern(tri, ptr, codes)
+            outgoing = np.bincount(self.boundary_edges()[:, 0], minlength=self.n_points)
+            indptr, indices, diag = csr_pattern(tri, ptr, codes, outgoing=outgoing)
             counts = np.diff(indptr)
             rows = np.repeat(np.arange(self.n_points, dtype=indptr.dtype), counts)
             keep = indices > rows
