@@ -429,7 +429,7 @@ class Mesh:
         >>> m = rectangle(2, 2)
         >>> _ = m.edges()
         >>> sorted(m.cached())
-        ['edges', 'incidence', 'triangle_edges']
+        ['boundary_edges', 'edges', 'incidence', 'triangle_edges']
         """
         return frozenset(self._cache)
 
