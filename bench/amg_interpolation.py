@@ -5,7 +5,7 @@
 
 ``-lap u = 1`` with ``u = 0`` on the boundary, assembled and reduced once per mesh;
 then, in a fresh process per case (its own peak memory), the preconditioner's setup
-and CG to rtol 1e-10, twice, the two interpolations alternating (the machine's speed
+and CG to rtol 1e-10, twice, the two interpolations alternating (in turn reversed) (the machine's speed
 drifts; docs/performance.md).  Meshes: ``disk(600)``, a Delaunay mesh of a 1000 x 1000
 grid of points each moved by up to 0.3 cells (``tests/conftest.py``) in its natural
 numbering and shuffled, ``l_shape(400)``, ``rectangle(1000, 1000)`` and ``ball(30)``.
@@ -19,7 +19,7 @@ import sys
 import time
 
 import numpy as np
-from benchlib import ProcessPeak, run_worker, worker_result
+from benchlib import ProcessPeak, run_alternating, worker_result
 
 from hatkernels._output import write_json
 
@@ -78,20 +78,14 @@ def main(argv=None):
     if args.worker:
         worker_result(run_case, *args.worker)
         return
-    results = []
-    for name in args.meshes:
-        for rnd in range(args.rounds):
-            for interpolation in ("classical", "extended"):
-                row = {"mesh": name, "interpolation": interpolation, "round": rnd,
-                       **run_worker(__file__, name, interpolation)}
-                results.append(row)
-                if "error" in row:
-                    print(name, interpolation, row["error"], flush=True)
-                    continue
-                print(f"{name:9s} {row['unknowns']:>9,} {interpolation:9s} setup "
-                      f"{row['setup']:5.2f} s solve {row['solve']:5.2f} s total "
-                      f"{row['total']:5.2f} s its {row['iterations']:3d} complexity "
-                      f"{row['complexity']:.2f} peak {row['peak_MiB']:6.0f} MiB", flush=True)
+    def report(row):
+        print(f"{row['mesh']:9s} {row['unknowns']:>9,} {row['interpolation']:9s} setup "
+              f"{row['setup']:5.2f} s solve {row['solve']:5.2f} s total "
+              f"{row['total']:5.2f} s its {row['iterations']:3d} complexity "
+              f"{row['complexity']:.2f} peak {row['peak_MiB']:6.0f} MiB", flush=True)
+
+    results = run_alternating(__file__, args.meshes, ("classical", "extended"), args.rounds,
+                              report, ("mesh", "interpolation"))
     if args.out:
         write_json(args.out, results)
 

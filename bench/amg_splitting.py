@@ -22,7 +22,7 @@ import sys
 import time
 
 import numpy as np
-from benchlib import run_worker, worker_result
+from benchlib import run_alternating, worker_result
 
 from hatkernels._output import write_json
 
@@ -88,21 +88,15 @@ def main(argv=None):
     if args.worker:
         worker_result(run_case, *args.worker)
         return
-    results = []
-    for name in args.cases:
-        for rnd in range(args.rounds):
-            for splitting in SPLITTINGS if rnd % 2 == 0 else SPLITTINGS[::-1]:
-                row = {"case": name, "splitting": splitting, "round": rnd,
-                       **run_worker(__file__, name, splitting)}
-                results.append(row)
-                if "error" in row:
-                    print(name, splitting, row["error"], flush=True)
-                    continue
-                phases = row["phases"]
-                print(f"{name:12s} {row['unknowns']:>9,} {splitting:11s} setup "
-                      f"{phases['setup']:5.2f} s solve {phases['solve']:5.2f} s total "
-                      f"{row['seconds']:5.2f} s its {row['iterations']:3d} complexity "
-                      f"{row['complexity']:.2f}", flush=True)
+    def report(row):
+        phases = row["phases"]
+        print(f"{row['case']:12s} {row['unknowns']:>9,} {row['splitting']:11s} setup "
+              f"{phases['setup']:5.2f} s solve {phases['solve']:5.2f} s total "
+              f"{row['seconds']:5.2f} s its {row['iterations']:3d} complexity "
+              f"{row['complexity']:.2f}", flush=True)
+
+    results = run_alternating(__file__, args.cases, SPLITTINGS, args.rounds, report,
+                              ("case", "splitting"))
     if args.out:
         write_json(args.out, results)
 

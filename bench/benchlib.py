@@ -147,3 +147,23 @@ def run_worker(script, *args):
     tail = (run.stderr or run.stdout)[-300:]
     return {"error": f"the worker stopped (code {run.returncode}, killed if -9: out of "
                      f"memory): {tail}"}
+
+
+def run_alternating(script, cases, variants, rounds, report, keys):
+    """Every case with every variant, each in a fresh process (:func:`run_worker` with
+    ``(case, variant)``), ``rounds`` times, the variants in turn reversed from round to
+    round (the machine's speed drifts).  Returns the rows: ``keys`` name the case and
+    the variant, ``round`` the round, the rest is the worker's result; ``report(row)``
+    prints a row that has no error (an error is printed as it is)."""
+    rows = []
+    for case in cases:
+        for rnd in range(rounds):
+            for variant in variants if rnd % 2 == 0 else variants[::-1]:
+                row = {keys[0]: case, keys[1]: variant, "round": rnd,
+                       **run_worker(script, case, variant)}
+                rows.append(row)
+                if "error" in row:
+                    print(case, variant, row["error"], flush=True)
+                else:
+                    report(row)
+    return rows

@@ -1,7 +1,7 @@
-"""Classical (Ruge-Stueben) AMG whose hierarchy is built by this project's parallel kernels.
+"""Classical AMG whose hierarchy is built by this project's parallel kernels.
 
-``amg-native``: the method of ``amg-rs`` (strength threshold, first-pass
-C/F splitting, classical interpolation, Galerkin coarse matrices; see
+``amg-native``: the method of ``amg-rs`` (strength threshold, a C/F
+splitting, in point order by default, classical interpolation, Galerkin coarse matrices; see
 :mod:`hatkernels.precond.amg`), with the rows that classical interpolation
 serves badly extended to distance two on sparse matrices (``interpolation``),
 set up by the kernels of
@@ -28,13 +28,13 @@ __all__ = ["ClassicalAMG", "ClassicalHierarchy", "INTERPOLATIONS", "SPLITTINGS"]
 #: (P1 on triangles: about 7) and ``classical`` on denser ones (tetrahedra: about 15),
 #: where the extension's setup costs more than its iterations save (docs/solvers.md).
 INTERPOLATIONS = ("auto", "extended", "classical")
+AUTO_ROW_LIMIT = 10
 
 #: The C/F splittings of ``amg-native``, the default first: ``point-order`` takes the
-#: points greedily in their order (a fraction of the cost, the same iterations on
-#: meshes numbered with locality); ``ruge-stuben`` is the measure-driven first pass
+#: points greedily in their order (a fraction of the cost, about the same iterations
+#: on meshes numbered with locality); ``ruge-stuben`` is the measure-driven first pass
 #: (docs/solvers.md compares them).
 SPLITTINGS = ("point-order", "ruge-stuben")
-AUTO_ROW_LIMIT = 10
 
 #: At most this many entries in a row of P that ``extended`` interpolation extends (the
 #: largest in size, scaled to keep the row's sum): on ``ball(12)`` the cap took the
@@ -216,10 +216,11 @@ def _galerkin(R, A, P, n_coarse, room):
 
 
 class ClassicalHierarchy:
-    """Ruge-Stueben hierarchy built with this project's parallel kernels (``hatkernels._jit.amg``).
+    """Classical AMG hierarchy built with this project's parallel kernels (``hatkernels._jit.amg``).
 
-    Per level: strong couplings (one byte per entry), the first-pass C/F
-    splitting (and the second pass with ``second_pass``), interpolation P
+    Per level: strong couplings (one byte per entry), the C/F splitting
+    (``splitting``, as for :class:`ClassicalAMG`; the second pass after it with
+    ``second_pass``), interpolation P
     (``interpolation``, as for :class:`ClassicalAMG`), R = P^T and the Galerkin product
     R A P, until a level has at most ``max_coarse`` unknowns, ``max_levels``
     levels exist or coarsening stalls (fewer than 10% fewer points).  The
