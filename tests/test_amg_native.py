@@ -164,6 +164,28 @@ def test_point_order_iterations_against_pyamg_ruge_stuben():
         make_preconditioner(A, "amg-native", splitting="random")
 
 
+def test_auto_splitting_takes_the_measures_on_a_matrix_numbered_without_locality():
+    # a shuffled numbering makes point order a random greedy choice: auto then takes
+    # Ruge and Stueben's pass, and CG needs no more iterations than with PyAMG's
+    # Ruge-Stueben hierarchy (reference library) on the same shuffled matrix, plus one
+    import pyamg
+
+    A = reduced_stiffness(rectangle(300, 300))  # 89,401 rows: above locality.MIN_ROWS
+    order = np.random.default_rng(1).permutation(A.shape[0])
+    B = sp.csr_array(A[order][:, order])
+    B.sort_indices()
+    natural, shuffled = ClassicalAMG(A), ClassicalAMG(B)
+    assert natural.ml.splitting == "point-order"
+    assert shuffled.ml.splitting == "ruge-stuben" and "no locality" in repr(shuffled)
+    b = np.ones(B.shape[0])
+    ref = pyamg.ruge_stuben_solver(
+        B, strength=("classical", {"theta": THETA, "norm": "min"}),
+        CF=("RS", {"second_pass": False}), interpolation="classical", max_coarse=300)
+    theirs = cg_with_history(B, b, rtol=1e-8, M=ref.aspreconditioner(cycle="V"))
+    ours = cg_with_history(B, b, rtol=1e-8, M=shuffled)
+    assert ours.info == 0 and ours.iterations <= theirs.iterations + 1
+
+
 @settings(max_examples=15, deadline=None)
 @given(n=st.integers(4, 14), seed=st.integers(0, 10_000), theta=st.sampled_from([0.1, 0.25, 0.5]))
 def test_second_pass_leaves_every_strong_f_pair_a_common_c_point(n, seed, theta):

@@ -7,7 +7,7 @@
 ``ic0``     incomplete Cholesky, zero fill (``modified=True`` for the modified variant)
 ``amg-sa``  smoothed-aggregation AMG (PyAMG hierarchy)
 ``amg-rs``  classical Ruge-Stuben AMG (PyAMG hierarchy)
-``amg-native`` classical AMG (C/F splitting in point order by default), hierarchy built by this project's parallel kernels
+``amg-native`` classical AMG (C/F splitting in point order where the numbering has locality), hierarchy built by this project's parallel kernels
 ``direct``  sparse LU (SuperLU), refused above a size limit
 ``amg``     the AMG variant measured fastest on 2-D Poisson (docs/solvers.md)
 ``gmg``     geometric multigrid on a mesh's refinement history, matrix-free

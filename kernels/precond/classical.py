@@ -1,7 +1,8 @@
 """Classical AMG whose hierarchy is built by this project's parallel kernels.
 
 ``amg-native``: the method of ``amg-rs`` (strength threshold, a C/F
-splitting, in point order by default, classical interpolation, Galerkin coarse matrices; see
+splitting, in point order where the numbering has locality, classical interpolation,
+Galerkin coarse matrices; see
 :mod:`hatkernels.precond.amg`), with the rows that classical interpolation
 serves badly extended to distance two on sparse matrices (``interpolation``),
 set up by the kernels of
@@ -18,6 +19,7 @@ from hatkernels._jit import amg as _a
 from hatkernels._jit import amg_split as _s
 from hatkernels.checks import integer_option, real_option
 from hatkernels.errors import InputError
+from hatkernels.locality import poorly_numbered
 from hatkernels.mesh.core_index import index_dtype
 from hatkernels.precond.amg import _AMG, _ChebyshevLevel
 
@@ -30,11 +32,13 @@ __all__ = ["ClassicalAMG", "ClassicalHierarchy", "INTERPOLATIONS", "SPLITTINGS"]
 INTERPOLATIONS = ("auto", "extended", "classical")
 AUTO_ROW_LIMIT = 10
 
-#: The C/F splittings of ``amg-native``, the default first: ``point-order`` takes the
-#: points greedily in their order (a fraction of the cost, about the same iterations
-#: on meshes numbered with locality); ``ruge-stuben`` is the measure-driven first pass
-#: (docs/solvers.md compares them).
-SPLITTINGS = ("point-order", "ruge-stuben")
+#: The C/F splittings of ``amg-native``, the default first: ``auto`` is ``point-order``
+#: unless the matrix's numbering has no locality (``hatkernels.locality.poorly_numbered``,
+#: with the looser spread of three dimensions), where the order would be a random
+#: one; ``point-order`` takes the points greedily in their order (a fraction of the
+#: cost, about the same iterations on meshes numbered with locality); ``ruge-stuben``
+#: is the measure-driven first pass (docs/solvers.md compares them).
+SPLITTINGS = ("auto", "point-order", "ruge-stuben")
 
 #: At most this many entries in a row of P that ``extended`` interpolation extends (the
 #: largest in size, scaled to keep the row's sum): on ``ball(12)`` the cap took the
@@ -231,7 +235,7 @@ class ClassicalHierarchy:
     DENSE_LIMIT = 1000
 
     def __init__(self, A, theta=0.25, max_levels=30, max_coarse=300, degree=3,
-                 second_pass=False, interpolation="auto", splitting="point-order"):
+                 second_pass=False, interpolation="auto", splitting="auto"):
         self.levels = []
         self.second_pass = bool(second_pass)
         if interpolation not in INTERPOLATIONS:
@@ -239,7 +243,14 @@ class ClassicalHierarchy:
                              f"got {interpolation!r}")
         if splitting not in SPLITTINGS:
             raise InputError(f"splitting must be one of {SPLITTINGS}, got {splitting!r}")
-        self.splitting = splitting
+        #: the splitting used, and why when ``auto`` chose the measure-driven one
+        self.splitting, self.splitting_reason = splitting, ""
+        if splitting == "auto":
+            self.splitting = "point-order"
+            if poorly_numbered(A, 3):
+                self.splitting = "ruge-stuben"
+                self.splitting_reason = " (the numbering has no locality)"
+        splitting = self.splitting
         if interpolation == "auto":
             rows = max(A.shape[0], 1)
             interpolation = "extended" if A.nnz <= AUTO_ROW_LIMIT * rows else "classical"
@@ -310,10 +321,14 @@ class ClassicalAMG(_AMG):
         Stop coarsening at this many levels or at a level this small; the
         coarsest level is solved by a dense Cholesky factor (or, when
         coarsening stalled above 1000 unknowns, by Chebyshev smoothing).
-    splitting : {"point-order", "ruge-stuben"}
-        How the C points are chosen.  ``point-order`` (default): each point
+    splitting : {"auto", "point-order", "ruge-stuben"}
+        How the C points are chosen.  ``point-order``: each point
         still undecided at its turn becomes C and the points that strongly
-        depend on it F, in the order of the points.  ``ruge-stuben``: Ruge and
+        depend on it F, in the order of the points.  ``auto`` (default):
+        ``point-order``, unless more than half of the matrix's entries lie far
+        from its diagonal (``hatkernels.locality.poorly_numbered``, with the
+        spread of three dimensions: a numbering without locality, where the
+        order is a random one), then ``ruge-stuben``.  ``ruge-stuben``: Ruge and
         Stueben's first pass, which takes next the undecided point that the
         most others depend on, keeping those counts up to date (amg-rs's
         splitting, computed by PyAMG).  Measured at 1e6 unknowns, CG to 1e-8
@@ -362,7 +377,7 @@ class ClassicalAMG(_AMG):
 
     def __init__(self, A, *, cycle="V", degree=2, lower=0.3, estimate=False, theta=0.25,
                  max_levels=30, max_coarse=300, second_pass=False, interpolation="auto",
-                 splitting="point-order"):
+                 splitting="auto"):
         max_levels = integer_option(max_levels, f"{self.name}: max_levels", minimum=1)
         max_coarse = integer_option(max_coarse, f"{self.name}: max_coarse", minimum=1)
         theta = real_option(theta, f"{self.name}: theta", between=(0, 1))
@@ -387,4 +402,4 @@ class ClassicalAMG(_AMG):
     def _details(self):
         second = " with the second pass" if self.ml.second_pass else ""
         return (f"{self.ml.interpolation} interpolation, {self.ml.splitting} C/F splitting"
-                f"{second}, " + super()._details())
+                f"{self.ml.splitting_reason}{second}, " + super()._details())
