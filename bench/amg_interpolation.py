@@ -13,15 +13,12 @@ numbering and shuffled, ``l_shape(400)``, ``rectangle(1000, 1000)`` and ``ball(3
 
 from __future__ import annotations
 
-import argparse
 import os
 import sys
 import time
 
 import numpy as np
-from benchlib import ProcessPeak, run_alternating, worker_result
-
-from hatkernels._output import write_json
+from benchlib import ProcessPeak, alternating_main
 
 MESHES = ("disk", "jittered", "shuffled", "lshape", "rectangle", "ball")
 
@@ -68,26 +65,16 @@ def run_case(name, interpolation):
             "peak_source": peak.source}
 
 
-def main(argv=None):
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--meshes", nargs="+", default=list(MESHES), choices=MESHES)
-    parser.add_argument("--rounds", type=int, default=2)
-    parser.add_argument("--out")
-    parser.add_argument("--worker", nargs=2, help=argparse.SUPPRESS)
-    args = parser.parse_args(argv)
-    if args.worker:
-        worker_result(run_case, *args.worker)
-        return
-    def report(row):
-        print(f"{row['mesh']:9s} {row['unknowns']:>9,} {row['interpolation']:9s} setup "
-              f"{row['setup']:5.2f} s solve {row['solve']:5.2f} s total "
-              f"{row['total']:5.2f} s its {row['iterations']:3d} complexity "
-              f"{row['complexity']:.2f} peak {row['peak_MiB']:6.0f} MiB", flush=True)
+def report(row):
+    print(f"{row['mesh']:9s} {row['unknowns']:>9,} {row['interpolation']:9s} setup "
+          f"{row['setup']:5.2f} s solve {row['solve']:5.2f} s total "
+          f"{row['total']:5.2f} s its {row['iterations']:3d} complexity "
+          f"{row['complexity']:.2f} peak {row['peak_MiB']:6.0f} MiB", flush=True)
 
-    results = run_alternating(__file__, args.meshes, ("classical", "extended"), args.rounds,
-                              report, ("mesh", "interpolation"))
-    if args.out:
-        write_json(args.out, results)
+
+def main(argv=None):
+    alternating_main(__file__, __doc__, run_case, "meshes", MESHES, ("classical", "extended"),
+                     ("mesh", "interpolation"), report, argv)
 
 
 if __name__ == "__main__":

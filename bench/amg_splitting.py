@@ -16,15 +16,12 @@ the mesh's points shuffled and solved without renumbering; ``cuboid(60, 60, 60)`
 
 from __future__ import annotations
 
-import argparse
 import os
 import sys
 import time
 
 import numpy as np
-from benchlib import run_alternating, worker_result
-
-from hatkernels._output import write_json
+from benchlib import alternating_main
 
 CASES = ("rectangle", "disk", "lshape", "jittered", "anisotropic", "rotated", "checkerboard",
          "shuffled", "cube")
@@ -78,27 +75,17 @@ def run_case(name, splitting):
             "complexity": complexity}
 
 
-def main(argv=None):
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--cases", nargs="+", default=list(CASES), choices=CASES)
-    parser.add_argument("--rounds", type=int, default=2)
-    parser.add_argument("--out")
-    parser.add_argument("--worker", nargs=2, help=argparse.SUPPRESS)
-    args = parser.parse_args(argv)
-    if args.worker:
-        worker_result(run_case, *args.worker)
-        return
-    def report(row):
-        phases = row["phases"]
-        print(f"{row['case']:12s} {row['unknowns']:>9,} {row['splitting']:11s} setup "
-              f"{phases['setup']:5.2f} s solve {phases['solve']:5.2f} s total "
-              f"{row['seconds']:5.2f} s its {row['iterations']:3d} complexity "
-              f"{row['complexity']:.2f}", flush=True)
+def report(row):
+    phases = row["phases"]
+    print(f"{row['case']:12s} {row['unknowns']:>9,} {row['splitting']:11s} setup "
+          f"{phases['setup']:5.2f} s solve {phases['solve']:5.2f} s total "
+          f"{row['seconds']:5.2f} s its {row['iterations']:3d} complexity "
+          f"{row['complexity']:.2f}", flush=True)
 
-    results = run_alternating(__file__, args.cases, SPLITTINGS, args.rounds, report,
-                              ("case", "splitting"))
-    if args.out:
-        write_json(args.out, results)
+
+def main(argv=None):
+    alternating_main(__file__, __doc__, run_case, "cases", CASES, SPLITTINGS,
+                     ("case", "splitting"), report, argv)
 
 
 if __name__ == "__main__":

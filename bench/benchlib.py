@@ -167,3 +167,26 @@ def run_alternating(script, cases, variants, rounds, report, keys):
                 else:
                     report(row)
     return rows
+
+
+def alternating_main(script, doc, run_case, option, cases, variants, keys, report, argv=None):
+    """The command line of a script that compares ``variants`` on ``cases``: ``--<option>``
+    picks cases, ``--rounds`` and ``--out`` (JSON), and the hidden ``--worker case
+    variant`` runs ``run_case`` in a worker (:func:`run_alternating`)."""
+    import argparse
+
+    from hatkernels._output import write_json
+
+    parser = argparse.ArgumentParser(description=doc.splitlines()[0])
+    parser.add_argument(f"--{option}", nargs="+", default=list(cases), choices=cases)
+    parser.add_argument("--rounds", type=int, default=2)
+    parser.add_argument("--out")
+    parser.add_argument("--worker", nargs=2, help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.worker:
+        worker_result(run_case, *args.worker)
+        return
+    results = run_alternating(script, getattr(args, option), variants, args.rounds, report,
+                              keys)
+    if args.out:
+        write_json(args.out, results)
