@@ -64,13 +64,16 @@ def _others(codes, e):
 
 
 @jit()
-def _insert_sorted(buf, start, count, value):
-    """Insert ``value`` into the sorted ``buf[start:start+count]``; return the new count."""
+def _insert_sorted(buf, start, count, value, room=-1):
+    """Insert ``value`` into the sorted ``buf[start:start+count]``; return the new count,
+    or -1 (nothing written) when it is new and the row already holds ``room`` values."""
     pos = start + count
     while pos > start and buf[pos - 1] > value:
         pos -= 1
     if pos > start and buf[pos - 1] == value:
         return count
+    if count == room:
+        return -1
     for r in range(start + count, pos, -1):
         buf[r] = buf[r - 1]
     buf[pos] = value
@@ -120,25 +123,14 @@ def pattern_direct(triangles, ptr, codes, indptr, indices, diag):
             continue
         indices[start] = i
         c = 1
-        fits = True
         for e in range(ptr[i], ptr[i + 1]):
             t, b, c2 = _others(codes, e)
-            for v in (triangles[t, b], triangles[t, c2]):
-                pos = start + c
-                while pos > start and indices[pos - 1] > v:
-                    pos -= 1
-                if pos > start and indices[pos - 1] == v:
-                    continue
-                if c == room:
-                    fits = False
-                    break
-                for r in range(start + c, pos, -1):
-                    indices[r] = indices[r - 1]
-                indices[pos] = v
-                c += 1
-            if not fits:
+            c = _insert_sorted(indices, start, c, triangles[t, b], room)
+            if c >= 0:
+                c = _insert_sorted(indices, start, c, triangles[t, c2], room)
+            if c < 0:
                 break
-        if not fits or c != room:
+        if c != room:
             wrong += 1
             diag[i] = -1
             continue
