@@ -44,7 +44,7 @@ def kernel_p(A, theta=THETA, extend=True):
     """(P, strong, state) from the kernels, as ClassicalHierarchy builds them."""
     n = A.shape[0]
     strong = np.empty(A.indptr[-1], dtype=np.uint8)
-    _a.strength(A.indptr, A.indices, A.data, theta, strong)
+    _a.strength(A.indptr, A.indices, A.data, theta, strong, np.empty(A.shape[0]))
     state = _split(A.indptr, A.indices, strong, n)
     cidx = np.cumsum(state, dtype=A.indptr.dtype) - 1
     pptr, pind, pdata, _ = _interpolation((A.indptr, A.indices, A.data), strong, state, cidx,

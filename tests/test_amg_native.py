@@ -19,6 +19,7 @@ import hatkernels
 from hatkernels import threads
 from hatkernels._jit import amg as _a
 from hatkernels._jit import amg_split as _s
+from hatkernels._jit import dense as _dense
 from hatkernels.errors import InputError
 from hatkernels.krylov import cg_with_history
 from hatkernels.mesh import rectangle
@@ -35,7 +36,7 @@ def reduced_stiffness(mesh):
 
 def strong_mask(A, theta=THETA):
     strong = np.empty(A.indptr[-1], dtype=np.uint8)
-    _a.strength(A.indptr, A.indices, A.data, theta, strong)
+    _a.strength(A.indptr, A.indices, A.data, theta, strong, np.empty(A.shape[0]))
     return strong
 
 
@@ -61,6 +62,66 @@ def test_strength_matches_pyamg(mesh):
     ours = sp.csr_array((np.ones(strong.sum()), (rows[strong], A.indices[strong])), shape=A.shape)
     S = pyamg_strength(A)
     assert (ours != sp.csr_array((np.ones(S.nnz), S.indices, S.indptr), shape=A.shape)).nnz == 0
+
+
+@settings(max_examples=25, deadline=None)
+@given(st.integers(0, 2**31 - 1), st.integers(2, 40), st.sampled_from([0.0, -1.0]))
+def test_strength_pass_gives_the_smoothers_diagonal_and_bound(seed, n, bad_diagonal):
+    # the diagonal and Gershgorin's bound come out of the strength pass: against NumPy on
+    # the same matrix (common practice, no source), and the same bits as the pass of
+    # their own (diagonal_and_bound) that the smoother used before
+    rng = np.random.default_rng(seed)
+    A = sp.random_array((n, n), density=0.3, rng=rng, format="csr")
+    A = sp.csr_array(A + A.T - sp.diags_array(rng.uniform(-1, 1, n)) * 0.1
+                     + sp.diags_array(np.abs(A).sum(axis=1) + 1.0))
+    A.sort_indices()
+    if bad_diagonal < 0 or rng.random() < 0.3:  # a non-positive diagonal is reported
+        k = int(rng.integers(n))
+        A = sp.lil_array(A)
+        A[k, k] = bad_diagonal
+        A = sp.csr_array(A)
+    strong = np.empty(A.nnz, dtype=np.uint8)
+    dinv = np.full(n, np.nan)
+    bound, row = _a.strength(A.indptr, A.indices, A.data, THETA, strong, dinv)
+    d = A.diagonal()
+    if (d > 0).all():
+        assert row == -1
+        assert np.array_equal(dinv, 1.0 / d)
+        assert bound == pytest.approx(np.max(abs(A).sum(axis=1) / d), rel=1e-14)
+        dinv2 = np.empty(n)
+        assert _a.diagonal_and_bound(A.indptr, A.indices, A.data, dinv2) == (bound, -1)
+        assert np.array_equal(dinv2, dinv)
+    else:
+        assert row == int(np.flatnonzero(~(d > 0))[0])
+    assert np.array_equal(strong, strong_mask(A))  # the strength itself unchanged
+
+
+def test_a_product_that_overflows_is_refused_by_name():
+    # the hierarchy checks each product's values while packing it (no pass of the
+    # smoother's own): 2 x 1e308 x 2 overflows in R A P, and the error names the level's A
+    n = 6
+    big = sp.csr_array(sp.diags_array(np.full(n, 1e308)))
+    two = sp.csr_array(sp.eye(n) * 2.0)
+    arrays = [(M.indptr, M.indices, M.data) for M in (two, big, two)]
+    with pytest.raises(InputError, match="level's A has a non-finite entry"):
+        _galerkin(*arrays, n, _Room())
+    # the same product one step from overflowing is built, and equals scipy's
+    half = sp.csr_array(sp.diags_array(np.full(n, 4e307)))
+    cptr, cind, cdata, _ = _galerkin(arrays[0], (half.indptr, half.indices, half.data),
+                                     arrays[2], n, _Room())
+    C = sp.csr_array((cdata, cind, cptr), shape=(n, n))
+    assert (C != two @ half @ two).nnz == 0  # reference library: scipy's product
+
+
+def test_a_matrix_near_the_largest_float_gets_a_working_hierarchy():
+    # every level of a matrix scaled near float64's largest number stays finite, and the
+    # coarsest factor too (its symmetrisation halves before adding): the cycle is the
+    # unscaled one divided by the scale (an invariant of the method; common practice)
+    A = reduced_stiffness(rectangle(20, 20))
+    r = np.random.default_rng(3).standard_normal(A.shape[0])
+    scale = 4.4e307  # the diagonal, 4 x scale, is 1.76e308
+    z = ClassicalAMG(A * scale, max_coarse=10) @ r
+    assert np.allclose(z * scale, ClassicalAMG(A, max_coarse=10) @ r, rtol=1e-12, atol=0)
 
 
 @pytest.mark.parametrize("mesh", MESHES)
@@ -332,15 +393,15 @@ def test_dense_cholesky_matches_numpy():
     rng = np.random.default_rng(7)
     M = rng.standard_normal((30, 30))
     S = M @ M.T + 30 * np.eye(30)
-    L, row = _a.dense_cholesky(S)
+    L, row = _dense.dense_cholesky(S)
     assert row == -1
     assert np.allclose(L, np.linalg.cholesky(S), rtol=1e-12, atol=1e-12)  # reference: NumPy
     b = rng.standard_normal(30)
     x = np.empty(30)
-    _a.cholesky_solve(L, b, x)
+    _dense.cholesky_solve(L, b, x)
     assert np.allclose(x, np.linalg.solve(S, b), rtol=1e-10)
     S[4, 4] = -1.0  # an indefinite matrix is refused at its first non-positive pivot
-    assert _a.dense_cholesky(S)[1] >= 0
+    assert _dense.dense_cholesky(S)[1] >= 0
 
 
 @pytest.mark.two_threads

@@ -30,6 +30,8 @@ arrays of one matrix share a dtype (int32 or int64).  Nothing here validates
 its arguments; ``hatkernels.precond.amg`` does.
 """
 
+import math
+
 import numpy as np
 from numba import prange
 from numba import uint64 as U
@@ -45,8 +47,6 @@ __all__ = [
     "gather_rows",
     "drop_zeros",
     "diagonal_and_bound",
-    "dense_cholesky",
-    "cholesky_solve",
 ]
 
 
@@ -55,19 +55,83 @@ def _bounds(n, nchunks, c):
     return (n * c) // nchunks, (n * (c + 1)) // nchunks
 
 
-@jit(parallel=True)
-def strength(indptr, indices, data, theta, strong):
-    """``strong[k] = 1`` when entry ``k`` is a strong negative off-diagonal coupling, else 0."""
+@jit(inline="always")
+def _row_ratio(indptr, data, i, s, d):
+    """``sum_j |a_ij| / a_ii`` given the sum ``s`` and ``d = a_ii > 0``; when the sum
+    overflowed (entries near float64's largest number) it is summed again divided."""
+    if not math.isinf(s):
+        return s / d
+    ratio = 0.0
+    for k in range(indptr[i], indptr[i + 1]):
+        ratio += abs(data[k]) / d
+    return ratio
+
+
+@jit(inline="always")
+def _row_sums(indptr, indices, data, i):
+    """Row ``i``'s diagonal, the sum of its entries' sizes and its largest negative
+    off-diagonal coupling in size, in one walk in storage order."""
+    top = 0.0
+    d = 0.0
+    s = 0.0
+    for k in range(indptr[i], indptr[i + 1]):
+        v = data[k]
+        s += abs(v)
+        if indices[k] == i:
+            d += v
+        elif -v > top:
+            top = -v
+    return d, s, top
+
+
+@jit(inline="always")
+def _diagonal_of_block(indptr, indices, data, dinv, lo, hi, theta, strong):
+    """Rows ``lo:hi``: ``dinv`` and ``(largest sum_j |a_ij| / a_ii, first row whose
+    diagonal is not positive, or the row count)``; with ``theta >= 0`` also their strong
+    couplings into ``strong``."""
     n = indptr.shape[0] - 1
-    for i in prange(n):
-        top = 0.0
-        for k in range(indptr[i], indptr[i + 1]):
-            if indices[k] != i and -data[k] > top:
-                top = -data[k]
-        cut = theta * top
-        for k in range(indptr[i], indptr[i + 1]):
-            v = -data[k]
-            strong[k] = 1 if (indices[k] != i and v > 0.0 and v >= cut) else 0
+    most = 0.0
+    first = n
+    for i in range(lo, hi):
+        d, s, top = _row_sums(indptr, indices, data, i)
+        if theta >= 0.0:
+            cut = theta * top
+            for k in range(indptr[i], indptr[i + 1]):
+                v = -data[k]
+                strong[k] = 1 if (indices[k] != i and v > 0.0 and v >= cut) else 0
+        if d > 0.0:
+            dinv[i] = 1.0 / d
+            ratio = _row_ratio(indptr, data, i, s, d)
+            if ratio > most:
+                most = ratio
+        elif first == n:
+            first = i
+    return most, first
+
+
+@jit(parallel=True)
+def _diagonal_pass(indptr, indices, data, dinv, theta, strong):
+    """:func:`_diagonal_of_block` over fixed blocks of rows (their maximum and first row
+    do not depend on how the blocks are shared among threads): ``(bound, row)``."""
+    n = indptr.shape[0] - 1
+    nblocks = min(n, 256)
+    tops = np.zeros(nblocks)
+    firsts = np.full(nblocks, n, dtype=np.int64)
+    for c in prange(nblocks):
+        lo, hi = _bounds(n, nblocks, c)
+        tops[c], firsts[c] = _diagonal_of_block(indptr, indices, data, dinv, lo, hi, theta,
+                                                strong)
+    row = firsts.min() if nblocks else n
+    if row < n:
+        return 0.0, row
+    return (tops.max() if nblocks else 0.0), -1
+
+
+def strength(indptr, indices, data, theta, strong, dinv):
+    """``strong[k] = 1`` when entry ``k`` is a strong negative off-diagonal coupling, else 0;
+    in the same pass what :func:`diagonal_and_bound` gives (``dinv = 1 / diag(A)``, and
+    ``(bound, row)`` returned), with the same bits, so the smoother needs no pass of its own."""
+    return _diagonal_pass(indptr, indices, data, dinv, float(theta), strong)
 
 
 @jit(inline="always")
@@ -357,14 +421,22 @@ def galerkin(rptr, rind, rdata, aptr, aind, adata, pptr, pind, pdata, n_coarse, 
 @jit(parallel=True)
 def gather_rows(starts, cptr, sind, sdata, cind, cdata, nchunks):
     """Pack the chunks :func:`galerkin` left in ``sind``/``sdata`` into ``cind``/``cdata``
-    (``cptr``: the row starts, from its counts)."""
+    (``cptr``: the row starts, from its counts); returns how many values were not finite
+    (products of finite numbers can overflow), counted on the way."""
     n_coarse = cptr.shape[0] - 1
+    bad = np.zeros(nchunks, dtype=np.int64)
     for c in prange(nchunks):
         lo, hi = _bounds(n_coarse, nchunks, c)
         src, dst = starts[c], cptr[lo]
+        count = 0
         for e in range(cptr[hi] - dst):
+            v = sdata[U(src + e)]
             cind[U(dst + e)] = sind[U(src + e)]
-            cdata[U(dst + e)] = sdata[U(src + e)]
+            cdata[U(dst + e)] = v
+            if not math.isfinite(v):
+                count += 1
+        bad[c] = count
+    return bad.sum()
 
 
 @jit()
@@ -389,75 +461,10 @@ def drop_zeros(indptr, indices, data):
     return q
 
 
-@jit(parallel=True)
 def diagonal_and_bound(indptr, indices, data, dinv):
     """``dinv = 1 / diag(A)`` and the Gershgorin bound ``max_i sum_j |a_ij| / a_ii``.
 
-    Returns ``(bound, row)`` where ``row`` is -1, or a row whose diagonal is
+    Returns ``(bound, row)`` where ``row`` is -1, or the first row whose diagonal is
     not positive (then ``dinv`` is incomplete and the bound meaningless).
     """
-    n = indptr.shape[0] - 1
-    ratio = np.empty(n)
-    for i in prange(n):
-        d = 0.0
-        s = 0.0
-        for k in range(indptr[i], indptr[i + 1]):
-            s += abs(data[k])
-            if indices[k] == i:
-                d += data[k]
-        if d > 0.0:
-            dinv[i] = 1.0 / d
-            ratio[i] = s / d
-        else:
-            ratio[i] = -1.0
-    bound = 0.0
-    for i in range(n):
-        if ratio[i] < 0.0:
-            return 0.0, i
-        if ratio[i] > bound:
-            bound = ratio[i]
-    return bound, -1
-
-
-@jit()
-def dense_cholesky(a):
-    """Lower Cholesky factor of the symmetric matrix ``a`` (its lower triangle is read).
-
-    Returns ``(L, row)``: ``row`` is -1, or the first row whose pivot is not
-    above ``1e-10`` times its diagonal entry (the matrix is not positive
-    definite, or singular up to rounding; ``L`` is then incomplete).
-    Plain loops on purpose: BLAS would start its own threads, which then
-    compete with the parallel kernels for the cores.
-    """
-    n = a.shape[0]
-    L = np.zeros((n, n))
-    for j in range(n):
-        s = a[j, j]
-        for k in range(j):
-            s -= L[j, k] * L[j, k]
-        if not s > 1e-10 * abs(a[j, j]):
-            return L, j
-        d = np.sqrt(s)
-        L[j, j] = d
-        for i in range(j + 1, n):
-            t = a[i, j]
-            for k in range(j):
-                t -= L[i, k] * L[j, k]
-            L[i, j] = t / d
-    return L, -1
-
-
-@jit()
-def cholesky_solve(L, b, out):
-    """``out = (L L^T)^-1 b`` by forward and back substitution."""
-    n = L.shape[0]
-    for i in range(n):
-        t = b[i]
-        for k in range(i):
-            t -= L[i, k] * out[k]
-        out[i] = t / L[i, i]
-    for i in range(n - 1, -1, -1):
-        t = out[i]
-        for k in range(i + 1, n):
-            t -= L[k, i] * out[k]
-        out[i] = t / L[i, i]
+    return _diagonal_pass(indptr, indices, data, dinv, -1.0, np.empty(0, dtype=np.uint8))

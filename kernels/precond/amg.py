@@ -57,12 +57,14 @@ class _ChebyshevLevel:
 
     def __init__(self, level, degree, lower=None, estimate=True):
         own = getattr(level, "own", False)
+        known = getattr(level, "diagonal", None) if own else None
         if own:
             # built by ClassicalHierarchy from a checked matrix: well formed (the structure
-            # checks of as_csr would cost a few passes per level); only finiteness is checked
+            # checks of as_csr would cost a few passes per level); only finiteness is
+            # checked, here unless the hierarchy found it while packing (``known``)
             A = level.A
             for name, M in (("A", A), ("P", level.P), ("R", level.R)):
-                if M is not None and not _k.all_finite(M.data):
+                if known is None and M is not None and not _k.all_finite(M.data):
                     raise InputError(f"amg: a level's {name} has a non-finite entry (the "
                                      f"coarse levels overflowed: rescale the problem)")
             self.A = self._own(A)
@@ -73,13 +75,16 @@ class _ChebyshevLevel:
         self.P = transfer(level.P) if getattr(level, "P", None) is not None else None
         self.R = transfer(level.R) if getattr(level, "R", None) is not None else None
         self.n = A.shape[0]
-        dinv = np.empty(self.n)
-        # Gershgorin's bound on the spectrum of D^-1 A is guaranteed; Lanczos is tighter.
-        gershgorin, row = _a.diagonal_and_bound(*self.A, dinv)
-        if row >= 0:
-            raise InputError(f"amg chebyshev smoother: diagonal entry of row {row} of a "
-                             f"level with {self.n} unknowns is {A.diagonal()[row]}; "
-                             f"it must be > 0")
+        if known is not None:
+            dinv, gershgorin = known  # the strength pass found them (its diagonals > 0)
+        else:
+            dinv = np.empty(self.n)
+            # Gershgorin's bound on the spectrum of D^-1 A is guaranteed; Lanczos is tighter.
+            gershgorin, row = _a.diagonal_and_bound(*self.A, dinv)
+            if row >= 0:
+                raise InputError(f"amg chebyshev smoother: diagonal entry of row {row} of a "
+                                 f"level with {self.n} unknowns is {A.diagonal()[row]}; "
+                                 f"it must be > 0")
         arrays = self.A
         self.smoother = ChebyshevSmoother(
             lambda x, out: _k.spmv(*arrays, x, out),

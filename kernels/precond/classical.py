@@ -17,6 +17,7 @@ import scipy.sparse as sp
 
 from hatkernels._jit import amg as _a
 from hatkernels._jit import amg_split as _s
+from hatkernels._jit import dense as _dense
 from hatkernels.checks import integer_option, real_option
 from hatkernels.errors import InputError
 from hatkernels.locality import poorly_numbered
@@ -47,13 +48,20 @@ EXTENDED_CAP = 4
 
 
 class _Level:
-    """A level of :class:`ClassicalHierarchy`: its matrix and, above the coarsest, P and R = P^T."""
+    """A level of :class:`ClassicalHierarchy`: its matrix and, above the coarsest, P and R = P^T.
+
+    ``diagonal``, when given, is ``(1 / diag(A), Gershgorin's bound)`` as the strength
+    pass found them; it also says that every value of A, P and R was found finite
+    (packing checks each product's values as it copies them), so the smoother's level
+    needs no pass of its own over them.
+    """
 
     #: built by the hierarchy from a checked matrix: the cycle takes its arrays as they are
     own = True
 
-    def __init__(self, A, P=None, R=None):
+    def __init__(self, A, P=None, R=None, diagonal=None):
         self.A, self.P, self.R = A, P, R
+        self.diagonal = diagonal
 
 
 class _DenseCholesky:
@@ -68,8 +76,8 @@ class _DenseCholesky:
 
     def __init__(self, A):
         dense = A.toarray()
-        dense = 0.5 * (dense + dense.T)
-        self.L, row = _a.dense_cholesky(dense)
+        dense = 0.5 * dense + 0.5 * dense.T  # (halves first: no overflow near the largest float)
+        self.L, row = _dense.dense_cholesky(dense)
         self.pinv = None
         if row >= 0:
             w, V = np.linalg.eigh(dense)
@@ -89,7 +97,7 @@ class _DenseCholesky:
         if self.pinv is not None:
             return self.pinv @ b
         out = np.empty(b.shape[0])
-        _a.cholesky_solve(self.L, b, out)
+        _dense.cholesky_solve(self.L, b, out)
         return out
 
 
@@ -173,13 +181,16 @@ def _chunk_starts(n_rows, room_of):
     return starts
 
 
-def _packed(starts, counts, room, n_cols):
-    """``(ptr, ind, data)`` of the rows a one-pass kernel left in ``room``'s chunks."""
+def _packed(starts, counts, room, n_cols, name):
+    """``(ptr, ind, data)`` of the rows a one-pass kernel left in ``room``'s chunks; an
+    overflow to a non-finite value is refused, naming the level's matrix ``name``."""
     np.cumsum(counts, out=counts)
     dtype = index_dtype(max(len(counts) - 1, n_cols), counts[-1])
     ptr = counts.astype(dtype, copy=False)
     ind, data = np.empty(ptr[-1], dtype=dtype), np.empty(ptr[-1])
-    _a.gather_rows(starts, ptr, room.sind, room.sdata, ind, data, len(starts) - 1)
+    if _a.gather_rows(starts, ptr, room.sind, room.sdata, ind, data, len(starts) - 1):
+        raise InputError(f"amg: a level's {name} has a non-finite entry (the coarse levels "
+                         f"overflowed: rescale the problem)")
     return ptr, ind, data
 
 
@@ -193,7 +204,7 @@ def _interpolation(A, strong, state, cidx, extend, room):
     counts = np.zeros(n + 1, dtype=np.int64)
     _a.interpolation(*A, strong, state, cidx.astype(sind.dtype, copy=False), counts, starts,
                      sind, sdata, extend, EXTENDED_CAP, len(starts) - 1)
-    return (*_packed(starts, counts, room, int(cidx[-1]) + 1 if n else 0), room)
+    return (*_packed(starts, counts, room, int(cidx[-1]) + 1 if n else 0, "P"), room)
 
 
 def _galerkin(R, A, P, n_coarse, room):
@@ -210,7 +221,7 @@ def _galerkin(R, A, P, n_coarse, room):
         if over == 0:
             break
         room.per_entry *= 2.0
-    cptr, cind, cdata = _packed(starts, counts, room, n_coarse)
+    cptr, cind, cdata = _packed(starts, counts, room, n_coarse, "A")
     # the next level's room: this level's entries per entry of R, and half as much again
     room.per_entry = max(2.0, 1.5 * cptr[-1] / max(rptr[-1], 1))
     if zeros:
@@ -262,7 +273,12 @@ class ClassicalHierarchy:
         while len(self.levels) + 1 < max_levels and current.shape[0] > max_coarse:
             n = current.shape[0]
             strong = np.empty(indptr[-1], dtype=np.uint8)
-            _a.strength(indptr, indices, data, float(theta), strong)
+            dinv = np.empty(n)
+            bound, row = _a.strength(indptr, indices, data, float(theta), strong, dinv)
+            if row >= 0:
+                raise InputError(f"amg chebyshev smoother: diagonal entry of row {row} of a "
+                                 f"level with {n} unknowns is {current.diagonal()[row]}; "
+                                 f"it must be > 0")
             state = _split(indptr, indices, strong, n, splitting)
             if second_pass:
                 state = state.astype(np.int8, copy=False)
@@ -281,7 +297,7 @@ class ClassicalHierarchy:
                                                 (pptr, pind, pdata), n_coarse, room)
             P = sp.csr_array((pdata, pind, pptr), shape=(n, n_coarse))
             R = sp.csr_array((rdata, rind, rptr), shape=(n_coarse, n))
-            self.levels.append(_Level(current, P, R))
+            self.levels.append(_Level(current, P, R, (dinv, float(bound))))
             current = sp.csr_array((cdata, cind, cptr), shape=(n_coarse, n_coarse))
             indptr, indices, data = cptr, cind, cdata
         del room
