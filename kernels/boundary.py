@@ -16,9 +16,9 @@ import scipy.sparse as sp
 from hatkernels._jit import dirichlet as _jit_dirichlet
 from hatkernels.checks import point_indices
 from hatkernels.errors import InputError
-from hatkernels.sparse import as_csr
+from hatkernels.sparse import as_csr, remember_checked
 
-__all__ = ["DirichletSystem", "apply_dirichlet", "apply_dirichlet_in_place"]
+__all__ = ["DirichletSystem", "apply_dirichlet", "apply_dirichlet_in_place", "apply_dirichlet_assembling"]
 
 
 @dataclasses.dataclass(frozen=True, repr=False)
@@ -187,6 +187,9 @@ def _system(data, indices, indptr, b, free, fixed, vals, isolated, *, n):
     Ar = sp.csr_matrix((data, indices, indptr), shape=(size, size), copy=False)
     Ar.has_sorted_indices = True
     Ar.has_canonical_format = True
+    # a renumbered part of a checked pattern (as_csr's, or the package's own): as_csr
+    # need not walk it again; its values are still checked where they are read
+    remember_checked(Ar)
     dt = indptr.dtype
     return DirichletSystem(A=Ar, b=b, free=free, fixed=fixed.astype(dt), values=vals,
                            isolated=isolated.astype(dt), n=n)
@@ -198,6 +201,14 @@ def _reduction(A, b, points, values):
     each point's free index (-1 if not free) and the full-length lifting vector."""
     A = _canonical_csr(A)
     n = A.shape[0]
+    b = _checked_b(b, n)
+    diag = np.empty(n)
+    empty = np.empty(n, dtype=np.bool_)  # rows with no entry, or zeros only
+    _jit_dirichlet.row_summary(A.indptr, A.indices, A.data, diag, empty)
+    return (A, b) + _maps(n, b, points, values, empty, diag, A.indptr.dtype)
+
+
+def _checked_b(b, n):
     b = np.asarray(b)
     if b.shape != (n,):
         raise InputError(f"b must have shape ({n},) to match A, got {b.shape}")
@@ -207,13 +218,15 @@ def _reduction(A, b, points, values):
     if not np.isfinite(b).all():
         k = int(np.flatnonzero(~np.isfinite(b))[0])
         raise InputError(f"b[{k}] = {float(b[k])!r} is not finite")
-    fixed, vals = _points_and_values(points, values, n)
+    return b
 
+
+def _maps(n, b, points, values, empty, diag, dt):
+    """``(fixed, vals, free, isolated, newindex, g)`` of a reduction whose matrix has
+    ``empty`` rows (no entry, or zeros only) and diagonal ``diag`` (None: not known yet)."""
+    fixed, vals = _points_and_values(points, values, n)
     is_fixed = np.zeros(n, dtype=bool)
     is_fixed[fixed] = True
-    diag = np.empty(n)
-    empty = np.empty(n, dtype=np.bool_)  # rows with no entry, or zeros only
-    _jit_dirichlet.row_summary(A.indptr, A.indices, A.data, diag, empty)
     isolated = np.flatnonzero(empty & ~is_fixed)
     if isolated.size:
         loaded = isolated[b[isolated] != 0]
@@ -223,17 +236,48 @@ def _reduction(A, b, points, values):
                 f"row {k} of the matrix is empty but b[{k}] = {float(b[k])!r}: the system has no solution"
             )
     free = np.flatnonzero(~is_fixed & ~empty)
-    bad = free[~(diag[free] > 0)]
+    bad = free[~(diag[free] > 0)] if diag is not None else free[:0]
     if bad.size:
         k = int(bad[0])
         raise InputError(
             f"row {k} has diagonal {float(diag[k])!r} <= 0: the matrix is not positive definite"
         )
-
-    dt = A.indptr.dtype
     free = free.astype(dt)
     newindex = np.full(n, -1, dtype=dt)
     newindex[free] = np.arange(free.size, dtype=dt)
     g = np.zeros(n)
     g[fixed] = vals
-    return A, b, fixed, vals, free, isolated, newindex, g
+    return fixed, vals, free, isolated, newindex, g
+
+
+def apply_dirichlet_assembling(pattern, rows, fill, b, points, values=0.0):
+    """:func:`apply_dirichlet` of a matrix that is never formed whole: each free row is
+    assembled straight into the reduced system, by ``fill``.
+
+    ``pattern`` is ``(indptr, indices)`` of the whole matrix (sorted rows, structurally
+    symmetric: each row's count of fixed columns comes from the fixed rows), ``rows``
+    says which rows have entries (the others, unless fixed, are isolated points), and
+    ``fill(newindex, free, g, b, rindptr, rindices, rdata, rb)`` forms the free rows
+    into the reduced arrays as :func:`hatkernels._jit.dirichlet.reduced_fill` would
+    from the whole matrix, returning -1, or a free row whose diagonal is not positive.
+    Returns the :class:`DirichletSystem`, or None after such a row (the caller then
+    reduces the whole matrix, which reports it, or takes a row of zeros as isolated).
+    ``b`` is not modified.
+    """
+    indptr, indices = pattern
+    n = indptr.shape[0] - 1
+    b = _checked_b(b, n)
+    fixed, vals, free, isolated, newindex, g = _maps(n, b, points, values, ~rows, None,
+                                                     indptr.dtype)
+    counts = np.empty(free.size, dtype=indptr.dtype)
+    _jit_dirichlet.reduced_counts_symmetric(indptr, indices, fixed.astype(indptr.dtype), free,
+                                            np.zeros(n, dtype=indptr.dtype), counts)
+    rindptr = np.zeros(free.size + 1, dtype=indptr.dtype)
+    np.cumsum(counts, out=rindptr[1:])
+    del counts
+    rindices = np.empty(int(rindptr[-1]), dtype=indptr.dtype)
+    rdata = np.empty(int(rindptr[-1]))
+    rb = np.empty(free.size)
+    if fill(newindex, free, g, b, rindptr, rindices, rdata, rb) >= 0:
+        return None
+    return _system(rdata, rindices, rindptr, rb, free, fixed, vals, isolated, n=n)

@@ -221,18 +221,25 @@ def discretise(problem, *, matrix_free=False, variant=None, progress=None):
         # values (``by_rows``) without their 48 bytes per triangle of fresh memory, whose
         # first touch made that the slower of the two here (docs/assembly.md)
         assembler = StiffnessAssembler(mesh, fused=mesh.dim == 2)
-        if mesh.dim == 2:  # on the plan's own pattern: neither is used after the reduction
-            A = assembler.plan.matrix(assembler.assemble_data(problem.coefficient, quadrature=q))
-        else:
-            A = assembler.assemble(problem.coefficient, quadrature=q)
         mass = None  # the lower-order terms' row sums, for gmg's levels
-        for term in _lower_order_terms(problem, assembler, q):
-            A = A + term
-            rows = np.asarray(term.sum(axis=1)).ravel()
-            mass = rows if mass is None else mass + rows
-        # A is ours and not used again: the reduced matrix is built in its arrays
-        reduced = apply_dirichlet_in_place(A, b, held.points, held.values)
-        del A
+        if mesh.dim == 2 and not problem.lower_order:
+            # each free row straight into the reduced matrix: the whole matrix's values
+            # are never formed (the same bits as reducing the fused matrix below)
+            reduced = assembler.assemble_reduced(b, held.points, held.values,
+                                                 problem.coefficient, quadrature=q)
+        else:
+            if mesh.dim == 2:  # on the plan's own pattern: neither is used after the reduction
+                A = assembler.plan.matrix(assembler.assemble_data(problem.coefficient,
+                                                                  quadrature=q))
+            else:
+                A = assembler.assemble(problem.coefficient, quadrature=q)
+            for term in _lower_order_terms(problem, assembler, q):
+                A = A + term
+                rows = np.asarray(term.sum(axis=1)).ravel()
+                mass = rows if mass is None else mass + rows
+            # A is ours and not used again: the reduced matrix is built in its arrays
+            reduced = apply_dirichlet_in_place(A, b, held.points, held.values)
+            del A
         system = LinearSystem(reduced.A, reduced.b, problem, False, None, reduced.A.shape[0],
                               stored_bytes(reduced.A), int(reduced.A.nnz), timings, reduced,
                               mass)

@@ -1,10 +1,12 @@
 """Dirichlet reduction and lifting."""
 
+import warnings
+
 import numpy as np
 import pytest
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
-from conftest import EPS, jittered_mesh, meshes
+from conftest import EPS, jittered_mesh, meshes, two_threads
 from hypothesis import given
 from hypothesis import strategies as st
 
@@ -190,3 +192,102 @@ def test_reduction_in_place_equals_scipy_slicing(m, fraction, seed):
     # and to the bit what the copying reduction gives
     c = apply_dirichlet(A, b, points, g)
     assert np.array_equal(s.b, c.b) and np.array_equal(s.A.data, c.A.data)
+
+
+def _holed(mesh, keep, seed):
+    """A random subset of ``mesh``'s triangles on all its points: holes, pinched points
+    and points in no triangle (the mesh warns about those)."""
+    rng = np.random.default_rng(seed)
+    tri = mesh.triangles[rng.random(mesh.n_triangles) < keep]
+    if tri.shape[0] == 0:
+        tri = mesh.triangles[:1]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", hatkernels.MeshWarning)
+        return Mesh(mesh.points, tri)
+
+
+@given(meshes(), st.floats(0.4, 1.0), st.floats(0.0, 0.9), st.integers(0, 2**32 - 1),
+       st.sampled_from(["scalar", "per-triangle", "tensor"]))
+def test_rows_assembled_straight_into_the_reduced_system(m, keep, fraction, seed, kind):
+    # the solvers' reduction without the whole matrix: each free row goes straight into
+    # the reduced system.  Against scipy's indexing of the reference assembly, and to the
+    # bit what reducing the whole (fused) matrix gives
+    m = _holed(m, keep, seed)
+    rng = np.random.default_rng(seed)
+    coefficient = {"scalar": 2.5, "per-triangle": rng.uniform(1, 3, m.n_triangles),
+                   "tensor": np.array([[2.0, 0.3], [0.3, 1.0]])}[kind]
+    b = assemble_load(m, lambda x, y: np.sin(3 * x) + y)
+    points = np.flatnonzero(rng.random(m.n_points) < fraction)
+    g = 1.0 + m.points[points, 0] ** 2
+    b_before = b.copy()
+    s = hatkernels.StiffnessAssembler(m).assemble_reduced(b, points, g, coefficient)
+    assert np.array_equal(b, b_before)
+    A = assemble_stiffness(m, coefficient, strategy="reference")
+    used = np.unique(m.triangles)
+    free = np.setdiff1d(used, points)
+    assert np.array_equal(s.free, free)
+    assert np.array_equal(s.isolated, np.setdiff1d(np.setdiff1d(np.arange(m.n_points), used),
+                                                   points))
+    Aff, Afd = A[free][:, free], A[free][:, points]  # reference library: scipy's indexing
+    assert s.A.has_canonical_format and np.array_equal(s.A.indptr, Aff.indptr)
+    assert np.array_equal(s.A.indices, Aff.indices)
+    # the reference strategy sums each entry's terms in another order (Higham, Accuracy
+    # and Stability of Numerical Algorithms, 2002, section 3.5)
+    scale = abs(A).max()
+    assert np.allclose(s.A.data, Aff.data, rtol=0, atol=16 * EPS * scale)
+    lifted = b[free] - Afd @ g
+    assert np.allclose(s.b, lifted, rtol=0, atol=16 * EPS * (np.abs(b).max() + scale * 3))
+    whole = hatkernels.StiffnessAssembler(m, fused=True).assemble(coefficient)
+    c = apply_dirichlet(whole, b, points, g)
+    assert np.array_equal(s.A.data, c.A.data) and np.array_equal(s.b, c.b)
+
+
+@two_threads
+def test_rows_assembled_straight_give_the_same_bits_on_one_and_two_threads():
+    m = jittered_mesh(40, 7)
+    b = assemble_load(m, 1.0)
+    results = []
+    for n in (1, 2):
+        with hatkernels.threads(n):
+            s = hatkernels.StiffnessAssembler(m).assemble_reduced(b, m.boundary_points(), 0.5,
+                                                                  np.linspace(1, 2, m.n_triangles))
+            results.append((s.A.data, s.A.indices, s.b))
+    assert all(np.array_equal(x, y) for x, y in zip(*results, strict=True))
+
+
+def test_a_row_that_cannot_be_reduced_takes_the_whole_matrix_path(monkeypatch):
+    # valid meshes and coefficients always give free rows a positive diagonal (the mesh
+    # refuses areas float64 cannot hold, the coefficient must be positive), so the
+    # kernel's report of a bad row is forced here: the call then reduces the whole
+    # matrix, and gives what that gives
+    from hatkernels.assembly.csr import CSRNumeric
+
+    m = jittered_mesh(6, 3)
+    b = assemble_load(m, 1.0)
+    straight = hatkernels.StiffnessAssembler(m).assemble_reduced(b, m.boundary_points(), 2.0)
+    monkeypatch.setattr(CSRNumeric, "stiffness_reduced", lambda self, *args: 5)
+    s = hatkernels.StiffnessAssembler(m).assemble_reduced(b, m.boundary_points(), 2.0)
+    c = apply_dirichlet(hatkernels.StiffnessAssembler(m, fused=True).assemble(), b,
+                        m.boundary_points(), 2.0)
+    for r in (s, straight):
+        assert np.array_equal(r.A.data, c.A.data) and np.array_equal(r.A.indices, c.A.indices)
+        assert np.array_equal(r.b, c.b) and np.array_equal(r.free, c.free)
+
+
+@given(meshes(), st.floats(0.4, 1.0), st.floats(0.0, 0.9), st.integers(0, 2**32 - 1))
+def test_row_counts_from_the_fixed_rows_match_the_plain_count(m, keep, fraction, seed):
+    # on a symmetric pattern the fixed rows alone tell each free row's fixed columns;
+    # against the count over every entry (reduced_counts) and scipy's indexing
+    from hatkernels._jit import dirichlet as _jd
+
+    m = _holed(m, keep, seed)
+    A = assemble_stiffness(m)
+    fixed = np.flatnonzero(np.random.default_rng(seed).random(m.n_points) < fraction)
+    free = np.setdiff1d(np.arange(m.n_points), fixed).astype(A.indptr.dtype)
+    newindex = np.full(m.n_points, -1, dtype=A.indptr.dtype)
+    newindex[free] = np.arange(free.size)
+    counts = np.empty(free.size, dtype=A.indptr.dtype)
+    _jd.reduced_counts_symmetric(A.indptr, A.indices, fixed.astype(A.indptr.dtype), free,
+                                 np.zeros(m.n_points, dtype=A.indptr.dtype), counts)
+    assert np.array_equal(counts, _jd.reduced_counts(A.indptr, A.indices, newindex, free))
+    assert np.array_equal(counts, np.diff(A[free][:, free].indptr))  # reference: scipy

@@ -138,6 +138,32 @@ def _row_entries(points, triangles, t, a, kappa, ks, tensor, ts, scalar):
     )
 
 
+@jit(inline="always")
+def _stiffness_row(points, triangles, kappa, ks, tensor, ts, scalar, indptr, indices, diag, ptr,
+                   codes, i, out, shift):
+    """Row ``i`` of the stiffness matrix into ``out[s - shift]`` for each place ``s`` of the
+    row in ``indices`` (zeroed first); returns the diagonal entry, which it does not
+    write (the caller puts it at ``diag[i] - shift``; a row with no triangle has none)."""
+    three = uint64(3)
+    one = uint64(1)
+    two = uint64(2)
+    start, end = indptr[i], indptr[i + 1]
+    for s in range(start, end):
+        out[uint64(s - shift)] = 0.0
+    dsum = 0.0
+    for e in range(ptr[i], ptr[i + 1]):
+        q = uint64(codes[uint64(e)])
+        t = q // three
+        a = q - three * t
+        b = a + one if a < two else uint64(0)
+        c = b + one if b < two else uint64(0)
+        kaa, kab, kac = _row_entries(points, triangles, t, a, kappa, ks, tensor, ts, scalar)
+        dsum += kaa
+        out[uint64(row_position(indices, start, end, triangles[t, b]) - shift)] += kab
+        out[uint64(row_position(indices, start, end, triangles[t, c]) - shift)] += kac
+    return dsum
+
+
 @jit(parallel=True)
 def gather_stiffness(points, triangles, kappa, ks, tensor, ts, indptr, indices, diag, ptr, codes,
                      data):
@@ -151,26 +177,74 @@ def gather_stiffness(points, triangles, kappa, ks, tensor, ts, indptr, indices, 
     """
     n = indptr.size - 1
     scalar = tensor.shape[0] == 0
-    three = uint64(3)
-    one = uint64(1)
-    two = uint64(2)
     for i in prange(n):
-        start, end = indptr[i], indptr[i + 1]
-        for s in range(start, end):
-            data[uint64(s)] = 0.0
-        dsum = 0.0
-        for e in range(ptr[i], ptr[i + 1]):
-            q = uint64(codes[uint64(e)])
-            t = q // three
-            a = q - three * t
-            b = a + one if a < two else uint64(0)
-            c = b + one if b < two else uint64(0)
-            kaa, kab, kac = _row_entries(points, triangles, t, a, kappa, ks, tensor, ts, scalar)
-            dsum += kaa
-            data[uint64(row_position(indices, start, end, triangles[t, b]))] += kab
-            data[uint64(row_position(indices, start, end, triangles[t, c]))] += kac
+        dsum = _stiffness_row(points, triangles, kappa, ks, tensor, ts, scalar, indptr, indices,
+                              diag, ptr, codes, i, data, 0)
         if ptr[i + 1] > ptr[i]:
             data[uint64(diag[i])] = dsum
+
+
+@jit(parallel=True)
+def gather_stiffness_reduced(points, triangles, kappa, ks, tensor, ts, indptr, indices, diag, ptr,
+                             codes, newindex, free, g, b, rindptr, rindices, rdata, rb, nchunks):
+    """:func:`gather_stiffness` of the free rows only, straight into the reduced system
+    ``A_ff`` (``rindptr`` given, from the free columns of each free row) and
+    ``rb = b_f - A_fd g_d``: what :func:`hatkernels._jit.dirichlet.reduced_fill` makes
+    from the whole matrix, with the same bits, without the whole matrix.
+
+    A row with no fixed column is formed in place; any other in a scratch row of its
+    chunk, then its free columns copied (renumbered by ``newindex``) and its fixed ones
+    lifted.  Returns -1, or a free row
+    whose diagonal is not positive (whose reduction would be refused: the caller
+    then takes the path that reports it).
+    """
+    scalar = tensor.shape[0] == 0
+    nf = free.shape[0]
+    bad = np.full(nchunks, -1, dtype=np.int64)
+    for c in prange(nchunks):
+        lo = (nf * c) // nchunks
+        hi = (nf * (c + 1)) // nchunks
+        width = 0
+        for r in range(lo, hi):
+            width = max(width, indptr[free[r] + 1] - indptr[free[r]])
+        row = np.empty(width)
+        for r in range(lo, hi):
+            i = free[r]
+            start = indptr[i]
+            rstart = rindptr[r]
+            if rindptr[r + 1] - rstart == indptr[i + 1] - start:
+                # no fixed column (most rows): straight into place, nothing to lift
+                dsum = _stiffness_row(points, triangles, kappa, ks, tensor, ts, scalar, indptr,
+                                      indices, diag, ptr, codes, i, rdata, start - rstart)
+                if not dsum > 0.0:
+                    if bad[c] < 0:
+                        bad[c] = i
+                    continue
+                rdata[uint64(diag[i] - start + rstart)] = dsum
+                for s in range(start, indptr[i + 1]):
+                    rindices[uint64(s - start + rstart)] = newindex[indices[s]]
+                rb[r] = b[i]
+                continue
+            dsum = _stiffness_row(points, triangles, kappa, ks, tensor, ts, scalar, indptr,
+                                  indices, diag, ptr, codes, i, row, start)
+            if not dsum > 0.0:
+                if bad[c] < 0:
+                    bad[c] = i
+                continue
+            row[uint64(diag[i] - start)] = dsum
+            acc = b[i]
+            pos = rindptr[r]
+            for s in range(start, indptr[i + 1]):
+                j = indices[s]
+                k = newindex[j]
+                if k >= 0:
+                    rindices[pos] = k
+                    rdata[pos] = row[uint64(s - start)]
+                    pos += 1
+                else:
+                    acc -= row[uint64(s - start)] * g[j]
+            rb[r] = acc
+    return bad.max()
 
 
 @jit()

@@ -21,6 +21,20 @@ def reduced_counts(indptr, indices, newindex, free):
 
 
 @jit(parallel=True)
+def reduced_counts_symmetric(indptr, indices, fixed, free, lost, counts):
+    """:func:`reduced_counts` for a structurally symmetric pattern, from the fixed rows
+    alone: row ``i`` holds column ``d`` exactly when row ``d`` holds ``i``, so walking
+    the fixed rows counts each row's fixed columns (into ``lost``, zeros, one per
+    point), and every other row is read only for its length."""
+    for d in fixed:
+        for s in range(indptr[d], indptr[d + 1]):
+            lost[indices[s]] += 1
+    for r in prange(free.size):
+        i = free[r]
+        counts[r] = indptr[i + 1] - indptr[i] - lost[i]
+
+
+@jit(parallel=True)
 def reduced_fill(indptr, indices, data, newindex, free, g, b, rindptr, rindices, rdata, rb):
     """Copy the free-free block and form ``rb = b_free - A_free,fixed g_fixed`` row by row.
 

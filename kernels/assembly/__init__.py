@@ -33,6 +33,7 @@ from hatkernels.assembly.dofs import DofAssembler
 from hatkernels.assembly.elements import load_values, lumped_values, mass_values
 from hatkernels.assembly.plan import CSRPlan, build_plan
 from hatkernels.assembly.tetrahedra import TetrahedronAssembly
+from hatkernels.boundary import apply_dirichlet_assembling, apply_dirichlet_in_place
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
@@ -145,6 +146,34 @@ class StiffnessAssembler:
         if out is not None and (out.shape != (self.plan.nnz,) or out.dtype != np.float64):
             raise InputError(f"out must be a float64 array of shape ({self.plan.nnz},)")
         return self._numeric.stiffness_data(coef, quadrature, out)
+
+    def assemble_reduced(self, b, points, values=0.0, coefficient=None, *, quadrature=2):
+        """The stiffness matrix reduced by Dirichlet conditions: ``apply_dirichlet(A, b,
+        points, values)`` of ``A = assemble(coefficient)``, with each free row assembled
+        straight into the reduced matrix, so the whole matrix's values are never formed.
+
+        ``csr`` on triangles only.  The bits are those of a ``fused`` (or ``by_rows``)
+        assembler's matrix, reduced.  A free row whose diagonal is not positive (a zero
+        coefficient all around a point, say) sends the call through the whole matrix,
+        whose reduction then takes a row of zeros as an isolated point or reports the row.
+        ``b`` is not modified.  Returns a :class:`~hatkernels.boundary.DirichletSystem`.
+        """
+        if self._numeric is None:
+            raise InputError("assemble_reduced needs the csr strategy on a triangle mesh")
+        coef = parse_coefficient(coefficient, self.mesh, name="coefficient", tensor=True)
+        pl = self.plan
+
+        def fill(*arrays):
+            return self._numeric.stiffness_reduced(coef, quadrature, *arrays)
+
+        rows = pl.ptr[1:] > pl.ptr[:-1]  # points in at least one triangle
+        reduced = apply_dirichlet_assembling((pl.indptr, pl.indices), rows, fill, b, points,
+                                             values)
+        if reduced is None:
+            fused = CSRNumeric(self.mesh, pl, fused=True).stiffness_data(coef, quadrature)
+            reduced = apply_dirichlet_in_place(pl.matrix(fused, copy_pattern=True), b, points,
+                                               values)
+        return reduced
 
     def assemble_mass(self, coefficient=None, *, lumped=False, quadrature=2):
         """Mass matrix ``int c phi_i phi_j`` (consistent, or lumped to its row sums)."""

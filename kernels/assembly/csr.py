@@ -2,6 +2,7 @@
 
 from typing import NamedTuple
 
+import numba
 import numpy as np
 
 from hatkernels._jit import assembly as _jit_assembly
@@ -93,6 +94,16 @@ class CSRNumeric:
         _jit_assembly.stiffness_values(m.points, pl.triangles, *kc, d, o)
         self._gather(d, o, data)
         return data
+
+    def stiffness_reduced(self, coef, quadrature, newindex, free, g, b, rindptr, rindices, rdata,
+                          rb):
+        """The free rows straight into a reduced system (the ``fill`` of
+        :func:`hatkernels.boundary.apply_dirichlet_assembling`), with the bits of ``fused``."""
+        pl, m = self.plan, self.mesh
+        kc = kernel_coefficient(coef, m, quadrature)
+        return _jit_assembly.gather_stiffness_reduced(
+            m.points, pl.triangles, *kc, pl.indptr, pl.indices, pl.diag, pl.ptr, pl.codes,
+            newindex, free, g, b, rindptr, rindices, rdata, rb, numba.get_num_threads())
 
     def _scatter_plan(self):
         """``(slots, first, colouring)`` for :func:`~hatkernels._jit.assembly.scatter_scalar`,
