@@ -30,7 +30,6 @@ def _part(n, parts, c):
     return (n * c) // parts, (n * (c + 1)) // parts
 
 
-@jit(parallel=True)
 def transpose_kept(indptr, indices, data, kept, n_cols, parts):
     """CSR transpose ``(tptr, tind, tdata)`` of the entries with ``kept[k]`` set (every entry
     when ``kept`` is empty), with their values (none when ``data`` is empty).
@@ -39,28 +38,51 @@ def transpose_kept(indptr, indices, data, kept, n_cols, parts):
     cut into ``parts`` blocks, counted and placed in parallel (each block in its
     own places, known from the counts of the blocks before it), so the result is
     the same for any ``parts``; the counts take ``parts`` integers per column.
+    The arrays are NumPy's (large ones on huge pages where the system offers them:
+    their first touch is several times cheaper than for arrays made inside a kernel).
     """
-    n = indptr.shape[0] - 1
-    every = kept.shape[0] == 0
-    with_data = data.shape[0] > 0
     place = np.zeros((parts, n_cols), dtype=indptr.dtype)
+    tptr = np.empty(n_cols + 1, dtype=indptr.dtype)
+    total = _transpose_count(indptr, indices, kept, place, tptr)
+    tind = np.empty(total, dtype=indices.dtype)
+    tdata = np.empty(total if data.shape[0] > 0 else 0, dtype=data.dtype)
+    _transpose_fill(indptr, indices, data, kept, place, tind, tdata)
+    return tptr, tind, tdata
+
+
+@jit(parallel=True)
+def _transpose_count(indptr, indices, kept, place, tptr):
+    """Count each block's kept entries per column into ``place``, then turn the counts into
+    first places, column by column and block by block; ``tptr`` the row starts.  Returns
+    the number of kept entries."""
+    n = indptr.shape[0] - 1
+    parts, n_cols = place.shape
+    every = kept.shape[0] == 0
     for c in prange(parts):
         lo, hi = _part(n, parts, c)
         for i in range(lo, hi):
             for k in range(indptr[i], indptr[i + 1]):
                 if every or kept[k]:
                     place[c, indices[k]] += 1
-    tptr = np.empty(n_cols + 1, dtype=indptr.dtype)
     total = 0
-    for j in range(n_cols):  # counts become first places: column by column, block by block
+    for j in range(n_cols):
         tptr[j] = total
         for c in range(parts):
             m = place[c, j]
             place[c, j] = total
             total += m
     tptr[n_cols] = total
-    tind = np.empty(total, dtype=indices.dtype)
-    tdata = np.empty(total if with_data else 0, dtype=data.dtype)
+    return total
+
+
+@jit(parallel=True)
+def _transpose_fill(indptr, indices, data, kept, place, tind, tdata):
+    """Each block puts its kept entries at its own places (``place``, from
+    :func:`_transpose_count`), in row order."""
+    n = indptr.shape[0] - 1
+    parts = place.shape[0]
+    every = kept.shape[0] == 0
+    with_data = data.shape[0] > 0
     for c in prange(parts):
         lo, hi = _part(n, parts, c)
         for i in range(lo, hi):
@@ -72,7 +94,6 @@ def transpose_kept(indptr, indices, data, kept, n_cols, parts):
                     if with_data:
                         tdata[q] = data[k]
                     place[c, j] = q + 1
-    return tptr, tind, tdata
 
 
 def transpose_pattern(indptr, indices, strong, n, parts=2):
