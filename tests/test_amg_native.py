@@ -362,7 +362,7 @@ def test_galerkin_and_transpose_match_scipy(seed):
     starts = np.array([0, 8, 16])
     over, _ = _a.galerkin(rptr, rind, rdata, A.indptr, A.indices, A.data, P.indptr,
                           P.indices, P.data, nc, counts, starts, np.empty(16, np.int32),
-                          np.empty(16), 2)
+                          np.empty(16), 2, np.full((2, nc), -1, np.int32))
     assert over == 2
     # ... and is retried with more: start from a quarter entry per entry of R
     room = _Room()

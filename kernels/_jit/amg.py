@@ -182,7 +182,7 @@ def _unmark_row(pos, marked, places):
 
 @jit(parallel=True)
 def interpolation(indptr, indices, data, strong, state, cidx, counts, starts, sind, sdata,
-                  extend, cap, nchunks):
+                  extend, cap, nchunks, marks):
     """P in one pass, as :func:`galerkin` writes ``R A P``: chunk ``c`` of the rows writes
     its rows one after another into ``sind``/``sdata`` from ``starts[c]`` and
     ``counts[i + 1]`` gets row ``i``'s length (:func:`gather_rows` packs them).  A row
@@ -192,11 +192,12 @@ def interpolation(indptr, indices, data, strong, state, cidx, counts, starts, si
     A C point's row is its coarse index ``cidx``; an F point takes the classical
     interpolation weights; with ``extend``, a row with a strong F neighbour that shares
     none of its strong C points interpolates from theirs too, by the extended+i formula
-    (:func:`_extended_row`), keeping its ``cap`` largest weights."""
+    (:func:`_extended_row`), keeping its ``cap`` largest weights.  ``marks[c]``: chunk
+    ``c``'s marks, -1 in the first ``n`` places (each row clears the ones it set)."""
     n = indptr.shape[0] - 1
     for c in prange(nchunks):
         lo, hi = _bounds(n, nchunks, c)
-        pos = np.full(n, -1, dtype=np.int32)  # places within one row of P
+        pos = marks[c]  # places within one row of P (-1 everywhere, and left so)
         # a row's points, weights and columns by place (pages touched: few)
         marked = np.empty(n, dtype=np.int64)
         weights = np.empty(n)
@@ -386,7 +387,7 @@ def _galerkin_row(row, q, limit, rptr, rind, rdata, aptr, aind, adata, pptr, pin
 
 @jit(parallel=True)
 def galerkin(rptr, rind, rdata, aptr, aind, adata, pptr, pind, pdata, n_coarse, counts,
-             starts, sind, sdata, nchunks):
+             starts, sind, sdata, nchunks, marks):
     """``C = R A P`` in one pass: chunk ``c`` of the coarse rows (``_bounds``) writes its rows
     one after another into ``sind``/``sdata`` from ``starts[c]``, before ``starts[c + 1]``;
     ``counts[I + 1]`` gets row ``I``'s length (:func:`gather_rows` packs them).
@@ -394,13 +395,14 @@ def galerkin(rptr, rind, rdata, aptr, aind, adata, pptr, pind, pdata, n_coarse, 
     Returns ``(overflowed, zeros)``: how many chunks did not fit (then nothing is
     usable: call again with more room), and how many off-diagonal entries summed to
     exactly zero (:func:`drop_zeros` removes them).  No separate counting pass: that
-    would walk the triple product twice.
+    would walk the triple product twice.  ``marks[c]``: chunk ``c``'s marks, -1 in the
+    first ``n_coarse`` places (left holding places of ``sind``).
     """
     over = np.zeros(nchunks, dtype=np.int64)
     zeros = np.zeros(nchunks, dtype=np.int64)
     for c in prange(nchunks):
         lo, hi = _bounds(n_coarse, nchunks, c)
-        pos = np.full(n_coarse, -1, dtype=sind.dtype)
+        pos = marks[c]  # -1 in the first n_coarse places on entry
         q = starts[c]
         z = 0
         for row in range(lo, hi):

@@ -158,8 +158,20 @@ class _Room:
     entry of R the product gives itself."""
 
     def __init__(self):
-        self.sind = self.sdata = None
+        self.sind = self.sdata = self._marks = None
         self.per_entry = 3.0  # P1 triangles: about 1.8 entries of R A P per entry of R
+
+    def marks(self, dtype, n):
+        """One row of marks per chunk, -1 in the first ``n`` places, as NumPy's array (large
+        ones on huge pages) kept from call to call: the kernels' own arrays were first
+        touched 4 KiB at a time at every call."""
+        held = self._marks
+        if held is None or held.dtype != dtype or held.shape[1] < n:
+            self._marks = held = None  # free the old before the new is made
+            self._marks = held = np.full((_chunks(), n), -1, dtype=dtype)
+        else:
+            held[:, :n] = -1
+        return held
 
     def arrays(self, starts, n_rows):
         """Scratch for ``starts[-1]`` entries whose indices and places fit one dtype."""
@@ -203,7 +215,8 @@ def _interpolation(A, strong, state, cidx, extend, room):
     sind, sdata = room.arrays(starts, n)
     counts = np.zeros(n + 1, dtype=np.int64)
     _a.interpolation(*A, strong, state, cidx.astype(sind.dtype, copy=False), counts, starts,
-                     sind, sdata, extend, EXTENDED_CAP, len(starts) - 1)
+                     sind, sdata, extend, EXTENDED_CAP, len(starts) - 1,
+                     room.marks(np.int32, n))
     return (*_packed(starts, counts, room, int(cidx[-1]) + 1 if n else 0, "P"), room)
 
 
@@ -217,7 +230,7 @@ def _galerkin(R, A, P, n_coarse, room):
         sind, sdata = room.arrays(starts, n_coarse)
         counts = np.zeros(n_coarse + 1, dtype=np.int64)
         over, zeros = _a.galerkin(*R, *A, *P, n_coarse, counts, starts, sind, sdata,
-                                  len(starts) - 1)
+                                  len(starts) - 1, room.marks(sind.dtype, n_coarse))
         if over == 0:
             break
         room.per_entry *= 2.0
