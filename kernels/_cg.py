@@ -57,6 +57,7 @@ from hatkernels._cgstop import (
     BREAKDOWN_MATRIX,
     BREAKDOWN_PRECONDITIONER,
     Stagnation,
+    breakdown_matrix,
     breakdown_preconditioner,
 )
 from hatkernels._jit import sparse as _k
@@ -409,10 +410,7 @@ def _iterate(product, b, x0, M, reductions, bb, *, rtol, atol, maxiter, callback
             if iteration == 0 and out_of_range(pq):
                 return None
             if not (pq > 0.0 and math.isfinite(pq)):
-                info = BREAKDOWN_MATRIX
-                message = (f"breakdown in iteration {iteration + 1}: p.Ap = {pq:.3e} <= 0 "
-                           f"(or not finite), so A is not positive definite "
-                           f"(info = {BREAKDOWN_MATRIX})")
+                info, message = breakdown_matrix(pq, iteration + 1)
                 break
             alpha = rz / pq
             alphas.append(alpha)

@@ -29,6 +29,20 @@ BREAKDOWN_PRECONDITIONER = -2
 STALL_RESTARTS = 5
 
 
+def breakdown_matrix(pq, iteration):
+    """``(info, message)`` for ``p . A p = pq <= 0`` (or not finite) in ``iteration``.  The
+    loop's inputs are checked finite and ``p`` is (``r . z`` was), so a value that is not
+    finite is an overflow inside the product (entries near float64's largest number),
+    named as such, not as a matrix that is not positive definite."""
+    if not math.isfinite(pq):
+        why = ("is not finite: the product overflows float64 (A's entries or the iterates "
+               "are too near its largest number); rescale the problem (another unit)")
+    else:
+        why = "<= 0, so A is not positive definite"
+    return BREAKDOWN_MATRIX, (f"breakdown in iteration {iteration}: p.Ap = {pq:.3e} {why} "
+                              f"(info = {BREAKDOWN_MATRIX})")
+
+
 def breakdown_preconditioner(rz, iteration):
     """``(info, message)`` for ``r . z = rz <= 0`` (or not finite) after ``iteration``."""
     return BREAKDOWN_PRECONDITIONER, (

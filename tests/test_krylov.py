@@ -160,6 +160,15 @@ def test_indefinite_matrix_reports_breakdown():
     assert np.isfinite(x).all()
 
 
+def test_a_product_that_overflows_is_named_as_such():
+    # a positive definite matrix whose entries are near float64's largest number: p.Ap
+    # overflows, and the message says so rather than calling A indefinite
+    A = CASES["poisson2d"]() * 4.4e307  # 2-D Poisson, diagonal 4 x 4.4e307 = 1.76e308
+    with pytest.warns(RuntimeWarning, match=r"p.Ap = (inf|nan) is not finite: the product overflows float64.*rescale"):
+        x, info = cg(A, rhs(A.shape[0]))
+    assert info == BREAKDOWN_MATRIX < 0
+
+
 def test_non_spd_preconditioner_reports_breakdown():
     A = CASES["poisson2d"]()
     M = -sp.eye_array(A.shape[0]).tocsr()

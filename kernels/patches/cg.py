@@ -20,7 +20,7 @@ import math
 import numpy as np
 
 from hatkernels._cg import condition_estimate, fresh_copy
-from hatkernels._cgstop import BREAKDOWN_MATRIX, Stagnation, breakdown_preconditioner
+from hatkernels._cgstop import Stagnation, breakdown_matrix, breakdown_preconditioner
 from hatkernels._jit import sparse as _k
 from hatkernels.krylov import _check_scalars
 
@@ -80,9 +80,7 @@ def lean_cg(A, M, r, remake_b, *, rtol, atol=0.0, maxiter=None, nested=False, mo
         A.matvec_into(p, w)
         pw = _k.dot(p, w)
         if not (pw > 0.0 and math.isfinite(pw)):
-            info = BREAKDOWN_MATRIX
-            message = (f"breakdown in iteration {iteration + 1}: p.Ap = {pw:.3e} <= 0 (or not "
-                       f"finite), so A is not positive definite (info = {BREAKDOWN_MATRIX})")
+            info, message = breakdown_matrix(pw, iteration + 1)
             break
         alpha = rz / pw
         alphas.append(alpha)
