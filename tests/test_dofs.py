@@ -274,16 +274,38 @@ def test_inputs_are_never_modified_and_may_be_read_only():
 
 
 def test_long_rows_against_scipy_triplets():
-    # twelve dofs per cell, each dof in about eighteen cells: rows of ~200 candidate
-    # columns take the kernel's sorting branch, the short rows its insertion branch
+    # twelve dofs per cell, each of the first 120 dofs in about ten cells: rows of more
+    # than 64 distinct columns take the kernel's sorting branch, the others (and the
+    # last cell's) its insertion branch
     rng = np.random.default_rng(11)
-    cells = np.array([rng.permutation(40)[:12] for _ in range(60)] + [list(range(41, 53))])
+    cells = np.array([rng.permutation(120)[:12] for _ in range(100)]
+                     + [list(range(121, 133))])
     K = rng.standard_normal((len(cells), 12, 12))
     assembler = DofAssembler(cells)
     A = assembler.matrix(K)
     assert_canonical(A)
-    assert_close(A, triplets(cells, K, 53))  # reference library: scipy
-    assert np.diff(A.indptr)[:40].min() > 12 and np.diff(A.indptr)[40:].max() == 12
+    assert_close(A, triplets(cells, K, 133))  # reference library: scipy
+    lengths = np.diff(A.indptr)
+    assert lengths[:120].max() > 64 and lengths[:120].min() <= 64 and lengths[121:].max() == 12
+
+
+@given(st.integers(2, 12), st.integers(1, 80), st.integers(0, 40), st.integers(0, 2**32 - 1))
+def test_pattern_and_slots_match_their_definitions(k, m, spare, seed):
+    # random tables (dofs in no cell included): the pattern equals scipy's pattern of the
+    # same pairs, and each slot is the position of its pair in the row (by search)
+    rng = np.random.default_rng(seed)
+    n = k + spare + int(rng.integers(0, 2 * k))
+    cells = np.array([rng.permutation(n)[:k] for _ in range(m)])
+    pl = DofAssembler(cells, n_dofs=n).plan
+    ones = triplets(cells, np.ones((m, k, k)), n)  # reference library: scipy
+    np.testing.assert_array_equal(pl.indptr, ones.indptr)
+    np.testing.assert_array_equal(pl.indices, ones.indices)
+    for t in range(m):
+        for a in range(k):
+            i = cells[t, a]
+            row = pl.indices[pl.indptr[i]:pl.indptr[i + 1]]
+            want = pl.indptr[i] + np.searchsorted(row, cells[t])
+            np.testing.assert_array_equal(pl.slots[k * t + a], want)
 
 
 def test_explicit_zeros_are_kept_and_unused_dofs_have_empty_rows():

@@ -18,11 +18,10 @@ numba's checks for negative wraparound in the hot loops).
 from numba import prange, uint64
 
 from hatkernels._jit import jit
-from hatkernels._jit.topology import _insert_sorted, row_position
 
-# Rows with at most this many candidate columns are built by insertion (a few
-# shifts per column, measured faster than a sort call on the short rows of
-# low-order cells); longer rows are sorted, O(L log L) instead of O(L^2).
+# Rows with at most this many distinct columns are sorted by insertion (a few
+# shifts per column, faster than a sort call on the short rows of low-order
+# cells); longer rows by a sort call, O(L log L) instead of O(L^2).
 _INSERT_MAX = 64
 
 
@@ -61,75 +60,101 @@ def first_repeat(cells):
     return -1
 
 
-@jit(parallel=True)
-def pattern_scratch(cells, ptr, codes, scratch, counts):
-    """Sorted distinct columns of each row, into a scratch array with room to spare.
+@jit(inline="always")
+def _bounds(n, nchunks, c):
+    return (n * c) // nchunks, (n * (c + 1)) // nchunks
 
-    Row ``i`` (itself and the ``k - 1`` other dofs of each of its ``d``
-    cells: at most ``(k - 1) d + 1`` columns) is gathered at
-    ``scratch[i + (k - 1) ptr[i]:]``, a place known without counting first,
-    then sorted and compacted there; ``counts[i]`` gets its length (0 for a
-    dof in no cell).
-    """
+
+@jit(inline="always")
+def _distinct(cells, ptr, codes, i, stamp, out, start):
+    """The distinct dofs of row ``i`` (itself first, then as its cells list them) into
+    ``out[start:]``, unsorted; returns how many.  ``stamp`` marks the dofs already taken
+    with ``i`` (its entries from other rows are smaller or larger, never ``i``)."""
+    k = cells.shape[1]
+    out[uint64(start)] = i
+    stamp[uint64(i)] = i
+    c = 1
+    for e in range(ptr[i], ptr[i + 1]):
+        q = uint64(codes[uint64(e)])
+        t = q // uint64(k)
+        for b in range(k):
+            j = cells[t, uint64(b)]
+            if stamp[uint64(j)] != i:
+                stamp[uint64(j)] = i
+                out[uint64(start + c)] = j
+                c += 1
+    return c
+
+
+@jit(inline="always")
+def _count_distinct(cells, ptr, codes, i, stamp):
+    """:func:`_distinct` without writing the row: its length."""
+    k = cells.shape[1]
+    stamp[uint64(i)] = i
+    c = 1
+    for e in range(ptr[i], ptr[i + 1]):
+        q = uint64(codes[uint64(e)])
+        t = q // uint64(k)
+        for b in range(k):
+            j = cells[t, uint64(b)]
+            if stamp[uint64(j)] != i:
+                stamp[uint64(j)] = i
+                c += 1
+    return c
+
+
+@jit(parallel=True)
+def pattern_counts(cells, ptr, codes, counts, stamps):
+    """``counts[i]`` = the number of distinct columns of row ``i`` (itself and the dofs of
+    its cells; 0 for a dof in no cell).  ``stamps`` (one row of ``n`` per chunk, -1
+    everywhere) marks the dofs a row has taken: no scratch copy of the row, no sort."""
+    n = ptr.size - 1
+    nchunks = stamps.shape[0]
+    for c in prange(nchunks):
+        lo, hi = _bounds(n, nchunks, c)
+        stamp = stamps[c]
+        for i in range(lo, hi):
+            counts[i] = 0 if ptr[i] == ptr[i + 1] else _count_distinct(cells, ptr, codes, i,
+                                                                         stamp)
+
+
+@jit(parallel=True)
+def pattern_rows(cells, ptr, codes, indptr, indices, slots, stamps, places):
+    """Each row's sorted distinct columns straight into CSR ``indices`` (``indptr`` from
+    :func:`pattern_counts`), and the slot plan: ``slots[k t + a, b]`` (shape (M*k, k), in
+    cell order) is the position in ``indices`` of entry ``(cells[t, a], cells[t, b])``,
+    looked up in ``places`` (one row of ``n`` per chunk: each column's position in the
+    row just built).  Each row ``i`` writes only its own entries and the slots of its
+    own incidences.  Short rows are sorted by insertion, longer ones by a sort call."""
     k = cells.shape[1]
     n = ptr.size - 1
-    for i in prange(n):
-        if ptr[i] == ptr[i + 1]:
-            counts[i] = 0
-            continue
-        start = i + (k - 1) * ptr[i]
-        scratch[start] = i
-        c = 1
-        if (k - 1) * (ptr[i + 1] - ptr[i]) < _INSERT_MAX:
+    nchunks = stamps.shape[0]
+    for c in prange(nchunks):
+        lo, hi = _bounds(n, nchunks, c)
+        stamp = stamps[c]
+        place = places[c]
+        for i in range(lo, hi):
+            start = indptr[i]
+            if ptr[i] == ptr[i + 1]:
+                continue
+            count = _distinct(cells, ptr, codes, i, stamp, indices, start)
+            if count <= _INSERT_MAX:
+                for r in range(start + 1, start + count):
+                    v = indices[uint64(r)]
+                    w = r - 1
+                    while w >= start and indices[uint64(w)] > v:
+                        indices[uint64(w + 1)] = indices[uint64(w)]
+                        w -= 1
+                    indices[uint64(w + 1)] = v
+            else:
+                indices[start:start + count].sort()
+            for r in range(start, start + count):
+                place[uint64(indices[uint64(r)])] = r
             for e in range(ptr[i], ptr[i + 1]):
-                t = codes[e] // k
-                a = codes[e] - k * t
+                q = uint64(codes[uint64(e)])
+                t = q // uint64(k)
                 for b in range(k):
-                    if b != a:
-                        c = _insert_sorted(scratch, start, c, cells[t, b])
-            counts[i] = c
-            continue
-        for e in range(ptr[i], ptr[i + 1]):
-            t = codes[e] // k
-            for b in range(k):
-                j = cells[t, b]
-                if j != i:
-                    scratch[start + c] = j
-                    c += 1
-        row = scratch[start:start + c]
-        row.sort()
-        w = 1
-        for r in range(1, c):
-            if row[r] != row[w - 1]:
-                row[w] = row[r]
-                w += 1
-        counts[i] = w
-
-
-@jit(parallel=True)
-def pattern_fill(cells, ptr, codes, scratch, indptr, indices, slots):
-    """Copy the rows from the scratch array into CSR ``indices``; the slot plan.
-
-    ``slots[k t + a, b]`` (shape (M*k, k), in cell order) is the position in
-    ``indices`` of entry ``(cells[t, a], cells[t, b])``: for incidence ``e``
-    of dof ``i``, row ``codes[e]``.  Each row ``i`` writes only the slots of
-    its own incidences.
-    """
-    k = cells.shape[1]
-    n = ptr.size - 1
-    for i in prange(n):
-        start = indptr[i]
-        end = indptr[i + 1]
-        src = i + (k - 1) * ptr[i]
-        for r in range(end - start):
-            indices[start + r] = scratch[src + r]
-        diag = row_position(indices, start, end, i) if end > start else start
-        for e in range(ptr[i], ptr[i + 1]):
-            q = codes[e]
-            t = q // k
-            a = q - k * t
-            for b in range(k):
-                slots[q, b] = diag if b == a else row_position(indices, start, end, cells[t, b])
+                    slots[q, uint64(b)] = place[uint64(cells[t, uint64(b)])]
 
 
 @jit(parallel=True)

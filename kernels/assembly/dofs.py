@@ -13,6 +13,7 @@ from __future__ import annotations
 import dataclasses
 import operator
 
+import numba
 import numpy as np
 import scipy.sparse as sp
 
@@ -153,23 +154,28 @@ def build_dof_plan(cells, n):
     ptr = np.empty(n + 1, dtype=dt)
     codes = np.empty(m * k, dtype=dt)
     _jit_dofs.incidence(cells, ptr, codes)
-    # row i is gathered at i + (k-1) ptr[i], with room for (k-1) d_i + 1 columns
-    scratch = np.empty(n + (k - 1) * m * k, dtype=_index_dtype(n + (k - 1) * m * k))
+    # two passes over the incidence, each row's distinct columns found by marks (one
+    # row of n per chunk): count, then write each row sorted in place with its slots
+    nchunks = numba.get_num_threads()
+    stamps = np.full((nchunks, n), -1, dtype=dt)
     counts = np.empty(n, dtype=dt)
-    _jit_dofs.pattern_scratch(cells, ptr, codes, scratch, counts)
+    _jit_dofs.pattern_counts(cells, ptr, codes, counts, stamps)
     nnz = int(counts.sum(dtype=np.int64))
     wide = np.promote_types(dt, _index_dtype(nnz))
     if wide != dt:
         # more stored entries than int32 counts: every index array in int64
         dt = wide
         cells, ptr, codes = cells.astype(dt), ptr.astype(dt), codes.astype(dt)
+        stamps = stamps.astype(dt)
     indptr = np.zeros(n + 1, dtype=dt)
     np.cumsum(counts, out=indptr[1:])
     del counts
     indices = np.empty(nnz, dtype=dt)
     slots = np.empty((m * k, k), dtype=dt)
-    _jit_dofs.pattern_fill(cells, ptr, codes, scratch, indptr, indices, slots)
-    del scratch
+    stamps.fill(-1)  # the first pass left row numbers in them
+    _jit_dofs.pattern_rows(cells, ptr, codes, indptr, indices, slots, stamps,
+                           np.empty((nchunks, n), dtype=dt))
+    del stamps
     colour = _jit_colour_blocks(cells, n, BLOCK_CELLS)
     colour_ptr = blocks = None
     if not (colour.size and colour[0] < 0):
