@@ -83,6 +83,32 @@ def test_a_wrong_prediction_falls_back_to_the_scratch_build():
         assert all(np.array_equal(a, b) for a, b in zip(got, right, strict=True))
 
 
+@settings(max_examples=25, deadline=None)
+@given(cells=st.integers(3, 10), seed=st.integers(0, 10_000), keep=st.floats(0.3, 0.9))
+def test_rows_short_by_their_boundary_edges_are_caught(cells, seed, keep):
+    # a row predicted with no boundary edge takes its successors only unless the power
+    # sums of its predecessors differ: on meshes with holes and pinched points (one or
+    # two boundary fans at a point), predicting no boundary edge anywhere is caught,
+    # and the result is scipy's pattern all the same
+    mesh = jittered_mesh(cells, seed)
+    rng = np.random.default_rng(seed)
+    tri = mesh.triangles[rng.random(mesh.n_triangles) < keep].astype(np.int32)
+    if tri.shape[0] == 0:
+        return
+    n = mesh.n_points
+    ptr, codes = incidence(tri, n)
+    indptr, indices, diag = csr_pattern(tri, ptr, codes, outgoing=np.zeros(n, np.int64))
+    ref = scipy_pattern(tri, n)
+    assert np.array_equal(indptr, ref.indptr) and np.array_equal(indices, ref.indices)
+    # and the kernel itself reported the short rows: one per point with a boundary edge
+    counts = np.where(np.diff(ptr) > 0, 1 + np.diff(ptr), 0)
+    short = np.zeros(n + 1, dtype=indptr.dtype)
+    np.cumsum(counts, out=short[1:])
+    wrong = _topo.pattern_direct(tri, ptr, codes, short, np.empty(short[-1], indptr.dtype),
+                                 np.empty(n, indptr.dtype))
+    assert wrong == np.count_nonzero(outgoing_plain(tri, n))
+
+
 @pytest.mark.two_threads
 def test_same_pattern_on_one_and_two_threads():
     mesh = jittered_mesh(30, 4)

@@ -109,8 +109,16 @@ def pattern_direct(triangles, ptr, codes, indptr, indices, diag):
     """Each row's sorted distinct columns straight into CSR ``indices``, at ``indptr``
     made from predicted row lengths; the diagonal's position into ``diag``.
 
-    Returns how many rows did not have their predicted length (never written
-    past; the caller then builds the pattern with :func:`pattern_scratch`).
+    A row takes the successors of its point first: distinct, as each directed edge is in
+    one triangle at most (the mesh checks it).  Its predecessors are the same points in
+    another order unless a boundary edge ends at the point; so they are inserted only
+    when the row has room for more than the successors, or when their sum or their sum
+    of squares differs from the successors' (whatever the predicted lengths, a point
+    whose successors and predecessors differ in one or two points always shows it while
+    the point numbers are below 2**31; the sums wrap beyond).
+    Most rows thus need half the insertions.  Returns how many rows did not have their
+    predicted length (never written past; the caller then builds the pattern with
+    :func:`pattern_scratch`).
     """
     n = ptr.size - 1
     wrong = 0
@@ -123,13 +131,20 @@ def pattern_direct(triangles, ptr, codes, indptr, indices, diag):
             continue
         indices[start] = i
         c = 1
+        s1 = s2 = uint64(0)  # power sums of successors minus predecessors (mod 2**64)
         for e in range(ptr[i], ptr[i + 1]):
             t, b, c2 = _others(codes, e)
-            c = _insert_sorted(indices, start, c, triangles[t, b], room)
-            if c >= 0:
+            j, p = uint64(triangles[t, b]), uint64(triangles[t, c2])
+            s1 += j - p
+            s2 += j * j - p * p
+            if c > 0:
+                c = _insert_sorted(indices, start, c, triangles[t, b], room)
+        if c > 0 and (c < room or s1 != uint64(0) or s2 != uint64(0)):
+            for e in range(ptr[i], ptr[i + 1]):
+                t, b, c2 = _others(codes, e)
                 c = _insert_sorted(indices, start, c, triangles[t, c2], room)
-            if c < 0:
-                break
+                if c < 0:
+                    break
         if c != room:
             wrong += 1
             diag[i] = -1
