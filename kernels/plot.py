@@ -303,14 +303,18 @@ def section_figure(mesh, u, path, *, title="", label="u", length_scale=1.0, leng
     return _save(fig, path, dpi)
 
 
-def residuals_figure(residuals, path, *, rtol=None, title="", size=SIZE, dpi=DPI):
-    """Semilog plot of a residual history (initial first), relative to the initial residual."""
+def residuals_figure(residuals, path, *, rtol=None, title="", size=SIZE, dpi=DPI,
+                     reference=None):
+    """Semilog plot of a residual history (initial first), relative to ``reference``,
+    the norm of b (default: the initial residual, which is that norm when CG starts
+    from zero)."""
     r = _finite(residuals, "residuals")
     if r.ndim != 1 or r.size == 0:
         raise InputError(f"residuals must be a non-empty 1-D history, got shape {r.shape}")
     fig = _figure(size, dpi)
     ax = fig.add_subplot()
-    rel = r / r[0] if r[0] > 0 else r
+    ref = r[0] if reference is None or not reference > 0 else float(reference)
+    rel = r / ref if ref > 0 else r
     ax.semilogy(np.arange(r.size), np.maximum(rel, np.finfo(float).tiny), marker="o",
                 markersize=3, linewidth=1.0, label="||b - A x_k|| / ||b||")
     if rtol:

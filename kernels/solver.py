@@ -13,6 +13,7 @@ the tolerance; otherwise it warns, or raises
 not hide it.)
 """
 
+import math
 import time
 import warnings
 from dataclasses import dataclass
@@ -21,6 +22,7 @@ import numba
 import numpy as np
 from scipy.sparse.linalg import LinearOperator
 
+from hatkernels._jit.sparse import all_finite, dot
 from hatkernels.errors import ConvergenceError, InputError
 from hatkernels.krylov import cg_with_history
 from hatkernels.perf import peak_rss_bytes
@@ -92,9 +94,11 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
     start : {"zero", "nested"}, optional
         The first iterate when ``x0`` is None: zero, or full multigrid
         (nested iteration from the coarsest level up, ``cycles`` cycles per
-        level: the preconditioner's ``full_cycle_into``, which ``gmg`` has),
-        after which CG goes on to ``rtol``.  Default ``"nested"`` with
-        ``rtol=None``, else ``"zero"``.
+        level: the preconditioner's ``full_cycle_into``, which ``gmg`` and the
+        AMG preconditioners have), after which CG goes on to ``rtol``.
+        Default ``"nested"`` with ``rtol=None`` or a preconditioner whose
+        ``default_start`` is ``"nested"`` (``amg-native``, the default ``amg``:
+        the same tolerance in fewer iterations, docs/solvers.md), else ``"zero"``.
     check : bool
         Raise :class:`ConvergenceError` instead of warning when not converged.
     monitor : callable, optional
@@ -138,6 +142,7 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
                          f"got {type(preconditioner).__name__}")
 
     x0, first, start = _first_iterate(A, b, x0, start, rtol, M, description)
+    started = x0 is not None
     clock = time.perf_counter()
     outcome = cg_with_history(A, b, x0, rtol=np.inf if rtol is None else rtol, atol=atol,
                               maxiter=maxiter, M=M, warn=False, monitor=monitor)
@@ -160,6 +165,7 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
         message=outcome.message,
         tolerance=outcome.tolerance,
         condition_estimate=outcome.condition_estimate,
+        rhs_norm=_norm(b) if started else float(outcome.residuals[0]),
         nnz=int(A.nnz) if hasattr(A, "nnz") else 0,
         matrix_free=not hasattr(A, "indptr"),
     )
@@ -167,11 +173,17 @@ def solve(A, b, *, preconditioner="amg", rtol=1e-8, atol=0.0, maxiter=None, x0=N
     return SolveResult(x=outcome.x, stats=stats)
 
 
+def _norm(b):
+    v = as_vector(b, np.shape(b)[0], "b")
+    return math.sqrt(dot(v, v))
+
+
 def _first_iterate(A, b, x0, start, rtol, M, description):
     """``(x0, timings, start)``: the first iterate CG is given, ``{"start": seconds}`` when
     it was computed by full multigrid, and the start's name."""
     if start is None:
-        start = "nested" if rtol is None and x0 is None else "zero"
+        nested = rtol is None or getattr(M, "default_start", "zero") == "nested"
+        start = "nested" if nested and x0 is None else "zero"
     if start not in STARTS:
         raise InputError(f"start must be one of {STARTS}, got {start!r}")
     if start == "zero":
@@ -183,12 +195,17 @@ def _first_iterate(A, b, x0, start, rtol, M, description):
     nested = getattr(M, "full_cycle_into", None)
     if nested is None:
         raise InputError(f"start='nested' (and rtol=None) need a multigrid preconditioner "
-                         f"with nested levels (gmg); {description} has none")
+                         f"with nested levels (gmg, the amg ones); {description} has none")
     clock = time.perf_counter()
     b = as_vector(b, A.shape[0], "b")
     x = np.empty(A.shape[0])
     nested(b, x)
-    return x, {"start": time.perf_counter() - clock}, start
+    seconds = {"start": time.perf_counter() - clock}
+    if rtol is not None and not all_finite(x):
+        # full multigrid overflowed (a solution near float64's largest number): CG starts
+        # from zero instead, where it rescales the system or says why it cannot
+        return None, seconds, "zero"
+    return x, seconds, start
 
 
 def report_convergence(stats, check, stacklevel=2):

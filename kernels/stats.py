@@ -52,6 +52,10 @@ class SolveStats:
         What happened, in words.
     tolerance : float
         ``max(rtol * norm(b), atol)``.
+    rhs_norm : float
+        ``norm(b)``, the reference of ``rtol`` (``residuals[0]`` is the first
+        iterate's residual: ``norm(b)`` only when CG starts from zero); NaN where
+        not recorded.
     condition_estimate : float
         Estimate of the preconditioned operator's condition number from the
         CG coefficients (NaN where not computed).
@@ -79,6 +83,7 @@ class SolveStats:
     message: str = ""
     tolerance: float = math.nan
     condition_estimate: float = math.nan
+    rhs_norm: float = math.nan
     nnz: int = 0
     matrix_free: bool = False
     dirichlet_points: int = 0

@@ -30,7 +30,7 @@ NAMES = ("none", "jacobi", "ic0", "amg-sa", "amg-rs", "amg-native", "direct", "a
 def test_solution_equals_spsolve(case, preconditioner):
     A = CASES[case]()
     b = np.random.default_rng(1).standard_normal(A.shape[0])
-    result = solve(A, b, preconditioner=preconditioner, rtol=1e-12)
+    result = solve(A, b, preconditioner=preconditioner, rtol=1e-12, start="zero")
     assert isinstance(result, SolveResult)
     assert result.converged and result.info == 0
     # reference library: scipy (sparse direct solve)
@@ -142,7 +142,7 @@ def test_right_hand_side_far_from_one(scale, preconditioner):
     # b.b over- or underflows: solved scaled by a power of two, reported unscaled
     A = CASES["poisson2d"]()
     b = np.random.default_rng(4).standard_normal(A.shape[0])
-    result = solve(A, b * scale, preconditioner=preconditioner, rtol=1e-10)
+    result = solve(A, b * scale, preconditioner=preconditioner, rtol=1e-10, start="zero")
     assert result.converged
     # reference library: scipy (sparse direct solve of the unscaled system)
     ref = sla.spsolve(A.tocsc(), b)

@@ -64,6 +64,7 @@ def write_outputs(directory, mesh, u, summary, progress, rtol, *, cell, name, qu
         method = summary["solver"]["preconditioner"].split(":")[0]
         plot.residuals_figure(summary["solver"]["residuals"],
                               os.path.join(directory, "residuals.png"), rtol=rtol,
+                              reference=summary["solver"].get("rhs_norm"),
                               title=f"conjugate gradients, {method}")
         files += ["solution.png", "residuals.png"]
     else:

@@ -251,6 +251,7 @@ def write(args, out, summary, sol, comm, progress):
             method = summary["solver"]["preconditioner"].split(":")[0]
             plot.residuals_figure(summary["solver"]["residuals"],
                                   os.path.join(tmp, "residuals.png"), rtol=args.rtol,
+                                  reference=summary["solver"].get("rhs_norm"),
                                   title=f"conjugate gradients, {method}")
             files.append("residuals.png")
         else:

@@ -182,6 +182,36 @@ class _AMG(Preconditioner):
             out[:] = 0.0
             self._cycle_pyamg(0, out, r)
 
+    def full_cycle_into(self, b, x):
+        """``x`` = full multigrid for ``A x = b`` (nested iteration): ``b`` restricted to
+        every level, the coarsest solved, then on each level up the coarser solution
+        interpolated and improved by one cycle from it.  Costs about two cycles; the
+        ``"nested"`` start of :func:`hatkernels.solve`."""
+        levels = self.ml.levels
+        if len(levels) == 1:
+            x[:] = self.ml.coarse_solver(self._coarse_A, b)
+            return
+        if self.smoother != "chebyshev":
+            rhs = [b]
+            for lv in levels[:-1]:
+                rhs.append(lv.R @ rhs[-1])
+            xc = np.asarray(self.ml.coarse_solver(self._coarse_A, rhs[-1]), dtype=np.float64)
+            for lvl in range(len(levels) - 2, -1, -1):
+                xc = np.asarray(levels[lvl].P @ xc, dtype=np.float64)
+                self._cycle_pyamg(lvl, xc, rhs[lvl])
+            x[:] = xc
+            return
+        # the cycle's own vectors: level l's right-hand side and solution; a cycle on
+        # level l writes those of the levels below it only, which are done by then
+        rhs = [b] + self._b[1:]
+        sol = [x] + self._x[1:]
+        for lvl, c in enumerate(self._cheb):
+            _k.spmv(*c.R, rhs[lvl], rhs[lvl + 1])
+        sol[-1][:] = self.ml.coarse_solver(self._coarse_A, rhs[-1])
+        for lvl in range(len(self._cheb) - 1, -1, -1):
+            _k.spmv(*self._cheb[lvl].P, sol[lvl + 1], sol[lvl])
+            self._cycle_parallel(lvl, sol[lvl], rhs[lvl], False)
+
     def _coarse(self, lvl, b):
         """Approximate solution of level ``lvl``'s system from a zero guess (PyAMG smoothers)."""
         if lvl == len(self.ml.levels) - 1:
