@@ -40,6 +40,17 @@ def scipy_pattern(tri, n):
     return S
 
 
+def holed_mesh(cells, seed, keep):
+    """``(tri, n, ptr, codes)`` of a random subset of a Delaunay mesh's triangles (holes,
+    points where fans of triangles touch, points in no triangle), or None if empty."""
+    mesh = jittered_mesh(cells, seed)
+    rng = np.random.default_rng(seed)
+    tri = mesh.triangles[rng.random(mesh.n_triangles) < keep].astype(np.int32)
+    if tri.shape[0] == 0:
+        return None
+    return (tri, mesh.n_points, *incidence(tri, mesh.n_points))
+
+
 @settings(max_examples=25, deadline=None)
 @given(cells=st.integers(3, 12), seed=st.integers(0, 10_000),
        keep=st.floats(0.3, 1.0))
@@ -47,13 +58,10 @@ def test_predicted_rows_give_scipys_pattern_on_meshes_with_holes_and_pinches(cel
                                                                             keep):
     # a random subset of a Delaunay mesh's triangles: holes, points where two fans of
     # triangles touch (their rows are longer by one per fan) and points in no triangle
-    mesh = jittered_mesh(cells, seed)
-    rng = np.random.default_rng(seed)
-    tri = mesh.triangles[rng.random(mesh.n_triangles) < keep].astype(np.int32)
-    if tri.shape[0] == 0:
+    holed = holed_mesh(cells, seed, keep)
+    if holed is None:
         return
-    n = mesh.n_points
-    ptr, codes = incidence(tri, n)
+    tri, n, ptr, codes = holed
     outgoing = outgoing_plain(tri, n)
     indptr, indices, diag = csr_pattern(tri, ptr, codes, outgoing=outgoing)
     ref = scipy_pattern(tri, n)
@@ -90,13 +98,10 @@ def test_rows_short_by_their_boundary_edges_are_caught(cells, seed, keep):
     # sums of its predecessors differ: on meshes with holes and pinched points (one or
     # two boundary fans at a point), predicting no boundary edge anywhere is caught,
     # and the result is scipy's pattern all the same
-    mesh = jittered_mesh(cells, seed)
-    rng = np.random.default_rng(seed)
-    tri = mesh.triangles[rng.random(mesh.n_triangles) < keep].astype(np.int32)
-    if tri.shape[0] == 0:
+    holed = holed_mesh(cells, seed, keep)
+    if holed is None:
         return
-    n = mesh.n_points
-    ptr, codes = incidence(tri, n)
+    tri, n, ptr, codes = holed
     indptr, indices, diag = csr_pattern(tri, ptr, codes, outgoing=np.zeros(n, np.int64))
     ref = scipy_pattern(tri, n)
     assert np.array_equal(indptr, ref.indptr) and np.array_equal(indices, ref.indices)

@@ -66,12 +66,13 @@ def _bounds(n, nchunks, c):
 
 
 @jit(inline="always")
-def _distinct(cells, ptr, codes, i, stamp, out, start):
-    """The distinct dofs of row ``i`` (itself first, then as its cells list them) into
-    ``out[start:]``, unsorted; returns how many.  ``stamp`` marks the dofs already taken
-    with ``i`` (its entries from other rows are smaller or larger, never ``i``)."""
+def _distinct(cells, ptr, codes, i, stamp, out, start, write):
+    """The number of distinct dofs of row ``i`` (itself and the dofs of its cells); with
+    ``write`` they also go into ``out[start:]``, unsorted, ``i`` first.  ``stamp`` marks
+    the dofs already taken with ``i`` (its entries from other rows are never ``i``)."""
     k = cells.shape[1]
-    out[uint64(start)] = i
+    if write:
+        out[uint64(start)] = i
     stamp[uint64(i)] = i
     c = 1
     for e in range(ptr[i], ptr[i + 1]):
@@ -81,24 +82,8 @@ def _distinct(cells, ptr, codes, i, stamp, out, start):
             j = cells[t, uint64(b)]
             if stamp[uint64(j)] != i:
                 stamp[uint64(j)] = i
-                out[uint64(start + c)] = j
-                c += 1
-    return c
-
-
-@jit(inline="always")
-def _count_distinct(cells, ptr, codes, i, stamp):
-    """:func:`_distinct` without writing the row: its length."""
-    k = cells.shape[1]
-    stamp[uint64(i)] = i
-    c = 1
-    for e in range(ptr[i], ptr[i + 1]):
-        q = uint64(codes[uint64(e)])
-        t = q // uint64(k)
-        for b in range(k):
-            j = cells[t, uint64(b)]
-            if stamp[uint64(j)] != i:
-                stamp[uint64(j)] = i
+                if write:
+                    out[uint64(start + c)] = j
                 c += 1
     return c
 
@@ -114,8 +99,8 @@ def pattern_counts(cells, ptr, codes, counts, stamps):
         lo, hi = _bounds(n, nchunks, c)
         stamp = stamps[c]
         for i in range(lo, hi):
-            counts[i] = 0 if ptr[i] == ptr[i + 1] else _count_distinct(cells, ptr, codes, i,
-                                                                         stamp)
+            counts[i] = 0 if ptr[i] == ptr[i + 1] else _distinct(cells, ptr, codes, i, stamp,
+                                                                   counts, 0, False)
 
 
 @jit(parallel=True)
@@ -137,7 +122,7 @@ def pattern_rows(cells, ptr, codes, indptr, indices, slots, stamps, places):
             start = indptr[i]
             if ptr[i] == ptr[i + 1]:
                 continue
-            count = _distinct(cells, ptr, codes, i, stamp, indices, start)
+            count = _distinct(cells, ptr, codes, i, stamp, indices, start, True)
             if count <= _INSERT_MAX:
                 for r in range(start + 1, start + count):
                     v = indices[uint64(r)]

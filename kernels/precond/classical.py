@@ -288,17 +288,17 @@ class ClassicalHierarchy:
             strong = np.empty(indptr[-1], dtype=np.uint8)
             dinv = np.empty(n)
             bound, row = _a.strength(indptr, indices, data, float(theta), strong, dinv)
-            if row >= 0:
-                raise InputError(f"amg chebyshev smoother: diagonal entry of row {row} of a "
-                                 f"level with {n} unknowns is {current.diagonal()[row]}; "
-                                 f"it must be > 0")
             state = _split(indptr, indices, strong, n, splitting)
             if second_pass:
                 state = state.astype(np.int8, copy=False)
                 _s.second_pass(indptr, indices, strong, state)
             n_coarse = int(np.count_nonzero(state))
             if n_coarse == 0 or n_coarse > 0.9 * n:
-                break
+                break  # the coarsest level: its own solve judges its diagonal
+            if row >= 0:  # a smoothed level needs a positive diagonal
+                raise InputError(f"amg chebyshev smoother: diagonal entry of row {row} of a "
+                                 f"level with {n} unknowns is {current.diagonal()[row]}; "
+                                 f"it must be > 0")
             itype = indptr.dtype
             cidx = np.cumsum(state, dtype=itype)
             cidx -= 1
