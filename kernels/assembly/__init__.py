@@ -153,9 +153,9 @@ class StiffnessAssembler:
         straight into the reduced matrix, so the whole matrix's values are never formed.
 
         ``csr`` on triangles only.  The bits are those of a ``fused`` (or ``by_rows``)
-        assembler's matrix, reduced.  A free row whose diagonal is not positive (a zero
-        coefficient all around a point, say) sends the call through the whole matrix,
-        whose reduction then takes a row of zeros as an isolated point or reports the row.
+        assembler's matrix, reduced.  A free row whose diagonal is not positive (checked
+        meshes and coefficients give none; only an overflow could) sends the call
+        through the whole matrix, whose reduction reports the row.
         ``b`` is not modified.  Returns a :class:`~hatkernels.boundary.DirichletSystem`.
         """
         if self._numeric is None:
