@@ -106,8 +106,9 @@ def coarse_meshes(jittered):
     return {"rectangle": rectangle(3, 2), "jittered": jittered}
 
 
-# k = 5 (32 subdivisions): the product reads the rows next to the sides from its ring
-# and the rest of the inside straight from the vector (_jit.patches._inside_rows)
+# k = 1, 2: the buffered product (_jit.patches.apply); k = 3, 5 (8 and 32 subdivisions):
+# the fused one (_jit.patch_product), its rows next to the sides read from the sides'
+# copies and the rest of the inside straight from the vector
 @pytest.mark.parametrize("k", [1, 2, 3, 5])
 @pytest.mark.parametrize("which", ["rectangle", "jittered"])
 def test_operator_equals_the_stored_assembly_and_the_stored_operator(jittered, which, k):

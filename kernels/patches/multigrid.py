@@ -23,6 +23,7 @@ import numpy as np
 from scipy.sparse.linalg import LinearOperator
 
 from hatkernels._jit import patch_points as _pp
+from hatkernels._jit import patch_product as _product
 from hatkernels._jit import patch_smooth as _s
 from hatkernels._jit import patches as _p
 from hatkernels.assembly import assemble_mass, assemble_stiffness
@@ -90,6 +91,10 @@ class PatchOperator(LinearOperator):
 
     def _run(self, x, out, what):
         lay = self.layout
+        if what == 0 and self.n >= _product.SMALLEST:  # the product, its ring fused
+            _product.product(x, out, self.n, self.K, lay.topo, lay.held_e, lay.held_v,
+                             self.masked, self.pe, self.pv)
+            return
         _p.apply(x, out, self.n, self.K, lay.topo, lay.held_e, lay.held_v, self.masked,
                  self.pe, self.pv, what)
 
