@@ -40,7 +40,7 @@ from hatkernels._jit.patches import (
 ZERO, START, STEP, RESIDUAL = 0, 1, 2, 3
 
 
-@jit()
+@jit(inline="always")
 def _update(mode, last, k, q, di, d0, b, x, r, d, c, c1, c2):
     """One point's update (``k`` its index, ``q`` its row of the product, ``di`` its
     inverse diagonal, ``d0`` the ZERO pass's first direction there)."""

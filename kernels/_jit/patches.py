@@ -70,7 +70,7 @@ def _corner_pos(lv, n):
     return _off(0, n, n)
 
 
-@jit()
+@jit(inline="always")
 def _side(c, le, n, base_e, cell_edge, cell_flip, edge_cells, held_e, mode):
     """``(base, step, zero)``: point ``t`` (1..n-1) of side ``le`` of cell ``c`` is entry
     ``base + step t`` of a level's vector; ``zero``: the gather reads it as 0."""
@@ -82,7 +82,7 @@ def _side(c, le, n, base_e, cell_edge, cell_flip, edge_cells, held_e, mode):
     return first - 1, 1, zero
 
 
-@jit()
+@jit(inline="always")
 def _gather(x, c, loc, n, topo, held_e, held_v, mode, ring=False):
     """The patch of cell ``c`` from the flat vector ``x`` into ``loc``.
 
@@ -129,7 +129,7 @@ def _gather(x, c, loc, n, topo, held_e, held_v, mode, ring=False):
         loc[_corner_pos(lv, n)] = 0.0 if zero else x[base_v + v]
 
 
-@jit()
+@jit(inline="always")
 def _scatter(out, c, y, pe, pv, n, topo, inside_too=True):
     """Inside rows of ``out`` into ``y`` (unless ``inside_too`` is False); the cell's parts of
     shared rows into ``pe``, ``pv``."""
@@ -217,7 +217,7 @@ def _role_sum(loc, n, i, j, K, what):
     return acc
 
 
-@jit()
+@jit(inline="always")
 def _stencil(loc, c0, cb, ca, d, h, v, g):
     """The inside row at packed place ``c0`` (``cb``, ``ca``: the places of the row below
     and above, shifted as in :func:`_local_apply`)."""
@@ -259,7 +259,7 @@ def _inside_rows(x, loc, y, n, K, start, middle):
         y[row + last] = _stencil(loc, o + last, ob + last, oa + last, d, h, v, g)
 
 
-@jit()
+@jit(inline="always")
 def _local_apply(loc, out, n, K, what):
     """``out`` = the rows the patch in ``loc`` gives: with ``what`` 1 or 2 (the diagonal,
     the absolute row sums) the inside rows whole and this cell's part of the side rows;
