@@ -6,7 +6,7 @@ cell after the middle of the inside rows: it copies the ring next to the sides i
 local patch, makes the inside rows next to the sides from it, then the cell's part of
 the side rows, then copies those into the shared buffers.  At ``n = 64`` that ring
 work cost as much as the middle rows (about 1.4 us per cell each on one core of the
-benchmark machine), and the product ran at 2.6-3 times its bandwidth floor.
+benchmark machine), and the product ran at 2.4-3 times its bandwidth floor.
 
 :func:`product` makes the same sums in one pass per cell: the three sides (corners
 included) are copied into three short vectors, then one loop along the first row
