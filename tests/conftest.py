@@ -96,6 +96,13 @@ def meshes(draw, min_n=2, max_n=7):
     return jittered_mesh(n, seed)
 
 
+def refined(mesh, k):
+    """``mesh.refine()`` repeated ``k`` times."""
+    for _ in range(k):
+        mesh = mesh.refine()
+    return mesh
+
+
 @pytest.fixture
 def random_mesh():
     return jittered_mesh(6, 1234)

@@ -19,7 +19,7 @@ import pickle
 import numpy as np
 import pytest
 import scipy.sparse.linalg as sla
-from conftest import EPS
+from conftest import EPS, refined
 from hypothesis import given
 from hypothesis import strategies as st
 from scipy.special import jn_zeros
@@ -40,12 +40,6 @@ def one_thread(request):
         return
     with threads(1):
         yield
-
-
-def refined(mesh, times):
-    for _ in range(times):
-        mesh = mesh.refine()
-    return mesh
 
 
 def orders(errors, ratio=2.0):

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 import scipy.sparse.linalg as spla
-from conftest import jittered_mesh, two_threads
+from conftest import jittered_mesh, refined, two_threads
 
 import hatkernels
 from hatkernels import norms, solve_poisson, threads
@@ -26,12 +26,6 @@ def grad_exact(x, y):
 
 def source(x, y):
     return 2 * PI**2 * exact(x, y)
-
-
-def refined(mesh, k):
-    for _ in range(k):
-        mesh = mesh.refine()
-    return mesh
 
 
 def test_nested_start_alone_reaches_discretisation_accuracy_on_every_level():

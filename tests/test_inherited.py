@@ -9,7 +9,7 @@ points, and against a manufactured solution solved with geometric multigrid.
 
 import numpy as np
 import pytest
-from conftest import EPS, jittered_mesh, meshes, two_threads
+from conftest import EPS, jittered_mesh, meshes, refined, two_threads
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from test_operators import close, eliminated, product_close
@@ -19,12 +19,6 @@ from hatkernels import StiffnessOperator, assemble_mass, assemble_stiffness, sol
 from hatkernels.assembly.csr import kernel_coefficient
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.operators.variants import InheritedProduct, build_variant
-
-
-def refined(mesh, k):
-    for _ in range(k):
-        mesh = mesh.refine()
-    return mesh
 
 
 def scalar_coefficients(m, seed=0):

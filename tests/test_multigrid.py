@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 import scipy.sparse.linalg as spla
-from conftest import EPS, jittered_mesh
+from conftest import EPS, jittered_mesh, refined
 
 import hatkernels
 from hatkernels import StiffnessOperator, make_preconditioner, norms, solve_poisson, threads
@@ -11,12 +11,6 @@ from hatkernels._jit import multigrid as _mg
 from hatkernels.krylov import cg_with_history
 from hatkernels.mesh import rectangle
 from hatkernels.precond.gmg import GeometricMultigrid, coarsen_coefficient
-
-
-def refined(mesh, k):
-    for _ in range(k):
-        mesh = mesh.refine()
-    return mesh
 
 
 def test_prolongation_is_exact_for_linear_functions_and_restriction_is_its_transpose():

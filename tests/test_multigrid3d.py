@@ -11,13 +11,6 @@ from hatkernels.mesh import cuboid
 from hatkernels.precond.gmg import GeometricMultigrid, coarsen_coefficient
 
 
-def refined(coarse, times):
-    mesh = coarse
-    for _ in range(times):
-        mesh = mesh.refine()
-    return mesh
-
-
 @pytest.fixture(scope="module")
 def levels():
     """cuboid(3, 3, 3) refined 1 to 4 times (1,296 to 663,552 tetrahedra)."""

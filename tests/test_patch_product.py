@@ -15,7 +15,7 @@ directions (flipped sides) and in every local position.
 
 import numpy as np
 import pytest
-from conftest import jittered_mesh, meshes, relative_error
+from conftest import jittered_mesh, meshes, refined, relative_error
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from test_threads import assert_same_bits, on_one_and_two_threads
@@ -26,12 +26,6 @@ from hatkernels.patches import PatchLayout, PatchOperator, element_stiffness
 
 #: Relative agreement of two implementations of one linear operator (round-off ~1e-15).
 IDENTITY = 1e-12
-
-
-def refined(mesh, k):
-    for _ in range(k):
-        mesh = mesh.refine()
-    return mesh
 
 
 def both_paths(op, x):

@@ -22,7 +22,7 @@ residual in the stored system as ``||e|| <= ||r|| / lambda_min``.
 import numpy as np
 import pytest
 import scipy.sparse.linalg as spla
-from conftest import jittered_mesh, meshes, relative_error
+from conftest import jittered_mesh, meshes, refined, relative_error
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from test_threads import assert_same_bits, on_one_and_two_threads
@@ -40,12 +40,6 @@ IDENTITY = 1e-12
 
 
 # -- helpers ------------------------------------------------------------------------------
-
-
-def refined(mesh, k):
-    for _ in range(k):
-        mesh = mesh.refine()
-    return mesh
 
 
 def fine_coefficient(kappa, k):

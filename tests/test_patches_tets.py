@@ -17,7 +17,7 @@ Tolerances: linear operators at a relative 1e-13 (round-off ~1e-15); two solves 
 
 import numpy as np
 import pytest
-from conftest import relative_error
+from conftest import refined, relative_error
 from hypothesis import given
 from hypothesis import strategies as st
 from test_threads import assert_same_bits, on_one_and_two_threads
@@ -38,10 +38,6 @@ RTOL = 1e-10
 
 
 # -- helpers ------------------------------------------------------------------------------
-
-
-def refined(mesh, k):
-    return mesh if k == 0 else refined(mesh.refine(), k - 1)
 
 
 def fine_kappa(kappa, k):  # coarse cell t's children: fine cells t 8^k ... (t + 1) 8^k - 1
