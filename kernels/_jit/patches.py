@@ -304,6 +304,10 @@ def _local_apply(loc, out, n, K, what):
 def apply(x, y, n, K, topo, held_e, held_v, masked, pe, pv, what):
     """``y = A x`` on one level (``what`` 0), or the diagonal (1) or absolute row sums (2).
 
+    From ``n = 8`` up, :class:`hatkernels.patches.PatchOperator` makes the product with
+    :func:`hatkernels._jit.patch_product.product` (one pass per cell, the same bits);
+    this buffered path is its plain reference in the tests and serves coarser levels.
+
     ``masked``: held rows and columns taken out (identity rows, held columns
     zero), as the system CG solves; otherwise the whole stiffness matrix.
     """
