@@ -18,7 +18,8 @@ so that each peak memory is its own:
     built and stored, CG + matrix-free gmg (today's path for refined meshes);
 ``patch``
     ``solve_poisson(coarse, 1.0, refine=k)``: the patch path (docs/patches.md), CG +
-    patch multigrid; also the patch product (against its floor: read x, write y),
+    patch multigrid; also the patch product, the operator's fused kernel and the
+    buffered path beside it (against their floor: a parallel copy, read x, write y),
     full multigrid alone (``rtol=None``) and its error.
 
 Accuracy of full multigrid: on every fine point of 12 sample coarse cells (away from
@@ -321,6 +322,21 @@ def report(results):
                   f"| {r['seconds'] / unit if unit else math.nan:.0f}{note} | "
                   f"{solve / its / unit if unit else math.nan:.1f} | "
                   f"{steady / unit if unit else math.nan:.1f} | {r['peak_GiB']:.1f} |")
+    # the patch product against its floor (a parallel copy of the same vector)
+    rows = [(row, row["patch"]) for row in results
+            if "product_seconds" in row.get("patch", {})]
+    if rows:
+        # (product: the operator's kernel, fused since 2026-12-04; buffered: patches.apply)
+        print("\n| triangles | n | product | buffered path | copy | product / copy "
+              "| buffered / copy |")
+        print("|---|---|---|---|---|---|---|")
+        for row, r in rows:
+            copy = r["copy_seconds"]
+            plain = r.get("product_plain_seconds", math.nan)
+            print(f"| {row['triangles']:.3g} | {2**row['refine']} | "
+                  f"{r['product_seconds'] * 1e3:.1f} ms | {plain * 1e3:.1f} ms | "
+                  f"{copy * 1e3:.1f} ms | {r['product_seconds'] / copy:.2f} | "
+                  f"{plain / copy:.2f} |")
 
 
 if __name__ == "__main__":
