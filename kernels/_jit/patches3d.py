@@ -181,7 +181,7 @@ def face_tables(n):
     return mapl, mapf
 
 
-@jit()
+@jit(inline="always")
 def _edge_ends(V, EV, c, le, e):
     """``(i, j, la, lb)``: the local points of cell ``c``'s edge ``le`` (global edge ``e``),
     and the same two as its lower (``la``) and higher (``lb``) global point."""
@@ -191,7 +191,7 @@ def _edge_ends(V, EV, c, le, e):
     return i, j, j, i
 
 
-@jit()
+@jit(inline="always")
 def _face_order(V, FV, c, v, f, lk):
     """``lk[k]``: the local point of cell ``c`` that is point ``k`` of face ``f`` (sorted)."""
     for k in range(3):
@@ -200,7 +200,7 @@ def _face_order(V, FV, c, v, f, lk):
                 lk[k] = a
 
 
-@jit()
+@jit(inline="always")
 def _gather(x, c, n, topo, mapl, loc, masked, owned, lk, lam):
     """Cell ``c``'s whole lattice from the level vector ``x`` into ``loc`` (``mapl``: the
     level's :func:`face_tables`).
@@ -266,7 +266,7 @@ def _delta(p1, p2, s):
     return d
 
 
-@jit()
+@jit(inline="always")
 def _partial(loc, wc, z, slots, n_slots, kk, p1, p2, p3):
     """The partial stencil of class ``z`` at ``p`` (``wc[z, q]``: the cell's scaled weight
     of the class's ``q``-th slot; ``kk``: :func:`_delta_table`)."""
@@ -289,7 +289,7 @@ def _delta_table(n):
     return kk
 
 
-@jit()
+@jit(inline="always")
 def _boundary_walk(c, n, topo, lk, lam, what, loc, wc, slots, n_slots, kk, bf, be, bv, C):
     """Each boundary point of cell ``c`` (faces, edges, vertices), with its place in the
     per-cell buffers ``bf[c, v, i]``, ``be[c, le, i]``, ``bv[c, v]``: ``what`` 0 writes the
@@ -347,7 +347,7 @@ def _boundary_walk(c, n, topo, lk, lam, what, loc, wc, slots, n_slots, kk, bf, b
             bv[c, v] = C[c, z]
 
 
-@jit()
+@jit(inline="always")
 def _inside_rows(loc, y, start, n, w):
     """``y[start:]`` = the 15-point stencil ``w`` (slots in order) at the cell's inside
     points, row by row (``p1``, ``p2`` fixed): the offsets are constant along a row, so

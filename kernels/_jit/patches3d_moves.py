@@ -27,7 +27,7 @@ __all__ = ["prolong_add", "restrict", "places_of", "gather_cells", "add_cell_loa
            "subtract_from", "piecewise_update", "set_blocks"]
 
 
-@jit()
+@jit(inline="always")
 def _interp(loc, p1, p2, p3):
     """The value at fine lattice point ``p`` (level ``2n``) interpolated from the
     coarse lattice ``loc`` (level ``n``): the mean of the ends of its coarse edge."""
@@ -99,7 +99,7 @@ def prolong_add(xc, xf, n, topo, masked, mapl):
                 xf[vbase + g] += _interp(loc, p1, p2, p3)
 
 
-@jit()
+@jit(inline="always")
 def _restricted(loc, N, a1, a2, a3):
     """``(P^T r)`` at coarse point ``a`` from the fine lattice ``loc`` (level ``N``)."""
     q1, q2, q3 = 2 * a1, 2 * a2, 2 * a3
@@ -164,7 +164,7 @@ def restrict(rf, rc, n, topo, masked, fine_mapl, bf, be, bv, mapl, mapf):
     accumulate(rc, n, topo, masked, bf, be, bv, mapl, mapf)
 
 
-@jit()
+@jit(inline="always")
 def _place(c, lam, n, topo, lk):
     """The place in a level's vector of the point of cell ``c`` with coordinates ``lam``."""
     V, CF, CE, FV, EV = topo[0], topo[1], topo[2], topo[3], topo[5]
@@ -218,7 +218,7 @@ def gather_cells(x, cells, n, topo, mapl, out):
         _gather(x, cells[q], n, topo, mapl, out[q], False, False, lk, lam)
 
 
-@jit()
+@jit(inline="always")
 def _scatter(loc, c, n, topo, out, bf, be, bv, lam):
     """Cell ``c``'s whole lattice ``loc`` out: its inside points into ``out``, its faces',
     edges' and vertices' points into the buffers (in :func:`_boundary_walk`'s order)."""
