@@ -83,15 +83,12 @@ def _side(c, le, n, base_e, cell_edge, cell_flip, edge_cells, held_e, mode):
 
 
 @jit(inline="always")
-def _gather(x, c, loc, n, topo, held_e, held_v, mode, ring=False):
+def _gather(x, c, loc, n, topo, held_e, held_v, mode):
     """The patch of cell ``c`` from the flat vector ``x`` into ``loc``.
 
     ``mode`` MASKED: held points read as 0; OWNED: shared points the cell does
     not own (edges: owned by their lower cell; vertices: by their lowest cell)
-    read as 0, so that summing over cells counts every point once.  With ``ring``
-    only the sides, the corners and the inside points at most two rows or columns
-    from a side (rows 1 and 2, the first two and last two points of every other
-    row) are read: what the side rows and :func:`_inside_rows` take from ``loc``.
+    read as 0, so that summing over cells counts every point once.
     """
     tri, cell_edge, cell_flip, edge_v, edge_cells, edge_le, vptr, vcell, vlv = topo
     m = tri.shape[0]
@@ -103,12 +100,6 @@ def _gather(x, c, loc, n, topo, held_e, held_v, mode, ring=False):
     for j in range(1, n - 1):
         row = uint64(start + _ioff(j, n))
         o = uint64(_off(0, j, n))
-        if ring and j > 2 and n - j - 1 > 4:
-            loc[o + one] = x[row]
-            loc[o + uint64(2)] = x[row + one]
-            loc[o + uint64(n - j - 2)] = x[row + uint64(n - j - 3)]
-            loc[o + uint64(n - j - 1)] = x[row + uint64(n - j - 2)]
-            continue
         for i in range(uint64(0), uint64(n - j - 1)):
             loc[o + one + i] = x[row + i]
     # the three sides in one loop, positions kept incrementally (no division, no branch
@@ -230,8 +221,8 @@ def _stencil(loc, c0, cb, ca, d, h, v, g):
 def _inside_rows(x, loc, y, n, K, start, middle):
     """The inside rows of the product written to ``y``: with ``middle`` the points whose
     seven points are all inside, straight from ``x`` (no copy of the patch; the loop
-    over a row vectorises), else the others from ``loc`` (as :func:`_gather` with
-    ``ring`` leaves it).  The same sums in the same order as :func:`_stencil`."""
+    over a row vectorises), else the others from the patch in ``loc`` (as
+    :func:`_gather` leaves it).  The same sums in the same order as :func:`_stencil`."""
     d = 2.0 * (K[0, 0] + K[1, 1] + K[2, 2])
     h, v, g = 2.0 * K[0, 1], 2.0 * K[0, 2], 2.0 * K[1, 2]
     one = uint64(1)
@@ -320,11 +311,11 @@ def apply(x, y, n, K, topo, held_e, held_v, masked, pe, pv, what):
         out = np.empty(size)
         for c in range(ch * CHUNK, min(m, (ch + 1) * CHUNK)):
             if what == 0:
-                # the middle of the inside rows straight from x (streamed in once); then,
-                # from the cache, the ring next to the sides and the side rows
+                # the middle of the inside rows straight from x, then the patch from the
+                # cache and the rows next to the sides and the side rows from it
                 start = c * ((n - 1) * (n - 2) // 2)
                 _inside_rows(x, loc, y, n, K[c], start, True)
-                _gather(x, c, loc, n, topo, held_e, held_v, mode, True)
+                _gather(x, c, loc, n, topo, held_e, held_v, mode)
                 _inside_rows(x, loc, y, n, K[c], start, False)
                 _local_apply(loc, out, n, K[c], what)
                 _scatter(out, c, y, pe, pv, n, topo, False)
