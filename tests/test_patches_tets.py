@@ -79,6 +79,29 @@ COARSE = {"cuboid": lambda: cuboid(2), "ball": lambda: ball(2),
 # == 1. the operator against the stored assembly ==========================================
 
 
+@given(k=st.integers(2, 4), seed=st.integers(0, 2**32 - 1), masked=st.booleans(),
+       which=st.sampled_from(sorted(COARSE)))
+def test_product_faces_row_by_row_are_the_plain_sums(k, seed, masked, which):
+    # the product's face rows written out against its plain path, each face point's
+    # partial stencil summed slot by slot: the same bits (common practice, no source)
+    from hatkernels._jit import patches3d as t3
+    from hatkernels.patches.tets import _N_SLOTS, _SLOTS
+
+    coarse = COARSE[which]()
+    rng = np.random.default_rng(seed)
+    boundary = coarse.boundary_faces()
+    layout = TetLayout(coarse, k, held_faces=boundary[rng.random(len(boundary)) < 0.5])
+    W, _ = class_weights(coarse.points[bey_order(coarse)], rng.uniform(0.2, 5.0, coarse.n_cells))
+    x = rng.standard_normal(layout.size(k))
+    fast, plain = np.empty_like(x), np.empty_like(x)
+    n = 2**k
+    for y, how in ((fast, False), (plain, True)):
+        t3.product(x, y, n, layout.topo, W, 1.0 / n, _SLOTS, _N_SLOTS, masked,
+                   *layout.buffers(k), how)
+    assert np.array_equal(fast.view(np.uint64), plain.view(np.uint64))
+    assert np.array_equal(fast, TetOperator(layout, W, k, masked=masked) @ x)
+
+
 @pytest.mark.parametrize("k", [1, 2, 3])
 @pytest.mark.parametrize("which", list(COARSE))
 def test_product_equals_the_stored_assembly(which, k):

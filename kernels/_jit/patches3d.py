@@ -290,17 +290,42 @@ def _delta_table(n):
 
 
 @jit(inline="always")
+def _face_row(loc, out, row, a, t3, e_q, m_q, w, tri, lin):
+    """``out[row + b]``, ``b = 1..a-1``: a row of a face's partial stencils (a face class's
+    eleven slots, written out).  Point ``b`` is at ``t3 + tri * b (b + 1) / 2 + lin * b``
+    in the lattice, its slot ``q`` at ``e_q[q] + m_q[q] * b`` from it (``m + 1 >= 0``)."""
+    e0, e1, e2, e3 = U(t3 + e_q[0]), U(t3 + e_q[1]), U(t3 + e_q[2]), U(t3 + e_q[3])
+    e4, e5, e6, e7 = U(t3 + e_q[4]), U(t3 + e_q[5]), U(t3 + e_q[6]), U(t3 + e_q[7])
+    e8, e9, e10 = U(t3 + e_q[8]), U(t3 + e_q[9]), U(t3 + e_q[10])
+    m0, m1, m2, m3 = U(m_q[0] + 1), U(m_q[1] + 1), U(m_q[2] + 1), U(m_q[3] + 1)
+    m4, m5, m6, m7 = U(m_q[4] + 1), U(m_q[5] + 1), U(m_q[6] + 1), U(m_q[7] + 1)
+    m8, m9, m10 = U(m_q[8] + 1), U(m_q[9] + 1), U(m_q[10] + 1)
+    w0, w1, w2, w3, w4, w5 = w[0], w[1], w[2], w[3], w[4], w[5]
+    w6, w7, w8, w9, w10 = w[6], w[7], w[8], w[9], w[10]
+    r, ut, ul, one = U(row), U(tri), U(lin), U(1)
+    for b in range(one, U(a)):
+        t = ut * (b * (b + one) // U(2)) + ul * b - b
+        # left to right from 0.0: the order of _partial's sum
+        out[r + b] = (0.0 + w0 * loc[e0 + t + m0 * b] + w1 * loc[e1 + t + m1 * b]
+                      + w2 * loc[e2 + t + m2 * b] + w3 * loc[e3 + t + m3 * b]
+                      + w4 * loc[e4 + t + m4 * b] + w5 * loc[e5 + t + m5 * b]
+                      + w6 * loc[e6 + t + m6 * b] + w7 * loc[e7 + t + m7 * b]
+                      + w8 * loc[e8 + t + m8 * b] + w9 * loc[e9 + t + m9 * b]
+                      + w10 * loc[e10 + t + m10 * b])
+
+
+@jit(inline="always")
 def _boundary_walk(c, n, topo, lk, lam, what, loc, wc, slots, n_slots, kk, bf, be, bv, C):
     """Each boundary point of cell ``c`` (faces, edges, vertices), with its place in the
     per-cell buffers ``bf[c, v, i]``, ``be[c, le, i]``, ``bv[c, v]``: ``what`` 0 writes the
-    partial stencil's value on ``loc`` (weights ``wc``), 1 the class value ``C[c, Z]``."""
-    V, CE = topo[0], topo[2]
-    EV = topo[5]
-    e_q = np.empty(15, dtype=np.int64)
-    m_q = np.empty(15, dtype=np.int64)
+    partial stencil's value on ``loc`` (weights ``wc``; the faces a row at a time,
+    :func:`_face_row`), 2 the same point by point (:func:`_partial`: the plain
+    reference), 1 the class value ``C[c, Z]``."""
+    V, CE, EV = topo[0], topo[2], topo[5]
+    e_q, m_q = np.empty(15, dtype=np.int64), np.empty(15, dtype=np.int64)
     for v in range(4):
         z = 1 << v
-        if what != 0:
+        if what == 1:
             for i in range((n - 1) * (n - 2) // 2):
                 bf[c, v, i] = C[c, z]
             continue
@@ -308,19 +333,26 @@ def _boundary_walk(c, n, topo, lk, lam, what, loc, wc, slots, n_slots, kk, bf, b
         # face points in the cell's own order (a, b), n > a > b > 0: rows of fixed a
         for a in range(2, n):
             p1 = n if v == 0 else a
+            row = (a - 2) * (a - 1) // 2 - 1
+            if what == 2:
+                for b in range(1, a):
+                    p2, p3 = (a, b) if v <= 1 else ((b, b) if v == 2 else (b, 0))
+                    bf[c, v, row + b] = _partial(loc, wc, z, slots, n_slots, kk, p1, p2, p3)
+                continue
             for q in range(ns):
                 sl = slots[z, q]
                 e_q[q] = kk[p1, sl]
                 m_q[q] = 0 if v <= 1 else _O2[sl]
                 if v <= 1:  # p2 is fixed along the row
                     e_q[q] += _O2[sl] * a
-            row = (a - 2) * (a - 1) // 2 - 1
-            for b in range(1, a):
-                base = _face_point(v, n, a, b)
-                acc = 0.0
-                for q in range(ns):
-                    acc += wc[z, q] * loc[U(base + e_q[q] + m_q[q] * b)]
-                bf[c, v, row + b] = acc
+            # constant arguments: the compiler makes three loops, the first of plain loads
+            t3 = _face_point(v, n, a, 0)
+            if v <= 1:
+                _face_row(loc, bf[c, v], row, a, t3, e_q, m_q, wc[z], 0, 1)
+            elif v == 2:
+                _face_row(loc, bf[c, v], row, a, t3, e_q, m_q, wc[z], 1, 1)
+            else:
+                _face_row(loc, bf[c, v], row, a, t3, e_q, m_q, wc[z], 1, 0)
     for le in range(6):
         e = CE[c, le]
         i, j, la, lb = _edge_ends(V, EV, c, le, e)
@@ -330,14 +362,14 @@ def _boundary_walk(c, n, topo, lk, lam, what, loc, wc, slots, n_slots, kk, bf, b
         for t in range(1, n):
             lam[lb] = t
             lam[la] = n - t
-            if what == 0:
+            if what != 1:
                 p1, p2, p3 = _p_of(lam[0], lam[1], lam[2], n)
                 be[c, le, t - 1] = _partial(loc, wc, z, slots, n_slots, kk, p1, p2, p3)
             else:
                 be[c, le, t - 1] = C[c, z]
     for v in range(4):
         z = 15 ^ (1 << v)
-        if what == 0:
+        if what != 1:
             for a in range(4):
                 lam[a] = 0
             lam[v] = n
@@ -379,10 +411,12 @@ def _inside_rows(loc, y, start, n, w):
 
 
 @jit(parallel=True)
-def product(x, y, n, topo, W, scale, slots, n_slots, masked, bf, be, bv, mapl, mapf):
+def product(x, y, n, topo, W, scale, slots, n_slots, masked, bf, be, bv, mapl, mapf,
+            plain=False):
     """``y = A x`` on a level: inside points by the stencil, the rest through the buffers
     (then :func:`accumulate`, called here).  ``W[c, Z, slot]`` the class weights at
-    ``n = 1``, ``scale`` their factor on this level (``1 / n``)."""
+    ``n = 1``, ``scale`` their factor on this level (``1 / n``); ``plain``: the faces'
+    points one by one (the tests' reference for the rows, the same bits)."""
     V = topo[0]
     m = V.shape[0]
     inner = _sizes(n)[0]
@@ -399,7 +433,8 @@ def product(x, y, n, topo, W, scale, slots, n_slots, masked, bf, be, bv, mapl, m
                 for q in range(n_slots[z]):
                     wc[z, q] = W[c, z, slots[z, q]] * scale
             _inside_rows(loc, y, c * inner, n, wc[0])
-            _boundary_walk(c, n, topo, lk, lam, 0, loc, wc, slots, n_slots, kk, bf, be, bv, W[:, :, 0])
+            _boundary_walk(c, n, topo, lk, lam, 2 if plain else 0, loc, wc, slots, n_slots,
+                           kk, bf, be, bv, W[:, :, 0])
     accumulate(y, n, topo, masked, bf, be, bv, mapl, mapf)
 
 
