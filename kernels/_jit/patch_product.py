@@ -78,6 +78,14 @@ def _sides(x, c, s0, s1, s2, n, topo, held_e, held_v, masked):
 
 
 @jit(inline="always")
+def _ab_row(s0, x, r1, i, tr, ab, ac2, bc2):
+    """Side A-B's point ``i``: this cell's part of its row."""
+    one = uint64(1)
+    return (tr * s0[i] + ab * (s0[i - one] + s0[i + one]) + ac2 * x[r1 + i - one]
+            + bc2 * x[r1 + i - one - one])
+
+
+@jit(inline="always")
 def _ring(x, y, c, s0, s1, s2, n, K, start, pe, pv, flip):
     """The inside rows next to the sides, this cell's part of the side rows (into ``pe``)
     and of the corner rows (into ``pv``), from the sides in ``s0``, ``s1``, ``s2``."""
@@ -94,14 +102,18 @@ def _ring(x, y, c, s0, s1, s2, n, K, start, pe, pv, flip):
     for i in range(two, uint64(n - 2)):
         y[r1 + i - one] = (d * x[r1 + i - one] + h * (x[r1 + i - two] + x[r1 + i])
                            + v * (s0[i] + x[r2 + i - one]) + g * (s0[i + one] + x[r2 + i - two]))
-    for i in range(2, n - 1):
-        pe[c, 0, n - 1 - i if f0 else i - 1] = (
-            tr * s0[i] + ab * (s0[i - 1] + s0[i + 1]) + ac2 * x[start + i - 1]
-            + bc2 * x[start + i - 2])
+    # side A-B into this cell's buffer, in the edge's order (flat, unsigned: vectorises)
+    flat, un, e0 = pe.reshape(-1), uint64(n), uint64(3 * c * (n - 1))
+    if f0:  # point i at n - 1 - i
+        for i in range(two, un - one):
+            flat[e0 + un - one - i] = _ab_row(s0, x, r1, i, tr, ab, ac2, bc2)
+    else:
+        for i in range(two, un - one):
+            flat[e0 + i - one] = _ab_row(s0, x, r1, i, tr, ab, ac2, bc2)
     # up the slanted sides: row j starts at rj, the rows below and above at rb and ra
     # (unsigned indices throughout: no negative-index checks)
     pe1, pe2 = pe[c, 1], pe[c, 2]
-    un, st, top = uint64(n), uint64(start), uint64(n - 3)
+    st, top = uint64(start), uint64(n - 3)
     rb, rj = st, st + un - two
     for j in range(two, un - one):
         w = un - one - j  # row j's width
