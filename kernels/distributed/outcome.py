@@ -1,6 +1,7 @@
-"""What a distributed solve returns, and the rule that makes a failing step fail on every
-rank: shared by the replicated path (:mod:`hatkernels.distributed.solve`) and the
-partitioned one (:mod:`hatkernels.distributed.refined_solve`)."""
+"""What a distributed solve returns, the gathers of its solution, and the rule that makes a
+failing step fail on every rank: shared by the replicated path
+(:mod:`hatkernels.distributed.solve`) and the partitioned one
+(:mod:`hatkernels.distributed.refined_solve`)."""
 
 from __future__ import annotations
 
@@ -8,6 +9,7 @@ import dataclasses
 
 import numpy as np
 
+from hatkernels.distributed.launch import mpi
 from hatkernels.errors import InputError
 from hatkernels.poisson import PoissonSolution
 
@@ -123,3 +125,63 @@ def _together(comm, what, fn, *args, **kwargs):
 def _per(balance, counter, iterations):
     """A solve-phase counter of the busiest rank, per iteration (setup excluded)."""
     return max(b["communication"][counter] for b in balance) / iterations
+
+
+def gather_in_order(comm, counts, order, n, u_owned, gather, scattered):
+    """The whole solution in the mesh's numbering, where ``gather`` asks for it.
+
+    ``order`` (the partition's gather order) is None on the ranks without the
+    mesh (scattered input): there rank 0 puts the values in place and, for
+    ``gather=True``, broadcasts them.
+    """
+    if gather is False:
+        return None
+    MPI = mpi()
+    counts = np.asarray(counts, dtype=np.int64)
+    displs = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    if gather is True and not scattered:
+        buf = np.empty(n)
+        comm.Allgatherv([u_owned, MPI.DOUBLE], [buf, (counts, displs), MPI.DOUBLE])
+        u = np.empty(n)
+        u[order] = buf
+        return u
+    root = comm.Get_rank() == 0
+    buf = np.empty(n) if root else None
+    comm.Gatherv([u_owned, MPI.DOUBLE],
+                 [buf, (counts, displs), MPI.DOUBLE] if root else None, root=0)
+    u = None
+    if root:
+        u = np.empty(n)
+        u[order] = buf
+        del buf
+    if gather is True:
+        u = np.empty(n) if u is None else u
+        comm.Bcast([u, MPI.DOUBLE], root=0)
+    return u
+
+
+def gather_by_ids(comm, owned, u_owned, n, gather):
+    """The whole solution in the serial numbering on every rank (True), rank 0 ("root")
+    or none (False)."""
+    if gather is False:
+        return None
+    MPI = mpi()
+    counts = np.array(comm.allgather(len(owned)), dtype=np.int64)
+    displs = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    root_only = gather != True  # noqa: E712  ("root")
+    ids = np.empty(n, dtype=np.int64) if not root_only or comm.Get_rank() == 0 else None
+    vals = np.empty(n) if ids is not None else None
+    if root_only:
+        comm.Gatherv([owned.astype(np.int64), MPI.INT64_T],
+                     [ids, (counts, displs), MPI.INT64_T] if ids is not None else None, root=0)
+        comm.Gatherv([u_owned, MPI.DOUBLE],
+                     [vals, (counts, displs), MPI.DOUBLE] if vals is not None else None, root=0)
+    else:
+        comm.Allgatherv([owned.astype(np.int64), MPI.INT64_T],
+                        [ids, (counts, displs), MPI.INT64_T])
+        comm.Allgatherv([u_owned, MPI.DOUBLE], [vals, (counts, displs), MPI.DOUBLE])
+    if ids is None:
+        return None
+    u = np.empty(n)
+    u[ids] = vals
+    return u

@@ -41,6 +41,7 @@ from hatkernels.distributed.outcome import (
     Distribution,
     _per,
     _together,
+    gather_by_ids,
 )
 from hatkernels.distributed.refined import DistributedMultigrid
 from hatkernels.errors import InputError
@@ -300,7 +301,7 @@ def solve_refined(coarse, f, k, comm, *, dirichlet, dirichlet_on, coefficient, r
     flows = _flows(comm, weights, loads, u_local)
     piece = _piece(fine, u_local, cell_owner, rank, pf, coarse)
     t5 = time.perf_counter()
-    u = _gather(comm, fine.points[:n], u_owned, numberings[-1].n_fine, gather)
+    u = gather_by_ids(comm, fine.points[:n], u_owned, numberings[-1].n_fine, gather)
     timings["gather"] = time.perf_counter() - t5
     timings["total"] = time.perf_counter() - t0
     mine = {
@@ -408,33 +409,6 @@ def _piece(fine, u, cell_owner, rank, per, coarse):
     if coarse.regions is not None:
         cell_data["region"] = coarse.regions[fine.cells[own] // per].astype(np.int32)
     return mesh, {"u": u[used]}, cell_data
-
-
-def _gather(comm, owned, u_owned, n, gather):
-    """The whole solution in the serial numbering on every rank (True), rank 0 ("root")
-    or none (False)."""
-    if gather is False:
-        return None
-    MPI = mpi()
-    counts = np.array(comm.allgather(len(owned)), dtype=np.int64)
-    displs = np.concatenate([[0], np.cumsum(counts)[:-1]])
-    root_only = gather != True  # noqa: E712  ("root")
-    ids = np.empty(n, dtype=np.int64) if not root_only or comm.Get_rank() == 0 else None
-    vals = np.empty(n) if ids is not None else None
-    if root_only:
-        comm.Gatherv([owned.astype(np.int64), MPI.INT64_T],
-                     [ids, (counts, displs), MPI.INT64_T] if ids is not None else None, root=0)
-        comm.Gatherv([u_owned, MPI.DOUBLE],
-                     [vals, (counts, displs), MPI.DOUBLE] if vals is not None else None, root=0)
-    else:
-        comm.Allgatherv([owned.astype(np.int64), MPI.INT64_T],
-                        [ids, (counts, displs), MPI.INT64_T])
-        comm.Allgatherv([u_owned, MPI.DOUBLE], [vals, (counts, displs), MPI.DOUBLE])
-    if ids is None:
-        return None
-    u = np.empty(n)
-    u[ids] = vals
-    return u
 
 
 def solve_partitioned(mesh, f, refine, comm, dirichlet, dirichlet_on, coefficient, reaction,

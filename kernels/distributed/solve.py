@@ -40,7 +40,7 @@ from hatkernels.discretise import LinearSystem
 from hatkernels.distributed.assembly import reduce_local
 from hatkernels.distributed.cg import cg
 from hatkernels.distributed.halo import CommStats
-from hatkernels.distributed.launch import as_comm, default_threads, mpi
+from hatkernels.distributed.launch import as_comm, default_threads
 from hatkernels.distributed.matrix import DistributedMatrix
 from hatkernels.distributed.outcome import (
     GATHER,
@@ -48,6 +48,7 @@ from hatkernels.distributed.outcome import (
     Distribution,
     _per,
     _together,
+    gather_in_order,
 )
 from hatkernels.distributed.partition import METHODS, Partition, partition
 from hatkernels.distributed.precond import COARSE_SPACES, make_distributed_preconditioner
@@ -376,7 +377,7 @@ def _solve(mesh, f, comm, dirichlet, dirichlet_on, coefficient, reaction, neuman
     u_owned = local.expand(result.x)  # no floating parts here (zero_mean is refused)
 
     t5 = time.perf_counter()
-    u = _gather(comm, info["counts"], None if split is None else split.order(),
+    u = gather_in_order(comm, info["counts"], None if split is None else split.order(),
                 info["n_points"], u_owned, gather, scattered)
     timings["gather"] = time.perf_counter() - t5
     timings["total"] = time.perf_counter() - t0
@@ -464,36 +465,3 @@ def _solve_part(total, setup):
     for field in dataclasses.fields(CommStats):
         setattr(out, field.name, getattr(total, field.name) - getattr(setup, field.name))
     return out
-
-
-def _gather(comm, counts, order, n, u_owned, gather, scattered):
-    """The whole solution in the mesh's numbering, where ``gather`` asks for it.
-
-    ``order`` (the partition's gather order) is None on the ranks without the
-    mesh (scattered input): there rank 0 puts the values in place and, for
-    ``gather=True``, broadcasts them.
-    """
-    if gather is False:
-        return None
-    MPI = mpi()
-    counts = np.asarray(counts, dtype=np.int64)
-    displs = np.concatenate([[0], np.cumsum(counts)[:-1]])
-    if gather is True and not scattered:
-        buf = np.empty(n)
-        comm.Allgatherv([u_owned, MPI.DOUBLE], [buf, (counts, displs), MPI.DOUBLE])
-        u = np.empty(n)
-        u[order] = buf
-        return u
-    root = comm.Get_rank() == 0
-    buf = np.empty(n) if root else None
-    comm.Gatherv([u_owned, MPI.DOUBLE],
-                 [buf, (counts, displs), MPI.DOUBLE] if root else None, root=0)
-    u = None
-    if root:
-        u = np.empty(n)
-        u[order] = buf
-        del buf
-    if gather is True:
-        u = np.empty(n) if u is None else u
-        comm.Bcast([u, MPI.DOUBLE], root=0)
-    return u
