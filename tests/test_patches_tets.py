@@ -99,7 +99,6 @@ def test_product_faces_row_by_row_are_the_plain_sums(k, seed, masked, which):
         t3.product(x, y, n, layout.topo, W, 1.0 / n, _SLOTS, _N_SLOTS, masked,
                    *layout.buffers(k), how)
     assert np.array_equal(fast.view(np.uint64), plain.view(np.uint64))
-    assert np.array_equal(fast, TetOperator(layout, W, k, masked=masked) @ x)
 
 
 @pytest.mark.parametrize("k", [1, 2, 3])
