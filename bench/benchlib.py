@@ -14,7 +14,7 @@ import numpy as np
 from hatkernels.mesh import rectangle
 from hatkernels.perf import PeakMemory, nested, rss_bytes
 
-__all__ = ["HWM", "ProcessPeak", "round_peak", "nested", "refined_rectangle"]
+__all__ = ["HWM", "ProcessPeak", "copy_floor", "round_peak", "nested", "refined_rectangle"]
 
 try:
     _libc = ctypes.CDLL("libc.so.6")
@@ -107,6 +107,50 @@ def round_peak(peaks):
         block = np.ones(touched // 8)
         del block
     return ProcessPeak(trim=touched == 0).__enter__(), touched
+
+
+# -- the floor of a product ---------------------------------------------------------------
+def copy_floor(x, y, rounds=11):
+    """The least time this machine takes to read ``x`` and write ``y`` on all threads: the
+    best of a plain copy and a negated copy, ``rounds`` each, taken in turn.
+
+    A plain copy becomes ``memcpy``, whose large copies write with non-temporal
+    stores; a negated copy writes with ordinary ones.  On the benchmark machine
+    (AMD EPYC, Zen 4) the negated copy is 15-20 % faster (16.2 against 19.4 ms for
+    6.4e7 values on 2026-12-05), so a floor made of the plain copy alone would
+    flatter every kernel measured against it.  Returns the seconds of both and
+    ``floor_seconds``, the smaller.
+    """
+    import math
+    import time
+
+    copy, negated = _floor_kernels()
+    best = {"copy_seconds": math.inf, "negated_copy_seconds": math.inf}
+    copy(x, y)
+    negated(x, y)
+    for _ in range(rounds):
+        for key, kernel in (("copy_seconds", copy), ("negated_copy_seconds", negated)):
+            t = time.perf_counter()
+            kernel(x, y)
+            best[key] = min(best[key], time.perf_counter() - t)
+    best["floor_seconds"] = min(best.values())
+    return best
+
+
+def _floor_kernels():
+    import numba
+
+    @numba.njit(parallel=True, cache=False)
+    def copy(x, y):
+        for i in numba.prange(x.shape[0]):
+            y[i] = x[i]
+
+    @numba.njit(parallel=True, cache=False)
+    def negated(x, y):
+        for i in numba.prange(x.shape[0]):
+            y[i] = -x[i]
+
+    return copy, negated
 
 
 # -- meshes -------------------------------------------------------------------------------

@@ -131,11 +131,15 @@ def versions():
 
 
 def parallel_copy_bandwidth(mbytes=512, repeats=5, n_threads=MAX_THREADS):
-    """GB/s of a large NumPy copy split into ``n_threads`` slices copied at once.
+    """GB/s of a large NumPy copy split into ``n_threads`` slices copied at once: the
+    better of a plain copy and a negated one.
 
     NumPy releases the GIL while it copies, so the slices run in parallel;
     on a machine whose memory one core cannot saturate this is the higher,
-    truer floor for kernels that use every core.
+    truer floor for kernels that use every core.  A plain copy is a ``memcpy``,
+    whose large copies write with non-temporal stores; the negated copy writes
+    with ordinary stores, which on the benchmark machine (AMD EPYC, Zen 4) are the
+    faster of the two (benchlib.copy_floor).
     """
     n = mbytes * 2**20 // 8
     a = np.ones(n)
@@ -144,9 +148,10 @@ def parallel_copy_bandwidth(mbytes=512, repeats=5, n_threads=MAX_THREADS):
     best = float("inf")
     with ThreadPoolExecutor(n_threads) as pool:
         for _ in range(repeats):
-            t0 = time.perf_counter()
-            list(pool.map(lambda s: np.copyto(b[s], a[s]), parts))
-            best = min(best, time.perf_counter() - t0)
+            for copy in (lambda s: np.copyto(b[s], a[s]), lambda s: np.negative(a[s], out=b[s])):
+                t0 = time.perf_counter()
+                list(pool.map(copy, parts))
+                best = min(best, time.perf_counter() - t0)
     return 2 * a.nbytes / best / 1e9
 
 
