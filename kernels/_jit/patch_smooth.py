@@ -109,8 +109,8 @@ def sweep(mode, last, n, K, dinv_c, dinv_e, dinv_v, topo, held_e, held_v, pe, pv
                 loc[0] = c * dinv_v[tri[cell, 0]] * loc[0]
                 loc[_off(n, 0, n)] = c * dinv_v[tri[cell, 1]] * loc[_off(n, 0, n)]
                 loc[_off(0, n, n)] = c * dinv_v[tri[cell, 2]] * loc[_off(0, n, n)]
-            _local_apply(loc, out, n, K[cell], 0)  # the side rows only
-            kc = K[cell]
+            kc = K[cell]  # one view per cell (each view's count is an atomic operation)
+            _local_apply(loc, out, n, kc, 0)  # the side rows only
             sd = 2.0 * (kc[0, 0] + kc[1, 1] + kc[2, 2])
             sh, sv, sg = 2.0 * kc[0, 1], 2.0 * kc[0, 2], 2.0 * kc[1, 2]
             di = dinv_c[cell]
