@@ -28,6 +28,7 @@ import numpy as np
 from numba import prange, uint64
 
 from hatkernels._jit import jit
+from hatkernels._jit.hints import prefetch
 from hatkernels._jit.patches import (
     CHUNK,
     COPY,
@@ -188,22 +189,30 @@ def _ring(x, y, c, s, o, n, K, start, flat, pv, cell_flip):
 def product(x, y, n, K, topo, held_e, held_v, masked, pe, pv):
     """``y = A x`` on a level with ``n >= SMALLEST`` subdivisions: the same bits as
     ``patches.apply(..., what=0)`` (``masked``: held rows and columns taken out)."""
-    tri, cell_flip = topo[0], topo[2]
+    tri, cell_edge, cell_flip = topo[0], topo[1], topo[2]
     m = tri.shape[0]
     inside = (n - 1) * (n - 2) // 2
+    base_e = m * inside
     flat = pe.reshape(-1)  # the cells' parts of the side rows, flat (no views per cell)
     for ch in prange((m + CHUNK - 1) // CHUNK):  # scratch once per chunk
         # the chunk's sides, three per cell, each n + 1 long (one flat buffer: no views,
         # whose reference counts cost more than the work at n = 8)
         sides = np.empty(3 * CHUNK * (n + 1))
         lo, hi = ch * CHUNK, min(m, (ch + 1) * CHUNK)
-        # each cell's sides, then its row 1 and the middle of its other inside rows, in
-        # the order of y (x and y streamed in once, y written without a gap per cell)
         for c in range(lo, hi):
-            o = 3 * (c - lo) * (n + 1)
-            _sides(x, c, sides, o, n, topo, held_e, held_v, masked)
+            _sides(x, c, sides, 3 * (c - lo) * (n + 1), n, topo, held_e, held_v, masked)
+        # each cell's row 1 and the middle of its other inside rows, in the order of y (x
+        # and y streamed in once, y written without a gap per cell); meanwhile the next
+        # chunk's sides are fetched (the same cell of the next chunk: its three edges)
+        for c in range(lo, hi):
+            if c + CHUNK < m:
+                for le in range(3):
+                    first = uint64(base_e + cell_edge[c + CHUNK, le] * (n - 1))
+                    for t in range(uint64(0), uint64(n - 1), uint64(8)):
+                        prefetch(x, first + t)
+                    prefetch(x, first + uint64(n - 2))  # the edge's last line
             Kc = K[c]
-            _row1(x, y, sides, o, n, Kc, c * inside)
+            _row1(x, y, sides, 3 * (c - lo) * (n + 1), n, Kc, c * inside)
             _inside_rows(x, sides, y, n, Kc, c * inside, True)
         # then, from the cache, the chunk's rings
         for c in range(lo, hi):
