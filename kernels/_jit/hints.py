@@ -2,7 +2,9 @@
 
 :func:`prefetch` asks for the cache line holding ``arr[index]`` ahead of its
 use (LLVM's ``llvm.prefetch``: a read, kept in every cache level).  The patch
-product (:mod:`hatkernels._jit.patch_product`) uses it for the coarse edges'
+product and smoother (:mod:`hatkernels._jit.patch_product`,
+:mod:`hatkernels._jit.patch_smooth`, through
+:func:`hatkernels._jit.patches.prefetch_edges`) use it for the coarse edges'
 values that the next chunk of cells reads: they lie apart from the stream of
 inside points, and read without a hint they cost about 0.2 us per cell at
 6.4e7 points, several times their time in cache.

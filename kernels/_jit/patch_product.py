@@ -30,13 +30,13 @@ import numpy as np
 from numba import prange, uint64
 
 from hatkernels._jit import jit
-from hatkernels._jit.hints import prefetch
 from hatkernels._jit.patches import (
     CHUNK,
     COPY,
     _inside_rows,
     _sum_shared,
     held_points,
+    prefetch_edges,
 )
 
 # the smallest level the fused ring takes (rows 1, 2 and the two top rows distinct);
@@ -208,11 +208,7 @@ def product(x, y, n, K, topo, held_e, held_v, masked, pe, pv):
         # chunk's sides are fetched (the same cell of the next chunk: its three edges)
         for c in range(lo, hi):
             if c + CHUNK < m:
-                for le in range(3):
-                    first = uint64(base_e + cell_edge[c + CHUNK, le] * (n - 1))
-                    for t in range(uint64(0), uint64(n - 1), uint64(8)):
-                        prefetch(x, first + t)
-                    prefetch(x, first + uint64(n - 2))  # the edge's last line
+                prefetch_edges(x, c + CHUNK, n, base_e, cell_edge)
             Kc = K[c]
             _row1(x, y, sides, 3 * (c - lo) * (n + 1), n, Kc, c * inside)
             _inside_rows(x, sides, y, n, Kc, c * inside, True)

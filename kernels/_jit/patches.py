@@ -32,6 +32,7 @@ import numpy as np
 from numba import prange, uint64
 
 from hatkernels._jit import jit
+from hatkernels._jit.hints import prefetch
 
 # gather modes
 PLAIN, MASKED, OWNED = 0, 1, 2
@@ -80,6 +81,18 @@ def _side(c, le, n, base_e, cell_edge, cell_flip, edge_cells, held_e, mode):
     if cell_flip[c, le]:
         return first + n - 1, -1, zero
     return first - 1, 1, zero
+
+
+@jit(inline="always")
+def prefetch_edges(v, c, n, base_e, cell_edge):
+    """Ask for the values of cell ``c``'s three coarse edges in the level vector ``v``
+    (``base_e``: where the edges' points start) ahead of their use: they lie apart from
+    the stream of inside points (:func:`hatkernels._jit.hints.prefetch`)."""
+    for le in range(3):
+        first = uint64(base_e + cell_edge[c, le] * (n - 1))
+        for t in range(uint64(0), uint64(n - 1), uint64(8)):
+            prefetch(v, first + t)
+        prefetch(v, first + uint64(n - 2))  # the edge's last line
 
 
 @jit(inline="always")
