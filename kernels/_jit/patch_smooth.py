@@ -23,8 +23,9 @@ coarse cell inside its patch, one per coarse edge and one per coarse vertex
 
 Each cell's gather reads its three coarse edges, apart from the stream of inside
 points; each cell asks for the edges of the cell one chunk on ahead of their use
-(:func:`hatkernels._jit.patches.prefetch_edges`), which made the sweeps 2 to 8 % faster at
-``n = 32`` and 64 (docs/patches.md, "The floor corrected; row 1 in place").
+(:func:`hatkernels._jit.patches.prefetch_edges`).  The sweeps were 2 to 8 % faster
+at ``n = 32`` and 64 in one comparison and within the machine's noise in another
+(docs/patches.md, "The floor corrected; row 1 in place").
 """
 
 import numpy as np
