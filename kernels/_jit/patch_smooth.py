@@ -85,7 +85,7 @@ def sweep(mode, last, n, K, dinv_c, dinv_e, dinv_v, topo, held_e, held_v, pe, pv
     m = tri.shape[0]
     size = (n + 1) * (n + 2) // 2
     inside = (n - 1) * (n - 2) // 2
-    base_e0 = m * inside
+    base_e = m * inside  # where the edges' points start
     for ch in prange((m + CHUNK - 1) // CHUNK):  # scratch once per chunk
         loc = np.empty(size)
         out = np.empty(size)
@@ -93,11 +93,11 @@ def sweep(mode, last, n, K, dinv_c, dinv_e, dinv_v, topo, held_e, held_v, pe, pv
             cn = cell + CHUNK
             if cn < m:  # the edges the next chunk's cell gathers, fetched meanwhile
                 if mode == ZERO:
-                    prefetch_edges(b, cn, n, base_e0, cell_edge)
+                    prefetch_edges(b, cn, n, base_e, cell_edge)
                 elif mode == STEP:
-                    prefetch_edges(d, cn, n, base_e0, cell_edge)
+                    prefetch_edges(d, cn, n, base_e, cell_edge)
                 else:
-                    prefetch_edges(x, cn, n, base_e0, cell_edge)
+                    prefetch_edges(x, cn, n, base_e, cell_edge)
             # (three calls, not one on a chosen array: the arrays may differ in precision)
             if mode == ZERO:
                 _gather(b, cell, loc, n, topo, held_e, held_v, MASKED)
@@ -173,7 +173,6 @@ def sweep(mode, last, n, K, dinv_c, dinv_e, dinv_v, topo, held_e, held_v, pe, pv
                         d[row + q] = dn
                         x[row + q] += dn
             _scatter(out, cell, x, pe, pv, n, topo, False)
-    base_e = m * inside
     n_edges = edge_v.shape[0]
     base_v = base_e + n_edges * (n - 1)
     for e in prange(n_edges):
