@@ -10,20 +10,22 @@ benchmark machine), and the product ran at 2.4-3 times its bandwidth floor.
 
 :func:`product` makes the same sums with one pass over each cell's inside rows.  A
 chunk's sides (corners included) are first copied into short vectors, three per cell;
-then each cell's row 1 and the middle of its other rows are written in the order they
-lie in ``y``, straight from ``x``, while the next chunk's coarse edges are prefetched.
-The rest of the ring (side A-B, the first and last inside point of each row, sides A-C
-and B-C, the dozen points next to the lattice's corners, whose neighbours differ)
-follows for the whole chunk, from the cache.  Row 1 written in its place, the rings of
-a chunk taken together and the sides read ahead make the product 11-13 % faster at
-``n = 64`` than one cell's middle, then its sides, then its whole ring
-(docs/patches.md, "The floor corrected; row 1 in place").  Indices are unsigned (no
-negative-index checks), the per-cell helpers are inlined and the per-cell data are
-indexed in flat buffers with offsets: numba passes an array to a helper that is not
-inlined, and makes a view, with an atomic reference count.  Every sum is the one
-:func:`hatkernels._jit.patches._stencil` or :func:`hatkernels._jit.patches._local_apply`
-makes, term for term in the same order, so the product is the same bits as
-``apply``'s; the tests check that on meshes with flipped and held edges.
+then each cell's inside rows are written whole, in the order they lie in ``y``, in
+explicit vectors (:func:`hatkernels._jit.simd.stencil_row`: no run-time overlap
+checks, no scalar remainders; each row's end lanes read the sides), while the next
+chunk's coarse edges are prefetched.  The cells' parts of the side rows and corner
+rows (side A-B, the slanted sides A-C and B-C, the points next to the lattice's
+corners) follow for the whole chunk, from the cache.  Row 1 written in its place, the
+side rows of a chunk taken together and the sides read ahead made the product 11-13 %
+faster at ``n = 64`` (docs/patches.md, "The floor corrected; row 1 in place"); the
+rows in explicit vectors 7 to 15 % more (docs/patches.md, "Rows in explicit
+vectors").  Indices are unsigned (no negative-index checks), the per-cell helpers are
+inlined and the per-cell data are indexed in flat buffers with offsets: numba passes
+an array to a helper that is not inlined, and makes a view, with an atomic reference
+count.  Every sum is the one :func:`hatkernels._jit.patches._stencil` or
+:func:`hatkernels._jit.patches._local_apply` makes, term for term in the same order,
+so the product is the same bits as ``apply``'s; the tests check that on meshes with
+flipped and held edges.
 """
 
 import numpy as np
@@ -33,11 +35,11 @@ from hatkernels._jit import jit
 from hatkernels._jit.patches import (
     CHUNK,
     COPY,
-    _inside_rows,
     _sum_shared,
     held_points,
     prefetch_edges,
 )
+from hatkernels._jit.simd import stencil_row
 
 # the smallest level the fused ring takes (rows 1, 2 and the two top rows distinct);
 # coarser levels use hatkernels._jit.patches.apply
@@ -95,29 +97,32 @@ def _ab_row(s, a0, x, r1, i, tr, ab, ac2, bc2):
 
 
 @jit(inline="always")
-def _row1(x, y, s, o, n, K, start):
-    """Inside row 1 (points ``(i, 1)``, ``i = 2..n-3``) from side A-B (``s[o]`` on): the
-    points of the first row that read no other side."""
-    d = 2.0 * (K[0, 0] + K[1, 1] + K[2, 2])
-    h, v, g = 2.0 * K[0, 1], 2.0 * K[0, 2], 2.0 * K[1, 2]
-    # rows 1 and 2 start at r1 and r2 (unsigned indices: the loop vectorises)
-    one, two = uint64(1), uint64(2)
-    r1, r2, a0 = uint64(start), uint64(start + n - 2), uint64(o)
-    for i in range(two, uint64(n - 2)):
-        y[r1 + i - one] = (d * x[r1 + i - one] + h * (x[r1 + i - two] + x[r1 + i])
-                           + v * (s[a0 + i] + x[r2 + i - one])
-                           + g * (s[a0 + i + one] + x[r2 + i - two]))
+def _rows(x, y, s, o, n, K, c, start):
+    """The cell's inside rows, in the order of ``y``, in explicit vectors
+    (:func:`hatkernels._jit.simd.stencil_row`): row 1 reads side A-B below it, and each
+    row's first and last point read sides A-C and B-C (``s1``, ``s2`` of :func:`_sides`,
+    from ``s[o]`` on)."""
+    d = 2.0 * (K[c, 0, 0] + K[c, 1, 1] + K[c, 2, 2])
+    h, v, g = 2.0 * K[c, 0, 1], 2.0 * K[c, 0, 2], 2.0 * K[c, 1, 2]
+    b1, b2 = o + n + 1, o + 2 * (n + 1)
+    # row j starts at rj and has n - 1 - j points; side A-B's point i is s[o + i]
+    r1 = start
+    stencil_row(x, s, y, r1, o + 1, r1 + n - 2, n - 2, d, h, v, g, s[b1 + 1], s[b1 + 2],
+                s[b2 + 1], s[b2 + 2])
+    below, rj = r1, r1 + n - 2
+    for j in range(2, n - 1):
+        w = n - 1 - j
+        stencil_row(x, x, y, rj, below, rj + w, w, d, h, v, g, s[b1 + j], s[b1 + j + 1],
+                    s[b2 + j], s[b2 + j + 1])
+        below, rj = rj, rj + w
 
 
 @jit(inline="always")
-def _ring(x, y, c, s, o, n, K, start, flat, pv, cell_flip):
-    """The inside points next to the sides that :func:`_row1` leaves, this cell's part of
-    the side rows (into ``flat``, the buffer ``pe`` flat) and of the corner rows (into
-    ``pv``), from the sides that :func:`_sides` left from ``s[o]`` on; ``K`` and
-    ``cell_flip`` indexed here (no views per cell: their reference counts cost more
-    than the work at ``n = 8``)."""
-    d = 2.0 * (K[c, 0, 0] + K[c, 1, 1] + K[c, 2, 2])
-    h, v, g = 2.0 * K[c, 0, 1], 2.0 * K[c, 0, 2], 2.0 * K[c, 1, 2]
+def _ring(x, c, s, o, n, K, start, flat, pv, cell_flip):
+    """This cell's part of the side rows (into ``flat``, the buffer ``pe`` flat) and of the
+    corner rows (into ``pv``), from the sides that :func:`_sides` left from ``s[o]`` on
+    and the inside points next to them; ``K`` and ``cell_flip`` indexed here (no views
+    per cell: their reference counts cost more than the work at ``n = 8``)."""
     tr = K[c, 0, 0] + K[c, 1, 1] + K[c, 2, 2]
     ab, ac, bc = K[c, 0, 1], K[c, 0, 2], K[c, 1, 2]
     ab2, ac2, bc2 = 2.0 * ab, 2.0 * ac, 2.0 * bc
@@ -139,17 +144,10 @@ def _ring(x, y, c, s, o, n, K, start, flat, pv, cell_flip):
     # up the slanted sides: row j starts at rj, the rows below and above at rb and ra
     # (unsigned indices throughout: no negative-index checks)
     e1, e2 = e0 + un - one, e0 + un - one + un - one  # sides A-C and B-C
-    st, top = uint64(start), uint64(n - 3)
-    rb, rj = st, st + un - two
+    rb, rj = r1, r1 + un - two
     for j in range(two, un - one):
         w = un - one - j  # row j's width
         ra = rj + w
-        if j <= top:  # its first and last inside points (rows of width 2 or more)
-            y[rj] = (d * x[rj] + h * (s[a1 + j] + x[rj + one]) + v * (x[rb] + x[ra])
-                     + g * (x[rb + one] + s[a1 + j + one]))
-            y[rj + w - one] = (d * x[rj + w - one] + h * (x[rj + w - two] + s[a2 + j])
-                               + v * (x[rb + w - one] + s[a2 + j + one])
-                               + g * (x[rb + w] + x[ra + w - two]))
         flat[e1 + (un - one - j if f1 else j - one)] = (
             tr * s[a1 + j] + ab2 * x[rj] + ac * (s[a1 + j + one] + s[a1 + j - one]) + bc2 * x[rb])
         flat[e2 + (un - one - j if f2 else j - one)] = (
@@ -157,15 +155,8 @@ def _ring(x, y, c, s, o, n, K, start, flat, pv, cell_flip):
             + bc * (s[a2 + j + one] + s[a2 + j - one]))
         rb, rj = rj, ra
     rb = int(rb)
-    # the points whose neighbours the lattice's corners change, one by one: row 1's ends,
-    # the top row's one point, the sides' end points, the corners
-    p, q = start + n - 3, rb  # the points (n - 2, 1) and (1, n - 2)
-    y[start] = (d * x[start] + h * (s[b1 + 1] + x[start + 1])
-                + v * (s[b0 + 1] + x[start + n - 2]) + g * (s[b0 + 2] + s[b1 + 2]))
-    y[p] = (d * x[p] + h * (x[p - 1] + s[b2 + 1]) + v * (s[b0 + n - 2] + s[b2 + 2])
-            + g * (s[b0 + n - 1] + x[start + 2 * n - 6]))
-    y[q] = (d * x[q] + h * (s[b1 + n - 2] + s[b2 + n - 2]) + v * (x[q - 2] + s[b2 + n - 1])
-            + g * (x[q - 1] + s[b1 + n - 1]))
+    # the sides' points next to the lattice's corners, whose neighbours differ, one by one
+    p, q = start + n - 3, rb  # the inside points (n - 2, 1) and (1, n - 2)
     # the sides' end points: side l of cell c starts at flat[p0 + l ps]
     p0, ps = 3 * c * (n - 1), n - 1
     lo, hi = n - 2 if f0 else 0, 0 if f0 else n - 2
@@ -209,12 +200,10 @@ def product(x, y, n, K, topo, held_e, held_v, masked, pe, pv):
         for c in range(lo, hi):
             if c + CHUNK < m:
                 prefetch_edges(x, c + CHUNK, n, base_e, cell_edge)
-            Kc = K[c]
-            _row1(x, y, sides, 3 * (c - lo) * (n + 1), n, Kc, c * inside)
-            _inside_rows(x, sides, y, n, Kc, c * inside, True)
+            _rows(x, y, sides, 3 * (c - lo) * (n + 1), n, K, c, c * inside)
         # then, from the cache, the chunk's rings
         for c in range(lo, hi):
-            _ring(x, y, c, sides, 3 * (c - lo) * (n + 1), n, K, c * inside, flat, pv, cell_flip)
+            _ring(x, c, sides, 3 * (c - lo) * (n + 1), n, K, c * inside, flat, pv, cell_flip)
     _sum_shared(y, pe, pv, n, topo)
     if masked:  # identity rows: y = x there
         held_points(x, y, n, topo, held_e, held_v, COPY)
