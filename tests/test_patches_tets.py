@@ -568,11 +568,11 @@ def test_public_pieces_refuse_bad_arguments_by_name():
     n = lay.size(2)
     for call, want in [
         (lambda: A.matvec_into(np.ones(3), np.empty(n)), "x has shape"),
-        (lambda: A.matvec_into(np.ones(n), np.empty(3)), "out must be"),
+        (lambda: A.matvec_into(np.ones(n), np.empty(3)), "out has shape"),
         (lambda: M.apply_into(np.ones(3), np.empty(3)), "r has shape"),
         (lambda: TetOperator(lay, W[:, :3], 2), "class weights"),
         (lambda: lay.class_sum(np.ones((2, 15)), np.ones(2), 2), "class_sum needs"),
-        (lambda: lay.zero_held(np.ones(3)), "x must be"),
+        (lambda: lay.zero_held(np.ones(3)), "x has shape"),
         (lambda: lay.size(-1), "level"),
         (lambda: lay.patch(np.zeros(n), 1.5), "cell"),
         (lambda: TetLayout(mesh, 21), "k"),

@@ -12,6 +12,7 @@ from __future__ import annotations
 import numpy as np
 
 from hatkernels._jit import operators as _jit_ops
+from hatkernels.checks import into_vectors
 from hatkernels.errors import InputError
 from hatkernels.mesh.colouring import row_colouring
 from hatkernels.mesh.core_index import index_dtype
@@ -57,6 +58,18 @@ class ElementBlocks:
 
     def serial_product(self, x, out):
         """``out = K x``, plainly: the version the product is tested against."""
+        raise NotImplementedError
+
+    def diagonal_into(self, out):
+        """``out`` = the diagonal of ``K``; returns ``out``.  ``out`` must be a writable
+        C-contiguous float64 ndarray of shape (n_points,), else an InputError names it
+        (``hatkernels.checks.into_vectors``)."""
+        into_vectors(f"{type(self).__name__}.diagonal_into", self.mesh.n_points, None,
+                     {"out": out}, size="the mesh has {:,} points")
+        self._diagonal_into(out)
+        return out
+
+    def _diagonal_into(self, out):
         raise NotImplementedError
 
     def __repr__(self):

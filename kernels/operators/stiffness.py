@@ -10,7 +10,7 @@ from scipy.sparse.linalg import LinearOperator
 from hatkernels._jit import operators as _jit_ops
 from hatkernels._jit import sparse as _jit_sparse
 from hatkernels._sets import index_union
-from hatkernels.checks import integer_option, point_indices
+from hatkernels.checks import integer_option, into_vectors, point_indices
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.colouring import block_size_for
@@ -155,11 +155,20 @@ class StiffnessOperator(LinearOperator):
     # -- products ------------------------------------------------------------------
 
     def matvec_into(self, x, out):
-        """``out = A x`` with no allocation; ``x`` must be float64, contiguous, length n.
+        """``out = A x`` with no allocation; returns ``out``.
 
+        ``x`` is read only: any real vector of length n (copied unless it is a writable
+        C-contiguous float64 one).  ``out`` must be a writable C-contiguous float64
+        ndarray of shape (n,) sharing no memory with ``x``; else an InputError names the
+        argument (``hatkernels.checks.into_vectors``).
         On tetrahedra with Dirichlet points the operator holds one work vector:
         one product at a time per operator.
         """
+        x, = into_vectors("StiffnessOperator.matvec_into", self.shape[0], {"x": x},
+                          {"out": out})
+        return self._product(x, out)
+
+    def _product(self, x, out):
         if self._masked is not None:
             _jit_ops.masked_copy(x, self._fixed, self._masked)
             self._impl.product(self._masked, out)
@@ -174,12 +183,17 @@ class StiffnessOperator(LinearOperator):
         return out
 
     def residual_into(self, x, b, out):
-        """``out = b - A x`` with no allocation (``x``, ``b``, ``out`` distinct, float64,
-        contiguous, length n): one pass over the cells where the variant has a residual
-        form, else a product and a subtraction."""
+        """``out = b - A x`` with no allocation; returns ``out``.  One pass over the cells
+        where the variant has a residual form, else a product and a subtraction.
+
+        ``x`` and ``b`` are read only (as ``x`` of :meth:`matvec_into`); ``out`` as there,
+        sharing no memory with ``x`` or ``b``.
+        """
+        x, b = into_vectors("StiffnessOperator.residual_into", self.shape[0],
+                            {"x": x, "b": b}, {"out": out})
         residual = getattr(self._impl, "residual", None)
         if residual is None or self._masked is not None:
-            self.matvec_into(x, out)
+            self._product(x, out)
             _jit_sparse.xpby(b, -1.0, out)
             return out
         residual(x, b, out)

@@ -9,7 +9,8 @@ Every variant holds what it stores and implements
     the same product written plainly (one thread, no colouring), which the
     fast one is tested against;
 ``diagonal_into(out)``, ``diagonal_and_offsum(diag, off)``
-    the diagonal of ``K``, and the row sums of ``|K_ij|``, ``j != i``, for
+    the diagonal of ``K`` (``out`` checked by the base class, written by each
+    class's ``_diagonal_into``), and the row sums of ``|K_ij|``, ``j != i``, for
     Gershgorin's bound;
 ``remove_fixed_columns(near, is_fixed, x, out)``
     ``out -= K[:, fixed] x[fixed]`` over the triangles next to fixed points;
@@ -63,7 +64,7 @@ class TriangleBlocks(ElementBlocks):
     Parameters as :class:`~hatkernels.operators.blocks.ElementBlocks`.
     """
 
-    def diagonal_into(self, out):
+    def _diagonal_into(self, out):
         m = self.mesh
         _jit_ops.diagonal(m.points, m.triangles, *self.coefficient, *self.colouring, out)
 
@@ -109,7 +110,7 @@ class SerialGeometryProduct(TriangleBlocks):
         _jit_assembly.stiffness_values(m.points, m.triangles, *self.coefficient, d, o)
         return d, o
 
-    def diagonal_into(self, out):
+    def _diagonal_into(self, out):
         # no usable colouring: triangle values, summed in order
         d, _ = self._element_values()
         out[:] = np.bincount(self.mesh.triangles.ravel(), weights=d.ravel(), minlength=out.size)

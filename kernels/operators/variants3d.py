@@ -63,7 +63,7 @@ class TetrahedronBlocks(ElementBlocks):
     Parameters as :class:`~hatkernels.operators.blocks.ElementBlocks`.
     """
 
-    def diagonal_into(self, out):
+    def _diagonal_into(self, out):
         self._diagonal(out, np.empty(0), False)
 
     def diagonal_and_offsum(self, diag, off):

@@ -13,7 +13,7 @@ import numpy as np
 
 from hatkernels._jit import patch_points as _pp
 from hatkernels._jit import patches as _p
-from hatkernels.checks import integer_option
+from hatkernels.checks import integer_option, into_vectors
 from hatkernels.distributed.finenumbers import fine_numbering
 from hatkernels.errors import InputError
 
@@ -114,36 +114,29 @@ class PatchLayout:
         """The view of ``x`` at the coarse vertices (the last ``n_vertices`` entries)."""
         return x[x.shape[0] - self.n_vertices:]
 
-    def _vector(self, x, level, name="x", writable=False):
-        """``x`` checked: a float64 vector of ``level``'s size (contiguous; written in place
-        when ``writable``, so not converted then, and float32 allowed: the multigrid's
-        single-precision levels)."""
+    def _checked(self, method, level, inputs=None, outputs=None):
+        """``(level, inputs)``: ``level`` (default the finest) and the vectors of ``method``
+        checked by ``hatkernels.checks.into_vectors``: of ``level``'s size, inputs read
+        only (copied unless they are writable C-contiguous float64), outputs
+        written in place (writable, C-contiguous, float64 or float32: the multigrid's
+        single-precision levels; sharing no memory with an input)."""
         level = self.k if level is None else integer_option(level, "level", minimum=0)
-        if writable:
-            ok = (isinstance(x, np.ndarray) and x.dtype in (np.float64, np.float32)
-                  and x.ndim == 1 and x.flags.c_contiguous and x.flags.writeable)
-            if not ok:
-                raise InputError(f"{name} must be a writable contiguous float64 (or float32) "
-                                 f"vector")
-        else:
-            x = np.ascontiguousarray(x, dtype=np.float64)
-        if x.shape != (self.size(level),):
-            raise InputError(f"{name} has shape {x.shape}; level {level} of this layout has "
-                             f"{self.size(level):,} points")
-        return x, level
+        return level, into_vectors(f"PatchLayout.{method}", self.size(level), inputs, outputs,
+                                   single=True,
+                                   size=f"level {level} of this layout has {{:,}} points")
 
     def zero_held(self, x, level=None, others=False):
         """``x = 0`` at the held points of ``level`` (default the finest), in place; with
-        ``others``, at every point but the held ones."""
-        x, level = self._vector(x, level, writable=True)
+        ``others``, at every point but the held ones.  Returns ``x``."""
+        level, _ = self._checked("zero_held", level, outputs={"x": x})
         held_e, held_v = (~self.held_e, ~self.held_v) if others else (self.held_e, self.held_v)
         _p.held_points(x, x, 2**level, self.topo, held_e, held_v, _p.ZERO)
         return x
 
     def copy_held(self, src, dst, level=None):
-        """``dst = src`` at the held points of ``level`` (default the finest)."""
-        src, _ = self._vector(src, level, "src")
-        dst, level = self._vector(dst, level, "dst", writable=True)
+        """``dst = src`` at the held points of ``level`` (default the finest); returns
+        ``dst`` (``src`` read only, ``dst`` a separate array: see ``_checked``)."""
+        level, (src,) = self._checked("copy_held", level, {"src": src}, {"dst": dst})
         _p.held_points(src, dst, 2**level, self.topo, self.held_e, self.held_v, _p.COPY)
         return dst
 
@@ -190,17 +183,16 @@ class PatchLayout:
         """``x`` (this layout, on ``level``, default the finest) in the numbering of
         ``coarse.refine()`` repeated ``level`` times (a few ns per point: each coarse cell
         writes the points it owns)."""
-        x, level = self._vector(x, level)
+        level, (x,) = self._checked("to_refined", level, {"x": x},
+                                    None if out is None else {"out": out})
         if out is None:
             out = np.empty(self.size(level))
-        else:
-            out, _ = self._vector(out, level, "out", writable=True)
         _pp.to_numbered(x, 2**level, self.topo, *self._numbering(level), out, False)
         return out
 
     def from_refined(self, u, level=None):
         """The inverse of :meth:`to_refined`."""
-        u, level = self._vector(u, level, "u")
+        level, (u,) = self._checked("from_refined", level, {"u": u})
         x = np.empty(self.size(level))
         _pp.to_numbered(x, 2**level, self.topo, *self._numbering(level), u, True)
         return x
@@ -209,7 +201,7 @@ class PatchLayout:
         """``(lam, values)``: the values of ``x`` on coarse ``cell``'s lattice, with their
         integer barycentric coordinates (rows summing to ``2**level``, on the cell's
         points 0, 1, 2): the solution per patch when the whole array would not fit."""
-        x, level = self._vector(x, level)
+        level, (x,) = self._checked("patch", level, {"x": x})
         n = 2**level
         if not 0 <= int(cell) < self.n_cells:
             raise InputError(f"cell {cell} is not a coarse cell (0..{self.n_cells - 1})")

@@ -28,7 +28,7 @@ from hatkernels._jit import patch_smooth as _s
 from hatkernels._jit import patches as _p
 from hatkernels.assembly import assemble_mass, assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
-from hatkernels.checks import integer_option
+from hatkernels.checks import integer_option, into_vectors
 from hatkernels.coefficients import per_triangle
 from hatkernels.errors import InputError
 from hatkernels.patches.solution import checked_kappa
@@ -99,9 +99,12 @@ class PatchOperator(LinearOperator):
                  self.pe, self.pv, what)
 
     def matvec_into(self, x, out):
-        """``out = A x`` (distinct contiguous float64 vectors of the level's size)."""
-        if out is x:
-            raise InputError("PatchOperator.matvec_into: out must not be x")
+        """``out = A x``; returns ``out``.  ``x`` is read only: any real vector of the
+        level's size (copied unless it is a writable C-contiguous float64
+        one); ``out`` must be a writable C-contiguous float64 ndarray of that size sharing
+        no memory with ``x``, else an InputError names the argument
+        (``hatkernels.checks.into_vectors``)."""
+        x, = into_vectors("PatchOperator.matvec_into", self.shape[0], {"x": x}, {"out": out})
         self._run(x, out, 0)
         return out
 
@@ -322,7 +325,13 @@ class PatchMultigrid(Preconditioner):
         return out
 
     def apply_into(self, r, out):
-        """``out = M r``: one cycle from a zero guess."""
+        """``out = M r``: one cycle from a zero guess; returns ``out``.  ``r`` is read only
+        (any real vector of the finest level's size, copied unless it is a writable
+        C-contiguous float64 one); ``out`` must be a writable C-contiguous float64
+        ndarray of that size (with ``single`` too: only the levels' own vectors are
+        float32) sharing no memory with ``r``; else an InputError names the argument
+        (``hatkernels.checks.into_vectors``)."""
+        r, = into_vectors("PatchMultigrid.apply_into", self.shape[0], {"r": r}, {"out": out})
         b = self._finest_input(r)
         self._cycle(self.layout.k, out, b, True)
         return self._finest_output(r, out)
@@ -330,7 +339,10 @@ class PatchMultigrid(Preconditioner):
     def full_cycle_into(self, r, out, cycles=None):
         """Full multigrid: the load restricted to every level, the coarse solve, then each
         level started from the interpolated solution below and ``cycles`` V-cycles (as
-        :meth:`hatkernels.precond.gmg.GeometricMultigrid.full_cycle_into`)."""
+        :meth:`hatkernels.precond.gmg.GeometricMultigrid.full_cycle_into`); ``r`` and
+        ``out`` as in :meth:`apply_into`."""
+        r, = into_vectors("PatchMultigrid.full_cycle_into", self.shape[0], {"r": r},
+                          {"out": out})
         cycles = self.nested_cycles if cycles is None else integer_option(
             cycles, "cycles", minimum=1)
         k = self.layout.k
@@ -415,8 +427,12 @@ class FinestSmoother:
 
     def __init__(self, multigrid):
         self.level = multigrid.levels[-1]
+        self.shape = multigrid.shape
 
     def apply_into(self, r, z):
+        """``z = S r``; returns ``z``.  ``r`` and ``z`` as ``r`` and ``out`` of
+        :meth:`PatchMultigrid.apply_into`."""
+        r, = into_vectors("FinestSmoother.apply_into", self.shape[0], {"r": r}, {"z": z})
         self.level.smooth(z, r, True)
         return z
 

@@ -8,7 +8,7 @@ import numpy as np
 from hatkernels._jit import patches3d_moves as _m
 from hatkernels.assembly import assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
-from hatkernels.checks import integer_option
+from hatkernels.checks import integer_option, into_vectors
 from hatkernels.coefficients import per_cell
 from hatkernels.errors import InputError
 from hatkernels.patches.solution import checked_kappa
@@ -87,18 +87,24 @@ class TetMultigrid(Preconditioner):
         return self.apply_into(r, out)
 
     def apply_into(self, r, out):
-        """``out = M r``: one cycle from a zero guess (``r`` must be 0 at held points)."""
-        r = np.ascontiguousarray(r, dtype=np.float64)
-        if r.shape != (self.shape[0],):
-            raise InputError(f"r has shape {r.shape}; the multigrid has {self.shape[0]:,} rows")
-        self.layout._vector(out, self.layout.k, "out")
+        """``out = M r``: one cycle from a zero guess (``r`` must be 0 at held points);
+        returns ``out``.  ``r`` is read only: any real vector of the finest level's size
+        (copied unless it is a writable C-contiguous float64 one); ``out``
+        must be a writable C-contiguous float64 ndarray of that size sharing no memory
+        with ``r``, else an InputError names the argument
+        (``hatkernels.checks.into_vectors``)."""
+        r, = into_vectors("TetMultigrid.apply_into", self.shape[0], {"r": r}, {"out": out})
         self._cycle(self.layout.k, out, r, True, self.cycle)
         return out
 
     def full_cycle_into(self, r, out, cycles=None):
         """Full multigrid: the load restricted to every level, the coarse solve, then each
-        level started from the interpolated solution below and ``cycles`` V-cycles."""
-        cycles = self.nested_cycles if cycles is None else int(cycles)
+        level started from the interpolated solution below and ``cycles`` cycles; ``r``
+        and ``out`` as in :meth:`apply_into`."""
+        r, = into_vectors("TetMultigrid.full_cycle_into", self.shape[0], {"r": r},
+                          {"out": out})
+        cycles = self.nested_cycles if cycles is None else integer_option(
+            cycles, "cycles", minimum=1)
         k = self.layout.k
         for level in range(k, 0, -1):
             self._restrict(level, r if level == k else self.b[level - 1])

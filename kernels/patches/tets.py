@@ -19,7 +19,7 @@ from scipy.sparse.linalg import LinearOperator
 
 from hatkernels._jit import patches3d as _t
 from hatkernels._jit import patches3d_moves as _m
-from hatkernels.checks import integer_option
+from hatkernels.checks import integer_option, into_vectors
 from hatkernels.errors import InputError
 from hatkernels.mesh.refine3d import bey_order, unique_edges
 from hatkernels.mesh.tetrahedra import face_topology
@@ -217,19 +217,18 @@ class TetLayout:
         if C.shape != (self.n_cells, 15) or inner.shape != (self.n_cells,):
             raise InputError(f"class_sum needs C of shape ({self.n_cells}, 15) and inner of "
                              f"shape ({self.n_cells},), got {C.shape} and {inner.shape}")
-        y = np.empty(self.size(level)) if out is None else self._vector(out, level, "out")
+        y = np.empty(self.size(level)) if out is None else self._vector(out, level, "out",
+                                                                         "class_sum")
         _t.class_fill(np.ascontiguousarray(C, dtype=np.float64),
                       np.ascontiguousarray(inner, dtype=np.float64), y, 2**level, self.topo,
                       masked, *self.buffers(level))
         return y
 
-    def _vector(self, x, level, name):
-        """``x`` checked: a writable contiguous float64 vector of ``level``'s size."""
-        ok = (isinstance(x, np.ndarray) and x.dtype == np.float64 and x.ndim == 1
-              and x.flags.c_contiguous and x.flags.writeable)
-        if not ok or x.shape != (self.size(level),):
-            raise InputError(f"{name} must be a writable contiguous float64 vector of level "
-                             f"{level}'s {self.size(level):,} points")
+    def _vector(self, x, level, name, method):
+        """``x`` checked: a writable C-contiguous float64 vector of ``level``'s size
+        (``hatkernels.checks.into_vectors``)."""
+        into_vectors(f"TetLayout.{method}", self.size(level), None, {name: x},
+                     size=f"level {level} of this layout has {{:,}} points")
         return x
 
     def _held_blocks(self, level):
@@ -242,7 +241,7 @@ class TetLayout:
     def zero_held(self, x, level=None):
         """``x = 0`` at the held points of ``level`` (default the finest), in place."""
         level = self.k if level is None else level
-        self._vector(x, level, "x")
+        self._vector(x, level, "x", "zero_held")
         _m.set_blocks(*self._held_blocks(level), x, 0.0)
         return x
 
@@ -357,12 +356,12 @@ class TetOperator(LinearOperator):
         super().__init__(dtype=np.dtype(np.float64), shape=(size, size))
 
     def matvec_into(self, x, out):
-        if out is x:
-            raise InputError("TetOperator.matvec_into: out must not be x")
-        x = np.ascontiguousarray(x, dtype=np.float64)
-        if x.shape != (self.shape[0],):
-            raise InputError(f"x has shape {x.shape}; the operator has {self.shape[0]:,} rows")
-        self.layout._vector(out, self.level, "out")
+        """``out = A x``; returns ``out``.  ``x`` is read only: any real vector of the
+        level's size (copied unless it is a writable C-contiguous float64
+        one); ``out`` must be a writable C-contiguous float64 ndarray of that size sharing
+        no memory with ``x``, else an InputError names the argument
+        (``hatkernels.checks.into_vectors``)."""
+        x, = into_vectors("TetOperator.matvec_into", self.shape[0], {"x": x}, {"out": out})
         _t.product(x, out, self.n, self.layout.topo, self.W, 1.0 / self.n, _SLOTS, _N_SLOTS,
                    self.masked, *self.layout.buffers(self.level))
         return out

@@ -33,7 +33,7 @@ import scipy.sparse as sp
 
 from hatkernels._jit import amg as _a
 from hatkernels._jit import sparse as _k
-from hatkernels.checks import integer_option, real_option
+from hatkernels.checks import integer_option, into_vectors, real_option
 from hatkernels.errors import InputError
 from hatkernels.precond.chebyshev import ChebyshevSmoother
 from hatkernels.precond.registry import Preconditioner, require_csr
@@ -170,10 +170,16 @@ class _AMG(Preconditioner):
         return out
 
     def apply_into(self, r, out):
-        """``out = M r`` (one cycle from a zero guess); ``r`` and ``out`` distinct, length n.
+        """``out = M r`` (one cycle from a zero guess); returns ``out``.
 
-        With the Chebyshev smoother nothing is allocated on any level but the coarsest.
+        ``r`` is read only: any real vector of length n (copied unless it is a
+        writable C-contiguous float64 one); ``out`` must be a writable C-contiguous
+        float64 ndarray of shape (n,) sharing no memory with ``r``, else an InputError
+        names the argument (``hatkernels.checks.into_vectors``).  With the Chebyshev
+        smoother nothing is allocated on any level but the coarsest.
         """
+        r, = into_vectors(f"{type(self).__name__}.apply_into", self.shape[0], {"r": r},
+                          {"out": out})
         if len(self.ml.levels) == 1:
             out[:] = self.ml.coarse_solver(self._coarse_A, r)
         elif self.smoother == "chebyshev":
@@ -181,16 +187,20 @@ class _AMG(Preconditioner):
         else:
             out[:] = 0.0
             self._cycle_pyamg(0, out, r)
+        return out
 
     def full_cycle_into(self, b, x):
         """``x`` = full multigrid for ``A x = b`` (nested iteration): ``b`` restricted to
         every level, the coarsest solved, then on each level up the coarser solution
         interpolated and improved by one cycle from it.  Costs about two cycles; the
-        ``"nested"`` start of :func:`hatkernels.solve`."""
+        ``"nested"`` start of :func:`hatkernels.solve`.  Returns ``x``; ``b`` read only and
+        ``x`` written, checked as ``r`` and ``out`` of :meth:`apply_into`."""
+        b, = into_vectors(f"{type(self).__name__}.full_cycle_into", self.shape[0], {"b": b},
+                          {"x": x})
         levels = self.ml.levels
         if len(levels) == 1:
             x[:] = self.ml.coarse_solver(self._coarse_A, b)
-            return
+            return x
         if self.smoother != "chebyshev":
             rhs = [b]
             for lv in levels[:-1]:
@@ -200,7 +210,7 @@ class _AMG(Preconditioner):
                 xc = np.asarray(levels[lvl].P @ xc, dtype=np.float64)
                 self._cycle_pyamg(lvl, xc, rhs[lvl])
             x[:] = xc
-            return
+            return x
         # the cycle's own vectors: level l's right-hand side and solution; a cycle on
         # level l writes those of the levels below it only, which are done by then
         rhs = [b] + self._b[1:]
@@ -211,6 +221,7 @@ class _AMG(Preconditioner):
         for lvl in range(len(self._cheb) - 1, -1, -1):
             _k.spmv(*self._cheb[lvl].P, sol[lvl + 1], sol[lvl])
             self._cycle_parallel(lvl, sol[lvl], rhs[lvl], False)
+        return x
 
     def _coarse(self, lvl, b):
         """Approximate solution of level ``lvl``'s system from a zero guess (PyAMG smoothers)."""

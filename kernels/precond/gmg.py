@@ -37,7 +37,7 @@ from hatkernels._jit import multigrid as _mg
 from hatkernels._sets import index_complement, index_union
 from hatkernels.assembly import assemble_stiffness
 from hatkernels.boundary import apply_dirichlet
-from hatkernels.checks import integer_option, point_indices, real_option
+from hatkernels.checks import integer_option, into_vectors, point_indices, real_option
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
@@ -335,10 +335,16 @@ class GeometricMultigrid(Preconditioner):
         return out
 
     def apply_into(self, r, out):
-        """``out = M r`` (one cycle from a zero guess) with no allocation on the finest level.
+        """``out = M r`` (one cycle from a zero guess) with no allocation on the finest level;
+        returns ``out``.
 
-        ``r`` and ``out`` are distinct contiguous float64 vectors of length ``n``.
+        ``r`` is read only: any real vector of length ``n`` (copied unless it is a
+        writable C-contiguous float64 one); ``out`` must be a writable C-contiguous
+        float64 ndarray of shape ``(n,)`` sharing no memory with ``r``, else an InputError
+        names the argument (``hatkernels.checks.into_vectors``).
         """
+        r, = into_vectors("GeometricMultigrid.apply_into", self.shape[0], {"r": r},
+                          {"out": out})
         b, x = self._finest_input(r, out)
         self._cycle(len(self.levels), x, b, True, self.cycle)
         return self._finest_output(r, out, x)
@@ -357,8 +363,10 @@ class GeometricMultigrid(Preconditioner):
         C. W. Oosterlee and A. Schuller, Multigrid, 2001, section 2.6), for
         about ``cycles`` cycles' work and a third more (default: the
         ``nested_cycles`` the preconditioner was built with).  ``r`` and
-        ``out`` as in :meth:`apply_into`.
+        ``out`` as in :meth:`apply_into`; returns ``out``.
         """
+        r, = into_vectors("GeometricMultigrid.full_cycle_into", self.shape[0], {"r": r},
+                          {"out": out})
         cycles = self.nested_cycles if cycles is None else integer_option(
             cycles, "gmg: cycles", minimum=1)
         b, x = self._finest_input(r, out)

@@ -18,7 +18,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from hatkernels._jit import ichol as _k
-from hatkernels.checks import real_option
+from hatkernels.checks import into_vectors, real_option
 from hatkernels.errors import InputError
 from hatkernels.precond.registry import Preconditioner, checked_diagonal, require_csr
 
@@ -147,7 +147,14 @@ class IncompleteCholesky(Preconditioner):
         return out
 
     def apply_into(self, r, z):
+        """``z = M r`` (the two triangular solves); returns ``z``.  ``r`` is read only (any
+        real vector of length n, copied unless it is a writable C-contiguous float64
+        one); ``z`` must be a writable C-contiguous float64 ndarray of shape (n,)
+        sharing no memory with ``r``, else an InputError names the argument
+        (``hatkernels.checks.into_vectors``)."""
+        r, = into_vectors("IncompleteCholesky.apply_into", self.shape[0], {"r": r}, {"z": z})
         _k.ic0_solve(self._indptr, self._indices, self._u, self._dinv, r, z)
+        return z
 
 
 def ic0_reference(A, modified=False):

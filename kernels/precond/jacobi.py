@@ -3,6 +3,7 @@
 import numpy as np
 
 from hatkernels._jit import sparse as _k
+from hatkernels.checks import into_vectors
 from hatkernels.precond.registry import Preconditioner, checked_diagonal, require_csr
 
 __all__ = ["Identity", "Jacobi"]
@@ -27,7 +28,11 @@ class Identity(Preconditioner):
         return r.copy()
 
     def apply_into(self, r, z):
+        """``z = r``; returns ``z``.  ``r`` and ``z`` as in
+        :meth:`hatkernels.precond.Preconditioner.apply_into`."""
+        r, = into_vectors("Identity.apply_into", self.shape[0], {"r": r}, {"z": z})
         z[:] = r
+        return z
 
 
 class Jacobi(Preconditioner):
@@ -61,7 +66,11 @@ class Jacobi(Preconditioner):
         return out
 
     def apply_into(self, r, z):
+        """``z = D^-1 r``; returns ``z``.  ``r`` and ``z`` as in
+        :meth:`hatkernels.precond.Preconditioner.apply_into`."""
+        r, = into_vectors("Jacobi.apply_into", self.shape[0], {"r": r}, {"z": z})
         _k.jacobi_apply(self.inverse_diagonal, r, z)
+        return z
 
     @property
     def memory_bytes(self):

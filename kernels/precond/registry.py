@@ -35,6 +35,7 @@ import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator
 
 from hatkernels._text import format_seconds
+from hatkernels.checks import into_vectors
 from hatkernels.errors import InputError
 from hatkernels.sparse import as_csr
 
@@ -133,11 +134,19 @@ class Preconditioner(LinearOperator):
         raise NotImplementedError
 
     def apply_into(self, r, z):
-        """``z = M r`` (the protocol of :mod:`hatkernels.krylov`); ``r`` is not modified.
+        """``z = M r`` (the protocol of :mod:`hatkernels.krylov`); returns ``z``.
 
-        Subclasses that can write into ``z`` directly override it to allocate nothing.
+        ``r`` is read only: any real vector of length n (copied unless it is a
+        writable C-contiguous float64 one).  ``z`` must be a writable C-contiguous
+        float64 ndarray of shape (n,) sharing no memory with ``r``; else an InputError
+        names the argument (``hatkernels.checks.into_vectors``, which every
+        overriding subclass calls too).  Subclasses that can write into ``z`` directly
+        override it to allocate nothing.
         """
+        r, = into_vectors(f"{type(self).__name__}.apply_into", self.shape[0], {"r": r},
+                          {"z": z})
         z[:] = self._apply(r)
+        return z
 
     def describe(self):
         """One line: what it is and what it costs (:attr:`description`)."""
