@@ -362,8 +362,15 @@ def test_assembler_reuses_the_pattern_and_hands_out_independent_matrices(random_
     assert (data == A.data).all()
     out = np.empty_like(data)
     assert assembler.assemble_data(1.0, out=out) is out
-    with pytest.raises(hatkernels.InputError, match="out must be"):
+    with pytest.raises(hatkernels.InputError, match="assemble_data: out has shape"):
         assembler.assemble_data(1.0, out=np.empty(3))
+    # written in place, so refused rather than converted (common practice, no source)
+    read_only = np.empty_like(data)
+    read_only.flags.writeable = False
+    for bad, why in ((np.empty(2 * data.size)[::2], "strided"), (read_only, "read-only"),
+                     (np.empty(data.size, np.float32), "float32")):
+        with pytest.raises(hatkernels.InputError, match=why):
+            assembler.assemble_data(1.0, out=bad)
     assert "entries" in repr(assembler.plan)
 
 

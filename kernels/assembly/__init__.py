@@ -34,6 +34,7 @@ from hatkernels.assembly.elements import load_values, lumped_values, mass_values
 from hatkernels.assembly.plan import CSRPlan, build_plan
 from hatkernels.assembly.tetrahedra import TetrahedronAssembly
 from hatkernels.boundary import apply_dirichlet_assembling, apply_dirichlet_in_place
+from hatkernels.checks import into_vectors
 from hatkernels.coefficients import parse_coefficient
 from hatkernels.errors import InputError
 from hatkernels.mesh.core import Mesh
@@ -139,12 +140,14 @@ class StiffnessAssembler:
         return self._matrix(self._numeric.stiffness_data(coef, quadrature))
 
     def assemble_data(self, coefficient=None, *, quadrature=2, out=None):
-        """``csr`` only: the numeric phase alone, into ``out`` (the matrix ``data``) if given."""
+        """``csr`` only: the numeric phase alone, into ``out`` (the matrix ``data``) if given:
+        a writable C-contiguous float64 vector of the pattern's length."""
         if self._numeric is None:
             raise InputError("assemble_data needs the csr strategy on a triangle mesh")
         coef = parse_coefficient(coefficient, self.mesh, name="coefficient", tensor=True)
-        if out is not None and (out.shape != (self.plan.nnz,) or out.dtype != np.float64):
-            raise InputError(f"out must be a float64 array of shape ({self.plan.nnz},)")
+        if out is not None:  # written in place: checked as every _into method's output
+            into_vectors("StiffnessAssembler.assemble_data", self.plan.nnz,
+                         outputs={"out": out}, size="the pattern has {:,} entries")
         return self._numeric.stiffness_data(coef, quadrature, out)
 
     def assemble_reduced(self, b, points, values=0.0, coefficient=None, *, quadrature=2):
