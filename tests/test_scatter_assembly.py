@@ -3,8 +3,9 @@ gather and the plain reference assembly."""
 
 import numpy as np
 import pytest
-from conftest import EPS, jittered_mesh, meshes, two_threads
+from conftest import EPS, jittered_mesh, meshes, refined, two_threads
 from hypothesis import given, settings
+from hypothesis import strategies as st
 from test_assembly import coefficient_kinds
 from test_operators import fan
 
@@ -13,6 +14,7 @@ from hatkernels import StiffnessAssembler, threads
 from hatkernels._jit import assembly as _jit_assembly
 from hatkernels.assembly.csr import kernel_coefficient
 from hatkernels.coefficients import parse_coefficient
+from hatkernels.mesh import Mesh
 
 
 def row_gather(m, coef):
@@ -112,3 +114,69 @@ def test_every_entry_is_written_without_zeroing_first(m):
         stale = a.assemble_data(coef, out=np.full(a.plan.nnz, np.nan))
         assert np.array_equal(fresh, stale)
         assert close(fresh, row_gather(m, coef), np.abs(fresh).max())
+
+
+def _mixed(m, seed):
+    """``m`` with a run of its triangles shuffled: pairs and singles in one plan."""
+    rng = np.random.default_rng(seed)
+    t = m.triangles.copy()
+    k = t.shape[0] // 2
+    t[:k] = t[rng.permutation(k)]
+    return Mesh(m.points, t)
+
+
+@settings(max_examples=10, deadline=None)
+@given(meshes(min_n=2, max_n=9), st.integers(0, 2**32 - 1), st.integers(0, 2))
+def test_pairs_and_singles_hold_every_triangle_once(m, seed, k):
+    # the plan's invariants: each triangle once, as a single or in one pair of its own
+    # block, a pair's triangles share an edge and are the stored ones rotated
+    m = _mixed(refined(m, k), seed)
+    a = StiffnessAssembler(m)
+    a.assemble_data(None)
+    sp = a._numeric._scatter
+    size = sp.colouring.block_size
+    tri = m.triangles
+    seen = np.zeros(m.n_triangles, dtype=int)
+    np.add.at(seen, sp.cells.ravel(), 1)
+    np.add.at(seen, sp.singles, 1)
+    assert (seen == 1).all()
+    for b in range(sp.pair_ptr.size - 1):
+        assert (sp.cells[sp.pair_ptr[b]:sp.pair_ptr[b + 1]] // size == b).all()
+        assert (sp.singles[sp.single_ptr[b]:sp.single_ptr[b + 1]] // size == b).all()
+    for (a_, u, v, q), (t1, t2) in zip(sp.quads, sp.cells, strict=True):
+        assert _is_rotation(tri[t1], (a_, u, v)) and _is_rotation(tri[t2], (q, v, u))
+
+
+def _is_rotation(t, r):
+    return any(tuple(np.roll(t, -s)) == tuple(r) for s in range(3))
+
+
+@pytest.mark.parametrize("kind", ["none", "per-triangle", "tensor-per-triangle"])
+@pytest.mark.parametrize("k", [0, 2])
+def test_pairs_and_singles_give_the_reference(kind, k):
+    # the plain triangle-loop assembly (reference strategy) as the specification; the
+    # shuffled half has mostly singles, the refined mesh pairs only some triangles
+    m = _mixed(refined(jittered_mesh(12, 5), k), 11)
+    coef = coefficient_kinds(m)[kind]
+    a = StiffnessAssembler(m)
+    A = a.assemble(coef)
+    sp = a._numeric._scatter
+    assert sp.n_pairs > 0 and sp.singles.size > 0
+    R = StiffnessAssembler(m, strategy="reference").assemble(coef)
+    scale = np.abs(R.data).max()
+    assert abs(A - R).max() <= 32 * EPS * scale
+    assert (A - A.T).count_nonzero() == 0
+    stale = a.assemble_data(coef, out=np.full(a.plan.nnz, np.nan))
+    assert np.array_equal(stale, A.data)
+
+
+@two_threads
+def test_pairs_and_singles_give_the_same_bits_on_one_and_two_threads():
+    m = _mixed(refined(jittered_mesh(24, 3), 1), 7)
+    out = []
+    for n in (1, 2):
+        with threads(n):
+            kinds = coefficient_kinds(m)
+            out.append([StiffnessAssembler(m).assemble(kinds[k]).data.tobytes()
+                        for k in ("per-triangle", "tensor")])
+    assert out[0] == out[1]

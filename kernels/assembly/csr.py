@@ -6,6 +6,7 @@ import numba
 import numpy as np
 
 from hatkernels._jit import assembly as _jit_assembly
+from hatkernels._jit import scatter as _jit_scatter
 from hatkernels.assembly.elements import mass_values
 from hatkernels.assembly.plan import build_plan
 from hatkernels.coefficients import triangle_means
@@ -60,10 +61,9 @@ def kernel_coefficient(coef, mesh, quadrature):
 class CSRNumeric:
     """Numeric phases on a :class:`~hatkernels.assembly.plan.CSRPlan`.
 
-    The stiffness goes in triangle by triangle over coloured blocks
-    (:func:`~hatkernels._jit.assembly.scatter_scalar`; 12 bytes of slot offsets and
-    one byte saying which entries each triangle starts, per triangle, kept after the
-    first call).  ``fused=True`` fills it row by row
+    The stiffness goes in element by element over coloured blocks, triangles that
+    share an edge in pairs (:func:`~hatkernels._jit.scatter.scatter_scalar`; a
+    :class:`ScatterPlan` of about 23 bytes per triangle, kept after the first call).  ``fused=True`` fills it row by row
     instead, recomputing each triangle's geometry at each of its vertices, with
     nothing stored beyond the plan (slower; see docs/assembly.md); ``by_rows=True``
     fills it row by row from stored element values (the bits of the fused order).
@@ -85,9 +85,9 @@ class CSRNumeric:
             return data
         scatter = self._scatter_plan()
         if scatter is not None:
-            slots, first, colouring = scatter
-            kernel = _jit_assembly.scatter_tensor if kc.is_tensor else _jit_assembly.scatter_scalar
-            kernel(m.points, pl.triangles, *kc, pl.diag, slots, first, *colouring, data)
+            kernel = _jit_scatter.scatter_tensor if kc.is_tensor else _jit_scatter.scatter_scalar
+            kernel(m.points, pl.triangles, *kc, pl.diag, *scatter[:-1], scatter.colouring.ptr,
+                   scatter.colouring.blocks, data)
             return data
         d = np.empty((m.n_triangles, 3))
         o = np.empty((m.n_triangles, 3))
@@ -106,9 +106,8 @@ class CSRNumeric:
             newindex, free, g, b, rindptr, rindices, rdata, rb, numba.get_num_threads())
 
     def _scatter_plan(self):
-        """``(slots, first, colouring)`` for :func:`~hatkernels._jit.assembly.scatter_scalar`,
-        made on first use and kept (13 bytes per triangle), or None when the triangles
-        need more than 64 colours (then the row-by-row gather serves)."""
+        """The :class:`ScatterPlan`, made on first use and kept, or None when the
+        triangles need more than 64 colours (then the row-by-row gather serves)."""
         if self._scatter is None:
             pl, m = self.plan, self.mesh
             colouring = triangle_colouring(pl.triangles, m.n_points, block_size_for(m.n_cells))
@@ -131,10 +130,8 @@ class CSRNumeric:
             flat = slots.reshape(-1, 2)
             flat[pl.codes, 0] = nxt
             flat[pl.codes, 1] = prv
-            slots = slots.reshape(m.n_triangles, 6)
-            first = _jit_assembly.scatter_first(pl.triangles, pl.diag, slots, *colouring,
-                                                pl.nnz)
-            self._scatter = (slots, first, colouring)
+            self._scatter = scatter_plan(pl.triangles, pl.diag, slots.reshape(-1, 6),
+                                         colouring, pl.nnz)
         return self._scatter or None
 
     def mass_data(self, coef, quadrature, out=None):
@@ -148,3 +145,62 @@ class CSRNumeric:
         _jit_assembly.gather_values(
             pl.indptr, pl.diag, pl.ptr, pl.codes, pl.slot_next, pl.slot_prev, d, o, data
         )
+
+
+class ScatterPlan(NamedTuple):
+    """Pairs and singles of each block, for :func:`~hatkernels._jit.scatter.scatter_scalar`
+    (its arguments from ``pair_ptr`` to ``single_first``, in that order, then the colouring's).
+
+    Block ``b``'s pairs are ``pair_ptr[b]:pair_ptr[b + 1]``, its singles
+    ``single_ptr[b]:single_ptr[b + 1]``.  A pair is two triangles of the block
+    that share an edge, stored as points ``(a, u, v, q)`` (triangles ``(a, u,
+    v)`` and ``(q, v, u)``), its two triangles' numbers (for per-triangle
+    coefficients), ten entry offsets from the rows' diagonals and the bits of
+    the entries it starts; a single is a triangle's number, six offsets and its
+    bits.  About 23 bytes per paired triangle, 17 per single.
+    """
+
+    pair_ptr: np.ndarray
+    quads: np.ndarray
+    cells: np.ndarray
+    pair_slots: np.ndarray
+    pair_first: np.ndarray
+    single_ptr: np.ndarray
+    singles: np.ndarray
+    single_slots: np.ndarray
+    single_first: np.ndarray
+    colouring: object
+
+    @property
+    def n_pairs(self):
+        return self.quads.shape[0]
+
+    @property
+    def nbytes(self):
+        return sum(a.nbytes for a in self[:-1]) + self.colouring.nbytes
+
+
+def scatter_plan(triangles, diag, slots, colouring, nnz):
+    """The :class:`ScatterPlan` of ``triangles`` (counterclockwise, int32) whose
+    entries lie at ``diag`` of each row plus ``slots`` (per triangle, int16, in the
+    order of :func:`~hatkernels._jit.scatter.fill_pairs`)."""
+    size = colouring.block_size
+    partner, pairs, singles = _jit_scatter.pair_cells(triangles, size, _jit_scatter.PAIR_WINDOW)
+    pair_ptr = np.zeros(pairs.size + 1, dtype=np.int64)
+    single_ptr = np.zeros(pairs.size + 1, dtype=np.int64)
+    np.cumsum(pairs, out=pair_ptr[1:])
+    np.cumsum(singles, out=single_ptr[1:])
+    n_pairs, n_singles = int(pair_ptr[-1]), int(single_ptr[-1])
+    quads = np.empty((n_pairs, 4), dtype=np.int32)
+    cells = np.empty((n_pairs, 2), dtype=np.int32)
+    pair_slots = np.empty((n_pairs, 10), dtype=np.int16)
+    singles = np.empty(n_singles, dtype=np.int32)
+    single_slots = np.empty((n_singles, 6), dtype=np.int16)
+    _jit_scatter.fill_pairs(triangles, slots, partner, size, pair_ptr, single_ptr, quads, cells,
+                            pair_slots, singles, single_slots)
+    del partner
+    pair_first, single_first = _jit_scatter.scatter_first(
+        triangles, diag, pair_ptr, quads, pair_slots, single_ptr, singles, single_slots,
+        colouring.ptr, colouring.blocks, nnz)
+    return ScatterPlan(pair_ptr, quads, cells, pair_slots, pair_first, single_ptr, singles,
+                       single_slots, single_first, colouring)
