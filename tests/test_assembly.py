@@ -348,6 +348,7 @@ def test_int64_indices_give_the_same_matrix():
     A64 = asm64.assemble(2.0)
     assert asm64.plan.dtype == np.int64 and asm64.plan.codes.dtype == np.int64
     assert asm64.plan.slot_next.dtype == np.int64 and asm64.plan.triangles.dtype == np.int64
+    assert asm64._numeric._scatter.quads.dtype == np.int64  # the scatter's pairs too
     # (scipy itself narrows the matrix's indices back to int32 when they fit)
     assert (A32.data == A64.data).all() and (A32.indices == A64.indices).all()
 

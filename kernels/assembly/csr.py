@@ -63,10 +63,11 @@ class CSRNumeric:
 
     The stiffness goes in element by element over coloured blocks, triangles that
     share an edge in pairs (:func:`~hatkernels._jit.scatter.scatter_scalar`; a
-    :class:`ScatterPlan` of about 23 bytes per triangle, kept after the first call).  ``fused=True`` fills it row by row
-    instead, recomputing each triangle's geometry at each of its vertices, with
-    nothing stored beyond the plan (slower; see docs/assembly.md); ``by_rows=True``
-    fills it row by row from stored element values (the bits of the fused order).
+    :class:`ScatterPlan` of about 23 bytes per triangle, kept after the first
+    call).  ``fused=True`` fills it row by row instead, recomputing each
+    triangle's geometry at each of its vertices, with nothing stored beyond the
+    plan (slower; see docs/assembly.md); ``by_rows=True`` fills it row by row
+    from stored element values (the bits of the fused order).
     """
 
     def __init__(self, mesh, plan=None, *, fused=False, by_rows=False):
@@ -184,17 +185,20 @@ def scatter_plan(triangles, diag, slots, colouring, nnz):
     """The :class:`ScatterPlan` of ``triangles`` (counterclockwise, int32) whose
     entries lie at ``diag`` of each row plus ``slots`` (per triangle, int16, in the
     order of :func:`~hatkernels._jit.scatter.fill_pairs`)."""
-    size = colouring.block_size
-    partner, pairs, singles = _jit_scatter.pair_cells(triangles, size, _jit_scatter.PAIR_WINDOW)
-    pair_ptr = np.zeros(pairs.size + 1, dtype=np.int64)
-    single_ptr = np.zeros(pairs.size + 1, dtype=np.int64)
-    np.cumsum(pairs, out=pair_ptr[1:])
-    np.cumsum(singles, out=single_ptr[1:])
+    size, m = colouring.block_size, triangles.shape[0]
+    partner, per_block_pairs, per_block_singles = _jit_scatter.pair_cells(
+        triangles, size, _jit_scatter.PAIR_WINDOW)
+    pair_ptr = np.zeros(per_block_pairs.size + 1, dtype=np.int64)
+    single_ptr = np.zeros(per_block_pairs.size + 1, dtype=np.int64)
+    np.cumsum(per_block_pairs, out=pair_ptr[1:])
+    np.cumsum(per_block_singles, out=single_ptr[1:])
     n_pairs, n_singles = int(pair_ptr[-1]), int(single_ptr[-1])
-    quads = np.empty((n_pairs, 4), dtype=np.int32)
-    cells = np.empty((n_pairs, 2), dtype=np.int32)
+    # points in the triangles' own index type; triangle numbers in int32 while they fit
+    cell_type = np.int32 if m <= np.iinfo(np.int32).max else np.int64
+    quads = np.empty((n_pairs, 4), dtype=triangles.dtype)
+    cells = np.empty((n_pairs, 2), dtype=cell_type)
     pair_slots = np.empty((n_pairs, 10), dtype=np.int16)
-    singles = np.empty(n_singles, dtype=np.int32)
+    singles = np.empty(n_singles, dtype=cell_type)
     single_slots = np.empty((n_singles, 6), dtype=np.int16)
     _jit_scatter.fill_pairs(triangles, slots, partner, size, pair_ptr, single_ptr, quads, cells,
                             pair_slots, singles, single_slots)
