@@ -89,12 +89,18 @@ def test_stiffness(benchmark, machine, request, cells, strategy, n_threads):
         _, peak, source = timed_with_peak(benchmark, fn, setup, rounds(request.config, mesh),
                                           False)
         traced = None if benchmark.disabled else _traced_peak(fn, setup)
+    # the scatter's plan, once a variant that makes it has run: its bytes and how many
+    # triangles went into pairs (docs/assembly.md, "Triangles in pairs")
+    scatter = assembler._numeric._scatter
+    pairs = {} if not scatter else {
+        "scatter_plan_bytes": int(scatter.nbytes),
+        "paired_fraction": 2 * scatter.n_pairs / mesh.n_triangles}
     record(
         benchmark, machine, traffic, floor, kind="assembly", operation="stiffness",
         method=strategy, plain=strategy == "triplets",
         baseline=None if strategy == "triplets" else "triplets", threads=n_threads,
         nnz=int(assembler.plan.nnz), plan_bytes=int(assembler.plan.nbytes), peak_bytes=peak,
-        peak_source=source, peak_traced_bytes=traced, **mesh_figures(mesh), **first,
+        peak_source=source, peak_traced_bytes=traced, **mesh_figures(mesh), **first, **pairs,
     )
 
 
