@@ -147,22 +147,30 @@ def _single(pflat, triangles, singles, kappa, ks, tensor, ts, scalar, diag, slot
 # 46.5 for the pair (8e6 triangles, before the later changes).
 
 
+@jit(inline="always")
+def _block(pflat, triangles, kappa, ks, tensor, ts, scalar, diag, pair_ptr, quads, cells,
+           pair_slots, pair_first, single_ptr, singles, single_slots, single_first, data, b):
+    """Block ``b``: its pairs ``pair_ptr[b]:pair_ptr[b + 1]``, then its singles."""
+    for k in range(pair_ptr[b], pair_ptr[b + 1]):
+        _pair(pflat, quads, cells, kappa, ks, tensor, ts, scalar, diag, pair_slots,
+              pair_first, data, uint64(k))
+    for k in range(single_ptr[b], single_ptr[b + 1]):
+        _single(pflat, triangles, singles, kappa, ks, tensor, ts, scalar, diag, single_slots,
+                single_first, data, uint64(k))
+
+
 @jit(parallel=True)
 def scatter_scalar(points, triangles, kappa, ks, tensor, ts, diag, pair_ptr, quads, cells,
                    pair_slots, pair_first, single_ptr, singles, single_slots, single_first,
                    colour_ptr, blocks, data):
-    """Stiffness into CSR ``data``, block ``b``'s pairs ``pair_ptr[b]:pair_ptr[b + 1]``
-    then its singles, blocks by colour (see the module's docstring)."""
+    """Stiffness into CSR ``data``, block by block (:func:`_block`), the blocks of a colour
+    side by side (see the module's docstring)."""
     pflat = points.reshape(points.size)
     for c in range(colour_ptr.size - 1):
         for kk in prange(colour_ptr[c], colour_ptr[c + 1]):
-            b = blocks[kk]
-            for k in range(pair_ptr[b], pair_ptr[b + 1]):
-                _pair(pflat, quads, cells, kappa, ks, tensor, ts, True, diag, pair_slots,
-                      pair_first, data, uint64(k))
-            for k in range(single_ptr[b], single_ptr[b + 1]):
-                _single(pflat, triangles, singles, kappa, ks, tensor, ts, True, diag,
-                        single_slots, single_first, data, uint64(k))
+            _block(pflat, triangles, kappa, ks, tensor, ts, True, diag, pair_ptr, quads, cells,
+                   pair_slots, pair_first, single_ptr, singles, single_slots, single_first,
+                   data, blocks[kk])
 
 
 @jit(parallel=True)
@@ -173,13 +181,9 @@ def scatter_tensor(points, triangles, kappa, ks, tensor, ts, diag, pair_ptr, qua
     pflat = points.reshape(points.size)
     for c in range(colour_ptr.size - 1):
         for kk in prange(colour_ptr[c], colour_ptr[c + 1]):
-            b = blocks[kk]
-            for k in range(pair_ptr[b], pair_ptr[b + 1]):
-                _pair(pflat, quads, cells, kappa, ks, tensor, ts, False, diag, pair_slots,
-                      pair_first, data, uint64(k))
-            for k in range(single_ptr[b], single_ptr[b + 1]):
-                _single(pflat, triangles, singles, kappa, ks, tensor, ts, False, diag,
-                        single_slots, single_first, data, uint64(k))
+            _block(pflat, triangles, kappa, ks, tensor, ts, False, diag, pair_ptr, quads,
+                   cells, pair_slots, pair_first, single_ptr, singles, single_slots,
+                   single_first, data, blocks[kk])
 
 
 @jit(inline="always")
